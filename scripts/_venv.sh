@@ -1,0 +1,21 @@
+# Sourced by scripts/demo, scripts/test and scripts/bench: create or update .venv.
+# Usage: . scripts/_venv.sh EXTRAS   (EXTRAS like "test" or "")
+set -euo pipefail
+root=$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)
+venv="$root/.venv"
+extras="${1:-}"
+py=${PYTHON:-python3}
+if [ ! -x "$venv/bin/python" ]; then
+  echo "seqpipe: creating $venv" >&2
+  "$py" -m venv "$venv"
+fi
+stamp="$venv/.seqpipe-installed-${extras:-base}"
+if [ ! -f "$stamp" ] || [ "$root/pyproject.toml" -nt "$stamp" ]; then
+  echo "seqpipe: installing seqpipe${extras:+[$extras]} into $venv" >&2
+  "$venv/bin/python" -m pip install --quiet --disable-pip-version-check --upgrade pip >/dev/null 2>&1 || true
+  spec="$root"
+  [ -n "$extras" ] && spec="$root[$extras]"
+  "$venv/bin/python" -m pip install --quiet --disable-pip-version-check -e "$spec"
+  touch "$stamp"
+fi
+export PATH="$venv/bin:$PATH"

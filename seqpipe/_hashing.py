@@ -1,0 +1,54 @@
+"""Content hashes and canonical JSON: the only way seqpipe fingerprints anything.
+
+XXH3-128 (xxhash) over bytes; canonical JSON is sorted keys, no spaces, ASCII
+escapes, integers and strings only where fingerprints are concerned. Python's
+``hash()`` and dict order never reach a fingerprint.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any, Final
+
+import numpy as np
+import xxhash
+
+BLOCK: Final = 8 << 20  # 8 MiB reads: large enough to run at disk/page-cache speed
+
+
+def canonical_json(obj: Any) -> str:
+    """Serialize ``obj`` as canonical JSON (sorted keys, compact, ASCII)."""
+    return json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
+
+
+def hash_bytes(data: bytes | bytearray | memoryview) -> str:
+    """XXH3-128 of ``data`` as 32 lowercase hex digits."""
+    return xxhash.xxh3_128_hexdigest(data)
+
+
+def hash_json(obj: Any) -> str:
+    """XXH3-128 of the canonical JSON of ``obj``."""
+    return hash_bytes(canonical_json(obj).encode("ascii"))
+
+
+def hash_array(values: np.ndarray) -> str:
+    """XXH3-128 of an integer array's little-endian bytes (independent of file layout)."""
+    arr = np.ascontiguousarray(values)
+    if arr.dtype.byteorder == ">" or (arr.dtype.byteorder == "=" and np.little_endian is False):
+        arr = arr.astype(arr.dtype.newbyteorder("<"))
+    return xxhash.xxh3_128_hexdigest(memoryview(arr).cast("B"))
+
+
+def hash_file(path: str | Path, block: int = BLOCK) -> str:
+    """XXH3-128 of a file's bytes, read in large blocks."""
+    h = xxhash.xxh3_128()
+    with open(path, "rb", buffering=0) as fh:
+        buf = bytearray(block)
+        view = memoryview(buf)
+        while True:
+            n = fh.readinto(buf)
+            if not n:
+                break
+            h.update(view[:n])
+    return h.hexdigest()

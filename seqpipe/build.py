@@ -1,0 +1,401 @@
+"""Build a dataset from a recipe: the driver that plans tasks and assembles the result.
+
+Phases (each a batch of executor tasks, see seqpipe/ingest.py)::
+
+    plan     resolve globs, hash inputs (stat-cached), cut files into parts
+    ingest   read + clean + segment each part            -> cached parts (reused across builds)
+    assign   drop duplicates, assign splits (driver, numpy over document hashes)
+    count    piece counts over train documents per part  -> Arrow tables, merged by group-by
+    fit      vocabulary (+ learned merges)               -> stage/vocab.arrow, tokenizer.arrow
+    encode   ids per part and split                      -> stage/encoded/*
+    shard    fixed-size shards per split                 -> stage/shards/<split>/*.arrow
+    publish  docs tables, manifest, atomic rename into the output directory
+
+Document order and every tie come from the inputs (recipe order, sorted paths, byte order),
+never from task completion order, so 1 worker, N workers or a cluster give identical bytes.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import time
+from collections.abc import Callable, Sequence
+from concurrent.futures import Executor, Future
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Final, TypeVar
+
+import numpy as np
+import pyarrow as pa
+
+from seqpipe import __version__
+from seqpipe._hashing import hash_file, hash_json
+from seqpipe.errors import EmptyCorpusError, SeqpipeError, SourceMissingError
+from seqpipe.executors import executor_for
+from seqpipe.ingest import (
+    CountTask,
+    EncodeTask,
+    IngestTask,
+    PartMeta,
+    ShardTask,
+    count_part,
+    encode_part,
+    encoded_path,
+    ingest_part,
+    load_part_meta,
+    part_key,
+    read_part_docs,
+    write_shard_task,
+)
+from seqpipe.manifest import FORMAT, MANIFEST_NAME, dumps, seal
+from seqpipe.progress import bar, enabled
+from seqpipe.recipe import SPLIT_NAMES, Recipe
+from seqpipe.shards import id_dtype, write_table
+from seqpipe.staging import build_lock, private_dir, publish
+from seqpipe.vocab import merge_counts
+
+PART_BYTES: Final = 64 << 20
+DOCS_SCHEMA: Final = pa.schema([("start", pa.int64()), ("length", pa.int64()), ("source", pa.int32()),
+                                ("hash", pa.binary(16))])
+T = TypeVar("T")
+
+
+@dataclass
+class BuildResult:
+    """What a build produced: where, its manifest, and figures for the summary."""
+
+    directory: Path
+    manifest: dict[str, Any]
+    seconds: float
+    input_bytes: int
+    parts_total: int
+    parts_reused: int
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def fingerprint(self) -> str:
+        return str(self.manifest["dataset_fingerprint"])
+
+    def summary_lines(self) -> list[str]:
+        """Human-readable build summary."""
+        m = self.manifest
+        s = m["summary"]
+        mbs = self.input_bytes / 1e6 / max(self.seconds, 1e-9)
+        lines = [f"dataset      {self.directory}",
+                 f"fingerprint  {m['dataset_fingerprint']}",
+                 f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['size']} "
+                 f"(ids as {m['dtype']})",
+                 f"inputs       {len(m['inputs'])} file(s), {self.input_bytes / 1e6:.2f} MB read in "
+                 f"{self.seconds:.2f} s ({mbs:.1f} MB/s); parts reused from cache: "
+                 f"{self.parts_reused}/{self.parts_total}"]
+        for name in SPLIT_NAMES:
+            sp, st = m["splits"][name], s["splits"][name]
+            lines.append(f"{name:<12} {sp['documents']:>9} docs {sp['tokens']:>11} tokens  "
+                         f"{len(sp['shards'])} shard(s)  unknown {st['unknown_rate']:.4%}  "
+                         f"{st['bytes_per_token']:.2f} bytes/token  {st['tokens_per_word']:.2f} tokens/word")
+        drops = {**s["read"], **{f"clean {k}": v for k, v in s["dropped"].items()}}
+        shown = {k: v for k, v in drops.items() if v and k not in ("documents", "bytes_read")}
+        if s["duplicates_dropped"]:
+            shown["duplicates dropped"] = s["duplicates_dropped"]
+        if shown:
+            lines.append("counted      " + ", ".join(f"{k}: {v}" for k, v in sorted(shown.items())))
+        return lines
+
+
+def _input_hashes(files: Sequence[Path], cache: Path) -> list[str]:
+    """XXH3-128 of each input, reusing a stored hash while (size, mtime, inode) are unchanged."""
+    index_path = cache / "inputs.json"
+    try:
+        index: dict[str, Any] = json.loads(index_path.read_text())
+    except (OSError, ValueError):
+        index = {}
+    out = []
+    changed = False
+    for f in files:
+        st = f.stat()
+        stamp = [st.st_size, st.st_mtime_ns, st.st_ino]
+        rec = index.get(str(f))
+        if rec and rec.get("stamp") == stamp:
+            out.append(rec["hash"])
+            continue
+        h = hash_file(f)
+        index[str(f)] = {"stamp": stamp, "hash": h}
+        out.append(h)
+        changed = True
+    if changed:
+        cache.mkdir(parents=True, exist_ok=True)
+        tmp = index_path.with_suffix(".tmp")
+        tmp.write_text(json.dumps(index, sort_keys=True))
+        os.replace(tmp, index_path)
+    return out
+
+
+def _run(executor: Executor, fn: Callable[[Any], T], tasks: Sequence[Any], desc: str, show: bool,
+         unit: str = "part", weights: Sequence[int] | None = None) -> list[T]:
+    """Submit every task, wait for all, return results in task order (never completion order)."""
+    from concurrent.futures import as_completed
+
+    futures: dict[Future[T], int] = {executor.submit(fn, t): i for i, t in enumerate(tasks)}
+    results: list[Any] = [None] * len(tasks)
+    total = sum(weights) if weights is not None else len(tasks)
+    with bar(total, desc, unit=unit, show=show and bool(tasks),
+             unit_scale=weights is not None) as pbar:
+        for fut in as_completed(futures):
+            i = futures[fut]
+            results[i] = fut.result()
+            pbar.update(weights[i] if weights is not None else 1)
+    return results
+
+
+def _split_of(hashes: np.ndarray, fractions: Sequence[float], seed: int) -> np.ndarray:
+    """Split index per document from a seeded mix of its content hash (splitmix64 finalizer)."""
+    x = hashes[:, :8].copy().view("<u8").reshape(-1).astype(np.uint64)
+    x ^= np.uint64(seed) * np.uint64(0x9E3779B97F4A7C15) if seed else np.uint64(0)
+    x ^= x >> np.uint64(30)
+    x *= np.uint64(0xBF58476D1CE4E5B9)
+    x ^= x >> np.uint64(27)
+    x *= np.uint64(0x94D049BB133111EB)
+    x ^= x >> np.uint64(31)
+    u = (x >> np.uint64(11)).astype(np.float64) / float(1 << 53)
+    edges = np.cumsum(fractions)[:-1]
+    return np.searchsorted(edges, u, side="right").astype(np.int8)
+
+
+def _first_occurrence(keys: np.ndarray) -> np.ndarray:
+    """Bool per row: True where this 16-byte key occurs for the first time."""
+    if len(keys) == 0:
+        return np.zeros(0, dtype=bool)
+    rows = np.ascontiguousarray(keys).view("V16").reshape(-1)
+    _, first = np.unique(rows, return_index=True)
+    keep = np.zeros(len(keys), dtype=bool)
+    keep[first] = True
+    return keep
+
+
+def build(recipe: Recipe, out: str | Path, *, executor: Executor | None = None, workers: int | None = None,
+          cache_dir: str | Path | None = None, force: bool = False, progress: bool | None = None,
+          part_bytes: int = PART_BYTES) -> BuildResult:
+    """Build ``recipe`` into directory ``out`` and return the result.
+
+    ``executor``: any concurrent.futures-style executor (e.g. a Dask client's
+    ``get_executor(pure=False)``); otherwise ``workers`` processes (default: all cores; 1 runs
+    in this process). ``cache_dir`` keeps ingested parts for later builds (default
+    ``out/.seqpipe/cache``); ``force`` ignores it.
+    """
+    t0 = time.perf_counter()
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    show = enabled(progress)
+    with build_lock(out):
+        cache = Path(cache_dir) if cache_dir is not None else private_dir(out) / "cache"
+        if force:
+            shutil.rmtree(cache / "parts", ignore_errors=True)
+        (cache / "parts").mkdir(parents=True, exist_ok=True)
+        for stale in (cache / "parts").glob(".*.tmp"):
+            shutil.rmtree(stale, ignore_errors=True)
+        with executor_for(executor, workers) as ex:
+            return _build(recipe, out, ex, cache, show, part_bytes, t0)
+
+
+def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, part_bytes: int,
+           t0: float) -> BuildResult:
+    # -- plan -----------------------------------------------------------------------------------
+    files: list[tuple[int, Path]] = []
+    seen: set[Path] = set()
+    for si, source in enumerate(recipe.sources):
+        for f in source.resolve(recipe.root):
+            if f.resolve() not in seen:
+                seen.add(f.resolve())
+                files.append((si, f))
+    if not files:
+        raise SourceMissingError(str(recipe.root), "the recipe's sources match no file")
+    hashes = _input_hashes([f for _, f in files], cache)
+    sizes = [f.stat().st_size for _, f in files]
+    inputs = [{"path": os.path.relpath(f, recipe.root).replace(os.sep, "/"), "size": sz, "hash": h}
+              for (_, f), sz, h in zip(files, sizes, hashes, strict=True)]
+    tasks: list[IngestTask] = []
+    for ii, ((si, f), h) in enumerate(zip(files, hashes, strict=True)):
+        for part in recipe.sources[si].plan(f, part_bytes):
+            key = part_key(recipe, si, h, part)
+            tasks.append(IngestTask(recipe, si, ii, str(f), part, key, str(cache)))
+    build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes})
+    stage = private_dir(out) / "stage" / build_key[:16]
+    stage.mkdir(parents=True, exist_ok=True)
+
+    # -- ingest (cached) ------------------------------------------------------------------------
+    metas: list[PartMeta | None] = [load_part_meta(str(cache), t.key) for t in tasks]
+    todo = [i for i, m in enumerate(metas) if m is None]
+    fresh = _run(ex, ingest_part, [tasks[i] for i in todo], "reading", show)
+    for i, m in zip(todo, fresh, strict=True):
+        metas[i] = m
+    parts: list[PartMeta] = [m for m in metas if m is not None]
+    reused = len(tasks) - len(todo)
+    input_bytes = sum(sizes)
+
+    # -- assign: duplicates and splits ----------------------------------------------------------
+    doc_tables = [read_part_docs(str(cache), t.key) for t in tasks]
+    counts_per_part = [t.num_rows for t in doc_tables]
+    if sum(counts_per_part) == 0:
+        raise EmptyCorpusError("no document is left after reading and cleaning: check the sources' "
+                               "globs and the clean steps (e.g. min_length)")
+
+    def fixed16(table: pa.Table, name: str) -> np.ndarray:
+        col = table.column(name).combine_chunks()
+        buf = col.buffers()[1]
+        return np.frombuffer(buf, dtype=np.uint8)[col.offset * 16:(col.offset + len(col)) * 16].reshape(-1, 16)
+
+    all_hash = np.concatenate([fixed16(t, "hash") for t in doc_tables])
+    split_all = _split_of(all_hash, recipe.splits.fractions(), recipe.splits.seed)
+    has_dedupe = any(getattr(s, "is_dedupe", False) for s in recipe.clean)
+    if has_dedupe:
+        keep_all = _first_occurrence(np.concatenate([fixed16(t, "dedupe") for t in doc_tables]))
+    else:
+        keep_all = np.ones(len(all_hash), dtype=bool)
+    duplicates = int((~keep_all).sum())
+    split_all = np.where(keep_all, split_all, -1).astype(np.int8)
+    bounds = np.concatenate([[0], np.cumsum(counts_per_part)]).astype(np.int64)
+    split_parts = [split_all[bounds[i]:bounds[i + 1]] for i in range(len(tasks))]
+    if not (split_all == 0).any():
+        raise EmptyCorpusError("the train split is empty: add documents or raise splits.train")
+
+    # -- count + fit ----------------------------------------------------------------------------
+    count_tasks = [CountTask(str(cache), t.key, i, sp == 0) for i, (t, sp) in enumerate(zip(tasks, split_parts,
+                                                                                          strict=True))]
+    partial = _run(ex, count_part, count_tasks, "counting", show)
+    merged = _merge_in_batches(partial)
+    encoder = recipe.tokenizer.fit(merged, recipe.vocab)
+    vocab = encoder.vocabulary
+    dtype = id_dtype(len(vocab))
+    for stale in ("vocab.arrow", "tokenizer.arrow"):
+        (stage / stale).unlink(missing_ok=True)
+    vocab.save(stage / "vocab.arrow")
+    tok_files = encoder.save(stage)
+
+    # -- encode ---------------------------------------------------------------------------------
+    shutil.rmtree(stage / "encoded", ignore_errors=True)
+    enc_tasks = [EncodeTask(str(cache), t.key, str(stage), recipe, i, sp, dtype.name)
+                 for i, (t, sp) in enumerate(zip(tasks, split_parts, strict=True))]
+    encoded = _run(ex, encode_part, enc_tasks, "encoding", show)
+
+    # -- shards + docs tables -------------------------------------------------------------------
+    splits_out: dict[str, Any] = {}
+    summary_splits: dict[str, Any] = {}
+    shard_tasks: list[ShardTask] = []
+    shard_slots: list[tuple[str, int]] = []
+    per_split_docs: dict[str, pa.Table] = {}
+    S = recipe.shards.tokens
+    compression = None if recipe.shards.compression == "none" else recipe.shards.compression
+    for s, split in enumerate(SPLIT_NAMES):
+        lengths_list, sources_list, hash_list, files_list = [], [], [], []
+        unknown = 0
+        for i, enc in enumerate(encoded):
+            if split not in enc:
+                continue
+            mask = split_parts[i] == s
+            lengths_list.append(enc[split]["lengths"])
+            sources_list.append(np.full(int(mask.sum()), parts[i].input_index, np.int32))
+            hash_list.append(all_hash[bounds[i]:bounds[i + 1]][mask])
+            files_list.append((str(encoded_path(str(stage), i, split)), enc[split]["tokens"]))
+            unknown += enc[split]["unknown"]
+        lengths = np.concatenate(lengths_list) if lengths_list else np.zeros(0, np.int64)
+        starts = np.cumsum(lengths) - lengths
+        n_tokens = int(lengths.sum())
+        hsh = np.concatenate(hash_list) if hash_list else np.zeros((0, 16), np.uint8)
+        per_split_docs[split] = pa.table({
+            "start": pa.array(starts, pa.int64()), "length": pa.array(lengths, pa.int64()),
+            "source": pa.array(np.concatenate(sources_list) if sources_list else np.zeros(0, np.int32)),
+            "hash": pa.FixedSizeBinaryArray.from_buffers(pa.binary(16), len(hsh), [None, pa.py_buffer(hsh.tobytes())]),
+        }, schema=DOCS_SCHEMA)
+        # fixed-size shards over the split's stream, cut from the encoded files
+        file_starts = np.cumsum([0] + [n for _, n in files_list])
+        shard_meta = []
+        for k, first in enumerate(range(0, n_tokens, S)):
+            last = min(first + S, n_tokens)
+            pieces = []
+            for (path, n), fs in zip(files_list, file_starts[:-1], strict=True):
+                a, b = max(first, int(fs)), min(last, int(fs) + n)
+                if a < b:
+                    pieces.append((path, a - int(fs), b - int(fs)))
+            rel = f"shards/{split}/{k:06d}.arrow"
+            shard_tasks.append(ShardTask(str(stage / rel), tuple(pieces), compression, dtype.name))
+            shard_slots.append((split, len(shard_meta)))
+            docs_in = int(np.count_nonzero((starts >= first) & (starts < last)))
+            shard_meta.append({"path": rel, "tokens": last - first, "documents": docs_in, "first": first})
+        splits_out[split] = {"documents": len(lengths), "tokens": n_tokens, "shards": shard_meta}
+        sel = split_all == s
+        text_bytes = int(sum(int(t.column("bytes").to_numpy()[split_parts[i] == s].sum())
+                             for i, t in enumerate(doc_tables)))
+        words = int(sum(int(t.column("words").to_numpy()[split_parts[i] == s].sum())
+                        for i, t in enumerate(doc_tables)))
+        summary_splits[split] = {
+            "unknown": unknown,
+            "unknown_rate": unknown / n_tokens if n_tokens else 0.0,
+            "bytes_per_token": text_bytes / n_tokens if n_tokens else 0.0,
+            "tokens_per_word": n_tokens / words if words else 0.0,
+            "documents_assigned": int(sel.sum()),
+        }
+    shutil.rmtree(stage / "shards", ignore_errors=True)
+    results = _run(ex, write_shard_task, shard_tasks, "writing shards", show, unit="shard")
+    for (split, j), res in zip(shard_slots, results, strict=True):
+        splits_out[split]["shards"][j].update(bytes=res["bytes"], file_hash=res["file_hash"],
+                                              token_hash=res["token_hash"])
+    for split, table in per_split_docs.items():
+        rel = f"docs/{split}.arrow"
+        size = write_table(stage / rel, table)
+        splits_out[split]["docs"] = {"path": rel, "bytes": size, "hash": hash_file(stage / rel)}
+    shutil.rmtree(stage / "encoded", ignore_errors=True)
+
+    # -- manifest + publish ---------------------------------------------------------------------
+    read_tot: dict[str, int] = {}
+    dropped_tot: dict[str, int] = {}
+    for m in parts:
+        for k, v in m.read.items():
+            read_tot[k] = read_tot.get(k, 0) + v
+        for k, v in m.dropped.items():
+            dropped_tot[k] = dropped_tot.get(k, 0) + v
+    body = {
+        "format": FORMAT,
+        "seqpipe_version": __version__,
+        "recipe": recipe.to_dict(),
+        "recipe_fingerprint": recipe.fingerprint,
+        "inputs": inputs,
+        "tokenizer": {"kind": recipe.tokenizer.kind, "vocab_size": len(vocab),
+                      "files": [{"path": f, "bytes": (stage / f).stat().st_size, "hash": hash_file(stage / f)}
+                                for f in tok_files]},
+        "vocabulary": {"path": "vocab.arrow", "bytes": (stage / "vocab.arrow").stat().st_size,
+                       "hash": hash_file(stage / "vocab.arrow"), "size": len(vocab)},
+        "dtype": dtype.name,
+        "splits": splits_out,
+        "summary": {"read": read_tot, "dropped": dropped_tot, "duplicates_dropped": duplicates,
+                    "splits": summary_splits},
+    }
+    manifest = seal(body)
+    (stage / MANIFEST_NAME).write_text(dumps(manifest))
+    entries = ["vocab.arrow", *tok_files, "docs", "shards"]
+    for gone in ("tokenizer.arrow",):
+        if gone not in entries and (out / gone).exists():
+            (out / gone).unlink()
+    publish(out, stage, entries, MANIFEST_NAME)
+    shutil.rmtree(stage, ignore_errors=True)
+    return BuildResult(out, manifest, time.perf_counter() - t0, input_bytes, len(tasks), reused)
+
+
+def _merge_in_batches(tables: Sequence[pa.Table], batch: int = 32) -> pa.Table:
+    """Merge partial (key, count, first) tables with Arrow group-by, a batch at a time, then order
+    rows by first occurrence in corpus order."""
+    if not tables:
+        raise SeqpipeError("nothing to count")
+    acc: pa.Table | None = None
+    for i in range(0, len(tables), batch):
+        group = list(tables[i:i + batch]) + ([acc] if acc is not None else [])
+        cat = pa.concat_tables(group)
+        acc = cat.group_by("key").aggregate([("count", "sum"), ("first", "min")]) \
+            .rename_columns(["key", "count", "first"])
+    assert acc is not None
+    acc = acc.sort_by([("first", "ascending")])
+    return acc.select(["key", "count"]).cast(pa.schema([("key", pa.binary()), ("count", pa.int64())]))
+
+
+__all__ = ["BuildResult", "build", "merge_counts"]

@@ -1,0 +1,256 @@
+"""The ``seqpipe`` command: a thin layer over the Python API (no pipeline logic here).
+
+Exit codes: 0 success; 1 verification found problems; 2 usage or recipe error; 3 input error
+(a source file cannot be read as declared); 4 dataset error (missing, malformed or unsafe);
+5 another build holds the output directory; 70 internal error (a bug: please report it).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+from seqpipe.errors import EXIT_OK, EXIT_VERIFY_FAILED, SeqpipeError
+
+EXIT_INTERNAL = 70
+
+
+def _print_json(obj: Any) -> None:
+    print(json.dumps(obj, indent=2, sort_keys=True, ensure_ascii=False))
+
+
+def cmd_build(args: argparse.Namespace) -> int:
+    from seqpipe.build import build
+    from seqpipe.recipe import load_recipe
+
+    recipe = load_recipe(args.recipe)
+    out = Path(args.output) if args.output else Path(recipe.dataset.name)
+    executor = None
+    client = None
+    if args.dask_scheduler:
+        from seqpipe.dask_support import connect
+
+        client, executor = connect(args.dask_scheduler)
+    try:
+        result = build(recipe, out, executor=executor, workers=args.workers, cache_dir=args.cache,
+                       force=args.force, progress=False if args.quiet else None)
+    finally:
+        if client is not None:
+            client.close()
+    if args.json:
+        _print_json({"directory": str(out), "fingerprint": result.fingerprint, "seconds": result.seconds,
+                     "parts": result.parts_total, "parts_reused": result.parts_reused,
+                     "summary": result.manifest["summary"]})
+    elif not args.quiet:
+        print("\n".join(result.summary_lines()))
+    return EXIT_OK
+
+
+def cmd_verify(args: argparse.Namespace) -> int:
+    from seqpipe.verify import verify
+
+    report = verify(args.directory, against=args.against, expect=args.expect)
+    if args.json:
+        _print_json(report.to_dict())
+    elif report.ok:
+        print(f"ok: {report.files_checked} files, {report.bytes_checked} bytes verified; "
+              f"fingerprint {report.fingerprint}")
+    else:
+        for p in report.problems:
+            print(p)
+        print(f"{len(report.problems)} problem(s) in {args.directory}", file=sys.stderr)
+    return EXIT_OK if report.ok else EXIT_VERIFY_FAILED
+
+
+def cmd_inspect(args: argparse.Namespace) -> int:
+    from seqpipe.dataset import open_dataset
+
+    ds = open_dataset(args.directory)
+    m = ds.manifest
+    if args.json:
+        _print_json(m)
+        return EXIT_OK
+    print(f"dataset      {args.directory} ({m['recipe']['dataset']['name']})")
+    print(f"format       {m['format']}, written by seqpipe {m['seqpipe_version']}")
+    print(f"fingerprint  {m['dataset_fingerprint']}")
+    print(f"recipe       {m['recipe_fingerprint']}")
+    print(f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['size']}, ids {m['dtype']}")
+    print(f"inputs       {len(m['inputs'])} file(s), {sum(i['size'] for i in m['inputs'])} bytes")
+    for name in ds.splits:
+        sp = m["splits"][name]
+        size = sum(s["bytes"] for s in sp["shards"])
+        print(f"{name:<12} {sp['documents']} documents, {sp['tokens']} tokens, {len(sp['shards'])} shard(s), "
+              f"{size} bytes")
+    return EXIT_OK
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from seqpipe.build import build
+    from seqpipe.demo import demo_recipe_text, write_demo_corpus
+    from seqpipe.recipe import parse_recipe
+    from seqpipe.verify import verify
+
+    root = Path(args.directory)
+    corpus = root / "corpus"
+    files = write_demo_corpus(corpus)
+    (corpus / "recipe.toml").write_text(demo_recipe_text(), encoding="utf-8")
+    print(f"demo corpus: {len(files)} files in {corpus} (recipe: {corpus / 'recipe.toml'})")
+    recipe = parse_recipe(demo_recipe_text(), corpus)
+    out = root / "dataset"
+    result = build(recipe, out, workers=args.workers, progress=False if args.quiet else None)
+    print("\n".join(result.summary_lines()))
+    report = verify(out)
+    if not report.ok:
+        for p in report.problems:
+            print(p)
+        return EXIT_VERIFY_FAILED
+    print(f"verify: ok ({report.files_checked} files)")
+    print(f"next: seqpipe inspect {out}   seqpipe batches {out} --split train --batch-size 2 --steps 16 "
+          f"--limit 1   seqpipe report {out}")
+    return EXIT_OK
+
+
+def cmd_batches(args: argparse.Namespace) -> int:
+    from seqpipe.batch_output import print_batches
+    from seqpipe.dataset import open_dataset
+
+    ds = open_dataset(args.directory, verify_on_open=args.verify)
+    split = ds.split(args.split)
+    stream = split.batches(batch_size=args.batch_size, steps=args.steps, order=args.order, seed=args.seed,
+                           epoch=args.epoch, rank=args.rank, world_size=args.world_size,
+                           drop_last=not args.keep_last, boundaries=args.boundaries)
+    print_batches(ds, stream, start=args.start, limit=args.limit, fmt=args.format)
+    return EXIT_OK
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    from seqpipe.report import write_report
+
+    out = Path(args.output) if args.output else Path(args.directory) / "report"
+    write_report(args.directory, out, ngram_n=args.ngram, progress=False if args.quiet else None)
+    print(f"report written to {out} (report.md, report.json, plots)")
+    return EXIT_OK
+
+
+def cmd_encode(args: argparse.Namespace) -> int:
+    from seqpipe.dataset import load_tokenizer
+
+    enc = load_tokenizer(args.directory)
+    print(" ".join(str(int(i)) for i in enc.encode(args.text)))
+    return EXIT_OK
+
+
+def cmd_decode(args: argparse.Namespace) -> int:
+    from seqpipe.dataset import load_tokenizer
+
+    enc = load_tokenizer(args.directory)
+    print(enc.decode(args.ids))
+    return EXIT_OK
+
+
+def parser() -> argparse.ArgumentParser:
+    ap = argparse.ArgumentParser(prog="seqpipe", description="Raw text to verified token datasets and "
+                                 "reproducible training batches.")
+    from seqpipe import __version__
+
+    ap.add_argument("--version", action="version", version=f"seqpipe {__version__}")
+    sub = ap.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    p = sub.add_parser("build", help="build a dataset from a TOML recipe")
+    p.add_argument("recipe", help="recipe file (TOML)")
+    p.add_argument("-o", "--output", help="dataset directory (default: ./<dataset.name>)")
+    p.add_argument("--workers", type=int, default=None, help="worker processes (default: all cores)")
+    p.add_argument("--dask-scheduler", metavar="ADDRESS", help="run tasks on a Dask cluster (seqpipe[dask])")
+    p.add_argument("--cache", help="cache directory for ingested parts (default: DIR/.seqpipe/cache)")
+    p.add_argument("--force", action="store_true", help="ignore cached parts; rebuild everything")
+    p.add_argument("--quiet", action="store_true", help="no progress bars, no summary")
+    p.add_argument("--json", action="store_true", help="print the summary as JSON")
+    p.set_defaults(fn=cmd_build)
+
+    p = sub.add_parser("verify", help="recompute every hash of a dataset")
+    p.add_argument("directory")
+    p.add_argument("--json", action="store_true", help="machine-readable report")
+    p.add_argument("--against", metavar="MANIFEST", help="also compare with a committed manifest.json")
+    p.add_argument("--expect", metavar="FINGERPRINT", help="the dataset fingerprint must equal this hex")
+    p.set_defaults(fn=cmd_verify)
+
+    p = sub.add_parser("inspect", help="show what a dataset's manifest holds")
+    p.add_argument("directory")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(fn=cmd_inspect)
+
+    p = sub.add_parser("demo", help="write the demo corpus, build, verify, summarize")
+    p.add_argument("directory", nargs="?", default="seqpipe-demo")
+    p.add_argument("--workers", type=int, default=1)
+    p.add_argument("--quiet", action="store_true")
+    p.set_defaults(fn=cmd_demo)
+
+    p = sub.add_parser("batches", help="show or fingerprint the batch stream of a split")
+    p.add_argument("directory")
+    p.add_argument("--split", default="train")
+    p.add_argument("--batch-size", type=int, required=True)
+    p.add_argument("--steps", type=int, required=True, help="window length T (tokens per row)")
+    p.add_argument("--order", choices=("random", "sequential"), default="random")
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--epoch", type=int, default=0)
+    p.add_argument("--rank", type=int, default=0)
+    p.add_argument("--world-size", type=int, default=1)
+    p.add_argument("--start", type=int, default=0, help="first step to show (resume point)")
+    p.add_argument("--limit", type=int, default=None, help="at most this many batches")
+    p.add_argument("--format", choices=("text", "json", "hash"), default="text")
+    p.add_argument("--keep-last", action="store_true", help="keep the last partial batch")
+    p.add_argument("--boundaries", action="store_true", help="include document-boundary masks")
+    p.add_argument("--verify", action="store_true", help="hash every file before the first batch")
+    p.set_defaults(fn=cmd_batches)
+
+    p = sub.add_parser("report", help="corpus statistics, leakage checks and baseline perplexities")
+    p.add_argument("directory")
+    p.add_argument("-o", "--output", help="output directory (default: DIR/report)")
+    p.add_argument("--ngram", type=int, default=13, help="n for the leakage n-gram overlap (default 13)")
+    p.add_argument("--quiet", action="store_true")
+    p.set_defaults(fn=cmd_report)
+
+    p = sub.add_parser("encode", help="encode text with a dataset's tokenizer")
+    p.add_argument("directory")
+    p.add_argument("text")
+    p.set_defaults(fn=cmd_encode)
+
+    p = sub.add_parser("decode", help="decode ids with a dataset's tokenizer")
+    p.add_argument("directory")
+    p.add_argument("ids", nargs="+", type=int)
+    p.set_defaults(fn=cmd_decode)
+    return ap
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = parser().parse_args(argv)
+    try:
+        code: int = args.fn(args)
+        return code
+    except SeqpipeError as exc:
+        print(f"seqpipe: error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("seqpipe: interrupted", file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        return EXIT_OK
+    except OSError as exc:
+        print(f"seqpipe: error: {exc.strerror or exc}: {exc.filename or ''}".rstrip(": "), file=sys.stderr)
+        return 3
+    except Exception as exc:  # a bug: say so plainly; SEQPIPE_DEBUG=1 shows the traceback
+        if os.environ.get("SEQPIPE_DEBUG"):
+            raise
+        print(f"seqpipe: internal error: {type(exc).__name__}: {exc} (please report this; "
+              "rerun with SEQPIPE_DEBUG=1 for details)", file=sys.stderr)
+        return EXIT_INTERNAL
+
+
+if __name__ == "__main__":
+    sys.exit(main())
+_ = EXIT_VERIFY_FAILED

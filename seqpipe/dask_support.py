@@ -1,0 +1,32 @@
+"""Run builds on a Dask cluster (optional extra ``seqpipe[dask]``).
+
+``client.get_executor(pure=False)`` matters: with the default ``pure=True`` Dask treats repeated
+identical calls as one and drops them. Tasks are idempotent (deterministic names, atomic
+writes), so a task retried after a worker dies writes the same bytes again.
+"""
+
+from __future__ import annotations
+
+from concurrent.futures import Executor
+from typing import Any
+
+from seqpipe.errors import SeqpipeError
+
+
+def connect(address: str) -> tuple[Any, Executor]:
+    """A ``distributed.Client`` for ``address`` and an executor over it."""
+    try:
+        from distributed import Client
+    except ImportError:
+        raise SeqpipeError("--dask-scheduler needs the Dask extra: pip install 'seqpipe[dask]'") from None
+    try:
+        client = Client(address, timeout="20s")
+    except (OSError, TimeoutError) as exc:
+        raise SeqpipeError(f"cannot reach the Dask scheduler at {address} ({exc})") from exc
+    return client, client.get_executor(pure=False)
+
+
+def executor_for_client(client: Any) -> Executor:
+    """The executor seqpipe uses for an existing ``distributed.Client``."""
+    ex: Executor = client.get_executor(pure=False)
+    return ex

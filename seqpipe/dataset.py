@@ -1,0 +1,136 @@
+"""Open a built dataset: manifest checked, shards memory-mapped, splits as token streams.
+
+Opening reads only the manifest; a split's shards are mapped when the split is first asked
+for, and its stream is a view over them (no concatenated copy). Every path comes from the
+manifest and must stay inside the dataset directory.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from functools import cached_property
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import pyarrow as pa
+
+from seqpipe.errors import DatasetError, IntegrityError, ManifestError
+from seqpipe.manifest import read_manifest, safe_relative
+from seqpipe.shards import read_shard, read_table
+from seqpipe.tokenizers import parse_tokenizer
+from seqpipe.tokenizers.base import Encoder
+from seqpipe.vocab import Vocabulary
+
+if TYPE_CHECKING:
+    from seqpipe.stream import TokenStream
+    from seqpipe.windows import BatchStream
+
+
+@dataclass
+class Split:
+    """One split of a dataset: its token stream over the mapped shards and its documents."""
+
+    dataset: Dataset
+    name: str
+    info: dict[str, Any] = field(repr=False)
+
+    @property
+    def num_tokens(self) -> int:
+        return int(self.info["tokens"])
+
+    @property
+    def num_documents(self) -> int:
+        return int(self.info["documents"])
+
+    @cached_property
+    def documents(self) -> pa.Table:
+        """Per document: start (offset in the split's stream), length, source, hash."""
+        rel = self.info["docs"]["path"]
+        table = read_table(safe_relative(self.dataset.directory, rel, key=f"splits.{self.name}.docs.path"))
+        if table.num_rows != self.num_documents:
+            raise DatasetError(f"{rel}: holds {table.num_rows} documents, manifest says {self.num_documents}")
+        return table
+
+    @cached_property
+    def stream(self) -> TokenStream:
+        """The split's tokens as one logical stream (memory-mapped, zero-copy)."""
+        from seqpipe.stream import TokenStream
+
+        dtype = np.dtype(self.dataset.manifest["dtype"])
+        chunks = []
+        for j, sh in enumerate(self.info["shards"]):
+            path = safe_relative(self.dataset.directory, sh["path"], key=f"splits.{self.name}.shards[{j}].path")
+            chunks.append(read_shard(path, dtype=dtype, expected_tokens=sh["tokens"]))
+        starts = self.documents.column("start").to_numpy() if self.num_documents else np.zeros(0, np.int64)
+        return TokenStream(chunks, doc_starts=starts)
+
+    def batches(self, **kwargs: Any) -> BatchStream:
+        """A :class:`seqpipe.windows.BatchStream` over this split (keyword arguments as there)."""
+        from seqpipe.windows import BatchStream
+
+        key = f"{self.dataset.fingerprint}:{self.name}"
+        return BatchStream(self.stream, stream_key=key, **kwargs)
+
+
+class Dataset:
+    """A built dataset directory (see ``open_dataset``)."""
+
+    def __init__(self, directory: Path, manifest: dict[str, Any]) -> None:
+        self.directory = directory
+        self.manifest = manifest
+        self._splits: dict[str, Split] = {}
+
+    @property
+    def fingerprint(self) -> str:
+        return str(self.manifest["dataset_fingerprint"])
+
+    @property
+    def splits(self) -> tuple[str, ...]:
+        """Split names in pipeline order (train, validation, test), then any others."""
+        from seqpipe.recipe import SPLIT_NAMES
+
+        names = list(self.manifest["splits"])
+        return tuple(sorted(names, key=lambda n: (SPLIT_NAMES.index(n) if n in SPLIT_NAMES else 99, n)))
+
+    def split(self, name: str) -> Split:
+        if name not in self.manifest["splits"]:
+            raise DatasetError(f"{self.directory}: no split {name!r}; this dataset has {list(self.splits)}")
+        if name not in self._splits:
+            self._splits[name] = Split(self, name, self.manifest["splits"][name])
+        return self._splits[name]
+
+    @cached_property
+    def vocabulary(self) -> Vocabulary:
+        rel = self.manifest["vocabulary"]["path"]
+        return Vocabulary.load(safe_relative(self.directory, rel, key="vocabulary.path"))
+
+    @cached_property
+    def encoder(self) -> Encoder:
+        """The trained tokenizer, for encoding new text and decoding ids."""
+        for i, f in enumerate(self.manifest["tokenizer"]["files"]):
+            safe_relative(self.directory, f["path"], key=f"tokenizer.files[{i}].path")
+        safe_relative(self.directory, self.manifest["vocabulary"]["path"], key="vocabulary.path")
+        try:
+            tokenizer = parse_tokenizer(self.manifest["recipe"].get("tokenizer", {}), "recipe.tokenizer")
+        except Exception as exc:  # a manifest whose recipe this version cannot read
+            raise ManifestError(f"{self.directory}: the manifest's tokenizer section is not usable ({exc})") from exc
+        return tokenizer.load(self.directory)
+
+
+def open_dataset(directory: str | Path, *, verify_on_open: bool = False) -> Dataset:
+    """Open a built dataset. With ``verify_on_open`` every file is hashed first and any
+    problem raises :class:`IntegrityError` before a single batch is read."""
+    d = Path(directory)
+    if verify_on_open:
+        from seqpipe.verify import verify
+
+        report = verify(d)
+        if report.problems:
+            raise IntegrityError(report.problems)
+    return Dataset(d, read_manifest(d))
+
+
+def load_tokenizer(directory: str | Path) -> Encoder:
+    """The trained tokenizer of a built dataset: ``encode(text)`` / ``decode(ids)``."""
+    return open_dataset(directory).encoder

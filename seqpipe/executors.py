@@ -1,0 +1,52 @@
+"""Executors for the build: inline (one process), a local spawn pool, or any given one.
+
+The build uses only ``submit`` and ``Future.result`` / ``as_completed``, which every
+``concurrent.futures``-style engine supports (a Dask ``client.get_executor(pure=False)`` too).
+"""
+
+from __future__ import annotations
+
+import multiprocessing
+import os
+from collections.abc import Callable, Iterator
+from concurrent.futures import Executor, Future, ProcessPoolExecutor
+from contextlib import contextmanager
+from typing import Any, TypeVar
+
+T = TypeVar("T")
+
+
+class InlineExecutor(Executor):
+    """Runs each task at submit time in this process (workers=1: no pickling, no start-up)."""
+
+    def submit(self, fn: Callable[..., T], /, *args: Any, **kwargs: Any) -> Future[T]:
+        fut: Future[T] = Future()
+        try:
+            fut.set_result(fn(*args, **kwargs))
+        except BaseException as exc:  # handed to the caller through result(), like any executor
+            fut.set_exception(exc)
+        return fut
+
+
+def default_workers() -> int:
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
+@contextmanager
+def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Executor]:
+    """The given executor (left open), or one we make and shut down."""
+    if executor is not None:
+        yield executor
+        return
+    n = workers or default_workers()
+    if n == 1:
+        yield InlineExecutor()
+        return
+    pool = ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("spawn"))
+    try:
+        yield pool
+    finally:
+        pool.shutdown(wait=True)

@@ -1,0 +1,359 @@
+"""Build tasks that run on executor workers: ingest a part, count it, encode it, write a shard.
+
+Every task is a top-level function taking one small picklable task object and returning small
+metadata. Each writes its output atomically under a deterministic name, so a task that runs
+twice (a retried cluster task, a resumed build) produces the same bytes and never a torn file.
+
+Ingest output ("part", cached by a fingerprint of its inputs, see ``part_key``)::
+
+    <cache>/parts/<key>/docs.arrow    per document: hash, dedupe, pieces, chars, bytes, words
+    <cache>/parts/<key>/keys.arrow    distinct piece keys of the part (binary)
+    <cache>/parts/<key>/codes.arrow   one int32 code per piece position, documents in order
+    <cache>/parts/<key>/meta.json     read/clean statistics
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import uuid
+from collections.abc import Iterator, Sequence
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any, Final
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import xxhash
+
+from seqpipe._hashing import hash_json
+from seqpipe._parse import to_plain
+from seqpipe.errors import SeqpipeError
+from seqpipe.recipe import Recipe
+from seqpipe.shards import fsync_dir, read_shard, read_table, write_shard, write_table
+from seqpipe.tokenizers.base import Encoder, Segments
+
+PART_FORMAT: Final = 1
+HASH_TYPE: Final = pa.binary(16)
+
+
+# -- ingest ------------------------------------------------------------------------------------------
+
+def part_key(recipe: Recipe, source_index: int, file_hash: str, part: Any) -> str:
+    """Fingerprint of everything an ingested part depends on (not vocab, splits or shards)."""
+    return hash_json({
+        "format": PART_FORMAT,
+        "source": to_plain(recipe.sources[source_index]),
+        "file": file_hash,
+        "part": to_plain(part) if hasattr(part, "__dataclass_fields__") else repr(part),
+        "clean": [to_plain(s) for s in recipe.clean],
+        "tokenizer": to_plain(recipe.tokenizer),
+    })
+
+
+@dataclass(frozen=True)
+class IngestTask:
+    recipe: Recipe
+    source_index: int
+    input_index: int
+    path: str
+    part: Any
+    key: str
+    cache_dir: str
+    batch_bytes: int = 1 << 20
+
+
+@dataclass
+class PartMeta:
+    """What an ingested part reports back (also stored as meta.json)."""
+
+    key: str
+    input_index: int
+    documents: int = 0
+    pieces: int = 0
+    read: dict[str, int] = field(default_factory=dict)
+    dropped: dict[str, int] = field(default_factory=dict)
+    reused: bool = False
+
+
+def _doc_hashes(docs: pa.Array) -> np.ndarray:
+    """XXH3-128 of each document's UTF-8 bytes, as an (n, 16) uint8 array (one C call per doc)."""
+    arr = docs.cast(pa.large_string())
+    offsets = np.frombuffer(arr.buffers()[1], dtype=np.int64)[arr.offset: arr.offset + len(arr) + 1]
+    data = arr.buffers()[2]
+    view = memoryview(data) if data is not None else memoryview(b"")
+    out = np.empty((len(arr), 16), dtype=np.uint8)
+    digest = xxhash.xxh3_128_digest
+    for i in range(len(arr)):
+        out[i] = np.frombuffer(digest(view[offsets[i]: offsets[i + 1]]), dtype=np.uint8)
+    return out
+
+
+def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int]) -> tuple[pa.Array, np.ndarray | None]:
+    """Run the cleaning steps in order; return the documents and, with a dedupe step, the hash of
+    each surviving document as it was at the dedupe step."""
+    dedupe: np.ndarray | None = None
+    for i, step in enumerate(recipe.clean):
+        name = f"{i}:{step.kind}"
+        if getattr(step, "is_dedupe", False):
+            dedupe = _doc_hashes(docs)
+            continue
+        before = len(docs)
+        keep_fn = getattr(step, "keep", None)
+        if keep_fn is not None:
+            mask = np.asarray(keep_fn(docs), dtype=bool)
+            docs = docs.filter(pa.array(mask))
+            if dedupe is not None:
+                dedupe = dedupe[mask]
+        else:
+            docs = step.apply(docs)
+            if len(docs) != before and dedupe is not None:
+                raise SeqpipeError(f"clean step {name} drops documents but exposes no keep() mask")
+        if len(docs) != before:
+            dropped[name] = dropped.get(name, 0) + before - len(docs)
+    return docs, dedupe
+
+
+def _merge_segments(parts: Sequence[Segments]) -> Segments:
+    """One dictionary for several batches' segments (vectorized remap of codes)."""
+    if len(parts) == 1:
+        return parts[0]
+    if not parts:
+        return Segments(pa.array([], pa.binary()), np.zeros(0, np.int32), np.zeros(0, np.int64))
+    all_keys = pa.concat_arrays([p.keys.cast(pa.binary()) for p in parts])
+    enc = pc.dictionary_encode(all_keys)
+    remap = enc.indices.to_numpy(zero_copy_only=False).astype(np.int32)
+    base = np.cumsum([0] + [len(p.keys) for p in parts[:-1]])
+    codes = np.concatenate([remap[b + p.codes] for b, p in zip(base, parts, strict=True)])
+    lengths = np.concatenate([p.doc_lengths for p in parts])
+    return Segments(enc.dictionary.cast(pa.binary()), codes.astype(np.int32), lengths)
+
+
+def _part_dir(cache_dir: str, key: str) -> Path:
+    return Path(cache_dir) / "parts" / key
+
+
+def load_part_meta(cache_dir: str, key: str) -> PartMeta | None:
+    """The meta of a complete cached part, or None."""
+    meta = _part_dir(cache_dir, key) / "meta.json"
+    try:
+        data = json.loads(meta.read_text())
+        return PartMeta(**data)
+    except (OSError, ValueError, TypeError):
+        return None
+
+
+def ingest_part(task: IngestTask) -> PartMeta:
+    """Read one part of one input file, clean it, segment it, and store it in the cache."""
+    from seqpipe.sources.base import ReadStats
+
+    recipe = task.recipe
+    source = recipe.sources[task.source_index]
+    tokenizer = recipe.tokenizer
+    stats = ReadStats()
+    dropped: dict[str, int] = {}
+    segs: list[Segments] = []
+    doc_cols: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "chars", "bytes", "words")}
+    for batch in source.read(Path(task.path), task.part, stats, batch_bytes=task.batch_bytes):
+        docs, dedupe = _clean(recipe, batch, dropped)
+        if len(docs) == 0:
+            continue
+        docs = docs.cast(pa.large_string())
+        segs.append(tokenizer.segment(docs))
+        doc_cols["hash"].append(_doc_hashes(docs))
+        if dedupe is not None:
+            doc_cols["dedupe"].append(dedupe)
+        doc_cols["chars"].append(pc.utf8_length(docs).to_numpy(zero_copy_only=False).astype(np.int64))
+        doc_cols["bytes"].append(pc.binary_length(docs).to_numpy(zero_copy_only=False).astype(np.int64))
+        doc_cols["words"].append(pc.list_value_length(pc.utf8_split_whitespace(docs))
+                                 .to_numpy(zero_copy_only=False).astype(np.int64))
+    seg = _merge_segments(segs)
+    n = len(seg.doc_lengths)
+
+    def col(name: str, width: int | None = None) -> np.ndarray:
+        parts = doc_cols[name]
+        if parts:
+            return np.concatenate(parts)
+        return np.zeros((0, width), np.uint8) if width else np.zeros(0, np.int64)
+
+    table: dict[str, Any] = {
+        "hash": pa.FixedSizeBinaryArray.from_buffers(HASH_TYPE, n, [None, pa.py_buffer(col("hash", 16).tobytes())]),
+        "pieces": pa.array(seg.doc_lengths, pa.int64()),
+        "chars": pa.array(col("chars"), pa.int64()),
+        "bytes": pa.array(col("bytes"), pa.int64()),
+        "words": pa.array(col("words"), pa.int64()),
+    }
+    if any(getattr(s, "is_dedupe", False) for s in recipe.clean):
+        table["dedupe"] = pa.FixedSizeBinaryArray.from_buffers(
+            HASH_TYPE, n, [None, pa.py_buffer(col("dedupe", 16).tobytes())])
+    meta = PartMeta(key=task.key, input_index=task.input_index, documents=n, pieces=len(seg.codes),
+                    read={k: int(v) for k, v in asdict(stats).items()}, dropped=dropped)
+    final = _part_dir(task.cache_dir, task.key)
+    tmp = final.with_name(f".{task.key}.{os.getpid()}.{uuid.uuid4().hex[:8]}.tmp")
+    tmp.mkdir(parents=True)
+    try:
+        write_table(tmp / "docs.arrow", pa.table(table))
+        write_table(tmp / "keys.arrow", pa.table({"key": seg.keys.cast(pa.binary())}))
+        write_table(tmp / "codes.arrow", pa.table({"code": pa.array(seg.codes, pa.int32())}))
+        (tmp / "meta.json").write_text(json.dumps(asdict(meta), sort_keys=True))
+        fsync_dir(tmp)
+        try:
+            os.rename(tmp, final)
+        except OSError:
+            if load_part_meta(task.cache_dir, task.key) is None:  # not a finished twin: replace it
+                shutil.rmtree(final, ignore_errors=True)
+                os.rename(tmp, final)
+        fsync_dir(final.parent)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    return meta
+
+
+def read_part_docs(cache_dir: str, key: str) -> pa.Table:
+    return read_table(_part_dir(cache_dir, key) / "docs.arrow")
+
+
+def _piece_mask(pieces: np.ndarray, doc_mask: np.ndarray) -> np.ndarray:
+    return np.repeat(doc_mask, pieces)
+
+
+# -- counting ----------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class CountTask:
+    cache_dir: str
+    key: str
+    order: int  # corpus position of this part, for first-occurrence ranks
+    train: np.ndarray  # bool per document: kept and in the train split
+
+
+def count_part(task: CountTask) -> pa.Table:
+    """Piece counts over the part's train documents: table (key, count, first)."""
+    d = _part_dir(task.cache_dir, task.key)
+    docs = read_table(d / "docs.arrow")
+    keys = read_table(d / "keys.arrow").column("key").combine_chunks()
+    codes = read_table(d / "codes.arrow").column("code").to_numpy()
+    pieces = docs.column("pieces").to_numpy()
+    sel = codes[_piece_mask(pieces, task.train)] if len(codes) else codes
+    counts = np.bincount(sel, minlength=len(keys)).astype(np.int64)
+    present = np.flatnonzero(counts)
+    uniq, first_pos = np.unique(sel, return_index=True)
+    first = np.zeros(len(keys), np.int64)
+    first[uniq] = first_pos
+    return pa.table({
+        "key": keys.take(pa.array(present)),
+        "count": pa.array(counts[present], pa.int64()),
+        "first": pa.array((np.int64(task.order) << 40) + first[present], pa.int64()),
+    })
+
+
+# -- encoding ----------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class EncodeTask:
+    cache_dir: str
+    key: str
+    stage_dir: str
+    recipe: Recipe
+    number: int  # part number, names the output files
+    split_of_doc: np.ndarray  # int8 per document: split index, or -1 for a dropped duplicate
+    dtype: str
+
+
+_ENCODERS: dict[str, Encoder] = {}
+
+
+def _encoder(recipe: Recipe, stage_dir: str) -> Encoder:
+    enc = _ENCODERS.get(stage_dir)
+    if enc is None:
+        enc = recipe.tokenizer.load(Path(stage_dir))
+        _ENCODERS.clear()
+        _ENCODERS[stage_dir] = enc
+    return enc
+
+
+def encoded_path(stage_dir: str, number: int, split: str) -> Path:
+    return Path(stage_dir) / "encoded" / f"{number:06d}.{split}.arrow"
+
+
+def encode_part(task: EncodeTask) -> dict[str, dict[str, Any]]:
+    """Encode one part's kept documents per split, markers added; write one id file per split.
+
+    Returns per split: ``lengths`` (ids per document), ``unknown`` (unknown-id count), ``tokens``.
+    """
+    from seqpipe.recipe import SPLIT_NAMES
+
+    recipe = task.recipe
+    enc = _encoder(recipe, task.stage_dir)
+    d = _part_dir(task.cache_dir, task.key)
+    docs = read_table(d / "docs.arrow")
+    keys = read_table(d / "keys.arrow").column("key").combine_chunks()
+    codes = read_table(d / "codes.arrow").column("code").to_numpy()
+    pieces = docs.column("pieces").to_numpy()
+    values, offsets = enc.piece_ids(keys)
+    voc = enc.vocabulary
+    begin = voc.id_of("begin") if recipe.encode.begin else None
+    end = voc.id_of("end") if recipe.encode.end else None
+    unk = voc.unknown_id
+    out: dict[str, dict[str, Any]] = {}
+    for s, split in enumerate(SPLIT_NAMES):
+        dmask = task.split_of_doc == s
+        if not dmask.any():
+            continue
+        from seqpipe.tokenizers.base import expand
+
+        ids, lengths = expand(values, offsets, codes[_piece_mask(pieces, dmask)], pieces[dmask])
+        ids = _add_markers(ids, lengths, begin, end)
+        lengths = lengths + (begin is not None) + (end is not None)
+        unknown = int(np.count_nonzero(ids == unk)) if unk is not None else 0
+        write_shard(encoded_path(task.stage_dir, task.number, split), ids.astype(task.dtype))
+        out[split] = {"lengths": lengths, "unknown": unknown, "tokens": int(lengths.sum())}
+    return out
+
+
+def _add_markers(ids: np.ndarray, lengths: np.ndarray, begin: int | None, end: int | None) -> np.ndarray:
+    """Insert begin/end ids around each document (vectorized)."""
+    extra = (begin is not None) + (end is not None)
+    if not extra:
+        return ids
+    n = len(lengths)
+    new_len = lengths + extra
+    out = np.empty(int(new_len.sum()), dtype=np.int64)
+    starts = np.cumsum(new_len) - new_len
+    body = np.ones(len(out), dtype=bool)
+    if begin is not None:
+        out[starts] = begin
+        body[starts] = False
+    if end is not None:
+        out[starts + new_len - 1] = end
+        body[starts + new_len - 1] = False
+    out[body] = ids
+    _ = n
+    return out
+
+
+# -- shards ------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class ShardTask:
+    path: str
+    pieces: tuple[tuple[str, int, int], ...]  # (encoded file, start, end) in stream order
+    compression: str | None
+    dtype: str
+
+
+def write_shard_task(task: ShardTask) -> dict[str, Any]:
+    """Concatenate slices of encoded files into one shard; return its size and hashes."""
+    from seqpipe._hashing import hash_file
+
+    chunks = [read_shard(Path(p))[a:b] for p, a, b in task.pieces]
+    ids = np.concatenate(chunks).astype(task.dtype, copy=False) if chunks else np.zeros(0, task.dtype)
+    size, token_hash = write_shard(Path(task.path), ids, compression=task.compression)
+    return {"bytes": size, "token_hash": token_hash, "file_hash": hash_file(task.path), "tokens": len(ids)}
+
+
+def iter_docs_columns(table: pa.Table, names: Sequence[str]) -> Iterator[np.ndarray]:
+    for name in names:
+        yield table.column(name).to_numpy()

@@ -1,0 +1,223 @@
+"""The dataset manifest: what a build wrote, with every hash, in a strict schema of our own.
+
+``manifest.json`` (UTF-8 JSON object)::
+
+    format             "seqpipe-dataset/1"   readers refuse any other value
+    seqpipe_version    library version that wrote it
+    recipe             the canonical recipe (see Recipe.to_dict)
+    recipe_fingerprint XXH3-128 of the canonical recipe
+    inputs             [{path, size, hash}]  input files relative to the recipe directory
+    tokenizer          {kind, vocab_size, files: [{path, bytes, hash}]}
+    vocabulary         {path, bytes, hash, size}
+    dtype              "uint8" | "uint16" | "uint32"
+    splits             {name: {documents, tokens, docs: {path, bytes, hash},
+                               shards: [{path, tokens, documents, first, bytes, file_hash, token_hash}]}}
+    summary            deterministic build figures (drops, unknown-token counts, ...)
+    dataset_fingerprint XXH3-128 over all of the above (canonical JSON)
+    manifest_hash      XXH3-128 over all of the above plus dataset_fingerprint
+
+No timestamps and no absolute paths: two builds of the same recipe and inputs write the same
+bytes. Parsing validates types, limits sizes and nesting, and checks both hashes.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path, PurePosixPath
+from typing import Any, Final
+
+from seqpipe._hashing import canonical_json, hash_json
+from seqpipe.errors import ManifestError, UnsafePathError
+
+FORMAT: Final = "seqpipe-dataset/1"
+MANIFEST_NAME: Final = "manifest.json"
+MAX_MANIFEST_BYTES: Final = 64 << 20
+MAX_DEPTH: Final = 32
+HEX32: Final = frozenset("0123456789abcdef")
+DTYPES: Final = ("uint8", "uint16", "uint32", "uint64")
+TOP_KEYS: Final = ("format", "seqpipe_version", "recipe", "recipe_fingerprint", "inputs", "tokenizer",
+                   "vocabulary", "dtype", "splits", "summary", "dataset_fingerprint", "manifest_hash")
+
+
+def seal(body: dict[str, Any]) -> dict[str, Any]:
+    """Add ``dataset_fingerprint`` and ``manifest_hash`` to a manifest body."""
+    core = {k: v for k, v in body.items() if k not in ("dataset_fingerprint", "manifest_hash")}
+    out = dict(core)
+    out["dataset_fingerprint"] = hash_json(core)
+    out["manifest_hash"] = hash_json(out)
+    return out
+
+
+def dumps(manifest: dict[str, Any]) -> str:
+    """Manifest text: sorted keys, two-space indent, trailing newline (stable bytes)."""
+    return json.dumps(manifest, sort_keys=True, indent=2, ensure_ascii=True, allow_nan=False) + "\n"
+
+
+def _depth(obj: Any, level: int = 0) -> int:
+    if level > MAX_DEPTH:
+        return level
+    if isinstance(obj, dict):
+        return max([_depth(v, level + 1) for v in obj.values()], default=level + 1)
+    if isinstance(obj, list):
+        return max([_depth(v, level + 1) for v in obj], default=level + 1)
+    return level
+
+
+class _Check:
+    """Type checks that name the manifest key path."""
+
+    def __init__(self, where: str) -> None:
+        self.where = where
+
+    def fail(self, key: str, msg: str) -> ManifestError:
+        return ManifestError(f"{self.where}: {key}: {msg}", key=key)
+
+    def obj(self, v: Any, key: str, keys: tuple[str, ...]) -> dict[str, Any]:
+        if not isinstance(v, dict):
+            raise self.fail(key, f"expected an object, got {type(v).__name__}")
+        missing = [k for k in keys if k not in v]
+        extra = sorted(set(v) - set(keys))
+        if missing:
+            raise self.fail(key, f"missing key(s) {missing}")
+        if extra:
+            raise self.fail(key, f"unknown key(s) {extra}")
+        return v
+
+    def int_(self, v: Any, key: str) -> int:
+        if isinstance(v, bool) or not isinstance(v, int) or v < 0:
+            raise self.fail(key, f"expected a non-negative integer, got {v!r}"[:200])
+        return v
+
+    def hex_(self, v: Any, key: str) -> str:
+        if not isinstance(v, str) or len(v) != 32 or not set(v) <= HEX32:
+            raise self.fail(key, f"expected 32 lowercase hex digits, got {v!r}"[:200])
+        return v
+
+    def str_(self, v: Any, key: str) -> str:
+        if not isinstance(v, str):
+            raise self.fail(key, f"expected a string, got {type(v).__name__}")
+        return v
+
+    def list_(self, v: Any, key: str) -> list[Any]:
+        if not isinstance(v, list):
+            raise self.fail(key, f"expected an array, got {type(v).__name__}")
+        return v
+
+    def file_(self, v: Any, key: str, extra: tuple[str, ...] = ()) -> dict[str, Any]:
+        keys = ("path", "bytes", "hash", *extra)
+        d = self.obj(v, key, keys)
+        self.str_(d["path"], f"{key}.path")
+        self.int_(d["bytes"], f"{key}.bytes")
+        self.hex_(d["hash"], f"{key}.hash")
+        return d
+
+
+def safe_relative(directory: Path, rel: str, *, key: str = "path") -> Path:
+    """Resolve ``rel`` inside ``directory``; refuse absolute paths, '..', and symlinks leading out."""
+    pure = PurePosixPath(rel)
+    if not rel or pure.is_absolute() or "\\" in rel or ":" in rel or any(p in ("..", "") for p in pure.parts):
+        raise UnsafePathError(f"{key}: path {rel!r} must be relative and stay inside the dataset", path=rel)
+    full = directory.joinpath(*pure.parts)
+    try:
+        real = full.resolve(strict=False)
+        base = directory.resolve(strict=True)
+    except OSError as exc:
+        raise UnsafePathError(f"{key}: cannot resolve {rel!r} ({exc})", path=rel) from exc
+    if real != base and base not in real.parents:
+        raise UnsafePathError(f"{key}: {rel!r} leads outside the dataset directory (to {real})", path=rel)
+    return full
+
+
+def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
+    """Check a parsed manifest against the schema and its own hashes; return it."""
+    c = _Check(where)
+    if not isinstance(manifest, dict):
+        raise c.fail("(top)", "expected a JSON object")
+    if manifest.get("format") != FORMAT:
+        raise c.fail("format", f"this seqpipe reads {FORMAT!r}, got {manifest.get('format')!r}; "
+                               "rebuild the dataset with this version or use the seqpipe that wrote it")
+    m = c.obj(manifest, "(top)", TOP_KEYS)
+    if _depth(m) > MAX_DEPTH:
+        raise c.fail("(top)", f"nested deeper than {MAX_DEPTH} levels")
+    c.str_(m["seqpipe_version"], "seqpipe_version")
+    if not isinstance(m["recipe"], dict):
+        raise c.fail("recipe", "expected an object")
+    c.hex_(m["recipe_fingerprint"], "recipe_fingerprint")
+    if hash_json(m["recipe"]) != m["recipe_fingerprint"]:
+        raise c.fail("recipe_fingerprint", "does not match the recipe stored in the manifest")
+    for i, inp in enumerate(c.list_(m["inputs"], "inputs")):
+        d = c.obj(inp, f"inputs[{i}]", ("path", "size", "hash"))
+        c.str_(d["path"], f"inputs[{i}].path")
+        c.int_(d["size"], f"inputs[{i}].size")
+        c.hex_(d["hash"], f"inputs[{i}].hash")
+    tok = c.obj(m["tokenizer"], "tokenizer", ("kind", "vocab_size", "files"))
+    c.str_(tok["kind"], "tokenizer.kind")
+    c.int_(tok["vocab_size"], "tokenizer.vocab_size")
+    for i, f in enumerate(c.list_(tok["files"], "tokenizer.files")):
+        c.file_(f, f"tokenizer.files[{i}]")
+    voc = c.file_(m["vocabulary"], "vocabulary", ("size",))
+    c.int_(voc["size"], "vocabulary.size")
+    if m["dtype"] not in DTYPES:
+        raise c.fail("dtype", f"expected one of {list(DTYPES)}, got {m['dtype']!r}")
+    splits = m["splits"]
+    if not isinstance(splits, dict):
+        raise c.fail("splits", "expected an object")
+    for name, sp in splits.items():
+        k = f"splits.{name}"
+        d = c.obj(sp, k, ("documents", "tokens", "docs", "shards"))
+        c.int_(d["documents"], f"{k}.documents")
+        total = c.int_(d["tokens"], f"{k}.tokens")
+        c.file_(d["docs"], f"{k}.docs")
+        first = 0
+        for j, sh in enumerate(c.list_(d["shards"], f"{k}.shards")):
+            sk = f"{k}.shards[{j}]"
+            s = c.obj(sh, sk, ("path", "tokens", "documents", "first", "bytes", "file_hash", "token_hash"))
+            c.str_(s["path"], f"{sk}.path")
+            for num in ("tokens", "documents", "first", "bytes"):
+                c.int_(s[num], f"{sk}.{num}")
+            c.hex_(s["file_hash"], f"{sk}.file_hash")
+            c.hex_(s["token_hash"], f"{sk}.token_hash")
+            if s["first"] != first:
+                raise c.fail(f"{sk}.first", f"expected {first} (shards must tile the split), got {s['first']}")
+            first += s["tokens"]
+        if first != total:
+            raise c.fail(f"{k}.tokens", f"shards hold {first} tokens, split says {total}")
+    if not isinstance(m["summary"], dict):
+        raise c.fail("summary", "expected an object")
+    c.hex_(m["dataset_fingerprint"], "dataset_fingerprint")
+    c.hex_(m["manifest_hash"], "manifest_hash")
+    resealed = seal(m)
+    if resealed["dataset_fingerprint"] != m["dataset_fingerprint"]:
+        raise c.fail("dataset_fingerprint", "does not match the manifest's content (the manifest was edited)")
+    if resealed["manifest_hash"] != m["manifest_hash"]:
+        raise c.fail("manifest_hash", "does not match the manifest's content (the manifest was edited)")
+    return m
+
+
+def read_manifest(directory: Path) -> dict[str, Any]:
+    """Read, size-limit, parse and validate ``directory/manifest.json``."""
+    path = directory / MANIFEST_NAME
+    if not directory.is_dir():
+        raise ManifestError(f"{directory}: not a directory", path=str(directory))
+    if not path.is_file():
+        raise ManifestError(f"{path}: no manifest; this is not a complete seqpipe dataset "
+                            "(an interrupted build leaves none: run the build again)", path=str(path))
+    size = path.stat().st_size
+    if size > MAX_MANIFEST_BYTES:
+        raise ManifestError(f"{path}: manifest is {size} bytes, over the {MAX_MANIFEST_BYTES}-byte limit",
+                            path=str(path))
+    raw = path.read_bytes()
+    try:
+        data = json.loads(raw.decode("utf-8"), parse_constant=_refuse_constant)
+    except (UnicodeDecodeError, json.JSONDecodeError, RecursionError, ValueError) as exc:
+        raise ManifestError(f"{path}: not valid JSON ({exc})", path=str(path)) from None
+    return validate(data, str(path))
+
+
+def _refuse_constant(name: str) -> Any:
+    raise ValueError(f"{name} is not allowed")
+
+
+def content_key(manifest: dict[str, Any]) -> str:
+    """Canonical JSON of a manifest (for comparisons in tests and tools)."""
+    return canonical_json(manifest)

@@ -1,0 +1,114 @@
+"""Arrow IPC files on disk: token shards and small tables (vocabulary, documents).
+
+A shard is an Arrow IPC *file* (Columnar format spec, "IPC File Format") with
+one record batch and one column ``ids`` of an unsigned integer type. Written
+uncompressed by default so readers can memory-map it without a copy; zstd is
+optional. Every write goes to a temporary name in the same directory, is
+fsynced, then renamed into place, so a reader never sees half a file.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Final
+
+import numpy as np
+import pyarrow as pa
+
+from seqpipe._hashing import hash_array
+from seqpipe.errors import ShardCorruptError, ShardMissingError
+
+SHARD_FORMAT: Final = "1"
+ARROW_MAGIC: Final = b"ARROW1"
+
+
+def id_dtype(vocab_size: int) -> np.dtype:
+    """Smallest unsigned integer type that holds every id of the vocabulary."""
+    for dt in (np.uint8, np.uint16, np.uint32):
+        if vocab_size - 1 <= np.iinfo(dt).max:
+            return np.dtype(dt)
+    return np.dtype(np.uint64)
+
+
+def fsync_dir(path: Path) -> None:
+    """fsync a directory so a rename inside it is durable (no-op where unsupported)."""
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def _tmp_name(path: Path) -> Path:
+    return path.with_name(f".{path.name}.{os.getpid()}.tmp")
+
+
+def write_table(path: Path, table: pa.Table, *, compression: str | None = None) -> int:
+    """Write ``table`` as an Arrow IPC file atomically; return its size in bytes."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = _tmp_name(path)
+    options = pa.ipc.IpcWriteOptions(compression=compression)
+    try:
+        with pa.OSFile(str(tmp), "wb") as sink:
+            with pa.ipc.new_file(sink, table.schema, options=options) as writer:
+                writer.write_table(table, max_chunksize=max(table.num_rows, 1))
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+    fsync_dir(path.parent)
+    return path.stat().st_size
+
+
+def read_table(path: Path, *, memory_map: bool = True) -> pa.Table:
+    """Read an Arrow IPC file, turning any Arrow/OS failure into our error."""
+    if not path.is_file():
+        raise ShardMissingError(f"{path}: file is missing", path=str(path))
+    try:
+        source = pa.memory_map(str(path), "r") if memory_map else pa.OSFile(str(path), "rb")
+        reader = pa.ipc.open_file(source)
+        return reader.read_all()
+    except (pa.ArrowException, OSError, ValueError) as exc:
+        raise ShardCorruptError(f"{path}: not a readable Arrow IPC file ({exc}); "
+                                "run 'seqpipe verify' on the dataset, then rebuild it", path=str(path)) from exc
+
+
+def write_shard(path: Path, ids: np.ndarray, *, compression: str | None = None) -> tuple[int, str]:
+    """Write a token shard; return (file size, XXH3-128 of the ids' little-endian bytes)."""
+    arr = pa.array(np.ascontiguousarray(ids))
+    table = pa.table({"ids": arr}).replace_schema_metadata(
+        {b"seqpipe.table": b"shard", b"seqpipe.format": SHARD_FORMAT.encode()})
+    size = write_table(path, table, compression=compression)
+    return size, hash_array(ids)
+
+
+def read_shard(path: Path, *, dtype: np.dtype | None = None, expected_tokens: int | None = None) -> np.ndarray:
+    """The ids of a shard: a zero-copy view of the memory-mapped file when uncompressed,
+    decompressed into memory otherwise."""
+    table = read_table(path)
+    meta = table.schema.metadata or {}
+    if meta.get(b"seqpipe.table") != b"shard" or table.schema.names != ["ids"]:
+        raise ShardCorruptError(f"{path}: not a seqpipe shard (expected one column 'ids')", path=str(path))
+    col = table.column("ids")
+    if dtype is not None and col.type != pa.from_numpy_dtype(dtype):
+        raise ShardCorruptError(f"{path}: ids have type {col.type}, manifest says {dtype}", path=str(path))
+    if expected_tokens is not None and len(col) != expected_tokens:
+        raise ShardCorruptError(f"{path}: holds {len(col)} tokens, manifest says {expected_tokens}",
+                                path=str(path))
+    if col.num_chunks == 1:
+        chunk = col.chunk(0)
+        if chunk.null_count:
+            raise ShardCorruptError(f"{path}: ids contain nulls", path=str(path))
+        try:
+            return chunk.to_numpy(zero_copy_only=True)
+        except pa.ArrowInvalid:
+            return chunk.to_numpy(zero_copy_only=False)
+    return col.to_numpy()

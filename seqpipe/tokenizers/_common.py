@@ -1,0 +1,39 @@
+"""Helpers shared by the vocabulary-based tokenizer kinds."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from seqpipe.tokenizers.base import Segments
+
+
+def as_string_array(texts: Sequence[str] | pa.Array) -> pa.Array:
+    """Documents as a ``large_string`` Arrow array."""
+    if isinstance(texts, pa.ChunkedArray):
+        texts = texts.combine_chunks()
+    if isinstance(texts, pa.Array):
+        return texts.cast(pa.large_string())
+    return pa.array(list(texts), pa.large_string())
+
+
+def segments_from_tokens(flat: pa.Array, doc_lengths: np.ndarray) -> Segments:
+    """Dictionary-encode a flat token array (string or binary) into :class:`Segments`."""
+    if len(flat) == 0:
+        return Segments(pa.array([], pa.binary()), np.zeros(0, np.int32), doc_lengths.astype(np.int64))
+    enc = pc.dictionary_encode(flat)
+    keys = enc.dictionary.cast(pa.binary())
+    codes = enc.indices.to_numpy(zero_copy_only=False).astype(np.int32, copy=False)
+    return Segments(keys, codes, doc_lengths.astype(np.int64))
+
+
+def load_vocabulary_encoder(tokenizer: object, directory: Path) -> object:
+    from seqpipe.tokenizers.base import VocabEncoder, Tokenizer
+    from seqpipe.vocab import Vocabulary
+
+    assert isinstance(tokenizer, Tokenizer)
+    return VocabEncoder(tokenizer, Vocabulary.load(directory / "vocab.arrow"))

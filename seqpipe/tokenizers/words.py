@@ -1,0 +1,159 @@
+"""Word tokenizer: runs of letters/marks/digits/underscore, or single other characters.
+
+The default pattern is ours: ``[\\p{L}\\p{M}\\p{N}_]+`` (a word or number) or one character
+that is neither such a character nor whitespace (punctuation, symbols, emoji code points).
+Whitespace is Unicode whitespace as Python's ``str.isspace`` sees it (the ``\\p{Z}`` categories
+plus the ASCII/C1 separators), spelled out so RE2 and ``regex`` agree on it.
+
+For the default pattern, segmentation runs in numpy over the batch's UTF-8 bytes (see
+``_segment_default``). A custom ``pattern`` falls back to ``regex.findall`` per document; for the
+default pattern both paths give identical tokens (tested).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import ClassVar, Final
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import regex
+
+from seqpipe._parse import parse_str
+from seqpipe.errors import RecipeError
+from seqpipe.tokenizers._common import as_string_array, segments_from_tokens
+from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, VocabEncoder
+from seqpipe.vocab import Vocabulary, VocabSpec, build_vocabulary
+
+_WORD: Final = r"\p{L}\p{M}\p{N}_"
+# exactly the 29 code points for which str.isspace() is true (and Arrow's utf8 whitespace)
+_WS_PY: Final = r"\t\n\x0b\x0c\r\x1c-\x1f \x85\xa0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000"
+DEFAULT_PATTERN: Final = rf"[{_WORD}]+|[^{_WORD}{_WS_PY}]"
+
+_SPACE, _WORDCH, _OTHER = 0, 1, 2
+_IS_WORD = regex.compile(rf"[{_WORD}]")
+_IS_SPACE = regex.compile(rf"[{_WS_PY}]")
+
+
+def _classify(cp: int) -> int:
+    ch = chr(cp)
+    if _IS_SPACE.match(ch):
+        return _SPACE
+    return _WORDCH if _IS_WORD.match(ch) else _OTHER
+
+
+# class by byte value; bytes >= 0x80 are provisional and overwritten per code point
+_ASCII_CLASS: Final = np.array([_classify(c) if c < 128 else _OTHER for c in range(256)], dtype=np.uint8)
+_CLASS_CACHE: dict[int, int] = {}
+
+
+def _decode_code_points(data: np.ndarray, pos: np.ndarray) -> np.ndarray:
+    """Code point values of the multi-byte UTF-8 sequences starting at ``pos``."""
+    padded = np.concatenate([data, np.zeros(3, np.uint8)])
+    b0 = padded[pos].astype(np.uint32)
+    b1 = (padded[pos + 1] & 0x3F).astype(np.uint32)
+    b2 = (padded[pos + 2] & 0x3F).astype(np.uint32)
+    b3 = (padded[pos + 3] & 0x3F).astype(np.uint32)
+    two = ((b0 & 0x1F) << 6) | b1
+    three = ((b0 & 0x0F) << 12) | (b1 << 6) | b2
+    four = ((b0 & 0x07) << 18) | (b1 << 12) | (b2 << 6) | b3
+    return np.where(b0 < 0xE0, two, np.where(b0 < 0xF0, three, four))
+
+
+def _segment_default(texts: pa.Array) -> tuple[pa.Array, np.ndarray]:
+    """Default-pattern segmentation with numpy over the UTF-8 bytes of the whole batch.
+
+    Every byte gets its code point's class (ASCII by table; other code points through the
+    same ``regex`` classes as DEFAULT_PATTERN, once per distinct code point). Token starts are
+    marked, whitespace bytes squeezed out, and Arrow gets the squeezed buffer with the token
+    offsets: one byte-sized array per step and no Python object per token.
+    """
+    n_docs = len(texts)
+    offsets = np.frombuffer(texts.buffers()[1], dtype=np.int64)[texts.offset: texts.offset + n_docs + 1]
+    buf = texts.buffers()[2]
+    if buf is None or n_docs == 0 or offsets[-1] == offsets[0]:
+        return pa.array([], pa.large_string()), np.zeros(n_docs, np.int64)
+    data = np.frombuffer(buf, dtype=np.uint8)[offsets[0]: offsets[-1]]
+    doc_bytes = offsets - offsets[0]
+    cls = _ASCII_CLASS[data]
+    is_lead = (data & 0xC0) != 0x80
+    high = np.flatnonzero(data >= 0xC0)  # first bytes of multi-byte sequences
+    if len(high):
+        cps = _decode_code_points(data, high)
+        uniq, inverse = np.unique(cps, return_inverse=True)
+        ucls = np.fromiter((_CLASS_CACHE.setdefault(int(c), _classify(int(c))) for c in uniq),
+                           dtype=np.uint8, count=len(uniq))
+        c = ucls[inverse]
+        first = data[high]
+        cls[high] = c
+        cls[high + 1] = c
+        three = first >= 0xE0
+        cls[high[three] + 2] = c[three]
+        four = first >= 0xF0
+        cls[high[four] + 3] = c[four]
+    is_word = cls == _WORDCH
+    keep = cls != _SPACE
+    prev_word = np.empty_like(is_word)
+    prev_word[0] = False
+    prev_word[1:] = is_word[:-1]
+    nonempty = doc_bytes[:-1][doc_bytes[:-1] < len(data)]
+    prev_word[nonempty] = False  # a token never runs across a document boundary
+    starts_tok = is_lead & ((cls == _OTHER) | (is_word & ~prev_word))
+    squeezed = data[keep]
+    tok_offsets = np.flatnonzero(starts_tok[keep])
+    tok_offsets = np.append(tok_offsets, len(squeezed))
+    flat = pa.LargeStringArray.from_buffers(len(tok_offsets) - 1, pa.py_buffer(tok_offsets),
+                                            pa.py_buffer(squeezed))
+    # tokens per document: token starts between document byte offsets
+    tok_pos = np.flatnonzero(starts_tok)
+    return flat, np.diff(np.searchsorted(tok_pos, doc_bytes)).astype(np.int64)
+
+
+@dataclass(frozen=True, slots=True)
+class WordTokenizer(Tokenizer):
+    """Words by a regex pattern; decode joins tokens with ``separator``."""
+
+    kind: ClassVar[str] = "words"
+    pattern: str = DEFAULT_PATTERN
+    separator: str = " "
+
+    def __post_init__(self) -> None:
+        parse_str("pattern", self.pattern)
+        parse_str("separator", self.separator, allow_empty=True)
+        try:
+            regex.compile(self.pattern)
+        except regex.error as exc:
+            raise RecipeError("pattern", f"not a valid regular expression ({exc}): {self.pattern!r}") from None
+
+    def segment(self, texts: Sequence[str] | pa.Array) -> Segments:
+        arr = as_string_array(texts)
+        if self.pattern == DEFAULT_PATTERN:
+            flat, lengths = _segment_default(arr)
+            return segments_from_tokens(flat, lengths)
+        compiled = regex.compile(self.pattern)
+        found = [compiled.findall(t) for t in arr.to_pylist()]
+        lengths = np.fromiter((len(f) for f in found), dtype=np.int64, count=len(found))
+        flat_list = [tok for toks in found for tok in toks]
+        return segments_from_tokens(pa.array(flat_list, pa.large_string()), lengths)
+
+    def words_in(self, texts: Sequence[str]) -> int:
+        arr = as_string_array(texts)
+        return int(pc.sum(pc.list_value_length(pc.utf8_split_whitespace(arr))).as_py() or 0)
+
+    def fit(self, counts: pa.Table, spec: VocabSpec) -> Encoder:
+        return WordEncoder(self, build_vocabulary(counts, spec))
+
+    def load(self, directory: Path) -> Encoder:
+        return WordEncoder(self, Vocabulary.load(directory / "vocab.arrow"))
+
+
+class WordEncoder(VocabEncoder):
+    """Words decode joined by the tokenizer's separator (not lossless: spacing is lost)."""
+
+    tokenizer: WordTokenizer
+
+    def join(self, tokens: list[bytes]) -> str:
+        return self.tokenizer.separator.join(t.decode("utf-8", errors="replace") for t in tokens)

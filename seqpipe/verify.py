@@ -1,0 +1,155 @@
+"""Verify a built dataset: every byte of every listed file, nothing unlisted, the manifest's own
+hashes, and optionally a committed manifest or an expected fingerprint.
+
+Files are hashed in large blocks on a thread pool (hashing and reads release the GIL), so
+verification runs at about disk or page-cache speed.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+from seqpipe._hashing import hash_file
+from seqpipe.errors import DatasetError, ManifestError
+from seqpipe.manifest import MANIFEST_NAME, read_manifest, safe_relative, validate
+from seqpipe.staging import PRIVATE
+
+TOP_LEVEL_OK = {MANIFEST_NAME, PRIVATE}
+
+
+@dataclass(frozen=True)
+class Problem:
+    """One thing wrong: which file, what kind, and what differs."""
+
+    path: str
+    kind: str  # missing | truncated | corrupt | unlisted | manifest | mismatch | unsafe
+    detail: str
+
+    def __str__(self) -> str:
+        return f"{self.path}: {self.kind}: {self.detail}"
+
+
+@dataclass
+class VerifyReport:
+    directory: str
+    fingerprint: str | None = None
+    files_checked: int = 0
+    bytes_checked: int = 0
+    problems: list[Problem] = field(default_factory=list)
+
+    @property
+    def ok(self) -> bool:
+        return not self.problems
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"directory": self.directory, "ok": self.ok, "fingerprint": self.fingerprint,
+                "files_checked": self.files_checked, "bytes_checked": self.bytes_checked,
+                "problems": [asdict(p) for p in self.problems]}
+
+
+def listed_files(manifest: dict[str, Any]) -> list[dict[str, Any]]:
+    """Every file the manifest lists, as {path, bytes, hash}."""
+    out = [{"path": manifest["vocabulary"]["path"], "bytes": manifest["vocabulary"]["bytes"],
+            "hash": manifest["vocabulary"]["hash"]}]
+    out += [dict(f) for f in manifest["tokenizer"]["files"]]
+    for sp in manifest["splits"].values():
+        out.append(dict(sp["docs"]))
+        out += [{"path": s["path"], "bytes": s["bytes"], "hash": s["file_hash"]} for s in sp["shards"]]
+    return out
+
+
+def _check_file(directory: Path, entry: dict[str, Any]) -> tuple[int, Problem | None]:
+    rel = entry["path"]
+    try:
+        path = safe_relative(directory, rel)
+    except DatasetError as exc:
+        return 0, Problem(rel, "unsafe", str(exc))
+    if not path.is_file():
+        return 0, Problem(rel, "missing", "listed in the manifest but not on disk")
+    size = path.stat().st_size
+    if size != entry["bytes"]:
+        kind = "truncated" if size < entry["bytes"] else "corrupt"
+        return size, Problem(rel, kind, f"{size} bytes on disk, manifest says {entry['bytes']}")
+    digest = hash_file(path)
+    if digest != entry["hash"]:
+        return size, Problem(rel, "corrupt", f"content hash {digest}, manifest says {entry['hash']}")
+    return size, None
+
+
+def _unlisted(directory: Path, manifest: dict[str, Any], listed: set[str]) -> list[Problem]:
+    problems = []
+    allowed_dirs = {"shards", "docs"}
+    for entry in sorted(os.listdir(directory)):
+        if entry in TOP_LEVEL_OK or entry in listed or entry in allowed_dirs:
+            continue
+        problems.append(Problem(entry, "unlisted", "not part of the dataset (not in the manifest)"))
+    for top in sorted(allowed_dirs):
+        root = directory / top
+        if not root.is_dir():
+            continue
+        for dirpath, dirnames, filenames in os.walk(root):
+            dirnames.sort()
+            for name in sorted(filenames):
+                rel = Path(dirpath, name).relative_to(directory).as_posix()
+                if rel not in listed:
+                    problems.append(Problem(rel, "unlisted", "file in a dataset folder that the manifest "
+                                                             "does not list"))
+    return problems
+
+
+def _compare(manifest: dict[str, Any], committed: dict[str, Any]) -> list[Problem]:
+    """Differences between the dataset's manifest and a committed one."""
+    problems = []
+    for key in ("recipe_fingerprint", "dataset_fingerprint"):
+        if manifest[key] != committed[key]:
+            problems.append(Problem(MANIFEST_NAME, "mismatch", f"{key} {manifest[key]}, committed {committed[key]}"))
+    if manifest["vocabulary"]["hash"] != committed["vocabulary"]["hash"]:
+        problems.append(Problem(manifest["vocabulary"]["path"], "mismatch", "vocabulary differs from the committed one"))
+    mine = {f["path"]: f["hash"] for f in listed_files(manifest)}
+    theirs = {f["path"]: f["hash"] for f in listed_files(committed)}
+    for path in sorted(set(mine) | set(theirs)):
+        if path not in mine:
+            problems.append(Problem(path, "mismatch", "in the committed manifest but not in this dataset"))
+        elif path not in theirs:
+            problems.append(Problem(path, "mismatch", "in this dataset but not in the committed manifest"))
+        elif mine[path] != theirs[path]:
+            problems.append(Problem(path, "mismatch", f"hash {mine[path]}, committed {theirs[path]}"))
+    return problems
+
+
+def verify(directory: str | Path, *, against: str | Path | None = None, expect: str | None = None,
+           threads: int | None = None) -> VerifyReport:
+    """Recompute every hash of a dataset and report each problem found (never raises for them)."""
+    d = Path(directory)
+    report = VerifyReport(str(d))
+    try:
+        manifest = read_manifest(d)
+    except (ManifestError, DatasetError) as exc:
+        report.problems.append(Problem(MANIFEST_NAME, "manifest", str(exc)))
+        return report
+    report.fingerprint = manifest["dataset_fingerprint"]
+    entries = listed_files(manifest)
+    with ThreadPoolExecutor(max_workers=threads or min(8, (os.cpu_count() or 2) * 2)) as pool:
+        results = list(pool.map(lambda e: _check_file(d, e), entries))
+    for size, problem in results:
+        report.files_checked += 1
+        report.bytes_checked += size
+        if problem:
+            report.problems.append(problem)
+    report.problems += _unlisted(d, manifest, {e["path"] for e in entries})
+    if against is not None:
+        try:
+            committed = validate(json.loads(Path(against).read_text(encoding="utf-8")), str(against))
+        except (OSError, ValueError, ManifestError) as exc:
+            report.problems.append(Problem(str(against), "manifest", f"committed manifest unusable: {exc}"))
+        else:
+            report.problems += _compare(manifest, committed)
+    if expect is not None and expect.lower() != manifest["dataset_fingerprint"]:
+        report.problems.append(Problem(MANIFEST_NAME, "mismatch",
+                                       f"dataset fingerprint {manifest['dataset_fingerprint']}, expected {expect}"))
+    return report

@@ -1,0 +1,200 @@
+"""Vocabulary: reserved special tokens first, then tokens by count.
+
+Counted on the train split only. Order: specials in recipe order take ids
+0..k-1; then tokens by descending count, ties broken by code-point order of
+the token (for UTF-8 keys, byte order equals code-point order). ``min_count``
+drops rare tokens; ``max_size`` caps the whole vocabulary, specials included.
+
+Stored as an Arrow IPC file with columns ``token`` (binary), ``count``
+(int64), ``special`` (bool); row i is id i. Schema metadata records the roles.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Final
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from seqpipe._parse import parse_int, parse_str, parse_str_tuple
+from seqpipe.errors import RecipeError, ShardCorruptError, TokenizerError
+
+ROLES: Final = ("unknown", "padding", "begin", "end")
+VOCAB_FORMAT: Final = "1"
+COUNTS_SCHEMA: Final = pa.schema([("key", pa.binary()), ("count", pa.int64())])
+
+
+@dataclass(frozen=True, slots=True)
+class VocabSpec:
+    """Recipe section ``[vocab]``."""
+
+    specials: tuple[str, ...] = ("<unk>", "<pad>", "<bos>", "<eos>")
+    unknown: str = "<unk>"
+    padding: str = "<pad>"
+    begin: str = "<bos>"
+    end: str = "<eos>"
+    min_count: int = 1
+    max_size: int = 0  # 0: no cap
+
+    def __post_init__(self) -> None:
+        specials = parse_str_tuple("specials", self.specials)
+        if len(set(specials)) != len(specials):
+            raise RecipeError("specials", f"names must be distinct, got {list(specials)}")
+        object.__setattr__(self, "specials", specials)
+        for role in ROLES:
+            name = parse_str(role, getattr(self, role), allow_empty=True)
+            if name and name not in specials:
+                raise RecipeError(role, f"{name!r} is not listed in specials {list(specials)}; "
+                                        "add it there or set this role to \"\" for none")
+        parse_int("min_count", self.min_count, minimum=1)
+        parse_int("max_size", self.max_size, minimum=0)
+        if self.max_size and self.max_size <= len(specials):
+            raise RecipeError("max_size", f"expected more than the {len(specials)} specials, got {self.max_size}")
+
+
+@dataclass(frozen=True)
+class Vocabulary:
+    """id -> token bytes, with counts and special-token roles."""
+
+    tokens: pa.Array  # binary, row i = id i
+    counts: np.ndarray  # int64
+    n_special: int
+    roles: dict[str, int] = field(default_factory=dict)  # role -> id
+
+    def __len__(self) -> int:
+        return len(self.tokens)
+
+    @property
+    def unknown_id(self) -> int | None:
+        return self.roles.get("unknown")
+
+    def id_of(self, role: str) -> int | None:
+        """Id of a special role (``unknown``, ``padding``, ``begin``, ``end``), or None."""
+        return self.roles.get(role)
+
+    def token(self, token_id: int) -> bytes:
+        return bytes(self.tokens[int(token_id)].as_py())
+
+    def is_special(self, ids: np.ndarray) -> np.ndarray:
+        return np.asarray(ids) < self.n_special
+
+    def lookup(self, keys: pa.Array) -> np.ndarray:
+        """Ids of non-special tokens ``keys`` (binary); misses get the unknown id."""
+        normal = self.tokens.slice(self.n_special)
+        pos = pc.index_in(keys.cast(pa.binary()), value_set=normal)
+        ids = pos.to_numpy(zero_copy_only=False)
+        missing = pos.is_null().to_numpy(zero_copy_only=False)
+        out = np.where(missing, -1, np.nan_to_num(ids, nan=-1)).astype(np.int64)
+        out[~missing] += self.n_special
+        if missing.any():
+            unk = self.unknown_id
+            if unk is None:
+                first = keys[int(np.flatnonzero(missing)[0])].as_py()
+                raise TokenizerError(f"token {first!r} is not in the vocabulary and the recipe "
+                                     "sets no unknown token (vocab.unknown)")
+            out[missing] = unk
+        return out
+
+    def tokens_for(self, ids: Iterable[int] | np.ndarray, *, show_specials: bool = False) -> list[bytes]:
+        """Token bytes for ids; specials are dropped unless ``show_specials``."""
+        arr = np.asarray(list(ids) if not isinstance(ids, np.ndarray) else ids, dtype=np.int64)
+        if len(arr) and (arr.min() < 0 or arr.max() >= len(self)):
+            bad = int(arr[(arr < 0) | (arr >= len(self))][0])
+            raise TokenizerError(f"id {bad} is outside the vocabulary (0..{len(self) - 1})")
+        if not show_specials:
+            arr = arr[arr >= self.n_special]
+        return [bytes(b) for b in self.tokens.take(pa.array(arr, pa.int64())).to_pylist()]
+
+    # -- storage -------------------------------------------------------------
+    def to_table(self) -> pa.Table:
+        special = np.zeros(len(self), dtype=bool)
+        special[: self.n_special] = True
+        meta = {b"seqpipe.table": b"vocabulary", b"seqpipe.format": VOCAB_FORMAT.encode(),
+                b"seqpipe.roles": json.dumps(self.roles, sort_keys=True).encode()}
+        return pa.table({"token": self.tokens.cast(pa.binary()), "count": pa.array(self.counts, pa.int64()),
+                         "special": pa.array(special)}).replace_schema_metadata(meta)
+
+    def save(self, path: Path) -> None:
+        from seqpipe.shards import write_table
+
+        write_table(path, self.to_table())
+
+    @classmethod
+    def load(cls, path: Path) -> Vocabulary:
+        from seqpipe.shards import read_table
+
+        table = read_table(path)
+        meta = table.schema.metadata or {}
+        if meta.get(b"seqpipe.table") != b"vocabulary" or meta.get(b"seqpipe.format") != VOCAB_FORMAT.encode():
+            raise ShardCorruptError(f"{path}: not a seqpipe vocabulary file (format {VOCAB_FORMAT})", path=str(path))
+        try:
+            roles = {str(k): int(v) for k, v in json.loads(meta[b"seqpipe.roles"]).items()}
+            special = table.column("special").to_numpy(zero_copy_only=False)
+            tokens = table.column("token").combine_chunks()
+            counts = table.column("count").to_numpy().astype(np.int64)
+        except (KeyError, ValueError, TypeError, pa.ArrowException) as exc:
+            raise ShardCorruptError(f"{path}: malformed vocabulary file ({exc})", path=str(path)) from exc
+        n_special = int(special.sum())
+        if not special[:n_special].all() or any(not 0 <= v < n_special for v in roles.values()):
+            raise ShardCorruptError(f"{path}: malformed vocabulary file (special rows)", path=str(path))
+        return cls(tokens=tokens, counts=counts, n_special=n_special, roles=roles)
+
+
+def merge_counts(tables: Sequence[pa.Table]) -> pa.Table:
+    """Sum partial ``(key, count)`` tables with Arrow group-by (no Python Counter)."""
+    if not tables:
+        return COUNTS_SCHEMA.empty_table()
+    merged = pa.concat_tables([t.select(["key", "count"]).cast(COUNTS_SCHEMA) for t in tables])
+    out = merged.group_by("key").aggregate([("count", "sum")])
+    return out.rename_columns(["key", "count"]).cast(COUNTS_SCHEMA)
+
+
+def ordered_counts(counts: pa.Table) -> pa.Table:
+    """Counts sorted by descending count, ties by ascending key bytes."""
+    if counts.num_rows == 0:
+        return counts
+    return counts.sort_by([("count", "descending"), ("key", "ascending")])
+
+
+def specials_table(spec: VocabSpec) -> tuple[list[bytes], dict[str, int]]:
+    """The special tokens (as bytes, in id order) and their role -> id map."""
+    tokens = [s.encode("utf-8") for s in spec.specials]
+    roles = {r: spec.specials.index(getattr(spec, r)) for r in ROLES if getattr(spec, r)}
+    return tokens, roles
+
+
+def build_vocabulary(counts: pa.Table, spec: VocabSpec, *, always: Sequence[bytes] = ()) -> Vocabulary:
+    """Fix the vocabulary from corpus-wide counts (see module docstring).
+
+    ``always`` lists tokens that are kept whatever their count (e.g. all 256 bytes).
+    """
+    special_tokens, roles = specials_table(spec)
+    ordered = ordered_counts(counts)
+    keys = ordered.column("key").combine_chunks() if ordered.num_rows else pa.array([], pa.binary())
+    cnt = ordered.column("count").to_numpy() if ordered.num_rows else np.zeros(0, np.int64)
+    # a key equal to a special name is still an ordinary token of the text; keep both
+    keep = cnt >= spec.min_count
+    keys, cnt = keys.filter(pa.array(keep)), cnt[keep]
+    if always:
+        have = set(keys.to_pylist())
+        extra = [a for a in always if a not in have]
+        if extra:
+            keys = pa.concat_arrays([keys, pa.array(extra, pa.binary())])
+            cnt = np.concatenate([cnt, np.zeros(len(extra), np.int64)])
+    if spec.max_size:
+        room = spec.max_size - len(special_tokens)
+        keys, cnt = keys.slice(0, room), cnt[:room]
+    tokens = pa.concat_arrays([pa.array(special_tokens, pa.binary()), keys.cast(pa.binary())])
+    counts_all = np.concatenate([np.zeros(len(special_tokens), np.int64), cnt]).astype(np.int64)
+    return Vocabulary(tokens=tokens, counts=counts_all, n_special=len(special_tokens), roles=roles)
+
+
+def plain(spec: VocabSpec) -> dict[str, Any]:
+    from seqpipe._parse import to_plain
+
+    return to_plain(spec)  # type: ignore[no-any-return]
