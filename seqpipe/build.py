@@ -221,8 +221,7 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
             key = part_key(recipe, si, h, part)
             tasks.append(IngestTask(recipe, si, ii, str(f), part, key, str(cache)))
     build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes})
-    stage = private_dir(out) / "stage" / build_key[:16]
-    stage.mkdir(parents=True, exist_ok=True)
+    stage = _fresh_stage(out, build_key[:16])
 
     # -- ingest (cached) ------------------------------------------------------------------------
     metas: list[PartMeta | None] = [load_part_meta(str(cache), t.key) for t in tasks]
@@ -336,7 +335,6 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
             "tokens_per_word": n_tokens / words if words else 0.0,
             "documents_assigned": int(sel.sum()),
         }
-    shutil.rmtree(stage / "shards", ignore_errors=True)
     results = _run(ex, write_shard_task, shard_tasks, "writing shards", show, unit="shard")
     for (split, j), res in zip(shard_slots, results, strict=True):
         splits_out[split]["shards"][j].update(bytes=res["bytes"], file_hash=res["file_hash"],
@@ -380,6 +378,21 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     publish(out, stage, entries, MANIFEST_NAME)
     shutil.rmtree(stage, ignore_errors=True)
     return BuildResult(out, manifest, time.perf_counter() - t0, input_bytes, len(tasks), reused)
+
+
+def _fresh_stage(out: Path, name: str) -> Path:
+    """This build's staging directory: other builds' stages and torn temporary files removed,
+    shards of an interrupted run of the same build kept (they are checked before reuse)."""
+    root = private_dir(out) / "stage"
+    root.mkdir(parents=True, exist_ok=True)
+    for other in root.iterdir():
+        if other.name != name:
+            shutil.rmtree(other, ignore_errors=True)
+    stage = root / name
+    stage.mkdir(exist_ok=True)
+    for tmp in stage.rglob(".*.tmp"):
+        tmp.unlink(missing_ok=True)
+    return stage
 
 
 def _merge_in_batches(tables: Sequence[pa.Table], batch: int = 32) -> pa.Table:

@@ -28,7 +28,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import xxhash
 
-from seqpipe._hashing import hash_json
+from seqpipe._hashing import hash_array, hash_json
 from seqpipe._parse import to_plain
 from seqpipe.errors import SeqpipeError
 from seqpipe.recipe import Recipe
@@ -350,8 +350,25 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
 
     chunks = [read_shard(Path(p))[a:b] for p, a, b in task.pieces]
     ids = np.concatenate(chunks).astype(task.dtype, copy=False) if chunks else np.zeros(0, task.dtype)
-    size, token_hash = write_shard(Path(task.path), ids, compression=task.compression)
-    return {"bytes": size, "token_hash": token_hash, "file_hash": hash_file(task.path), "tokens": len(ids)}
+    target = Path(task.path)
+    want = hash_array(ids)
+    if target.exists():  # left by an interrupted run of the same build: keep it if it checks out
+        try:
+            old = read_shard(target, dtype=np.dtype(task.dtype), expected_tokens=len(ids))
+            compressed = _is_compressed(target)
+            if hash_array(old) == want and compressed == (task.compression is not None):
+                return {"bytes": target.stat().st_size, "token_hash": want, "file_hash": hash_file(target),
+                        "tokens": len(ids), "reused": True}
+        except SeqpipeError:
+            pass
+    size, token_hash = write_shard(target, ids, compression=task.compression)
+    return {"bytes": size, "token_hash": token_hash, "file_hash": hash_file(target), "tokens": len(ids),
+            "reused": False}
+
+
+def _is_compressed(path: Path) -> bool:
+    meta = read_table(path).schema.metadata or {}
+    return meta.get(b"seqpipe.compression", b"none") != b"none"
 
 
 def iter_docs_columns(table: pa.Table, names: Sequence[str]) -> Iterator[np.ndarray]:

@@ -85,7 +85,8 @@ def write_shard(path: Path, ids: np.ndarray, *, compression: str | None = None) 
     """Write a token shard; return (file size, XXH3-128 of the ids' little-endian bytes)."""
     arr = pa.array(np.ascontiguousarray(ids))
     table = pa.table({"ids": arr}).replace_schema_metadata(
-        {b"seqpipe.table": b"shard", b"seqpipe.format": SHARD_FORMAT.encode()})
+        {b"seqpipe.table": b"shard", b"seqpipe.format": SHARD_FORMAT.encode(),
+         b"seqpipe.compression": (compression or "none").encode()})
     size = write_table(path, table, compression=compression)
     return size, hash_array(ids)
 

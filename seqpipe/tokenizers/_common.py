@@ -9,6 +9,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from seqpipe.errors import TokenizerError
 from seqpipe.tokenizers.base import Segments
 
 
@@ -18,7 +19,13 @@ def as_string_array(texts: Sequence[str] | pa.Array) -> pa.Array:
         texts = texts.combine_chunks()
     if isinstance(texts, pa.Array):
         return texts.cast(pa.large_string())
-    return pa.array(list(texts), pa.large_string())
+    try:
+        return pa.array(list(texts), pa.large_string())
+    except UnicodeEncodeError as exc:
+        raise TokenizerError(f"text contains a lone surrogate ({exc.object[exc.start:exc.end]!r}); "
+                             "it has no UTF-8 form") from None
+    except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
+        raise TokenizerError(f"expected a sequence of strings ({exc})") from None
 
 
 def segments_from_tokens(flat: pa.Array, doc_lengths: np.ndarray) -> Segments:

@@ -1,0 +1,41 @@
+"""Hashes: xxHash published vectors and the canonical-JSON fingerprint rules."""
+
+from __future__ import annotations
+
+import numpy as np
+import xxhash
+
+from seqpipe._hashing import canonical_json, hash_array, hash_bytes, hash_file, hash_json
+
+
+def test_xxhash_published_vectors() -> None:
+    """The xxhash binding reproduces the published sanity vectors we rely on."""
+    # Source: xxHash repository, cli/xsum_sanity_check.c and doc/xxhash_spec.md (empty input, seed 0;
+    # single byte 0x00).
+    assert xxhash.xxh64_hexdigest(b"") == "ef46db3751d8e999"
+    assert xxhash.xxh3_64_hexdigest(b"") == "2d06800538d394c2"
+    assert xxhash.xxh3_128_hexdigest(b"") == "99aa06d3014798d86001c324468d497f"
+    assert xxhash.xxh3_64_hexdigest(b"\x00") == "c44bdff4074eecdb"
+    assert hash_bytes(b"") == "99aa06d3014798d86001c324468d497f"
+
+
+def test_array_hash_is_little_endian_and_layout_free() -> None:
+    """An id array hashes by its little-endian bytes whatever its byte order or strides."""
+    a = np.arange(1000, dtype="<u2")
+    assert hash_array(a) == hash_array(a.astype(">u2"))
+    assert hash_array(a[::2]) == hash_array(np.ascontiguousarray(a[::2]))
+    assert hash_array(a) == hash_bytes(a.tobytes())
+
+
+def test_canonical_json_ignores_key_order() -> None:
+    """Fingerprints come from sorted-key compact JSON, so dict order never matters."""
+    assert canonical_json({"b": 1, "a": [1, 2]}) == '{"a":[1,2],"b":1}'
+    assert hash_json({"b": 1, "a": 2}) == hash_json({"a": 2, "b": 1})
+
+
+def test_file_hash_equals_bytes_hash(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    """Hashing a file in blocks gives the hash of its whole content."""
+    data = np.random.default_rng(0).integers(0, 256, 3 * (1 << 20) + 17, dtype=np.uint8).tobytes()
+    p = tmp_path / "f.bin"
+    p.write_bytes(data)
+    assert hash_file(p, block=1 << 20) == hash_bytes(data)

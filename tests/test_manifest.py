@@ -1,0 +1,137 @@
+"""Manifest schema: strict version, own hashes, limits, and paths that stay inside the dataset."""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+from typing import Any
+
+import pytest
+from hypothesis import assume, given, settings
+from hypothesis import strategies as st
+
+from seqpipe._hashing import hash_json
+from seqpipe.errors import ManifestError, SeqpipeError, UnsafePathError
+from seqpipe.manifest import FORMAT, dumps, read_manifest, safe_relative, seal, validate
+
+HEX = "0" * 32
+
+
+def minimal() -> dict[str, Any]:
+    recipe = {"format": 1}
+    return seal({
+        "format": FORMAT, "seqpipe_version": "0", "recipe": recipe, "recipe_fingerprint": hash_json(recipe),
+        "inputs": [{"path": "a.txt", "size": 3, "hash": HEX}],
+        "tokenizer": {"kind": "words", "vocab_size": 5, "files": []},
+        "vocabulary": {"path": "vocab.arrow", "bytes": 10, "hash": HEX, "size": 5},
+        "dtype": "uint8",
+        "splits": {"train": {"documents": 1, "tokens": 4, "docs": {"path": "docs/train.arrow", "bytes": 1,
+                                                                    "hash": HEX},
+                             "shards": [{"path": "shards/train/000000.arrow", "tokens": 4, "documents": 1,
+                                         "first": 0, "bytes": 9, "file_hash": HEX, "token_hash": HEX}]}},
+        "summary": {},
+    })
+
+
+def test_sealed_manifest_validates() -> None:
+    """A sealed manifest passes validation and round-trips through its text form."""
+    m = minimal()
+    assert validate(json.loads(dumps(m))) == m
+
+
+@pytest.mark.parametrize("edit", [
+    lambda m: m.update(format="seqpipe-dataset/2"),
+    lambda m: m.update(extra=1),
+    lambda m: m["splits"]["train"]["shards"][0].update(tokens=5),
+    lambda m: m["splits"]["train"].update(tokens=3),
+    lambda m: m["vocabulary"].update(hash="XYZ"),
+    lambda m: m.update(dtype="float32"),
+    lambda m: m["recipe"].update(format=2),
+    lambda m: m.pop("inputs"),
+])
+def test_edits_are_refused(edit: Any) -> None:
+    """Any edit (version, unknown key, counts, hashes, types) is refused with ManifestError."""
+    m = minimal()
+    edit(m)
+    with pytest.raises(ManifestError):
+        validate(m)
+
+
+def test_resealed_edit_still_caught_by_structure() -> None:
+    """Even re-sealed, a manifest whose shards do not tile the split is refused."""
+    m = minimal()
+    m["splits"]["train"]["shards"][0]["first"] = 1
+    with pytest.raises(ManifestError, match="tile"):
+        validate(seal(m))
+
+
+def test_hand_edited_value_breaks_manifest_hash() -> None:
+    """Changing any field without resealing breaks the manifest's own hash."""
+    m = minimal()
+    m["summary"] = {"note": "edited"}
+    with pytest.raises(ManifestError, match="edited"):
+        validate(m)
+
+
+@pytest.mark.parametrize("rel", ["/etc/passwd", "../outside.arrow", "shards/../../x", "", "C:/x",
+                                 "shards\\..\\x"])
+def test_escaping_paths_are_refused(tmp_path: Path, rel: str) -> None:
+    """Absolute paths, '..', empty parts and drive/backslash forms are refused."""
+    with pytest.raises(UnsafePathError):
+        safe_relative(tmp_path, rel)
+
+
+def test_symlink_leading_outside_is_refused(tmp_path: Path) -> None:
+    """A symlink inside the dataset that points outside it is refused."""
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    (outside / "secret.arrow").write_bytes(b"x")
+    ds = tmp_path / "ds"
+    (ds / "shards").mkdir(parents=True)
+    os.symlink(outside, ds / "shards" / "train")
+    with pytest.raises(UnsafePathError, match="outside"):
+        safe_relative(ds, "shards/train/secret.arrow")
+    os.symlink(ds / "shards", ds / "inner")  # a link that stays inside is fine
+    assert safe_relative(ds, "inner") == ds / "inner"
+
+
+def test_read_manifest_limits(tmp_path: Path) -> None:
+    """Missing, non-JSON, NaN-bearing and too-deep manifests raise ManifestError."""
+    with pytest.raises(ManifestError, match="no manifest"):
+        read_manifest(tmp_path)
+    (tmp_path / "manifest.json").write_text("{not json")
+    with pytest.raises(ManifestError, match="not valid JSON"):
+        read_manifest(tmp_path)
+    (tmp_path / "manifest.json").write_text('{"format": NaN}')
+    with pytest.raises(ManifestError):
+        read_manifest(tmp_path)
+    (tmp_path / "manifest.json").write_text("[" * 100_000 + "]" * 100_000)
+    with pytest.raises(ManifestError):
+        read_manifest(tmp_path)
+
+
+JSON = st.recursive(st.none() | st.booleans() | st.integers() | st.text(max_size=8),
+                    lambda kids: st.lists(kids, max_size=4) | st.dictionaries(st.text(max_size=8), kids, max_size=4),
+                    max_leaves=30)
+
+
+@settings(max_examples=200, deadline=None)
+@given(data=JSON)
+def test_any_json_gives_manifest_or_our_error(data: Any) -> None:
+    """Arbitrary JSON either validates or raises a seqpipe error, never another exception."""
+    try:
+        validate(data)
+    except SeqpipeError:
+        pass
+
+
+@settings(max_examples=200, deadline=None)
+@given(path=st.sampled_from(["splits", "vocabulary", "tokenizer", "inputs", "summary"]), value=JSON)
+def test_mutated_sections_give_our_error(path: str, value: Any) -> None:
+    """Replacing one section of a valid manifest with junk gives ManifestError."""
+    m = minimal()
+    assume(value != m[path])
+    m[path] = value
+    with pytest.raises(ManifestError):
+        validate(m)
