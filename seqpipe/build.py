@@ -216,17 +216,21 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     inputs = [{"path": os.path.relpath(f, recipe.root).replace(os.sep, "/"), "size": sz, "hash": h}
               for (_, f), sz, h in zip(files, sizes, hashes, strict=True)]
     tasks: list[IngestTask] = []
+    weights: list[int] = []  # approximate bytes per part, for the progress bar
     for ii, ((si, f), h) in enumerate(zip(files, hashes, strict=True)):
-        for part in recipe.sources[si].plan(f, part_bytes):
+        plan = recipe.sources[si].plan(f, part_bytes)
+        for part in plan:
             key = part_key(recipe, si, h, part)
             tasks.append(IngestTask(recipe, si, ii, str(f), part, key, str(cache)))
+            weights.append(sizes[ii] // max(len(plan), 1))
     build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes})
     stage = _fresh_stage(out, build_key[:16])
 
     # -- ingest (cached) ------------------------------------------------------------------------
     metas: list[PartMeta | None] = [load_part_meta(str(cache), t.key) for t in tasks]
     todo = [i for i, m in enumerate(metas) if m is None]
-    fresh = _run(ex, ingest_part, [tasks[i] for i in todo], "reading", show)
+    fresh = _run(ex, ingest_part, [tasks[i] for i in todo], "reading", show, unit="B",
+                 weights=[weights[i] for i in todo])
     for i, m in zip(todo, fresh, strict=True):
         metas[i] = m
     parts: list[PartMeta] = [m for m in metas if m is not None]

@@ -1,0 +1,227 @@
+"""End-to-end builds: known answers, determinism, summaries, verification, bad input via the CLI."""
+
+from __future__ import annotations
+
+import json
+import os
+import random
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from seqpipe.build import build
+from seqpipe.cli import main
+from seqpipe.dataset import open_dataset
+from seqpipe.errors import EmptyCorpusError, InvalidUtf8Error, SourceMissingError
+from seqpipe.recipe import load_recipe, parse_recipe
+from seqpipe.verify import verify
+
+FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
+KNOWN = sorted(p for p in (FIXTURES / "known").iterdir() if p.is_dir())
+
+WORDS = "ferry tide dock cargo lantern rope harbour fog north south calm squall pilot ledger".split()
+
+
+def write_corpus(root: Path, files: int = 3, docs: int = 40, seed: int = 3) -> Path:
+    """A small invented corpus of paragraph documents (demo data, not a reference)."""
+    rnd = random.Random(seed)
+    (root / "logs").mkdir(parents=True, exist_ok=True)
+    for f in range(files):
+        paras = [" ".join(rnd.choice(WORDS) for _ in range(rnd.randint(3, 30))).capitalize() + "."
+                 for _ in range(docs)]
+        (root / "logs" / f"day{f}.txt").write_text("\n\n".join(paras) + "\n", encoding="utf-8")
+    return root
+
+
+RECIPE = """
+[[sources]]
+kind = "text"
+paths = "logs/*.txt"
+document = "paragraph"
+[[clean]]
+kind = "lowercase"
+[tokenizer]
+kind = "words"
+[shards]
+tokens = 500
+"""
+
+
+def files_of(d: Path) -> dict[str, bytes]:
+    return {p.relative_to(d).as_posix(): p.read_bytes() for p in sorted(d.rglob("*"))
+            if p.is_file() and ".seqpipe" not in p.parts}
+
+
+@pytest.mark.parametrize("case", KNOWN, ids=[p.name for p in KNOWN])
+def test_known_answers(case: Path, tmp_path: Path) -> None:
+    """Tiny inputs give exactly the hand-derived vocabulary, ids and document offsets."""
+    expected = json.loads((case / "expected.json").read_text())
+    res = build(load_recipe(case / "recipe.toml"), tmp_path / "out", workers=1, progress=False)
+    ds = open_dataset(res.directory)
+    assert [t.decode() for t in ds.vocabulary.tokens.to_pylist()] == expected["vocabulary"]
+    train = ds.split("train")
+    assert train.stream.slice(0, len(train.stream)).tolist() == expected["train"]
+    assert train.documents.column("start").to_pylist() == expected["doc_starts"]
+    assert train.documents.column("length").to_pylist() == expected["doc_lengths"]
+
+
+def test_lowercase_letters_only_gives_28_symbols(tmp_path: Path) -> None:
+    """Lower-casing English and replacing every non-letter with a space leaves 26 letters + space,
+    plus the unknown token: 28 (common practice, no source)."""
+    text = ("The quick ferry-pilot, Mabel Jenkins (aged 47), vexed by fog & a wizened jackdaw, "
+            "quietly logged 12 crossings!\n")
+    (tmp_path / "in.txt").write_text(text * 5)
+    recipe = parse_recipe("""
+[[sources]]
+kind = "text"
+paths = "in.txt"
+document = "line"
+[[clean]]
+kind = "lowercase"
+[[clean]]
+kind = "replace"
+pattern = "[^a-z]"
+replacement = " "
+[tokenizer]
+kind = "chars"
+[vocab]
+specials = ["<unk>"]
+padding = ""
+begin = ""
+end = ""
+[encode]
+end = false
+[splits]
+train = 1.0
+validation = 0.0
+test = 0.0
+""", tmp_path)
+    res = build(recipe, tmp_path / "out", workers=1, progress=False)
+    assert res.manifest["vocabulary"]["size"] == 28
+
+
+def test_builds_are_byte_identical_and_hashseed_free(tmp_path: Path) -> None:
+    """Two builds of one recipe are byte-identical, also under a different PYTHONHASHSEED."""
+    root = write_corpus(tmp_path / "c")
+    (root / "recipe.toml").write_text(RECIPE)
+    a = build(load_recipe(root / "recipe.toml"), tmp_path / "a", workers=1, progress=False)
+    b = build(load_recipe(root / "recipe.toml"), tmp_path / "b", workers=1, progress=False, force=True)
+    assert files_of(a.directory) == files_of(b.directory)
+    env = {**os.environ, "PYTHONHASHSEED": "12345"}
+    subprocess.run([sys.executable, "-m", "seqpipe.cli", "build", str(root / "recipe.toml"), "-o",
+                    str(tmp_path / "c2"), "--workers", "1", "--quiet"], check=True, env=env)
+    assert files_of(tmp_path / "c2") == files_of(a.directory)
+
+
+def test_summary_and_manifest_figures(tmp_path: Path) -> None:
+    """The manifest's counts add up across shards and docs tables; the summary has every split."""
+    root = write_corpus(tmp_path / "c")
+    res = build(parse_recipe(RECIPE, root), tmp_path / "out", workers=1, progress=False)
+    m = res.manifest
+    ds = open_dataset(res.directory)
+    total_docs = 0
+    for name in ("train", "validation", "test"):
+        sp = ds.split(name)
+        assert len(sp.stream) == m["splits"][name]["tokens"] == sum(s["tokens"] for s in m["splits"][name]["shards"])
+        assert sp.documents.num_rows == m["splits"][name]["documents"]
+        assert all(s["tokens"] <= 500 for s in m["splits"][name]["shards"])
+        total_docs += sp.num_documents
+    assert total_docs == 120
+    lines = "\n".join(res.summary_lines())
+    assert "train" in lines and "unknown" in lines and "tokens/word" in lines and "bytes/token" in lines
+    train = ds.split("train")
+    ends = train.documents.column("start").to_numpy() + train.documents.column("length").to_numpy() - 1
+    assert (np.asarray(train.stream.slice(0, len(train.stream)))[ends] == ds.vocabulary.id_of("end")).all()
+
+
+def test_split_assignment_is_stable_under_additions(tmp_path: Path) -> None:
+    """A document keeps its split when other documents are added or files reordered."""
+    root = write_corpus(tmp_path / "c", files=2)
+    a = open_dataset(build(parse_recipe(RECIPE, root), tmp_path / "a", workers=1, progress=False).directory)
+    write_corpus(tmp_path / "c", files=4, seed=3)  # same first two files, two more added
+    b = open_dataset(build(parse_recipe(RECIPE, root), tmp_path / "b", workers=1, progress=False).directory)
+    for name in ("validation", "test"):
+        before = set(a.split(name).documents.column("hash").to_pylist())
+        after = set(b.split(name).documents.column("hash").to_pylist())
+        assert before <= after
+
+
+def test_verify_catches_one_changed_byte(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """verify exits 0 on an untouched build and 1 after any one byte of a shard changes."""
+    root = write_corpus(tmp_path / "c")
+    res = build(parse_recipe(RECIPE, root), tmp_path / "out", workers=1, progress=False)
+    assert main(["verify", str(res.directory)]) == 0
+    shard = res.directory / res.manifest["splits"]["train"]["shards"][0]["path"]
+    raw = bytearray(shard.read_bytes())
+    raw[len(raw) // 2] ^= 0x01
+    shard.write_bytes(bytes(raw))
+    assert main(["verify", str(res.directory)]) == 1
+    out = capsys.readouterr().out
+    assert "corrupt" in out and shard.name in out
+
+
+def test_rebuild_reuses_parts_and_gives_same_dataset(tmp_path: Path) -> None:
+    """Building twice into one directory reuses every cached part and yields the same fingerprint."""
+    root = write_corpus(tmp_path / "c")
+    first = build(parse_recipe(RECIPE, root), tmp_path / "out", workers=1, progress=False)
+    again = build(parse_recipe(RECIPE, root), tmp_path / "out", workers=1, progress=False)
+    assert again.parts_reused == again.parts_total > 0
+    assert again.fingerprint == first.fingerprint
+    assert verify(again.directory).ok
+
+
+def test_empty_corpus_and_missing_files(tmp_path: Path) -> None:
+    """A corpus that cleans down to nothing, or a glob with no match, is a clear error."""
+    (tmp_path / "logs").mkdir()
+    (tmp_path / "logs" / "a.txt").write_text("tiny\n\nwee\n")
+    short = RECIPE.replace('[[clean]]\nkind = "lowercase"', '[[clean]]\nkind = "min_length"\nchars = 100')
+    with pytest.raises(EmptyCorpusError, match="no document is left"):
+        build(parse_recipe(short, tmp_path), tmp_path / "out", workers=1, progress=False)
+    with pytest.raises(SourceMissingError):
+        build(parse_recipe(RECIPE.replace("logs/*.txt", "nothing/*.txt"), tmp_path), tmp_path / "o2",
+              workers=1, progress=False)
+
+
+def test_invalid_utf8_names_file_and_offset(tmp_path: Path) -> None:
+    """Invalid UTF-8 is an error naming the file and the byte offset by default."""
+    (tmp_path / "logs").mkdir()
+    (tmp_path / "logs" / "bad.txt").write_bytes(b"good text\n\nbad \xff byte\n")
+    with pytest.raises(InvalidUtf8Error) as info:
+        build(parse_recipe(RECIPE, tmp_path), tmp_path / "out", workers=1, progress=False)
+    assert info.value.offset == 15 and "bad.txt" in str(info.value)
+    replaced = RECIPE.replace('document = "paragraph"', 'document = "paragraph"\ninvalid_utf8 = "skip"')
+    res = build(parse_recipe(replaced, tmp_path), tmp_path / "out2", workers=1, progress=False)
+    assert res.manifest["summary"]["read"]["invalid_utf8_skipped"] == 1
+
+
+@pytest.mark.parametrize(("recipe_text", "code", "needle"), [
+    ("[[sources]]\nkind = 'text'\npaths = 'logs/*.txt'\n[vocab]\nmin_cout = 2\n", 2, "did you mean 'min_count'"),
+    ("[[sources]]\nkind = 'text'\npaths = 'logs/*.txt'\n[shards]\ntokens = 'many'\n", 2, "expected an integer"),
+    ("[[sources]]\nkind = 'text'\npaths = 'nowhere/*.txt'\n", 3, "nowhere/*.txt"),
+])
+def test_cli_errors_have_codes_and_no_traceback(tmp_path: Path, recipe_text: str, code: int, needle: str) -> None:
+    """Bad recipes exit with their documented code and a one-line message, no traceback."""
+    write_corpus(tmp_path)
+    (tmp_path / "r.toml").write_text(recipe_text)
+    proc = subprocess.run([sys.executable, "-m", "seqpipe.cli", "build", str(tmp_path / "r.toml"), "-o",
+                           str(tmp_path / "out"), "--workers", "1", "--quiet"], capture_output=True, text=True)
+    assert proc.returncode == code, proc.stderr
+    assert needle in proc.stderr and "Traceback" not in proc.stderr
+
+
+def test_cli_inspect_encode_decode(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """inspect, encode and decode work on a built dataset."""
+    shutil.copytree(FIXTURES / "known" / "words-tide", tmp_path / "case")
+    assert main(["build", str(tmp_path / "case" / "recipe.toml"), "-o", str(tmp_path / "d"), "--workers", "1",
+                 "--quiet"]) == 0
+    assert main(["inspect", str(tmp_path / "d")]) == 0
+    assert "train" in capsys.readouterr().out
+    assert main(["encode", str(tmp_path / "d"), "the ferry waited"]) == 0
+    assert capsys.readouterr().out.split() == ["4", "8", "11"]
+    assert main(["decode", str(tmp_path / "d"), "4", "8", "11"]) == 0
+    assert capsys.readouterr().out.strip() == "the ferry waited"
+    assert main(["inspect", str(tmp_path / "nope")]) == 4
