@@ -37,7 +37,7 @@ def hash_array(values: np.ndarray) -> str:
     arr = np.ascontiguousarray(values)
     if arr.dtype.byteorder == ">" or (arr.dtype.byteorder == "=" and np.little_endian is False):
         arr = arr.astype(arr.dtype.newbyteorder("<"))
-    return xxhash.xxh3_128_hexdigest(memoryview(arr).cast("B"))
+    return xxhash.xxh3_128_hexdigest(arr.tobytes() if arr.ndim != 1 else arr.data.cast("B"))
 
 
 def hash_file(path: str | Path, block: int = BLOCK) -> str:

@@ -288,7 +288,7 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     shard_tasks: list[ShardTask] = []
     shard_slots: list[tuple[str, int]] = []
     per_split_docs: dict[str, pa.Table] = {}
-    S = recipe.shards.tokens
+    per_shard = recipe.shards.tokens
     compression = None if recipe.shards.compression == "none" else recipe.shards.compression
     for s, split in enumerate(SPLIT_NAMES):
         lengths_list, sources_list, hash_list, files_list = [], [], [], []
@@ -313,9 +313,9 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
         }, schema=DOCS_SCHEMA)
         # fixed-size shards over the split's stream, cut from the encoded files
         file_starts = np.cumsum([0] + [n for _, n in files_list])
-        shard_meta = []
-        for k, first in enumerate(range(0, n_tokens, S)):
-            last = min(first + S, n_tokens)
+        shard_meta: list[dict[str, Any]] = []
+        for k, first in enumerate(range(0, n_tokens, per_shard)):
+            last = min(first + per_shard, n_tokens)
             pieces = []
             for (path, n), fs in zip(files_list, file_starts[:-1], strict=True):
                 a, b = max(first, int(fs)), min(last, int(fs) + n)
@@ -353,10 +353,10 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     read_tot: dict[str, int] = {}
     dropped_tot: dict[str, int] = {}
     for m in parts:
-        for k, v in m.read.items():
-            read_tot[k] = read_tot.get(k, 0) + v
-        for k, v in m.dropped.items():
-            dropped_tot[k] = dropped_tot.get(k, 0) + v
+        for name, v in m.read.items():
+            read_tot[name] = read_tot.get(name, 0) + v
+        for name, v in m.dropped.items():
+            dropped_tot[name] = dropped_tot.get(name, 0) + v
     body = {
         "format": FORMAT,
         "seqpipe_version": __version__,

@@ -20,10 +20,10 @@ def connect(address: str) -> tuple[Any, Executor]:
     except ImportError:
         raise SeqpipeError("--dask-scheduler needs the Dask extra: pip install 'seqpipe[dask]'") from None
     try:
-        client = Client(address, timeout="20s")
+        client = Client(address, timeout="20s")  # type: ignore[no-untyped-call]
     except (OSError, TimeoutError) as exc:
         raise SeqpipeError(f"cannot reach the Dask scheduler at {address} ({exc})") from exc
-    return client, client.get_executor(pure=False)
+    return client, client.get_executor(pure=False)  # type: ignore[no-untyped-call]
 
 
 def executor_for_client(client: Any) -> Executor:

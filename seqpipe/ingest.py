@@ -368,7 +368,7 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
 
 def _is_compressed(path: Path) -> bool:
     meta = read_table(path).schema.metadata or {}
-    return meta.get(b"seqpipe.compression", b"none") != b"none"
+    return bool(meta.get(b"seqpipe.compression", b"none") != b"none")
 
 
 def iter_docs_columns(table: pa.Table, names: Sequence[str]) -> Iterator[np.ndarray]:

@@ -55,9 +55,8 @@ def write_table(path: Path, table: pa.Table, *, compression: str | None = None) 
     tmp = _tmp_name(path)
     options = pa.ipc.IpcWriteOptions(compression=compression)
     try:
-        with pa.OSFile(str(tmp), "wb") as sink:
-            with pa.ipc.new_file(sink, table.schema, options=options) as writer:
-                writer.write_table(table, max_chunksize=max(table.num_rows, 1))
+        with pa.OSFile(str(tmp), "wb") as sink, pa.ipc.new_file(sink, table.schema, options=options) as writer:
+            writer.write_table(table, max_chunksize=max(table.num_rows, 1))
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, path)
@@ -109,7 +108,9 @@ def read_shard(path: Path, *, dtype: np.dtype | None = None, expected_tokens: in
         if chunk.null_count:
             raise ShardCorruptError(f"{path}: ids contain nulls", path=str(path))
         try:
-            return chunk.to_numpy(zero_copy_only=True)
+            view: np.ndarray = chunk.to_numpy(zero_copy_only=True)
         except pa.ArrowInvalid:
-            return chunk.to_numpy(zero_copy_only=False)
-    return col.to_numpy()
+            view = chunk.to_numpy(zero_copy_only=False)
+        return view
+    joined: np.ndarray = col.to_numpy()
+    return joined

@@ -109,7 +109,8 @@ def _compare(manifest: dict[str, Any], committed: dict[str, Any]) -> list[Proble
         if manifest[key] != committed[key]:
             problems.append(Problem(MANIFEST_NAME, "mismatch", f"{key} {manifest[key]}, committed {committed[key]}"))
     if manifest["vocabulary"]["hash"] != committed["vocabulary"]["hash"]:
-        problems.append(Problem(manifest["vocabulary"]["path"], "mismatch", "vocabulary differs from the committed one"))
+        problems.append(Problem(manifest["vocabulary"]["path"], "mismatch",
+                                "vocabulary differs from the committed one"))
     mine = {f["path"]: f["hash"] for f in listed_files(manifest)}
     theirs = {f["path"]: f["hash"] for f in listed_files(committed)}
     for path in sorted(set(mine) | set(theirs)):

@@ -39,7 +39,7 @@ def segments_from_tokens(flat: pa.Array, doc_lengths: np.ndarray) -> Segments:
 
 
 def load_vocabulary_encoder(tokenizer: object, directory: Path) -> object:
-    from seqpipe.tokenizers.base import VocabEncoder, Tokenizer
+    from seqpipe.tokenizers.base import Tokenizer, VocabEncoder
     from seqpipe.vocab import Vocabulary
 
     assert isinstance(tokenizer, Tokenizer)

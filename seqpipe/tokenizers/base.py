@@ -27,7 +27,7 @@ import numpy as np
 import pyarrow as pa
 
 if TYPE_CHECKING:
-    from seqpipe.vocab import Vocabulary, VocabSpec
+    from seqpipe.vocab import VocabSpec, Vocabulary
 
 
 @dataclass(frozen=True, slots=True)

@@ -15,7 +15,7 @@ import pyarrow as pa
 
 from seqpipe.tokenizers._common import as_string_array
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, VocabEncoder
-from seqpipe.vocab import Vocabulary, VocabSpec, build_vocabulary
+from seqpipe.vocab import VocabSpec, Vocabulary, build_vocabulary
 
 _ALL_BYTES = [bytes([b]) for b in range(256)]
 

@@ -21,7 +21,7 @@ from seqpipe._parse import parse_str
 from seqpipe.errors import TokenizerError
 from seqpipe.tokenizers._common import as_string_array, segments_from_tokens
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, VocabEncoder
-from seqpipe.vocab import Vocabulary, VocabSpec, build_vocabulary
+from seqpipe.vocab import VocabSpec, Vocabulary, build_vocabulary
 
 _GRAPHEME = regex.compile(r"\X")
 

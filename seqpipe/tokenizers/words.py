@@ -26,7 +26,7 @@ from seqpipe._parse import parse_str
 from seqpipe.errors import RecipeError
 from seqpipe.tokenizers._common import as_string_array, segments_from_tokens
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, VocabEncoder
-from seqpipe.vocab import Vocabulary, VocabSpec, build_vocabulary
+from seqpipe.vocab import VocabSpec, Vocabulary, build_vocabulary
 
 _WORD: Final = r"\p{L}\p{M}\p{N}_"
 # exactly the 29 code points for which str.isspace() is true (and Arrow's utf8 whitespace)
@@ -60,7 +60,8 @@ def _decode_code_points(data: np.ndarray, pos: np.ndarray) -> np.ndarray:
     two = ((b0 & 0x1F) << 6) | b1
     three = ((b0 & 0x0F) << 12) | (b1 << 6) | b2
     four = ((b0 & 0x07) << 18) | (b1 << 12) | (b2 << 6) | b3
-    return np.where(b0 < 0xE0, two, np.where(b0 < 0xF0, three, four))
+    out: np.ndarray = np.where(b0 < 0xE0, two, np.where(b0 < 0xF0, three, four))
+    return out
 
 
 def _segment_default(texts: pa.Array) -> tuple[pa.Array, np.ndarray]:
