@@ -120,6 +120,12 @@ class Recipe:
         object.__setattr__(self, "root", Path(self.root))
         if not self.sources:
             raise RecipeError("sources", "at least one [[sources]] entry is required")
+        if getattr(self.tokenizer, "special_names", None) not in (None, self.vocab.specials):
+            # the tokenizer matches literal specials by name; the names live in [vocab]
+            import dataclasses
+
+            object.__setattr__(self, "tokenizer",
+                               dataclasses.replace(self.tokenizer, special_names=self.vocab.specials))  # type: ignore[type-var]
         dedupes = [i for i, s in enumerate(self.clean) if getattr(s, "is_dedupe", False)]
         if len(dedupes) > 1:
             raise RecipeError(f"clean[{dedupes[1]}]", "only one dedupe step is allowed")

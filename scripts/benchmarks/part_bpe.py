@@ -1,0 +1,150 @@
+"""Byte-pair encoding: training against a recount-everything trainer, encoding against the bare regex split.
+
+The text is English-like but invented: pseudo-words built from syllables with a
+fixed seed, drawn with Zipf-like frequencies into sentences and documents.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import random
+import sys
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import regex
+from common import Measure, best_time
+
+from seqpipe.tokenizers.bpe import DEFAULT_CHUNK_PATTERN, BpeEncoder, BpeTokenizer
+from seqpipe.vocab import VocabSpec
+
+ROOT = Path(__file__).resolve().parents[2]
+SPEC = VocabSpec()
+START = len(SPEC.specials) + 256  # specials + byte alphabet
+_ONSETS = ["", "b", "br", "d", "f", "g", "gl", "h", "k", "l", "m", "n", "p", "qu", "r", "s", "sk", "st", "t",
+           "th", "v", "w", "z"]
+_VOWELS = ["a", "e", "i", "o", "u", "ai", "ea", "ou", "y"]
+_CODAS = ["", "", "n", "r", "l", "s", "th", "nd", "rk", "st", "m"]
+
+
+def make_documents(size: int, seed: int = 20240611) -> list[str]:
+    """About ``size`` characters of invented English-like documents, the same for a seed."""
+    rng = random.Random(seed)
+    words = sorted({"".join(rng.choice(_ONSETS) + rng.choice(_VOWELS) + rng.choice(_CODAS)
+                            for _ in range(rng.choice((1, 1, 2, 2, 3))))
+                    for _ in range(6000)})
+    gen = np.random.default_rng(seed)
+    weights = 1.0 / np.arange(1, len(words) + 1) ** 1.07  # Zipf-like word frequencies
+    order = gen.permutation(len(words))  # frequency rank unrelated to spelling
+    n_words = size // 8  # about 8 characters per word with its space and punctuation
+    picks = gen.choice(len(words), size=n_words, p=weights / weights.sum())
+    tokens = [words[order[i]] for i in picks.tolist()]
+    docs: list[str] = []
+    pos = 0
+    while pos < n_words:
+        sentences = []
+        for _ in range(int(gen.integers(8, 30))):
+            n = int(gen.integers(4, 18))
+            sent = tokens[pos:pos + n]
+            pos += n
+            if not sent:
+                break
+            sent[0] = sent[0].capitalize()
+            if gen.random() < 0.3:
+                sent.insert(int(gen.integers(1, len(sent) + 1)), str(int(gen.integers(1, 2000))))
+            if len(sent) > 6 and gen.random() < 0.5:
+                sent[2] += ","
+            sentences.append(" ".join(sent) + str(gen.choice([".", ".", ".", "?", "!", ";"])))
+        docs.append(" ".join(sentences) + "\n")
+    return docs
+
+
+def _naive_reference() -> Callable[..., Any]:
+    # the very trainer the tests prove the fast one against, so the baseline is known to agree;
+    # the test module imports the shared contract suite beside it, as under pytest
+    tests = str(ROOT / "tests")
+    if tests not in sys.path:
+        sys.path.append(tests)
+    spec = importlib.util.spec_from_file_location("_bpe_reference", ROOT / "tests" / "test_bpe.py")
+    assert spec and spec.loader
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    naive: Callable[..., Any] = module.naive_merges
+    return naive
+
+
+def _counts(tok: BpeTokenizer, docs: list[str]) -> pa.Table:
+    seg = tok.segment(docs)
+    freq = np.bincount(seg.codes, minlength=len(seg.keys))
+    return pa.table({"key": seg.keys.cast(pa.binary()), "count": pa.array(freq, pa.int64())})
+
+
+def _symbols_after(enc: BpeEncoder, keys: pa.Array) -> list[list[bytes]]:
+    # encoding a training chunk reproduces its segmentation at that point of training (tested)
+    values, offsets = enc.piece_ids(keys)
+    tokens = [bytes(t) for t in enc.vocabulary.tokens.to_pylist()]
+    flat = [tokens[i] for i in values.tolist()]
+    return [flat[offsets[j]:offsets[j + 1]] for j in range(len(keys))]
+
+
+def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
+    """``bpe.train_vs_naive`` and ``bpe.encode_vs_regex_split``."""
+    docs = make_documents(200_000 if quick else 5_000_000)
+    text = "".join(docs)
+    n_merges = 500 if quick else 4000
+    sample = 5 if quick else 10
+    tok = BpeTokenizer(vocab_size=START + n_merges, min_pair_count=2)
+    counts = _counts(tok, docs)
+    keys = counts.column("key").combine_chunks()
+    freqs = counts.column("count").to_pylist()
+
+    fast = best_time(lambda: tok.fit(counts, SPEC))
+    enc = tok.fit(counts, SPEC)
+    if len(enc.merges) != n_merges:
+        raise RuntimeError(f"training stopped after {len(enc.merges)} of {n_merges} merges")
+
+    # The naive trainer recounts every pair each merge; its cost per merge falls as chunks
+    # shrink, so it is timed for `sample` merges at five points of training and integrated.
+    naive = _naive_reference()
+    points = [0, n_merges // 4, n_merges // 2, 3 * n_merges // 4, n_merges - sample]
+    per_merge = []
+    for m in points:
+        state = BpeTokenizer(vocab_size=START + m, min_pair_count=2).fit(counts, SPEC)
+        words = _symbols_after(state, keys)
+        t0 = time.perf_counter()
+        got, _ = naive(words, freqs, 0, sample, 2)
+        per_merge.append((time.perf_counter() - t0) / sample)
+        v = enc.vocabulary
+        if got != [(v.token(a), v.token(b)) for a, b, _ in enc.merges[m:m + sample]]:
+            raise RuntimeError(f"naive and fast trainers disagree after {m} merges")
+    naive_total = float(np.trapezoid(per_merge, points) + per_merge[-1] * sample)
+    yield Measure(
+        "bpe.train_vs_naive", naive_total / fast, 20,
+        f"({n_merges} merges on {len(text) / 1e6:.1f} MB, {len(keys)} distinct chunks: fast {fast:.2f} s best of 3; "
+        f"naive {naive_total:.1f} s extrapolated from {sample} merges timed at each of {points})")
+
+    pattern = regex.compile(DEFAULT_CHUNK_PATTERN)
+    split = best_time(lambda: pattern.findall(text))
+
+    def encode_all(encoder: BpeEncoder, *, empty_cache: bool = False) -> None:
+        if empty_cache:
+            encoder._cache.clear()  # as if loaded from disk: every distinct chunk is merged once
+        for i in range(0, len(docs), 256):  # batches, as a build encodes
+            encoder.encode_batch(docs[i:i + 256])
+
+    empty = best_time(lambda: encode_all(enc, empty_cache=True))
+    enc = tok.fit(counts, SPEC)  # the state a build encodes with: its chunk cache as training left it
+    after = best_time(lambda: encode_all(enc))
+    ids, _ = enc.encode_batch(docs)
+    if enc.decode(ids) != text:
+        raise RuntimeError("encode/decode did not round-trip the benchmark text")
+    yield Measure(
+        "bpe.encode_vs_regex_split", split / after, 0.25,
+        f"(encoding the training text after training, batches of 256 docs: {len(text) / after / 1e6:.1f} MB/s; "
+        f"findall over the text {len(text) / split / 1e6:.1f} MB/s; from an empty chunk cache "
+        f"{len(text) / empty / 1e6:.1f} MB/s, ratio {split / empty:.2f}; {len(ids) / len(text.encode()):.3f} "
+        "tokens/byte)")

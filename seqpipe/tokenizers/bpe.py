@@ -1,0 +1,405 @@
+"""Byte-pair encoding tokenizer (Sennrich, Haddow & Birch, ACL 2016).
+
+Text is first cut into *chunks* with a Unicode-aware regular expression
+(words with their leading space, numbers, punctuation runs, whitespace runs);
+the chunks of a document always concatenate back to the document. Merges are
+learned over the distinct chunks of the train split (see ``_bpe_train``) and
+applied inside each chunk, never across chunks.
+
+Two bases:
+
+* ``bytes``: the alphabet is all 256 byte values, so any text encodes and
+  ``decode(encode(s)) == s`` exactly (NUL, emoji and combining marks included).
+* ``chars``: the alphabet is the characters seen in training, in code-point
+  order, plus the ``end_of_word`` marker if set (appended as the last symbol of
+  every chunk). A character never seen in training encodes as the unknown id.
+  Decoding drops a marker that ends a token, so text round-trips exactly
+  unless it contains unseen characters or the marker string itself.
+
+Policy for unencodable text: a string holding a lone surrogate (e.g.
+``"\\ud800"``) has no UTF-8 form and raises :class:`TokenizerError`.
+
+The learned state is stored as ``tokenizer.arrow``: one row per merge with
+columns ``rank``, ``left``, ``right``, ``merged`` (ids) and ``token`` (bytes of
+the merged id); schema metadata holds the tokenizer parameters as canonical
+JSON. The vocabulary itself lives in ``vocab.arrow`` beside it.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import itertools
+import json
+from collections.abc import Sequence
+from dataclasses import dataclass
+from functools import lru_cache
+from pathlib import Path
+from typing import Any, ClassVar, Final
+
+import numpy as np
+import pyarrow as pa
+import regex
+
+from seqpipe._hashing import canonical_json
+from seqpipe._parse import parse_bool, parse_int, parse_str, parse_str_tuple, to_plain
+from seqpipe.errors import RecipeError, ShardCorruptError, TokenizerError
+from seqpipe.shards import read_table, write_table
+from seqpipe.tokenizers._bpe_train import (
+    apply_merges,
+    byte_symbols,
+    char_symbols,
+    learn,
+    rank_table,
+    read_counts,
+)
+from seqpipe.tokenizers._common import segments_from_tokens
+from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, expand
+from seqpipe.vocab import VocabSpec, Vocabulary, specials_table
+
+# One alternative per chunk class; a space stays with the word, number or
+# punctuation run after it, and a whitespace run leaves its last space to a
+# following word so " word" is learned once rather than once per indentation.
+DEFAULT_CHUNK_PATTERN: Final = (
+    r" ?[\p{L}\p{M}]+(?:['\u2019][\p{L}\p{M}]+)*"  # word, inner apostrophes kept
+    r"| ?\p{N}+"  # number
+    r"| ?[^\s\p{L}\p{M}\p{N}]+"  # punctuation / symbol run
+    r"|\s+(?= \S)"  # whitespace run before a spaced word
+    r"|\s+"  # any other whitespace run
+)
+DEFAULT_SPECIALS: Final = VocabSpec().specials
+MERGES_FILE: Final = "tokenizer.arrow"
+MERGES_FORMAT: Final = "1"
+MERGES_SCHEMA: Final = pa.schema([("rank", pa.int32()), ("left", pa.int32()), ("right", pa.int32()),
+                                  ("merged", pa.int32()), ("token", pa.binary())])
+# Distinct chunks whose ids are remembered; a corpus's frequent chunks fit many
+# times over, and a full cache is simply emptied (cheaper than per-entry aging).
+CACHE_LIMIT: Final = 200_000
+
+
+@lru_cache(maxsize=16)
+def _chunker(pattern: str) -> Any:
+    # the fallback alternative takes any character the pattern skips, so chunks
+    # always cover the text and byte-mode decoding stays exact
+    return regex.compile(f"(?:{pattern})|(?s:.)")
+
+
+@lru_cache(maxsize=16)
+def _special_splitter(names: tuple[str, ...]) -> Any:
+    # longest first, so a name that starts another name cannot shadow it
+    alternatives = "|".join(regex.escape(n) for n in sorted(names, key=len, reverse=True))
+    return regex.compile(f"({alternatives})")
+
+
+def _surrogate_error(texts: Sequence[str]) -> TokenizerError:
+    for d, text in enumerate(texts):
+        try:
+            text.encode("utf-8")
+        except UnicodeEncodeError as exc:
+            return TokenizerError(
+                f"document {d}, character {exc.start}: {text[exc.start]!r} is a lone surrogate and has no "
+                "UTF-8 form; repair the text (or decode the source with errors='replace') first",
+                document=d, offset=exc.start)
+    return TokenizerError("text cannot be encoded as UTF-8")
+
+
+@dataclass(frozen=True, slots=True)
+class BpeTokenizer(Tokenizer):
+    """Recipe ``[tokenizer] kind = "bpe"``: byte-pair encoding over regex chunks.
+
+    ``vocab_size`` is the target size of the whole vocabulary (specials, base
+    alphabet and merges); training also stops when no pair occurs at least
+    ``min_pair_count`` times. ``vocab.max_size``, when set, caps it further.
+    With ``literal_specials``, the names in ``special_names`` (which must equal
+    ``vocab.specials``) are cut out of the text as their own chunks and encode
+    as their reserved ids; otherwise they are ordinary text.
+    """
+
+    kind: ClassVar[str] = "bpe"
+
+    base: str = "bytes"
+    end_of_word: str = ""
+    vocab_size: int = 8000
+    min_pair_count: int = 2
+    chunk_pattern: str = DEFAULT_CHUNK_PATTERN
+    literal_specials: bool = False
+    special_names: tuple[str, ...] = DEFAULT_SPECIALS
+
+    def __post_init__(self) -> None:
+        parse_str("base", self.base, choices=("bytes", "chars"))
+        parse_str("end_of_word", self.end_of_word, allow_empty=True)
+        if self.end_of_word and self.base != "chars":
+            raise RecipeError("end_of_word", f"only applies to base = 'chars', got {self.end_of_word!r} "
+                                             f"with base = {self.base!r}")
+        parse_int("vocab_size", self.vocab_size, minimum=2)
+        parse_int("min_pair_count", self.min_pair_count, minimum=1)
+        parse_str("chunk_pattern", self.chunk_pattern)
+        try:
+            compiled = _chunker(self.chunk_pattern)
+        except (regex.error, ValueError, TypeError) as exc:
+            raise RecipeError("chunk_pattern", f"not a valid regular expression ({exc}): "
+                                               f"{self.chunk_pattern!r}") from exc
+        if compiled.groups:
+            # findall would return the groups instead of whole chunks
+            raise RecipeError("chunk_pattern",
+                              f"use non-capturing groups (?:...), got {self.chunk_pattern!r}")
+        parse_bool("literal_specials", self.literal_specials)
+        names = parse_str_tuple("special_names", self.special_names)
+        if len(set(names)) != len(names):
+            raise RecipeError("special_names", f"names must be distinct, got {list(names)}")
+        object.__setattr__(self, "special_names", names)
+
+    # -- segmenting ------------------------------------------------------------
+    def segment(self, texts: Sequence[str]) -> Segments:
+        """Cut each document into chunks; keys are the distinct chunks' UTF-8 bytes."""
+        if isinstance(texts, (pa.Array, pa.ChunkedArray)):
+            texts = texts.to_pylist()
+        chunker = _chunker(self.chunk_pattern)
+        splitter = (_special_splitter(self.special_names)
+                    if self.literal_specials and self.special_names else None)
+        flat: list[str] = []
+        lengths = np.empty(len(texts), dtype=np.int64)
+        for d, text in enumerate(texts):
+            if splitter is None:
+                chunks = chunker.findall(text)
+            else:
+                chunks = []
+                for j, part in enumerate(splitter.split(text)):
+                    if j % 2:
+                        chunks.append(part)  # a special name, kept whole
+                    elif part:
+                        chunks.extend(chunker.findall(part))
+            if not all(chunks):  # a pattern that can match empty text
+                chunks = [c for c in chunks if c]
+            lengths[d] = len(chunks)
+            flat.extend(chunks)
+        try:
+            array = pa.array(flat, pa.large_string())
+        except (UnicodeEncodeError, pa.ArrowException) as exc:
+            raise _surrogate_error(texts) from exc
+        return segments_from_tokens(array, lengths)
+
+    # -- training --------------------------------------------------------------
+    def fit(self, counts: pa.Table, spec: VocabSpec) -> BpeEncoder:
+        """Learn merges from distinct-chunk counts (rows in corpus first-occurrence order).
+
+        Each step merges the most frequent adjacent pair; among pairs of equal
+        count, the one whose first occurrence is earliest in corpus order wins
+        (chunk row, then position within the chunk). The result does not depend
+        on ``PYTHONHASHSEED``.
+        """
+        if self.literal_specials and self.special_names != spec.specials:
+            raise RecipeError("special_names", f"with literal_specials these must equal vocab.specials "
+                                               f"{list(spec.specials)}, got {list(self.special_names)}")
+        keys, freqs = read_counts(counts)
+        if self.literal_specials:
+            reserved = {n.encode("utf-8") for n in self.special_names}
+            kept = [i for i, k in enumerate(keys) if k not in reserved]
+            keys, freqs = [keys[i] for i in kept], freqs[kept]
+        special_tokens, roles = specials_table(spec)
+        n_special = len(special_tokens)
+        if self.base == "bytes":
+            alphabet, alpha_counts, words = byte_symbols(keys, freqs, n_special)
+        else:
+            alphabet, alpha_counts, words = char_symbols(keys, freqs, n_special, self.end_of_word)
+        limit = min(self.vocab_size, spec.max_size) if spec.max_size else self.vocab_size
+        if limit < n_special + len(alphabet):
+            need = n_special + len(alphabet)
+            raise RecipeError("vocab_size", f"expected at least {need} ({n_special} specials + "
+                                            f"{len(alphabet)} base symbols), got {limit}")
+        tokens = [*special_tokens, *alphabet]
+        learned = learn(words, freqs.tolist(), tokens, limit=limit, min_count=self.min_pair_count)
+        vocabulary = Vocabulary(
+            tokens=pa.array(learned.tokens, pa.binary()),
+            counts=np.concatenate([np.zeros(n_special, np.int64), alpha_counts,
+                                    np.array(learned.merge_counts, np.int64)]),
+            n_special=n_special, roles=roles)
+        encoder = BpeEncoder(self, vocabulary, learned.merges, alphabet_size=len(alphabet))
+        # training already segmented every train chunk: keep the most frequent as cache entries,
+        # so encoding the train split right after fitting is lookups only
+        for i in np.argsort(-freqs, kind="stable")[:CACHE_LIMIT].tolist():
+            encoder._cache[keys[i]] = tuple(learned.words[i])
+        return encoder
+
+    # -- storage ---------------------------------------------------------------
+    def load(self, directory: Path) -> BpeEncoder:
+        """The encoder stored in ``directory`` (``vocab.arrow`` + ``tokenizer.arrow``), validated."""
+        vocabulary = Vocabulary.load(directory / "vocab.arrow")
+        path = directory / MERGES_FILE
+        table = read_table(path)
+
+        def corrupt(why: str) -> ShardCorruptError:
+            return ShardCorruptError(f"{path}: {why}; rebuild the dataset", path=str(path))
+
+        meta = table.schema.metadata or {}
+        if (meta.get(b"seqpipe.table") != b"bpe-merges"
+                or meta.get(b"seqpipe.format") != MERGES_FORMAT.encode()):
+            raise corrupt(f"not a seqpipe byte-pair merge table (format {MERGES_FORMAT})")
+        try:
+            stored = json.loads(meta[b"seqpipe.bpe"])
+            alphabet_size = int(stored["alphabet_size"])
+        except (KeyError, ValueError, TypeError) as exc:
+            raise corrupt(f"unreadable tokenizer parameters ({exc})") from exc
+        mine = self._params(alphabet_size, vocabulary.n_special)
+        for key in sorted(set(mine) | set(stored)):
+            if key != "special_names" and stored.get(key) != mine.get(key):
+                raise corrupt(f"written with {key} = {stored.get(key)!r}, "
+                              f"but the recipe says {mine.get(key)!r}")
+        if not table.schema.equals(MERGES_SCHEMA, check_metadata=False):
+            raise corrupt(f"expected schema {MERGES_SCHEMA.to_string(show_schema_metadata=False)!r}, "
+                          f"got {table.schema.to_string(show_schema_metadata=False)!r}")
+        if any(table.column(n).null_count for n in MERGES_SCHEMA.names):
+            raise corrupt("merge table holds nulls")
+        merges = _check_merges(table, vocabulary, alphabet_size, self, corrupt)
+        tokenizer = self
+        if self.literal_specials:
+            names = tuple(vocabulary.token(i).decode("utf-8", errors="replace")
+                          for i in range(vocabulary.n_special))
+            tokenizer = dataclasses.replace(self, special_names=names)
+        return BpeEncoder(tokenizer, vocabulary, merges, alphabet_size=alphabet_size)
+
+    def _params(self, alphabet_size: int, n_special: int) -> dict[str, Any]:
+        plain: dict[str, Any] = to_plain(self)
+        return {**plain, "alphabet_size": alphabet_size, "n_special": n_special}
+
+
+def _check_merges(table: pa.Table, vocabulary: Vocabulary, alphabet_size: int, tokenizer: BpeTokenizer,
+                  corrupt: Any) -> list[tuple[int, int, int]]:
+    """Merges of a stored table, each checked against the vocabulary beside it."""
+    n_special = vocabulary.n_special
+    tokens = [bytes(t) for t in vocabulary.tokens.to_pylist()]
+    first_new = n_special + alphabet_size
+    if len(tokens) < first_new:
+        raise corrupt(f"vocabulary has {len(tokens)} tokens, fewer than specials + alphabet ({first_new})")
+    base = tokens[n_special:first_new]
+    if tokenizer.base == "bytes":
+        if base != [bytes([b]) for b in range(256)]:
+            raise corrupt("vocabulary rows after the specials are not the 256 byte values in order")
+    else:
+        marker = tokenizer.end_of_word.encode("utf-8")
+        chars = base[:-1] if marker else base
+        if marker and (not base or base[-1] != marker):
+            raise corrupt(f"base alphabet does not end with the marker {marker!r}")
+        try:
+            points = [ord(c.decode("utf-8")) for c in chars]
+        except (UnicodeDecodeError, TypeError) as exc:
+            raise corrupt("base alphabet entries are not single characters") from exc
+        if any(a >= b for a, b in itertools.pairwise(points)):
+            raise corrupt("base alphabet is not in ascending code-point order")
+    ranks = table.column("rank").to_pylist()
+    rows = zip(table.column("left").to_pylist(), table.column("right").to_pylist(),
+               table.column("merged").to_pylist(), table.column("token").to_pylist(), strict=True)
+    if ranks != list(range(len(ranks))):
+        raise corrupt("ranks are not 0, 1, 2, ... in row order")
+    if first_new + len(ranks) != len(tokens):
+        raise corrupt(f"{len(ranks)} merges after {first_new} base ids do not make the "
+                      f"vocabulary's {len(tokens)} tokens")
+    merges: list[tuple[int, int, int]] = []
+    for r, (a, b, z, tok) in enumerate(rows):
+        # merge r makes id first_new + r out of ids that existed before it
+        if z != first_new + r or not (n_special <= a < z and n_special <= b < z):
+            raise corrupt(f"merge {r} ({a}, {b} -> {z}) does not join earlier ids into id {first_new + r}")
+        if tok != tokens[a] + tokens[b] or tokens[z] != tok:
+            raise corrupt(f"merge {r} does not match the vocabulary")
+        merges.append((a, b, z))
+    if len({(a, b) for a, b, _ in merges}) != len(merges):
+        raise corrupt("a pair is merged twice")
+    return merges
+
+
+class BpeEncoder(Encoder):
+    """A trained byte-pair encoding: merges by rank, applied per distinct chunk with a cache."""
+
+    def __init__(self, tokenizer: BpeTokenizer, vocabulary: Vocabulary,
+                 merges: Sequence[tuple[int, int, int]], *, alphabet_size: int) -> None:
+        self.tokenizer = tokenizer
+        self.vocabulary = vocabulary
+        self.merges = list(merges)
+        self.alphabet_size = alphabet_size
+        self._bpe = tokenizer
+        self._ranks = rank_table(self.merges)
+        self._cache: dict[bytes, tuple[int, ...]] = {}
+        n_special = vocabulary.n_special
+        tokens = [bytes(t) for t in vocabulary.tokens.to_pylist()]
+        marker = tokenizer.end_of_word.encode("utf-8")
+        self._char_id: dict[str, int] = {}
+        self._tail: list[int] = []
+        if tokenizer.base == "chars":
+            n_chars = alphabet_size - bool(marker)
+            self._char_id = {tokens[i].decode("utf-8"): i for i in range(n_special, n_special + n_chars)}
+            self._tail = [n_special + n_chars] if marker else []
+        self._special_id = ({tokens[i]: i for i in range(n_special)} if tokenizer.literal_specials else {})
+        # decode table: the bytes each id prints as (a token-final marker prints as nothing)
+        shown = [t[: -len(marker)] if marker and i >= n_special and t.endswith(marker) else t
+                 for i, t in enumerate(tokens)]
+        self._shown = np.frombuffer(b"".join(shown), dtype=np.uint8).astype(np.int64)
+        self._shown_offsets = np.concatenate([[0], np.cumsum([len(t) for t in shown])]).astype(np.int64)
+
+    def _symbols(self, key: bytes) -> list[int]:
+        if self._bpe.base == "bytes":
+            n_special = self.vocabulary.n_special
+            return [n_special + b for b in key]
+        unknown = self.vocabulary.unknown_id
+        out: list[int] = []
+        for ch in key.decode("utf-8"):
+            sid = self._char_id.get(ch, unknown)
+            if sid is None:
+                raise TokenizerError(f"character {ch!r} was not seen in training and the recipe sets no "
+                                     "unknown token (vocab.unknown)")
+            out.append(sid)
+        return out + self._tail
+
+    def chunk_ids(self, key: bytes) -> tuple[int, ...]:
+        """Ids of one chunk (cached)."""
+        ids = self._cache.get(key)
+        if ids is None:
+            special = self._special_id.get(key)
+            ids = (special,) if special is not None else tuple(apply_merges(self._symbols(key), self._ranks))
+            if len(self._cache) >= CACHE_LIMIT:
+                self._cache.clear()
+            self._cache[key] = ids
+        return ids
+
+    def piece_ids(self, keys: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+        runs = [self.chunk_ids(k) for k in keys.to_pylist()]
+        lengths = np.fromiter(map(len, runs), dtype=np.int64, count=len(runs))
+        offsets = np.zeros(len(runs) + 1, dtype=np.int64)
+        np.cumsum(lengths, out=offsets[1:])
+        values = np.fromiter(itertools.chain.from_iterable(runs), dtype=np.int64, count=int(offsets[-1]))
+        return values, offsets
+
+    def decode(self, ids: Sequence[int] | np.ndarray, *, show_specials: bool = False) -> str:
+        """Text of ``ids``: token bytes joined and read as UTF-8 (invalid sequences, possible
+        only for id runs no text encodes to, become U+FFFD). Specials print as their names
+        when ``show_specials``, else nothing."""
+        arr = np.asarray(ids, dtype=np.int64).ravel()
+        size = len(self.vocabulary)
+        if len(arr) and (arr.min() < 0 or arr.max() >= size):
+            bad = int(arr[(arr < 0) | (arr >= size)][0])
+            raise TokenizerError(f"id {bad} is outside the vocabulary (0..{size - 1})")
+        if not show_specials:
+            arr = arr[arr >= self.vocabulary.n_special]
+        if not len(arr):
+            return ""
+        flat, _ = expand(self._shown, self._shown_offsets, arr, np.array([len(arr)], dtype=np.int64))
+        return flat.astype(np.uint8).tobytes().decode("utf-8", errors="replace")
+
+    def save(self, directory: Path) -> list[str]:
+        """Write ``tokenizer.arrow`` (merges + parameters) into ``directory``."""
+        tokens = self.vocabulary.tokens
+        left, right, merged = ([m[k] for m in self.merges] for k in range(3))
+        table = pa.table({
+            "rank": pa.array(range(len(self.merges)), pa.int32()),
+            "left": pa.array(left, pa.int32()), "right": pa.array(right, pa.int32()),
+            "merged": pa.array(merged, pa.int32()),
+            "token": tokens.take(pa.array(merged, pa.int64())).cast(pa.binary()),
+        }, schema=MERGES_SCHEMA)
+        params = self._bpe._params(self.alphabet_size, self.vocabulary.n_special)
+        table = table.replace_schema_metadata({
+            b"seqpipe.table": b"bpe-merges", b"seqpipe.format": MERGES_FORMAT.encode(),
+            b"seqpipe.bpe": canonical_json(params).encode("ascii")})
+        write_table(directory / MERGES_FILE, table)
+        return [MERGES_FILE]
+
+    def describe(self) -> dict[str, Any]:
+        return {"kind": self._bpe.kind, "vocab_size": len(self.vocabulary), "base": self._bpe.base,
+                "merges": len(self.merges), "alphabet_size": self.alphabet_size}

@@ -1,0 +1,512 @@
+"""Byte-pair encoding tokenizer: training rule, encoding, exact decoding, storage."""
+
+from __future__ import annotations
+
+import itertools
+import os
+import subprocess
+import sys
+from pathlib import Path
+from typing import Any, ClassVar
+
+import numpy as np
+import pyarrow as pa
+import pytest
+from hypothesis import HealthCheck, example, given, settings
+from hypothesis import strategies as st
+from test_tokenizers import TokenizerContract  # the shared suite (tests/ is on sys.path under pytest)
+
+from seqpipe._parse import section, to_plain
+from seqpipe.errors import RecipeError, ShardCorruptError, TokenizerError
+from seqpipe.shards import write_table
+from seqpipe.tokenizers import bpe as bpe_module
+from seqpipe.tokenizers import parse_tokenizer
+from seqpipe.tokenizers.bpe import BpeEncoder, BpeTokenizer
+from seqpipe.vocab import VocabSpec
+
+SPEC = VocabSpec()
+N_SPECIAL = len(SPEC.specials)
+
+# Invented scenario for training text: the harbour log of a ferry on the (made-up) Tessel Reach.
+LOG = (
+    "The ferry Marrow left Quill Point at dawn with 14 crates of saltfern and 3 passengers.\n"
+    "Wind from the north-east, 12 knots; the harbourmaster's lamp was still lit.\n"
+    "At Tessel Reach the pilot, Odra Venn, took the wheel — she'd sailed it 40 years.\n"
+    "Cargo: saltfern, saltfern, lamp oil (2 casks), one crate of café beans, "
+    "and a parcel marked 'naïve glassware' 😀.\n"
+    "The Marrow returned at dusk; the lamp at Quill Point was lit again.\n"
+) * 3
+
+
+def counts_table(items: list[tuple[bytes, int]]) -> pa.Table:
+    """A distinct-chunk count table in the given (corpus) order, as the build supplies it."""
+    return pa.table({"key": pa.array([k for k, _ in items], pa.binary()),
+                     "count": pa.array([c for _, c in items], pa.int64())})
+
+
+def counts_from_texts(tok: BpeTokenizer, texts: list[str]) -> pa.Table:
+    """Chunk counts of texts in first-occurrence order (what the build computes)."""
+    seg = tok.segment(texts)
+    freq = np.bincount(seg.codes, minlength=len(seg.keys))
+    return pa.table({"key": seg.keys.cast(pa.binary()), "count": pa.array(freq, pa.int64())})
+
+
+def merge_strings(enc: BpeEncoder) -> list[str]:
+    """The merges as 'left right' strings of token text."""
+    v = enc.vocabulary
+    return [f"{v.token(a).decode()} {v.token(b).decode()}" for a, b, _ in enc.merges]
+
+
+def tokens_of(enc: BpeEncoder, text: str) -> list[bytes]:
+    """Token bytes of the encoding of ``text``."""
+    return [enc.vocabulary.token(int(i)) for i in enc.encode(text)]
+
+
+# -- a deliberately naive reference trainer ------------------------------------------------------
+def naive_merges(words: list[list[bytes]], freqs: list[int], start_size: int, limit: int,
+                 min_count: int) -> tuple[list[tuple[bytes, bytes]], list[list[bytes]]]:
+    """Sennrich et al. (2016) Algorithm 1: recount every pair after every merge.
+
+    Symbols are byte strings, as in the paper (so it would also catch a merge that spells an
+    existing token a second way, which the id-based trainer would keep as a distinct token).
+    Ties: the pair seen first when scanning chunks in order, positions left to right (a dict
+    keeps first-insertion order and ``max`` returns the first maximal key).
+    """
+    symbols = [list(w) for w in words]
+    known = {s for w in symbols for s in w}
+    size = start_size
+    merges: list[tuple[bytes, bytes]] = []
+    while size < limit:
+        counts: dict[tuple[bytes, bytes], int] = {}
+        for sym, f in zip(symbols, freqs, strict=True):
+            for pair in itertools.pairwise(sym):
+                counts[pair] = counts.get(pair, 0) + f
+        if not counts:
+            break
+        best = max(counts, key=counts.__getitem__)
+        if counts[best] < min_count:
+            break
+        merged = best[0] + best[1]
+        merges.append(best)
+        if merged not in known:
+            known.add(merged)
+            size += 1
+        new_symbols = []
+        for sym in symbols:
+            out, i = [], 0
+            while i < len(sym):
+                if i + 1 < len(sym) and (sym[i], sym[i + 1]) == best:
+                    out.append(merged)
+                    i += 2
+                else:
+                    out.append(sym[i])
+                    i += 1
+            new_symbols.append(out)
+        symbols = new_symbols
+    return merges, symbols
+
+
+# -- the contract every tokenizer kind passes (tests/test_tokenizers.py) ---------------------------
+class TestBpeBytesContract(TokenizerContract):
+    table: ClassVar[dict[str, Any]] = {"kind": "bpe", "vocab_size": 320}
+
+
+class TestBpeCharsContract(TokenizerContract):
+    table: ClassVar[dict[str, Any]] = {"kind": "bpe", "base": "chars", "vocab_size": 2000}
+
+
+# -- outside checks: the paper's worked examples ---------------------------------------------------
+def test_paper_toy_dictionary_merges() -> None:
+    """The 10 merges on the toy dictionary follow count order with earliest-first-occurrence ties."""
+    # Sennrich, Haddow & Birch (2016), section 3.2, Algorithm 1: vocab {'l o w </w>': 5,
+    # 'l o w e r </w>': 2, 'n e w e s t </w>': 6, 'w i d e s t </w>': 3}, num_merges = 10.
+    # The paper breaks ties by dict order; under our rule (earliest first occurrence) the list
+    # below was derived by hand: counts 9,9,9 (e s / es t / est </w>, all first seen in
+    # 'newest'), then 7,7 (l o / lo w), then 6,6,6 (n e / ne w / new est</w>), 5, then 3 (w i).
+    tok = BpeTokenizer(base="chars", end_of_word="</w>", vocab_size=N_SPECIAL + 11 + 10)
+    enc = tok.fit(counts_table([(b"low", 5), (b"lower", 2), (b"newest", 6), (b"widest", 3)]), SPEC)
+    assert merge_strings(enc) == ["e s", "es t", "est </w>", "l o", "lo w", "n e", "ne w",
+                                  "new est</w>", "low </w>", "w i"]
+    assert len(enc.vocabulary) == N_SPECIAL + 11 + 10
+
+
+def test_paper_figure1_unseen_word() -> None:
+    """Merges learned from {low, lowest, newer, wider} segment the unseen 'lower' as low + er</w>."""
+    # Sennrich, Haddow & Birch (2016), Figure 1: from the dictionary {low, lowest, newer, wider}
+    # the merges r+</w>, l+o, lo+w, e+r</w> are learned and 'lower' becomes 'low er</w>'.
+    # Setting: each word counted once, min_pair_count 2 (the paper's four merges are exactly the
+    # pairs occurring twice); our tie rule orders them l o, lo w, e r, er </w>, same segmentation.
+    tok = BpeTokenizer(base="chars", end_of_word="</w>", vocab_size=1000, min_pair_count=2)
+    enc = tok.fit(counts_table([(b"low", 1), (b"lowest", 1), (b"newer", 1), (b"wider", 1)]), SPEC)
+    assert merge_strings(enc) == ["l o", "lo w", "e r", "er </w>"]
+    assert tokens_of(enc, "lower") == [b"low", b"er</w>"]
+    assert enc.decode(enc.encode("lower")) == "lower"
+
+
+# -- invariants against the naive reference ----------------------------------------------------------
+corpora = st.lists(st.tuples(st.text(alphabet="abcdé ", min_size=1, max_size=9), st.integers(1, 6)),
+                   min_size=1, max_size=14, unique_by=lambda t: t[0])
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(corpus=corpora, base=st.sampled_from(["bytes", "chars", "chars+marker"]),
+       extra=st.integers(0, 40), min_count=st.integers(1, 3))
+# Found by a random search: a tie between two pairs of one chunk after symbols before them merged
+# (ranking such ties by symbol index instead of byte offset picked the wrong pair).
+@example(corpus=[("cccbcc", 3), ("bcbcc", 3)], base="bytes", extra=12, min_count=1)
+@example(corpus=[("ddbdcdb", 3), ("dcdbc", 3)], base="chars", extra=12, min_count=1)
+def test_trainer_matches_naive_reference(corpus: list[tuple[str, int]], base: str, extra: int,
+                                         min_count: int) -> None:
+    """Incremental training gives the naive trainer's merges, and encoding a training chunk
+    gives the naive trainer's final segmentation of it."""
+    marker = "</w>" if base == "chars+marker" else ""
+    keys = [w.encode() for w, _ in corpus]
+    freqs = [c for _, c in corpus]
+    if base == "bytes":
+        alphabet_size = 256
+        words = [[bytes([b]) for b in k] for k in keys]
+    else:
+        alphabet_size = len({ch for w, _ in corpus for ch in w}) + bool(marker)
+        words = [[ch.encode() for ch in w] + ([marker.encode()] if marker else []) for w, _ in corpus]
+    start = N_SPECIAL + alphabet_size
+    tok = BpeTokenizer(base="chars" if marker else base, end_of_word=marker, vocab_size=start + extra,
+                       min_pair_count=min_count)
+    enc = tok.fit(counts_table(list(zip(keys, freqs, strict=True))), SPEC)
+    want, final = naive_merges(words, freqs, start, start + extra, min_count)
+    v = enc.vocabulary
+    assert [(v.token(a), v.token(b)) for a, b, _ in enc.merges] == want
+    key_array = pa.array(keys, pa.binary())
+    from_training = enc.piece_ids(key_array)  # the cache training filled
+    enc._cache.clear()
+    values, offsets = enc.piece_ids(key_array)  # merges applied afresh
+    assert np.array_equal(values, from_training[0])
+    for j, symbols in enumerate(final):
+        assert [v.token(int(i)) for i in values[offsets[j]:offsets[j + 1]]] == symbols
+
+
+# -- segmenting ----------------------------------------------------------------------------------
+def doc_chunks(tok: BpeTokenizer, texts: list[str]) -> list[list[bytes]]:
+    """Each document's chunks, rebuilt from the dictionary-form segments."""
+    seg = tok.segment(texts)
+    keys = seg.keys.to_pylist()
+    out, pos = [], 0
+    for n in seg.doc_lengths.tolist():
+        out.append([keys[c] for c in seg.codes[pos:pos + n].tolist()])
+        pos += n
+    return out
+
+
+@settings(max_examples=150, deadline=None)
+@given(texts=st.lists(st.text(), max_size=5),
+       pattern=st.sampled_from([bpe_module.DEFAULT_CHUNK_PATTERN, r"\p{L}*", r"[aeiou]+|\d"]))
+def test_chunks_cover_each_document(texts: list[str], pattern: str) -> None:
+    """A document's chunks are non-empty and concatenate to the document, whatever the pattern."""
+    tok = BpeTokenizer(chunk_pattern=pattern)
+    for text, chunks in zip(texts, doc_chunks(tok, texts), strict=True):
+        assert all(chunks)
+        assert b"".join(chunks) == text.encode("utf-8")
+
+
+def test_default_chunks() -> None:
+    """The default pattern keeps a space with the word after it and splits numbers and punctuation."""
+    tok = BpeTokenizer()
+    assert doc_chunks(tok, ["Odra's lamp,  lit at 12:40!\n"]) == [
+        [b"Odra's", b" lamp", b",", b" ", b" lit", b" at", b" 12", b":", b"40", b"!", b"\n"]]
+    assert doc_chunks(tok, ["", "x"]) == [[], [b"x"]]
+
+
+def test_lone_surrogate_raises() -> None:
+    """Text with a lone surrogate has no UTF-8 form: TokenizerError naming the place."""
+    with pytest.raises(TokenizerError, match=r"document 1, character 2: '\\ud800' is a lone surrogate"):
+        BpeTokenizer().segment(["fine", "ab\ud800c"])
+    enc = bytes_encoder()
+    with pytest.raises(TokenizerError, match="surrogate"):
+        enc.encode("\udfff")
+
+
+# -- encoding and decoding -------------------------------------------------------------------------
+_ENCODERS: dict[str, BpeEncoder] = {}
+
+
+def bytes_encoder() -> BpeEncoder:
+    """A byte-base encoder trained once on the harbour log."""
+    if "bytes" not in _ENCODERS:
+        tok = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 120)
+        _ENCODERS["bytes"] = tok.fit(counts_from_texts(tok, [LOG]), SPEC)
+    return _ENCODERS["bytes"]
+
+
+def test_training_reaches_vocab_size() -> None:
+    """Training stops at vocab_size; the layout is specials, 256 bytes, then merges in order."""
+    enc = bytes_encoder()
+    v = enc.vocabulary
+    assert len(v) == N_SPECIAL + 256 + 120
+    assert [v.token(i) for i in range(N_SPECIAL)] == [s.encode() for s in SPEC.specials]
+    assert [v.token(N_SPECIAL + b) for b in range(256)] == [bytes([b]) for b in range(256)]
+    # every merge joins earlier ids, and new ids appear in merge order
+    assert all(N_SPECIAL <= a < z and N_SPECIAL <= b < z for a, b, z in enc.merges)
+    fresh = [z for _, _, z in enc.merges if z >= N_SPECIAL + 256]
+    assert fresh == list(range(N_SPECIAL + 256, len(v)))
+    assert len(set(v.tokens.to_pylist())) == len(v)  # no token spelled twice
+    # the byte counts are the symbol counts of the text (common practice: the unigram counts)
+    assert int(v.counts[N_SPECIAL + ord("a")]) == LOG.encode().count(b"a")
+
+
+@settings(max_examples=200, deadline=None)
+@given(text=st.text(alphabet=st.characters(exclude_categories=["Cs"])) | st.sampled_from(
+    ["\x00", "a\x00b", "😀👍🏽", "e\u0301\u0302", "\u200d\ufeff", "  \n\t ", "Quill\u00a0Point"]))
+def test_bytes_round_trip(text: str) -> None:
+    """Byte base: decode(encode(s)) == s for any Unicode text (NUL, emoji, combining marks)."""
+    enc = bytes_encoder()
+    ids = enc.encode(text)
+    assert ids.dtype == np.int64
+    assert (ids >= N_SPECIAL).all()
+    assert enc.decode(ids) == text
+
+
+def test_encode_batch_matches_single() -> None:
+    """Encoding documents together gives each document's own encoding, in order."""
+    enc = bytes_encoder()
+    docs = ["The ferry Marrow", "", "lamp oil 😀", "The ferry Marrow"]
+    ids, lengths = enc.encode_batch(docs)
+    assert lengths.tolist() == [len(enc.encode(d)) for d in docs]
+    assert np.array_equal(ids, np.concatenate([enc.encode(d) for d in docs]))
+
+
+def test_frequent_words_become_single_tokens() -> None:
+    """A chunk repeated throughout the training text encodes as one token."""
+    enc = bytes_encoder()
+    assert tokens_of(enc, " saltfern") == [b" saltfern"]
+    assert tokens_of(enc, "saltfern saltfern")[-1] == b" saltfern"
+
+
+def test_cache_is_bounded(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The chunk cache never outgrows its limit and a reset does not change encodings."""
+    tok = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 60)
+    enc = tok.fit(counts_from_texts(tok, [LOG]), SPEC)
+    want = enc.encode(LOG)
+    monkeypatch.setattr(bpe_module, "CACHE_LIMIT", 5)
+    enc._cache.clear()
+    assert np.array_equal(enc.encode(LOG), want)
+    assert len(enc._cache) <= 5
+
+
+def test_decode_policy() -> None:
+    """Specials print only on request; ids outside the vocabulary raise TokenizerError."""
+    enc = bytes_encoder()
+    ids = [SPEC.specials.index("<bos>"), *enc.encode("lamp").tolist(), SPEC.specials.index("<eos>")]
+    assert enc.decode(ids) == "lamp"
+    assert enc.decode(ids, show_specials=True) == "<bos>lamp<eos>"
+    assert enc.decode(np.zeros(0, np.int64)) == ""
+    with pytest.raises(TokenizerError, match="outside the vocabulary"):
+        enc.decode([len(enc.vocabulary)])
+    with pytest.raises(TokenizerError, match="outside the vocabulary"):
+        enc.decode([-1])
+    # a lone continuation byte is not UTF-8: replaced, not raised (common practice: U+FFFD)
+    assert enc.decode([N_SPECIAL + 0x80]) == "\ufffd"
+
+
+# -- chars base ----------------------------------------------------------------------------------
+@pytest.mark.parametrize("marker", ["", "</w>"])
+def test_chars_round_trip_and_unknown(marker: str) -> None:
+    """Chars base: seen text round-trips (the marker prints as nothing); unseen characters map
+    to the unknown id and are dropped by decode."""
+    tok = BpeTokenizer(base="chars", end_of_word=marker, vocab_size=400)
+    enc = tok.fit(counts_from_texts(tok, [LOG]), SPEC)
+    v = enc.vocabulary
+    alphabet = [v.token(i) for i in range(N_SPECIAL, N_SPECIAL + enc.alphabet_size)]
+    chars = sorted(set(LOG))
+    assert alphabet == [c.encode() for c in chars] + ([marker.encode()] if marker else [])
+    sample = "Odra Venn left the lamp at Quill Point; café 😀.\n"
+    assert enc.decode(enc.encode(sample)) == sample
+    ids = enc.encode("lamp Ω")
+    assert int(ids[-2 if marker else -1]) == SPEC.specials.index("<unk>")
+    assert enc.decode(ids) == "lamp "
+    if marker:  # the marker closes every chunk
+        assert tokens_of(enc, " lamp")[-1].endswith(b"</w>")
+
+
+def test_chars_unknown_needs_unknown_role() -> None:
+    """Without an unknown token, an unseen character is a TokenizerError."""
+    spec = VocabSpec(specials=("<pad>",), unknown="", begin="", end="")
+    tok = BpeTokenizer(base="chars", vocab_size=200)
+    enc = tok.fit(counts_from_texts(tok, ["abc abc"]), spec)
+    with pytest.raises(TokenizerError, match="not seen in training"):
+        enc.encode("abz")
+
+
+def test_chars_marker_seen_in_text_rejected() -> None:
+    """A one-character marker that also occurs in the text is refused (it would be ambiguous)."""
+    tok = BpeTokenizer(base="chars", end_of_word="_", vocab_size=200)
+    with pytest.raises(TokenizerError, match="end_of_word '_'"):
+        tok.fit(counts_from_texts(tok, ["a_b a_b"]), SPEC)
+
+
+# -- specials ----------------------------------------------------------------------------------
+def test_literal_specials_only_when_enabled() -> None:
+    """Special names in text become their reserved ids only with literal_specials."""
+    text = "lamp lit <eos> the ferry<bos>left"
+    plain = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 50)
+    enc = plain.fit(counts_from_texts(plain, [LOG, text]), SPEC)
+    ids = enc.encode(text)
+    assert (ids >= N_SPECIAL).all()
+    assert enc.decode(ids) == text
+
+    lit = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 50, literal_specials=True)
+    enc = lit.fit(counts_from_texts(lit, [LOG, text * 20]), SPEC)
+    ids = enc.encode(text).tolist()
+    assert [i for i in ids if i < N_SPECIAL] == [SPEC.specials.index("<eos>"), SPEC.specials.index("<bos>")]
+    assert enc.decode(ids, show_specials=True) == text
+    # the names never take part in a merge
+    assert not any(b"<eos>" in enc.vocabulary.token(z) or b"<bos>" in enc.vocabulary.token(z)
+                   for _, _, z in enc.merges)
+
+
+def test_literal_specials_must_match_vocab_specials() -> None:
+    """literal_specials with names other than vocab.specials is a RecipeError naming the field."""
+    spec = VocabSpec(specials=("<unk>", "<sep>"), unknown="<unk>", padding="", begin="", end="")
+    tok = BpeTokenizer(literal_specials=True, vocab_size=400)
+    with pytest.raises(RecipeError, match="special_names"):
+        tok.fit(counts_from_texts(tok, ["a b"]), spec)
+    tok = BpeTokenizer(literal_specials=True, vocab_size=400, special_names=("<unk>", "<sep>"))
+    enc = tok.fit(counts_from_texts(tok, ["x<sep>y"]), spec)
+    assert enc.encode("x<sep>y").tolist()[1] == 1
+
+
+def test_specials_never_merged() -> None:
+    """Specials keep ids 0..k-1 and no merge uses or produces them."""
+    enc = bytes_encoder()
+    assert all(min(m) >= N_SPECIAL for m in enc.merges)
+    assert enc.vocabulary.n_special == N_SPECIAL
+    assert enc.vocabulary.roles == {"unknown": 0, "padding": 1, "begin": 2, "end": 3}
+
+
+# -- storage -----------------------------------------------------------------------------------------
+def saved(enc: BpeEncoder, directory: Path) -> Path:
+    """Store an encoder the way a build does: vocab.arrow beside tokenizer.arrow."""
+    enc.vocabulary.save(directory / "vocab.arrow")
+    assert enc.save(directory) == ["tokenizer.arrow"]
+    return directory
+
+
+@pytest.mark.parametrize("kwargs", [
+    {"vocab_size": N_SPECIAL + 256 + 80},
+    {"base": "chars", "end_of_word": "</w>", "vocab_size": 300, "literal_specials": True},
+])
+def test_save_load_round_trip(tmp_path: Path, kwargs: dict[str, object]) -> None:
+    """A stored and reloaded encoder has the same merges and encodes identically."""
+    tok = BpeTokenizer(**kwargs)  # type: ignore[arg-type]
+    enc = tok.fit(counts_from_texts(tok, [LOG]), SPEC)
+    again = tok.load(saved(enc, tmp_path))
+    assert again.merges == enc.merges
+    assert again.vocabulary.tokens.equals(enc.vocabulary.tokens)
+    for text in [LOG, "<eos>lamp <unk> oil", "Ωmega 12"]:
+        assert np.array_equal(again.encode(text), enc.encode(text))
+        assert again.decode(again.encode(text)) == enc.decode(enc.encode(text))
+
+
+def test_load_rejects_malformed(tmp_path: Path) -> None:
+    """A garbled, foreign, tampered or mismatched tokenizer.arrow raises ShardCorruptError."""
+    tok = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 30)
+    enc = tok.fit(counts_from_texts(tok, [LOG]), SPEC)
+    saved(enc, tmp_path)
+    path = tmp_path / "tokenizer.arrow"
+    table = pa.ipc.open_file(pa.memory_map(str(path))).read_all()
+    meta = table.schema.metadata
+
+    with pytest.raises(ShardCorruptError, match="recipe says"):
+        BpeTokenizer(vocab_size=N_SPECIAL + 256 + 31).load(tmp_path)
+
+    tampered = table.set_column(4, "token", pa.array([b"zz"] * table.num_rows, pa.binary()))
+    write_table(path, tampered.replace_schema_metadata(meta))
+    with pytest.raises(ShardCorruptError, match="does not match the vocabulary"):
+        tok.load(tmp_path)
+
+    write_table(path, table.slice(0, 5).replace_schema_metadata(meta))
+    with pytest.raises(ShardCorruptError, match="do not make the vocabulary"):
+        tok.load(tmp_path)
+
+    write_table(path, table.drop_columns(["rank"]).replace_schema_metadata(meta))
+    with pytest.raises(ShardCorruptError, match="expected schema"):
+        tok.load(tmp_path)
+
+    write_table(path, table.replace_schema_metadata({b"seqpipe.table": b"shard"}))
+    with pytest.raises(ShardCorruptError, match="not a seqpipe byte-pair merge table"):
+        tok.load(tmp_path)
+
+    path.write_bytes(b"ARROW1 but not really")
+    with pytest.raises(ShardCorruptError):
+        tok.load(tmp_path)
+
+
+# -- recipe ------------------------------------------------------------------------------------------
+@pytest.mark.parametrize(("table", "key"), [
+    ({"base": "words"}, "base"),
+    ({"end_of_word": "</w>"}, "end_of_word"),
+    ({"vocab_size": 0}, "vocab_size"),
+    ({"vocab_size": True}, "vocab_size"),
+    ({"min_pair_count": 0}, "min_pair_count"),
+    ({"chunk_pattern": "("}, "chunk_pattern"),
+    ({"chunk_pattern": "(a)|b"}, "chunk_pattern"),
+    ({"literal_specials": "yes"}, "literal_specials"),
+    ({"special_names": ["<a>", "<a>"]}, "special_names"),
+    ({"merges": 3}, "merges"),
+])
+def test_recipe_errors_name_the_key(table: dict[str, object], key: str) -> None:
+    """Bad recipe values raise RecipeError whose key path names the field."""
+    with pytest.raises(RecipeError) as info:
+        parse_tokenizer({"kind": "bpe", **table})
+    assert info.value.key == f"tokenizer.{key}"
+
+
+def test_recipe_round_trip() -> None:
+    """parse_tokenizer builds a BpeTokenizer whose plain form rebuilds the same tokenizer."""
+    tok = parse_tokenizer({"kind": "bpe", "base": "chars", "end_of_word": "</w>", "vocab_size": 500})
+    assert isinstance(tok, BpeTokenizer)
+    plain = to_plain(tok)
+    assert plain["kind"] == "bpe"
+    assert section(BpeTokenizer, plain, "tokenizer", skip=("kind",)) == tok
+
+
+def test_vocab_size_too_small_and_empty_corpus() -> None:
+    """vocab_size below specials + alphabet is a RecipeError; no text gives the bare alphabet."""
+    tok = BpeTokenizer(vocab_size=100)
+    with pytest.raises(RecipeError, match="expected at least 260"):
+        tok.fit(counts_from_texts(tok, ["abc"]), SPEC)
+    enc = BpeTokenizer().fit(counts_from_texts(tok, [""]), SPEC)
+    assert (len(enc.vocabulary), enc.merges) == (N_SPECIAL + 256, [])
+    assert enc.decode(enc.encode("new text")) == "new text"
+    enc = BpeTokenizer(base="chars").fit(counts_from_texts(tok, [""]), SPEC)
+    assert len(enc.vocabulary) == N_SPECIAL
+    assert enc.encode("ab").tolist() == [SPEC.specials.index("<unk>")] * 2
+
+
+def test_max_size_caps_training() -> None:
+    """vocab.max_size caps the vocabulary below vocab_size."""
+    tok = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 100)
+    enc = tok.fit(counts_from_texts(tok, [LOG]), VocabSpec(max_size=N_SPECIAL + 256 + 7))
+    assert len(enc.vocabulary) == N_SPECIAL + 256 + 7
+
+
+_HASH_SEED_SCRIPT = """
+import pyarrow as pa
+from seqpipe.tokenizers.bpe import BpeTokenizer
+from seqpipe.vocab import VocabSpec
+words = [w.encode() for w in "ab ba abab aab bba baab abba".split()] + [b"ab", b"ba"]
+keys = list(dict.fromkeys(words))
+table = pa.table({"key": pa.array(keys, pa.binary()), "count": pa.array([3, 3, 2, 2, 1, 2, 2], pa.int64())})
+enc = BpeTokenizer(vocab_size=300, min_pair_count=1).fit(table, VocabSpec())
+print(enc.merges)
+"""
+
+
+def test_independent_of_hash_seed() -> None:
+    """Training gives the same merges under different PYTHONHASHSEED values."""
+    runs = []
+    for seed in ("1", "2", "12345"):
+        env = {**os.environ, "PYTHONHASHSEED": seed}
+        done = subprocess.run([sys.executable, "-c", _HASH_SEED_SCRIPT], env=env, capture_output=True,
+                              text=True, check=True, cwd=Path(__file__).resolve().parents[1])
+        runs.append(done.stdout)
+    assert runs[0] == runs[1] == runs[2]
+    assert runs[0].startswith("[(")
