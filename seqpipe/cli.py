@@ -132,7 +132,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     from seqpipe.report import write_report
 
     out = Path(args.output) if args.output else Path(args.directory) / "report"
-    write_report(args.directory, out, ngram_n=args.ngram, progress=False if args.quiet else None)
+    write_report(args.directory, out, ngram_n=args.ngram, progress=not args.quiet and sys.stderr.isatty())
     print(f"report written to {out} (report.md, report.json, plots)")
     return EXIT_OK
 

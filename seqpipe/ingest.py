@@ -239,9 +239,10 @@ def count_part(task: CountTask) -> pa.Table:
     sel = codes[_piece_mask(pieces, task.train)] if len(codes) else codes
     counts = np.bincount(sel, minlength=len(keys)).astype(np.int64)
     present = np.flatnonzero(counts)
-    uniq, first_pos = np.unique(sel, return_index=True)
+    # Arrow's hash-based unique keeps first-occurrence order (O(n), unlike a sort)
+    seen_order = pc.unique(pa.array(sel, pa.int32())).to_numpy(zero_copy_only=False)
     first = np.zeros(len(keys), np.int64)
-    first[uniq] = first_pos
+    first[seen_order] = np.arange(len(seen_order), dtype=np.int64)
     return pa.table({
         "key": keys.take(pa.array(present)),
         "count": pa.array(counts[present], pa.int64()),

@@ -1,0 +1,11 @@
+"""Corpus report: split statistics, Zipf fit, top n-grams, leakage and baseline perplexities.
+
+``corpus_report(dataset)`` returns every figure as a JSON-serializable dict;
+``write_report(dataset_dir, out_dir)`` also writes ``report.md``, ``report.json`` and
+``rank_frequency.png`` (matplotlib optional: ``seqpipe[plots]``).
+"""
+
+from seqpipe.report.core import corpus_report, write_dataset_report, write_report
+from seqpipe.report.memory import MemoryDataset, dataset_from_documents
+
+__all__ = ["MemoryDataset", "corpus_report", "dataset_from_documents", "write_dataset_report", "write_report"]

@@ -1,0 +1,205 @@
+"""The corpus report: gather every figure of a dataset, then write Markdown, JSON and plots."""
+
+from __future__ import annotations
+
+import dataclasses
+import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Any, Final
+
+import numpy as np
+
+from seqpipe._parse import parse_bool, parse_float, parse_int
+from seqpipe.errors import RecipeError, SeqpipeError
+from seqpipe.report import leakage, lm, stats
+from seqpipe.report.corpus import DatasetLike, Roles, SplitTokens, load_split
+from seqpipe.report.ngrams import count_ngrams, key_bits, max_order
+
+REPORT_FORMAT: Final = "seqpipe.report/1"
+TRAIN: Final = "train"
+TOP_ORDERS: Final = (1, 2, 3)
+
+PREDICTED: Final = (
+    "Each document is one sentence. Predicted: every content token (the document minus its "
+    "begin/end markers) and, for each document that ends with the end marker, that end token "
+    "after the last content token ({ended} of {documents} evaluated documents); begin markers "
+    "are never predicted. Contexts are padded on the left with {begin}. "
+    "Event space: the vocabulary without the padding token ({space} ids). Models are fitted on "
+    "the train split's events. Kneser-Ney: discount {d} at every order; its unigram level is the "
+    "continuation distribution interpolated with the uniform one, so no event has probability 0."
+)
+
+
+@contextmanager
+def _progress(total: int, enabled: bool) -> Iterator[Any]:
+    """A tqdm bar over the report's steps, shown only on a terminal and when asked for."""
+    from seqpipe.progress import bar
+
+    steps = bar(total, "report", unit="step", show=enabled and sys.stderr.isatty())
+    try:
+        yield steps
+    finally:
+        steps.close()
+
+
+def _check(ngram_n: int, top_k: int, add_k: float, kn_discount: float, progress: bool) -> None:
+    parse_int("ngram_n", ngram_n, minimum=1)
+    parse_int("top_k", top_k, minimum=1)
+    if parse_float("add_k", add_k, minimum=0.0) <= 0:
+        raise RecipeError("add_k", f"expected a number > 0, got {add_k!r}")
+    if parse_float("kn_discount", kn_discount, minimum=0.0, maximum=1.0) <= 0:
+        raise RecipeError("kn_discount", f"expected a number in (0, 1], got {kn_discount!r}")
+    parse_bool("progress", progress)
+
+
+def _top_ngrams(dataset: DatasetLike, train: SplitTokens, bits: int, top_k: int) -> dict[str, Any]:
+    orders = [n for n in TOP_ORDERS if n <= max_order(bits)]
+    counted = count_ngrams(train.ids, orders, bits=bits, starts=train.content_starts,
+                           lengths=train.content_lengths)
+    out: dict[str, Any] = {}
+    for n, counts in counted.items():
+        rows, freq = counts.most_common(top_k)
+        out[str(n)] = [{"tokens": [dataset.encoder.token_text(int(i)) for i in row], "ids": row.tolist(),
+                        "count": int(c)} for row, c in zip(rows, freq, strict=True)]
+    return out
+
+
+def collect(dataset: DatasetLike, *, ngram_n: int = 13, top_k: int = 20, add_k: float = 1.0,
+            kn_discount: float = 0.75, progress: bool = True) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+    """The report and, per split, the descending frequencies of non-special ids (for plots)."""
+    _check(ngram_n, top_k, add_k, kn_discount, progress)
+    vocab = dataset.vocabulary
+    roles = Roles.of(vocab)
+    bits = key_bits(roles.vocab_size)
+    names = tuple(dataset.splits)
+    others = [n for n in names if n != TRAIN]
+    has_train = TRAIN in names
+    notes: list[str] = ["Zipf fits and rank-frequency curves exclude special tokens (the unknown token too)."]
+    report: dict[str, Any] = {
+        "format": REPORT_FORMAT,
+        "dataset": {"fingerprint": dataset.fingerprint, "vocab_size": roles.vocab_size,
+                    "specials": [vocab.token(i).decode("utf-8", "backslashreplace")
+                                 for i in range(roles.n_special)],
+                    "roles": dict(sorted(vocab.roles.items())), "splits": list(names)},
+        "settings": {"ngram_n": ngram_n, "top_k": top_k, "add_k": add_k, "kn_discount": kn_discount},
+    }
+    steps = len(names) + (3 + 2 * len(others) if has_train else 0)
+    curves: dict[str, np.ndarray] = {}
+    with _progress(steps, progress) as bar:
+        loaded: dict[str, SplitTokens] = {}
+        for name in names:
+            loaded[name] = load_split(dataset, name, roles)
+        common = np.result_type(*(s.ids.dtype for s in loaded.values())) if loaded else np.uint32
+        for name, s in loaded.items():
+            if s.ids.dtype != common:  # one dtype, so document hashes compare across splits
+                loaded[name] = dataclasses.replace(s, ids=s.ids.astype(common))
+        counts = {name: stats.id_counts(s, roles.vocab_size) for name, s in loaded.items()}
+        ranking = stats.frequency_ranking(counts[TRAIN], roles.n_special) if has_train else None
+        report["splits"] = {}
+        for name, s in loaded.items():
+            report["splits"][name] = stats.split_stats(s, counts[name], roles, ranking)
+            curves[name] = counts[name][stats.frequency_ranking(counts[name], roles.n_special)]
+            bar.update()
+        if not has_train:
+            notes.append("The dataset has no 'train' split: coverage, n-grams, leakage and "
+                         "perplexities are not reported.")
+        else:
+            train = loaded[TRAIN]
+            report["top_ngrams"] = _top_ngrams(dataset, train, bits, top_k)
+            if max_order(bits) < 3:
+                notes.append("The vocabulary is too large to pack trigrams into 64-bit keys: "
+                             "no trigram counts and no perplexities.")
+            bar.update()
+            report["leakage"] = _leakage(dataset, loaded, others, ngram_n, bar)
+            if max_order(bits) >= 3:
+                report["perplexity"] = _perplexity(loaded, others, roles, bits, add_k, kn_discount, bar)
+    report["notes"] = notes
+    return report, curves
+
+
+def _leakage(dataset: DatasetLike, loaded: dict[str, SplitTokens], others: list[str], n: int,
+             bar: Any) -> dict[str, Any]:
+    train = loaded[TRAIN]
+    texts = {name: _text_hashes(dataset, name) for name in [TRAIN, *others]}
+    train_hashes = leakage.train_window_hashes(train, n)
+    bar.update()
+    out: dict[str, Any] = {"documents": {}, "ngrams": {}}
+
+    def decode(ids: np.ndarray) -> str:
+        return dataset.encoder.decode(ids)
+
+    for name in others:
+        out["documents"][name] = leakage.duplicate_documents(
+            train, loaded[name], train_text=texts[TRAIN], other_text=texts[name], decode=decode)
+        out["ngrams"][name] = leakage.shared_ngrams(train_hashes, loaded[name], n)
+        bar.update()
+    return out
+
+
+def _text_hashes(dataset: DatasetLike, name: str) -> Any:
+    docs = dataset.split(name).documents
+    return docs.column("hash").combine_chunks() if "hash" in docs.column_names else None
+
+
+def _perplexity(loaded: dict[str, SplitTokens], others: list[str], roles: Roles, bits: int,
+                add_k: float, d: float, bar: Any) -> dict[str, Any]:
+    space = lm.event_space(roles)
+    tables = lm.CountTables.fit(lm.events(loaded[TRAIN], roles), bits, roles.vocab_size + 1)
+    bar.update()
+    begin = "the begin token" if roles.begin is not None else "a virtual begin id (no begin token)"
+    ended = sum(int(loaded[n].has_end.sum()) for n in others)
+    documents = sum(loaded[n].num_documents for n in others)
+    out: dict[str, Any] = {
+        "predicted": PREDICTED.format(ended=ended, documents=documents, begin=begin, space=space, d=d),
+        "event_space": space, "train_events": tables.n_events, "splits": {}}
+    for name in others:
+        ev = lm.events(loaded[name], roles)
+        out["splits"][name] = {"events": len(ev), **lm.evaluate(tables, ev, space=space, k=add_k, d=d)}
+        bar.update()
+    return out
+
+
+def corpus_report(dataset: DatasetLike, *, ngram_n: int = 13, top_k: int = 20, add_k: float = 1.0,
+                  kn_discount: float = 0.75, progress: bool = True) -> dict[str, Any]:
+    """Every figure of the corpus report of ``dataset``, as a JSON-serializable dict.
+
+    Per split: sizes, document lengths, unknown-token rate, coverage by the most
+    frequent train ids, Zipf fit; for train: the most frequent uni/bi/trigrams;
+    train/validation/test leakage (duplicated documents, shared ``ngram_n``-grams);
+    baseline perplexities (uniform, add-``add_k`` uni/bi/trigram, interpolated
+    Kneser-Ney bi/trigram with ``kn_discount``). ``report["perplexity"]["predicted"]``
+    states exactly which tokens are predicted.
+    """
+    return collect(dataset, ngram_n=ngram_n, top_k=top_k, add_k=add_k, kn_discount=kn_discount,
+                   progress=progress)[0]
+
+
+def write_report(dataset_dir: str | Path, out_dir: str | Path, *, ngram_n: int = 13, top_k: int = 20,
+                 add_k: float = 1.0, kn_discount: float = 0.75, progress: bool = True) -> dict[str, Any]:
+    """Open the dataset at ``dataset_dir`` and write ``report.md``, ``report.json`` and
+    ``rank_frequency.png`` (when matplotlib is installed) into ``out_dir``; return the report."""
+    from seqpipe.dataset import open_dataset
+
+    dataset = open_dataset(Path(dataset_dir))
+    return write_dataset_report(dataset, out_dir, ngram_n=ngram_n, top_k=top_k, add_k=add_k,
+                                kn_discount=kn_discount, progress=progress)
+
+
+def write_dataset_report(dataset: DatasetLike, out_dir: str | Path, **options: Any) -> dict[str, Any]:
+    """:func:`write_report` for an already opened dataset (or an in-memory one)."""
+    from seqpipe.report import plots, render
+
+    report, curves = collect(dataset, **options)
+    out = Path(out_dir)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise SeqpipeError(f"{out}: cannot create the report directory ({exc})") from exc
+    fits = {name: stats.zipf_fit(curve) for name, curve in curves.items()}
+    drawn = plots.rank_frequency_png(out / plots.RANK_FREQUENCY_PNG, curves, fits)
+    report["plots"] = [plots.RANK_FREQUENCY_PNG] if drawn else []
+    render.write_text(out / "report.json", render.to_json(report))
+    render.write_text(out / "report.md", render.to_markdown(report, plots_drawn=drawn))
+    return report

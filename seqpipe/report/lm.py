@@ -1,0 +1,230 @@
+"""Baseline n-gram language models fitted on train, and their perplexities.
+
+Each document is one sentence. The *events* of a document with content
+``w_1..w_m`` are the predictions of ``w_1, ..., w_m`` and, when the document ends
+with the end marker (as the build wrote it), of that end token after ``w_m``; the context of each event is the
+preceding tokens of the document, padded on the left with the begin id (with a
+virtual begin id when the vocabulary has none). Begin tokens are never predicted.
+
+The event space is every vocabulary id except the padding id: the ids a stream can
+hold. Its size ``V`` is the uniform model's perplexity and the add-k denominator.
+
+Models (``c`` = train counts of events and their contexts, ``N1+`` = number of
+distinct types, ``d`` = discount):
+
+* uniform: ``1/V``; unigram / bigram / trigram add-k: ``(c(h,w) + k) / (c(h) + kV)``;
+* interpolated Kneser-Ney (bigram, trigram), in the form of Chen & Goodman
+  (from memory): the top order discounts raw counts, lower orders discount
+  continuation counts, ``P(w|h) = max(c(h,w)-d, 0)/c(h) + d N1+(h.)/c(h) P(w|h')``,
+  and an unseen context backs off to the lower order with weight 1. The unigram
+  level is the continuation distribution ``N1+(.w)/N1+(..)``, itself discounted and
+  interpolated with the uniform ``1/V`` so that no event gets probability 0
+  (``floor=False`` drops that last step, which is how ``nltk.lm`` defines it).
+
+Perplexity is ``exp`` of the mean negative log-likelihood per event. Every lookup
+is a ``np.searchsorted`` into sorted packed keys.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from seqpipe.report.corpus import Roles, SplitTokens
+from seqpipe.report.ngrams import filler, lookup, pack, positions, runs, take
+
+
+@dataclass(frozen=True, slots=True)
+class Events:
+    """Predicted tokens ``w`` with their two preceding context ids ``h1`` (nearest), ``h2``."""
+
+    h2: np.ndarray
+    h1: np.ndarray
+    w: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.w)
+
+
+def event_space(roles: Roles) -> int:
+    """Size of the event space: the vocabulary without the padding id."""
+    return roles.vocab_size - (1 if roles.padding is not None else 0)
+
+
+def begin_context(roles: Roles) -> int:
+    """Id that pads contexts on the left: the begin id, or the virtual id ``V``."""
+    return roles.begin if roles.begin is not None else roles.vocab_size
+
+
+def events(split: SplitTokens, roles: Roles) -> Events:
+    """The split's events (see the module docstring), built without a per-token loop."""
+    m = split.content_lengths
+    pad = 2
+    seg = pad + m + split.has_end
+    offsets = np.cumsum(seg) - seg
+    # one row per document: two begin slots, the content, the end token if the document has one
+    seq = np.full(int(seg.sum()), begin_context(roles), dtype=np.int64)
+    is_content = np.ones(len(seq), dtype=bool)
+    is_content[offsets] = False
+    is_content[offsets + 1] = False
+    ends = (offsets + pad + m)[split.has_end]
+    is_content[ends] = False
+    seq[is_content] = split.content_ids()  # documents are in stream order, so a boolean fill suffices
+    target = is_content
+    if roles.end is not None:
+        seq[ends] = roles.end
+        target[ends] = True
+    # target[0] and target[1] are pad slots, so the shifted masks line up with seq[target]
+    return Events(h2=seq[:-2][target[2:]], h1=seq[:-1][target[1:]], w=seq[target])
+
+
+@dataclass(frozen=True, slots=True)
+class CountTables:
+    """Sorted packed keys of the train events' n-grams and the counts the models need."""
+
+    bits: int
+    n_events: int
+    tri_keys: np.ndarray  # (h2, h1, w) types
+    tri_counts: np.ndarray
+    ctx_keys: np.ndarray  # (h2, h1) contexts
+    ctx_counts: np.ndarray  # c(h2 h1)
+    ctx_types: np.ndarray  # N1+(h2 h1 .)
+    bi_keys: np.ndarray  # (h1, w) types
+    bi_counts: np.ndarray  # c(h1 w)
+    bi_left: np.ndarray  # N1+(. h1 w): distinct h2 before (h1, w)
+    h1_keys: np.ndarray  # h1 contexts
+    h1_counts: np.ndarray  # c(h1)
+    h1_types: np.ndarray  # N1+(h1 .)
+    h1_left: np.ndarray  # N1+(. h1 .)
+    uni_counts: np.ndarray  # c(w), indexed by id
+    uni_left: np.ndarray  # N1+(. w), indexed by id
+    bigram_types: int  # N1+(. .)
+
+    @classmethod
+    def fit(cls, ev: Events, bits: int, n_ids: int) -> CountTables:
+        """Count everything from one sort of the trigram keys and one of their suffixes."""
+        keys = pack([ev.h2, ev.h1, ev.w], bits)
+        keys.sort()
+        tri, tri_c, _ = runs(keys)
+        shift = np.uint64(bits)
+        ctx, ctx_types, ctx_starts = runs(tri >> shift)
+        ctx_c = np.add.reduceat(tri_c, ctx_starts) if len(tri) else tri_c
+        suffix = tri & np.uint64(filler(2 * bits))
+        order = np.argsort(suffix)
+        bi, bi_left, bi_starts = runs(suffix[order])  # bi_left: trigram types per (h1, w)
+        bi_c = np.add.reduceat(tri_c[order], bi_starts) if len(bi) else tri_c
+        h1, h1_types, h1_starts = runs(bi >> shift)
+        h1_c = np.add.reduceat(bi_c, h1_starts) if len(bi) else bi_c
+        h1_left = np.add.reduceat(bi_left, h1_starts) if len(bi) else bi_left
+        w_of_bi = (bi & np.uint64(filler(bits))).astype(np.int64)
+        return cls(bits=bits, n_events=len(ev), tri_keys=tri, tri_counts=tri_c, ctx_keys=ctx,
+                   ctx_counts=ctx_c, ctx_types=ctx_types, bi_keys=bi, bi_counts=bi_c, bi_left=bi_left,
+                   h1_keys=h1, h1_counts=h1_c, h1_types=h1_types, h1_left=h1_left,
+                   uni_counts=np.bincount(ev.w, minlength=n_ids).astype(np.int64),
+                   uni_left=np.bincount(w_of_bi, minlength=n_ids).astype(np.int64),
+                   bigram_types=len(bi))
+
+
+@dataclass(frozen=True, slots=True)
+class Lookups:
+    """The train counts each evaluation event needs, gathered once for all models."""
+
+    tri: np.ndarray
+    ctx: np.ndarray
+    ctx_types: np.ndarray
+    bi: np.ndarray
+    bi_left: np.ndarray
+    h1: np.ndarray
+    h1_types: np.ndarray
+    h1_left: np.ndarray
+    uni: np.ndarray
+    uni_left: np.ndarray
+
+    @classmethod
+    def of(cls, t: CountTables, ev: Events) -> Lookups:
+        keys = pack([ev.h2, ev.h1, ev.w], t.bits)
+        shift = np.uint64(t.bits)
+        ctx = keys >> shift
+        bi = keys & np.uint64(filler(2 * t.bits))
+        h1 = ev.h1.astype(np.uint64)
+        pos_ctx = positions(t.ctx_keys, ctx)
+        pos_bi = positions(t.bi_keys, bi)
+        pos_h1 = positions(t.h1_keys, h1)
+        return cls(tri=lookup(t.tri_keys, t.tri_counts, keys),
+                   ctx=take(t.ctx_counts, pos_ctx), ctx_types=take(t.ctx_types, pos_ctx),
+                   bi=take(t.bi_counts, pos_bi), bi_left=take(t.bi_left, pos_bi),
+                   h1=take(t.h1_counts, pos_h1), h1_types=take(t.h1_types, pos_h1),
+                   h1_left=take(t.h1_left, pos_h1),
+                   uni=t.uni_counts[ev.w], uni_left=t.uni_left[ev.w])
+
+
+def _ratio(num: np.ndarray, den: np.ndarray) -> np.ndarray:
+    """num / den where den > 0, else 0 (callers mask those rows out)."""
+    num = np.asarray(num, dtype=np.float64)
+    den = np.asarray(den, dtype=np.float64)
+    out: np.ndarray = np.divide(num, den, out=np.zeros(np.broadcast(num, den).shape), where=den > 0)
+    return out
+
+
+def add_k(t: CountTables, q: Lookups, order: int, k: float, space: int) -> np.ndarray:
+    """Add-k probabilities of the events, for order 1, 2 or 3."""
+    if order == 1:
+        num, den = q.uni, np.full(len(q.uni), t.n_events)
+    elif order == 2:
+        num, den = q.bi, q.h1
+    else:
+        num, den = q.tri, q.ctx
+    return (num + k) / (den + k * space)
+
+
+def unigram_continuation(t: CountTables, q: Lookups, d: float, space: int, floor: bool) -> np.ndarray:
+    """The Kneser-Ney unigram level (see the module docstring)."""
+    if t.bigram_types == 0:
+        return np.full(len(q.uni_left), 1.0 / space)
+    if not floor:
+        return q.uni_left / t.bigram_types
+    seen = int(np.count_nonzero(t.uni_left))
+    return (np.maximum(q.uni_left - d, 0.0) + d * seen / space) / t.bigram_types
+
+
+def kneser_ney(t: CountTables, q: Lookups, order: int, d: float, space: int, *,
+               floor: bool = True) -> np.ndarray:
+    """Interpolated Kneser-Ney probabilities of the events, for order 2 or 3."""
+    p1 = unigram_continuation(t, q, d, space, floor)
+    seen_h1 = q.h1 > 0
+    if order == 2:
+        top = _ratio(np.maximum(q.bi - d, 0.0) + d * q.h1_types * p1, q.h1)
+        return np.where(seen_h1, top, p1)
+    middle = _ratio(np.maximum(q.bi_left - d, 0.0) + d * q.h1_types * p1, q.h1_left)
+    p2 = np.where(seen_h1, middle, p1)
+    top = _ratio(np.maximum(q.tri - d, 0.0) + d * q.ctx_types * p2, q.ctx)
+    return np.where(q.ctx > 0, top, p2)
+
+
+def perplexity(probs: np.ndarray) -> float | None:
+    """``exp`` of the mean negative log-probability; None when some event has probability 0."""
+    if len(probs) == 0:
+        return None
+    if (probs <= 0).any():
+        return None
+    return float(np.exp(-np.mean(np.log(probs))))
+
+
+MODELS = ("uniform", "unigram_add_k", "bigram_add_k", "trigram_add_k", "bigram_kneser_ney",
+          "trigram_kneser_ney")
+
+
+def evaluate(t: CountTables, ev: Events, *, space: int, k: float, d: float) -> dict[str, float | None]:
+    """Perplexity of every baseline model on one split's events."""
+    if len(ev) == 0:
+        return dict.fromkeys(MODELS)
+    q = Lookups.of(t, ev)
+    return {
+        "uniform": perplexity(np.full(len(ev), 1.0 / space)),
+        "unigram_add_k": perplexity(add_k(t, q, 1, k, space)),
+        "bigram_add_k": perplexity(add_k(t, q, 2, k, space)),
+        "trigram_add_k": perplexity(add_k(t, q, 3, k, space)),
+        "bigram_kneser_ney": perplexity(kneser_ney(t, q, 2, d, space)),
+        "trigram_kneser_ney": perplexity(kneser_ney(t, q, 3, d, space)),
+    }

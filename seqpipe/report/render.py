@@ -1,0 +1,155 @@
+"""The report as JSON and as Markdown; atomic text writes."""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+from typing import Any, Final
+
+from seqpipe.errors import SeqpipeError
+
+PLOTS_HINT: Final = "install seqpipe[plots] for plots"
+MODEL_NAMES: Final = {
+    "uniform": "uniform",
+    "unigram_add_k": "unigram add-k",
+    "bigram_add_k": "bigram add-k",
+    "trigram_add_k": "trigram add-k",
+    "bigram_kneser_ney": "bigram Kneser-Ney",
+    "trigram_kneser_ney": "trigram Kneser-Ney",
+}
+
+
+def to_json(report: dict[str, Any]) -> str:
+    """Stable JSON text (sorted keys; NaN/inf refused: absent figures are null)."""
+    return json.dumps(report, indent=2, sort_keys=True, ensure_ascii=False, allow_nan=False) + "\n"
+
+
+def write_text(path: Path, text: str) -> None:
+    """Write ``text`` to ``path`` via a temporary file and a rename."""
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        tmp.write_text(text, encoding="utf-8")
+        os.replace(tmp, path)
+    except OSError as exc:
+        raise SeqpipeError(f"{path}: cannot write the report ({exc})") from exc
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+
+
+def _num(value: Any, digits: int = 4) -> str:
+    if value is None:
+        return "n/a"
+    if isinstance(value, bool):
+        return str(value)
+    if isinstance(value, int):
+        return f"{value:,}"
+    if isinstance(value, float):
+        return f"{value:.{digits}g}"
+    return str(value)
+
+
+def _pct(value: Any) -> str:
+    return "n/a" if value is None else f"{100 * value:.2f}%"
+
+
+def _cell(text: str) -> str:
+    return text.replace("|", "\\|").replace("\n", " ")
+
+
+def _table(header: list[str], rows: list[list[str]]) -> list[str]:
+    out = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
+    out += ["| " + " | ".join(_cell(c) for c in row) + " |" for row in rows]
+    return [*out, ""]
+
+
+def _splits(report: dict[str, Any]) -> list[str]:
+    splits = report.get("splits", {})
+    lines = ["## Splits", ""]
+    header = ["split", "documents", "tokens", "content tokens", "distinct", "empty docs",
+              "length min / median / p95 / max", "unknown rate", "Zipf exponent (R²)"]
+    rows = []
+    for name, s in splits.items():
+        dl = s["document_length"]
+        z = s["zipf"]
+        zipf = f"{z['exponent']:.3f} ({z['r_squared']:.3f}, ranks 1..{z['ranks']})" if z else "n/a"
+        rows.append([name, _num(s["documents"]), _num(s["tokens"]), _num(s["content_tokens"]),
+                     _num(s["distinct_tokens"]), _num(s["empty_documents"]),
+                     " / ".join(_num(dl[k]) for k in ("min", "median", "p95", "max")),
+                     _pct(s["unknown_rate"]), zipf])
+    lines += _table(header, rows)
+    lines += ["Lengths count tokens including begin/end markers (docs table); the other token figures "
+              "count content tokens (markers dropped). The 95th percentile interpolates linearly.", ""]
+    ks = sorted({k for s in splits.values() for k in s["coverage"]}, key=int)
+    if ks:
+        lines += ["### Coverage by the k most frequent train tokens", ""]
+        rows = [[name] + [_pct(s["coverage"].get(k)) for k in ks] for name, s in splits.items()]
+        lines += _table(["split"] + [f"k = {k}" for k in ks], rows)
+    return lines
+
+
+def _ngrams(report: dict[str, Any]) -> list[str]:
+    top = report.get("top_ngrams")
+    if not top:
+        return []
+    lines = ["## Most frequent n-grams of train", ""]
+    for n, entries in top.items():
+        lines += [f"### {n}-grams", ""]
+        lines += _table(["rank", "tokens", "count"],
+                        [[str(i + 1), " ".join(repr(t) for t in e["tokens"]), _num(e["count"])]
+                         for i, e in enumerate(entries)])
+    return lines
+
+
+def _leakage(report: dict[str, Any]) -> list[str]:
+    leak = report.get("leakage")
+    if not leak:
+        return []
+    n = report["settings"]["ngram_n"]
+    lines = ["## Leakage from train", ""]
+    rows = []
+    for name, d in leak["documents"].items():
+        g = leak["ngrams"][name]
+        rows.append([name, _num(d["checked"]), _num(d["duplicated"]), _pct(d["share"]),
+                     _num(d.get("text_duplicated")), _num(g["windows"]), _pct(g["share"])])
+    lines += _table(["split", "documents checked", "same ids as a train doc", "share",
+                     "same text hash", f"{n}-gram windows", "windows seen in train"], rows)
+    lines += ["Documents: XXH3-128 of each non-empty document's content ids. Windows: 64-bit multilinear "
+              f"hash of every {n}-token window inside one document.", ""]
+    for name, d in leak["documents"].items():
+        if d["examples"]:
+            lines += [f"Examples from {name}:", ""]
+            lines += [f"- document {e['document']} = train document {e['train_document']} "
+                      f"({e['tokens']} tokens): {e['text']!r}" for e in d["examples"]]
+            lines.append("")
+    return lines
+
+
+def _perplexity(report: dict[str, Any]) -> list[str]:
+    ppl = report.get("perplexity")
+    if not ppl:
+        return []
+    s = report["settings"]
+    lines = ["## Baseline perplexities", "", ppl["predicted"], "",
+             f"add-k uses k = {s['add_k']}; Kneser-Ney uses discount {s['kn_discount']}.", ""]
+    names = list(ppl["splits"])
+    rows = [[MODEL_NAMES[m]] + [_num(ppl["splits"][n][m], 6) for n in names] for m in MODEL_NAMES]
+    rows.append(["events"] + [_num(ppl["splits"][n]["events"]) for n in names])
+    lines += _table(["model", *names], rows)
+    return lines
+
+
+def to_markdown(report: dict[str, Any], *, plots_drawn: bool) -> str:
+    """The human-readable report."""
+    ds = report["dataset"]
+    lines = ["# Corpus report", "",
+             f"Dataset fingerprint `{ds['fingerprint']}`, vocabulary of {ds['vocab_size']:,} ids "
+             f"(specials: {', '.join(ds['specials'])}).", ""]
+    lines += _splits(report)
+    lines += ["## Rank-frequency", ""]
+    lines += (["![rank-frequency](rank_frequency.png)", ""] if plots_drawn else [PLOTS_HINT, ""])
+    lines += _ngrams(report) + _leakage(report) + _perplexity(report)
+    if report.get("notes"):
+        lines += ["## Notes", ""] + [f"- {note}" for note in report["notes"]] + [""]
+    return "\n".join(lines)
