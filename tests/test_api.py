@@ -1,0 +1,23 @@
+"""The public API: ``__all__`` is sorted, complete, and importing seqpipe pulls no optional extra."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import seqpipe
+
+
+def test_all_is_sorted_and_equals_public_names() -> None:
+    """__all__ lists exactly the public names of the package namespace, sorted."""
+    assert seqpipe.__all__ == sorted(seqpipe.__all__)
+    public = {n for n in vars(seqpipe) if not n.startswith("_")}
+    modules = {n for n in public if type(getattr(seqpipe, n)).__name__ == "module"}
+    assert set(seqpipe.__all__) == public - modules
+
+
+def test_import_needs_no_optional_extra() -> None:
+    """import seqpipe loads neither torch, matplotlib nor Dask."""
+    code = "import sys, seqpipe; print(sorted(m for m in ('torch', 'matplotlib', 'distributed') if m in sys.modules))"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "[]"
