@@ -109,6 +109,11 @@ def section(cls: type[T], data: Any, path: str, *, skip: Sequence[str] = ()) -> 
     allowed = init_fields(cls)
     table = check_keys(path, data, [*allowed, *skip])
     kwargs = {k: v for k, v in table.items() if k not in skip}
+    required = [f.name for f in dataclasses.fields(cls)  # type: ignore[arg-type]
+                if f.init and f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING]
+    missing = [k for k in required if k not in kwargs]
+    if missing:
+        raise RecipeError(f"{path}.{missing[0]}" if path else missing[0], "missing required key")
     try:
         return cls(**kwargs)
     except RecipeError as exc:

@@ -152,7 +152,7 @@ def _run(executor: Executor, fn: Callable[[Any], T], tasks: Sequence[Any], desc:
 def _split_of(hashes: np.ndarray, fractions: Sequence[float], seed: int) -> np.ndarray:
     """Split index per document from a seeded mix of its content hash (splitmix64 finalizer)."""
     x = hashes[:, :8].copy().view("<u8").reshape(-1).astype(np.uint64)
-    x ^= np.uint64(seed) * np.uint64(0x9E3779B97F4A7C15) if seed else np.uint64(0)
+    x ^= np.uint64((seed * 0x9E3779B97F4A7C15) & 0xFFFFFFFFFFFFFFFF)  # Python ints: no overflow
     x ^= x >> np.uint64(30)
     x *= np.uint64(0xBF58476D1CE4E5B9)
     x ^= x >> np.uint64(27)

@@ -1,0 +1,63 @@
+"""Cleaning steps: the recipe's ``[[clean]]`` entries, one step per module.
+
+``parse_step(table, path)`` builds the step named by ``table["kind"]``; steps run
+in recipe order on ``large_string`` arrays (see :mod:`seqpipe.clean.base`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from typing import Any, Final
+
+import pyarrow as pa
+
+from seqpipe._parse import _show, section
+from seqpipe.clean.base import CleanStep
+from seqpipe.clean.collapse_whitespace import CollapseWhitespace
+from seqpipe.clean.dedupe import Dedupe
+from seqpipe.clean.lowercase import Lowercase
+from seqpipe.clean.min_length import MinLength
+from seqpipe.clean.normalize import Normalize
+from seqpipe.clean.replace import Replace
+from seqpipe.clean.strip_control import StripControl
+from seqpipe.errors import RecipeError
+
+STEP_KINDS: Final[dict[str, type[CleanStep]]] = {
+    cls.kind: cls
+    for cls in (Normalize, Lowercase, Replace, StripControl, CollapseWhitespace, MinLength, Dedupe)
+}
+
+
+def parse_step(table: Any, path: str) -> CleanStep:
+    """The cleaning step described by recipe table ``table`` found at key path ``path``."""
+    kinds = ", ".join(repr(k) for k in STEP_KINDS)
+    if not isinstance(table, Mapping):
+        raise RecipeError(path, f"expected a table, got {_show(table)}")
+    if "kind" not in table:
+        raise RecipeError(f"{path}.kind", f"missing; expected one of {kinds}")
+    kind = table["kind"]
+    if not isinstance(kind, str) or kind not in STEP_KINDS:
+        raise RecipeError(f"{path}.kind", f"unknown cleaning step {_show(kind)}; expected one of {kinds}")
+    return section(STEP_KINDS[kind], table, path, skip=("kind",))
+
+
+def apply_steps(steps: Sequence[CleanStep], docs: pa.Array) -> pa.Array:
+    """``docs`` through every step in order (``dedupe`` passes them on unchanged)."""
+    for step in steps:
+        docs = step.apply(docs)
+    return docs
+
+
+__all__ = [
+    "STEP_KINDS",
+    "CleanStep",
+    "CollapseWhitespace",
+    "Dedupe",
+    "Lowercase",
+    "MinLength",
+    "Normalize",
+    "Replace",
+    "StripControl",
+    "apply_steps",
+    "parse_step",
+]

@@ -1,0 +1,123 @@
+"""Byte streams for the line-oriented kinds (text, JSON Lines): opening, decompression, blocks.
+
+Decompression is pyarrow's (``pa.input_stream(..., compression=...)``); a truncated
+or corrupt compressed file surfaces as an ``OSError`` from pyarrow, which we turn
+into a :class:`SourceError` naming the file.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Final
+
+import pyarrow as pa
+
+from seqpipe.errors import SourceError, SourceMissingError
+
+COMPRESSIONS: Final = ("auto", "none", "gzip", "bz2", "zstd")
+_SUFFIXES: Final = {".gz": "gzip", ".bz2": "bz2", ".zst": "zstd"}
+UTF8_BOM: Final = b"\xef\xbb\xbf"
+_SCAN_BLOCK: Final = 1 << 16
+
+
+def codec_for(path: Path, compression: str) -> str | None:
+    """The pyarrow codec name for ``path`` (None: not compressed)."""
+    if compression == "auto":
+        return _SUFFIXES.get(path.suffix.lower())
+    return None if compression == "none" else compression
+
+
+def file_size(path: Path) -> int:
+    """Size of ``path`` in bytes, as a SourceError when it cannot be read."""
+    try:
+        return os.stat(path).st_size
+    except FileNotFoundError as exc:
+        raise SourceMissingError(str(path), "file not found (it was removed after the glob matched)") from exc
+    except OSError as exc:
+        raise SourceError(str(path), f"cannot read the file: {exc.strerror or exc}") from exc
+
+
+def _open(path: Path, codec: str | None) -> pa.NativeFile:
+    try:
+        if codec is None:
+            return pa.OSFile(str(path), "rb")
+        return pa.input_stream(str(path), compression=codec)
+    except FileNotFoundError as exc:
+        raise SourceMissingError(str(path), "file not found (it was removed after the glob matched)") from exc
+    except (OSError, pa.ArrowException) as exc:
+        raise SourceError(str(path), f"cannot open the file: {exc}") from exc
+
+
+def _read(stream: pa.NativeFile, size: int, path: Path, codec: str | None) -> bytes:
+    try:
+        data: bytes = stream.read(size)
+    except (OSError, pa.ArrowException) as exc:
+        what = f"{codec} stream is truncated or corrupt" if codec else "read failed"
+        raise SourceError(str(path), f"{what}: {exc}") from exc
+    return data
+
+
+def read_blocks(path: Path, codec: str | None, start: int, stop: int | None,
+                block_bytes: int) -> Iterator[tuple[int, bytes]]:
+    """``(offset, block)`` pairs covering ``[start, stop)`` of the (decompressed) stream.
+
+    A UTF-8 byte order mark at offset 0 is dropped; offsets stay absolute, so the
+    first block of such a file starts at offset 3 (and is empty if nothing follows
+    the mark). Never reads at or past ``stop``.
+    """
+    if codec is not None and start != 0:
+        raise SourceError(str(path), "a compressed file can only be read from its start")
+    with _open(path, codec) as stream:
+        if start:
+            stream.seek(start)
+        pos = start
+        pending = b""
+        if start == 0:
+            # Read the first bytes one short read at a time if need be (decompressing
+            # streams may return less than asked), but never past stop.
+            head = len(UTF8_BOM) if stop is None else min(len(UTF8_BOM), stop)
+            while len(pending) < head and (more := _read(stream, head - len(pending), path, codec)):
+                pending += more
+            if pending == UTF8_BOM:
+                pending = b""
+                pos = len(UTF8_BOM)
+        yielded = False
+        while stop is None or pos < stop:
+            want = block_bytes if stop is None else min(block_bytes, stop - pos)
+            if want > len(pending):
+                pending += _read(stream, want - len(pending), path, codec)
+            block, pending = pending, b""
+            if not block:
+                break
+            yield pos, block
+            yielded = True
+            pos += len(block)
+        if not yielded and pos > start:
+            yield pos, b""  # only a byte order mark was there: let the caller count its bytes
+
+
+def scan_cut(path: Path, pos: int, stop: int, pattern: re.Pattern[bytes]) -> int | None:
+    """End of the first match of ``pattern`` at or after ``pos``.
+
+    Used by ``plan``. Only the trailing run of ASCII whitespace is carried from one
+    scan block to the next, since our separators consist of such bytes only.
+    """
+    buf = bytearray()
+    base = pos
+    with _open(path, None) as stream:
+        stream.seek(pos)
+        while base + len(buf) < stop:
+            block = _read(stream, min(_SCAN_BLOCK, stop - base - len(buf)), path, None)
+            if not block:
+                return None
+            buf += block
+            match = pattern.search(buf)
+            if match is not None:
+                return base + match.end()
+            keep = len(buf.rstrip())
+            del buf[:keep]
+            base += keep
+    return None

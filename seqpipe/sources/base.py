@@ -1,0 +1,298 @@
+"""The interface every source kind implements, and the document rules they share.
+
+A source is one ``[[sources]]`` entry of a recipe. Reading it takes three calls,
+so that a build can spread the work over processes without reading a file twice:
+
+1. ``resolve(root)`` -> the files its globs match, in a fixed order;
+2. ``plan(path, target_bytes)`` -> :class:`Part` s of one file, each about
+   ``target_bytes`` long and cut on document boundaries;
+3. ``read(path, part, stats)`` -> ``pa.large_string()`` arrays of documents.
+
+The documents a file yields never depend on how it was planned or on
+``batch_bytes``: the contract tests check this for every kind.
+
+Rules every kind follows (see :class:`DocumentFinisher`): a document larger than
+``max_document_bytes`` is refused, skipped or truncated (``oversize``) *before*
+its bytes are decoded; bytes that are not UTF-8 are refused, replaced with
+U+FFFD or make the document skipped (``invalid_utf8``); CRLF and CR-only line
+ends become ``"\\n"``; a document with nothing but ASCII blanks (space, tab,
+vertical tab, form feed, line ends) is not emitted.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import glob
+import os
+import re
+from abc import ABC, abstractmethod
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+from pathlib import Path, PurePath
+from typing import Any, ClassVar, Final
+
+import pyarrow as pa
+
+from seqpipe._parse import parse_int, parse_str, parse_str_tuple, to_plain
+from seqpipe.errors import InvalidUtf8Error, RecipeError, SourceError, SourceMissingError
+
+DEFAULT_MAX_DOCUMENT_BYTES: Final = 64 << 20
+DEFAULT_BATCH_BYTES: Final = 1 << 20
+INVALID_UTF8_POLICIES: Final = ("error", "replace", "skip")
+OVERSIZE_POLICIES: Final = ("error", "skip", "truncate")
+BAD_RECORD_POLICIES: Final = ("error", "skip")
+
+# A document made only of these (after line-end handling) is empty for our purposes.
+_BLANK_TEXT: Final = re.compile(r"[ \t\x0b\x0c\r\n]*")
+
+
+@dataclass(frozen=True, slots=True)
+class Part:
+    """A piece of one file that one ``read`` call handles.
+
+    ``[start, stop)`` are byte offsets for text and JSON Lines files (``stop=None``:
+    to the end of the stream, used for compressed files), row-group indices for
+    Parquet and record-batch indices for Arrow IPC files.
+    """
+
+    start: int = 0
+    stop: int | None = None
+
+
+@dataclass(slots=True)
+class ReadStats:
+    """Counters a reader fills while it reads; ``add`` merges the counts of parallel reads.
+
+    ``documents`` counts emitted documents; ``bytes_read`` counts input bytes consumed
+    (after decompression; for columnar files, the bytes of the text values). The other
+    counters count documents (records) affected by each policy.
+    """
+
+    documents: int = 0
+    bytes_read: int = 0
+    invalid_utf8_replaced: int = 0
+    invalid_utf8_skipped: int = 0
+    bad_records_skipped: int = 0
+    oversize_skipped: int = 0
+    oversize_truncated: int = 0
+
+    def add(self, other: ReadStats) -> None:
+        """Add ``other``'s counts to these."""
+        for f in dataclasses.fields(self):
+            setattr(self, f.name, getattr(self, f.name) + getattr(other, f.name))
+
+    def as_dict(self) -> dict[str, int]:
+        """The counters as a plain dict (for manifests and reports)."""
+        return {f.name: int(getattr(self, f.name)) for f in dataclasses.fields(self)}
+
+
+def _parse_paths(value: Any) -> tuple[str, ...]:
+    if isinstance(value, str):
+        value = (value,)
+    globs = parse_str_tuple("paths", value)
+    if not globs:
+        raise RecipeError("paths", "missing: expected a glob or a non-empty list of globs")
+    return globs
+
+
+@dataclass(frozen=True, slots=True)
+class Source(ABC):
+    """Fields every source kind has; see the module docstring for the reading protocol.
+
+    ``paths`` (required) is one glob or a list of globs relative to the recipe's
+    directory (``**`` matches any number of directories); it is stored as a tuple.
+    """
+
+    kind: ClassVar[str]
+
+    paths: tuple[str, ...] = ()
+    invalid_utf8: str = "error"
+    max_document_bytes: int = DEFAULT_MAX_DOCUMENT_BYTES
+    oversize: str = "error"
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "paths", _parse_paths(self.paths))
+        parse_str("invalid_utf8", self.invalid_utf8, choices=INVALID_UTF8_POLICIES)
+        parse_int("max_document_bytes", self.max_document_bytes, minimum=1)
+        parse_str("oversize", self.oversize, choices=OVERSIZE_POLICIES)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The source as a plain table (with its ``kind``), for canonical recipes."""
+        plain: dict[str, Any] = to_plain(self)
+        return plain
+
+    def resolve(self, root: Path) -> list[Path]:
+        """Files the globs match under ``root``: sorted by relative POSIX path, each once.
+
+        Raises :class:`SourceMissingError` for a glob that matches no file.
+        """
+        found: dict[str, Path] = {}
+        for pattern in self.paths:
+            hits = glob.glob(pattern, root_dir=root, recursive=True)
+            files = [h for h in hits if (root / h).is_file()]
+            if not files:
+                raise SourceMissingError(str(root), f"glob {pattern!r} matched no file under {root}")
+            for hit in files:
+                key = PurePath(os.path.normpath(hit)).as_posix()
+                found.setdefault(key, root / key)
+        return [found[key] for key in sorted(found)]
+
+    @abstractmethod
+    def plan(self, path: Path, target_bytes: int) -> list[Part]:
+        """Cut ``path`` into parts of about ``target_bytes`` on document boundaries."""
+
+    @abstractmethod
+    def read(self, path: Path, part: Part, stats: ReadStats, *,
+             batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
+        """Yield the documents of ``part`` as ``large_string`` arrays of about ``batch_bytes``."""
+
+    def documents(self, root: Path, stats: ReadStats, *, target_bytes: int = 64 << 20,
+                  batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
+        """Every document of every matched file, in order, in one process."""
+        for path in self.resolve(root):
+            for part in self.plan(path, target_bytes):
+                yield from self.read(path, part, stats, batch_bytes=batch_bytes)
+
+
+@dataclass(frozen=True, slots=True)
+class RecordSource(Source):
+    """Fields of the kinds that hold records (JSON Lines, Parquet, Arrow IPC).
+
+    ``field`` names the text field (column). ``bad_records``: what to do with a
+    record whose text is missing, null or not a string (JSON Lines also: a line
+    that is not JSON) -- ``"error"`` or ``"skip"`` (counted).
+    """
+
+    field: str = "text"
+    bad_records: str = "error"
+
+    def __post_init__(self) -> None:
+        Source.__post_init__(self)
+        parse_str("field", self.field)
+        parse_str("bad_records", self.bad_records, choices=BAD_RECORD_POLICIES)
+
+
+Data = bytes | bytearray | memoryview
+
+
+def truncate_utf8(data: Data, limit: int) -> Data:
+    """The first ``limit`` bytes of ``data``, moved back so no UTF-8 character is cut."""
+    if len(data) <= limit:
+        return data
+    cut = limit
+    # Step back over at most three continuation bytes (10xxxxxx): the cut then sits
+    # before the lead byte of the character that straddled the limit.
+    while cut > 0 and limit - cut < 3 and (data[cut] & 0xC0) == 0x80:
+        cut -= 1
+    return data[:cut]
+
+
+def normalize_line_ends(text: str) -> str:
+    """CRLF and CR-only line ends as ``"\\n"``."""
+    if "\r" not in text:
+        return text
+    return text.replace("\r\n", "\n").replace("\r", "\n")
+
+
+def is_blank(text: str) -> bool:
+    """True when ``text`` holds nothing but ASCII blanks and line ends."""
+    return _BLANK_TEXT.fullmatch(text) is not None
+
+
+class DocumentFinisher:
+    """Applies the size, UTF-8, line-end and blank rules to one document, counting in ``stats``.
+
+    Errors name the file and where the document is: an absolute byte offset (in the
+    decompressed stream for compressed files), a line number, or a row index.
+    ``line_of`` maps the line numbers callers pass to the ones errors show; it is
+    only called when an error is raised (JSON Lines parts count lines lazily).
+    """
+
+    __slots__ = ("_compressed", "_invalid", "_limit", "_line_of", "_oversize", "path", "stats")
+
+    def __init__(self, source: Source, path: Path, stats: ReadStats, *, compressed: bool = False,
+                 line_of: Callable[[int], int] | None = None) -> None:
+        self.path = str(path)
+        self.stats = stats
+        self._limit = source.max_document_bytes
+        self._oversize = source.oversize
+        self._invalid = source.invalid_utf8
+        self._compressed = compressed
+        self._line_of = line_of
+
+    def error(self, cls: type[SourceError], message: str, *, offset: int | None = None,
+              line: int | None = None, row: int | None = None) -> SourceError:
+        """An error of class ``cls`` naming this file and the place given."""
+        if row is not None:
+            message = f"row {row}: {message}"
+        if self._compressed and offset is not None:
+            message += " (the byte offset counts the decompressed stream)"
+        if line is not None and self._line_of is not None:
+            line = self._line_of(line)
+        return cls(self.path, message, offset=offset, line=line)
+
+    def oversize_error(self, size: int | None, *, offset: int | None = None, line: int | None = None,
+                       row: int | None = None) -> SourceError:
+        """The error for a document over ``max_document_bytes`` (size None: not known yet)."""
+        what = "a document" if size is None else f"a document of {size} bytes"
+        message = (f"{what} is larger than max_document_bytes = {self._limit}; raise the limit "
+                   "or set oversize = \"skip\" or \"truncate\"")
+        return self.error(SourceError, message, offset=offset, line=line, row=row)
+
+    def check_size(self, size: int, *, offset: int | None = None, line: int | None = None,
+                   row: int | None = None) -> bool:
+        """False when a document of ``size`` bytes is dropped; True to keep (truncated if over)."""
+        if size <= self._limit:
+            return True
+        if self._oversize == "error":
+            raise self.oversize_error(size, offset=offset, line=line, row=row)
+        if self._oversize == "skip":
+            self.stats.oversize_skipped += 1
+            return False
+        self.stats.oversize_truncated += 1
+        return True
+
+    def decode(self, data: bytes | bytearray | memoryview, *, offset: int | None = None,
+               line: int | None = None, row: int | None = None) -> str | None:
+        """``data`` as text under the ``invalid_utf8`` policy (None: the document is skipped)."""
+        try:
+            return str(data, "utf-8")
+        except UnicodeDecodeError as exc:
+            if self._invalid == "error":
+                at = None if offset is None else offset + exc.start
+                where = "" if row is None else f"at byte {exc.start} of the value "
+                message = (f"invalid UTF-8 {where}({exc.reason}); set invalid_utf8 = \"replace\" "
+                           "or \"skip\" to read past it")
+                raise self.error(InvalidUtf8Error, message, offset=at, line=line, row=row) from None
+        if self._invalid == "skip":
+            self.stats.invalid_utf8_skipped += 1
+            return None
+        self.stats.invalid_utf8_replaced += 1
+        return str(data, "utf-8", "replace")
+
+    def finish(self, data: bytes | bytearray | memoryview, *, offset: int | None = None,
+               line: int | None = None, row: int | None = None) -> str | None:
+        """The document held in ``data``, or None when a policy drops it (the drop is counted)."""
+        if not self.check_size(len(data), offset=offset, line=line, row=row):
+            return None
+        text = self.decode(truncate_utf8(data, self._limit), offset=offset, line=line, row=row)
+        if text is None:
+            return None
+        text = normalize_line_ends(text)
+        return None if is_blank(text) else text
+
+    def finish_text(self, text: str, encoded_size: int, *, line: int | None = None,
+                    row: int | None = None) -> str | None:
+        """Like :meth:`finish` for text already decoded (a JSON string value)."""
+        if not self.check_size(encoded_size, line=line, row=row):
+            return None
+        if encoded_size > self._limit:
+            text = str(truncate_utf8(text.encode("utf-8"), self._limit), "utf-8")
+        text = normalize_line_ends(text)
+        return None if is_blank(text) else text
+
+
+def to_array(docs: list[str], stats: ReadStats) -> pa.Array:
+    """Documents as a ``large_string`` array, counted in ``stats``."""
+    stats.documents += len(docs)
+    return pa.array(docs, type=pa.large_string())

@@ -1,0 +1,293 @@
+"""Plain text files: one document per file, per line, or per paragraph.
+
+Line ends are LF, CRLF or a lone CR. A *blank* line holds only ASCII blanks
+(space, tab, vertical tab, form feed). ``document = "line"``: every non-blank
+line is a document. ``document = "paragraph"``: a document is a run of
+non-blank lines; runs of blank lines separate documents. ``document = "file"``:
+the whole file (after a leading byte order mark) is one document.
+
+Reading works on bytes: the separators are found with compiled ``re`` byte
+patterns (C), documents are sliced out of the read buffer as memoryviews and
+decoded once each; a per-document Python loop, no per-character work in Python.
+In line mode a chunk with no CR, valid UTF-8 and no oversize line skips that
+loop: it is decoded once and split with ``pc.split_pattern`` (same documents;
+the tests compare both paths with a naive reference). The read buffer holds
+about ``batch_bytes`` plus the document being read; a document found to exceed
+``max_document_bytes`` stops growing the buffer (its first ``max_document_bytes``
+bytes are kept for ``oversize = "truncate"``).
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import ClassVar, Final
+
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from seqpipe._parse import parse_int, parse_str
+from seqpipe.sources._stream import COMPRESSIONS, codec_for, file_size, read_blocks, scan_cut
+from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, Source, to_array
+
+DOCUMENT_MODES: Final = ("file", "line", "paragraph")
+
+# Atomic group: "\r\n" is one line end, never a CR line end followed by an LF line end.
+_LE: Final = rb"(?>\r\n|\r|\n)"
+PARAGRAPH_SEPARATOR: Final = re.compile(_LE + rb"(?:[ \t\x0b\x0c]*+" + _LE + rb")+")
+# The same where no CR occurs: a literal first byte lets re skip ahead with a fast search
+# (about ten times the scanning speed of the alternation above).
+_PARAGRAPH_SEPARATOR_LF: Final = re.compile(rb"\n(?:[ \t\x0b\x0c]*+\n)+")
+_BLANK_LINE_RE2: Final = r"^[ \t\x0b\x0c]*$"
+LINE_SEPARATOR: Final = re.compile(rb"[\r\n]+")
+_LINE: Final = re.compile(rb"[^\r\n]+")
+_NONBLANK: Final = re.compile(rb"[^ \t\x0b\x0c\r\n]")
+_BACK_STEP: Final = 4096
+
+Buffer = bytes | bytearray
+
+
+def _line_start(buf: Buffer, lo: int, pos: int) -> int:
+    """Start of the line holding ``pos``, not before ``lo``."""
+    return max(buf.rfind(b"\n", lo, pos), buf.rfind(b"\r", lo, pos), lo - 1) + 1
+
+
+def _last_nonblank_end(buf: Buffer, lo: int, hi: int) -> int:
+    """One past the last non-blank byte in ``buf[lo:hi]`` (``lo`` if there is none)."""
+    while hi > lo:
+        lo_step = max(lo, hi - _BACK_STEP)
+        kept = len(buf[lo_step:hi].rstrip())
+        if kept:
+            return lo_step + kept
+        hi = lo_step
+    return lo
+
+
+def _separator(buf: Buffer, lo: int, hi: int) -> re.Pattern[bytes]:
+    return PARAGRAPH_SEPARATOR if buf.find(b"\r", lo, hi) >= 0 else _PARAGRAPH_SEPARATOR_LF
+
+
+def line_spans(buf: Buffer, end: int) -> list[tuple[int, int]]:
+    """``(start, stop)`` of every non-blank line in ``buf[:end]``."""
+    spans = []
+    for match in _LINE.finditer(buf, 0, end):
+        start, stop = match.span()
+        if _NONBLANK.search(buf, start, stop) is not None:
+            spans.append((start, stop))
+    return spans
+
+
+def paragraph_spans(buf: Buffer, end: int) -> list[tuple[int, int]]:
+    """``(start, stop)`` of every paragraph in ``buf[:end]`` (line end of its last line excluded)."""
+    gaps = []
+    prev = 0
+    for match in _separator(buf, 0, end).finditer(buf, 0, end):
+        gaps.append((prev, match.start()))
+        prev = match.end()
+    gaps.append((prev, end))
+    # The separator match is greedy, so only the first gap can start with blank lines
+    # and only the last can end with a line end (plus a blank last line).
+    start, stop = gaps[0]
+    first = _NONBLANK.search(buf, start, stop)
+    gaps[0] = (stop, stop) if first is None else (_line_start(buf, start, first.start()), stop)
+    start, stop = gaps[-1]
+    body = _last_nonblank_end(buf, start, stop)
+    ends = [k for k in (buf.find(b"\n", body, stop), buf.find(b"\r", body, stop)) if k >= 0]
+    gaps[-1] = (start, min(ends) if ends else stop)
+    return [(a, b) for a, b in gaps if b > a]
+
+
+def _fast_lines(buf: bytearray, view: memoryview, end: int, limit: int) -> pa.Array | None:
+    """The non-blank lines of ``buf[:end]`` in pyarrow compute (C), or None when the chunk needs
+    the per-document rules: it holds a CR, bytes that are not UTF-8, or an oversize line."""
+    if buf.find(b"\r", 0, end) >= 0:
+        return None
+    try:
+        text = str(view[:end], "utf-8")
+    except UnicodeDecodeError:
+        return None
+    lines = pc.split_pattern(pa.array([text], type=pa.large_string()), "\n").flatten()
+    del text
+    lines = lines.filter(pc.invert(pc.match_substring_regex(lines, _BLANK_LINE_RE2)))
+    if len(lines) and pc.max(pc.binary_length(lines)).as_py() > limit:
+        return None
+    out: pa.Array = lines
+    return out
+
+
+def _last_line_cut(buf: Buffer, frm: int) -> int:
+    return max(buf.rfind(b"\n", frm), buf.rfind(b"\r", frm)) + 1
+
+
+def _last_paragraph_cut(buf: Buffer, frm: int) -> int:
+    cut = 0
+    for match in _separator(buf, frm, len(buf)).finditer(buf, frm):
+        cut = match.end()
+    return cut
+
+
+@dataclass(frozen=True, slots=True)
+class TextSource(Source):
+    """Recipe ``kind = "text"``: UTF-8 text files, optionally compressed (gzip, bz2, zstd)."""
+
+    kind: ClassVar[str] = "text"
+
+    document: str = "file"
+    compression: str = "auto"
+
+    def __post_init__(self) -> None:
+        Source.__post_init__(self)
+        parse_str("document", self.document, choices=DOCUMENT_MODES)
+        parse_str("compression", self.compression, choices=COMPRESSIONS)
+
+    def plan(self, path: Path, target_bytes: int) -> list[Part]:
+        """Byte ranges cut just after a line end (line mode) or a blank line (paragraph mode).
+
+        Compressed files and ``document = "file"`` are one part.
+        """
+        parse_int("target_bytes", target_bytes, minimum=1)
+        if codec_for(path, self.compression) is not None or self.document == "file":
+            return [Part(0, None)]
+        size = file_size(path)
+        separator = LINE_SEPARATOR if self.document == "line" else PARAGRAPH_SEPARATOR
+        cuts = [0]
+        pos = target_bytes
+        while pos < size:
+            cut = scan_cut(path, pos, size, separator)
+            if cut is None or cut >= size:
+                break
+            cuts.append(cut)
+            pos = cut + target_bytes
+        return [Part(a, b) for a, b in zip(cuts, [*cuts[1:], size], strict=True)]
+
+    def read(self, path: Path, part: Part, stats: ReadStats, *,
+             batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
+        """Documents of ``part`` (see the module docstring for what a document is)."""
+        parse_int("batch_bytes", batch_bytes, minimum=1)
+        if self.document == "file":
+            return self._read_file(path, part, stats, batch_bytes)
+        return self._read_split(path, part, stats, batch_bytes)
+
+    def _read_file(self, path: Path, part: Part, stats: ReadStats, batch_bytes: int) -> Iterator[pa.Array]:
+        codec = codec_for(path, self.compression)
+        finisher = DocumentFinisher(self, path, stats, compressed=codec is not None)
+        limit = self.max_document_bytes
+        head = bytearray()  # at most limit + 1 bytes: enough to decide and to truncate
+        total = 0
+        content = False  # a non-blank byte seen: a blank file is no document, whatever its size
+        start = part.start
+        seen = part.start
+        for offset, block in read_blocks(path, codec, part.start, part.stop, batch_bytes):
+            if seen == part.start:
+                start = offset
+            stats.bytes_read += offset + len(block) - seen  # a byte order mark counts too
+            seen = offset + len(block)
+            total += len(block)
+            content = content or _NONBLANK.search(block) is not None
+            if len(head) <= limit:
+                head += block[:limit + 1 - len(head)]
+        if not content:
+            return
+        if total > limit and self.oversize == "error":
+            raise finisher.oversize_error(total, offset=start)
+        text = finisher.finish(head, offset=start)
+        if text is not None:
+            yield to_array([text], stats)
+
+    def _read_split(self, path: Path, part: Part, stats: ReadStats, batch_bytes: int) -> Iterator[pa.Array]:
+        codec = codec_for(path, self.compression)
+        finisher = DocumentFinisher(self, path, stats, compressed=codec is not None)
+        line_mode = self.document == "line"
+        separator = LINE_SEPARATOR if line_mode else PARAGRAPH_SEPARATOR
+        last_cut = _last_line_cut if line_mode else _last_paragraph_cut
+        limit = self.max_document_bytes
+        buf = bytearray()
+        base = part.start  # absolute offset of buf[0]
+        tail = 0  # buf[tail:] is all ASCII whitespace: a separator may be starting there
+        first: int | None = None  # first non-blank byte of the document being read
+        first_scan = 0
+        skipping = False  # inside an oversize document, dropping bytes up to its end
+        kept: bytes | None = None  # its first limit + 1 bytes, for oversize = "truncate"
+        kept_at = 0
+        blocks = read_blocks(path, codec, part.start, part.stop, batch_bytes)
+        seen = part.start
+        eof = False
+        while not eof:
+            item = next(blocks, None)
+            eof = item is None
+            block = b"" if item is None else item[1]
+            if item is not None:
+                base = item[0] - len(buf)
+                stats.bytes_read += item[0] + len(block) - seen  # a byte order mark counts too
+                seen = item[0] + len(block)
+            # A separator ending in the new bytes starts at or after the old blank tail.
+            frm = tail
+            old = len(buf)
+            buf += block
+            body = len(block.rstrip())
+            if body:
+                tail = old + body
+            out: list[pa.Array] = []
+            if skipping:
+                match = separator.search(buf)
+                if match is None and not eof:
+                    del buf[:tail]
+                    base += tail
+                    tail = 0
+                    continue
+                end = len(buf) if match is None else match.end()
+                if kept is not None:
+                    text = finisher.finish(kept, offset=kept_at)
+                    out.append(to_array([] if text is None else [text], stats))
+                    kept = None
+                skipping = False
+                del buf[:end]
+                base += end
+                tail = max(0, tail - end)
+                frm = 0
+            cut = len(buf) if eof else last_cut(buf, frm)
+            if cut:
+                out.append(self._chunk(buf, cut, base, finisher))
+                del buf[:cut]
+                base += cut
+                tail = max(0, tail - cut)
+                first, first_scan = None, 0
+            if not eof:
+                if first is None:
+                    found = _NONBLANK.search(buf, first_scan)
+                    first, first_scan = (None, len(buf)) if found is None else (found.start(), 0)
+                # buf[first:tail] holds no separator, so it lies inside one document.
+                if first is not None and tail - first > limit:
+                    start = _line_start(buf, 0, first)
+                    if self.oversize == "error":
+                        raise finisher.oversize_error(None, offset=base + start)
+                    if self.oversize == "truncate":
+                        kept, kept_at = bytes(buf[start:start + limit + 1]), base + start
+                    else:
+                        stats.oversize_skipped += 1
+                    skipping = True
+                    del buf[:tail]
+                    base += tail
+                    tail = 0
+                    first, first_scan = None, 0
+            batch = out[0] if len(out) == 1 else pa.concat_arrays(out) if out else None
+            if batch is not None and len(batch):
+                yield batch
+
+    def _chunk(self, buf: bytearray, cut: int, base: int, finisher: DocumentFinisher) -> pa.Array:
+        """The documents of ``buf[:cut]``, a run of whole documents starting at offset ``base``."""
+        with memoryview(buf) as view:
+            if self.document == "line":
+                fast = _fast_lines(buf, view, cut, self.max_document_bytes)
+                if fast is not None:
+                    finisher.stats.documents += len(fast)
+                    return fast
+            spans = line_spans(buf, cut) if self.document == "line" else paragraph_spans(buf, cut)
+            docs = []
+            for start, stop in spans:
+                text = finisher.finish(view[start:stop], offset=base + start)
+                if text is not None:
+                    docs.append(text)
+        return to_array(docs, finisher.stats)
