@@ -1,0 +1,147 @@
+"""Optional PyTorch adapter: a :class:`BatchStream` as an ``IterableDataset``.
+
+Importing this module imports torch; nothing else in seqpipe does. Use it with
+automatic batching off, since every item already is a batch::
+
+    ds = TorchBatches(stream, batch_size=8, steps=256, seed=1, stream_key=key)
+    loader = DataLoader(ds, batch_size=None, num_workers=2)
+
+Rank and world size come from the arguments or, when omitted, from an
+initialized ``torch.distributed`` process group (else 0 and 1), read once in
+the process that builds the dataset. Loader workers split the steps round-robin
+(:meth:`BatchStream.iter_steps`), and the loader's in-order round-robin fetch
+puts them back in step order, so a loader yields exactly the numpy stream.
+
+Arrays become tensors with ``torch.from_numpy`` (no copy in the producing
+process). With the ``spawn``/``forkserver`` start methods the dataset is pickled
+into each worker; pass a picklable zero-argument *factory* returning the
+TokenStream (e.g. ``functools.partial`` of a function that opens the dataset) so
+workers map the shards themselves instead of receiving copies of them.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator
+from typing import Any
+
+import numpy as np
+import torch
+import torch.distributed as dist
+from torch.utils.data import IterableDataset, get_worker_info
+
+from seqpipe.errors import StreamError
+from seqpipe.stream import TokenStream
+from seqpipe.windows import Batch, BatchStream, StreamState
+
+StreamSource = TokenStream | Callable[[], TokenStream]
+
+
+def default_rank_world() -> tuple[int, int]:
+    """(rank, world size) of the initialized default process group, else (0, 1)."""
+    if dist.is_available() and dist.is_initialized():
+        return dist.get_rank(), dist.get_world_size()
+    return 0, 1
+
+
+class TorchBatches(IterableDataset[Any]):
+    """Batches of one rank as CPU tensors; the keyword arguments are those of :class:`BatchStream`.
+
+    Items are dicts ``{"inputs", "targets", "starts", "step", "epoch", "fresh"}`` (plus ``"mask"``
+    with ``boundaries=True``), or ``(inputs, targets)`` tuples with ``as_tuple=True``.
+    ``len()`` is the number of batches left in the epoch from ``start_step``.
+    """
+
+    def __init__(self, source: StreamSource, *, batch_size: int, steps: int, order: str = "random",
+                 seed: int = 0, epoch: int = 0, rank: int | None = None, world_size: int | None = None,
+                 drop_last: bool = True, dtype: Any = np.int64, boundaries: bool = False,
+                 stream_key: str = "", start_step: int = 0, as_tuple: bool = False) -> None:
+        super().__init__()
+        if not isinstance(source, TokenStream) and not callable(source):
+            raise StreamError(f"source: expected a TokenStream or a factory returning one, "
+                              f"got {type(source).__name__}")
+        auto_rank, auto_world = default_rank_world() if rank is None or world_size is None else (0, 1)
+        self._source = source
+        self._settings: dict[str, Any] = {
+            "batch_size": batch_size, "steps": steps, "order": order, "seed": seed, "epoch": epoch,
+            "rank": auto_rank if rank is None else rank,
+            "world_size": auto_world if world_size is None else world_size,
+            "drop_last": drop_last, "dtype": dtype, "boundaries": boundaries, "stream_key": stream_key,
+            "start_step": start_step,
+        }
+        self.as_tuple = bool(as_tuple)
+        self._cache: BatchStream | None = None
+        if isinstance(source, TokenStream):
+            self.batch_stream()  # validate the settings now rather than inside a worker
+
+    # --- the underlying numpy stream -----------------------------------------------------------------
+    def batch_stream(self) -> BatchStream:
+        """The BatchStream this dataset reads (built on first use in each process)."""
+        if self._cache is None:
+            stream = self._source if isinstance(self._source, TokenStream) else self._source()
+            if not isinstance(stream, TokenStream):
+                raise StreamError(f"source: the factory returned {type(stream).__name__}, not a TokenStream")
+            self._cache = BatchStream(stream, **self._settings)
+        return self._cache
+
+    @property
+    def rank(self) -> int:
+        return int(self._settings["rank"])
+
+    @property
+    def world_size(self) -> int:
+        return int(self._settings["world_size"])
+
+    def __getstate__(self) -> dict[str, Any]:
+        state = self.__dict__.copy()
+        if not isinstance(self._source, TokenStream):
+            state["_cache"] = None  # workers rebuild from the factory instead of receiving the arrays
+        return state
+
+    def __len__(self) -> int:
+        bs = self.batch_stream()
+        return len(bs) - bs.start_step
+
+    # --- position ------------------------------------------------------------------------------------
+    def set_epoch(self, epoch: int) -> None:
+        """Start the next iteration at step 0 of ``epoch`` (call before each loader pass)."""
+        self._move(epoch, 0)
+
+    def resume(self, state: StreamState) -> None:
+        """Start the next iteration at ``state`` (validated like :meth:`BatchStream.resume`)."""
+        moved = self.batch_stream().resume(state)
+        self._move(moved.epoch, moved.start_step)
+
+    def _move(self, epoch: int, start_step: int) -> None:
+        settings = {**self._settings, "epoch": epoch, "start_step": start_step}
+        old, self._settings = self._settings, settings
+        try:
+            stream = self.batch_stream().stream
+            self._cache = BatchStream(stream, **settings)
+        except StreamError:
+            self._settings = old
+            raise
+
+    def state_after(self, item: dict[str, Any] | Batch) -> StreamState:
+        """The state once the loader item (dict form) or numpy batch has been consumed."""
+        bs = self.batch_stream()
+        if isinstance(item, Batch):
+            return bs.state_after(item)
+        return StreamState(epoch=int(item["epoch"]), step=int(item["step"]) + 1, config=bs.config)
+
+    # --- iteration -----------------------------------------------------------------------------------
+    def __iter__(self) -> Iterator[Any]:
+        info = get_worker_info()
+        worker, workers = (0, 1) if info is None else (info.id, info.num_workers)
+        for batch in self.batch_stream().iter_steps(worker, workers):
+            yield self.convert(batch)
+
+    def convert(self, batch: Batch) -> Any:
+        """A numpy Batch as tensors sharing its memory (``torch.from_numpy``)."""
+        inputs, targets = torch.from_numpy(batch.inputs), torch.from_numpy(batch.targets)
+        if self.as_tuple:
+            return inputs, targets
+        out: dict[str, Any] = {"inputs": inputs, "targets": targets, "starts": torch.from_numpy(batch.starts),
+                               "step": batch.step, "epoch": batch.epoch, "fresh": batch.fresh}
+        if batch.mask is not None:
+            out["mask"] = torch.from_numpy(batch.mask)
+        return out

@@ -1,0 +1,354 @@
+"""Batches of shifted windows over a token stream, reproducible across ranks, workers and resumes.
+
+A batch row is a window of ``T + 1`` consecutive tokens read as inputs ``[:-1]``
+and targets ``[1:]``. Every batch is a pure function of (stream key, global batch
+size ``B = world_size * batch_size``, ``T``, order, seed, epoch, step), so:
+
+* ranks: rank ``r`` of ``w`` takes rows ``[r*b, (r+1)*b)`` of the global batch;
+  the ranks' batches laid side by side are the batch one process with ``B`` gets;
+* workers: :meth:`BatchStream.iter_steps` hands worker ``i`` of ``n`` the steps
+  ``i, i+n, ...``; interleaving workers round-robin gives the single-worker stream;
+* resume: :meth:`BatchStream.batch` computes any step directly, so resuming from a
+  :class:`StreamState` costs O(1): nothing is replayed and no epoch-sized table is built.
+
+Orders (both draw a start offset in ``[0, T)`` per epoch, so window edges move):
+
+``random``  windows start at ``offset + k*T`` for ``k < floor((N - 1 - offset) / T)``;
+            they are permuted per epoch and cut into global batches of ``B``. The
+            permutation is a keyed bijection of the window indices (:class:`_Shuffle`,
+            a Feistel network with cycle walking, keys drawn from the seeded generator),
+            evaluated a page of steps at a time: the first batch and any resumed step cost
+            the same at 1M or 1G tokens, and memory does not grow with the split.
+``sequential``  the usable ``N - 1 - offset`` tokens are trimmed to a multiple of ``B``
+            and cut into ``B`` equal lanes; row ``j`` of step ``k`` is lane ``j``'s
+            ``k``-th window, so row ``j`` of step ``k+1`` continues where step ``k`` ended
+            (hidden state can be carried; ``fresh`` marks step 0).
+
+The generator is always ``np.random.Generator(np.random.PCG64(np.random.SeedSequence(...)))``
+built from integers only; global random state is never read or written.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Iterator, Mapping
+from dataclasses import dataclass
+from math import isqrt
+from typing import Any, Final
+
+import numpy as np
+import xxhash
+
+from seqpipe._hashing import hash_json
+from seqpipe._parse import check_keys, parse_bool, parse_int, parse_str
+from seqpipe.errors import RecipeError, StreamError
+from seqpipe.stream import TokenStream
+
+ORDERS: Final = ("random", "sequential")
+# Separates this use of the user's seed from any other seeded step (arbitrary constant).
+_DOMAIN: Final = 0x57A3_0001
+# Feistel rounds: 4 already make a pseudorandom permutation from a good round function
+# (Luby-Rackoff, from memory); 6 leave a margin for our cheap multiply-xorshift mixer.
+_ROUNDS: Final = 6
+_MIX1: Final = np.uint64(0xBF58476D1CE4E5B9)  # multiply-xorshift finalizer constants (common practice)
+_MIX2: Final = np.uint64(0x94D049BB133111EB)
+_PAGE_WINDOWS: Final = 4096  # permutation entries computed at once: amortizes numpy call overhead
+
+
+def _check(fn: Any, key: str, *args: Any, **kwargs: Any) -> Any:
+    """Run a ``seqpipe._parse`` validator, reporting failures as StreamError."""
+    try:
+        return fn(key, *args, **kwargs)
+    except RecipeError as exc:
+        raise StreamError(str(exc), key=key) from None
+
+
+def _key_words(key: str) -> list[int]:
+    """The stream key as four 32-bit integers (SeedSequence entropy takes integers only)."""
+    digest = xxhash.xxh3_128_intdigest(key.encode("utf-8"))
+    return [(digest >> (32 * i)) & 0xFFFFFFFF for i in range(4)]
+
+
+class _Shuffle:
+    """A keyed bijection of ``[0, n)``, computable for any index without a table.
+
+    ``[0, a*b)`` with ``a = ceil(sqrt(n))``, ``b = ceil(n / a)`` is permuted by a Feistel network
+    over the mixed radix pair ``(x // b, x % b)`` (each round ``x -> a*R + (L + F(R)) mod a`` is
+    invertible, whatever ``F`` is); indices that land in ``[n, a*b)``, fewer than ``1/sqrt(n)``
+    of them, are encrypted again until they fall inside ("cycle walking"), which keeps the map a
+    bijection of ``[0, n)``.
+    """
+
+    __slots__ = ("a", "b", "keys", "n")
+
+    def __init__(self, n: int, rng: np.random.Generator) -> None:
+        self.n = n
+        a = isqrt(n - 1) + 1 if n > 1 else 1  # ceil(sqrt(n))
+        self.a, self.b = np.uint64(a), np.uint64(-(-n // a) if n else 1)
+        self.keys = rng.integers(0, 2**64, size=_ROUNDS, dtype=np.uint64)
+
+    def _encrypt(self, x: np.ndarray) -> np.ndarray:
+        a, b = self.a, self.b
+        for key in self.keys:
+            left, right = x // b, x % b
+            h = (right ^ key) * _MIX1  # uint64 arrays wrap modulo 2**64, as the mixer intends
+            h ^= h >> np.uint64(31)
+            h *= _MIX2
+            h ^= h >> np.uint64(29)
+            x = a * right + (left + h % a) % a
+        return x
+
+    def __call__(self, index: np.ndarray) -> np.ndarray:
+        """The permuted positions of ``index`` (int64 values in ``[0, n)``)."""
+        if self.n <= 1:
+            return index.astype(np.int64, copy=True)
+        x = self._encrypt(index.astype(np.uint64))
+        outside = np.flatnonzero(x >= self.n)
+        while outside.size:
+            x[outside] = self._encrypt(x[outside])
+            outside = outside[x[outside] >= self.n]
+        return x.astype(np.int64)
+
+
+@dataclass(frozen=True, slots=True)
+class StreamState:
+    """Where a batch stream stands: the next ``step`` of ``epoch`` to produce.
+
+    ``config`` is the producing stream's :attr:`BatchStream.config` (empty: not checked), so a
+    state is refused by a stream whose key, sizes, order or seed differ.
+    """
+
+    epoch: int
+    step: int
+    config: str = ""
+
+    def __post_init__(self) -> None:
+        _check(parse_int, "epoch", self.epoch, minimum=0)
+        _check(parse_int, "step", self.step, minimum=0)
+        _check(parse_str, "config", self.config, allow_empty=True)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-ready form."""
+        return {"epoch": self.epoch, "step": self.step, "config": self.config}
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any]) -> StreamState:
+        """Inverse of :meth:`to_dict`; unknown keys are refused."""
+        try:
+            table = check_keys("stream_state", data, ("epoch", "step", "config"))
+        except RecipeError as exc:
+            raise StreamError(str(exc), key=exc.key) from None
+        for key in ("epoch", "step"):
+            if key not in table:
+                raise StreamError(f"stream_state.{key}: missing", key=key)
+        return cls(epoch=table["epoch"], step=table["step"], config=table.get("config", ""))
+
+
+@dataclass(frozen=True, slots=True, eq=False)
+class Batch:
+    """One rank's batch: ``inputs``/``targets`` are ``(rows, width)`` views of one gathered block.
+
+    ``width`` is ``T`` except possibly the last sequential batch when ``drop_last=False``.
+    ``mask`` (only with ``boundaries=True``) is True where the target starts a new document.
+    """
+
+    step: int
+    epoch: int
+    inputs: np.ndarray
+    targets: np.ndarray
+    starts: np.ndarray
+    fresh: bool
+    mask: np.ndarray | None = None
+
+
+class BatchStream:
+    """Batches of shifted windows over ``stream`` for one rank; see the module docstring.
+
+    ``batch_size`` is the per-rank row count ``b``; ``steps`` is ``T``, the time steps (tokens) per
+    row. ``len()`` is the number of batches in the epoch. With ``drop_last=False`` the tail is kept:
+    in random order the last global batch has ``m < B`` rows, split across ranks in rank order as
+    evenly as possible (the first ``m % w`` ranks get ``m // w + 1`` rows, the rest ``m // w``; a
+    rank may get zero rows); in sequential order the last step has narrower windows. A stream too
+    short for one batch has length 0.
+    """
+
+    def __init__(self, stream: TokenStream, *, batch_size: int, steps: int, order: str = "random",
+                 seed: int = 0, epoch: int = 0, rank: int = 0, world_size: int = 1,
+                 drop_last: bool = True, dtype: Any = np.int64, boundaries: bool = False,
+                 stream_key: str = "", start_step: int = 0) -> None:
+        if not isinstance(stream, TokenStream):
+            raise StreamError(f"stream: expected a TokenStream, got {type(stream).__name__}")
+        self.stream = stream
+        self.batch_size: int = _check(parse_int, "batch_size", batch_size, minimum=1)
+        self.steps: int = _check(parse_int, "steps", steps, minimum=1)
+        self.order: str = _check(parse_str, "order", order, choices=ORDERS)
+        self.seed: int = _check(parse_int, "seed", seed, minimum=0)
+        self.epoch: int = _check(parse_int, "epoch", epoch, minimum=0)
+        self.world_size: int = _check(parse_int, "world_size", world_size, minimum=1)
+        self.rank: int = _check(parse_int, "rank", rank, minimum=0, maximum=self.world_size - 1)
+        self.drop_last: bool = _check(parse_bool, "drop_last", drop_last)
+        self.boundaries: bool = _check(parse_bool, "boundaries", boundaries)
+        self.stream_key: str = _check(parse_str, "stream_key", stream_key, allow_empty=True)
+        try:
+            self.dtype: np.dtype[Any] = np.dtype(dtype)
+        except TypeError as exc:
+            raise StreamError(f"dtype: not a numpy dtype: {dtype!r}", key="dtype") from exc
+        if not np.issubdtype(self.dtype, np.integer) or not np.can_cast(stream.dtype, self.dtype):
+            raise StreamError(f"dtype: {self.dtype} cannot hold every {stream.dtype} token id", key="dtype")
+        if boundaries and stream.doc_starts is None:
+            raise StreamError("boundaries: the stream has no document offsets (doc_starts)", key="boundaries")
+        self.global_batch = self.batch_size * self.world_size
+        t, n = self.steps, len(stream)
+        self.offset = int(self._rng().integers(0, t))
+        usable = max(0, n - 1 - self.offset)
+        if self.order == "random":
+            self.num_windows = usable // t
+            whole, part = divmod(self.num_windows, self.global_batch)
+            self.lane_length = 0
+        else:
+            self.num_windows = 0
+            self.lane_length = usable // self.global_batch
+            whole, part = divmod(self.lane_length, t)
+        self._len: int = whole + (1 if part and not self.drop_last else 0)
+        self._shuffle: _Shuffle | None = None
+        self._page: tuple[int, np.ndarray] = (0, np.zeros(0, np.int64))  # (first window, starts)
+        self.start_step: int = _check(parse_int, "start_step", start_step, minimum=0, maximum=self._len)
+        self._next = self.start_step
+
+    # --- identity --------------------------------------------------------------------------------
+    def _rng(self) -> np.random.Generator:
+        code = ORDERS.index(self.order)
+        entropy = [_DOMAIN, self.seed, self.epoch, self.steps, code, *_key_words(self.stream_key)]
+        return np.random.Generator(np.random.PCG64(np.random.SeedSequence(entropy)))
+
+    @property
+    def config(self) -> str:
+        """Fingerprint of everything but epoch/step/rank that fixes the batches (for StreamState)."""
+        return hash_json({"key": self.stream_key, "global_batch": self.global_batch, "steps": self.steps,
+                          "order": self.order, "seed": self.seed, "drop_last": self.drop_last,
+                          "tokens": len(self.stream)})
+
+    def __len__(self) -> int:
+        return self._len
+
+    def __repr__(self) -> str:
+        return (f"BatchStream({self.order}, B={self.global_batch} (rank {self.rank}/{self.world_size}), "
+                f"T={self.steps}, epoch={self.epoch}, {self._len} steps)")
+
+    # --- random access ---------------------------------------------------------------------------
+    def _random_starts(self, first: int, count: int) -> np.ndarray:
+        """Start offsets of permuted windows ``first .. first + count - 1`` of the epoch.
+
+        Entries are computed a page at a time and the last page is kept. A page starts at eight
+        global batches (so a first or resumed batch is cheap) and doubles while reading moves
+        forward, up to ``_PAGE_WINDOWS``, so steady reading pays little numpy overhead per batch.
+        """
+        lo, cached = self._page
+        if lo <= first and first + count <= lo + len(cached):
+            return cached[first - lo:first - lo + count].copy()
+        if self._shuffle is None:
+            rng = self._rng()
+            rng.integers(0, self.steps)  # the offset draw, replayed so the keys follow it
+            self._shuffle = _Shuffle(self.num_windows, rng)
+        big = self.global_batch
+        start = first // big * big
+        forward = bool(cached.size) and start >= lo
+        most = max(_PAGE_WINDOWS // big, 1) * big
+        size = min(2 * len(cached), most) if forward else min(8 * big, most)
+        end = min(max(start + size, first + count), self.num_windows)
+        idx = np.arange(start, end, dtype=np.int64)
+        self._page = (start, self._shuffle(idx) * self.steps + self.offset)
+        return self._page[1][first - start:first - start + count].copy()
+
+    def rows(self, step: int) -> tuple[int, int]:
+        """This rank's row range ``[lo, hi)`` within global batch ``step``."""
+        b, w, r = self.batch_size, self.world_size, self.rank
+        if self.order == "random":
+            m = min(self.global_batch, self.num_windows - step * self.global_batch)
+        else:
+            m = self.global_batch
+        if m == self.global_batch:
+            return r * b, (r + 1) * b
+        q, rem = divmod(m, w)
+        lo = r * q + min(r, rem)
+        return lo, lo + q + (1 if r < rem else 0)
+
+    def starts_for(self, step: int) -> tuple[np.ndarray, int]:
+        """Window start offsets of this rank's rows at ``step`` and the window width."""
+        if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or not 0 <= step < self._len:
+            raise StreamError(f"step: expected 0 <= step < {self._len}, got {step!r}", key="step")
+        step = int(step)
+        lo, hi = self.rows(step)
+        if self.order == "random":
+            return self._random_starts(step * self.global_batch + lo, hi - lo), self.steps
+        lanes = np.arange(lo, hi, dtype=np.int64)
+        width = min(self.steps, self.lane_length - step * self.steps)
+        return self.offset + lanes * self.lane_length + step * self.steps, width
+
+    def batch(self, step: int) -> Batch:
+        """Batch ``step`` of this epoch for this rank, computed directly (no replay)."""
+        starts, width = self.starts_for(step)
+        block = self.stream.gather(starts, width + 1, self.dtype)
+        mask = self.stream.boundary_mask(starts, width + 1) if self.boundaries else None
+        fresh = self.order == "random" or step == 0
+        return Batch(step=int(step), epoch=self.epoch, inputs=block[:, :-1], targets=block[:, 1:],
+                     starts=starts, fresh=fresh, mask=mask)
+
+    # --- iteration -------------------------------------------------------------------------------
+    def __iter__(self) -> Iterator[Batch]:
+        """Batches from the current position to the end of the epoch; advances :meth:`state`."""
+        while self._next < self._len:
+            step = self._next
+            out = self.batch(step)
+            self._next = step + 1  # the batch counts as consumed once handed out
+            yield out
+
+    def iter_steps(self, worker_id: int, num_workers: int) -> Iterator[Batch]:
+        """Steps ``start_step + worker_id``, then every ``num_workers``-th after (one loader worker).
+
+        Does not move :meth:`state`; the consumer knows how many batches it has taken.
+        """
+        n = _check(parse_int, "num_workers", num_workers, minimum=1)
+        i = _check(parse_int, "worker_id", worker_id, minimum=0, maximum=n - 1)
+        for step in range(self.start_step + i, self._len, n):
+            yield self.batch(step)
+
+    # --- resume ----------------------------------------------------------------------------------
+    def state(self) -> StreamState:
+        """The next step this stream's iterator would produce."""
+        return StreamState(epoch=self.epoch, step=self._next, config=self.config)
+
+    def state_after(self, batch: Batch) -> StreamState:
+        """The state once ``batch`` has been consumed (for loaders that prefetch)."""
+        return StreamState(epoch=batch.epoch, step=batch.step + 1, config=self.config)
+
+    def _with(self, epoch: int, start_step: int) -> BatchStream:
+        return BatchStream(self.stream, batch_size=self.batch_size, steps=self.steps, order=self.order,
+                           seed=self.seed, epoch=epoch, rank=self.rank, world_size=self.world_size,
+                           drop_last=self.drop_last, dtype=self.dtype, boundaries=self.boundaries,
+                           stream_key=self.stream_key, start_step=start_step)
+
+    def resume(self, state: StreamState) -> BatchStream:
+        """A stream like this one positioned at ``state`` (any epoch); refuses a foreign state."""
+        if not isinstance(state, StreamState):
+            raise StreamError(f"resume: expected a StreamState, got {type(state).__name__}")
+        if state.config and state.config != self.config:
+            raise StreamError("resume: the state was saved by a stream with a different key, global batch, "
+                              "window length, order, seed or token count; resume with the same settings",
+                              key="config")
+        probe = self if state.epoch == self.epoch else self._with(state.epoch, 0)
+        if state.step > len(probe):
+            raise StreamError(f"resume: step {state.step} is past the epoch's {len(probe)} steps", key="step")
+        return probe._with(state.epoch, state.step)
+
+    def next_epoch(self) -> BatchStream:
+        """The same stream at the start of the following epoch."""
+        return self._with(self.epoch + 1, 0)
+
+
+def stream_fingerprint(batches: Iterable[Batch]) -> str:
+    """XXH3-128 (hex) over each batch's inputs then targets as little-endian int64, in order."""
+    h = xxhash.xxh3_128()
+    for b in batches:
+        for arr in (b.inputs, b.targets):
+            h.update(np.ascontiguousarray(arr, dtype="<i8").data)
+    return h.hexdigest()
