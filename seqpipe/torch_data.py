@@ -21,7 +21,9 @@ workers map the shards themselves instead of receiving copies of them.
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Callable, Iterator
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -34,6 +36,12 @@ from seqpipe.stream import TokenStream
 from seqpipe.windows import Batch, BatchStream, StreamState
 
 StreamSource = TokenStream | Callable[[], TokenStream]
+
+
+def _split_stream(directory: str, split: str) -> TokenStream:
+    from seqpipe.dataset import open_dataset
+
+    return open_dataset(directory).split(split).stream
 
 
 def default_rank_world() -> tuple[int, int]:
@@ -50,6 +58,20 @@ class TorchBatches(IterableDataset[Any]):
     with ``boundaries=True``), or ``(inputs, targets)`` tuples with ``as_tuple=True``.
     ``len()`` is the number of batches left in the epoch from ``start_step``.
     """
+
+    @classmethod
+    def from_dataset(cls, directory: str | Path, split: str = "train", **kwargs: Any) -> TorchBatches:
+        """Batches of one split of a built dataset; workers map the shards themselves.
+
+        The keyword arguments are those of :class:`BatchStream` (``stream_key`` is set to the
+        dataset fingerprint and split, as ``Split.batches`` does).
+        """
+        from seqpipe.dataset import open_dataset
+
+        ds = open_dataset(directory)
+        ds.split(split)  # refuse an unknown split here, not in a worker
+        factory = functools.partial(_split_stream, str(directory), split)
+        return cls(factory, stream_key=f"{ds.fingerprint}:{split}", **kwargs)
 
     def __init__(self, source: StreamSource, *, batch_size: int, steps: int, order: str = "random",
                  seed: int = 0, epoch: int = 0, rank: int | None = None, world_size: int | None = None,

@@ -131,3 +131,19 @@ def test_rank_defaults_and_bad_sources() -> None:
         TorchBatches(stream(), **{**SETTINGS, "batch_size": 0})
     with pytest.raises(StreamError, match="factory returned"):
         len(TorchBatches(lambda: np.arange(10), **SETTINGS))  # type: ignore[arg-type, return-value]
+
+
+def test_from_dataset_matches_split_batches(tmp_path: Path) -> None:
+    """TorchBatches.from_dataset on a built dataset yields the split's own numpy batch stream."""
+    from seqpipe.build import build
+    from seqpipe.dataset import open_dataset
+    from seqpipe.recipe import parse_recipe
+
+    (tmp_path / "c.txt").write_text("\n".join(f"line {i} of the tide table" for i in range(300)) + "\n")
+    recipe = parse_recipe("[[sources]]\nkind = 'text'\npaths = 'c.txt'\ndocument = 'line'\n"
+                          "[tokenizer]\nkind = 'chars'\n[shards]\ntokens = 900\n", tmp_path)
+    out = build(recipe, tmp_path / "d", workers=1, progress=False).directory
+    ds = TorchBatches.from_dataset(out, "train", batch_size=3, steps=7, seed=4)
+    items = list(DataLoader(ds, batch_size=None, num_workers=0))
+    ref = list(open_dataset(out).split("train").batches(batch_size=3, steps=7, seed=4))
+    assert_items_equal(items, ref)
