@@ -15,7 +15,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pyarrow as pa
 
-from seqpipe.errors import DatasetError, IntegrityError, ManifestError
+from seqpipe.errors import DatasetError, IntegrityError, ManifestError, ShardCorruptError
 from seqpipe.manifest import read_manifest, safe_relative
 from seqpipe.shards import read_shard, read_table
 from seqpipe.tokenizers import parse_tokenizer
@@ -48,6 +48,15 @@ class Split:
         """Per document: start (offset in the split's stream), length, source, hash."""
         rel = self.info["docs"]["path"]
         table = read_table(safe_relative(self.dataset.directory, rel, key=f"splits.{self.name}.docs.path"))
+        from seqpipe.build import DOCS_SCHEMA
+
+        try:
+            same = table.schema.remove_metadata().equals(DOCS_SCHEMA)
+        except (UnicodeDecodeError, pa.ArrowException):
+            same = False
+        if not same or any(c.null_count for c in table.columns):
+            raise ShardCorruptError(f"{rel}: not a documents table (expected columns start, length, source, hash "
+                                    "without nulls)", path=rel)
         if table.num_rows != self.num_documents:
             raise DatasetError(f"{rel}: holds {table.num_rows} documents, manifest says {self.num_documents}")
         return table

@@ -18,7 +18,9 @@ import json
 import os
 import shutil
 import uuid
+from collections import deque
 from collections.abc import Iterator, Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any, Final
@@ -34,8 +36,10 @@ from seqpipe.errors import SeqpipeError
 from seqpipe.recipe import Recipe
 from seqpipe.shards import fsync_dir, read_shard, read_table, write_shard, write_table
 from seqpipe.tokenizers.base import Encoder, Segments
+from seqpipe.tokenizers.words import count_words
 
 PART_FORMAT: Final = 1
+INGEST_THREADS: Final = max(1, int(os.environ.get("SEQPIPE_INGEST_THREADS", "2")))
 HASH_TYPE: Final = pa.binary(16)
 
 
@@ -145,30 +149,62 @@ def load_part_meta(cache_dir: str, key: str) -> PartMeta | None:
         return None
 
 
+@dataclass
+class _Batch:
+    segments: Segments | None
+    columns: dict[str, np.ndarray]
+    dropped: dict[str, int]
+
+
+def _process_batch(recipe: Recipe, batch: pa.Array) -> _Batch:
+    """Clean, segment and describe one batch of documents (runs on an ingest thread)."""
+    dropped: dict[str, int] = {}
+    docs, dedupe = _clean(recipe, batch, dropped)
+    if len(docs) == 0:
+        return _Batch(None, {}, dropped)
+    docs = docs.cast(pa.large_string())
+    columns = {
+        "hash": _doc_hashes(docs),
+        "chars": pc.utf8_length(docs).to_numpy(zero_copy_only=False).astype(np.int64),
+        "bytes": pc.binary_length(docs).to_numpy(zero_copy_only=False).astype(np.int64),
+        "words": count_words(docs),
+    }
+    segments = recipe.tokenizer.segment(docs)
+    if dedupe is not None:
+        columns["dedupe"] = dedupe
+    return _Batch(segments, columns, dropped)
+
+
 def ingest_part(task: IngestTask) -> PartMeta:
     """Read one part of one input file, clean it, segment it, and store it in the cache."""
     from seqpipe.sources.base import ReadStats
 
     recipe = task.recipe
     source = recipe.sources[task.source_index]
-    tokenizer = recipe.tokenizer
     stats = ReadStats()
     dropped: dict[str, int] = {}
     segs: list[Segments] = []
     doc_cols: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "chars", "bytes", "words")}
-    for batch in source.read(Path(task.path), task.part, stats, batch_bytes=task.batch_bytes):
-        docs, dedupe = _clean(recipe, batch, dropped)
-        if len(docs) == 0:
-            continue
-        docs = docs.cast(pa.large_string())
-        segs.append(tokenizer.segment(docs))
-        doc_cols["hash"].append(_doc_hashes(docs))
-        if dedupe is not None:
-            doc_cols["dedupe"].append(dedupe)
-        doc_cols["chars"].append(pc.utf8_length(docs).to_numpy(zero_copy_only=False).astype(np.int64))
-        doc_cols["bytes"].append(pc.binary_length(docs).to_numpy(zero_copy_only=False).astype(np.int64))
-        doc_cols["words"].append(pc.list_value_length(pc.utf8_split_whitespace(docs))
-                                 .to_numpy(zero_copy_only=False).astype(np.int64))
+
+    def collect(done: _Batch) -> None:
+        for name, count in done.dropped.items():
+            dropped[name] = dropped.get(name, 0) + count
+        if done.segments is None:
+            return
+        segs.append(done.segments)
+        for name, values in done.columns.items():
+            doc_cols[name].append(values)
+
+    # Batches are cleaned and segmented on a few threads (Arrow and numpy release the GIL)
+    # while this thread reads on; results are collected in reading order.
+    with ThreadPoolExecutor(max_workers=INGEST_THREADS) as pool:
+        pending: deque[Future[_Batch]] = deque()
+        for batch in source.read(Path(task.path), task.part, stats, batch_bytes=task.batch_bytes):
+            pending.append(pool.submit(_process_batch, recipe, batch))
+            while len(pending) > INGEST_THREADS:
+                collect(pending.popleft().result())
+        while pending:
+            collect(pending.popleft().result())
     seg = _merge_segments(segs)
     n = len(seg.doc_lengths)
 

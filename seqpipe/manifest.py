@@ -114,14 +114,18 @@ class _Check:
 
 def safe_relative(directory: Path, rel: str, *, key: str = "path") -> Path:
     """Resolve ``rel`` inside ``directory``; refuse absolute paths, '..', and symlinks leading out."""
+    if not isinstance(rel, str) or "\x00" in rel:
+        raise UnsafePathError(f"{key}: path {rel!r} must be a string without NUL bytes", path=str(rel))
     pure = PurePosixPath(rel)
+    if any(len(p.encode("utf-8", "surrogateescape")) > 255 for p in pure.parts):
+        raise UnsafePathError(f"{key}: a component of {rel[:80]!r}... is longer than 255 bytes", path=rel)
     if not rel or pure.is_absolute() or "\\" in rel or ":" in rel or any(p in ("..", "") for p in pure.parts):
         raise UnsafePathError(f"{key}: path {rel!r} must be relative and stay inside the dataset", path=rel)
     full = directory.joinpath(*pure.parts)
     try:
         real = full.resolve(strict=False)
         base = directory.resolve(strict=True)
-    except OSError as exc:
+    except (OSError, ValueError) as exc:
         raise UnsafePathError(f"{key}: cannot resolve {rel!r} ({exc})", path=rel) from exc
     if real != base and base not in real.parents:
         raise UnsafePathError(f"{key}: {rel!r} leads outside the dataset directory (to {real})", path=rel)

@@ -94,10 +94,16 @@ def read_shard(path: Path, *, dtype: np.dtype | None = None, expected_tokens: in
     """The ids of a shard: a zero-copy view of the memory-mapped file when uncompressed,
     decompressed into memory otherwise."""
     table = read_table(path)
-    meta = table.schema.metadata or {}
-    if meta.get(b"seqpipe.table") != b"shard" or table.schema.names != ["ids"]:
+    try:
+        meta = table.schema.metadata or {}
+        names = table.schema.names
+        col = table.column("ids") if names == ["ids"] else None
+    except (UnicodeDecodeError, KeyError, pa.ArrowException) as exc:
+        raise ShardCorruptError(f"{path}: malformed shard schema ({exc})", path=str(path)) from exc
+    if meta.get(b"seqpipe.table") != b"shard" or col is None:
         raise ShardCorruptError(f"{path}: not a seqpipe shard (expected one column 'ids')", path=str(path))
-    col = table.column("ids")
+    if not pa.types.is_unsigned_integer(col.type):
+        raise ShardCorruptError(f"{path}: ids have type {col.type}, expected an unsigned integer", path=str(path))
     if dtype is not None and col.type != pa.from_numpy_dtype(dtype):
         raise ShardCorruptError(f"{path}: ids have type {col.type}, manifest says {dtype}", path=str(path))
     if expected_tokens is not None and len(col) != expected_tokens:

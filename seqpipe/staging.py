@@ -51,9 +51,17 @@ def build_lock(out: Path) -> Iterator[Path]:
     lock = priv / "lock"
     me = {"pid": os.getpid(), "host": socket.gethostname()}
     for _ in range(2):
+        # write the claim to a private file first, then link it into place: the lock never
+        # exists without its contents, whenever the process dies
+        tmp = priv / f".lock.{me['pid']}.tmp"
+        with open(tmp, "w") as fh:
+            fh.write(json.dumps(me))
+            fh.flush()
+            os.fsync(fh.fileno())
         try:
-            fd = os.open(lock, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+            os.link(tmp, lock)
         except FileExistsError:
+            tmp.unlink(missing_ok=True)
             try:
                 held = json.loads(lock.read_text() or "{}")
             except (OSError, ValueError):
@@ -62,16 +70,11 @@ def build_lock(out: Path) -> Iterator[Path]:
             if isinstance(pid, int) and host == me["host"] and not _pid_alive(pid):
                 lock.unlink(missing_ok=True)  # stale: its process is gone
                 continue
-            if not held:
-                # a lock being written right now, or an unreadable one: treat as held
-                pass
             raise BuildLockedError(
                 f"{out}: another build is running (lock {lock} held by pid {pid} on {host}); "
                 "wait for it, or delete the lock file if that process is gone", path=str(lock)) from None
-        with os.fdopen(fd, "w") as fh:
-            fh.write(json.dumps(me))
-            fh.flush()
-            os.fsync(fh.fileno())
+        tmp.unlink(missing_ok=True)
+        fsync_dir(priv)
         break
     try:
         yield lock

@@ -16,7 +16,7 @@ from typing import Any
 
 from seqpipe._hashing import hash_file
 from seqpipe.errors import DatasetError, ManifestError
-from seqpipe.manifest import MANIFEST_NAME, read_manifest, safe_relative, validate
+from seqpipe.manifest import MANIFEST_NAME, dumps, read_manifest, safe_relative, validate
 from seqpipe.staging import PRIVATE
 
 TOP_LEVEL_OK = {MANIFEST_NAME, PRIVATE}
@@ -134,6 +134,9 @@ def verify(directory: str | Path, *, against: str | Path | None = None, expect: 
         report.problems.append(Problem(MANIFEST_NAME, "manifest", str(exc)))
         return report
     report.fingerprint = manifest["dataset_fingerprint"]
+    if (d / MANIFEST_NAME).read_bytes() != dumps(manifest).encode("ascii"):
+        report.problems.append(Problem(MANIFEST_NAME, "manifest", "its bytes differ from the form seqpipe writes "
+                                                                  "(same content, edited layout)"))
     entries = listed_files(manifest)
     with ThreadPoolExecutor(max_workers=threads or min(8, (os.cpu_count() or 2) * 2)) as pool:
         results = list(pool.map(lambda e: _check_file(d, e), entries))

@@ -133,11 +133,14 @@ class Vocabulary:
         if meta.get(b"seqpipe.table") != b"vocabulary" or meta.get(b"seqpipe.format") != VOCAB_FORMAT.encode():
             raise ShardCorruptError(f"{path}: not a seqpipe vocabulary file (format {VOCAB_FORMAT})", path=str(path))
         try:
+            expected = {"token": pa.binary(), "count": pa.int64(), "special": pa.bool_()}
+            if {f.name: f.type for f in table.schema} != expected or any(c.null_count for c in table.columns):
+                raise ValueError("expected columns token (binary), count (int64), special (bool), no nulls")
             roles = {str(k): int(v) for k, v in json.loads(meta[b"seqpipe.roles"]).items()}
             special = table.column("special").to_numpy(zero_copy_only=False)
             tokens = table.column("token").combine_chunks()
             counts = table.column("count").to_numpy().astype(np.int64)
-        except (KeyError, ValueError, TypeError, pa.ArrowException) as exc:
+        except (KeyError, ValueError, TypeError, UnicodeDecodeError, AttributeError, pa.ArrowException) as exc:
             raise ShardCorruptError(f"{path}: malformed vocabulary file ({exc})", path=str(path)) from exc
         n_special = int(special.sum())
         if not special[:n_special].all() or any(not 0 <= v < n_special for v in roles.values()):

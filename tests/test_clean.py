@@ -280,3 +280,25 @@ def test_parse_step_errors_name_key_and_value(table: dict[str, Any], key: str, s
         parse_step(table, "recipe.clean[1]")
     assert info.value.key == key
     assert shown in str(info.value)
+
+
+@settings(max_examples=300, deadline=None)
+@given(docs=st.lists(st.text(alphabet=st.characters(exclude_categories=("Cs",)), max_size=30), max_size=6),
+       mode=st.sampled_from(["lower", "casefold"]))
+def test_lowercase_fast_path_equals_python(docs: list[str], mode: str) -> None:
+    """The Arrow-backed lowercase step gives exactly str.lower / str.casefold on any text."""
+    from seqpipe.clean.lowercase import Lowercase
+
+    fn = str.lower if mode == "lower" else str.casefold
+    got = Lowercase(mode=mode).apply(pa.array(docs, pa.large_string())).to_pylist()
+    assert got == [fn(d) for d in docs]
+
+
+def test_lowercase_special_cases() -> None:
+    """One-to-many and contextual mappings follow Unicode SpecialCasing as Python applies them."""
+    # Source: Unicode SpecialCasing.txt (U+0130 -> U+0069 U+0307; final sigma rule), via CPython str.lower
+    from seqpipe.clean.lowercase import Lowercase
+
+    got = Lowercase().apply(pa.array(["İstanbul", "ΟΔΟΣ ΟΔΟΣ.", "Straße"], pa.large_string())).to_pylist()
+    assert got == ["i\u0307stanbul", "οδος οδος.", "straße"]
+    assert Lowercase(mode="casefold").apply(pa.array(["Straße"], pa.large_string())).to_pylist() == ["strasse"]

@@ -204,3 +204,13 @@ def test_expand_multi_id_pieces() -> None:
     ids, per_doc = expand(values, offsets, np.array([0, 2, 1, 0]), np.array([3, 1]))
     assert ids.tolist() == [7, 8, 5, 9, 7, 8]
     assert per_doc.tolist() == [4, 2]
+
+
+@settings(max_examples=300, deadline=None)
+@given(docs=st.lists(st.text(alphabet=st.characters(exclude_categories=("Cs",)), max_size=40),
+                     min_size=1, max_size=5))
+def test_count_words_equals_str_split(docs: list[str]) -> None:
+    """The numpy word count per document equals len(str.split()) (Python's Unicode whitespace)."""
+    from seqpipe.tokenizers.words import count_words
+
+    assert count_words(pa.array(docs, pa.large_string())).tolist() == [len(d.split()) for d in docs]

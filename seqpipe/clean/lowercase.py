@@ -1,28 +1,55 @@
-"""``kind = "lowercase"``: full Unicode lower-casing or case folding."""
+"""``kind = "lowercase"``: full Unicode lower-casing or case folding, with Python's semantics."""
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cache
 from typing import ClassVar, Final
 
+import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_str
-from seqpipe.clean.base import CleanStep, as_documents, map_non_ascii
+from seqpipe.clean.base import CleanStep, as_documents, map_selected, re2_class
 
 MODES: Final = ("lower", "casefold")
+_CAPITAL_SIGMA: Final = 0x03A3  # str.lower maps it by context (final sigma); Arrow does not
+
+
+@cache
+def _unsafe_class(mode: str) -> str:
+    """An RE2 class of the code points where ``pc.utf8_lower`` differs from ``str.lower`` /
+    ``str.casefold`` (computed once per process, from the installed pyarrow and Python).
+
+    Both mappings are per character apart from Python's final-sigma rule, so a document with
+    none of these characters is mapped identically by Arrow.
+    """
+    fn = str.lower if mode == "lower" else str.casefold
+    cps = np.concatenate([np.arange(0, 0xD800), np.arange(0xE000, 0x110000)]).astype("<u4")
+    text = cps.tobytes().decode("utf-32-le")
+    raw = np.frombuffer(text.encode("utf-8"), np.uint8)
+    lead = np.flatnonzero((raw & 0xC0) != 0x80)
+    one_each = pa.LargeStringArray.from_buffers(len(lead), pa.py_buffer(np.append(lead, len(raw)).astype(np.int64)),
+                                                pa.py_buffer(raw))
+    arrow = pc.utf8_lower(one_each)
+    arrow_changed = np.flatnonzero(pc.not_equal(arrow, one_each).to_numpy(zero_copy_only=False))
+    python_changed = [i for i, ch in enumerate(text) if fn(ch) != ch]
+    candidates = sorted(set(arrow_changed.tolist()) | set(python_changed))
+    got = arrow.take(pa.array(candidates, pa.int64())).to_pylist() if candidates else []
+    unsafe = [text[i] for i, a in zip(candidates, got, strict=True) if a != fn(text[i])]
+    unsafe.append(chr(_CAPITAL_SIGMA))
+    return re2_class(unsafe)
 
 
 @dataclass(frozen=True, slots=True)
 class Lowercase(CleanStep):
     """Lower-case (``str.lower``) or case-fold (``str.casefold``) every document.
 
-    ASCII documents go through ``pc.ascii_lower`` (C), which equals both ``str.lower``
-    and ``str.casefold`` on ASCII. Other documents get one ``str`` call each:
-    ``pc.utf8_lower`` is not used because it applies one-to-one case mappings only
-    (U+0130 becomes "i", where ``str.lower`` gives "i" + U+0307 as Unicode's
-    SpecialCasing.txt says) and its tables follow another Unicode version.
+    The result is always what Python's ``str`` method gives. ``pc.utf8_lower`` (C) does the
+    work for documents holding none of the characters on which it disagrees with Python
+    (one-to-many mappings such as U+0130, final sigma, code points of newer Unicode versions,
+    and for casefold the folds such as "ß" -> "ss"); those documents get one ``str`` call each.
     """
 
     kind: ClassVar[str] = "lowercase"
@@ -35,7 +62,15 @@ class Lowercase(CleanStep):
     def apply(self, docs: pa.Array) -> pa.Array:
         """Documents lower-cased (``mode = "lower"``) or case-folded (``"casefold"``)."""
         docs = as_documents(docs)
+        if not len(docs):
+            return docs
         fn = str.lower if self.mode == "lower" else str.casefold
-        # fn(ascii_lower(s)) == fn(s): both mappings are per character and lowering an
-        # ASCII letter keeps it a cased letter, so final-sigma context is unchanged.
-        return map_non_ascii(pc.ascii_lower(docs), fn) if len(docs) else docs
+        ascii_only = pc.all(pc.string_is_ascii(docs)).as_py()
+        if ascii_only:
+            return pc.ascii_lower(docs)  # equals both str methods on ASCII
+        unsafe = pc.match_substring_regex(docs, pattern=_unsafe_class(self.mode))
+        lowered = pc.utf8_lower(docs)
+        # map_selected applies fn to the original text of the flagged documents
+        fixed = map_selected(docs, unsafe, fn)
+        out: pa.Array = pc.if_else(unsafe, fixed, lowered)
+        return out

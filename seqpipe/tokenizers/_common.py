@@ -18,7 +18,7 @@ def as_string_array(texts: Sequence[str] | pa.Array) -> pa.Array:
     if isinstance(texts, pa.ChunkedArray):
         texts = texts.combine_chunks()
     if isinstance(texts, pa.Array):
-        return texts.cast(pa.large_string())
+        return texts if texts.type == pa.large_string() else texts.cast(pa.large_string())
     try:
         return pa.array(list(texts), pa.large_string())
     except UnicodeEncodeError as exc:

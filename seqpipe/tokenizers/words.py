@@ -19,7 +19,6 @@ from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 import regex
 
 from seqpipe._parse import parse_str
@@ -64,23 +63,35 @@ def _decode_code_points(data: np.ndarray, pos: np.ndarray) -> np.ndarray:
     return out
 
 
-def _segment_default(texts: pa.Array) -> tuple[pa.Array, np.ndarray]:
-    """Default-pattern segmentation with numpy over the UTF-8 bytes of the whole batch.
+_Classes = tuple[np.ndarray, np.ndarray, np.ndarray]
+_LAST: list[tuple[pa.Array, _Classes | None]] = []  # one entry: (batch, its classes)
 
-    Every byte gets its code point's class (ASCII by table; other code points through the
-    same ``regex`` classes as DEFAULT_PATTERN, once per distinct code point). Token starts are
-    marked, whitespace bytes squeezed out, and Arrow gets the squeezed buffer with the token
-    offsets: one byte-sized array per step and no Python object per token.
+
+def _byte_classes(texts: pa.Array) -> _Classes | None:
+    """The batch's UTF-8 bytes, document byte offsets, and each byte's code-point class
+    (space, word, other); None for a batch without text.
+
+    ASCII bytes are classed by table; every other code point through the same ``regex``
+    classes as DEFAULT_PATTERN, once per distinct code point, then spread over its bytes.
+    The last batch's result is kept (keyed by the array object itself, which the entry holds
+    alive), because a build asks for words and tokens of the same batch.
     """
+    if _LAST and _LAST[0][0] is texts:
+        return _LAST[0][1]
+    result = _compute_classes(texts)
+    _LAST[:] = [(texts, result)]
+    return result
+
+
+def _compute_classes(texts: pa.Array) -> _Classes | None:
     n_docs = len(texts)
     offsets = np.frombuffer(texts.buffers()[1], dtype=np.int64)[texts.offset: texts.offset + n_docs + 1]
     buf = texts.buffers()[2]
     if buf is None or n_docs == 0 or offsets[-1] == offsets[0]:
-        return pa.array([], pa.large_string()), np.zeros(n_docs, np.int64)
+        return None
     data = np.frombuffer(buf, dtype=np.uint8)[offsets[0]: offsets[-1]]
     doc_bytes = offsets - offsets[0]
     cls = _ASCII_CLASS[data]
-    is_lead = (data & 0xC0) != 0x80
     high = np.flatnonzero(data >= 0xC0)  # first bytes of multi-byte sequences
     if len(high):
         cps = _decode_code_points(data, high)
@@ -95,6 +106,35 @@ def _segment_default(texts: pa.Array) -> tuple[pa.Array, np.ndarray]:
         cls[high[three] + 2] = c[three]
         four = first >= 0xF0
         cls[high[four] + 3] = c[four]
+    return data, doc_bytes, cls
+
+
+def count_words(texts: pa.Array) -> np.ndarray:
+    """Whitespace-separated words per document (as ``len(str.split())`` counts them), in numpy."""
+    classes = _byte_classes(texts)
+    if classes is None:
+        return np.zeros(len(texts), np.int64)
+    _, doc_bytes, cls = classes
+    keep = cls != _SPACE
+    starts = keep.copy()
+    starts[1:] &= ~keep[:-1]
+    inside = doc_bytes[:-1][doc_bytes[:-1] < len(keep)]
+    starts[inside] = keep[inside]  # a word never runs across a document boundary
+    return np.diff(np.searchsorted(np.flatnonzero(starts), doc_bytes)).astype(np.int64)
+
+
+def _segment_default(texts: pa.Array) -> tuple[pa.Array, np.ndarray]:
+    """Default-pattern segmentation with numpy over the UTF-8 bytes of the whole batch.
+
+    Token starts are marked on the byte classes (:func:`_byte_classes`), whitespace bytes
+    squeezed out, and Arrow gets the squeezed buffer with the token offsets: one byte-sized
+    array per step and no Python object per token.
+    """
+    classes = _byte_classes(texts)
+    if classes is None:
+        return pa.array([], pa.large_string()), np.zeros(len(texts), np.int64)
+    data, doc_bytes, cls = classes
+    is_lead = (data & 0xC0) != 0x80
     is_word = cls == _WORDCH
     keep = cls != _SPACE
     prev_word = np.empty_like(is_word)
@@ -141,8 +181,7 @@ class WordTokenizer(Tokenizer):
         return segments_from_tokens(pa.array(flat_list, pa.large_string()), lengths)
 
     def words_in(self, texts: Sequence[str]) -> int:
-        arr = as_string_array(texts)
-        return int(pc.sum(pc.list_value_length(pc.utf8_split_whitespace(arr))).as_py() or 0)
+        return int(count_words(as_string_array(texts)).sum())
 
     def fit(self, counts: pa.Table, spec: VocabSpec) -> Encoder:
         return WordEncoder(self, build_vocabulary(counts, spec))
