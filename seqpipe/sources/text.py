@@ -6,12 +6,13 @@ line is a document. ``document = "paragraph"``: a document is a run of
 non-blank lines; runs of blank lines separate documents. ``document = "file"``:
 the whole file (after a leading byte order mark) is one document.
 
-Reading works on bytes: the separators are found with compiled ``re`` byte
-patterns (C), documents are sliced out of the read buffer as memoryviews and
-decoded once each; a per-document Python loop, no per-character work in Python.
-In line mode a chunk with no CR, valid UTF-8 and no oversize line skips that
-loop: it is decoded once and split with ``pc.split_pattern`` (same documents;
-the tests compare both paths with a naive reference). The read buffer holds
+Reading works on bytes. The reader reads about ``batch_bytes`` at a time and cuts the
+buffer after its last separator; the run of whole documents before the cut goes to the
+vectorized path of ``_fast_text`` (numpy spans, one ``take`` into a ``large_string``
+array, no Python object per document). When that path declines (an oversize document or
+bytes that are not UTF-8, see ``_fast_text``) the exact path runs: separators found with
+compiled ``re`` byte patterns (C), documents sliced out as memoryviews and finished one by
+one by ``DocumentFinisher``. The read buffer holds
 about ``batch_bytes`` plus the document being read; a document found to exceed
 ``max_document_bytes`` stops growing the buffer (its first ``max_document_bytes``
 bytes are kept for ``oversize = "truncate"``).
@@ -26,9 +27,9 @@ from pathlib import Path
 from typing import ClassVar, Final
 
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from seqpipe._parse import parse_int, parse_str
+from seqpipe.sources._fast_text import fast_documents, last_paragraph_cut
 from seqpipe.sources._stream import COMPRESSIONS, codec_for, file_size, read_blocks, scan_cut
 from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, Source, to_array
 
@@ -40,7 +41,6 @@ PARAGRAPH_SEPARATOR: Final = re.compile(_LE + rb"(?:[ \t\x0b\x0c]*+" + _LE + rb"
 # The same where no CR occurs: a literal first byte lets re skip ahead with a fast search
 # (about ten times the scanning speed of the alternation above).
 _PARAGRAPH_SEPARATOR_LF: Final = re.compile(rb"\n(?:[ \t\x0b\x0c]*+\n)+")
-_BLANK_LINE_RE2: Final = r"^[ \t\x0b\x0c]*$"
 LINE_SEPARATOR: Final = re.compile(rb"[\r\n]+")
 _LINE: Final = re.compile(rb"[^\r\n]+")
 _NONBLANK: Final = re.compile(rb"[^ \t\x0b\x0c\r\n]")
@@ -99,29 +99,11 @@ def paragraph_spans(buf: Buffer, end: int) -> list[tuple[int, int]]:
     return [(a, b) for a, b in gaps if b > a]
 
 
-def _fast_lines(buf: bytearray, view: memoryview, end: int, limit: int) -> pa.Array | None:
-    """The non-blank lines of ``buf[:end]`` in pyarrow compute (C), or None when the chunk needs
-    the per-document rules: it holds a CR, bytes that are not UTF-8, or an oversize line."""
-    if buf.find(b"\r", 0, end) >= 0:
-        return None
-    try:
-        text = str(view[:end], "utf-8")
-    except UnicodeDecodeError:
-        return None
-    lines = pc.split_pattern(pa.array([text], type=pa.large_string()), "\n").flatten()
-    del text
-    lines = lines.filter(pc.invert(pc.match_substring_regex(lines, _BLANK_LINE_RE2)))
-    if len(lines) and pc.max(pc.binary_length(lines)).as_py() > limit:
-        return None
-    out: pa.Array = lines
-    return out
-
-
 def _last_line_cut(buf: Buffer, frm: int) -> int:
     return max(buf.rfind(b"\n", frm), buf.rfind(b"\r", frm)) + 1
 
 
-def _last_paragraph_cut(buf: Buffer, frm: int) -> int:
+def _last_paragraph_cut_re(buf: Buffer, frm: int) -> int:
     cut = 0
     for match in _separator(buf, frm, len(buf)).finditer(buf, frm):
         cut = match.end()
@@ -196,12 +178,14 @@ class TextSource(Source):
         if text is not None:
             yield to_array([text], stats)
 
-    def _read_split(self, path: Path, part: Part, stats: ReadStats, batch_bytes: int) -> Iterator[pa.Array]:
+    def _read_split(self, path: Path, part: Part, stats: ReadStats, batch_bytes: int, *,
+                    slow: bool = False) -> Iterator[pa.Array]:
+        """``slow`` keeps to the per-document path (the tests compare it with the vectorized one)."""
         codec = codec_for(path, self.compression)
         finisher = DocumentFinisher(self, path, stats, compressed=codec is not None)
         line_mode = self.document == "line"
         separator = LINE_SEPARATOR if line_mode else PARAGRAPH_SEPARATOR
-        last_cut = _last_line_cut if line_mode else _last_paragraph_cut
+        last_cut = _last_line_cut if line_mode else _last_paragraph_cut_re if slow else last_paragraph_cut
         limit = self.max_document_bytes
         buf = bytearray()
         base = part.start  # absolute offset of buf[0]
@@ -249,7 +233,7 @@ class TextSource(Source):
                 frm = 0
             cut = len(buf) if eof else last_cut(buf, frm)
             if cut:
-                out.append(self._chunk(buf, cut, base, finisher))
+                out.append(self._chunk(buf, cut, base, finisher, slow=slow))
                 del buf[:cut]
                 base += cut
                 tail = max(0, tail - cut)
@@ -276,14 +260,18 @@ class TextSource(Source):
             if batch is not None and len(batch):
                 yield batch
 
-    def _chunk(self, buf: bytearray, cut: int, base: int, finisher: DocumentFinisher) -> pa.Array:
-        """The documents of ``buf[:cut]``, a run of whole documents starting at offset ``base``."""
+    def _chunk(self, buf: bytearray, cut: int, base: int, finisher: DocumentFinisher, *,
+               slow: bool = False) -> pa.Array:
+        """The documents of ``buf[:cut]``, a run of whole documents starting at offset ``base``.
+
+        ``slow`` skips the vectorized path (the tests compare the two).
+        """
+        if not slow:
+            fast = fast_documents(buf, cut, self.document == "paragraph", self.max_document_bytes)
+            if fast is not None:
+                finisher.stats.documents += len(fast)
+                return fast
         with memoryview(buf) as view:
-            if self.document == "line":
-                fast = _fast_lines(buf, view, cut, self.max_document_bytes)
-                if fast is not None:
-                    finisher.stats.documents += len(fast)
-                    return fast
             spans = line_spans(buf, cut) if self.document == "line" else paragraph_spans(buf, cut)
             docs = []
             for start, stop in spans:
