@@ -41,7 +41,15 @@ def hash_array(values: np.ndarray) -> str:
 
 
 def hash_file(path: str | Path, block: int = BLOCK) -> str:
-    """XXH3-128 of a file's bytes, read in large blocks."""
+    """XXH3-128 of a file's bytes: hashed straight from a memory map (no copy into a buffer),
+    or read in large blocks where a file cannot be mapped."""
+    import mmap
+
+    try:
+        with open(path, "rb") as fh, mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) as mapped:
+            return xxhash.xxh3_128_hexdigest(mapped)
+    except (ValueError, OSError):  # an empty file cannot be mapped; some filesystems refuse
+        pass
     h = xxhash.xxh3_128()
     with open(path, "rb", buffering=0) as fh:
         buf = bytearray(block)

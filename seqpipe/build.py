@@ -21,7 +21,7 @@ import json
 import os
 import shutil
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Executor, Future
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -43,6 +43,8 @@ from seqpipe.ingest import (
     count_part,
     encode_part,
     encoded_path,
+    fixed16,
+    fragment_path,
     ingest_part,
     load_part_meta,
     part_key,
@@ -52,7 +54,7 @@ from seqpipe.ingest import (
 from seqpipe.manifest import FORMAT, MANIFEST_NAME, dumps, seal
 from seqpipe.progress import bar, enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
-from seqpipe.shards import id_dtype, write_table
+from seqpipe.shards import id_dtype, read_table, write_batches
 from seqpipe.staging import build_lock, private_dir, publish
 from seqpipe.vocab import merge_counts
 
@@ -149,20 +151,6 @@ def _run(executor: Executor, fn: Callable[[Any], T], tasks: Sequence[Any], desc:
     return results
 
 
-def _split_of(hashes: np.ndarray, fractions: Sequence[float], seed: int) -> np.ndarray:
-    """Split index per document from a seeded mix of its content hash (splitmix64 finalizer)."""
-    x = hashes[:, :8].copy().view("<u8").reshape(-1).astype(np.uint64)
-    x ^= np.uint64((seed * 0x9E3779B97F4A7C15) & 0xFFFFFFFFFFFFFFFF)  # Python ints: no overflow
-    x ^= x >> np.uint64(30)
-    x *= np.uint64(0xBF58476D1CE4E5B9)
-    x ^= x >> np.uint64(27)
-    x *= np.uint64(0x94D049BB133111EB)
-    x ^= x >> np.uint64(31)
-    u = (x >> np.uint64(11)).astype(np.float64) / float(1 << 53)
-    edges = np.cumsum(fractions)[:-1]
-    return np.searchsorted(edges, u, side="right").astype(np.int8)
-
-
 def _first_occurrence(keys: np.ndarray) -> np.ndarray:
     """Bool per row: True where this 16-byte key occurs for the first time."""
     if len(keys) == 0:
@@ -237,37 +225,28 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     reused = len(tasks) - len(todo)
     input_bytes = sum(sizes)
 
-    # -- assign: duplicates and splits ----------------------------------------------------------
-    doc_tables = [read_part_docs(str(cache), t.key) for t in tasks]
-    counts_per_part = [t.num_rows for t in doc_tables]
-    if sum(counts_per_part) == 0:
+    # -- assign: duplicates (splits are computed in the tasks from each document's hash) -------
+    if sum(m.documents for m in parts) == 0:
         raise EmptyCorpusError("no document is left after reading and cleaning: check the sources' "
                                "globs and the clean steps (e.g. min_length)")
-
-    def fixed16(table: pa.Table, name: str) -> np.ndarray:
-        col = table.column(name).combine_chunks()
-        buf = col.buffers()[1]
-        return np.frombuffer(buf, dtype=np.uint8)[col.offset * 16:(col.offset + len(col)) * 16].reshape(-1, 16)
-
-    all_hash = np.concatenate([fixed16(t, "hash") for t in doc_tables])
-    split_all = _split_of(all_hash, recipe.splits.fractions(), recipe.splits.seed)
-    has_dedupe = any(getattr(s, "is_dedupe", False) for s in recipe.clean)
-    if has_dedupe:
-        keep_all = _first_occurrence(np.concatenate([fixed16(t, "dedupe") for t in doc_tables]))
-    else:
-        keep_all = np.ones(len(all_hash), dtype=bool)
-    duplicates = int((~keep_all).sum())
-    split_all = np.where(keep_all, split_all, -1).astype(np.int8)
-    bounds = np.concatenate([[0], np.cumsum(counts_per_part)]).astype(np.int64)
-    split_parts = [split_all[bounds[i]:bounds[i + 1]] for i in range(len(tasks))]
-    if not (split_all == 0).any():
-        raise EmptyCorpusError("the train split is empty: add documents or raise splits.train")
+    keeps: list[np.ndarray | None] = [None] * len(tasks)
+    duplicates = 0
+    if any(getattr(s, "is_dedupe", False) for s in recipe.clean):
+        # the one per-document array the driver holds: 16 bytes per document, only with dedupe
+        keys = [fixed16(read_part_docs(str(cache), t.key), "dedupe") for t in tasks]
+        keep_all = _first_occurrence(np.concatenate(keys))
+        duplicates = int((~keep_all).sum())
+        bounds = np.cumsum([0] + [len(k) for k in keys])
+        keeps = [keep_all[bounds[i]:bounds[i + 1]] for i in range(len(tasks))]
+        del keys, keep_all
 
     # -- count + fit ----------------------------------------------------------------------------
-    count_tasks = [CountTask(str(cache), t.key, i, sp == 0) for i, (t, sp) in enumerate(zip(tasks, split_parts,
-                                                                                          strict=True))]
-    partial = _run(ex, count_part, count_tasks, "counting", show)
-    merged = _merge_in_batches(partial)
+    count_tasks = [CountTask(str(cache), t.key, i, recipe, keeps[i]) for i, t in enumerate(tasks)]
+    counted = _run(ex, count_part, count_tasks, "counting", show)
+    if sum(n for _, n in counted) == 0:
+        raise EmptyCorpusError("the train split is empty: add documents or raise splits.train")
+    merged = _merge_in_batches([t for t, _ in counted])
+    del counted
     encoder = recipe.tokenizer.fit(merged, recipe.vocab)
     vocab = encoder.vocabulary
     dtype = id_dtype(len(vocab))
@@ -278,8 +257,8 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
 
     # -- encode ---------------------------------------------------------------------------------
     shutil.rmtree(stage / "encoded", ignore_errors=True)
-    enc_tasks = [EncodeTask(str(cache), t.key, str(stage), recipe, i, sp, dtype.name)
-                 for i, (t, sp) in enumerate(zip(tasks, split_parts, strict=True))]
+    enc_tasks = [EncodeTask(str(cache), t.key, str(stage), recipe, i, t.input_index, keeps[i], dtype.name)
+                 for i, t in enumerate(tasks)]
     encoded = _run(ex, encode_part, enc_tasks, "encoding", show)
 
     # -- shards + docs tables -------------------------------------------------------------------
@@ -287,66 +266,46 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     summary_splits: dict[str, Any] = {}
     shard_tasks: list[ShardTask] = []
     shard_slots: list[tuple[str, int]] = []
-    per_split_docs: dict[str, pa.Table] = {}
     per_shard = recipe.shards.tokens
     compression = None if recipe.shards.compression == "none" else recipe.shards.compression
-    for s, split in enumerate(SPLIT_NAMES):
-        lengths_list, sources_list, hash_list, files_list = [], [], [], []
-        unknown = 0
-        for i, enc in enumerate(encoded):
-            if split not in enc:
-                continue
-            mask = split_parts[i] == s
-            lengths_list.append(enc[split]["lengths"])
-            sources_list.append(np.full(int(mask.sum()), parts[i].input_index, np.int32))
-            hash_list.append(all_hash[bounds[i]:bounds[i + 1]][mask])
-            files_list.append((str(encoded_path(str(stage), i, split)), enc[split]["tokens"]))
-            unknown += enc[split]["unknown"]
-        lengths = np.concatenate(lengths_list) if lengths_list else np.zeros(0, np.int64)
-        starts = np.cumsum(lengths) - lengths
-        n_tokens = int(lengths.sum())
-        hsh = np.concatenate(hash_list) if hash_list else np.zeros((0, 16), np.uint8)
-        per_split_docs[split] = pa.table({
-            "start": pa.array(starts, pa.int64()), "length": pa.array(lengths, pa.int64()),
-            "source": pa.array(np.concatenate(sources_list) if sources_list else np.zeros(0, np.int32)),
-            "hash": pa.FixedSizeBinaryArray.from_buffers(pa.binary(16), len(hsh), [None, pa.py_buffer(hsh.tobytes())]),
-        }, schema=DOCS_SCHEMA)
-        # fixed-size shards over the split's stream, cut from the encoded files
+    for split in SPLIT_NAMES:
+        files_list = [(i, enc[split]["tokens"]) for i, enc in enumerate(encoded) if split in enc]
+        totals = {k: sum(enc[split][k] for enc in encoded if split in enc)
+                  for k in ("tokens", "documents", "unknown", "bytes", "words")}
+        n_tokens = totals["tokens"]
         file_starts = np.cumsum([0] + [n for _, n in files_list])
         shard_meta: list[dict[str, Any]] = []
         for k, first in enumerate(range(0, n_tokens, per_shard)):
             last = min(first + per_shard, n_tokens)
             pieces = []
-            for (path, n), fs in zip(files_list, file_starts[:-1], strict=True):
+            for (i, n), fs in zip(files_list, file_starts[:-1], strict=True):
                 a, b = max(first, int(fs)), min(last, int(fs) + n)
                 if a < b:
-                    pieces.append((path, a - int(fs), b - int(fs)))
+                    pieces.append((str(encoded_path(str(stage), i, split)), a - int(fs), b - int(fs)))
             rel = f"shards/{split}/{k:06d}.arrow"
             shard_tasks.append(ShardTask(str(stage / rel), tuple(pieces), compression, dtype.name))
             shard_slots.append((split, len(shard_meta)))
-            docs_in = int(np.count_nonzero((starts >= first) & (starts < last)))
-            shard_meta.append({"path": rel, "tokens": last - first, "documents": docs_in, "first": first})
-        splits_out[split] = {"documents": len(lengths), "tokens": n_tokens, "shards": shard_meta}
-        sel = split_all == s
-        text_bytes = int(sum(int(t.column("bytes").to_numpy()[split_parts[i] == s].sum())
-                             for i, t in enumerate(doc_tables)))
-        words = int(sum(int(t.column("words").to_numpy()[split_parts[i] == s].sum())
-                        for i, t in enumerate(doc_tables)))
+            shard_meta.append({"path": rel, "tokens": last - first, "documents": 0, "first": first})
+        # the docs table, streamed fragment by fragment; counts documents starting in each shard
+        rel = f"docs/{split}.arrow"
+        docs_in = np.zeros(len(shard_meta), np.int64)
+        size = write_batches(stage / rel, DOCS_SCHEMA, _docs_batches(stage, split, [i for i, _ in files_list],
+                                                                     per_shard, docs_in))
+        for j, count in enumerate(docs_in):
+            shard_meta[j]["documents"] = int(count)
+        splits_out[split] = {"documents": totals["documents"], "tokens": n_tokens, "shards": shard_meta,
+                             "docs": {"path": rel, "bytes": size, "hash": hash_file(stage / rel)}}
         summary_splits[split] = {
-            "unknown": unknown,
-            "unknown_rate": unknown / n_tokens if n_tokens else 0.0,
-            "bytes_per_token": text_bytes / n_tokens if n_tokens else 0.0,
-            "tokens_per_word": n_tokens / words if words else 0.0,
-            "documents_assigned": int(sel.sum()),
+            "unknown": totals["unknown"],
+            "unknown_rate": totals["unknown"] / n_tokens if n_tokens else 0.0,
+            "bytes_per_token": totals["bytes"] / n_tokens if n_tokens else 0.0,
+            "tokens_per_word": n_tokens / totals["words"] if totals["words"] else 0.0,
+            "documents_assigned": totals["documents"],
         }
     results = _run(ex, write_shard_task, shard_tasks, "writing shards", show, unit="shard")
     for (split, j), res in zip(shard_slots, results, strict=True):
         splits_out[split]["shards"][j].update(bytes=res["bytes"], file_hash=res["file_hash"],
                                               token_hash=res["token_hash"])
-    for split, table in per_split_docs.items():
-        rel = f"docs/{split}.arrow"
-        size = write_table(stage / rel, table)
-        splits_out[split]["docs"] = {"path": rel, "bytes": size, "hash": hash_file(stage / rel)}
     shutil.rmtree(stage / "encoded", ignore_errors=True)
 
     # -- manifest + publish ---------------------------------------------------------------------
@@ -384,6 +343,36 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     return BuildResult(out, manifest, time.perf_counter() - t0, input_bytes, len(tasks), reused)
 
 
+DOCS_BATCH_ROWS: Final = 1 << 16
+
+
+def _docs_batches(stage: Path, split: str, numbers: Sequence[int], per_shard: int,
+                  docs_in: np.ndarray) -> Iterator[pa.RecordBatch]:
+    """The split's documents with stream start offsets, re-cut into batches of DOCS_BATCH_ROWS
+    rows so the file's layout depends on its content only (not on how inputs were split into
+    parts); adds to ``docs_in`` the number of documents starting in each shard."""
+    start = 0
+    pending: list[pa.Table] = []
+    rows = 0
+    for i in numbers:
+        frag = read_table(fragment_path(str(stage), i, split))
+        lengths = frag.column("length").to_numpy()
+        starts = start + np.cumsum(lengths) - lengths
+        start += int(lengths.sum())
+        if len(starts):
+            np.add.at(docs_in, starts // per_shard, 1)
+        pending.append(pa.table({"start": pa.array(starts, pa.int64()), "length": frag.column("length"),
+                                 "source": frag.column("source"), "hash": frag.column("hash")},
+                                schema=DOCS_SCHEMA))
+        rows += len(lengths)
+        while rows >= DOCS_BATCH_ROWS:
+            table = pa.concat_tables(pending).combine_chunks()
+            yield table.slice(0, DOCS_BATCH_ROWS).to_batches()[0]
+            pending, rows = [table.slice(DOCS_BATCH_ROWS)], rows - DOCS_BATCH_ROWS
+    if rows:
+        yield pa.concat_tables(pending).combine_chunks().to_batches()[0]
+
+
 def _fresh_stage(out: Path, name: str) -> Path:
     """This build's staging directory: other builds' stages and torn temporary files removed,
     shards of an interrupted run of the same build kept (they are checked before reuse)."""
@@ -407,7 +396,11 @@ def _merge_in_batches(tables: Sequence[pa.Table], batch: int = 32) -> pa.Table:
     acc: pa.Table | None = None
     for i in range(0, len(tables), batch):
         group = list(tables[i:i + batch]) + ([acc] if acc is not None else [])
+        # a copy into fresh (aligned) buffers: tables unpickled from cluster workers may sit at
+        # odd offsets, which Arrow's group-by warns about
         cat = pa.concat_tables(group)
+        cat = pa.table({name: pa.concat_arrays([*cat.column(name).chunks, pa.array([], cat.schema.field(name).type)])
+                        for name in cat.column_names})
         acc = cat.group_by("key").aggregate([("count", "sum"), ("first", "min")]) \
             .rename_columns(["key", "count", "first"])
     assert acc is not None

@@ -45,7 +45,11 @@ def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Exe
     if n == 1:
         yield InlineExecutor()
         return
-    pool = ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("spawn"))
+    from seqpipe.ingest import set_ingest_threads
+
+    # the cores are shared out: each worker's ingest threads get cores // workers of them
+    pool = ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("spawn"),
+                               initializer=set_ingest_threads, initargs=(max(1, default_workers() // n),))
     try:
         yield pool
     finally:

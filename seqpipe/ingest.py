@@ -39,7 +39,18 @@ from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
 
 PART_FORMAT: Final = 1
-INGEST_THREADS: Final = max(1, int(os.environ.get("SEQPIPE_INGEST_THREADS", "2")))
+_THREADS: list[int] = []  # set by set_ingest_threads (e.g. in pool workers); else the environment
+
+
+def set_ingest_threads(n: int) -> None:
+    """Threads each ingest task uses (pool workers get cores // workers)."""
+    _THREADS[:] = [max(1, int(n))]
+
+
+def ingest_threads() -> int:
+    if _THREADS:
+        return _THREADS[0]
+    return max(1, int(os.environ.get("SEQPIPE_INGEST_THREADS", "2")))
 HASH_TYPE: Final = pa.binary(16)
 
 
@@ -197,11 +208,11 @@ def ingest_part(task: IngestTask) -> PartMeta:
 
     # Batches are cleaned and segmented on a few threads (Arrow and numpy release the GIL)
     # while this thread reads on; results are collected in reading order.
-    with ThreadPoolExecutor(max_workers=INGEST_THREADS) as pool:
+    with ThreadPoolExecutor(max_workers=ingest_threads()) as pool:
         pending: deque[Future[_Batch]] = deque()
         for batch in source.read(Path(task.path), task.part, stats, batch_bytes=task.batch_bytes):
             pending.append(pool.submit(_process_batch, recipe, batch))
-            while len(pending) > INGEST_THREADS:
+            while len(pending) > ingest_threads():
                 collect(pending.popleft().result())
         while pending:
             collect(pending.popleft().result())
@@ -255,6 +266,37 @@ def _piece_mask(pieces: np.ndarray, doc_mask: np.ndarray) -> np.ndarray:
     return np.repeat(doc_mask, pieces)
 
 
+# -- splits ----------------------------------------------------------------------------------------
+
+def fixed16(table: pa.Table, name: str) -> np.ndarray:
+    """A fixed_size_binary(16) column as an (n, 16) uint8 view."""
+    col = table.column(name).combine_chunks()
+    buf = col.buffers()[1]
+    if buf is None or len(col) == 0:
+        return np.zeros((0, 16), np.uint8)
+    return np.frombuffer(buf, dtype=np.uint8)[col.offset * 16:(col.offset + len(col)) * 16].reshape(-1, 16)
+
+
+def split_of(hashes: np.ndarray, fractions: Sequence[float], seed: int) -> np.ndarray:
+    """Split index per document from a seeded mix of its content hash (splitmix64 finalizer)."""
+    x = hashes[:, :8].copy().view("<u8").reshape(-1).astype(np.uint64)
+    x ^= np.uint64((seed * 0x9E3779B97F4A7C15) & 0xFFFFFFFFFFFFFFFF)  # Python ints: no overflow
+    x ^= x >> np.uint64(30)
+    x *= np.uint64(0xBF58476D1CE4E5B9)
+    x ^= x >> np.uint64(27)
+    x *= np.uint64(0x94D049BB133111EB)
+    x ^= x >> np.uint64(31)
+    u = (x >> np.uint64(11)).astype(np.float64) / float(1 << 53)
+    edges = np.cumsum(fractions)[:-1]
+    return np.searchsorted(edges, u, side="right").astype(np.int8)
+
+
+def _splits(recipe: Recipe, docs: pa.Table, keep: np.ndarray | None) -> np.ndarray:
+    """Split index per document of a part, -1 for a dropped duplicate."""
+    sp = split_of(fixed16(docs, "hash"), recipe.splits.fractions(), recipe.splits.seed)
+    return sp if keep is None else np.where(keep, sp, -1).astype(np.int8)
+
+
 # -- counting ----------------------------------------------------------------------------------------
 
 @dataclass(frozen=True)
@@ -262,28 +304,32 @@ class CountTask:
     cache_dir: str
     key: str
     order: int  # corpus position of this part, for first-occurrence ranks
-    train: np.ndarray  # bool per document: kept and in the train split
+    recipe: Recipe
+    keep: np.ndarray | None  # bool per document (None: no dedupe step, keep all)
 
 
-def count_part(task: CountTask) -> pa.Table:
-    """Piece counts over the part's train documents: table (key, count, first)."""
+def count_part(task: CountTask) -> tuple[pa.Table, int]:
+    """Piece counts over the part's train documents: table (key, count, first), and how many
+    train documents there are."""
     d = _part_dir(task.cache_dir, task.key)
     docs = read_table(d / "docs.arrow")
     keys = read_table(d / "keys.arrow").column("key").combine_chunks()
     codes = read_table(d / "codes.arrow").column("code").to_numpy()
     pieces = docs.column("pieces").to_numpy()
-    sel = codes[_piece_mask(pieces, task.train)] if len(codes) else codes
+    train = _splits(task.recipe, docs, task.keep) == 0
+    sel = codes[_piece_mask(pieces, train)] if len(codes) else codes
     counts = np.bincount(sel, minlength=len(keys)).astype(np.int64)
     present = np.flatnonzero(counts)
     # Arrow's hash-based unique keeps first-occurrence order (O(n), unlike a sort)
     seen_order = pc.unique(pa.array(sel, pa.int32())).to_numpy(zero_copy_only=False)
     first = np.zeros(len(keys), np.int64)
     first[seen_order] = np.arange(len(seen_order), dtype=np.int64)
-    return pa.table({
+    table = pa.table({
         "key": keys.take(pa.array(present)),
         "count": pa.array(counts[present], pa.int64()),
         "first": pa.array((np.int64(task.order) << 40) + first[present], pa.int64()),
     })
+    return table, int(train.sum())
 
 
 # -- encoding ----------------------------------------------------------------------------------------
@@ -295,7 +341,8 @@ class EncodeTask:
     stage_dir: str
     recipe: Recipe
     number: int  # part number, names the output files
-    split_of_doc: np.ndarray  # int8 per document: split index, or -1 for a dropped duplicate
+    input_index: int  # the part's input file (the docs tables' "source")
+    keep: np.ndarray | None  # bool per document (None: keep all)
     dtype: str
 
 
@@ -315,12 +362,16 @@ def encoded_path(stage_dir: str, number: int, split: str) -> Path:
     return Path(stage_dir) / "encoded" / f"{number:06d}.{split}.arrow"
 
 
-def encode_part(task: EncodeTask) -> dict[str, dict[str, Any]]:
-    """Encode one part's kept documents per split, markers added; write one id file per split.
+def fragment_path(stage_dir: str, number: int, split: str) -> Path:
+    return Path(stage_dir) / "encoded" / f"{number:06d}.{split}.docs.arrow"
 
-    Returns per split: ``lengths`` (ids per document), ``unknown`` (unknown-id count), ``tokens``.
-    """
+
+def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
+    """Encode one part's kept documents per split, markers added. Writes per split an id file
+    and a document fragment (length, source, hash per document); returns per split the totals
+    ``tokens``, ``documents``, ``unknown``, ``bytes`` and ``words``."""
     from seqpipe.recipe import SPLIT_NAMES
+    from seqpipe.tokenizers.base import expand
 
     recipe = task.recipe
     enc = _encoder(recipe, task.stage_dir)
@@ -329,24 +380,31 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, Any]]:
     keys = read_table(d / "keys.arrow").column("key").combine_chunks()
     codes = read_table(d / "codes.arrow").column("code").to_numpy()
     pieces = docs.column("pieces").to_numpy()
+    splits = _splits(recipe, docs, task.keep)
     values, offsets = enc.piece_ids(keys)
     voc = enc.vocabulary
     begin = voc.id_of("begin") if recipe.encode.begin else None
     end = voc.id_of("end") if recipe.encode.end else None
     unk = voc.unknown_id
-    out: dict[str, dict[str, Any]] = {}
+    hashes = docs.column("hash").combine_chunks()
+    out: dict[str, dict[str, int]] = {}
     for s, split in enumerate(SPLIT_NAMES):
-        dmask = task.split_of_doc == s
+        dmask = splits == s
         if not dmask.any():
             continue
-        from seqpipe.tokenizers.base import expand
-
         ids, lengths = expand(values, offsets, codes[_piece_mask(pieces, dmask)], pieces[dmask])
         ids = _add_markers(ids, lengths, begin, end)
         lengths = lengths + (begin is not None) + (end is not None)
         unknown = int(np.count_nonzero(ids == unk)) if unk is not None else 0
         write_shard(encoded_path(task.stage_dir, task.number, split), ids.astype(task.dtype))
-        out[split] = {"lengths": lengths, "unknown": unknown, "tokens": int(lengths.sum())}
+        write_table(fragment_path(task.stage_dir, task.number, split), pa.table({
+            "length": pa.array(lengths, pa.int64()),
+            "source": pa.array(np.full(len(lengths), task.input_index, np.int32)),
+            "hash": hashes.filter(pa.array(dmask)),
+        }))
+        out[split] = {"tokens": int(lengths.sum()), "documents": int(dmask.sum()), "unknown": unknown,
+                      "bytes": int(docs.column("bytes").to_numpy()[dmask].sum()),
+                      "words": int(docs.column("words").to_numpy()[dmask].sum())}
     return out
 
 

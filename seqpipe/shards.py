@@ -10,6 +10,7 @@ fsynced, then renamed into place, so a reader never sees half a file.
 from __future__ import annotations
 
 import os
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Final
 
@@ -57,6 +58,29 @@ def write_table(path: Path, table: pa.Table, *, compression: str | None = None) 
     try:
         with pa.OSFile(str(tmp), "wb") as sink, pa.ipc.new_file(sink, table.schema, options=options) as writer:
             writer.write_table(table, max_chunksize=max(table.num_rows, 1))
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+    fsync_dir(path.parent)
+    return path.stat().st_size
+
+
+def write_batches(path: Path, schema: pa.Schema, batches: Iterator[pa.RecordBatch]) -> int:
+    """Write record batches as one Arrow IPC file atomically, never holding more than one batch;
+    return the file size."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = _tmp_name(path)
+    try:
+        with pa.OSFile(str(tmp), "wb") as sink, pa.ipc.new_file(sink, schema) as writer:
+            wrote = False
+            for batch in batches:
+                writer.write_batch(batch)
+                wrote = True
+            if not wrote:
+                writer.write_table(schema.empty_table())
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, path)

@@ -1,0 +1,261 @@
+"""Build side: end-to-end build throughput, worker scaling, peak memory, verification speed.
+
+Inputs are made here with ``_corpus.write_corpus`` (invented words, fixed seeds). Every ratio
+compares two things measured in this run on the same machine; the corpus files are read once
+before any timing so both sides of a ratio read them from the page cache.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import time
+from collections import Counter
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import regex
+import xxhash
+from _corpus import write_corpus
+from common import Measure, best_time
+
+from seqpipe.build import BuildResult, build
+from seqpipe.dataset import open_dataset
+from seqpipe.recipe import Recipe, parse_recipe
+from seqpipe.tokenizers.words import DEFAULT_PATTERN
+from seqpipe.verify import listed_files, verify
+
+MB = 1_000_000
+# Everything in train, so the naive pipeline's ids cover the same documents in the same order.
+RECIPE = """
+[dataset]
+name = "bench-words"
+[[sources]]
+kind = "text"
+paths = "corpus/*.txt"
+document = "paragraph"
+[[clean]]
+kind = "lowercase"
+[tokenizer]
+kind = "words"
+[splits]
+train = 1.0
+validation = 0.0
+test = 0.0
+[shards]
+tokens = 8388608
+"""
+BASELINE_PATTERN = r"\w+|[^\w\s]"
+SPECIALS = ("<unk>", "<pad>", "<bos>", "<eos>")  # the [vocab] defaults the recipe keeps
+
+# Runs one build in a fresh interpreter and reports peak RSS in KiB (Linux). VmHWM, not
+# getrusage(RUSAGE_SELF): Linux keeps ru_maxrss across exec, so a child would report the parent's
+# size at fork. Any worker processes it starts are counted through RUSAGE_CHILDREN.
+_RSS_CHILD = """
+import json, resource, sys
+from pathlib import Path
+from seqpipe.build import build
+from seqpipe.recipe import load_recipe
+build(load_recipe(sys.argv[1]), sys.argv[2], workers=1, progress=False)
+hwm = [l for l in Path("/proc/self/status").read_text().splitlines() if l.startswith("VmHWM:")]
+print(json.dumps({"self": int(hwm[0].split()[1]),
+                  "children": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss}))
+"""
+
+
+def make_corpus(root: Path, total: int, files: int) -> Recipe:
+    """Corpus files under ``root/corpus`` plus ``root/recipe.toml``; the parsed recipe."""
+    write_corpus(root / "corpus", total, files=files)
+    (root / "recipe.toml").write_text(RECIPE, encoding="utf-8")
+    return parse_recipe(RECIPE, root)
+
+
+def corpus_files(recipe: Recipe) -> list[Path]:
+    return sorted((recipe.root / "corpus").glob("*.txt"))
+
+
+def warm(paths: list[Path]) -> int:
+    """Read every file once (page cache); return the total size."""
+    total = 0
+    for p in paths:
+        total += len(p.read_bytes())
+    return total
+
+
+def timed_build(recipe: Recipe, out: Path, workers: int) -> tuple[float, BuildResult]:
+    """Seconds for one build into a fresh directory (so no cached part is reused)."""
+    if out.exists():
+        raise RuntimeError(f"{out} exists: a timed build must start without a cache")
+    t0 = time.perf_counter()
+    result = build(recipe, out, workers=workers, progress=False)
+    seconds = time.perf_counter() - t0
+    if result.parts_reused:
+        raise RuntimeError("a timed build reused cached parts")
+    return seconds, result
+
+
+def findall_seconds(paths: list[Path]) -> float:
+    """A bare regex.findall pass over the already decoded text of every file."""
+    pattern = regex.compile(BASELINE_PATTERN)
+    texts = [p.read_text(encoding="utf-8") for p in paths]
+    t0 = time.perf_counter()
+    n = 0
+    for text in texts:
+        n += len(pattern.findall(text))
+    seconds = time.perf_counter() - t0
+    if not n:
+        raise RuntimeError("the regex baseline found no token")
+    return seconds
+
+
+def naive_pipeline(paths: list[Path]) -> list[int]:
+    """Read lines, lower-case, split into words with the tokenizer's pattern, count with a
+    Counter, then one dict lookup per token: the ids of every document, end marker after each."""
+    pattern = regex.compile(DEFAULT_PATTERN)
+    docs: list[list[str]] = []
+    counts: Counter[str] = Counter()
+
+    def flush(lines: list[str]) -> None:
+        if lines:
+            tokens = pattern.findall("".join(lines).lower())
+            counts.update(tokens)
+            docs.append(tokens)
+            lines.clear()
+
+    for path in paths:
+        lines: list[str] = []
+        with open(path, encoding="utf-8") as fh:
+            for line in fh:
+                if line.strip(" \t\x0b\x0c\r\n"):
+                    lines.append(line)
+                else:
+                    flush(lines)
+        flush(lines)
+    # specials first, then by descending count, ties in code-point order (the vocabulary rule)
+    ordered = sorted(counts.items(), key=lambda kv: (-kv[1], kv[0]))
+    ids = {tok: i for i, tok in enumerate([*SPECIALS, *(t for t, _ in ordered)])}
+    end = ids["<eos>"]
+    out: list[int] = []
+    for tokens in docs:
+        out.extend(ids[t] for t in tokens)
+        out.append(end)
+    return out
+
+
+def train_ids(directory: Path) -> np.ndarray:
+    stream = open_dataset(directory).split("train").stream
+    return stream.slice(0, len(stream))
+
+
+def peak_rss_kib(recipe_path: Path, out: Path) -> int:
+    """Peak RSS of a build run in its own interpreter (largest of the process and its children)."""
+    env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parents[2]))
+    done = subprocess.run([sys.executable, "-c", _RSS_CHILD, str(recipe_path), str(out)], env=env,
+                          capture_output=True, text=True, check=False)
+    if done.returncode:
+        raise RuntimeError(f"build subprocess failed ({done.returncode}):\n{done.stderr}")
+    report = json.loads(done.stdout.strip().splitlines()[-1])
+    return max(int(report["self"]), int(report["children"]))
+
+
+def raw_xxh3_seconds(directory: Path, repeat: int) -> tuple[float, int]:
+    """One thread hashing every listed file's bytes with XXH3-128 (8 MiB reads), best of ``repeat``."""
+    manifest = json.loads((directory / "manifest.json").read_text())
+    paths = [directory / e["path"] for e in listed_files(manifest)]
+    size = sum(p.stat().st_size for p in paths)
+
+    def run() -> None:
+        buf = bytearray(8 << 20)
+        view = memoryview(buf)
+        for p in paths:
+            h = xxhash.xxh3_128()
+            with open(p, "rb", buffering=0) as fh:
+                while n := fh.readinto(buf):
+                    h.update(view[:n])
+            h.hexdigest()
+
+    return best_time(run, repeat=repeat), size
+
+
+def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
+    base_size = 5 * MB if quick else 100 * MB
+    repeat = 2 if quick else 1  # quick: best of two; full: one run of each (minutes)
+    recipe = make_corpus(workdir / "base", base_size, files=4)
+    paths = corpus_files(recipe)
+    size = warm(paths)
+
+    # --- end-to-end words build vs a bare regex pass ------------------------------------------------
+    runs = [timed_build(recipe, workdir / f"words-{i}", workers=1) for i in range(repeat)]
+    t_build, result = min(runs, key=lambda r: r[0])
+    t_regex = min(findall_seconds(paths) for _ in range(repeat))
+    yield Measure("build.words_vs_regex_findall", t_regex / t_build, 2.0,
+                  f"(build {size / MB / t_build:.1f} MB/s vs regex.findall {size / MB / t_regex:.1f} MB/s "
+                  f"over {size / MB:.0f} MB, workers=1)")
+
+    # --- the same build vs a straightforward pure-Python pipeline, same ids -------------------------
+    t0 = time.perf_counter()
+    naive = naive_pipeline(paths)
+    t_naive = time.perf_counter() - t0
+    got = train_ids(result.directory)
+    want = np.array(naive, dtype=np.int64)
+    del naive
+    if len(got) != len(want) or not np.array_equal(got.astype(np.int64), want):
+        raise RuntimeError(f"naive pipeline ids differ from the build's train stream "
+                           f"({len(want)} vs {len(got)} ids)")
+    yield Measure("build.words_vs_naive_python", t_naive / t_build, 10.0,
+                  f"(build {t_build:.2f} s vs naive {t_naive:.2f} s, {len(got)} identical ids)")
+
+    # --- verify vs raw XXH3 over the same bytes ----------------------------------------------------
+    directory = result.directory
+    verify(directory)  # page cache warm for both sides
+    t_raw, vbytes = raw_xxh3_seconds(directory, repeat=5)  # tens of ms each: best of five
+    t_verify = best_time(lambda: _check(verify(directory)), repeat=5)
+    yield Measure("verify.vs_raw_xxh3", t_raw / t_verify, 0.7,
+                  f"(verify {vbytes / MB / t_verify:.0f} MB/s vs one-thread XXH3 {vbytes / MB / t_raw:.0f} MB/s "
+                  f"over {vbytes / MB:.0f} MB)")
+    for r in runs:
+        _remove(r[1].directory)
+
+    # --- two workers vs one ------------------------------------------------------------------------
+    if quick:
+        scale_recipe, scale_size = recipe, size
+    else:
+        scale_recipe = make_corpus(workdir / "scale", 200 * MB, files=8)  # 25 MB files, as above
+        scale_size = warm(corpus_files(scale_recipe))
+    t_one = timed_build(scale_recipe, workdir / "one", workers=1)[0]
+    t_two = timed_build(scale_recipe, workdir / "two", workers=2)[0]
+    yield Measure("build.two_workers_vs_one", t_one / t_two, 1.7,
+                  f"(workers=1 {t_one:.2f} s vs workers=2 {t_two:.2f} s over {scale_size / MB:.0f} MB)")
+    _remove(workdir / "one")
+    _remove(workdir / "two")
+    if not quick:
+        _remove(workdir / "scale")
+
+    # --- peak RSS: 10x the corpus in files of the same size, same vocabulary ---------------------
+    # Equal file sizes give equal part sizes, so the ratio isolates what grows with the corpus.
+    small_size, big_size = (2 * MB, 20 * MB) if quick else (100 * MB, 1000 * MB)
+    small = recipe if not quick else make_corpus(workdir / "small", small_size, files=4)
+    big = make_corpus(workdir / "big", big_size, files=40)
+    rss_small = peak_rss_kib(small.root / "recipe.toml", workdir / "rss-small")
+    rss_big = peak_rss_kib(big.root / "recipe.toml", workdir / "rss-big")
+    vocab_small = open_dataset(workdir / "rss-small").manifest["vocabulary"]["size"]
+    vocab_big = open_dataset(workdir / "rss-big").manifest["vocabulary"]["size"]
+    yield Measure("build.peak_rss_1g_vs_100m", rss_big / rss_small, 1.3,
+                  f"(peak RSS {rss_big / 1024:.0f} MiB for {big_size / MB:.0f} MB vs {rss_small / 1024:.0f} MiB "
+                  f"for {small_size / MB:.0f} MB; vocabulary {vocab_big} vs {vocab_small})",
+                  higher_is_better=False)
+
+
+def _check(report: Any) -> None:
+    if not report.ok:
+        raise RuntimeError(f"verify found problems in a fresh build: {report.problems[:3]}")
+
+
+def _remove(path: Path) -> None:
+    import shutil
+
+    shutil.rmtree(path, ignore_errors=True)

@@ -1,0 +1,211 @@
+"""Scale-out and cache properties of the build: output bytes do not depend on the number of
+workers or on how input files are cut into parts; the parts cache is reused exactly when only
+steps after ingest change, and ``force`` re-reads everything."""
+
+from __future__ import annotations
+
+import random
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from seqpipe.build import BuildResult, build
+from seqpipe.manifest import MANIFEST_NAME
+from seqpipe.recipe import Recipe, parse_recipe
+from seqpipe.sources.text import TextSource
+
+# Invented words for a small corpus of our own (no outside text).
+_WORDS = ("harbor", "skiff", "tide", "lantern", "rope", "mooring", "gull", "barge", "ledger", "crate",
+          "fog", "pier", "quay", "oar", "keel", "ballast", "nöbel", "drüme", "sälk", "crossing")
+
+
+def write_corpus(root: Path, files: int = 3, docs_per_file: int = 120, seed: int = 11) -> None:
+    """Paragraph documents over a few files, with planted exact duplicates."""
+    rng = random.Random(seed)
+    corpus = root / "corpus"
+    corpus.mkdir(parents=True, exist_ok=True)
+    planted = "The Harbor fog rolled in; twelve crates waited at pier 4."
+    for f in range(files):
+        paras = []
+        for d in range(docs_per_file):
+            if d % 37 == 5:
+                paras.append(planted)
+                continue
+            sentences = []
+            for _ in range(rng.randint(1, 4)):
+                words = [rng.choice(_WORDS) for _ in range(rng.randint(3, 14))]
+                words[0] = words[0].capitalize()
+                if rng.random() < 0.3:
+                    words.insert(rng.randint(1, len(words)), str(rng.randint(0, 300)))
+                sentences.append(" ".join(words) + rng.choice(".!?"))
+            paras.append(" ".join(sentences))
+        (corpus / f"log-{f:02d}.txt").write_text("\n\n".join(paras) + "\n", encoding="utf-8")
+
+
+RECIPE = """
+[dataset]
+name = "scale-test"
+[[sources]]
+kind = "text"
+paths = "corpus/*.txt"
+document = "paragraph"
+{clean}
+[[clean]]
+kind = "dedupe"
+[tokenizer]
+kind = "{tokenizer}"
+{tokenizer_extra}
+[vocab]
+min_count = {min_count}
+[splits]
+train = {train}
+validation = {validation}
+test = 0.1
+seed = {seed}
+[shards]
+tokens = {shard_tokens}
+"""
+
+
+def recipe_text(*, tokenizer: str = "words", tokenizer_extra: str = "", clean: str = "", min_count: int = 1,
+                train: float = 0.8, validation: float = 0.1, shard_tokens: int = 1500, seed: int = 0) -> str:
+    return RECIPE.format(tokenizer=tokenizer, tokenizer_extra=tokenizer_extra, clean=clean, min_count=min_count,
+                         train=train, validation=validation, shard_tokens=shard_tokens, seed=seed)
+
+
+def make_recipe(root: Path, **kw: Any) -> Recipe:
+    return parse_recipe(recipe_text(**kw), root)
+
+
+def dataset_files(directory: Path) -> dict[str, bytes]:
+    """Every file of a built dataset (the private .seqpipe area excluded), by relative path."""
+    out = {}
+    for p in sorted(directory.rglob("*")):
+        rel = p.relative_to(directory)
+        if rel.parts[0] == ".seqpipe" or not p.is_file():
+            continue
+        out[rel.as_posix()] = p.read_bytes()
+    return out
+
+
+# Part size small enough that each ~16 KB corpus file is cut into several parts.
+SMALL_PARTS = 2048
+
+
+@pytest.fixture
+def corpus_root(tmp_path: Path) -> Path:
+    root = tmp_path / "src"
+    write_corpus(root)
+    return root
+
+
+@pytest.mark.parametrize(("tokenizer", "extra"), [("words", ""), ("bpe", "vocab_size = 300")])
+def test_one_and_two_workers_write_identical_bytes(corpus_root: Path, tmp_path: Path, tokenizer: str,
+                                                   extra: str) -> None:
+    """workers=1 (in-process) and workers=2 (spawn pool) give the same manifest and file bytes."""
+    recipe = make_recipe(corpus_root, tokenizer=tokenizer, tokenizer_extra=extra)
+    one = build(recipe, tmp_path / "one", workers=1, progress=False, part_bytes=SMALL_PARTS)
+    two = build(recipe, tmp_path / "two", workers=2, progress=False, part_bytes=SMALL_PARTS)
+    assert one.parts_total > 3 * 2  # several parts per input file, or the test proves little
+    assert sum(len(s["shards"]) for s in one.manifest["splits"].values()) > 3  # several shards
+    files_one, files_two = dataset_files(one.directory), dataset_files(two.directory)
+    assert files_one[MANIFEST_NAME] == files_two[MANIFEST_NAME]
+    assert files_one == files_two
+    assert one.fingerprint == two.fingerprint
+
+
+@settings(max_examples=6, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(part_bytes=st.integers(min_value=200, max_value=40_000))
+def test_output_does_not_depend_on_part_size(corpus_root: Path, tmp_path_factory: pytest.TempPathFactory,
+                                             part_bytes: int) -> None:
+    """How input files are cut into parts never changes a byte of the dataset."""
+    recipe = make_recipe(corpus_root)
+    ref_dir = corpus_root.parent / "reference"
+    if not (ref_dir / MANIFEST_NAME).exists():
+        build(recipe, ref_dir, workers=1, progress=False)  # default part size: one part per file
+    out = tmp_path_factory.mktemp("parts")
+    got = build(recipe, out, workers=1, progress=False, part_bytes=part_bytes)
+    assert dataset_files(got.directory) == dataset_files(ref_dir)
+
+
+class ReadCounter:
+    """Counts TextSource.read calls made in this process (workers=1 runs tasks inline)."""
+
+    def __init__(self, monkeypatch: pytest.MonkeyPatch) -> None:
+        self.calls = 0
+        original = TextSource.read
+
+        def counting(source: TextSource, *args: Any, **kwargs: Any) -> Iterator[Any]:
+            self.calls += 1
+            return original(source, *args, **kwargs)
+
+        monkeypatch.setattr(TextSource, "read", counting)
+
+    def take(self) -> int:
+        n, self.calls = self.calls, 0
+        return n
+
+
+def run(recipe: Recipe, out: Path, **kw: Any) -> BuildResult:
+    return build(recipe, out, workers=1, progress=False, part_bytes=SMALL_PARTS, **kw)
+
+
+@pytest.mark.parametrize("change", [
+    {"shard_tokens": 700},
+    {"train": 0.7, "validation": 0.2},
+    {"seed": 3},
+    {"min_count": 2},
+])
+def test_cache_reused_when_only_later_steps_change(corpus_root: Path, tmp_path: Path,
+                                                   monkeypatch: pytest.MonkeyPatch, change: dict[str, Any]) -> None:
+    """Changing shards, splits or vocabulary settings re-reads no source file, and the cached
+    build equals a fresh build of the changed recipe."""
+    reads = ReadCounter(monkeypatch)
+    out = tmp_path / "out"
+    first = run(make_recipe(corpus_root), out)
+    assert reads.take() == first.parts_total > 3
+    assert first.parts_reused == 0
+    changed = make_recipe(corpus_root, **change)
+    second = run(changed, out)
+    assert reads.take() == 0
+    assert second.parts_reused == second.parts_total == first.parts_total
+    assert f"parts reused from cache: {second.parts_total}/{second.parts_total}" in "\n".join(second.summary_lines())
+    assert second.fingerprint != first.fingerprint  # the change did reach the output
+    fresh = run(changed, tmp_path / "fresh")
+    assert reads.take() == fresh.parts_total
+    assert dataset_files(out) == dataset_files(tmp_path / "fresh")
+
+
+def test_cache_not_reused_when_cleaning_changes(corpus_root: Path, tmp_path: Path,
+                                                monkeypatch: pytest.MonkeyPatch) -> None:
+    """Adding a cleaning step invalidates every cached part: each is read again."""
+    reads = ReadCounter(monkeypatch)
+    out = tmp_path / "out"
+    first = run(make_recipe(corpus_root), out)
+    assert reads.take() == first.parts_total
+    second = run(make_recipe(corpus_root, clean='[[clean]]\nkind = "lowercase"'), out)
+    assert reads.take() == second.parts_total == first.parts_total
+    assert second.parts_reused == 0
+    assert f"parts reused from cache: 0/{second.parts_total}" in "\n".join(second.summary_lines())
+    lowered = dataset_files(out)["vocab.arrow"]
+    assert b"Harbor" not in lowered and b"harbor" in lowered  # the new step was applied
+
+
+def test_force_rereads_everything(corpus_root: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """force=True ignores the cache, reads every part again and writes the same dataset."""
+    reads = ReadCounter(monkeypatch)
+    out = tmp_path / "out"
+    recipe = make_recipe(corpus_root)
+    first = run(recipe, out)
+    before = dataset_files(out)
+    assert reads.take() == first.parts_total
+    again = run(recipe, out)
+    assert reads.take() == 0 and again.parts_reused == again.parts_total
+    forced = run(recipe, out, force=True)
+    assert reads.take() == forced.parts_total
+    assert forced.parts_reused == 0
+    assert dataset_files(out) == before
