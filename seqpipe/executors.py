@@ -9,7 +9,7 @@ from __future__ import annotations
 import multiprocessing
 import os
 from collections.abc import Callable, Iterator
-from concurrent.futures import Executor, Future, ProcessPoolExecutor
+from concurrent.futures import Executor, Future, ProcessPoolExecutor, ThreadPoolExecutor
 from contextlib import contextmanager
 from typing import Any, TypeVar
 
@@ -43,7 +43,14 @@ def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Exe
         return
     n = workers or default_workers()
     if n == 1:
-        yield InlineExecutor()
+        # one process: tasks run on threads (their numpy and Arrow work releases the GIL), as
+        # many as there are cores; SEQPIPE_TASK_THREADS=1 runs them one by one
+        threads = int(os.environ.get("SEQPIPE_TASK_THREADS", "0")) or default_workers()
+        if threads == 1:
+            yield InlineExecutor()
+            return
+        with ThreadPoolExecutor(max_workers=threads) as tpool:
+            yield tpool
         return
     from seqpipe.ingest import set_ingest_threads
 

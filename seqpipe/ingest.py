@@ -99,11 +99,10 @@ def _doc_hashes(docs: pa.Array) -> np.ndarray:
     offsets = np.frombuffer(arr.buffers()[1], dtype=np.int64)[arr.offset: arr.offset + len(arr) + 1]
     data = arr.buffers()[2]
     view = memoryview(data) if data is not None else memoryview(b"")
-    out = np.empty((len(arr), 16), dtype=np.uint8)
     digest = xxhash.xxh3_128_digest
-    for i in range(len(arr)):
-        out[i] = np.frombuffer(digest(view[offsets[i]: offsets[i + 1]]), dtype=np.uint8)
-    return out
+    bounds = offsets.tolist()
+    joined = b"".join([digest(view[a:b]) for a, b in zip(bounds[:-1], bounds[1:], strict=True)])
+    return np.frombuffer(joined, dtype=np.uint8).reshape(-1, 16)
 
 
 def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int]) -> tuple[pa.Array, np.ndarray | None]:

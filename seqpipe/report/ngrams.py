@@ -71,8 +71,11 @@ def runs(sorted_keys: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     if len(sorted_keys) == 0:
         empty = np.zeros(0, dtype=np.int64)
         return sorted_keys[:0], empty, empty
-    starts = np.flatnonzero(np.concatenate([[True], sorted_keys[1:] != sorted_keys[:-1]]))
-    counts = np.diff(np.append(starts, len(sorted_keys))).astype(np.int64)
+    flags = np.empty(len(sorted_keys), dtype=bool)
+    flags[0] = True
+    np.not_equal(sorted_keys[1:], sorted_keys[:-1], out=flags[1:])
+    starts = np.flatnonzero(flags)
+    counts = np.diff(starts, append=len(sorted_keys))
     return sorted_keys[starts], counts, starts
 
 
@@ -182,6 +185,29 @@ def window_keys(ids: np.ndarray, n: int, *, bits: int, starts: np.ndarray | None
     return out
 
 
+PARALLEL_SORT_MIN: Final = 1 << 21
+
+
+def sort_keys(keys: np.ndarray, threads: int | None = None) -> np.ndarray:
+    """``keys`` sorted. Large arrays are cut at sampled quantiles into one range per thread and
+    the ranges sorted at once (numpy's sort releases the GIL); the result is the same array a
+    single ``np.sort`` gives."""
+    import os
+    from concurrent.futures import ThreadPoolExecutor
+
+    n = threads or min(4, len(os.sched_getaffinity(0)))
+    if n < 2 or len(keys) < PARALLEL_SORT_MIN:
+        keys.sort()
+        return keys
+    sample = np.sort(keys[:: max(1, len(keys) // 4096)])
+    pivots = sample[(np.arange(1, n) * len(sample)) // n]
+    bucket = np.searchsorted(pivots, keys, side="right")
+    ranges = [keys[bucket == b] for b in range(n)]
+    with ThreadPoolExecutor(max_workers=n) as pool:
+        list(pool.map(np.ndarray.sort, ranges))
+    return np.concatenate(ranges)
+
+
 def count_ngrams(ids: np.ndarray, orders: Sequence[int], *, bits: int,
                  starts: np.ndarray | None = None,
                  lengths: np.ndarray | None = None) -> dict[int, NgramCounts]:
@@ -197,7 +223,7 @@ def count_ngrams(ids: np.ndarray, orders: Sequence[int], *, bits: int,
         raise SeqpipeError(f"n-gram orders must be positive, got {list(orders)}")
     n = max(orders)
     key = window_keys(ids, n, bits=bits, starts=starts, lengths=lengths)
-    key.sort()
+    key = sort_keys(key)
     top, top_counts, _ = runs(key)
     slot = np.uint64(filler(bits))
     out: dict[int, NgramCounts] = {}
