@@ -46,7 +46,7 @@ def hash_file(path: str | Path, block: int = BLOCK) -> str:
     import mmap
 
     try:
-        with open(path, "rb") as fh, mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) as mapped:
+        with open(path, "rb") as src, mmap.mmap(src.fileno(), 0, access=mmap.ACCESS_READ) as mapped:
             return xxhash.xxh3_128_hexdigest(mapped)
     except (ValueError, OSError):  # an empty file cannot be mapped; some filesystems refuse
         pass

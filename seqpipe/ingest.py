@@ -14,6 +14,7 @@ Ingest output ("part", cached by a fingerprint of its inputs, see ``part_key``):
 
 from __future__ import annotations
 
+import itertools
 import json
 import os
 import shutil
@@ -101,7 +102,7 @@ def _doc_hashes(docs: pa.Array) -> np.ndarray:
     view = memoryview(data) if data is not None else memoryview(b"")
     digest = xxhash.xxh3_128_digest
     bounds = offsets.tolist()
-    joined = b"".join([digest(view[a:b]) for a, b in zip(bounds[:-1], bounds[1:], strict=True)])
+    joined = b"".join([digest(view[a:b]) for a, b in itertools.pairwise(bounds)])
     return np.frombuffer(joined, dtype=np.uint8).reshape(-1, 16)
 
 

@@ -23,7 +23,8 @@ from seqpipe.verify import verify
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 KNOWN = sorted(p for p in (FIXTURES / "known").iterdir() if p.is_dir())
 
-WORDS = "ferry tide dock cargo lantern rope harbour fog north south calm squall pilot ledger".split()
+WORDS = ["ferry", "tide", "dock", "cargo", "lantern", "rope", "harbour", "fog", "north", "south", "calm",
+         "squall", "pilot", "ledger"]
 
 
 def write_corpus(root: Path, files: int = 3, docs: int = 40, seed: int = 3) -> Path:
