@@ -40,7 +40,7 @@ class ArrowSource(RecordSource):
         """Runs of record batches of about ``target_bytes``."""
         parse_int("target_bytes", target_bytes, minimum=1)
         reader = self._open(path)
-        sizes = [reader.get_batch(i).nbytes for i in range(reader.num_record_batches)]
+        sizes = [reader.get_record_batch(i).nbytes for i in range(reader.num_record_batches)]
         return group_parts(sizes, target_bytes)
 
     def read(self, path: Path, part: Part, stats: ReadStats, *,
@@ -52,8 +52,8 @@ class ArrowSource(RecordSource):
         count = reader.num_record_batches
         stop = count if part.stop is None else min(part.stop, count)
         finisher = DocumentFinisher(self, path, stats)
-        row = sum(reader.get_batch(i).num_rows for i in range(min(part.start, count)))
-        batches = (reader.get_batch(i) for i in range(part.start, stop))
+        row = sum(reader.get_record_batch(i).num_rows for i in range(min(part.start, count)))
+        batches = (reader.get_record_batch(i) for i in range(part.start, stop))
         for batch in guarded(batches, path, "Arrow IPC file"):
             column = batch.column(index)
             for offset, piece in byte_slices(column, batch_bytes):

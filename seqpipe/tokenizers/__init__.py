@@ -13,7 +13,7 @@ from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer
 # kind -> "module:Class"; imported on first use so optional kinds cost nothing.
 TOKENIZER_KINDS: Final = {
     "bpe": "seqpipe.tokenizers.bpe:BpeTokenizer",
-    "bytes": "seqpipe.tokenizers.bytelevel:ByteTokenizer",
+    "bytes": "seqpipe.tokenizers.utf8_bytes:ByteTokenizer",
     "chars": "seqpipe.tokenizers.chars:CharTokenizer",
     "words": "seqpipe.tokenizers.words:WordTokenizer",
 }
