@@ -136,3 +136,18 @@ def to_plain(obj: Any) -> Any:
     if isinstance(obj, dict):
         return {k: to_plain(v) for k, v in obj.items()}
     return obj
+
+
+def parse_kind(kinds: Mapping[str, type[T]], table: Any, path: str, what: str) -> T:
+    """Build the member of a family (sources, cleaning steps) that ``table["kind"]`` names."""
+    names = ", ".join(repr(k) for k in kinds)
+    if not isinstance(table, Mapping):
+        raise RecipeError(path, f"expected a table, got {_show(table)}")
+    if "kind" not in table:
+        raise RecipeError(f"{path}.kind", f"missing; expected one of {names}")
+    kind = table["kind"]
+    if not isinstance(kind, str) or kind not in kinds:
+        hint = difflib.get_close_matches(str(kind), list(kinds), n=1)
+        extra = f" (did you mean {hint[0]!r}?)" if hint else ""
+        raise RecipeError(f"{path}.kind", f"unknown {what} {_show(kind)}{extra}; expected one of {names}")
+    return section(kinds[kind], table, path, skip=("kind",))

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import os
 from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Final
 
@@ -50,14 +51,14 @@ def _tmp_name(path: Path) -> Path:
     return path.with_name(f".{path.name}.{os.getpid()}.tmp")
 
 
-def write_table(path: Path, table: pa.Table, *, compression: str | None = None) -> int:
-    """Write ``table`` as an Arrow IPC file atomically; return its size in bytes."""
+@contextmanager
+def _atomic(path: Path) -> Iterator[Path]:
+    """A temporary name beside ``path`` to write to; on success it is fsynced and renamed onto
+    ``path`` (and the directory fsynced), on failure removed."""
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = _tmp_name(path)
-    options = pa.ipc.IpcWriteOptions(compression=compression)
     try:
-        with pa.OSFile(str(tmp), "wb") as sink, pa.ipc.new_file(sink, table.schema, options=options) as writer:
-            writer.write_table(table, max_chunksize=max(table.num_rows, 1))
+        yield tmp
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, path)
@@ -65,29 +66,27 @@ def write_table(path: Path, table: pa.Table, *, compression: str | None = None) 
         if tmp.exists():
             tmp.unlink()
     fsync_dir(path.parent)
+
+
+def write_table(path: Path, table: pa.Table, *, compression: str | None = None) -> int:
+    """Write ``table`` as an Arrow IPC file atomically; return its size in bytes."""
+    options = pa.ipc.IpcWriteOptions(compression=compression)
+    with _atomic(path) as tmp, pa.OSFile(str(tmp), "wb") as sink, \
+            pa.ipc.new_file(sink, table.schema, options=options) as writer:
+        writer.write_table(table, max_chunksize=max(table.num_rows, 1))
     return path.stat().st_size
 
 
 def write_batches(path: Path, schema: pa.Schema, batches: Iterator[pa.RecordBatch]) -> int:
     """Write record batches as one Arrow IPC file atomically, never holding more than one batch;
     return the file size."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = _tmp_name(path)
-    try:
-        with pa.OSFile(str(tmp), "wb") as sink, pa.ipc.new_file(sink, schema) as writer:
-            wrote = False
-            for batch in batches:
-                writer.write_batch(batch)
-                wrote = True
-            if not wrote:
-                writer.write_table(schema.empty_table())
-        with open(tmp, "rb+") as fh:
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    fsync_dir(path.parent)
+    with _atomic(path) as tmp, pa.OSFile(str(tmp), "wb") as sink, pa.ipc.new_file(sink, schema) as writer:
+        wrote = False
+        for batch in batches:
+            writer.write_batch(batch)
+            wrote = True
+        if not wrote:
+            writer.write_table(schema.empty_table())
     return path.stat().st_size
 
 

@@ -6,12 +6,12 @@ in recipe order on ``large_string`` arrays (see :mod:`seqpipe.clean.base`).
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from typing import Any, Final
 
 import pyarrow as pa
 
-from seqpipe._parse import _show, section
+from seqpipe._parse import parse_kind
 from seqpipe.clean.base import CleanStep
 from seqpipe.clean.collapse_whitespace import CollapseWhitespace
 from seqpipe.clean.dedupe import Dedupe
@@ -20,7 +20,6 @@ from seqpipe.clean.min_length import MinLength
 from seqpipe.clean.normalize import Normalize
 from seqpipe.clean.replace import Replace
 from seqpipe.clean.strip_control import StripControl
-from seqpipe.errors import RecipeError
 
 STEP_KINDS: Final[dict[str, type[CleanStep]]] = {
     cls.kind: cls
@@ -30,15 +29,7 @@ STEP_KINDS: Final[dict[str, type[CleanStep]]] = {
 
 def parse_step(table: Any, path: str) -> CleanStep:
     """The cleaning step described by recipe table ``table`` found at key path ``path``."""
-    kinds = ", ".join(repr(k) for k in STEP_KINDS)
-    if not isinstance(table, Mapping):
-        raise RecipeError(path, f"expected a table, got {_show(table)}")
-    if "kind" not in table:
-        raise RecipeError(f"{path}.kind", f"missing; expected one of {kinds}")
-    kind = table["kind"]
-    if not isinstance(kind, str) or kind not in STEP_KINDS:
-        raise RecipeError(f"{path}.kind", f"unknown cleaning step {_show(kind)}; expected one of {kinds}")
-    return section(STEP_KINDS[kind], table, path, skip=("kind",))
+    return parse_kind(STEP_KINDS, table, path, "cleaning step")
 
 
 def apply_steps(steps: Sequence[CleanStep], docs: pa.Array) -> pa.Array:

@@ -6,11 +6,9 @@
 
 from __future__ import annotations
 
-from collections.abc import Mapping
 from typing import Any, Final
 
-from seqpipe._parse import _show, section
-from seqpipe.errors import RecipeError
+from seqpipe._parse import parse_kind
 from seqpipe.sources.arrow import ArrowSource
 from seqpipe.sources.base import Part, ReadStats, RecordSource, Source
 from seqpipe.sources.jsonl import JsonlSource
@@ -24,15 +22,7 @@ SOURCE_KINDS: Final[dict[str, type[Source]]] = {
 
 def parse_source(table: Any, path: str) -> Source:
     """The source described by recipe table ``table`` found at key path ``path``."""
-    kinds = ", ".join(repr(k) for k in SOURCE_KINDS)
-    if not isinstance(table, Mapping):
-        raise RecipeError(path, f"expected a table, got {_show(table)}")
-    if "kind" not in table:
-        raise RecipeError(f"{path}.kind", f"missing; expected one of {kinds}")
-    kind = table["kind"]
-    if not isinstance(kind, str) or kind not in SOURCE_KINDS:
-        raise RecipeError(f"{path}.kind", f"unknown source kind {_show(kind)}; expected one of {kinds}")
-    return section(SOURCE_KINDS[kind], table, path, skip=("kind",))
+    return parse_kind(SOURCE_KINDS, table, path, "source kind")
 
 
 __all__ = [

@@ -121,3 +121,17 @@ def scan_cut(path: Path, pos: int, stop: int, pattern: re.Pattern[bytes]) -> int
             del buf[:keep]
             base += keep
     return None
+
+
+def plan_cuts(path: Path, size: int, target_bytes: int, separator: re.Pattern[bytes]) -> list[tuple[int, int]]:
+    """Byte ranges of about ``target_bytes`` covering ``[0, size)``, each cut just after a
+    ``separator`` match found at or past the target (see :func:`scan_cut`)."""
+    cuts = [0]
+    pos = target_bytes
+    while pos < size:
+        cut = scan_cut(path, pos, size, separator)
+        if cut is None or cut >= size:
+            break
+        cuts.append(cut)
+        pos = cut + target_bytes
+    return list(zip(cuts, [*cuts[1:], size], strict=True))

@@ -27,7 +27,7 @@ import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str
 from seqpipe.errors import RecordError
-from seqpipe.sources._stream import COMPRESSIONS, codec_for, file_size, read_blocks, scan_cut
+from seqpipe.sources._stream import COMPRESSIONS, codec_for, file_size, plan_cuts, read_blocks
 from seqpipe.sources.base import (
     DEFAULT_BATCH_BYTES,
     DocumentFinisher,
@@ -68,16 +68,8 @@ class JsonlSource(RecordSource):
         if codec_for(path, self.compression) is not None:
             return [Part(0, None)]
         size = file_size(path)
-        cuts = [0]
-        pos = target_bytes
-        while pos < size:
-            # Only LF ends a JSON Lines record (a CR before it is JSON whitespace).
-            cut = scan_cut(path, pos, size, _LF)
-            if cut is None or cut >= size:
-                break
-            cuts.append(cut)
-            pos = cut + target_bytes
-        return [Part(a, b) for a, b in zip(cuts, [*cuts[1:], size], strict=True)]
+        # Only LF ends a JSON Lines record (a CR before it is JSON whitespace).
+        return [Part(a, b) for a, b in plan_cuts(path, size, target_bytes, _LF)]
 
     def read(self, path: Path, part: Part, stats: ReadStats, *,
              batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:

@@ -30,7 +30,7 @@ import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str
 from seqpipe.sources._fast_text import fast_documents, last_paragraph_cut
-from seqpipe.sources._stream import COMPRESSIONS, codec_for, file_size, read_blocks, scan_cut
+from seqpipe.sources._stream import COMPRESSIONS, codec_for, file_size, plan_cuts, read_blocks
 from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, Source, to_array
 
 DOCUMENT_MODES: Final = ("file", "line", "paragraph")
@@ -134,15 +134,7 @@ class TextSource(Source):
             return [Part(0, None)]
         size = file_size(path)
         separator = LINE_SEPARATOR if self.document == "line" else PARAGRAPH_SEPARATOR
-        cuts = [0]
-        pos = target_bytes
-        while pos < size:
-            cut = scan_cut(path, pos, size, separator)
-            if cut is None or cut >= size:
-                break
-            cuts.append(cut)
-            pos = cut + target_bytes
-        return [Part(a, b) for a, b in zip(cuts, [*cuts[1:], size], strict=True)]
+        return [Part(a, b) for a, b in plan_cuts(path, size, target_bytes, separator)]
 
     def read(self, path: Path, part: Part, stats: ReadStats, *,
              batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
