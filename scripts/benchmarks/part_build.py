@@ -226,15 +226,17 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     else:
         scale_recipe = make_corpus(workdir / "scale", 200 * MB, files=8)  # 25 MB files, as above
         scale_size = warm(corpus_files(scale_recipe))
-    # process scaling: one ingest thread per worker on both sides (by default a lone worker also
-    # uses the second core through its ingest threads, and two workers get one thread each)
+    # process scaling: one thread per worker on both sides (by default a lone worker also uses
+    # the second core, through task and ingest threads; two workers get one thread each)
     from seqpipe import ingest
 
     ingest.set_ingest_threads(1)
+    os.environ["SEQPIPE_TASK_THREADS"] = "1"
     try:
         t_one = timed_build(scale_recipe, workdir / "one", workers=1)[0]
     finally:
         ingest._THREADS.clear()
+        del os.environ["SEQPIPE_TASK_THREADS"]
     t_two = timed_build(scale_recipe, workdir / "two", workers=2)[0]
     yield Measure("build.two_workers_vs_one", t_one / t_two, 1.7,
                   f"(workers=1 {t_one:.2f} s vs workers=2 {t_two:.2f} s over {scale_size / MB:.0f} MB, "
