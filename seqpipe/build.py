@@ -32,7 +32,7 @@ import pyarrow as pa
 
 from seqpipe import __version__
 from seqpipe._hashing import hash_file, hash_json
-from seqpipe.errors import EmptyCorpusError, SeqpipeError, SourceMissingError
+from seqpipe.errors import EmptyCorpusError, RecipeError, SeqpipeError, SourceMissingError
 from seqpipe.executors import executor_for
 from seqpipe.ingest import (
     CountTask,
@@ -168,11 +168,13 @@ def build(recipe: Recipe, out: str | Path, *, executor: Executor | None = None, 
     """Build ``recipe`` into directory ``out`` and return the result.
 
     ``executor``: any concurrent.futures-style executor (e.g. a Dask client's
-    ``get_executor(pure=False)``); otherwise ``workers`` processes (default: all cores; 1 runs
-    in this process). ``cache_dir`` keeps ingested parts for later builds (default
+    ``get_executor(pure=False)``); otherwise ``workers`` spawned processes, or (default, or 1)
+    this process with its tasks on one thread per core. ``cache_dir`` keeps ingested parts for later builds (default
     ``out/.seqpipe/cache``); ``force`` ignores it.
     """
     t0 = time.perf_counter()
+    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
+        raise RecipeError("workers", f"expected a positive integer, got {workers!r}")
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
     show = enabled(progress)

@@ -164,7 +164,8 @@ def parser() -> argparse.ArgumentParser:
     p = sub.add_parser("build", help="build a dataset from a TOML recipe")
     p.add_argument("recipe", help="recipe file (TOML)")
     p.add_argument("-o", "--output", help="dataset directory (default: ./<dataset.name>)")
-    p.add_argument("--workers", type=int, default=None, help="worker processes (default: all cores)")
+    p.add_argument("--workers", type=int, default=None,
+                   help="worker processes (default: this process, one thread per core)")
     p.add_argument("--dask-scheduler", metavar="ADDRESS", help="run tasks on a Dask cluster (seqpipe[dask])")
     p.add_argument("--cache", help="cache directory for ingested parts (default: DIR/.seqpipe/cache)")
     p.add_argument("--force", action="store_true", help="ignore cached parts; rebuild everything")

@@ -41,7 +41,7 @@ def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Exe
     if executor is not None:
         yield executor
         return
-    n = workers or default_workers()
+    n = workers or 1
     if n == 1:
         # one process: tasks run on threads (their numpy and Arrow work releases the GIL), as
         # many as there are cores; SEQPIPE_TASK_THREADS=1 runs them one by one
