@@ -202,7 +202,8 @@ def read_manifest(directory: Path) -> dict[str, Any]:
     """Read, size-limit, parse and validate ``directory/manifest.json``."""
     path = directory / MANIFEST_NAME
     if not directory.is_dir():
-        raise ManifestError(f"{directory}: not a directory", path=str(directory))
+        raise ManifestError(f"{directory}: not a directory (expected a dataset written by 'seqpipe build')",
+                            path=str(directory))
     if not path.is_file():
         raise ManifestError(f"{path}: no manifest; this is not a complete seqpipe dataset "
                             "(an interrupted build leaves none: run the build again)", path=str(path))
