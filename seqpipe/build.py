@@ -135,7 +135,8 @@ def _input_hashes(files: Sequence[Path], cache: Path) -> list[str]:
 
 
 def _run(executor: Executor, fn: Callable[[Any], T], tasks: Sequence[Any], desc: str, show: bool,
-         unit: str = "part", weights: Sequence[int] | None = None) -> list[T]:
+         unit: str = "part", weights: Sequence[int] | None = None,
+         postfix: Callable[[list[Any]], dict[str, Any]] | None = None) -> list[T]:
     """Submit every task, wait for all, return results in task order (never completion order)."""
     from concurrent.futures import as_completed
 
@@ -148,6 +149,8 @@ def _run(executor: Executor, fn: Callable[[Any], T], tasks: Sequence[Any], desc:
             i = futures[fut]
             results[i] = fut.result()
             pbar.update(weights[i] if weights is not None else 1)
+            if postfix is not None:
+                pbar.set_postfix(postfix([r for r in results if r is not None]), refresh=False)
     return results
 
 
@@ -220,7 +223,8 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     metas: list[PartMeta | None] = [load_part_meta(str(cache), t.key) for t in tasks]
     todo = [i for i, m in enumerate(metas) if m is None]
     fresh = _run(ex, ingest_part, [tasks[i] for i in todo], "reading", show, unit="B",
-                 weights=[weights[i] for i in todo])
+                 weights=[weights[i] for i in todo],
+                 postfix=lambda done: {"documents": sum(m.documents for m in done)})
     for i, m in zip(todo, fresh, strict=True):
         metas[i] = m
     parts: list[PartMeta] = [m for m in metas if m is not None]
