@@ -20,7 +20,7 @@ import os
 import shutil
 import uuid
 from collections import deque
-from collections.abc import Iterator, Sequence
+from collections.abc import Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -464,8 +464,3 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
 def _is_compressed(path: Path) -> bool:
     meta = read_table(path).schema.metadata or {}
     return bool(meta.get(b"seqpipe.compression", b"none") != b"none")
-
-
-def iter_docs_columns(table: pa.Table, names: Sequence[str]) -> Iterator[np.ndarray]:
-    for name in names:
-        yield table.column(name).to_numpy()

@@ -26,7 +26,7 @@ import json
 from pathlib import Path, PurePosixPath
 from typing import Any, Final
 
-from seqpipe._hashing import canonical_json, hash_json
+from seqpipe._hashing import hash_json
 from seqpipe.errors import ManifestError, UnsafePathError
 
 FORMAT: Final = "seqpipe-dataset/1"
@@ -221,8 +221,3 @@ def read_manifest(directory: Path) -> dict[str, Any]:
 
 def _refuse_constant(name: str) -> Any:
     raise ValueError(f"{name} is not allowed")
-
-
-def content_key(manifest: dict[str, Any]) -> str:
-    """Canonical JSON of a manifest (for comparisons in tests and tools)."""
-    return canonical_json(manifest)

@@ -15,7 +15,7 @@ import json
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Final
+from typing import Final
 
 import numpy as np
 import pyarrow as pa
@@ -195,9 +195,3 @@ def build_vocabulary(counts: pa.Table, spec: VocabSpec, *, always: Sequence[byte
     tokens = pa.concat_arrays([pa.array(special_tokens, pa.binary()), keys.cast(pa.binary())])
     counts_all = np.concatenate([np.zeros(len(special_tokens), np.int64), cnt]).astype(np.int64)
     return Vocabulary(tokens=tokens, counts=counts_all, n_special=len(special_tokens), roles=roles)
-
-
-def plain(spec: VocabSpec) -> dict[str, Any]:
-    from seqpipe._parse import to_plain
-
-    return to_plain(spec)  # type: ignore[no-any-return]
