@@ -18,6 +18,7 @@ import numpy as np
 from common import Measure, best_time
 from numpy.lib.stride_tricks import sliding_window_view
 
+from seqpipe.recipe import ShardSpec
 from seqpipe.shards import read_shard, write_shard
 from seqpipe.stream import TokenStream
 from seqpipe.windows import BatchStream
@@ -62,7 +63,8 @@ def first_batch_seconds(chunks: list[np.ndarray], repeat: int = 5) -> float:
 def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     tokens = 1_000_000 if quick else 100_000_000
     small_tokens = 100_000 if quick else 1_000_000  # at least a few batches of B*T
-    shard_tokens = 1 << 18 if quick else 1 << 23
+    # full size: shards of the size a build writes by default ([shards] tokens = 2**24)
+    shard_tokens = 1 << 18 if quick else ShardSpec().tokens
     big = write_split(workdir / "big", tokens, shard_tokens, seed=7)
     small = write_split(workdir / "small", small_tokens, shard_tokens, seed=8)
     split_bytes = tokens * 2
