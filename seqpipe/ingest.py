@@ -139,11 +139,15 @@ def _merge_segments(parts: Sequence[Segments]) -> Segments:
         return Segments(pa.array([], pa.binary()), np.zeros(0, np.int32), np.zeros(0, np.int64))
     all_keys = pa.concat_arrays([p.keys.cast(pa.binary()) for p in parts])
     enc = pc.dictionary_encode(all_keys)
-    remap = enc.indices.to_numpy(zero_copy_only=False).astype(np.int32)
-    base = np.cumsum([0] + [len(p.keys) for p in parts[:-1]])
-    codes = np.concatenate([remap[b + p.codes] for b, p in zip(base, parts, strict=True)])
+    remap = enc.indices.to_numpy(zero_copy_only=False).astype(np.int32, copy=False)
+    codes = np.empty(sum(len(p.codes) for p in parts), dtype=np.int32)
+    key_at = pos = 0
+    for p in parts:  # batch-local code -> global code, written straight into the output
+        np.take(remap[key_at:key_at + len(p.keys)], p.codes, out=codes[pos:pos + len(p.codes)], mode="clip")
+        key_at += len(p.keys)
+        pos += len(p.codes)
     lengths = np.concatenate([p.doc_lengths for p in parts])
-    return Segments(enc.dictionary.cast(pa.binary()), codes.astype(np.int32), lengths)
+    return Segments(enc.dictionary.cast(pa.binary()), codes, lengths)
 
 
 def _part_dir(cache_dir: str, key: str) -> Path:
