@@ -6,7 +6,7 @@ twice (a retried cluster task, a resumed build) produces the same bytes and neve
 
 Ingest output ("part", cached by a fingerprint of its inputs, see ``part_key``)::
 
-    <cache>/parts/<key>/docs.arrow    per document: hash, dedupe, pieces, chars, bytes, words
+    <cache>/parts/<key>/docs.arrow    per document: hash, dedupe, pieces, bytes, words
     <cache>/parts/<key>/keys.arrow    distinct piece keys of the part (binary)
     <cache>/parts/<key>/codes.arrow   one int32 code per piece position, documents in order
     <cache>/parts/<key>/meta.json     read/clean statistics
@@ -39,7 +39,7 @@ from seqpipe.shards import fsync_dir, read_shard, read_table, write_shard, write
 from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
 
-PART_FORMAT: Final = 1
+PART_FORMAT: Final = 2
 _THREADS: list[int] = []  # set by set_ingest_threads (e.g. in pool workers); else the environment
 
 
@@ -180,7 +180,6 @@ def _process_batch(recipe: Recipe, batch: pa.Array) -> _Batch:
     docs = docs.cast(pa.large_string())
     columns = {
         "hash": _doc_hashes(docs),
-        "chars": pc.utf8_length(docs).to_numpy(zero_copy_only=False).astype(np.int64),
         "bytes": pc.binary_length(docs).to_numpy(zero_copy_only=False).astype(np.int64),
         "words": count_words(docs),
     }
@@ -199,7 +198,7 @@ def ingest_part(task: IngestTask) -> PartMeta:
     stats = ReadStats()
     dropped: dict[str, int] = {}
     segs: list[Segments] = []
-    doc_cols: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "chars", "bytes", "words")}
+    doc_cols: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "bytes", "words")}
 
     def collect(done: _Batch) -> None:
         for name, count in done.dropped.items():
@@ -232,7 +231,6 @@ def ingest_part(task: IngestTask) -> PartMeta:
     table: dict[str, Any] = {
         "hash": pa.FixedSizeBinaryArray.from_buffers(HASH_TYPE, n, [None, pa.py_buffer(col("hash", 16).tobytes())]),
         "pieces": pa.array(seg.doc_lengths, pa.int64()),
-        "chars": pa.array(col("chars"), pa.int64()),
         "bytes": pa.array(col("bytes"), pa.int64()),
         "words": pa.array(col("words"), pa.int64()),
     }
@@ -245,9 +243,9 @@ def ingest_part(task: IngestTask) -> PartMeta:
     tmp = final.with_name(f".{task.key}.{os.getpid()}.{uuid.uuid4().hex[:8]}.tmp")
     tmp.mkdir(parents=True)
     try:
-        write_table(tmp / "docs.arrow", pa.table(table))
-        write_table(tmp / "keys.arrow", pa.table({"key": seg.keys.cast(pa.binary())}))
-        write_table(tmp / "codes.arrow", pa.table({"code": pa.array(seg.codes, pa.int32())}))
+        write_table(tmp / "docs.arrow", pa.table(table), durable=False)
+        write_table(tmp / "keys.arrow", pa.table({"key": seg.keys.cast(pa.binary())}), durable=False)
+        write_table(tmp / "codes.arrow", pa.table({"code": pa.array(seg.codes, pa.int32())}), durable=False)
         (tmp / "meta.json").write_text(json.dumps(asdict(meta), sort_keys=True))
         fsync_dir(tmp)
         try:
@@ -400,8 +398,8 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
         ids = _add_markers(ids, lengths, begin, end)
         lengths = lengths + (begin is not None) + (end is not None)
         unknown = int(np.count_nonzero(ids == unk)) if unk is not None else 0
-        write_shard(encoded_path(task.stage_dir, task.number, split), ids.astype(task.dtype))
-        write_table(fragment_path(task.stage_dir, task.number, split), pa.table({
+        write_shard(encoded_path(task.stage_dir, task.number, split), ids.astype(task.dtype), durable=False)
+        write_table(fragment_path(task.stage_dir, task.number, split), durable=False, table=pa.table({
             "length": pa.array(lengths, pa.int64()),
             "source": pa.array(np.full(len(lengths), task.input_index, np.int32)),
             "hash": hashes.filter(pa.array(dmask)),

@@ -52,26 +52,32 @@ def _tmp_name(path: Path) -> Path:
 
 
 @contextmanager
-def _atomic(path: Path) -> Iterator[Path]:
-    """A temporary name beside ``path`` to write to; on success it is fsynced and renamed onto
-    ``path`` (and the directory fsynced), on failure removed."""
+def _atomic(path: Path, durable: bool = True) -> Iterator[Path]:
+    """A temporary name beside ``path`` to write to; on success it is renamed onto ``path``
+    (fsynced first, and the directory after, when ``durable``), on failure removed.
+
+    Intermediate files that a re-run recomputes anyway (cached parts, encoded parts) skip the
+    fsyncs: a killed process leaves them whole in the page cache, and nothing is promised
+    for them across a power loss."""
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = _tmp_name(path)
     try:
         yield tmp
-        with open(tmp, "rb+") as fh:
-            os.fsync(fh.fileno())
+        if durable:
+            with open(tmp, "rb+") as fh:
+                os.fsync(fh.fileno())
         os.replace(tmp, path)
     finally:
         if tmp.exists():
             tmp.unlink()
-    fsync_dir(path.parent)
+    if durable:
+        fsync_dir(path.parent)
 
 
-def write_table(path: Path, table: pa.Table, *, compression: str | None = None) -> int:
+def write_table(path: Path, table: pa.Table, *, compression: str | None = None, durable: bool = True) -> int:
     """Write ``table`` as an Arrow IPC file atomically; return its size in bytes."""
     options = pa.ipc.IpcWriteOptions(compression=compression)
-    with _atomic(path) as tmp, pa.OSFile(str(tmp), "wb") as sink, \
+    with _atomic(path, durable) as tmp, pa.OSFile(str(tmp), "wb") as sink, \
             pa.ipc.new_file(sink, table.schema, options=options) as writer:
         writer.write_table(table, max_chunksize=max(table.num_rows, 1))
     return path.stat().st_size
@@ -103,13 +109,14 @@ def read_table(path: Path, *, memory_map: bool = True) -> pa.Table:
                                 "run 'seqpipe verify' on the dataset, then rebuild it", path=str(path)) from exc
 
 
-def write_shard(path: Path, ids: np.ndarray, *, compression: str | None = None) -> tuple[int, str]:
+def write_shard(path: Path, ids: np.ndarray, *, compression: str | None = None,
+                durable: bool = True) -> tuple[int, str]:
     """Write a token shard; return (file size, XXH3-128 of the ids' little-endian bytes)."""
     arr = pa.array(np.ascontiguousarray(ids))
     table = pa.table({"ids": arr}).replace_schema_metadata(
         {b"seqpipe.table": b"shard", b"seqpipe.format": SHARD_FORMAT.encode(),
          b"seqpipe.compression": (compression or "none").encode()})
-    size = write_table(path, table, compression=compression)
+    size = write_table(path, table, compression=compression, durable=durable)
     return size, hash_array(ids)
 
 

@@ -121,11 +121,12 @@ def expand(values: np.ndarray, offsets: np.ndarray, codes: np.ndarray,
     """
     values = np.asarray(values, dtype=np.int64)
     offsets = np.asarray(offsets, dtype=np.int64)
-    codes = np.asarray(codes, dtype=np.int64)
     lens = np.diff(offsets)
     if len(lens) == 0 or (lens == 1).all():
+        # one id per piece: a single gather (codes index directly, whatever their int type)
         ids = values[codes] if len(codes) else np.zeros(0, np.int64)
         return ids, np.asarray(doc_lengths, dtype=np.int64).copy()
+    codes = np.asarray(codes, dtype=np.int64)
     per_pos = lens[codes]
     total = int(per_pos.sum())
     starts = offsets[codes]
