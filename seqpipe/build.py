@@ -17,6 +17,7 @@ never from task completion order, so 1 worker, N workers or a cluster give ident
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import shutil
@@ -222,6 +223,11 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     # -- ingest (cached) ------------------------------------------------------------------------
     metas: list[PartMeta | None] = [load_part_meta(str(cache), t.key) for t in tasks]
     todo = [i for i, m in enumerate(metas) if m is None]
+    in_process = getattr(ex, "seqpipe_threads", None)
+    if in_process and todo:
+        # tasks already run side by side on threads: nest threads only where tasks are fewer
+        inner = max(1, in_process // min(len(todo), in_process))
+        tasks = [dataclasses.replace(t, threads=inner) for t in tasks]
     fresh = _run(ex, ingest_part, [tasks[i] for i in todo], "reading", show, unit="B",
                  weights=[weights[i] for i in todo],
                  postfix=lambda done: {"documents": sum(m.documents for m in done)})

@@ -50,6 +50,7 @@ def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Exe
             yield InlineExecutor()
             return
         with ThreadPoolExecutor(max_workers=threads) as tpool:
+            tpool.seqpipe_threads = threads  # type: ignore[attr-defined]  # read by the build
             yield tpool
         return
     from seqpipe.ingest import set_ingest_threads

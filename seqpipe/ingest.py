@@ -79,6 +79,7 @@ class IngestTask:
     key: str
     cache_dir: str
     batch_bytes: int = 1 << 20
+    threads: int | None = None  # ingest threads; None: ingest_threads()
 
 
 @dataclass
@@ -211,11 +212,12 @@ def ingest_part(task: IngestTask) -> PartMeta:
 
     # Batches are cleaned and segmented on a few threads (Arrow and numpy release the GIL)
     # while this thread reads on; results are collected in reading order.
-    with ThreadPoolExecutor(max_workers=ingest_threads()) as pool:
+    threads = task.threads or ingest_threads()
+    with ThreadPoolExecutor(max_workers=threads) as pool:
         pending: deque[Future[_Batch]] = deque()
         for batch in source.read(Path(task.path), task.part, stats, batch_bytes=task.batch_bytes):
             pending.append(pool.submit(_process_batch, recipe, batch))
-            while len(pending) > ingest_threads():
+            while len(pending) > threads:
                 collect(pending.popleft().result())
         while pending:
             collect(pending.popleft().result())
