@@ -186,3 +186,19 @@ def test_spans_match_a_regex_over_lines() -> None:
         want = [m.span() for m in re.finditer(rb"[^\r\n]+", data) if m.group().strip(b" \t\x0b\x0c")]
         starts, stops = document_spans(np.frombuffer(data, dtype=np.uint8), False, b"\r" in data)
         assert list(zip(starts.tolist(), stops.tolist(), strict=True)) == want
+
+
+def test_read_buffer_survives_a_live_view() -> None:
+    """Dropping consumed bytes works even while a view of the read buffer is alive (copy instead
+    of the in-place resize, which would raise BufferError)."""
+    import numpy as np
+
+    from seqpipe.sources._stream import drop_front
+
+    buf = bytearray(b"first doc\n\nsecond doc\n")
+    view = np.frombuffer(buf, dtype=np.uint8)  # an export, as numpy or Arrow may still hold one
+    rest = drop_front(buf, 11)
+    assert bytes(rest) == b"second doc\n"
+    assert bytes(view[:5]) == b"first"  # the old buffer is untouched while viewed
+    del view
+    assert bytes(drop_front(rest, 7)) == b"doc\n"

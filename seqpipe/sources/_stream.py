@@ -118,7 +118,7 @@ def scan_cut(path: Path, pos: int, stop: int, pattern: re.Pattern[bytes]) -> int
             if match is not None:
                 return base + match.end()
             keep = len(buf.rstrip())
-            del buf[:keep]
+            buf = drop_front(buf, keep)
             base += keep
     return None
 
@@ -135,3 +135,14 @@ def plan_cuts(path: Path, size: int, target_bytes: int, separator: re.Pattern[by
         cuts.append(cut)
         pos = cut + target_bytes
     return list(zip(cuts, [*cuts[1:], size], strict=True))
+
+
+def drop_front(buf: bytearray, n: int) -> bytearray:
+    """``buf`` without its first ``n`` bytes: resized in place, or copied into a fresh buffer
+    while some view of it is still alive (a memoryview or numpy array the garbage collector has
+    not freed yet makes the resize raise BufferError, depending on timing)."""
+    try:
+        del buf[:n]
+    except BufferError:
+        return bytearray(memoryview(buf)[n:])
+    return buf

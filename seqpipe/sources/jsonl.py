@@ -27,7 +27,7 @@ import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str
 from seqpipe.errors import RecordError
-from seqpipe.sources._stream import COMPRESSIONS, codec_for, file_size, plan_cuts, read_blocks
+from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, file_size, plan_cuts, read_blocks
 from seqpipe.sources.base import (
     DEFAULT_BATCH_BYTES,
     DocumentFinisher,
@@ -109,7 +109,7 @@ class JsonlSource(RecordSource):
                     buf.clear()
                     continue
                 end = len(buf) if nl < 0 else nl + 1
-                del buf[:end]
+                buf = drop_front(buf, end)
                 base += end
                 lines += 1
                 skipping = False
@@ -117,7 +117,7 @@ class JsonlSource(RecordSource):
             cut = len(buf) if eof else buf.rfind(b"\n", frm) + 1
             if cut:
                 lines = self._records(buf, cut, base, lines, line_limit, finisher, docs)
-                del buf[:cut]
+                buf = drop_front(buf, cut)
                 base += cut
             frm = len(buf)
             if not eof and len(buf) > line_limit:

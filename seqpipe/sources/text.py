@@ -30,7 +30,7 @@ import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str
 from seqpipe.sources._fast_text import fast_documents, last_paragraph_cut
-from seqpipe.sources._stream import COMPRESSIONS, codec_for, file_size, plan_cuts, read_blocks
+from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, file_size, plan_cuts, read_blocks
 from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, Source, to_array
 
 DOCUMENT_MODES: Final = ("file", "line", "paragraph")
@@ -209,7 +209,7 @@ class TextSource(Source):
             if skipping:
                 match = separator.search(buf)
                 if match is None and not eof:
-                    del buf[:tail]
+                    buf = drop_front(buf, tail)
                     base += tail
                     tail = 0
                     continue
@@ -219,14 +219,14 @@ class TextSource(Source):
                     out.append(to_array([] if text is None else [text], stats))
                     kept = None
                 skipping = False
-                del buf[:end]
+                buf = drop_front(buf, end)
                 base += end
                 tail = max(0, tail - end)
                 frm = 0
             cut = len(buf) if eof else last_cut(buf, frm)
             if cut:
                 out.append(self._chunk(buf, cut, base, finisher, slow=slow))
-                del buf[:cut]
+                buf = drop_front(buf, cut)
                 base += cut
                 tail = max(0, tail - cut)
                 first, first_scan = None, 0
@@ -244,7 +244,7 @@ class TextSource(Source):
                     else:
                         stats.oversize_skipped += 1
                     skipping = True
-                    del buf[:tail]
+                    buf = drop_front(buf, tail)
                     base += tail
                     tail = 0
                     first, first_scan = None, 0
