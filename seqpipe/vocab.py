@@ -80,9 +80,6 @@ class Vocabulary:
     def token(self, token_id: int) -> bytes:
         return bytes(self.tokens[int(token_id)].as_py())
 
-    def is_special(self, ids: np.ndarray) -> np.ndarray:
-        return np.asarray(ids) < self.n_special
-
     def lookup(self, keys: pa.Array) -> np.ndarray:
         """Ids of non-special tokens ``keys`` (binary); misses get the unknown id."""
         normal = self.tokens.slice(self.n_special)

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import importlib
-from pathlib import Path
 from typing import Any, Final
 
 from seqpipe._parse import parse_str, section
@@ -34,10 +33,5 @@ def parse_tokenizer(table: Any, path: str = "tokenizer") -> Tokenizer:
     return section(tokenizer_class(kind), table, path, skip=("kind",))
 
 
-def load_encoder(tokenizer: Tokenizer, directory: Path) -> Encoder:
-    """The trained encoder a build stored in ``directory``."""
-    return tokenizer.load(directory)
-
-
-__all__ = ["TOKENIZER_KINDS", "Encoder", "Segments", "Tokenizer", "load_encoder", "parse_tokenizer",
+__all__ = ["TOKENIZER_KINDS", "Encoder", "Segments", "Tokenizer", "parse_tokenizer",
            "tokenizer_class"]

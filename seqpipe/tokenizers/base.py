@@ -21,7 +21,7 @@ from abc import ABC, abstractmethod
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, ClassVar
+from typing import TYPE_CHECKING, ClassVar
 
 import numpy as np
 import pyarrow as pa
@@ -64,10 +64,6 @@ class Tokenizer(ABC):
     def load(self, directory: Path) -> Encoder:
         """Load the encoder a build stored in ``directory`` (see ``Encoder.save``)."""
 
-    def words_in(self, texts: Sequence[str]) -> int:
-        """Whitespace-separated words in ``texts``, for tokens-per-word figures."""
-        return sum(len(t.split()) for t in texts)
-
 
 class Encoder(ABC):
     """A trained tokenizer: a fixed vocabulary and the rule mapping pieces to ids."""
@@ -107,10 +103,6 @@ class Encoder(ABC):
     def encode_batch(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
         """Ids for many texts, concatenated, and ids per text."""
         return self.encode_segments(self.tokenizer.segment(texts))
-
-    def describe(self) -> dict[str, Any]:
-        """Figures for the manifest / inspect output."""
-        return {"kind": self.tokenizer.kind, "vocab_size": len(self.vocabulary)}
 
 
 def expand(values: np.ndarray, offsets: np.ndarray, codes: np.ndarray,

@@ -399,7 +399,3 @@ class BpeEncoder(Encoder):
             b"seqpipe.bpe": canonical_json(params).encode("ascii")})
         write_table(directory / MERGES_FILE, table)
         return [MERGES_FILE]
-
-    def describe(self) -> dict[str, Any]:
-        return {"kind": self._bpe.kind, "vocab_size": len(self.vocabulary), "base": self._bpe.base,
-                "merges": len(self.merges), "alphabet_size": self.alphabet_size}

@@ -180,9 +180,6 @@ class WordTokenizer(Tokenizer):
         flat_list = [tok for toks in found for tok in toks]
         return segments_from_tokens(pa.array(flat_list, pa.large_string()), lengths)
 
-    def words_in(self, texts: Sequence[str]) -> int:
-        return int(count_words(as_string_array(texts)).sum())
-
     def fit(self, counts: pa.Table, spec: VocabSpec) -> Encoder:
         return WordEncoder(self, build_vocabulary(counts, spec))
 
