@@ -212,15 +212,21 @@ def ingest_part(task: IngestTask) -> PartMeta:
 
     # Batches are cleaned and segmented on a few threads (Arrow and numpy release the GIL)
     # while this thread reads on; results are collected in reading order.
+    # With one thread, batches are processed inline: a worker given one core uses one core.
     threads = task.threads or ingest_threads()
-    with ThreadPoolExecutor(max_workers=threads) as pool:
-        pending: deque[Future[_Batch]] = deque()
-        for batch in source.read(Path(task.path), task.part, stats, batch_bytes=task.batch_bytes):
-            pending.append(pool.submit(_process_batch, recipe, batch))
-            while len(pending) > threads:
+    batches = source.read(Path(task.path), task.part, stats, batch_bytes=task.batch_bytes)
+    if threads == 1:
+        for batch in batches:
+            collect(_process_batch(recipe, batch))
+    else:
+        with ThreadPoolExecutor(max_workers=threads) as pool:
+            pending: deque[Future[_Batch]] = deque()
+            for batch in batches:
+                pending.append(pool.submit(_process_batch, recipe, batch))
+                while len(pending) > threads:
+                    collect(pending.popleft().result())
+            while pending:
                 collect(pending.popleft().result())
-        while pending:
-            collect(pending.popleft().result())
     seg = _merge_segments(segs)
     n = len(seg.doc_lengths)
 

@@ -302,3 +302,15 @@ def test_lowercase_special_cases() -> None:
     got = Lowercase().apply(pa.array(["İstanbul", "ΟΔΟΣ ΟΔΟΣ.", "Straße"], pa.large_string())).to_pylist()
     assert got == ["i\u0307stanbul", "οδος οδος.", "straße"]
     assert Lowercase(mode="casefold").apply(pa.array(["Straße"], pa.large_string())).to_pylist() == ["strasse"]
+
+
+@pytest.mark.parametrize("fn", [str.lower, str.casefold])
+def test_block_scan_finds_every_changed_code_point(fn: Any) -> None:
+    """The block-wise scan behind the fast path's unsafe class equals the per-character
+    definition over every code point (surrogates excluded), for both mappings."""
+    from seqpipe.clean.lowercase import _changed_by
+
+    text = "".join(chr(cp) for cp in range(sys.maxunicode + 1) if not 0xD800 <= cp < 0xE000)
+    want = [i for i, ch in enumerate(text) if fn(ch) != ch]
+    assert _changed_by(fn, text) == want
+    assert _changed_by(fn, text, block=7) == want

@@ -60,6 +60,35 @@ def test_counts_equal_counter_over_tuples(corpus: tuple, orders: set[int]) -> No
         assert got.total == sum(expected.values())
 
 
+@settings(max_examples=150, deadline=None)
+@given(corpora(), st.integers(1, 4), st.integers(1, 9), st.integers(1, 3))
+def test_counts_do_not_depend_on_pieces_or_threads(corpus: tuple, n: int, chunk: int, threads: int) -> None:
+    """Counting in pieces of any size on any number of threads gives the one-sort answer."""
+    ids, starts, lengths, vocab = corpus
+    orders = list(range(1, n + 1))
+    whole = count_ngrams(ids, orders, bits=key_bits(vocab), starts=starts, lengths=lengths,
+                         threads=1, chunk=1 << 30)
+    pieces = count_ngrams(ids, orders, bits=key_bits(vocab), starts=starts, lengths=lengths,
+                          threads=threads, chunk=chunk)
+    for k in orders:
+        assert np.array_equal(whole[k].keys, pieces[k].keys)
+        assert np.array_equal(whole[k].counts, pieces[k].counts)
+
+
+def test_pieces_on_a_skewed_corpus_equal_counter() -> None:
+    """One id holding most windows (one oversized bucket) and documents cut across pieces."""
+    rng = np.random.default_rng(3)
+    ids = np.where(rng.random(5000) < 0.7, 0, rng.integers(0, 300, 5000)).astype(np.uint16)
+    starts = np.array([0, 10, 2500, 2501, 4000], np.int64)
+    lengths = np.array([7, 2400, 0, 1400, 1000], np.int64)
+    counted = count_ngrams(ids, [2, 3], bits=key_bits(300), starts=starts, lengths=lengths,
+                           threads=2, chunk=97)
+    for n in (2, 3):
+        got = counted[n]
+        expected = counter_reference(ids, starts, lengths, n)
+        assert dict(zip(map(tuple, got.ids().tolist()), got.counts.tolist(), strict=True)) == expected
+
+
 @settings(max_examples=100, deadline=None)
 @given(st.integers(1, 70_000), st.integers(1, 4), st.data())
 def test_pack_unpack_round_trip(vocab: int, n: int, data: st.DataObject) -> None:
@@ -117,3 +146,15 @@ def test_window_hashes_identify_windows(corpus: tuple, n: int) -> None:
     # collision chance <= 2**-62 per pair for ids < 8 (bound in window_hashes): none expected
     assert len(set(by_window.values())) == len(by_window)
 
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16, np.uint32, np.uint64, np.int64])
+def test_pieces_accept_every_id_dtype(dtype: type) -> None:
+    """The piecewise path (bucket table, gathers) takes any integer id dtype a split may hold."""
+    ids = (np.arange(400) * 7 % 13).astype(dtype)
+    whole = count_ngrams(ids, [2, 3], bits=key_bits(13), threads=1, chunk=1 << 30)
+    pieces = count_ngrams(ids, [2, 3], bits=key_bits(13), threads=2, chunk=29)
+    for k in (2, 3):
+        assert np.array_equal(whole[k].keys, pieces[k].keys)
+        assert np.array_equal(whole[k].counts, pieces[k].counts)
+        assert whole[k].total == 400 - k + 1

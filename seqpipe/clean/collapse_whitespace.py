@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
+import functools
 import sys
 from dataclasses import dataclass
-from typing import ClassVar, Final
+from typing import ClassVar
 
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -12,10 +13,13 @@ import pyarrow.compute as pc
 from seqpipe._parse import parse_bool
 from seqpipe.clean.base import CleanStep, as_documents, re2_class
 
-# Python's notion of whitespace (str.isspace / str.split), fixed here once.
-WHITESPACE: Final = tuple(chr(cp) for cp in range(sys.maxunicode + 1) if chr(cp).isspace())
-_ANY: Final = re2_class(list(WHITESPACE))
-_NOT_NEWLINE: Final = re2_class([c for c in WHITESPACE if c != "\n"])
+
+@functools.cache
+def _classes() -> tuple[str, str]:
+    """RE2 classes of Python's whitespace (str.isspace / str.split), and of it without the line
+    feed; found on first use by scanning every code point (about 0.1 s, kept off import)."""
+    whitespace = [chr(cp) for cp in range(sys.maxunicode + 1) if chr(cp).isspace()]
+    return re2_class(whitespace), re2_class([c for c in whitespace if c != "\n"])
 
 
 @dataclass(frozen=True, slots=True)
@@ -40,11 +44,12 @@ class CollapseWhitespace(CleanStep):
         docs = as_documents(docs)
         if not len(docs):
             return docs
+        any_ws, not_newline = _classes()
         if self.keep_newlines:
-            docs = pc.replace_substring_regex(docs, pattern=f"{_ANY}*\\n{_ANY}*", replacement="\n")
-            docs = pc.replace_substring_regex(docs, pattern=f"{_NOT_NEWLINE}+", replacement=" ")
+            docs = pc.replace_substring_regex(docs, pattern=f"{any_ws}*\\n{any_ws}*", replacement="\n")
+            docs = pc.replace_substring_regex(docs, pattern=f"{not_newline}+", replacement=" ")
             out: pa.Array = pc.utf8_trim(docs, characters=" \n")
             return out
-        docs = pc.replace_substring_regex(docs, pattern=f"{_ANY}+", replacement=" ")
+        docs = pc.replace_substring_regex(docs, pattern=f"{any_ws}+", replacement=" ")
         out = pc.utf8_trim(docs, characters=" ")
         return out

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from functools import cache
 from typing import ClassVar, Final
@@ -15,6 +16,22 @@ from seqpipe.clean.base import CleanStep, as_documents, map_selected, re2_class
 
 MODES: Final = ("lower", "casefold")
 _CAPITAL_SIGMA: Final = 0x03A3  # str.lower maps it by context (final sigma); Arrow does not
+
+
+def _changed_by(fn: Callable[[str], str], text: str, block: int = 1024) -> list[int]:
+    """Indices ``i`` with ``fn(text[i]) != text[i]``, calling ``fn`` once per block where none does.
+
+    ``fn`` (``str.lower`` / ``str.casefold``) maps character by character apart from the
+    final-sigma rule, and never to an empty string, so ``fn(chunk) == chunk`` holds exactly
+    when every character of the chunk maps to itself; only the other blocks are scanned one
+    character at a time (about 60 of 1,088 here). One call per code point took 0.2-0.3 s.
+    """
+    out: list[int] = []
+    for at in range(0, len(text), block):
+        chunk = text[at:at + block]
+        if fn(chunk) != chunk:
+            out.extend(at + i for i, ch in enumerate(chunk) if fn(ch) != ch)
+    return out
 
 
 @cache
@@ -34,7 +51,7 @@ def _unsafe_class(mode: str) -> str:
                                                 pa.py_buffer(raw))
     arrow = pc.utf8_lower(one_each)
     arrow_changed = np.flatnonzero(pc.not_equal(arrow, one_each).to_numpy(zero_copy_only=False))
-    python_changed = [i for i, ch in enumerate(text) if fn(ch) != ch]
+    python_changed = _changed_by(fn, text)
     candidates = sorted(set(arrow_changed.tolist()) | set(python_changed))
     got = arrow.take(pa.array(candidates, pa.int64())).to_pylist() if candidates else []
     unsafe = [text[i] for i, a in zip(candidates, got, strict=True) if a != fn(text[i])]

