@@ -24,7 +24,7 @@ def _changed_by(fn: Callable[[str], str], text: str, block: int = 1024) -> list[
     ``fn`` (``str.lower`` / ``str.casefold``) maps character by character apart from the
     final-sigma rule, and never to an empty string, so ``fn(chunk) == chunk`` holds exactly
     when every character of the chunk maps to itself; only the other blocks are scanned one
-    character at a time (about 60 of 1,088 here). One call per code point took 0.2-0.3 s.
+    character at a time (14 of 1,086 for lower, 16 for casefold). One call per code point took 0.2-0.3 s.
     """
     out: list[int] = []
     for at in range(0, len(text), block):

@@ -238,11 +238,11 @@ CHUNK_WINDOWS: Final = 1 << 21
 BUCKETS: Final = 16
 
 
-def _bucket_table(content: np.ndarray, buckets: int) -> np.ndarray:
-    """Id -> bucket, non-decreasing in the id, giving each bucket about 1/buckets of the windows."""
+def _bucket_table(content: np.ndarray) -> np.ndarray:
+    """Id -> bucket, non-decreasing in the id, giving each of BUCKETS about an equal share of the windows."""
     freq = np.bincount(content if content.dtype.itemsize < 8 else content.astype(np.int64))
     before = np.cumsum(freq) - freq
-    table: np.ndarray = np.minimum(before * buckets // max(len(content), 1), buckets - 1).astype(np.uint8)
+    table: np.ndarray = np.minimum(before * BUCKETS // max(len(content), 1), BUCKETS - 1).astype(np.uint8)
     return table
 
 
@@ -263,14 +263,14 @@ def _orders_of(keys: list[np.ndarray], orders: tuple[int, ...], n: int,
     Each lower order k comes from the distinct keys' k-slot prefixes (sorted, since a
     shift keeps order), which count iff their last slot holds a real id.
     """
-    key = np.concatenate(keys) if len(keys) != 1 else keys[0].copy()
+    key = np.concatenate(keys) if len(keys) != 1 else keys[0]  # ours to sort in place: no copy
     key.sort()
     top, top_counts, _ = runs(key)
     del key
     slot = np.uint64(filler(bits))
     out: dict[int, tuple[np.ndarray, np.ndarray]] = {}
     for k in orders:
-        prefix = top >> np.uint64(bits * (n - k)) if k < n else top
+        prefix = top >> np.uint64(bits * (n - k))
         real = (prefix & slot) != slot
         if k == n:  # distinct already
             out[k] = top[real], top_counts[real]
@@ -304,7 +304,7 @@ def count_ngrams(ids: np.ndarray, orders: Sequence[int], *, bits: int,
     if total <= chunk:
         parts = [_orders_of([windows.keys(0, total)], wanted, n, bits)]
     else:
-        table = _bucket_table(windows.content, BUCKETS)
+        table = _bucket_table(windows.content)
         bounds = [(lo, min(lo + chunk, total)) for lo in range(0, total, chunk)]
         with ThreadPoolExecutor(max_workers=threads or default_workers()) as pool:
             pieces = list(pool.map(lambda b: _spread(windows, b[0], b[1], table), bounds))
