@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import Any, Final
 
 import numpy as np
+import pyarrow as pa
 import xxhash
 
 BLOCK: Final = 8 << 20  # 8 MiB reads: large enough to run at disk/page-cache speed
@@ -40,11 +41,32 @@ def hash_array(values: np.ndarray) -> str:
     return xxhash.xxh3_128_hexdigest(arr.tobytes() if arr.ndim != 1 else arr.data.cast("B"))
 
 
+def hash_stream(stream: pa.NativeFile, block: int = BLOCK) -> str:
+    """XXH3-128 of the bytes left in a pyarrow input stream, read ``block`` bytes at a time
+    into pyarrow buffers (hashed where they lie, no copy into Python bytes)."""
+    h = xxhash.xxh3_128()
+    while True:
+        chunk = stream.read_buffer(block)
+        if not chunk.size:
+            break
+        h.update(chunk)
+    return h.hexdigest()
+
+
 def hash_file(path: str | Path, block: int = BLOCK) -> str:
-    """XXH3-128 of a file's bytes: hashed straight from a memory map (no copy into a buffer),
-    or read in large blocks where a file cannot be mapped."""
+    """XXH3-128 of a file's bytes.
+
+    A local file is hashed straight from a memory map (no copy into a buffer), or read in
+    large blocks where it cannot be mapped. A filesystem URI (see
+    :mod:`seqpipe.sources._fs`) is streamed through pyarrow in blocks of ``block`` bytes;
+    a file that is gone is a SourceMissingError, one that cannot be read a SourceError.
+    """
     import mmap
 
+    from seqpipe.sources import _fs
+
+    if _fs.is_uri(path):
+        return _hash_uri(str(path), block)
     try:
         with open(path, "rb") as src, mmap.mmap(src.fileno(), 0, access=mmap.ACCESS_READ) as mapped:
             return xxhash.xxh3_128_hexdigest(mapped)
@@ -60,3 +82,16 @@ def hash_file(path: str | Path, block: int = BLOCK) -> str:
                 break
             h.update(view[:n])
     return h.hexdigest()
+
+
+def _hash_uri(uri: str, block: int) -> str:
+    from seqpipe.errors import SourceError, SourceMissingError
+    from seqpipe.sources import _fs
+
+    try:
+        with _fs.open_raw_stream(uri) as stream:
+            return hash_stream(stream, block)
+    except FileNotFoundError as exc:
+        raise SourceMissingError(uri, "file not found (it was removed after the glob matched)") from exc
+    except (OSError, pa.ArrowException) as exc:
+        raise SourceError(uri, f"cannot read the file to hash it: {exc}") from exc

@@ -59,7 +59,7 @@ from seqpipe.shards import id_dtype, read_table, write_batches
 from seqpipe.staging import build_lock, private_dir, publish
 from seqpipe.vocab import merge_counts
 
-PART_BYTES: Final = 64 << 20
+PART_BYTES: Final = 16 << 20
 DOCS_SCHEMA: Final = pa.schema([("start", pa.int64()), ("length", pa.int64()), ("source", pa.int32()),
                                 ("hash", pa.binary(16))])
 T = TypeVar("T")
@@ -107,8 +107,12 @@ class BuildResult:
         return lines
 
 
-def _input_hashes(files: Sequence[Path], cache: Path) -> list[str]:
-    """XXH3-128 of each input, reusing a stored hash while (size, mtime, inode) are unchanged."""
+def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[str]:
+    """XXH3-128 of each input, reusing a stored hash while its change stamp is unchanged:
+    (size, mtime, inode) for a local file, (size, mtime) for a URI; a URI whose filesystem
+    reports no mtime has no stamp and is hashed on every build."""
+    from seqpipe.sources._fs import change_stamp
+
     index_path = cache / "inputs.json"
     try:
         index: dict[str, Any] = json.loads(index_path.read_text())
@@ -117,16 +121,16 @@ def _input_hashes(files: Sequence[Path], cache: Path) -> list[str]:
     out = []
     changed = False
     for f in files:
-        st = f.stat()
-        stamp = [st.st_size, st.st_mtime_ns, st.st_ino]
+        stamp = change_stamp(f)
         rec = index.get(str(f))
-        if rec and rec.get("stamp") == stamp:
+        if stamp is not None and rec and rec.get("stamp") == stamp:
             out.append(rec["hash"])
             continue
         h = hash_file(f)
-        index[str(f)] = {"stamp": stamp, "hash": h}
+        if stamp is not None:
+            index[str(f)] = {"stamp": stamp, "hash": h}
+            changed = True
         out.append(h)
-        changed = True
     if changed:
         cache.mkdir(parents=True, exist_ok=True)
         tmp = index_path.with_suffix(".tmp")
@@ -137,22 +141,78 @@ def _input_hashes(files: Sequence[Path], cache: Path) -> list[str]:
 
 def _run(executor: Executor, fn: Callable[[Any], T], tasks: Sequence[Any], desc: str, show: bool,
          unit: str = "part", weights: Sequence[int] | None = None,
-         postfix: Callable[[list[Any]], dict[str, Any]] | None = None) -> list[T]:
-    """Submit every task, wait for all, return results in task order (never completion order)."""
+         postfix: Callable[[list[Any]], dict[str, Any]] | None = None,
+         each: Callable[[int, T], Any] | None = None) -> list[Any]:
+    """Submit every task, wait for all, return results in task order (never completion order).
+
+    ``each(i, result)`` sees every result as it arrives (in completion order) and returns what
+    is kept in its place, so large parts of results need not pile up; a result that is ready at submit
+    time (an inline executor) is taken at once.
+    """
     from concurrent.futures import as_completed
 
-    futures: dict[Future[T], int] = {executor.submit(fn, t): i for i, t in enumerate(tasks)}
+    futures: dict[Future[T], int] = {}
     results: list[Any] = [None] * len(tasks)
     total = sum(weights) if weights is not None else len(tasks)
     with bar(total, desc, unit=unit, show=show and bool(tasks),
              unit_scale=weights is not None) as pbar:
-        for fut in as_completed(futures):
-            i = futures[fut]
-            results[i] = fut.result()
+
+        def take(fut: Future[T]) -> None:
+            i = futures.pop(fut)
+            value = fut.result()
+            results[i] = each(i, value) if each is not None else value
             pbar.update(weights[i] if weights is not None else 1)
             if postfix is not None:
                 pbar.set_postfix(postfix([r for r in results if r is not None]), refresh=False)
+
+        for i, t in enumerate(tasks):
+            fut = executor.submit(fn, t)
+            futures[fut] = i
+            if fut.done():
+                take(fut)
+        for fut in as_completed(list(futures)):
+            take(fut)
     return results
+
+
+class _CountMerger:
+    """Partial ``(key, count, first)`` tables merged with Arrow group-by as they arrive, 8 at a
+    time, so the driver holds at most 8 of them besides the running total. Sums and minima do
+    not depend on arrival order, and every key's ``first`` is unique, so the final sort by
+    ``first`` gives the same table whatever order the tasks finish in."""
+
+    def __init__(self, batch: int = 8) -> None:
+        self.batch = batch
+        self.pending: list[pa.Table] = []
+        self.acc: pa.Table | None = None
+        self.train_documents = 0
+
+    def add(self, counted: tuple[pa.Table, int]) -> None:
+        table, train_documents = counted
+        self.pending.append(table)
+        self.train_documents += train_documents
+        if len(self.pending) >= self.batch:
+            self._fold()
+
+    def _fold(self) -> None:
+        group = self.pending + ([self.acc] if self.acc is not None else [])
+        self.pending = []
+        # a copy into fresh (aligned) buffers: tables unpickled from cluster workers may sit at
+        # odd offsets, which Arrow's group-by warns about
+        cat = pa.concat_tables(group)
+        cat = pa.table({name: pa.concat_arrays([*cat.column(name).chunks, pa.array([], cat.schema.field(name).type)])
+                        for name in cat.column_names})
+        self.acc = cat.group_by("key").aggregate([("count", "sum"), ("first", "min")]) \
+            .rename_columns(["key", "count", "first"])
+
+    def result(self) -> pa.Table:
+        """Corpus-wide ``(key, count)`` in first-occurrence order."""
+        if self.pending:
+            self._fold()
+        if self.acc is None:
+            raise SeqpipeError("nothing to count")
+        acc = self.acc.sort_by([("first", "ascending")])
+        return acc.select(["key", "count"]).cast(pa.schema([("key", pa.binary()), ("count", pa.int64())]))
 
 
 def _first_occurrence(keys: np.ndarray) -> np.ndarray:
@@ -172,9 +232,10 @@ def build(recipe: Recipe, out: str | Path, *, executor: Executor | None = None, 
     """Build ``recipe`` into directory ``out`` and return the result.
 
     ``executor``: any concurrent.futures-style executor (e.g. a Dask client's
-    ``get_executor(pure=False)``); otherwise ``workers`` spawned processes, or (default, or 1)
-    this process with its tasks on one thread per core. ``cache_dir`` keeps ingested parts for later builds (default
-    ``out/.seqpipe/cache``); ``force`` ignores it.
+    ``get_executor(pure=False)``); otherwise ``workers`` N > 1 processes (this one and N - 1
+    spawned), or (default, or 1) this process with its tasks on one thread per core.
+    ``cache_dir`` keeps ingested parts for later builds (default ``out/.seqpipe/cache``);
+    ``force`` ignores it. ``part_bytes``: the size inputs are cut to, on document boundaries.
     """
     t0 = time.perf_counter()
     if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
@@ -196,18 +257,22 @@ def build(recipe: Recipe, out: str | Path, *, executor: Executor | None = None, 
 def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, part_bytes: int,
            t0: float) -> BuildResult:
     # -- plan -----------------------------------------------------------------------------------
-    files: list[tuple[int, Path]] = []
-    seen: set[Path] = set()
+    from seqpipe.sources._fs import file_size, identity, is_uri
+
+    files: list[tuple[int, Path | str]] = []  # a local Path, or a filesystem URI
+    seen: set[Path | str] = set()
     for si, source in enumerate(recipe.sources):
         for f in source.resolve(recipe.root):
-            if f.resolve() not in seen:
-                seen.add(f.resolve())
+            if identity(f) not in seen:
+                seen.add(identity(f))
                 files.append((si, f))
     if not files:
         raise SourceMissingError(str(recipe.root), "the recipe's sources match no file")
     hashes = _input_hashes([f for _, f in files], cache)
-    sizes = [f.stat().st_size for _, f in files]
-    inputs = [{"path": os.path.relpath(f, recipe.root).replace(os.sep, "/"), "size": sz, "hash": h}
+    sizes = [file_size(f) for _, f in files]
+    # a URI input is recorded as the URI; a local one relative to the recipe's directory
+    inputs = [{"path": str(f) if is_uri(f) else os.path.relpath(f, recipe.root).replace(os.sep, "/"),
+               "size": sz, "hash": h}
               for (_, f), sz, h in zip(files, sizes, hashes, strict=True)]
     tasks: list[IngestTask] = []
     weights: list[int] = []  # approximate bytes per part, for the progress bar
@@ -228,9 +293,26 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
         # tasks already run side by side on threads: nest threads only where tasks are fewer
         inner = max(1, in_process // min(len(todo), in_process))
         tasks = [dataclasses.replace(t, threads=inner) for t in tasks]
+    per_task = getattr(ex, "seqpipe_task_threads", None)
+    if per_task:  # this process runs tasks too: give its tasks the spawned workers' share
+        tasks = [dataclasses.replace(t, threads=per_task) for t in tasks]
+    dedupe = any(getattr(s, "is_dedupe", False) for s in recipe.clean)
+    if not dedupe:
+        # every document is kept, so a fresh part is counted by its ingest task, while in memory
+        tasks = [dataclasses.replace(t, count_order=i) for i, t in enumerate(tasks)]
+    merger = _CountMerger()
+    counted = [False] * len(tasks)
+
+    def take_counts(j: int, m: PartMeta) -> PartMeta:  # merged on arrival: the driver keeps no pile
+        if m.counts is not None:
+            merger.add(m.counts)
+            counted[todo[j]] = True
+            m.counts = None
+        return m
+
     fresh = _run(ex, ingest_part, [tasks[i] for i in todo], "reading", show, unit="B",
                  weights=[weights[i] for i in todo],
-                 postfix=lambda done: {"documents": sum(m.documents for m in done)})
+                 postfix=lambda done: {"documents": sum(m.documents for m in done)}, each=take_counts)
     for i, m in zip(todo, fresh, strict=True):
         metas[i] = m
     parts: list[PartMeta] = [m for m in metas if m is not None]
@@ -243,7 +325,7 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
                                "globs and the clean steps (e.g. min_length)")
     keeps: list[np.ndarray | None] = [None] * len(tasks)
     duplicates = 0
-    if any(getattr(s, "is_dedupe", False) for s in recipe.clean):
+    if dedupe:
         # the one per-document array the driver holds: 16 bytes per document, only with dedupe
         keys = [fixed16(read_part_docs(str(cache), t.key), "dedupe") for t in tasks]
         keep_all = _first_occurrence(np.concatenate(keys))
@@ -253,12 +335,12 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
         del keys, keep_all
 
     # -- count + fit ----------------------------------------------------------------------------
-    count_tasks = [CountTask(str(cache), t.key, i, recipe, keeps[i]) for i, t in enumerate(tasks)]
-    counted = _run(ex, count_part, count_tasks, "counting", show)
-    if sum(n for _, n in counted) == 0:
+    recount = [i for i, done in enumerate(counted) if not done]  # reused parts (or dedupe)
+    count_tasks = [CountTask(str(cache), tasks[i].key, i, recipe, keeps[i]) for i in recount]
+    _run(ex, count_part, count_tasks, "counting", show, each=lambda _, c: merger.add(c))
+    if merger.train_documents == 0:
         raise EmptyCorpusError("the train split is empty: add documents or raise splits.train")
-    merged = _merge_in_batches([t for t, _ in counted])
-    del counted
+    merged = merger.result()
     encoder = recipe.tokenizer.fit(merged, recipe.vocab)
     vocab = encoder.vocabulary
     dtype = id_dtype(len(vocab))
@@ -398,26 +480,6 @@ def _fresh_stage(out: Path, name: str) -> Path:
     for tmp in stage.rglob(".*.tmp"):
         tmp.unlink(missing_ok=True)
     return stage
-
-
-def _merge_in_batches(tables: Sequence[pa.Table], batch: int = 32) -> pa.Table:
-    """Merge partial (key, count, first) tables with Arrow group-by, a batch at a time, then order
-    rows by first occurrence in corpus order."""
-    if not tables:
-        raise SeqpipeError("nothing to count")
-    acc: pa.Table | None = None
-    for i in range(0, len(tables), batch):
-        group = list(tables[i:i + batch]) + ([acc] if acc is not None else [])
-        # a copy into fresh (aligned) buffers: tables unpickled from cluster workers may sit at
-        # odd offsets, which Arrow's group-by warns about
-        cat = pa.concat_tables(group)
-        cat = pa.table({name: pa.concat_arrays([*cat.column(name).chunks, pa.array([], cat.schema.field(name).type)])
-                        for name in cat.column_names})
-        acc = cat.group_by("key").aggregate([("count", "sum"), ("first", "min")]) \
-            .rename_columns(["key", "count", "first"])
-    assert acc is not None
-    acc = acc.sort_by([("first", "ascending")])
-    return acc.select(["key", "count"]).cast(pa.schema([("key", pa.binary()), ("count", pa.int64())]))
 
 
 __all__ = ["BuildResult", "build", "merge_counts"]

@@ -26,10 +26,12 @@ def _print_json(obj: Any) -> None:
 
 def cmd_build(args: argparse.Namespace) -> int:
     from seqpipe.build import build
+    from seqpipe.executors import keep_freed_memory
     from seqpipe.recipe import load_recipe
 
     recipe = load_recipe(args.recipe)
     out = Path(args.output) if args.output else Path(recipe.dataset.name)
+    keep_freed_memory()  # this process is ours: reuse freed arrays' pages (see executors.py)
     executor = None
     client = None
     if args.dask_scheduler:
@@ -165,7 +167,8 @@ def parser() -> argparse.ArgumentParser:
     p.add_argument("recipe", help="recipe file (TOML)")
     p.add_argument("-o", "--output", help="dataset directory (default: ./<dataset.name>)")
     p.add_argument("--workers", type=int, default=None,
-                   help="worker processes (default: this process, one thread per core)")
+                   help="processes working on tasks, this one included (N-1 are spawned); "
+                        "default: this process alone, one thread per core")
     p.add_argument("--dask-scheduler", metavar="ADDRESS", help="run tasks on a Dask cluster (seqpipe[dask])")
     p.add_argument("--cache", help="cache directory for ingested parts (default: DIR/.seqpipe/cache)")
     p.add_argument("--force", action="store_true", help="ignore cached parts; rebuild everything")

@@ -1,4 +1,4 @@
-"""Executors for the build: inline (one process), a local spawn pool, or any given one.
+"""Executors for the build: inline (one process), this process plus spawned workers, or any given one.
 
 The build uses only ``submit`` and ``Future.result`` / ``as_completed``, which every
 ``concurrent.futures``-style engine supports (a Dask ``client.get_executor(pure=False)`` too).
@@ -8,6 +8,8 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import threading
+from collections import deque
 from collections.abc import Callable, Iterator
 from concurrent.futures import Executor, Future, ProcessPoolExecutor, ThreadPoolExecutor
 from contextlib import contextmanager
@@ -37,7 +39,11 @@ def default_workers() -> int:
 
 @contextmanager
 def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Executor]:
-    """The given executor (left open), or one we make and shut down."""
+    """The given executor (left open), or one we make and shut down.
+
+    ``workers`` N > 1: N processes work on tasks, this one and N - 1 spawned ones
+    (``SharedQueueExecutor``); each task's ingest threads get cores // N of the cores.
+    """
     if executor is not None:
         yield executor
         return
@@ -53,12 +59,118 @@ def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Exe
             tpool.seqpipe_threads = threads  # type: ignore[attr-defined]  # read by the build
             yield tpool
         return
+    per_task = max(1, default_workers() // n)
+    shared = SharedQueueExecutor(process_pool(n - 1, threads=per_task), n - 1, local=1)
+    shared.seqpipe_task_threads = per_task  # type: ignore[attr-defined]  # read by the build
+    try:
+        yield shared
+    finally:
+        shared.shutdown(wait=True)
+
+
+def process_pool(workers: int, threads: int | None = None) -> ProcessPoolExecutor:
+    """``workers`` spawned processes; each worker's ingest threads: ``threads``, by default
+    cores // workers."""
+    return ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
+                               initializer=start_worker,
+                               initargs=(threads or max(1, default_workers() // workers),))
+
+
+def start_worker(threads: int) -> None:
+    """Set up a spawned worker process: its ingest threads, and malloc that keeps freed memory."""
     from seqpipe.ingest import set_ingest_threads
 
-    # the cores are shared out: each worker's ingest threads get cores // workers of them
-    pool = ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("spawn"),
-                               initializer=set_ingest_threads, initargs=(max(1, default_workers() // n),))
+    set_ingest_threads(threads)
+    keep_freed_memory()
+
+
+def keep_freed_memory() -> bool:
+    """Ask glibc's malloc to keep freed blocks of up to 32 MiB for reuse instead of handing them
+    back to the kernel; False where there is no glibc ``mallopt`` (then nothing changes).
+
+    By default glibc unmaps a large freed array, and the next one is faulted in and zeroed page
+    by page again: on the 2-core test machine that zeroing (``clear_page`` under numpy casts and
+    copies) was 13% of a two-worker build's CPU time in ``perf record``. Used in seqpipe's own
+    processes (spawned workers, the command line), never on a library caller's process.
+    """
+    import ctypes
+    import ctypes.util
+
     try:
-        yield pool
-    finally:
-        pool.shutdown(wait=True)
+        mallopt = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").mallopt
+    except (OSError, AttributeError):  # not glibc (macOS, Windows)
+        return False
+    m_trim_threshold, m_mmap_threshold = -1, -3  # from glibc's <malloc.h>
+    # 32 MiB: the largest mmap threshold glibc accepts on 64-bit; the trim threshold keeps up
+    # up to 1 GiB of freed memory in the process (its RSS no longer shrinks between tasks)
+    ok = int(mallopt(m_mmap_threshold, 32 << 20)) == 1
+    return ok and int(mallopt(m_trim_threshold, 1 << 30)) == 1
+
+
+_Item = tuple[Future[Any], Callable[..., Any], tuple[Any, ...], dict[str, Any]]
+
+
+class SharedQueueExecutor(Executor):
+    """Tasks wait in one queue, in submission order, and go to whichever consumer is free first:
+    ``local`` threads that run them in this process, or one thread per worker of ``pool`` that
+    hands a task to the pool and waits for its result.
+
+    So this process works on tasks from the first moment, while the pool's spawned workers
+    are still starting (0.4-0.6 s each on a 2-core machine, see DEVELOPERS.md), and a slow
+    worker never holds a queue of tasks another consumer could take. ``pool`` may be any
+    executor with at least ``pool_workers`` workers.
+    """
+
+    def __init__(self, pool: Executor, pool_workers: int, local: int = 1) -> None:
+        self._pool = pool
+        self._queue: deque[_Item | None] = deque()  # None: the stop mark
+        self._ready = threading.Condition()
+        self._stopped = False
+        self._threads = [threading.Thread(target=self._consume, args=(forward,), daemon=True,
+                                          name=f"seqpipe-{'pool' if forward else 'local'}-{i}")
+                         for forward, count in ((False, local), (True, pool_workers)) for i in range(count)]
+        for t in self._threads:
+            t.start()
+
+    def submit(self, fn: Callable[..., T], /, *args: Any, **kwargs: Any) -> Future[T]:
+        fut: Future[T] = Future()
+        with self._ready:
+            if self._stopped:
+                raise RuntimeError("cannot submit to an executor that was shut down")
+            self._queue.append((fut, fn, args, kwargs))
+            self._ready.notify()
+        return fut
+
+    def _consume(self, forward: bool) -> None:
+        while True:
+            with self._ready:
+                while not self._queue:
+                    self._ready.wait()
+                item = self._queue[0]
+                if item is None:  # left in place for the other consumers
+                    return
+                self._queue.popleft()
+            fut, fn, args, kwargs = item
+            if not fut.set_running_or_notify_cancel():
+                continue
+            try:
+                result = self._pool.submit(fn, *args, **kwargs).result() if forward else fn(*args, **kwargs)
+            except BaseException as exc:  # handed to the caller through result(), like any executor
+                fut.set_exception(exc)
+            else:
+                fut.set_result(result)
+
+    def shutdown(self, wait: bool = True, *, cancel_futures: bool = False) -> None:
+        with self._ready:
+            if not self._stopped:
+                self._stopped = True
+                if cancel_futures:
+                    for item in self._queue:
+                        if item is not None:
+                            item[0].cancel()
+                self._queue.append(None)
+                self._ready.notify_all()
+        if wait:
+            for t in self._threads:
+                t.join()
+        self._pool.shutdown(wait=wait)

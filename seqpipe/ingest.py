@@ -80,6 +80,9 @@ class IngestTask:
     cache_dir: str
     batch_bytes: int = 1 << 20
     threads: int | None = None  # ingest threads; None: ingest_threads()
+    # corpus position of the part: when set (no dedupe step, so every document is kept), the
+    # task also counts the part's train pieces while they are in memory (see PartMeta.counts)
+    count_order: int | None = None
 
 
 @dataclass
@@ -93,6 +96,8 @@ class PartMeta:
     read: dict[str, int] = field(default_factory=dict)
     dropped: dict[str, int] = field(default_factory=dict)
     reused: bool = False
+    # what count_part would return for this part, when the ingest task counted it (not stored)
+    counts: tuple[pa.Table, int] | None = field(default=None, compare=False, repr=False)
 
 
 def _doc_hashes(docs: pa.Array) -> np.ndarray:
@@ -214,7 +219,7 @@ def ingest_part(task: IngestTask) -> PartMeta:
     # while this thread reads on; results are collected in reading order.
     # With one thread, batches are processed inline: a worker given one core uses one core.
     threads = task.threads or ingest_threads()
-    batches = source.read(Path(task.path), task.part, stats, batch_bytes=task.batch_bytes)
+    batches = source.read(task.path, task.part, stats, batch_bytes=task.batch_bytes)
     if threads == 1:
         for batch in batches:
             collect(_process_batch(recipe, batch))
@@ -265,6 +270,9 @@ def ingest_part(task: IngestTask) -> PartMeta:
         fsync_dir(final.parent)
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
+    if task.count_order is not None:
+        meta.counts = _count(recipe, col("hash", 16), seg.doc_lengths, seg.keys.cast(pa.binary()), seg.codes,
+                             None, task.count_order)
     return meta
 
 
@@ -301,9 +309,10 @@ def split_of(hashes: np.ndarray, fractions: Sequence[float], seed: int) -> np.nd
     return np.searchsorted(edges, u, side="right").astype(np.int8)
 
 
-def _splits(recipe: Recipe, docs: pa.Table, keep: np.ndarray | None) -> np.ndarray:
-    """Split index per document of a part, -1 for a dropped duplicate."""
-    sp = split_of(fixed16(docs, "hash"), recipe.splits.fractions(), recipe.splits.seed)
+def _splits(recipe: Recipe, hashes: np.ndarray, keep: np.ndarray | None) -> np.ndarray:
+    """Split index per document of a part (from its (n, 16) content hashes), -1 for a dropped
+    duplicate."""
+    sp = split_of(hashes, recipe.splits.fractions(), recipe.splits.seed)
     return sp if keep is None else np.where(keep, sp, -1).astype(np.int8)
 
 
@@ -325,8 +334,15 @@ def count_part(task: CountTask) -> tuple[pa.Table, int]:
     docs = read_table(d / "docs.arrow")
     keys = read_table(d / "keys.arrow").column("key").combine_chunks()
     codes = read_table(d / "codes.arrow").column("code").to_numpy()
-    pieces = docs.column("pieces").to_numpy()
-    train = _splits(task.recipe, docs, task.keep) == 0
+    return _count(task.recipe, fixed16(docs, "hash"), docs.column("pieces").to_numpy(), keys, codes,
+                  task.keep, task.order)
+
+
+def _count(recipe: Recipe, hashes: np.ndarray, pieces: np.ndarray, keys: pa.Array, codes: np.ndarray,
+           keep: np.ndarray | None, order: int) -> tuple[pa.Table, int]:
+    """count_part's result from a part's arrays (document hashes, pieces per document, distinct
+    keys, one code per piece)."""
+    train = _splits(recipe, hashes, keep) == 0
     sel = codes[_piece_mask(pieces, train)] if len(codes) else codes
     counts = np.bincount(sel, minlength=len(keys)).astype(np.int64)
     present = np.flatnonzero(counts)
@@ -337,7 +353,7 @@ def count_part(task: CountTask) -> tuple[pa.Table, int]:
     table = pa.table({
         "key": keys.take(pa.array(present)),
         "count": pa.array(counts[present], pa.int64()),
-        "first": pa.array((np.int64(task.order) << 40) + first[present], pa.int64()),
+        "first": pa.array((np.int64(order) << 40) + first[present], pa.int64()),
     })
     return table, int(train.sum())
 
@@ -390,7 +406,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     keys = read_table(d / "keys.arrow").column("key").combine_chunks()
     codes = read_table(d / "codes.arrow").column("code").to_numpy()
     pieces = docs.column("pieces").to_numpy()
-    splits = _splits(recipe, docs, task.keep)
+    splits = _splits(recipe, fixed16(docs, "hash"), task.keep)
     values, offsets = enc.piece_ids(keys)
     voc = enc.vocabulary
     begin = voc.id_of("begin") if recipe.encode.begin else None

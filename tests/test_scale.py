@@ -54,8 +54,7 @@ kind = "text"
 paths = "corpus/*.txt"
 document = "paragraph"
 {clean}
-[[clean]]
-kind = "dedupe"
+{dedupe}
 [tokenizer]
 kind = "{tokenizer}"
 {tokenizer_extra}
@@ -64,7 +63,7 @@ min_count = {min_count}
 [splits]
 train = {train}
 validation = {validation}
-test = 0.1
+test = {test}
 seed = {seed}
 [shards]
 tokens = {shard_tokens}
@@ -72,9 +71,13 @@ tokens = {shard_tokens}
 
 
 def recipe_text(*, tokenizer: str = "words", tokenizer_extra: str = "", clean: str = "", min_count: int = 1,
-                train: float = 0.8, validation: float = 0.1, shard_tokens: int = 1500, seed: int = 0) -> str:
+                train: float = 0.8, validation: float = 0.1, test: float = 0.1, shard_tokens: int = 1500,
+                seed: int = 0, dedupe: bool = True) -> str:
+    # without a dedupe step the ingest tasks count their parts themselves; with one, count
+    # tasks do after the driver has found the duplicates: both paths are exercised below
     return RECIPE.format(tokenizer=tokenizer, tokenizer_extra=tokenizer_extra, clean=clean, min_count=min_count,
-                         train=train, validation=validation, shard_tokens=shard_tokens, seed=seed)
+                         train=train, validation=validation, test=test, shard_tokens=shard_tokens, seed=seed,
+                         dedupe='[[clean]]\nkind = "dedupe"' if dedupe else "")
 
 
 def make_recipe(root: Path, **kw: Any) -> Recipe:
@@ -103,11 +106,13 @@ def corpus_root(tmp_path: Path) -> Path:
     return root
 
 
-@pytest.mark.parametrize(("tokenizer", "extra"), [("words", ""), ("bpe", "vocab_size = 300")])
+@pytest.mark.parametrize(("tokenizer", "extra", "dedupe"),
+                         [("words", "", True), ("words", "", False), ("bpe", "vocab_size = 300", True)])
 def test_one_and_two_workers_write_identical_bytes(corpus_root: Path, tmp_path: Path, tokenizer: str,
-                                                   extra: str) -> None:
-    """workers=1 (in-process) and workers=2 (spawn pool) give the same manifest and file bytes."""
-    recipe = make_recipe(corpus_root, tokenizer=tokenizer, tokenizer_extra=extra)
+                                                   extra: str, dedupe: bool) -> None:
+    """workers=1 (in-process) and workers=2 (this process and a spawned one) give the same
+    manifest and file bytes."""
+    recipe = make_recipe(corpus_root, tokenizer=tokenizer, tokenizer_extra=extra, dedupe=dedupe)
     one = build(recipe, tmp_path / "one", workers=1, progress=False, part_bytes=SMALL_PARTS)
     two = build(recipe, tmp_path / "two", workers=2, progress=False, part_bytes=SMALL_PARTS)
     assert one.parts_total > 3 * 2  # several parts per input file, or the test proves little
@@ -119,12 +124,12 @@ def test_one_and_two_workers_write_identical_bytes(corpus_root: Path, tmp_path: 
 
 
 @settings(max_examples=6, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(part_bytes=st.integers(min_value=200, max_value=40_000))
+@given(part_bytes=st.integers(min_value=200, max_value=40_000), dedupe=st.booleans())
 def test_output_does_not_depend_on_part_size(corpus_root: Path, tmp_path_factory: pytest.TempPathFactory,
-                                             part_bytes: int) -> None:
+                                             part_bytes: int, dedupe: bool) -> None:
     """How input files are cut into parts never changes a byte of the dataset."""
-    recipe = make_recipe(corpus_root)
-    ref_dir = corpus_root.parent / "reference"
+    recipe = make_recipe(corpus_root, dedupe=dedupe)
+    ref_dir = corpus_root.parent / f"reference-{dedupe}"
     if not (ref_dir / MANIFEST_NAME).exists():
         build(recipe, ref_dir, workers=1, progress=False)  # default part size: one part per file
     out = tmp_path_factory.mktemp("parts")
@@ -159,14 +164,18 @@ def run(recipe: Recipe, out: Path, **kw: Any) -> BuildResult:
     {"train": 0.7, "validation": 0.2},
     {"seed": 3},
     {"min_count": 2},
+    {"train": 0.7, "validation": 0.2, "dedupe": False},
+    {"seed": 3, "dedupe": False},
 ])
 def test_cache_reused_when_only_later_steps_change(corpus_root: Path, tmp_path: Path,
                                                    monkeypatch: pytest.MonkeyPatch, change: dict[str, Any]) -> None:
     """Changing shards, splits or vocabulary settings re-reads no source file, and the cached
-    build equals a fresh build of the changed recipe."""
+    build equals a fresh build of the changed recipe. Without dedupe, the fresh build counts in
+    its ingest tasks and the cached one in count tasks over the stored parts: same bytes."""
     reads = ReadCounter(monkeypatch)
     out = tmp_path / "out"
-    first = run(make_recipe(corpus_root), out)
+    dedupe = change.get("dedupe", True)
+    first = run(make_recipe(corpus_root, dedupe=dedupe), out)
     assert reads.take() == first.parts_total > 3
     assert first.parts_reused == 0
     changed = make_recipe(corpus_root, **change)
@@ -209,3 +218,26 @@ def test_force_rereads_everything(corpus_root: Path, tmp_path: Path, monkeypatch
     assert reads.take() == forced.parts_total
     assert forced.parts_reused == 0
     assert dataset_files(out) == before
+
+
+def test_identical_input_files_are_each_counted_once(tmp_path: Path) -> None:
+    """Two byte-identical inputs share their cached parts (same content key); without dedupe
+    each still counts once: every count is twice the one-file count (common practice: a corpus
+    holding a text twice counts it twice)."""
+    root = tmp_path / "src"
+    write_corpus(root, files=1)
+    one_file = run(make_recipe(root, dedupe=False, train=1.0, validation=0.0, test=0.0), tmp_path / "one")
+    (root / "corpus" / "log-01.txt").write_bytes((root / "corpus" / "log-00.txt").read_bytes())
+    recipe = make_recipe(root, dedupe=False, train=1.0, validation=0.0, test=0.0)
+    two_files = run(recipe, tmp_path / "two")
+    from seqpipe.vocab import Vocabulary
+
+    def counts(result: BuildResult) -> dict[bytes, int]:
+        v = Vocabulary.load(result.directory / "vocab.arrow")
+        return {v.token(i): int(c) for i, c in enumerate(v.counts) if i >= v.n_special}
+
+    single = counts(one_file)
+    assert counts(two_files) == {k: 2 * c for k, c in single.items()}
+    assert two_files.parts_total == 2 * one_file.parts_total
+    two_workers = build(recipe, tmp_path / "two-workers", workers=2, progress=False, part_bytes=SMALL_PARTS)
+    assert dataset_files(two_workers.directory) == dataset_files(two_files.directory)

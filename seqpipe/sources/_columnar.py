@@ -11,7 +11,6 @@ give the same documents; the tests check that they agree.
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable, Iterator
-from pathlib import Path
 from typing import Final, TypeVar
 
 import numpy as np
@@ -19,6 +18,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe.errors import RecordError, SourceError, SourceMissingError
+from seqpipe.sources._fs import SourcePath
 from seqpipe.sources.base import DocumentFinisher, Part, RecordSource
 
 T = TypeVar("T")
@@ -42,7 +42,7 @@ def group_parts(sizes: list[int], target_bytes: int) -> list[Part]:
     return parts
 
 
-def text_column(schema: pa.Schema, field: str, path: Path) -> int:
+def text_column(schema: pa.Schema, field: str, path: SourcePath) -> int:
     """Index of the string column ``field`` in ``schema``; RecordError when absent or not text."""
     index: int = schema.get_field_index(field)
     if index < 0:
@@ -58,7 +58,7 @@ def text_column(schema: pa.Schema, field: str, path: Path) -> int:
     return index
 
 
-def guarded(items: Iterable[T], path: Path, what: str) -> Iterator[T]:
+def guarded(items: Iterable[T], path: SourcePath, what: str) -> Iterator[T]:
     """Iterate ``items``, turning pyarrow's read errors into SourceError naming ``path``."""
     iterator = iter(items)
     while True:
@@ -71,7 +71,7 @@ def guarded(items: Iterable[T], path: Path, what: str) -> Iterator[T]:
         yield item
 
 
-def open_or_fail(opener: Callable[[], T], path: Path, what: str) -> T:
+def open_or_fail(opener: Callable[[], T], path: SourcePath, what: str) -> T:
     """``opener()``, with a missing file or a file of another format as SourceError."""
     try:
         return opener()

@@ -1,21 +1,21 @@
 """Byte streams for the line-oriented kinds (text, JSON Lines): opening, decompression, blocks.
 
-Decompression is pyarrow's (``pa.input_stream(..., compression=...)``); a truncated
+Files are opened through :mod:`seqpipe.sources._fs` (a local path or a filesystem URI).
+Decompression is pyarrow's (``compression=...`` on the input stream); a truncated
 or corrupt compressed file surfaces as an ``OSError`` from pyarrow, which we turn
 into a :class:`SourceError` naming the file.
 """
 
 from __future__ import annotations
 
-import os
 import re
 from collections.abc import Iterator
-from pathlib import Path
 from typing import Final
 
 import pyarrow as pa
 
 from seqpipe.errors import SourceError, SourceMissingError
+from seqpipe.sources._fs import SourcePath, open_input_stream, suffix
 
 COMPRESSIONS: Final = ("auto", "none", "gzip", "bz2", "zstd")
 _SUFFIXES: Final = {".gz": "gzip", ".bz2": "bz2", ".zst": "zstd"}
@@ -23,35 +23,23 @@ UTF8_BOM: Final = b"\xef\xbb\xbf"
 _SCAN_BLOCK: Final = 1 << 16
 
 
-def codec_for(path: Path, compression: str) -> str | None:
+def codec_for(path: SourcePath, compression: str) -> str | None:
     """The pyarrow codec name for ``path`` (None: not compressed)."""
     if compression == "auto":
-        return _SUFFIXES.get(path.suffix.lower())
+        return _SUFFIXES.get(suffix(path).lower())
     return None if compression == "none" else compression
 
 
-def file_size(path: Path) -> int:
-    """Size of ``path`` in bytes, as a SourceError when it cannot be read."""
+def _open(path: SourcePath, codec: str | None) -> pa.NativeFile:
     try:
-        return os.stat(path).st_size
-    except FileNotFoundError as exc:
-        raise SourceMissingError(str(path), "file not found (it was removed after the glob matched)") from exc
-    except OSError as exc:
-        raise SourceError(str(path), f"cannot read the file: {exc.strerror or exc}") from exc
-
-
-def _open(path: Path, codec: str | None) -> pa.NativeFile:
-    try:
-        if codec is None:
-            return pa.OSFile(str(path), "rb")
-        return pa.input_stream(str(path), compression=codec)
+        return open_input_stream(path, codec)
     except FileNotFoundError as exc:
         raise SourceMissingError(str(path), "file not found (it was removed after the glob matched)") from exc
     except (OSError, pa.ArrowException) as exc:
         raise SourceError(str(path), f"cannot open the file: {exc}") from exc
 
 
-def _read(stream: pa.NativeFile, size: int, path: Path, codec: str | None) -> bytes:
+def _read(stream: pa.NativeFile, size: int, path: SourcePath, codec: str | None) -> bytes:
     try:
         data: bytes = stream.read(size)
     except (OSError, pa.ArrowException) as exc:
@@ -60,7 +48,7 @@ def _read(stream: pa.NativeFile, size: int, path: Path, codec: str | None) -> by
     return data
 
 
-def read_blocks(path: Path, codec: str | None, start: int, stop: int | None,
+def read_blocks(path: SourcePath, codec: str | None, start: int, stop: int | None,
                 block_bytes: int) -> Iterator[tuple[int, bytes]]:
     """``(offset, block)`` pairs covering ``[start, stop)`` of the (decompressed) stream.
 
@@ -99,7 +87,7 @@ def read_blocks(path: Path, codec: str | None, start: int, stop: int | None,
             yield pos, b""  # only a byte order mark was there: let the caller count its bytes
 
 
-def scan_cut(path: Path, pos: int, stop: int, pattern: re.Pattern[bytes]) -> int | None:
+def scan_cut(path: SourcePath, pos: int, stop: int, pattern: re.Pattern[bytes]) -> int | None:
     """End of the first match of ``pattern`` at or after ``pos``.
 
     Used by ``plan``. Only the trailing run of ASCII whitespace is carried from one
@@ -123,17 +111,23 @@ def scan_cut(path: Path, pos: int, stop: int, pattern: re.Pattern[bytes]) -> int
     return None
 
 
-def plan_cuts(path: Path, size: int, target_bytes: int, separator: re.Pattern[bytes]) -> list[tuple[int, int]]:
-    """Byte ranges of about ``target_bytes`` covering ``[0, size)``, each cut just after a
-    ``separator`` match found at or past the target (see :func:`scan_cut`)."""
+def plan_cuts(path: SourcePath, size: int, target_bytes: int, separator: re.Pattern[bytes]) -> list[tuple[int, int]]:
+    """Byte ranges covering ``[0, size)``: ``ceil(size / target_bytes)`` near-equal parts, each
+    cut just after a ``separator`` match found at or past its even share (see :func:`scan_cut`).
+
+    Equal shares rather than ``target_bytes`` then a remainder: a 25 MB file and a 16 MB target
+    give two parts of 12.5 MB, not 16 + 9, so workers finish a phase together.
+    """
+    parts = max(1, -(-size // max(1, target_bytes)))
     cuts = [0]
-    pos = target_bytes
-    while pos < size:
+    for k in range(1, parts):
+        pos = size * k // parts
+        if pos <= cuts[-1]:  # the part before runs past this share (a long document)
+            continue
         cut = scan_cut(path, pos, size, separator)
         if cut is None or cut >= size:
             break
         cuts.append(cut)
-        pos = cut + target_bytes
     return list(zip(cuts, [*cuts[1:], size], strict=True))
 
 

@@ -1,6 +1,7 @@
 """Arrow IPC files (the columnar format's "IPC File Format"): one document per row.
 
-The file is memory-mapped, so record batches are read without a copy; parts are
+A local file is memory-mapped, so record batches are read without a copy (a file
+named by a filesystem URI is read through pyarrow's random-access file); parts are
 runs of whole record batches and each batch is sliced to about ``batch_bytes``
 of text. Errors name the file and the row index (0-based, over the whole file).
 """
@@ -9,7 +10,6 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 from dataclasses import dataclass
-from pathlib import Path
 from typing import ClassVar
 
 import pyarrow as pa
@@ -23,6 +23,7 @@ from seqpipe.sources._columnar import (
     open_or_fail,
     text_column,
 )
+from seqpipe.sources._fs import SourcePath, open_input_file
 from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, RecordSource
 
 
@@ -32,18 +33,18 @@ class ArrowSource(RecordSource):
 
     kind: ClassVar[str] = "arrow"
 
-    def _open(self, path: Path) -> pa.ipc.RecordBatchFileReader:
-        return open_or_fail(lambda: pa.ipc.open_file(pa.memory_map(str(path))), path,
+    def _open(self, path: SourcePath) -> pa.ipc.RecordBatchFileReader:
+        return open_or_fail(lambda: pa.ipc.open_file(open_input_file(path, memory_map=True)), path,
                             "Arrow IPC file (the file format, not the stream format)")
 
-    def plan(self, path: Path, target_bytes: int) -> list[Part]:
+    def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:
         """Runs of record batches of about ``target_bytes``."""
         parse_int("target_bytes", target_bytes, minimum=1)
         reader = self._open(path)
         sizes = [reader.get_record_batch(i).nbytes for i in range(reader.num_record_batches)]
         return group_parts(sizes, target_bytes)
 
-    def read(self, path: Path, part: Part, stats: ReadStats, *,
+    def read(self, path: SourcePath, part: Part, stats: ReadStats, *,
              batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
         """Text values of the rows in record batches ``[part.start, part.stop)``."""
         parse_int("batch_bytes", batch_bytes, minimum=1)

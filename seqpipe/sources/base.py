@@ -35,6 +35,7 @@ import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str, parse_str_tuple, to_plain
 from seqpipe.errors import InvalidUtf8Error, RecipeError, SourceError, SourceMissingError
+from seqpipe.sources._fs import SourcePath, glob_uri, is_uri
 
 DEFAULT_MAX_DOCUMENT_BYTES: Final = 64 << 20
 DEFAULT_BATCH_BYTES: Final = 1 << 20
@@ -100,7 +101,9 @@ class Source(ABC):
     """Fields every source kind has; see the module docstring for the reading protocol.
 
     ``paths`` (required) is one glob or a list of globs relative to the recipe's
-    directory (``**`` matches any number of directories); it is stored as a tuple.
+    directory (``**`` matches any number of directories), or filesystem URIs that
+    ``pyarrow.fs`` understands (``s3://bucket/corpus/**/*.jsonl``, ``file:///data/*.txt``;
+    see :mod:`seqpipe.sources._fs`); it is stored as a tuple.
     """
 
     kind: ClassVar[str]
@@ -121,13 +124,19 @@ class Source(ABC):
         plain: dict[str, Any] = to_plain(self)
         return plain
 
-    def resolve(self, root: Path) -> list[Path]:
+    def resolve(self, root: Path) -> list[SourcePath]:
         """Files the globs match under ``root``: sorted by relative POSIX path, each once.
 
-        Raises :class:`SourceMissingError` for a glob that matches no file.
+        A local file is a ``Path`` under ``root``; a URI glob yields URIs (``str``), sorted
+        among the local keys by the URI itself. Raises :class:`SourceMissingError` for a
+        glob that matches no file.
         """
-        found: dict[str, Path] = {}
+        found: dict[str, SourcePath] = {}
         for pattern in self.paths:
+            if is_uri(pattern):
+                for uri in glob_uri(pattern):
+                    found.setdefault(uri, uri)
+                continue
             hits = glob.glob(pattern, root_dir=root, recursive=True)
             files = [h for h in hits if (root / h).is_file()]
             if not files:
@@ -138,11 +147,11 @@ class Source(ABC):
         return [found[key] for key in sorted(found)]
 
     @abstractmethod
-    def plan(self, path: Path, target_bytes: int) -> list[Part]:
+    def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:
         """Cut ``path`` into parts of about ``target_bytes`` on document boundaries."""
 
     @abstractmethod
-    def read(self, path: Path, part: Part, stats: ReadStats, *,
+    def read(self, path: SourcePath, part: Part, stats: ReadStats, *,
              batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
         """Yield the documents of ``part`` as ``large_string`` arrays of about ``batch_bytes``."""
 
@@ -210,7 +219,7 @@ class DocumentFinisher:
 
     __slots__ = ("_compressed", "_invalid", "_limit", "_line_of", "_oversize", "path", "stats")
 
-    def __init__(self, source: Source, path: Path, stats: ReadStats, *, compressed: bool = False,
+    def __init__(self, source: Source, path: SourcePath, stats: ReadStats, *, compressed: bool = False,
                  line_of: Callable[[int], int] | None = None) -> None:
         self.path = str(path)
         self.stats = stats

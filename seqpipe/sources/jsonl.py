@@ -20,14 +20,14 @@ import json
 import re
 from collections.abc import Iterator
 from dataclasses import dataclass
-from pathlib import Path
 from typing import ClassVar, Final
 
 import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str
 from seqpipe.errors import RecordError
-from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, file_size, plan_cuts, read_blocks
+from seqpipe.sources._fs import SourcePath, file_size
+from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, plan_cuts, read_blocks
 from seqpipe.sources.base import (
     DEFAULT_BATCH_BYTES,
     DocumentFinisher,
@@ -42,7 +42,7 @@ _LF: Final = re.compile(rb"\n")
 _NONBLANK: Final = re.compile(rb"[^ \t\x0b\x0c\r\n]")
 
 
-def _count_lines_before(path: Path, offset: int) -> int:
+def _count_lines_before(path: SourcePath, offset: int) -> int:
     """Number of LF bytes in the first ``offset`` bytes of an uncompressed file."""
     count = 0
     for _, block in read_blocks(path, None, 0, offset, 8 << 20):
@@ -62,7 +62,7 @@ class JsonlSource(RecordSource):
         RecordSource.__post_init__(self)
         parse_str("compression", self.compression, choices=COMPRESSIONS)
 
-    def plan(self, path: Path, target_bytes: int) -> list[Part]:
+    def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:
         """Byte ranges cut just after a line end; a compressed file is one part."""
         parse_int("target_bytes", target_bytes, minimum=1)
         if codec_for(path, self.compression) is not None:
@@ -71,7 +71,7 @@ class JsonlSource(RecordSource):
         # Only LF ends a JSON Lines record (a CR before it is JSON whitespace).
         return [Part(a, b) for a, b in plan_cuts(path, size, target_bytes, _LF)]
 
-    def read(self, path: Path, part: Part, stats: ReadStats, *,
+    def read(self, path: SourcePath, part: Part, stats: ReadStats, *,
              batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
         """Text values of the records in ``part``."""
         parse_int("batch_bytes", batch_bytes, minimum=1)

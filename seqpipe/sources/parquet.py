@@ -10,7 +10,6 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 from dataclasses import dataclass
-from pathlib import Path
 from typing import ClassVar
 
 import pyarrow as pa
@@ -18,6 +17,7 @@ import pyarrow.parquet as pq
 
 from seqpipe._parse import parse_int
 from seqpipe.sources._columnar import finish_column, group_parts, guarded, open_or_fail, text_column
+from seqpipe.sources._fs import SourcePath, open_input_file
 from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, RecordSource
 
 
@@ -27,17 +27,17 @@ class ParquetSource(RecordSource):
 
     kind: ClassVar[str] = "parquet"
 
-    def _open(self, path: Path) -> pq.ParquetFile:
-        return open_or_fail(lambda: pq.ParquetFile(str(path)), path, "Parquet file")
+    def _open(self, path: SourcePath) -> pq.ParquetFile:
+        return open_or_fail(lambda: pq.ParquetFile(open_input_file(path)), path, "Parquet file")
 
-    def plan(self, path: Path, target_bytes: int) -> list[Part]:
+    def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:
         """Runs of row groups of about ``target_bytes`` (uncompressed, as the file records)."""
         parse_int("target_bytes", target_bytes, minimum=1)
         meta = self._open(path).metadata
         sizes = [meta.row_group(i).total_byte_size for i in range(meta.num_row_groups)]
         return group_parts(sizes, target_bytes)
 
-    def read(self, path: Path, part: Part, stats: ReadStats, *,
+    def read(self, path: SourcePath, part: Part, stats: ReadStats, *,
              batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
         """Text values of the rows in row groups ``[part.start, part.stop)``."""
         parse_int("batch_bytes", batch_bytes, minimum=1)

@@ -23,14 +23,14 @@ from __future__ import annotations
 import re
 from collections.abc import Iterator
 from dataclasses import dataclass
-from pathlib import Path
 from typing import ClassVar, Final
 
 import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str
 from seqpipe.sources._fast_text import fast_documents, last_paragraph_cut
-from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, file_size, plan_cuts, read_blocks
+from seqpipe.sources._fs import SourcePath, file_size
+from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, plan_cuts, read_blocks
 from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, Source, to_array
 
 DOCUMENT_MODES: Final = ("file", "line", "paragraph")
@@ -124,7 +124,7 @@ class TextSource(Source):
         parse_str("document", self.document, choices=DOCUMENT_MODES)
         parse_str("compression", self.compression, choices=COMPRESSIONS)
 
-    def plan(self, path: Path, target_bytes: int) -> list[Part]:
+    def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:
         """Byte ranges cut just after a line end (line mode) or a blank line (paragraph mode).
 
         Compressed files and ``document = "file"`` are one part.
@@ -136,7 +136,7 @@ class TextSource(Source):
         separator = LINE_SEPARATOR if self.document == "line" else PARAGRAPH_SEPARATOR
         return [Part(a, b) for a, b in plan_cuts(path, size, target_bytes, separator)]
 
-    def read(self, path: Path, part: Part, stats: ReadStats, *,
+    def read(self, path: SourcePath, part: Part, stats: ReadStats, *,
              batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
         """Documents of ``part`` (see the module docstring for what a document is)."""
         parse_int("batch_bytes", batch_bytes, minimum=1)
@@ -144,7 +144,7 @@ class TextSource(Source):
             return self._read_file(path, part, stats, batch_bytes)
         return self._read_split(path, part, stats, batch_bytes)
 
-    def _read_file(self, path: Path, part: Part, stats: ReadStats, batch_bytes: int) -> Iterator[pa.Array]:
+    def _read_file(self, path: SourcePath, part: Part, stats: ReadStats, batch_bytes: int) -> Iterator[pa.Array]:
         codec = codec_for(path, self.compression)
         finisher = DocumentFinisher(self, path, stats, compressed=codec is not None)
         limit = self.max_document_bytes
@@ -170,7 +170,7 @@ class TextSource(Source):
         if text is not None:
             yield to_array([text], stats)
 
-    def _read_split(self, path: Path, part: Part, stats: ReadStats, batch_bytes: int, *,
+    def _read_split(self, path: SourcePath, part: Part, stats: ReadStats, batch_bytes: int, *,
                     slow: bool = False) -> Iterator[pa.Array]:
         """``slow`` keeps to the per-document path (the tests compare it with the vectorized one)."""
         codec = codec_for(path, self.compression)

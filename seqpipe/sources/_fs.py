@@ -1,0 +1,309 @@
+"""Where source files live: the local disk, or any filesystem ``pyarrow.fs`` reaches by URI.
+
+This module is the one place that knows the difference. A *source path* is a local path
+(``Path``, or a ``str`` without a scheme) or a URI: a ``str`` starting with ``scheme://``,
+such as ``file:///data/corpus/a.txt`` or ``s3://bucket/corpus/a.jsonl``. Readers, the hash
+and the build call the functions here and never open, stat or list a file themselves.
+
+A URI is taken as ``scheme://authority/path``. The filesystem comes from
+``pyarrow.fs.FileSystem.from_uri("scheme://authority/")``, made once per process for each
+scheme and authority (workers read many parts of many files; they do not reconnect per
+call); the path after the authority is used as written (no percent-decoding, no query
+string), so it is a glob with the same syntax as a local one (``*``, ``?``, ``[...]``, and
+``**`` for any number of directories; hidden names only match a pattern that starts with a
+dot) and the URIs a glob yields name files exactly as the filesystem lists them.
+
+Local paths keep the calls seqpipe always made (``os.stat``, ``pa.OSFile``,
+``pa.memory_map``), so local builds read and hash exactly as before.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import os
+import re
+import threading
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path, PurePosixPath
+from typing import Any, Final, TypeAlias
+
+import pyarrow as pa
+import pyarrow.fs as pafs
+
+from seqpipe.errors import RecipeError, SourceError, SourceMissingError
+
+SourcePath: TypeAlias = "str | Path"
+"""A local file (``Path`` or a plain ``str``) or a filesystem URI (a ``str`` with ``scheme://``)."""
+
+_URI: Final = re.compile(r"([A-Za-z][A-Za-z0-9+.\-]*)://([^/]*)(.*)", re.S)
+_MAGIC: Final = re.compile(r"[*?\[]")
+_GONE: Final = "file not found (it was removed after the glob matched)"
+
+
+@dataclass(frozen=True, slots=True)
+class Uri:
+    """A URI split into its scheme, its authority (host, bucket; may be empty) and its path.
+
+    ``path`` is what follows the authority, without the leading slash.
+    """
+
+    scheme: str
+    authority: str
+    path: str
+
+    @property
+    def base(self) -> str:
+        """``scheme://authority``: what names one filesystem."""
+        return f"{self.scheme}://{self.authority}"
+
+    def child(self, path: str) -> str:
+        """The URI of ``path`` (relative to the authority) on the same filesystem."""
+        return f"{self.base}/{path}"
+
+
+@dataclass(frozen=True, slots=True)
+class _Mount:
+    """A filesystem and the path inside it that ``scheme://authority/`` stands for."""
+
+    filesystem: pafs.FileSystem
+    root: str
+
+    def inner(self, path: str) -> str:
+        """The filesystem's own path for ``path`` (relative to the authority)."""
+        return _prefix(self.root) + path
+
+
+_LOCK: Final = threading.Lock()
+_MOUNTS: dict[tuple[str, str], _Mount] = {}
+
+
+def is_uri(path: object) -> bool:
+    """True for a ``str`` that starts with ``scheme://`` (a ``Path`` is always local)."""
+    return isinstance(path, str) and _URI.match(path) is not None
+
+
+def parse_uri(uri: str) -> Uri:
+    """``uri`` split into scheme, authority and path; RecipeError when it is not a URI."""
+    match = _URI.fullmatch(uri)
+    if match is None:
+        raise RecipeError("paths", f"{uri!r} is not a URI (expected scheme://authority/path)")
+    scheme, authority, path = match.groups()
+    return Uri(scheme, authority, path.lstrip("/"))
+
+
+def _key(uri: Uri) -> tuple[str, str]:
+    return uri.scheme.lower(), uri.authority
+
+
+def _prefix(directory: str) -> str:
+    """``directory`` as the prefix of its children's paths ('' stays '', '/' stays '/')."""
+    return directory if not directory or directory.endswith("/") else directory + "/"
+
+
+def _root_of(path: str) -> str:
+    stripped = path.rstrip("/")
+    return stripped if stripped or not path else "/"
+
+
+def register_filesystem(base: str, filesystem: pafs.FileSystem, root: str = "") -> None:
+    """Serve URIs starting with ``base`` (``scheme://authority``) from ``filesystem``, in this process.
+
+    ``root`` is the path inside ``filesystem`` that ``base + "/"`` stands for. This is how a
+    test puts an in-memory filesystem behind a made-up scheme; it replaces whatever this
+    process had for ``base``. Other processes (spawned workers) do not see it.
+    """
+    uri = parse_uri(base + "/")
+    with _LOCK:
+        _MOUNTS[_key(uri)] = _Mount(filesystem, _root_of(root))
+
+
+def clear_filesystems() -> None:
+    """Forget every filesystem made or registered in this process (the next call reconnects)."""
+    with _LOCK:
+        _MOUNTS.clear()
+
+
+def _mount(uri: Uri, shown: str) -> _Mount:
+    """The filesystem for ``uri``'s scheme and authority, made on first use in this process."""
+    key = _key(uri)
+    with _LOCK:
+        found = _MOUNTS.get(key)
+        if found is not None:
+            return found
+        try:
+            filesystem, root = pafs.FileSystem.from_uri(uri.base + "/")
+        except (ValueError, NotImplementedError, pa.ArrowNotImplementedError) as exc:
+            # ArrowInvalid (a ValueError): a scheme pyarrow does not know, or a URI it refuses
+            raise RecipeError("paths", f"{shown!r}: pyarrow.fs cannot use this URI ({exc})") from exc
+        except (OSError, pa.ArrowException) as exc:
+            raise SourceError(shown, f"cannot reach the filesystem {uri.base!r}: {exc}") from exc
+        found = _MOUNTS[key] = _Mount(filesystem, _root_of(root))
+        return found
+
+
+def _locate(path: str) -> tuple[pafs.FileSystem, str]:
+    """The filesystem holding URI ``path`` and the path inside it."""
+    uri = parse_uri(path)
+    mount = _mount(uri, path)
+    return mount.filesystem, mount.inner(uri.path)
+
+
+# -- globs -------------------------------------------------------------------------------------
+
+def _match_name(pattern: str, name: str) -> bool:
+    if name.startswith(".") and not pattern.startswith("."):
+        return False
+    return fnmatch.fnmatchcase(name, pattern)
+
+
+def _match(pattern: Sequence[str], names: Sequence[str]) -> bool:
+    """True when the names of a relative path match the pattern's segments (``**``: any run)."""
+    if not pattern:
+        return not names
+    head, rest = pattern[0], pattern[1:]
+    if head == "**":
+        for skip in range(len(names) + 1):
+            if skip and names[skip - 1].startswith("."):
+                return False
+            if _match(rest, names[skip:]):
+                return True
+        return False
+    return bool(names) and _match_name(head, names[0]) and _match(rest, names[1:])
+
+
+def _info(filesystem: pafs.FileSystem, inner: str | pafs.FileSelector, shown: str) -> Any:
+    """``get_file_info`` of a path (one FileInfo) or a selector (a list), errors naming ``shown``."""
+    try:
+        return filesystem.get_file_info(inner)
+    except (OSError, pa.ArrowException) as exc:
+        raise SourceError(shown, f"cannot list or stat on the filesystem: {exc}") from exc
+
+
+def glob_uri(pattern: str) -> list[str]:
+    """URIs of the files ``pattern`` matches, sorted by path; SourceMissingError when none does.
+
+    The segments before the first one holding ``*``, ``?`` or ``[`` name a directory that is
+    listed once (recursively only when the rest has more than one segment or a ``**``); the
+    listed files are matched against the rest of the pattern here.
+    """
+    uri = parse_uri(pattern)
+    mount = _mount(uri, pattern)
+    segments = [s for s in uri.path.split("/") if s]
+    fixed = next((i for i, s in enumerate(segments) if _MAGIC.search(s)), len(segments))
+    base, rest = segments[:fixed], segments[fixed:]
+    if uri.path.endswith("/"):
+        hits = []  # a pattern ending in a slash names directories, never a file
+    elif not rest:
+        info = _info(mount.filesystem, mount.inner("/".join(base)), pattern)
+        hits = [uri.child("/".join(base))] if base and info.type == pafs.FileType.File else []
+    else:
+        directory = mount.inner("/".join(base))
+        deep = len(rest) > 1 or "**" in rest
+        selector = pafs.FileSelector(directory, recursive=deep, allow_not_found=True)
+        infos = _info(mount.filesystem, selector, pattern)
+        prefix = _prefix(directory)
+        hits = []
+        for info in infos:
+            if info.type != pafs.FileType.File or not info.path.startswith(prefix):
+                continue
+            names = info.path[len(prefix):].split("/")
+            if _match(rest, names):
+                hits.append(uri.child("/".join([*base, *names])))
+    if not hits:
+        raise SourceMissingError(pattern, f"glob {pattern!r} matched no file")
+    return sorted(set(hits))  # one scheme and authority: the order of the paths
+
+
+# -- opening and stat --------------------------------------------------------------------------
+
+def open_input_file(path: SourcePath, *, memory_map: bool = False) -> pa.NativeFile:
+    """``path`` opened for random access (seek, read_at); locally memory-mapped if asked.
+
+    Errors are pyarrow's (``FileNotFoundError``, ``OSError``): callers name the file in theirs.
+    """
+    if is_uri(path):
+        filesystem, inner = _locate(str(path))
+        return filesystem.open_input_file(inner)
+    if memory_map:
+        return pa.memory_map(str(path))
+    return pa.OSFile(str(path), "rb")
+
+
+def open_input_stream(path: SourcePath, codec: str | None) -> pa.NativeFile:
+    """``path`` opened for reading from the start, decompressed with pyarrow codec ``codec``.
+
+    ``codec=None`` reads the bytes as they are (a URI is then opened for random access, so
+    the caller may seek). Errors are pyarrow's, as for :func:`open_input_file`.
+    """
+    if codec is None:
+        return open_input_file(path)
+    if is_uri(path):
+        filesystem, inner = _locate(str(path))
+        # an explicit codec: the default ("detect") would guess one from the name
+        return filesystem.open_input_stream(inner, compression=codec)
+    return pa.input_stream(str(path), compression=codec)
+
+
+def open_raw_stream(path: SourcePath) -> pa.NativeFile:
+    """``path`` opened for one sequential read of its bytes as stored (never decompressed)."""
+    if is_uri(path):
+        filesystem, inner = _locate(str(path))
+        return filesystem.open_input_stream(inner, compression=None)
+    return pa.OSFile(str(path), "rb")
+
+
+def _file_info(path: str) -> pafs.FileInfo:
+    filesystem, inner = _locate(path)
+    info: pafs.FileInfo = _info(filesystem, inner, path)
+    if info.type == pafs.FileType.NotFound:
+        raise SourceMissingError(path, _GONE)
+    if info.type != pafs.FileType.File:
+        raise SourceError(path, f"not a file ({info.type.name.lower()})")
+    return info
+
+
+def _stat(path: SourcePath) -> os.stat_result:
+    try:
+        return os.stat(path)
+    except FileNotFoundError as exc:
+        raise SourceMissingError(str(path), _GONE) from exc
+    except OSError as exc:
+        raise SourceError(str(path), f"cannot read the file: {exc.strerror or exc}") from exc
+
+
+def file_size(path: SourcePath) -> int:
+    """Size of ``path`` in bytes; SourceMissingError when it is gone, SourceError when unreadable."""
+    if is_uri(path):
+        size = _file_info(str(path)).size
+        if size is None:
+            raise SourceError(str(path), "the filesystem does not report the file's size")
+        return int(size)
+    return _stat(path).st_size
+
+
+def change_stamp(path: SourcePath) -> list[int] | None:
+    """What must stay equal for a stored hash of ``path`` to be reused (None: never reuse).
+
+    Local files: size, mtime in nanoseconds and inode. URIs: size and mtime in nanoseconds;
+    None when the filesystem reports no mtime, so the file is hashed again on every build.
+    """
+    if is_uri(path):
+        info = _file_info(str(path))
+        if info.size is None or info.mtime_ns is None:
+            return None
+        return [int(info.size), int(info.mtime_ns)]
+    st = _stat(path)
+    return [st.st_size, st.st_mtime_ns, st.st_ino]
+
+
+def identity(path: SourcePath) -> str | Path:
+    """What two names of the same file share: the resolved local path, or the URI itself."""
+    return str(path) if is_uri(path) else Path(path).resolve()
+
+
+def suffix(path: SourcePath) -> str:
+    """The file name's last suffix (``".gz"``), from the URI's path for a URI."""
+    if is_uri(path):
+        return PurePosixPath(parse_uri(str(path)).path).suffix
+    return Path(path).suffix

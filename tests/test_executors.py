@@ -1,0 +1,88 @@
+"""The build's own executors: results, errors and ordering through every kind of consumer.
+
+Contract: ``concurrent.futures.Executor`` as the Python standard library documents it
+(submit returns a Future; result() returns the value or raises the task's exception;
+shutdown(wait=True) finishes the work already submitted).
+"""
+
+from __future__ import annotations
+
+import os
+import threading
+from concurrent.futures import ThreadPoolExecutor, as_completed
+
+import pytest
+
+from seqpipe.executors import SharedQueueExecutor, executor_for
+
+
+def square(x: int) -> int:
+    return x * x
+
+
+def fail(x: int) -> int:
+    raise ValueError(f"task {x} fails")
+
+
+def where(_: int) -> str:
+    return threading.current_thread().name
+
+
+def test_results_match_their_submissions() -> None:
+    ex = SharedQueueExecutor(ThreadPoolExecutor(2), 2, local=1)
+    futures = {ex.submit(square, i): i for i in range(200)}
+    got = {futures[f]: f.result() for f in as_completed(futures)}
+    ex.shutdown()
+    assert got == {i: i * i for i in range(200)}
+
+
+def test_a_task_error_reaches_the_caller_and_others_still_run() -> None:
+    ex = SharedQueueExecutor(ThreadPoolExecutor(1), 1, local=1)
+    bad = [ex.submit(fail, i) for i in range(3)]
+    good = [ex.submit(square, i) for i in range(3)]
+    for f in bad:
+        with pytest.raises(ValueError, match="fails"):
+            f.result()
+    assert [f.result() for f in good] == [0, 1, 4]
+    ex.shutdown()
+
+
+def test_local_and_pool_consumers_work_at_the_same_time() -> None:
+    """Two tasks that each wait for the other can only finish if two consumers run at once:
+    the local thread and the pool's proxy."""
+    barrier = threading.Barrier(2, timeout=10)
+
+    def meet(_: int) -> str:
+        barrier.wait()
+        return threading.current_thread().name
+
+    ex = SharedQueueExecutor(ThreadPoolExecutor(1, thread_name_prefix="pool"), 1, local=1)
+    names = sorted(f.result(timeout=20) for f in [ex.submit(meet, 0), ex.submit(meet, 1)])
+    ex.shutdown()
+    assert names[0].startswith("pool") and names[1].startswith("seqpipe-local")
+
+
+def test_shutdown_finishes_submitted_work_then_refuses_more() -> None:
+    ex = SharedQueueExecutor(ThreadPoolExecutor(1), 1, local=1)
+    futures = [ex.submit(square, i) for i in range(50)]
+    ex.shutdown(wait=True)
+    assert all(f.done() for f in futures)
+    with pytest.raises(RuntimeError, match="shut down"):
+        ex.submit(square, 1)
+
+
+def ids(_: int) -> tuple[int, int]:
+    import time
+
+    time.sleep(0.02)
+    return os.getpid(), os.getppid()
+
+
+def test_two_workers_means_this_process_and_one_spawned() -> None:
+    """--workers 2: tasks run here and in at most one process spawned by this one."""
+    with executor_for(None, 2) as ex:
+        seen = {f.result() for f in [ex.submit(ids, i) for i in range(100)]}
+    here = os.getpid()
+    assert (here, os.getppid()) in seen  # this process takes tasks from the start
+    others = {pid for pid, parent in seen if pid != here}
+    assert len(others) <= 1 and all(parent == here for pid, parent in seen if pid != here)
