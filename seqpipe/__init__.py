@@ -10,16 +10,34 @@ The public API, in data-flow order::
     write_report("data/ferry", "data/ferry/report")
 """
 
+import typing as _typing
+
 __version__ = "0.1.0"  # before the imports below: build.py records it in manifests
 
 from seqpipe.build import BuildResult, build
 from seqpipe.dataset import Dataset, Split, load_tokenizer, open_dataset
 from seqpipe.errors import SeqpipeError
 from seqpipe.recipe import Recipe, load_recipe, parse_recipe
-from seqpipe.report import corpus_report, write_report
 from seqpipe.stream import TokenStream
 from seqpipe.verify import VerifyReport, verify
 from seqpipe.windows import Batch, BatchStream, StreamState, stream_fingerprint
+
+if _typing.TYPE_CHECKING:
+    from seqpipe.report import corpus_report, write_report
+
+_LAZY = ("corpus_report", "write_report")  # seqpipe.report, imported on first use: workers never need it
+
+
+def __getattr__(name: str) -> object:
+    if name in _LAZY:
+        import seqpipe.report
+
+        return getattr(seqpipe.report, name)
+    raise AttributeError(f"module 'seqpipe' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted({*globals(), *_LAZY})
 
 __all__ = [
     "Batch",

@@ -60,12 +60,16 @@ def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Exe
             yield tpool
         return
     per_task = max(1, default_workers() // n)
-    shared = SharedQueueExecutor(process_pool(n - 1, threads=per_task), n - 1, local=1)
+    pool = process_pool(n - 1, threads=per_task)
+    for _ in range(n - 1):  # start the workers now (a pool spawns one per submit): they import
+        pool.submit(int)    # numpy, pyarrow and seqpipe while this process plans the build
+    shared = SharedQueueExecutor(pool, n - 1, local=1)
     shared.seqpipe_task_threads = per_task  # type: ignore[attr-defined]  # read by the build
     try:
         yield shared
     finally:
-        shared.shutdown(wait=True)
+        # after a failed task the build stops: tasks still queued are dropped, not run
+        shared.shutdown(wait=True, cancel_futures=True)
 
 
 def process_pool(workers: int, threads: int | None = None) -> ProcessPoolExecutor:
@@ -173,4 +177,4 @@ class SharedQueueExecutor(Executor):
         if wait:
             for t in self._threads:
                 t.join()
-        self._pool.shutdown(wait=wait)
+        self._pool.shutdown(wait=wait, cancel_futures=cancel_futures)

@@ -86,3 +86,24 @@ def test_two_workers_means_this_process_and_one_spawned() -> None:
     assert (here, os.getppid()) in seen  # this process takes tasks from the start
     others = {pid for pid, parent in seen if pid != here}
     assert len(others) <= 1 and all(parent == here for pid, parent in seen if pid != here)
+
+
+def test_cancelling_shutdown_drops_queued_tasks() -> None:
+    """shutdown(cancel_futures=True) runs no task still waiting in the queue (a failed build
+    stops promptly instead of finishing every remaining part)."""
+    started = threading.Event()
+    release = threading.Event()
+
+    def hold(_: int) -> int:
+        started.set()
+        release.wait(10)
+        return 1
+
+    ex = SharedQueueExecutor(ThreadPoolExecutor(1), 0, local=1)  # one consumer: the local thread
+    first = ex.submit(hold, 0)
+    started.wait(10)
+    queued = [ex.submit(square, i) for i in range(20)]
+    ex.shutdown(wait=False, cancel_futures=True)  # while the only consumer is still busy
+    release.set()
+    assert first.result(timeout=10) == 1
+    assert all(f.cancelled() for f in queued)

@@ -26,12 +26,14 @@ import threading
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path, PurePosixPath
-from typing import Any, Final, TypeAlias
+from typing import TYPE_CHECKING, Any, Final, TypeAlias
 
 import pyarrow as pa
-import pyarrow.fs as pafs
 
 from seqpipe.errors import RecipeError, SourceError, SourceMissingError
+
+if TYPE_CHECKING:
+    import pyarrow.fs as pafs
 
 SourcePath: TypeAlias = "str | Path"
 """A local file (``Path`` or a plain ``str``) or a filesystem URI (a ``str`` with ``scheme://``)."""
@@ -72,6 +74,15 @@ class _Mount:
     def inner(self, path: str) -> str:
         """The filesystem's own path for ``path`` (relative to the authority)."""
         return _prefix(self.root) + path
+
+
+
+def _pafs() -> Any:
+    """``pyarrow.fs``, imported on first use: local builds never need it (it pulls in TLS and
+    the S3 module, about 26 ms of every worker's start)."""
+    import pyarrow.fs
+
+    return pyarrow.fs
 
 
 _LOCK: Final = threading.Lock()
@@ -132,7 +143,7 @@ def _mount(uri: Uri, shown: str) -> _Mount:
         if found is not None:
             return found
         try:
-            filesystem, root = pafs.FileSystem.from_uri(uri.base + "/")
+            filesystem, root = _pafs().FileSystem.from_uri(uri.base + "/")
         except (ValueError, NotImplementedError, pa.ArrowNotImplementedError) as exc:
             # ArrowInvalid (a ValueError): a scheme pyarrow does not know, or a URI it refuses
             raise RecipeError("paths", f"{shown!r}: pyarrow.fs cannot use this URI ({exc})") from exc
@@ -196,16 +207,16 @@ def glob_uri(pattern: str) -> list[str]:
         hits = []  # a pattern ending in a slash names directories, never a file
     elif not rest:
         info = _info(mount.filesystem, mount.inner("/".join(base)), pattern)
-        hits = [uri.child("/".join(base))] if base and info.type == pafs.FileType.File else []
+        hits = [uri.child("/".join(base))] if base and info.type == _pafs().FileType.File else []
     else:
         directory = mount.inner("/".join(base))
         deep = len(rest) > 1 or "**" in rest
-        selector = pafs.FileSelector(directory, recursive=deep, allow_not_found=True)
+        selector = _pafs().FileSelector(directory, recursive=deep, allow_not_found=True)
         infos = _info(mount.filesystem, selector, pattern)
         prefix = _prefix(directory)
         hits = []
         for info in infos:
-            if info.type != pafs.FileType.File or not info.path.startswith(prefix):
+            if info.type != _pafs().FileType.File or not info.path.startswith(prefix):
                 continue
             names = info.path[len(prefix):].split("/")
             if _match(rest, names):
@@ -256,9 +267,9 @@ def open_raw_stream(path: SourcePath) -> pa.NativeFile:
 def _file_info(path: str) -> pafs.FileInfo:
     filesystem, inner = _locate(path)
     info: pafs.FileInfo = _info(filesystem, inner, path)
-    if info.type == pafs.FileType.NotFound:
+    if info.type == _pafs().FileType.NotFound:
         raise SourceMissingError(path, _GONE)
-    if info.type != pafs.FileType.File:
+    if info.type != _pafs().FileType.File:
         raise SourceError(path, f"not a file ({info.type.name.lower()})")
     return info
 
