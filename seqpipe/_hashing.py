@@ -92,6 +92,6 @@ def _hash_uri(uri: str, block: int) -> str:
         with _fs.open_raw_stream(uri) as stream:
             return hash_stream(stream, block)
     except FileNotFoundError as exc:
-        raise SourceMissingError(uri, "file not found (it was removed after the glob matched)") from exc
+        raise SourceMissingError(uri, _fs.FILE_GONE) from exc
     except (OSError, pa.ArrowException) as exc:
         raise SourceError(uri, f"cannot read the file to hash it: {exc}") from exc

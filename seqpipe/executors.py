@@ -94,7 +94,7 @@ def keep_freed_memory() -> bool:
 
     By default glibc unmaps a large freed array, and the next one is faulted in and zeroed page
     by page again: on the 2-core test machine that zeroing (``clear_page`` under numpy casts and
-    copies) was 13% of a two-worker build's CPU time in ``perf record``. Used in seqpipe's own
+    copies) was 13% of a two-worker build's CPU time in ``perf record``, 6.6% with this set. Used in seqpipe's own
     processes (spawned workers, the command line), never on a library caller's process.
     """
     import ctypes
@@ -105,7 +105,8 @@ def keep_freed_memory() -> bool:
     except (OSError, AttributeError):  # not glibc (macOS, Windows)
         return False
     m_trim_threshold, m_mmap_threshold = -1, -3  # from glibc's <malloc.h>
-    # 32 MiB: the largest mmap threshold glibc accepts on 64-bit; the trim threshold keeps up
+    # 32 MiB: the largest mmap threshold glibc accepts on 64-bit (from memory of glibc's
+    # malloc; mallopt returns 0 when it refuses, which is checked); the trim threshold keeps
     # up to 1 GiB of freed memory in the process (its RSS no longer shrinks between tasks)
     ok = int(mallopt(m_mmap_threshold, 32 << 20)) == 1
     return ok and int(mallopt(m_trim_threshold, 1 << 30)) == 1
@@ -120,7 +121,7 @@ class SharedQueueExecutor(Executor):
     hands a task to the pool and waits for its result.
 
     So this process works on tasks from the first moment, while the pool's spawned workers
-    are still starting (0.4-0.6 s each on a 2-core machine, see DEVELOPERS.md), and a slow
+    are still starting (see DEVELOPERS.md, "Where the time goes"), and a slow
     worker never holds a queue of tasks another consumer could take. ``pool`` may be any
     executor with at least ``pool_workers`` workers.
     """

@@ -241,8 +241,10 @@ def ingest_part(task: IngestTask) -> PartMeta:
             return np.concatenate(parts)
         return np.zeros((0, width), np.uint8) if width else np.zeros(0, np.int64)
 
+    hashes = col("hash", 16)
+    keys = seg.keys.cast(pa.binary())
     table: dict[str, Any] = {
-        "hash": pa.FixedSizeBinaryArray.from_buffers(HASH_TYPE, n, [None, pa.py_buffer(col("hash", 16).tobytes())]),
+        "hash": pa.FixedSizeBinaryArray.from_buffers(HASH_TYPE, n, [None, pa.py_buffer(hashes.tobytes())]),
         "pieces": pa.array(seg.doc_lengths, pa.int64()),
         "bytes": pa.array(col("bytes"), pa.int64()),
         "words": pa.array(col("words"), pa.int64()),
@@ -257,7 +259,7 @@ def ingest_part(task: IngestTask) -> PartMeta:
     tmp.mkdir(parents=True)
     try:
         write_table(tmp / "docs.arrow", pa.table(table), durable=False)
-        write_table(tmp / "keys.arrow", pa.table({"key": seg.keys.cast(pa.binary())}), durable=False)
+        write_table(tmp / "keys.arrow", pa.table({"key": keys}), durable=False)
         write_table(tmp / "codes.arrow", pa.table({"code": pa.array(seg.codes, pa.int32())}), durable=False)
         (tmp / "meta.json").write_text(json.dumps(asdict(meta), sort_keys=True))
         fsync_dir(tmp)
@@ -271,8 +273,7 @@ def ingest_part(task: IngestTask) -> PartMeta:
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
     if task.count_order is not None:
-        meta.counts = _count(recipe, col("hash", 16), seg.doc_lengths, seg.keys.cast(pa.binary()), seg.codes,
-                             None, task.count_order)
+        meta.counts = _count(recipe, hashes, seg.doc_lengths, keys, seg.codes, None, task.count_order)
     return meta
 
 

@@ -18,7 +18,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe.errors import RecordError, SourceError, SourceMissingError
-from seqpipe.sources._fs import SourcePath
+from seqpipe.sources._fs import FILE_GONE, SourcePath
 from seqpipe.sources.base import DocumentFinisher, Part, RecordSource
 
 T = TypeVar("T")
@@ -76,7 +76,7 @@ def open_or_fail(opener: Callable[[], T], path: SourcePath, what: str) -> T:
     try:
         return opener()
     except FileNotFoundError as exc:
-        raise SourceMissingError(str(path), "file not found (it was removed after the glob matched)") from exc
+        raise SourceMissingError(str(path), FILE_GONE) from exc
     except (OSError, pa.ArrowException) as exc:
         raise SourceError(str(path), f"not a readable {what}: {exc}") from exc
 

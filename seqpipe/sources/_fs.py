@@ -40,7 +40,7 @@ SourcePath: TypeAlias = "str | Path"
 
 _URI: Final = re.compile(r"([A-Za-z][A-Za-z0-9+.\-]*)://([^/]*)(.*)", re.S)
 _MAGIC: Final = re.compile(r"[*?\[]")
-_GONE: Final = "file not found (it was removed after the glob matched)"
+FILE_GONE: Final = "file not found (it was removed after the glob matched)"  # every reader's message
 
 
 @dataclass(frozen=True, slots=True)
@@ -74,7 +74,6 @@ class _Mount:
     def inner(self, path: str) -> str:
         """The filesystem's own path for ``path`` (relative to the authority)."""
         return _prefix(self.root) + path
-
 
 
 def _pafs() -> Any:
@@ -268,7 +267,7 @@ def _file_info(path: str) -> pafs.FileInfo:
     filesystem, inner = _locate(path)
     info: pafs.FileInfo = _info(filesystem, inner, path)
     if info.type == _pafs().FileType.NotFound:
-        raise SourceMissingError(path, _GONE)
+        raise SourceMissingError(path, FILE_GONE)
     if info.type != _pafs().FileType.File:
         raise SourceError(path, f"not a file ({info.type.name.lower()})")
     return info
@@ -278,7 +277,7 @@ def _stat(path: SourcePath) -> os.stat_result:
     try:
         return os.stat(path)
     except FileNotFoundError as exc:
-        raise SourceMissingError(str(path), _GONE) from exc
+        raise SourceMissingError(str(path), FILE_GONE) from exc
     except OSError as exc:
         raise SourceError(str(path), f"cannot read the file: {exc.strerror or exc}") from exc
 

@@ -15,7 +15,7 @@ from typing import Final
 import pyarrow as pa
 
 from seqpipe.errors import SourceError, SourceMissingError
-from seqpipe.sources._fs import SourcePath, open_input_stream, suffix
+from seqpipe.sources._fs import FILE_GONE, SourcePath, open_input_stream, suffix
 
 COMPRESSIONS: Final = ("auto", "none", "gzip", "bz2", "zstd")
 _SUFFIXES: Final = {".gz": "gzip", ".bz2": "bz2", ".zst": "zstd"}
@@ -34,7 +34,7 @@ def _open(path: SourcePath, codec: str | None) -> pa.NativeFile:
     try:
         return open_input_stream(path, codec)
     except FileNotFoundError as exc:
-        raise SourceMissingError(str(path), "file not found (it was removed after the glob matched)") from exc
+        raise SourceMissingError(str(path), FILE_GONE) from exc
     except (OSError, pa.ArrowException) as exc:
         raise SourceError(str(path), f"cannot open the file: {exc}") from exc
 
