@@ -10,6 +10,7 @@ Phases (each a batch of executor tasks, see seqpipe/ingest.py)::
     encode   ids per part and split                      -> stage/encoded/*
     shard    fixed-size shards per split                 -> stage/shards/<split>/*.arrow
     publish  docs tables, manifest, atomic rename into the output directory
+    upload   only when the output is a URI: the local dataset copied up (seqpipe/remote.py)
 
 Document order and every tie come from the inputs (recipe order, sorted paths, byte order),
 never from task completion order, so 1 worker, N workers or a cluster give identical bytes.
@@ -67,9 +68,10 @@ T = TypeVar("T")
 
 @dataclass
 class BuildResult:
-    """What a build produced: where, its manifest, and figures for the summary."""
+    """What a build produced: where (a local directory, or the URI it was published to), its
+    manifest, and figures for the summary."""
 
-    directory: Path
+    directory: Path | str
     manifest: dict[str, Any]
     seconds: float
     input_bytes: int
@@ -104,6 +106,11 @@ class BuildResult:
             shown["duplicates dropped"] = s["duplicates_dropped"]
         if shown:
             lines.append("counted      " + ", ".join(f"{k}: {v}" for k, v in sorted(shown.items())))
+        if "uploaded" in self.extra:
+            x = self.extra
+            lines.append(f"published    {x['uploaded']} file(s) uploaded ({x['uploaded_bytes'] / 1e6:.2f} MB), "
+                         f"{x['already_there']} already there, {x['deleted']} unlisted deleted; "
+                         f"work directory {x['work_dir']}")
         return lines
 
 
@@ -228,7 +235,7 @@ def _first_occurrence(keys: np.ndarray) -> np.ndarray:
 
 def build(recipe: Recipe, out: str | Path, *, executor: Executor | None = None, workers: int | None = None,
           cache_dir: str | Path | None = None, force: bool = False, progress: bool | None = None,
-          part_bytes: int = PART_BYTES) -> BuildResult:
+          part_bytes: int = PART_BYTES, work_dir: str | Path | None = None) -> BuildResult:
     """Build ``recipe`` into directory ``out`` and return the result.
 
     ``executor``: any concurrent.futures-style executor (e.g. a Dask client's
@@ -236,22 +243,47 @@ def build(recipe: Recipe, out: str | Path, *, executor: Executor | None = None, 
     spawned), or (default, or 1) this process with its tasks on one thread per core.
     ``cache_dir`` keeps ingested parts for later builds (default ``out/.seqpipe/cache``);
     ``force`` ignores it. ``part_bytes``: the size inputs are cut to, on document boundaries.
+
+    ``out`` may be a filesystem URI (a ``str`` such as ``s3://bucket/prefix``): the build then
+    runs in the local ``work_dir`` (default: see :func:`seqpipe.remote.default_work_dir`) and
+    is uploaded to ``out`` at the end (see :mod:`seqpipe.remote`); ``directory`` of the result
+    is the URI.
     """
+    from seqpipe.sources._fs import is_uri
+
     t0 = time.perf_counter()
     if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
         raise RecipeError("workers", f"expected a positive integer, got {workers!r}")
-    out = Path(out)
-    out.mkdir(parents=True, exist_ok=True)
+    remote = None
+    if is_uri(out):
+        from seqpipe.remote import default_work_dir, open_remote
+
+        remote = open_remote(str(out))
+        local = Path(work_dir) if work_dir is not None else default_work_dir(remote, cache_dir)
+    elif work_dir is not None:
+        raise RecipeError("work_dir", "only used when the output is a filesystem URI (a local output "
+                                      "directory is its own work directory)")
+    else:
+        local = Path(out)
+    local.mkdir(parents=True, exist_ok=True)
     show = enabled(progress)
-    with build_lock(out):
-        cache = Path(cache_dir) if cache_dir is not None else private_dir(out) / "cache"
+    with build_lock(local):
+        cache = Path(cache_dir) if cache_dir is not None else private_dir(local) / "cache"
         if force:
             shutil.rmtree(cache / "parts", ignore_errors=True)
         (cache / "parts").mkdir(parents=True, exist_ok=True)
         for stale in (cache / "parts").glob(".*.tmp"):
             shutil.rmtree(stale, ignore_errors=True)
         with executor_for(executor, workers) as ex:
-            return _build(recipe, out, ex, cache, show, part_bytes, t0)
+            result = _build(recipe, local, ex, cache, show, part_bytes, t0)
+        if remote is None:
+            return result
+        from seqpipe.remote import publish_remote
+
+        stats = publish_remote(local, remote, result.manifest, show=show)
+    extra = {**result.extra, "work_dir": str(local), "uploaded": stats.uploaded,
+             "uploaded_bytes": stats.uploaded_bytes, "already_there": stats.reused, "deleted": stats.deleted}
+    return dataclasses.replace(result, directory=remote.uri, seconds=time.perf_counter() - t0, extra=extra)
 
 
 def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, part_bytes: int,

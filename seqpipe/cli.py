@@ -29,8 +29,12 @@ def cmd_build(args: argparse.Namespace) -> int:
     from seqpipe.executors import keep_freed_memory
     from seqpipe.recipe import load_recipe
 
+    from seqpipe.sources._fs import is_uri
+
     recipe = load_recipe(args.recipe)
-    out = Path(args.output) if args.output else Path(recipe.dataset.name)
+    out: str | Path = Path(recipe.dataset.name)
+    if args.output:
+        out = args.output if is_uri(args.output) else Path(args.output)
     keep_freed_memory()  # this process is ours: reuse freed arrays' pages (see executors.py)
     executor = None
     client = None
@@ -40,12 +44,12 @@ def cmd_build(args: argparse.Namespace) -> int:
         client, executor = connect(args.dask_scheduler)
     try:
         result = build(recipe, out, executor=executor, workers=args.workers, cache_dir=args.cache,
-                       force=args.force, progress=False if args.quiet else None)
+                       force=args.force, progress=False if args.quiet else None, work_dir=args.work_dir)
     finally:
         if client is not None:
             client.close()
     if args.json:
-        _print_json({"directory": str(out), "fingerprint": result.fingerprint, "seconds": result.seconds,
+        _print_json({"directory": str(result.directory), "fingerprint": result.fingerprint, "seconds": result.seconds,
                      "parts": result.parts_total, "parts_reused": result.parts_reused,
                      "summary": result.manifest["summary"]})
     elif not args.quiet:
@@ -133,7 +137,12 @@ def cmd_batches(args: argparse.Namespace) -> int:
 def cmd_report(args: argparse.Namespace) -> int:
     from seqpipe.report import write_report
 
-    out = Path(args.output) if args.output else Path(args.directory) / "report"
+    from seqpipe.sources._fs import is_uri
+
+    if args.output:
+        out = Path(args.output)
+    else:  # beside a local dataset; for one behind a URI, in the working directory
+        out = Path("report") if is_uri(args.directory) else Path(args.directory) / "report"
     write_report(args.directory, out, ngram_n=args.ngram, progress=not args.quiet and sys.stderr.isatty())
     print(f"report written to {out} (report.md, report.json, plots)")
     return EXIT_OK
@@ -155,6 +164,10 @@ def cmd_decode(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+URI_DIR_HELP = ("dataset directory, or the filesystem URI of a published one (read from a checked local "
+                "copy under ~/.cache/seqpipe/copies)")
+
+
 def parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(prog="seqpipe", description="Raw text to verified token datasets and "
                                  "reproducible training batches.")
@@ -165,7 +178,11 @@ def parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("build", help="build a dataset from a TOML recipe")
     p.add_argument("recipe", help="recipe file (TOML)")
-    p.add_argument("-o", "--output", help="dataset directory (default: ./<dataset.name>)")
+    p.add_argument("-o", "--output", help="dataset directory, or a pyarrow filesystem URI such as "
+                                          "s3://bucket/prefix (default: ./<dataset.name>)")
+    p.add_argument("--work-dir", help="with a URI output: the local directory the build runs in before "
+                                      "it is uploaded (default: CACHE/remote/KEY with --cache, else "
+                                      "~/.cache/seqpipe/remote/KEY)")
     p.add_argument("--workers", type=int, default=None,
                    help="processes working on tasks, this one included (N-1 are spawned); "
                         "default: this process alone, one thread per core")
@@ -177,14 +194,14 @@ def parser() -> argparse.ArgumentParser:
     p.set_defaults(fn=cmd_build)
 
     p = sub.add_parser("verify", help="recompute every hash of a dataset")
-    p.add_argument("directory")
+    p.add_argument("directory", help="dataset directory or filesystem URI")
     p.add_argument("--json", action="store_true", help="machine-readable report")
     p.add_argument("--against", metavar="MANIFEST", help="also compare with a committed manifest.json")
     p.add_argument("--expect", metavar="FINGERPRINT", help="the dataset fingerprint must equal this hex")
     p.set_defaults(fn=cmd_verify)
 
     p = sub.add_parser("inspect", help="show what a dataset's manifest holds")
-    p.add_argument("directory")
+    p.add_argument("directory", help=URI_DIR_HELP)
     p.add_argument("--json", action="store_true")
     p.set_defaults(fn=cmd_inspect)
 
@@ -195,7 +212,7 @@ def parser() -> argparse.ArgumentParser:
     p.set_defaults(fn=cmd_demo)
 
     p = sub.add_parser("batches", help="show or fingerprint the batch stream of a split")
-    p.add_argument("directory")
+    p.add_argument("directory", help=URI_DIR_HELP)
     p.add_argument("--split", default="train")
     p.add_argument("--batch-size", type=int, required=True)
     p.add_argument("--steps", type=int, required=True, help="window length T (tokens per row)")
@@ -213,8 +230,8 @@ def parser() -> argparse.ArgumentParser:
     p.set_defaults(fn=cmd_batches)
 
     p = sub.add_parser("report", help="corpus statistics, leakage checks and baseline perplexities")
-    p.add_argument("directory")
-    p.add_argument("-o", "--output", help="output directory (default: DIR/report)")
+    p.add_argument("directory", help=URI_DIR_HELP)
+    p.add_argument("-o", "--output", help="output directory (default: DIR/report; ./report for a URI)")
     p.add_argument("--ngram", type=int, default=13, help="n for the leakage n-gram overlap (default 13)")
     p.add_argument("--quiet", action="store_true")
     p.set_defaults(fn=cmd_report)

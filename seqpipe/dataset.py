@@ -127,9 +127,26 @@ class Dataset:
         return tokenizer.load(self.directory)
 
 
-def open_dataset(directory: str | Path, *, verify_on_open: bool = False) -> Dataset:
+def open_dataset(directory: str | Path, *, verify_on_open: bool = False,
+                 copy_dir: str | Path | None = None) -> Dataset:
     """Open a built dataset. With ``verify_on_open`` every file is hashed first and any
-    problem raises :class:`IntegrityError` before a single batch is read."""
+    problem raises :class:`IntegrityError` before a single batch is read.
+
+    ``directory`` may be a filesystem URI (a published dataset, see :mod:`seqpipe.remote`):
+    it is then copied to the local ``copy_dir`` (default: ``~/.cache/seqpipe/copies/KEY``),
+    each file checked against the manifest's hash as it arrives and only missing or changed
+    files fetched, and the copy is opened (memory-mapped like any local dataset).
+    """
+    from seqpipe.sources._fs import is_uri
+
+    if is_uri(directory):
+        from seqpipe import remote
+
+        where = remote.open_remote(str(directory), key="directory")
+        directory = Path(copy_dir) if copy_dir is not None else remote.default_copy_dir(where)
+        remote.fetch_remote(where, directory)
+    elif copy_dir is not None:
+        raise DatasetError(f"{directory}: copy_dir is only used to open a dataset behind a filesystem URI")
     d = Path(directory)
     if verify_on_open:
         from seqpipe.verify import verify

@@ -112,8 +112,11 @@ class _Check:
         return d
 
 
-def safe_relative(directory: Path, rel: str, *, key: str = "path") -> Path:
-    """Resolve ``rel`` inside ``directory``; refuse absolute paths, '..', and symlinks leading out."""
+def check_relative(rel: str, *, key: str = "path") -> PurePosixPath:
+    """``rel`` as a relative POSIX path; refuse NUL, absolute paths, '..', backslashes and colons.
+
+    The checks on the text alone, shared by local datasets and those behind a URI.
+    """
     if not isinstance(rel, str) or "\x00" in rel:
         raise UnsafePathError(f"{key}: path {rel!r} must be a string without NUL bytes", path=str(rel))
     pure = PurePosixPath(rel)
@@ -121,6 +124,12 @@ def safe_relative(directory: Path, rel: str, *, key: str = "path") -> Path:
         raise UnsafePathError(f"{key}: a component of {rel[:80]!r}... is longer than 255 bytes", path=rel)
     if not rel or pure.is_absolute() or "\\" in rel or ":" in rel or any(p in ("..", "") for p in pure.parts):
         raise UnsafePathError(f"{key}: path {rel!r} must be relative and stay inside the dataset", path=rel)
+    return pure
+
+
+def safe_relative(directory: Path, rel: str, *, key: str = "path") -> Path:
+    """Resolve ``rel`` inside ``directory``; refuse absolute paths, '..', and symlinks leading out."""
+    pure = check_relative(rel, key=key)
     full = directory.joinpath(*pure.parts)
     try:
         real = full.resolve(strict=False)
@@ -211,12 +220,16 @@ def read_manifest(directory: Path) -> dict[str, Any]:
     if size > MAX_MANIFEST_BYTES:
         raise ManifestError(f"{path}: manifest is {size} bytes, over the {MAX_MANIFEST_BYTES}-byte limit",
                             path=str(path))
-    raw = path.read_bytes()
+    return parse_manifest(path.read_bytes(), str(path))
+
+
+def parse_manifest(raw: bytes, where: str) -> dict[str, Any]:
+    """Parse and validate a manifest's bytes (``where`` names it in errors)."""
     try:
         data = json.loads(raw.decode("utf-8"), parse_constant=_refuse_constant)
     except (UnicodeDecodeError, json.JSONDecodeError, RecursionError, ValueError) as exc:
-        raise ManifestError(f"{path}: not valid JSON ({exc})", path=str(path)) from None
-    return validate(data, str(path))
+        raise ManifestError(f"{where}: not valid JSON ({exc})", path=where) from None
+    return validate(data, where)
 
 
 def _refuse_constant(name: str) -> Any:

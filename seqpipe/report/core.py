@@ -182,7 +182,7 @@ def write_report(dataset_dir: str | Path, out_dir: str | Path, *, ngram_n: int =
     ``rank_frequency.png`` (when matplotlib is installed) into ``out_dir``; return the report."""
     from seqpipe.dataset import open_dataset
 
-    dataset = open_dataset(Path(dataset_dir))
+    dataset = open_dataset(dataset_dir)  # a URI is read from a local copy
     return write_dataset_report(dataset, out_dir, ngram_n=ngram_n, top_k=top_k, add_k=add_k,
                                 kn_discount=kn_discount, progress=progress)
 
