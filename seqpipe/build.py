@@ -57,7 +57,7 @@ from seqpipe.manifest import FORMAT, MANIFEST_NAME, dumps, seal
 from seqpipe.progress import bar, enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype, read_table, write_batches
-from seqpipe.staging import build_lock, private_dir, publish
+from seqpipe.staging import OPTIONAL_TOP, build_lock, private_dir, publish
 from seqpipe.vocab import merge_counts
 
 PART_BYTES: Final = 16 << 20
@@ -461,7 +461,7 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     manifest = seal(body)
     (stage / MANIFEST_NAME).write_text(dumps(manifest))
     entries = ["vocab.arrow", *tok_files, "docs", "shards"]
-    for gone in ("tokenizer.arrow",):
+    for gone in OPTIONAL_TOP:
         if gone not in entries and (out / gone).exists():
             (out / gone).unlink()
     publish(out, stage, entries, MANIFEST_NAME)

@@ -28,7 +28,6 @@ def cmd_build(args: argparse.Namespace) -> int:
     from seqpipe.build import build
     from seqpipe.executors import keep_freed_memory
     from seqpipe.recipe import load_recipe
-
     from seqpipe.sources._fs import is_uri
 
     recipe = load_recipe(args.recipe)

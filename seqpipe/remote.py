@@ -29,14 +29,14 @@ from seqpipe._hashing import BLOCK, hash_bytes, hash_file
 from seqpipe.errors import DatasetError, ManifestError, RecipeError, SourceMissingError, UnsafePathError
 from seqpipe.manifest import MANIFEST_NAME, MAX_MANIFEST_BYTES, check_relative, parse_manifest
 from seqpipe.progress import bar
+from seqpipe.staging import OPTIONAL_TOP
 from seqpipe.sources import _fs
-from seqpipe.verify import Problem, listed_files
+from seqpipe.verify import Problem, check_local_file, listed_files
 
 if TYPE_CHECKING:
     import pyarrow.fs as pafs
 
 DATA_DIRS: Final = ("docs", "shards")  # the folders that hold listed files only
-STALE_TOP: Final = ("tokenizer.arrow",)  # written by some tokenizers only: removed when unlisted
 
 
 @dataclass(frozen=True, slots=True)
@@ -148,17 +148,6 @@ def _upload(remote: RemoteDir, local: Path, rel: str) -> None:
         raise _fail(remote, rel, "upload failed", exc) from exc
 
 
-def _in_place(remote: RemoteDir, entry: dict[str, Any]) -> bool:
-    """True when the destination holds ``entry``'s file: same size and same content hash."""
-    info = _info(remote, entry["path"])
-    if not _is_file(info) or info.size != entry["bytes"]:
-        return False
-    try:
-        return hash_file(remote.child(entry["path"])) == entry["hash"]
-    except SourceMissingError:
-        return False
-
-
 def _check_size(remote: RemoteDir, rel: str, size: int) -> None:
     info = _info(remote, rel)
     if not _is_file(info) or info.size != size:
@@ -193,7 +182,7 @@ def publish_remote(local: Path, remote: RemoteDir, manifest: dict[str, Any], *, 
     for e in entries:
         check_relative(e["path"])
     new_manifest = (local / MANIFEST_NAME).read_bytes()
-    todo = [e for e in entries if not _in_place(remote, e)]
+    todo = [e for e in entries if check_remote_file(remote, e)[1] is not None]  # not there as listed
     listed = {e["path"] for e in entries}
     uploaded_bytes = 0
     manifest_sent = False
@@ -222,7 +211,7 @@ def publish_remote(local: Path, remote: RemoteDir, manifest: dict[str, Any], *, 
         _check_size(remote, MANIFEST_NAME, len(new_manifest))
         manifest_sent = True
     stale = [r for d in DATA_DIRS for r in _files_under(remote, d) if r not in listed]
-    stale += [name for name in STALE_TOP if name not in listed and _is_file(_info(remote, name))]
+    stale += [name for name in OPTIONAL_TOP if name not in listed and _is_file(_info(remote, name))]
     for rel in stale:
         try:
             remote.filesystem.delete_file(remote.inner(rel))
@@ -303,13 +292,6 @@ def _download(remote: RemoteDir, rel: str, dest: Path) -> None:
         tmp.unlink(missing_ok=True)
 
 
-def _local_matches(path: Path, entry: dict[str, Any]) -> bool:
-    try:
-        return path.stat().st_size == entry["bytes"] and hash_file(path) == entry["hash"]
-    except (OSError, SourceMissingError):
-        return False
-
-
 def fetch_remote(remote: RemoteDir, local: Path, *, show: bool = False) -> PublishStats:
     """Make ``local`` a complete copy of the dataset at ``remote``, the publish in reverse:
     download each listed file the copy lacks or holds with another size or hash, check each
@@ -323,11 +305,11 @@ def fetch_remote(remote: RemoteDir, local: Path, *, show: bool = False) -> Publi
         check_relative(e["path"])
     local.mkdir(parents=True, exist_ok=True)
     mine = local / MANIFEST_NAME
-    todo = [e for e in entries if not _local_matches(local / e["path"], e)]
+    todo = [e for e in entries if check_local_file(local, e)[1] is not None]  # not in the copy as listed
     listed = {e["path"] for e in entries}
     stale = [p for d in DATA_DIRS if (local / d).is_dir() for p in sorted((local / d).rglob("*"))
              if p.is_file() and p.relative_to(local).as_posix() not in listed]
-    stale += [local / name for name in STALE_TOP if name not in listed and (local / name).is_file()]
+    stale += [local / name for name in OPTIONAL_TOP if name not in listed and (local / name).is_file()]
     if todo or stale or not (mine.is_file() and mine.read_bytes() == raw):
         mine.unlink(missing_ok=True)
         with bar(sum(e["bytes"] for e in todo), "fetching", unit="B", show=show and bool(todo),
@@ -335,7 +317,7 @@ def fetch_remote(remote: RemoteDir, local: Path, *, show: bool = False) -> Publi
             for e in todo:
                 dest = local / e["path"]
                 _download(remote, e["path"], dest)
-                if not _local_matches(dest, e):
+                if check_local_file(local, e)[1] is not None:
                     dest.unlink(missing_ok=True)
                     raise DatasetError(f"{remote.child(e['path'])}: downloaded bytes differ from the manifest's "
                                        "size and hash (seqpipe verify on the URI shows what is wrong)",

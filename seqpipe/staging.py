@@ -27,6 +27,8 @@ from seqpipe.errors import BuildLockedError
 from seqpipe.shards import fsync_dir
 
 PRIVATE: Final = ".seqpipe"
+# top-level files only some tokenizers write: a publish removes them when the new build has none
+OPTIONAL_TOP: Final = ("tokenizer.arrow",)
 
 
 def private_dir(out: Path) -> Path:

@@ -65,7 +65,8 @@ def listed_files(manifest: dict[str, Any]) -> list[dict[str, Any]]:
     return out
 
 
-def _check_file(directory: Path, entry: dict[str, Any]) -> tuple[int, Problem | None]:
+def check_local_file(directory: Path, entry: dict[str, Any]) -> tuple[int, Problem | None]:
+    """Bytes read and the problem (if any) with one listed file of a local dataset."""
     rel = entry["path"]
     try:
         path = safe_relative(directory, rel)
@@ -154,7 +155,7 @@ def verify(directory: str | Path, *, against: str | Path | None = None, expect: 
         d = Path(directory)
         report = VerifyReport(str(d))
         read = lambda: _read_local(d)  # noqa: E731
-        check = lambda e: _check_file(d, e)  # noqa: E731
+        check = lambda e: check_local_file(d, e)  # noqa: E731
         unlisted = lambda manifest, listed: _unlisted(d, manifest, listed)  # noqa: E731
     try:
         raw, manifest = read()

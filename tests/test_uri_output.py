@@ -6,7 +6,6 @@ scheme (no network here): S3, GCS and HDFS themselves are not exercised.
 
 from __future__ import annotations
 
-import random
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -14,6 +13,7 @@ from typing import Any
 import numpy as np
 import pyarrow.fs as pafs
 import pytest
+from conftest import recipe_text, write_project
 
 from seqpipe import remote
 from seqpipe.build import BuildResult, build
@@ -31,35 +31,15 @@ pytestmark = pytest.mark.skipif(MockFileSystem is None, reason="this pyarrow has
 
 MEM = "memout://bucket"  # a scheme pyarrow does not know: only the registration below serves it
 DEST = MEM + "/sets/ferry"
-WORDS = ("ferry", "tide", "dock", "cargo", "lantern", "rope", "harbour", "fog", "north", "south", "calm",
-         "squall", "pilot", "ledger", "gull", "buoy", "keel", "oar")
-RECIPE = """
-[[sources]]
-kind = "text"
-paths = "corpus/*.txt"
-document = "paragraph"
-[tokenizer]
-kind = "words"
-[shards]
-tokens = {tokens}
-"""
-
-
-def _docs(seed: int, n: int) -> list[str]:
-    """Invented sentences from a seeded generator."""
-    rnd = random.Random(seed)
-    return [" ".join(rnd.choice(WORDS) for _ in range(rnd.randint(4, 24))).capitalize() + "."
-            for _ in range(n)]
 
 
 @pytest.fixture
 def root(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
-    """A small corpus under ``tmp_path/src``; the user cache directory moved under ``tmp_path``."""
+    """The shared demo corpus and its recipe under ``tmp_path/src`` (see conftest); the user
+    cache directory moved under ``tmp_path``."""
     monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "xdg"))
     src = tmp_path / "src"
-    (src / "corpus").mkdir(parents=True)
-    for i in range(3):
-        (src / "corpus" / f"{i}.txt").write_text("\n\n".join(_docs(i, 90)) + "\n", encoding="utf-8")
+    write_project(src, shard_tokens=250)
     return src
 
 
@@ -73,7 +53,7 @@ def mem() -> Iterator[pafs.FileSystem]:
 
 
 def run(root: Path, out: str | Path, tokens: int = 250, **kwargs: Any) -> BuildResult:
-    return build(parse_recipe(RECIPE.format(tokens=tokens), root), out, progress=False, **kwargs)
+    return build(parse_recipe(recipe_text(shard_tokens=tokens), root), out, progress=False, **kwargs)
 
 
 def local_files(directory: Path) -> dict[str, bytes]:
@@ -238,7 +218,6 @@ def test_unknown_scheme_as_output_is_a_clear_error(root: Path, tmp_path: Path,
         run(root, "nosuchscheme://bucket/ferry")
     assert isinstance(info.value, SeqpipeError) and info.value.key == "out"
     assert not (tmp_path / "xdg").exists()  # refused before any work
-    (root / "recipe.toml").write_text(RECIPE.format(tokens=250), encoding="utf-8")
     assert main(["build", str(root / "recipe.toml"), "-o", "nosuchscheme://bucket/ferry", "--quiet"]) == 2
     assert "nosuchscheme" in capsys.readouterr().err
     with pytest.raises(RecipeError):
@@ -247,7 +226,6 @@ def test_unknown_scheme_as_output_is_a_clear_error(root: Path, tmp_path: Path,
 
 def test_cli_builds_to_a_uri_with_a_work_dir(root: Path, tmp_path: Path, mem: pafs.FileSystem,
                                              capsys: pytest.CaptureFixture[str]) -> None:
-    (root / "recipe.toml").write_text(RECIPE.format(tokens=250), encoding="utf-8")
     work = tmp_path / "cli-work"
     assert main(["build", str(root / "recipe.toml"), "-o", DEST, "--work-dir", str(work), "--quiet"]) == 0
     assert (work / MANIFEST_NAME).is_file()
