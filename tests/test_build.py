@@ -226,3 +226,40 @@ def test_cli_inspect_encode_decode(tmp_path: Path, capsys: pytest.CaptureFixture
     assert main(["decode", str(tmp_path / "d"), "4", "8", "11"]) == 0
     assert capsys.readouterr().out.strip() == "the ferry waited"
     assert main(["inspect", str(tmp_path / "nope")]) == 4
+
+
+def test_a_part_with_more_distinct_words_than_two_byte_codes_hold(tmp_path: Path) -> None:
+    """Cached parts store piece codes in two bytes when at most 65,536 distinct pieces occur
+    and in four otherwise; both widths give back exactly the text's words. Reference: for
+    words of ASCII letters and digits separated by spaces, the words are ``str.split()``
+    (common practice)."""
+    import pyarrow.ipc as ipc
+
+    rnd = random.Random(5)
+    words = [f"w{i}" for i in range(70_000)] + [rnd.choice(WORDS) for _ in range(30_000)]
+    rnd.shuffle(words)
+    (tmp_path / "logs").mkdir()
+    text = "\n\n".join(" ".join(words[i:i + 50]) for i in range(0, len(words), 50)) + "\n"
+    (tmp_path / "logs" / "wide.txt").write_text(text, encoding="utf-8")
+    recipe = parse_recipe(RECIPE.replace("tokens = 500", "tokens = 1000000") + "[splits]\ntrain = 1.0\n"
+                          "validation = 0.0\ntest = 0.0\n", tmp_path)
+    result = build(recipe, tmp_path / "out", progress=False)
+    [part] = (tmp_path / "out" / ".seqpipe" / "cache" / "parts").iterdir()
+    with ipc.open_file(part / "codes.arrow") as f:
+        assert str(f.schema.field("code").type) == "int32"
+    ds = open_dataset(result.directory)
+    tokens = ds.vocabulary.tokens_for(ds.split("train").stream.slice(0, ds.split("train").num_tokens))
+    assert [t.decode() for t in tokens] == [w for w in text.split()]
+
+    small = tmp_path / "small"
+    (small / "logs").mkdir(parents=True)
+    few = " ".join(words[:5000])
+    (small / "logs" / "narrow.txt").write_text(few + "\n", encoding="utf-8")
+    result = build(parse_recipe(RECIPE, small), small / "out", progress=False)
+    [part] = (small / "out" / ".seqpipe" / "cache" / "parts").iterdir()
+    with ipc.open_file(part / "codes.arrow") as f:
+        assert str(f.schema.field("code").type) == "uint16"
+    ds = open_dataset(result.directory)
+    got = [t.decode() for name in ds.splits for t in
+           ds.vocabulary.tokens_for(ds.split(name).stream.slice(0, ds.split(name).num_tokens))]
+    assert sorted(got) == sorted(few.split())

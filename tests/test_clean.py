@@ -314,3 +314,15 @@ def test_block_scan_finds_every_changed_code_point(fn: Any) -> None:
     want = [i for i, ch in enumerate(text) if fn(ch) != ch]
     assert _changed_by(fn, text) == want
     assert _changed_by(fn, text, block=7) == want
+
+
+def test_arrow_lowers_the_whole_text_as_each_character_alone() -> None:
+    """Lowering every code point as one value gives, character for character, what lowering
+    each alone gives (the unsafe class is derived from the one-value form)."""
+    from seqpipe.clean.lowercase import _all_code_points, _arrow_lower_each, _arrow_lower_one_by_one
+
+    text = _all_code_points()
+    assert len(text) == 0x110000 - 0x800
+    each = _arrow_lower_each(text)
+    assert each == _arrow_lower_one_by_one(text)
+    assert each[ord("A")] == "a" and ord("a") not in each

@@ -107,3 +107,42 @@ def test_cancelling_shutdown_drops_queued_tasks() -> None:
     release.set()
     assert first.result(timeout=10) == 1
     assert all(f.cancelled() for f in queued)
+
+
+def blas_setting(_: int) -> tuple[str | None, int]:
+    """The worker's OPENBLAS_NUM_THREADS and its thread count with numpy imported (Linux)."""
+    import numpy  # noqa: F401  (its OpenBLAS starts its threads at import)
+
+    with open("/proc/self/status") as f:
+        threads = next(int(line.split()[1]) for line in f if line.startswith("Threads:"))
+    return os.environ.get("OPENBLAS_NUM_THREADS"), threads
+
+
+@pytest.mark.skipif(not os.path.exists("/proc/self/status"), reason="reads /proc (Linux)")
+def test_spawned_workers_start_one_blas_thread_and_the_caller_keeps_its_environment(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    """OpenBLAS reads OPENBLAS_NUM_THREADS at import (its documented setting): a worker
+    spawned by the build gets 1, so no idle BLAS threads spin beside the tasks."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    from seqpipe.executors import worker_environment
+
+    for name in ("OPENBLAS_NUM_THREADS", "GOTO_NUM_THREADS", "OMP_NUM_THREADS"):
+        monkeypatch.delenv(name, raising=False)
+    spawn = multiprocessing.get_context("spawn")
+    with ProcessPoolExecutor(1, mp_context=spawn) as plain:
+        _, threads_default = plain.submit(blas_setting, 0).result()
+    with ProcessPoolExecutor(1, mp_context=spawn) as pool:
+        with worker_environment():
+            fut = pool.submit(blas_setting, 0)
+        assert "OPENBLAS_NUM_THREADS" not in os.environ
+        setting, threads = fut.result()
+    assert setting == "1"
+    if os.cpu_count() and os.cpu_count() > 1:  # one thread per core otherwise
+        assert threads < threads_default
+    monkeypatch.setenv("OPENBLAS_NUM_THREADS", "3")  # the caller's own setting is left alone
+    with ProcessPoolExecutor(1, mp_context=spawn) as pool:
+        with worker_environment():
+            fut = pool.submit(blas_setting, 0)
+        assert fut.result()[0] == "3"

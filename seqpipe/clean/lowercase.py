@@ -34,6 +34,33 @@ def _changed_by(fn: Callable[[str], str], text: str, block: int = 1024) -> list[
     return out
 
 
+def _arrow_lower_each(text: str) -> dict[int, str]:
+    """``{i: pc.utf8_lower(text[i])}`` for every ``i`` where Arrow changes ``text[i]`` taken alone.
+
+    Arrow maps code point by code point, without context, so the whole text is lowered as
+    one value (about 35 ms over every code point, against some 90 ms and 70 MB more memory as
+    1.1 million one-character values); should the result not hold one code point per input code point,
+    the one-value-per-character form is used instead.
+    """
+    cps = np.frombuffer(text.encode("utf-32-le"), "<u4")
+    out = np.frombuffer(pc.utf8_lower(pa.array([text], pa.large_string()))[0].as_py().encode("utf-32-le"), "<u4")
+    if len(out) != len(cps):
+        return _arrow_lower_one_by_one(text)
+    changed = np.flatnonzero(out != cps)
+    return {int(i): chr(c) for i, c in zip(changed.tolist(), out[changed].tolist(), strict=True)}
+
+
+def _arrow_lower_one_by_one(text: str) -> dict[int, str]:
+    """What :func:`_arrow_lower_each` gives, with each character lowered as a value of its own."""
+    raw = np.frombuffer(text.encode("utf-8"), np.uint8)
+    lead = np.flatnonzero((raw & 0xC0) != 0x80)
+    one_each = pa.LargeStringArray.from_buffers(
+        len(lead), pa.py_buffer(np.append(lead, len(raw)).astype(np.int64)), pa.py_buffer(raw))
+    each = pc.utf8_lower(one_each)
+    at = np.flatnonzero(pc.not_equal(each, one_each).to_numpy(zero_copy_only=False)).tolist()
+    return dict(zip(at, each.take(pa.array(at, pa.int64())).to_pylist(), strict=True))
+
+
 @cache
 def _unsafe_class(mode: str) -> str:
     """An RE2 class of the code points where ``pc.utf8_lower`` differs from ``str.lower`` /
@@ -43,20 +70,18 @@ def _unsafe_class(mode: str) -> str:
     none of these characters is mapped identically by Arrow.
     """
     fn = str.lower if mode == "lower" else str.casefold
-    cps = np.concatenate([np.arange(0, 0xD800), np.arange(0xE000, 0x110000)]).astype("<u4")
-    text = cps.tobytes().decode("utf-32-le")
-    raw = np.frombuffer(text.encode("utf-8"), np.uint8)
-    lead = np.flatnonzero((raw & 0xC0) != 0x80)
-    one_each = pa.LargeStringArray.from_buffers(len(lead), pa.py_buffer(np.append(lead, len(raw)).astype(np.int64)),
-                                                pa.py_buffer(raw))
-    arrow = pc.utf8_lower(one_each)
-    arrow_changed = np.flatnonzero(pc.not_equal(arrow, one_each).to_numpy(zero_copy_only=False))
-    python_changed = _changed_by(fn, text)
-    candidates = sorted(set(arrow_changed.tolist()) | set(python_changed))
-    got = arrow.take(pa.array(candidates, pa.int64())).to_pylist() if candidates else []
-    unsafe = [text[i] for i, a in zip(candidates, got, strict=True) if a != fn(text[i])]
+    text = _all_code_points()
+    arrow = _arrow_lower_each(text)
+    candidates = sorted(set(arrow) | set(_changed_by(fn, text)))
+    unsafe = [text[i] for i in candidates if arrow.get(i, text[i]) != fn(text[i])]
     unsafe.append(chr(_CAPITAL_SIGMA))
     return re2_class(unsafe)
+
+
+def _all_code_points() -> str:
+    """Every code point but the surrogates, in order."""
+    cps = np.concatenate([np.arange(0, 0xD800, dtype="<u4"), np.arange(0xE000, 0x110000, dtype="<u4")])
+    return cps.tobytes().decode("utf-32-le")
 
 
 @dataclass(frozen=True, slots=True)
