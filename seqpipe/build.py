@@ -9,7 +9,8 @@ Phases (each a batch of executor tasks, see seqpipe/ingest.py)::
     fit      vocabulary (+ learned merges)               -> stage/vocab.arrow, tokenizer.arrow
     encode   ids per part and split                      -> stage/encoded/*
     shard    fixed-size shards per split                 -> stage/shards/<split>/*.arrow
-    publish  docs tables, manifest, atomic rename into the output directory
+             and, in the driver meanwhile, docs tables   -> stage/docs/<split>.arrow
+    publish  manifest, atomic rename into the output directory
     upload   only when the output is a URI: the local dataset copied up (seqpipe/remote.py)
 
 Document order and every tie come from the inputs (recipe order, sorted paths, byte order),
@@ -149,12 +150,14 @@ def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[str]:
 def _run(executor: Executor, fn: Callable[[Any], T], tasks: Sequence[Any], desc: str, show: bool,
          unit: str = "part", weights: Sequence[int] | None = None,
          postfix: Callable[[list[Any]], dict[str, Any]] | None = None,
-         each: Callable[[int, T], Any] | None = None) -> list[Any]:
+         each: Callable[[int, T], Any] | None = None,
+         meanwhile: Callable[[], None] | None = None) -> list[Any]:
     """Submit every task, wait for all, return results in task order (never completion order).
 
     ``each(i, result)`` sees every result as it arrives (in completion order) and returns what
     is kept in its place, so large parts of results need not pile up; a result that is ready at submit
-    time (an inline executor) is taken at once.
+    time (an inline executor) is taken at once. ``meanwhile()`` is this thread's own work, done
+    after every task is submitted and before waiting for them.
     """
     from concurrent.futures import as_completed
 
@@ -177,6 +180,8 @@ def _run(executor: Executor, fn: Callable[[Any], T], tasks: Sequence[Any], desc:
             futures[fut] = i
             if fut.done():
                 take(fut)
+        if meanwhile is not None:
+            meanwhile()
         for fut in as_completed(list(futures)):
             take(fut)
     return results
@@ -193,12 +198,21 @@ class _CountMerger:
         self.pending: list[pa.Table] = []
         self.acc: pa.Table | None = None
         self.train_documents = 0
+        self.expected = 0  # tables announced by ``expect``
+        self.received = 0
+
+    def expect(self, n: int) -> None:
+        """``n`` more tables will arrive."""
+        self.expected += n
 
     def add(self, counted: tuple[pa.Table, int]) -> None:
         table, train_documents = counted
         self.pending.append(table)
         self.train_documents += train_documents
-        if len(self.pending) >= self.batch:
+        self.received += 1
+        # with one table still to come, fold now: the fold after the last table, which nothing
+        # runs beside, then merges that table alone into the total
+        if len(self.pending) >= self.batch or (self.received == self.expected - 1 and len(self.pending) > 1):
             self._fold()
 
     def _fold(self) -> None:
@@ -333,6 +347,7 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
         # every document is kept, so a fresh part is counted by its ingest task, while in memory
         tasks = [dataclasses.replace(t, count_order=i) for i, t in enumerate(tasks)]
     merger = _CountMerger()
+    merger.expect(0 if dedupe else len(todo))
     counted = [False] * len(tasks)
 
     def take_counts(j: int, m: PartMeta) -> PartMeta:  # merged on arrival: the driver keeps no pile
@@ -369,6 +384,7 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     # -- count + fit ----------------------------------------------------------------------------
     recount = [i for i, done in enumerate(counted) if not done]  # reused parts (or dedupe)
     count_tasks = [CountTask(str(cache), tasks[i].key, i, recipe, keeps[i]) for i in recount]
+    merger.expect(len(count_tasks))
     _run(ex, count_part, count_tasks, "counting", show, each=lambda _, c: merger.add(c))
     if merger.train_documents == 0:
         raise EmptyCorpusError("the train split is empty: add documents or raise splits.train")
@@ -392,10 +408,12 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     summary_splits: dict[str, Any] = {}
     shard_tasks: list[ShardTask] = []
     shard_slots: list[tuple[str, int]] = []
+    split_parts: dict[str, list[int]] = {}  # per split, the encoded parts that hold some of it
     per_shard = recipe.shards.tokens
     compression = None if recipe.shards.compression == "none" else recipe.shards.compression
     for split in SPLIT_NAMES:
         files_list = [(i, enc[split]["tokens"]) for i, enc in enumerate(encoded) if split in enc]
+        split_parts[split] = [i for i, _ in files_list]
         totals = {k: sum(enc[split][k] for enc in encoded if split in enc)
                   for k in ("tokens", "documents", "unknown", "bytes", "words")}
         n_tokens = totals["tokens"]
@@ -412,15 +430,7 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
             shard_tasks.append(ShardTask(str(stage / rel), tuple(pieces), compression, dtype.name))
             shard_slots.append((split, len(shard_meta)))
             shard_meta.append({"path": rel, "tokens": last - first, "documents": 0, "first": first})
-        # the docs table, streamed fragment by fragment; counts documents starting in each shard
-        rel = f"docs/{split}.arrow"
-        docs_in = np.zeros(len(shard_meta), np.int64)
-        size = write_batches(stage / rel, DOCS_SCHEMA, _docs_batches(stage, split, [i for i, _ in files_list],
-                                                                     per_shard, docs_in))
-        for j, count in enumerate(docs_in):
-            shard_meta[j]["documents"] = int(count)
-        splits_out[split] = {"documents": totals["documents"], "tokens": n_tokens, "shards": shard_meta,
-                             "docs": {"path": rel, "bytes": size, "hash": hash_file(stage / rel)}}
+        splits_out[split] = {"documents": totals["documents"], "tokens": n_tokens, "shards": shard_meta}
         summary_splits[split] = {
             "unknown": totals["unknown"],
             "unknown_rate": totals["unknown"] / n_tokens if n_tokens else 0.0,
@@ -428,7 +438,22 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
             "tokens_per_word": n_tokens / totals["words"] if totals["words"] else 0.0,
             "documents_assigned": totals["documents"],
         }
-    results = _run(ex, write_shard_task, shard_tasks, "writing shards", show, unit="shard")
+
+    def write_docs_tables() -> None:
+        """The docs tables, streamed fragment by fragment (while the shard tasks run); counts
+        the documents starting in each shard."""
+        for split in SPLIT_NAMES:
+            rel = f"docs/{split}.arrow"
+            shard_meta = splits_out[split]["shards"]
+            docs_in = np.zeros(len(shard_meta), np.int64)
+            size = write_batches(stage / rel, DOCS_SCHEMA,
+                                 _docs_batches(stage, split, split_parts[split], per_shard, docs_in))
+            for j, count in enumerate(docs_in):
+                shard_meta[j]["documents"] = int(count)
+            splits_out[split]["docs"] = {"path": rel, "bytes": size, "hash": hash_file(stage / rel)}
+
+    results = _run(ex, write_shard_task, shard_tasks, "writing shards", show, unit="shard",
+                   meanwhile=write_docs_tables)
     for (split, j), res in zip(shard_slots, results, strict=True):
         splits_out[split]["shards"][j].update(bytes=res["bytes"], file_hash=res["file_hash"],
                                               token_hash=res["token_hash"])
