@@ -8,8 +8,8 @@ Ingest output ("part", cached by a fingerprint of its inputs, see ``part_key``):
 
     <cache>/parts/<key>/docs.arrow    per document: hash, dedupe, pieces, bytes, words
     <cache>/parts/<key>/keys.arrow    distinct piece keys of the part (binary)
-    <cache>/parts/<key>/codes.arrow   one code per piece position, documents in order: uint16 when
-                                      the part has at most 65,536 distinct keys, else int32
+    <cache>/parts/<key>/codes.arrow   one code per piece position, documents in order, in the
+                                      smallest unsigned type that holds the part's key count
     <cache>/parts/<key>/meta.json     read/clean statistics
 """
 
@@ -36,7 +36,7 @@ from seqpipe._hashing import hash_array, hash_json
 from seqpipe._parse import to_plain
 from seqpipe.errors import SeqpipeError
 from seqpipe.recipe import Recipe
-from seqpipe.shards import fsync_dir, read_shard, read_table, write_shard, write_table
+from seqpipe.shards import fsync_dir, id_dtype, read_shard, read_table, write_shard, write_table
 from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
 
@@ -279,12 +279,10 @@ def ingest_part(task: IngestTask) -> PartMeta:
 
 
 def _stored_codes(codes: np.ndarray, n_keys: int) -> pa.Array:
-    """A part's piece codes as stored: two bytes each where every code fits (most parts: a
-    16 MB part of English-like text has some 40,000 distinct words), which halves the bytes
-    the cache writes and the encode tasks read back."""
-    if n_keys <= 1 << 16:
-        return pa.array(codes.astype(np.uint16), pa.uint16())
-    return pa.array(codes, pa.int32())
+    """A part's piece codes as stored: in the smallest unsigned type that holds ``n_keys``
+    values, as shard ids are (a 16 MB part of English-like text has some 40,000 distinct
+    words, so two bytes: half the bytes the cache writes and the encode tasks read back)."""
+    return pa.array(codes.astype(id_dtype(n_keys), copy=False))
 
 
 def read_part_docs(cache_dir: str, key: str) -> pa.Table:

@@ -230,7 +230,8 @@ def test_cli_inspect_encode_decode(tmp_path: Path, capsys: pytest.CaptureFixture
 
 def test_a_part_with_more_distinct_words_than_two_byte_codes_hold(tmp_path: Path) -> None:
     """Cached parts store piece codes in two bytes when at most 65,536 distinct pieces occur
-    and in four otherwise; both widths give back exactly the text's words. Reference: for
+    and in four otherwise (the smallest unsigned type, as for shard ids); both widths give
+    back exactly the text's words. Reference: for
     words of ASCII letters and digits separated by spaces, the words are ``str.split()``
     (common practice)."""
     import pyarrow.ipc as ipc
@@ -246,7 +247,7 @@ def test_a_part_with_more_distinct_words_than_two_byte_codes_hold(tmp_path: Path
     result = build(recipe, tmp_path / "out", progress=False)
     [part] = (tmp_path / "out" / ".seqpipe" / "cache" / "parts").iterdir()
     with ipc.open_file(part / "codes.arrow") as f:
-        assert str(f.schema.field("code").type) == "int32"
+        assert str(f.schema.field("code").type) == "uint32"
     ds = open_dataset(result.directory)
     tokens = ds.vocabulary.tokens_for(ds.split("train").stream.slice(0, ds.split("train").num_tokens))
     assert [t.decode() for t in tokens] == [w for w in text.split()]
