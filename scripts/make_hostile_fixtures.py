@@ -80,10 +80,12 @@ def contents(tmp: Path) -> dict[str, bytes]:
         # Keep git from converting line ends in files whose line ends are the point.
         ".gitattributes": b"* -text\n",
         "README.md": README.encode("utf-8"),
-        "invalid_utf8.txt": (b"a clean first line\n"
-                             b"a stray byte \xff in the second line\n"
-                             b"a cut-off euro sign \xe2\x82 in the third\n"
-                             b"a clean last line\n"),
+        "invalid_utf8.txt": (
+            b"a clean first line\n"
+            b"a stray byte \xff in the second line\n"
+            b"a cut-off euro sign \xe2\x82 in the third\n"
+            b"a clean last line\n"
+        ),
         "nul_bytes.txt": b"crossing\x00one\nsecond\x00\x00line\n\x00\n",
         "bom_start.txt": BOM + b"first line after a byte order mark\nsecond line\n",
         "bom_middle.txt": b"before the mark\n" + BOM + b"after the mark\n",

@@ -31,14 +31,25 @@ if _typing.TYPE_CHECKING:
 # nothing and a process imports only what it uses: the command line starts its build workers
 # before it imports numpy and pyarrow, and a spawned worker imports what its tasks need.
 _HOME = {
-    "BuildResult": "build", "build": "build",
-    "Dataset": "dataset", "Split": "dataset", "load_tokenizer": "dataset", "open_dataset": "dataset",
+    "BuildResult": "build",
+    "build": "build",
+    "Dataset": "dataset",
+    "Split": "dataset",
+    "load_tokenizer": "dataset",
+    "open_dataset": "dataset",
     "SeqpipeError": "errors",
-    "Recipe": "recipe", "load_recipe": "recipe", "parse_recipe": "recipe",
-    "corpus_report": "report", "write_report": "report",
+    "Recipe": "recipe",
+    "load_recipe": "recipe",
+    "parse_recipe": "recipe",
+    "corpus_report": "report",
+    "write_report": "report",
     "TokenStream": "stream",
-    "VerifyReport": "verify", "verify": "verify",
-    "Batch": "windows", "BatchStream": "windows", "StreamState": "windows", "stream_fingerprint": "windows",
+    "VerifyReport": "verify",
+    "verify": "verify",
+    "Batch": "windows",
+    "BatchStream": "windows",
+    "StreamState": "windows",
+    "stream_fingerprint": "windows",
 }
 # Functions named like the module they live in: importing the submodule makes Python bind the
 # module to the package attribute of the same name, which must stay the function.

@@ -22,8 +22,7 @@ def _show(value: Any) -> str:
     return text if len(text) <= 80 else text[:77] + "..."
 
 
-def parse_int(key: str, value: Any, *, minimum: int | None = None,
-              maximum: int | None = None) -> int:
+def parse_int(key: str, value: Any, *, minimum: int | None = None, maximum: int | None = None) -> int:
     """An integer (not a bool) within the given bounds."""
     if isinstance(value, bool) or not isinstance(value, int):
         raise RecipeError(key, f"expected an integer, got {_show(value)}")
@@ -40,8 +39,7 @@ def parse_optional_int(key: str, value: Any, *, minimum: int | None = None) -> i
     return None if value is None else parse_int(key, value, minimum=minimum)
 
 
-def parse_float(key: str, value: Any, *, minimum: float | None = None,
-                maximum: float | None = None) -> float:
+def parse_float(key: str, value: Any, *, minimum: float | None = None, maximum: float | None = None) -> float:
     """A number (int or float, not bool) within the given closed bounds."""
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise RecipeError(key, f"expected a number, got {_show(value)}")
@@ -62,8 +60,7 @@ def parse_bool(key: str, value: Any) -> bool:
     return value
 
 
-def parse_str(key: str, value: Any, *, choices: Sequence[str] | None = None,
-              allow_empty: bool = False) -> str:
+def parse_str(key: str, value: Any, *, choices: Sequence[str] | None = None, allow_empty: bool = False) -> str:
     """A string, optionally one of ``choices``."""
     if not isinstance(value, str):
         raise RecipeError(key, f"expected a string, got {_show(value)}")
@@ -91,8 +88,9 @@ def check_keys(path: str, data: Any, allowed: Sequence[str]) -> Mapping[str, Any
         if not isinstance(k, str) or k not in allowed:
             hint = difflib.get_close_matches(str(k), allowed, n=1)
             extra = f" (did you mean {hint[0]!r}?)" if hint else ""
-            raise RecipeError(f"{path}.{k}" if path else str(k),
-                              f"unknown key{extra}; allowed keys: {', '.join(sorted(allowed))}")
+            raise RecipeError(
+                f"{path}.{k}" if path else str(k), f"unknown key{extra}; allowed keys: {', '.join(sorted(allowed))}"
+            )
     return data
 
 
@@ -109,8 +107,11 @@ def section(cls: type[T], data: Any, path: str, *, skip: Sequence[str] = ()) -> 
     allowed = init_fields(cls)
     table = check_keys(path, data, [*allowed, *skip])
     kwargs = {k: v for k, v in table.items() if k not in skip}
-    required = [f.name for f in dataclasses.fields(cls)  # type: ignore[arg-type]
-                if f.init and f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING]
+    required = [
+        f.name
+        for f in dataclasses.fields(cls)  # type: ignore[arg-type]
+        if f.init and f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING
+    ]
     missing = [k for k in required if k not in kwargs]
     if missing:
         raise RecipeError(f"{path}.{missing[0]}" if path else missing[0], "missing required key")

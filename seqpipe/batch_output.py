@@ -38,8 +38,14 @@ def print_batches(ds: Dataset, stream: BatchStream, *, start: int, limit: int | 
         return
     if fmt == "json":
         for b in batches:
-            row = {"step": b.step, "epoch": b.epoch, "fresh": b.fresh, "starts": b.starts.tolist(),
-                   "inputs": b.inputs.tolist(), "targets": b.targets.tolist()}
+            row = {
+                "step": b.step,
+                "epoch": b.epoch,
+                "fresh": b.fresh,
+                "starts": b.starts.tolist(),
+                "inputs": b.inputs.tolist(),
+                "targets": b.targets.tolist(),
+            }
             if b.mask is not None:
                 row["mask"] = b.mask.astype(int).tolist()
             print(json.dumps(row))

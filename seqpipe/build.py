@@ -62,8 +62,9 @@ from seqpipe.staging import OPTIONAL_TOP, build_lock, private_dir, publish
 from seqpipe.vocab import merge_counts
 
 PART_BYTES: Final = 16 << 20
-DOCS_SCHEMA: Final = pa.schema([("start", pa.int64()), ("length", pa.int64()), ("source", pa.int32()),
-                                ("hash", pa.binary(16))])
+DOCS_SCHEMA: Final = pa.schema(
+    [("start", pa.int64()), ("length", pa.int64()), ("source", pa.int32()), ("hash", pa.binary(16))]
+)
 T = TypeVar("T")
 
 
@@ -89,18 +90,21 @@ class BuildResult:
         m = self.manifest
         s = m["summary"]
         mbs = self.input_bytes / 1e6 / max(self.seconds, 1e-9)
-        lines = [f"dataset      {self.directory}",
-                 f"fingerprint  {m['dataset_fingerprint']}",
-                 f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['size']} "
-                 f"(ids as {m['dtype']})",
-                 f"inputs       {len(m['inputs'])} file(s), {self.input_bytes / 1e6:.2f} MB read in "
-                 f"{self.seconds:.2f} s ({mbs:.1f} MB/s); parts reused from cache: "
-                 f"{self.parts_reused}/{self.parts_total}"]
+        lines = [
+            f"dataset      {self.directory}",
+            f"fingerprint  {m['dataset_fingerprint']}",
+            f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['size']} (ids as {m['dtype']})",
+            f"inputs       {len(m['inputs'])} file(s), {self.input_bytes / 1e6:.2f} MB read in "
+            f"{self.seconds:.2f} s ({mbs:.1f} MB/s); parts reused from cache: "
+            f"{self.parts_reused}/{self.parts_total}",
+        ]
         for name in SPLIT_NAMES:
             sp, st = m["splits"][name], s["splits"][name]
-            lines.append(f"{name:<12} {sp['documents']:>9} docs {sp['tokens']:>11} tokens  "
-                         f"{len(sp['shards'])} shard(s)  unknown {st['unknown_rate']:.4%}  "
-                         f"{st['bytes_per_token']:.2f} bytes/token  {st['tokens_per_word']:.2f} tokens/word")
+            lines.append(
+                f"{name:<12} {sp['documents']:>9} docs {sp['tokens']:>11} tokens  "
+                f"{len(sp['shards'])} shard(s)  unknown {st['unknown_rate']:.4%}  "
+                f"{st['bytes_per_token']:.2f} bytes/token  {st['tokens_per_word']:.2f} tokens/word"
+            )
         drops = {**s["read"], **{f"clean {k}": v for k, v in s["dropped"].items()}}
         shown = {k: v for k, v in drops.items() if v and k not in ("documents", "bytes_read")}
         if s["duplicates_dropped"]:
@@ -109,9 +113,11 @@ class BuildResult:
             lines.append("counted      " + ", ".join(f"{k}: {v}" for k, v in sorted(shown.items())))
         if "uploaded" in self.extra:
             x = self.extra
-            lines.append(f"published    {x['uploaded']} file(s) uploaded ({x['uploaded_bytes'] / 1e6:.2f} MB), "
-                         f"{x['already_there']} already there, {x['deleted']} unlisted deleted; "
-                         f"work directory {x['work_dir']}")
+            lines.append(
+                f"published    {x['uploaded']} file(s) uploaded ({x['uploaded_bytes'] / 1e6:.2f} MB), "
+                f"{x['already_there']} already there, {x['deleted']} unlisted deleted; "
+                f"work directory {x['work_dir']}"
+            )
         return lines
 
 
@@ -147,11 +153,18 @@ def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[str]:
     return out
 
 
-def _run(executor: Executor, fn: Callable[[Any], T], tasks: Sequence[Any], desc: str, show: bool,
-         unit: str = "part", weights: Sequence[int] | None = None,
-         postfix: Callable[[list[Any]], dict[str, Any]] | None = None,
-         each: Callable[[int, T], Any] | None = None,
-         meanwhile: Callable[[], None] | None = None) -> list[Any]:
+def _run(
+    executor: Executor,
+    fn: Callable[[Any], T],
+    tasks: Sequence[Any],
+    desc: str,
+    show: bool,
+    unit: str = "part",
+    weights: Sequence[int] | None = None,
+    postfix: Callable[[list[Any]], dict[str, Any]] | None = None,
+    each: Callable[[int, T], Any] | None = None,
+    meanwhile: Callable[[], None] | None = None,
+) -> list[Any]:
     """Submit every task, wait for all, return results in task order (never completion order).
 
     ``each(i, result)`` sees every result as it arrives (in completion order) and returns what
@@ -164,8 +177,7 @@ def _run(executor: Executor, fn: Callable[[Any], T], tasks: Sequence[Any], desc:
     futures: dict[Future[T], int] = {}
     results: list[Any] = [None] * len(tasks)
     total = sum(weights) if weights is not None else len(tasks)
-    with bar(total, desc, unit=unit, show=show and bool(tasks),
-             unit_scale=weights is not None) as pbar:
+    with bar(total, desc, unit=unit, show=show and bool(tasks), unit_scale=weights is not None) as pbar:
 
         def take(fut: Future[T]) -> None:
             i = futures.pop(fut)
@@ -221,10 +233,17 @@ class _CountMerger:
         # a copy into fresh (aligned) buffers: tables unpickled from cluster workers may sit at
         # odd offsets, which Arrow's group-by warns about
         cat = pa.concat_tables(group)
-        cat = pa.table({name: pa.concat_arrays([*cat.column(name).chunks, pa.array([], cat.schema.field(name).type)])
-                        for name in cat.column_names})
-        self.acc = cat.group_by("key").aggregate([("count", "sum"), ("first", "min")]) \
+        cat = pa.table(
+            {
+                name: pa.concat_arrays([*cat.column(name).chunks, pa.array([], cat.schema.field(name).type)])
+                for name in cat.column_names
+            }
+        )
+        self.acc = (
+            cat.group_by("key")
+            .aggregate([("count", "sum"), ("first", "min")])
             .rename_columns(["key", "count", "first"])
+        )
 
     def result(self) -> pa.Table:
         """Corpus-wide ``(key, count)`` in first-occurrence order."""
@@ -247,9 +266,18 @@ def _first_occurrence(keys: np.ndarray) -> np.ndarray:
     return keep
 
 
-def build(recipe: Recipe, out: str | Path, *, executor: Executor | None = None, workers: int | None = None,
-          cache_dir: str | Path | None = None, force: bool = False, progress: bool | None = None,
-          part_bytes: int = PART_BYTES, work_dir: str | Path | None = None) -> BuildResult:
+def build(
+    recipe: Recipe,
+    out: str | Path,
+    *,
+    executor: Executor | None = None,
+    workers: int | None = None,
+    cache_dir: str | Path | None = None,
+    force: bool = False,
+    progress: bool | None = None,
+    part_bytes: int = PART_BYTES,
+    work_dir: str | Path | None = None,
+) -> BuildResult:
     """Build ``recipe`` into directory ``out`` and return the result.
 
     ``executor``: any concurrent.futures-style executor (e.g. a Dask client's
@@ -275,8 +303,10 @@ def build(recipe: Recipe, out: str | Path, *, executor: Executor | None = None, 
         remote = open_remote(str(out))
         local = Path(work_dir) if work_dir is not None else default_work_dir(remote, cache_dir)
     elif work_dir is not None:
-        raise RecipeError("work_dir", "only used when the output is a filesystem URI (a local output "
-                                      "directory is its own work directory)")
+        raise RecipeError(
+            "work_dir",
+            "only used when the output is a filesystem URI (a local output directory is its own work directory)",
+        )
     else:
         local = Path(out)
     local.mkdir(parents=True, exist_ok=True)
@@ -295,13 +325,18 @@ def build(recipe: Recipe, out: str | Path, *, executor: Executor | None = None, 
         from seqpipe.remote import publish_remote
 
         stats = publish_remote(local, remote, result.manifest, show=show)
-    extra = {**result.extra, "work_dir": str(local), "uploaded": stats.uploaded,
-             "uploaded_bytes": stats.uploaded_bytes, "already_there": stats.reused, "deleted": stats.deleted}
+    extra = {
+        **result.extra,
+        "work_dir": str(local),
+        "uploaded": stats.uploaded,
+        "uploaded_bytes": stats.uploaded_bytes,
+        "already_there": stats.reused,
+        "deleted": stats.deleted,
+    }
     return dataclasses.replace(result, directory=remote.uri, seconds=time.perf_counter() - t0, extra=extra)
 
 
-def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, part_bytes: int,
-           t0: float) -> BuildResult:
+def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, part_bytes: int, t0: float) -> BuildResult:
     # -- plan -----------------------------------------------------------------------------------
     from seqpipe.sources._fs import file_size, identity, is_uri
 
@@ -317,9 +352,10 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     hashes = _input_hashes([f for _, f in files], cache)
     sizes = [file_size(f) for _, f in files]
     # a URI input is recorded as the URI; a local one relative to the recipe's directory
-    inputs = [{"path": str(f) if is_uri(f) else os.path.relpath(f, recipe.root).replace(os.sep, "/"),
-               "size": sz, "hash": h}
-              for (_, f), sz, h in zip(files, sizes, hashes, strict=True)]
+    inputs = [
+        {"path": str(f) if is_uri(f) else os.path.relpath(f, recipe.root).replace(os.sep, "/"), "size": sz, "hash": h}
+        for (_, f), sz, h in zip(files, sizes, hashes, strict=True)
+    ]
     tasks: list[IngestTask] = []
     weights: list[int] = []  # approximate bytes per part, for the progress bar
     for ii, ((si, f), h) in enumerate(zip(files, hashes, strict=True)):
@@ -357,9 +393,17 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
             m.counts = None
         return m
 
-    fresh = _run(ex, ingest_part, [tasks[i] for i in todo], "reading", show, unit="B",
-                 weights=[weights[i] for i in todo],
-                 postfix=lambda done: {"documents": sum(m.documents for m in done)}, each=take_counts)
+    fresh = _run(
+        ex,
+        ingest_part,
+        [tasks[i] for i in todo],
+        "reading",
+        show,
+        unit="B",
+        weights=[weights[i] for i in todo],
+        postfix=lambda done: {"documents": sum(m.documents for m in done)},
+        each=take_counts,
+    )
     for i, m in zip(todo, fresh, strict=True):
         metas[i] = m
     parts: list[PartMeta] = [m for m in metas if m is not None]
@@ -368,8 +412,10 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
 
     # -- assign: duplicates (splits are computed in the tasks from each document's hash) -------
     if sum(m.documents for m in parts) == 0:
-        raise EmptyCorpusError("no document is left after reading and cleaning: check the sources' "
-                               "globs and the clean steps (e.g. min_length)")
+        raise EmptyCorpusError(
+            "no document is left after reading and cleaning: check the sources' "
+            "globs and the clean steps (e.g. min_length)"
+        )
     keeps: list[np.ndarray | None] = [None] * len(tasks)
     duplicates = 0
     if dedupe:
@@ -378,7 +424,7 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
         keep_all = _first_occurrence(np.concatenate(keys))
         duplicates = int((~keep_all).sum())
         bounds = np.cumsum([0] + [len(k) for k in keys])
-        keeps = [keep_all[bounds[i]:bounds[i + 1]] for i in range(len(tasks))]
+        keeps = [keep_all[bounds[i] : bounds[i + 1]] for i in range(len(tasks))]
         del keys, keep_all
 
     # -- count + fit ----------------------------------------------------------------------------
@@ -399,8 +445,10 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
 
     # -- encode ---------------------------------------------------------------------------------
     shutil.rmtree(stage / "encoded", ignore_errors=True)
-    enc_tasks = [EncodeTask(str(cache), t.key, str(stage), recipe, i, t.input_index, keeps[i], dtype.name)
-                 for i, t in enumerate(tasks)]
+    enc_tasks = [
+        EncodeTask(str(cache), t.key, str(stage), recipe, i, t.input_index, keeps[i], dtype.name)
+        for i, t in enumerate(tasks)
+    ]
     encoded = _run(ex, encode_part, enc_tasks, "encoding", show)
 
     # -- shards + docs tables -------------------------------------------------------------------
@@ -414,8 +462,10 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     for split in SPLIT_NAMES:
         files_list = [(i, enc[split]["tokens"]) for i, enc in enumerate(encoded) if split in enc]
         split_parts[split] = [i for i, _ in files_list]
-        totals = {k: sum(enc[split][k] for enc in encoded if split in enc)
-                  for k in ("tokens", "documents", "unknown", "bytes", "words")}
+        totals = {
+            k: sum(enc[split][k] for enc in encoded if split in enc)
+            for k in ("tokens", "documents", "unknown", "bytes", "words")
+        }
         n_tokens = totals["tokens"]
         file_starts = np.cumsum([0] + [n for _, n in files_list])
         shard_meta: list[dict[str, Any]] = []
@@ -446,17 +496,18 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
             rel = f"docs/{split}.arrow"
             shard_meta = splits_out[split]["shards"]
             docs_in = np.zeros(len(shard_meta), np.int64)
-            size = write_batches(stage / rel, DOCS_SCHEMA,
-                                 _docs_batches(stage, split, split_parts[split], per_shard, docs_in))
+            size = write_batches(
+                stage / rel, DOCS_SCHEMA, _docs_batches(stage, split, split_parts[split], per_shard, docs_in)
+            )
             for j, count in enumerate(docs_in):
                 shard_meta[j]["documents"] = int(count)
             splits_out[split]["docs"] = {"path": rel, "bytes": size, "hash": hash_file(stage / rel)}
 
-    results = _run(ex, write_shard_task, shard_tasks, "writing shards", show, unit="shard",
-                   meanwhile=write_docs_tables)
+    results = _run(ex, write_shard_task, shard_tasks, "writing shards", show, unit="shard", meanwhile=write_docs_tables)
     for (split, j), res in zip(shard_slots, results, strict=True):
-        splits_out[split]["shards"][j].update(bytes=res["bytes"], file_hash=res["file_hash"],
-                                              token_hash=res["token_hash"])
+        splits_out[split]["shards"][j].update(
+            bytes=res["bytes"], file_hash=res["file_hash"], token_hash=res["token_hash"]
+        )
     shutil.rmtree(stage / "encoded", ignore_errors=True)
 
     # -- manifest + publish ---------------------------------------------------------------------
@@ -473,15 +524,27 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
         "recipe": recipe.to_dict(),
         "recipe_fingerprint": recipe.fingerprint,
         "inputs": inputs,
-        "tokenizer": {"kind": recipe.tokenizer.kind, "vocab_size": len(vocab),
-                      "files": [{"path": f, "bytes": (stage / f).stat().st_size, "hash": hash_file(stage / f)}
-                                for f in tok_files]},
-        "vocabulary": {"path": "vocab.arrow", "bytes": (stage / "vocab.arrow").stat().st_size,
-                       "hash": hash_file(stage / "vocab.arrow"), "size": len(vocab)},
+        "tokenizer": {
+            "kind": recipe.tokenizer.kind,
+            "vocab_size": len(vocab),
+            "files": [
+                {"path": f, "bytes": (stage / f).stat().st_size, "hash": hash_file(stage / f)} for f in tok_files
+            ],
+        },
+        "vocabulary": {
+            "path": "vocab.arrow",
+            "bytes": (stage / "vocab.arrow").stat().st_size,
+            "hash": hash_file(stage / "vocab.arrow"),
+            "size": len(vocab),
+        },
         "dtype": dtype.name,
         "splits": splits_out,
-        "summary": {"read": read_tot, "dropped": dropped_tot, "duplicates_dropped": duplicates,
-                    "splits": summary_splits},
+        "summary": {
+            "read": read_tot,
+            "dropped": dropped_tot,
+            "duplicates_dropped": duplicates,
+            "splits": summary_splits,
+        },
     }
     manifest = seal(body)
     (stage / MANIFEST_NAME).write_text(dumps(manifest))
@@ -497,8 +560,9 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
 DOCS_BATCH_ROWS: Final = 1 << 16
 
 
-def _docs_batches(stage: Path, split: str, numbers: Sequence[int], per_shard: int,
-                  docs_in: np.ndarray) -> Iterator[pa.RecordBatch]:
+def _docs_batches(
+    stage: Path, split: str, numbers: Sequence[int], per_shard: int, docs_in: np.ndarray
+) -> Iterator[pa.RecordBatch]:
     """The split's documents with stream start offsets, re-cut into batches of DOCS_BATCH_ROWS
     rows so the file's layout depends on its content only (not on how inputs were split into
     parts); adds to ``docs_in`` the number of documents starting in each shard."""
@@ -512,9 +576,17 @@ def _docs_batches(stage: Path, split: str, numbers: Sequence[int], per_shard: in
         start += int(lengths.sum())
         if len(starts):
             np.add.at(docs_in, starts // per_shard, 1)
-        pending.append(pa.table({"start": pa.array(starts, pa.int64()), "length": frag.column("length"),
-                                 "source": frag.column("source"), "hash": frag.column("hash")},
-                                schema=DOCS_SCHEMA))
+        pending.append(
+            pa.table(
+                {
+                    "start": pa.array(starts, pa.int64()),
+                    "length": frag.column("length"),
+                    "source": frag.column("source"),
+                    "hash": frag.column("hash"),
+                },
+                schema=DOCS_SCHEMA,
+            )
+        )
         rows += len(lengths)
         while rows >= DOCS_BATCH_ROWS:
             table = pa.concat_tables(pending).combine_chunks()

@@ -51,16 +51,30 @@ def cmd_build(args: argparse.Namespace) -> int:
 
             client, executor = connect(args.dask_scheduler)
         try:
-            result = build(recipe, out, executor=executor, workers=None if early else workers,
-                           cache_dir=args.cache, force=args.force, progress=False if args.quiet else None,
-                           work_dir=args.work_dir)
+            result = build(
+                recipe,
+                out,
+                executor=executor,
+                workers=None if early else workers,
+                cache_dir=args.cache,
+                force=args.force,
+                progress=False if args.quiet else None,
+                work_dir=args.work_dir,
+            )
         finally:
             if client is not None:
                 client.close()
     if args.json:
-        _print_json({"directory": str(result.directory), "fingerprint": result.fingerprint, "seconds": result.seconds,
-                     "parts": result.parts_total, "parts_reused": result.parts_reused,
-                     "summary": result.manifest["summary"]})
+        _print_json(
+            {
+                "directory": str(result.directory),
+                "fingerprint": result.fingerprint,
+                "seconds": result.seconds,
+                "parts": result.parts_total,
+                "parts_reused": result.parts_reused,
+                "summary": result.manifest["summary"],
+            }
+        )
     elif not args.quiet:
         print("\n".join(result.summary_lines()))
     return EXIT_OK
@@ -73,8 +87,9 @@ def cmd_verify(args: argparse.Namespace) -> int:
     if args.json:
         _print_json(report.to_dict())
     elif report.ok:
-        print(f"ok: {report.files_checked} files, {report.bytes_checked} bytes verified; "
-              f"fingerprint {report.fingerprint}")
+        print(
+            f"ok: {report.files_checked} files, {report.bytes_checked} bytes verified; fingerprint {report.fingerprint}"
+        )
     else:
         for p in report.problems:
             print(p)
@@ -99,8 +114,9 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     for name in ds.splits:
         sp = m["splits"][name]
         size = sum(s["bytes"] for s in sp["shards"])
-        print(f"{name:<12} {sp['documents']} documents, {sp['tokens']} tokens, {len(sp['shards'])} shard(s), "
-              f"{size} bytes")
+        print(
+            f"{name:<12} {sp['documents']} documents, {sp['tokens']} tokens, {len(sp['shards'])} shard(s), {size} bytes"
+        )
     return EXIT_OK
 
 
@@ -125,8 +141,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
             print(p)
         return EXIT_VERIFY_FAILED
     print(f"verify: ok ({report.files_checked} files)")
-    print(f"next: seqpipe inspect {out}   seqpipe batches {out} --split train --batch-size 2 --steps 16 "
-          f"--limit 1   seqpipe report {out}")
+    print(
+        f"next: seqpipe inspect {out}   seqpipe batches {out} --split train --batch-size 2 --steps 16 "
+        f"--limit 1   seqpipe report {out}"
+    )
     return EXIT_OK
 
 
@@ -136,16 +154,23 @@ def cmd_batches(args: argparse.Namespace) -> int:
 
     ds = open_dataset(args.directory, verify_on_open=args.verify)
     split = ds.split(args.split)
-    stream = split.batches(batch_size=args.batch_size, steps=args.steps, order=args.order, seed=args.seed,
-                           epoch=args.epoch, rank=args.rank, world_size=args.world_size,
-                           drop_last=not args.keep_last, boundaries=args.boundaries)
+    stream = split.batches(
+        batch_size=args.batch_size,
+        steps=args.steps,
+        order=args.order,
+        seed=args.seed,
+        epoch=args.epoch,
+        rank=args.rank,
+        world_size=args.world_size,
+        drop_last=not args.keep_last,
+        boundaries=args.boundaries,
+    )
     print_batches(ds, stream, start=args.start, limit=args.limit, fmt=args.format)
     return EXIT_OK
 
 
 def cmd_report(args: argparse.Namespace) -> int:
     from seqpipe.report import write_report
-
     from seqpipe.sources._fs import is_uri
 
     if args.output:
@@ -173,13 +198,16 @@ def cmd_decode(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-URI_DIR_HELP = ("dataset directory, or the filesystem URI of a published one (read from a checked local "
-                "copy under ~/.cache/seqpipe/copies)")
+URI_DIR_HELP = (
+    "dataset directory, or the filesystem URI of a published one (read from a checked local "
+    "copy under ~/.cache/seqpipe/copies)"
+)
 
 
 def parser() -> argparse.ArgumentParser:
-    ap = argparse.ArgumentParser(prog="seqpipe", description="Raw text to verified token datasets and "
-                                 "reproducible training batches.")
+    ap = argparse.ArgumentParser(
+        prog="seqpipe", description="Raw text to verified token datasets and reproducible training batches."
+    )
     from seqpipe import __version__
 
     ap.add_argument("--version", action="version", version=f"seqpipe {__version__}")
@@ -187,14 +215,24 @@ def parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("build", help="build a dataset from a TOML recipe")
     p.add_argument("recipe", help="recipe file (TOML)")
-    p.add_argument("-o", "--output", help="dataset directory, or a pyarrow filesystem URI such as "
-                                          "s3://bucket/prefix (default: ./<dataset.name>)")
-    p.add_argument("--work-dir", help="with a URI output: the local directory the build runs in before "
-                                      "it is uploaded (default: CACHE/remote/KEY with --cache, else "
-                                      "~/.cache/seqpipe/remote/KEY)")
-    p.add_argument("--workers", type=int, default=None,
-                   help="processes working on tasks, this one included (N-1 are spawned); "
-                        "default: this process alone, one thread per core")
+    p.add_argument(
+        "-o",
+        "--output",
+        help="dataset directory, or a pyarrow filesystem URI such as s3://bucket/prefix (default: ./<dataset.name>)",
+    )
+    p.add_argument(
+        "--work-dir",
+        help="with a URI output: the local directory the build runs in before "
+        "it is uploaded (default: CACHE/remote/KEY with --cache, else "
+        "~/.cache/seqpipe/remote/KEY)",
+    )
+    p.add_argument(
+        "--workers",
+        type=int,
+        default=None,
+        help="processes working on tasks, this one included (N-1 are spawned); "
+        "default: this process alone, one thread per core",
+    )
     p.add_argument("--dask-scheduler", metavar="ADDRESS", help="run tasks on a Dask cluster (seqpipe[dask])")
     p.add_argument("--cache", help="cache directory for ingested parts (default: DIR/.seqpipe/cache)")
     p.add_argument("--force", action="store_true", help="ignore cached parts; rebuild everything")
@@ -276,8 +314,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     except Exception as exc:  # a bug: say so plainly; SEQPIPE_DEBUG=1 shows the traceback
         if os.environ.get("SEQPIPE_DEBUG"):
             raise
-        print(f"seqpipe: internal error: {type(exc).__name__}: {exc} (please report this; "
-              "rerun with SEQPIPE_DEBUG=1 for details)", file=sys.stderr)
+        print(
+            f"seqpipe: internal error: {type(exc).__name__}: {exc} (please report this; "
+            "rerun with SEQPIPE_DEBUG=1 for details)",
+            file=sys.stderr,
+        )
         return EXIT_INTERNAL
 
 

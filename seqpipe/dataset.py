@@ -55,8 +55,9 @@ class Split:
         except (UnicodeDecodeError, pa.ArrowException):
             same = False
         if not same or any(c.null_count for c in table.columns):
-            raise ShardCorruptError(f"{rel}: not a documents table (expected columns start, length, source, hash "
-                                    "without nulls)", path=rel)
+            raise ShardCorruptError(
+                f"{rel}: not a documents table (expected columns start, length, source, hash without nulls)", path=rel
+            )
         if table.num_rows != self.num_documents:
             raise DatasetError(f"{rel}: holds {table.num_rows} documents, manifest says {self.num_documents}")
         return table
@@ -127,8 +128,7 @@ class Dataset:
         return tokenizer.load(self.directory)
 
 
-def open_dataset(directory: str | Path, *, verify_on_open: bool = False,
-                 copy_dir: str | Path | None = None) -> Dataset:
+def open_dataset(directory: str | Path, *, verify_on_open: bool = False, copy_dir: str | Path | None = None) -> Dataset:
     """Open a built dataset. With ``verify_on_open`` every file is hashed first and any
     problem raises :class:`IntegrityError` before a single batch is read.
 

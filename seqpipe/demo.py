@@ -29,39 +29,88 @@ import pyarrow as pa
 from seqpipe.errors import RecipeError
 
 FERRIES: Final = ("Heron Maid", "Lantern Ox", "Pell's Promise", "Tidewren")
-MASTERS: Final = ("Tomás Quill", "Élodie Varsen", "Jürgen Hale", "Maud Ferrant", "Osk Lindqvær",
-                  "Bryn Oakhollow", "Noé Castellane")
-LANDINGS: Final = ("Reedgate Landing", "Mill Quay", "Ashbar Point", "the Salt Steps", "Gullhaven",
-                   "Nørrebank Jetty", "the Eel Market", "Widow's Ford")
+MASTERS: Final = (
+    "Tomás Quill",
+    "Élodie Varsen",
+    "Jürgen Hale",
+    "Maud Ferrant",
+    "Osk Lindqvær",
+    "Bryn Oakhollow",
+    "Noé Castellane",
+)
+LANDINGS: Final = (
+    "Reedgate Landing",
+    "Mill Quay",
+    "Ashbar Point",
+    "the Salt Steps",
+    "Gullhaven",
+    "Nørrebank Jetty",
+    "the Eel Market",
+    "Widow's Ford",
+)
 SEASONS: Final = ("thaw", "high-water", "long-light", "eel-run", "fog", "ice-edge")
 WEATHER: Final = (
-    "wind light from the north-east", "flat calm, mist on the reeds", "rain in squalls",
-    "a stiff westerly, chop at the bar", "fog so thick we rang the bell every minute",
-    "clear and cold", "warm, the river low and slow", "hail for a quarter hour, then sun",
-    "gusts off the marsh, spray over the rail", "drizzle, poor sight of the far bank",
+    "wind light from the north-east",
+    "flat calm, mist on the reeds",
+    "rain in squalls",
+    "a stiff westerly, chop at the bar",
+    "fog so thick we rang the bell every minute",
+    "clear and cold",
+    "warm, the river low and slow",
+    "hail for a quarter hour, then sun",
+    "gusts off the marsh, spray over the rail",
+    "drizzle, poor sight of the far bank",
 )
 CARGO: Final = (
-    "no cargo", "two carts of peat", "a crate of geese", "sacks of barley", "three barrels of pitch",
-    "eel traps for the market", "a piano for the schoolhouse", "bundles of reed thatch",
-    "crates marked 茶 from the Kaiyō barges", "sacks of 米 for the mill", "a goat, unwilling",
-    "the post bag", "timber for the new jetty", "salt in oilcloth", "a cask of cider",
+    "no cargo",
+    "two carts of peat",
+    "a crate of geese",
+    "sacks of barley",
+    "three barrels of pitch",
+    "eel traps for the market",
+    "a piano for the schoolhouse",
+    "bundles of reed thatch",
+    "crates marked 茶 from the Kaiyō barges",
+    "sacks of 米 for the mill",
+    "a goat, unwilling",
+    "the post bag",
+    "timber for the new jetty",
+    "salt in oilcloth",
+    "a cask of cider",
 )
 REMARKS: Final = (
-    "a child asked whether the river has an end", "the miller's wife complained of the fare 😠",
-    "a traveller from upriver sang the whole way across 🎶", "two farmers argued about the price of peat",
-    "a gentleman lost his hat to the wind and laughed about it", "the schoolmaster counted herons aloud",
-    "a woman knitted a whole sleeve in one crossing", "someone left a basket of plums 🍑 on the bench",
-    "a boy caught a fish off the stern 🐟", "an old sailor said the bar has moved since his youth",
-    "a courier slept through the crossing and had to go back", "a dog stood at the bow the whole way 🐕",
+    "a child asked whether the river has an end",
+    "the miller's wife complained of the fare 😠",
+    "a traveller from upriver sang the whole way across 🎶",
+    "two farmers argued about the price of peat",
+    "a gentleman lost his hat to the wind and laughed about it",
+    "the schoolmaster counted herons aloud",
+    "a woman knitted a whole sleeve in one crossing",
+    "someone left a basket of plums 🍑 on the bench",
+    "a boy caught a fish off the stern 🐟",
+    "an old sailor said the bar has moved since his youth",
+    "a courier slept through the crossing and had to go back",
+    "a dog stood at the bow the whole way 🐕",
 )
 REPAIRS: Final = (
-    "tightened the tiller pin", "caulked a seam aft of the mast", "replaced a frayed mooring line",
-    "greased the windlass", "patched the awning", "bailed after the squall and found the leak",
-    "new thole pins cut from ash", "scraped weed from the keel at low water",
-    "fitted a new lamp glass", "the bell clapper fell off again; wired it back",
+    "tightened the tiller pin",
+    "caulked a seam aft of the mast",
+    "replaced a frayed mooring line",
+    "greased the windlass",
+    "patched the awning",
+    "bailed after the squall and found the leak",
+    "new thole pins cut from ash",
+    "scraped weed from the keel at low water",
+    "fitted a new lamp glass",
+    "the bell clapper fell off again; wired it back",
 )
-SIGNOFFS: Final = ("all souls landed safe", "lamps lit, boat made fast", "tide against us, late home",
-                   "nothing further to report", "fare box counted and sealed")
+SIGNOFFS: Final = (
+    "all souls landed safe",
+    "lamps lit, boat made fast",
+    "tide against us, late home",
+    "nothing further to report",
+    "fare box counted and sealed",
+)
 _NEAR_DUPLICATE_EVERY: Final = 40
 _EXACT_DUPLICATE_EVERY: Final = 97
 
@@ -74,14 +123,18 @@ def _decomposed(text: str, rng: random.Random) -> str:
 def _log_entry(rng: random.Random, number: int) -> str:
     ferry = rng.choice(FERRIES)
     master = _decomposed(rng.choice(MASTERS), rng)
-    lines = [f"Logbook of the {ferry}, day {rng.randint(1, 90)} of the {rng.choice(SEASONS)} season "
-             f"(entry {number}), master {master}."]
+    lines = [
+        f"Logbook of the {ferry}, day {rng.randint(1, 90)} of the {rng.choice(SEASONS)} season "
+        f"(entry {number}), master {master}."
+    ]
     minute = rng.randint(5 * 60, 7 * 60)
     here = rng.choice(LANDINGS)
     for _ in range(rng.randint(32, 60)):
         there = rng.choice([x for x in LANDINGS if x != here])
-        lines.append(f"{minute // 60:02d}:{minute % 60:02d} {here} → {there}: {rng.randint(0, 38)} "
-                     f"passengers, {rng.choice(CARGO)}; {rng.choice(WEATHER)}.")
+        lines.append(
+            f"{minute // 60:02d}:{minute % 60:02d} {here} → {there}: {rng.randint(0, 38)} "
+            f"passengers, {rng.choice(CARGO)}; {rng.choice(WEATHER)}."
+        )
         if rng.random() < 0.25:
             lines.append(f"Passenger remark: {rng.choice(REMARKS)}.")
         if rng.random() < 0.08:
@@ -146,8 +199,10 @@ def write_demo_corpus(out_dir: Path, *, documents: int = 600, seed: int = 7) -> 
     with pa.CompressedOutputStream(str(archive), "gzip") as sink:
         sink.write(("\n\n".join(_entries(n_archive, rng, "log")) + "\n").encode("utf-8"))
     written.append(archive)
-    lines = [json.dumps({"text": text, "page": i}, ensure_ascii=False)
-             for i, text in enumerate(_entries(n_jsonl, rng, "remark"))]
+    lines = [
+        json.dumps({"text": text, "page": i}, ensure_ascii=False)
+        for i, text in enumerate(_entries(n_jsonl, rng, "remark"))
+    ]
     written.append(_write(out_dir / "remarks" / "remark-book.jsonl", "\n".join(lines) + "\n"))
     return sorted(written)
 

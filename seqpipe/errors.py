@@ -64,8 +64,7 @@ class RecipeError(SeqpipeError, ValueError):
 class SourceError(SeqpipeError, ValueError):
     """An input file cannot be read as the recipe declares it."""
 
-    def __init__(self, path: str, message: str, *, offset: int | None = None,
-                 line: int | None = None) -> None:
+    def __init__(self, path: str, message: str, *, offset: int | None = None, line: int | None = None) -> None:
         where = path
         if line is not None:
             where += f", line {line}"

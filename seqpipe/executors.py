@@ -63,7 +63,7 @@ def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Exe
     pool = process_pool(n - 1, threads=per_task)
     with worker_environment():
         for _ in range(n - 1):  # start the workers now (a pool spawns one per submit): they import
-            pool.submit(int)    # numpy, pyarrow and seqpipe while this process plans the build
+            pool.submit(int)  # numpy, pyarrow and seqpipe while this process plans the build
     shared = SharedQueueExecutor(pool, n - 1, local=1)
     shared.seqpipe_task_threads = per_task  # type: ignore[attr-defined]  # read by the build
     try:
@@ -76,9 +76,12 @@ def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Exe
 def process_pool(workers: int, threads: int | None = None) -> ProcessPoolExecutor:
     """``workers`` spawned processes; each worker's ingest threads: ``threads``, by default
     cores // workers."""
-    return ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
-                               initializer=start_worker,
-                               initargs=(threads or max(1, default_workers() // workers),))
+    return ProcessPoolExecutor(
+        max_workers=workers,
+        mp_context=multiprocessing.get_context("spawn"),
+        initializer=start_worker,
+        initargs=(threads or max(1, default_workers() // workers),),
+    )
 
 
 # numpy's OpenBLAS starts a thread per core at import, and they spin for about 0.1 s of CPU
@@ -153,9 +156,13 @@ class SharedQueueExecutor(Executor):
         self._queue: deque[_Item | None] = deque()  # None: the stop mark
         self._ready = threading.Condition()
         self._stopped = False
-        self._threads = [threading.Thread(target=self._consume, args=(forward,), daemon=True,
-                                          name=f"seqpipe-{'pool' if forward else 'local'}-{i}")
-                         for forward, count in ((False, local), (True, pool_workers)) for i in range(count)]
+        self._threads = [
+            threading.Thread(
+                target=self._consume, args=(forward,), daemon=True, name=f"seqpipe-{'pool' if forward else 'local'}-{i}"
+            )
+            for forward, count in ((False, local), (True, pool_workers))
+            for i in range(count)
+        ]
         for t in self._threads:
             t.start()
 

@@ -53,21 +53,26 @@ def ingest_threads() -> int:
     if _THREADS:
         return _THREADS[0]
     return max(1, int(os.environ.get("SEQPIPE_INGEST_THREADS", "2")))
+
+
 HASH_TYPE: Final = pa.binary(16)
 
 
 # -- ingest ------------------------------------------------------------------------------------------
 
+
 def part_key(recipe: Recipe, source_index: int, file_hash: str, part: Any) -> str:
     """Fingerprint of everything an ingested part depends on (not vocab, splits or shards)."""
-    return hash_json({
-        "format": PART_FORMAT,
-        "source": to_plain(recipe.sources[source_index]),
-        "file": file_hash,
-        "part": to_plain(part) if hasattr(part, "__dataclass_fields__") else repr(part),
-        "clean": [to_plain(s) for s in recipe.clean],
-        "tokenizer": to_plain(recipe.tokenizer),
-    })
+    return hash_json(
+        {
+            "format": PART_FORMAT,
+            "source": to_plain(recipe.sources[source_index]),
+            "file": file_hash,
+            "part": to_plain(part) if hasattr(part, "__dataclass_fields__") else repr(part),
+            "clean": [to_plain(s) for s in recipe.clean],
+            "tokenizer": to_plain(recipe.tokenizer),
+        }
+    )
 
 
 @dataclass(frozen=True)
@@ -104,7 +109,7 @@ class PartMeta:
 def _doc_hashes(docs: pa.Array) -> np.ndarray:
     """XXH3-128 of each document's UTF-8 bytes, as an (n, 16) uint8 array (one C call per doc)."""
     arr = docs.cast(pa.large_string())
-    offsets = np.frombuffer(arr.buffers()[1], dtype=np.int64)[arr.offset: arr.offset + len(arr) + 1]
+    offsets = np.frombuffer(arr.buffers()[1], dtype=np.int64)[arr.offset : arr.offset + len(arr) + 1]
     data = arr.buffers()[2]
     view = memoryview(data) if data is not None else memoryview(b"")
     digest = xxhash.xxh3_128_digest
@@ -150,7 +155,7 @@ def _merge_segments(parts: Sequence[Segments]) -> Segments:
     codes = np.empty(sum(len(p.codes) for p in parts), dtype=np.int32)
     key_at = pos = 0
     for p in parts:  # batch-local code -> global code, written straight into the output
-        np.take(remap[key_at:key_at + len(p.keys)], p.codes, out=codes[pos:pos + len(p.codes)], mode="clip")
+        np.take(remap[key_at : key_at + len(p.keys)], p.codes, out=codes[pos : pos + len(p.codes)], mode="clip")
         key_at += len(p.keys)
         pos += len(p.codes)
     lengths = np.concatenate([p.doc_lengths for p in parts])
@@ -252,9 +257,16 @@ def ingest_part(task: IngestTask) -> PartMeta:
     }
     if any(getattr(s, "is_dedupe", False) for s in recipe.clean):
         table["dedupe"] = pa.FixedSizeBinaryArray.from_buffers(
-            HASH_TYPE, n, [None, pa.py_buffer(col("dedupe", 16).tobytes())])
-    meta = PartMeta(key=task.key, input_index=task.input_index, documents=n, pieces=len(seg.codes),
-                    read={k: int(v) for k, v in asdict(stats).items()}, dropped=dropped)
+            HASH_TYPE, n, [None, pa.py_buffer(col("dedupe", 16).tobytes())]
+        )
+    meta = PartMeta(
+        key=task.key,
+        input_index=task.input_index,
+        documents=n,
+        pieces=len(seg.codes),
+        read={k: int(v) for k, v in asdict(stats).items()},
+        dropped=dropped,
+    )
     final = _part_dir(task.cache_dir, task.key)
     tmp = final.with_name(f".{task.key}.{os.getpid()}.{uuid.uuid4().hex[:8]}.tmp")
     tmp.mkdir(parents=True)
@@ -295,13 +307,14 @@ def _piece_mask(pieces: np.ndarray, doc_mask: np.ndarray) -> np.ndarray:
 
 # -- splits ----------------------------------------------------------------------------------------
 
+
 def fixed16(table: pa.Table, name: str) -> np.ndarray:
     """A fixed_size_binary(16) column as an (n, 16) uint8 view."""
     col = table.column(name).combine_chunks()
     buf = col.buffers()[1]
     if buf is None or len(col) == 0:
         return np.zeros((0, 16), np.uint8)
-    return np.frombuffer(buf, dtype=np.uint8)[col.offset * 16:(col.offset + len(col)) * 16].reshape(-1, 16)
+    return np.frombuffer(buf, dtype=np.uint8)[col.offset * 16 : (col.offset + len(col)) * 16].reshape(-1, 16)
 
 
 def split_of(hashes: np.ndarray, fractions: Sequence[float], seed: int) -> np.ndarray:
@@ -327,6 +340,7 @@ def _splits(recipe: Recipe, hashes: np.ndarray, keep: np.ndarray | None) -> np.n
 
 # -- counting ----------------------------------------------------------------------------------------
 
+
 @dataclass(frozen=True)
 class CountTask:
     cache_dir: str
@@ -343,12 +357,20 @@ def count_part(task: CountTask) -> tuple[pa.Table, int]:
     docs = read_table(d / "docs.arrow")
     keys = read_table(d / "keys.arrow").column("key").combine_chunks()
     codes = read_table(d / "codes.arrow").column("code").to_numpy()
-    return _count(task.recipe, fixed16(docs, "hash"), docs.column("pieces").to_numpy(), keys, codes,
-                  task.keep, task.order)
+    return _count(
+        task.recipe, fixed16(docs, "hash"), docs.column("pieces").to_numpy(), keys, codes, task.keep, task.order
+    )
 
 
-def _count(recipe: Recipe, hashes: np.ndarray, pieces: np.ndarray, keys: pa.Array, codes: np.ndarray,
-           keep: np.ndarray | None, order: int) -> tuple[pa.Table, int]:
+def _count(
+    recipe: Recipe,
+    hashes: np.ndarray,
+    pieces: np.ndarray,
+    keys: pa.Array,
+    codes: np.ndarray,
+    keep: np.ndarray | None,
+    order: int,
+) -> tuple[pa.Table, int]:
     """count_part's result from a part's arrays (document hashes, pieces per document, distinct
     keys, one code per piece)."""
     train = _splits(recipe, hashes, keep) == 0
@@ -359,15 +381,18 @@ def _count(recipe: Recipe, hashes: np.ndarray, pieces: np.ndarray, keys: pa.Arra
     seen_order = pc.unique(pa.array(sel, pa.int32())).to_numpy(zero_copy_only=False)
     first = np.zeros(len(keys), np.int64)
     first[seen_order] = np.arange(len(seen_order), dtype=np.int64)
-    table = pa.table({
-        "key": keys.take(pa.array(present)),
-        "count": pa.array(counts[present], pa.int64()),
-        "first": pa.array((np.int64(order) << 40) + first[present], pa.int64()),
-    })
+    table = pa.table(
+        {
+            "key": keys.take(pa.array(present)),
+            "count": pa.array(counts[present], pa.int64()),
+            "first": pa.array((np.int64(order) << 40) + first[present], pa.int64()),
+        }
+    )
     return table, int(train.sum())
 
 
 # -- encoding ----------------------------------------------------------------------------------------
+
 
 @dataclass(frozen=True)
 class EncodeTask:
@@ -432,14 +457,24 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
         lengths = lengths + (begin is not None) + (end is not None)
         unknown = int(np.count_nonzero(ids == unk)) if unk is not None else 0
         write_shard(encoded_path(task.stage_dir, task.number, split), ids.astype(task.dtype), durable=False)
-        write_table(fragment_path(task.stage_dir, task.number, split), durable=False, table=pa.table({
-            "length": pa.array(lengths, pa.int64()),
-            "source": pa.array(np.full(len(lengths), task.input_index, np.int32)),
-            "hash": hashes.filter(pa.array(dmask)),
-        }))
-        out[split] = {"tokens": int(lengths.sum()), "documents": int(dmask.sum()), "unknown": unknown,
-                      "bytes": int(docs.column("bytes").to_numpy()[dmask].sum()),
-                      "words": int(docs.column("words").to_numpy()[dmask].sum())}
+        write_table(
+            fragment_path(task.stage_dir, task.number, split),
+            durable=False,
+            table=pa.table(
+                {
+                    "length": pa.array(lengths, pa.int64()),
+                    "source": pa.array(np.full(len(lengths), task.input_index, np.int32)),
+                    "hash": hashes.filter(pa.array(dmask)),
+                }
+            ),
+        )
+        out[split] = {
+            "tokens": int(lengths.sum()),
+            "documents": int(dmask.sum()),
+            "unknown": unknown,
+            "bytes": int(docs.column("bytes").to_numpy()[dmask].sum()),
+            "words": int(docs.column("words").to_numpy()[dmask].sum()),
+        }
     return out
 
 
@@ -466,6 +501,7 @@ def _add_markers(ids: np.ndarray, lengths: np.ndarray, begin: int | None, end: i
 
 # -- shards ------------------------------------------------------------------------------------------
 
+
 @dataclass(frozen=True)
 class ShardTask:
     path: str
@@ -487,13 +523,23 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
             old = read_shard(target, dtype=np.dtype(task.dtype), expected_tokens=len(ids))
             compressed = _is_compressed(target)
             if hash_array(old) == want and compressed == (task.compression is not None):
-                return {"bytes": target.stat().st_size, "token_hash": want, "file_hash": hash_file(target),
-                        "tokens": len(ids), "reused": True}
+                return {
+                    "bytes": target.stat().st_size,
+                    "token_hash": want,
+                    "file_hash": hash_file(target),
+                    "tokens": len(ids),
+                    "reused": True,
+                }
         except SeqpipeError:
             pass
     size, token_hash = write_shard(target, ids, compression=task.compression)
-    return {"bytes": size, "token_hash": token_hash, "file_hash": hash_file(target), "tokens": len(ids),
-            "reused": False}
+    return {
+        "bytes": size,
+        "token_hash": token_hash,
+        "file_hash": hash_file(target),
+        "tokens": len(ids),
+        "reused": False,
+    }
 
 
 def _is_compressed(path: Path) -> bool:

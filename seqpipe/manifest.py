@@ -35,8 +35,20 @@ MAX_MANIFEST_BYTES: Final = 64 << 20
 MAX_DEPTH: Final = 32
 HEX32: Final = frozenset("0123456789abcdef")
 DTYPES: Final = ("uint8", "uint16", "uint32", "uint64")
-TOP_KEYS: Final = ("format", "seqpipe_version", "recipe", "recipe_fingerprint", "inputs", "tokenizer",
-                   "vocabulary", "dtype", "splits", "summary", "dataset_fingerprint", "manifest_hash")
+TOP_KEYS: Final = (
+    "format",
+    "seqpipe_version",
+    "recipe",
+    "recipe_fingerprint",
+    "inputs",
+    "tokenizer",
+    "vocabulary",
+    "dtype",
+    "splits",
+    "summary",
+    "dataset_fingerprint",
+    "manifest_hash",
+)
 
 
 def seal(body: dict[str, Any]) -> dict[str, Any]:
@@ -147,8 +159,11 @@ def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
     if not isinstance(manifest, dict):
         raise c.fail("(top)", "expected a JSON object")
     if manifest.get("format") != FORMAT:
-        raise c.fail("format", f"this seqpipe reads {FORMAT!r}, got {manifest.get('format')!r}; "
-                               "rebuild the dataset with this version or use the seqpipe that wrote it")
+        raise c.fail(
+            "format",
+            f"this seqpipe reads {FORMAT!r}, got {manifest.get('format')!r}; "
+            "rebuild the dataset with this version or use the seqpipe that wrote it",
+        )
     m = c.obj(manifest, "(top)", TOP_KEYS)
     if _depth(m) > MAX_DEPTH:
         raise c.fail("(top)", f"nested deeper than {MAX_DEPTH} levels")
@@ -211,15 +226,20 @@ def read_manifest(directory: Path) -> dict[str, Any]:
     """Read, size-limit, parse and validate ``directory/manifest.json``."""
     path = directory / MANIFEST_NAME
     if not directory.is_dir():
-        raise ManifestError(f"{directory}: not a directory (expected a dataset written by 'seqpipe build')",
-                            path=str(directory))
+        raise ManifestError(
+            f"{directory}: not a directory (expected a dataset written by 'seqpipe build')", path=str(directory)
+        )
     if not path.is_file():
-        raise ManifestError(f"{path}: no manifest; this is not a complete seqpipe dataset "
-                            "(an interrupted build leaves none: run the build again)", path=str(path))
+        raise ManifestError(
+            f"{path}: no manifest; this is not a complete seqpipe dataset "
+            "(an interrupted build leaves none: run the build again)",
+            path=str(path),
+        )
     size = path.stat().st_size
     if size > MAX_MANIFEST_BYTES:
-        raise ManifestError(f"{path}: manifest is {size} bytes, over the {MAX_MANIFEST_BYTES}-byte limit",
-                            path=str(path))
+        raise ManifestError(
+            f"{path}: manifest is {size} bytes, over the {MAX_MANIFEST_BYTES}-byte limit", path=str(path)
+        )
     return parse_manifest(path.read_bytes(), str(path))
 
 

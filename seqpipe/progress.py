@@ -17,5 +17,6 @@ def bar(total: int | float | None, desc: str, *, unit: str = "it", show: bool = 
     """A tqdm bar, disabled unless ``show``."""
     from tqdm import tqdm
 
-    return tqdm(total=total, desc=desc, unit=unit, disable=not show, leave=False, dynamic_ncols=True,
-                file=sys.stderr, **kw)
+    return tqdm(
+        total=total, desc=desc, unit=unit, disable=not show, leave=False, dynamic_ncols=True, file=sys.stderr, **kw
+    )

@@ -124,8 +124,9 @@ class Recipe:
             # the tokenizer matches literal specials by name; the names live in [vocab]
             import dataclasses
 
-            object.__setattr__(self, "tokenizer",
-                               dataclasses.replace(self.tokenizer, special_names=self.vocab.specials))  # type: ignore[type-var]
+            object.__setattr__(
+                self, "tokenizer", dataclasses.replace(self.tokenizer, special_names=self.vocab.specials)
+            )  # type: ignore[type-var]
         dedupes = [i for i, s in enumerate(self.clean) if getattr(s, "is_dedupe", False)]
         if len(dedupes) > 1:
             raise RecipeError(f"clean[{dedupes[1]}]", "only one dedupe step is allowed")

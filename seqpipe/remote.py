@@ -29,8 +29,8 @@ from seqpipe._hashing import BLOCK, hash_bytes, hash_file
 from seqpipe.errors import DatasetError, ManifestError, RecipeError, SourceMissingError, UnsafePathError
 from seqpipe.manifest import MANIFEST_NAME, MAX_MANIFEST_BYTES, check_relative, parse_manifest
 from seqpipe.progress import bar
-from seqpipe.staging import OPTIONAL_TOP
 from seqpipe.sources import _fs
+from seqpipe.staging import OPTIONAL_TOP
 from seqpipe.verify import Problem, check_local_file, listed_files
 
 if TYPE_CHECKING:
@@ -58,7 +58,7 @@ class RemoteDir:
     def relative(self, inner: str) -> str | None:
         """``inner`` relative to the dataset directory, or None when it lies elsewhere."""
         prefix = _fs._prefix(self.root)
-        return inner[len(prefix):] if inner.startswith(prefix) else None
+        return inner[len(prefix) :] if inner.startswith(prefix) else None
 
 
 @dataclass(frozen=True, slots=True)
@@ -125,8 +125,7 @@ def _is_file(info: pafs.FileInfo) -> bool:
 
 def _files_under(remote: RemoteDir, rel: str) -> list[str]:
     """Every file below ``rel`` (recursively), relative to the dataset directory, sorted."""
-    selector = _fs._pafs().FileSelector(remote.inner(rel) if rel else remote.root, recursive=True,
-                                        allow_not_found=True)
+    selector = _fs._pafs().FileSelector(remote.inner(rel) if rel else remote.root, recursive=True, allow_not_found=True)
     try:
         infos = remote.filesystem.get_file_info(selector)
     except (OSError, pa.ArrowException) as exc:
@@ -140,8 +139,10 @@ def _upload(remote: RemoteDir, local: Path, rel: str) -> None:
     buf = bytearray(BLOCK)
     view = memoryview(buf)
     try:
-        with open(local, "rb", buffering=0) as src, \
-                remote.filesystem.open_output_stream(remote.inner(rel), compression=None) as sink:
+        with (
+            open(local, "rb", buffering=0) as src,
+            remote.filesystem.open_output_stream(remote.inner(rel), compression=None) as sink,
+        ):
             while n := src.readinto(buf):
                 sink.write(view[:n])
     except (OSError, pa.ArrowException) as exc:
@@ -152,8 +153,9 @@ def _check_size(remote: RemoteDir, rel: str, size: int) -> None:
     info = _info(remote, rel)
     if not _is_file(info) or info.size != size:
         got = info.size if _is_file(info) else info.type.name.lower()
-        raise DatasetError(f"{remote.child(rel)}: uploaded {size} bytes, the filesystem reports {got}",
-                           path=remote.child(rel))
+        raise DatasetError(
+            f"{remote.child(rel)}: uploaded {size} bytes, the filesystem reports {got}", path=remote.child(rel)
+        )
 
 
 def _read(remote: RemoteDir, rel: str, limit: int) -> bytes | None:
@@ -162,8 +164,9 @@ def _read(remote: RemoteDir, rel: str, limit: int) -> bytes | None:
     if not _is_file(info):
         return None
     if info.size is not None and info.size > limit:
-        raise ManifestError(f"{remote.child(rel)}: manifest is {info.size} bytes, over the {limit}-byte limit",
-                            path=remote.child(rel))
+        raise ManifestError(
+            f"{remote.child(rel)}: manifest is {info.size} bytes, over the {limit}-byte limit", path=remote.child(rel)
+        )
     try:
         with remote.filesystem.open_input_stream(remote.inner(rel), compression=None) as stream:
             raw: bytes = stream.read(limit + 1)
@@ -200,8 +203,9 @@ def publish_remote(local: Path, remote: RemoteDir, manifest: dict[str, Any], *, 
                 remote.filesystem.create_dir(remote.inner(parent), recursive=True)
         except (OSError, pa.ArrowException) as exc:
             raise _fail(remote, "", "cannot create directories", exc) from exc
-        with bar(sum(e["bytes"] for e in todo), "publishing", unit="B", show=show and bool(todo),
-                 unit_scale=True) as pbar:
+        with bar(
+            sum(e["bytes"] for e in todo), "publishing", unit="B", show=show and bool(todo), unit_scale=True
+        ) as pbar:
             for e in todo:
                 _upload(remote, local / e["path"], e["path"])
                 _check_size(remote, e["path"], e["bytes"])
@@ -224,13 +228,17 @@ def publish_remote(local: Path, remote: RemoteDir, manifest: dict[str, Any], *, 
 
 # -- verification ------------------------------------------------------------------------------
 
+
 def read_remote_manifest(remote: RemoteDir) -> tuple[bytes, dict[str, Any]]:
     """The manifest's bytes and its parsed, validated content."""
     raw = _read(remote, MANIFEST_NAME, MAX_MANIFEST_BYTES)
     where = remote.child(MANIFEST_NAME)
     if raw is None:
-        raise ManifestError(f"{where}: no manifest; this is not a complete seqpipe dataset (an interrupted "
-                            "build or publish leaves none: run it again)", path=where)
+        raise ManifestError(
+            f"{where}: no manifest; this is not a complete seqpipe dataset (an interrupted "
+            "build or publish leaves none: run it again)",
+            path=where,
+        )
     return raw, parse_manifest(raw, where)
 
 
@@ -274,13 +282,13 @@ def remote_unlisted(remote: RemoteDir, listed: set[str], top_level_ok: set[str])
 
 # -- reading: a local copy to train from -----------------------------------------------------------
 
+
 def _download(remote: RemoteDir, rel: str, dest: Path) -> None:
     """Copy ``rel`` to the local file ``dest`` through a temporary name (never a torn file)."""
     dest.parent.mkdir(parents=True, exist_ok=True)
     tmp = dest.with_name(f".{dest.name}.{os.getpid()}.tmp")
     try:
-        with remote.filesystem.open_input_stream(remote.inner(rel), compression=None) as src, \
-                open(tmp, "wb") as sink:
+        with remote.filesystem.open_input_stream(remote.inner(rel), compression=None) as src, open(tmp, "wb") as sink:
             while chunk := src.read(BLOCK):
                 sink.write(chunk)
         os.replace(tmp, dest)
@@ -307,21 +315,29 @@ def fetch_remote(remote: RemoteDir, local: Path, *, show: bool = False) -> Publi
     mine = local / MANIFEST_NAME
     todo = [e for e in entries if check_local_file(local, e)[1] is not None]  # not in the copy as listed
     listed = {e["path"] for e in entries}
-    stale = [p for d in DATA_DIRS if (local / d).is_dir() for p in sorted((local / d).rglob("*"))
-             if p.is_file() and p.relative_to(local).as_posix() not in listed]
+    stale = [
+        p
+        for d in DATA_DIRS
+        if (local / d).is_dir()
+        for p in sorted((local / d).rglob("*"))
+        if p.is_file() and p.relative_to(local).as_posix() not in listed
+    ]
     stale += [local / name for name in OPTIONAL_TOP if name not in listed and (local / name).is_file()]
     if todo or stale or not (mine.is_file() and mine.read_bytes() == raw):
         mine.unlink(missing_ok=True)
-        with bar(sum(e["bytes"] for e in todo), "fetching", unit="B", show=show and bool(todo),
-                 unit_scale=True) as pbar:
+        with bar(
+            sum(e["bytes"] for e in todo), "fetching", unit="B", show=show and bool(todo), unit_scale=True
+        ) as pbar:
             for e in todo:
                 dest = local / e["path"]
                 _download(remote, e["path"], dest)
                 if check_local_file(local, e)[1] is not None:
                     dest.unlink(missing_ok=True)
-                    raise DatasetError(f"{remote.child(e['path'])}: downloaded bytes differ from the manifest's "
-                                       "size and hash (seqpipe verify on the URI shows what is wrong)",
-                                       path=remote.child(e["path"]))
+                    raise DatasetError(
+                        f"{remote.child(e['path'])}: downloaded bytes differ from the manifest's "
+                        "size and hash (seqpipe verify on the URI shows what is wrong)",
+                        path=remote.child(e["path"]),
+                    )
                 pbar.update(e["bytes"])
         for p in stale:
             p.unlink()

@@ -77,8 +77,11 @@ def _atomic(path: Path, durable: bool = True) -> Iterator[Path]:
 def write_table(path: Path, table: pa.Table, *, compression: str | None = None, durable: bool = True) -> int:
     """Write ``table`` as an Arrow IPC file atomically; return its size in bytes."""
     options = pa.ipc.IpcWriteOptions(compression=compression)
-    with _atomic(path, durable) as tmp, pa.OSFile(str(tmp), "wb") as sink, \
-            pa.ipc.new_file(sink, table.schema, options=options) as writer:
+    with (
+        _atomic(path, durable) as tmp,
+        pa.OSFile(str(tmp), "wb") as sink,
+        pa.ipc.new_file(sink, table.schema, options=options) as writer,
+    ):
         writer.write_table(table, max_chunksize=max(table.num_rows, 1))
     return path.stat().st_size
 
@@ -105,17 +108,24 @@ def read_table(path: Path, *, memory_map: bool = True) -> pa.Table:
         reader = pa.ipc.open_file(source)
         return reader.read_all()
     except (pa.ArrowException, OSError, ValueError) as exc:
-        raise ShardCorruptError(f"{path}: not a readable Arrow IPC file ({exc}); "
-                                "run 'seqpipe verify' on the dataset, then rebuild it", path=str(path)) from exc
+        raise ShardCorruptError(
+            f"{path}: not a readable Arrow IPC file ({exc}); run 'seqpipe verify' on the dataset, then rebuild it",
+            path=str(path),
+        ) from exc
 
 
-def write_shard(path: Path, ids: np.ndarray, *, compression: str | None = None,
-                durable: bool = True) -> tuple[int, str]:
+def write_shard(
+    path: Path, ids: np.ndarray, *, compression: str | None = None, durable: bool = True
+) -> tuple[int, str]:
     """Write a token shard; return (file size, XXH3-128 of the ids' little-endian bytes)."""
     arr = pa.array(np.ascontiguousarray(ids))
     table = pa.table({"ids": arr}).replace_schema_metadata(
-        {b"seqpipe.table": b"shard", b"seqpipe.format": SHARD_FORMAT.encode(),
-         b"seqpipe.compression": (compression or "none").encode()})
+        {
+            b"seqpipe.table": b"shard",
+            b"seqpipe.format": SHARD_FORMAT.encode(),
+            b"seqpipe.compression": (compression or "none").encode(),
+        }
+    )
     size = write_table(path, table, compression=compression, durable=durable)
     return size, hash_array(ids)
 
@@ -137,8 +147,7 @@ def read_shard(path: Path, *, dtype: np.dtype | None = None, expected_tokens: in
     if dtype is not None and col.type != pa.from_numpy_dtype(dtype):
         raise ShardCorruptError(f"{path}: ids have type {col.type}, manifest says {dtype}", path=str(path))
     if expected_tokens is not None and len(col) != expected_tokens:
-        raise ShardCorruptError(f"{path}: holds {len(col)} tokens, manifest says {expected_tokens}",
-                                path=str(path))
+        raise ShardCorruptError(f"{path}: holds {len(col)} tokens, manifest says {expected_tokens}", path=str(path))
     if col.num_chunks == 1:
         chunk = col.chunk(0)
         if chunk.null_count:

@@ -74,7 +74,9 @@ def build_lock(out: Path) -> Iterator[Path]:
                 continue
             raise BuildLockedError(
                 f"{out}: another build is running (lock {lock} held by pid {pid} on {host}); "
-                "wait for it, or delete the lock file if that process is gone", path=str(lock)) from None
+                "wait for it, or delete the lock file if that process is gone",
+                path=str(lock),
+            ) from None
         tmp.unlink(missing_ok=True)
         fsync_dir(priv)
         break

@@ -40,21 +40,30 @@ class TokenStream:
 
     __slots__ = ("_chunks", "_doc_starts", "_dtype", "_offsets", "_views")
 
-    def __init__(self, chunks: Sequence[np.ndarray], doc_starts: np.ndarray | None = None,
-                 *, dtype: np.dtype[Any] | type | None = None) -> None:
+    def __init__(
+        self,
+        chunks: Sequence[np.ndarray],
+        doc_starts: np.ndarray | None = None,
+        *,
+        dtype: np.dtype[Any] | type | None = None,
+    ) -> None:
         arrays = list(chunks)
         for i, chunk in enumerate(arrays):
             if not isinstance(chunk, np.ndarray) or chunk.ndim != 1:
-                raise StreamError(f"chunks[{i}]: expected a 1-D numpy array, got {type(chunk).__name__}"
-                                  + (f" of shape {chunk.shape}" if isinstance(chunk, np.ndarray) else ""))
+                raise StreamError(
+                    f"chunks[{i}]: expected a 1-D numpy array, got {type(chunk).__name__}"
+                    + (f" of shape {chunk.shape}" if isinstance(chunk, np.ndarray) else "")
+                )
             if not np.issubdtype(chunk.dtype, np.integer):
                 raise StreamError(f"chunks[{i}]: expected integer token ids, got dtype {chunk.dtype}")
         if arrays:
             first = arrays[0].dtype
             for i, chunk in enumerate(arrays):
                 if chunk.dtype != first:
-                    raise StreamError(f"chunks[{i}]: dtype {chunk.dtype} differs from chunks[0] ({first}); "
-                                      "every shard of a split must use one id type")
+                    raise StreamError(
+                        f"chunks[{i}]: dtype {chunk.dtype} differs from chunks[0] ({first}); "
+                        "every shard of a split must use one id type"
+                    )
             self._dtype: np.dtype[Any] = first
         else:
             self._dtype = np.dtype(np.int64 if dtype is None else dtype)
@@ -68,8 +77,10 @@ class TokenStream:
             starts = _as_offsets(doc_starts, "doc_starts")
             if starts.size:
                 if starts[0] < 0 or starts[-1] > len(self):
-                    raise StreamError(f"doc_starts: offsets must lie in [0, {len(self)}], got "
-                                      f"{int(starts.min())}..{int(starts.max())}")
+                    raise StreamError(
+                        f"doc_starts: offsets must lie in [0, {len(self)}], got "
+                        f"{int(starts.min())}..{int(starts.max())}"
+                    )
                 if np.any(starts[1:] < starts[:-1]):
                     raise StreamError("doc_starts: offsets must be sorted ascending")
             self._doc_starts = starts
@@ -138,8 +149,7 @@ class TokenStream:
                 # the ndarray constructor is ~30x cheaper than sliding_window_view, which matters
                 # when the first batch of a split touches every shard
                 step = chunk.itemsize
-                view = np.ndarray((len(chunk) - length + 1, length), chunk.dtype, buffer=chunk,
-                                  strides=(step, step))
+                view = np.ndarray((len(chunk) - length + 1, length), chunk.dtype, buffer=chunk, strides=(step, step))
                 view.flags.writeable = False
             else:
                 view = sliding_window_view(chunk, length)
@@ -154,7 +164,7 @@ class TokenStream:
             local = pos - int(self._offsets[c])
             take = min(need - filled, len(self._chunks[c]) - local)
             if take > 0:
-                out[filled:filled + take] = self._chunks[c][local:local + take]
+                out[filled : filled + take] = self._chunks[c][local : local + take]
                 filled += take
                 pos += take
             c += 1
@@ -192,13 +202,16 @@ class TokenStream:
         local = (s - offsets[first])[order]
         # edges[i]:edges[i+1] are the sorted rows of chunk c_lo + i; rows past edges[-1] cross chunks
         edges = np.searchsorted(key[order], np.arange(c_lo, c_hi + 2)).tolist()
-        parts = [self._window_view(c_lo + i, length)[local[edges[i]:edges[i + 1]]]  # one gather per chunk
-                 for i in range(len(edges) - 1) if edges[i + 1] > edges[i]]
+        parts = [
+            self._window_view(c_lo + i, length)[local[edges[i] : edges[i + 1]]]  # one gather per chunk
+            for i in range(len(edges) - 1)
+            if edges[i + 1] > edges[i]
+        ]
         out = np.empty((n, length), dtype=dtype)
         if parts:
             # one scatter (and cast) for all chunks: cheaper than one per chunk at a dozen shards
-            out[order[:edges[-1]]] = parts[0] if len(parts) == 1 else np.concatenate(parts)
-        for r in order[edges[-1]:].tolist():  # only rows that span chunks
+            out[order[: edges[-1]]] = parts[0] if len(parts) == 1 else np.concatenate(parts)
+        for r in order[edges[-1] :].tolist():  # only rows that span chunks
             self._fill(int(s[r]), out[r])
         return out
 

@@ -73,21 +73,41 @@ class TorchBatches(IterableDataset[Any]):
         factory = functools.partial(_split_stream, str(directory), split)
         return cls(factory, stream_key=f"{ds.fingerprint}:{split}", **kwargs)
 
-    def __init__(self, source: StreamSource, *, batch_size: int, steps: int, order: str = "random",
-                 seed: int = 0, epoch: int = 0, rank: int | None = None, world_size: int | None = None,
-                 drop_last: bool = True, dtype: Any = np.int64, boundaries: bool = False,
-                 stream_key: str = "", start_step: int = 0, as_tuple: bool = False) -> None:
+    def __init__(
+        self,
+        source: StreamSource,
+        *,
+        batch_size: int,
+        steps: int,
+        order: str = "random",
+        seed: int = 0,
+        epoch: int = 0,
+        rank: int | None = None,
+        world_size: int | None = None,
+        drop_last: bool = True,
+        dtype: Any = np.int64,
+        boundaries: bool = False,
+        stream_key: str = "",
+        start_step: int = 0,
+        as_tuple: bool = False,
+    ) -> None:
         super().__init__()
         if not isinstance(source, TokenStream) and not callable(source):
-            raise StreamError(f"source: expected a TokenStream or a factory returning one, "
-                              f"got {type(source).__name__}")
+            raise StreamError(f"source: expected a TokenStream or a factory returning one, got {type(source).__name__}")
         auto_rank, auto_world = default_rank_world() if rank is None or world_size is None else (0, 1)
         self._source = source
         self._settings: dict[str, Any] = {
-            "batch_size": batch_size, "steps": steps, "order": order, "seed": seed, "epoch": epoch,
+            "batch_size": batch_size,
+            "steps": steps,
+            "order": order,
+            "seed": seed,
+            "epoch": epoch,
             "rank": auto_rank if rank is None else rank,
             "world_size": auto_world if world_size is None else world_size,
-            "drop_last": drop_last, "dtype": dtype, "boundaries": boundaries, "stream_key": stream_key,
+            "drop_last": drop_last,
+            "dtype": dtype,
+            "boundaries": boundaries,
+            "stream_key": stream_key,
             "start_step": start_step,
         }
         self.as_tuple = bool(as_tuple)
@@ -162,8 +182,14 @@ class TorchBatches(IterableDataset[Any]):
         inputs, targets = torch.from_numpy(batch.inputs), torch.from_numpy(batch.targets)
         if self.as_tuple:
             return inputs, targets
-        out: dict[str, Any] = {"inputs": inputs, "targets": targets, "starts": torch.from_numpy(batch.starts),
-                               "step": batch.step, "epoch": batch.epoch, "fresh": batch.fresh}
+        out: dict[str, Any] = {
+            "inputs": inputs,
+            "targets": targets,
+            "starts": torch.from_numpy(batch.starts),
+            "step": batch.step,
+            "epoch": batch.epoch,
+            "fresh": batch.fresh,
+        }
         if batch.mask is not None:
             out["mask"] = torch.from_numpy(batch.mask)
         return out

@@ -49,15 +49,25 @@ class VerifyReport:
         return not self.problems
 
     def to_dict(self) -> dict[str, Any]:
-        return {"directory": self.directory, "ok": self.ok, "fingerprint": self.fingerprint,
-                "files_checked": self.files_checked, "bytes_checked": self.bytes_checked,
-                "problems": [asdict(p) for p in self.problems]}
+        return {
+            "directory": self.directory,
+            "ok": self.ok,
+            "fingerprint": self.fingerprint,
+            "files_checked": self.files_checked,
+            "bytes_checked": self.bytes_checked,
+            "problems": [asdict(p) for p in self.problems],
+        }
 
 
 def listed_files(manifest: dict[str, Any]) -> list[dict[str, Any]]:
     """Every file the manifest lists, as {path, bytes, hash}."""
-    out = [{"path": manifest["vocabulary"]["path"], "bytes": manifest["vocabulary"]["bytes"],
-            "hash": manifest["vocabulary"]["hash"]}]
+    out = [
+        {
+            "path": manifest["vocabulary"]["path"],
+            "bytes": manifest["vocabulary"]["bytes"],
+            "hash": manifest["vocabulary"]["hash"],
+        }
+    ]
     out += [dict(f) for f in manifest["tokenizer"]["files"]]
     for sp in manifest["splits"].values():
         out.append(dict(sp["docs"]))
@@ -100,8 +110,9 @@ def _unlisted(directory: Path, manifest: dict[str, Any], listed: set[str]) -> li
             for name in sorted(filenames):
                 rel = Path(dirpath, name).relative_to(directory).as_posix()
                 if rel not in listed:
-                    problems.append(Problem(rel, "unlisted", "file in a dataset folder that the manifest "
-                                                             "does not list"))
+                    problems.append(
+                        Problem(rel, "unlisted", "file in a dataset folder that the manifest does not list")
+                    )
     return problems
 
 
@@ -117,8 +128,9 @@ def _compare(manifest: dict[str, Any], committed: dict[str, Any]) -> list[Proble
         if manifest[key] != committed[key]:
             problems.append(Problem(MANIFEST_NAME, "mismatch", f"{key} {manifest[key]}, committed {committed[key]}"))
     if manifest["vocabulary"]["hash"] != committed["vocabulary"]["hash"]:
-        problems.append(Problem(manifest["vocabulary"]["path"], "mismatch",
-                                "vocabulary differs from the committed one"))
+        problems.append(
+            Problem(manifest["vocabulary"]["path"], "mismatch", "vocabulary differs from the committed one")
+        )
     mine = {f["path"]: f["hash"] for f in listed_files(manifest)}
     theirs = {f["path"]: f["hash"] for f in listed_files(committed)}
     for path in sorted(set(mine) | set(theirs)):
@@ -131,8 +143,9 @@ def _compare(manifest: dict[str, Any], committed: dict[str, Any]) -> list[Proble
     return problems
 
 
-def verify(directory: str | Path, *, against: str | Path | None = None, expect: str | None = None,
-           threads: int | None = None) -> VerifyReport:
+def verify(
+    directory: str | Path, *, against: str | Path | None = None, expect: str | None = None, threads: int | None = None
+) -> VerifyReport:
     """Recompute every hash of a dataset and report each problem found (never raises for them).
 
     ``directory`` may be a filesystem URI (see :mod:`seqpipe.remote`): its files are streamed
@@ -164,8 +177,11 @@ def verify(directory: str | Path, *, against: str | Path | None = None, expect: 
         return report
     report.fingerprint = manifest["dataset_fingerprint"]
     if raw != dumps(manifest).encode("ascii"):
-        report.problems.append(Problem(MANIFEST_NAME, "manifest", "its bytes differ from the form seqpipe writes "
-                                                                  "(same content, edited layout)"))
+        report.problems.append(
+            Problem(
+                MANIFEST_NAME, "manifest", "its bytes differ from the form seqpipe writes (same content, edited layout)"
+            )
+        )
     entries = listed_files(manifest)
     # a local file is hashed from its memory map, which is CPU work: one thread per core; a
     # URI's reads wait on the network, so more threads keep more requests in flight
@@ -191,6 +207,9 @@ def verify(directory: str | Path, *, against: str | Path | None = None, expect: 
         else:
             report.problems += _compare(manifest, committed)
     if expect is not None and expect.lower() != manifest["dataset_fingerprint"]:
-        report.problems.append(Problem(MANIFEST_NAME, "mismatch",
-                                       f"dataset fingerprint {manifest['dataset_fingerprint']}, expected {expect}"))
+        report.problems.append(
+            Problem(
+                MANIFEST_NAME, "mismatch", f"dataset fingerprint {manifest['dataset_fingerprint']}, expected {expect}"
+            )
+        )
     return report

@@ -49,8 +49,11 @@ class VocabSpec:
         for role in ROLES:
             name = parse_str(role, getattr(self, role), allow_empty=True)
             if name and name not in specials:
-                raise RecipeError(role, f"{name!r} is not listed in specials {list(specials)}; "
-                                        "add it there or set this role to \"\" for none")
+                raise RecipeError(
+                    role,
+                    f"{name!r} is not listed in specials {list(specials)}; "
+                    'add it there or set this role to "" for none',
+                )
         parse_int("min_count", self.min_count, minimum=1)
         parse_int("max_size", self.max_size, minimum=0)
         if self.max_size and self.max_size <= len(specials):
@@ -92,8 +95,9 @@ class Vocabulary:
             unk = self.unknown_id
             if unk is None:
                 first = keys[int(np.flatnonzero(missing)[0])].as_py()
-                raise TokenizerError(f"token {first!r} is not in the vocabulary and the recipe "
-                                     "sets no unknown token (vocab.unknown)")
+                raise TokenizerError(
+                    f"token {first!r} is not in the vocabulary and the recipe sets no unknown token (vocab.unknown)"
+                )
             out[missing] = unk
         return out
 
@@ -111,10 +115,18 @@ class Vocabulary:
     def to_table(self) -> pa.Table:
         special = np.zeros(len(self), dtype=bool)
         special[: self.n_special] = True
-        meta = {b"seqpipe.table": b"vocabulary", b"seqpipe.format": VOCAB_FORMAT.encode(),
-                b"seqpipe.roles": json.dumps(self.roles, sort_keys=True).encode()}
-        return pa.table({"token": self.tokens.cast(pa.binary()), "count": pa.array(self.counts, pa.int64()),
-                         "special": pa.array(special)}).replace_schema_metadata(meta)
+        meta = {
+            b"seqpipe.table": b"vocabulary",
+            b"seqpipe.format": VOCAB_FORMAT.encode(),
+            b"seqpipe.roles": json.dumps(self.roles, sort_keys=True).encode(),
+        }
+        return pa.table(
+            {
+                "token": self.tokens.cast(pa.binary()),
+                "count": pa.array(self.counts, pa.int64()),
+                "special": pa.array(special),
+            }
+        ).replace_schema_metadata(meta)
 
     def save(self, path: Path) -> None:
         from seqpipe.shards import write_table

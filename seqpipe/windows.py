@@ -171,10 +171,23 @@ class BatchStream:
     short for one batch has length 0.
     """
 
-    def __init__(self, stream: TokenStream, *, batch_size: int, steps: int, order: str = "random",
-                 seed: int = 0, epoch: int = 0, rank: int = 0, world_size: int = 1,
-                 drop_last: bool = True, dtype: Any = np.int64, boundaries: bool = False,
-                 stream_key: str = "", start_step: int = 0) -> None:
+    def __init__(
+        self,
+        stream: TokenStream,
+        *,
+        batch_size: int,
+        steps: int,
+        order: str = "random",
+        seed: int = 0,
+        epoch: int = 0,
+        rank: int = 0,
+        world_size: int = 1,
+        drop_last: bool = True,
+        dtype: Any = np.int64,
+        boundaries: bool = False,
+        stream_key: str = "",
+        start_step: int = 0,
+    ) -> None:
         if not isinstance(stream, TokenStream):
             raise StreamError(f"stream: expected a TokenStream, got {type(stream).__name__}")
         self.stream = stream
@@ -223,16 +236,26 @@ class BatchStream:
     @property
     def config(self) -> str:
         """Fingerprint of everything but epoch/step/rank that fixes the batches (for StreamState)."""
-        return hash_json({"key": self.stream_key, "global_batch": self.global_batch, "steps": self.steps,
-                          "order": self.order, "seed": self.seed, "drop_last": self.drop_last,
-                          "tokens": len(self.stream)})
+        return hash_json(
+            {
+                "key": self.stream_key,
+                "global_batch": self.global_batch,
+                "steps": self.steps,
+                "order": self.order,
+                "seed": self.seed,
+                "drop_last": self.drop_last,
+                "tokens": len(self.stream),
+            }
+        )
 
     def __len__(self) -> int:
         return self._len
 
     def __repr__(self) -> str:
-        return (f"BatchStream({self.order}, B={self.global_batch} (rank {self.rank}/{self.world_size}), "
-                f"T={self.steps}, epoch={self.epoch}, {self._len} steps)")
+        return (
+            f"BatchStream({self.order}, B={self.global_batch} (rank {self.rank}/{self.world_size}), "
+            f"T={self.steps}, epoch={self.epoch}, {self._len} steps)"
+        )
 
     # --- random access ---------------------------------------------------------------------------
     def _random_starts(self, first: int, count: int) -> np.ndarray:
@@ -244,7 +267,7 @@ class BatchStream:
         """
         lo, cached = self._page
         if lo <= first and first + count <= lo + len(cached):
-            return cached[first - lo:first - lo + count].copy()
+            return cached[first - lo : first - lo + count].copy()
         if self._shuffle is None:
             rng = self._rng()
             rng.integers(0, self.steps)  # the offset draw, replayed so the keys follow it
@@ -257,7 +280,7 @@ class BatchStream:
         end = min(max(start + size, first + count), self.num_windows)
         idx = np.arange(start, end, dtype=np.int64)
         self._page = (start, self._shuffle(idx) * self.steps + self.offset)
-        return self._page[1][first - start:first - start + count].copy()
+        return self._page[1][first - start : first - start + count].copy()
 
     def rows(self, step: int) -> tuple[int, int]:
         """This rank's row range ``[lo, hi)`` within global batch ``step``."""
@@ -290,8 +313,15 @@ class BatchStream:
         block = self.stream.gather(starts, width + 1, self.dtype)
         mask = self.stream.boundary_mask(starts, width + 1) if self.boundaries else None
         fresh = self.order == "random" or step == 0
-        return Batch(step=int(step), epoch=self.epoch, inputs=block[:, :-1], targets=block[:, 1:],
-                     starts=starts, fresh=fresh, mask=mask)
+        return Batch(
+            step=int(step),
+            epoch=self.epoch,
+            inputs=block[:, :-1],
+            targets=block[:, 1:],
+            starts=starts,
+            fresh=fresh,
+            mask=mask,
+        )
 
     # --- iteration -------------------------------------------------------------------------------
     def __iter__(self) -> Iterator[Batch]:
@@ -322,19 +352,32 @@ class BatchStream:
         return StreamState(epoch=batch.epoch, step=batch.step + 1, config=self.config)
 
     def _with(self, epoch: int, start_step: int) -> BatchStream:
-        return BatchStream(self.stream, batch_size=self.batch_size, steps=self.steps, order=self.order,
-                           seed=self.seed, epoch=epoch, rank=self.rank, world_size=self.world_size,
-                           drop_last=self.drop_last, dtype=self.dtype, boundaries=self.boundaries,
-                           stream_key=self.stream_key, start_step=start_step)
+        return BatchStream(
+            self.stream,
+            batch_size=self.batch_size,
+            steps=self.steps,
+            order=self.order,
+            seed=self.seed,
+            epoch=epoch,
+            rank=self.rank,
+            world_size=self.world_size,
+            drop_last=self.drop_last,
+            dtype=self.dtype,
+            boundaries=self.boundaries,
+            stream_key=self.stream_key,
+            start_step=start_step,
+        )
 
     def resume(self, state: StreamState) -> BatchStream:
         """A stream like this one positioned at ``state`` (any epoch); refuses a foreign state."""
         if not isinstance(state, StreamState):
             raise StreamError(f"resume: expected a StreamState, got {type(state).__name__}")
         if state.config and state.config != self.config:
-            raise StreamError("resume: the state was saved by a stream with a different key, global batch, "
-                              "window length, order, seed or token count; resume with the same settings",
-                              key="config")
+            raise StreamError(
+                "resume: the state was saved by a stream with a different key, global batch, "
+                "window length, order, seed or token count; resume with the same settings",
+                key="config",
+            )
         probe = self if state.epoch == self.epoch else self._with(state.epoch, 0)
         if state.step > len(probe):
             raise StreamError(f"resume: step {state.step} is past the epoch's {len(probe)} steps", key="step")

@@ -21,14 +21,40 @@ REPO = Path(__file__).resolve().parent.parent
 _BOATS = ("Marrow Belle", "Quill", "Old Tansy", "Heron Nine", "Dapple", "Saltwick Maid")
 _CREW = ("Odile", "Brann", "Kessa", "Tobiah", "Wren", "Ilse", "Corvin", "Marit")
 _PLACES = ("Eastreach", "Lower Fenn", "the Weir Steps", "Cobble Quay", "Nettle Point", "Ashford Landing")
-_CARGO = ("crates of apples", "two goats", "a crated harmonium", "lamp oil", "mail sacks", "timber",
-          "a bicycle", "barrels of cider", "wool bales", "a school class", "seed potatoes")
-_WEATHER = ("fog on the water", "a steady drizzle", "bright and calm", "a gusting westerly",
-            "low cloud", "thin ice at the margins", "a warm south wind", "heavy rain upstream")
-_EVENTS = ("the rudder pin worked loose and was replaced", "a passenger lost a hat overboard",
-           "the bell buoy was silent again", "we waited for the lock keeper",
-           "the engine coughed twice near the shoals", "a heron rode the bow rail",
-           "the ramp chain was greased", "the tally was checked twice", "ropes were coiled and dried")
+_CARGO = (
+    "crates of apples",
+    "two goats",
+    "a crated harmonium",
+    "lamp oil",
+    "mail sacks",
+    "timber",
+    "a bicycle",
+    "barrels of cider",
+    "wool bales",
+    "a school class",
+    "seed potatoes",
+)
+_WEATHER = (
+    "fog on the water",
+    "a steady drizzle",
+    "bright and calm",
+    "a gusting westerly",
+    "low cloud",
+    "thin ice at the margins",
+    "a warm south wind",
+    "heavy rain upstream",
+)
+_EVENTS = (
+    "the rudder pin worked loose and was replaced",
+    "a passenger lost a hat overboard",
+    "the bell buoy was silent again",
+    "we waited for the lock keeper",
+    "the engine coughed twice near the shoals",
+    "a heron rode the bow rail",
+    "the ramp chain was greased",
+    "the tally was checked twice",
+    "ropes were coiled and dried",
+)
 
 RECIPE = """\
 [dataset]
@@ -46,8 +72,10 @@ tokens = {shard_tokens}
 
 def _paragraph(rnd: random.Random, day: int) -> str:
     boat, crew, place = rnd.choice(_BOATS), rnd.choice(_CREW), rnd.choice(_PLACES)
-    lines = [f"Day {day}, crossing {rnd.randint(1, 40)}: the {boat} left {place} at "
-             f"{rnd.randint(5, 21):02d}:{rnd.randint(0, 59):02d} with {rnd.choice(_CARGO)}."]
+    lines = [
+        f"Day {day}, crossing {rnd.randint(1, 40)}: the {boat} left {place} at "
+        f"{rnd.randint(5, 21):02d}:{rnd.randint(0, 59):02d} with {rnd.choice(_CARGO)}."
+    ]
     for _ in range(rnd.randint(1, 4)):
         lines.append(f"{crew} noted {rnd.choice(_WEATHER)}; {rnd.choice(_EVENTS)}.")
     if rnd.random() < 0.3:
@@ -75,8 +103,7 @@ def recipe_text(*, shard_tokens: int = 300) -> str:
     return RECIPE.format(shard_tokens=shard_tokens)
 
 
-def write_project(root: Path, *, files: int = 3, paragraphs: int = 30, seed: int = 0,
-                  shard_tokens: int = 300) -> Path:
+def write_project(root: Path, *, files: int = 3, paragraphs: int = 30, seed: int = 0, shard_tokens: int = 300) -> Path:
     """Corpus plus ``root/recipe.toml``; returns the recipe path."""
     write_corpus(root, files=files, paragraphs=paragraphs, seed=seed)
     path = root / "recipe.toml"
@@ -96,8 +123,9 @@ def build_dir(recipe_path: Path, out: Path, **kwargs: object) -> Path:
 def run_cli(args: Sequence[str], *, timeout: float = 120) -> subprocess.CompletedProcess[str]:
     """Run ``python -m seqpipe.cli ARGS`` in a fresh process; capture text output."""
     env = {k: v for k, v in os.environ.items() if k != "SEQPIPE_DEBUG"}
-    return subprocess.run([sys.executable, "-m", "seqpipe.cli", *args], capture_output=True, text=True,
-                          timeout=timeout, env=env, cwd=REPO)
+    return subprocess.run(
+        [sys.executable, "-m", "seqpipe.cli", *args], capture_output=True, text=True, timeout=timeout, env=env, cwd=REPO
+    )
 
 
 def full_tests() -> bool:

@@ -40,8 +40,9 @@ LOG = (
 
 def counts_table(items: list[tuple[bytes, int]]) -> pa.Table:
     """A distinct-chunk count table in the given (corpus) order, as the build supplies it."""
-    return pa.table({"key": pa.array([k for k, _ in items], pa.binary()),
-                     "count": pa.array([c for _, c in items], pa.int64())})
+    return pa.table(
+        {"key": pa.array([k for k, _ in items], pa.binary()), "count": pa.array([c for _, c in items], pa.int64())}
+    )
 
 
 def counts_from_texts(tok: BpeTokenizer, texts: list[str]) -> pa.Table:
@@ -63,8 +64,9 @@ def tokens_of(enc: BpeEncoder, text: str) -> list[bytes]:
 
 
 # -- a deliberately naive reference trainer ------------------------------------------------------
-def naive_merges(words: list[list[bytes]], freqs: list[int], start_size: int, limit: int,
-                 min_count: int) -> tuple[list[tuple[bytes, bytes]], list[list[bytes]]]:
+def naive_merges(
+    words: list[list[bytes]], freqs: list[int], start_size: int, limit: int, min_count: int
+) -> tuple[list[tuple[bytes, bytes]], list[list[bytes]]]:
     """Sennrich et al. (2016) Algorithm 1: recount every pair after every merge.
 
     Symbols are byte strings, as in the paper (so it would also catch a merge that spells an
@@ -126,8 +128,18 @@ def test_paper_toy_dictionary_merges() -> None:
     # 'newest'), then 7,7 (l o / lo w), then 6,6,6 (n e / ne w / new est</w>), 5, then 3 (w i).
     tok = BpeTokenizer(base="chars", end_of_word="</w>", vocab_size=N_SPECIAL + 11 + 10)
     enc = tok.fit(counts_table([(b"low", 5), (b"lower", 2), (b"newest", 6), (b"widest", 3)]), SPEC)
-    assert merge_strings(enc) == ["e s", "es t", "est </w>", "l o", "lo w", "n e", "ne w",
-                                  "new est</w>", "low </w>", "w i"]
+    assert merge_strings(enc) == [
+        "e s",
+        "es t",
+        "est </w>",
+        "l o",
+        "lo w",
+        "n e",
+        "ne w",
+        "new est</w>",
+        "low </w>",
+        "w i",
+    ]
     assert len(enc.vocabulary) == N_SPECIAL + 11 + 10
 
 
@@ -145,19 +157,26 @@ def test_paper_figure1_unseen_word() -> None:
 
 
 # -- invariants against the naive reference ----------------------------------------------------------
-corpora = st.lists(st.tuples(st.text(alphabet="abcdé ", min_size=1, max_size=9), st.integers(1, 6)),
-                   min_size=1, max_size=14, unique_by=lambda t: t[0])
+corpora = st.lists(
+    st.tuples(st.text(alphabet="abcdé ", min_size=1, max_size=9), st.integers(1, 6)),
+    min_size=1,
+    max_size=14,
+    unique_by=lambda t: t[0],
+)
 
 
 @settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-@given(corpus=corpora, base=st.sampled_from(["bytes", "chars", "chars+marker"]),
-       extra=st.integers(0, 40), min_count=st.integers(1, 3))
+@given(
+    corpus=corpora,
+    base=st.sampled_from(["bytes", "chars", "chars+marker"]),
+    extra=st.integers(0, 40),
+    min_count=st.integers(1, 3),
+)
 # Found by a random search: a tie between two pairs of one chunk after symbols before them merged
 # (ranking such ties by symbol index instead of byte offset picked the wrong pair).
 @example(corpus=[("cccbcc", 3), ("bcbcc", 3)], base="bytes", extra=12, min_count=1)
 @example(corpus=[("ddbdcdb", 3), ("dcdbc", 3)], base="chars", extra=12, min_count=1)
-def test_trainer_matches_naive_reference(corpus: list[tuple[str, int]], base: str, extra: int,
-                                         min_count: int) -> None:
+def test_trainer_matches_naive_reference(corpus: list[tuple[str, int]], base: str, extra: int, min_count: int) -> None:
     """Incremental training gives the naive trainer's merges, and encoding a training chunk
     gives the naive trainer's final segmentation of it."""
     marker = "</w>" if base == "chars+marker" else ""
@@ -170,8 +189,9 @@ def test_trainer_matches_naive_reference(corpus: list[tuple[str, int]], base: st
         alphabet_size = len({ch for w, _ in corpus for ch in w}) + bool(marker)
         words = [[ch.encode() for ch in w] + ([marker.encode()] if marker else []) for w, _ in corpus]
     start = N_SPECIAL + alphabet_size
-    tok = BpeTokenizer(base="chars" if marker else base, end_of_word=marker, vocab_size=start + extra,
-                       min_pair_count=min_count)
+    tok = BpeTokenizer(
+        base="chars" if marker else base, end_of_word=marker, vocab_size=start + extra, min_pair_count=min_count
+    )
     enc = tok.fit(counts_table(list(zip(keys, freqs, strict=True))), SPEC)
     want, final = naive_merges(words, freqs, start, start + extra, min_count)
     v = enc.vocabulary
@@ -182,7 +202,7 @@ def test_trainer_matches_naive_reference(corpus: list[tuple[str, int]], base: st
     values, offsets = enc.piece_ids(key_array)  # merges applied afresh
     assert np.array_equal(values, from_training[0])
     for j, symbols in enumerate(final):
-        assert [v.token(int(i)) for i in values[offsets[j]:offsets[j + 1]]] == symbols
+        assert [v.token(int(i)) for i in values[offsets[j] : offsets[j + 1]]] == symbols
 
 
 # -- segmenting ----------------------------------------------------------------------------------
@@ -192,14 +212,16 @@ def doc_chunks(tok: BpeTokenizer, texts: list[str]) -> list[list[bytes]]:
     keys = seg.keys.to_pylist()
     out, pos = [], 0
     for n in seg.doc_lengths.tolist():
-        out.append([keys[c] for c in seg.codes[pos:pos + n].tolist()])
+        out.append([keys[c] for c in seg.codes[pos : pos + n].tolist()])
         pos += n
     return out
 
 
 @settings(max_examples=150, deadline=None)
-@given(texts=st.lists(st.text(), max_size=5),
-       pattern=st.sampled_from([bpe_module.DEFAULT_CHUNK_PATTERN, r"\p{L}*", r"[aeiou]+|\d"]))
+@given(
+    texts=st.lists(st.text(), max_size=5),
+    pattern=st.sampled_from([bpe_module.DEFAULT_CHUNK_PATTERN, r"\p{L}*", r"[aeiou]+|\d"]),
+)
 def test_chunks_cover_each_document(texts: list[str], pattern: str) -> None:
     """A document's chunks are non-empty and concatenate to the document, whatever the pattern."""
     tok = BpeTokenizer(chunk_pattern=pattern)
@@ -212,7 +234,8 @@ def test_default_chunks() -> None:
     """The default pattern keeps a space with the word after it and splits numbers and punctuation."""
     tok = BpeTokenizer()
     assert doc_chunks(tok, ["Odra's lamp,  lit at 12:40!\n"]) == [
-        [b"Odra's", b" lamp", b",", b" ", b" lit", b" at", b" 12", b":", b"40", b"!", b"\n"]]
+        [b"Odra's", b" lamp", b",", b" ", b" lit", b" at", b" 12", b":", b"40", b"!", b"\n"]
+    ]
     assert doc_chunks(tok, ["", "x"]) == [[], [b"x"]]
 
 
@@ -254,8 +277,10 @@ def test_training_reaches_vocab_size() -> None:
 
 
 @settings(max_examples=200, deadline=None)
-@given(text=st.text(alphabet=st.characters(exclude_categories=["Cs"])) | st.sampled_from(
-    ["\x00", "a\x00b", "😀👍🏽", "e\u0301\u0302", "\u200d\ufeff", "  \n\t ", "Quill\u00a0Point"]))
+@given(
+    text=st.text(alphabet=st.characters(exclude_categories=["Cs"]))
+    | st.sampled_from(["\x00", "a\x00b", "😀👍🏽", "e\u0301\u0302", "\u200d\ufeff", "  \n\t ", "Quill\u00a0Point"])
+)
 def test_bytes_round_trip(text: str) -> None:
     """Byte base: decode(encode(s)) == s for any Unicode text (NUL, emoji, combining marks)."""
     enc = bytes_encoder()
@@ -359,8 +384,7 @@ def test_literal_specials_only_when_enabled() -> None:
     assert [i for i in ids if i < N_SPECIAL] == [SPEC.specials.index("<eos>"), SPEC.specials.index("<bos>")]
     assert enc.decode(ids, show_specials=True) == text
     # the names never take part in a merge
-    assert not any(b"<eos>" in enc.vocabulary.token(z) or b"<bos>" in enc.vocabulary.token(z)
-                   for _, _, z in enc.merges)
+    assert not any(b"<eos>" in enc.vocabulary.token(z) or b"<bos>" in enc.vocabulary.token(z) for _, _, z in enc.merges)
 
 
 def test_literal_specials_must_match_vocab_specials() -> None:
@@ -390,10 +414,13 @@ def saved(enc: BpeEncoder, directory: Path) -> Path:
     return directory
 
 
-@pytest.mark.parametrize("kwargs", [
-    {"vocab_size": N_SPECIAL + 256 + 80},
-    {"base": "chars", "end_of_word": "</w>", "vocab_size": 300, "literal_specials": True},
-])
+@pytest.mark.parametrize(
+    "kwargs",
+    [
+        {"vocab_size": N_SPECIAL + 256 + 80},
+        {"base": "chars", "end_of_word": "</w>", "vocab_size": 300, "literal_specials": True},
+    ],
+)
 def test_save_load_round_trip(tmp_path: Path, kwargs: dict[str, object]) -> None:
     """A stored and reloaded encoder has the same merges and encodes identically."""
     tok = BpeTokenizer(**kwargs)  # type: ignore[arg-type]
@@ -441,18 +468,21 @@ def test_load_rejects_malformed(tmp_path: Path) -> None:
 
 
 # -- recipe ------------------------------------------------------------------------------------------
-@pytest.mark.parametrize(("table", "key"), [
-    ({"base": "words"}, "base"),
-    ({"end_of_word": "</w>"}, "end_of_word"),
-    ({"vocab_size": 0}, "vocab_size"),
-    ({"vocab_size": True}, "vocab_size"),
-    ({"min_pair_count": 0}, "min_pair_count"),
-    ({"chunk_pattern": "("}, "chunk_pattern"),
-    ({"chunk_pattern": "(a)|b"}, "chunk_pattern"),
-    ({"literal_specials": "yes"}, "literal_specials"),
-    ({"special_names": ["<a>", "<a>"]}, "special_names"),
-    ({"merges": 3}, "merges"),
-])
+@pytest.mark.parametrize(
+    ("table", "key"),
+    [
+        ({"base": "words"}, "base"),
+        ({"end_of_word": "</w>"}, "end_of_word"),
+        ({"vocab_size": 0}, "vocab_size"),
+        ({"vocab_size": True}, "vocab_size"),
+        ({"min_pair_count": 0}, "min_pair_count"),
+        ({"chunk_pattern": "("}, "chunk_pattern"),
+        ({"chunk_pattern": "(a)|b"}, "chunk_pattern"),
+        ({"literal_specials": "yes"}, "literal_specials"),
+        ({"special_names": ["<a>", "<a>"]}, "special_names"),
+        ({"merges": 3}, "merges"),
+    ],
+)
 def test_recipe_errors_name_the_key(table: dict[str, object], key: str) -> None:
     """Bad recipe values raise RecipeError whose key path names the field."""
     with pytest.raises(RecipeError) as info:
@@ -506,8 +536,14 @@ def test_independent_of_hash_seed() -> None:
     runs = []
     for seed in ("1", "2", "12345"):
         env = {**os.environ, "PYTHONHASHSEED": seed}
-        done = subprocess.run([sys.executable, "-c", _HASH_SEED_SCRIPT], env=env, capture_output=True,
-                              text=True, check=True, cwd=Path(__file__).resolve().parents[1])
+        done = subprocess.run(
+            [sys.executable, "-c", _HASH_SEED_SCRIPT],
+            env=env,
+            capture_output=True,
+            text=True,
+            check=True,
+            cwd=Path(__file__).resolve().parents[1],
+        )
         runs.append(done.stdout)
     assert runs[0] == runs[1] == runs[2]
     assert runs[0].startswith("[(")

@@ -23,8 +23,22 @@ from seqpipe.verify import verify
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 KNOWN = sorted(p for p in (FIXTURES / "known").iterdir() if p.is_dir())
 
-WORDS = ["ferry", "tide", "dock", "cargo", "lantern", "rope", "harbour", "fog", "north", "south", "calm",
-         "squall", "pilot", "ledger"]
+WORDS = [
+    "ferry",
+    "tide",
+    "dock",
+    "cargo",
+    "lantern",
+    "rope",
+    "harbour",
+    "fog",
+    "north",
+    "south",
+    "calm",
+    "squall",
+    "pilot",
+    "ledger",
+]
 
 
 def write_corpus(root: Path, files: int = 3, docs: int = 40, seed: int = 3) -> Path:
@@ -32,8 +46,7 @@ def write_corpus(root: Path, files: int = 3, docs: int = 40, seed: int = 3) -> P
     rnd = random.Random(seed)
     (root / "logs").mkdir(parents=True, exist_ok=True)
     for f in range(files):
-        paras = [" ".join(rnd.choice(WORDS) for _ in range(rnd.randint(3, 30))).capitalize() + "."
-                 for _ in range(docs)]
+        paras = [" ".join(rnd.choice(WORDS) for _ in range(rnd.randint(3, 30))).capitalize() + "." for _ in range(docs)]
         (root / "logs" / f"day{f}.txt").write_text("\n\n".join(paras) + "\n", encoding="utf-8")
     return root
 
@@ -53,8 +66,11 @@ tokens = 500
 
 
 def files_of(d: Path) -> dict[str, bytes]:
-    return {p.relative_to(d).as_posix(): p.read_bytes() for p in sorted(d.rglob("*"))
-            if p.is_file() and ".seqpipe" not in p.parts}
+    return {
+        p.relative_to(d).as_posix(): p.read_bytes()
+        for p in sorted(d.rglob("*"))
+        if p.is_file() and ".seqpipe" not in p.parts
+    }
 
 
 @pytest.mark.parametrize("case", KNOWN, ids=[p.name for p in KNOWN])
@@ -73,10 +89,13 @@ def test_known_answers(case: Path, tmp_path: Path) -> None:
 def test_lowercase_letters_only_gives_28_symbols(tmp_path: Path) -> None:
     """Lower-casing English and replacing every non-letter with a space leaves 26 letters + space,
     plus the unknown token: 28 (common practice, no source)."""
-    text = ("The quick ferry-pilot, Mabel Jenkins (aged 47), vexed by fog & a wizened jackdaw, "
-            "quietly logged 12 crossings!\n")
+    text = (
+        "The quick ferry-pilot, Mabel Jenkins (aged 47), vexed by fog & a wizened jackdaw, "
+        "quietly logged 12 crossings!\n"
+    )
     (tmp_path / "in.txt").write_text(text * 5)
-    recipe = parse_recipe("""
+    recipe = parse_recipe(
+        """
 [[sources]]
 kind = "text"
 paths = "in.txt"
@@ -100,7 +119,9 @@ end = false
 train = 1.0
 validation = 0.0
 test = 0.0
-""", tmp_path)
+""",
+        tmp_path,
+    )
     res = build(recipe, tmp_path / "out", workers=1, progress=False)
     assert res.manifest["vocabulary"]["size"] == 28
 
@@ -113,8 +134,22 @@ def test_builds_are_byte_identical_and_hashseed_free(tmp_path: Path) -> None:
     b = build(load_recipe(root / "recipe.toml"), tmp_path / "b", workers=1, progress=False, force=True)
     assert files_of(a.directory) == files_of(b.directory)
     env = {**os.environ, "PYTHONHASHSEED": "12345"}
-    subprocess.run([sys.executable, "-m", "seqpipe.cli", "build", str(root / "recipe.toml"), "-o",
-                    str(tmp_path / "c2"), "--workers", "1", "--quiet"], check=True, env=env)
+    subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "seqpipe.cli",
+            "build",
+            str(root / "recipe.toml"),
+            "-o",
+            str(tmp_path / "c2"),
+            "--workers",
+            "1",
+            "--quiet",
+        ],
+        check=True,
+        env=env,
+    )
     assert files_of(tmp_path / "c2") == files_of(a.directory)
 
 
@@ -183,8 +218,12 @@ def test_empty_corpus_and_missing_files(tmp_path: Path) -> None:
     with pytest.raises(EmptyCorpusError, match="no document is left"):
         build(parse_recipe(short, tmp_path), tmp_path / "out", workers=1, progress=False)
     with pytest.raises(SourceMissingError):
-        build(parse_recipe(RECIPE.replace("logs/*.txt", "nothing/*.txt"), tmp_path), tmp_path / "o2",
-              workers=1, progress=False)
+        build(
+            parse_recipe(RECIPE.replace("logs/*.txt", "nothing/*.txt"), tmp_path),
+            tmp_path / "o2",
+            workers=1,
+            progress=False,
+        )
 
 
 def test_invalid_utf8_names_file_and_offset(tmp_path: Path) -> None:
@@ -199,17 +238,34 @@ def test_invalid_utf8_names_file_and_offset(tmp_path: Path) -> None:
     assert res.manifest["summary"]["read"]["invalid_utf8_skipped"] == 1
 
 
-@pytest.mark.parametrize(("recipe_text", "code", "needle"), [
-    ("[[sources]]\nkind = 'text'\npaths = 'logs/*.txt'\n[vocab]\nmin_cout = 2\n", 2, "did you mean 'min_count'"),
-    ("[[sources]]\nkind = 'text'\npaths = 'logs/*.txt'\n[shards]\ntokens = 'many'\n", 2, "expected an integer"),
-    ("[[sources]]\nkind = 'text'\npaths = 'nowhere/*.txt'\n", 3, "nowhere/*.txt"),
-])
+@pytest.mark.parametrize(
+    ("recipe_text", "code", "needle"),
+    [
+        ("[[sources]]\nkind = 'text'\npaths = 'logs/*.txt'\n[vocab]\nmin_cout = 2\n", 2, "did you mean 'min_count'"),
+        ("[[sources]]\nkind = 'text'\npaths = 'logs/*.txt'\n[shards]\ntokens = 'many'\n", 2, "expected an integer"),
+        ("[[sources]]\nkind = 'text'\npaths = 'nowhere/*.txt'\n", 3, "nowhere/*.txt"),
+    ],
+)
 def test_cli_errors_have_codes_and_no_traceback(tmp_path: Path, recipe_text: str, code: int, needle: str) -> None:
     """Bad recipes exit with their documented code and a one-line message, no traceback."""
     write_corpus(tmp_path)
     (tmp_path / "r.toml").write_text(recipe_text)
-    proc = subprocess.run([sys.executable, "-m", "seqpipe.cli", "build", str(tmp_path / "r.toml"), "-o",
-                           str(tmp_path / "out"), "--workers", "1", "--quiet"], capture_output=True, text=True)
+    proc = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "seqpipe.cli",
+            "build",
+            str(tmp_path / "r.toml"),
+            "-o",
+            str(tmp_path / "out"),
+            "--workers",
+            "1",
+            "--quiet",
+        ],
+        capture_output=True,
+        text=True,
+    )
     assert proc.returncode == code, proc.stderr
     assert needle in proc.stderr and "Traceback" not in proc.stderr
 
@@ -217,8 +273,10 @@ def test_cli_errors_have_codes_and_no_traceback(tmp_path: Path, recipe_text: str
 def test_cli_inspect_encode_decode(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     """inspect, encode and decode work on a built dataset."""
     shutil.copytree(FIXTURES / "known" / "words-tide", tmp_path / "case")
-    assert main(["build", str(tmp_path / "case" / "recipe.toml"), "-o", str(tmp_path / "d"), "--workers", "1",
-                 "--quiet"]) == 0
+    assert (
+        main(["build", str(tmp_path / "case" / "recipe.toml"), "-o", str(tmp_path / "d"), "--workers", "1", "--quiet"])
+        == 0
+    )
     assert main(["inspect", str(tmp_path / "d")]) == 0
     assert "train" in capsys.readouterr().out
     assert main(["encode", str(tmp_path / "d"), "the ferry waited"]) == 0
@@ -240,10 +298,12 @@ def test_a_part_with_more_distinct_words_than_two_byte_codes_hold(tmp_path: Path
     words = [f"w{i}" for i in range(70_000)] + [rnd.choice(WORDS) for _ in range(30_000)]
     rnd.shuffle(words)
     (tmp_path / "logs").mkdir()
-    text = "\n\n".join(" ".join(words[i:i + 50]) for i in range(0, len(words), 50)) + "\n"
+    text = "\n\n".join(" ".join(words[i : i + 50]) for i in range(0, len(words), 50)) + "\n"
     (tmp_path / "logs" / "wide.txt").write_text(text, encoding="utf-8")
-    recipe = parse_recipe(RECIPE.replace("tokens = 500", "tokens = 1000000") + "[splits]\ntrain = 1.0\n"
-                          "validation = 0.0\ntest = 0.0\n", tmp_path)
+    recipe = parse_recipe(
+        RECIPE.replace("tokens = 500", "tokens = 1000000") + "[splits]\ntrain = 1.0\nvalidation = 0.0\ntest = 0.0\n",
+        tmp_path,
+    )
     result = build(recipe, tmp_path / "out", progress=False)
     [part] = (tmp_path / "out" / ".seqpipe" / "cache" / "parts").iterdir()
     with ipc.open_file(part / "codes.arrow") as f:
@@ -261,6 +321,9 @@ def test_a_part_with_more_distinct_words_than_two_byte_codes_hold(tmp_path: Path
     with ipc.open_file(part / "codes.arrow") as f:
         assert str(f.schema.field("code").type) == "uint16"
     ds = open_dataset(result.directory)
-    got = [t.decode() for name in ds.splits for t in
-           ds.vocabulary.tokens_for(ds.split(name).stream.slice(0, ds.split(name).num_tokens))]
+    got = [
+        t.decode()
+        for name in ds.splits
+        for t in ds.vocabulary.tokens_for(ds.split(name).stream.slice(0, ds.split(name).num_tokens))
+    ]
     assert sorted(got) == sorted(few.split())

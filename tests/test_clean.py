@@ -43,8 +43,12 @@ CASES = json.loads((ROOT / "fixtures" / "unicode" / "normalization.json").read_t
 
 _text = st.text(st.characters(blacklist_categories=("Cs",)), max_size=24)
 # Text rich in what the steps act on: marks, ligatures, cased letters, controls, whitespace.
-_tricky = st.text(st.sampled_from(list("aZ ßİΣσςﬁ\u212b\u030a\u0323\u00c5\t\n\r\x00\x85\u00a0\u2028"
-                                       "\u3000\ufeff\u200b\u00ad\x1c\U0001f41f字")), max_size=24)
+_tricky = st.text(
+    st.sampled_from(
+        list("aZ ßİΣσςﬁ\u212b\u030a\u0323\u00c5\t\n\r\x00\x85\u00a0\u2028\u3000\ufeff\u200b\u00ad\x1c\U0001f41f字")
+    ),
+    max_size=24,
+)
 _docs = st.lists(st.one_of(_text, _tricky), max_size=8)
 
 
@@ -59,8 +63,9 @@ def run(step: Any, docs: list[str]) -> list[str]:
 # normalize
 
 
-@pytest.mark.parametrize("case", CASES, ids=[f"{c['form']}-{c['input'].encode('unicode_escape').decode()}"
-                                             for c in CASES])
+@pytest.mark.parametrize(
+    "case", CASES, ids=[f"{c['form']}-{c['input'].encode('unicode_escape').decode()}" for c in CASES]
+)
 def test_normalize_known_answers(case: dict[str, str]) -> None:
     """Each case's source is in the fixture file (UAX #15 and the Unicode Standard)."""
     assert run(Normalize(form=case["form"]), [case["input"], "ascii stays"]) == [case["expected"], "ascii stays"]
@@ -122,8 +127,11 @@ def test_replace_is_unicode_aware_and_literal() -> None:
 
 
 @settings(max_examples=100, deadline=None)
-@given(docs=_docs, pattern=st.sampled_from([r"\s+", r"\P{L}+", r"[aeiou]", r"\X", r"(?<=a)b|ß"]),
-       replacement=st.sampled_from(["", " ", "_", "\\"]))
+@given(
+    docs=_docs,
+    pattern=st.sampled_from([r"\s+", r"\P{L}+", r"[aeiou]", r"\X", r"(?<=a)b|ß"]),
+    replacement=st.sampled_from(["", " ", "_", "\\"]),
+)
 def test_replace_matches_regex_sub(docs: list[str], pattern: str, replacement: str) -> None:
     """Every document equals regex.sub with a function returning the replacement (reference)."""
     compiled = regex.compile(pattern, regex.VERSION1)
@@ -200,6 +208,7 @@ def test_collapse_whitespace_matches_str_split(docs: list[str]) -> None:
 @given(docs=_docs)
 def test_collapse_whitespace_keep_newlines_matches_re(docs: list[str]) -> None:
     """keep_newlines = true equals a re.sub over \\s runs (Python's whitespace, reference)."""
+
     def ref(text: str) -> str:
         return re.sub(r"\s+", lambda m: "\n" if "\n" in m.group() else " ", text).strip()
 
@@ -220,7 +229,7 @@ def test_min_length_counts_code_points(docs: list[str], chars: int) -> None:
 
 
 def test_min_length_counts_code_points_not_bytes() -> None:
-    """"字字" is 2 code points (6 UTF-8 bytes); "\U0001f41f" is one."""
+    """ "字字" is 2 code points (6 UTF-8 bytes); "\U0001f41f" is one."""
     assert run(MinLength(chars=2), ["字字", "\U0001f41f", "ab"]) == ["字字", "ab"]
 
 
@@ -264,16 +273,19 @@ def test_step_accepts_any_string_array(table: dict[str, Any]) -> None:
     assert small.to_pylist() == chunked.to_pylist()
 
 
-@pytest.mark.parametrize(("table", "key", "shown"), [
-    ({"kind": "trim"}, "recipe.clean[1].kind", "'normalize', 'lowercase'"),
-    ({}, "recipe.clean[1].kind", "missing"),
-    ({"kind": "normalize", "form": "nfc"}, "recipe.clean[1].form", "got 'nfc'"),
-    ({"kind": "lowercase", "mode": "upper"}, "recipe.clean[1].mode", "'upper'"),
-    ({"kind": "min_length", "chars": 0}, "recipe.clean[1].chars", "got 0"),
-    ({"kind": "collapse_whitespace", "keep_newlines": "yes"}, "recipe.clean[1].keep_newlines", "'yes'"),
-    ({"kind": "strip_control", "keep": 5}, "recipe.clean[1].keep", "5"),
-    ({"kind": "dedupe", "by": "hash"}, "recipe.clean[1].by", "unknown key"),
-])
+@pytest.mark.parametrize(
+    ("table", "key", "shown"),
+    [
+        ({"kind": "trim"}, "recipe.clean[1].kind", "'normalize', 'lowercase'"),
+        ({}, "recipe.clean[1].kind", "missing"),
+        ({"kind": "normalize", "form": "nfc"}, "recipe.clean[1].form", "got 'nfc'"),
+        ({"kind": "lowercase", "mode": "upper"}, "recipe.clean[1].mode", "'upper'"),
+        ({"kind": "min_length", "chars": 0}, "recipe.clean[1].chars", "got 0"),
+        ({"kind": "collapse_whitespace", "keep_newlines": "yes"}, "recipe.clean[1].keep_newlines", "'yes'"),
+        ({"kind": "strip_control", "keep": 5}, "recipe.clean[1].keep", "5"),
+        ({"kind": "dedupe", "by": "hash"}, "recipe.clean[1].by", "unknown key"),
+    ],
+)
 def test_parse_step_errors_name_key_and_value(table: dict[str, Any], key: str, shown: str) -> None:
     """Invalid step tables raise RecipeError naming the key path and the bad value or the choices."""
     with pytest.raises(RecipeError) as info:
@@ -283,8 +295,10 @@ def test_parse_step_errors_name_key_and_value(table: dict[str, Any], key: str, s
 
 
 @settings(max_examples=300, deadline=None)
-@given(docs=st.lists(st.text(alphabet=st.characters(exclude_categories=("Cs",)), max_size=30), max_size=6),
-       mode=st.sampled_from(["lower", "casefold"]))
+@given(
+    docs=st.lists(st.text(alphabet=st.characters(exclude_categories=("Cs",)), max_size=30), max_size=6),
+    mode=st.sampled_from(["lower", "casefold"]),
+)
 def test_lowercase_fast_path_equals_python(docs: list[str], mode: str) -> None:
     """The Arrow-backed lowercase step gives exactly str.lower / str.casefold on any text."""
     from seqpipe.clean.lowercase import Lowercase

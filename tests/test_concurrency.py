@@ -39,8 +39,9 @@ def fingerprint_of(d: Path) -> str:
     return str(json.loads((d / MANIFEST_NAME).read_text())["dataset_fingerprint"])
 
 
-def test_second_build_fails_fast_while_first_holds_the_lock(project: Path, tmp_path: Path,
-                                                            monkeypatch: pytest.MonkeyPatch) -> None:
+def test_second_build_fails_fast_while_first_holds_the_lock(
+    project: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     """While a build holds the directory (paused inside its lock), a CLI build into the same
     directory exits 5 naming the lock file and the holder's PID, an API build raises
     BuildLockedError; the first build then completes and verifies."""
@@ -91,8 +92,16 @@ def test_two_cli_builds_started_together(tmp_path: Path) -> None:
     expected = fingerprint_of(build_dir(recipe, tmp_path / "reference"))
     for attempt in range(3):  # builds take over a second; they overlap unless the machine stalls
         out = tmp_path / f"out-{attempt}"
-        procs = [subprocess.Popen([sys.executable, "-m", "seqpipe.cli", *build_args(recipe, out)], cwd=REPO,
-                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True) for _ in range(2)]
+        procs = [
+            subprocess.Popen(
+                [sys.executable, "-m", "seqpipe.cli", *build_args(recipe, out)],
+                cwd=REPO,
+                stdout=subprocess.PIPE,
+                stderr=subprocess.PIPE,
+                text=True,
+            )
+            for _ in range(2)
+        ]
         results = [(p, *p.communicate(timeout=300)) for p in procs]
         codes = sorted(p.returncode for p, _, _ in results)
         assert codes in ([0, 0], [0, EXIT_LOCKED]), [(p.returncode, err) for p, _, err in results]
@@ -137,8 +146,9 @@ def test_live_or_foreign_lock_is_respected(built_dataset: Path, project: Path, h
     before = (built_dataset / MANIFEST_NAME).read_bytes()
     sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
     try:
-        pid, host = (sleeper.pid, socket.gethostname()) if holder == "live-process" else \
-            (_dead_pid(), "elsewhere.invalid")
+        pid, host = (
+            (sleeper.pid, socket.gethostname()) if holder == "live-process" else (_dead_pid(), "elsewhere.invalid")
+        )
         lock = _write_lock(built_dataset, pid, host)
         proc = run_cli(build_args(project, built_dataset))
     finally:
@@ -212,4 +222,3 @@ def test_verify_against_unusable_manifest(built_dataset: Path, tmp_path: Path) -
     for path in (tmp_path / "bad.json", tmp_path / "absent.json"):
         code, report = _verify_json(str(built_dataset), "--against", str(path))
         assert code == 1 and [p["kind"] for p in report["problems"]] == ["manifest"]
-

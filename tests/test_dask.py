@@ -25,8 +25,7 @@ from seqpipe.manifest import MANIFEST_NAME  # noqa: E402
 @pytest.fixture(scope="module")
 def client() -> Iterator[Any]:
     """One two-process local cluster for the whole module (start-up is the slow part)."""
-    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                       dashboard_address=None)
+    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None)
     with cluster, distributed.Client(cluster) as c:
         yield c
 
@@ -44,8 +43,13 @@ def corpus(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
 def test_cluster_build_equals_one_worker(client: Any, corpus: tuple[Path, Path], tmp_path: Path) -> None:
     """A build through client.get_executor(pure=False) writes the workers=1 bytes."""
     root, reference = corpus
-    got = build(make_recipe(root), tmp_path / "out", executor=executor_for_client(client), progress=False,
-                part_bytes=SMALL_PARTS)
+    got = build(
+        make_recipe(root),
+        tmp_path / "out",
+        executor=executor_for_client(client),
+        progress=False,
+        part_bytes=SMALL_PARTS,
+    )
     assert got.parts_total > 3
     files = dataset_files(got.directory)
     assert files[MANIFEST_NAME] == dataset_files(reference)[MANIFEST_NAME]
@@ -90,8 +94,14 @@ def test_build_survives_a_killed_worker(client: Any, corpus: tuple[Path, Path], 
     root, reference = corpus
     marker = tmp_path / "crashed"
     ex = CrashOnceExecutor(executor_for_client(client), marker)
-    got = build(make_recipe(root), tmp_path / "out", executor=ex, progress=False, part_bytes=SMALL_PARTS,
-                cache_dir=tmp_path / "cache")
+    got = build(
+        make_recipe(root),
+        tmp_path / "out",
+        executor=ex,
+        progress=False,
+        part_bytes=SMALL_PARTS,
+        cache_dir=tmp_path / "cache",
+    )
     assert marker.exists()  # the crash did happen
     assert dataset_files(got.directory) == dataset_files(reference)
     # both workers are back (the nanny restarted the dead one) for any later test

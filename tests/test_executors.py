@@ -120,7 +120,8 @@ def blas_setting(_: int) -> tuple[str | None, int]:
 
 @pytest.mark.skipif(not os.path.exists("/proc/self/status"), reason="reads /proc (Linux)")
 def test_spawned_workers_start_one_blas_thread_and_the_caller_keeps_its_environment(
-        monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
     """OpenBLAS reads OPENBLAS_NUM_THREADS at import (its documented setting): a worker
     spawned by the build gets 1, so no idle BLAS threads spin beside the tasks."""
     import multiprocessing

@@ -35,8 +35,25 @@ from seqpipe.sources.text import _last_paragraph_cut_re
 # A rich alphabet: letters, every blank, every line end, multi-byte characters, a BOM (which
 # may land at the start of the file or in the middle), NUL, and bytes that are not UTF-8
 # (a lone continuation byte, 0xFF, a truncated three-byte sequence).
-_TOKENS = [b"a", b"Zq", b" ", b"\t", b"\x0b", b"\x0c", b"\n", b"\n", b"\r", b"\r\n", b"\n\n", b"  \n",
-           b"\xc3\xa9", b"\xe2\x82\xac", b"\xf0\x9f\x9a\xa2", b"\xef\xbb\xbf", b"\x00"]
+_TOKENS = [
+    b"a",
+    b"Zq",
+    b" ",
+    b"\t",
+    b"\x0b",
+    b"\x0c",
+    b"\n",
+    b"\n",
+    b"\r",
+    b"\r\n",
+    b"\n\n",
+    b"  \n",
+    b"\xc3\xa9",
+    b"\xe2\x82\xac",
+    b"\xf0\x9f\x9a\xa2",
+    b"\xef\xbb\xbf",
+    b"\x00",
+]
 _BAD = [b"\x80", b"\xff", b"\xe2\x82"]
 _valid = st.lists(st.sampled_from(_TOKENS), max_size=120).map(b"".join)
 _any = st.lists(st.sampled_from(_TOKENS + _BAD), max_size=120).map(b"".join)
@@ -63,12 +80,19 @@ def _read(src: TextSource, path: Path, parts: list[Part], batch: int, slow: bool
 
 
 @_SETTINGS
-@given(data=_mixed, mode=st.sampled_from(["line", "paragraph"]), target=st.integers(1, 64),
-       batch=st.integers(1, 64), limit=st.sampled_from([1, 3, 8, 40, 1 << 20]),
-       oversize=st.sampled_from(["error", "skip", "truncate"]),
-       invalid=st.sampled_from(["error", "replace", "skip"]), compressed=st.booleans())
-def test_fast_reader_equals_exact_reader(data: bytes, mode: str, target: int, batch: int, limit: int,
-                                         oversize: str, invalid: str, compressed: bool) -> None:
+@given(
+    data=_mixed,
+    mode=st.sampled_from(["line", "paragraph"]),
+    target=st.integers(1, 64),
+    batch=st.integers(1, 64),
+    limit=st.sampled_from([1, 3, 8, 40, 1 << 20]),
+    oversize=st.sampled_from(["error", "skip", "truncate"]),
+    invalid=st.sampled_from(["error", "replace", "skip"]),
+    compressed=st.booleans(),
+)
+def test_fast_reader_equals_exact_reader(
+    data: bytes, mode: str, target: int, batch: int, limit: int, oversize: str, invalid: str, compressed: bool
+) -> None:
     """Fast and exact readers give the same documents, counters and errors for any bytes and cuts."""
     src = _source(mode, max_document_bytes=limit, oversize=oversize, invalid_utf8=invalid)
     with tempfile.TemporaryDirectory() as tmp:
@@ -152,8 +176,12 @@ def test_result_does_not_keep_the_buffer_exported() -> None:
 
 
 @_SETTINGS
-@given(data=st.lists(st.sampled_from([b"a", b" ", b"\t", b"\x0c", b"\n", b"\n\n", b"\r", b"\r\n", b"\xc3\xa9"]),
-                     max_size=200).map(b"".join), frm=st.integers(0, 250))
+@given(
+    data=st.lists(
+        st.sampled_from([b"a", b" ", b"\t", b"\x0c", b"\n", b"\n\n", b"\r", b"\r\n", b"\xc3\xa9"]), max_size=200
+    ).map(b"".join),
+    frm=st.integers(0, 250),
+)
 def test_last_paragraph_cut_equals_the_separator_regex(data: bytes, frm: int) -> None:
     """The numpy search for the last separator ends where the separator regex's last match does."""
     frm = min(frm, len(data))

@@ -21,18 +21,37 @@ HEX = "0" * 32
 
 def minimal() -> dict[str, Any]:
     recipe = {"format": 1}
-    return seal({
-        "format": FORMAT, "seqpipe_version": "0", "recipe": recipe, "recipe_fingerprint": hash_json(recipe),
-        "inputs": [{"path": "a.txt", "size": 3, "hash": HEX}],
-        "tokenizer": {"kind": "words", "vocab_size": 5, "files": []},
-        "vocabulary": {"path": "vocab.arrow", "bytes": 10, "hash": HEX, "size": 5},
-        "dtype": "uint8",
-        "splits": {"train": {"documents": 1, "tokens": 4, "docs": {"path": "docs/train.arrow", "bytes": 1,
-                                                                    "hash": HEX},
-                             "shards": [{"path": "shards/train/000000.arrow", "tokens": 4, "documents": 1,
-                                         "first": 0, "bytes": 9, "file_hash": HEX, "token_hash": HEX}]}},
-        "summary": {},
-    })
+    return seal(
+        {
+            "format": FORMAT,
+            "seqpipe_version": "0",
+            "recipe": recipe,
+            "recipe_fingerprint": hash_json(recipe),
+            "inputs": [{"path": "a.txt", "size": 3, "hash": HEX}],
+            "tokenizer": {"kind": "words", "vocab_size": 5, "files": []},
+            "vocabulary": {"path": "vocab.arrow", "bytes": 10, "hash": HEX, "size": 5},
+            "dtype": "uint8",
+            "splits": {
+                "train": {
+                    "documents": 1,
+                    "tokens": 4,
+                    "docs": {"path": "docs/train.arrow", "bytes": 1, "hash": HEX},
+                    "shards": [
+                        {
+                            "path": "shards/train/000000.arrow",
+                            "tokens": 4,
+                            "documents": 1,
+                            "first": 0,
+                            "bytes": 9,
+                            "file_hash": HEX,
+                            "token_hash": HEX,
+                        }
+                    ],
+                }
+            },
+            "summary": {},
+        }
+    )
 
 
 def test_sealed_manifest_validates() -> None:
@@ -41,16 +60,19 @@ def test_sealed_manifest_validates() -> None:
     assert validate(json.loads(dumps(m))) == m
 
 
-@pytest.mark.parametrize("edit", [
-    lambda m: m.update(format="seqpipe-dataset/2"),
-    lambda m: m.update(extra=1),
-    lambda m: m["splits"]["train"]["shards"][0].update(tokens=5),
-    lambda m: m["splits"]["train"].update(tokens=3),
-    lambda m: m["vocabulary"].update(hash="XYZ"),
-    lambda m: m.update(dtype="float32"),
-    lambda m: m["recipe"].update(format=2),
-    lambda m: m.pop("inputs"),
-])
+@pytest.mark.parametrize(
+    "edit",
+    [
+        lambda m: m.update(format="seqpipe-dataset/2"),
+        lambda m: m.update(extra=1),
+        lambda m: m["splits"]["train"]["shards"][0].update(tokens=5),
+        lambda m: m["splits"]["train"].update(tokens=3),
+        lambda m: m["vocabulary"].update(hash="XYZ"),
+        lambda m: m.update(dtype="float32"),
+        lambda m: m["recipe"].update(format=2),
+        lambda m: m.pop("inputs"),
+    ],
+)
 def test_edits_are_refused(edit: Any) -> None:
     """Any edit (version, unknown key, counts, hashes, types) is refused with ManifestError."""
     m = minimal()
@@ -75,8 +97,7 @@ def test_hand_edited_value_breaks_manifest_hash() -> None:
         validate(m)
 
 
-@pytest.mark.parametrize("rel", ["/etc/passwd", "../outside.arrow", "shards/../../x", "", "C:/x",
-                                 "shards\\..\\x"])
+@pytest.mark.parametrize("rel", ["/etc/passwd", "../outside.arrow", "shards/../../x", "", "C:/x", "shards\\..\\x"])
 def test_escaping_paths_are_refused(tmp_path: Path, rel: str) -> None:
     """Absolute paths, '..', empty parts and drive/backslash forms are refused."""
     with pytest.raises(UnsafePathError):
@@ -112,9 +133,11 @@ def test_read_manifest_limits(tmp_path: Path) -> None:
         read_manifest(tmp_path)
 
 
-JSON = st.recursive(st.none() | st.booleans() | st.integers() | st.text(max_size=8),
-                    lambda kids: st.lists(kids, max_size=4) | st.dictionaries(st.text(max_size=8), kids, max_size=4),
-                    max_leaves=30)
+JSON = st.recursive(
+    st.none() | st.booleans() | st.integers() | st.text(max_size=8),
+    lambda kids: st.lists(kids, max_size=4) | st.dictionaries(st.text(max_size=8), kids, max_size=4),
+    max_leaves=30,
+)
 
 
 @settings(max_examples=200, deadline=None)

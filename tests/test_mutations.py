@@ -76,11 +76,11 @@ def mutate(rnd: random.Random, raw: bytes) -> tuple[str, bytes | None]:
         return "remove", None
     pos = rnd.randrange(len(raw))
     if kind == "byte":
-        return f"byte {pos}", raw[:pos] + bytes([raw[pos] ^ rnd.randrange(1, 256)]) + raw[pos + 1:]
+        return f"byte {pos}", raw[:pos] + bytes([raw[pos] ^ rnd.randrange(1, 256)]) + raw[pos + 1 :]
     if kind == "truncate":
         return f"truncate to {pos}", raw[:pos]
     run = rnd.randint(1, min(64, len(raw) - pos))
-    return f"delete {run} at {pos}", raw[:pos] + raw[pos + run:]
+    return f"delete {run} at {pos}", raw[:pos] + raw[pos + run :]
 
 
 def same_json(a: bytes, b: bytes | None) -> bool:
@@ -93,10 +93,12 @@ def same_json(a: bytes, b: bytes | None) -> bool:
 
 def run_mutations(d: Path, count: int, seed: int) -> None:
     m = manifest_of(d)
-    groups = {"shard": [s["path"] for sp in m["splits"].values() for s in sp["shards"]],
-              "docs": [sp["docs"]["path"] for sp in m["splits"].values()],
-              "vocabulary": [f["path"] for f in listed_files(m) if f["path"] == m["vocabulary"]["path"]],
-              "manifest": [MANIFEST_NAME]}
+    groups = {
+        "shard": [s["path"] for sp in m["splits"].values() for s in sp["shards"]],
+        "docs": [sp["docs"]["path"] for sp in m["splits"].values()],
+        "vocabulary": [f["path"] for f in listed_files(m) if f["path"] == m["vocabulary"]["path"]],
+        "manifest": [MANIFEST_NAME],
+    }
     assert all(groups.values()) and len(groups["shard"]) >= 5
     rnd = random.Random(seed)
     missed, neutral, done = [], 0, 0
@@ -149,8 +151,11 @@ def _move_out(d: Path, rel: str) -> Path:
 def _escape_by_path(d: Path, style: str) -> list[str]:
     rel = manifest_of(d)["splits"]["train"]["shards"][0]["path"]
     target = _move_out(d, rel)
-    hostile = {"absolute": str(target), "parent": f"../outside/{target.name}",
-               "nested-parent": f"shards/train/../../../outside/{target.name}"}[style]
+    hostile = {
+        "absolute": str(target),
+        "parent": f"../outside/{target.name}",
+        "nested-parent": f"shards/train/../../../outside/{target.name}",
+    }[style]
     reseal(d, lambda m: m["splits"]["train"]["shards"][0].update(path=hostile))
     return [hostile]
 
@@ -208,8 +213,12 @@ KNOWN_BUGS: dict[str, str] = {}  # case name -> reason, for a refusal that does 
 
 
 def _hostile_params() -> list[Any]:
-    return [pytest.param(name, marks=pytest.mark.xfail(strict=True, reason=KNOWN_BUGS[name]))
-            if name in KNOWN_BUGS else name for name in sorted(CASES)]
+    return [
+        pytest.param(name, marks=pytest.mark.xfail(strict=True, reason=KNOWN_BUGS[name]))
+        if name in KNOWN_BUGS
+        else name
+        for name in sorted(CASES)
+    ]
 
 
 def _access(ds: Dataset, what: str) -> Any:
@@ -241,11 +250,14 @@ def test_hostile_manifest_is_refused(name: str, tmp_path: Path) -> None:
     assert any(p.kind == "unsafe" and p.path == case["path"] for p in report.problems), report.problems
 
 
-@pytest.mark.parametrize("name", [
-    pytest.param("\x00.arrow", id="nul-byte"),
-    pytest.param("x" * 4000 + ".arrow", id="over-long-name"),
-    pytest.param("y" * 200 + ".arrow", id="long-but-valid-name"),
-])
+@pytest.mark.parametrize(
+    "name",
+    [
+        pytest.param("\x00.arrow", id="nul-byte"),
+        pytest.param("x" * 4000 + ".arrow", id="over-long-name"),
+        pytest.param("y" * 200 + ".arrow", id="long-but-valid-name"),
+    ],
+)
 def test_paths_the_system_cannot_look_up_are_refused(dataset: Path, name: str) -> None:
     """A re-sealed shard path the operating system cannot look up gives verify a problem for it and
     the stream a DatasetError, never a bare OSError or ValueError."""
@@ -312,8 +324,9 @@ BAD_SHARDS: dict[str, Callable[[bytes, int], bytes]] = {
     "short": lambda raw, n: _ipc_file(_shard_table(pa.array(np.zeros(n - 1, np.uint8)))),
     "long": lambda raw, n: _ipc_file(_shard_table(pa.array(np.zeros(n + 1, np.uint8)))),
     "nulls": lambda raw, n: _ipc_file(_shard_table(pa.array([0] * (n - 1) + [None], pa.uint8()))),
-    "two-columns": lambda raw, n: _ipc_file(pa.table({"ids": np.zeros(n, np.uint8), "x": np.zeros(n, np.uint8)})
-                                            .replace_schema_metadata(SHARD_META)),
+    "two-columns": lambda raw, n: _ipc_file(
+        pa.table({"ids": np.zeros(n, np.uint8), "x": np.zeros(n, np.uint8)}).replace_schema_metadata(SHARD_META)
+    ),
     "name-not-utf8": lambda raw, n: _not_utf8_name(raw),
 }
 SHARD_BUGS: dict[str, str] = {}  # case name -> reason, for a refusal that does not work yet
@@ -329,8 +342,13 @@ def _read_all(d: Path) -> None:
             stream.slice(0, len(stream))
 
 
-@pytest.mark.parametrize("case", [pytest.param(c, marks=pytest.mark.xfail(strict=True, reason=SHARD_BUGS[c]))
-                                  if c in SHARD_BUGS else c for c in sorted(BAD_SHARDS)])
+@pytest.mark.parametrize(
+    "case",
+    [
+        pytest.param(c, marks=pytest.mark.xfail(strict=True, reason=SHARD_BUGS[c])) if c in SHARD_BUGS else c
+        for c in sorted(BAD_SHARDS)
+    ],
+)
 def test_malformed_shard_raises_shard_corrupt(tiny: Path, case: str) -> None:
     """A malformed or wrongly shaped shard, read without verification, raises ShardCorruptError."""
     info = manifest_of(tiny)["splits"]["train"]["shards"][1]
@@ -372,9 +390,13 @@ TABLE_CASES: dict[str, tuple[str, Callable[[bytes, int], bytes]]] = {
 TABLE_BUGS: dict[str, str] = {}  # case name -> reason, for a refusal that does not work yet
 
 
-
-@pytest.mark.parametrize("case", [pytest.param(c, marks=pytest.mark.xfail(strict=True, reason=TABLE_BUGS[c]))
-                                  if c in TABLE_BUGS else c for c in sorted(TABLE_CASES)])
+@pytest.mark.parametrize(
+    "case",
+    [
+        pytest.param(c, marks=pytest.mark.xfail(strict=True, reason=TABLE_BUGS[c])) if c in TABLE_BUGS else c
+        for c in sorted(TABLE_CASES)
+    ],
+)
 def test_malformed_tables_raise_dataset_errors(tiny: Path, case: str) -> None:
     """A malformed docs table or vocabulary, read without verification, raises a DatasetError
     (ShardCorruptError for unreadable or wrongly typed files), never another exception."""
@@ -382,8 +404,7 @@ def test_malformed_tables_raise_dataset_errors(tiny: Path, case: str) -> None:
     m = manifest_of(tiny)
     rel = m["splits"]["train"]["docs"]["path"] if which == "docs" else m["vocabulary"]["path"]
     path = tiny / rel
-    with replaced(path, make(path.read_bytes(), m["splits"]["train"]["documents"])), \
-            pytest.raises(DatasetError):
+    with replaced(path, make(path.read_bytes(), m["splits"]["train"]["documents"])), pytest.raises(DatasetError):
         _read_all(tiny)
 
 
@@ -394,12 +415,15 @@ def test_every_byte_flip_read_unverified_is_ours_or_well_shaped(tiny: Path, requ
     skip_unless_full(request)
     m = manifest_of(tiny)
     escaped = []
-    for rel in (m["splits"]["train"]["shards"][0]["path"], m["splits"]["train"]["docs"]["path"],
-                m["vocabulary"]["path"]):
+    for rel in (
+        m["splits"]["train"]["shards"][0]["path"],
+        m["splits"]["train"]["docs"]["path"],
+        m["vocabulary"]["path"],
+    ):
         path = tiny / rel
         raw = path.read_bytes()
         for pos in range(len(raw)):
-            flipped = raw[:pos] + bytes([raw[pos] ^ 0xFF]) + raw[pos + 1:]
+            flipped = raw[:pos] + bytes([raw[pos] ^ 0xFF]) + raw[pos + 1 :]
             with replaced(path, flipped), warnings.catch_warnings():
                 warnings.simplefilter("error")
                 try:

@@ -23,8 +23,7 @@ def test_readme_recipe_is_valid() -> None:
     (recipe_text,) = [b for b in blocks("toml") if "[[sources]]" in b]
     recipe = parse_recipe(recipe_text)
     assert recipe.vocab.specials == ("<unk>", "<pad>", "<bos>", "<eos>")
-    assert [s.kind for s in recipe.clean] == ["normalize", "lowercase", "collapse_whitespace", "min_length",
-                                              "dedupe"]
+    assert [s.kind for s in recipe.clean] == ["normalize", "lowercase", "collapse_whitespace", "min_length", "dedupe"]
 
 
 def test_readme_python_examples_run(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:

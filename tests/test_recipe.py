@@ -50,17 +50,20 @@ def test_canonical_form_round_trips_and_fingerprint_is_stable() -> None:
     assert parse_recipe(GOOD.replace("min_count = 2", "min_count = 3")).fingerprint != r.fingerprint
 
 
-@pytest.mark.parametrize(("change", "match"), [
-    (("min_count = 2", "min_cout = 2"), r"recipe\.vocab\.min_cout: unknown key \(did you mean 'min_count'\?\)"),
-    (("min_count = 2", 'min_count = "two"'), r"recipe\.vocab\.min_count: expected an integer, got 'two'"),
-    (("tokens = 1000", "tokens = -3"), r"recipe\.shards\.tokens: expected a positive integer, got -3"),
-    (('kind = "chars"', 'kind = "charz"'), r"recipe\.tokenizer\.kind: expected one of .*did you mean 'chars'"),
-    (("train = 0.8", "train = 0.9"), r"recipe\.splits\.train: train \+ validation \+ test must be 1"),
-    (('document = "line"', 'document = "page"'), r"recipe\.sources\[0\]\.document"),
-    (('[[clean]]\nkind = "lowercase"', '[[clean]]\nkind = "lowercas"'), r"recipe\.clean\[0\]\.kind"),
-    (("[shards]", "[shardz]"), r"recipe\.shardz: unknown key \(did you mean 'shards'\?\)"),
-    (("[[sources]]", "[[source]]"), r"recipe\.source: unknown key"),
-])
+@pytest.mark.parametrize(
+    ("change", "match"),
+    [
+        (("min_count = 2", "min_cout = 2"), r"recipe\.vocab\.min_cout: unknown key \(did you mean 'min_count'\?\)"),
+        (("min_count = 2", 'min_count = "two"'), r"recipe\.vocab\.min_count: expected an integer, got 'two'"),
+        (("tokens = 1000", "tokens = -3"), r"recipe\.shards\.tokens: expected a positive integer, got -3"),
+        (('kind = "chars"', 'kind = "charz"'), r"recipe\.tokenizer\.kind: expected one of .*did you mean 'chars'"),
+        (("train = 0.8", "train = 0.9"), r"recipe\.splits\.train: train \+ validation \+ test must be 1"),
+        (('document = "line"', 'document = "page"'), r"recipe\.sources\[0\]\.document"),
+        (('[[clean]]\nkind = "lowercase"', '[[clean]]\nkind = "lowercas"'), r"recipe\.clean\[0\]\.kind"),
+        (("[shards]", "[shardz]"), r"recipe\.shardz: unknown key \(did you mean 'shards'\?\)"),
+        (("[[sources]]", "[[source]]"), r"recipe\.source: unknown key"),
+    ],
+)
 def test_bad_recipes_name_the_key(change: tuple[str, str], match: str) -> None:
     """Each mistake is one RecipeError whose message names the key path and the bad value."""
     with pytest.raises(RecipeError, match=match):

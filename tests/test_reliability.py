@@ -86,8 +86,14 @@ def kill_setup(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     shutil.rmtree(old / PRIVATE)  # a rebuild over it then costs as much as a fresh one
     reference, previous = fingerprint_of(root / "reference"), fingerprint_of(old)
     assert reference and previous and reference != previous
-    return {"root": root, "recipe": recipe, "duration": duration, "reference": reference, "old": old,
-            "old_fingerprint": previous}
+    return {
+        "root": root,
+        "recipe": recipe,
+        "duration": duration,
+        "reference": reference,
+        "old": old,
+        "old_fingerprint": previous,
+    }
 
 
 def kill_delays(count: int, duration: float, seed: int) -> Iterator[float]:
@@ -113,8 +119,12 @@ def run_kills(setup: dict[str, Any], count: int, seed: int) -> dict[str, int]:
         if i % 2:  # every other run rebuilds over an older complete dataset
             shutil.copytree(setup["old"], out)
             allowed.add(setup["old_fingerprint"])
-        proc = subprocess.Popen([sys.executable, "-m", "seqpipe.cli", *build_args(setup["recipe"], out)],
-                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, cwd=REPO)
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "seqpipe.cli", *build_args(setup["recipe"], out)],
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+            cwd=REPO,
+        )
         try:
             code = proc.wait(timeout=next(delays))
             assert code == 0
@@ -174,8 +184,13 @@ sys.exit(main(sys.argv[3:]))
 
 
 def run_child(point: str, n: int, recipe: Path, out: Path) -> int:
-    proc = subprocess.run([sys.executable, "-c", CHILD, point, str(n), *build_args(recipe, out)],
-                          capture_output=True, text=True, cwd=REPO, timeout=120)
+    proc = subprocess.run(
+        [sys.executable, "-c", CHILD, point, str(n), *build_args(recipe, out)],
+        capture_output=True,
+        text=True,
+        cwd=REPO,
+        timeout=120,
+    )
     assert "Traceback" not in proc.stderr, proc.stderr
     return proc.returncode
 
@@ -189,8 +204,14 @@ def small_setup(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     old_recipe.write_text(recipe.read_text().replace("tokens = 300", "tokens = 700"))
     old = build_dir(old_recipe, root / "old")
     assert fingerprint_of(reference) and fingerprint_of(old) not in (None, fingerprint_of(reference))
-    return {"root": root, "recipe": recipe, "reference": reference, "old": old,
-            "reference_fingerprint": fingerprint_of(reference), "old_fingerprint": fingerprint_of(old)}
+    return {
+        "root": root,
+        "recipe": recipe,
+        "reference": reference,
+        "old": old,
+        "reference_fingerprint": fingerprint_of(reference),
+        "old_fingerprint": fingerprint_of(old),
+    }
 
 
 def test_kill_at_publish_steps(small_setup: dict[str, Any]) -> None:
@@ -275,18 +296,62 @@ compression = "zstd"
 """
 BASES = [parse_recipe(_BASE_TOML.replace("{kind}", k)).to_dict() for k in ("words", "chars", "bytes", "bpe")]
 
-_WORDS = ["", "none", "zstd", "text", "jsonl", "parquet", "arrow", "words", "bpe", "chars", "bytes",
-          "NFC", "NFKD", "paragraph", "line", "file", "error", "skip", "replace", "truncate", "auto",
-          "<unk>", "<eos>", "[", "(?P<", "\\", "*", "**/*.txt", "../x", "kind", "format"]
-_LEAF = (st.none() | st.booleans() | st.integers() | st.integers(min_value=-(2**70), max_value=2**70)
-         | st.floats() | st.text(max_size=12) | st.sampled_from(_WORDS))
-VALUES = st.recursive(_LEAF, lambda inner: st.lists(inner, max_size=4)
-                      | st.dictionaries(st.sampled_from(_WORDS) | st.text(max_size=6), inner, max_size=4),
-                      max_leaves=8)
+_WORDS = [
+    "",
+    "none",
+    "zstd",
+    "text",
+    "jsonl",
+    "parquet",
+    "arrow",
+    "words",
+    "bpe",
+    "chars",
+    "bytes",
+    "NFC",
+    "NFKD",
+    "paragraph",
+    "line",
+    "file",
+    "error",
+    "skip",
+    "replace",
+    "truncate",
+    "auto",
+    "<unk>",
+    "<eos>",
+    "[",
+    "(?P<",
+    "\\",
+    "*",
+    "**/*.txt",
+    "../x",
+    "kind",
+    "format",
+]
+_LEAF = (
+    st.none()
+    | st.booleans()
+    | st.integers()
+    | st.integers(min_value=-(2**70), max_value=2**70)
+    | st.floats()
+    | st.text(max_size=12)
+    | st.sampled_from(_WORDS)
+)
+VALUES = st.recursive(
+    _LEAF,
+    lambda inner: (
+        st.lists(inner, max_size=4) | st.dictionaries(st.sampled_from(_WORDS) | st.text(max_size=6), inner, max_size=4)
+    ),
+    max_leaves=8,
+)
 
 _LIKE: dict[type, st.SearchStrategy[Any]] = {
-    bool: st.booleans(), int: st.integers(min_value=-3, max_value=1 << 20),
-    float: st.floats(min_value=-0.5, max_value=1.5), str: st.sampled_from(_WORDS) | st.text(max_size=6)}
+    bool: st.booleans(),
+    int: st.integers(min_value=-3, max_value=1 << 20),
+    float: st.floats(min_value=-0.5, max_value=1.5),
+    str: st.sampled_from(_WORDS) | st.text(max_size=6),
+}
 
 
 def _paths(obj: Any, prefix: tuple[Any, ...] = ()) -> Iterator[tuple[Any, ...]]:
@@ -320,8 +385,7 @@ def _mutate(data: st.DataObject, table: dict[str, Any]) -> None:
         parent[path[-1]] = data.draw(VALUES)
 
 
-@settings(max_examples=400 if full_tests() else 150, deadline=None,
-          suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=400 if full_tests() else 150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.data())
 def test_random_recipe_tables_give_recipe_or_recipe_error(data: st.DataObject) -> None:
     """Mutated recipe tables (wrong types, unknown keys, random values) give a Recipe that
@@ -351,6 +415,7 @@ def _recipe_case(text: str, corpus: Callable[[Path], None] | None = None) -> Cal
             corpus(tmp)
         (tmp / "recipe.toml").write_text(text)
         return build_args(tmp / "recipe.toml", tmp / "out")
+
     return setup
 
 
@@ -376,6 +441,7 @@ def _dataset_case(edit: Callable[[Path], None], *args: str) -> Callable[[Path], 
         d = build_dir(write_project(tmp / "src"), tmp / "dataset")
         edit(d)
         return [a.replace("DIR", str(d)) for a in args]
+
     return setup
 
 
@@ -415,12 +481,23 @@ CLI_CASES: dict[str, tuple[Callable[[Path], list[str]], int, str]] = {
     "verify-missing-dir": (lambda tmp: ["verify", str(tmp / "nothing-here")], 1, "problem"),
     "inspect-garbled-manifest": (_dataset_case(_garble_manifest, "inspect", "DIR"), 4, "manifest.json"),
     "inspect-missing-dir": (lambda tmp: ["inspect", str(tmp / "nothing-here")], 4, "nothing-here"),
-    "batches-truncated-shard": (_dataset_case(_truncate_shard, "batches", "DIR", "--batch-size", "2",
-                                              "--steps", "8", "--limit", "1"), 4, "000000.arrow"),
-    "batches-verify-corrupt": (_dataset_case(_flip_shard_byte, "batches", "DIR", "--batch-size", "2",
-                                             "--steps", "8", "--limit", "1", "--verify"), 1, "corrupt"),
-    "batches-bad-size": (_dataset_case(lambda d: None, "batches", "DIR", "--batch-size", "0", "--steps", "8"),
-                         2, "batch_size"),
+    "batches-truncated-shard": (
+        _dataset_case(_truncate_shard, "batches", "DIR", "--batch-size", "2", "--steps", "8", "--limit", "1"),
+        4,
+        "000000.arrow",
+    ),
+    "batches-verify-corrupt": (
+        _dataset_case(
+            _flip_shard_byte, "batches", "DIR", "--batch-size", "2", "--steps", "8", "--limit", "1", "--verify"
+        ),
+        1,
+        "corrupt",
+    ),
+    "batches-bad-size": (
+        _dataset_case(lambda d: None, "batches", "DIR", "--batch-size", "0", "--steps", "8"),
+        2,
+        "batch_size",
+    ),
 }
 
 

@@ -18,8 +18,9 @@ PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), secti
 
 
 def small() -> MemoryDataset:
-    return dataset_from_documents({"train": [s.split() for s in TRAIN],
-                                   "validation": [["the", "cat", "sat"]], "test": [["the", "dog"], []]})
+    return dataset_from_documents(
+        {"train": [s.split() for s in TRAIN], "validation": [["the", "cat", "sat"]], "test": [["the", "dog"], []]}
+    )
 
 
 def test_report_is_strict_json() -> None:
@@ -28,8 +29,9 @@ def test_report_is_strict_json() -> None:
     text = json.dumps(report, allow_nan=False)
     assert json.loads(text) == report
     assert {"splits", "top_ngrams", "leakage", "perplexity", "notes"} <= set(report)
-    assert "predicted" in report["perplexity"] and "begin markers are never predicted" in \
-        report["perplexity"]["predicted"]
+    assert (
+        "predicted" in report["perplexity"] and "begin markers are never predicted" in report["perplexity"]["predicted"]
+    )
 
 
 def test_write_writes_markdown_json_and_plot(tmp_path: Path) -> None:
@@ -45,8 +47,7 @@ def test_write_writes_markdown_json_and_plot(tmp_path: Path) -> None:
     assert report["plots"] == ["rank_frequency.png"]
 
 
-def test_without_matplotlib_the_figures_are_still_written(tmp_path: Path,
-                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+def test_without_matplotlib_the_figures_are_still_written(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     """With matplotlib unimportable the Markdown says how to get plots and everything else is written."""
     for name in ("matplotlib", "matplotlib.figure", "matplotlib.backends", "matplotlib.backends.backend_agg"):
         monkeypatch.setitem(sys.modules, name, None)
@@ -57,8 +58,9 @@ def test_without_matplotlib_the_figures_are_still_written(tmp_path: Path,
     assert report["plots"] == []
 
 
-@pytest.mark.parametrize(("key", "value"), [("add_k", 0.0), ("ngram_n", 0), ("top_k", -1),
-                                            ("kn_discount", 1.5), ("progress", "yes")])
+@pytest.mark.parametrize(
+    ("key", "value"), [("add_k", 0.0), ("ngram_n", 0), ("top_k", -1), ("kn_discount", 1.5), ("progress", "yes")]
+)
 def test_bad_options_name_the_key(key: str, value: object) -> None:
     """A bad option raises RecipeError naming the option and the value."""
     with pytest.raises(RecipeError, match=key):
@@ -68,8 +70,12 @@ def test_bad_options_name_the_key(key: str, value: object) -> None:
 def test_dataset_without_train_reports_what_it_can() -> None:
     """Without a train split: per-split figures only, and a note saying so."""
     full = small()
-    only_val = MemoryDataset(vocabulary=full.vocabulary, encoder=full.encoder,
-                             parts={"validation": full.parts["validation"]}, fingerprint="x")
+    only_val = MemoryDataset(
+        vocabulary=full.vocabulary,
+        encoder=full.encoder,
+        parts={"validation": full.parts["validation"]},
+        fingerprint="x",
+    )
     report = corpus_report(only_val, progress=False)
     assert set(report["splits"]) == {"validation"} and "perplexity" not in report
     assert any("no 'train' split" in note for note in report["notes"])
@@ -93,10 +99,11 @@ def test_token_stream_input_is_read_like_an_array() -> None:
     for name, part in ds.parts.items():
         ids = part.stream
         cut = len(ids) // 2
-        chunked[name] = MemorySplit(stream=TokenStream([ids[:cut], ids[cut:]]),  # type: ignore[arg-type]
-                                    documents=part.documents)
-    other = MemoryDataset(vocabulary=ds.vocabulary, encoder=ds.encoder, parts=chunked,
-                          fingerprint=ds.fingerprint)
+        chunked[name] = MemorySplit(
+            stream=TokenStream([ids[:cut], ids[cut:]]),  # type: ignore[arg-type]
+            documents=part.documents,
+        )
+    other = MemoryDataset(vocabulary=ds.vocabulary, encoder=ds.encoder, parts=chunked, fingerprint=ds.fingerprint)
     assert corpus_report(other, progress=False) == corpus_report(ds, progress=False)
 
 
@@ -116,18 +123,25 @@ tokens = 200
 """
 
 # invented demo sentences (a ferry service's log), not a reference
-LINES = ["the ferry left the north dock at dawn", "fog on the water and a calm tide",
-         "cargo of rope and lanterns for the harbour", "the pilot wrote the tide in the ledger",
-         "a squall from the south kept the ferry at the dock"]
+LINES = [
+    "the ferry left the north dock at dawn",
+    "fog on the water and a calm tide",
+    "cargo of rope and lanterns for the harbour",
+    "the pilot wrote the tide in the ledger",
+    "a squall from the south kept the ferry at the dock",
+]
 
 
 def _contents(split: object, begin: int, end: int) -> list[tuple[int, ...]]:
     """Each document's ids without its begin/end markers, by plain Python slicing."""
     ids = split.stream.slice(0, split.num_tokens).tolist()  # type: ignore[attr-defined]
     out = []
-    for start, length in zip(split.documents.column("start").to_pylist(),  # type: ignore[attr-defined]
-                             split.documents.column("length").to_pylist(), strict=True):
-        doc = ids[start:start + length]
+    for start, length in zip(
+        split.documents.column("start").to_pylist(),  # type: ignore[attr-defined]
+        split.documents.column("length").to_pylist(),
+        strict=True,
+    ):
+        doc = ids[start : start + length]
         if doc and doc[0] == begin:
             doc = doc[1:]
         if doc and doc[-1] == end:
@@ -182,13 +196,20 @@ def test_vocabulary_too_large_for_trigram_keys() -> None:
 
     size = 1 << 21
     tokens = pa.array([b"<unk>", b"<pad>", b"<bos>", b"<eos>"] + [b"w%d" % i for i in range(size - 4)])
-    vocab = Vocabulary(tokens=tokens, counts=np.zeros(size, np.int64), n_special=4,
-                       roles={"unknown": 0, "padding": 1, "begin": 2, "end": 3})
+    vocab = Vocabulary(
+        tokens=tokens,
+        counts=np.zeros(size, np.int64),
+        n_special=4,
+        roles={"unknown": 0, "padding": 1, "begin": 2, "end": 3},
+    )
     stream = np.array([2, 5, size - 1, 5, 3], dtype=np.uint32)
     docs = pa.table({"start": pa.array([0], pa.int64()), "length": pa.array([5], pa.int64())})
-    ds = MemoryDataset(vocabulary=vocab, encoder=SpacedEncoder(WordTokenizer(), vocab),
-                       parts={"train": MemorySplit(stream, docs), "test": MemorySplit(stream, docs)},
-                       fingerprint="big")
+    ds = MemoryDataset(
+        vocabulary=vocab,
+        encoder=SpacedEncoder(WordTokenizer(), vocab),
+        parts={"train": MemorySplit(stream, docs), "test": MemorySplit(stream, docs)},
+        fingerprint="big",
+    )
     report = corpus_report(ds, progress=False)
     assert set(report["top_ngrams"]) == {"1", "2"} and "perplexity" not in report
     assert report["top_ngrams"]["2"][0]["ids"] in ([5, size - 1], [size - 1, 5])

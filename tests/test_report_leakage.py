@@ -21,14 +21,15 @@ TRAIN = ["the cat sat on the mat", "the dog sat on the log", "the cat saw the do
 def test_planted_duplicate_document_is_reported() -> None:
     """A validation document equal to a train document is found, with its example and train index;
     a test split without one reports none."""
-    docs = {"train": [s.split() for s in TRAIN],
-            "validation": [words("a new line here"), words("the dog sat on the log")],
-            "test": [words("the dog sat on the mat")]}
+    docs = {
+        "train": [s.split() for s in TRAIN],
+        "validation": [words("a new line here"), words("the dog sat on the log")],
+        "test": [words("the dog sat on the mat")],
+    }
     report = corpus_report(dataset_from_documents(docs), ngram_n=3, progress=False)
     val = report["leakage"]["documents"]["validation"]
     assert (val["checked"], val["duplicated"], val["share"]) == (2, 1, 0.5)
-    assert val["examples"] == [{"document": 1, "train_document": 1, "tokens": 6,
-                                "text": "the dog sat on the log"}]
+    assert val["examples"] == [{"document": 1, "train_document": 1, "tokens": 6, "text": "the dog sat on the log"}]
     assert val["text_duplicated"] == 1
     test = report["leakage"]["documents"]["test"]
     assert (test["duplicated"], test["examples"], test["text_duplicated"]) == (0, [], 0)
@@ -48,8 +49,7 @@ def test_duplicate_ids_with_different_text_are_still_found() -> None:
 def splits(draw: st.DrawFn) -> dict[str, list[list[str]]]:
     words = [chr(ord("a") + i) for i in range(draw(st.integers(1, 4)))]
     doc = st.lists(st.sampled_from(words), max_size=10)
-    return {"train": draw(st.lists(doc, min_size=1, max_size=5)),
-            "test": draw(st.lists(doc, max_size=5))}
+    return {"train": draw(st.lists(doc, min_size=1, max_size=5)), "test": draw(st.lists(doc, max_size=5))}
 
 
 @settings(max_examples=100, deadline=None)
@@ -61,8 +61,8 @@ def test_shared_ngram_share_matches_sets_of_tuples(docs: dict, n: int) -> None:
     def ids(doc: list[str]) -> list[int]:
         return ds.vocabulary.lookup(pa.array([w.encode() for w in doc], pa.binary())).tolist() if doc else []
 
-    train_windows = {tuple(ids(d)[i:i + n]) for d in docs["train"] for i in range(len(d) - n + 1)}
-    test_windows = [tuple(ids(d)[i:i + n]) for d in docs["test"] for i in range(len(d) - n + 1)]
+    train_windows = {tuple(ids(d)[i : i + n]) for d in docs["train"] for i in range(len(d) - n + 1)}
+    test_windows = [tuple(ids(d)[i : i + n]) for d in docs["test"] for i in range(len(d) - n + 1)]
     got = corpus_report(ds, ngram_n=n, progress=False)["leakage"]["ngrams"]["test"]
     assert got["windows"] == len(test_windows)
     assert got["shared"] == sum(w in train_windows for w in test_windows)

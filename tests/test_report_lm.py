@@ -25,8 +25,9 @@ TRAIN = ["the cat sat on the mat", "the dog sat on the log", "the cat saw the do
 
 def fitted(ds: MemoryDataset) -> tuple[lm.CountTables, Roles]:
     roles = Roles.of(ds.vocabulary)
-    tables = lm.CountTables.fit(lm.events(load_split(ds, "train", roles), roles),
-                                key_bits(roles.vocab_size), roles.vocab_size + 1)
+    tables = lm.CountTables.fit(
+        lm.events(load_split(ds, "train", roles), roles), key_bits(roles.vocab_size), roles.vocab_size + 1
+    )
     return tables, roles
 
 
@@ -46,7 +47,7 @@ def nltk_scores(model: object, ds: MemoryDataset, ev: lm.Events, order: int) -> 
     """nltk.lm's score of each of our events, in the same context."""
     out = []
     for a, b, w in zip(ev.h2.tolist(), ev.h1.tolist(), ev.w.tolist(), strict=True):
-        context = (nltk_token(ds, a), nltk_token(ds, b))[2 - (order - 1):]
+        context = (nltk_token(ds, a), nltk_token(ds, b))[2 - (order - 1) :]
         out.append(model.score(nltk_token(ds, w), context))  # type: ignore[attr-defined]
     return np.array(out)
 
@@ -60,12 +61,10 @@ def test_probability_one_everywhere_gives_perplexity_one() -> None:
 def test_uniform_perplexity_is_the_event_space_size() -> None:
     """Common practice (definition): the uniform model's perplexity is the number of outcomes,
     here the vocabulary without the padding token."""
-    ds = dataset_from_documents({"train": [s.split() for s in TRAIN],
-                                 "validation": [["the", "bird"], ["dog"]]})
+    ds = dataset_from_documents({"train": [s.split() for s in TRAIN], "validation": [["the", "bird"], ["dog"]]})
     report = corpus_report(ds, progress=False)
     assert report["perplexity"]["event_space"] == len(ds.vocabulary) - 1
-    assert report["perplexity"]["splits"]["validation"]["uniform"] == pytest.approx(len(ds.vocabulary) - 1,
-                                                                                    rel=1e-12)
+    assert report["perplexity"]["splits"]["validation"]["uniform"] == pytest.approx(len(ds.vocabulary) - 1, rel=1e-12)
 
 
 def test_events_follow_the_markers() -> None:
@@ -104,8 +103,12 @@ def test_laplace_event_scores_match_nltk(order: int) -> None:
     nltk_lm = pytest.importorskip("nltk.lm")
     from nltk.lm.preprocessing import padded_everygram_pipeline
 
-    ds = dataset_from_documents({"train": [s.split() for s in TRAIN],
-                                 "validation": [words("the cat sat on the log"), words("a dog saw the bird")]})
+    ds = dataset_from_documents(
+        {
+            "train": [s.split() for s in TRAIN],
+            "validation": [words("the cat sat on the log"), words("a dog saw the bird")],
+        }
+    )
     tables, roles = fitted(ds)
     ev = split_events(ds, "validation")
     ours = lm.add_k(tables, lm.Lookups.of(tables, ev), order, 1.0, lm.event_space(roles))
@@ -131,8 +134,7 @@ def test_kneser_ney_bigram_matches_nltk() -> None:
         model = nltk_lm.KneserNeyInterpolated(2, discount=d)
         model.fit(*padded_everygram_pipeline(2, [s.split() for s in TRAIN]))
         np.testing.assert_allclose(ours, nltk_scores(model, ds, ev, 2), rtol=0, atol=1e-12)
-        assert lm.perplexity(ours) == pytest.approx(model.perplexity(ngrams(pad_both_ends(seen, 2), 2)),
-                                                    rel=1e-12)
+        assert lm.perplexity(ours) == pytest.approx(model.perplexity(ngrams(pad_both_ends(seen, 2), 2)), rel=1e-12)
 
 
 def test_kneser_ney_trigram_matches_nltk() -> None:
@@ -143,8 +145,12 @@ def test_kneser_ney_trigram_matches_nltk() -> None:
     nltk_lm = pytest.importorskip("nltk.lm")
     from nltk.lm.preprocessing import padded_everygram_pipeline
 
-    ds = dataset_from_documents({"train": [s.split() for s in TRAIN],
-                                 "validation": [words("the cat sat on the log"), words("the dog sat on the mat")]})
+    ds = dataset_from_documents(
+        {
+            "train": [s.split() for s in TRAIN],
+            "validation": [words("the cat sat on the log"), words("the dog sat on the mat")],
+        }
+    )
     tables, roles = fitted(ds)
     ev = split_events(ds, "validation")
     train_ev = split_events(ds, "train")
@@ -166,8 +172,10 @@ def test_kneser_ney_trigram_matches_nltk() -> None:
 def small_corpora(draw: st.DrawFn) -> dict[str, list[list[str]]]:
     words = [chr(ord("a") + i) for i in range(draw(st.integers(1, 6)))]
     doc = st.lists(st.sampled_from(words), max_size=8)
-    return {"train": draw(st.lists(doc, min_size=1, max_size=6)),
-            "validation": draw(st.lists(doc, min_size=1, max_size=3))}
+    return {
+        "train": draw(st.lists(doc, min_size=1, max_size=6)),
+        "validation": draw(st.lists(doc, min_size=1, max_size=3)),
+    }
 
 
 @settings(max_examples=60, deadline=None)
@@ -184,9 +192,13 @@ def test_models_are_distributions_over_the_event_space(docs: dict, d: float, k: 
     h1 = np.repeat(ev.h1, len(space))
     w = np.tile(np.array(space, dtype=np.int64), len(ev))
     q = lm.Lookups.of(tables, lm.Events(h2=h2, h1=h1, w=w))
-    for probs in (lm.add_k(tables, q, 1, k, len(space)), lm.add_k(tables, q, 2, k, len(space)),
-                  lm.add_k(tables, q, 3, k, len(space)), lm.kneser_ney(tables, q, 2, d, len(space)),
-                  lm.kneser_ney(tables, q, 3, d, len(space))):
+    for probs in (
+        lm.add_k(tables, q, 1, k, len(space)),
+        lm.add_k(tables, q, 2, k, len(space)),
+        lm.add_k(tables, q, 3, k, len(space)),
+        lm.kneser_ney(tables, q, 2, d, len(space)),
+        lm.kneser_ney(tables, q, 3, d, len(space)),
+    ):
         assert (probs > 0).all()
         np.testing.assert_allclose(probs.reshape(len(ev), len(space)).sum(axis=1), 1.0, rtol=1e-12)
 
@@ -209,8 +221,9 @@ def test_events_are_built_from_the_split_tokens() -> None:
     """Events carry the split's own ids: two documents [x y] [z] give w = x y end z end."""
     ids = np.array([2, 7, 8, 3, 2, 9, 3], dtype=np.uint8)
     roles = Roles(unknown=0, padding=1, begin=2, end=3, n_special=4, vocab_size=10)
-    split = SplitTokens("x", ids, np.array([0, 4]), np.array([4, 3]), np.array([1, 5]), np.array([2, 1]),
-                        np.array([True, True]))
+    split = SplitTokens(
+        "x", ids, np.array([0, 4]), np.array([4, 3]), np.array([1, 5]), np.array([2, 1]), np.array([True, True])
+    )
     ev = lm.events(split, roles)
     assert ev.w.tolist() == [7, 8, 3, 9, 3]
     assert ev.h1.tolist() == [2, 7, 8, 2, 9]

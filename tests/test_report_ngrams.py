@@ -41,8 +41,8 @@ def counter_reference(ids: np.ndarray, starts: np.ndarray, lengths: np.ndarray, 
     """The plain Python definition: tuples of every window inside one document."""
     out: Counter[tuple[int, ...]] = Counter()
     for s, m in zip(starts.tolist(), lengths.tolist(), strict=True):
-        doc = ids[s:s + m].tolist()
-        out.update(tuple(doc[i:i + n]) for i in range(len(doc) - n + 1))
+        doc = ids[s : s + m].tolist()
+        out.update(tuple(doc[i : i + n]) for i in range(len(doc) - n + 1))
     return out
 
 
@@ -66,10 +66,10 @@ def test_counts_do_not_depend_on_pieces_or_threads(corpus: tuple, n: int, chunk:
     """Counting in pieces of any size on any number of threads gives the one-sort answer."""
     ids, starts, lengths, vocab = corpus
     orders = list(range(1, n + 1))
-    whole = count_ngrams(ids, orders, bits=key_bits(vocab), starts=starts, lengths=lengths,
-                         threads=1, chunk=1 << 30)
-    pieces = count_ngrams(ids, orders, bits=key_bits(vocab), starts=starts, lengths=lengths,
-                          threads=threads, chunk=chunk)
+    whole = count_ngrams(ids, orders, bits=key_bits(vocab), starts=starts, lengths=lengths, threads=1, chunk=1 << 30)
+    pieces = count_ngrams(
+        ids, orders, bits=key_bits(vocab), starts=starts, lengths=lengths, threads=threads, chunk=chunk
+    )
     for k in orders:
         assert np.array_equal(whole[k].keys, pieces[k].keys)
         assert np.array_equal(whole[k].counts, pieces[k].counts)
@@ -81,8 +81,7 @@ def test_pieces_on_a_skewed_corpus_equal_counter() -> None:
     ids = np.where(rng.random(5000) < 0.7, 0, rng.integers(0, 300, 5000)).astype(np.uint16)
     starts = np.array([0, 10, 2500, 2501, 4000], np.int64)
     lengths = np.array([7, 2400, 0, 1400, 1000], np.int64)
-    counted = count_ngrams(ids, [2, 3], bits=key_bits(300), starts=starts, lengths=lengths,
-                           threads=2, chunk=97)
+    counted = count_ngrams(ids, [2, 3], bits=key_bits(300), starts=starts, lengths=lengths, threads=2, chunk=97)
     for n in (2, 3):
         got = counted[n]
         expected = counter_reference(ids, starts, lengths, n)
@@ -137,15 +136,15 @@ def test_window_hashes_identify_windows(corpus: tuple, n: int) -> None:
     """One hash per in-document window; equal windows hash alike, distinct ones differ here."""
     ids, starts, lengths, _ = corpus
     hashes = window_hashes(ids, n, starts=starts, lengths=lengths)
-    windows = [tuple(ids[s + i:s + i + n].tolist()) for s, m in zip(starts, lengths, strict=True)
-               for i in range(m - n + 1)]
+    windows = [
+        tuple(ids[s + i : s + i + n].tolist()) for s, m in zip(starts, lengths, strict=True) for i in range(m - n + 1)
+    ]
     assert len(hashes) == len(windows)
     by_window = dict(zip(windows, hashes.tolist(), strict=True))
     for w, h in zip(windows, hashes.tolist(), strict=True):
         assert by_window[w] == h
     # collision chance <= 2**-62 per pair for ids < 8 (bound in window_hashes): none expected
     assert len(set(by_window.values())) == len(by_window)
-
 
 
 @pytest.mark.parametrize("dtype", [np.uint8, np.uint16, np.uint32, np.uint64, np.int64])

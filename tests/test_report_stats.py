@@ -51,8 +51,9 @@ def test_length_summary_matches_the_statistics_module(lengths: list[int]) -> Non
 
 def test_split_figures_on_a_known_corpus() -> None:
     """Counts, unknown rate and top-k coverage of a hand-checked corpus."""
-    ds = dataset_from_documents({"train": [s.split() for s in TRAIN],
-                                 "validation": [["the", "zebra", "sat"], ["a", "cat"]]})
+    ds = dataset_from_documents(
+        {"train": [s.split() for s in TRAIN], "validation": [["the", "zebra", "sat"], ["a", "cat"]]}
+    )
     report = corpus_report(ds, progress=False)
     train, val = report["splits"]["train"], report["splits"]["validation"]
     assert (train["documents"], train["tokens"], train["content_tokens"]) == (3, 17 + 6, 17)

@@ -19,8 +19,28 @@ from seqpipe.recipe import Recipe, parse_recipe
 from seqpipe.sources.text import TextSource
 
 # Invented words for a small corpus of our own (no outside text).
-_WORDS = ("harbor", "skiff", "tide", "lantern", "rope", "mooring", "gull", "barge", "ledger", "crate",
-          "fog", "pier", "quay", "oar", "keel", "ballast", "nöbel", "drüme", "sälk", "crossing")
+_WORDS = (
+    "harbor",
+    "skiff",
+    "tide",
+    "lantern",
+    "rope",
+    "mooring",
+    "gull",
+    "barge",
+    "ledger",
+    "crate",
+    "fog",
+    "pier",
+    "quay",
+    "oar",
+    "keel",
+    "ballast",
+    "nöbel",
+    "drüme",
+    "sälk",
+    "crossing",
+)
 
 
 def write_corpus(root: Path, files: int = 3, docs_per_file: int = 120, seed: int = 11) -> None:
@@ -70,14 +90,33 @@ tokens = {shard_tokens}
 """
 
 
-def recipe_text(*, tokenizer: str = "words", tokenizer_extra: str = "", clean: str = "", min_count: int = 1,
-                train: float = 0.8, validation: float = 0.1, test: float = 0.1, shard_tokens: int = 1500,
-                seed: int = 0, dedupe: bool = True) -> str:
+def recipe_text(
+    *,
+    tokenizer: str = "words",
+    tokenizer_extra: str = "",
+    clean: str = "",
+    min_count: int = 1,
+    train: float = 0.8,
+    validation: float = 0.1,
+    test: float = 0.1,
+    shard_tokens: int = 1500,
+    seed: int = 0,
+    dedupe: bool = True,
+) -> str:
     # without a dedupe step the ingest tasks count their parts themselves; with one, count
     # tasks do after the driver has found the duplicates: both paths are exercised below
-    return RECIPE.format(tokenizer=tokenizer, tokenizer_extra=tokenizer_extra, clean=clean, min_count=min_count,
-                         train=train, validation=validation, test=test, shard_tokens=shard_tokens, seed=seed,
-                         dedupe='[[clean]]\nkind = "dedupe"' if dedupe else "")
+    return RECIPE.format(
+        tokenizer=tokenizer,
+        tokenizer_extra=tokenizer_extra,
+        clean=clean,
+        min_count=min_count,
+        train=train,
+        validation=validation,
+        test=test,
+        shard_tokens=shard_tokens,
+        seed=seed,
+        dedupe='[[clean]]\nkind = "dedupe"' if dedupe else "",
+    )
 
 
 def make_recipe(root: Path, **kw: Any) -> Recipe:
@@ -106,10 +145,12 @@ def corpus_root(tmp_path: Path) -> Path:
     return root
 
 
-@pytest.mark.parametrize(("tokenizer", "extra", "dedupe"),
-                         [("words", "", True), ("words", "", False), ("bpe", "vocab_size = 300", True)])
-def test_one_and_two_workers_write_identical_bytes(corpus_root: Path, tmp_path: Path, tokenizer: str,
-                                                   extra: str, dedupe: bool) -> None:
+@pytest.mark.parametrize(
+    ("tokenizer", "extra", "dedupe"), [("words", "", True), ("words", "", False), ("bpe", "vocab_size = 300", True)]
+)
+def test_one_and_two_workers_write_identical_bytes(
+    corpus_root: Path, tmp_path: Path, tokenizer: str, extra: str, dedupe: bool
+) -> None:
     """workers=1 (in-process) and workers=2 (this process and a spawned one) give the same
     manifest and file bytes."""
     recipe = make_recipe(corpus_root, tokenizer=tokenizer, tokenizer_extra=extra, dedupe=dedupe)
@@ -125,8 +166,9 @@ def test_one_and_two_workers_write_identical_bytes(corpus_root: Path, tmp_path: 
 
 @settings(max_examples=6, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(part_bytes=st.integers(min_value=200, max_value=40_000), dedupe=st.booleans())
-def test_output_does_not_depend_on_part_size(corpus_root: Path, tmp_path_factory: pytest.TempPathFactory,
-                                             part_bytes: int, dedupe: bool) -> None:
+def test_output_does_not_depend_on_part_size(
+    corpus_root: Path, tmp_path_factory: pytest.TempPathFactory, part_bytes: int, dedupe: bool
+) -> None:
     """How input files are cut into parts never changes a byte of the dataset."""
     recipe = make_recipe(corpus_root, dedupe=dedupe)
     ref_dir = corpus_root.parent / f"reference-{dedupe}"
@@ -159,16 +201,20 @@ def run(recipe: Recipe, out: Path, **kw: Any) -> BuildResult:
     return build(recipe, out, workers=1, progress=False, part_bytes=SMALL_PARTS, **kw)
 
 
-@pytest.mark.parametrize("change", [
-    {"shard_tokens": 700},
-    {"train": 0.7, "validation": 0.2},
-    {"seed": 3},
-    {"min_count": 2},
-    {"train": 0.7, "validation": 0.2, "dedupe": False},
-    {"seed": 3, "dedupe": False},
-])
-def test_cache_reused_when_only_later_steps_change(corpus_root: Path, tmp_path: Path,
-                                                   monkeypatch: pytest.MonkeyPatch, change: dict[str, Any]) -> None:
+@pytest.mark.parametrize(
+    "change",
+    [
+        {"shard_tokens": 700},
+        {"train": 0.7, "validation": 0.2},
+        {"seed": 3},
+        {"min_count": 2},
+        {"train": 0.7, "validation": 0.2, "dedupe": False},
+        {"seed": 3, "dedupe": False},
+    ],
+)
+def test_cache_reused_when_only_later_steps_change(
+    corpus_root: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, change: dict[str, Any]
+) -> None:
     """Changing shards, splits or vocabulary settings re-reads no source file, and the cached
     build equals a fresh build of the changed recipe. Without dedupe, the fresh build counts in
     its ingest tasks and the cached one in count tasks over the stored parts: same bytes."""
@@ -189,8 +235,9 @@ def test_cache_reused_when_only_later_steps_change(corpus_root: Path, tmp_path: 
     assert dataset_files(out) == dataset_files(tmp_path / "fresh")
 
 
-def test_cache_not_reused_when_cleaning_changes(corpus_root: Path, tmp_path: Path,
-                                                monkeypatch: pytest.MonkeyPatch) -> None:
+def test_cache_not_reused_when_cleaning_changes(
+    corpus_root: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     """Adding a cleaning step invalidates every cached part: each is read again."""
     reads = ReadCounter(monkeypatch)
     out = tmp_path / "out"
@@ -244,11 +291,17 @@ def test_identical_input_files_are_each_counted_once(tmp_path: Path) -> None:
 
 
 @settings(max_examples=60, deadline=None)
-@given(parts=st.lists(st.dictionaries(st.binary(min_size=1, max_size=3), st.integers(1, 50), max_size=12),
-                      min_size=1, max_size=20),
-       order_seed=st.integers(0, 1000), batch=st.integers(1, 9), announce=st.booleans())
+@given(
+    parts=st.lists(
+        st.dictionaries(st.binary(min_size=1, max_size=3), st.integers(1, 50), max_size=12), min_size=1, max_size=20
+    ),
+    order_seed=st.integers(0, 1000),
+    batch=st.integers(1, 9),
+    announce=st.booleans(),
+)
 def test_count_merger_equals_a_counter_whatever_the_arrival_order(
-        parts: list[dict[bytes, int]], order_seed: int, batch: int, announce: bool) -> None:
+    parts: list[dict[bytes, int]], order_seed: int, batch: int, announce: bool
+) -> None:
     """Partial counts merged as they arrive, in any order and fold rhythm, give the sums a
     ``collections.Counter`` gives, in first-occurrence order (the part's position, then the
     key's position within it: the ``first`` rank that count tables carry)."""
@@ -261,9 +314,15 @@ def test_count_merger_equals_a_counter_whatever_the_arrival_order(
     tables = []
     for order, part in enumerate(parts):
         keys = list(part)
-        tables.append(pa.table({"key": pa.array(keys, pa.binary()),
-                                "count": pa.array([part[k] for k in keys], pa.int64()),
-                                "first": pa.array([(order << 40) + j for j in range(len(keys))], pa.int64())}))
+        tables.append(
+            pa.table(
+                {
+                    "key": pa.array(keys, pa.binary()),
+                    "count": pa.array([part[k] for k in keys], pa.int64()),
+                    "first": pa.array([(order << 40) + j for j in range(len(keys))], pa.int64()),
+                }
+            )
+        )
     if not any(parts):
         return
     want: collections.Counter[bytes] = collections.Counter()

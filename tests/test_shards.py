@@ -51,8 +51,9 @@ def test_token_hash_independent_of_compression(tmp_path: Path) -> None:
     assert h1 == h2
 
 
-@pytest.mark.parametrize(("size", "dtype"), [(2, np.uint8), (256, np.uint8), (257, np.uint16),
-                                             (65536, np.uint16), (65537, np.uint32)])
+@pytest.mark.parametrize(
+    ("size", "dtype"), [(2, np.uint8), (256, np.uint8), (257, np.uint16), (65536, np.uint16), (65537, np.uint32)]
+)
 def test_smallest_id_dtype(size: int, dtype: type) -> None:
     """Ids use the smallest unsigned type that holds vocabulary size - 1."""
     assert id_dtype(size) == np.dtype(dtype)

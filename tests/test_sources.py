@@ -41,8 +41,14 @@ HOSTILE = ROOT / "fixtures" / "hostile"
 BLANKS = " \t\x0b\x0c\n"
 
 
-def read_all(source: Source, root: Path, *, target_bytes: int = 1 << 30, batch_bytes: int = 1 << 20,
-             stats: ReadStats | None = None) -> list[str]:
+def read_all(
+    source: Source,
+    root: Path,
+    *,
+    target_bytes: int = 1 << 30,
+    batch_bytes: int = 1 << 20,
+    stats: ReadStats | None = None,
+) -> list[str]:
     stats = ReadStats() if stats is None else stats
     out: list[str] = []
     for array in source.documents(root, stats, target_bytes=target_bytes, batch_bytes=batch_bytes):
@@ -56,13 +62,15 @@ def _not_blank(text: str) -> bool:
 
 
 _chars = st.characters(blacklist_categories=("Cs",), blacklist_characters="\r\ufeff")
-_line = st.text(st.characters(blacklist_categories=("Cs",), blacklist_characters="\r\n\ufeff"),
-                min_size=1, max_size=12).filter(_not_blank)
+_line = st.text(
+    st.characters(blacklist_categories=("Cs",), blacklist_characters="\r\n\ufeff"), min_size=1, max_size=12
+).filter(_not_blank)
 
 
 # One test function runs for every subclass: that is the point of the contract suite.
-_CONTRACT_SETTINGS = settings(max_examples=40, deadline=None,
-                              suppress_health_check=[HealthCheck.too_slow, HealthCheck.differing_executors])
+_CONTRACT_SETTINGS = settings(
+    max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.differing_executors]
+)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -100,8 +108,7 @@ class SourceContract:
 
     @_CONTRACT_SETTINGS
     @given(data=st.data(), target=st.integers(1, 64), batch=st.integers(1, 64))
-    def test_documents_do_not_depend_on_plan_or_batch_size(self, data: st.DataObject, target: int,
-                                                           batch: int) -> None:
+    def test_documents_do_not_depend_on_plan_or_batch_size(self, data: st.DataObject, target: int, batch: int) -> None:
         """Cutting a file into parts of any target size and reading any batch size gives the same documents."""
         texts = data.draw(st.lists(self.doc, min_size=1, max_size=12))
         with tempfile.TemporaryDirectory() as tmp:
@@ -117,8 +124,7 @@ class SourceContract:
             read_all(self.source(max_document_bytes=51), tmp_path)
         assert tmp_path in Path(info.value.path).parents
         stats = ReadStats()
-        assert read_all(self.source(max_document_bytes=51, oversize="skip"), tmp_path, stats=stats) == \
-            ["short", "tail"]
+        assert read_all(self.source(max_document_bytes=51, oversize="skip"), tmp_path, stats=stats) == ["short", "tail"]
         assert stats.oversize_skipped == 1
         stats = ReadStats()
         # 51 bytes would cut the 26th "é" (2 bytes each): 25 whole ones are kept.
@@ -319,8 +325,23 @@ class TestArrowIpc(SourceContract):
 # ---------------------------------------------------------------------------------------------
 # Text: the streaming reader against a plain line-by-line definition of the same documents.
 
-_RAW_TOKENS = [b"a", b"b", b"\xc3\xa9", b"\xe2\x82\xac", b" ", b"\t", b"\x0b", b"\n", b"\r", b"\r\n",
-               b"\xef\xbb\xbf", b"\xff", b"\xe2\x82", b"\x00", b"\x80"]
+_RAW_TOKENS = [
+    b"a",
+    b"b",
+    b"\xc3\xa9",
+    b"\xe2\x82\xac",
+    b" ",
+    b"\t",
+    b"\x0b",
+    b"\n",
+    b"\r",
+    b"\r\n",
+    b"\xef\xbb\xbf",
+    b"\xff",
+    b"\xe2\x82",
+    b"\x00",
+    b"\x80",
+]
 _raw_text = st.lists(st.sampled_from(_RAW_TOKENS), max_size=80).map(b"".join)
 
 
@@ -328,8 +349,8 @@ def _lines(data: bytes) -> list[tuple[bytes, bytes]]:
     """(content, line end) pairs, scanning one byte at a time (CRLF, CR and LF end a line)."""
     out, start, i = [], 0, 0
     while i < len(data):
-        if data[i:i + 1] in (b"\r", b"\n"):
-            end = i + 2 if data[i:i + 2] == b"\r\n" else i + 1
+        if data[i : i + 1] in (b"\r", b"\n"):
+            end = i + 2 if data[i : i + 2] == b"\r\n" else i + 1
             out.append((data[start:i], data[i:end]))
             start = i = end
         else:
@@ -380,18 +401,25 @@ def oracle(data: bytes, mode: str, limit: int, oversize: str, stats: ReadStats) 
 
 
 @settings(max_examples=300, deadline=None)
-@given(data=_raw_text, mode=st.sampled_from(["line", "paragraph", "file"]), target=st.integers(1, 40),
-       batch=st.integers(1, 40), limit=st.sampled_from([1, 2, 3, 5, 8, 1000]),
-       oversize=st.sampled_from(["skip", "truncate"]))
-def test_text_reader_matches_a_naive_definition(data: bytes, mode: str, target: int, batch: int, limit: int,
-                                                oversize: str) -> None:
+@given(
+    data=_raw_text,
+    mode=st.sampled_from(["line", "paragraph", "file"]),
+    target=st.integers(1, 40),
+    batch=st.integers(1, 40),
+    limit=st.sampled_from([1, 2, 3, 5, 8, 1000]),
+    oversize=st.sampled_from(["skip", "truncate"]),
+)
+def test_text_reader_matches_a_naive_definition(
+    data: bytes, mode: str, target: int, batch: int, limit: int, oversize: str
+) -> None:
     """Hostile bytes (CR, CRLF, BOMs, blanks, bad UTF-8, oversize lines) give the naive scanner's documents."""
     want_stats, got_stats = ReadStats(), ReadStats()
     want = oracle(data, mode, limit, oversize, want_stats)
     with tempfile.TemporaryDirectory() as tmp:
         (Path(tmp) / "a.txt").write_bytes(data)
-        src = TextSource(paths="a.txt", document=mode, invalid_utf8="replace", max_document_bytes=limit,
-                         oversize=oversize)
+        src = TextSource(
+            paths="a.txt", document=mode, invalid_utf8="replace", max_document_bytes=limit, oversize=oversize
+        )
         got = read_all(src, Path(tmp), target_bytes=target, batch_bytes=batch, stats=got_stats)
     assert got == want
     for name in ("oversize_skipped", "oversize_truncated", "invalid_utf8_replaced"):
@@ -414,8 +442,7 @@ def test_truncate_utf8_keeps_whole_characters() -> None:
 def test_paragraphs_are_separated_by_lines_of_blanks(tmp_path: Path) -> None:
     """A line of spaces and tabs separates paragraphs; indentation and trailing spaces are kept."""
     (tmp_path / "a.txt").write_bytes(b"\n \n  first line  \nsecond\n \t \n\n third\n  \n")
-    assert read_all(TextSource(paths="a.txt", document="paragraph"), tmp_path) == \
-        ["  first line  \nsecond", " third"]
+    assert read_all(TextSource(paths="a.txt", document="paragraph"), tmp_path) == ["  first line  \nsecond", " third"]
 
 
 def test_plan_cuts_on_document_boundaries(tmp_path: Path) -> None:
@@ -428,7 +455,7 @@ def test_plan_cuts_on_document_boundaries(tmp_path: Path) -> None:
         assert parts[0].start == 0 and parts[-1].stop == len(data)
         for before, after in itertools.pairwise(parts):
             assert before.stop == after.start
-            assert data[:after.start].endswith(ends)
+            assert data[: after.start].endswith(ends)
 
 
 def test_compressed_and_whole_file_sources_are_one_part(tmp_path: Path) -> None:
@@ -464,9 +491,11 @@ def test_long_single_line_keeps_memory_bounded(tmp_path: Path) -> None:
         sink.write(b"\nthe next line\n")
     size = path.stat().st_size
     limit, batch = 1 << 20, 256 << 10
-    cases = [("truncate", limit, [limit, 13], 4 * (limit + batch)),
-             ("skip", limit, [13], 4 * (limit + batch)),
-             ("error", 64 << 20, [size - 15, 13], 2.5 * size)]
+    cases = [
+        ("truncate", limit, [limit, 13], 4 * (limit + batch)),
+        ("skip", limit, [13], 4 * (limit + batch)),
+        ("error", 64 << 20, [size - 15, 13], 2.5 * size),
+    ]
     for policy, max_bytes, want, bound in cases:
         src = TextSource(paths="long.txt", document="line", max_document_bytes=max_bytes, oversize=policy)
         stats = ReadStats()
@@ -593,8 +622,7 @@ def test_columnar_fast_and_per_value_paths_agree(docs: list[str]) -> None:
     src = ArrowSource(paths="x", bad_records="skip")
     fast = finish_column(pa.array(docs, pa.string()), 0, src, DocumentFinisher(src, Path("x"), ReadStats()))
     # A trailing null sends the batch down the per-value path; skip drops the null again.
-    slow = finish_column(pa.array([*docs, None], pa.string()), 0, src,
-                         DocumentFinisher(src, Path("x"), ReadStats()))
+    slow = finish_column(pa.array([*docs, None], pa.string()), 0, src, DocumentFinisher(src, Path("x"), ReadStats()))
     assert fast.to_pylist() == slow.to_pylist()
     assert fast.type == slow.type == pa.large_string()
 
@@ -631,17 +659,20 @@ def test_resolve_names_a_glob_that_matches_nothing(tmp_path: Path) -> None:
     assert str(tmp_path) in str(info.value)
 
 
-@pytest.mark.parametrize(("table", "key", "shown"), [
-    ({"kind": "txt", "paths": "x"}, "recipe.sources[1].kind", "'text', 'jsonl', 'parquet', 'arrow'"),
-    ({"paths": "x"}, "recipe.sources[1].kind", "missing"),
-    ({"kind": "text"}, "recipe.sources[1].paths", "missing"),
-    ({"kind": "text", "paths": 5}, "recipe.sources[1].paths", "5"),
-    ({"kind": "text", "paths": "x", "invalid_utf8": "ignore"}, "recipe.sources[1].invalid_utf8", "'ignore'"),
-    ({"kind": "text", "paths": "x", "document": "lines"}, "recipe.sources[1].document", "did you mean 'line'"),
-    ({"kind": "jsonl", "paths": "x", "bad_records": "drop"}, "recipe.sources[1].bad_records", "'drop'"),
-    ({"kind": "arrow", "paths": "x", "max_document_bytes": 0}, "recipe.sources[1].max_document_bytes", "0"),
-    ({"kind": "parquet", "paths": "x", "compression": "gzip"}, "recipe.sources[1].compression", "unknown key"),
-])
+@pytest.mark.parametrize(
+    ("table", "key", "shown"),
+    [
+        ({"kind": "txt", "paths": "x"}, "recipe.sources[1].kind", "'text', 'jsonl', 'parquet', 'arrow'"),
+        ({"paths": "x"}, "recipe.sources[1].kind", "missing"),
+        ({"kind": "text"}, "recipe.sources[1].paths", "missing"),
+        ({"kind": "text", "paths": 5}, "recipe.sources[1].paths", "5"),
+        ({"kind": "text", "paths": "x", "invalid_utf8": "ignore"}, "recipe.sources[1].invalid_utf8", "'ignore'"),
+        ({"kind": "text", "paths": "x", "document": "lines"}, "recipe.sources[1].document", "did you mean 'line'"),
+        ({"kind": "jsonl", "paths": "x", "bad_records": "drop"}, "recipe.sources[1].bad_records", "'drop'"),
+        ({"kind": "arrow", "paths": "x", "max_document_bytes": 0}, "recipe.sources[1].max_document_bytes", "0"),
+        ({"kind": "parquet", "paths": "x", "compression": "gzip"}, "recipe.sources[1].compression", "unknown key"),
+    ],
+)
 def test_parse_source_errors_name_key_and_value(table: dict[str, Any], key: str, shown: str) -> None:
     """Invalid recipe tables raise RecipeError naming the key path and the bad value or the choices."""
     with pytest.raises(RecipeError) as info:
@@ -736,6 +767,8 @@ def test_hostile_records() -> None:
         read_all(JsonlSource(paths="records.jsonl"), HOSTILE)
     assert info.value.line == 2
     stats = ReadStats()
-    assert read_all(JsonlSource(paths="records.jsonl", bad_records="skip"), HOSTILE, stats=stats) == \
-        ["first good record", "last good record"]
+    assert read_all(JsonlSource(paths="records.jsonl", bad_records="skip"), HOSTILE, stats=stats) == [
+        "first good record",
+        "last good record",
+    ]
     assert stats.bad_records_skipped == 5

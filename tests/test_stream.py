@@ -55,7 +55,7 @@ def test_gather_matches_numpy_slicing(case: tuple[np.ndarray, list[np.ndarray]],
     assert out.dtype == np.int64
     expected = np.zeros((len(starts), length), dtype=np.int64)
     for row, i in enumerate(starts.tolist()):
-        expected[row] = values[i:i + length]
+        expected[row] = values[i : i + length]
     np.testing.assert_array_equal(out, expected)
 
 
@@ -122,8 +122,7 @@ def test_empty_stream() -> None:
 
 
 @given(chunked(min_size=2), st.data())
-def test_boundary_mask_matches_brute_force(case: tuple[np.ndarray, list[np.ndarray]],
-                                           data: st.DataObject) -> None:
+def test_boundary_mask_matches_brute_force(case: tuple[np.ndarray, list[np.ndarray]], data: st.DataObject) -> None:
     """mask[i, j] is True exactly when token start+j+1 is a document start."""
     values, chunks = case
     n = len(values)
@@ -133,8 +132,9 @@ def test_boundary_mask_matches_brute_force(case: tuple[np.ndarray, list[np.ndarr
     starts = np.array(data.draw(st.lists(st.integers(0, n - length), max_size=10)), dtype=np.int64)
     mask = s.boundary_mask(starts, length)
     doc_set = set(docs)
-    expected = np.array([[st_ + j + 1 in doc_set for j in range(length - 1)] for st_ in starts.tolist()],
-                        dtype=bool).reshape(len(starts), length - 1)
+    expected = np.array(
+        [[st_ + j + 1 in doc_set for j in range(length - 1)] for st_ in starts.tolist()], dtype=bool
+    ).reshape(len(starts), length - 1)
     np.testing.assert_array_equal(mask, expected)
 
 

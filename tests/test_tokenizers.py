@@ -72,7 +72,7 @@ class TokenizerContract:
         ids, lengths = enc.encode_batch(docs)
         pos = 0
         for d, n in zip(docs, lengths, strict=True):
-            np.testing.assert_array_equal(ids[pos:pos + n], enc.encode(d))
+            np.testing.assert_array_equal(ids[pos : pos + n], enc.encode(d))
             pos += n
         assert pos == len(ids)
 
@@ -130,9 +130,9 @@ class TestBytesContract(TokenizerContract):
 
 # -- kind-specific checks ---------------------------------------------------------------------------
 
+
 @settings(max_examples=300, deadline=None)
-@given(docs=st.lists(st.text(alphabet=st.characters(exclude_categories=("Cs",)), max_size=40),
-                     min_size=1, max_size=5))
+@given(docs=st.lists(st.text(alphabet=st.characters(exclude_categories=("Cs",)), max_size=40), min_size=1, max_size=5))
 def test_word_fast_path_equals_regex(docs: list[str]) -> None:
     """The numpy segmentation of the default pattern gives exactly regex.findall's tokens."""
     fast = WordTokenizer().segment(docs)
@@ -152,14 +152,17 @@ def test_default_words_split_numbers_and_punctuation() -> None:
     assert enc.decode(enc.encode("Dock   tonnes")) == "Dock tonnes"
 
 
-@pytest.mark.parametrize(("text", "clusters"), [
-    # Source: Unicode UAX #29, Table 1a "Sample Grapheme Clusters" and section 3.1 rules
-    ("g\u0308", ["g\u0308"]),                       # g + combining diaeresis: one cluster
-    ("\r\n", ["\r\n"]),                             # CRLF is one cluster (GB3)
-    ("\U0001F1FA\U0001F1F8", ["\U0001F1FA\U0001F1F8"]),  # a regional-indicator pair is one flag (GB12/13)
-    ("\U0001F468\u200d\U0001F469\u200d\U0001F467", ["\U0001F468\u200d\U0001F469\u200d\U0001F467"]),  # ZWJ family
-    ("ab", ["a", "b"]),
-])
+@pytest.mark.parametrize(
+    ("text", "clusters"),
+    [
+        # Source: Unicode UAX #29, Table 1a "Sample Grapheme Clusters" and section 3.1 rules
+        ("g\u0308", ["g\u0308"]),  # g + combining diaeresis: one cluster
+        ("\r\n", ["\r\n"]),  # CRLF is one cluster (GB3)
+        ("\U0001f1fa\U0001f1f8", ["\U0001f1fa\U0001f1f8"]),  # a regional-indicator pair is one flag (GB12/13)
+        ("\U0001f468\u200d\U0001f469\u200d\U0001f467", ["\U0001f468\u200d\U0001f469\u200d\U0001f467"]),  # ZWJ family
+        ("ab", ["a", "b"]),
+    ],
+)
 def test_grapheme_clusters_follow_uax29(text: str, clusters: list[str]) -> None:
     """Grapheme mode keeps each extended grapheme cluster whole."""
     seg = parse_tokenizer({"kind": "chars", "unit": "grapheme"}).segment([text])
@@ -210,8 +213,7 @@ def test_expand_multi_id_pieces() -> None:
 
 
 @settings(max_examples=300, deadline=None)
-@given(docs=st.lists(st.text(alphabet=st.characters(exclude_categories=("Cs",)), max_size=40),
-                     min_size=1, max_size=5))
+@given(docs=st.lists(st.text(alphabet=st.characters(exclude_categories=("Cs",)), max_size=40), min_size=1, max_size=5))
 def test_count_words_equals_str_split(docs: list[str]) -> None:
     """The numpy word count per document equals len(str.split()) (Python's Unicode whitespace)."""
     from seqpipe.tokenizers.words import count_words

@@ -19,8 +19,7 @@ from seqpipe.windows import BatchStream
 
 def test_package_import_does_not_import_torch() -> None:
     """Importing seqpipe and its reading side leaves torch unimported (it is optional)."""
-    code = ("import sys, seqpipe, seqpipe.stream, seqpipe.windows; "
-            "print('torch' in sys.modules)")
+    code = "import sys, seqpipe, seqpipe.stream, seqpipe.windows; print('torch' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
 
@@ -140,8 +139,11 @@ def test_from_dataset_matches_split_batches(tmp_path: Path) -> None:
     from seqpipe.recipe import parse_recipe
 
     (tmp_path / "c.txt").write_text("\n".join(f"line {i} of the tide table" for i in range(300)) + "\n")
-    recipe = parse_recipe("[[sources]]\nkind = 'text'\npaths = 'c.txt'\ndocument = 'line'\n"
-                          "[tokenizer]\nkind = 'chars'\n[shards]\ntokens = 900\n", tmp_path)
+    recipe = parse_recipe(
+        "[[sources]]\nkind = 'text'\npaths = 'c.txt'\ndocument = 'line'\n"
+        "[tokenizer]\nkind = 'chars'\n[shards]\ntokens = 900\n",
+        tmp_path,
+    )
     out = build(recipe, tmp_path / "d", workers=1, progress=False).directory
     ds = TorchBatches.from_dataset(out, "train", batch_size=3, steps=7, seed=4)
     items = list(DataLoader(ds, batch_size=None, num_workers=0))

@@ -58,8 +58,11 @@ def run(root: Path, out: str | Path, tokens: int = 250, **kwargs: Any) -> BuildR
 
 def local_files(directory: Path) -> dict[str, bytes]:
     """Every file of a local dataset, the private area left out."""
-    return {p.relative_to(directory).as_posix(): p.read_bytes() for p in sorted(directory.rglob("*"))
-            if p.is_file() and p.relative_to(directory).parts[0] != ".seqpipe"}
+    return {
+        p.relative_to(directory).as_posix(): p.read_bytes()
+        for p in sorted(directory.rglob("*"))
+        if p.is_file() and p.relative_to(directory).parts[0] != ".seqpipe"
+    }
 
 
 def mem_files(fs: pafs.FileSystem, prefix: str = "sets/ferry") -> dict[str, bytes]:
@@ -68,7 +71,7 @@ def mem_files(fs: pafs.FileSystem, prefix: str = "sets/ferry") -> dict[str, byte
     for info in infos:
         if info.type == pafs.FileType.File:
             with fs.open_input_stream(info.path) as stream:
-                out[info.path[len(prefix) + 1:]] = stream.read()
+                out[info.path[len(prefix) + 1 :]] = stream.read()
     return out
 
 
@@ -153,8 +156,7 @@ def test_hostile_manifest_path_is_refused(root: Path, tmp_path: Path, mem: pafs.
         check_relative(hostile)
 
 
-def test_republish_after_recipe_change_removes_old_shards(root: Path, tmp_path: Path,
-                                                          mem: pafs.FileSystem) -> None:
+def test_republish_after_recipe_change_removes_old_shards(root: Path, tmp_path: Path, mem: pafs.FileSystem) -> None:
     first = run(root, DEST, work_dir=tmp_path / "work")
     old = {s["path"] for sp in first.manifest["splits"].values() for s in sp["shards"]}
     assert len(old) > 3
@@ -168,7 +170,8 @@ def test_republish_after_recipe_change_removes_old_shards(root: Path, tmp_path: 
 
 
 def test_second_publish_uploads_nothing_and_an_interrupted_one_resumes(
-        root: Path, tmp_path: Path, mem: pafs.FileSystem, monkeypatch: pytest.MonkeyPatch) -> None:
+    root: Path, tmp_path: Path, mem: pafs.FileSystem, monkeypatch: pytest.MonkeyPatch
+) -> None:
     sent: list[str] = []
     real = remote._upload
 
@@ -194,7 +197,8 @@ def test_second_publish_uploads_nothing_and_an_interrupted_one_resumes(
 
 
 def test_a_same_sized_but_different_file_is_uploaded_again_manifest_gone_meanwhile(
-        root: Path, tmp_path: Path, mem: pafs.FileSystem, monkeypatch: pytest.MonkeyPatch) -> None:
+    root: Path, tmp_path: Path, mem: pafs.FileSystem, monkeypatch: pytest.MonkeyPatch
+) -> None:
     first = run(root, DEST, work_dir=tmp_path / "work")
     rel = first.manifest["vocabulary"]["path"]
     good = mem_files(mem)[rel]
@@ -212,8 +216,9 @@ def test_a_same_sized_but_different_file_is_uploaded_again_manifest_gone_meanwhi
     assert mem_files(mem)[rel] == good and verify(DEST).ok
 
 
-def test_unknown_scheme_as_output_is_a_clear_error(root: Path, tmp_path: Path,
-                                                   capsys: pytest.CaptureFixture[str]) -> None:
+def test_unknown_scheme_as_output_is_a_clear_error(
+    root: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     with pytest.raises(RecipeError, match="nosuchscheme") as info:
         run(root, "nosuchscheme://bucket/ferry")
     assert isinstance(info.value, SeqpipeError) and info.value.key == "out"
@@ -224,8 +229,9 @@ def test_unknown_scheme_as_output_is_a_clear_error(root: Path, tmp_path: Path,
         verify("nosuchscheme://bucket/ferry")
 
 
-def test_cli_builds_to_a_uri_with_a_work_dir(root: Path, tmp_path: Path, mem: pafs.FileSystem,
-                                             capsys: pytest.CaptureFixture[str]) -> None:
+def test_cli_builds_to_a_uri_with_a_work_dir(
+    root: Path, tmp_path: Path, mem: pafs.FileSystem, capsys: pytest.CaptureFixture[str]
+) -> None:
     work = tmp_path / "cli-work"
     assert main(["build", str(root / "recipe.toml"), "-o", DEST, "--work-dir", str(work), "--quiet"]) == 0
     assert (work / MANIFEST_NAME).is_file()
@@ -247,8 +253,9 @@ def test_work_dir_needs_a_uri_output(root: Path, tmp_path: Path) -> None:
         open_dataset(tmp_path / "out", copy_dir=tmp_path / "copy")
 
 
-def test_open_dataset_at_a_uri_reads_a_checked_local_copy(root: Path, tmp_path: Path, mem: pafs.FileSystem,
-                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+def test_open_dataset_at_a_uri_reads_a_checked_local_copy(
+    root: Path, tmp_path: Path, mem: pafs.FileSystem, monkeypatch: pytest.MonkeyPatch
+) -> None:
     """The copy holds the same bytes as the local build, streams the same tokens, and a second
     open downloads nothing (downloads counted by wrapping remote._download)."""
     local = run(root, tmp_path / "local")
@@ -270,8 +277,9 @@ def test_open_dataset_at_a_uri_reads_a_checked_local_copy(root: Path, tmp_path: 
     assert verify(copy).ok
 
 
-def test_fetch_repairs_a_damaged_copy_and_refuses_damaged_remote_bytes(root: Path, tmp_path: Path,
-                                                                       mem: pafs.FileSystem) -> None:
+def test_fetch_repairs_a_damaged_copy_and_refuses_damaged_remote_bytes(
+    root: Path, tmp_path: Path, mem: pafs.FileSystem
+) -> None:
     run(root, DEST)
     copy = tmp_path / "copy"
     open_dataset(DEST, copy_dir=copy)
@@ -293,8 +301,9 @@ def test_fetch_repairs_a_damaged_copy_and_refuses_damaged_remote_bytes(root: Pat
     assert not (copy / MANIFEST_NAME).exists() and not shard.exists()
 
 
-def test_cli_batches_at_a_uri_match_the_local_dataset(root: Path, tmp_path: Path, mem: pafs.FileSystem,
-                                                      capsys: pytest.CaptureFixture[str]) -> None:
+def test_cli_batches_at_a_uri_match_the_local_dataset(
+    root: Path, tmp_path: Path, mem: pafs.FileSystem, capsys: pytest.CaptureFixture[str]
+) -> None:
     local = run(root, tmp_path / "local")
     run(root, DEST)
     args = ["--split", "train", "--batch-size", "2", "--steps", "8", "--format", "hash"]

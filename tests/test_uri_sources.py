@@ -35,8 +35,26 @@ from seqpipe.sources import TextSource, _fs
 MockFileSystem = getattr(pytest.importorskip("pyarrow._fs"), "_MockFileSystem", None)
 needs_mock = pytest.mark.skipif(MockFileSystem is None, reason="this pyarrow has no _MockFileSystem")
 
-WORDS = ("ferry", "tide", "dock", "cargo", "lantern", "rope", "harbour", "fog", "north", "south", "calm",
-         "squall", "pilot", "ledger", "gull", "buoy", "keel", "oar")
+WORDS = (
+    "ferry",
+    "tide",
+    "dock",
+    "cargo",
+    "lantern",
+    "rope",
+    "harbour",
+    "fog",
+    "north",
+    "south",
+    "calm",
+    "squall",
+    "pilot",
+    "ledger",
+    "gull",
+    "buoy",
+    "keel",
+    "oar",
+)
 build_module = importlib.import_module("seqpipe.build")  # the module: seqpipe.build is also a function name
 MEM = "memtest://bucket"  # a scheme pyarrow does not know: only our registration serves it
 
@@ -62,8 +80,7 @@ tokens = 250
 def _docs(seed: int, n: int) -> list[str]:
     """Invented sentences from a seeded generator (demo data, not a reference)."""
     rnd = random.Random(seed)
-    return [" ".join(rnd.choice(WORDS) for _ in range(rnd.randint(4, 24))).capitalize() + "."
-            for _ in range(n)]
+    return [" ".join(rnd.choice(WORDS) for _ in range(rnd.randint(4, 24))).capitalize() + "." for _ in range(n)]
 
 
 def _write_arrow(path: Path, docs: list[str]) -> None:
@@ -80,8 +97,9 @@ def write_corpus(root: Path) -> Path:
         (data / sub).mkdir(parents=True, exist_ok=True)
     (data / "text" / "a.txt").write_text("\n\n".join(_docs(1, 120)) + "\n", encoding="utf-8")
     (data / "text" / "sub" / "b.txt").write_text("\r\n\r\n".join(_docs(2, 80)) + "\r\n", encoding="utf-8")
-    (data / "jsonl" / "a.jsonl").write_text("".join(json.dumps({"text": d}) + "\n" for d in _docs(3, 150)),
-                                            encoding="utf-8")
+    (data / "jsonl" / "a.jsonl").write_text(
+        "".join(json.dumps({"text": d}) + "\n" for d in _docs(3, 150)), encoding="utf-8"
+    )
     raw = "".join(json.dumps({"text": d, "n": i}) + "\n" for i, d in enumerate(_docs(4, 60))).encode()
     # mtime=0 keeps the gzip bytes fixed (Python's gzip module docs)
     (data / "jsonl" / "b.jsonl.gz").write_bytes(gzip.compress(raw, mtime=0))
@@ -107,9 +125,15 @@ def outputs(result: BuildResult) -> dict[str, Any]:
     return {
         "vocabulary": m["vocabulary"]["hash"],
         "tokenizer": [f["hash"] for f in m["tokenizer"]["files"]],
-        "splits": {name: {"documents": sp["documents"], "tokens": sp["tokens"], "docs": sp["docs"]["hash"],
-                          "shards": [(s["token_hash"], s["file_hash"]) for s in sp["shards"]]}
-                   for name, sp in m["splits"].items()},
+        "splits": {
+            name: {
+                "documents": sp["documents"],
+                "tokens": sp["tokens"],
+                "docs": sp["docs"]["hash"],
+                "shards": [(s["token_hash"], s["file_hash"]) for s in sp["shards"]],
+            }
+            for name, sp in m["splits"].items()
+        },
         "inputs": [(i["size"], i["hash"]) for i in m["inputs"]],
         "read": m["summary"]["read"],
     }
@@ -153,9 +177,11 @@ def memfs(corpus: Path) -> Iterator[Any]:
 
 # -- (a) file:// URIs, in this process -------------------------------------------------------------
 
+
 @pytest.mark.parametrize("kind", list(KINDS))
-def test_file_uris_build_the_same_dataset(kind: str, corpus: Path, local_builds: dict[str, BuildResult],
-                                          tmp_path: Path) -> None:
+def test_file_uris_build_the_same_dataset(
+    kind: str, corpus: Path, local_builds: dict[str, BuildResult], tmp_path: Path
+) -> None:
     local = local_builds[kind]
     remote = build_glob(corpus, kind, file_uri(corpus) + "/" + KINDS[kind][0], tmp_path / "out")
     assert outputs(remote) == outputs(local)
@@ -164,26 +190,29 @@ def test_file_uris_build_the_same_dataset(kind: str, corpus: Path, local_builds:
     assert local.parts_total > len(local.manifest["inputs"])
     assert remote.parts_total == local.parts_total
     # the manifest records the URI of each input, the local build the path under the recipe root
-    assert [i["path"] for i in remote.manifest["inputs"]] == \
-        [file_uri(corpus / i["path"]) for i in local.manifest["inputs"]]
+    assert [i["path"] for i in remote.manifest["inputs"]] == [
+        file_uri(corpus / i["path"]) for i in local.manifest["inputs"]
+    ]
 
 
 # -- (b) file:// URIs read by spawned worker processes --------------------------------------------
 
-def test_file_uris_with_two_worker_processes(corpus: Path, local_builds: dict[str, BuildResult],
-                                             tmp_path: Path) -> None:
-    remote = build_glob(corpus, "jsonl", file_uri(corpus) + "/" + KINDS["jsonl"][0], tmp_path / "out",
-                        workers=2)
+
+def test_file_uris_with_two_worker_processes(
+    corpus: Path, local_builds: dict[str, BuildResult], tmp_path: Path
+) -> None:
+    remote = build_glob(corpus, "jsonl", file_uri(corpus) + "/" + KINDS["jsonl"][0], tmp_path / "out", workers=2)
     assert outputs(remote) == outputs(local_builds["jsonl"])
 
 
 # -- (c) a filesystem that is not the local disk ---------------------------------------------------
 
+
 @needs_mock
 @pytest.mark.parametrize("kind", list(KINDS))
-def test_in_memory_filesystem_builds_the_same_dataset(kind: str, corpus: Path, memfs: Any,
-                                                      local_builds: dict[str, BuildResult],
-                                                      tmp_path: Path) -> None:
+def test_in_memory_filesystem_builds_the_same_dataset(
+    kind: str, corpus: Path, memfs: Any, local_builds: dict[str, BuildResult], tmp_path: Path
+) -> None:
     remote = build_glob(corpus, kind, f"{MEM}/{KINDS[kind][0]}", tmp_path / "out")  # default executor
     assert outputs(remote) == outputs(local_builds[kind])
     local_paths = [i["path"] for i in local_builds[kind].manifest["inputs"]]
@@ -204,8 +233,9 @@ def _count_uri_hashes(monkeypatch: pytest.MonkeyPatch) -> list[str]:
 
 
 @needs_mock
-def test_unchanged_uris_are_not_hashed_again(corpus: Path, memfs: Any, tmp_path: Path,
-                                             monkeypatch: pytest.MonkeyPatch) -> None:
+def test_unchanged_uris_are_not_hashed_again(
+    corpus: Path, memfs: Any, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     hashed = _count_uri_hashes(monkeypatch)
     first = build_glob(corpus, "text", f"{MEM}/data/text/**/*.txt", tmp_path / "out")
     assert len(hashed) == len(first.manifest["inputs"]) == 2
@@ -263,9 +293,9 @@ class _Wrapped(pafs.FileSystemHandler):
 
 
 @needs_mock
-def test_a_filesystem_without_mtime_is_hashed_every_build(corpus: Path, memfs: Any, tmp_path: Path,
-                                                          monkeypatch: pytest.MonkeyPatch,
-                                                          local_builds: dict[str, BuildResult]) -> None:
+def test_a_filesystem_without_mtime_is_hashed_every_build(
+    corpus: Path, memfs: Any, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, local_builds: dict[str, BuildResult]
+) -> None:
     _fs.register_filesystem("nomtime://bucket", pafs.PyFileSystem(_Wrapped(memfs)), root="bucket")
     assert _fs.change_stamp("nomtime://bucket/data/text/a.txt") is None
     assert _fs.change_stamp(f"{MEM}/data/text/a.txt") is not None
@@ -279,10 +309,32 @@ def test_a_filesystem_without_mtime_is_hashed_every_build(corpus: Path, memfs: A
 
 # -- globs -----------------------------------------------------------------------------------------
 
-GLOB_TREE = ("g/a.txt", "g/b.txt", "g/c.md", "g/.h.txt", "g/sub/d.txt", "g/sub/deep/e.txt", "g/.hid/f.txt",
-             "g/sub/.x/g.txt", "g/x[1].txt")
-GLOB_PATTERNS = ("g/*.txt", "g/**/*.txt", "g/**", "g/*/*.txt", "g/[ab].txt", "g/?.txt", "g/.*.txt",
-                 "g/.hid/*.txt", "g/**/deep/*.txt", "g/sub/d.txt", "**/e.txt", "g/x[[]1].txt", "g/*/")
+GLOB_TREE = (
+    "g/a.txt",
+    "g/b.txt",
+    "g/c.md",
+    "g/.h.txt",
+    "g/sub/d.txt",
+    "g/sub/deep/e.txt",
+    "g/.hid/f.txt",
+    "g/sub/.x/g.txt",
+    "g/x[1].txt",
+)
+GLOB_PATTERNS = (
+    "g/*.txt",
+    "g/**/*.txt",
+    "g/**",
+    "g/*/*.txt",
+    "g/[ab].txt",
+    "g/?.txt",
+    "g/.*.txt",
+    "g/.hid/*.txt",
+    "g/**/deep/*.txt",
+    "g/sub/d.txt",
+    "**/e.txt",
+    "g/x[[]1].txt",
+    "g/*/",
+)
 
 
 @pytest.mark.parametrize("pattern", GLOB_PATTERNS)
@@ -301,7 +353,7 @@ def test_uri_globs_match_like_local_globs(pattern: str, tmp_path: Path) -> None:
     except SourceMissingError:
         found = []
     assert all(u.startswith(base) for u in found)
-    assert [u[len(base):] for u in found] == local
+    assert [u[len(base) :] for u in found] == local
 
 
 @needs_mock
@@ -317,14 +369,19 @@ def test_hash_file_streams_a_uri(corpus: Path, memfs: Any, tmp_path: Path) -> No
 
 # -- (d) errors ------------------------------------------------------------------------------------
 
+
 def test_unknown_scheme_is_a_recipe_error_naming_the_uri(corpus: Path, tmp_path: Path) -> None:
     with pytest.raises(RecipeError, match=re.escape("nosuchscheme://bucket/data/*.txt")):
         build_glob(corpus, "text", "nosuchscheme://bucket/data/*.txt", tmp_path / "out")
 
 
 def test_uri_glob_matching_nothing(corpus: Path, tmp_path: Path) -> None:
-    for pattern in (file_uri(corpus) + "/data/text/*.nothing", file_uri(corpus) + "/no/such/dir/*.txt",
-                    file_uri(corpus) + "/data/text/missing.txt", file_uri(corpus) + "/data/text"):
+    for pattern in (
+        file_uri(corpus) + "/data/text/*.nothing",
+        file_uri(corpus) + "/no/such/dir/*.txt",
+        file_uri(corpus) + "/data/text/missing.txt",
+        file_uri(corpus) + "/data/text",
+    ):
         with pytest.raises(SourceMissingError, match=r"glob .* matched no file") as caught:
             build_glob(corpus, "text", pattern, tmp_path / "out")
         assert pattern in str(caught.value)
@@ -352,8 +409,7 @@ class _RemoveBeforeFirstTask(InlineExecutor):
 
 
 @pytest.mark.parametrize("where", ["file", "memory"])
-def test_file_removed_after_planning_names_the_uri(where: str, tmp_path: Path,
-                                                   request: pytest.FixtureRequest) -> None:
+def test_file_removed_after_planning_names_the_uri(where: str, tmp_path: Path, request: pytest.FixtureRequest) -> None:
     root = write_corpus(tmp_path / "src")
     if where == "file":
         pattern = file_uri(root) + "/data/text/**/*.txt"
@@ -369,6 +425,7 @@ def test_file_removed_after_planning_names_the_uri(where: str, tmp_path: Path,
 
         def remove() -> None:
             mem.delete_file("bucket/data/text/a.txt")
+
     with pytest.raises(SourceMissingError, match="removed after the glob matched") as caught:
         build_glob(root, "text", pattern, tmp_path / "out", executor=_RemoveBeforeFirstTask(remove))
     assert gone in str(caught.value)
@@ -376,11 +433,12 @@ def test_file_removed_after_planning_names_the_uri(where: str, tmp_path: Path,
 
 # -- the README ------------------------------------------------------------------------------------
 
+
 def test_readme_uri_snippet_parses() -> None:
     """The README's object-store snippet is a valid source table whose paths are a URI."""
     readme = (Path(__file__).resolve().parent.parent / "README.md").read_text(encoding="utf-8")
     (snippet,) = [b for b in re.findall(r"```toml\n(.*?)```", readme, flags=re.S) if "s3://" in b]
-    recipe = parse_recipe("[[sources]]\n" + snippet + "\n[tokenizer]\nkind = \"words\"\n")
+    recipe = parse_recipe("[[sources]]\n" + snippet + '\n[tokenizer]\nkind = "words"\n')
     (source,) = recipe.sources
     assert all(_fs.is_uri(p) and p.startswith("s3://") for p in source.paths)
     assert "not read directly yet" not in readme

@@ -39,8 +39,9 @@ def test_lookup_maps_misses_to_unknown() -> None:
     v = build_vocabulary(counts({b"a": 2, b"b": 1}), VocabSpec())
     ids = v.lookup(pa.array([b"b", b"zz", b"a"], pa.binary()))
     assert ids.tolist() == [5, 0, 4]
-    no_unk = build_vocabulary(counts({b"a": 2}), VocabSpec(specials=("<pad>",), unknown="", padding="<pad>",
-                                                             begin="", end=""))
+    no_unk = build_vocabulary(
+        counts({b"a": 2}), VocabSpec(specials=("<pad>",), unknown="", padding="<pad>", begin="", end="")
+    )
     with pytest.raises(TokenizerError, match="no unknown token"):
         no_unk.lookup(pa.array([b"q"], pa.binary()))
 
@@ -74,13 +75,16 @@ def test_save_load_roundtrip(tmp_path: Path) -> None:
         Vocabulary.load(tmp_path / "other.arrow")
 
 
-@pytest.mark.parametrize(("kwargs", "match"), [
-    ({"specials": ("<a>", "<a>")}, "distinct"),
-    ({"unknown": "<nope>"}, "not listed in specials"),
-    ({"min_count": 0}, "min_count: expected a positive integer, got 0"),
-    ({"max_size": -3}, "max_size"),
-    ({"max_size": 3}, "more than the 4 specials"),
-])
+@pytest.mark.parametrize(
+    ("kwargs", "match"),
+    [
+        ({"specials": ("<a>", "<a>")}, "distinct"),
+        ({"unknown": "<nope>"}, "not listed in specials"),
+        ({"min_count": 0}, "min_count: expected a positive integer, got 0"),
+        ({"max_size": -3}, "max_size"),
+        ({"max_size": 3}, "more than the 4 specials"),
+    ],
+)
 def test_bad_specs_name_the_field(kwargs: dict[str, object], match: str) -> None:
     """Invalid [vocab] values raise RecipeError naming the field and value."""
     with pytest.raises(RecipeError, match=match):

@@ -18,8 +18,9 @@ from seqpipe.stream import TokenStream
 from seqpipe.windows import Batch, BatchStream, StreamState, _Shuffle, stream_fingerprint
 
 
-def make_stream(values: np.ndarray, cuts: list[int] | tuple[int, ...] = (),
-                doc_starts: np.ndarray | None = None) -> TokenStream:
+def make_stream(
+    values: np.ndarray, cuts: list[int] | tuple[int, ...] = (), doc_starts: np.ndarray | None = None
+) -> TokenStream:
     edges = [0, *sorted(cuts), len(values)]
     return TokenStream([values[a:b] for a, b in itertools.pairwise(edges)], doc_starts)
 
@@ -63,19 +64,23 @@ def round_robin(iterators: list[Iterator[Batch]]) -> list[Batch]:
 
 def same(a: list[Batch], b: list[Batch]) -> bool:
     return len(a) == len(b) and all(
-        x.step == y.step and x.fresh == y.fresh and np.array_equal(x.inputs, y.inputs)
-        and np.array_equal(x.targets, y.targets) and np.array_equal(x.starts, y.starts)
-        for x, y in zip(a, b, strict=True))
+        x.step == y.step
+        and x.fresh == y.fresh
+        and np.array_equal(x.inputs, y.inputs)
+        and np.array_equal(x.targets, y.targets)
+        and np.array_equal(x.starts, y.starts)
+        for x, y in zip(a, b, strict=True)
+    )
 
 
 # --- known answers (common practice) ----------------------------------------------------------------
+
 
 @pytest.mark.parametrize("seed", range(5))
 def test_known_answer_sequential_0_to_34(seed: int) -> None:
     """Stream 0..34, B=2, T=5: targets = inputs + 1 and each row continues the previous batch's row."""
     # common practice: sequential (lane) batching for recurrent models
-    bs = BatchStream(TokenStream([np.arange(35, dtype=np.uint8)]), batch_size=2, steps=5,
-                     order="sequential", seed=seed)
+    bs = BatchStream(TokenStream([np.arange(35, dtype=np.uint8)]), batch_size=2, steps=5, order="sequential", seed=seed)
     batches = list(bs)
     lane = (34 - bs.offset) // 2
     assert len(batches) == lane // 5 >= 2
@@ -92,8 +97,7 @@ def test_known_answer_sequential_0_to_34(seed: int) -> None:
 def test_known_answer_random_0_to_34(seed: int) -> None:
     """Stream 0..34, B=2, T=5: windows on the offset grid, each once, targets = inputs + 1."""
     # common practice: random offset in [0, T), then floor((N - 1 - offset) / T) windows
-    bs = BatchStream(TokenStream([np.arange(35, dtype=np.uint8)]), batch_size=2, steps=5,
-                     seed=seed, drop_last=False)
+    bs = BatchStream(TokenStream([np.arange(35, dtype=np.uint8)]), batch_size=2, steps=5, seed=seed, drop_last=False)
     assert 0 <= bs.offset < 5
     count = (34 - bs.offset) // 5
     starts = np.concatenate([b.inputs[:, 0] for b in bs])
@@ -128,6 +132,7 @@ def test_fingerprint_is_xxh3_128_of_little_endian_int64() -> None:
 
 # --- identities (hypothesis) ------------------------------------------------------------------------
 
+
 @given(setups())
 def test_windows_are_shifted_slices_inside_the_stream(setup: dict[str, Any]) -> None:
     """Every row is stream[s:s+w] as inputs and stream[s+1:s+w+1] as targets, inside the stream."""
@@ -139,8 +144,8 @@ def test_windows_are_shifted_slices_inside_the_stream(setup: dict[str, Any]) -> 
         for row, s in enumerate(b.starts.tolist()):
             assert s >= 0
             assert s + width + 1 <= len(values)
-            np.testing.assert_array_equal(b.inputs[row], values[s:s + width])
-            np.testing.assert_array_equal(b.targets[row], values[s + 1:s + width + 1])
+            np.testing.assert_array_equal(b.inputs[row], values[s : s + width])
+            np.testing.assert_array_equal(b.targets[row], values[s + 1 : s + width + 1])
 
 
 @given(setups())
@@ -169,8 +174,9 @@ def test_sequential_rows_continue(setup: dict[str, Any]) -> None:
     if batches:
         lane = bs.lane_length
         assert batches[0].starts.tolist() == [bs.offset + j * lane for j in range(setup["batch_size"])]
-        assert sum(b.inputs.shape[1] for b in batches) == (lane if not setup["drop_last"]
-                                                           else lane // setup["steps"] * setup["steps"])
+        assert sum(b.inputs.shape[1] for b in batches) == (
+            lane if not setup["drop_last"] else lane // setup["steps"] * setup["steps"]
+        )
 
 
 @given(setups(), st.integers(1, 3))
@@ -208,11 +214,12 @@ def test_resume_yields_the_remaining_batches(setup: dict[str, Any], consumed: in
     state = StreamState.from_dict(dict(bs.state().to_dict()))
     assert state.step == len(taken)
     resumed = build(setup).resume(state)
-    assert same(list(resumed), full[len(taken):])
-    assert same(list(build(setup, start_step=len(taken))), full[len(taken):])
+    assert same(list(resumed), full[len(taken) :])
+    assert same(list(build(setup, start_step=len(taken))), full[len(taken) :])
 
 
 # --- the epoch permutation -------------------------------------------------------------------------
+
 
 @given(st.integers(0, 3000), st.integers(0, 2**64 - 1))
 def test_shuffle_is_a_bijection(n: int, seed: int) -> None:
@@ -251,6 +258,7 @@ def test_large_split_resume_is_direct() -> None:
 
 # --- seeds, epochs, keys ----------------------------------------------------------------------------
 
+
 def fp(**kw: Any) -> str:
     values = (np.arange(5000) * 31 % 1009).astype(np.uint16)
     base: dict[str, Any] = {"batch_size": 4, "steps": 8, "seed": 0, "stream_key": "k"}
@@ -267,8 +275,9 @@ def test_random_order_depends_on_seed_epoch_and_key() -> None:
 def test_sequential_offset_depends_on_seed() -> None:
     """Sequential order: the stream is a pure function of the seed, and seeds move the lane offset."""
     values = np.arange(3000, dtype=np.uint16)
-    by_seed = {s: BatchStream(TokenStream([values]), batch_size=2, steps=16, order="sequential", seed=s)
-               for s in range(12)}
+    by_seed = {
+        s: BatchStream(TokenStream([values]), batch_size=2, steps=16, order="sequential", seed=s) for s in range(12)
+    }
     assert len({bs.offset for bs in by_seed.values()}) > 1
     assert all(0 <= bs.offset < 16 for bs in by_seed.values())
     ref = stream_fingerprint(by_seed[0].iter_steps(0, 1))
@@ -290,6 +299,7 @@ def test_global_random_state_untouched() -> None:
 
 # --- details ----------------------------------------------------------------------------------------
 
+
 def test_partial_last_batch_split_across_ranks() -> None:
     """drop_last=False, random order: 5 leftover windows over 3 ranks give them 2, 2 and 1 rows."""
     stream = TokenStream([np.arange(100, dtype=np.uint16)])
@@ -297,8 +307,14 @@ def test_partial_last_batch_split_across_ranks() -> None:
     windows = probe.num_windows  # 10 or 11 windows of 9; global batch 6 -> a partial batch remains
     left = windows % 6
     assert left
-    sizes = [len(BatchStream(stream, batch_size=2, steps=9, world_size=3, rank=r, drop_last=False,
-                             seed=4).batch(len(probe) - 1).starts) for r in range(3)]
+    sizes = [
+        len(
+            BatchStream(stream, batch_size=2, steps=9, world_size=3, rank=r, drop_last=False, seed=4)
+            .batch(len(probe) - 1)
+            .starts
+        )
+        for r in range(3)
+    ]
     assert sizes == [left // 3 + (r < left % 3) for r in range(3)]
 
 
@@ -329,8 +345,9 @@ def test_boundary_mask_and_fresh() -> None:
 
 def test_output_dtype_and_state_tracking() -> None:
     """dtype sets the batch id type; state() advances with each batch handed out."""
-    bs = BatchStream(TokenStream([np.arange(200, dtype=np.uint16)]), batch_size=2, steps=5,
-                     dtype=np.int32, start_step=1)
+    bs = BatchStream(
+        TokenStream([np.arange(200, dtype=np.uint16)]), batch_size=2, steps=5, dtype=np.int32, start_step=1
+    )
     it = iter(bs)
     first = next(it)
     assert first.inputs.dtype == np.int32
@@ -356,10 +373,16 @@ def test_bad_parameters_name_the_key() -> None:
     """Invalid settings raise StreamError whose message names the parameter and value."""
     stream = TokenStream([np.arange(100, dtype=np.uint16)])
     cases: list[tuple[dict[str, Any], str]] = [
-        ({"batch_size": 0}, "batch_size"), ({"steps": -1}, "steps"), ({"order": "shuffled"}, "order"),
-        ({"rank": 2, "world_size": 2}, "rank"), ({"seed": -1}, "seed"), ({"dtype": np.int8}, "dtype"),
-        ({"dtype": np.float64}, "dtype"), ({"boundaries": True}, "boundaries"),
-        ({"start_step": 10**6}, "start_step"), ({"drop_last": 1}, "drop_last"),
+        ({"batch_size": 0}, "batch_size"),
+        ({"steps": -1}, "steps"),
+        ({"order": "shuffled"}, "order"),
+        ({"rank": 2, "world_size": 2}, "rank"),
+        ({"seed": -1}, "seed"),
+        ({"dtype": np.int8}, "dtype"),
+        ({"dtype": np.float64}, "dtype"),
+        ({"boundaries": True}, "boundaries"),
+        ({"start_step": 10**6}, "start_step"),
+        ({"drop_last": 1}, "drop_last"),
     ]
     for over, needle in cases:
         kw: dict[str, Any] = {"batch_size": 2, "steps": 4}
@@ -377,8 +400,12 @@ def test_state_validation_and_foreign_states() -> None:
     """StreamState round-trips; bad dicts, foreign configs and steps past the end are refused."""
     s = StreamState(epoch=2, step=5, config="abc")
     assert StreamState.from_dict(s.to_dict()) == s
-    for bad, needle in [({"epoch": 0, "step": 0, "extra": 1}, "extra"), ({"epoch": -1, "step": 0}, "epoch"),
-                        ({"epoch": 0}, "step"), ({"epoch": 0, "step": "3"}, "step")]:
+    for bad, needle in [
+        ({"epoch": 0, "step": 0, "extra": 1}, "extra"),
+        ({"epoch": -1, "step": 0}, "epoch"),
+        ({"epoch": 0}, "step"),
+        ({"epoch": 0, "step": "3"}, "step"),
+    ]:
         with pytest.raises(StreamError, match=needle):
             StreamState.from_dict(bad)
     stream = TokenStream([np.arange(300, dtype=np.uint16)])

@@ -20,8 +20,34 @@ from typing import Final
 
 import numpy as np
 
-_ONSETS: Final = ("b", "d", "f", "g", "h", "k", "l", "m", "n", "p", "r", "s", "t", "v", "w", "z",
-                  "br", "dr", "gl", "kr", "pl", "st", "tr", "th", "sh", "ch")
+_ONSETS: Final = (
+    "b",
+    "d",
+    "f",
+    "g",
+    "h",
+    "k",
+    "l",
+    "m",
+    "n",
+    "p",
+    "r",
+    "s",
+    "t",
+    "v",
+    "w",
+    "z",
+    "br",
+    "dr",
+    "gl",
+    "kr",
+    "pl",
+    "st",
+    "tr",
+    "th",
+    "sh",
+    "ch",
+)
 _VOWELS: Final = ("a", "e", "i", "o", "u", "ai", "ou", "ea")
 _ACCENTED: Final = ("é", "è", "ö", "å", "ü", "â", "ï", "ô")
 _CODAS: Final = ("", "", "", "n", "r", "l", "s", "t", "m", "k")
@@ -44,8 +70,11 @@ def invent_words(count: int, seed: int) -> tuple[str, ...]:
         n_syl = int(rng.choice([1, 2, 3, 4], p=[0.3, 0.4, 0.22, 0.08]))
         parts = []
         for _ in range(n_syl):
-            vowel = (_ACCENTED[int(rng.integers(len(_ACCENTED)))] if rng.random() < 0.02
-                     else _VOWELS[int(rng.integers(len(_VOWELS)))])
+            vowel = (
+                _ACCENTED[int(rng.integers(len(_ACCENTED)))]
+                if rng.random() < 0.02
+                else _VOWELS[int(rng.integers(len(_VOWELS)))]
+            )
             parts.append(_ONSETS[int(rng.integers(len(_ONSETS)))] + vowel + _CODAS[int(rng.integers(len(_CODAS)))])
         word = "".join(parts)
         if word not in seen:
@@ -70,8 +99,7 @@ def _table(pieces: list[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 class CorpusWriter:
     """Writes English-like paragraphs; see the module docstring."""
 
-    def __init__(self, *, words: int = 40_000, vocab_seed: int = 1, seed: int = 2,
-                 number_rate: float = 0.03) -> None:
+    def __init__(self, *, words: int = 40_000, vocab_seed: int = 1, seed: int = 2, number_rate: float = 0.03) -> None:
         self.words = invent_words(words, vocab_seed)
         v = len(self.words)
         ranks = np.arange(v, dtype=np.float64)
@@ -105,8 +133,7 @@ class CorpusWriter:
         starts = np.flatnonzero(np.concatenate([[True], sent_end[:-1]]))
         cap = starts[tok[starts] < v]
         tok[cap] += v  # the first word of a sentence is capitalized
-        sep = self._inner_base + np.searchsorted(self._inner_cdf, rng.random(n) * self._inner_cdf[-1],
-                                                 side="right")
+        sep = self._inner_base + np.searchsorted(self._inner_cdf, rng.random(n) * self._inner_cdf[-1], side="right")
         ends = np.flatnonzero(sent_end)
         mark = np.searchsorted(self._end_cdf, rng.random(len(ends)) * self._end_cdf[-1], side="right")
         # after a sentence: blank line (document end), a line break, or a space
@@ -137,8 +164,9 @@ class CorpusWriter:
         return written
 
 
-def write_corpus(directory: Path, total_bytes: int, *, files: int = 4, seed: int = 2,
-                 vocab_seed: int = 1, words: int = 40_000) -> list[Path]:
+def write_corpus(
+    directory: Path, total_bytes: int, *, files: int = 4, seed: int = 2, vocab_seed: int = 1, words: int = 40_000
+) -> list[Path]:
     """Write ``files`` text files of about ``total_bytes`` in all; return their paths (sorted)."""
     writer = CorpusWriter(words=words, vocab_seed=vocab_seed, seed=seed)
     paths = []

@@ -25,8 +25,31 @@ from seqpipe.vocab import VocabSpec
 ROOT = Path(__file__).resolve().parents[2]
 SPEC = VocabSpec()
 START = len(SPEC.specials) + 256  # specials + byte alphabet
-_ONSETS = ["", "b", "br", "d", "f", "g", "gl", "h", "k", "l", "m", "n", "p", "qu", "r", "s", "sk", "st", "t",
-           "th", "v", "w", "z"]
+_ONSETS = [
+    "",
+    "b",
+    "br",
+    "d",
+    "f",
+    "g",
+    "gl",
+    "h",
+    "k",
+    "l",
+    "m",
+    "n",
+    "p",
+    "qu",
+    "r",
+    "s",
+    "sk",
+    "st",
+    "t",
+    "th",
+    "v",
+    "w",
+    "z",
+]
 _VOWELS = ["a", "e", "i", "o", "u", "ai", "ea", "ou", "y"]
 _CODAS = ["", "", "n", "r", "l", "s", "th", "nd", "rk", "st", "m"]
 
@@ -34,9 +57,15 @@ _CODAS = ["", "", "n", "r", "l", "s", "th", "nd", "rk", "st", "m"]
 def make_documents(size: int, seed: int = 20240611) -> list[str]:
     """About ``size`` characters of invented English-like documents, the same for a seed."""
     rng = random.Random(seed)
-    words = sorted({"".join(rng.choice(_ONSETS) + rng.choice(_VOWELS) + rng.choice(_CODAS)
-                            for _ in range(rng.choice((1, 1, 2, 2, 3))))
-                    for _ in range(6000)})
+    words = sorted(
+        {
+            "".join(
+                rng.choice(_ONSETS) + rng.choice(_VOWELS) + rng.choice(_CODAS)
+                for _ in range(rng.choice((1, 1, 2, 2, 3)))
+            )
+            for _ in range(6000)
+        }
+    )
     gen = np.random.default_rng(seed)
     weights = 1.0 / np.arange(1, len(words) + 1) ** 1.07  # Zipf-like word frequencies
     order = gen.permutation(len(words))  # frequency rank unrelated to spelling
@@ -49,7 +78,7 @@ def make_documents(size: int, seed: int = 20240611) -> list[str]:
         sentences = []
         for _ in range(int(gen.integers(8, 30))):
             n = int(gen.integers(4, 18))
-            sent = tokens[pos:pos + n]
+            sent = tokens[pos : pos + n]
             pos += n
             if not sent:
                 break
@@ -88,7 +117,7 @@ def _symbols_after(enc: BpeEncoder, keys: pa.Array) -> list[list[bytes]]:
     values, offsets = enc.piece_ids(keys)
     tokens = [bytes(t) for t in enc.vocabulary.tokens.to_pylist()]
     flat = [tokens[i] for i in values.tolist()]
-    return [flat[offsets[j]:offsets[j + 1]] for j in range(len(keys))]
+    return [flat[offsets[j] : offsets[j + 1]] for j in range(len(keys))]
 
 
 def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
@@ -119,13 +148,16 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
         got, _ = naive(words, freqs, 0, sample, 2)
         per_merge.append((time.perf_counter() - t0) / sample)
         v = enc.vocabulary
-        if got != [(v.token(a), v.token(b)) for a, b, _ in enc.merges[m:m + sample]]:
+        if got != [(v.token(a), v.token(b)) for a, b, _ in enc.merges[m : m + sample]]:
             raise RuntimeError(f"naive and fast trainers disagree after {m} merges")
     naive_total = float(np.trapezoid(per_merge, points) + per_merge[-1] * sample)
     yield Measure(
-        "bpe.train_vs_naive", naive_total / fast, 20,
+        "bpe.train_vs_naive",
+        naive_total / fast,
+        20,
         f"({n_merges} merges on {len(text) / 1e6:.1f} MB, {len(keys)} distinct chunks: fast {fast:.2f} s best of 3; "
-        f"naive {naive_total:.1f} s extrapolated from {sample} merges timed at each of {points})")
+        f"naive {naive_total:.1f} s extrapolated from {sample} merges timed at each of {points})",
+    )
 
     pattern = regex.compile(DEFAULT_CHUNK_PATTERN)
     split = best_time(lambda: pattern.findall(text))
@@ -134,7 +166,7 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
         if empty_cache:
             encoder._cache.clear()  # as if loaded from disk: every distinct chunk is merged once
         for i in range(0, len(docs), 256):  # batches, as a build encodes
-            encoder.encode_batch(docs[i:i + 256])
+            encoder.encode_batch(docs[i : i + 256])
 
     empty = best_time(lambda: encode_all(enc, empty_cache=True))
     enc = tok.fit(counts, SPEC)  # the state a build encodes with: its chunk cache as training left it
@@ -143,8 +175,11 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     if enc.decode(ids) != text:
         raise RuntimeError("encode/decode did not round-trip the benchmark text")
     yield Measure(
-        "bpe.encode_vs_regex_split", split / after, 0.25,
+        "bpe.encode_vs_regex_split",
+        split / after,
+        0.25,
         f"(encoding the training text after training, batches of 256 docs: {len(text) / after / 1e6:.1f} MB/s; "
         f"findall over the text {len(text) / split / 1e6:.1f} MB/s; from an empty chunk cache "
         f"{len(text) / empty / 1e6:.1f} MB/s, ratio {split / empty:.2f}; {len(ids) / len(text.encode()):.3f} "
-        "tokens/byte)")
+        "tokens/byte)",
+    )

@@ -107,8 +107,17 @@ def cli_build_seconds(recipe: Recipe, out: Path, workers: int) -> tuple[float, f
     env = {**os.environ, "SEQPIPE_INGEST_THREADS": "1"}
     if workers == 1:
         env["SEQPIPE_TASK_THREADS"] = "1"
-    command = [str(Path(sys.executable).with_name("seqpipe")), "build", str(recipe.root / "recipe.toml"),
-               "-o", str(out), "--workers", str(workers), "--quiet", "--json"]
+    command = [
+        str(Path(sys.executable).with_name("seqpipe")),
+        "build",
+        str(recipe.root / "recipe.toml"),
+        "-o",
+        str(out),
+        "--workers",
+        str(workers),
+        "--quiet",
+        "--json",
+    ]
     t0 = time.perf_counter()
     done = subprocess.run(command, env=env, capture_output=True, text=True, check=False)
     wall = time.perf_counter() - t0
@@ -176,8 +185,13 @@ def train_ids(directory: Path) -> np.ndarray:
 def peak_rss_kib(recipe_path: Path, out: Path) -> int:
     """Peak RSS of a build run in its own interpreter (largest of the process and its children)."""
     env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parents[2]))
-    done = subprocess.run([sys.executable, "-c", _RSS_CHILD, str(recipe_path), str(out)], env=env,
-                          capture_output=True, text=True, check=False)
+    done = subprocess.run(
+        [sys.executable, "-c", _RSS_CHILD, str(recipe_path), str(out)],
+        env=env,
+        capture_output=True,
+        text=True,
+        check=False,
+    )
     if done.returncode:
         raise RuntimeError(f"build subprocess failed ({done.returncode}):\n{done.stderr}")
     report = json.loads(done.stdout.strip().splitlines()[-1])
@@ -214,9 +228,13 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     runs = [timed_build(recipe, workdir / f"words-{i}", workers=1) for i in range(repeat)]
     t_build, result = min(runs, key=lambda r: r[0])
     t_regex = min(findall_seconds(paths) for _ in range(repeat))
-    yield Measure("build.words_vs_regex_findall", t_regex / t_build, 2.0,
-                  f"(build {size / MB / t_build:.1f} MB/s vs regex.findall {size / MB / t_regex:.1f} MB/s "
-                  f"over {size / MB:.0f} MB, workers=1)")
+    yield Measure(
+        "build.words_vs_regex_findall",
+        t_regex / t_build,
+        2.0,
+        f"(build {size / MB / t_build:.1f} MB/s vs regex.findall {size / MB / t_regex:.1f} MB/s "
+        f"over {size / MB:.0f} MB, workers=1)",
+    )
 
     # --- the same build vs a straightforward pure-Python pipeline, same ids -------------------------
     naive: list[int] = []
@@ -229,20 +247,26 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     want = np.array(naive, dtype=np.int64)
     del naive
     if len(got) != len(want) or not np.array_equal(got.astype(np.int64), want):
-        raise RuntimeError(f"naive pipeline ids differ from the build's train stream "
-                           f"({len(want)} vs {len(got)} ids)")
-    yield Measure("build.words_vs_naive_python", t_naive / t_build, 10.0,
-                  f"(build {t_build:.2f} s vs naive {t_naive:.2f} s, best of 3 and 2 runs, "
-                  f"{len(got)} identical ids)")
+        raise RuntimeError(f"naive pipeline ids differ from the build's train stream ({len(want)} vs {len(got)} ids)")
+    yield Measure(
+        "build.words_vs_naive_python",
+        t_naive / t_build,
+        10.0,
+        f"(build {t_build:.2f} s vs naive {t_naive:.2f} s, best of 3 and 2 runs, {len(got)} identical ids)",
+    )
 
     # --- verify vs raw XXH3 over the same bytes ----------------------------------------------------
     directory = result.directory
     verify(directory)  # page cache warm for both sides
     t_raw, vbytes = raw_xxh3_seconds(directory, repeat=5)  # tens of ms each: best of five
     t_verify = best_time(lambda: _check(verify(directory)), repeat=5)
-    yield Measure("verify.vs_raw_xxh3", t_raw / t_verify, 0.7,
-                  f"(verify {vbytes / MB / t_verify:.0f} MB/s vs one-thread XXH3 {vbytes / MB / t_raw:.0f} MB/s "
-                  f"over {vbytes / MB:.0f} MB)")
+    yield Measure(
+        "verify.vs_raw_xxh3",
+        t_raw / t_verify,
+        0.7,
+        f"(verify {vbytes / MB / t_verify:.0f} MB/s vs one-thread XXH3 {vbytes / MB / t_raw:.0f} MB/s "
+        f"over {vbytes / MB:.0f} MB)",
+    )
     for r in runs:
         _remove(r[1].directory)
 
@@ -275,12 +299,16 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     t_one, t_two = min(r for r, _ in ones), min(r for r, _ in twos)
     w_one, w_two = min(w for _, w in ones), min(w for _, w in twos)
     first4 = min(r for r, _ in ones[:4]) / min(r for r, _ in twos[:4])
-    yield Measure("build.two_workers_vs_one", t_one / t_two, 1.7,
-                  f"(workers=1 {t_one:.2f} s vs workers=2 {t_two:.2f} s over {scale_size / MB:.0f} MB, "
-                  f"one ingest thread per worker, fresh `seqpipe build` processes, alternating, best of {rounds}; "
-                  f"best of the first 4: {first4:.2f}; whole commands {w_one:.2f} s vs {w_two:.2f} s, "
-                  f"ratio {w_one / w_two:.2f}; all runs: {' '.join(f'{r:.2f}' for r, _ in ones)} | "
-                  f"{' '.join(f'{r:.2f}' for r, _ in twos)} s)")
+    yield Measure(
+        "build.two_workers_vs_one",
+        t_one / t_two,
+        1.7,
+        f"(workers=1 {t_one:.2f} s vs workers=2 {t_two:.2f} s over {scale_size / MB:.0f} MB, "
+        f"one ingest thread per worker, fresh `seqpipe build` processes, alternating, best of {rounds}; "
+        f"best of the first 4: {first4:.2f}; whole commands {w_one:.2f} s vs {w_two:.2f} s, "
+        f"ratio {w_one / w_two:.2f}; all runs: {' '.join(f'{r:.2f}' for r, _ in ones)} | "
+        f"{' '.join(f'{r:.2f}' for r, _ in twos)} s)",
+    )
     if not quick:
         _remove(workdir / "scale")
 
@@ -293,10 +321,14 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     rss_big = peak_rss_kib(big.root / "recipe.toml", workdir / "rss-big")
     vocab_small = open_dataset(workdir / "rss-small").manifest["vocabulary"]["size"]
     vocab_big = open_dataset(workdir / "rss-big").manifest["vocabulary"]["size"]
-    yield Measure("build.peak_rss_1g_vs_100m", rss_big / rss_small, 1.3,
-                  f"(peak RSS {rss_big / 1024:.0f} MiB for {big_size / MB:.0f} MB vs {rss_small / 1024:.0f} MiB "
-                  f"for {small_size / MB:.0f} MB; vocabulary {vocab_big} vs {vocab_small})",
-                  higher_is_better=False)
+    yield Measure(
+        "build.peak_rss_1g_vs_100m",
+        rss_big / rss_small,
+        1.3,
+        f"(peak RSS {rss_big / 1024:.0f} MiB for {big_size / MB:.0f} MB vs {rss_small / 1024:.0f} MiB "
+        f"for {small_size / MB:.0f} MB; vocabulary {vocab_big} vs {vocab_small})",
+        higher_is_better=False,
+    )
 
 
 def _check(report: Any) -> None:

@@ -59,7 +59,7 @@ def counter_ngrams(ids: np.ndarray, starts: np.ndarray, lengths: np.ndarray) -> 
     trigrams: Counter[tuple[int, ...]] = Counter()
     values = ids.tolist()
     for s, m in zip(starts.tolist(), lengths.tolist(), strict=True):
-        doc = values[s:s + m]
+        doc = values[s : s + m]
         bigrams.update(pairwise(doc))
         trigrams.update(zip(doc, doc[1:], doc[2:], strict=False))
     return bigrams, trigrams
@@ -69,9 +69,12 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     n_tokens = 200_000 if quick else 20_000_000
     ids, starts, lengths = make_split(n_tokens)
     bits = key_bits(VOCAB)
-    t_ours = best_time(lambda: count_ngrams(ids, (2, 3), bits=bits, starts=starts, lengths=lengths),
-                       repeat=5)
+    t_ours = best_time(lambda: count_ngrams(ids, (2, 3), bits=bits, starts=starts, lengths=lengths), repeat=5)
     t_counter = best_time(lambda: counter_ngrams(ids, starts, lengths), repeat=3 if quick else 1)
-    yield Measure(name="report.ngram_count_vs_counter", ratio=t_counter / t_ours, target=20.0,
-                  detail=f"(Counter {t_counter:.2f} s / count_ngrams {t_ours:.3f} s, bigrams+trigrams of "
-                         f"{n_tokens:,} tokens in {len(starts):,} documents, 32k ids)")
+    yield Measure(
+        name="report.ngram_count_vs_counter",
+        ratio=t_counter / t_ours,
+        target=20.0,
+        detail=f"(Counter {t_counter:.2f} s / count_ngrams {t_ours:.3f} s, bigrams+trigrams of "
+        f"{n_tokens:,} tokens in {len(starts):,} documents, 32k ids)",
+    )

@@ -55,9 +55,11 @@ def rss_anon() -> int:
 def first_batch_seconds(chunks: list[np.ndarray], repeat: int = 25) -> float:
     """Best time from building the TokenStream over mapped shards to holding random batch 0
     (a fraction of a millisecond: best of 25, so one slow tick of the machine does not decide)."""
+
     def run() -> None:
         bs = BatchStream(TokenStream(chunks), batch_size=B, steps=T, seed=1, stream_key=KEY)
         bs.batch(0)
+
     return best_time(run, repeat=repeat)
 
 
@@ -86,9 +88,14 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     epoch_s = time.perf_counter() - t0
     del batch  # the last batch was consumed; what stays is the stream's own state
     growth = rss_anon() - before
-    yield Measure("windows.rss_anon_growth", growth / split_bytes, 0.1,
-                  f"(RssAnon {growth / 2**10:+,.0f} KiB over a {split_bytes / 2**20:.0f} MiB split; "
-                  f"epoch of {len(bs)} batches B={B} T={T} in {epoch_s:.1f} s)", higher_is_better=False)
+    yield Measure(
+        "windows.rss_anon_growth",
+        growth / split_bytes,
+        0.1,
+        f"(RssAnon {growth / 2**10:+,.0f} KiB over a {split_bytes / 2**20:.0f} MiB split; "
+        f"epoch of {len(bs)} batches B={B} T={T} in {epoch_s:.1f} s)",
+        higher_is_better=False,
+    )
     del bs, stream
     gc.collect()
 
@@ -96,13 +103,22 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     map_s = best_time(lambda: open_stream(big), repeat=5)
     big_s = first_batch_seconds(list(open_stream(big).chunks))
     small_s = first_batch_seconds(list(open_stream(small).chunks))
-    yield Measure("windows.open_to_first_batch_ms", big_s * 1e3, 50.0,
-                  f"(best of 25: TokenStream over {len(big)} mapped shards of {tokens:,} tokens to the first "
-                  f"random batch B={B} T={T}; {big_s / small_s:.2f}x the {small_tokens:,}-token case; "
-                  f"mapping the shards beforehand took {map_s * 1e3:.2f} ms)", higher_is_better=False)
-    yield Measure("windows.first_batch_scaling", big_s / small_s, 2.0,
-                  f"(open-to-first-batch at {tokens:,} tokens / at {small_tokens:,} tokens)",
-                  higher_is_better=False)
+    yield Measure(
+        "windows.open_to_first_batch_ms",
+        big_s * 1e3,
+        50.0,
+        f"(best of 25: TokenStream over {len(big)} mapped shards of {tokens:,} tokens to the first "
+        f"random batch B={B} T={T}; {big_s / small_s:.2f}x the {small_tokens:,}-token case; "
+        f"mapping the shards beforehand took {map_s * 1e3:.2f} ms)",
+        higher_is_better=False,
+    )
+    yield Measure(
+        "windows.first_batch_scaling",
+        big_s / small_s,
+        2.0,
+        f"(open-to-first-batch at {tokens:,} tokens / at {small_tokens:,} tokens)",
+        higher_is_better=False,
+    )
 
     # --- random batches from mapped shards vs a plain numpy gather from memory -------------------------
     stream = open_stream(big)
@@ -133,7 +149,11 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     for fn in (ours, numpy_gather, numpy_strided):  # first pass maps the pages; timings below are warm
         fn()
     t_ours, t_numpy, t_strided = best_time(ours, 5), best_time(numpy_gather, 5), best_time(numpy_strided, 5)
-    yield Measure("windows.random_rate_vs_numpy_gather", t_numpy / t_ours, 0.5,
-                  f"(best of 5, {n_batches} batches B={B} T={T} int64: {n_batches / t_ours:,.0f} batches/s "
-                  f"from {len(big)} mapped shards vs {n_batches / t_numpy:,.0f}/s numpy index-array gather in "
-                  f"memory; vs a sliding-window-view gather in memory the ratio is {t_strided / t_ours:.2f})")
+    yield Measure(
+        "windows.random_rate_vs_numpy_gather",
+        t_numpy / t_ours,
+        0.5,
+        f"(best of 5, {n_batches} batches B={B} T={T} int64: {n_batches / t_ours:,.0f} batches/s "
+        f"from {len(big)} mapped shards vs {n_batches / t_numpy:,.0f}/s numpy index-array gather in "
+        f"memory; vs a sliding-window-view gather in memory the ratio is {t_strided / t_ours:.2f})",
+    )

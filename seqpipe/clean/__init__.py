@@ -22,8 +22,7 @@ from seqpipe.clean.replace import Replace
 from seqpipe.clean.strip_control import StripControl
 
 STEP_KINDS: Final[dict[str, type[CleanStep]]] = {
-    cls.kind: cls
-    for cls in (Normalize, Lowercase, Replace, StripControl, CollapseWhitespace, MinLength, Dedupe)
+    cls.kind: cls for cls in (Normalize, Lowercase, Replace, StripControl, CollapseWhitespace, MinLength, Dedupe)
 }
 
 

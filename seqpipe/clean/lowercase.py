@@ -28,7 +28,7 @@ def _changed_by(fn: Callable[[str], str], text: str, block: int = 1024) -> list[
     """
     out: list[int] = []
     for at in range(0, len(text), block):
-        chunk = text[at:at + block]
+        chunk = text[at : at + block]
         if fn(chunk) != chunk:
             out.extend(at + i for i, ch in enumerate(chunk) if fn(ch) != ch)
     return out
@@ -55,7 +55,8 @@ def _arrow_lower_one_by_one(text: str) -> dict[int, str]:
     raw = np.frombuffer(text.encode("utf-8"), np.uint8)
     lead = np.flatnonzero((raw & 0xC0) != 0x80)
     one_each = pa.LargeStringArray.from_buffers(
-        len(lead), pa.py_buffer(np.append(lead, len(raw)).astype(np.int64)), pa.py_buffer(raw))
+        len(lead), pa.py_buffer(np.append(lead, len(raw)).astype(np.int64)), pa.py_buffer(raw)
+    )
     each = pc.utf8_lower(one_each)
     at = np.flatnonzero(pc.not_equal(each, one_each).to_numpy(zero_copy_only=False)).tolist()
     return dict(zip(at, each.take(pa.array(at, pa.int64())).to_pylist(), strict=True))

@@ -44,8 +44,7 @@ class Replace(CleanStep):
         try:
             _compiled(self.pattern)
         except regex.error as exc:
-            raise RecipeError("pattern", f"not a valid regular expression ({exc}): {self.pattern!r}") \
-                from None
+            raise RecipeError("pattern", f"not a valid regular expression ({exc}): {self.pattern!r}") from None
 
     def apply(self, docs: pa.Array) -> pa.Array:
         """Documents with every match replaced."""

@@ -19,7 +19,8 @@ from seqpipe.clean.base import CleanStep, as_documents, re2_class
 def control_characters(keep: str) -> tuple[str, ...]:
     """Every code point of category Cc or Cf (Python's Unicode tables) not in ``keep``."""
     return tuple(
-        chr(cp) for cp in range(sys.maxunicode + 1)
+        chr(cp)
+        for cp in range(sys.maxunicode + 1)
         if unicodedata.category(chr(cp)) in ("Cc", "Cf") and chr(cp) not in keep
     )
 

@@ -56,18 +56,26 @@ def _check(ngram_n: int, top_k: int, add_k: float, kn_discount: float, progress:
 
 def _top_ngrams(dataset: DatasetLike, train: SplitTokens, bits: int, top_k: int) -> dict[str, Any]:
     orders = [n for n in TOP_ORDERS if n <= max_order(bits)]
-    counted = count_ngrams(train.ids, orders, bits=bits, starts=train.content_starts,
-                           lengths=train.content_lengths)
+    counted = count_ngrams(train.ids, orders, bits=bits, starts=train.content_starts, lengths=train.content_lengths)
     out: dict[str, Any] = {}
     for n, counts in counted.items():
         rows, freq = counts.most_common(top_k)
-        out[str(n)] = [{"tokens": [dataset.encoder.token_text(int(i)) for i in row], "ids": row.tolist(),
-                        "count": int(c)} for row, c in zip(rows, freq, strict=True)]
+        out[str(n)] = [
+            {"tokens": [dataset.encoder.token_text(int(i)) for i in row], "ids": row.tolist(), "count": int(c)}
+            for row, c in zip(rows, freq, strict=True)
+        ]
     return out
 
 
-def collect(dataset: DatasetLike, *, ngram_n: int = 13, top_k: int = 20, add_k: float = 1.0,
-            kn_discount: float = 0.75, progress: bool = True) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+def collect(
+    dataset: DatasetLike,
+    *,
+    ngram_n: int = 13,
+    top_k: int = 20,
+    add_k: float = 1.0,
+    kn_discount: float = 0.75,
+    progress: bool = True,
+) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
     """The report and, per split, the descending frequencies of non-special ids (for plots)."""
     _check(ngram_n, top_k, add_k, kn_discount, progress)
     vocab = dataset.vocabulary
@@ -79,10 +87,13 @@ def collect(dataset: DatasetLike, *, ngram_n: int = 13, top_k: int = 20, add_k: 
     notes: list[str] = ["Zipf fits and rank-frequency curves exclude special tokens (the unknown token too)."]
     report: dict[str, Any] = {
         "format": REPORT_FORMAT,
-        "dataset": {"fingerprint": dataset.fingerprint, "vocab_size": roles.vocab_size,
-                    "specials": [vocab.token(i).decode("utf-8", "backslashreplace")
-                                 for i in range(roles.n_special)],
-                    "roles": dict(sorted(vocab.roles.items())), "splits": list(names)},
+        "dataset": {
+            "fingerprint": dataset.fingerprint,
+            "vocab_size": roles.vocab_size,
+            "specials": [vocab.token(i).decode("utf-8", "backslashreplace") for i in range(roles.n_special)],
+            "roles": dict(sorted(vocab.roles.items())),
+            "splits": list(names),
+        },
         "settings": {"ngram_n": ngram_n, "top_k": top_k, "add_k": add_k, "kn_discount": kn_discount},
     }
     steps = len(names) + (3 + 2 * len(others) if has_train else 0)
@@ -103,14 +114,17 @@ def collect(dataset: DatasetLike, *, ngram_n: int = 13, top_k: int = 20, add_k: 
             curves[name] = counts[name][stats.frequency_ranking(counts[name], roles.n_special)]
             bar.update()
         if not has_train:
-            notes.append("The dataset has no 'train' split: coverage, n-grams, leakage and "
-                         "perplexities are not reported.")
+            notes.append(
+                "The dataset has no 'train' split: coverage, n-grams, leakage and perplexities are not reported."
+            )
         else:
             train = loaded[TRAIN]
             report["top_ngrams"] = _top_ngrams(dataset, train, bits, top_k)
             if max_order(bits) < 3:
-                notes.append("The vocabulary is too large to pack trigrams into 64-bit keys: "
-                             "no trigram counts and no perplexities.")
+                notes.append(
+                    "The vocabulary is too large to pack trigrams into 64-bit keys: "
+                    "no trigram counts and no perplexities."
+                )
             bar.update()
             report["leakage"] = _leakage(dataset, loaded, others, ngram_n, bar)
             if max_order(bits) >= 3:
@@ -119,8 +133,9 @@ def collect(dataset: DatasetLike, *, ngram_n: int = 13, top_k: int = 20, add_k: 
     return report, curves
 
 
-def _leakage(dataset: DatasetLike, loaded: dict[str, SplitTokens], others: list[str], n: int,
-             bar: Any) -> dict[str, Any]:
+def _leakage(
+    dataset: DatasetLike, loaded: dict[str, SplitTokens], others: list[str], n: int, bar: Any
+) -> dict[str, Any]:
     train = loaded[TRAIN]
     texts = {name: _text_hashes(dataset, name) for name in [TRAIN, *others]}
     train_hashes = leakage.train_window_hashes(train, n)
@@ -132,7 +147,8 @@ def _leakage(dataset: DatasetLike, loaded: dict[str, SplitTokens], others: list[
 
     for name in others:
         out["documents"][name] = leakage.duplicate_documents(
-            train, loaded[name], train_text=texts[TRAIN], other_text=texts[name], decode=decode)
+            train, loaded[name], train_text=texts[TRAIN], other_text=texts[name], decode=decode
+        )
         out["ngrams"][name] = leakage.shared_ngrams(train_hashes, loaded[name], n)
         bar.update()
     return out
@@ -143,8 +159,9 @@ def _text_hashes(dataset: DatasetLike, name: str) -> Any:
     return docs.column("hash").combine_chunks() if "hash" in docs.column_names else None
 
 
-def _perplexity(loaded: dict[str, SplitTokens], others: list[str], roles: Roles, bits: int,
-                add_k: float, d: float, bar: Any) -> dict[str, Any]:
+def _perplexity(
+    loaded: dict[str, SplitTokens], others: list[str], roles: Roles, bits: int, add_k: float, d: float, bar: Any
+) -> dict[str, Any]:
     space = lm.event_space(roles)
     tables = lm.CountTables.fit(lm.events(loaded[TRAIN], roles), bits, roles.vocab_size + 1)
     bar.update()
@@ -153,7 +170,10 @@ def _perplexity(loaded: dict[str, SplitTokens], others: list[str], roles: Roles,
     documents = sum(loaded[n].num_documents for n in others)
     out: dict[str, Any] = {
         "predicted": PREDICTED.format(ended=ended, documents=documents, begin=begin, space=space, d=d),
-        "event_space": space, "train_events": tables.n_events, "splits": {}}
+        "event_space": space,
+        "train_events": tables.n_events,
+        "splits": {},
+    }
     for name in others:
         ev = lm.events(loaded[name], roles)
         out["splits"][name] = {"events": len(ev), **lm.evaluate(tables, ev, space=space, k=add_k, d=d)}
@@ -161,8 +181,15 @@ def _perplexity(loaded: dict[str, SplitTokens], others: list[str], roles: Roles,
     return out
 
 
-def corpus_report(dataset: DatasetLike, *, ngram_n: int = 13, top_k: int = 20, add_k: float = 1.0,
-                  kn_discount: float = 0.75, progress: bool = True) -> dict[str, Any]:
+def corpus_report(
+    dataset: DatasetLike,
+    *,
+    ngram_n: int = 13,
+    top_k: int = 20,
+    add_k: float = 1.0,
+    kn_discount: float = 0.75,
+    progress: bool = True,
+) -> dict[str, Any]:
     """Every figure of the corpus report of ``dataset``, as a JSON-serializable dict.
 
     Per split: sizes, document lengths, unknown-token rate, coverage by the most
@@ -172,19 +199,27 @@ def corpus_report(dataset: DatasetLike, *, ngram_n: int = 13, top_k: int = 20, a
     Kneser-Ney bi/trigram with ``kn_discount``). ``report["perplexity"]["predicted"]``
     states exactly which tokens are predicted.
     """
-    return collect(dataset, ngram_n=ngram_n, top_k=top_k, add_k=add_k, kn_discount=kn_discount,
-                   progress=progress)[0]
+    return collect(dataset, ngram_n=ngram_n, top_k=top_k, add_k=add_k, kn_discount=kn_discount, progress=progress)[0]
 
 
-def write_report(dataset_dir: str | Path, out_dir: str | Path, *, ngram_n: int = 13, top_k: int = 20,
-                 add_k: float = 1.0, kn_discount: float = 0.75, progress: bool = True) -> dict[str, Any]:
+def write_report(
+    dataset_dir: str | Path,
+    out_dir: str | Path,
+    *,
+    ngram_n: int = 13,
+    top_k: int = 20,
+    add_k: float = 1.0,
+    kn_discount: float = 0.75,
+    progress: bool = True,
+) -> dict[str, Any]:
     """Open the dataset at ``dataset_dir`` and write ``report.md``, ``report.json`` and
     ``rank_frequency.png`` (when matplotlib is installed) into ``out_dir``; return the report."""
     from seqpipe.dataset import open_dataset
 
     dataset = open_dataset(dataset_dir)  # a URI is read from a local copy
-    return write_dataset_report(dataset, out_dir, ngram_n=ngram_n, top_k=top_k, add_k=add_k,
-                                kn_discount=kn_discount, progress=progress)
+    return write_dataset_report(
+        dataset, out_dir, ngram_n=ngram_n, top_k=top_k, add_k=add_k, kn_discount=kn_discount, progress=progress
+    )
 
 
 def write_dataset_report(dataset: DatasetLike, out_dir: str | Path, **options: Any) -> dict[str, Any]:

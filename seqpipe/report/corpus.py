@@ -66,8 +66,14 @@ class Roles:
     @classmethod
     def of(cls, vocab: Vocabulary) -> Roles:
         roles: Mapping[str, int] = vocab.roles
-        return cls(unknown=roles.get("unknown"), padding=roles.get("padding"), begin=roles.get("begin"),
-                   end=roles.get("end"), n_special=int(vocab.n_special), vocab_size=len(vocab))
+        return cls(
+            unknown=roles.get("unknown"),
+            padding=roles.get("padding"),
+            begin=roles.get("begin"),
+            end=roles.get("end"),
+            n_special=int(vocab.n_special),
+            vocab_size=len(vocab),
+        )
 
     @property
     def markers(self) -> tuple[int, ...]:
@@ -114,8 +120,9 @@ def _stream_ids(stream: Any, name: str) -> np.ndarray:
 
 def _column(table: pa.Table, key: str, name: str) -> np.ndarray:
     if key not in table.column_names:
-        raise DatasetError(f"split {name!r}: the documents table has no {key!r} column "
-                           f"(columns: {', '.join(table.column_names)})")
+        raise DatasetError(
+            f"split {name!r}: the documents table has no {key!r} column (columns: {', '.join(table.column_names)})"
+        )
     col = table.column(key)
     if col.null_count:
         raise DatasetError(f"split {name!r}: the documents table has nulls in {key!r}")
@@ -130,10 +137,13 @@ def load_split(dataset: DatasetLike, name: str, roles: Roles) -> SplitTokens:
     starts = _column(docs, "start", name)
     lengths = _column(docs, "length", name)
     ends = starts + lengths
-    if len(starts) and (starts.min() < 0 or lengths.min() < 0 or ends.max() > len(ids)
-                        or (starts[1:] < ends[:-1]).any()):
-        raise DatasetError(f"split {name!r}: document ranges are out of order, overlap, or run past "
-                           f"the {len(ids)}-token stream; run 'seqpipe verify' on the dataset")
+    if len(starts) and (
+        starts.min() < 0 or lengths.min() < 0 or ends.max() > len(ids) or (starts[1:] < ends[:-1]).any()
+    ):
+        raise DatasetError(
+            f"split {name!r}: document ranges are out of order, overlap, or run past "
+            f"the {len(ids)}-token stream; run 'seqpipe verify' on the dataset"
+        )
     last = max(len(ids) - 1, 0)
     has_begin = np.zeros(len(starts), dtype=bool)
     if roles.begin is not None and len(ids):
@@ -143,5 +153,12 @@ def load_split(dataset: DatasetLike, name: str, roles: Roles) -> SplitTokens:
         has_end = (lengths > has_begin) & (ids[np.clip(ends - 1, 0, last)] == roles.end)
     content_starts = starts + has_begin
     content_lengths = lengths - has_begin - has_end
-    return SplitTokens(name=name, ids=ids, starts=starts, lengths=lengths,
-                       content_starts=content_starts, content_lengths=content_lengths, has_end=has_end)
+    return SplitTokens(
+        name=name,
+        ids=ids,
+        starts=starts,
+        lengths=lengths,
+        content_starts=content_starts,
+        content_lengths=content_lengths,
+        has_end=has_end,
+    )

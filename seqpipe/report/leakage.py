@@ -52,9 +52,14 @@ def _matches(values: pa.Array, value_set: pa.Array) -> np.ndarray:
     return np.asarray(pc.fill_null(pos, -1).to_numpy(zero_copy_only=False), dtype=np.int64)
 
 
-def duplicate_documents(train: SplitTokens, other: SplitTokens, *, train_text: pa.Array | None,
-                        other_text: pa.Array | None,
-                        decode: Callable[[np.ndarray], str]) -> dict[str, Any]:
+def duplicate_documents(
+    train: SplitTokens,
+    other: SplitTokens,
+    *,
+    train_text: pa.Array | None,
+    other_text: pa.Array | None,
+    decode: Callable[[np.ndarray], str],
+) -> dict[str, Any]:
     """Documents of ``other`` whose content ids (and, separately, text hash) occur in train."""
     train_h, train_idx = document_hashes(train)
     other_h, other_idx = document_hashes(other)
@@ -64,9 +69,15 @@ def duplicate_documents(train: SplitTokens, other: SplitTokens, *, train_text: p
     for j in hit[:MAX_EXAMPLES].tolist():
         doc = int(other_idx[j])
         start, length = int(other.content_starts[doc]), int(other.content_lengths[doc])
-        text = decode(other.ids[start:start + length])
-        examples.append({"document": doc, "train_document": int(train_idx[where[j]]), "tokens": length,
-                         "text": text if len(text) <= EXAMPLE_CHARS else text[:EXAMPLE_CHARS] + "..."})
+        text = decode(other.ids[start : start + length])
+        examples.append(
+            {
+                "document": doc,
+                "train_document": int(train_idx[where[j]]),
+                "tokens": length,
+                "text": text if len(text) <= EXAMPLE_CHARS else text[:EXAMPLE_CHARS] + "...",
+            }
+        )
     out: dict[str, Any] = {
         "documents": other.num_documents,
         "checked": len(other_idx),
@@ -88,8 +99,12 @@ def shared_ngrams(train_hashes: np.ndarray, other: SplitTokens, n: int) -> dict[
     if len(train_hashes):
         pos = np.minimum(np.searchsorted(train_hashes, hashes), len(train_hashes) - 1)
         shared = train_hashes[pos] == hashes
-    return {"n": n, "windows": len(hashes), "shared": int(np.count_nonzero(shared)),
-            "share": float(shared.mean()) if len(hashes) else None}
+    return {
+        "n": n,
+        "windows": len(hashes),
+        "shared": int(np.count_nonzero(shared)),
+        "share": float(shared.mean()) if len(hashes) else None,
+    }
 
 
 def train_window_hashes(train: SplitTokens, n: int) -> np.ndarray:

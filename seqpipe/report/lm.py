@@ -118,12 +118,25 @@ class CountTables:
         h1_c = np.add.reduceat(bi_c, h1_starts) if len(bi) else bi_c
         h1_left = np.add.reduceat(bi_left, h1_starts) if len(bi) else bi_left
         w_of_bi = (bi & np.uint64(filler(bits))).astype(np.int64)
-        return cls(bits=bits, n_events=len(ev), tri_keys=tri, tri_counts=tri_c, ctx_keys=ctx,
-                   ctx_counts=ctx_c, ctx_types=ctx_types, bi_keys=bi, bi_counts=bi_c, bi_left=bi_left,
-                   h1_keys=h1, h1_counts=h1_c, h1_types=h1_types, h1_left=h1_left,
-                   uni_counts=np.bincount(ev.w, minlength=n_ids).astype(np.int64),
-                   uni_left=np.bincount(w_of_bi, minlength=n_ids).astype(np.int64),
-                   bigram_types=len(bi))
+        return cls(
+            bits=bits,
+            n_events=len(ev),
+            tri_keys=tri,
+            tri_counts=tri_c,
+            ctx_keys=ctx,
+            ctx_counts=ctx_c,
+            ctx_types=ctx_types,
+            bi_keys=bi,
+            bi_counts=bi_c,
+            bi_left=bi_left,
+            h1_keys=h1,
+            h1_counts=h1_c,
+            h1_types=h1_types,
+            h1_left=h1_left,
+            uni_counts=np.bincount(ev.w, minlength=n_ids).astype(np.int64),
+            uni_left=np.bincount(w_of_bi, minlength=n_ids).astype(np.int64),
+            bigram_types=len(bi),
+        )
 
 
 @dataclass(frozen=True, slots=True)
@@ -151,12 +164,18 @@ class Lookups:
         pos_ctx = positions(t.ctx_keys, ctx)
         pos_bi = positions(t.bi_keys, bi)
         pos_h1 = positions(t.h1_keys, h1)
-        return cls(tri=lookup(t.tri_keys, t.tri_counts, keys),
-                   ctx=take(t.ctx_counts, pos_ctx), ctx_types=take(t.ctx_types, pos_ctx),
-                   bi=take(t.bi_counts, pos_bi), bi_left=take(t.bi_left, pos_bi),
-                   h1=take(t.h1_counts, pos_h1), h1_types=take(t.h1_types, pos_h1),
-                   h1_left=take(t.h1_left, pos_h1),
-                   uni=t.uni_counts[ev.w], uni_left=t.uni_left[ev.w])
+        return cls(
+            tri=lookup(t.tri_keys, t.tri_counts, keys),
+            ctx=take(t.ctx_counts, pos_ctx),
+            ctx_types=take(t.ctx_types, pos_ctx),
+            bi=take(t.bi_counts, pos_bi),
+            bi_left=take(t.bi_left, pos_bi),
+            h1=take(t.h1_counts, pos_h1),
+            h1_types=take(t.h1_types, pos_h1),
+            h1_left=take(t.h1_left, pos_h1),
+            uni=t.uni_counts[ev.w],
+            uni_left=t.uni_left[ev.w],
+        )
 
 
 def _ratio(num: np.ndarray, den: np.ndarray) -> np.ndarray:
@@ -188,8 +207,7 @@ def unigram_continuation(t: CountTables, q: Lookups, d: float, space: int, floor
     return (np.maximum(q.uni_left - d, 0.0) + d * seen / space) / t.bigram_types
 
 
-def kneser_ney(t: CountTables, q: Lookups, order: int, d: float, space: int, *,
-               floor: bool = True) -> np.ndarray:
+def kneser_ney(t: CountTables, q: Lookups, order: int, d: float, space: int, *, floor: bool = True) -> np.ndarray:
     """Interpolated Kneser-Ney probabilities of the events, for order 2 or 3."""
     p1 = unigram_continuation(t, q, d, space, floor)
     seen_h1 = q.h1 > 0
@@ -211,8 +229,7 @@ def perplexity(probs: np.ndarray) -> float | None:
     return float(np.exp(-np.mean(np.log(probs))))
 
 
-MODELS = ("uniform", "unigram_add_k", "bigram_add_k", "trigram_add_k", "bigram_kneser_ney",
-          "trigram_kneser_ney")
+MODELS = ("uniform", "unigram_add_k", "bigram_add_k", "trigram_add_k", "bigram_kneser_ney", "trigram_kneser_ney")
 
 
 def evaluate(t: CountTables, ev: Events, *, space: int, k: float, d: float) -> dict[str, float | None]:

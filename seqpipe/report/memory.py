@@ -71,13 +71,19 @@ class SpacedEncoder(VocabEncoder):
 def _documents_table(lengths: np.ndarray, texts: Sequence[str]) -> pa.Table:
     starts = np.cumsum(lengths) - lengths
     hashes = [xxhash.xxh3_128_digest(t.encode("utf-8")) for t in texts]
-    return pa.table({"start": pa.array(starts, pa.int64()), "length": pa.array(lengths, pa.int64()),
-                     "source": pa.array(np.zeros(len(lengths), np.int32), pa.int32()),
-                     "hash": pa.array(hashes, pa.binary(16))})
+    return pa.table(
+        {
+            "start": pa.array(starts, pa.int64()),
+            "length": pa.array(lengths, pa.int64()),
+            "source": pa.array(np.zeros(len(lengths), np.int32), pa.int32()),
+            "hash": pa.array(hashes, pa.binary(16)),
+        }
+    )
 
 
-def dataset_from_documents(splits: Mapping[str, Sequence[Sequence[str]]], *, markers: bool = True,
-                           spec: VocabSpec | None = None) -> MemoryDataset:
+def dataset_from_documents(
+    splits: Mapping[str, Sequence[Sequence[str]]], *, markers: bool = True, spec: VocabSpec | None = None
+) -> MemoryDataset:
     """A :class:`MemoryDataset` from documents given as lists of token strings.
 
     ``markers`` puts the begin and end ids around every document, as a build does.
@@ -110,8 +116,7 @@ def dataset_from_documents(splits: Mapping[str, Sequence[Sequence[str]]], *, mar
             stream[offsets] = begin
         if tail:
             stream[offsets + lengths - 1] = end
-        parts[name] = MemorySplit(stream=stream,
-                                  documents=_documents_table(lengths, [" ".join(doc) for doc in docs]))
+        parts[name] = MemorySplit(stream=stream, documents=_documents_table(lengths, [" ".join(doc) for doc in docs]))
     fingerprint = hash_json({name: hash_array(p.stream) for name, p in parts.items()})
     encoder = SpacedEncoder(WordTokenizer(), vocab)
     return MemoryDataset(vocabulary=vocab, encoder=encoder, parts=parts, fingerprint=fingerprint)

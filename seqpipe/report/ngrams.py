@@ -50,8 +50,10 @@ def max_order(bits: int) -> int:
 def pack(columns: Sequence[np.ndarray], bits: int) -> np.ndarray:
     """One uint64 key per row from ``n`` equally long id columns (first column most significant)."""
     if len(columns) * bits > KEY_BITS:
-        raise SeqpipeError(f"cannot pack {len(columns)}-grams of {bits}-bit ids into a 64-bit key; "
-                           f"the longest that fits is {max_order(bits)}")
+        raise SeqpipeError(
+            f"cannot pack {len(columns)}-grams of {bits}-bit ids into a 64-bit key; "
+            f"the longest that fits is {max_order(bits)}"
+        )
     key = np.asarray(columns[0]).astype(np.uint64)
     shift = np.uint64(bits)
     for col in columns[1:]:
@@ -152,8 +154,7 @@ def content_mask(n_tokens: int, starts: np.ndarray, lengths: np.ndarray) -> np.n
     return np.cumsum(delta[:n_tokens], dtype=np.int32) > 0
 
 
-def _ranges(n_tokens: int, starts: np.ndarray | None,
-            lengths: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+def _ranges(n_tokens: int, starts: np.ndarray | None, lengths: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
     if starts is None or lengths is None:
         return np.zeros(1, np.int64), np.full(1, n_tokens, np.int64)
     return np.asarray(starts, dtype=np.int64), np.asarray(lengths, dtype=np.int64)
@@ -182,8 +183,9 @@ class _Windows:
     bits: int
 
     @classmethod
-    def of(cls, ids: np.ndarray, n: int, *, bits: int, starts: np.ndarray | None,
-           lengths: np.ndarray | None) -> _Windows:
+    def of(
+        cls, ids: np.ndarray, n: int, *, bits: int, starts: np.ndarray | None, lengths: np.ndarray | None
+    ) -> _Windows:
         x = np.asarray(ids)
         if x.dtype.kind == "i":  # signed ids: the same bits as unsigned once known non-negative
             if len(x) and int(x.min()) < 0:
@@ -193,8 +195,9 @@ class _Windows:
         if len(x) and int(x.max()) >= fill:
             raise SeqpipeError(f"id {int(x.max())} does not fit a {bits}-bit key slot")
         if n * bits > KEY_BITS:
-            raise SeqpipeError(f"cannot pack {n}-grams of {bits}-bit ids into a 64-bit key; "
-                               f"the longest that fits is {max_order(bits)}")
+            raise SeqpipeError(
+                f"cannot pack {n}-grams of {bits}-bit ids into a 64-bit key; the longest that fits is {max_order(bits)}"
+            )
         starts_, lengths_ = _ranges(len(x), starts, lengths)
         ends = np.cumsum(lengths_)
         # the last i positions of a document would look i slots into the next one
@@ -206,14 +209,14 @@ class _Windows:
 
     def keys(self, lo: int, hi: int) -> np.ndarray:
         """Packed keys of the windows at content positions ``lo .. hi - 1``, in order."""
-        x = self.content[lo:min(hi + self.n - 1, len(self.content))]
+        x = self.content[lo : min(hi + self.n - 1, len(self.content))]
         m = hi - lo
         shift = np.uint64(self.bits)
         key = x[:m].astype(np.uint64)
         for i in range(1, self.n):  # in place: no 8-byte temporaries per token
             cut = max(min(m, len(x) - i), 0)
             np.left_shift(key[:cut], shift, out=key[:cut])
-            np.bitwise_or(key[:cut], x[i:i + cut], out=key[:cut])
+            np.bitwise_or(key[:cut], x[i : i + cut], out=key[:cut])
             key[cut:] <<= shift
         for i, mark in enumerate(self.marks, start=1):
             a, b = np.searchsorted(mark, (lo, hi))
@@ -221,8 +224,9 @@ class _Windows:
         return key
 
 
-def window_keys(ids: np.ndarray, n: int, *, bits: int, starts: np.ndarray | None = None,
-                lengths: np.ndarray | None = None) -> np.ndarray:
+def window_keys(
+    ids: np.ndarray, n: int, *, bits: int, starts: np.ndarray | None = None, lengths: np.ndarray | None = None
+) -> np.ndarray:
     """One packed key per content position ``j``: the window ``ids[j:j+n]`` of its document,
     with the slots past the document's end set to the filler (in stream order)."""
     windows = _Windows.of(ids, n, bits=bits, starts=starts, lengths=lengths)
@@ -256,8 +260,9 @@ def _spread(windows: _Windows, lo: int, hi: int, table: np.ndarray) -> list[np.n
     return [key[a:b] for a, b in itertools.pairwise(edges.tolist())]
 
 
-def _orders_of(keys: list[np.ndarray], orders: tuple[int, ...], n: int,
-               bits: int) -> dict[int, tuple[np.ndarray, np.ndarray]]:
+def _orders_of(
+    keys: list[np.ndarray], orders: tuple[int, ...], n: int, bits: int
+) -> dict[int, tuple[np.ndarray, np.ndarray]]:
     """Sorted distinct n-grams and counts of every order, from windows' keys of the top order ``n``.
 
     Each lower order k comes from the distinct keys' k-slot prefixes (sorted, since a
@@ -280,10 +285,16 @@ def _orders_of(keys: list[np.ndarray], orders: tuple[int, ...], n: int,
     return out
 
 
-def count_ngrams(ids: np.ndarray, orders: Sequence[int], *, bits: int,
-                 starts: np.ndarray | None = None, lengths: np.ndarray | None = None,
-                 threads: int | None = None,
-                 chunk: int = CHUNK_WINDOWS) -> dict[int, NgramCounts]:
+def count_ngrams(
+    ids: np.ndarray,
+    orders: Sequence[int],
+    *,
+    bits: int,
+    starts: np.ndarray | None = None,
+    lengths: np.ndarray | None = None,
+    threads: int | None = None,
+    chunk: int = CHUNK_WINDOWS,
+) -> dict[int, NgramCounts]:
     """Count n-grams of every order in ``orders`` inside the documents.
 
     ``starts``/``lengths`` are the documents' content ranges in ``ids``, in stream order
@@ -311,9 +322,15 @@ def count_ngrams(ids: np.ndarray, orders: Sequence[int], *, bits: int,
             by_bucket = [[p[j] for p in pieces] for j in range(BUCKETS)]
             del pieces
             parts = list(pool.map(lambda keys: _orders_of(keys, wanted, n, bits), by_bucket))
-    return {k: NgramCounts(n=k, bits=bits, keys=np.concatenate([p[k][0] for p in parts]),
-                           counts=np.concatenate([p[k][1] for p in parts]).astype(np.int64))
-            for k in wanted}
+    return {
+        k: NgramCounts(
+            n=k,
+            bits=bits,
+            keys=np.concatenate([p[k][0] for p in parts]),
+            counts=np.concatenate([p[k][1] for p in parts]).astype(np.int64),
+        )
+        for k in wanted
+    }
 
 
 def hash_multipliers(n: int, seed: int = HASH_SEED) -> np.ndarray:
@@ -322,8 +339,14 @@ def hash_multipliers(n: int, seed: int = HASH_SEED) -> np.ndarray:
     return rng.integers(0, np.iinfo(np.uint64).max, size=n, dtype=np.uint64, endpoint=True)
 
 
-def window_hashes(ids: np.ndarray, n: int, *, starts: np.ndarray | None = None,
-                  lengths: np.ndarray | None = None, seed: int = HASH_SEED) -> np.ndarray:
+def window_hashes(
+    ids: np.ndarray,
+    n: int,
+    *,
+    starts: np.ndarray | None = None,
+    lengths: np.ndarray | None = None,
+    seed: int = HASH_SEED,
+) -> np.ndarray:
     """A 64-bit hash of every length-``n`` window that lies inside one document.
 
     Multilinear hashing: ``h(x) = sum_i m_i * x_i mod 2**64`` with uniform random
@@ -348,7 +371,7 @@ def window_hashes(ids: np.ndarray, n: int, *, starts: np.ndarray | None = None,
     h = x[:width] * mult[0]
     term = np.empty_like(h)
     for i in range(1, n):
-        np.multiply(x[i:i + width], mult[i], out=term)
+        np.multiply(x[i : i + width], mult[i], out=term)
         h += term  # wraps mod 2**64 by design
     # a window starting in the last n-1 positions of a document runs into the next one
     inside = np.ones(total, dtype=bool)

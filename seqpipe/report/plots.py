@@ -36,8 +36,7 @@ def _sample(freqs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return ranks[pick], freqs[pick]
 
 
-def rank_frequency_png(path: Path, curves: Mapping[str, np.ndarray],
-                       fits: Mapping[str, ZipfFit | None]) -> bool:
+def rank_frequency_png(path: Path, curves: Mapping[str, np.ndarray], fits: Mapping[str, ZipfFit | None]) -> bool:
     """Draw frequency against rank on log-log axes, one curve per split, with the fitted
     Zipf line over the fitted ranks. Returns False (writing nothing) without matplotlib."""
     try:
@@ -56,8 +55,14 @@ def rank_frequency_png(path: Path, curves: Mapping[str, np.ndarray],
         fit = fits.get(name)
         if fit is not None:
             fr = np.array([1.0, float(fit.ranks)])
-            ax.loglog(fr, np.exp(fit.intercept) * fr ** (-fit.exponent), linestyle="--", linewidth=1,
-                      color=line.get_color(), label=f"{name} fit, s = {fit.exponent:.3f}")
+            ax.loglog(
+                fr,
+                np.exp(fit.intercept) * fr ** (-fit.exponent),
+                linestyle="--",
+                linewidth=1,
+                color=line.get_color(),
+                label=f"{name} fit, s = {fit.exponent:.3f}",
+            )
     ax.set_xlabel("rank (special tokens excluded)")
     ax.set_ylabel("frequency")
     ax.set_title("Rank-frequency")

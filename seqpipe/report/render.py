@@ -67,20 +67,41 @@ def _table(header: list[str], rows: list[list[str]]) -> list[str]:
 def _splits(report: dict[str, Any]) -> list[str]:
     splits = report.get("splits", {})
     lines = ["## Splits", ""]
-    header = ["split", "documents", "tokens", "content tokens", "distinct", "empty docs",
-              "length min / median / p95 / max", "unknown rate", "Zipf exponent (R²)"]
+    header = [
+        "split",
+        "documents",
+        "tokens",
+        "content tokens",
+        "distinct",
+        "empty docs",
+        "length min / median / p95 / max",
+        "unknown rate",
+        "Zipf exponent (R²)",
+    ]
     rows = []
     for name, s in splits.items():
         dl = s["document_length"]
         z = s["zipf"]
         zipf = f"{z['exponent']:.3f} ({z['r_squared']:.3f}, ranks 1..{z['ranks']})" if z else "n/a"
-        rows.append([name, _num(s["documents"]), _num(s["tokens"]), _num(s["content_tokens"]),
-                     _num(s["distinct_tokens"]), _num(s["empty_documents"]),
-                     " / ".join(_num(dl[k]) for k in ("min", "median", "p95", "max")),
-                     _pct(s["unknown_rate"]), zipf])
+        rows.append(
+            [
+                name,
+                _num(s["documents"]),
+                _num(s["tokens"]),
+                _num(s["content_tokens"]),
+                _num(s["distinct_tokens"]),
+                _num(s["empty_documents"]),
+                " / ".join(_num(dl[k]) for k in ("min", "median", "p95", "max")),
+                _pct(s["unknown_rate"]),
+                zipf,
+            ]
+        )
     lines += _table(header, rows)
-    lines += ["Lengths count tokens including begin/end markers (docs table); the other token figures "
-              "count content tokens (markers dropped). The 95th percentile interpolates linearly.", ""]
+    lines += [
+        "Lengths count tokens including begin/end markers (docs table); the other token figures "
+        "count content tokens (markers dropped). The 95th percentile interpolates linearly.",
+        "",
+    ]
     ks = sorted({k for s in splits.values() for k in s["coverage"]}, key=int)
     if ks:
         lines += ["### Coverage by the k most frequent train tokens", ""]
@@ -96,9 +117,10 @@ def _ngrams(report: dict[str, Any]) -> list[str]:
     lines = ["## Most frequent n-grams of train", ""]
     for n, entries in top.items():
         lines += [f"### {n}-grams", ""]
-        lines += _table(["rank", "tokens", "count"],
-                        [[str(i + 1), " ".join(repr(t) for t in e["tokens"]), _num(e["count"])]
-                         for i, e in enumerate(entries)])
+        lines += _table(
+            ["rank", "tokens", "count"],
+            [[str(i + 1), " ".join(repr(t) for t in e["tokens"]), _num(e["count"])] for i, e in enumerate(entries)],
+        )
     return lines
 
 
@@ -111,17 +133,42 @@ def _leakage(report: dict[str, Any]) -> list[str]:
     rows = []
     for name, d in leak["documents"].items():
         g = leak["ngrams"][name]
-        rows.append([name, _num(d["checked"]), _num(d["duplicated"]), _pct(d["share"]),
-                     _num(d.get("text_duplicated")), _num(g["windows"]), _pct(g["share"])])
-    lines += _table(["split", "documents checked", "same ids as a train doc", "share",
-                     "same text hash", f"{n}-gram windows", "windows seen in train"], rows)
-    lines += ["Documents: XXH3-128 of each non-empty document's content ids. Windows: 64-bit multilinear "
-              f"hash of every {n}-token window inside one document.", ""]
+        rows.append(
+            [
+                name,
+                _num(d["checked"]),
+                _num(d["duplicated"]),
+                _pct(d["share"]),
+                _num(d.get("text_duplicated")),
+                _num(g["windows"]),
+                _pct(g["share"]),
+            ]
+        )
+    lines += _table(
+        [
+            "split",
+            "documents checked",
+            "same ids as a train doc",
+            "share",
+            "same text hash",
+            f"{n}-gram windows",
+            "windows seen in train",
+        ],
+        rows,
+    )
+    lines += [
+        "Documents: XXH3-128 of each non-empty document's content ids. Windows: 64-bit multilinear "
+        f"hash of every {n}-token window inside one document.",
+        "",
+    ]
     for name, d in leak["documents"].items():
         if d["examples"]:
             lines += [f"Examples from {name}:", ""]
-            lines += [f"- document {e['document']} = train document {e['train_document']} "
-                      f"({e['tokens']} tokens): {e['text']!r}" for e in d["examples"]]
+            lines += [
+                f"- document {e['document']} = train document {e['train_document']} "
+                f"({e['tokens']} tokens): {e['text']!r}"
+                for e in d["examples"]
+            ]
             lines.append("")
     return lines
 
@@ -131,8 +178,14 @@ def _perplexity(report: dict[str, Any]) -> list[str]:
     if not ppl:
         return []
     s = report["settings"]
-    lines = ["## Baseline perplexities", "", ppl["predicted"], "",
-             f"add-k uses k = {s['add_k']}; Kneser-Ney uses discount {s['kn_discount']}.", ""]
+    lines = [
+        "## Baseline perplexities",
+        "",
+        ppl["predicted"],
+        "",
+        f"add-k uses k = {s['add_k']}; Kneser-Ney uses discount {s['kn_discount']}.",
+        "",
+    ]
     names = list(ppl["splits"])
     rows = [[MODEL_NAMES[m]] + [_num(ppl["splits"][n][m], 6) for n in names] for m in MODEL_NAMES]
     rows.append(["events"] + [_num(ppl["splits"][n]["events"]) for n in names])
@@ -143,12 +196,16 @@ def _perplexity(report: dict[str, Any]) -> list[str]:
 def to_markdown(report: dict[str, Any], *, plots_drawn: bool) -> str:
     """The human-readable report."""
     ds = report["dataset"]
-    lines = ["# Corpus report", "",
-             f"Dataset fingerprint `{ds['fingerprint']}`, vocabulary of {ds['vocab_size']:,} ids "
-             f"(specials: {', '.join(ds['specials'])}).", ""]
+    lines = [
+        "# Corpus report",
+        "",
+        f"Dataset fingerprint `{ds['fingerprint']}`, vocabulary of {ds['vocab_size']:,} ids "
+        f"(specials: {', '.join(ds['specials'])}).",
+        "",
+    ]
     lines += _splits(report)
     lines += ["## Rank-frequency", ""]
-    lines += (["![rank-frequency](rank_frequency.png)", ""] if plots_drawn else [PLOTS_HINT, ""])
+    lines += ["![rank-frequency](rank_frequency.png)", ""] if plots_drawn else [PLOTS_HINT, ""]
     lines += _ngrams(report) + _leakage(report) + _perplexity(report)
     if report.get("notes"):
         lines += ["## Notes", ""] + [f"- {note}" for note in report["notes"]] + [""]

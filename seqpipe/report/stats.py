@@ -34,8 +34,12 @@ def length_summary(lengths: np.ndarray) -> dict[str, float | int | None]:
     """Min, median, 95th percentile (linear interpolation) and max of document lengths."""
     if len(lengths) == 0:
         return {"min": None, "median": None, "p95": None, "max": None}
-    return {"min": int(lengths.min()), "median": float(np.median(lengths)),
-            "p95": float(np.percentile(lengths, 95)), "max": int(lengths.max())}
+    return {
+        "min": int(lengths.min()),
+        "median": float(np.median(lengths)),
+        "p95": float(np.percentile(lengths, 95)),
+        "max": int(lengths.max()),
+    }
 
 
 @dataclass(frozen=True, slots=True)
@@ -48,8 +52,12 @@ class ZipfFit:
     ranks: int
 
     def as_dict(self) -> dict[str, Any]:
-        return {"exponent": self.exponent, "intercept": self.intercept,
-                "r_squared": self.r_squared, "ranks": self.ranks}
+        return {
+            "exponent": self.exponent,
+            "intercept": self.intercept,
+            "r_squared": self.r_squared,
+            "ranks": self.ranks,
+        }
 
 
 def zipf_fit(frequencies: np.ndarray, max_rank: int = ZIPF_MAX_RANK) -> ZipfFit | None:
@@ -69,8 +77,9 @@ def zipf_fit(frequencies: np.ndarray, max_rank: int = ZIPF_MAX_RANK) -> ZipfFit 
     return ZipfFit(exponent=-slope, intercept=intercept, r_squared=r2, ranks=len(f))
 
 
-def split_stats(split: SplitTokens, counts: np.ndarray, roles: Roles,
-                train_ranking: np.ndarray | None) -> dict[str, Any]:
+def split_stats(
+    split: SplitTokens, counts: np.ndarray, roles: Roles, train_ranking: np.ndarray | None
+) -> dict[str, Any]:
     """Every per-split figure of the report (see the module docstring)."""
     content = int(split.content_lengths.sum())
     distinct = int(np.count_nonzero(counts))

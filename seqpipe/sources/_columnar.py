@@ -47,14 +47,16 @@ def text_column(schema: pa.Schema, field: str, path: SourcePath) -> int:
     index: int = schema.get_field_index(field)
     if index < 0:
         names = ", ".join(repr(n) for n in schema.names) or "none"
-        raise RecordError(str(path), f"no column {field!r} (a single top-level column; columns: {names}); "
-                                     "set field to the column holding the text")
+        raise RecordError(
+            str(path),
+            f"no column {field!r} (a single top-level column; columns: {names}); "
+            "set field to the column holding the text",
+        )
     kind = schema.field(index).type
     if pa.types.is_dictionary(kind):
         kind = kind.value_type
     if not (pa.types.is_string(kind) or pa.types.is_large_string(kind) or pa.types.is_string_view(kind)):
-        raise RecordError(str(path), f"column {field!r} has type {schema.field(index).type}, "
-                                     "expected a string column")
+        raise RecordError(str(path), f"column {field!r} has type {schema.field(index).type}, expected a string column")
     return index
 
 
@@ -110,8 +112,7 @@ def _valid_utf8(column: pa.Array) -> bool:
     return True
 
 
-def finish_column(column: pa.Array, first_row: int, source: RecordSource,
-                  finisher: DocumentFinisher) -> pa.Array:
+def finish_column(column: pa.Array, first_row: int, source: RecordSource, finisher: DocumentFinisher) -> pa.Array:
     """The documents of one batch of text values (rows from ``first_row`` on)."""
     column = _as_large_string(column)
     lengths = pc.binary_length(column)
@@ -128,8 +129,11 @@ def finish_column(column: pa.Array, first_row: int, source: RecordSource,
         row = first_row + i
         if value is None:
             if source.bad_records == "error":
-                raise finisher.error(RecordError, f"field {source.field!r} is null; set "
-                                     "bad_records = \"skip\" to drop such records", row=row)
+                raise finisher.error(
+                    RecordError,
+                    f'field {source.field!r} is null; set bad_records = "skip" to drop such records',
+                    row=row,
+                )
             finisher.stats.bad_records_skipped += 1
             continue
         text = finisher.finish(value, row=row)

@@ -161,6 +161,7 @@ def _locate(path: str) -> tuple[pafs.FileSystem, str]:
 
 # -- globs -------------------------------------------------------------------------------------
 
+
 def _match_name(pattern: str, name: str) -> bool:
     if name.startswith(".") and not pattern.startswith("."):
         return False
@@ -217,7 +218,7 @@ def glob_uri(pattern: str) -> list[str]:
         for info in infos:
             if info.type != _pafs().FileType.File or not info.path.startswith(prefix):
                 continue
-            names = info.path[len(prefix):].split("/")
+            names = info.path[len(prefix) :].split("/")
             if _match(rest, names):
                 hits.append(uri.child("/".join([*base, *names])))
     if not hits:
@@ -226,6 +227,7 @@ def glob_uri(pattern: str) -> list[str]:
 
 
 # -- opening and stat --------------------------------------------------------------------------
+
 
 def open_input_file(path: SourcePath, *, memory_map: bool = False) -> pa.NativeFile:
     """``path`` opened for random access (seek, read_at); locally memory-mapped if asked.

@@ -48,8 +48,9 @@ def _read(stream: pa.NativeFile, size: int, path: SourcePath, codec: str | None)
     return data
 
 
-def read_blocks(path: SourcePath, codec: str | None, start: int, stop: int | None,
-                block_bytes: int) -> Iterator[tuple[int, bytes]]:
+def read_blocks(
+    path: SourcePath, codec: str | None, start: int, stop: int | None, block_bytes: int
+) -> Iterator[tuple[int, bytes]]:
     """``(offset, block)`` pairs covering ``[start, stop)`` of the (decompressed) stream.
 
     A UTF-8 byte order mark at offset 0 is dropped; offsets stay absolute, so the

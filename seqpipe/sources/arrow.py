@@ -34,8 +34,11 @@ class ArrowSource(RecordSource):
     kind: ClassVar[str] = "arrow"
 
     def _open(self, path: SourcePath) -> pa.ipc.RecordBatchFileReader:
-        return open_or_fail(lambda: pa.ipc.open_file(open_input_file(path, memory_map=True)), path,
-                            "Arrow IPC file (the file format, not the stream format)")
+        return open_or_fail(
+            lambda: pa.ipc.open_file(open_input_file(path, memory_map=True)),
+            path,
+            "Arrow IPC file (the file format, not the stream format)",
+        )
 
     def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:
         """Runs of record batches of about ``target_bytes``."""
@@ -44,8 +47,9 @@ class ArrowSource(RecordSource):
         sizes = [reader.get_record_batch(i).nbytes for i in range(reader.num_record_batches)]
         return group_parts(sizes, target_bytes)
 
-    def read(self, path: SourcePath, part: Part, stats: ReadStats, *,
-             batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
+    def read(
+        self, path: SourcePath, part: Part, stats: ReadStats, *, batch_bytes: int = DEFAULT_BATCH_BYTES
+    ) -> Iterator[pa.Array]:
         """Text values of the rows in record batches ``[part.start, part.stop)``."""
         parse_int("batch_bytes", batch_bytes, minimum=1)
         reader = self._open(path)

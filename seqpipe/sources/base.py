@@ -151,12 +151,14 @@ class Source(ABC):
         """Cut ``path`` into parts of about ``target_bytes`` on document boundaries."""
 
     @abstractmethod
-    def read(self, path: SourcePath, part: Part, stats: ReadStats, *,
-             batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
+    def read(
+        self, path: SourcePath, part: Part, stats: ReadStats, *, batch_bytes: int = DEFAULT_BATCH_BYTES
+    ) -> Iterator[pa.Array]:
         """Yield the documents of ``part`` as ``large_string`` arrays of about ``batch_bytes``."""
 
-    def documents(self, root: Path, stats: ReadStats, *, target_bytes: int = 64 << 20,
-                  batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
+    def documents(
+        self, root: Path, stats: ReadStats, *, target_bytes: int = 64 << 20, batch_bytes: int = DEFAULT_BATCH_BYTES
+    ) -> Iterator[pa.Array]:
         """Every document of every matched file, in order, in one process."""
         for path in self.resolve(root):
             for part in self.plan(path, target_bytes):
@@ -219,8 +221,15 @@ class DocumentFinisher:
 
     __slots__ = ("_compressed", "_invalid", "_limit", "_line_of", "_oversize", "path", "stats")
 
-    def __init__(self, source: Source, path: SourcePath, stats: ReadStats, *, compressed: bool = False,
-                 line_of: Callable[[int], int] | None = None) -> None:
+    def __init__(
+        self,
+        source: Source,
+        path: SourcePath,
+        stats: ReadStats,
+        *,
+        compressed: bool = False,
+        line_of: Callable[[int], int] | None = None,
+    ) -> None:
         self.path = str(path)
         self.stats = stats
         self._limit = source.max_document_bytes
@@ -229,8 +238,15 @@ class DocumentFinisher:
         self._compressed = compressed
         self._line_of = line_of
 
-    def error(self, cls: type[SourceError], message: str, *, offset: int | None = None,
-              line: int | None = None, row: int | None = None) -> SourceError:
+    def error(
+        self,
+        cls: type[SourceError],
+        message: str,
+        *,
+        offset: int | None = None,
+        line: int | None = None,
+        row: int | None = None,
+    ) -> SourceError:
         """An error of class ``cls`` naming this file and the place given."""
         if row is not None:
             message = f"row {row}: {message}"
@@ -240,16 +256,20 @@ class DocumentFinisher:
             line = self._line_of(line)
         return cls(self.path, message, offset=offset, line=line)
 
-    def oversize_error(self, size: int | None, *, offset: int | None = None, line: int | None = None,
-                       row: int | None = None) -> SourceError:
+    def oversize_error(
+        self, size: int | None, *, offset: int | None = None, line: int | None = None, row: int | None = None
+    ) -> SourceError:
         """The error for a document over ``max_document_bytes`` (size None: not known yet)."""
         what = "a document" if size is None else f"a document of {size} bytes"
-        message = (f"{what} is larger than max_document_bytes = {self._limit}; raise the limit "
-                   "or set oversize = \"skip\" or \"truncate\"")
+        message = (
+            f"{what} is larger than max_document_bytes = {self._limit}; raise the limit "
+            'or set oversize = "skip" or "truncate"'
+        )
         return self.error(SourceError, message, offset=offset, line=line, row=row)
 
-    def check_size(self, size: int, *, offset: int | None = None, line: int | None = None,
-                   row: int | None = None) -> bool:
+    def check_size(
+        self, size: int, *, offset: int | None = None, line: int | None = None, row: int | None = None
+    ) -> bool:
         """False when a document of ``size`` bytes is dropped; True to keep (truncated if over)."""
         if size <= self._limit:
             return True
@@ -261,8 +281,14 @@ class DocumentFinisher:
         self.stats.oversize_truncated += 1
         return True
 
-    def decode(self, data: bytes | bytearray | memoryview, *, offset: int | None = None,
-               line: int | None = None, row: int | None = None) -> str | None:
+    def decode(
+        self,
+        data: bytes | bytearray | memoryview,
+        *,
+        offset: int | None = None,
+        line: int | None = None,
+        row: int | None = None,
+    ) -> str | None:
         """``data`` as text under the ``invalid_utf8`` policy (None: the document is skipped)."""
         try:
             return str(data, "utf-8")
@@ -270,8 +296,7 @@ class DocumentFinisher:
             if self._invalid == "error":
                 at = None if offset is None else offset + exc.start
                 where = "" if row is None else f"at byte {exc.start} of the value "
-                message = (f"invalid UTF-8 {where}({exc.reason}); set invalid_utf8 = \"replace\" "
-                           "or \"skip\" to read past it")
+                message = f'invalid UTF-8 {where}({exc.reason}); set invalid_utf8 = "replace" or "skip" to read past it'
                 raise self.error(InvalidUtf8Error, message, offset=at, line=line, row=row) from None
         if self._invalid == "skip":
             self.stats.invalid_utf8_skipped += 1
@@ -279,8 +304,14 @@ class DocumentFinisher:
         self.stats.invalid_utf8_replaced += 1
         return str(data, "utf-8", "replace")
 
-    def finish(self, data: bytes | bytearray | memoryview, *, offset: int | None = None,
-               line: int | None = None, row: int | None = None) -> str | None:
+    def finish(
+        self,
+        data: bytes | bytearray | memoryview,
+        *,
+        offset: int | None = None,
+        line: int | None = None,
+        row: int | None = None,
+    ) -> str | None:
         """The document held in ``data``, or None when a policy drops it (the drop is counted)."""
         if not self.check_size(len(data), offset=offset, line=line, row=row):
             return None
@@ -290,8 +321,9 @@ class DocumentFinisher:
         text = normalize_line_ends(text)
         return None if is_blank(text) else text
 
-    def finish_text(self, text: str, encoded_size: int, *, line: int | None = None,
-                    row: int | None = None) -> str | None:
+    def finish_text(
+        self, text: str, encoded_size: int, *, line: int | None = None, row: int | None = None
+    ) -> str | None:
         """Like :meth:`finish` for text already decoded (a JSON string value)."""
         if not self.check_size(encoded_size, line=line, row=row):
             return None

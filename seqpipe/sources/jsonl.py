@@ -71,8 +71,9 @@ class JsonlSource(RecordSource):
         # Only LF ends a JSON Lines record (a CR before it is JSON whitespace).
         return [Part(a, b) for a, b in plan_cuts(path, size, target_bytes, _LF)]
 
-    def read(self, path: SourcePath, part: Part, stats: ReadStats, *,
-             batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
+    def read(
+        self, path: SourcePath, part: Part, stats: ReadStats, *, batch_bytes: int = DEFAULT_BATCH_BYTES
+    ) -> Iterator[pa.Array]:
         """Text values of the records in ``part``."""
         parse_int("batch_bytes", batch_bytes, minimum=1)
         codec = codec_for(path, self.compression)
@@ -131,8 +132,16 @@ class JsonlSource(RecordSource):
             if docs:
                 yield to_array(docs, stats)
 
-    def _records(self, buf: bytearray, cut: int, base: int, lines: int, line_limit: int,
-                 finisher: DocumentFinisher, docs: list[str]) -> int:
+    def _records(
+        self,
+        buf: bytearray,
+        cut: int,
+        base: int,
+        lines: int,
+        line_limit: int,
+        finisher: DocumentFinisher,
+        docs: list[str],
+    ) -> int:
         """Append the texts of the lines in ``buf[:cut]``; return the updated line count."""
         pos = 0
         with memoryview(buf) as view:
@@ -159,7 +168,7 @@ class JsonlSource(RecordSource):
         if problem is None:
             return finisher.finish_text(value, size, line=line)
         if self.bad_records == "error":
-            hint = "; set bad_records = \"skip\" to drop such records"
+            hint = '; set bad_records = "skip" to drop such records'
             raise finisher.error(RecordError, problem + hint, line=line)
         finisher.stats.bad_records_skipped += 1
         return None

@@ -41,8 +41,9 @@ class ParquetSource(RecordSource):
         sizes = [meta.row_group(i).total_byte_size for i in range(meta.num_row_groups)]
         return group_parts(sizes, target_bytes)
 
-    def read(self, path: SourcePath, part: Part, stats: ReadStats, *,
-             batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
+    def read(
+        self, path: SourcePath, part: Part, stats: ReadStats, *, batch_bytes: int = DEFAULT_BATCH_BYTES
+    ) -> Iterator[pa.Array]:
         """Text values of the rows in row groups ``[part.start, part.stop)``."""
         parse_int("batch_bytes", batch_bytes, minimum=1)
         handle = self._open(path)
@@ -63,8 +64,7 @@ class ParquetSource(RecordSource):
         per_row = max(1, text_bytes // max(1, rows))
         batch_rows = max(1, batch_bytes // per_row)
         finisher = DocumentFinisher(self, path, stats)
-        batches = handle.iter_batches(batch_size=batch_rows, row_groups=groups, columns=[self.field],
-                                      use_threads=False)
+        batches = handle.iter_batches(batch_size=batch_rows, row_groups=groups, columns=[self.field], use_threads=False)
         for batch in guarded(batches, path, "Parquet file"):
             column = batch.column(0)
             docs = finish_column(column, row, self, finisher)

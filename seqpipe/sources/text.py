@@ -136,8 +136,9 @@ class TextSource(Source):
         separator = LINE_SEPARATOR if self.document == "line" else PARAGRAPH_SEPARATOR
         return [Part(a, b) for a, b in plan_cuts(path, size, target_bytes, separator)]
 
-    def read(self, path: SourcePath, part: Part, stats: ReadStats, *,
-             batch_bytes: int = DEFAULT_BATCH_BYTES) -> Iterator[pa.Array]:
+    def read(
+        self, path: SourcePath, part: Part, stats: ReadStats, *, batch_bytes: int = DEFAULT_BATCH_BYTES
+    ) -> Iterator[pa.Array]:
         """Documents of ``part`` (see the module docstring for what a document is)."""
         parse_int("batch_bytes", batch_bytes, minimum=1)
         if self.document == "file":
@@ -161,7 +162,7 @@ class TextSource(Source):
             total += len(block)
             content = content or _NONBLANK.search(block) is not None
             if len(head) <= limit:
-                head += block[:limit + 1 - len(head)]
+                head += block[: limit + 1 - len(head)]
         if not content:
             return
         if total > limit and self.oversize == "error":
@@ -170,8 +171,9 @@ class TextSource(Source):
         if text is not None:
             yield to_array([text], stats)
 
-    def _read_split(self, path: SourcePath, part: Part, stats: ReadStats, batch_bytes: int, *,
-                    slow: bool = False) -> Iterator[pa.Array]:
+    def _read_split(
+        self, path: SourcePath, part: Part, stats: ReadStats, batch_bytes: int, *, slow: bool = False
+    ) -> Iterator[pa.Array]:
         """``slow`` keeps to the per-document path (the tests compare it with the vectorized one)."""
         codec = codec_for(path, self.compression)
         finisher = DocumentFinisher(self, path, stats, compressed=codec is not None)
@@ -240,7 +242,7 @@ class TextSource(Source):
                     if self.oversize == "error":
                         raise finisher.oversize_error(None, offset=base + start)
                     if self.oversize == "truncate":
-                        kept, kept_at = bytes(buf[start:start + limit + 1]), base + start
+                        kept, kept_at = bytes(buf[start : start + limit + 1]), base + start
                     else:
                         stats.oversize_skipped += 1
                     skipping = True
@@ -252,8 +254,9 @@ class TextSource(Source):
             if batch is not None and len(batch):
                 yield batch
 
-    def _chunk(self, buf: bytearray, cut: int, base: int, finisher: DocumentFinisher, *,
-               slow: bool = False) -> pa.Array:
+    def _chunk(
+        self, buf: bytearray, cut: int, base: int, finisher: DocumentFinisher, *, slow: bool = False
+    ) -> pa.Array:
         """The documents of ``buf[:cut]``, a run of whole documents starting at offset ``base``.
 
         ``slow`` skips the vectorized path (the tests compare the two).

@@ -33,5 +33,4 @@ def parse_tokenizer(table: Any, path: str = "tokenizer") -> Tokenizer:
     return section(tokenizer_class(kind), table, path, skip=("kind",))
 
 
-__all__ = ["TOKENIZER_KINDS", "Encoder", "Segments", "Tokenizer", "parse_tokenizer",
-           "tokenizer_class"]
+__all__ = ["TOKENIZER_KINDS", "Encoder", "Segments", "Tokenizer", "parse_tokenizer", "tokenizer_class"]

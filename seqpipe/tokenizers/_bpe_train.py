@@ -80,8 +80,7 @@ class Learned:
     words: list[list[int]]  # each training chunk's symbols after the last merge
 
 
-def _first_of(pair: Pair, where: set[int], words: Sequence[list[int]],
-              sizes: Sequence[int]) -> tuple[int, int]:
+def _first_of(pair: Pair, where: set[int], words: Sequence[list[int]], sizes: Sequence[int]) -> tuple[int, int]:
     """The pair's first occurrence now: (chunk row, byte offset in the chunk)."""
     w = min(where)
     sym = words[w]
@@ -94,8 +93,7 @@ def _first_of(pair: Pair, where: set[int], words: Sequence[list[int]],
     raise AssertionError("pair index out of step with chunk symbols")  # a bug, not bad input
 
 
-def learn(words: list[list[int]], freqs: Sequence[int], tokens: list[bytes], *,
-          limit: int, min_count: int) -> Learned:
+def learn(words: list[list[int]], freqs: Sequence[int], tokens: list[bytes], *, limit: int, min_count: int) -> Learned:
     """Merge pairs until ``len(tokens) == limit`` or no pair occurs ``min_count`` times.
 
     ``words`` (chunk symbols in corpus order) and ``tokens`` are updated in place.
@@ -219,11 +217,12 @@ def read_counts(counts: pa.Table) -> tuple[list[bytes], np.ndarray]:
 
 def _split(flat: list[int], lengths: Sequence[int], tail: list[int]) -> list[list[int]]:
     ends = list(itertools.accumulate(lengths))
-    return [flat[e - n:e] + tail for e, n in zip(ends, lengths, strict=True)]
+    return [flat[e - n : e] + tail for e, n in zip(ends, lengths, strict=True)]
 
 
-def byte_symbols(keys: list[bytes], freqs: np.ndarray,
-                 n_special: int) -> tuple[list[bytes], np.ndarray, list[list[int]]]:
+def byte_symbols(
+    keys: list[bytes], freqs: np.ndarray, n_special: int
+) -> tuple[list[bytes], np.ndarray, list[list[int]]]:
     """Alphabet of all 256 bytes, byte counts, and each chunk as byte ids."""
     data = np.frombuffer(b"".join(keys), dtype=np.uint8)
     lengths = [len(k) for k in keys]
@@ -234,8 +233,9 @@ def byte_symbols(keys: list[bytes], freqs: np.ndarray,
     return [bytes([b]) for b in range(256)], counts, words
 
 
-def char_symbols(keys: list[bytes], freqs: np.ndarray, n_special: int,
-                 marker: str) -> tuple[list[bytes], np.ndarray, list[list[int]]]:
+def char_symbols(
+    keys: list[bytes], freqs: np.ndarray, n_special: int, marker: str
+) -> tuple[list[bytes], np.ndarray, list[list[int]]]:
     """Alphabet of the characters seen (code-point order) plus the marker, counts, chunk ids."""
     try:
         texts = [k.decode("utf-8") for k in keys]
@@ -250,8 +250,9 @@ def char_symbols(keys: list[bytes], freqs: np.ndarray, n_special: int,
     tail: list[int] = []
     if marker:
         if marker.encode("utf-8") in alphabet:
-            raise TokenizerError(f"end_of_word {marker!r} occurs as a character of the training text; "
-                                 "choose a marker that does not")
+            raise TokenizerError(
+                f"end_of_word {marker!r} occurs as a character of the training text; choose a marker that does not"
+            )
         alphabet.append(marker.encode("utf-8"))
         counts[-1] = int(freqs.sum())
         tail = [n_special + len(alphabet) - 1]

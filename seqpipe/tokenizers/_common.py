@@ -22,8 +22,9 @@ def as_string_array(texts: Sequence[str] | pa.Array) -> pa.Array:
     try:
         return pa.array(list(texts), pa.large_string())
     except UnicodeEncodeError as exc:
-        raise TokenizerError(f"text contains a lone surrogate ({exc.object[exc.start:exc.end]!r}); "
-                             "it has no UTF-8 form") from None
+        raise TokenizerError(
+            f"text contains a lone surrogate ({exc.object[exc.start : exc.end]!r}); it has no UTF-8 form"
+        ) from None
     except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
         raise TokenizerError(f"expected a sequence of strings ({exc})") from None
 

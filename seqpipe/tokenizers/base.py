@@ -105,8 +105,9 @@ class Encoder(ABC):
         return self.encode_segments(self.tokenizer.segment(texts))
 
 
-def expand(values: np.ndarray, offsets: np.ndarray, codes: np.ndarray,
-           doc_lengths: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def expand(
+    values: np.ndarray, offsets: np.ndarray, codes: np.ndarray, doc_lengths: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
     """Turn piece codes into ids given per-key id runs, without a Python loop.
 
     Returns the flat ids (int64) and the number of ids per document.

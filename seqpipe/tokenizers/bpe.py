@@ -69,8 +69,9 @@ DEFAULT_CHUNK_PATTERN: Final = (
 DEFAULT_SPECIALS: Final = VocabSpec().specials
 MERGES_FILE: Final = "tokenizer.arrow"
 MERGES_FORMAT: Final = "1"
-MERGES_SCHEMA: Final = pa.schema([("rank", pa.int32()), ("left", pa.int32()), ("right", pa.int32()),
-                                  ("merged", pa.int32()), ("token", pa.binary())])
+MERGES_SCHEMA: Final = pa.schema(
+    [("rank", pa.int32()), ("left", pa.int32()), ("right", pa.int32()), ("merged", pa.int32()), ("token", pa.binary())]
+)
 # Distinct chunks whose ids are remembered; a corpus's frequent chunks fit many
 # times over, and a full cache is simply emptied (cheaper than per-entry aging).
 CACHE_LIMIT: Final = 200_000
@@ -98,7 +99,9 @@ def _surrogate_error(texts: Sequence[str]) -> TokenizerError:
             return TokenizerError(
                 f"document {d}, character {exc.start}: {text[exc.start]!r} is a lone surrogate and has no "
                 "UTF-8 form; repair the text (or decode the source with errors='replace') first",
-                document=d, offset=exc.start)
+                document=d,
+                offset=exc.start,
+            )
     return TokenizerError("text cannot be encoded as UTF-8")
 
 
@@ -128,20 +131,21 @@ class BpeTokenizer(Tokenizer):
         parse_str("base", self.base, choices=("bytes", "chars"))
         parse_str("end_of_word", self.end_of_word, allow_empty=True)
         if self.end_of_word and self.base != "chars":
-            raise RecipeError("end_of_word", f"only applies to base = 'chars', got {self.end_of_word!r} "
-                                             f"with base = {self.base!r}")
+            raise RecipeError(
+                "end_of_word", f"only applies to base = 'chars', got {self.end_of_word!r} with base = {self.base!r}"
+            )
         parse_int("vocab_size", self.vocab_size, minimum=2)
         parse_int("min_pair_count", self.min_pair_count, minimum=1)
         parse_str("chunk_pattern", self.chunk_pattern)
         try:
             compiled = _chunker(self.chunk_pattern)
         except (regex.error, ValueError, TypeError) as exc:
-            raise RecipeError("chunk_pattern", f"not a valid regular expression ({exc}): "
-                                               f"{self.chunk_pattern!r}") from exc
+            raise RecipeError(
+                "chunk_pattern", f"not a valid regular expression ({exc}): {self.chunk_pattern!r}"
+            ) from exc
         if compiled.groups:
             # findall would return the groups instead of whole chunks
-            raise RecipeError("chunk_pattern",
-                              f"use non-capturing groups (?:...), got {self.chunk_pattern!r}")
+            raise RecipeError("chunk_pattern", f"use non-capturing groups (?:...), got {self.chunk_pattern!r}")
         parse_bool("literal_specials", self.literal_specials)
         names = parse_str_tuple("special_names", self.special_names)
         if len(set(names)) != len(names):
@@ -154,8 +158,7 @@ class BpeTokenizer(Tokenizer):
         if isinstance(texts, (pa.Array, pa.ChunkedArray)):
             texts = texts.to_pylist()
         chunker = _chunker(self.chunk_pattern)
-        splitter = (_special_splitter(self.special_names)
-                    if self.literal_specials and self.special_names else None)
+        splitter = _special_splitter(self.special_names) if self.literal_specials and self.special_names else None
         flat: list[str] = []
         lengths = np.empty(len(texts), dtype=np.int64)
         for d, text in enumerate(texts):
@@ -188,8 +191,11 @@ class BpeTokenizer(Tokenizer):
         on ``PYTHONHASHSEED``.
         """
         if self.literal_specials and self.special_names != spec.specials:
-            raise RecipeError("special_names", f"with literal_specials these must equal vocab.specials "
-                                               f"{list(spec.specials)}, got {list(self.special_names)}")
+            raise RecipeError(
+                "special_names",
+                f"with literal_specials these must equal vocab.specials "
+                f"{list(spec.specials)}, got {list(self.special_names)}",
+            )
         keys, freqs = read_counts(counts)
         if self.literal_specials:
             reserved = {n.encode("utf-8") for n in self.special_names}
@@ -204,15 +210,20 @@ class BpeTokenizer(Tokenizer):
         limit = min(self.vocab_size, spec.max_size) if spec.max_size else self.vocab_size
         if limit < n_special + len(alphabet):
             need = n_special + len(alphabet)
-            raise RecipeError("vocab_size", f"expected at least {need} ({n_special} specials + "
-                                            f"{len(alphabet)} base symbols), got {limit}")
+            raise RecipeError(
+                "vocab_size",
+                f"expected at least {need} ({n_special} specials + {len(alphabet)} base symbols), got {limit}",
+            )
         tokens = [*special_tokens, *alphabet]
         learned = learn(words, freqs.tolist(), tokens, limit=limit, min_count=self.min_pair_count)
         vocabulary = Vocabulary(
             tokens=pa.array(learned.tokens, pa.binary()),
-            counts=np.concatenate([np.zeros(n_special, np.int64), alpha_counts,
-                                    np.array(learned.merge_counts, np.int64)]),
-            n_special=n_special, roles=roles)
+            counts=np.concatenate(
+                [np.zeros(n_special, np.int64), alpha_counts, np.array(learned.merge_counts, np.int64)]
+            ),
+            n_special=n_special,
+            roles=roles,
+        )
         encoder = BpeEncoder(self, vocabulary, learned.merges, alphabet_size=len(alphabet))
         # training already segmented every train chunk: keep the most frequent as cache entries,
         # so encoding the train split right after fitting is lookups only
@@ -231,8 +242,7 @@ class BpeTokenizer(Tokenizer):
             return ShardCorruptError(f"{path}: {why}; rebuild the dataset", path=str(path))
 
         meta = table.schema.metadata or {}
-        if (meta.get(b"seqpipe.table") != b"bpe-merges"
-                or meta.get(b"seqpipe.format") != MERGES_FORMAT.encode()):
+        if meta.get(b"seqpipe.table") != b"bpe-merges" or meta.get(b"seqpipe.format") != MERGES_FORMAT.encode():
             raise corrupt(f"not a seqpipe byte-pair merge table (format {MERGES_FORMAT})")
         try:
             stored = json.loads(meta[b"seqpipe.bpe"])
@@ -242,18 +252,18 @@ class BpeTokenizer(Tokenizer):
         mine = self._params(alphabet_size, vocabulary.n_special)
         for key in sorted(set(mine) | set(stored)):
             if key != "special_names" and stored.get(key) != mine.get(key):
-                raise corrupt(f"written with {key} = {stored.get(key)!r}, "
-                              f"but the recipe says {mine.get(key)!r}")
+                raise corrupt(f"written with {key} = {stored.get(key)!r}, but the recipe says {mine.get(key)!r}")
         if not table.schema.equals(MERGES_SCHEMA, check_metadata=False):
-            raise corrupt(f"expected schema {MERGES_SCHEMA.to_string(show_schema_metadata=False)!r}, "
-                          f"got {table.schema.to_string(show_schema_metadata=False)!r}")
+            raise corrupt(
+                f"expected schema {MERGES_SCHEMA.to_string(show_schema_metadata=False)!r}, "
+                f"got {table.schema.to_string(show_schema_metadata=False)!r}"
+            )
         if any(table.column(n).null_count for n in MERGES_SCHEMA.names):
             raise corrupt("merge table holds nulls")
         merges = _check_merges(table, vocabulary, alphabet_size, self, corrupt)
         tokenizer = self
         if self.literal_specials:
-            names = tuple(vocabulary.token(i).decode("utf-8", errors="replace")
-                          for i in range(vocabulary.n_special))
+            names = tuple(vocabulary.token(i).decode("utf-8", errors="replace") for i in range(vocabulary.n_special))
             tokenizer = dataclasses.replace(self, special_names=names)
         return BpeEncoder(tokenizer, vocabulary, merges, alphabet_size=alphabet_size)
 
@@ -262,8 +272,9 @@ class BpeTokenizer(Tokenizer):
         return {**plain, "alphabet_size": alphabet_size, "n_special": n_special}
 
 
-def _check_merges(table: pa.Table, vocabulary: Vocabulary, alphabet_size: int, tokenizer: BpeTokenizer,
-                  corrupt: Any) -> list[tuple[int, int, int]]:
+def _check_merges(
+    table: pa.Table, vocabulary: Vocabulary, alphabet_size: int, tokenizer: BpeTokenizer, corrupt: Any
+) -> list[tuple[int, int, int]]:
     """Merges of a stored table, each checked against the vocabulary beside it."""
     n_special = vocabulary.n_special
     tokens = [bytes(t) for t in vocabulary.tokens.to_pylist()]
@@ -286,13 +297,19 @@ def _check_merges(table: pa.Table, vocabulary: Vocabulary, alphabet_size: int, t
         if any(a >= b for a, b in itertools.pairwise(points)):
             raise corrupt("base alphabet is not in ascending code-point order")
     ranks = table.column("rank").to_pylist()
-    rows = zip(table.column("left").to_pylist(), table.column("right").to_pylist(),
-               table.column("merged").to_pylist(), table.column("token").to_pylist(), strict=True)
+    rows = zip(
+        table.column("left").to_pylist(),
+        table.column("right").to_pylist(),
+        table.column("merged").to_pylist(),
+        table.column("token").to_pylist(),
+        strict=True,
+    )
     if ranks != list(range(len(ranks))):
         raise corrupt("ranks are not 0, 1, 2, ... in row order")
     if first_new + len(ranks) != len(tokens):
-        raise corrupt(f"{len(ranks)} merges after {first_new} base ids do not make the "
-                      f"vocabulary's {len(tokens)} tokens")
+        raise corrupt(
+            f"{len(ranks)} merges after {first_new} base ids do not make the vocabulary's {len(tokens)} tokens"
+        )
     merges: list[tuple[int, int, int]] = []
     for r, (a, b, z, tok) in enumerate(rows):
         # merge r makes id first_new + r out of ids that existed before it
@@ -309,8 +326,14 @@ def _check_merges(table: pa.Table, vocabulary: Vocabulary, alphabet_size: int, t
 class BpeEncoder(Encoder):
     """A trained byte-pair encoding: merges by rank, applied per distinct chunk with a cache."""
 
-    def __init__(self, tokenizer: BpeTokenizer, vocabulary: Vocabulary,
-                 merges: Sequence[tuple[int, int, int]], *, alphabet_size: int) -> None:
+    def __init__(
+        self,
+        tokenizer: BpeTokenizer,
+        vocabulary: Vocabulary,
+        merges: Sequence[tuple[int, int, int]],
+        *,
+        alphabet_size: int,
+    ) -> None:
         self.tokenizer = tokenizer
         self.vocabulary = vocabulary
         self.merges = list(merges)
@@ -327,10 +350,11 @@ class BpeEncoder(Encoder):
             n_chars = alphabet_size - bool(marker)
             self._char_id = {tokens[i].decode("utf-8"): i for i in range(n_special, n_special + n_chars)}
             self._tail = [n_special + n_chars] if marker else []
-        self._special_id = ({tokens[i]: i for i in range(n_special)} if tokenizer.literal_specials else {})
+        self._special_id = {tokens[i]: i for i in range(n_special)} if tokenizer.literal_specials else {}
         # decode table: the bytes each id prints as (a token-final marker prints as nothing)
-        shown = [t[: -len(marker)] if marker and i >= n_special and t.endswith(marker) else t
-                 for i, t in enumerate(tokens)]
+        shown = [
+            t[: -len(marker)] if marker and i >= n_special and t.endswith(marker) else t for i, t in enumerate(tokens)
+        ]
         self._shown = np.frombuffer(b"".join(shown), dtype=np.uint8).astype(np.int64)
         self._shown_offsets = np.concatenate([[0], np.cumsum([len(t) for t in shown])]).astype(np.int64)
 
@@ -343,8 +367,9 @@ class BpeEncoder(Encoder):
         for ch in key.decode("utf-8"):
             sid = self._char_id.get(ch, unknown)
             if sid is None:
-                raise TokenizerError(f"character {ch!r} was not seen in training and the recipe sets no "
-                                     "unknown token (vocab.unknown)")
+                raise TokenizerError(
+                    f"character {ch!r} was not seen in training and the recipe sets no unknown token (vocab.unknown)"
+                )
             out.append(sid)
         return out + self._tail
 
@@ -387,15 +412,23 @@ class BpeEncoder(Encoder):
         """Write ``tokenizer.arrow`` (merges + parameters) into ``directory``."""
         tokens = self.vocabulary.tokens
         left, right, merged = ([m[k] for m in self.merges] for k in range(3))
-        table = pa.table({
-            "rank": pa.array(range(len(self.merges)), pa.int32()),
-            "left": pa.array(left, pa.int32()), "right": pa.array(right, pa.int32()),
-            "merged": pa.array(merged, pa.int32()),
-            "token": tokens.take(pa.array(merged, pa.int64())).cast(pa.binary()),
-        }, schema=MERGES_SCHEMA)
+        table = pa.table(
+            {
+                "rank": pa.array(range(len(self.merges)), pa.int32()),
+                "left": pa.array(left, pa.int32()),
+                "right": pa.array(right, pa.int32()),
+                "merged": pa.array(merged, pa.int32()),
+                "token": tokens.take(pa.array(merged, pa.int64())).cast(pa.binary()),
+            },
+            schema=MERGES_SCHEMA,
+        )
         params = self._bpe._params(self.alphabet_size, self.vocabulary.n_special)
-        table = table.replace_schema_metadata({
-            b"seqpipe.table": b"bpe-merges", b"seqpipe.format": MERGES_FORMAT.encode(),
-            b"seqpipe.bpe": canonical_json(params).encode("ascii")})
+        table = table.replace_schema_metadata(
+            {
+                b"seqpipe.table": b"bpe-merges",
+                b"seqpipe.format": MERGES_FORMAT.encode(),
+                b"seqpipe.bpe": canonical_json(params).encode("ascii"),
+            }
+        )
         write_table(directory / MERGES_FILE, table)
         return [MERGES_FILE]

@@ -48,8 +48,9 @@ class CharTokenizer(Tokenizer):
         try:
             cps = np.frombuffer(joined.encode("utf-32-le"), dtype="<u4")
         except UnicodeEncodeError as exc:
-            raise TokenizerError(f"text contains a lone surrogate at character {exc.start}; "
-                                 "it has no UTF-8 form") from None
+            raise TokenizerError(
+                f"text contains a lone surrogate at character {exc.start}; it has no UTF-8 form"
+            ) from None
         uniq, first, inverse = np.unique(cps, return_index=True, return_inverse=True)
         # keys in first-occurrence order, like the other kinds
         order = np.argsort(first, kind="stable")

@@ -35,10 +35,13 @@ class ByteTokenizer(Tokenizer):
 
     def segment(self, texts: Sequence[str] | pa.Array) -> Segments:
         arr = as_string_array(texts)
-        offsets = np.frombuffer(arr.buffers()[1], dtype=np.int64)[arr.offset: arr.offset + len(arr) + 1]
+        offsets = np.frombuffer(arr.buffers()[1], dtype=np.int64)[arr.offset : arr.offset + len(arr) + 1]
         data = arr.buffers()[2]
-        raw = (np.frombuffer(data, dtype=np.uint8)[offsets[0]: offsets[-1]]
-               if data is not None and len(arr) else np.zeros(0, np.uint8))
+        raw = (
+            np.frombuffer(data, dtype=np.uint8)[offsets[0] : offsets[-1]]
+            if data is not None and len(arr)
+            else np.zeros(0, np.uint8)
+        )
         lengths = np.diff(offsets).astype(np.int64)
         seen = np.zeros(256, dtype=bool)
         seen[raw] = True

@@ -85,19 +85,20 @@ def _byte_classes(texts: pa.Array) -> _Classes | None:
 
 def _compute_classes(texts: pa.Array) -> _Classes | None:
     n_docs = len(texts)
-    offsets = np.frombuffer(texts.buffers()[1], dtype=np.int64)[texts.offset: texts.offset + n_docs + 1]
+    offsets = np.frombuffer(texts.buffers()[1], dtype=np.int64)[texts.offset : texts.offset + n_docs + 1]
     buf = texts.buffers()[2]
     if buf is None or n_docs == 0 or offsets[-1] == offsets[0]:
         return None
-    data = np.frombuffer(buf, dtype=np.uint8)[offsets[0]: offsets[-1]]
+    data = np.frombuffer(buf, dtype=np.uint8)[offsets[0] : offsets[-1]]
     doc_bytes = offsets - offsets[0]
     cls = np.take(_ASCII_CLASS, data)  # np.take: about 1.7x faster than fancy indexing here
     high = np.flatnonzero(data >= 0xC0)  # first bytes of multi-byte sequences
     if len(high):
         cps = _decode_code_points(data, high)
         uniq, inverse = np.unique(cps, return_inverse=True)
-        ucls = np.fromiter((_CLASS_CACHE.setdefault(int(c), _classify(int(c))) for c in uniq),
-                           dtype=np.uint8, count=len(uniq))
+        ucls = np.fromiter(
+            (_CLASS_CACHE.setdefault(int(c), _classify(int(c))) for c in uniq), dtype=np.uint8, count=len(uniq)
+        )
         c = ucls[inverse]
         first = data[high]
         cls[high] = c
@@ -147,8 +148,7 @@ def _segment_default(texts: pa.Array) -> tuple[pa.Array, np.ndarray]:
     squeezed = np.compress(keep, data)
     tok_offsets = np.flatnonzero(np.compress(keep, starts_tok))
     tok_offsets = np.append(tok_offsets, len(squeezed))
-    flat = pa.LargeStringArray.from_buffers(len(tok_offsets) - 1, pa.py_buffer(tok_offsets),
-                                            pa.py_buffer(squeezed))
+    flat = pa.LargeStringArray.from_buffers(len(tok_offsets) - 1, pa.py_buffer(tok_offsets), pa.py_buffer(squeezed))
     # tokens per document: token starts between document byte offsets
     tok_pos = np.flatnonzero(starts_tok)
     return flat, np.diff(np.searchsorted(tok_pos, doc_bytes)).astype(np.int64)
