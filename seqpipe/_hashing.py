@@ -58,14 +58,14 @@ def hash_file(path: str | Path, block: int = BLOCK) -> str:
 
     A local file is hashed straight from a memory map (no copy into a buffer), or read in
     large blocks where it cannot be mapped. A filesystem URI (see
-    :mod:`seqpipe.sources._fs`) is streamed through pyarrow in blocks of ``block`` bytes;
+    :mod:`seqpipe.filesystem`) is streamed through pyarrow in blocks of ``block`` bytes;
     a file that is gone is a SourceMissingError, one that cannot be read a SourceError.
     """
     import mmap
 
-    from seqpipe.sources import _fs
+    from seqpipe import filesystem
 
-    if _fs.is_uri(path):
+    if filesystem.is_uri(path):
         return _hash_uri(str(path), block)
     try:
         with open(path, "rb") as src, mmap.mmap(src.fileno(), 0, access=mmap.ACCESS_READ) as mapped:
@@ -85,13 +85,13 @@ def hash_file(path: str | Path, block: int = BLOCK) -> str:
 
 
 def _hash_uri(uri: str, block: int) -> str:
+    from seqpipe import filesystem
     from seqpipe.errors import SourceError, SourceMissingError
-    from seqpipe.sources import _fs
 
     try:
-        with _fs.open_raw_stream(uri) as stream:
+        with filesystem.open_raw_stream(uri) as stream:
             return hash_stream(stream, block)
     except FileNotFoundError as exc:
-        raise SourceMissingError(uri, _fs.FILE_GONE) from exc
+        raise SourceMissingError(uri, filesystem.FILE_GONE) from exc
     except (OSError, pa.ArrowException) as exc:
         raise SourceError(uri, f"cannot read the file to hash it: {exc}") from exc

@@ -125,7 +125,7 @@ def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[str]:
     """XXH3-128 of each input, reusing a stored hash while its change stamp is unchanged:
     (size, mtime, inode) for a local file, (size, mtime) for a URI; a URI whose filesystem
     reports no mtime has no stamp and is hashed on every build."""
-    from seqpipe.sources._fs import change_stamp
+    from seqpipe.filesystem import change_stamp
 
     index_path = cache / "inputs.json"
     try:
@@ -291,7 +291,7 @@ def build(
     is uploaded to ``out`` at the end (see :mod:`seqpipe.remote`); ``directory`` of the result
     is the URI.
     """
-    from seqpipe.sources._fs import is_uri
+    from seqpipe.filesystem import is_uri
 
     t0 = time.perf_counter()
     if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
@@ -338,7 +338,7 @@ def build(
 
 def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, part_bytes: int, t0: float) -> BuildResult:
     # -- plan -----------------------------------------------------------------------------------
-    from seqpipe.sources._fs import file_size, identity, is_uri
+    from seqpipe.filesystem import file_size, identity, is_uri
 
     files: list[tuple[int, Path | str]] = []  # a local Path, or a filesystem URI
     seen: set[Path | str] = set()

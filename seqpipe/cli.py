@@ -37,8 +37,8 @@ def cmd_build(args: argparse.Namespace) -> int:
     early = workers is not None and workers > 1 and not args.dask_scheduler
     with executor_for(None, workers) if early else nullcontext(None) as pool:
         from seqpipe.build import build
+        from seqpipe.filesystem import is_uri
         from seqpipe.recipe import load_recipe
-        from seqpipe.sources._fs import is_uri
 
         recipe = load_recipe(args.recipe)
         out: str | Path = Path(recipe.dataset.name)
@@ -170,8 +170,8 @@ def cmd_batches(args: argparse.Namespace) -> int:
 
 
 def cmd_report(args: argparse.Namespace) -> int:
+    from seqpipe.filesystem import is_uri
     from seqpipe.report import write_report
-    from seqpipe.sources._fs import is_uri
 
     if args.output:
         out = Path(args.output)

@@ -137,7 +137,7 @@ def open_dataset(directory: str | Path, *, verify_on_open: bool = False, copy_di
     each file checked against the manifest's hash as it arrives and only missing or changed
     files fetched, and the copy is opened (memory-mapped like any local dataset).
     """
-    from seqpipe.sources._fs import is_uri
+    from seqpipe.filesystem import is_uri
 
     if is_uri(directory):
         from seqpipe import remote

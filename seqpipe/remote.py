@@ -25,11 +25,11 @@ from typing import TYPE_CHECKING, Any, Final
 
 import pyarrow as pa
 
+from seqpipe import filesystem
 from seqpipe._hashing import BLOCK, hash_bytes, hash_file
 from seqpipe.errors import DatasetError, ManifestError, RecipeError, SourceMissingError, UnsafePathError
 from seqpipe.manifest import MANIFEST_NAME, MAX_MANIFEST_BYTES, check_relative, parse_manifest
 from seqpipe.progress import bar
-from seqpipe.sources import _fs
 from seqpipe.staging import OPTIONAL_TOP
 from seqpipe.verify import Problem, check_local_file, listed_files
 
@@ -49,7 +49,7 @@ class RemoteDir:
 
     def inner(self, rel: str) -> str:
         """The filesystem's path of ``rel`` (relative to the dataset directory)."""
-        return _fs._prefix(self.root) + rel
+        return filesystem.dir_prefix(self.root) + rel
 
     def child(self, rel: str) -> str:
         """The URI of ``rel``."""
@@ -57,7 +57,7 @@ class RemoteDir:
 
     def relative(self, inner: str) -> str | None:
         """``inner`` relative to the dataset directory, or None when it lies elsewhere."""
-        prefix = _fs._prefix(self.root)
+        prefix = filesystem.dir_prefix(self.root)
         return inner[len(prefix) :] if inner.startswith(prefix) else None
 
 
@@ -74,13 +74,13 @@ class PublishStats:
 def open_remote(uri: str, *, key: str = "out") -> RemoteDir:
     """The dataset directory ``uri`` names; RecipeError (naming ``key``) when pyarrow cannot use it."""
     try:
-        parsed = _fs.parse_uri(uri)
-        mount = _fs._mount(parsed, uri)
+        parsed = filesystem.parse_uri(uri)
+        mount = filesystem.mount(parsed, uri)
     except RecipeError as exc:
         raise RecipeError(key, exc.reason) from exc
     path = parsed.path.strip("/")
     shown = parsed.child(path) if path else parsed.base
-    return RemoteDir(shown, mount.filesystem, _fs._root_of(mount.inner(path)))
+    return RemoteDir(shown, mount.filesystem, filesystem.root_of(mount.inner(path)))
 
 
 def default_work_dir(remote: RemoteDir, cache_dir: str | Path | None = None) -> Path:
@@ -120,12 +120,14 @@ def _info(remote: RemoteDir, rel: str) -> pafs.FileInfo:
 
 
 def _is_file(info: pafs.FileInfo) -> bool:
-    return bool(info.type == _fs._pafs().FileType.File)
+    return bool(info.type == filesystem.pyarrow_fs().FileType.File)
 
 
 def _files_under(remote: RemoteDir, rel: str) -> list[str]:
     """Every file below ``rel`` (recursively), relative to the dataset directory, sorted."""
-    selector = _fs._pafs().FileSelector(remote.inner(rel) if rel else remote.root, recursive=True, allow_not_found=True)
+    selector = filesystem.pyarrow_fs().FileSelector(
+        remote.inner(rel) if rel else remote.root, recursive=True, allow_not_found=True
+    )
     try:
         infos = remote.filesystem.get_file_info(selector)
     except (OSError, pa.ArrowException) as exc:

@@ -151,7 +151,7 @@ def verify(
     ``directory`` may be a filesystem URI (see :mod:`seqpipe.remote`): its files are streamed
     and hashed, and files it holds are listed recursively.
     """
-    from seqpipe.sources._fs import is_uri
+    from seqpipe.filesystem import is_uri
 
     read: Callable[[], tuple[bytes, dict[str, Any]]]
     check: Callable[[dict[str, Any]], tuple[int, Problem | None]]

@@ -15,14 +15,13 @@ import pyarrow.fs as pafs
 import pytest
 from conftest import recipe_text, write_project
 
-from seqpipe import remote
+from seqpipe import filesystem, remote
 from seqpipe.build import BuildResult, build
 from seqpipe.cli import main
 from seqpipe.dataset import open_dataset
 from seqpipe.errors import DatasetError, RecipeError, SeqpipeError, UnsafePathError
 from seqpipe.manifest import MANIFEST_NAME, check_relative, dumps, parse_manifest, seal
 from seqpipe.recipe import parse_recipe
-from seqpipe.sources import _fs
 from seqpipe.verify import listed_files, verify
 
 # pyarrow's in-memory filesystem for its own tests (pyarrow._fs._MockFileSystem in the installed pyarrow)
@@ -47,9 +46,9 @@ def root(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
 def mem() -> Iterator[pafs.FileSystem]:
     """A fresh in-memory filesystem behind ``MEM`` for one test."""
     fs = MockFileSystem()
-    _fs.register_filesystem(MEM, fs)
+    filesystem.register_filesystem(MEM, fs)
     yield fs
-    _fs.clear_filesystems()
+    filesystem.clear_filesystems()
 
 
 def run(root: Path, out: str | Path, tokens: int = 250, **kwargs: Any) -> BuildResult:

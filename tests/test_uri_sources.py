@@ -23,12 +23,13 @@ import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 import pytest
 
+from seqpipe import filesystem
 from seqpipe._hashing import hash_file
 from seqpipe.build import BuildResult, build
 from seqpipe.errors import RecipeError, SourceError, SourceMissingError
 from seqpipe.executors import InlineExecutor
 from seqpipe.recipe import parse_recipe
-from seqpipe.sources import TextSource, _fs
+from seqpipe.sources import TextSource
 
 # pyarrow ships an in-memory filesystem for its own tests as pyarrow._fs._MockFileSystem (found in
 # the installed pyarrow; its docstring reads "_MockFileSystem(datetime current_time=None)").
@@ -168,11 +169,11 @@ def memfs(corpus: Path) -> Iterator[Any]:
             # (FileSystem.open_output_stream, from the installed pyarrow's docstrings)
             with mem.open_output_stream(inner, compression=None) as sink:
                 sink.write(path.read_bytes())
-    _fs.register_filesystem(MEM, mem, root="bucket")
+    filesystem.register_filesystem(MEM, mem, root="bucket")
     try:
         yield mem
     finally:
-        _fs.clear_filesystems()
+        filesystem.clear_filesystems()
 
 
 # -- (a) file:// URIs, in this process -------------------------------------------------------------
@@ -224,7 +225,7 @@ def _count_uri_hashes(monkeypatch: pytest.MonkeyPatch) -> list[str]:
     seen: list[str] = []
 
     def counting(path: Any, *args: Any, **kwargs: Any) -> str:
-        if _fs.is_uri(path):
+        if filesystem.is_uri(path):
             seen.append(str(path))
         return hash_file(path, *args, **kwargs)
 
@@ -296,9 +297,9 @@ class _Wrapped(pafs.FileSystemHandler):
 def test_a_filesystem_without_mtime_is_hashed_every_build(
     corpus: Path, memfs: Any, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, local_builds: dict[str, BuildResult]
 ) -> None:
-    _fs.register_filesystem("nomtime://bucket", pafs.PyFileSystem(_Wrapped(memfs)), root="bucket")
-    assert _fs.change_stamp("nomtime://bucket/data/text/a.txt") is None
-    assert _fs.change_stamp(f"{MEM}/data/text/a.txt") is not None
+    filesystem.register_filesystem("nomtime://bucket", pafs.PyFileSystem(_Wrapped(memfs)), root="bucket")
+    assert filesystem.change_stamp("nomtime://bucket/data/text/a.txt") is None
+    assert filesystem.change_stamp(f"{MEM}/data/text/a.txt") is not None
     hashed = _count_uri_hashes(monkeypatch)
     for _ in range(2):
         hashed.clear()
@@ -389,7 +390,7 @@ def test_uri_glob_matching_nothing(corpus: Path, tmp_path: Path) -> None:
 
 @needs_mock
 def test_unreachable_filesystem_is_a_source_error(memfs: Any, corpus: Path, tmp_path: Path) -> None:
-    _fs.register_filesystem("down://bucket", pafs.PyFileSystem(_Wrapped(memfs, broken=True)), root="bucket")
+    filesystem.register_filesystem("down://bucket", pafs.PyFileSystem(_Wrapped(memfs, broken=True)), root="bucket")
     with pytest.raises(SourceError, match=re.escape("down://bucket/data/text/*.txt")) as caught:
         build_glob(corpus, "text", "down://bucket/data/text/*.txt", tmp_path / "out")
     assert "connection refused (simulated)" in str(caught.value)
@@ -440,5 +441,5 @@ def test_readme_uri_snippet_parses() -> None:
     (snippet,) = [b for b in re.findall(r"```toml\n(.*?)```", readme, flags=re.S) if "s3://" in b]
     recipe = parse_recipe("[[sources]]\n" + snippet + '\n[tokenizer]\nkind = "words"\n')
     (source,) = recipe.sources
-    assert all(_fs.is_uri(p) and p.startswith("s3://") for p in source.paths)
+    assert all(filesystem.is_uri(p) and p.startswith("s3://") for p in source.paths)
     assert "not read directly yet" not in readme

@@ -18,7 +18,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe.errors import RecordError, SourceError, SourceMissingError
-from seqpipe.sources._fs import FILE_GONE, SourcePath
+from seqpipe.filesystem import FILE_GONE, SourcePath
 from seqpipe.sources.base import DocumentFinisher, Part, RecordSource
 
 T = TypeVar("T")

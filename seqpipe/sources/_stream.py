@@ -1,6 +1,6 @@
 """Byte streams for the line-oriented kinds (text, JSON Lines): opening, decompression, blocks.
 
-Files are opened through :mod:`seqpipe.sources._fs` (a local path or a filesystem URI).
+Files are opened through :mod:`seqpipe.filesystem` (a local path or a filesystem URI).
 Decompression is pyarrow's (``compression=...`` on the input stream); a truncated
 or corrupt compressed file surfaces as an ``OSError`` from pyarrow, which we turn
 into a :class:`SourceError` naming the file.
@@ -15,7 +15,7 @@ from typing import Final
 import pyarrow as pa
 
 from seqpipe.errors import SourceError, SourceMissingError
-from seqpipe.sources._fs import FILE_GONE, SourcePath, open_input_stream, suffix
+from seqpipe.filesystem import FILE_GONE, SourcePath, open_input_stream, suffix
 
 COMPRESSIONS: Final = ("auto", "none", "gzip", "bz2", "zstd")
 _SUFFIXES: Final = {".gz": "gzip", ".bz2": "bz2", ".zst": "zstd"}

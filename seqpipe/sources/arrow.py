@@ -15,6 +15,7 @@ from typing import ClassVar
 import pyarrow as pa
 
 from seqpipe._parse import parse_int
+from seqpipe.filesystem import SourcePath, open_input_file
 from seqpipe.sources._columnar import (
     byte_slices,
     finish_column,
@@ -23,7 +24,6 @@ from seqpipe.sources._columnar import (
     open_or_fail,
     text_column,
 )
-from seqpipe.sources._fs import SourcePath, open_input_file
 from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, RecordSource
 
 

@@ -35,7 +35,7 @@ import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str, parse_str_tuple, to_plain
 from seqpipe.errors import InvalidUtf8Error, RecipeError, SourceError, SourceMissingError
-from seqpipe.sources._fs import SourcePath, glob_uri, is_uri
+from seqpipe.filesystem import SourcePath, glob_uri, is_uri
 
 DEFAULT_MAX_DOCUMENT_BYTES: Final = 64 << 20
 DEFAULT_BATCH_BYTES: Final = 1 << 20
@@ -103,7 +103,7 @@ class Source(ABC):
     ``paths`` (required) is one glob or a list of globs relative to the recipe's
     directory (``**`` matches any number of directories), or filesystem URIs that
     ``pyarrow.fs`` understands (``s3://bucket/corpus/**/*.jsonl``, ``file:///data/*.txt``;
-    see :mod:`seqpipe.sources._fs`); it is stored as a tuple.
+    see :mod:`seqpipe.filesystem`); it is stored as a tuple.
     """
 
     kind: ClassVar[str]

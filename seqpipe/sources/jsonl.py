@@ -26,7 +26,7 @@ import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str
 from seqpipe.errors import RecordError
-from seqpipe.sources._fs import SourcePath, file_size
+from seqpipe.filesystem import SourcePath, file_size
 from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, plan_cuts, read_blocks
 from seqpipe.sources.base import (
     DEFAULT_BATCH_BYTES,

@@ -15,8 +15,8 @@ from typing import TYPE_CHECKING, ClassVar
 import pyarrow as pa
 
 from seqpipe._parse import parse_int
+from seqpipe.filesystem import SourcePath, open_input_file
 from seqpipe.sources._columnar import finish_column, group_parts, guarded, open_or_fail, text_column
-from seqpipe.sources._fs import SourcePath, open_input_file
 from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, RecordSource
 
 if TYPE_CHECKING:

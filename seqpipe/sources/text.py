@@ -28,8 +28,8 @@ from typing import ClassVar, Final
 import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str
+from seqpipe.filesystem import SourcePath, file_size
 from seqpipe.sources._fast_text import fast_documents, last_paragraph_cut
-from seqpipe.sources._fs import SourcePath, file_size
 from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, plan_cuts, read_blocks
 from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, Source, to_array
 

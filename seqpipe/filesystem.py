@@ -65,7 +65,7 @@ class Uri:
 
 
 @dataclass(frozen=True, slots=True)
-class _Mount:
+class Mount:
     """A filesystem and the path inside it that ``scheme://authority/`` stands for."""
 
     filesystem: pafs.FileSystem
@@ -73,10 +73,10 @@ class _Mount:
 
     def inner(self, path: str) -> str:
         """The filesystem's own path for ``path`` (relative to the authority)."""
-        return _prefix(self.root) + path
+        return dir_prefix(self.root) + path
 
 
-def _pafs() -> Any:
+def pyarrow_fs() -> Any:
     """``pyarrow.fs``, imported on first use: local builds never need it (it pulls in TLS and
     the S3 module, about 26 ms of every worker's start)."""
     import pyarrow.fs
@@ -85,7 +85,7 @@ def _pafs() -> Any:
 
 
 _LOCK: Final = threading.Lock()
-_MOUNTS: dict[tuple[str, str], _Mount] = {}
+_MOUNTS: dict[tuple[str, str], Mount] = {}
 
 
 def is_uri(path: object) -> bool:
@@ -106,12 +106,12 @@ def _key(uri: Uri) -> tuple[str, str]:
     return uri.scheme.lower(), uri.authority
 
 
-def _prefix(directory: str) -> str:
+def dir_prefix(directory: str) -> str:
     """``directory`` as the prefix of its children's paths ('' stays '', '/' stays '/')."""
     return directory if not directory or directory.endswith("/") else directory + "/"
 
 
-def _root_of(path: str) -> str:
+def root_of(path: str) -> str:
     stripped = path.rstrip("/")
     return stripped if stripped or not path else "/"
 
@@ -125,7 +125,7 @@ def register_filesystem(base: str, filesystem: pafs.FileSystem, root: str = "") 
     """
     uri = parse_uri(base + "/")
     with _LOCK:
-        _MOUNTS[_key(uri)] = _Mount(filesystem, _root_of(root))
+        _MOUNTS[_key(uri)] = Mount(filesystem, root_of(root))
 
 
 def clear_filesystems() -> None:
@@ -134,7 +134,7 @@ def clear_filesystems() -> None:
         _MOUNTS.clear()
 
 
-def _mount(uri: Uri, shown: str) -> _Mount:
+def mount(uri: Uri, shown: str) -> Mount:
     """The filesystem for ``uri``'s scheme and authority, made on first use in this process."""
     key = _key(uri)
     with _LOCK:
@@ -142,21 +142,21 @@ def _mount(uri: Uri, shown: str) -> _Mount:
         if found is not None:
             return found
         try:
-            filesystem, root = _pafs().FileSystem.from_uri(uri.base + "/")
+            filesystem, root = pyarrow_fs().FileSystem.from_uri(uri.base + "/")
         except (ValueError, NotImplementedError, pa.ArrowNotImplementedError) as exc:
             # ArrowInvalid (a ValueError): a scheme pyarrow does not know, or a URI it refuses
             raise RecipeError("paths", f"{shown!r}: pyarrow.fs cannot use this URI ({exc})") from exc
         except (OSError, pa.ArrowException) as exc:
             raise SourceError(shown, f"cannot reach the filesystem {uri.base!r}: {exc}") from exc
-        found = _MOUNTS[key] = _Mount(filesystem, _root_of(root))
+        found = _MOUNTS[key] = Mount(filesystem, root_of(root))
         return found
 
 
 def _locate(path: str) -> tuple[pafs.FileSystem, str]:
     """The filesystem holding URI ``path`` and the path inside it."""
     uri = parse_uri(path)
-    mount = _mount(uri, path)
-    return mount.filesystem, mount.inner(uri.path)
+    found = mount(uri, path)
+    return found.filesystem, found.inner(uri.path)
 
 
 # -- globs -------------------------------------------------------------------------------------
@@ -199,24 +199,24 @@ def glob_uri(pattern: str) -> list[str]:
     listed files are matched against the rest of the pattern here.
     """
     uri = parse_uri(pattern)
-    mount = _mount(uri, pattern)
+    found = mount(uri, pattern)
     segments = [s for s in uri.path.split("/") if s]
     fixed = next((i for i, s in enumerate(segments) if _MAGIC.search(s)), len(segments))
     base, rest = segments[:fixed], segments[fixed:]
     if uri.path.endswith("/"):
         hits = []  # a pattern ending in a slash names directories, never a file
     elif not rest:
-        info = _info(mount.filesystem, mount.inner("/".join(base)), pattern)
-        hits = [uri.child("/".join(base))] if base and info.type == _pafs().FileType.File else []
+        info = _info(found.filesystem, found.inner("/".join(base)), pattern)
+        hits = [uri.child("/".join(base))] if base and info.type == pyarrow_fs().FileType.File else []
     else:
-        directory = mount.inner("/".join(base))
+        directory = found.inner("/".join(base))
         deep = len(rest) > 1 or "**" in rest
-        selector = _pafs().FileSelector(directory, recursive=deep, allow_not_found=True)
-        infos = _info(mount.filesystem, selector, pattern)
-        prefix = _prefix(directory)
+        selector = pyarrow_fs().FileSelector(directory, recursive=deep, allow_not_found=True)
+        infos = _info(found.filesystem, selector, pattern)
+        prefix = dir_prefix(directory)
         hits = []
         for info in infos:
-            if info.type != _pafs().FileType.File or not info.path.startswith(prefix):
+            if info.type != pyarrow_fs().FileType.File or not info.path.startswith(prefix):
                 continue
             names = info.path[len(prefix) :].split("/")
             if _match(rest, names):
@@ -268,9 +268,9 @@ def open_raw_stream(path: SourcePath) -> pa.NativeFile:
 def _file_info(path: str) -> pafs.FileInfo:
     filesystem, inner = _locate(path)
     info: pafs.FileInfo = _info(filesystem, inner, path)
-    if info.type == _pafs().FileType.NotFound:
+    if info.type == pyarrow_fs().FileType.NotFound:
         raise SourceMissingError(path, FILE_GONE)
-    if info.type != _pafs().FileType.File:
+    if info.type != pyarrow_fs().FileType.File:
         raise SourceError(path, f"not a file ({info.type.name.lower()})")
     return info
 
