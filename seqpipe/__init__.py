@@ -18,13 +18,13 @@ import typing as _typing
 __version__ = "0.1.0"  # build.py records it in manifests
 
 if _typing.TYPE_CHECKING:
+    from seqpipe._verify import VerifyReport, verify
     from seqpipe.build import BuildResult, build
     from seqpipe.dataset import Dataset, Split, load_tokenizer, open_dataset
     from seqpipe.errors import SeqpipeError
     from seqpipe.recipe import Recipe, load_recipe, parse_recipe
     from seqpipe.report import corpus_report, write_report
     from seqpipe.stream import TokenStream
-    from seqpipe.verify import VerifyReport, verify
     from seqpipe.windows import Batch, BatchStream, StreamState, stream_fingerprint
 
 # Each public name is imported from its module on first use, so `import seqpipe` costs almost
@@ -44,8 +44,8 @@ _HOME = {
     "corpus_report": "report",
     "write_report": "report",
     "TokenStream": "stream",
-    "VerifyReport": "verify",
-    "verify": "verify",
+    "VerifyReport": "_verify",
+    "verify": "_verify",
     "Batch": "windows",
     "BatchStream": "windows",
     "StreamState": "windows",
@@ -53,7 +53,7 @@ _HOME = {
 }
 # Functions named like the module they live in: importing the submodule makes Python bind the
 # module to the package attribute of the same name, which must stay the function.
-_SHADOWED = frozenset({"build", "verify"})
+_SHADOWED = frozenset({"build"})
 
 
 class _Package(_types.ModuleType):

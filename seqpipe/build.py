@@ -11,7 +11,7 @@ Phases (each a batch of executor tasks, see seqpipe/ingest.py)::
     shard    fixed-size shards per split                 -> stage/shards/<split>/*.arrow
              and, in the driver meanwhile, docs tables   -> stage/docs/<split>.arrow
     publish  manifest, atomic rename into the output directory
-    upload   only when the output is a URI: the local dataset copied up (seqpipe/remote.py)
+    upload   only when the output is a URI: the local dataset copied up (seqpipe/transfer.py)
 
 Document order and every tie come from the inputs (recipe order, sorted paths, byte order),
 never from task completion order, so 1 worker, N workers or a cluster give identical bytes.
@@ -287,8 +287,8 @@ def build(
     ``force`` ignores it. ``part_bytes``: the size inputs are cut to, on document boundaries.
 
     ``out`` may be a filesystem URI (a ``str`` such as ``s3://bucket/prefix``): the build then
-    runs in the local ``work_dir`` (default: see :func:`seqpipe.remote.default_work_dir`) and
-    is uploaded to ``out`` at the end (see :mod:`seqpipe.remote`); ``directory`` of the result
+    runs in the local ``work_dir`` (default: see :func:`seqpipe.transfer.default_work_dir`) and
+    is uploaded to ``out`` at the end (see :mod:`seqpipe.transfer`); ``directory`` of the result
     is the URI.
     """
     from seqpipe.filesystem import is_uri
@@ -298,7 +298,7 @@ def build(
         raise RecipeError("workers", f"expected a positive integer, got {workers!r}")
     remote = None
     if is_uri(out):
-        from seqpipe.remote import default_work_dir, open_remote
+        from seqpipe.transfer import default_work_dir, open_remote
 
         remote = open_remote(str(out))
         local = Path(work_dir) if work_dir is not None else default_work_dir(remote, cache_dir)
@@ -322,7 +322,7 @@ def build(
             result = _build(recipe, local, ex, cache, show, part_bytes, t0)
         if remote is None:
             return result
-        from seqpipe.remote import publish_remote
+        from seqpipe.transfer import publish_remote
 
         stats = publish_remote(local, remote, result.manifest, show=show)
     extra = {
@@ -333,7 +333,7 @@ def build(
         "already_there": stats.reused,
         "deleted": stats.deleted,
     }
-    return dataclasses.replace(result, directory=remote.uri, seconds=time.perf_counter() - t0, extra=extra)
+    return dataclasses.replace(result, directory=remote.location, seconds=time.perf_counter() - t0, extra=extra)
 
 
 def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, part_bytes: int, t0: float) -> BuildResult:

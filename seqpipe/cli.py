@@ -81,7 +81,7 @@ def cmd_build(args: argparse.Namespace) -> int:
 
 
 def cmd_verify(args: argparse.Namespace) -> int:
-    from seqpipe.verify import verify
+    from seqpipe._verify import verify
 
     report = verify(args.directory, against=args.against, expect=args.expect)
     if args.json:
@@ -121,10 +121,10 @@ def cmd_inspect(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
+    from seqpipe._verify import verify
     from seqpipe.build import build
     from seqpipe.demo import demo_recipe_text, write_demo_corpus
     from seqpipe.recipe import parse_recipe
-    from seqpipe.verify import verify
 
     root = Path(args.directory)
     corpus = root / "corpus"

@@ -132,7 +132,7 @@ def open_dataset(directory: str | Path, *, verify_on_open: bool = False, copy_di
     """Open a built dataset. With ``verify_on_open`` every file is hashed first and any
     problem raises :class:`IntegrityError` before a single batch is read.
 
-    ``directory`` may be a filesystem URI (a published dataset, see :mod:`seqpipe.remote`):
+    ``directory`` may be a filesystem URI (a published dataset, see :mod:`seqpipe.transfer`):
     it is then copied to the local ``copy_dir`` (default: ``~/.cache/seqpipe/copies/KEY``),
     each file checked against the manifest's hash as it arrives and only missing or changed
     files fetched, and the copy is opened (memory-mapped like any local dataset).
@@ -140,7 +140,7 @@ def open_dataset(directory: str | Path, *, verify_on_open: bool = False, copy_di
     from seqpipe.filesystem import is_uri
 
     if is_uri(directory):
-        from seqpipe import remote
+        from seqpipe import transfer as remote
 
         where = remote.open_remote(str(directory), key="directory")
         directory = Path(copy_dir) if copy_dir is not None else remote.default_copy_dir(where)
@@ -149,7 +149,7 @@ def open_dataset(directory: str | Path, *, verify_on_open: bool = False, copy_di
         raise DatasetError(f"{directory}: copy_dir is only used to open a dataset behind a filesystem URI")
     d = Path(directory)
     if verify_on_open:
-        from seqpipe.verify import verify
+        from seqpipe._verify import verify
 
         report = verify(d)
         if report.problems:

@@ -30,8 +30,8 @@ def test_import_is_lazy_and_build_verify_stay_functions() -> None:
     code = (
         "import sys, seqpipe\n"
         "heavy = sorted(m for m in ('numpy', 'pyarrow') if m in sys.modules)\n"
-        "import seqpipe.build, seqpipe.verify\n"
-        "from seqpipe.verify import VerifyReport\n"
+        "import seqpipe.build, seqpipe._verify\n"
+        "from seqpipe._verify import VerifyReport\n"
         "first = [callable(seqpipe.build), callable(seqpipe.verify), seqpipe.build.__module__]\n"
         "from seqpipe import build, verify, open_dataset, write_report\n"
         "print(heavy, first, build is seqpipe.build, verify.__name__, open_dataset.__module__)\n"

@@ -13,12 +13,12 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from seqpipe._verify import verify
 from seqpipe.build import build
 from seqpipe.cli import main
 from seqpipe.dataset import open_dataset
 from seqpipe.errors import EmptyCorpusError, InvalidUtf8Error, SourceMissingError
 from seqpipe.recipe import load_recipe, parse_recipe
-from seqpipe.verify import verify
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 KNOWN = sorted(p for p in (FIXTURES / "known").iterdir() if p.is_dir())

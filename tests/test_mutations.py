@@ -19,10 +19,10 @@ import pyarrow as pa
 import pytest
 from conftest import REPO, build_dir, full_tests, skip_unless_full, write_project
 
+from seqpipe._verify import listed_files, verify
 from seqpipe.dataset import Dataset, open_dataset
 from seqpipe.errors import DatasetError, ManifestError, SeqpipeError, ShardCorruptError, UnsafePathError
 from seqpipe.manifest import MANIFEST_NAME, dumps, seal
-from seqpipe.verify import listed_files, verify
 
 HOSTILE = REPO / "fixtures" / "manifests"
 CASES: dict[str, dict[str, Any]] = json.loads((HOSTILE / "cases.json").read_text())

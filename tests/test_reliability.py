@@ -20,12 +20,12 @@ from conftest import REPO, build_dir, full_tests, run_cli, skip_unless_full, wri
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from seqpipe._verify import verify
 from seqpipe.dataset import open_dataset
 from seqpipe.errors import RecipeError, SeqpipeError
 from seqpipe.manifest import MANIFEST_NAME
 from seqpipe.recipe import Recipe, parse_recipe
 from seqpipe.staging import PRIVATE
-from seqpipe.verify import verify
 
 # Big enough that an uninterrupted CLI build takes a second or two (the CLI has no part_bytes
 # option, so many files give many parts); shards small enough that there are dozens of them.

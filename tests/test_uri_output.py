@@ -15,14 +15,15 @@ import pyarrow.fs as pafs
 import pytest
 from conftest import recipe_text, write_project
 
-from seqpipe import filesystem, remote
+from seqpipe import filesystem
+from seqpipe import transfer as remote
+from seqpipe._verify import listed_files, verify
 from seqpipe.build import BuildResult, build
 from seqpipe.cli import main
 from seqpipe.dataset import open_dataset
 from seqpipe.errors import DatasetError, RecipeError, SeqpipeError, UnsafePathError
 from seqpipe.manifest import MANIFEST_NAME, check_relative, dumps, parse_manifest, seal
 from seqpipe.recipe import parse_recipe
-from seqpipe.verify import listed_files, verify
 
 # pyarrow's in-memory filesystem for its own tests (pyarrow._fs._MockFileSystem in the installed pyarrow)
 MockFileSystem = getattr(pytest.importorskip("pyarrow._fs"), "_MockFileSystem", None)

@@ -23,11 +23,11 @@ import xxhash
 from _corpus import write_corpus
 from common import Measure, best_time
 
+from seqpipe._verify import listed_files, verify
 from seqpipe.build import BuildResult, build
 from seqpipe.dataset import open_dataset
 from seqpipe.recipe import Recipe, parse_recipe
 from seqpipe.tokenizers.words import DEFAULT_PATTERN
-from seqpipe.verify import listed_files, verify
 
 MB = 1_000_000
 # Everything in train, so the naive pipeline's ids cover the same documents in the same order.
