@@ -36,7 +36,7 @@ def cmd_build(args: argparse.Namespace) -> int:
     workers = args.workers
     early = workers is not None and workers > 1 and not args.dask_scheduler
     with executor_for(None, workers) if early else nullcontext(None) as pool:
-        from seqpipe.build import build
+        from seqpipe import build
         from seqpipe.filesystem import is_uri
         from seqpipe.recipe import load_recipe
 
@@ -121,7 +121,7 @@ def cmd_inspect(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from seqpipe.build import build
+    from seqpipe import build
     from seqpipe.demo import demo_recipe_text, write_demo_corpus
     from seqpipe.recipe import parse_recipe
     from seqpipe.verify import verify

@@ -48,7 +48,7 @@ class Split:
         """Per document: start (offset in the split's stream), length, source, hash."""
         rel = self.info["docs"]["path"]
         table = read_table(safe_relative(self.dataset.directory, rel, key=f"splits.{self.name}.docs.path"))
-        from seqpipe.build import DOCS_SCHEMA
+        from seqpipe._build import DOCS_SCHEMA
 
         try:
             same = table.schema.remove_metadata().equals(DOCS_SCHEMA)

@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from seqpipe.build import build
+from seqpipe import build
 from seqpipe.cli import main
 from seqpipe.dataset import open_dataset
 from seqpipe.errors import EmptyCorpusError, InvalidUtf8Error, SourceMissingError

@@ -13,7 +13,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from seqpipe.build import BuildResult, build
+from seqpipe import BuildResult, build
 from seqpipe.manifest import MANIFEST_NAME
 from seqpipe.recipe import Recipe, parse_recipe
 from seqpipe.sources.text import TextSource
@@ -309,7 +309,7 @@ def test_count_merger_equals_a_counter_whatever_the_arrival_order(
 
     import pyarrow as pa
 
-    from seqpipe.build import _CountMerger
+    from seqpipe._build import _CountMerger
 
     tables = []
     for order, part in enumerate(parts):

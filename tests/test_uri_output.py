@@ -15,8 +15,7 @@ import pyarrow.fs as pafs
 import pytest
 from conftest import recipe_text, write_project
 
-from seqpipe import filesystem, remote
-from seqpipe.build import BuildResult, build
+from seqpipe import BuildResult, build, filesystem, remote
 from seqpipe.cli import main
 from seqpipe.dataset import open_dataset
 from seqpipe.errors import DatasetError, RecipeError, SeqpipeError, UnsafePathError
