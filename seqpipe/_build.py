@@ -37,6 +37,7 @@ from seqpipe import __version__
 from seqpipe._hashing import hash_file, hash_json
 from seqpipe.errors import EmptyCorpusError, RecipeError, SeqpipeError, SourceMissingError
 from seqpipe.executors import executor_for
+from seqpipe.formats import DOCS_SCHEMA, OPTIONAL_TOP
 from seqpipe.ingest import (
     CountTask,
     EncodeTask,
@@ -58,13 +59,10 @@ from seqpipe.manifest import FORMAT, MANIFEST_NAME, dumps, seal
 from seqpipe.progress import bar, enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype, read_table, write_batches
-from seqpipe.staging import OPTIONAL_TOP, build_lock, private_dir, publish
+from seqpipe.staging import build_lock, private_dir, publish
 from seqpipe.vocab import merge_counts
 
 PART_BYTES: Final = 16 << 20
-DOCS_SCHEMA: Final = pa.schema(
-    [("start", pa.int64()), ("length", pa.int64()), ("source", pa.int32()), ("hash", pa.binary(16))]
-)
 T = TypeVar("T")
 
 

@@ -28,9 +28,9 @@ import pyarrow as pa
 from seqpipe import filesystem
 from seqpipe._hashing import BLOCK, hash_bytes, hash_file
 from seqpipe.errors import DatasetError, ManifestError, RecipeError, SourceMissingError, UnsafePathError
+from seqpipe.formats import OPTIONAL_TOP
 from seqpipe.manifest import MANIFEST_NAME, MAX_MANIFEST_BYTES, check_relative, parse_manifest
 from seqpipe.progress import bar
-from seqpipe.staging import OPTIONAL_TOP
 from seqpipe.verify import Problem, check_local_file, listed_files
 
 if TYPE_CHECKING:

@@ -18,8 +18,8 @@ from typing import Any
 
 from seqpipe._hashing import hash_file
 from seqpipe.errors import DatasetError, ManifestError
+from seqpipe.formats import PRIVATE
 from seqpipe.manifest import MANIFEST_NAME, dumps, read_manifest, safe_relative, validate
-from seqpipe.staging import PRIVATE
 
 TOP_LEVEL_OK = {MANIFEST_NAME, PRIVATE}
 
