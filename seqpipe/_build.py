@@ -35,7 +35,8 @@ import pyarrow as pa
 
 from seqpipe import __version__
 from seqpipe._hashing import hash_file, hash_json
-from seqpipe.errors import EmptyCorpusError, RecipeError, SeqpipeError, SourceMissingError
+from seqpipe.counts import CountMerger, first_occurrence
+from seqpipe.errors import EmptyCorpusError, RecipeError, SourceMissingError
 from seqpipe.executors import executor_for
 from seqpipe.formats import DOCS_SCHEMA, OPTIONAL_TOP
 from seqpipe.ingest import (
@@ -197,73 +198,6 @@ def _run(
     return results
 
 
-class _CountMerger:
-    """Partial ``(key, count, first)`` tables merged with Arrow group-by as they arrive, 8 at a
-    time, so the driver holds at most 8 of them besides the running total. Sums and minima do
-    not depend on arrival order, and every key's ``first`` is unique, so the final sort by
-    ``first`` gives the same table whatever order the tasks finish in."""
-
-    def __init__(self, batch: int = 8) -> None:
-        self.batch = batch
-        self.pending: list[pa.Table] = []
-        self.acc: pa.Table | None = None
-        self.train_documents = 0
-        self.expected = 0  # tables announced by ``expect``
-        self.received = 0
-
-    def expect(self, n: int) -> None:
-        """``n`` more tables will arrive."""
-        self.expected += n
-
-    def add(self, counted: tuple[pa.Table, int]) -> None:
-        table, train_documents = counted
-        self.pending.append(table)
-        self.train_documents += train_documents
-        self.received += 1
-        # with one table still to come, fold now: the fold after the last table, which nothing
-        # runs beside, then merges that table alone into the total
-        if len(self.pending) >= self.batch or (self.received == self.expected - 1 and len(self.pending) > 1):
-            self._fold()
-
-    def _fold(self) -> None:
-        group = self.pending + ([self.acc] if self.acc is not None else [])
-        self.pending = []
-        # a copy into fresh (aligned) buffers: tables unpickled from cluster workers may sit at
-        # odd offsets, which Arrow's group-by warns about
-        cat = pa.concat_tables(group)
-        cat = pa.table(
-            {
-                name: pa.concat_arrays([*cat.column(name).chunks, pa.array([], cat.schema.field(name).type)])
-                for name in cat.column_names
-            }
-        )
-        self.acc = (
-            cat.group_by("key")
-            .aggregate([("count", "sum"), ("first", "min")])
-            .rename_columns(["key", "count", "first"])
-        )
-
-    def result(self) -> pa.Table:
-        """Corpus-wide ``(key, count)`` in first-occurrence order."""
-        if self.pending:
-            self._fold()
-        if self.acc is None:
-            raise SeqpipeError("nothing to count")
-        acc = self.acc.sort_by([("first", "ascending")])
-        return acc.select(["key", "count"]).cast(pa.schema([("key", pa.binary()), ("count", pa.int64())]))
-
-
-def _first_occurrence(keys: np.ndarray) -> np.ndarray:
-    """Bool per row: True where this 16-byte key occurs for the first time."""
-    if len(keys) == 0:
-        return np.zeros(0, dtype=bool)
-    rows = np.ascontiguousarray(keys).view("V16").reshape(-1)
-    _, first = np.unique(rows, return_index=True)
-    keep = np.zeros(len(keys), dtype=bool)
-    keep[first] = True
-    return keep
-
-
 def build(
     recipe: Recipe,
     out: str | Path,
@@ -380,7 +314,7 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     if not dedupe:
         # every document is kept, so a fresh part is counted by its ingest task, while in memory
         tasks = [dataclasses.replace(t, count_order=i) for i, t in enumerate(tasks)]
-    merger = _CountMerger()
+    merger = CountMerger()
     merger.expect(0 if dedupe else len(todo))
     counted = [False] * len(tasks)
 
@@ -419,7 +353,7 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
     if dedupe:
         # the one per-document array the driver holds: 16 bytes per document, only with dedupe
         keys = [fixed16(read_part_docs(str(cache), t.key), "dedupe") for t in tasks]
-        keep_all = _first_occurrence(np.concatenate(keys))
+        keep_all = first_occurrence(np.concatenate(keys))
         duplicates = int((~keep_all).sum())
         bounds = np.cumsum([0] + [len(k) for k in keys])
         keeps = [keep_all[bounds[i] : bounds[i + 1]] for i in range(len(tasks))]

@@ -37,6 +37,7 @@ from seqpipe._parse import to_plain
 from seqpipe.errors import SeqpipeError
 from seqpipe.recipe import Recipe
 from seqpipe.shards import fsync_dir, id_dtype, read_shard, read_table, write_shard, write_table
+from seqpipe.splits import assign_splits
 from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
 
@@ -305,9 +306,6 @@ def _piece_mask(pieces: np.ndarray, doc_mask: np.ndarray) -> np.ndarray:
     return np.repeat(doc_mask, pieces)
 
 
-# -- splits ----------------------------------------------------------------------------------------
-
-
 def fixed16(table: pa.Table, name: str) -> np.ndarray:
     """A fixed_size_binary(16) column as an (n, 16) uint8 view."""
     col = table.column(name).combine_chunks()
@@ -315,27 +313,6 @@ def fixed16(table: pa.Table, name: str) -> np.ndarray:
     if buf is None or len(col) == 0:
         return np.zeros((0, 16), np.uint8)
     return np.frombuffer(buf, dtype=np.uint8)[col.offset * 16 : (col.offset + len(col)) * 16].reshape(-1, 16)
-
-
-def split_of(hashes: np.ndarray, fractions: Sequence[float], seed: int) -> np.ndarray:
-    """Split index per document from a seeded mix of its content hash (splitmix64 finalizer)."""
-    x = hashes[:, :8].copy().view("<u8").reshape(-1).astype(np.uint64)
-    x ^= np.uint64((seed * 0x9E3779B97F4A7C15) & 0xFFFFFFFFFFFFFFFF)  # Python ints: no overflow
-    x ^= x >> np.uint64(30)
-    x *= np.uint64(0xBF58476D1CE4E5B9)
-    x ^= x >> np.uint64(27)
-    x *= np.uint64(0x94D049BB133111EB)
-    x ^= x >> np.uint64(31)
-    u = (x >> np.uint64(11)).astype(np.float64) / float(1 << 53)
-    edges = np.cumsum(fractions)[:-1]
-    return np.searchsorted(edges, u, side="right").astype(np.int8)
-
-
-def _splits(recipe: Recipe, hashes: np.ndarray, keep: np.ndarray | None) -> np.ndarray:
-    """Split index per document of a part (from its (n, 16) content hashes), -1 for a dropped
-    duplicate."""
-    sp = split_of(hashes, recipe.splits.fractions(), recipe.splits.seed)
-    return sp if keep is None else np.where(keep, sp, -1).astype(np.int8)
 
 
 # -- counting ----------------------------------------------------------------------------------------
@@ -373,7 +350,7 @@ def _count(
 ) -> tuple[pa.Table, int]:
     """count_part's result from a part's arrays (document hashes, pieces per document, distinct
     keys, one code per piece)."""
-    train = _splits(recipe, hashes, keep) == 0
+    train = assign_splits(recipe.splits, hashes, keep) == 0
     sel = codes[_piece_mask(pieces, train)] if len(codes) else codes
     counts = np.bincount(sel, minlength=len(keys)).astype(np.int64)
     present = np.flatnonzero(counts)
@@ -440,7 +417,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     keys = read_table(d / "keys.arrow").column("key").combine_chunks()
     codes = read_table(d / "codes.arrow").column("code").to_numpy()
     pieces = docs.column("pieces").to_numpy()
-    splits = _splits(recipe, fixed16(docs, "hash"), task.keep)
+    splits = assign_splits(recipe.splits, fixed16(docs, "hash"), task.keep)
     values, offsets = enc.piece_ids(keys)
     voc = enc.vocabulary
     begin = voc.id_of("begin") if recipe.encode.begin else None
@@ -483,7 +460,6 @@ def _add_markers(ids: np.ndarray, lengths: np.ndarray, begin: int | None, end: i
     extra = (begin is not None) + (end is not None)
     if not extra:
         return ids
-    n = len(lengths)
     new_len = lengths + extra
     out = np.empty(int(new_len.sum()), dtype=np.int64)
     starts = np.cumsum(new_len) - new_len
@@ -495,7 +471,6 @@ def _add_markers(ids: np.ndarray, lengths: np.ndarray, begin: int | None, end: i
         out[starts + new_len - 1] = end
         body[starts + new_len - 1] = False
     out[body] = ids
-    _ = n
     return out
 
 
