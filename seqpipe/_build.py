@@ -1,16 +1,20 @@
-"""Build a dataset from a recipe: the driver that plans tasks and assembles the result.
+"""Build a dataset from a recipe: the driver, a short chain of phases over explicit values.
 
-Phases (each a batch of executor tasks, see seqpipe/ingest.py)::
+Each phase is a function below that takes and returns small frozen values. The executor tasks
+the phases run are in seqpipe/ingest.py, how they run (order, progress) in seqpipe/_runner.py,
+and the shard phase's arithmetic (shard cuts, docs tables) in seqpipe/_layout.py::
 
-    plan     resolve globs, hash inputs (stat-cached), cut files into parts
-    ingest   read + clean + segment each part            -> cached parts (reused across builds)
-    assign   drop duplicates, assign splits (driver, numpy over document hashes)
-    count    piece counts over train documents per part  -> Arrow tables, merged by group-by
-    fit      vocabulary (+ learned merges)               -> stage/vocab.arrow, tokenizer.arrow
-    encode   ids per part and split                      -> stage/encoded/*
-    shard    fixed-size shards per split                 -> stage/shards/<split>/*.arrow
-             and, in the driver meanwhile, docs tables   -> stage/docs/<split>.arrow
-    publish  manifest, atomic rename into the output directory
+    plan     resolve globs, hash inputs (stat-cached), cut files into parts      -> Plan
+    ingest   read + clean + segment each part, task per part, cached parts reused -> Ingested
+    assign   which documents are kept: exact duplicates dropped (driver, dedupe) -> Kept
+             (splits are not assigned here: each task computes its documents' splits from
+             their content hashes, seqpipe/splits.py)
+    count    piece counts over train documents, task per part, merged by group-by -> count table
+    fit      vocabulary (+ learned merges)     -> stage/vocab.arrow, tokenizer.arrow -> Fitted
+    encode   ids per part and split, task per part -> stage/encoded/*            -> per-part totals
+    shard    fixed-size shards per split, task per shard -> stage/shards/<split>/*.arrow
+             and, in the driver meanwhile, docs tables -> stage/docs/<split>.arrow -> Sharded
+    publish  manifest, atomic rename into the output directory                   -> manifest
     upload   only when the output is a URI: the local dataset copied up (seqpipe/remote.py)
 
 Document order and every tie come from the inputs (recipe order, sorted paths, byte order),
@@ -24,32 +28,34 @@ import json
 import os
 import shutil
 import time
-from collections.abc import Callable, Iterator, Sequence
-from concurrent.futures import Executor, Future
+from collections.abc import Iterator, Sequence
+from concurrent.futures import Executor
+from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass, field
+from functools import partial
 from pathlib import Path
-from typing import Any, Final, TypeVar
+from typing import TYPE_CHECKING, Any, Final
 
 import numpy as np
 import pyarrow as pa
 
 from seqpipe import __version__
 from seqpipe._hashing import hash_file, hash_json
+from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
+from seqpipe._runner import View, run, run_beside
 from seqpipe.counts import CountMerger, first_occurrence
 from seqpipe.errors import EmptyCorpusError, RecipeError, SourceMissingError
-from seqpipe.executors import executor_for
-from seqpipe.formats import DOCS_SCHEMA, OPTIONAL_TOP
+from seqpipe.executors import TaskPool, task_pool
+from seqpipe.formats import DOCS_DIR, OPTIONAL_TOP, SHARDS_DIR, VOCAB_FILE
 from seqpipe.ingest import (
     CountTask,
     EncodeTask,
     IngestTask,
     PartMeta,
-    ShardTask,
     count_part,
     encode_part,
-    encoded_path,
+    encoded_dir,
     fixed16,
-    fragment_path,
     ingest_part,
     load_part_meta,
     part_key,
@@ -57,14 +63,15 @@ from seqpipe.ingest import (
     write_shard_task,
 )
 from seqpipe.manifest import FORMAT, MANIFEST_NAME, dumps, seal
-from seqpipe.progress import bar, enabled
+from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
-from seqpipe.shards import id_dtype, read_table, write_batches
+from seqpipe.shards import id_dtype
 from seqpipe.staging import build_lock, private_dir, publish
-from seqpipe.vocab import merge_counts
+
+if TYPE_CHECKING:
+    from seqpipe.remote import PublishStats, RemoteDir
 
 PART_BYTES: Final = 16 << 20
-T = TypeVar("T")
 
 
 @dataclass
@@ -120,6 +127,100 @@ class BuildResult:
         return lines
 
 
+def build(
+    recipe: Recipe,
+    out: str | Path,
+    *,
+    executor: Executor | TaskPool | None = None,
+    workers: int | None = None,
+    cache_dir: str | Path | None = None,
+    force: bool = False,
+    progress: bool | None = None,
+    part_bytes: int = PART_BYTES,
+    work_dir: str | Path | None = None,
+) -> BuildResult:
+    """Build ``recipe`` into directory ``out`` and return the result.
+
+    ``executor``: any concurrent.futures-style executor (e.g. a Dask client's
+    ``get_executor(pure=False)``), or a :class:`seqpipe.executors.TaskPool` from
+    ``executors.task_pool``; otherwise ``workers`` N > 1 processes (this one and N - 1
+    spawned), or (default, or 1) this process with its tasks on one thread per core.
+    ``cache_dir`` keeps ingested parts for later builds (default ``out/.seqpipe/cache``);
+    ``force`` ignores it. ``part_bytes``: the size inputs are cut to, on document boundaries.
+
+    ``out`` may be a filesystem URI (a ``str`` such as ``s3://bucket/prefix``): the build then
+    runs in the local ``work_dir`` (default: see :func:`seqpipe.remote.default_work_dir`) and
+    is uploaded to ``out`` at the end (see :mod:`seqpipe.remote`); ``directory`` of the result
+    is the URI.
+    """
+    t0 = time.perf_counter()
+    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
+        raise RecipeError("workers", f"expected a positive integer, got {workers!r}")
+    local, remote = _work_directory(out, work_dir, cache_dir)
+    local.mkdir(parents=True, exist_ok=True)
+    show = enabled(progress)
+    with build_lock(local):
+        cache = _open_cache(local, cache_dir, force)
+        with _task_pool(executor, workers) as pool:
+            result = _build(recipe, local, pool, cache, show, part_bytes, t0)
+        if remote is None:
+            return result
+        from seqpipe.remote import publish_remote
+
+        stats = publish_remote(local, remote, result.manifest, show=show)
+    return _uploaded(result, remote, stats, local, t0)
+
+
+def _work_directory(
+    out: str | Path, work_dir: str | Path | None, cache_dir: str | Path | None
+) -> tuple[Path, RemoteDir | None]:
+    """The local directory the build runs in, and the remote it is uploaded to (or None)."""
+    from seqpipe.filesystem import is_uri
+
+    if is_uri(out):
+        from seqpipe.remote import default_work_dir, open_remote
+
+        remote = open_remote(str(out))
+        return (Path(work_dir) if work_dir is not None else default_work_dir(remote, cache_dir)), remote
+    if work_dir is not None:
+        raise RecipeError(
+            "work_dir",
+            "only used when the output is a filesystem URI (a local output directory is its own work directory)",
+        )
+    return Path(out), None
+
+
+def _open_cache(local: Path, cache_dir: str | Path | None, force: bool) -> Path:
+    """The parts cache, emptied with ``force``, without torn parts of an interrupted build."""
+    cache = Path(cache_dir) if cache_dir is not None else private_dir(local) / "cache"
+    if force:
+        shutil.rmtree(cache / "parts", ignore_errors=True)
+    (cache / "parts").mkdir(parents=True, exist_ok=True)
+    for stale in (cache / "parts").glob(".*.tmp"):
+        shutil.rmtree(stale, ignore_errors=True)
+    return cache
+
+
+def _task_pool(executor: Executor | TaskPool | None, workers: int | None) -> AbstractContextManager[TaskPool]:
+    """A caller's task pool as it is (its owner shuts it down), else ``task_pool``'s."""
+    if isinstance(executor, TaskPool):
+        return nullcontext(executor)
+    return task_pool(executor, workers)
+
+
+def _uploaded(result: BuildResult, remote: RemoteDir, stats: PublishStats, local: Path, t0: float) -> BuildResult:
+    """The result of a build published to ``remote``: its URI, the upload's figures, the total time."""
+    extra = {
+        **result.extra,
+        "work_dir": str(local),
+        "uploaded": stats.uploaded,
+        "uploaded_bytes": stats.uploaded_bytes,
+        "already_there": stats.reused,
+        "deleted": stats.deleted,
+    }
+    return dataclasses.replace(result, directory=remote.uri, seconds=time.perf_counter() - t0, extra=extra)
+
+
 def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[str]:
     """XXH3-128 of each input, reusing a stored hash while its change stamp is unchanged:
     (size, mtime, inode) for a local file, (size, mtime) for a URI; a URI whose filesystem
@@ -152,125 +253,90 @@ def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[str]:
     return out
 
 
-def _run(
-    executor: Executor,
-    fn: Callable[[Any], T],
-    tasks: Sequence[Any],
-    desc: str,
-    show: bool,
-    unit: str = "part",
-    weights: Sequence[int] | None = None,
-    postfix: Callable[[list[Any]], dict[str, Any]] | None = None,
-    each: Callable[[int, T], Any] | None = None,
-    meanwhile: Callable[[], None] | None = None,
-) -> list[Any]:
-    """Submit every task, wait for all, return results in task order (never completion order).
-
-    ``each(i, result)`` sees every result as it arrives (in completion order) and returns what
-    is kept in its place, so large parts of results need not pile up; a result that is ready at submit
-    time (an inline executor) is taken at once. ``meanwhile()`` is this thread's own work, done
-    after every task is submitted and before waiting for them.
-    """
-    from concurrent.futures import as_completed
-
-    futures: dict[Future[T], int] = {}
-    results: list[Any] = [None] * len(tasks)
-    total = sum(weights) if weights is not None else len(tasks)
-    with bar(total, desc, unit=unit, show=show and bool(tasks), unit_scale=weights is not None) as pbar:
-
-        def take(fut: Future[T]) -> None:
-            i = futures.pop(fut)
-            value = fut.result()
-            results[i] = each(i, value) if each is not None else value
-            pbar.update(weights[i] if weights is not None else 1)
-            if postfix is not None:
-                pbar.set_postfix(postfix([r for r in results if r is not None]), refresh=False)
-
-        for i, t in enumerate(tasks):
-            fut = executor.submit(fn, t)
-            futures[fut] = i
-            if fut.done():
-                take(fut)
-        if meanwhile is not None:
-            meanwhile()
-        for fut in as_completed(list(futures)):
-            take(fut)
-    return results
+# -- the values phases pass on -------------------------------------------------------------------
 
 
-def build(
-    recipe: Recipe,
-    out: str | Path,
-    *,
-    executor: Executor | None = None,
-    workers: int | None = None,
-    cache_dir: str | Path | None = None,
-    force: bool = False,
-    progress: bool | None = None,
-    part_bytes: int = PART_BYTES,
-    work_dir: str | Path | None = None,
+@dataclass(frozen=True, slots=True)
+class Context:
+    """What every phase reads: the recipe, where tasks run, the parts cache, whether bars show."""
+
+    recipe: Recipe
+    pool: TaskPool
+    cache: Path
+    show: bool
+
+
+@dataclass(frozen=True, slots=True)
+class Plan:
+    """The inputs and one ingest task per part, in corpus order."""
+
+    inputs: tuple[dict[str, Any], ...]  # the manifest's entries: path, size, hash
+    tasks: tuple[IngestTask, ...]
+    weights: tuple[int, ...]  # approximate bytes per part, for the progress bar
+    input_bytes: int
+    build_key: str  # names this build's staging directory
+
+
+@dataclass(frozen=True, slots=True)
+class Ingested:
+    """Every part's metadata (in plan order), and which parts are still to be counted."""
+
+    parts: tuple[PartMeta, ...]
+    reused: int  # parts found in the cache
+    recount: tuple[int, ...]  # parts their ingest task did not count (reused ones; all with dedupe)
+
+
+@dataclass(frozen=True, slots=True)
+class Kept:
+    """Which documents stay: per part a bool per document (None: all), and how many were dropped."""
+
+    keeps: tuple[np.ndarray | None, ...]
+    duplicates: int
+
+
+@dataclass(frozen=True, slots=True)
+class Fitted:
+    """The vocabulary's size, the ids' dtype, and the tokenizer's files in the stage."""
+
+    vocab_size: int
+    dtype: str
+    files: tuple[str, ...]  # besides vocab.arrow
+
+
+@dataclass(frozen=True, slots=True)
+class Sharded:
+    """The manifest's ``splits`` and the summary's per-split figures."""
+
+    splits: dict[str, Any]
+    summary: dict[str, Any]
+
+
+# -- the phases ------------------------------------------------------------------------------------
+
+
+def _build(
+    recipe: Recipe, out: Path, pool: TaskPool, cache: Path, show: bool, part_bytes: int, t0: float
 ) -> BuildResult:
-    """Build ``recipe`` into directory ``out`` and return the result.
-
-    ``executor``: any concurrent.futures-style executor (e.g. a Dask client's
-    ``get_executor(pure=False)``); otherwise ``workers`` N > 1 processes (this one and N - 1
-    spawned), or (default, or 1) this process with its tasks on one thread per core.
-    ``cache_dir`` keeps ingested parts for later builds (default ``out/.seqpipe/cache``);
-    ``force`` ignores it. ``part_bytes``: the size inputs are cut to, on document boundaries.
-
-    ``out`` may be a filesystem URI (a ``str`` such as ``s3://bucket/prefix``): the build then
-    runs in the local ``work_dir`` (default: see :func:`seqpipe.remote.default_work_dir`) and
-    is uploaded to ``out`` at the end (see :mod:`seqpipe.remote`); ``directory`` of the result
-    is the URI.
-    """
-    from seqpipe.filesystem import is_uri
-
-    t0 = time.perf_counter()
-    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
-        raise RecipeError("workers", f"expected a positive integer, got {workers!r}")
-    remote = None
-    if is_uri(out):
-        from seqpipe.remote import default_work_dir, open_remote
-
-        remote = open_remote(str(out))
-        local = Path(work_dir) if work_dir is not None else default_work_dir(remote, cache_dir)
-    elif work_dir is not None:
-        raise RecipeError(
-            "work_dir",
-            "only used when the output is a filesystem URI (a local output directory is its own work directory)",
-        )
-    else:
-        local = Path(out)
-    local.mkdir(parents=True, exist_ok=True)
-    show = enabled(progress)
-    with build_lock(local):
-        cache = Path(cache_dir) if cache_dir is not None else private_dir(local) / "cache"
-        if force:
-            shutil.rmtree(cache / "parts", ignore_errors=True)
-        (cache / "parts").mkdir(parents=True, exist_ok=True)
-        for stale in (cache / "parts").glob(".*.tmp"):
-            shutil.rmtree(stale, ignore_errors=True)
-        with executor_for(executor, workers) as ex:
-            result = _build(recipe, local, ex, cache, show, part_bytes, t0)
-        if remote is None:
-            return result
-        from seqpipe.remote import publish_remote
-
-        stats = publish_remote(local, remote, result.manifest, show=show)
-    extra = {
-        **result.extra,
-        "work_dir": str(local),
-        "uploaded": stats.uploaded,
-        "uploaded_bytes": stats.uploaded_bytes,
-        "already_there": stats.reused,
-        "deleted": stats.deleted,
-    }
-    return dataclasses.replace(result, directory=remote.uri, seconds=time.perf_counter() - t0, extra=extra)
+    """The phases in order, each handing the next what it needs."""
+    ctx = Context(recipe, pool, cache, show)
+    plan = plan_build(recipe, cache, part_bytes)
+    stage = _fresh_stage(out, plan.build_key[:16])
+    merger = CountMerger()  # parts counted by their ingest task arrive first, the others in count
+    ingested = ingest(ctx, plan, merger)
+    kept = assign(ctx, plan)
+    counts = count(ctx, plan, ingested, kept, merger)
+    fitted = fit(recipe, counts, stage)
+    encoded = encode(ctx, plan, kept, fitted, stage)
+    sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage), stage)
+    manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage))
+    publish_dataset(out, stage, manifest, fitted)
+    return BuildResult(out, manifest, time.perf_counter() - t0, plan.input_bytes, len(plan.tasks), ingested.reused)
 
 
-def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, part_bytes: int, t0: float) -> BuildResult:
-    # -- plan -----------------------------------------------------------------------------------
-    from seqpipe.filesystem import file_size, identity, is_uri
+def _input_files(recipe: Recipe) -> list[tuple[int, Path | str]]:
+    """(source index, file) for each input, in recipe order then each source's sorted order; a
+    file two sources match is read once, by the first."""
+    from seqpipe.filesystem import identity
 
     files: list[tuple[int, Path | str]] = []  # a local Path, or a filesystem URI
     seen: set[Path | str] = set()
@@ -281,251 +347,191 @@ def _build(recipe: Recipe, out: Path, ex: Executor, cache: Path, show: bool, par
                 files.append((si, f))
     if not files:
         raise SourceMissingError(str(recipe.root), "the recipe's sources match no file")
+    return files
+
+
+def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
+    """Resolve the inputs, hash them, and cut each into parts of about ``part_bytes``."""
+    from seqpipe.filesystem import file_size, is_uri
+
+    files = _input_files(recipe)
     hashes = _input_hashes([f for _, f in files], cache)
     sizes = [file_size(f) for _, f in files]
     # a URI input is recorded as the URI; a local one relative to the recipe's directory
-    inputs = [
+    inputs = tuple(
         {"path": str(f) if is_uri(f) else os.path.relpath(f, recipe.root).replace(os.sep, "/"), "size": sz, "hash": h}
         for (_, f), sz, h in zip(files, sizes, hashes, strict=True)
-    ]
-    tasks: list[IngestTask] = []
-    weights: list[int] = []  # approximate bytes per part, for the progress bar
-    for ii, ((si, f), h) in enumerate(zip(files, hashes, strict=True)):
-        plan = recipe.sources[si].plan(f, part_bytes)
-        for part in plan:
-            key = part_key(recipe, si, h, part)
-            tasks.append(IngestTask(recipe, si, ii, str(f), part, key, str(cache)))
-            weights.append(sizes[ii] // max(len(plan), 1))
-    build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes})
-    stage = _fresh_stage(out, build_key[:16])
-
-    # -- ingest (cached) ------------------------------------------------------------------------
-    metas: list[PartMeta | None] = [load_part_meta(str(cache), t.key) for t in tasks]
-    todo = [i for i, m in enumerate(metas) if m is None]
-    in_process = getattr(ex, "seqpipe_threads", None)
-    if in_process and todo:
-        # tasks already run side by side on threads: nest threads only where tasks are fewer
-        inner = max(1, in_process // min(len(todo), in_process))
-        tasks = [dataclasses.replace(t, threads=inner) for t in tasks]
-    per_task = getattr(ex, "seqpipe_task_threads", None)
-    if per_task:  # this process runs tasks too: give its tasks the spawned workers' share
-        tasks = [dataclasses.replace(t, threads=per_task) for t in tasks]
-    dedupe = any(getattr(s, "is_dedupe", False) for s in recipe.clean)
-    if not dedupe:
-        # every document is kept, so a fresh part is counted by its ingest task, while in memory
-        tasks = [dataclasses.replace(t, count_order=i) for i, t in enumerate(tasks)]
-    merger = CountMerger()
-    merger.expect(0 if dedupe else len(todo))
-    counted = [False] * len(tasks)
-
-    def take_counts(j: int, m: PartMeta) -> PartMeta:  # merged on arrival: the driver keeps no pile
-        if m.counts is not None:
-            merger.add(m.counts)
-            counted[todo[j]] = True
-            m.counts = None
-        return m
-
-    fresh = _run(
-        ex,
-        ingest_part,
-        [tasks[i] for i in todo],
-        "reading",
-        show,
-        unit="B",
-        weights=[weights[i] for i in todo],
-        postfix=lambda done: {"documents": sum(m.documents for m in done)},
-        each=take_counts,
     )
-    for i, m in zip(todo, fresh, strict=True):
-        metas[i] = m
-    parts: list[PartMeta] = [m for m in metas if m is not None]
-    reused = len(tasks) - len(todo)
-    input_bytes = sum(sizes)
+    tasks: list[IngestTask] = []
+    weights: list[int] = []
+    for ii, ((si, f), h) in enumerate(zip(files, hashes, strict=True)):
+        parts = recipe.sources[si].plan(f, part_bytes)
+        for part in parts:
+            tasks.append(IngestTask(recipe, si, ii, str(f), part, part_key(recipe, si, h, part), str(cache)))
+            weights.append(sizes[ii] // max(len(parts), 1))
+    build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes})
+    return Plan(inputs, tuple(tasks), tuple(weights), sum(sizes), build_key)
 
-    # -- assign: duplicates (splits are computed in the tasks from each document's hash) -------
+
+def _has_dedupe(recipe: Recipe) -> bool:
+    return any(getattr(s, "is_dedupe", False) for s in recipe.clean)
+
+
+def _merge_arrived(merger: CountMerger, _: int, meta: PartMeta) -> tuple[PartMeta, bool]:
+    """Merge the counts an ingest task delivered as they arrive (the driver keeps no pile of
+    them); keep the part's metadata without them, and whether there were any."""
+    if meta.counts is None:
+        return meta, False
+    merger.add(meta.counts)
+    return dataclasses.replace(meta, counts=None), True
+
+
+def _documents(meta: PartMeta) -> int:
+    return meta.documents
+
+
+def ingest(ctx: Context, plan: Plan, merger: CountMerger) -> Ingested:
+    """Ingest every part not in the cache. Without a dedupe step every document is kept, so a
+    fresh part is counted by its own ingest task while its arrays are in memory (into
+    ``merger``); the rest are counted in the count phase."""
+    cache = str(ctx.cache)
+    metas = [load_part_meta(cache, t.key) for t in plan.tasks]
+    todo = [i for i, m in enumerate(metas) if m is None]
+    dedupe = _has_dedupe(ctx.recipe)
+    threads = ctx.pool.threads.for_ingest(len(todo))
+    tasks = [dataclasses.replace(plan.tasks[i], threads=threads, count_order=None if dedupe else i) for i in todo]
+    merger.expect(0 if dedupe else len(todo))
+    view = View("reading", unit="B", weights=[plan.weights[i] for i in todo], tally=("documents", _documents))
+    fresh = run(ctx.pool.executor, ctx.show, ingest_part, tasks, view, each=partial(_merge_arrived, merger))
+    counted: set[int] = set()
+    for i, (meta, was_counted) in zip(todo, fresh, strict=True):
+        metas[i] = meta
+        if was_counted:
+            counted.add(i)
+    parts = tuple(m for m in metas if m is not None)
     if sum(m.documents for m in parts) == 0:
         raise EmptyCorpusError(
             "no document is left after reading and cleaning: check the sources' "
             "globs and the clean steps (e.g. min_length)"
         )
-    keeps: list[np.ndarray | None] = [None] * len(tasks)
-    duplicates = 0
-    if dedupe:
-        # the one per-document array the driver holds: 16 bytes per document, only with dedupe
-        keys = [fixed16(read_part_docs(str(cache), t.key), "dedupe") for t in tasks]
-        keep_all = first_occurrence(np.concatenate(keys))
-        duplicates = int((~keep_all).sum())
-        bounds = np.cumsum([0] + [len(k) for k in keys])
-        keeps = [keep_all[bounds[i] : bounds[i + 1]] for i in range(len(tasks))]
-        del keys, keep_all
+    recount = tuple(i for i in range(len(plan.tasks)) if i not in counted)
+    return Ingested(parts, len(plan.tasks) - len(todo), recount)
 
-    # -- count + fit ----------------------------------------------------------------------------
-    recount = [i for i, done in enumerate(counted) if not done]  # reused parts (or dedupe)
-    count_tasks = [CountTask(str(cache), tasks[i].key, i, recipe, keeps[i]) for i in recount]
-    merger.expect(len(count_tasks))
-    _run(ex, count_part, count_tasks, "counting", show, each=lambda _, c: merger.add(c))
+
+def assign(ctx: Context, plan: Plan) -> Kept:
+    """Which documents stay: with a dedupe step, an exact duplicate keeps its first occurrence
+    in corpus order (splits are computed in the tasks, from each document's hash)."""
+    if not _has_dedupe(ctx.recipe):
+        return Kept((None,) * len(plan.tasks), 0)
+    # the one per-document array the driver holds: 16 bytes per document, only with dedupe
+    keys = [fixed16(read_part_docs(str(ctx.cache), t.key), "dedupe") for t in plan.tasks]
+    keep_all = first_occurrence(np.concatenate(keys))
+    bounds = np.cumsum([0] + [len(k) for k in keys])
+    keeps = tuple(keep_all[bounds[i] : bounds[i + 1]] for i in range(len(keys)))
+    return Kept(keeps, int((~keep_all).sum()))
+
+
+def _merge_counted(merger: CountMerger, _: int, counted: tuple[pa.Table, int]) -> None:
+    merger.add(counted)
+
+
+def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: CountMerger) -> pa.Table:
+    """Count the parts not counted at ingest into ``merger``; the corpus-wide ``(key, count)``
+    table in first-occurrence order."""
+    cache = str(ctx.cache)
+    tasks = [CountTask(cache, plan.tasks[i].key, i, ctx.recipe, kept.keeps[i]) for i in ingested.recount]
+    merger.expect(len(tasks))
+    run(ctx.pool.executor, ctx.show, count_part, tasks, View("counting"), each=partial(_merge_counted, merger))
     if merger.train_documents == 0:
         raise EmptyCorpusError("the train split is empty: add documents or raise splits.train")
-    merged = merger.result()
-    encoder = recipe.tokenizer.fit(merged, recipe.vocab)
+    return merger.result()
+
+
+def fit(recipe: Recipe, counts: pa.Table, stage: Path) -> Fitted:
+    """Fit the tokenizer's vocabulary (and learned state) on the counts; store both in the stage."""
+    encoder = recipe.tokenizer.fit(counts, recipe.vocab)
     vocab = encoder.vocabulary
-    dtype = id_dtype(len(vocab))
-    for stale in ("vocab.arrow", "tokenizer.arrow"):
+    for stale in (VOCAB_FILE, *OPTIONAL_TOP):
         (stage / stale).unlink(missing_ok=True)
-    vocab.save(stage / "vocab.arrow")
-    tok_files = encoder.save(stage)
+    vocab.save(stage / VOCAB_FILE)
+    files = tuple(encoder.save(stage))
+    return Fitted(len(vocab), id_dtype(len(vocab)).name, files)
 
-    # -- encode ---------------------------------------------------------------------------------
-    shutil.rmtree(stage / "encoded", ignore_errors=True)
-    enc_tasks = [
-        EncodeTask(str(cache), t.key, str(stage), recipe, i, t.input_index, keeps[i], dtype.name)
-        for i, t in enumerate(tasks)
+
+def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) -> tuple[dict[str, dict[str, int]], ...]:
+    """Encode every part's kept documents per split; per part, the totals per split it holds."""
+    shutil.rmtree(encoded_dir(str(stage)), ignore_errors=True)
+    tasks = [
+        EncodeTask(str(ctx.cache), t.key, str(stage), ctx.recipe, i, t.input_index, kept.keeps[i], fitted.dtype)
+        for i, t in enumerate(plan.tasks)
     ]
-    encoded = _run(ex, encode_part, enc_tasks, "encoding", show)
+    return tuple(run(ctx.pool.executor, ctx.show, encode_part, tasks, View("encoding")))
 
-    # -- shards + docs tables -------------------------------------------------------------------
-    splits_out: dict[str, Any] = {}
-    summary_splits: dict[str, Any] = {}
-    shard_tasks: list[ShardTask] = []
-    shard_slots: list[tuple[str, int]] = []
-    split_parts: dict[str, list[int]] = {}  # per split, the encoded parts that hold some of it
-    per_shard = recipe.shards.tokens
-    compression = None if recipe.shards.compression == "none" else recipe.shards.compression
-    for split in SPLIT_NAMES:
-        files_list = [(i, enc[split]["tokens"]) for i, enc in enumerate(encoded) if split in enc]
-        split_parts[split] = [i for i, _ in files_list]
-        totals = {
-            k: sum(enc[split][k] for enc in encoded if split in enc)
-            for k in ("tokens", "documents", "unknown", "bytes", "words")
-        }
-        n_tokens = totals["tokens"]
-        file_starts = np.cumsum([0] + [n for _, n in files_list])
-        shard_meta: list[dict[str, Any]] = []
-        for k, first in enumerate(range(0, n_tokens, per_shard)):
-            last = min(first + per_shard, n_tokens)
-            pieces = []
-            for (i, n), fs in zip(files_list, file_starts[:-1], strict=True):
-                a, b = max(first, int(fs)), min(last, int(fs) + n)
-                if a < b:
-                    pieces.append((str(encoded_path(str(stage), i, split)), a - int(fs), b - int(fs)))
-            rel = f"shards/{split}/{k:06d}.arrow"
-            shard_tasks.append(ShardTask(str(stage / rel), tuple(pieces), compression, dtype.name))
-            shard_slots.append((split, len(shard_meta)))
-            shard_meta.append({"path": rel, "tokens": last - first, "documents": 0, "first": first})
-        splits_out[split] = {"documents": totals["documents"], "tokens": n_tokens, "shards": shard_meta}
-        summary_splits[split] = {
-            "unknown": totals["unknown"],
-            "unknown_rate": totals["unknown"] / n_tokens if n_tokens else 0.0,
-            "bytes_per_token": totals["bytes"] / n_tokens if n_tokens else 0.0,
-            "tokens_per_word": n_tokens / totals["words"] if totals["words"] else 0.0,
-            "documents_assigned": totals["documents"],
-        }
 
-    def write_docs_tables() -> None:
-        """The docs tables, streamed fragment by fragment (while the shard tasks run); counts
-        the documents starting in each shard."""
-        for split in SPLIT_NAMES:
-            rel = f"docs/{split}.arrow"
-            shard_meta = splits_out[split]["shards"]
-            docs_in = np.zeros(len(shard_meta), np.int64)
-            size = write_batches(
-                stage / rel, DOCS_SCHEMA, _docs_batches(stage, split, split_parts[split], per_shard, docs_in)
-            )
-            for j, count in enumerate(docs_in):
-                shard_meta[j]["documents"] = int(count)
-            splits_out[split]["docs"] = {"path": rel, "bytes": size, "hash": hash_file(stage / rel)}
+def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path) -> Sharded:
+    """Write every shard (tasks) and, meanwhile in this thread, the docs tables."""
+    tasks = [task for layout in layouts for task in layout.shards]
+    view = View("writing shards", unit="shard")
+    results, docs = run_beside(
+        ctx.pool.executor, ctx.show, write_shard_task, tasks, view, partial(write_docs_tables, stage, layouts)
+    )
+    shutil.rmtree(encoded_dir(str(stage)), ignore_errors=True)
+    splits: dict[str, Any] = {}
+    at = 0
+    for layout, table in zip(layouts, docs, strict=True):
+        splits[layout.name] = split_entry(layout, table, results[at : at + len(layout.shards)])
+        at += len(layout.shards)
+    return Sharded(splits, {layout.name: split_summary(layout.totals) for layout in layouts})
 
-    results = _run(ex, write_shard_task, shard_tasks, "writing shards", show, unit="shard", meanwhile=write_docs_tables)
-    for (split, j), res in zip(shard_slots, results, strict=True):
-        splits_out[split]["shards"][j].update(
-            bytes=res["bytes"], file_hash=res["file_hash"], token_hash=res["token_hash"]
-        )
-    shutil.rmtree(stage / "encoded", ignore_errors=True)
 
-    # -- manifest + publish ---------------------------------------------------------------------
-    read_tot: dict[str, int] = {}
-    dropped_tot: dict[str, int] = {}
-    for m in parts:
-        for name, v in m.read.items():
-            read_tot[name] = read_tot.get(name, 0) + v
-        for name, v in m.dropped.items():
-            dropped_tot[name] = dropped_tot.get(name, 0) + v
-    body = {
+def _summed(tables: Iterator[dict[str, int]]) -> dict[str, int]:
+    total: dict[str, int] = {}
+    for table in tables:
+        for name, value in table.items():
+            total[name] = total.get(name, 0) + value
+    return total
+
+
+def _stage_file(stage: Path, rel: str) -> dict[str, Any]:
+    return {"path": rel, "bytes": (stage / rel).stat().st_size, "hash": hash_file(stage / rel)}
+
+
+def _manifest_body(
+    recipe: Recipe, plan: Plan, ingested: Ingested, kept: Kept, fitted: Fitted, sharded: Sharded, stage: Path
+) -> dict[str, Any]:
+    """The manifest before sealing: what was read, fitted and written, and the build's figures."""
+    return {
         "format": FORMAT,
         "seqpipe_version": __version__,
         "recipe": recipe.to_dict(),
         "recipe_fingerprint": recipe.fingerprint,
-        "inputs": inputs,
+        "inputs": list(plan.inputs),
         "tokenizer": {
             "kind": recipe.tokenizer.kind,
-            "vocab_size": len(vocab),
-            "files": [
-                {"path": f, "bytes": (stage / f).stat().st_size, "hash": hash_file(stage / f)} for f in tok_files
-            ],
+            "vocab_size": fitted.vocab_size,
+            "files": [_stage_file(stage, f) for f in fitted.files],
         },
-        "vocabulary": {
-            "path": "vocab.arrow",
-            "bytes": (stage / "vocab.arrow").stat().st_size,
-            "hash": hash_file(stage / "vocab.arrow"),
-            "size": len(vocab),
-        },
-        "dtype": dtype.name,
-        "splits": splits_out,
+        "vocabulary": {**_stage_file(stage, VOCAB_FILE), "size": fitted.vocab_size},
+        "dtype": fitted.dtype,
+        "splits": sharded.splits,
         "summary": {
-            "read": read_tot,
-            "dropped": dropped_tot,
-            "duplicates_dropped": duplicates,
-            "splits": summary_splits,
+            "read": _summed(m.read for m in ingested.parts),
+            "dropped": _summed(m.dropped for m in ingested.parts),
+            "duplicates_dropped": kept.duplicates,
+            "splits": sharded.summary,
         },
     }
-    manifest = seal(body)
+
+
+def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fitted) -> None:
+    """Write the manifest into the stage and move everything into ``out``, the manifest last."""
     (stage / MANIFEST_NAME).write_text(dumps(manifest))
-    entries = ["vocab.arrow", *tok_files, "docs", "shards"]
+    entries = [VOCAB_FILE, *fitted.files, DOCS_DIR, SHARDS_DIR]
     for gone in OPTIONAL_TOP:
         if gone not in entries and (out / gone).exists():
             (out / gone).unlink()
     publish(out, stage, entries, MANIFEST_NAME)
     shutil.rmtree(stage, ignore_errors=True)
-    return BuildResult(out, manifest, time.perf_counter() - t0, input_bytes, len(tasks), reused)
-
-
-DOCS_BATCH_ROWS: Final = 1 << 16
-
-
-def _docs_batches(
-    stage: Path, split: str, numbers: Sequence[int], per_shard: int, docs_in: np.ndarray
-) -> Iterator[pa.RecordBatch]:
-    """The split's documents with stream start offsets, re-cut into batches of DOCS_BATCH_ROWS
-    rows so the file's layout depends on its content only (not on how inputs were split into
-    parts); adds to ``docs_in`` the number of documents starting in each shard."""
-    start = 0
-    pending: list[pa.Table] = []
-    rows = 0
-    for i in numbers:
-        frag = read_table(fragment_path(str(stage), i, split))
-        lengths = frag.column("length").to_numpy()
-        starts = start + np.cumsum(lengths) - lengths
-        start += int(lengths.sum())
-        if len(starts):
-            np.add.at(docs_in, starts // per_shard, 1)
-        pending.append(
-            pa.table(
-                {
-                    "start": pa.array(starts, pa.int64()),
-                    "length": frag.column("length"),
-                    "source": frag.column("source"),
-                    "hash": frag.column("hash"),
-                },
-                schema=DOCS_SCHEMA,
-            )
-        )
-        rows += len(lengths)
-        while rows >= DOCS_BATCH_ROWS:
-            table = pa.concat_tables(pending).combine_chunks()
-            yield table.slice(0, DOCS_BATCH_ROWS).to_batches()[0]
-            pending, rows = [table.slice(DOCS_BATCH_ROWS)], rows - DOCS_BATCH_ROWS
-    if rows:
-        yield pa.concat_tables(pending).combine_chunks().to_batches()[0]
 
 
 def _fresh_stage(out: Path, name: str) -> Path:
@@ -543,4 +549,4 @@ def _fresh_stage(out: Path, name: str) -> Path:
     return stage
 
 
-__all__ = ["BuildResult", "build", "merge_counts"]
+__all__ = ["BuildResult", "build"]

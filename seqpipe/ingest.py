@@ -21,7 +21,7 @@ import os
 import shutil
 import uuid
 from collections import deque
-from collections.abc import Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -202,79 +202,108 @@ def _process_batch(recipe: Recipe, batch: pa.Array) -> _Batch:
     return _Batch(segments, columns, dropped)
 
 
+def _processed(recipe: Recipe, batches: Iterator[pa.Array], threads: int) -> Iterator[_Batch]:
+    """Each batch cleaned and segmented, in reading order.
+
+    Batches are cleaned and segmented on a few threads (Arrow and numpy release the GIL) while
+    this thread reads on. With one thread, batches are processed inline: a worker given one
+    core uses one core."""
+    if threads == 1:
+        for batch in batches:
+            yield _process_batch(recipe, batch)
+        return
+    with ThreadPoolExecutor(max_workers=threads) as pool:
+        pending: deque[Future[_Batch]] = deque()
+        for batch in batches:
+            pending.append(pool.submit(_process_batch, recipe, batch))
+            while len(pending) > threads:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
+
+
+@dataclass(frozen=True, slots=True)
+class _Gathered:
+    """A part's processed batches joined: one dictionary of pieces, per-document columns, drops."""
+
+    segments: Segments
+    columns: dict[str, np.ndarray]
+    dropped: dict[str, int]
+
+
+def _gather(done: Iterable[_Batch]) -> _Gathered:
+    dropped: dict[str, int] = {}
+    segs: list[Segments] = []
+    columns: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "bytes", "words")}
+    for batch in done:
+        for name, count in batch.dropped.items():
+            dropped[name] = dropped.get(name, 0) + count
+        if batch.segments is None:
+            continue
+        segs.append(batch.segments)
+        for name, values in batch.columns.items():
+            columns[name].append(values)
+    widths = {"hash": 16, "dedupe": 16}  # (n, 16) hashes; the others one value per document
+    joined = {name: _joined(parts, widths.get(name)) for name, parts in columns.items()}
+    return _Gathered(_merge_segments(segs), joined, dropped)
+
+
+def _joined(parts: list[np.ndarray], width: int | None) -> np.ndarray:
+    if parts:
+        return np.concatenate(parts)
+    return np.zeros((0, width), np.uint8) if width else np.zeros(0, np.int64)
+
+
+def _docs_table(recipe: Recipe, got: _Gathered) -> pa.Table:
+    """The part's docs.arrow: per document its hash, pieces, bytes, words (and dedupe hash)."""
+    n = len(got.segments.doc_lengths)
+    table: dict[str, Any] = {
+        "hash": pa.FixedSizeBinaryArray.from_buffers(HASH_TYPE, n, [None, pa.py_buffer(got.columns["hash"].tobytes())]),
+        "pieces": pa.array(got.segments.doc_lengths, pa.int64()),
+        "bytes": pa.array(got.columns["bytes"], pa.int64()),
+        "words": pa.array(got.columns["words"], pa.int64()),
+    }
+    if any(getattr(s, "is_dedupe", False) for s in recipe.clean):
+        table["dedupe"] = pa.FixedSizeBinaryArray.from_buffers(
+            HASH_TYPE, n, [None, pa.py_buffer(got.columns["dedupe"].tobytes())]
+        )
+    return pa.table(table)
+
+
 def ingest_part(task: IngestTask) -> PartMeta:
     """Read one part of one input file, clean it, segment it, and store it in the cache."""
     from seqpipe.sources.base import ReadStats
 
     recipe = task.recipe
-    source = recipe.sources[task.source_index]
     stats = ReadStats()
-    dropped: dict[str, int] = {}
-    segs: list[Segments] = []
-    doc_cols: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "bytes", "words")}
-
-    def collect(done: _Batch) -> None:
-        for name, count in done.dropped.items():
-            dropped[name] = dropped.get(name, 0) + count
-        if done.segments is None:
-            return
-        segs.append(done.segments)
-        for name, values in done.columns.items():
-            doc_cols[name].append(values)
-
-    # Batches are cleaned and segmented on a few threads (Arrow and numpy release the GIL)
-    # while this thread reads on; results are collected in reading order.
-    # With one thread, batches are processed inline: a worker given one core uses one core.
-    threads = task.threads or ingest_threads()
-    batches = source.read(task.path, task.part, stats, batch_bytes=task.batch_bytes)
-    if threads == 1:
-        for batch in batches:
-            collect(_process_batch(recipe, batch))
-    else:
-        with ThreadPoolExecutor(max_workers=threads) as pool:
-            pending: deque[Future[_Batch]] = deque()
-            for batch in batches:
-                pending.append(pool.submit(_process_batch, recipe, batch))
-                while len(pending) > threads:
-                    collect(pending.popleft().result())
-            while pending:
-                collect(pending.popleft().result())
-    seg = _merge_segments(segs)
-    n = len(seg.doc_lengths)
-
-    def col(name: str, width: int | None = None) -> np.ndarray:
-        parts = doc_cols[name]
-        if parts:
-            return np.concatenate(parts)
-        return np.zeros((0, width), np.uint8) if width else np.zeros(0, np.int64)
-
-    hashes = col("hash", 16)
+    batches = recipe.sources[task.source_index].read(task.path, task.part, stats, batch_bytes=task.batch_bytes)
+    got = _gather(_processed(recipe, batches, task.threads or ingest_threads()))
+    seg = got.segments
     keys = seg.keys.cast(pa.binary())
-    table: dict[str, Any] = {
-        "hash": pa.FixedSizeBinaryArray.from_buffers(HASH_TYPE, n, [None, pa.py_buffer(hashes.tobytes())]),
-        "pieces": pa.array(seg.doc_lengths, pa.int64()),
-        "bytes": pa.array(col("bytes"), pa.int64()),
-        "words": pa.array(col("words"), pa.int64()),
-    }
-    if any(getattr(s, "is_dedupe", False) for s in recipe.clean):
-        table["dedupe"] = pa.FixedSizeBinaryArray.from_buffers(
-            HASH_TYPE, n, [None, pa.py_buffer(col("dedupe", 16).tobytes())]
-        )
     meta = PartMeta(
         key=task.key,
         input_index=task.input_index,
-        documents=n,
+        documents=len(seg.doc_lengths),
         pieces=len(seg.codes),
         read={k: int(v) for k, v in asdict(stats).items()},
-        dropped=dropped,
+        dropped=got.dropped,
     )
+    _store_part(task, _docs_table(recipe, got), keys, _stored_codes(seg.codes, len(keys)), meta)
+    if task.count_order is not None:
+        meta.counts = _count(recipe, got.columns["hash"], seg.doc_lengths, keys, seg.codes, None, task.count_order)
+    return meta
+
+
+def _store_part(task: IngestTask, docs: pa.Table, keys: pa.Array, codes: pa.Array, meta: PartMeta) -> None:
+    """Write the part into the cache atomically: a private directory renamed into place (a twin
+    task that finished first wins; a torn leftover is replaced)."""
     final = _part_dir(task.cache_dir, task.key)
     tmp = final.with_name(f".{task.key}.{os.getpid()}.{uuid.uuid4().hex[:8]}.tmp")
     tmp.mkdir(parents=True)
     try:
-        write_table(tmp / "docs.arrow", pa.table(table), durable=False)
+        write_table(tmp / "docs.arrow", docs, durable=False)
         write_table(tmp / "keys.arrow", pa.table({"key": keys}), durable=False)
-        write_table(tmp / "codes.arrow", pa.table({"code": _stored_codes(seg.codes, len(keys))}), durable=False)
+        write_table(tmp / "codes.arrow", pa.table({"code": codes}), durable=False)
         (tmp / "meta.json").write_text(json.dumps(asdict(meta), sort_keys=True))
         fsync_dir(tmp)
         try:
@@ -286,9 +315,6 @@ def ingest_part(task: IngestTask) -> PartMeta:
         fsync_dir(final.parent)
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
-    if task.count_order is not None:
-        meta.counts = _count(recipe, hashes, seg.doc_lengths, keys, seg.codes, None, task.count_order)
-    return meta
 
 
 def _stored_codes(codes: np.ndarray, n_keys: int) -> pa.Array:
@@ -395,12 +421,17 @@ def _encoder(recipe: Recipe, stage_dir: str) -> Encoder:
     return enc
 
 
+def encoded_dir(stage_dir: str) -> Path:
+    """Where encode tasks write (removed once the shards are written)."""
+    return Path(stage_dir) / "encoded"
+
+
 def encoded_path(stage_dir: str, number: int, split: str) -> Path:
-    return Path(stage_dir) / "encoded" / f"{number:06d}.{split}.arrow"
+    return encoded_dir(stage_dir) / f"{number:06d}.{split}.arrow"
 
 
 def fragment_path(stage_dir: str, number: int, split: str) -> Path:
-    return Path(stage_dir) / "encoded" / f"{number:06d}.{split}.docs.arrow"
+    return encoded_dir(stage_dir) / f"{number:06d}.{split}.docs.arrow"
 
 
 def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
