@@ -15,11 +15,11 @@ import sys as _sys
 import types as _types
 import typing as _typing
 
-__version__ = "0.1.0"  # build.py records it in manifests
+__version__ = "0.1.0"  # _build.py records it in manifests
 
 if _typing.TYPE_CHECKING:
+    from seqpipe._build import BuildResult, build
     from seqpipe._verify import VerifyReport, verify
-    from seqpipe.build import BuildResult, build
     from seqpipe.dataset import Dataset, Split, load_tokenizer, open_dataset
     from seqpipe.errors import SeqpipeError
     from seqpipe.recipe import Recipe, load_recipe, parse_recipe
@@ -31,8 +31,8 @@ if _typing.TYPE_CHECKING:
 # nothing and a process imports only what it uses: the command line starts its build workers
 # before it imports numpy and pyarrow, and a spawned worker imports what its tasks need.
 _HOME = {
-    "BuildResult": "build",
-    "build": "build",
+    "BuildResult": "_build",
+    "build": "_build",
     "Dataset": "dataset",
     "Split": "dataset",
     "load_tokenizer": "dataset",
@@ -53,13 +53,13 @@ _HOME = {
 }
 # Functions named like the module they live in: importing the submodule makes Python bind the
 # module to the package attribute of the same name, which must stay the function.
-_SHADOWED = frozenset({"build"})
+_SHADOWED: frozenset[str] = frozenset()
 
 
 class _Package(_types.ModuleType):
     def __setattr__(self, name: str, value: object) -> None:
         if name in _SHADOWED and isinstance(value, _types.ModuleType):
-            return  # the import system binding seqpipe.build / seqpipe.verify (still in sys.modules)
+            return  # the import system binding seqpipe.verify (still in sys.modules)
         super().__setattr__(name, value)
 
 

@@ -19,8 +19,8 @@ from pathlib import Path
 from typing import Any, Final
 
 from seqpipe.errors import DatasetError, ManifestError, ShardMissingError, UnsafePathError
+from seqpipe.formats import PRIVATE
 from seqpipe.manifest import MANIFEST_NAME, dumps, parse_manifest, validate
-from seqpipe.staging import PRIVATE
 from seqpipe.storage import Store, open_store
 
 TOP_LEVEL_OK: Final = frozenset({MANIFEST_NAME, PRIVATE})  # top-level names that are never unlisted

@@ -27,7 +27,7 @@ def _print_json(obj: Any) -> None:
 def cmd_build(args: argparse.Namespace) -> int:
     from contextlib import nullcontext
 
-    from seqpipe.executors import executor_for, keep_freed_memory
+    from seqpipe.executors import TaskPool, keep_freed_memory, task_pool
 
     keep_freed_memory()  # this process is ours: reuse freed arrays' pages (see executors.py)
     # --workers N > 1: start the spawned workers first, so their start-up (an interpreter and
@@ -35,8 +35,8 @@ def cmd_build(args: argparse.Namespace) -> int:
     # the same modules and reads the recipe, instead of after the build has begun
     workers = args.workers
     early = workers is not None and workers > 1 and not args.dask_scheduler
-    with executor_for(None, workers) if early else nullcontext(None) as pool:
-        from seqpipe.build import build
+    with task_pool(None, workers) if early else nullcontext(None) as pool:
+        from seqpipe import build
         from seqpipe.filesystem import is_uri
         from seqpipe.recipe import load_recipe
 
@@ -49,7 +49,8 @@ def cmd_build(args: argparse.Namespace) -> int:
         if args.dask_scheduler:
             from seqpipe.dask_support import connect
 
-            client, executor = connect(args.dask_scheduler)
+            client, dask_executor = connect(args.dask_scheduler)
+            executor = TaskPool(dask_executor)
         try:
             result = build(
                 recipe,
@@ -121,8 +122,8 @@ def cmd_inspect(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
+    from seqpipe import build
     from seqpipe._verify import verify
-    from seqpipe.build import build
     from seqpipe.demo import demo_recipe_text, write_demo_corpus
     from seqpipe.recipe import parse_recipe
 

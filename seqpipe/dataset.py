@@ -16,6 +16,7 @@ import numpy as np
 import pyarrow as pa
 
 from seqpipe.errors import DatasetError, IntegrityError, ManifestError, ShardCorruptError
+from seqpipe.formats import DOCS_SCHEMA
 from seqpipe.manifest import read_manifest, safe_relative
 from seqpipe.shards import read_shard, read_table
 from seqpipe.tokenizers import parse_tokenizer
@@ -48,8 +49,6 @@ class Split:
         """Per document: start (offset in the split's stream), length, source, hash."""
         rel = self.info["docs"]["path"]
         table = read_table(safe_relative(self.dataset.directory, rel, key=f"splits.{self.name}.docs.path"))
-        from seqpipe.build import DOCS_SCHEMA
-
         try:
             same = table.schema.remove_metadata().equals(DOCS_SCHEMA)
         except (UnicodeDecodeError, pa.ArrowException):

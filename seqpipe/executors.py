@@ -13,6 +13,7 @@ from collections import deque
 from collections.abc import Callable, Iterator
 from concurrent.futures import Executor, Future, ProcessPoolExecutor, ThreadPoolExecutor
 from contextlib import contextmanager
+from dataclasses import dataclass
 from typing import Any, TypeVar
 
 T = TypeVar("T")
@@ -37,15 +38,46 @@ def default_workers() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+@dataclass(frozen=True, slots=True)
+class Threads:
+    """How tasks share the cores, which decides the ingest threads each task starts.
+
+    ``side_by_side``: this process runs that many tasks at once on threads (one process, no
+    spawned workers). ``per_task``: each task gets that many, the share of one of the processes
+    that take tasks. Neither (an inline or a caller's executor): the task's own default,
+    ``SEQPIPE_INGEST_THREADS`` or a spawned worker's share.
+    """
+
+    side_by_side: int | None = None
+    per_task: int | None = None
+
+    def for_ingest(self, tasks: int) -> int | None:
+        """Ingest threads for each of ``tasks`` tasks about to run; None: the task's default."""
+        if self.per_task:
+            return self.per_task
+        if self.side_by_side and tasks:
+            # tasks already run side by side on threads: nest threads only where tasks are fewer
+            return max(1, self.side_by_side // min(tasks, self.side_by_side))
+        return None
+
+
+@dataclass(frozen=True, slots=True)
+class TaskPool:
+    """An executor and how its tasks share the cores (what ``build`` needs to run tasks)."""
+
+    executor: Executor
+    threads: Threads = Threads()
+
+
 @contextmanager
-def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Executor]:
-    """The given executor (left open), or one we make and shut down.
+def task_pool(executor: Executor | None, workers: int | None) -> Iterator[TaskPool]:
+    """The given executor (left open, default threads), or one we make and shut down.
 
     ``workers`` N > 1: N processes work on tasks, this one and N - 1 spawned ones
     (``SharedQueueExecutor``); each task's ingest threads get cores // N of the cores.
     """
     if executor is not None:
-        yield executor
+        yield TaskPool(executor)
         return
     n = workers or 1
     if n == 1:
@@ -53,11 +85,10 @@ def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Exe
         # many as there are cores; SEQPIPE_TASK_THREADS=1 runs them one by one
         threads = int(os.environ.get("SEQPIPE_TASK_THREADS", "0")) or default_workers()
         if threads == 1:
-            yield InlineExecutor()
+            yield TaskPool(InlineExecutor())
             return
         with ThreadPoolExecutor(max_workers=threads) as tpool:
-            tpool.seqpipe_threads = threads  # type: ignore[attr-defined]  # read by the build
-            yield tpool
+            yield TaskPool(tpool, Threads(side_by_side=threads))
         return
     per_task = max(1, default_workers() // n)
     pool = process_pool(n - 1, threads=per_task)
@@ -65,12 +96,18 @@ def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Exe
         for _ in range(n - 1):  # start the workers now (a pool spawns one per submit): they import
             pool.submit(int)  # numpy, pyarrow and seqpipe while this process plans the build
     shared = SharedQueueExecutor(pool, n - 1, local=1)
-    shared.seqpipe_task_threads = per_task  # type: ignore[attr-defined]  # read by the build
     try:
-        yield shared
+        yield TaskPool(shared, Threads(per_task=per_task))
     finally:
         # after a failed task the build stops: tasks still queued are dropped, not run
         shared.shutdown(wait=True, cancel_futures=True)
+
+
+@contextmanager
+def executor_for(executor: Executor | None, workers: int | None) -> Iterator[Executor]:
+    """The executor of ``task_pool(executor, workers)`` alone."""
+    with task_pool(executor, workers) as pool:
+        yield pool.executor
 
 
 def process_pool(workers: int, threads: int | None = None) -> ProcessPoolExecutor:

@@ -21,7 +21,7 @@ import os
 import shutil
 import uuid
 from collections import deque
-from collections.abc import Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -37,6 +37,7 @@ from seqpipe._parse import to_plain
 from seqpipe.errors import SeqpipeError
 from seqpipe.recipe import Recipe
 from seqpipe.shards import fsync_dir, id_dtype, read_shard, read_table, write_shard, write_table
+from seqpipe.splits import assign_splits
 from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
 
@@ -201,79 +202,108 @@ def _process_batch(recipe: Recipe, batch: pa.Array) -> _Batch:
     return _Batch(segments, columns, dropped)
 
 
+def _processed(recipe: Recipe, batches: Iterator[pa.Array], threads: int) -> Iterator[_Batch]:
+    """Each batch cleaned and segmented, in reading order.
+
+    Batches are cleaned and segmented on a few threads (Arrow and numpy release the GIL) while
+    this thread reads on. With one thread, batches are processed inline: a worker given one
+    core uses one core."""
+    if threads == 1:
+        for batch in batches:
+            yield _process_batch(recipe, batch)
+        return
+    with ThreadPoolExecutor(max_workers=threads) as pool:
+        pending: deque[Future[_Batch]] = deque()
+        for batch in batches:
+            pending.append(pool.submit(_process_batch, recipe, batch))
+            while len(pending) > threads:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
+
+
+@dataclass(frozen=True, slots=True)
+class _Gathered:
+    """A part's processed batches joined: one dictionary of pieces, per-document columns, drops."""
+
+    segments: Segments
+    columns: dict[str, np.ndarray]
+    dropped: dict[str, int]
+
+
+def _gather(done: Iterable[_Batch]) -> _Gathered:
+    dropped: dict[str, int] = {}
+    segs: list[Segments] = []
+    columns: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "bytes", "words")}
+    for batch in done:
+        for name, count in batch.dropped.items():
+            dropped[name] = dropped.get(name, 0) + count
+        if batch.segments is None:
+            continue
+        segs.append(batch.segments)
+        for name, values in batch.columns.items():
+            columns[name].append(values)
+    widths = {"hash": 16, "dedupe": 16}  # (n, 16) hashes; the others one value per document
+    joined = {name: _joined(parts, widths.get(name)) for name, parts in columns.items()}
+    return _Gathered(_merge_segments(segs), joined, dropped)
+
+
+def _joined(parts: list[np.ndarray], width: int | None) -> np.ndarray:
+    if parts:
+        return np.concatenate(parts)
+    return np.zeros((0, width), np.uint8) if width else np.zeros(0, np.int64)
+
+
+def _docs_table(recipe: Recipe, got: _Gathered) -> pa.Table:
+    """The part's docs.arrow: per document its hash, pieces, bytes, words (and dedupe hash)."""
+    n = len(got.segments.doc_lengths)
+    table: dict[str, Any] = {
+        "hash": pa.FixedSizeBinaryArray.from_buffers(HASH_TYPE, n, [None, pa.py_buffer(got.columns["hash"].tobytes())]),
+        "pieces": pa.array(got.segments.doc_lengths, pa.int64()),
+        "bytes": pa.array(got.columns["bytes"], pa.int64()),
+        "words": pa.array(got.columns["words"], pa.int64()),
+    }
+    if any(getattr(s, "is_dedupe", False) for s in recipe.clean):
+        table["dedupe"] = pa.FixedSizeBinaryArray.from_buffers(
+            HASH_TYPE, n, [None, pa.py_buffer(got.columns["dedupe"].tobytes())]
+        )
+    return pa.table(table)
+
+
 def ingest_part(task: IngestTask) -> PartMeta:
     """Read one part of one input file, clean it, segment it, and store it in the cache."""
     from seqpipe.sources.base import ReadStats
 
     recipe = task.recipe
-    source = recipe.sources[task.source_index]
     stats = ReadStats()
-    dropped: dict[str, int] = {}
-    segs: list[Segments] = []
-    doc_cols: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "bytes", "words")}
-
-    def collect(done: _Batch) -> None:
-        for name, count in done.dropped.items():
-            dropped[name] = dropped.get(name, 0) + count
-        if done.segments is None:
-            return
-        segs.append(done.segments)
-        for name, values in done.columns.items():
-            doc_cols[name].append(values)
-
-    # Batches are cleaned and segmented on a few threads (Arrow and numpy release the GIL)
-    # while this thread reads on; results are collected in reading order.
-    # With one thread, batches are processed inline: a worker given one core uses one core.
-    threads = task.threads or ingest_threads()
-    batches = source.read(task.path, task.part, stats, batch_bytes=task.batch_bytes)
-    if threads == 1:
-        for batch in batches:
-            collect(_process_batch(recipe, batch))
-    else:
-        with ThreadPoolExecutor(max_workers=threads) as pool:
-            pending: deque[Future[_Batch]] = deque()
-            for batch in batches:
-                pending.append(pool.submit(_process_batch, recipe, batch))
-                while len(pending) > threads:
-                    collect(pending.popleft().result())
-            while pending:
-                collect(pending.popleft().result())
-    seg = _merge_segments(segs)
-    n = len(seg.doc_lengths)
-
-    def col(name: str, width: int | None = None) -> np.ndarray:
-        parts = doc_cols[name]
-        if parts:
-            return np.concatenate(parts)
-        return np.zeros((0, width), np.uint8) if width else np.zeros(0, np.int64)
-
-    hashes = col("hash", 16)
+    batches = recipe.sources[task.source_index].read(task.path, task.part, stats, batch_bytes=task.batch_bytes)
+    got = _gather(_processed(recipe, batches, task.threads or ingest_threads()))
+    seg = got.segments
     keys = seg.keys.cast(pa.binary())
-    table: dict[str, Any] = {
-        "hash": pa.FixedSizeBinaryArray.from_buffers(HASH_TYPE, n, [None, pa.py_buffer(hashes.tobytes())]),
-        "pieces": pa.array(seg.doc_lengths, pa.int64()),
-        "bytes": pa.array(col("bytes"), pa.int64()),
-        "words": pa.array(col("words"), pa.int64()),
-    }
-    if any(getattr(s, "is_dedupe", False) for s in recipe.clean):
-        table["dedupe"] = pa.FixedSizeBinaryArray.from_buffers(
-            HASH_TYPE, n, [None, pa.py_buffer(col("dedupe", 16).tobytes())]
-        )
     meta = PartMeta(
         key=task.key,
         input_index=task.input_index,
-        documents=n,
+        documents=len(seg.doc_lengths),
         pieces=len(seg.codes),
         read={k: int(v) for k, v in asdict(stats).items()},
-        dropped=dropped,
+        dropped=got.dropped,
     )
+    _store_part(task, _docs_table(recipe, got), keys, _stored_codes(seg.codes, len(keys)), meta)
+    if task.count_order is not None:
+        meta.counts = _count(recipe, got.columns["hash"], seg.doc_lengths, keys, seg.codes, None, task.count_order)
+    return meta
+
+
+def _store_part(task: IngestTask, docs: pa.Table, keys: pa.Array, codes: pa.Array, meta: PartMeta) -> None:
+    """Write the part into the cache atomically: a private directory renamed into place (a twin
+    task that finished first wins; a torn leftover is replaced)."""
     final = _part_dir(task.cache_dir, task.key)
     tmp = final.with_name(f".{task.key}.{os.getpid()}.{uuid.uuid4().hex[:8]}.tmp")
     tmp.mkdir(parents=True)
     try:
-        write_table(tmp / "docs.arrow", pa.table(table), durable=False)
+        write_table(tmp / "docs.arrow", docs, durable=False)
         write_table(tmp / "keys.arrow", pa.table({"key": keys}), durable=False)
-        write_table(tmp / "codes.arrow", pa.table({"code": _stored_codes(seg.codes, len(keys))}), durable=False)
+        write_table(tmp / "codes.arrow", pa.table({"code": codes}), durable=False)
         (tmp / "meta.json").write_text(json.dumps(asdict(meta), sort_keys=True))
         fsync_dir(tmp)
         try:
@@ -285,9 +315,6 @@ def ingest_part(task: IngestTask) -> PartMeta:
         fsync_dir(final.parent)
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
-    if task.count_order is not None:
-        meta.counts = _count(recipe, hashes, seg.doc_lengths, keys, seg.codes, None, task.count_order)
-    return meta
 
 
 def _stored_codes(codes: np.ndarray, n_keys: int) -> pa.Array:
@@ -305,9 +332,6 @@ def _piece_mask(pieces: np.ndarray, doc_mask: np.ndarray) -> np.ndarray:
     return np.repeat(doc_mask, pieces)
 
 
-# -- splits ----------------------------------------------------------------------------------------
-
-
 def fixed16(table: pa.Table, name: str) -> np.ndarray:
     """A fixed_size_binary(16) column as an (n, 16) uint8 view."""
     col = table.column(name).combine_chunks()
@@ -315,27 +339,6 @@ def fixed16(table: pa.Table, name: str) -> np.ndarray:
     if buf is None or len(col) == 0:
         return np.zeros((0, 16), np.uint8)
     return np.frombuffer(buf, dtype=np.uint8)[col.offset * 16 : (col.offset + len(col)) * 16].reshape(-1, 16)
-
-
-def split_of(hashes: np.ndarray, fractions: Sequence[float], seed: int) -> np.ndarray:
-    """Split index per document from a seeded mix of its content hash (splitmix64 finalizer)."""
-    x = hashes[:, :8].copy().view("<u8").reshape(-1).astype(np.uint64)
-    x ^= np.uint64((seed * 0x9E3779B97F4A7C15) & 0xFFFFFFFFFFFFFFFF)  # Python ints: no overflow
-    x ^= x >> np.uint64(30)
-    x *= np.uint64(0xBF58476D1CE4E5B9)
-    x ^= x >> np.uint64(27)
-    x *= np.uint64(0x94D049BB133111EB)
-    x ^= x >> np.uint64(31)
-    u = (x >> np.uint64(11)).astype(np.float64) / float(1 << 53)
-    edges = np.cumsum(fractions)[:-1]
-    return np.searchsorted(edges, u, side="right").astype(np.int8)
-
-
-def _splits(recipe: Recipe, hashes: np.ndarray, keep: np.ndarray | None) -> np.ndarray:
-    """Split index per document of a part (from its (n, 16) content hashes), -1 for a dropped
-    duplicate."""
-    sp = split_of(hashes, recipe.splits.fractions(), recipe.splits.seed)
-    return sp if keep is None else np.where(keep, sp, -1).astype(np.int8)
 
 
 # -- counting ----------------------------------------------------------------------------------------
@@ -373,7 +376,7 @@ def _count(
 ) -> tuple[pa.Table, int]:
     """count_part's result from a part's arrays (document hashes, pieces per document, distinct
     keys, one code per piece)."""
-    train = _splits(recipe, hashes, keep) == 0
+    train = assign_splits(recipe.splits, hashes, keep) == 0
     sel = codes[_piece_mask(pieces, train)] if len(codes) else codes
     counts = np.bincount(sel, minlength=len(keys)).astype(np.int64)
     present = np.flatnonzero(counts)
@@ -418,12 +421,17 @@ def _encoder(recipe: Recipe, stage_dir: str) -> Encoder:
     return enc
 
 
+def encoded_dir(stage_dir: str) -> Path:
+    """Where encode tasks write (removed once the shards are written)."""
+    return Path(stage_dir) / "encoded"
+
+
 def encoded_path(stage_dir: str, number: int, split: str) -> Path:
-    return Path(stage_dir) / "encoded" / f"{number:06d}.{split}.arrow"
+    return encoded_dir(stage_dir) / f"{number:06d}.{split}.arrow"
 
 
 def fragment_path(stage_dir: str, number: int, split: str) -> Path:
-    return Path(stage_dir) / "encoded" / f"{number:06d}.{split}.docs.arrow"
+    return encoded_dir(stage_dir) / f"{number:06d}.{split}.docs.arrow"
 
 
 def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
@@ -440,7 +448,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     keys = read_table(d / "keys.arrow").column("key").combine_chunks()
     codes = read_table(d / "codes.arrow").column("code").to_numpy()
     pieces = docs.column("pieces").to_numpy()
-    splits = _splits(recipe, fixed16(docs, "hash"), task.keep)
+    splits = assign_splits(recipe.splits, fixed16(docs, "hash"), task.keep)
     values, offsets = enc.piece_ids(keys)
     voc = enc.vocabulary
     begin = voc.id_of("begin") if recipe.encode.begin else None
@@ -483,7 +491,6 @@ def _add_markers(ids: np.ndarray, lengths: np.ndarray, begin: int | None, end: i
     extra = (begin is not None) + (end is not None)
     if not extra:
         return ids
-    n = len(lengths)
     new_len = lengths + extra
     out = np.empty(int(new_len.sum()), dtype=np.int64)
     starts = np.cumsum(new_len) - new_len
@@ -495,7 +502,6 @@ def _add_markers(ids: np.ndarray, lengths: np.ndarray, begin: int | None, end: i
         out[starts + new_len - 1] = end
         body[starts + new_len - 1] = False
     out[body] = ids
-    _ = n
     return out
 
 

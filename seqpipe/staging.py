@@ -21,14 +21,10 @@ import socket
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Final
 
 from seqpipe.errors import BuildLockedError
+from seqpipe.formats import PRIVATE
 from seqpipe.shards import fsync_dir
-
-PRIVATE: Final = ".seqpipe"
-# top-level files only some tokenizers write: a publish removes them when the new build has none
-OPTIONAL_TOP: Final = ("tokenizer.arrow",)
 
 
 def private_dir(out: Path) -> Path:

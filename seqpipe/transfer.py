@@ -28,9 +28,9 @@ from typing import Any
 from seqpipe._hashing import hash_bytes
 from seqpipe._verify import DATA_DIRS, check_file, check_files, listed_files
 from seqpipe.errors import DatasetError, ManifestError
+from seqpipe.formats import OPTIONAL_TOP
 from seqpipe.manifest import MANIFEST_NAME, parse_manifest
 from seqpipe.progress import bar
-from seqpipe.staging import OPTIONAL_TOP
 from seqpipe.storage import LocalStore, Store, UriStore
 
 

@@ -157,15 +157,6 @@ class Vocabulary:
         return cls(tokens=tokens, counts=counts, n_special=n_special, roles=roles)
 
 
-def merge_counts(tables: Sequence[pa.Table]) -> pa.Table:
-    """Sum partial ``(key, count)`` tables with Arrow group-by (no Python Counter)."""
-    if not tables:
-        return COUNTS_SCHEMA.empty_table()
-    merged = pa.concat_tables([t.select(["key", "count"]).cast(COUNTS_SCHEMA) for t in tables])
-    out = merged.group_by("key").aggregate([("count", "sum")])
-    return out.rename_columns(["key", "count"]).cast(COUNTS_SCHEMA)
-
-
 def ordered_counts(counts: pa.Table) -> pa.Table:
     """Counts sorted by descending count, ties by ascending key bytes."""
     if counts.num_rows == 0:

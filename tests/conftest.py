@@ -113,7 +113,7 @@ def write_project(root: Path, *, files: int = 3, paragraphs: int = 30, seed: int
 
 def build_dir(recipe_path: Path, out: Path, **kwargs: object) -> Path:
     """Build ``recipe_path`` into ``out`` in this process with one worker; return ``out``."""
-    from seqpipe.build import build
+    from seqpipe import build
     from seqpipe.recipe import load_recipe
 
     build(load_recipe(recipe_path), out, workers=1, progress=False, **kwargs)  # type: ignore[arg-type]

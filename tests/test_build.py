@@ -13,8 +13,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from seqpipe import build
 from seqpipe._verify import verify
-from seqpipe.build import build
 from seqpipe.cli import main
 from seqpipe.dataset import open_dataset
 from seqpipe.errors import EmptyCorpusError, InvalidUtf8Error, SourceMissingError

@@ -18,17 +18,17 @@ import numpy as np
 import pytest
 from conftest import REPO, build_dir, run_cli, write_project
 
+from seqpipe import build
 from seqpipe._hashing import hash_array, hash_file
 from seqpipe._verify import verify
-from seqpipe.build import build
 from seqpipe.errors import EXIT_LOCKED, BuildLockedError
 from seqpipe.manifest import MANIFEST_NAME, dumps, seal
 from seqpipe.recipe import load_recipe
 from seqpipe.shards import read_shard, write_shard
 from seqpipe.staging import PRIVATE
 
-# the module, not the function: `seqpipe.build` on the package is the build() function it re-exports
-BUILD_MODULE = importlib.import_module("seqpipe.build")
+# the module that holds build(), for its internals
+BUILD_MODULE = importlib.import_module("seqpipe._build")
 
 
 def build_args(recipe: Path, out: Path) -> list[str]:

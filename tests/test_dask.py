@@ -16,7 +16,7 @@ distributed = pytest.importorskip("distributed")
 
 from test_scale import SMALL_PARTS, dataset_files, make_recipe, write_corpus  # noqa: E402
 
-from seqpipe.build import build  # noqa: E402
+from seqpipe import build  # noqa: E402
 from seqpipe.dask_support import executor_for_client  # noqa: E402
 from seqpipe.ingest import ingest_part  # noqa: E402
 from seqpipe.manifest import MANIFEST_NAME  # noqa: E402

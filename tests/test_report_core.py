@@ -154,7 +154,7 @@ def test_write_report_on_a_built_dataset(tmp_path: Path) -> None:
     """write_report on a dataset from seqpipe.build: sizes equal the dataset's, and the documents
     reported as duplicated in validation/test are exactly those whose ids equal a train document's
     (planted: one sentence written with 1..12 spaces, so its text hashes differ but its ids do not)."""
-    from seqpipe.build import build
+    from seqpipe import build
     from seqpipe.dataset import open_dataset
     from seqpipe.recipe import parse_recipe
 

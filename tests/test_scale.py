@@ -13,7 +13,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from seqpipe.build import BuildResult, build
+from seqpipe import BuildResult, build
 from seqpipe.manifest import MANIFEST_NAME
 from seqpipe.recipe import Recipe, parse_recipe
 from seqpipe.sources.text import TextSource
@@ -288,58 +288,3 @@ def test_identical_input_files_are_each_counted_once(tmp_path: Path) -> None:
     assert two_files.parts_total == 2 * one_file.parts_total
     two_workers = build(recipe, tmp_path / "two-workers", workers=2, progress=False, part_bytes=SMALL_PARTS)
     assert dataset_files(two_workers.directory) == dataset_files(two_files.directory)
-
-
-@settings(max_examples=60, deadline=None)
-@given(
-    parts=st.lists(
-        st.dictionaries(st.binary(min_size=1, max_size=3), st.integers(1, 50), max_size=12), min_size=1, max_size=20
-    ),
-    order_seed=st.integers(0, 1000),
-    batch=st.integers(1, 9),
-    announce=st.booleans(),
-)
-def test_count_merger_equals_a_counter_whatever_the_arrival_order(
-    parts: list[dict[bytes, int]], order_seed: int, batch: int, announce: bool
-) -> None:
-    """Partial counts merged as they arrive, in any order and fold rhythm, give the sums a
-    ``collections.Counter`` gives, in first-occurrence order (the part's position, then the
-    key's position within it: the ``first`` rank that count tables carry)."""
-    import collections
-
-    import pyarrow as pa
-
-    from seqpipe.build import _CountMerger
-
-    tables = []
-    for order, part in enumerate(parts):
-        keys = list(part)
-        tables.append(
-            pa.table(
-                {
-                    "key": pa.array(keys, pa.binary()),
-                    "count": pa.array([part[k] for k in keys], pa.int64()),
-                    "first": pa.array([(order << 40) + j for j in range(len(keys))], pa.int64()),
-                }
-            )
-        )
-    if not any(parts):
-        return
-    want: collections.Counter[bytes] = collections.Counter()
-    first_seen: list[bytes] = []
-    for part in parts:
-        for k, c in part.items():
-            if k not in want:
-                first_seen.append(k)
-            want[k] += c
-    merger = _CountMerger(batch=batch)
-    if announce:
-        merger.expect(len(tables))
-    arrival = list(range(len(tables)))
-    random.Random(order_seed).shuffle(arrival)
-    for i in arrival:
-        merger.add((tables[i], 1))
-    got = merger.result()
-    assert got.column("key").to_pylist() == first_seen
-    assert got.column("count").to_pylist() == [want[k] for k in first_seen]
-    assert merger.train_documents == len(tables)

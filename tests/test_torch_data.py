@@ -134,7 +134,7 @@ def test_rank_defaults_and_bad_sources() -> None:
 
 def test_from_dataset_matches_split_batches(tmp_path: Path) -> None:
     """TorchBatches.from_dataset on a built dataset yields the split's own numpy batch stream."""
-    from seqpipe.build import build
+    from seqpipe import build
     from seqpipe.dataset import open_dataset
     from seqpipe.recipe import parse_recipe
 

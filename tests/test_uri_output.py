@@ -15,10 +15,9 @@ import pyarrow.fs as pafs
 import pytest
 from conftest import recipe_text, write_project
 
-from seqpipe import filesystem
+from seqpipe import BuildResult, build, filesystem
 from seqpipe import transfer as remote
 from seqpipe._verify import listed_files, verify
-from seqpipe.build import BuildResult, build
 from seqpipe.cli import main
 from seqpipe.dataset import open_dataset
 from seqpipe.errors import DatasetError, RecipeError, SeqpipeError, UnsafePathError

@@ -23,9 +23,8 @@ import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 import pytest
 
-from seqpipe import filesystem
+from seqpipe import BuildResult, build, filesystem
 from seqpipe._hashing import hash_file
-from seqpipe.build import BuildResult, build
 from seqpipe.errors import RecipeError, SourceError, SourceMissingError
 from seqpipe.executors import InlineExecutor
 from seqpipe.recipe import parse_recipe
@@ -56,7 +55,7 @@ WORDS = (
     "keel",
     "oar",
 )
-build_module = importlib.import_module("seqpipe.build")  # the module: seqpipe.build is also a function name
+build_module = importlib.import_module("seqpipe._build")  # the build module (private)
 MEM = "memtest://bucket"  # a scheme pyarrow does not know: only our registration serves it
 
 KINDS: dict[str, tuple[str, str]] = {  # kind -> (glob under the corpus root, extra recipe keys)
@@ -221,7 +220,7 @@ def test_in_memory_filesystem_builds_the_same_dataset(
 
 
 def _count_uri_hashes(monkeypatch: pytest.MonkeyPatch) -> list[str]:
-    """Record every URI the build hashes (build.py calls the hash_file it imported)."""
+    """Record every URI the build hashes (_build.py calls the hash_file it imported)."""
     seen: list[str] = []
 
     def counting(path: Any, *args: Any, **kwargs: Any) -> str:

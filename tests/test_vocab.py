@@ -9,7 +9,7 @@ import pyarrow as pa
 import pytest
 
 from seqpipe.errors import RecipeError, ShardCorruptError, TokenizerError
-from seqpipe.vocab import VocabSpec, Vocabulary, build_vocabulary, merge_counts
+from seqpipe.vocab import VocabSpec, Vocabulary, build_vocabulary
 
 
 def counts(pairs: dict[bytes, int]) -> pa.Table:
@@ -51,13 +51,6 @@ def test_special_name_in_text_is_an_ordinary_token() -> None:
     v = build_vocabulary(counts({b"<unk>": 4}), VocabSpec())
     assert v.tokens.to_pylist() == [b"<unk>", b"<pad>", b"<bos>", b"<eos>", b"<unk>"]
     assert v.lookup(pa.array([b"<unk>"], pa.binary())).tolist() == [4]
-
-
-def test_merge_counts_sums_partials() -> None:
-    """Partial count tables merge by Arrow group-by into sums (no Counter)."""
-    m = merge_counts([counts({b"a": 1, b"b": 2}), counts({b"b": 3, b"c": 1})])
-    got = dict(zip(m.column("key").to_pylist(), m.column("count").to_pylist(), strict=True))
-    assert got == {b"a": 1, b"b": 5, b"c": 1}
 
 
 def test_save_load_roundtrip(tmp_path: Path) -> None:

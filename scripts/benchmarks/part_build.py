@@ -23,8 +23,8 @@ import xxhash
 from _corpus import write_corpus
 from common import Measure, best_time
 
+from seqpipe import BuildResult, build
 from seqpipe._verify import listed_files, verify
-from seqpipe.build import BuildResult, build
 from seqpipe.dataset import open_dataset
 from seqpipe.recipe import Recipe, parse_recipe
 from seqpipe.tokenizers.words import DEFAULT_PATTERN
@@ -58,7 +58,7 @@ SPECIALS = ("<unk>", "<pad>", "<bos>", "<eos>")  # the [vocab] defaults the reci
 _RSS_CHILD = """
 import json, resource, sys
 from pathlib import Path
-from seqpipe.build import build
+from seqpipe import build
 from seqpipe.recipe import load_recipe
 build(load_recipe(sys.argv[1]), sys.argv[2], workers=1, progress=False)
 hwm = [l for l in Path("/proc/self/status").read_text().splitlines() if l.startswith("VmHWM:")]

@@ -1,0 +1,553 @@
+"""Build a dataset from a recipe: the driver, a short chain of phases over explicit values.
+
+Each phase is a function below that takes and returns small frozen values. The executor tasks
+the phases run are in seqpipe/ingest.py, how they run (order, progress) in seqpipe/_runner.py,
+and the shard phase's arithmetic (shard cuts, docs tables) in seqpipe/_layout.py::
+
+    plan     resolve globs, hash inputs (stat-cached), cut files into parts      -> Plan
+    ingest   read + clean + segment each part, task per part, cached parts reused -> Ingested
+    assign   which documents are kept: exact duplicates dropped (driver, dedupe) -> Kept
+             (splits are not assigned here: each task computes its documents' splits from
+             their content hashes, seqpipe/splits.py)
+    count    piece counts over train documents, task per part, merged by group-by -> count table
+    fit      vocabulary (+ learned merges)     -> stage/vocab.arrow, tokenizer.arrow -> Fitted
+    encode   ids per part and split, task per part -> stage/encoded/*            -> per-part totals
+    shard    fixed-size shards per split, task per shard -> stage/shards/<split>/*.arrow
+             and, in the driver meanwhile, docs tables -> stage/docs/<split>.arrow -> Sharded
+    publish  manifest, atomic rename into the output directory                   -> manifest
+    upload   only when the output is a URI: the local dataset copied up (seqpipe/transfer.py)
+
+Document order and every tie come from the inputs (recipe order, sorted paths, byte order),
+never from task completion order, so 1 worker, N workers or a cluster give identical bytes.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import os
+import shutil
+import time
+from collections.abc import Iterator, Sequence
+from concurrent.futures import Executor
+from contextlib import AbstractContextManager, nullcontext
+from dataclasses import dataclass, field
+from functools import partial
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Final
+
+import numpy as np
+import pyarrow as pa
+
+from seqpipe import __version__
+from seqpipe._hashing import hash_file, hash_json
+from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
+from seqpipe._runner import View, run, run_beside
+from seqpipe.counts import CountMerger, first_occurrence
+from seqpipe.errors import EmptyCorpusError, RecipeError, SourceMissingError
+from seqpipe.executors import TaskPool, task_pool
+from seqpipe.formats import DOCS_DIR, OPTIONAL_TOP, SHARDS_DIR, VOCAB_FILE
+from seqpipe.ingest import (
+    CountTask,
+    EncodeTask,
+    IngestTask,
+    PartMeta,
+    count_part,
+    encode_part,
+    encoded_dir,
+    fixed16,
+    ingest_part,
+    load_part_meta,
+    part_key,
+    read_part_docs,
+    write_shard_task,
+)
+from seqpipe.manifest import FORMAT, MANIFEST_NAME, dumps, seal
+from seqpipe.progress import enabled
+from seqpipe.recipe import SPLIT_NAMES, Recipe
+from seqpipe.shards import id_dtype
+from seqpipe.staging import build_lock, private_dir, publish
+
+if TYPE_CHECKING:
+    from seqpipe.storage import UriStore
+    from seqpipe.transfer import PublishStats
+
+PART_BYTES: Final = 16 << 20
+
+
+@dataclass
+class BuildResult:
+    """What a build produced: where (a local directory, or the URI it was published to), its
+    manifest, and figures for the summary."""
+
+    directory: Path | str
+    manifest: dict[str, Any]
+    seconds: float
+    input_bytes: int
+    parts_total: int
+    parts_reused: int
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def fingerprint(self) -> str:
+        return str(self.manifest["dataset_fingerprint"])
+
+    def summary_lines(self) -> list[str]:
+        """Human-readable build summary."""
+        m = self.manifest
+        s = m["summary"]
+        mbs = self.input_bytes / 1e6 / max(self.seconds, 1e-9)
+        lines = [
+            f"dataset      {self.directory}",
+            f"fingerprint  {m['dataset_fingerprint']}",
+            f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['size']} (ids as {m['dtype']})",
+            f"inputs       {len(m['inputs'])} file(s), {self.input_bytes / 1e6:.2f} MB read in "
+            f"{self.seconds:.2f} s ({mbs:.1f} MB/s); parts reused from cache: "
+            f"{self.parts_reused}/{self.parts_total}",
+        ]
+        for name in SPLIT_NAMES:
+            sp, st = m["splits"][name], s["splits"][name]
+            lines.append(
+                f"{name:<12} {sp['documents']:>9} docs {sp['tokens']:>11} tokens  "
+                f"{len(sp['shards'])} shard(s)  unknown {st['unknown_rate']:.4%}  "
+                f"{st['bytes_per_token']:.2f} bytes/token  {st['tokens_per_word']:.2f} tokens/word"
+            )
+        drops = {**s["read"], **{f"clean {k}": v for k, v in s["dropped"].items()}}
+        shown = {k: v for k, v in drops.items() if v and k not in ("documents", "bytes_read")}
+        if s["duplicates_dropped"]:
+            shown["duplicates dropped"] = s["duplicates_dropped"]
+        if shown:
+            lines.append("counted      " + ", ".join(f"{k}: {v}" for k, v in sorted(shown.items())))
+        if "uploaded" in self.extra:
+            x = self.extra
+            lines.append(
+                f"published    {x['uploaded']} file(s) uploaded ({x['uploaded_bytes'] / 1e6:.2f} MB), "
+                f"{x['already_there']} already there, {x['deleted']} unlisted deleted; "
+                f"work directory {x['work_dir']}"
+            )
+        return lines
+
+
+def build(
+    recipe: Recipe,
+    out: str | Path,
+    *,
+    executor: Executor | TaskPool | None = None,
+    workers: int | None = None,
+    cache_dir: str | Path | None = None,
+    force: bool = False,
+    progress: bool | None = None,
+    part_bytes: int = PART_BYTES,
+    work_dir: str | Path | None = None,
+) -> BuildResult:
+    """Build ``recipe`` into directory ``out`` and return the result.
+
+    ``executor``: any concurrent.futures-style executor (e.g. a Dask client's
+    ``get_executor(pure=False)``), or a :class:`seqpipe.executors.TaskPool` from
+    ``executors.task_pool``; otherwise ``workers`` N > 1 processes (this one and N - 1
+    spawned), or (default, or 1) this process with its tasks on one thread per core.
+    ``cache_dir`` keeps ingested parts for later builds (default ``out/.seqpipe/cache``);
+    ``force`` ignores it. ``part_bytes``: the size inputs are cut to, on document boundaries.
+
+    ``out`` may be a filesystem URI (a ``str`` such as ``s3://bucket/prefix``): the build then
+    runs in the local ``work_dir`` (default: see :func:`seqpipe.transfer.default_work_dir`) and
+    is uploaded to ``out`` at the end (see :mod:`seqpipe.transfer`); ``directory`` of the result
+    is the URI.
+    """
+    t0 = time.perf_counter()
+    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
+        raise RecipeError("workers", f"expected a positive integer, got {workers!r}")
+    local, remote = _work_directory(out, work_dir, cache_dir)
+    local.mkdir(parents=True, exist_ok=True)
+    show = enabled(progress)
+    with build_lock(local):
+        cache = _open_cache(local, cache_dir, force)
+        with _task_pool(executor, workers) as pool:
+            result = _build(recipe, local, pool, cache, show, part_bytes, t0)
+        if remote is None:
+            return result
+        from seqpipe.transfer import publish_remote
+
+        stats = publish_remote(local, remote, result.manifest, show=show)
+    return _uploaded(result, remote, stats, local, t0)
+
+
+def _work_directory(
+    out: str | Path, work_dir: str | Path | None, cache_dir: str | Path | None
+) -> tuple[Path, UriStore | None]:
+    """The local directory the build runs in, and the remote it is uploaded to (or None)."""
+    from seqpipe.filesystem import is_uri
+
+    if is_uri(out):
+        from seqpipe.transfer import default_work_dir, open_remote
+
+        remote = open_remote(str(out))
+        return (Path(work_dir) if work_dir is not None else default_work_dir(remote, cache_dir)), remote
+    if work_dir is not None:
+        raise RecipeError(
+            "work_dir",
+            "only used when the output is a filesystem URI (a local output directory is its own work directory)",
+        )
+    return Path(out), None
+
+
+def _open_cache(local: Path, cache_dir: str | Path | None, force: bool) -> Path:
+    """The parts cache, emptied with ``force``, without torn parts of an interrupted build."""
+    cache = Path(cache_dir) if cache_dir is not None else private_dir(local) / "cache"
+    if force:
+        shutil.rmtree(cache / "parts", ignore_errors=True)
+    (cache / "parts").mkdir(parents=True, exist_ok=True)
+    for stale in (cache / "parts").glob(".*.tmp"):
+        shutil.rmtree(stale, ignore_errors=True)
+    return cache
+
+
+def _task_pool(executor: Executor | TaskPool | None, workers: int | None) -> AbstractContextManager[TaskPool]:
+    """A caller's task pool as it is (its owner shuts it down), else ``task_pool``'s."""
+    if isinstance(executor, TaskPool):
+        return nullcontext(executor)
+    return task_pool(executor, workers)
+
+
+def _uploaded(result: BuildResult, remote: UriStore, stats: PublishStats, local: Path, t0: float) -> BuildResult:
+    """The result of a build published to ``remote``: its URI, the upload's figures, the total time."""
+    extra = {
+        **result.extra,
+        "work_dir": str(local),
+        "uploaded": stats.uploaded,
+        "uploaded_bytes": stats.uploaded_bytes,
+        "already_there": stats.reused,
+        "deleted": stats.deleted,
+    }
+    return dataclasses.replace(result, directory=remote.location, seconds=time.perf_counter() - t0, extra=extra)
+
+
+def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[str]:
+    """XXH3-128 of each input, reusing a stored hash while its change stamp is unchanged:
+    (size, mtime, inode) for a local file, (size, mtime) for a URI; a URI whose filesystem
+    reports no mtime has no stamp and is hashed on every build."""
+    from seqpipe.filesystem import change_stamp
+
+    index_path = cache / "inputs.json"
+    try:
+        index: dict[str, Any] = json.loads(index_path.read_text())
+    except (OSError, ValueError):
+        index = {}
+    out = []
+    changed = False
+    for f in files:
+        stamp = change_stamp(f)
+        rec = index.get(str(f))
+        if stamp is not None and rec and rec.get("stamp") == stamp:
+            out.append(rec["hash"])
+            continue
+        h = hash_file(f)
+        if stamp is not None:
+            index[str(f)] = {"stamp": stamp, "hash": h}
+            changed = True
+        out.append(h)
+    if changed:
+        cache.mkdir(parents=True, exist_ok=True)
+        tmp = index_path.with_suffix(".tmp")
+        tmp.write_text(json.dumps(index, sort_keys=True))
+        os.replace(tmp, index_path)
+    return out
+
+
+# -- the values phases pass on -------------------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class Context:
+    """What every phase reads: the recipe, where tasks run, the parts cache, whether bars show."""
+
+    recipe: Recipe
+    pool: TaskPool
+    cache: Path
+    show: bool
+
+
+@dataclass(frozen=True, slots=True)
+class Plan:
+    """The inputs and one ingest task per part, in corpus order."""
+
+    inputs: tuple[dict[str, Any], ...]  # the manifest's entries: path, size, hash
+    tasks: tuple[IngestTask, ...]
+    weights: tuple[int, ...]  # approximate bytes per part, for the progress bar
+    input_bytes: int
+    build_key: str  # names this build's staging directory
+
+
+@dataclass(frozen=True, slots=True)
+class Ingested:
+    """Every part's metadata (in plan order), and which parts are still to be counted."""
+
+    parts: tuple[PartMeta, ...]
+    reused: int  # parts found in the cache
+    recount: tuple[int, ...]  # parts their ingest task did not count (reused ones; all with dedupe)
+
+
+@dataclass(frozen=True, slots=True)
+class Kept:
+    """Which documents stay: per part a bool per document (None: all), and how many were dropped."""
+
+    keeps: tuple[np.ndarray | None, ...]
+    duplicates: int
+
+
+@dataclass(frozen=True, slots=True)
+class Fitted:
+    """The vocabulary's size, the ids' dtype, and the tokenizer's files in the stage."""
+
+    vocab_size: int
+    dtype: str
+    files: tuple[str, ...]  # besides vocab.arrow
+
+
+@dataclass(frozen=True, slots=True)
+class Sharded:
+    """The manifest's ``splits`` and the summary's per-split figures."""
+
+    splits: dict[str, Any]
+    summary: dict[str, Any]
+
+
+# -- the phases ------------------------------------------------------------------------------------
+
+
+def _build(
+    recipe: Recipe, out: Path, pool: TaskPool, cache: Path, show: bool, part_bytes: int, t0: float
+) -> BuildResult:
+    """The phases in order, each handing the next what it needs."""
+    ctx = Context(recipe, pool, cache, show)
+    plan = plan_build(recipe, cache, part_bytes)
+    stage = _fresh_stage(out, plan.build_key[:16])
+    merger = CountMerger()  # parts counted by their ingest task arrive first, the others in count
+    ingested = ingest(ctx, plan, merger)
+    kept = assign(ctx, plan)
+    counts = count(ctx, plan, ingested, kept, merger)
+    fitted = fit(recipe, counts, stage)
+    encoded = encode(ctx, plan, kept, fitted, stage)
+    sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage), stage)
+    manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage))
+    publish_dataset(out, stage, manifest, fitted)
+    return BuildResult(out, manifest, time.perf_counter() - t0, plan.input_bytes, len(plan.tasks), ingested.reused)
+
+
+def _input_files(recipe: Recipe) -> list[tuple[int, Path | str]]:
+    """(source index, file) for each input, in recipe order then each source's sorted order; a
+    file two sources match is read once, by the first."""
+    from seqpipe.filesystem import identity
+
+    files: list[tuple[int, Path | str]] = []  # a local Path, or a filesystem URI
+    seen: set[Path | str] = set()
+    for si, source in enumerate(recipe.sources):
+        for f in source.resolve(recipe.root):
+            if identity(f) not in seen:
+                seen.add(identity(f))
+                files.append((si, f))
+    if not files:
+        raise SourceMissingError(str(recipe.root), "the recipe's sources match no file")
+    return files
+
+
+def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
+    """Resolve the inputs, hash them, and cut each into parts of about ``part_bytes``."""
+    from seqpipe.filesystem import file_size, is_uri
+
+    files = _input_files(recipe)
+    hashes = _input_hashes([f for _, f in files], cache)
+    sizes = [file_size(f) for _, f in files]
+    # a URI input is recorded as the URI; a local one relative to the recipe's directory
+    inputs = tuple(
+        {"path": str(f) if is_uri(f) else os.path.relpath(f, recipe.root).replace(os.sep, "/"), "size": sz, "hash": h}
+        for (_, f), sz, h in zip(files, sizes, hashes, strict=True)
+    )
+    tasks: list[IngestTask] = []
+    weights: list[int] = []
+    for ii, ((si, f), h) in enumerate(zip(files, hashes, strict=True)):
+        parts = recipe.sources[si].plan(f, part_bytes)
+        for part in parts:
+            tasks.append(IngestTask(recipe, si, ii, str(f), part, part_key(recipe, si, h, part), str(cache)))
+            weights.append(sizes[ii] // max(len(parts), 1))
+    build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes})
+    return Plan(inputs, tuple(tasks), tuple(weights), sum(sizes), build_key)
+
+
+def _has_dedupe(recipe: Recipe) -> bool:
+    return any(getattr(s, "is_dedupe", False) for s in recipe.clean)
+
+
+def _merge_arrived(merger: CountMerger, _: int, meta: PartMeta) -> tuple[PartMeta, bool]:
+    """Merge the counts an ingest task delivered as they arrive (the driver keeps no pile of
+    them); keep the part's metadata without them, and whether there were any."""
+    if meta.counts is None:
+        return meta, False
+    merger.add(meta.counts)
+    return dataclasses.replace(meta, counts=None), True
+
+
+def _documents(meta: PartMeta) -> int:
+    return meta.documents
+
+
+def ingest(ctx: Context, plan: Plan, merger: CountMerger) -> Ingested:
+    """Ingest every part not in the cache. Without a dedupe step every document is kept, so a
+    fresh part is counted by its own ingest task while its arrays are in memory (into
+    ``merger``); the rest are counted in the count phase."""
+    cache = str(ctx.cache)
+    metas = [load_part_meta(cache, t.key) for t in plan.tasks]
+    todo = [i for i, m in enumerate(metas) if m is None]
+    dedupe = _has_dedupe(ctx.recipe)
+    threads = ctx.pool.threads.for_ingest(len(todo))
+    tasks = [dataclasses.replace(plan.tasks[i], threads=threads, count_order=None if dedupe else i) for i in todo]
+    merger.expect(0 if dedupe else len(todo))
+    view = View("reading", unit="B", weights=[plan.weights[i] for i in todo], tally=("documents", _documents))
+    fresh = run(ctx.pool.executor, ctx.show, ingest_part, tasks, view, each=partial(_merge_arrived, merger))
+    counted: set[int] = set()
+    for i, (meta, was_counted) in zip(todo, fresh, strict=True):
+        metas[i] = meta
+        if was_counted:
+            counted.add(i)
+    parts = tuple(m for m in metas if m is not None)
+    if sum(m.documents for m in parts) == 0:
+        raise EmptyCorpusError(
+            "no document is left after reading and cleaning: check the sources' "
+            "globs and the clean steps (e.g. min_length)"
+        )
+    recount = tuple(i for i in range(len(plan.tasks)) if i not in counted)
+    return Ingested(parts, len(plan.tasks) - len(todo), recount)
+
+
+def assign(ctx: Context, plan: Plan) -> Kept:
+    """Which documents stay: with a dedupe step, an exact duplicate keeps its first occurrence
+    in corpus order (splits are computed in the tasks, from each document's hash)."""
+    if not _has_dedupe(ctx.recipe):
+        return Kept((None,) * len(plan.tasks), 0)
+    # the one per-document array the driver holds: 16 bytes per document, only with dedupe
+    keys = [fixed16(read_part_docs(str(ctx.cache), t.key), "dedupe") for t in plan.tasks]
+    keep_all = first_occurrence(np.concatenate(keys))
+    bounds = np.cumsum([0] + [len(k) for k in keys])
+    keeps = tuple(keep_all[bounds[i] : bounds[i + 1]] for i in range(len(keys)))
+    return Kept(keeps, int((~keep_all).sum()))
+
+
+def _merge_counted(merger: CountMerger, _: int, counted: tuple[pa.Table, int]) -> None:
+    merger.add(counted)
+
+
+def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: CountMerger) -> pa.Table:
+    """Count the parts not counted at ingest into ``merger``; the corpus-wide ``(key, count)``
+    table in first-occurrence order."""
+    cache = str(ctx.cache)
+    tasks = [CountTask(cache, plan.tasks[i].key, i, ctx.recipe, kept.keeps[i]) for i in ingested.recount]
+    merger.expect(len(tasks))
+    run(ctx.pool.executor, ctx.show, count_part, tasks, View("counting"), each=partial(_merge_counted, merger))
+    if merger.train_documents == 0:
+        raise EmptyCorpusError("the train split is empty: add documents or raise splits.train")
+    return merger.result()
+
+
+def fit(recipe: Recipe, counts: pa.Table, stage: Path) -> Fitted:
+    """Fit the tokenizer's vocabulary (and learned state) on the counts; store both in the stage."""
+    encoder = recipe.tokenizer.fit(counts, recipe.vocab)
+    vocab = encoder.vocabulary
+    for stale in (VOCAB_FILE, *OPTIONAL_TOP):
+        (stage / stale).unlink(missing_ok=True)
+    vocab.save(stage / VOCAB_FILE)
+    files = tuple(encoder.save(stage))
+    return Fitted(len(vocab), id_dtype(len(vocab)).name, files)
+
+
+def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) -> tuple[dict[str, dict[str, int]], ...]:
+    """Encode every part's kept documents per split; per part, the totals per split it holds."""
+    shutil.rmtree(encoded_dir(str(stage)), ignore_errors=True)
+    tasks = [
+        EncodeTask(str(ctx.cache), t.key, str(stage), ctx.recipe, i, t.input_index, kept.keeps[i], fitted.dtype)
+        for i, t in enumerate(plan.tasks)
+    ]
+    return tuple(run(ctx.pool.executor, ctx.show, encode_part, tasks, View("encoding")))
+
+
+def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path) -> Sharded:
+    """Write every shard (tasks) and, meanwhile in this thread, the docs tables."""
+    tasks = [task for layout in layouts for task in layout.shards]
+    view = View("writing shards", unit="shard")
+    results, docs = run_beside(
+        ctx.pool.executor, ctx.show, write_shard_task, tasks, view, partial(write_docs_tables, stage, layouts)
+    )
+    shutil.rmtree(encoded_dir(str(stage)), ignore_errors=True)
+    splits: dict[str, Any] = {}
+    at = 0
+    for layout, table in zip(layouts, docs, strict=True):
+        splits[layout.name] = split_entry(layout, table, results[at : at + len(layout.shards)])
+        at += len(layout.shards)
+    return Sharded(splits, {layout.name: split_summary(layout.totals) for layout in layouts})
+
+
+def _summed(tables: Iterator[dict[str, int]]) -> dict[str, int]:
+    total: dict[str, int] = {}
+    for table in tables:
+        for name, value in table.items():
+            total[name] = total.get(name, 0) + value
+    return total
+
+
+def _stage_file(stage: Path, rel: str) -> dict[str, Any]:
+    return {"path": rel, "bytes": (stage / rel).stat().st_size, "hash": hash_file(stage / rel)}
+
+
+def _manifest_body(
+    recipe: Recipe, plan: Plan, ingested: Ingested, kept: Kept, fitted: Fitted, sharded: Sharded, stage: Path
+) -> dict[str, Any]:
+    """The manifest before sealing: what was read, fitted and written, and the build's figures."""
+    return {
+        "format": FORMAT,
+        "seqpipe_version": __version__,
+        "recipe": recipe.to_dict(),
+        "recipe_fingerprint": recipe.fingerprint,
+        "inputs": list(plan.inputs),
+        "tokenizer": {
+            "kind": recipe.tokenizer.kind,
+            "vocab_size": fitted.vocab_size,
+            "files": [_stage_file(stage, f) for f in fitted.files],
+        },
+        "vocabulary": {**_stage_file(stage, VOCAB_FILE), "size": fitted.vocab_size},
+        "dtype": fitted.dtype,
+        "splits": sharded.splits,
+        "summary": {
+            "read": _summed(m.read for m in ingested.parts),
+            "dropped": _summed(m.dropped for m in ingested.parts),
+            "duplicates_dropped": kept.duplicates,
+            "splits": sharded.summary,
+        },
+    }
+
+
+def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fitted) -> None:
+    """Write the manifest into the stage and move everything into ``out``, the manifest last."""
+    (stage / MANIFEST_NAME).write_text(dumps(manifest))
+    entries = [VOCAB_FILE, *fitted.files, DOCS_DIR, SHARDS_DIR]
+    for gone in OPTIONAL_TOP:
+        if gone not in entries and (out / gone).exists():
+            (out / gone).unlink()
+    publish(out, stage, entries, MANIFEST_NAME)
+    shutil.rmtree(stage, ignore_errors=True)
+
+
+def _fresh_stage(out: Path, name: str) -> Path:
+    """This build's staging directory: other builds' stages and torn temporary files removed,
+    shards of an interrupted run of the same build kept (they are checked before reuse)."""
+    root = private_dir(out) / "stage"
+    root.mkdir(parents=True, exist_ok=True)
+    for other in root.iterdir():
+        if other.name != name:
+            shutil.rmtree(other, ignore_errors=True)
+    stage = root / name
+    stage.mkdir(exist_ok=True)
+    for tmp in stage.rglob(".*.tmp"):
+        tmp.unlink(missing_ok=True)
+    return stage
+
+
+__all__ = ["BuildResult", "build"]
