@@ -23,9 +23,9 @@ import regex
 
 from seqpipe._parse import parse_str
 from seqpipe.errors import RecipeError
-from seqpipe.tokenizers._common import as_string_array, segments_from_tokens
+from seqpipe.tokenizers._common import as_string_array, segments_from_tokens, stored_vocabulary
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, VocabEncoder
-from seqpipe.vocab import VocabSpec, Vocabulary, build_vocabulary
+from seqpipe.vocab import VocabSpec, build_vocabulary
 
 _WORD: Final = r"\p{L}\p{M}\p{N}_"
 # exactly the 29 code points for which str.isspace() is true (and Arrow's utf8 whitespace)
@@ -185,7 +185,7 @@ class WordTokenizer(Tokenizer):
         return WordEncoder(self, build_vocabulary(counts, spec))
 
     def load(self, directory: Path) -> Encoder:
-        return WordEncoder(self, Vocabulary.load(directory / "vocab.arrow"))
+        return WordEncoder(self, stored_vocabulary(directory))
 
 
 class WordEncoder(VocabEncoder):
