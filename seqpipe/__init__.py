@@ -11,28 +11,27 @@ The public API, in data-flow order::
 """
 
 import importlib as _importlib
-import sys as _sys
-import types as _types
 import typing as _typing
 
-__version__ = "0.1.0"  # build.py records it in manifests
+__version__ = "0.1.0"  # the build records it in manifests
 
 if _typing.TYPE_CHECKING:
-    from seqpipe.build import BuildResult, build
+    from seqpipe._build import BuildResult, build
+    from seqpipe._verify import VerifyReport, verify
     from seqpipe.dataset import Dataset, Split, load_tokenizer, open_dataset
     from seqpipe.errors import SeqpipeError
     from seqpipe.recipe import Recipe, load_recipe, parse_recipe
     from seqpipe.report import corpus_report, write_report
     from seqpipe.stream import TokenStream
-    from seqpipe.verify import VerifyReport, verify
     from seqpipe.windows import Batch, BatchStream, StreamState, stream_fingerprint
 
-# Each public name is imported from its module on first use, so `import seqpipe` costs almost
-# nothing and a process imports only what it uses: the command line starts its build workers
-# before it imports numpy and pyarrow, and a spawned worker imports what its tasks need.
-_HOME = {
-    "BuildResult": "build",
-    "build": "build",
+# Each public name is imported from its module on first use, so `import seqpipe` imports
+# neither numpy nor pyarrow: `seqpipe build --workers N` starts its workers before those
+# imports (DEVELOPERS.md, "Where the time goes"), and a spawned worker imports only what its
+# tasks need. A new public name goes here, in __all__ and in the TYPE_CHECKING imports.
+_HOME: _typing.Final = {
+    "BuildResult": "_build",
+    "build": "_build",
     "Dataset": "dataset",
     "Split": "dataset",
     "load_tokenizer": "dataset",
@@ -44,26 +43,13 @@ _HOME = {
     "corpus_report": "report",
     "write_report": "report",
     "TokenStream": "stream",
-    "VerifyReport": "verify",
-    "verify": "verify",
+    "VerifyReport": "_verify",
+    "verify": "_verify",
     "Batch": "windows",
     "BatchStream": "windows",
     "StreamState": "windows",
     "stream_fingerprint": "windows",
 }
-# Functions named like the module they live in: importing the submodule makes Python bind the
-# module to the package attribute of the same name, which must stay the function.
-_SHADOWED = frozenset({"build", "verify"})
-
-
-class _Package(_types.ModuleType):
-    def __setattr__(self, name: str, value: object) -> None:
-        if name in _SHADOWED and isinstance(value, _types.ModuleType):
-            return  # the import system binding seqpipe.build / seqpipe.verify (still in sys.modules)
-        super().__setattr__(name, value)
-
-
-_sys.modules[__name__].__class__ = _Package
 
 
 def __getattr__(name: str) -> object:

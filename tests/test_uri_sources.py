@@ -9,7 +9,6 @@ made-up scheme (no network here).
 from __future__ import annotations
 
 import gzip
-import importlib
 import json
 import random
 import re
@@ -23,6 +22,7 @@ import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 import pytest
 
+from seqpipe import _build as build_module
 from seqpipe import filesystem
 from seqpipe._hashing import hash_file
 from seqpipe.build import BuildResult, build
@@ -56,7 +56,6 @@ WORDS = (
     "keel",
     "oar",
 )
-build_module = importlib.import_module("seqpipe.build")  # the module: seqpipe.build is also a function name
 MEM = "memtest://bucket"  # a scheme pyarrow does not know: only our registration serves it
 
 KINDS: dict[str, tuple[str, str]] = {  # kind -> (glob under the corpus root, extra recipe keys)
