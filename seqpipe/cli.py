@@ -31,8 +31,8 @@ def cmd_build(args: argparse.Namespace) -> int:
 
     keep_freed_memory()  # this process is ours: reuse freed arrays' pages (see executors.py)
     # --workers N > 1: start the spawned workers first, so their start-up (an interpreter and
-    # the numpy, pyarrow and seqpipe imports, about 0.4 s) runs while this process imports
-    # the same modules and reads the recipe, instead of after the build has begun
+    # the numpy, pyarrow and seqpipe imports) runs while this process imports the same modules
+    # and reads the recipe, instead of after the build has begun
     workers = args.workers
     early = workers is not None and workers > 1 and not args.dask_scheduler
     with executor_for(None, workers) if early else nullcontext(None) as pool:
