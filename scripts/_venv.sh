@@ -1,5 +1,5 @@
-# Sourced by scripts/demo, scripts/test and scripts/bench: create or update .venv.
-# Usage: . scripts/_venv.sh EXTRAS   (EXTRAS like "test" or "")
+# Sourced by scripts/demo, scripts/test, scripts/bench and scripts/check: create or update .venv.
+# Usage: . scripts/_venv.sh EXTRAS   (EXTRAS like "test", "test,dev" or "")
 set -euo pipefail
 root=$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)
 venv="$root/.venv"
@@ -9,7 +9,9 @@ if [ ! -x "$venv/bin/python" ]; then
   echo "seqpipe: creating $venv" >&2
   "$py" -m venv "$venv"
 fi
-stamp="$venv/.seqpipe-installed-${extras:-base}"
+# one stamp per set of extras: "test,dev" -> .seqpipe-installed-test-dev
+tag="${extras//,/-}"
+stamp="$venv/.seqpipe-installed-${tag:-base}"
 if [ ! -f "$stamp" ] || [ "$root/pyproject.toml" -nt "$stamp" ]; then
   echo "seqpipe: installing seqpipe${extras:+[$extras]} into $venv" >&2
   "$venv/bin/python" -m pip install --quiet --disable-pip-version-check --upgrade pip >/dev/null 2>&1 || true

@@ -11,11 +11,9 @@ The public API, in data-flow order::
 """
 
 import importlib as _importlib
-import sys as _sys
-import types as _types
 import typing as _typing
 
-__version__ = "0.1.0"  # _build.py records it in manifests
+__version__ = "0.1.0"  # the build records it in manifests
 
 if _typing.TYPE_CHECKING:
     from seqpipe._build import BuildResult, build
@@ -27,10 +25,11 @@ if _typing.TYPE_CHECKING:
     from seqpipe.stream import TokenStream
     from seqpipe.windows import Batch, BatchStream, StreamState, stream_fingerprint
 
-# Each public name is imported from its module on first use, so `import seqpipe` costs almost
-# nothing and a process imports only what it uses: the command line starts its build workers
-# before it imports numpy and pyarrow, and a spawned worker imports what its tasks need.
-_HOME = {
+# Each public name is imported from its module on first use, so `import seqpipe` imports
+# neither numpy nor pyarrow: `seqpipe build --workers N` starts its workers before those
+# imports (DEVELOPERS.md, "Where the time goes"), and a spawned worker imports only what its
+# tasks need. A new public name goes here, in __all__ and in the TYPE_CHECKING imports.
+_HOME: _typing.Final = {
     "BuildResult": "_build",
     "build": "_build",
     "Dataset": "dataset",
@@ -51,19 +50,6 @@ _HOME = {
     "StreamState": "windows",
     "stream_fingerprint": "windows",
 }
-# Functions named like the module they live in: importing the submodule makes Python bind the
-# module to the package attribute of the same name, which must stay the function.
-_SHADOWED: frozenset[str] = frozenset()
-
-
-class _Package(_types.ModuleType):
-    def __setattr__(self, name: str, value: object) -> None:
-        if name in _SHADOWED and isinstance(value, _types.ModuleType):
-            return  # the import system binding seqpipe.verify (still in sys.modules)
-        super().__setattr__(name, value)
-
-
-_sys.modules[__name__].__class__ = _Package
 
 
 def __getattr__(name: str) -> object:

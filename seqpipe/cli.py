@@ -31,8 +31,8 @@ def cmd_build(args: argparse.Namespace) -> int:
 
     keep_freed_memory()  # this process is ours: reuse freed arrays' pages (see executors.py)
     # --workers N > 1: start the spawned workers first, so their start-up (an interpreter and
-    # the numpy, pyarrow and seqpipe imports, about 0.4 s) runs while this process imports
-    # the same modules and reads the recipe, instead of after the build has begun
+    # the numpy, pyarrow and seqpipe imports) runs while this process imports the same modules
+    # and reads the recipe, instead of after the build has begun
     workers = args.workers
     early = workers is not None and workers > 1 and not args.dask_scheduler
     with task_pool(None, workers) if early else nullcontext(None) as pool:
@@ -213,7 +213,17 @@ def parser() -> argparse.ArgumentParser:
 
     ap.add_argument("--version", action="version", version=f"seqpipe {__version__}")
     sub = ap.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    _add_build(sub)  # the commands in the order the help lists them
+    _add_checks(sub)
+    _add_demo(sub)
+    _add_reading(sub)
+    return ap
 
+
+Subparsers = argparse._SubParsersAction  # argparse has no public name for the add_subparsers() result
+
+
+def _add_build(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p = sub.add_parser("build", help="build a dataset from a TOML recipe")
     p.add_argument("recipe", help="recipe file (TOML)")
     p.add_argument(
@@ -241,6 +251,8 @@ def parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     p.set_defaults(fn=cmd_build)
 
+
+def _add_checks(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p = sub.add_parser("verify", help="recompute every hash of a dataset")
     p.add_argument("directory", help="dataset directory or filesystem URI")
     p.add_argument("--json", action="store_true", help="machine-readable report")
@@ -253,12 +265,16 @@ def parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true")
     p.set_defaults(fn=cmd_inspect)
 
+
+def _add_demo(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p = sub.add_parser("demo", help="write the demo corpus, build, verify, summarize")
     p.add_argument("directory", nargs="?", default="seqpipe-demo")
     p.add_argument("--workers", type=int, default=1)
     p.add_argument("--quiet", action="store_true")
     p.set_defaults(fn=cmd_demo)
 
+
+def _add_reading(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p = sub.add_parser("batches", help="show or fingerprint the batch stream of a split")
     p.add_argument("directory", help=URI_DIR_HELP)
     p.add_argument("--split", default="train")
@@ -293,7 +309,6 @@ def parser() -> argparse.ArgumentParser:
     p.add_argument("directory")
     p.add_argument("ids", nargs="+", type=int)
     p.set_defaults(fn=cmd_decode)
-    return ap
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -77,8 +77,8 @@ class Mount:
 
 
 def pyarrow_fs() -> Any:
-    """``pyarrow.fs``, imported on first use: local builds never need it (it pulls in TLS and
-    the S3 module, about 26 ms of every worker's start)."""
+    """``pyarrow.fs``, imported on first use: local builds never need it, and it pulls in TLS
+    and the S3 module at every worker's start."""
     import pyarrow.fs
 
     return pyarrow.fs

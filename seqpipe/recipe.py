@@ -19,6 +19,7 @@ hashed into ``Recipe.fingerprint``.
 
 from __future__ import annotations
 
+import dataclasses
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -120,13 +121,11 @@ class Recipe:
         object.__setattr__(self, "root", Path(self.root))
         if not self.sources:
             raise RecipeError("sources", "at least one [[sources]] entry is required")
-        if getattr(self.tokenizer, "special_names", None) not in (None, self.vocab.specials):
+        tokenizer = self.tokenizer
+        names = getattr(tokenizer, "special_names", None)
+        if names not in (None, self.vocab.specials) and dataclasses.is_dataclass(tokenizer):
             # the tokenizer matches literal specials by name; the names live in [vocab]
-            import dataclasses
-
-            object.__setattr__(
-                self, "tokenizer", dataclasses.replace(self.tokenizer, special_names=self.vocab.specials)
-            )  # type: ignore[type-var]
+            object.__setattr__(self, "tokenizer", dataclasses.replace(tokenizer, special_names=self.vocab.specials))
         dedupes = [i for i, s in enumerate(self.clean) if getattr(s, "is_dedupe", False)]
         if len(dedupes) > 1:
             raise RecipeError(f"clean[{dedupes[1]}]", "only one dedupe step is allowed")
@@ -156,8 +155,6 @@ class Recipe:
 
     def replace(self, **changes: Any) -> Recipe:
         """A copy with some sections replaced (validated again)."""
-        import dataclasses
-
         return dataclasses.replace(self, **changes)
 
     @classmethod

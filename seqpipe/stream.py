@@ -146,8 +146,8 @@ class TokenStream:
         if view is None:
             chunk = self._chunks[c]
             if chunk.flags.c_contiguous:
-                # the ndarray constructor is ~30x cheaper than sliding_window_view, which matters
-                # when the first batch of a split touches every shard
+                # the ndarray constructor instead of sliding_window_view, whose checks cost far
+                # more when the first batch of a split touches every shard (DEVELOPERS.md)
                 step = chunk.itemsize
                 view = np.ndarray((len(chunk) - length + 1, length), chunk.dtype, buffer=chunk, strides=(step, step))
                 view.flags.writeable = False

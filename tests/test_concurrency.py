@@ -3,7 +3,6 @@ a stale one is taken over), and `verify --against` / `--expect` / `--json` behav
 
 from __future__ import annotations
 
-import importlib
 import json
 import os
 import shutil
@@ -18,6 +17,7 @@ import numpy as np
 import pytest
 from conftest import REPO, build_dir, run_cli, write_project
 
+from seqpipe import _build as build_module
 from seqpipe import build
 from seqpipe._hashing import hash_array, hash_file
 from seqpipe._verify import verify
@@ -26,9 +26,6 @@ from seqpipe.manifest import MANIFEST_NAME, dumps, seal
 from seqpipe.recipe import load_recipe
 from seqpipe.shards import read_shard, write_shard
 from seqpipe.staging import PRIVATE
-
-# the module that holds build(), for its internals
-BUILD_MODULE = importlib.import_module("seqpipe._build")
 
 
 def build_args(recipe: Path, out: Path) -> list[str]:
@@ -47,14 +44,14 @@ def test_second_build_fails_fast_while_first_holds_the_lock(
     BuildLockedError; the first build then completes and verifies."""
     out = tmp_path / "out"
     inside, release = threading.Event(), threading.Event()
-    real = BUILD_MODULE._input_hashes
+    real = build_module._input_hashes
 
     def paused(*args: Any, **kwargs: Any) -> Any:
         inside.set()
         assert release.wait(timeout=120)
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(BUILD_MODULE, "_input_hashes", paused)
+    monkeypatch.setattr(build_module, "_input_hashes", paused)
     result: dict[str, Any] = {}
 
     def first() -> None:

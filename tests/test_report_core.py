@@ -7,10 +7,10 @@ import sys
 from pathlib import Path
 
 import pytest
+from memory_dataset import MemoryDataset, dataset_from_documents
 
 from seqpipe.errors import RecipeError
-from seqpipe.report import corpus_report, dataset_from_documents, write_dataset_report, write_report
-from seqpipe.report.memory import MemoryDataset
+from seqpipe.report import corpus_report, write_dataset_report, write_report
 from seqpipe.report.render import PLOTS_HINT
 
 TRAIN = ["the cat sat on the mat", "the dog sat on the log", "the cat saw the dog"]
@@ -91,7 +91,8 @@ def test_top_k_limits_the_ngram_lists() -> None:
 def test_token_stream_input_is_read_like_an_array() -> None:
     """A split whose stream is a seqpipe.stream.TokenStream over several chunks reports the same
     figures as the same ids held in one array."""
-    from seqpipe.report.memory import MemorySplit
+    from memory_dataset import MemorySplit
+
     from seqpipe.stream import TokenStream
 
     ds = small()
@@ -189,8 +190,8 @@ def test_vocabulary_too_large_for_trigram_keys() -> None:
     perplexities are left out with a note, everything else is reported."""
     import numpy as np
     import pyarrow as pa
+    from memory_dataset import MemorySplit, SpacedEncoder
 
-    from seqpipe.report.memory import MemorySplit, SpacedEncoder
     from seqpipe.tokenizers.words import WordTokenizer
     from seqpipe.vocab import Vocabulary
 

@@ -5,8 +5,9 @@ from __future__ import annotations
 import pyarrow as pa
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from memory_dataset import dataset_from_documents
 
-from seqpipe.report import corpus_report, dataset_from_documents
+from seqpipe.report import corpus_report
 from seqpipe.vocab import VocabSpec
 
 

@@ -8,10 +8,10 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from memory_dataset import MemoryDataset, dataset_from_documents
 
-from seqpipe.report import corpus_report, dataset_from_documents, lm
+from seqpipe.report import corpus_report, lm
 from seqpipe.report.corpus import Roles, SplitTokens, load_split
-from seqpipe.report.memory import MemoryDataset
 from seqpipe.report.ngrams import key_bits
 
 

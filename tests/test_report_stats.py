@@ -10,8 +10,9 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from memory_dataset import dataset_from_documents
 
-from seqpipe.report import corpus_report, dataset_from_documents
+from seqpipe.report import corpus_report
 from seqpipe.report.stats import length_summary, zipf_fit
 
 TRAIN = ["the cat sat on the mat", "the dog sat on the log", "the cat saw the dog"]

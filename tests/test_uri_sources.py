@@ -9,7 +9,6 @@ made-up scheme (no network here).
 from __future__ import annotations
 
 import gzip
-import importlib
 import json
 import random
 import re
@@ -24,6 +23,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from seqpipe import BuildResult, build, filesystem
+from seqpipe import _build as build_module
 from seqpipe._hashing import hash_file
 from seqpipe.errors import RecipeError, SourceError, SourceMissingError
 from seqpipe.executors import InlineExecutor
@@ -55,7 +55,7 @@ WORDS = (
     "keel",
     "oar",
 )
-build_module = importlib.import_module("seqpipe._build")  # the build module (private)
+
 MEM = "memtest://bucket"  # a scheme pyarrow does not know: only our registration serves it
 
 KINDS: dict[str, tuple[str, str]] = {  # kind -> (glob under the corpus root, extra recipe keys)

@@ -17,7 +17,7 @@ from seqpipe.clean.base import CleanStep, as_documents, re2_class
 @functools.cache
 def _classes() -> tuple[str, str]:
     """RE2 classes of Python's whitespace (str.isspace / str.split), and of it without the line
-    feed; found on first use by scanning every code point (about 0.1 s, kept off import)."""
+    feed; found on first use by scanning every code point (kept off import: most builds never need it)."""
     whitespace = [chr(cp) for cp in range(sys.maxunicode + 1) if chr(cp).isspace()]
     return re2_class(whitespace), re2_class([c for c in whitespace if c != "\n"])
 

@@ -6,6 +6,5 @@
 """
 
 from seqpipe.report.core import corpus_report, write_dataset_report, write_report
-from seqpipe.report.memory import MemoryDataset, dataset_from_documents
 
-__all__ = ["MemoryDataset", "corpus_report", "dataset_from_documents", "write_dataset_report", "write_report"]
+__all__ = ["corpus_report", "write_dataset_report", "write_report"]

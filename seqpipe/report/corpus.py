@@ -2,7 +2,7 @@
 
 The report works on any object with the attributes of :class:`seqpipe.dataset.Dataset`
 that it uses (:class:`DatasetLike`), so it runs on a built dataset directory and on
-the in-memory stand-in of :mod:`seqpipe.report.memory` alike.
+the tests' in-memory stand-in alike.
 
 A document's row in the docs table spans its begin/end markers when the build adds
 them; the report strips a leading begin id and a trailing end id per document and

@@ -110,6 +110,6 @@ def shared_ngrams(train_hashes: np.ndarray, other: SplitTokens, n: int) -> dict[
 def train_window_hashes(train: SplitTokens, n: int) -> np.ndarray:
     """Distinct hashes of the train split's length-n windows (sorted)."""
     hashes = window_hashes(train.ids, n, starts=train.content_starts, lengths=train.content_lengths)
-    hashes.sort()  # sort-based: numpy's hash-based unique is several times slower here
+    hashes.sort()  # sort-based: numpy's unique is slower on these hashes (DEVELOPERS.md)
     distinct: np.ndarray = runs(hashes)[0]
     return distinct

@@ -88,8 +88,7 @@ def positions(sorted_keys: np.ndarray, query: np.ndarray) -> np.ndarray:
     """Index of each query in ``sorted_keys``, or -1 where it is absent.
 
     The queries are searched in sorted order: numpy's binary search then starts from
-    the previous answer and stays in cache, several times faster than random order
-    on large tables.
+    the previous answer and stays in cache, which random order on a large table does not.
     """
     if len(sorted_keys) == 0 or len(query) == 0:
         return np.full(len(query), -1, dtype=np.int64)

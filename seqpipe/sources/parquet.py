@@ -30,7 +30,7 @@ class ParquetSource(RecordSource):
     kind: ClassVar[str] = "parquet"
 
     def _open(self, path: SourcePath) -> pq.ParquetFile:
-        import pyarrow.parquet as pq  # on first use: it pulls in pyarrow.fs (about 20 ms per process)
+        import pyarrow.parquet as pq  # on first use: it pulls in pyarrow.fs, which other kinds skip
 
         return open_or_fail(lambda: pq.ParquetFile(open_input_file(path)), path, "Parquet file")
 

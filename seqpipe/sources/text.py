@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import re
 from collections.abc import Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import ClassVar, Final
 
 import pyarrow as pa
@@ -38,8 +38,8 @@ DOCUMENT_MODES: Final = ("file", "line", "paragraph")
 # Atomic group: "\r\n" is one line end, never a CR line end followed by an LF line end.
 _LE: Final = rb"(?>\r\n|\r|\n)"
 PARAGRAPH_SEPARATOR: Final = re.compile(_LE + rb"(?:[ \t\x0b\x0c]*+" + _LE + rb")+")
-# The same where no CR occurs: a literal first byte lets re skip ahead with a fast search
-# (about ten times the scanning speed of the alternation above).
+# The same where no CR occurs: a literal first byte lets re skip ahead with a fast search,
+# which the alternation above does not allow.
 _PARAGRAPH_SEPARATOR_LF: Final = re.compile(rb"\n(?:[ \t\x0b\x0c]*+\n)+")
 LINE_SEPARATOR: Final = re.compile(rb"[\r\n]+")
 _LINE: Final = re.compile(rb"[^\r\n]+")
@@ -177,82 +177,17 @@ class TextSource(Source):
         """``slow`` keeps to the per-document path (the tests compare it with the vectorized one)."""
         codec = codec_for(path, self.compression)
         finisher = DocumentFinisher(self, path, stats, compressed=codec is not None)
-        line_mode = self.document == "line"
-        separator = LINE_SEPARATOR if line_mode else PARAGRAPH_SEPARATOR
-        last_cut = _last_line_cut if line_mode else _last_paragraph_cut_re if slow else last_paragraph_cut
-        limit = self.max_document_bytes
-        buf = bytearray()
-        base = part.start  # absolute offset of buf[0]
-        tail = 0  # buf[tail:] is all ASCII whitespace: a separator may be starting there
-        first: int | None = None  # first non-blank byte of the document being read
-        first_scan = 0
-        skipping = False  # inside an oversize document, dropping bytes up to its end
-        kept: bytes | None = None  # its first limit + 1 bytes, for oversize = "truncate"
-        kept_at = 0
-        blocks = read_blocks(path, codec, part.start, part.stop, batch_bytes)
+        reader = _SplitReader(self, finisher, _Window(base=part.start), slow=slow)
         seen = part.start
-        eof = False
-        while not eof:
-            item = next(blocks, None)
-            eof = item is None
-            block = b"" if item is None else item[1]
-            if item is not None:
-                base = item[0] - len(buf)
-                stats.bytes_read += item[0] + len(block) - seen  # a byte order mark counts too
-                seen = item[0] + len(block)
-            # A separator ending in the new bytes starts at or after the old blank tail.
-            frm = tail
-            old = len(buf)
-            buf += block
-            body = len(block.rstrip())
-            if body:
-                tail = old + body
-            out: list[pa.Array] = []
-            if skipping:
-                match = separator.search(buf)
-                if match is None and not eof:
-                    buf = drop_front(buf, tail)
-                    base += tail
-                    tail = 0
-                    continue
-                end = len(buf) if match is None else match.end()
-                if kept is not None:
-                    text = finisher.finish(kept, offset=kept_at)
-                    out.append(to_array([] if text is None else [text], stats))
-                    kept = None
-                skipping = False
-                buf = drop_front(buf, end)
-                base += end
-                tail = max(0, tail - end)
-                frm = 0
-            cut = len(buf) if eof else last_cut(buf, frm)
-            if cut:
-                out.append(self._chunk(buf, cut, base, finisher, slow=slow))
-                buf = drop_front(buf, cut)
-                base += cut
-                tail = max(0, tail - cut)
-                first, first_scan = None, 0
-            if not eof:
-                if first is None:
-                    found = _NONBLANK.search(buf, first_scan)
-                    first, first_scan = (None, len(buf)) if found is None else (found.start(), 0)
-                # buf[first:tail] holds no separator, so it lies inside one document.
-                if first is not None and tail - first > limit:
-                    start = _line_start(buf, 0, first)
-                    if self.oversize == "error":
-                        raise finisher.oversize_error(None, offset=base + start)
-                    if self.oversize == "truncate":
-                        kept, kept_at = bytes(buf[start : start + limit + 1]), base + start
-                    else:
-                        stats.oversize_skipped += 1
-                    skipping = True
-                    buf = drop_front(buf, tail)
-                    base += tail
-                    tail = 0
-                    first, first_scan = None, 0
-            batch = out[0] if len(out) == 1 else pa.concat_arrays(out) if out else None
-            if batch is not None and len(batch):
+        for offset, block in read_blocks(path, codec, part.start, part.stop, batch_bytes):
+            stats.bytes_read += offset + len(block) - seen  # a byte order mark counts too
+            seen = offset + len(block)
+            batch = reader.feed(block, offset)
+            if batch is not None:
                 yield batch
+        batch = reader.finish()
+        if batch is not None:
+            yield batch
 
     def _chunk(
         self, buf: bytearray, cut: int, base: int, finisher: DocumentFinisher, *, slow: bool = False
@@ -274,3 +209,134 @@ class TextSource(Source):
                 if text is not None:
                     docs.append(text)
         return to_array(docs, finisher.stats)
+
+
+@dataclass(slots=True)
+class _Window:
+    """The read buffer of a line or paragraph reader and what is known about its bytes."""
+
+    base: int  # absolute offset of buf[0]
+    buf: bytearray = field(default_factory=bytearray)
+    tail: int = 0  # buf[tail:] is all ASCII whitespace: a separator may be starting there
+    first: int | None = None  # first non-blank byte of the document being read
+    first_scan: int = 0  # where the search for ``first`` resumes
+
+    def add(self, block: bytes, offset: int | None) -> int:
+        """Append ``block`` (read at ``offset``; None at the end of input) and return where a
+        separator ending in it can start: at or after the old blank tail."""
+        if offset is not None:
+            self.base = offset - len(self.buf)
+        frm = self.tail
+        old = len(self.buf)
+        self.buf += block
+        body = len(block.rstrip())
+        if body:
+            self.tail = old + body
+        return frm
+
+    def drop(self, n: int) -> None:
+        """Forget the first ``n`` bytes; the document being read starts afresh after them."""
+        self.buf = drop_front(self.buf, n)
+        self.base += n
+        self.tail = max(0, self.tail - n)
+        self.first, self.first_scan = None, 0
+
+    def document_start(self) -> int | None:
+        """The first non-blank byte of the document being read, if one has arrived."""
+        if self.first is None:
+            found = _NONBLANK.search(self.buf, self.first_scan)
+            self.first, self.first_scan = (None, len(self.buf)) if found is None else (found.start(), 0)
+        return self.first
+
+
+@dataclass(slots=True)
+class _SplitReader:
+    """Cuts a stream of blocks into batches of whole documents (``document = "line"`` or
+    ``"paragraph"``): each block is added, an oversize document being skipped is passed over,
+    the whole documents before the last separator are cut off, and a document that has grown
+    past ``max_document_bytes`` is refused, truncated or skipped."""
+
+    source: TextSource
+    finisher: DocumentFinisher
+    window: _Window
+    slow: bool = False
+    skipping: bool = False  # inside an oversize document, dropping bytes up to its end
+    kept: bytes | None = None  # its first limit + 1 bytes, for oversize = "truncate"
+    kept_at: int = 0
+
+    @property
+    def separator(self) -> re.Pattern[bytes]:
+        return LINE_SEPARATOR if self.source.document == "line" else PARAGRAPH_SEPARATOR
+
+    def feed(self, block: bytes, offset: int) -> pa.Array | None:
+        """The documents completed by ``block`` (read at ``offset``), if any."""
+        return self._step(block, offset)
+
+    def finish(self) -> pa.Array | None:
+        """The documents left at the end of the input."""
+        return self._step(b"", None)
+
+    def _step(self, block: bytes, offset: int | None) -> pa.Array | None:
+        eof = offset is None
+        window = self.window
+        frm = window.add(block, offset)
+        out: list[pa.Array] = []
+        if self.skipping:
+            end = self._oversize_end(eof)
+            if end is None:
+                window.drop(window.tail)
+                return None
+            out.extend(self._leave_oversize(end))
+            frm = 0
+        cut = len(window.buf) if eof else self._last_cut(frm)
+        if cut:
+            out.append(self.source._chunk(window.buf, cut, window.base, self.finisher, slow=self.slow))
+            window.drop(cut)
+        if not eof:
+            self._check_growing_document()
+        batch = out[0] if len(out) == 1 else pa.concat_arrays(out) if out else None
+        return batch if batch is not None and len(batch) else None
+
+    def _last_cut(self, frm: int) -> int:
+        """One past the last separator in the buffer that ends at or after ``frm`` (0: none)."""
+        if self.source.document == "line":
+            return _last_line_cut(self.window.buf, frm)
+        if self.slow:
+            return _last_paragraph_cut_re(self.window.buf, frm)
+        return last_paragraph_cut(self.window.buf, frm)
+
+    def _oversize_end(self, eof: bool) -> int | None:
+        """Where the oversize document being skipped ends, or None while it goes on."""
+        match = self.separator.search(self.window.buf)
+        if match is None:
+            return len(self.window.buf) if eof else None
+        return match.end()
+
+    def _leave_oversize(self, end: int) -> list[pa.Array]:
+        """Drop the skipped document's last bytes; its kept head, when truncating."""
+        out = []
+        if self.kept is not None:
+            text = self.finisher.finish(self.kept, offset=self.kept_at)
+            out.append(to_array([] if text is None else [text], self.finisher.stats))
+            self.kept = None
+        self.skipping = False
+        self.window.drop(end)
+        return out
+
+    def _check_growing_document(self) -> None:
+        """Refuse, keep the head of, or count a document that has grown past the limit."""
+        window = self.window
+        first = window.document_start()
+        limit = self.source.max_document_bytes
+        # buf[first:tail] holds no separator, so it lies inside one document.
+        if first is None or window.tail - first <= limit:
+            return
+        start = _line_start(window.buf, 0, first)
+        if self.source.oversize == "error":
+            raise self.finisher.oversize_error(None, offset=window.base + start)
+        if self.source.oversize == "truncate":
+            self.kept, self.kept_at = bytes(window.buf[start : start + limit + 1]), window.base + start
+        else:
+            self.finisher.stats.oversize_skipped += 1
+        self.skipping = True
+        window.drop(window.tail)

@@ -21,7 +21,7 @@ from __future__ import annotations
 import heapq
 import itertools
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pyarrow as pa
@@ -110,97 +110,135 @@ def learn(words: list[list[int]], freqs: Sequence[int], tokens: list[bytes], *, 
     with the true key; a pair is pushed once when it appears, so each pair has
     one live entry.
     """
-    sizes = [len(t) for t in tokens]  # bytes per id
-    count: dict[Pair, int] = {}
-    where: dict[Pair, set[int]] = {}
-    first: dict[Pair, tuple[int, int]] = {}
-    for w, sym in enumerate(words):
-        f = freqs[w]
-        offset = 0
-        for i in range(len(sym) - 1):
-            pair = (sym[i], sym[i + 1])
-            count[pair] = count.get(pair, 0) + f
-            rows = where.get(pair)
-            if rows is None:
-                where[pair] = {w}
-                first[pair] = (w, offset)
-            else:
-                rows.add(w)
-            offset += sizes[sym[i]]
-    heap = [(-c, *first[p], *p) for p, c in count.items() if c >= min_count]
-    heapq.heapify(heap)
-    del first
-
+    pairs = _Pairs(words, freqs, [len(t) for t in tokens])  # sizes: bytes per id
+    heap = pairs.index(min_count)
     merges: list[tuple[int, int, int]] = []
     merge_counts: list[int] = []
     while heap and len(tokens) < limit:
         neg, _, _, a, b = heapq.heappop(heap)
         pair = (a, b)
-        c = count.get(pair, 0)
+        c = pairs.count.get(pair, 0)
         if c < min_count:
             continue  # counts only fall, so the pair is done
         if c != -neg:
-            heapq.heappush(heap, (-c, *_first_of(pair, where[pair], words, sizes), a, b))
+            heapq.heappush(heap, (-c, *_first_of(pair, pairs.where[pair], words, pairs.sizes), a, b))
             continue
         z = len(tokens)
         tokens.append(tokens[a] + tokens[b])
-        sizes.append(sizes[a] + sizes[b])
+        pairs.sizes.append(pairs.sizes[a] + pairs.sizes[b])
         merges.append((a, b, z))
         merge_counts.append(c)
-        born: dict[Pair, tuple[int, int]] = {}  # new pair -> first occurrence
-        for w in sorted(where.pop(pair)):  # ascending rows: the first sighting is the first occurrence
-            old = words[w]
-            f = freqs[w]
-            n = len(old)
-            # merge, noting the pairs next to each merge site: only those change
-            new: list[int] = []
-            touched: set[int] = set()  # positions in ``old`` of pairs that vanish
-            sites: list[int] = []  # positions of ``z`` in ``new``
-            i = 0
-            while i < n:
-                if i + 1 < n and old[i] == a and old[i + 1] == b:
-                    touched.add(i - 1)
-                    touched.add(i + 1)
-                    sites.append(len(new))
-                    new.append(z)
-                    i += 2
-                else:
-                    new.append(old[i])
-                    i += 1
-            words[w] = new
-            lost: set[Pair] = set()
-            for j in touched:
-                if 0 <= j < n - 1:
-                    p = (old[j], old[j + 1])
-                    if p == pair:
-                        continue  # an overlapping run of the merged pair; dropped below
-                    left = count[p] - f
-                    if left:
-                        count[p] = left
-                    else:
-                        del count[p]
-                    lost.add(p)
-            if lost:
-                for p in lost.difference(itertools.pairwise(new)):
-                    rows = where[p]
-                    rows.discard(w)
-                    if not rows:
-                        del where[p]
-            last = -1
-            for k in sites:
-                for j in (k - 1, k):
-                    if last < j < len(new) - 1:  # ascending, each position once
-                        last = j
-                        p = (new[j], new[j + 1])
-                        count[p] = count.get(p, 0) + f
-                        where.setdefault(p, set()).add(w)
-                        if p not in born:
-                            born[p] = (w, sum(sizes[s] for s in new[:j]))
-        del count[pair]
-        for p, at in born.items():
-            if count[p] >= min_count:
-                heapq.heappush(heap, (-count[p], *at, *p))
+        for p, at in pairs.merge(pair, z).items():
+            if pairs.count[p] >= min_count:
+                heapq.heappush(heap, (-pairs.count[p], *at, *p))
     return Learned(merges=merges, merge_counts=merge_counts, tokens=tokens, words=words)
+
+
+HeapEntry = tuple[int, int, int, int, int]  # (-count, first row, first byte offset, left, right)
+
+
+@dataclass(slots=True)
+class _Pairs:
+    """Adjacent-pair statistics of the training chunks, kept current as merges rewrite them:
+    each pair's total count and the rows (chunks) holding it. ``words`` is updated in place."""
+
+    words: list[list[int]]
+    freqs: Sequence[int]
+    sizes: list[int]  # bytes per id
+    count: dict[Pair, int] = field(default_factory=dict)
+    where: dict[Pair, set[int]] = field(default_factory=dict)
+
+    def index(self, min_count: int) -> list[HeapEntry]:
+        """Count every pair; return the heap of those occurring ``min_count`` times."""
+        count, where, sizes = self.count, self.where, self.sizes
+        first: dict[Pair, tuple[int, int]] = {}
+        for w, sym in enumerate(self.words):
+            f = self.freqs[w]
+            offset = 0
+            for i in range(len(sym) - 1):
+                pair = (sym[i], sym[i + 1])
+                count[pair] = count.get(pair, 0) + f
+                rows = where.get(pair)
+                if rows is None:
+                    where[pair] = {w}
+                    first[pair] = (w, offset)
+                else:
+                    rows.add(w)
+                offset += sizes[sym[i]]
+        heap = [(-c, *first[p], *p) for p, c in count.items() if c >= min_count]
+        heapq.heapify(heap)
+        return heap
+
+    def merge(self, pair: Pair, merged: int) -> dict[Pair, tuple[int, int]]:
+        """Replace ``pair`` by ``merged`` in every chunk holding it; return the pairs that
+        appeared, each with its first occurrence (row, byte offset)."""
+        born: dict[Pair, tuple[int, int]] = {}
+        for w in sorted(self.where.pop(pair)):  # ascending rows: the first sighting is the first occurrence
+            old = self.words[w]
+            new, touched, sites = _merge_sites(old, pair, merged)
+            self.words[w] = new
+            self._lose(w, old, new, touched, pair)
+            self._gain(w, new, sites, born)
+        del self.count[pair]
+        return born
+
+    def _lose(self, w: int, old: list[int], new: list[int], touched: set[int], pair: Pair) -> None:
+        """Take row ``w``'s pairs that vanished around the merge sites out of the counts."""
+        count, f, n = self.count, self.freqs[w], len(old)
+        lost: set[Pair] = set()
+        for j in touched:
+            if 0 <= j < n - 1:
+                p = (old[j], old[j + 1])
+                if p == pair:
+                    continue  # an overlapping run of the merged pair; dropped in merge()
+                left = count[p] - f
+                if left:
+                    count[p] = left
+                else:
+                    del count[p]
+                lost.add(p)
+        if lost:
+            for p in lost.difference(itertools.pairwise(new)):
+                rows = self.where[p]
+                rows.discard(w)
+                if not rows:
+                    del self.where[p]
+
+    def _gain(self, w: int, new: list[int], sites: list[int], born: dict[Pair, tuple[int, int]]) -> None:
+        """Count row ``w``'s pairs next to each merged symbol; note first sightings in ``born``."""
+        count, where, sizes, f = self.count, self.where, self.sizes, self.freqs[w]
+        last = -1
+        for k in sites:
+            for j in (k - 1, k):
+                if last < j < len(new) - 1:  # ascending, each position once
+                    last = j
+                    p = (new[j], new[j + 1])
+                    count[p] = count.get(p, 0) + f
+                    where.setdefault(p, set()).add(w)
+                    if p not in born:
+                        born[p] = (w, sum(sizes[s] for s in new[:j]))
+
+
+def _merge_sites(old: list[int], pair: Pair, merged: int) -> tuple[list[int], set[int], list[int]]:
+    """``old`` with ``pair`` merged (left to right), the positions in ``old`` of the pairs that
+    vanish next to each merge, and the positions of ``merged`` in the result."""
+    a, b = pair
+    n = len(old)
+    new: list[int] = []
+    touched: set[int] = set()
+    sites: list[int] = []
+    i = 0
+    while i < n:
+        if i + 1 < n and old[i] == a and old[i + 1] == b:
+            touched.add(i - 1)
+            touched.add(i + 1)
+            sites.append(len(new))
+            new.append(merged)
+            i += 2
+        else:
+            new.append(old[i])
+            i += 1
+    return new, touched, sites
 
 
 # -- the symbols training starts from -------------------------------------------

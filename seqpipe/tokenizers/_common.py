@@ -11,6 +11,7 @@ import pyarrow.compute as pc
 
 from seqpipe.errors import TokenizerError
 from seqpipe.tokenizers.base import Segments
+from seqpipe.vocab import Vocabulary
 
 
 def as_string_array(texts: Sequence[str] | pa.Array) -> pa.Array:
@@ -39,9 +40,6 @@ def segments_from_tokens(flat: pa.Array, doc_lengths: np.ndarray) -> Segments:
     return Segments(keys, codes, doc_lengths.astype(np.int64))
 
 
-def load_vocabulary_encoder(tokenizer: object, directory: Path) -> object:
-    from seqpipe.tokenizers.base import Tokenizer, VocabEncoder
-    from seqpipe.vocab import Vocabulary
-
-    assert isinstance(tokenizer, Tokenizer)
-    return VocabEncoder(tokenizer, Vocabulary.load(directory / "vocab.arrow"))
+def stored_vocabulary(directory: Path) -> Vocabulary:
+    """The vocabulary a build stored in ``directory`` (every kind keeps it in the same file)."""
+    return Vocabulary.load(directory / "vocab.arrow")

@@ -52,7 +52,7 @@ from seqpipe.tokenizers._bpe_train import (
     rank_table,
     read_counts,
 )
-from seqpipe.tokenizers._common import segments_from_tokens
+from seqpipe.tokenizers._common import segments_from_tokens, stored_vocabulary
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, expand
 from seqpipe.vocab import VocabSpec, Vocabulary, specials_table
 
@@ -234,7 +234,7 @@ class BpeTokenizer(Tokenizer):
     # -- storage ---------------------------------------------------------------
     def load(self, directory: Path) -> BpeEncoder:
         """The encoder stored in ``directory`` (``vocab.arrow`` + ``tokenizer.arrow``), validated."""
-        vocabulary = Vocabulary.load(directory / "vocab.arrow")
+        vocabulary = stored_vocabulary(directory)
         path = directory / MERGES_FILE
         table = read_table(path)
 

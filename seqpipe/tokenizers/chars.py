@@ -19,9 +19,9 @@ import regex
 
 from seqpipe._parse import parse_str
 from seqpipe.errors import TokenizerError
-from seqpipe.tokenizers._common import as_string_array, segments_from_tokens
+from seqpipe.tokenizers._common import as_string_array, segments_from_tokens, stored_vocabulary
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, VocabEncoder
-from seqpipe.vocab import VocabSpec, Vocabulary, build_vocabulary
+from seqpipe.vocab import VocabSpec, build_vocabulary
 
 _GRAPHEME = regex.compile(r"\X")
 
@@ -63,4 +63,4 @@ class CharTokenizer(Tokenizer):
         return VocabEncoder(self, build_vocabulary(counts, spec))
 
     def load(self, directory: Path) -> Encoder:
-        return VocabEncoder(self, Vocabulary.load(directory / "vocab.arrow"))
+        return VocabEncoder(self, stored_vocabulary(directory))

@@ -13,9 +13,9 @@ from typing import ClassVar
 import numpy as np
 import pyarrow as pa
 
-from seqpipe.tokenizers._common import as_string_array
+from seqpipe.tokenizers._common import as_string_array, stored_vocabulary
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, VocabEncoder
-from seqpipe.vocab import VocabSpec, Vocabulary, build_vocabulary
+from seqpipe.vocab import VocabSpec, build_vocabulary
 
 _ALL_BYTES = [bytes([b]) for b in range(256)]
 
@@ -55,4 +55,4 @@ class ByteTokenizer(Tokenizer):
         return VocabEncoder(self, build_vocabulary(counts, spec, always=_ALL_BYTES if self.all_bytes else ()))
 
     def load(self, directory: Path) -> Encoder:
-        return VocabEncoder(self, Vocabulary.load(directory / "vocab.arrow"))
+        return VocabEncoder(self, stored_vocabulary(directory))

@@ -23,9 +23,9 @@ import regex
 
 from seqpipe._parse import parse_str
 from seqpipe.errors import RecipeError
-from seqpipe.tokenizers._common import as_string_array, segments_from_tokens
+from seqpipe.tokenizers._common import as_string_array, segments_from_tokens, stored_vocabulary
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, VocabEncoder
-from seqpipe.vocab import VocabSpec, Vocabulary, build_vocabulary
+from seqpipe.vocab import VocabSpec, build_vocabulary
 
 _WORD: Final = r"\p{L}\p{M}\p{N}_"
 # exactly the 29 code points for which str.isspace() is true (and Arrow's utf8 whitespace)
@@ -91,7 +91,7 @@ def _compute_classes(texts: pa.Array) -> _Classes | None:
         return None
     data = np.frombuffer(buf, dtype=np.uint8)[offsets[0] : offsets[-1]]
     doc_bytes = offsets - offsets[0]
-    cls = np.take(_ASCII_CLASS, data)  # np.take: about 1.7x faster than fancy indexing here
+    cls = np.take(_ASCII_CLASS, data)  # np.take, not fancy indexing: faster on batches (DEVELOPERS.md)
     high = np.flatnonzero(data >= 0xC0)  # first bytes of multi-byte sequences
     if len(high):
         cps = _decode_code_points(data, high)
@@ -144,7 +144,7 @@ def _segment_default(texts: pa.Array) -> tuple[pa.Array, np.ndarray]:
     nonempty = doc_bytes[:-1][doc_bytes[:-1] < len(data)]
     prev_word[nonempty] = False  # a token never runs across a document boundary
     starts_tok = is_lead & ((cls == _OTHER) | (is_word & ~prev_word))
-    # np.compress, not boolean indexing: about 3.4x faster on these byte arrays (numpy 2.4)
+    # np.compress, not boolean indexing: faster on these byte arrays (DEVELOPERS.md)
     squeezed = np.compress(keep, data)
     tok_offsets = np.flatnonzero(np.compress(keep, starts_tok))
     tok_offsets = np.append(tok_offsets, len(squeezed))
@@ -185,7 +185,7 @@ class WordTokenizer(Tokenizer):
         return WordEncoder(self, build_vocabulary(counts, spec))
 
     def load(self, directory: Path) -> Encoder:
-        return WordEncoder(self, Vocabulary.load(directory / "vocab.arrow"))
+        return WordEncoder(self, stored_vocabulary(directory))
 
 
 class WordEncoder(VocabEncoder):
