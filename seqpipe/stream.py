@@ -148,8 +148,9 @@ class TokenStream:
             if chunk.flags.c_contiguous:
                 # the ndarray constructor is ~30x cheaper than sliding_window_view, which matters
                 # when the first batch of a split touches every shard
-                step = chunk.itemsize
-                view = np.ndarray((len(chunk) - length + 1, length), chunk.dtype, buffer=chunk, strides=(step, step))
+                stride = chunk.itemsize
+                shape = (len(chunk) - length + 1, length)
+                view = np.ndarray(shape, chunk.dtype, buffer=chunk, strides=(stride, stride))
                 view.flags.writeable = False
             else:
                 view = sliding_window_view(chunk, length)
