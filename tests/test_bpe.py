@@ -271,6 +271,17 @@ def test_preset_chunks(name: str) -> None:
     assert doc_chunks(tok, ["", "x"]) == [[], [b"x"]]
 
 
+@settings(max_examples=100, deadline=None)
+@given(number=st.integers(0, 10**40))
+def test_digits_grouped_in_threes_from_the_right(number: int) -> None:
+    """The default preset cuts a digit run into threes from the right, the first group 1-3 digits."""
+    digits = str(number)
+    (chunks,) = doc_chunks(BpeTokenizer(), [digits])
+    first = len(digits) % 3 or 3
+    assert [len(c) for c in chunks] == [first] + [3] * ((len(digits) - first) // 3)
+    assert b"".join(chunks) == digits.encode()
+
+
 def test_default_chunking_is_a_named_preset() -> None:
     """The default tokenizer names its chunking preset; its plain (manifest) form holds no regex."""
     tok = BpeTokenizer()
