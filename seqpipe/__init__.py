@@ -6,7 +6,7 @@ The public API, in data-flow order::
     result = build(recipe, "data/ferry")            # -> BuildResult (manifest, summary)
     report = verify("data/ferry")                   # -> VerifyReport (problems, if any)
     ds = open_dataset("data/ferry")                 # -> Dataset (splits as token streams)
-    for batch in ds.split("train").batches(batch_size=32, steps=128, seed=1): ...
+    for batch in ds.split("train").batches(batch_size=32, window=128, seed=1): ...
     write_report("data/ferry", "data/ferry/report")
 """
 

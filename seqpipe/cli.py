@@ -13,9 +13,9 @@ import os
 import sys
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Any
+from typing import Any, Final
 
-from seqpipe.errors import EXIT_OK, EXIT_VERIFY_FAILED, SeqpipeError
+from seqpipe.errors import EXIT_OK, EXIT_VERIFY_FAILED, SeqpipeError, StreamError
 
 EXIT_INTERNAL = 70
 
@@ -143,30 +143,56 @@ def cmd_demo(args: argparse.Namespace) -> int:
         return EXIT_VERIFY_FAILED
     print(f"verify: ok ({report.files_checked} files)")
     print(
-        f"next: seqpipe inspect {out}   seqpipe batches {out} --split train --batch-size 2 --steps 16 "
+        f"next: seqpipe inspect {out}   seqpipe batches {out} --split train --batch-size 2 --window 16 "
         f"--limit 1   seqpipe report {out}"
     )
     return EXIT_OK
+
+
+# The batches command's options by the BatchStream parameter they set, so an error about a
+# parameter names the option the user typed.
+_BATCHES_OPTIONS: Final = {
+    "batch_size": "--batch-size",
+    "window": "--window",
+    "order": "--order",
+    "seed": "--seed",
+    "epoch": "--epoch",
+    "rank": "--rank",
+    "world_size": "--world-size",
+    "start_step": "--start-step",
+}
+
+
+def _option_error(exc: StreamError) -> StreamError:
+    """``exc`` with the parameter name at the start of its message replaced by the option name."""
+    key = exc.details.get("key")
+    if not isinstance(key, str) or key not in _BATCHES_OPTIONS or not exc.message.startswith(f"{key}:"):
+        return exc
+    return StreamError(_BATCHES_OPTIONS[key] + exc.message[len(key) :], key=key)
 
 
 def cmd_batches(args: argparse.Namespace) -> int:
     from seqpipe.batch_output import print_batches
     from seqpipe.dataset import open_dataset
 
-    ds = open_dataset(args.directory, verify_on_open=args.verify)
+    ds = open_dataset(args.directory, verify=args.verify)
     split = ds.split(args.split)
-    stream = split.batches(
-        batch_size=args.batch_size,
-        steps=args.steps,
-        order=args.order,
-        seed=args.seed,
-        epoch=args.epoch,
-        rank=args.rank,
-        world_size=args.world_size,
-        drop_last=not args.keep_last,
-        boundaries=args.boundaries,
-    )
-    print_batches(ds, stream, start=args.start, limit=args.limit, fmt=args.format)
+    try:
+        stream = split.batches(
+            batch_size=args.batch_size,
+            window=args.window,
+            order=args.order,
+            seed=args.seed,
+            epoch=args.epoch,
+            rank=args.rank,
+            world_size=args.world_size,
+            keep_last=args.keep_last,
+            boundaries=args.boundaries,
+            start_step=args.start_step,
+        )
+    except StreamError as exc:
+        raise _option_error(exc) from None
+    print_batches(ds, stream, limit=args.limit, fmt=args.format)
     return EXIT_OK
 
 
@@ -275,22 +301,48 @@ def _add_demo(sub: Subparsers[argparse.ArgumentParser]) -> None:
 
 
 def _add_reading(sub: Subparsers[argparse.ArgumentParser]) -> None:
+    from seqpipe.batch_output import FORMATS
+
     p = sub.add_parser("batches", help="show or fingerprint the batch stream of a split")
     p.add_argument("directory", help=URI_DIR_HELP)
-    p.add_argument("--split", default="train")
-    p.add_argument("--batch-size", type=int, required=True)
-    p.add_argument("--steps", type=int, required=True, help="window length T (tokens per row)")
-    p.add_argument("--order", choices=("random", "sequential"), default="random")
-    p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--epoch", type=int, default=0)
-    p.add_argument("--rank", type=int, default=0)
-    p.add_argument("--world-size", type=int, default=1)
-    p.add_argument("--start", type=int, default=0, help="first step to show (resume point)")
-    p.add_argument("--limit", type=int, default=None, help="at most this many batches")
-    p.add_argument("--format", choices=("text", "json", "hash"), default="text")
-    p.add_argument("--keep-last", action="store_true", help="keep the last partial batch")
-    p.add_argument("--boundaries", action="store_true", help="include document-boundary masks")
-    p.add_argument("--verify", action="store_true", help="hash every file before the first batch")
+    p.add_argument("--split", default="train", help="split to read (default: train)")
+    p.add_argument("--batch-size", type=int, required=True, metavar="B", help="rows per batch on this rank")
+    p.add_argument(
+        "--window", type=int, required=True, metavar="T", help="window length: tokens per row (inputs and targets)"
+    )
+    p.add_argument(
+        "--order",
+        choices=("random", "sequential"),
+        default="random",
+        help="random: shuffled windows; sequential: each row continues the previous batch's row (default: random)",
+    )
+    p.add_argument("--seed", type=int, default=0, help="seed of the window offset and order (default: 0)")
+    p.add_argument("--epoch", type=int, default=0, help="epoch to read; each has its own offset and order (default: 0)")
+    p.add_argument("--rank", type=int, default=0, help="this process's rank, 0 .. world size - 1 (default: 0)")
+    p.add_argument("--world-size", type=int, default=1, help="number of ranks sharing each global batch (default: 1)")
+    p.add_argument(
+        "--start-step",
+        type=int,
+        default=0,
+        metavar="STEP",
+        help="first batch to show, e.g. a resume point (default: 0)",
+    )
+    p.add_argument("--limit", type=int, default=None, metavar="K", help="show at most K batches (default: all)")
+    p.add_argument(
+        "--format",
+        choices=FORMATS,
+        default="text",
+        help="text: decoded tokens per row; jsonl: one JSON object per batch; hash: the stream fingerprint",
+    )
+    p.add_argument(
+        "--keep-last", action="store_true", help="keep the last, smaller batch of the epoch instead of dropping it"
+    )
+    p.add_argument(
+        "--boundaries",
+        action="store_true",
+        help="mark where documents start (jsonl: a mask per batch; text: target positions per row)",
+    )
+    p.add_argument("--verify", action="store_true", help="hash every file of the dataset before the first batch")
     p.set_defaults(fn=cmd_batches)
 
     p = sub.add_parser("report", help="corpus statistics, leakage checks and baseline perplexities")
@@ -340,4 +392,3 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 if __name__ == "__main__":
     sys.exit(main())
-_ = EXIT_VERIFY_FAILED

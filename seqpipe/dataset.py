@@ -127,8 +127,8 @@ class Dataset:
         return tokenizer.load(self.directory)
 
 
-def open_dataset(directory: str | Path, *, verify_on_open: bool = False, copy_dir: str | Path | None = None) -> Dataset:
-    """Open a built dataset. With ``verify_on_open`` every file is hashed first and any
+def open_dataset(directory: str | Path, *, verify: bool = False, copy_dir: str | Path | None = None) -> Dataset:
+    """Open a built dataset. With ``verify`` every file is hashed first and any
     problem raises :class:`IntegrityError` before a single batch is read.
 
     ``directory`` may be a filesystem URI (a published dataset, see :mod:`seqpipe.transfer`):
@@ -147,10 +147,10 @@ def open_dataset(directory: str | Path, *, verify_on_open: bool = False, copy_di
     elif copy_dir is not None:
         raise DatasetError(f"{directory}: copy_dir is only used to open a dataset behind a filesystem URI")
     d = Path(directory)
-    if verify_on_open:
-        from seqpipe._verify import verify
+    if verify:
+        from seqpipe._verify import verify as verify_dataset
 
-        report = verify(d)
+        report = verify_dataset(d)
         if report.problems:
             raise IntegrityError(report.problems)
     return Dataset(d, read_manifest(d))

@@ -148,8 +148,9 @@ class TokenStream:
             if chunk.flags.c_contiguous:
                 # the ndarray constructor instead of sliding_window_view, whose checks cost far
                 # more when the first batch of a split touches every shard (DEVELOPERS.md)
-                step = chunk.itemsize
-                view = np.ndarray((len(chunk) - length + 1, length), chunk.dtype, buffer=chunk, strides=(step, step))
+                stride = chunk.itemsize
+                shape = (len(chunk) - length + 1, length)
+                view = np.ndarray(shape, chunk.dtype, buffer=chunk, strides=(stride, stride))
                 view.flags.writeable = False
             else:
                 view = sliding_window_view(chunk, length)

@@ -3,14 +3,14 @@
 Importing this module imports torch; nothing else in seqpipe does. Use it with
 automatic batching off, since every item already is a batch::
 
-    ds = TorchBatches(stream, batch_size=8, steps=256, seed=1, stream_key=key)
+    ds = TorchBatches(stream, batch_size=8, window=256, seed=1, stream_key=key)
     loader = DataLoader(ds, batch_size=None, num_workers=2)
 
 Rank and world size come from the arguments or, when omitted, from an
 initialized ``torch.distributed`` process group (else 0 and 1), read once in
-the process that builds the dataset. Loader workers split the steps round-robin
-(:meth:`BatchStream.iter_steps`), and the loader's in-order round-robin fetch
-puts them back in step order, so a loader yields exactly the numpy stream.
+the process that builds the dataset. Loader workers split the batches round-robin
+by step (:meth:`BatchStream.iter_steps`), and the loader's in-order round-robin
+fetch puts them back in step order, so a loader yields exactly the numpy stream.
 
 Arrays become tensors with ``torch.from_numpy`` (no copy in the producing
 process). With the ``spawn``/``forkserver`` start methods the dataset is pickled
@@ -78,13 +78,13 @@ class TorchBatches(IterableDataset[Any]):
         source: StreamSource,
         *,
         batch_size: int,
-        steps: int,
+        window: int,
         order: str = "random",
         seed: int = 0,
         epoch: int = 0,
         rank: int | None = None,
         world_size: int | None = None,
-        drop_last: bool = True,
+        keep_last: bool = False,
         dtype: Any = np.int64,
         boundaries: bool = False,
         stream_key: str = "",
@@ -98,13 +98,13 @@ class TorchBatches(IterableDataset[Any]):
         self._source = source
         self._settings: dict[str, Any] = {
             "batch_size": batch_size,
-            "steps": steps,
+            "window": window,
             "order": order,
             "seed": seed,
             "epoch": epoch,
             "rank": auto_rank if rank is None else rank,
             "world_size": auto_world if world_size is None else world_size,
-            "drop_last": drop_last,
+            "keep_last": keep_last,
             "dtype": dtype,
             "boundaries": boundaries,
             "stream_key": stream_key,

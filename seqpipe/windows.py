@@ -1,8 +1,9 @@
 """Batches of shifted windows over a token stream, reproducible across ranks, workers and resumes.
 
-A batch row is a window of ``T + 1`` consecutive tokens read as inputs ``[:-1]``
-and targets ``[1:]``. Every batch is a pure function of (stream key, global batch
-size ``B = world_size * batch_size``, ``T``, order, seed, epoch, step), so:
+A batch row is ``window + 1`` consecutive tokens read as inputs ``[:-1]`` and targets
+``[1:]``; the window length ``T = window`` is the number of tokens per row. A ``step`` is
+always the index of a batch within its epoch. Every batch is a pure function of (stream key,
+global batch size ``B = world_size * batch_size``, ``T``, order, seed, epoch, step), so:
 
 * ranks: rank ``r`` of ``w`` takes rows ``[r*b, (r+1)*b)`` of the global batch;
   the ranks' batches laid side by side are the batch one process with ``B`` gets;
@@ -17,7 +18,7 @@ Orders (both draw a start offset in ``[0, T)`` per epoch, so window edges move):
             they are permuted per epoch and cut into global batches of ``B``. The
             permutation is a keyed bijection of the window indices (:class:`_Shuffle`,
             a Feistel network with cycle walking, keys drawn from the seeded generator),
-            evaluated a page of steps at a time: the first batch and any resumed step cost
+            evaluated a page of windows at a time: the first batch and any resumed step cost
             the same at 1M or 1G tokens, and memory does not grow with the split.
 ``sequential``  the usable ``N - 1 - offset`` tokens are trimmed to a multiple of ``B``
             and cut into ``B`` equal lanes; row ``j`` of step ``k`` is lane ``j``'s
@@ -147,8 +148,8 @@ class StreamState:
 class Batch:
     """One rank's batch: ``inputs``/``targets`` are ``(rows, width)`` views of one gathered block.
 
-    ``width`` is ``T`` except possibly the last sequential batch when ``drop_last=False``.
-    ``mask`` (only with ``boundaries=True``) is True where the target starts a new document.
+    ``width`` is the window length ``T``, except possibly in the last sequential batch when
+    ``keep_last=True``. ``mask`` (only with ``boundaries=True``) is True where the target starts a new document.
     """
 
     step: int
@@ -163,12 +164,12 @@ class Batch:
 class BatchStream:
     """Batches of shifted windows over ``stream`` for one rank; see the module docstring.
 
-    ``batch_size`` is the per-rank row count ``b``; ``steps`` is ``T``, the time steps (tokens) per
-    row. ``len()`` is the number of batches in the epoch. With ``drop_last=False`` the tail is kept:
-    in random order the last global batch has ``m < B`` rows, split across ranks in rank order as
-    evenly as possible (the first ``m % w`` ranks get ``m // w + 1`` rows, the rest ``m // w``; a
-    rank may get zero rows); in sequential order the last step has narrower windows. A stream too
-    short for one batch has length 0.
+    ``batch_size`` is the per-rank row count ``b``; ``window`` is the window length ``T``, the
+    tokens per row. ``len()`` is the number of batches (steps) in the epoch. With ``keep_last=True``
+    the tail is kept: in random order the last global batch has ``m < B`` rows, split across ranks
+    in rank order as evenly as possible (the first ``m % w`` ranks get ``m // w + 1`` rows, the rest
+    ``m // w``; a rank may get zero rows); in sequential order the last batch has narrower windows.
+    A stream too short for one batch has length 0.
     """
 
     def __init__(
@@ -176,13 +177,13 @@ class BatchStream:
         stream: TokenStream,
         *,
         batch_size: int,
-        steps: int,
+        window: int,
         order: str = "random",
         seed: int = 0,
         epoch: int = 0,
         rank: int = 0,
         world_size: int = 1,
-        drop_last: bool = True,
+        keep_last: bool = False,
         dtype: Any = np.int64,
         boundaries: bool = False,
         stream_key: str = "",
@@ -192,13 +193,13 @@ class BatchStream:
             raise StreamError(f"stream: expected a TokenStream, got {type(stream).__name__}")
         self.stream = stream
         self.batch_size: int = _check(parse_int, "batch_size", batch_size, minimum=1)
-        self.steps: int = _check(parse_int, "steps", steps, minimum=1)
+        self.window: int = _check(parse_int, "window", window, minimum=1)
         self.order: str = _check(parse_str, "order", order, choices=ORDERS)
         self.seed: int = _check(parse_int, "seed", seed, minimum=0)
         self.epoch: int = _check(parse_int, "epoch", epoch, minimum=0)
         self.world_size: int = _check(parse_int, "world_size", world_size, minimum=1)
         self.rank: int = _check(parse_int, "rank", rank, minimum=0, maximum=self.world_size - 1)
-        self.drop_last: bool = _check(parse_bool, "drop_last", drop_last)
+        self.keep_last: bool = _check(parse_bool, "keep_last", keep_last)
         self.boundaries: bool = _check(parse_bool, "boundaries", boundaries)
         self.stream_key: str = _check(parse_str, "stream_key", stream_key, allow_empty=True)
         try:
@@ -210,7 +211,7 @@ class BatchStream:
         if boundaries and stream.doc_starts is None:
             raise StreamError("boundaries: the stream has no document offsets (doc_starts)", key="boundaries")
         self.global_batch = self.batch_size * self.world_size
-        t, n = self.steps, len(stream)
+        t, n = self.window, len(stream)
         self.offset = int(self._rng().integers(0, t))
         usable = max(0, n - 1 - self.offset)
         if self.order == "random":
@@ -221,16 +222,21 @@ class BatchStream:
             self.num_windows = 0
             self.lane_length = usable // self.global_batch
             whole, part = divmod(self.lane_length, t)
-        self._len: int = whole + (1 if part and not self.drop_last else 0)
+        self._len: int = whole + (1 if part and self.keep_last else 0)
         self._shuffle: _Shuffle | None = None
         self._page: tuple[int, np.ndarray] = (0, np.zeros(0, np.int64))  # (first window, starts)
-        self.start_step: int = _check(parse_int, "start_step", start_step, minimum=0, maximum=self._len)
+        self.start_step: int = _check(parse_int, "start_step", start_step, minimum=0)
+        if self.start_step > self._len:
+            raise StreamError(
+                f"start_step: expected at most {self._len} (the epoch has {self._len} batches), got {start_step}",
+                key="start_step",
+            )
         self._next = self.start_step
 
     # --- identity --------------------------------------------------------------------------------
     def _rng(self) -> np.random.Generator:
         code = ORDERS.index(self.order)
-        entropy = [_DOMAIN, self.seed, self.epoch, self.steps, code, *_key_words(self.stream_key)]
+        entropy = [_DOMAIN, self.seed, self.epoch, self.window, code, *_key_words(self.stream_key)]
         return np.random.Generator(np.random.PCG64(np.random.SeedSequence(entropy)))
 
     @property
@@ -240,10 +246,10 @@ class BatchStream:
             {
                 "key": self.stream_key,
                 "global_batch": self.global_batch,
-                "steps": self.steps,
+                "window": self.window,
                 "order": self.order,
                 "seed": self.seed,
-                "drop_last": self.drop_last,
+                "keep_last": self.keep_last,
                 "tokens": len(self.stream),
             }
         )
@@ -254,7 +260,7 @@ class BatchStream:
     def __repr__(self) -> str:
         return (
             f"BatchStream({self.order}, B={self.global_batch} (rank {self.rank}/{self.world_size}), "
-            f"T={self.steps}, epoch={self.epoch}, {self._len} steps)"
+            f"window={self.window}, epoch={self.epoch}, {self._len} batches)"
         )
 
     # --- random access ---------------------------------------------------------------------------
@@ -270,7 +276,7 @@ class BatchStream:
             return cached[first - lo : first - lo + count].copy()
         if self._shuffle is None:
             rng = self._rng()
-            rng.integers(0, self.steps)  # the offset draw, replayed so the keys follow it
+            rng.integers(0, self.window)  # the offset draw, replayed so the keys follow it
             self._shuffle = _Shuffle(self.num_windows, rng)
         big = self.global_batch
         start = first // big * big
@@ -279,7 +285,7 @@ class BatchStream:
         size = min(2 * len(cached), most) if forward else min(8 * big, most)
         end = min(max(start + size, first + count), self.num_windows)
         idx = np.arange(start, end, dtype=np.int64)
-        self._page = (start, self._shuffle(idx) * self.steps + self.offset)
+        self._page = (start, self._shuffle(idx) * self.window + self.offset)
         return self._page[1][first - start : first - start + count].copy()
 
     def rows(self, step: int) -> tuple[int, int]:
@@ -302,10 +308,10 @@ class BatchStream:
         step = int(step)
         lo, hi = self.rows(step)
         if self.order == "random":
-            return self._random_starts(step * self.global_batch + lo, hi - lo), self.steps
+            return self._random_starts(step * self.global_batch + lo, hi - lo), self.window
         lanes = np.arange(lo, hi, dtype=np.int64)
-        width = min(self.steps, self.lane_length - step * self.steps)
-        return self.offset + lanes * self.lane_length + step * self.steps, width
+        width = min(self.window, self.lane_length - step * self.window)
+        return self.offset + lanes * self.lane_length + step * self.window, width
 
     def batch(self, step: int) -> Batch:
         """Batch ``step`` of this epoch for this rank, computed directly (no replay)."""
@@ -355,13 +361,13 @@ class BatchStream:
         return BatchStream(
             self.stream,
             batch_size=self.batch_size,
-            steps=self.steps,
+            window=self.window,
             order=self.order,
             seed=self.seed,
             epoch=epoch,
             rank=self.rank,
             world_size=self.world_size,
-            drop_last=self.drop_last,
+            keep_last=self.keep_last,
             dtype=self.dtype,
             boundaries=self.boundaries,
             stream_key=self.stream_key,
@@ -380,7 +386,9 @@ class BatchStream:
             )
         probe = self if state.epoch == self.epoch else self._with(state.epoch, 0)
         if state.step > len(probe):
-            raise StreamError(f"resume: step {state.step} is past the epoch's {len(probe)} steps", key="step")
+            raise StreamError(
+                f"resume: step {state.step} is past the end of epoch {state.epoch} ({len(probe)} batches)", key="step"
+            )
         return probe._with(state.epoch, state.step)
 
     def next_epoch(self) -> BatchStream:

@@ -21,6 +21,7 @@ from seqpipe.errors import RecipeError, ShardCorruptError, TokenizerError
 from seqpipe.shards import write_table
 from seqpipe.tokenizers import bpe as bpe_module
 from seqpipe.tokenizers import parse_tokenizer
+from seqpipe.tokenizers._chunking import PRESETS
 from seqpipe.tokenizers.bpe import BpeEncoder, BpeTokenizer
 from seqpipe.vocab import VocabSpec
 
@@ -217,26 +218,86 @@ def doc_chunks(tok: BpeTokenizer, texts: list[str]) -> list[list[bytes]]:
     return out
 
 
+CHUNKINGS: list[dict[str, str]] = [
+    *({"chunking": name} for name in PRESETS),
+    {"chunking": "custom", "chunk_regex": r"\p{L}*"},  # can match empty text
+    {"chunking": "custom", "chunk_regex": r"[aeiou]+|\d"},  # skips most characters
+]
+
+
 @settings(max_examples=150, deadline=None)
-@given(
-    texts=st.lists(st.text(), max_size=5),
-    pattern=st.sampled_from([bpe_module.DEFAULT_CHUNK_PATTERN, r"\p{L}*", r"[aeiou]+|\d"]),
-)
-def test_chunks_cover_each_document(texts: list[str], pattern: str) -> None:
-    """A document's chunks are non-empty and concatenate to the document, whatever the pattern."""
-    tok = BpeTokenizer(chunk_pattern=pattern)
+@given(texts=st.lists(st.text(), max_size=5), chunking=st.sampled_from(CHUNKINGS))
+def test_chunks_cover_each_document(texts: list[str], chunking: dict[str, str]) -> None:
+    """A document's chunks are non-empty and concatenate to the document, whatever the chunking."""
+    tok = BpeTokenizer(**chunking)  # type: ignore[arg-type]
     for text, chunks in zip(texts, doc_chunks(tok, texts), strict=True):
         assert all(chunks)
         assert b"".join(chunks) == text.encode("utf-8")
 
 
-def test_default_chunks() -> None:
-    """The default pattern keeps a space with the word after it and splits numbers and punctuation."""
-    tok = BpeTokenizer()
-    assert doc_chunks(tok, ["Odra's lamp,  lit at 12:40!\n"]) == [
-        [b"Odra's", b" lamp", b",", b" ", b" lit", b" at", b" 12", b":", b"40", b"!", b"\n"]
-    ]
+# Hand-made texts and the chunks each preset's rule (seqpipe/tokenizers/_chunking.py) gives them.
+_LAMP = "Odra's lamp,  lit at 12:40!\n"
+_FARE = "Fare 12345 tokens... (2 casks)\r\n\n  indented"
+_MARKS = "cafe\u0301 she\u2019d 1000000 lads' \u2028x"
+_SIGNS = 'A1-B22 40% $5 "quoted," -- e.g.'
+PRESET_CHUNKS: dict[str, list[tuple[str, list[str]]]] = {
+    "trailing-space": [
+        (_LAMP, ["Odra's ", "lamp,  ", "lit ", "at ", "12:", "40!", "\n"]),
+        (_FARE, ["Fare ", "12", "345 ", "tokens... ", "(", "2 ", "casks)", "\r\n\n", "  ", "indented"]),
+        (_MARKS, ["cafe\u0301 ", "she\u2019d ", "1", "000", "000 ", "lads' ", "\u2028", "x"]),
+        (_SIGNS, ["A", "1", "-", "B", "22 ", "40% ", "$", "5 ", '"', 'quoted," ', "-- ", "e.", "g."]),
+    ],
+    "trailing-space-digitwise": [
+        (_LAMP, ["Odra's ", "lamp,  ", "lit ", "at ", "1", "2:", "4", "0!", "\n"]),
+        (_FARE, ["Fare ", *"1234", "5 ", "tokens... ", "(", "2 ", "casks)", "\r\n\n", "  ", "indented"]),
+        (_MARKS, ["cafe\u0301 ", "she\u2019d ", *"100000", "0 ", "lads' ", "\u2028", "x"]),
+        (_SIGNS, ["A", "1", "-", "B", "2", "2 ", "4", "0% ", "$", "5 ", '"', 'quoted," ', "-- ", "e.", "g."]),
+    ],
+    "space-separated": [
+        (_LAMP, ["Odra's ", "lamp,  ", "lit ", "at ", "12:40!", "\n"]),
+        (_FARE, ["Fare ", "12345 ", "tokens... ", "(2 ", "casks)", "\r\n\n", "  ", "indented"]),
+        (_MARKS, ["cafe\u0301 ", "she\u2019d ", "1000000 ", "lads' ", "\u2028", "x"]),
+        (_SIGNS, ["A1-B22 ", "40% ", "$5 ", '"quoted," ', "-- ", "e.g."]),
+    ],
+}
+
+
+@pytest.mark.parametrize("name", sorted(PRESETS))
+def test_preset_chunks(name: str) -> None:
+    """Each chunking preset cuts hand-made texts into the chunks its rule describes."""
+    tok = BpeTokenizer(chunking=name)
+    texts, expected = zip(*PRESET_CHUNKS[name], strict=True)
+    assert doc_chunks(tok, list(texts)) == [[c.encode() for c in chunks] for chunks in expected]
     assert doc_chunks(tok, ["", "x"]) == [[], [b"x"]]
+
+
+@settings(max_examples=100, deadline=None)
+@given(number=st.integers(0, 10**40))
+def test_digits_grouped_in_threes_from_the_right(number: int) -> None:
+    """The default preset cuts a digit run into threes from the right, the first group 1-3 digits."""
+    digits = str(number)
+    (chunks,) = doc_chunks(BpeTokenizer(), [digits])
+    first = len(digits) % 3 or 3
+    assert [len(c) for c in chunks] == [first] + [3] * ((len(digits) - first) // 3)
+    assert b"".join(chunks) == digits.encode()
+
+
+def test_default_chunking_is_a_named_preset() -> None:
+    """The default tokenizer names its chunking preset; its plain (manifest) form holds no regex."""
+    tok = BpeTokenizer()
+    plain = to_plain(tok)
+    assert plain["chunking"] == "trailing-space" == tok.chunking
+    assert plain["chunk_regex"] == ""
+    assert tok.pattern == PRESETS["trailing-space"]
+
+
+@pytest.mark.parametrize("name", sorted(PRESETS))
+def test_literal_specials_cut_out_before_any_preset(name: str) -> None:
+    """With literal_specials a special name is one chunk whatever the preset cuts around it."""
+    tok = BpeTokenizer(chunking=name, literal_specials=True)
+    (chunks,) = doc_chunks(tok, ["lamp<eos> lit<bos>12 "])
+    assert b"<eos>" in chunks and b"<bos>" in chunks
+    assert b"".join(chunks) == b"lamp<eos> lit<bos>12 "
 
 
 def test_lone_surrogate_raises() -> None:
@@ -252,12 +313,12 @@ def test_lone_surrogate_raises() -> None:
 _ENCODERS: dict[str, BpeEncoder] = {}
 
 
-def bytes_encoder() -> BpeEncoder:
-    """A byte-base encoder trained once on the harbour log."""
-    if "bytes" not in _ENCODERS:
-        tok = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 120)
-        _ENCODERS["bytes"] = tok.fit(counts_from_texts(tok, [LOG]), SPEC)
-    return _ENCODERS["bytes"]
+def bytes_encoder(chunking: str = "trailing-space") -> BpeEncoder:
+    """A byte-base encoder with the given chunking preset, trained once on the harbour log."""
+    if chunking not in _ENCODERS:
+        tok = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 120, chunking=chunking)
+        _ENCODERS[chunking] = tok.fit(counts_from_texts(tok, [LOG]), SPEC)
+    return _ENCODERS[chunking]
 
 
 def test_training_reaches_vocab_size() -> None:
@@ -290,6 +351,15 @@ def test_bytes_round_trip(text: str) -> None:
     assert enc.decode(ids) == text
 
 
+@settings(max_examples=100, deadline=None)
+@given(text=st.text(alphabet=st.characters(exclude_categories=["Cs"])), chunking=st.sampled_from(sorted(PRESETS)))
+@example(text="Fare 12345\r\n\n  ca\u0301fe\u0301 she\u2019d\u2028", chunking="trailing-space")
+def test_bytes_round_trip_every_preset(text: str, chunking: str) -> None:
+    """Byte base with any chunking preset: decode(encode(s)) == s."""
+    enc = bytes_encoder(chunking)
+    assert enc.decode(enc.encode(text)) == text
+
+
 def test_encode_batch_matches_single() -> None:
     """Encoding documents together gives each document's own encoding, in order."""
     enc = bytes_encoder()
@@ -302,8 +372,8 @@ def test_encode_batch_matches_single() -> None:
 def test_frequent_words_become_single_tokens() -> None:
     """A chunk repeated throughout the training text encodes as one token."""
     enc = bytes_encoder()
-    assert tokens_of(enc, " saltfern") == [b" saltfern"]
-    assert tokens_of(enc, "saltfern saltfern")[-1] == b" saltfern"
+    assert tokens_of(enc, "saltfern ") == [b"saltfern "]
+    assert tokens_of(enc, "saltfern saltfern")[0] == b"saltfern "
 
 
 def test_cache_is_bounded(monkeypatch: pytest.MonkeyPatch) -> None:
@@ -476,8 +546,12 @@ def test_load_rejects_malformed(tmp_path: Path) -> None:
         ({"vocab_size": 0}, "vocab_size"),
         ({"vocab_size": True}, "vocab_size"),
         ({"min_pair_count": 0}, "min_pair_count"),
-        ({"chunk_pattern": "("}, "chunk_pattern"),
-        ({"chunk_pattern": "(a)|b"}, "chunk_pattern"),
+        ({"chunking": "wordpiece"}, "chunking"),
+        ({"chunking": "custom"}, "chunk_regex"),
+        ({"chunking": "custom", "chunk_regex": "("}, "chunk_regex"),
+        ({"chunking": "custom", "chunk_regex": "(a)|b"}, "chunk_regex"),
+        ({"chunk_regex": "a+"}, "chunk_regex"),
+        ({"chunk_pattern": "a+"}, "chunk_pattern"),
         ({"literal_specials": "yes"}, "literal_specials"),
         ({"special_names": ["<a>", "<a>"]}, "special_names"),
         ({"merges": 3}, "merges"),

@@ -86,16 +86,23 @@ def test_known_answers(case: Path, tmp_path: Path) -> None:
     assert train.documents.column("length").to_pylist() == expected["doc_lengths"]
 
 
-def test_lowercase_letters_only_gives_28_symbols(tmp_path: Path) -> None:
-    """Lower-casing English and replacing every non-letter with a space leaves 26 letters + space,
-    plus the unknown token: 28 (common practice, no source)."""
-    text = (
-        "The quick ferry-pilot, Mabel Jenkins (aged 47), vexed by fog & a wizened jackdaw, "
-        "quietly logged 12 crossings!\n"
-    )
-    (tmp_path / "in.txt").write_text(text * 5)
+# A river-ferry timetable reduced to the characters a departure board shows: digits, the colon,
+# the letters of am/pm and the space between fields. Every other character is removed by the
+# cleaning chain, so only the reserved unknown token stands for it.
+TIMETABLE = (
+    "Marrow Belle: dep Cobble Quay 06:45 am, arr Nettle Point 07:20 am (Mon-Sat)\n"
+    "Quill: dep Eastreach 12:05 pm, arr Lower Fenn 01:50 pm; no sailing in fog!\n"
+    "Old Tansy: dep the Weir Steps 13:38, arr Ashford Landing 19:29 - fares 4 tokens\n"
+)
+BOARD_ALPHABET = " 0123456789:amp"
+
+
+def test_cleaning_to_a_board_alphabet_fixes_the_vocabulary(tmp_path: Path) -> None:
+    """Cleaning text down to a fixed alphabet makes the character vocabulary exactly that alphabet
+    plus the reserved unknown, which then stands for every other character."""
+    (tmp_path / "in.txt").write_text(TIMETABLE * 5)
     recipe = parse_recipe(
-        """
+        f"""
 [[sources]]
 kind = "text"
 paths = "in.txt"
@@ -104,8 +111,8 @@ document = "line"
 kind = "lowercase"
 [[clean]]
 kind = "replace"
-pattern = "[^a-z]"
-replacement = " "
+pattern = "[^{BOARD_ALPHABET}]"
+replacement = ""
 [tokenizer]
 kind = "chars"
 [vocab]
@@ -123,7 +130,14 @@ test = 0.0
         tmp_path,
     )
     res = build(recipe, tmp_path / "out", workers=1, progress=False)
-    assert res.manifest["vocabulary"]["size"] == 28
+    ds = open_dataset(res.directory)
+    tokens = [t.decode() for t in ds.vocabulary.tokens.to_pylist()]
+    assert tokens[0] == "<unk>"
+    assert sorted(tokens[1:]) == sorted(BOARD_ALPHABET)
+    assert res.manifest["vocabulary"]["size"] == len(BOARD_ALPHABET) + 1
+    unknown = ds.vocabulary.unknown_id
+    assert unknown not in ds.encoder.encode("09:15 pm").tolist()
+    assert ds.encoder.encode("Dock!").tolist() == [unknown] * 5
 
 
 def test_builds_are_byte_identical_and_hashseed_free(tmp_path: Path) -> None:

@@ -70,9 +70,9 @@ def test_inspect_shows_the_manifest(cli_build: tuple[Path, str], capsys: pytest.
 
 
 def test_batches_json_rows_are_shifted_windows(cli_build: tuple[Path, str], capsys: pytest.CaptureFixture[str]) -> None:
-    """``batches --format json`` prints one line per batch whose targets are the inputs shifted by one."""
+    """``batches --format jsonl`` prints one line per batch whose targets are the inputs shifted by one."""
     out, _ = cli_build
-    args = ["batches", str(out), "--batch-size", "2", "--steps", "8", "--limit", "3", "--format", "json"]
+    args = ["batches", str(out), "--batch-size", "2", "--window", "8", "--limit", "3", "--format", "jsonl"]
     code, stdout, _ = run(args, capsys)
     rows = [json.loads(line) for line in stdout.splitlines()]
     assert code == EXIT_OK and [r["step"] for r in rows] == [0, 1, 2]
@@ -86,9 +86,9 @@ def test_batches_hash_equals_the_api_fingerprint(
 ) -> None:
     """``batches --format hash`` prints the fingerprint the Python API gives for the same stream."""
     out, _ = cli_build
-    args = ["batches", str(out), "--batch-size", "2", "--steps", "8", "--seed", "3", "--format", "hash"]
+    args = ["batches", str(out), "--batch-size", "2", "--window", "8", "--seed", "3", "--format", "hash"]
     code, stdout, _ = run(args, capsys)
-    stream = open_dataset(out).split("train").batches(batch_size=2, steps=8, seed=3)
+    stream = open_dataset(out).split("train").batches(batch_size=2, window=8, seed=3)
     want = stream_fingerprint(stream.batch(step) for step in range(len(stream)))
     assert code == EXIT_OK and stdout.strip() == want
 
@@ -143,7 +143,7 @@ def test_bad_recipe_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) 
 
 def test_missing_dataset_exits_4(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     """Commands that read a dataset exit 4 with a message when the directory is not one."""
-    for command in (["inspect"], ["batches", "--batch-size", "1", "--steps", "4"], ["encode", "x"]):
+    for command in (["inspect"], ["batches", "--batch-size", "1", "--window", "4"], ["encode", "x"]):
         args = [command[0], str(tmp_path / "nowhere"), *command[1:]]
         code, _, stderr = run(args, capsys)
         assert code == EXIT_DATASET and "nowhere" in stderr, command

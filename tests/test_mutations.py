@@ -113,7 +113,7 @@ def run_mutations(d: Path, count: int, seed: int) -> None:
         with replaced(path, data):
             report = verify(d)
             try:
-                open_dataset(d, verify_on_open=True)
+                open_dataset(d, verify=True)
                 opened = True
             except SeqpipeError:
                 opened = False
@@ -195,7 +195,7 @@ def test_paths_leading_outside_are_refused(dataset: Path, style: str) -> None:
     with pytest.raises(UnsafePathError):
         _ = open_dataset(dataset).split("train").stream
     with pytest.raises(SeqpipeError):
-        open_dataset(dataset, verify_on_open=True)
+        open_dataset(dataset, verify=True)
 
 
 def test_symlinked_docs_folder_is_refused(dataset: Path) -> None:

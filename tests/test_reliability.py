@@ -482,21 +482,21 @@ CLI_CASES: dict[str, tuple[Callable[[Path], list[str]], int, str]] = {
     "inspect-garbled-manifest": (_dataset_case(_garble_manifest, "inspect", "DIR"), 4, "manifest.json"),
     "inspect-missing-dir": (lambda tmp: ["inspect", str(tmp / "nothing-here")], 4, "nothing-here"),
     "batches-truncated-shard": (
-        _dataset_case(_truncate_shard, "batches", "DIR", "--batch-size", "2", "--steps", "8", "--limit", "1"),
+        _dataset_case(_truncate_shard, "batches", "DIR", "--batch-size", "2", "--window", "8", "--limit", "1"),
         4,
         "000000.arrow",
     ),
     "batches-verify-corrupt": (
         _dataset_case(
-            _flip_shard_byte, "batches", "DIR", "--batch-size", "2", "--steps", "8", "--limit", "1", "--verify"
+            _flip_shard_byte, "batches", "DIR", "--batch-size", "2", "--window", "8", "--limit", "1", "--verify"
         ),
         1,
         "corrupt",
     ),
     "batches-bad-size": (
-        _dataset_case(lambda d: None, "batches", "DIR", "--batch-size", "0", "--steps", "8"),
+        _dataset_case(lambda d: None, "batches", "DIR", "--batch-size", "0", "--window", "8"),
         2,
-        "batch_size",
+        "--batch-size: expected a positive integer, got 0",
     ),
 }
 

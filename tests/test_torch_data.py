@@ -29,7 +29,7 @@ from torch.utils.data import DataLoader  # noqa: E402  (only once torch is known
 
 from seqpipe.torch_data import TorchBatches  # noqa: E402
 
-SETTINGS: dict[str, Any] = {"batch_size": 3, "steps": 7, "seed": 11, "stream_key": "demo:train"}
+SETTINGS: dict[str, Any] = {"batch_size": 3, "window": 7, "seed": 11, "stream_key": "demo:train"}
 
 
 def values() -> np.ndarray:
@@ -145,7 +145,7 @@ def test_from_dataset_matches_split_batches(tmp_path: Path) -> None:
         tmp_path,
     )
     out = build(recipe, tmp_path / "d", workers=1, progress=False).directory
-    ds = TorchBatches.from_dataset(out, "train", batch_size=3, steps=7, seed=4)
+    ds = TorchBatches.from_dataset(out, "train", batch_size=3, window=7, seed=4)
     items = list(DataLoader(ds, batch_size=None, num_workers=0))
-    ref = list(open_dataset(out).split("train").batches(batch_size=3, steps=7, seed=4))
+    ref = list(open_dataset(out).split("train").batches(batch_size=3, window=7, seed=4))
     assert_items_equal(items, ref)

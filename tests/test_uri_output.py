@@ -305,7 +305,7 @@ def test_cli_batches_at_a_uri_match_the_local_dataset(
 ) -> None:
     local = run(root, tmp_path / "local")
     run(root, DEST)
-    args = ["--split", "train", "--batch-size", "2", "--steps", "8", "--format", "hash"]
+    args = ["--split", "train", "--batch-size", "2", "--window", "8", "--format", "hash"]
     assert main(["batches", str(local.directory), *args]) == 0
     want = capsys.readouterr().out
     assert main(["batches", DEST, *args]) == 0

@@ -35,10 +35,10 @@ def setups(draw: st.DrawFn) -> dict[str, Any]:
         "values": values,
         "stream": make_stream(values, cuts),
         "batch_size": draw(st.integers(1, 4)),
-        "steps": draw(st.integers(1, 12)),
+        "window": draw(st.integers(1, 12)),
         "order": draw(st.sampled_from(["random", "sequential"])),
         "seed": draw(st.integers(0, 2**40)),
-        "drop_last": draw(st.booleans()),
+        "keep_last": draw(st.booleans()),
         "stream_key": draw(st.text(max_size=5)),
     }
 
@@ -80,7 +80,9 @@ def same(a: list[Batch], b: list[Batch]) -> bool:
 def test_known_answer_sequential_0_to_34(seed: int) -> None:
     """Stream 0..34, B=2, T=5: targets = inputs + 1 and each row continues the previous batch's row."""
     # common practice: sequential (lane) batching for recurrent models
-    bs = BatchStream(TokenStream([np.arange(35, dtype=np.uint8)]), batch_size=2, steps=5, order="sequential", seed=seed)
+    bs = BatchStream(
+        TokenStream([np.arange(35, dtype=np.uint8)]), batch_size=2, window=5, order="sequential", seed=seed
+    )
     batches = list(bs)
     lane = (34 - bs.offset) // 2
     assert len(batches) == lane // 5 >= 2
@@ -97,7 +99,7 @@ def test_known_answer_sequential_0_to_34(seed: int) -> None:
 def test_known_answer_random_0_to_34(seed: int) -> None:
     """Stream 0..34, B=2, T=5: windows on the offset grid, each once, targets = inputs + 1."""
     # common practice: random offset in [0, T), then floor((N - 1 - offset) / T) windows
-    bs = BatchStream(TokenStream([np.arange(35, dtype=np.uint8)]), batch_size=2, steps=5, seed=seed, drop_last=False)
+    bs = BatchStream(TokenStream([np.arange(35, dtype=np.uint8)]), batch_size=2, window=5, seed=seed, keep_last=True)
     assert 0 <= bs.offset < 5
     count = (34 - bs.offset) // 5
     starts = np.concatenate([b.inputs[:, 0] for b in bs])
@@ -111,8 +113,8 @@ def test_pinned_fingerprints() -> None:
     """A fixed small stream gives fixed fingerprints, so any change in batch order is caught."""
     values = (np.arange(2000) * 7919 % 251).astype(np.uint16)
     stream = make_stream(values, [300, 1200])
-    rnd = BatchStream(stream, batch_size=4, steps=16, seed=3, stream_key="demo:train")
-    seq = BatchStream(stream, batch_size=4, steps=16, order="sequential", seed=3, stream_key="demo:train")
+    rnd = BatchStream(stream, batch_size=4, window=16, seed=3, stream_key="demo:train")
+    seq = BatchStream(stream, batch_size=4, window=16, order="sequential", seed=3, stream_key="demo:train")
     # values computed once with this implementation and pinned
     assert stream_fingerprint(rnd) == "0fd63a48529c119db7f0a24531b6f1e7"
     assert stream_fingerprint(seq) == "1335e648d05da0177c593203a4612be6"
@@ -121,7 +123,7 @@ def test_pinned_fingerprints() -> None:
 def test_fingerprint_is_xxh3_128_of_little_endian_int64() -> None:
     """stream_fingerprint hashes inputs then targets of each batch as little-endian int64."""
     # reference: xxhash's XXH3-128 (xxhash package, PyPI) over the documented byte layout
-    bs = BatchStream(make_stream(np.arange(100, dtype=np.uint16), [40]), batch_size=3, steps=4, seed=1)
+    bs = BatchStream(make_stream(np.arange(100, dtype=np.uint16), [40]), batch_size=3, window=4, seed=1)
     h = xxhash.xxh3_128()
     for b in bs.iter_steps(0, 1):
         h.update(b.inputs.astype("<i8").tobytes())
@@ -152,12 +154,12 @@ def test_windows_are_shifted_slices_inside_the_stream(setup: dict[str, Any]) -> 
 def test_random_epoch_has_no_repeats_and_the_expected_count(setup: dict[str, Any]) -> None:
     """Random order: no window twice per epoch; floor((N-1-offset)/T) windows in all (common practice)."""
     bs = build(setup, order="random")
-    n, t, big = len(setup["values"]), setup["steps"], setup["batch_size"]
+    n, t, big = len(setup["values"]), setup["window"], setup["batch_size"]
     count = max(0, (n - 1 - bs.offset) // t)
     starts = [s for b in bs for s in b.starts.tolist()]
     assert len(set(starts)) == len(starts)
     assert all((s - bs.offset) % t == 0 for s in starts)
-    if setup["drop_last"]:
+    if not setup["keep_last"]:
         assert len(starts) == count // big * big
         assert len(bs) == count // big
     else:
@@ -175,7 +177,7 @@ def test_sequential_rows_continue(setup: dict[str, Any]) -> None:
         lane = bs.lane_length
         assert batches[0].starts.tolist() == [bs.offset + j * lane for j in range(setup["batch_size"])]
         assert sum(b.inputs.shape[1] for b in batches) == (
-            lane if not setup["drop_last"] else lane // setup["steps"] * setup["steps"]
+            lane if setup["keep_last"] else lane // setup["window"] * setup["window"]
         )
 
 
@@ -247,10 +249,10 @@ def test_large_split_resume_is_direct() -> None:
     """A far step of a 10^9-token stream is computed directly, and equals the same step via pages."""
     # 10^9 tokens of zeros cost no memory: one broadcast view, never materialised
     huge = TokenStream([np.broadcast_to(np.zeros(1, np.uint16), (10**9,))])
-    bs = BatchStream(huge, batch_size=8, steps=128, seed=2, stream_key="k")
+    bs = BatchStream(huge, batch_size=8, window=128, seed=2, stream_key="k")
     far = len(bs) - 1
     starts, _ = bs.starts_for(far)
-    again = BatchStream(huge, batch_size=8, steps=128, seed=2, stream_key="k").resume(StreamState(0, far))
+    again = BatchStream(huge, batch_size=8, window=128, seed=2, stream_key="k").resume(StreamState(0, far))
     np.testing.assert_array_equal(next(iter(again)).starts, starts)
     assert ((starts - bs.offset) % 128 == 0).all()
     assert (starts + 129 <= 10**9).all()
@@ -261,7 +263,7 @@ def test_large_split_resume_is_direct() -> None:
 
 def fp(**kw: Any) -> str:
     values = (np.arange(5000) * 31 % 1009).astype(np.uint16)
-    base: dict[str, Any] = {"batch_size": 4, "steps": 8, "seed": 0, "stream_key": "k"}
+    base: dict[str, Any] = {"batch_size": 4, "window": 8, "seed": 0, "stream_key": "k"}
     base.update(kw)
     return stream_fingerprint(BatchStream(make_stream(values, [1234]), **base))
 
@@ -276,7 +278,7 @@ def test_sequential_offset_depends_on_seed() -> None:
     """Sequential order: the stream is a pure function of the seed, and seeds move the lane offset."""
     values = np.arange(3000, dtype=np.uint16)
     by_seed = {
-        s: BatchStream(TokenStream([values]), batch_size=2, steps=16, order="sequential", seed=s) for s in range(12)
+        s: BatchStream(TokenStream([values]), batch_size=2, window=16, order="sequential", seed=s) for s in range(12)
     }
     assert len({bs.offset for bs in by_seed.values()}) > 1
     assert all(0 <= bs.offset < 16 for bs in by_seed.values())
@@ -290,7 +292,7 @@ def test_sequential_offset_depends_on_seed() -> None:
 def test_global_random_state_untouched() -> None:
     """Building and reading a stream neither reads nor moves numpy's or Python's global generator."""
     np_state, py_state = np.random.get_state(), random.getstate()
-    list(BatchStream(TokenStream([np.arange(500, dtype=np.uint16)]), batch_size=3, steps=7, seed=9))
+    list(BatchStream(TokenStream([np.arange(500, dtype=np.uint16)]), batch_size=3, window=7, seed=9))
     after = np.random.get_state()
     assert np.array_equal(np_state[1], after[1])
     assert np_state[2:] == after[2:]
@@ -301,15 +303,15 @@ def test_global_random_state_untouched() -> None:
 
 
 def test_partial_last_batch_split_across_ranks() -> None:
-    """drop_last=False, random order: 5 leftover windows over 3 ranks give them 2, 2 and 1 rows."""
+    """keep_last=True, random order: 5 leftover windows over 3 ranks give them 2, 2 and 1 rows."""
     stream = TokenStream([np.arange(100, dtype=np.uint16)])
-    probe = BatchStream(stream, batch_size=2, steps=9, world_size=3, drop_last=False, seed=4)
+    probe = BatchStream(stream, batch_size=2, window=9, world_size=3, keep_last=True, seed=4)
     windows = probe.num_windows  # 10 or 11 windows of 9; global batch 6 -> a partial batch remains
     left = windows % 6
     assert left
     sizes = [
         len(
-            BatchStream(stream, batch_size=2, steps=9, world_size=3, rank=r, drop_last=False, seed=4)
+            BatchStream(stream, batch_size=2, window=9, world_size=3, rank=r, keep_last=True, seed=4)
             .batch(len(probe) - 1)
             .starts
         )
@@ -318,10 +320,10 @@ def test_partial_last_batch_split_across_ranks() -> None:
     assert sizes == [left // 3 + (r < left % 3) for r in range(3)]
 
 
-def test_sequential_keeps_a_narrow_tail_without_drop_last() -> None:
-    """Sequential, drop_last=False: the last batch holds the lane remainder, narrower than T."""
+def test_sequential_keeps_a_narrow_tail_with_keep_last() -> None:
+    """Sequential, keep_last=True: the last batch holds the lane remainder, narrower than T."""
     stream = TokenStream([np.arange(60, dtype=np.uint16)])
-    bs = BatchStream(stream, batch_size=2, steps=8, order="sequential", drop_last=False, seed=2)
+    bs = BatchStream(stream, batch_size=2, window=8, order="sequential", keep_last=True, seed=2)
     widths = [b.inputs.shape[1] for b in bs]
     assert sum(widths) == bs.lane_length
     assert widths[:-1] == [8] * (len(widths) - 1)
@@ -333,20 +335,20 @@ def test_boundary_mask_and_fresh() -> None:
     docs = np.array([0, 13, 14, 40, 77])
     stream = TokenStream([np.arange(50, dtype=np.uint16), np.arange(50, 100, dtype=np.uint16)], docs)
     for order in ("random", "sequential"):
-        bs = BatchStream(stream, batch_size=3, steps=6, order=order, boundaries=True, seed=5)
+        bs = BatchStream(stream, batch_size=3, window=6, order=order, boundaries=True, seed=5)
         for b in bs:
             assert b.mask is not None
             assert b.mask.shape == b.inputs.shape
             expected = np.isin(b.starts[:, None] + np.arange(1, 7), docs)
             np.testing.assert_array_equal(b.mask, expected)
             assert b.fresh == (order == "random" or b.step == 0)
-    assert BatchStream(stream, batch_size=1, steps=4).batch(0).mask is None
+    assert BatchStream(stream, batch_size=1, window=4).batch(0).mask is None
 
 
 def test_output_dtype_and_state_tracking() -> None:
     """dtype sets the batch id type; state() advances with each batch handed out."""
     bs = BatchStream(
-        TokenStream([np.arange(200, dtype=np.uint16)]), batch_size=2, steps=5, dtype=np.int32, start_step=1
+        TokenStream([np.arange(200, dtype=np.uint16)]), batch_size=2, window=5, dtype=np.int32, start_step=1
     )
     it = iter(bs)
     first = next(it)
@@ -366,7 +368,7 @@ def test_short_stream_has_no_batches() -> None:
     for n in (0, 1, 5):
         stream = TokenStream([np.arange(n, dtype=np.uint16)])
         for order in ("random", "sequential"):
-            assert list(BatchStream(stream, batch_size=4, steps=8, order=order)) == []
+            assert list(BatchStream(stream, batch_size=4, window=8, order=order)) == []
 
 
 def test_bad_parameters_name_the_key() -> None:
@@ -374,7 +376,7 @@ def test_bad_parameters_name_the_key() -> None:
     stream = TokenStream([np.arange(100, dtype=np.uint16)])
     cases: list[tuple[dict[str, Any], str]] = [
         ({"batch_size": 0}, "batch_size"),
-        ({"steps": -1}, "steps"),
+        ({"window": -1}, "window"),
         ({"order": "shuffled"}, "order"),
         ({"rank": 2, "world_size": 2}, "rank"),
         ({"seed": -1}, "seed"),
@@ -382,14 +384,14 @@ def test_bad_parameters_name_the_key() -> None:
         ({"dtype": np.float64}, "dtype"),
         ({"boundaries": True}, "boundaries"),
         ({"start_step": 10**6}, "start_step"),
-        ({"drop_last": 1}, "drop_last"),
+        ({"keep_last": 1}, "keep_last"),
     ]
     for over, needle in cases:
-        kw: dict[str, Any] = {"batch_size": 2, "steps": 4}
+        kw: dict[str, Any] = {"batch_size": 2, "window": 4}
         kw.update(over)
         with pytest.raises(StreamError, match=needle):
             BatchStream(stream, **kw)
-    bs = BatchStream(stream, batch_size=2, steps=4)
+    bs = BatchStream(stream, batch_size=2, window=4)
     with pytest.raises(StreamError, match="step"):
         bs.batch(len(bs))
     with pytest.raises(StreamError, match="worker_id"):
@@ -409,8 +411,8 @@ def test_state_validation_and_foreign_states() -> None:
         with pytest.raises(StreamError, match=needle):
             StreamState.from_dict(bad)
     stream = TokenStream([np.arange(300, dtype=np.uint16)])
-    bs = BatchStream(stream, batch_size=2, steps=5, seed=1)
-    other = BatchStream(stream, batch_size=2, steps=5, seed=2)
+    bs = BatchStream(stream, batch_size=2, window=5, seed=1)
+    other = BatchStream(stream, batch_size=2, window=5, seed=2)
     with pytest.raises(StreamError, match="different"):
         bs.resume(other.state())
     with pytest.raises(StreamError, match="past"):

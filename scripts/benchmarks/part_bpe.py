@@ -1,4 +1,5 @@
-"""Byte-pair encoding: training against a recount-everything trainer, encoding against the bare regex split.
+"""Byte-pair encoding: training against a recount-everything trainer, encoding against the bare regex split,
+and the default chunking's compression against the chunking rule it replaced.
 
 The text is English-like but invented: pseudo-words built from syllables with a
 fixed seed, drawn with Zipf-like frequencies into sentences and documents.
@@ -19,12 +20,21 @@ import pyarrow as pa
 import regex
 from common import Measure, best_time
 
-from seqpipe.tokenizers.bpe import DEFAULT_CHUNK_PATTERN, BpeEncoder, BpeTokenizer
+from seqpipe.tokenizers.bpe import BpeEncoder, BpeTokenizer
 from seqpipe.vocab import VocabSpec
 
 ROOT = Path(__file__).resolve().parents[2]
 SPEC = VocabSpec()
 START = len(SPEC.specials) + 256  # specials + byte alphabet
+# The chunking rule before the named presets (a space led the word after it), kept here only as
+# the baseline of bpe.chunking_compression_vs_previous.
+PREVIOUS_PATTERN = (
+    r" ?[\p{L}\p{M}]+(?:['\u2019][\p{L}\p{M}]+)*"
+    r"| ?\p{N}+"
+    r"| ?[^\s\p{L}\p{M}\p{N}]+"
+    r"|\s+(?= \S)"
+    r"|\s+"
+)
 _ONSETS = [
     "",
     "b",
@@ -121,7 +131,7 @@ def _symbols_after(enc: BpeEncoder, keys: pa.Array) -> list[list[bytes]]:
 
 
 def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
-    """``bpe.train_vs_naive`` and ``bpe.encode_vs_regex_split``."""
+    """``bpe.train_vs_naive``, ``bpe.encode_vs_regex_split`` and ``bpe.chunking_compression_vs_previous``."""
     docs = make_documents(200_000 if quick else 5_000_000)
     text = "".join(docs)
     n_merges = 500 if quick else 4000
@@ -159,7 +169,7 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
         f"naive {naive_total:.1f} s extrapolated from {sample} merges timed at each of {points})",
     )
 
-    pattern = regex.compile(DEFAULT_CHUNK_PATTERN)
+    pattern = regex.compile(tok.pattern)
     split = best_time(lambda: pattern.findall(text))
 
     def encode_all(encoder: BpeEncoder, *, empty_cache: bool = False) -> None:
@@ -183,3 +193,24 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
         f"{len(text) / empty / 1e6:.1f} MB/s, ratio {split / empty:.2f}; {len(ids) / len(text.encode()):.3f} "
         "tokens/byte)",
     )
+
+    # Compression of the default chunking against the previous rule: both trained to the same
+    # vocabulary size on the same text, then encoding it; tokens per byte, previous / default.
+    previous = BpeTokenizer(
+        vocab_size=START + n_merges, min_pair_count=2, chunking="custom", chunk_regex=PREVIOUS_PATTERN
+    )
+    before = _tokens_per_byte(previous, docs, text)
+    now = len(ids) / len(text.encode())
+    yield Measure(
+        "bpe.chunking_compression_vs_previous",
+        before / now,
+        0.98,
+        f"(tokens per byte at {START + n_merges} ids on {len(text) / 1e6:.1f} MB: previous rule {before:.4f}, "
+        f"default {tok.chunking!r} {now:.4f}, ratio {before / now:.4f}; above 1 the default needs fewer tokens)",
+    )
+
+
+def _tokens_per_byte(tok: BpeTokenizer, docs: list[str], text: str) -> float:
+    enc = tok.fit(_counts(tok, docs), SPEC)
+    ids, _ = enc.encode_batch(docs)
+    return len(ids) / len(text.encode())

@@ -23,7 +23,7 @@ from seqpipe.shards import read_shard, write_shard
 from seqpipe.stream import TokenStream
 from seqpipe.windows import BatchStream
 
-B, T = 64, 256
+B, WINDOW = 64, 256
 KEY = "bench:train"
 
 
@@ -57,7 +57,7 @@ def first_batch_seconds(chunks: list[np.ndarray], repeat: int = 25) -> float:
     (a fraction of a millisecond: best of 25, so one slow tick of the machine does not decide)."""
 
     def run() -> None:
-        bs = BatchStream(TokenStream(chunks), batch_size=B, steps=T, seed=1, stream_key=KEY)
+        bs = BatchStream(TokenStream(chunks), batch_size=B, window=WINDOW, seed=1, stream_key=KEY)
         bs.batch(0)
 
     return best_time(run, repeat=repeat)
@@ -65,7 +65,7 @@ def first_batch_seconds(chunks: list[np.ndarray], repeat: int = 25) -> float:
 
 def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     tokens = 1_000_000 if quick else 100_000_000
-    small_tokens = 100_000 if quick else 1_000_000  # at least a few batches of B*T
+    small_tokens = 100_000 if quick else 1_000_000  # at least a few batches of B*WINDOW
     # full size: shards of the size a build writes by default ([shards] tokens = 2**24)
     shard_tokens = 1 << 18 if quick else ShardSpec().tokens
     big = write_split(workdir / "big", tokens, shard_tokens, seed=7)
@@ -76,11 +76,11 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     stream = open_stream(big)
     # one epoch first (another epoch number, so other windows) lets the allocator settle on its
     # batch- and page-sized blocks; what the measured epoch adds after that is what reading costs
-    for _ in BatchStream(stream, batch_size=B, steps=T, seed=1, epoch=1, stream_key=KEY):
+    for _ in BatchStream(stream, batch_size=B, window=WINDOW, seed=1, epoch=1, stream_key=KEY):
         pass
     gc.collect()
     before = rss_anon()
-    bs = BatchStream(stream, batch_size=B, steps=T, seed=1, epoch=0, stream_key=KEY)
+    bs = BatchStream(stream, batch_size=B, window=WINDOW, seed=1, epoch=0, stream_key=KEY)
     t0 = time.perf_counter()
     check = 0
     for batch in bs:
@@ -93,7 +93,7 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
         growth / split_bytes,
         0.1,
         f"(RssAnon {growth / 2**10:+,.0f} KiB over a {split_bytes / 2**20:.0f} MiB split; "
-        f"epoch of {len(bs)} batches B={B} T={T} in {epoch_s:.1f} s)",
+        f"epoch of {len(bs)} batches B={B} window={WINDOW} in {epoch_s:.1f} s)",
         higher_is_better=False,
     )
     del bs, stream
@@ -108,7 +108,7 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
         big_s * 1e3,
         50.0,
         f"(best of 25: TokenStream over {len(big)} mapped shards of {tokens:,} tokens to the first "
-        f"random batch B={B} T={T}; {big_s / small_s:.2f}x the {small_tokens:,}-token case; "
+        f"random batch B={B} window={WINDOW}; {big_s / small_s:.2f}x the {small_tokens:,}-token case; "
         f"mapping the shards beforehand took {map_s * 1e3:.2f} ms)",
         higher_is_better=False,
     )
@@ -122,13 +122,13 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
 
     # --- random batches from mapped shards vs a plain numpy gather from memory -------------------------
     stream = open_stream(big)
-    bs = BatchStream(stream, batch_size=B, steps=T, seed=1, stream_key=KEY)
+    bs = BatchStream(stream, batch_size=B, window=WINDOW, seed=1, stream_key=KEY)
     n_batches = min(len(bs), 50 if quick else 400)
     starts = [bs.starts_for(k)[0] for k in range(n_batches)]
     in_memory = np.concatenate(stream.chunks)  # the baseline's copy, made outside the timing
-    windows = sliding_window_view(in_memory, T + 1)
+    windows = sliding_window_view(in_memory, WINDOW + 1)
 
-    index = np.arange(T + 1)
+    index = np.arange(WINDOW + 1)
 
     def ours() -> None:
         for k in range(n_batches):
@@ -153,7 +153,7 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
         "windows.random_rate_vs_numpy_gather",
         t_numpy / t_ours,
         0.5,
-        f"(best of 5, {n_batches} batches B={B} T={T} int64: {n_batches / t_ours:,.0f} batches/s "
+        f"(best of 5, {n_batches} batches B={B} window={WINDOW} int64: {n_batches / t_ours:,.0f} batches/s "
         f"from {len(big)} mapped shards vs {n_batches / t_numpy:,.0f}/s numpy index-array gather in "
         f"memory; vs a sliding-window-view gather in memory the ratio is {t_strided / t_ours:.2f})",
     )

@@ -1,7 +1,8 @@
 """Byte-pair encoding tokenizer (Sennrich, Haddow & Birch, ACL 2016).
 
-Text is first cut into *chunks* with a Unicode-aware regular expression
-(words with their leading space, numbers, punctuation runs, whitespace runs);
+Text is first cut into *chunks* by a named chunking preset (``chunking``; the
+default keeps words, digit groups and punctuation runs each with the spaces
+after it, and line breaks alone; see ``_chunking`` for the presets and why);
 the chunks of a document always concatenate back to the document. Merges are
 learned over the distinct chunks of the train split (see ``_bpe_train``) and
 applied inside each chunk, never across chunks.
@@ -52,20 +53,11 @@ from seqpipe.tokenizers._bpe_train import (
     rank_table,
     read_counts,
 )
+from seqpipe.tokenizers._chunking import CHOICES, CUSTOM, DEFAULT, chunker, pattern_of
 from seqpipe.tokenizers._common import segments_from_tokens, stored_vocabulary
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, expand
 from seqpipe.vocab import VocabSpec, Vocabulary, specials_table
 
-# One alternative per chunk class; a space stays with the word, number or
-# punctuation run after it, and a whitespace run leaves its last space to a
-# following word so " word" is learned once rather than once per indentation.
-DEFAULT_CHUNK_PATTERN: Final = (
-    r" ?[\p{L}\p{M}]+(?:['\u2019][\p{L}\p{M}]+)*"  # word, inner apostrophes kept
-    r"| ?\p{N}+"  # number
-    r"| ?[^\s\p{L}\p{M}\p{N}]+"  # punctuation / symbol run
-    r"|\s+(?= \S)"  # whitespace run before a spaced word
-    r"|\s+"  # any other whitespace run
-)
 DEFAULT_SPECIALS: Final = VocabSpec().specials
 MERGES_FILE: Final = "tokenizer.arrow"
 MERGES_FORMAT: Final = "1"
@@ -75,13 +67,6 @@ MERGES_SCHEMA: Final = pa.schema(
 # Distinct chunks whose ids are remembered; a corpus's frequent chunks fit many
 # times over, and a full cache is simply emptied (cheaper than per-entry aging).
 CACHE_LIMIT: Final = 200_000
-
-
-@lru_cache(maxsize=16)
-def _chunker(pattern: str) -> Any:
-    # the fallback alternative takes any character the pattern skips, so chunks
-    # always cover the text and byte-mode decoding stays exact
-    return regex.compile(f"(?:{pattern})|(?s:.)")
 
 
 @lru_cache(maxsize=16)
@@ -105,9 +90,24 @@ def _surrogate_error(texts: Sequence[str]) -> TokenizerError:
     return TokenizerError("text cannot be encoded as UTF-8")
 
 
+def _check_chunk_regex(pattern: str) -> None:
+    if not pattern:
+        raise RecipeError("chunk_regex", "chunking = 'custom' needs a regular expression here; or name a preset")
+    try:
+        compiled = chunker(pattern)
+    except (regex.error, ValueError, TypeError) as exc:
+        raise RecipeError("chunk_regex", f"not a valid regular expression ({exc}): {pattern!r}") from exc
+    if compiled.groups:
+        # findall would return the groups instead of whole chunks
+        raise RecipeError("chunk_regex", f"use non-capturing groups (?:...), got {pattern!r}")
+
+
 @dataclass(frozen=True, slots=True)
 class BpeTokenizer(Tokenizer):
     """Recipe ``[tokenizer] kind = "bpe"``: byte-pair encoding over regex chunks.
+
+    ``chunking`` names how text is cut into chunks (a preset of ``_chunking.PRESETS``, or
+    ``"custom"`` with the regular expression in ``chunk_regex``).
 
     ``vocab_size`` is the target size of the whole vocabulary (specials, base
     alphabet and merges); training also stops when no pair occurs at least
@@ -123,7 +123,8 @@ class BpeTokenizer(Tokenizer):
     end_of_word: str = ""
     vocab_size: int = 8000
     min_pair_count: int = 2
-    chunk_pattern: str = DEFAULT_CHUNK_PATTERN
+    chunking: str = DEFAULT
+    chunk_regex: str = ""
     literal_specials: bool = False
     special_names: tuple[str, ...] = DEFAULT_SPECIALS
 
@@ -136,41 +137,44 @@ class BpeTokenizer(Tokenizer):
             )
         parse_int("vocab_size", self.vocab_size, minimum=2)
         parse_int("min_pair_count", self.min_pair_count, minimum=1)
-        parse_str("chunk_pattern", self.chunk_pattern)
-        try:
-            compiled = _chunker(self.chunk_pattern)
-        except (regex.error, ValueError, TypeError) as exc:
+        parse_str("chunking", self.chunking, choices=CHOICES)
+        parse_str("chunk_regex", self.chunk_regex, allow_empty=True)
+        if self.chunking == CUSTOM:
+            _check_chunk_regex(self.chunk_regex)
+        elif self.chunk_regex:
             raise RecipeError(
-                "chunk_pattern", f"not a valid regular expression ({exc}): {self.chunk_pattern!r}"
-            ) from exc
-        if compiled.groups:
-            # findall would return the groups instead of whole chunks
-            raise RecipeError("chunk_pattern", f"use non-capturing groups (?:...), got {self.chunk_pattern!r}")
+                "chunk_regex", f"is only read with chunking = 'custom', but chunking = {self.chunking!r}; drop one"
+            )
         parse_bool("literal_specials", self.literal_specials)
         names = parse_str_tuple("special_names", self.special_names)
         if len(set(names)) != len(names):
             raise RecipeError("special_names", f"names must be distinct, got {list(names)}")
         object.__setattr__(self, "special_names", names)
 
+    @property
+    def pattern(self) -> str:
+        """The regular expression that cuts text into chunks."""
+        return pattern_of(self.chunking, self.chunk_regex)
+
     # -- segmenting ------------------------------------------------------------
     def segment(self, texts: Sequence[str]) -> Segments:
         """Cut each document into chunks; keys are the distinct chunks' UTF-8 bytes."""
         if isinstance(texts, (pa.Array, pa.ChunkedArray)):
             texts = texts.to_pylist()
-        chunker = _chunker(self.chunk_pattern)
+        cut = chunker(self.pattern)
         splitter = _special_splitter(self.special_names) if self.literal_specials and self.special_names else None
         flat: list[str] = []
         lengths = np.empty(len(texts), dtype=np.int64)
         for d, text in enumerate(texts):
             if splitter is None:
-                chunks = chunker.findall(text)
+                chunks = cut.findall(text)
             else:
                 chunks = []
                 for j, part in enumerate(splitter.split(text)):
                     if j % 2:
                         chunks.append(part)  # a special name, kept whole
                     elif part:
-                        chunks.extend(chunker.findall(part))
+                        chunks.extend(cut.findall(part))
             if not all(chunks):  # a pattern that can match empty text
                 chunks = [c for c in chunks if c]
             lengths[d] = len(chunks)
