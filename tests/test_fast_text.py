@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 from seqpipe.errors import SourceError
@@ -111,6 +111,9 @@ def _exact_chunk(data: bytes, mode: str, limit: int) -> tuple[list[str], dict[st
 
 @_SETTINGS
 @given(data=_mixed, mode=st.sampled_from(["line", "paragraph"]), limit=st.sampled_from([2, 8, 1 << 20]))
+# trailing blanks with no line end, longer than the limit: no document on either path (once
+# counted as an oversize document by the exact path)
+@example(data=b"\n\n   ", mode="paragraph", limit=2)
 def test_fast_chunk_equals_exact_chunk_or_declines(data: bytes, mode: str, limit: int) -> None:
     """On any chunk the fast path returns the exact documents, or declines for one of its two reasons."""
     want, stats = _exact_chunk(data, mode, limit)

@@ -43,6 +43,7 @@ PARAGRAPH_SEPARATOR: Final = re.compile(_LE + rb"(?:[ \t\x0b\x0c]*+" + _LE + rb"
 _PARAGRAPH_SEPARATOR_LF: Final = re.compile(rb"\n(?:[ \t\x0b\x0c]*+\n)+")
 LINE_SEPARATOR: Final = re.compile(rb"[\r\n]+")
 _LINE: Final = re.compile(rb"[^\r\n]+")
+_BLANK_RUN: Final = re.compile(rb"[ \t\x0b\x0c\r\n]*")
 _NONBLANK: Final = re.compile(rb"[^ \t\x0b\x0c\r\n]")
 _BACK_STEP: Final = 4096
 
@@ -205,6 +206,10 @@ class TextSource(Source):
             spans = line_spans(buf, cut) if self.document == "line" else paragraph_spans(buf, cut)
             docs = []
             for start, stop in spans:
+                # a run of blanks with no line end after it (the end of the input) is no
+                # document, whatever its size: the vectorized path never sees it either
+                if _BLANK_RUN.fullmatch(view[start:stop]) is not None:
+                    continue
                 text = finisher.finish(view[start:stop], offset=base + start)
                 if text is not None:
                     docs.append(text)
