@@ -290,12 +290,16 @@ def parser() -> argparse.ArgumentParser:
     )
     from seqpipe import __version__
 
-    ap.add_argument("--version", action="version", version=f"seqpipe {__version__}")
-    sub = ap.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    ap.add_argument("--version", action="version", version=f"seqpipe {__version__}", help="print the version and exit")
+    sub = ap.add_subparsers(
+        dest="command", required=True, metavar="COMMAND", help="one of these (seqpipe COMMAND --help: its options)"
+    )
     _add_build(sub)  # the commands in the order the help lists them
     _add_checks(sub)
     _add_demo(sub)
     _add_reading(sub)
+    _add_report(sub)
+    _add_tokenizer(sub)
     return ap
 
 
@@ -435,6 +439,8 @@ def _add_reading(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p.add_argument("--verify", action="store_true", help="hash every file of the dataset before the first batch")
     p.set_defaults(fn=cmd_batches)
 
+
+def _add_report(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p = sub.add_parser(
         "report",
         help="corpus statistics, leakage checks and baseline perplexities",
@@ -458,6 +464,8 @@ def _add_reading(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p.add_argument("--quiet", action="store_true", help="no progress bars")
     p.set_defaults(fn=cmd_report)
 
+
+def _add_tokenizer(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p = sub.add_parser("encode", help="encode text with a dataset's tokenizer", description="Print the ids of TEXT.")
     p.add_argument("directory", help="dataset directory")
     p.add_argument("text", metavar="TEXT", help="the text to encode (quote it)")

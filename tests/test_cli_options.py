@@ -53,6 +53,13 @@ def test_every_option_has_help_and_is_listed_in_the_readme(command: str) -> None
                 assert re.search(rf"`{re.escape(option)}[ `/]", listed), (command, option)
 
 
+def test_top_level_options_have_help_and_are_in_the_readme() -> None:
+    """``seqpipe --help`` and ``--version`` carry help text, and the README names ``--version``."""
+    for action in parser()._actions:
+        assert action.help and action.help.strip(), action.dest
+    assert "`seqpipe --version`" in README
+
+
 @pytest.mark.parametrize("command", sorted(commands()))
 def test_help_prints_and_exits_0(command: str, capsys: pytest.CaptureFixture[str]) -> None:
     """``seqpipe COMMAND --help`` exits 0 and shows a usage line and the command's description."""
