@@ -1,8 +1,10 @@
 """The ``seqpipe`` command: a thin layer over the Python API (no pipeline logic here).
 
-Exit codes: 0 success; 1 verification found problems; 2 usage or recipe error; 3 input error
-(a source file cannot be read as declared); 4 dataset error (missing, malformed or unsafe);
-5 another build holds the output directory; 70 internal error (a bug: please report it).
+Exit codes: 0 success; 1 verification found problems; 2 usage or recipe error (a bad option
+value, an output path that is a regular file, text or ids the tokenizer cannot take); 3 input
+error (a source file cannot be read as declared); 4 dataset error (missing, malformed or unsafe;
+``verify`` too when there is no dataset to check); 5 another build holds the output directory;
+70 internal error (a bug: please report it).
 """
 
 from __future__ import annotations
@@ -15,7 +17,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, Final
 
-from seqpipe.errors import EXIT_OK, EXIT_VERIFY_FAILED, SeqpipeError, StreamError
+from seqpipe.errors import EXIT_OK, EXIT_USAGE, EXIT_VERIFY_FAILED, SeqpipeError, StreamError, TokenizerError
 
 EXIT_INTERNAL = 70
 
@@ -57,7 +59,7 @@ def cmd_build(args: argparse.Namespace) -> int:
                 out,
                 executor=executor,
                 workers=None if early else workers,
-                cache_dir=args.cache,
+                cache_dir=args.cache_dir,
                 force=args.force,
                 progress=False if args.quiet else None,
                 work_dir=args.work_dir,
@@ -83,7 +85,11 @@ def cmd_build(args: argparse.Namespace) -> int:
 
 def cmd_verify(args: argparse.Namespace) -> int:
     from seqpipe._verify import verify
+    from seqpipe.storage import open_store
 
+    # no dataset at all is a dataset error (4), as for the other commands; what verify finds
+    # in a dataset that is there, a malformed manifest included, is a problem (1)
+    open_store(args.directory).read_manifest()
     report = verify(args.directory, against=args.against, expect=args.expect)
     if args.json:
         _print_json(report.to_dict())
@@ -131,18 +137,19 @@ def cmd_demo(args: argparse.Namespace) -> int:
     corpus = root / "corpus"
     files = write_demo_corpus(corpus)
     (corpus / "recipe.toml").write_text(demo_recipe_text(), encoding="utf-8")
-    print(f"demo corpus: {len(files)} files in {corpus} (recipe: {corpus / 'recipe.toml'})")
+    say = (lambda *_: None) if args.quiet else print  # --quiet: the verdict line only
+    say(f"demo corpus: {len(files)} files in {corpus} (recipe: {corpus / 'recipe.toml'})")
     recipe = parse_recipe(demo_recipe_text(), corpus)
     out = root / "dataset"
     result = build(recipe, out, workers=args.workers, progress=False if args.quiet else None)
-    print("\n".join(result.summary_lines()))
+    say("\n".join(result.summary_lines()))
     report = verify(out)
     if not report.ok:
         for p in report.problems:
             print(p)
         return EXIT_VERIFY_FAILED
     print(f"verify: ok ({report.files_checked} files)")
-    print(
+    say(
         f"next: seqpipe inspect {out}   seqpipe batches {out} --split train --batch-size 2 --window 16 "
         f"--limit 1   seqpipe report {out}"
     )
@@ -204,16 +211,29 @@ def cmd_report(args: argparse.Namespace) -> int:
         out = Path(args.output)
     else:  # beside a local dataset; for one behind a URI, in the working directory
         out = Path("report") if is_uri(args.directory) else Path(args.directory) / "report"
-    write_report(args.directory, out, ngram_n=args.ngram, progress=not args.quiet and sys.stderr.isatty())
-    print(f"report written to {out} (report.md, report.json, plots)")
+    report = write_report(args.directory, out, ngram_n=args.leakage_n, progress=not args.quiet and sys.stderr.isatty())
+    if report["plots"]:
+        print(f"report written to {out} (report.md, report.json, {', '.join(report['plots'])})")
+    else:
+        print(f"report written to {out} (report.md, report.json)")
+        print(f"plots skipped: matplotlib is not installed ({PLOTS_INSTALL} in a seqpipe checkout)", file=sys.stderr)
     return EXIT_OK
+
+
+def _usage_error(message: str) -> int:
+    print(f"seqpipe: error: {message}", file=sys.stderr)
+    return EXIT_USAGE
 
 
 def cmd_encode(args: argparse.Namespace) -> int:
     from seqpipe.dataset import load_tokenizer
 
     enc = load_tokenizer(args.directory)
-    print(" ".join(str(int(i)) for i in enc.encode(args.text)))
+    try:  # the text is what the user typed: one the tokenizer cannot take is a usage error
+        ids = enc.encode(args.text)
+    except TokenizerError as exc:
+        return _usage_error(f"TEXT: {exc}")
+    print(" ".join(str(int(i)) for i in ids))
     return EXIT_OK
 
 
@@ -221,8 +241,41 @@ def cmd_decode(args: argparse.Namespace) -> int:
     from seqpipe.dataset import load_tokenizer
 
     enc = load_tokenizer(args.directory)
-    print(enc.decode(args.ids))
+    try:  # as for encode: an id outside the vocabulary is a mistake in the command line
+        text = enc.decode(args.ids)
+    except TokenizerError as exc:
+        return _usage_error(f"IDS: {exc}")
+    print(text)
     return EXIT_OK
+
+
+PLOTS_INSTALL: Final = "pip install '.[plots]'"
+DASK_INSTALL: Final = "pip install '.[dask]'"
+
+
+def positive_int(text: str) -> int:
+    """An argparse type: an integer >= 1, with a message in the words of the recipe errors."""
+    value = _int(text)
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a positive integer, got {value}")
+    return value
+
+
+def _int(text: str) -> int:
+    try:
+        return int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected an integer, got {text!r}") from None
+
+
+def directory_path(text: str) -> str:
+    """An argparse type: a path that may name a directory (absent or one), or a URI; a path to a
+    regular file is refused here, before any work, as a usage error."""
+    from seqpipe.filesystem import is_uri
+
+    if not is_uri(text) and Path(text).exists() and not Path(text).is_dir():
+        raise argparse.ArgumentTypeError(f"{text} is a file, not a directory; name a new or existing directory")
+    return text
 
 
 URI_DIR_HELP = (
@@ -237,12 +290,16 @@ def parser() -> argparse.ArgumentParser:
     )
     from seqpipe import __version__
 
-    ap.add_argument("--version", action="version", version=f"seqpipe {__version__}")
-    sub = ap.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    ap.add_argument("--version", action="version", version=f"seqpipe {__version__}", help="print the version and exit")
+    sub = ap.add_subparsers(
+        dest="command", required=True, metavar="COMMAND", help="one of these (seqpipe COMMAND --help: its options)"
+    )
     _add_build(sub)  # the commands in the order the help lists them
     _add_checks(sub)
     _add_demo(sub)
     _add_reading(sub)
+    _add_report(sub)
+    _add_tokenizer(sub)
     return ap
 
 
@@ -250,28 +307,42 @@ Subparsers = argparse._SubParsersAction  # argparse has no public name for the a
 
 
 def _add_build(sub: Subparsers[argparse.ArgumentParser]) -> None:
-    p = sub.add_parser("build", help="build a dataset from a TOML recipe")
+    p = sub.add_parser("build", help="build a dataset from a TOML recipe", description="Build a dataset from a recipe.")
     p.add_argument("recipe", help="recipe file (TOML)")
     p.add_argument(
         "-o",
         "--output",
+        type=directory_path,
+        metavar="DIR|URI",
         help="dataset directory, or a pyarrow filesystem URI such as s3://bucket/prefix (default: ./<dataset.name>)",
     )
     p.add_argument(
         "--work-dir",
+        type=directory_path,
+        metavar="DIR",
         help="with a URI output: the local directory the build runs in before "
-        "it is uploaded (default: CACHE/remote/KEY with --cache, else "
+        "it is uploaded (default: CACHE/remote/KEY with --cache-dir, else "
         "~/.cache/seqpipe/remote/KEY)",
     )
     p.add_argument(
         "--workers",
-        type=int,
+        type=positive_int,
         default=None,
+        metavar="N",
         help="processes working on tasks, this one included (N-1 are spawned); "
         "default: this process alone, one thread per core",
     )
-    p.add_argument("--dask-scheduler", metavar="ADDRESS", help="run tasks on a Dask cluster (seqpipe[dask])")
-    p.add_argument("--cache", help="cache directory for ingested parts (default: DIR/.seqpipe/cache)")
+    p.add_argument(
+        "--dask-scheduler",
+        metavar="ADDRESS",
+        help=f"run tasks on the Dask cluster at ADDRESS (needs the dask extra: {DASK_INSTALL})",
+    )
+    p.add_argument(
+        "--cache-dir",
+        type=directory_path,
+        metavar="DIR",
+        help="cache directory for ingested parts (default: OUTPUT/.seqpipe/cache)",
+    )
     p.add_argument("--force", action="store_true", help="ignore cached parts; rebuild everything")
     p.add_argument("--quiet", action="store_true", help="no progress bars, no summary")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
@@ -279,31 +350,54 @@ def _add_build(sub: Subparsers[argparse.ArgumentParser]) -> None:
 
 
 def _add_checks(sub: Subparsers[argparse.ArgumentParser]) -> None:
-    p = sub.add_parser("verify", help="recompute every hash of a dataset")
+    p = sub.add_parser(
+        "verify", help="recompute every hash of a dataset", description="Recompute every hash of a dataset."
+    )
     p.add_argument("directory", help="dataset directory or filesystem URI")
-    p.add_argument("--json", action="store_true", help="machine-readable report")
+    p.add_argument("--json", action="store_true", help="print the report as JSON: files checked, problems, fingerprint")
     p.add_argument("--against", metavar="MANIFEST", help="also compare with a committed manifest.json")
     p.add_argument("--expect", metavar="FINGERPRINT", help="the dataset fingerprint must equal this hex")
     p.set_defaults(fn=cmd_verify)
 
-    p = sub.add_parser("inspect", help="show what a dataset's manifest holds")
+    p = sub.add_parser("inspect", help="show what a dataset's manifest holds", description="Show a dataset's manifest.")
     p.add_argument("directory", help=URI_DIR_HELP)
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--json", action="store_true", help="print the whole manifest as JSON")
     p.set_defaults(fn=cmd_inspect)
 
 
 def _add_demo(sub: Subparsers[argparse.ArgumentParser]) -> None:
-    p = sub.add_parser("demo", help="write the demo corpus, build, verify, summarize")
-    p.add_argument("directory", nargs="?", default="seqpipe-demo")
-    p.add_argument("--workers", type=int, default=1)
-    p.add_argument("--quiet", action="store_true")
+    p = sub.add_parser(
+        "demo",
+        help="write the demo corpus, build, verify, summarize",
+        description="Write the invented demo corpus into DIR/corpus, build it into DIR/dataset and verify it.",
+    )
+    p.add_argument(
+        "directory",
+        nargs="?",
+        default="seqpipe-demo",
+        type=directory_path,
+        metavar="DIR",
+        help="where to write (default: seqpipe-demo)",
+    )
+    p.add_argument(
+        "--workers",
+        type=positive_int,
+        default=1,
+        metavar="N",
+        help="processes building, this one included (default: 1)",
+    )
+    p.add_argument("--quiet", action="store_true", help="no progress bars, no build summary")
     p.set_defaults(fn=cmd_demo)
 
 
 def _add_reading(sub: Subparsers[argparse.ArgumentParser]) -> None:
     from seqpipe.batch_output import FORMATS
 
-    p = sub.add_parser("batches", help="show or fingerprint the batch stream of a split")
+    p = sub.add_parser(
+        "batches",
+        help="show or fingerprint the batch stream of a split",
+        description="Show or fingerprint the batch stream of a split.",
+    )
     p.add_argument("directory", help=URI_DIR_HELP)
     p.add_argument("--split", default="train", help="split to read (default: train)")
     p.add_argument("--batch-size", type=int, required=True, metavar="B", help="rows per batch on this rank")
@@ -345,21 +439,41 @@ def _add_reading(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p.add_argument("--verify", action="store_true", help="hash every file of the dataset before the first batch")
     p.set_defaults(fn=cmd_batches)
 
-    p = sub.add_parser("report", help="corpus statistics, leakage checks and baseline perplexities")
+
+def _add_report(sub: Subparsers[argparse.ArgumentParser]) -> None:
+    p = sub.add_parser(
+        "report",
+        help="corpus statistics, leakage checks and baseline perplexities",
+        description="Write report.md, report.json and (with matplotlib) a rank-frequency plot.",
+    )
     p.add_argument("directory", help=URI_DIR_HELP)
-    p.add_argument("-o", "--output", help="output directory (default: DIR/report; ./report for a URI)")
-    p.add_argument("--ngram", type=int, default=13, help="n for the leakage n-gram overlap (default 13)")
-    p.add_argument("--quiet", action="store_true")
+    p.add_argument(
+        "-o",
+        "--output",
+        type=directory_path,
+        metavar="DIR",
+        help="output directory (default: DIR/report; ./report for a URI)",
+    )
+    p.add_argument(
+        "--leakage-n",
+        type=positive_int,
+        default=13,
+        metavar="N",
+        help="length of the token n-grams compared across splits for leakage (default: 13)",
+    )
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
     p.set_defaults(fn=cmd_report)
 
-    p = sub.add_parser("encode", help="encode text with a dataset's tokenizer")
-    p.add_argument("directory")
-    p.add_argument("text")
+
+def _add_tokenizer(sub: Subparsers[argparse.ArgumentParser]) -> None:
+    p = sub.add_parser("encode", help="encode text with a dataset's tokenizer", description="Print the ids of TEXT.")
+    p.add_argument("directory", help="dataset directory")
+    p.add_argument("text", metavar="TEXT", help="the text to encode (quote it)")
     p.set_defaults(fn=cmd_encode)
 
-    p = sub.add_parser("decode", help="decode ids with a dataset's tokenizer")
-    p.add_argument("directory")
-    p.add_argument("ids", nargs="+", type=int)
+    p = sub.add_parser("decode", help="decode ids with a dataset's tokenizer", description="Print the text of IDS.")
+    p.add_argument("directory", help="dataset directory")
+    p.add_argument("ids", nargs="+", type=int, metavar="IDS", help="token ids, separated by spaces")
     p.set_defaults(fn=cmd_decode)
 
 

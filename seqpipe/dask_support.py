@@ -1,4 +1,4 @@
-"""Run builds on a Dask cluster (optional extra ``seqpipe[dask]``).
+"""Run builds on a Dask cluster (optional extra ``dask``: ``pip install '.[dask]'`` in a checkout).
 
 ``client.get_executor(pure=False)`` matters: with the default ``pure=True`` Dask treats repeated
 identical calls as one and drops them. Tasks are idempotent (deterministic names, atomic
@@ -18,7 +18,9 @@ def connect(address: str) -> tuple[Any, Executor]:
     try:
         from distributed import Client
     except ImportError:
-        raise SeqpipeError("--dask-scheduler needs the Dask extra: pip install 'seqpipe[dask]'") from None
+        raise SeqpipeError(
+            "--dask-scheduler needs the Dask extra: pip install '.[dask]' in a seqpipe checkout"
+        ) from None
     try:
         client = Client(address, timeout="20s")  # type: ignore[no-untyped-call]
     except (OSError, TimeoutError) as exc:

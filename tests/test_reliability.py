@@ -478,7 +478,7 @@ CLI_CASES: dict[str, tuple[Callable[[Path], list[str]], int, str]] = {
     "invalid-utf8-input": (_recipe_case(_GOOD, _invalid_utf8), 3, "log-001.txt"),
     "empty-corpus": (_recipe_case(_GOOD, _empty), 3, "no document"),
     "verify-corrupt-shard": (_dataset_case(_flip_shard_byte, "verify", "DIR"), 1, "problem"),
-    "verify-missing-dir": (lambda tmp: ["verify", str(tmp / "nothing-here")], 1, "problem"),
+    "verify-missing-dir": (lambda tmp: ["verify", str(tmp / "nothing-here")], 4, "nothing-here"),
     "inspect-garbled-manifest": (_dataset_case(_garble_manifest, "inspect", "DIR"), 4, "manifest.json"),
     "inspect-missing-dir": (lambda tmp: ["inspect", str(tmp / "nothing-here")], 4, "nothing-here"),
     "batches-truncated-shard": (

@@ -2,7 +2,7 @@
 
 ``corpus_report(dataset)`` returns every figure as a JSON-serializable dict;
 ``write_report(dataset_dir, out_dir)`` also writes ``report.md``, ``report.json`` and
-``rank_frequency.png`` (matplotlib optional: ``seqpipe[plots]``).
+``rank_frequency.png`` (matplotlib optional: the ``plots`` extra).
 """
 
 from seqpipe.report.core import corpus_report, write_dataset_report, write_report

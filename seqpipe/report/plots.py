@@ -1,4 +1,4 @@
-"""PNG plots of the report. matplotlib is an optional extra (``seqpipe[plots]``), imported lazily.
+"""PNG plots of the report. matplotlib is an optional extra (``pip install '.[plots]'`` in a checkout), imported lazily.
 
 Only matplotlib's object API is used (a ``Figure`` with its own Agg canvas), so making a
 plot never switches the process-wide pyplot backend.

@@ -9,7 +9,7 @@ from typing import Any, Final
 
 from seqpipe.errors import SeqpipeError
 
-PLOTS_HINT: Final = "install seqpipe[plots] for plots"
+PLOTS_HINT: Final = "no plots: matplotlib is not installed (in a seqpipe checkout: pip install '.[plots]')"
 MODEL_NAMES: Final = {
     "uniform": "uniform",
     "unigram_add_k": "unigram add-k",
