@@ -90,7 +90,7 @@ class BuildResult:
 
     @property
     def fingerprint(self) -> str:
-        return str(self.manifest["dataset_fingerprint"])
+        return str(self.manifest["fingerprint"])
 
     def summary_lines(self) -> list[str]:
         """Human-readable build summary."""
@@ -99,8 +99,9 @@ class BuildResult:
         mbs = self.input_bytes / 1e6 / max(self.seconds, 1e-9)
         lines = [
             f"dataset      {self.directory}",
-            f"fingerprint  {m['dataset_fingerprint']}",
-            f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['size']} (ids as {m['dtype']})",
+            f"fingerprint  {m['fingerprint']}",
+            f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['entries']} entries "
+            f"(ids as {m['dtype']})",
             f"inputs       {len(m['inputs'])} file(s), {self.input_bytes / 1e6:.2f} MB read in "
             f"{self.seconds:.2f} s ({mbs:.1f} MB/s); parts reused from cache: "
             f"{self.parts_reused}/{self.parts_total}",
@@ -360,7 +361,7 @@ def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
     sizes = [file_size(f) for _, f in files]
     # a URI input is recorded as the URI; a local one relative to the recipe's directory
     inputs = tuple(
-        {"path": str(f) if is_uri(f) else os.path.relpath(f, recipe.root).replace(os.sep, "/"), "size": sz, "hash": h}
+        {"path": str(f) if is_uri(f) else os.path.relpath(f, recipe.root).replace(os.sep, "/"), "bytes": sz, "hash": h}
         for (_, f), sz, h in zip(files, sizes, hashes, strict=True)
     )
     tasks: list[IngestTask] = []
@@ -509,10 +510,9 @@ def _manifest_body(
         "inputs": list(plan.inputs),
         "tokenizer": {
             "kind": recipe.tokenizer.kind,
-            "vocab_size": fitted.vocab_size,
             "files": [_stage_file(stage, f) for f in fitted.files],
         },
-        "vocabulary": {**_stage_file(stage, VOCAB_FILE), "size": fitted.vocab_size},
+        "vocabulary": {**_stage_file(stage, VOCAB_FILE), "entries": fitted.vocab_size},
         "dtype": fitted.dtype,
         "splits": sharded.splits,
         "summary": {

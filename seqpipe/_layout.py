@@ -102,9 +102,9 @@ def split_entry(layout: SplitLayout, docs: DocsTable, written: Sequence[dict[str
             "path": shard_path(layout.name, k),
             "tokens": min(first + layout.per_shard, n_tokens) - first,
             "documents": docs.shard_documents[k],
-            "first": first,
+            "first_token": first,
             "bytes": res["bytes"],
-            "file_hash": res["file_hash"],
+            "hash": res["file_hash"],
             "token_hash": res["token_hash"],
         }
         for k, (first, res) in enumerate(zip(range(0, n_tokens, layout.per_shard), written, strict=True))
@@ -113,7 +113,7 @@ def split_entry(layout: SplitLayout, docs: DocsTable, written: Sequence[dict[str
         "documents": layout.totals["documents"],
         "tokens": n_tokens,
         "shards": shards,
-        "docs": {"path": docs.path, "bytes": docs.size, "hash": docs.hash},
+        "document_table": {"path": docs.path, "bytes": docs.size, "hash": docs.hash},
     }
 
 
@@ -125,7 +125,7 @@ def split_summary(totals: dict[str, int]) -> dict[str, Any]:
         "unknown_rate": totals["unknown"] / n_tokens if n_tokens else 0.0,
         "bytes_per_token": totals["bytes"] / n_tokens if n_tokens else 0.0,
         "tokens_per_word": n_tokens / totals["words"] if totals["words"] else 0.0,
-        "documents_assigned": totals["documents"],
+        "documents": totals["documents"],
     }
 
 
@@ -150,7 +150,7 @@ def _docs_batches(
                 {
                     "start": pa.array(starts, pa.int64()),
                     "length": frag.column("length"),
-                    "source": frag.column("source"),
+                    "input": frag.column("input"),
                     "hash": frag.column("hash"),
                 },
                 schema=DOCS_SCHEMA,

@@ -43,7 +43,7 @@ def test_build_prints_a_json_summary_matching_the_manifest(cli_build: tuple[Path
     summary = json.loads(stdout)
     manifest = json.loads((out / MANIFEST_NAME).read_text(encoding="utf-8"))
     assert Path(summary["directory"]) == out
-    assert summary["fingerprint"] == manifest["dataset_fingerprint"]
+    assert summary["fingerprint"] == manifest["fingerprint"]
     assert summary["summary"] == manifest["summary"]
     assert summary["parts_reused"] == 0
 
@@ -65,7 +65,7 @@ def test_inspect_shows_the_manifest(cli_build: tuple[Path, str], capsys: pytest.
     code, stdout, _ = run(["inspect", str(out), "--json"], capsys)
     assert code == EXIT_OK and json.loads(stdout) == manifest
     code, stdout, _ = run(["inspect", str(out)], capsys)
-    assert code == EXIT_OK and manifest["dataset_fingerprint"] in stdout
+    assert code == EXIT_OK and manifest["fingerprint"] in stdout
     assert all(any(line.startswith(name) for line in stdout.splitlines()) for name in manifest["splits"])
 
 
