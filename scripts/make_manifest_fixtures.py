@@ -97,6 +97,7 @@ def cases() -> dict[str, tuple[bytes, dict[str, Any]]]:
     bad = "manifest"
     refuses, na = {"schema": "refuses"}, {"schema": "n/a"}
     parse_only = {**na, "schema_why": "not JSON a schema can see"}
+    at_use = {**na, "schema_why": "a path is refused when it is used, as the reader does"}
     sealed = seal(base())
     sealed["summary"]["duplicates_dropped"] = 5
     out: dict[str, tuple[bytes, dict[str, Any]]] = {
@@ -106,7 +107,7 @@ def cases() -> dict[str, tuple[bytes, dict[str, Any]]]:
         "malformed-dtype.json": (edited(lambda m: m.update(dtype="float32")), {"expect": bad, "why": "id type that is not an unsigned integer, re-sealed", **refuses}),
         "malformed-duplicate-format.json": (good.replace(b'"format": "seqpipe.manifest/2",', b'"format": "seqpipe.manifest/2", "format": "other/9",', 1), {"expect": bad, "why": "duplicate key (the last one wins in JSON parsers)", **refuses}),
         "malformed-empty.json": (b"", {"expect": bad, "why": "empty file", **parse_only}),
-        "malformed-float-bytes.json": (edited(lambda m: m["vocabulary"].update(bytes=1530.0)), {"expect": bad, "why": "float where a byte count belongs, re-sealed", **refuses}),
+        "malformed-float-bytes.json": (edited(lambda m: m["vocabulary"].update(bytes=1530.0)), {"expect": bad, "why": "float where a byte count belongs, re-sealed", **na, "schema_why": "JSON Schema counts 1530.0 as an integer (JSON Schema Validation, draft 2020-12, section 6.1.1)"}),
         "malformed-format-version.json": (edited(lambda m: m.update(format="seqpipe.manifest/3")), {"expect": bad, "why": "unknown format version, re-sealed", **refuses}),
         "malformed-hash-short.json": (edited(lambda m: m["splits"]["train"]["document_table"].update(hash=H[:16])), {"expect": bad, "why": "hash of 16 hex digits, re-sealed", **refuses}),
         "malformed-hash-uppercase.json": (edited(lambda m: m["vocabulary"].update(hash=H.upper())), {"expect": bad, "why": "hash not lowercase hex, re-sealed", **refuses}),
@@ -127,7 +128,7 @@ def cases() -> dict[str, tuple[bytes, dict[str, Any]]]:
         "malformed-truncated.json": (good[: len(good) // 2], {"expect": bad, "why": "text cut in half", **parse_only}),
         "malformed-unknown-key.json": (edited(lambda m: m.update(comment="hello")), {"expect": bad, "why": "unknown top-level key, re-sealed", **refuses}),
         "old-format-1.json": (dumps(old_format()).encode(), {"expect": bad, "why": "written by an older seqpipe (seqpipe-dataset/1, old names)", "match": "made by an older seqpipe", **refuses}),
-        "unsafe-absolute-document-table.json": (edited(lambda m: m["splits"]["train"]["document_table"].update(path="/etc/passwd")), {"access": "documents", "expect": "unsafe", "path": "/etc/passwd", "why": "absolute documents table path", **refuses}),
+        "unsafe-absolute-document-table.json": (edited(lambda m: m["splits"]["train"]["document_table"].update(path="/etc/passwd")), {"access": "documents", "expect": "unsafe", "path": "/etc/passwd", "why": "absolute documents table path", **at_use}),
     }  # fmt: skip
     paths = {
         "unsafe-absolute-shard.json": ("/etc/passwd", "absolute shard path"),
@@ -144,12 +145,12 @@ def cases() -> dict[str, tuple[bytes, dict[str, Any]]]:
     for name, (path, why) in paths.items():
         out[name] = (
             edited(shard0(path)),
-            {"access": "stream", "expect": "unsafe", "path": path, "why": why, **refuses},
+            {"access": "stream", "expect": "unsafe", "path": path, "why": why, **at_use},
         )
     out["unsafe-parent-vocabulary.json"] = (
         edited(lambda m: m["vocabulary"].update(path="../vocab.arrow")),
         {"access": "vocabulary", "expect": "unsafe", "path": "../vocab.arrow", "why": "vocabulary path climbing out"}
-        | refuses,
+        | at_use,
     )
     return out
 

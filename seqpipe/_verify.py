@@ -20,7 +20,7 @@ from typing import Any, Final
 
 from seqpipe.errors import DatasetError, ManifestError, ShardMissingError, UnsafePathError
 from seqpipe.formats import DOCS_DIR, PRIVATE, SHARDS_DIR
-from seqpipe.manifest import MANIFEST_NAME, dumps, parse_manifest, validate
+from seqpipe.manifest import MANIFEST_NAME, dumps, is_old_format, parse_manifest, validate
 from seqpipe.storage import Store, open_store
 
 TOP_LEVEL_OK: Final = frozenset({MANIFEST_NAME, PRIVATE})  # top-level names that are never unlisted
@@ -162,7 +162,8 @@ def verify(
     expect: str | None = None,
     threads: int | None = None,
 ) -> VerifyReport:
-    """Recompute every hash of a dataset and report each problem found (never raises for them).
+    """Recompute every hash of a dataset and report each problem found (never raises for them;
+    a dataset an older seqpipe wrote raises ManifestError, since this version cannot check it).
 
     ``directory`` may be a filesystem URI (see :mod:`seqpipe.storage`): its files are then
     streamed and hashed, and the files it holds listed recursively. ``threads`` overrides how
@@ -174,6 +175,8 @@ def verify(
         raw = store.read_manifest()
         manifest = parse_manifest(raw, store.where(MANIFEST_NAME))
     except (ManifestError, DatasetError) as exc:
+        if isinstance(exc, ManifestError) and is_old_format(exc):
+            raise  # not damage to report: this version cannot check the dataset at all
         report.problems.append(Problem(MANIFEST_NAME, "manifest", str(exc)))
         return report
     report.fingerprint = manifest["fingerprint"]

@@ -35,6 +35,8 @@ from seqpipe.errors import ManifestError, UnsafePathError
 FORMAT: Final = "seqpipe.manifest/2"
 OLD_FORMATS: Final = ("seqpipe-dataset/1",)
 MANIFEST_NAME: Final = "manifest.json"
+# the JSON Schema (draft 2020-12) of this format, shipped as package data for other tools
+SCHEMA_FILE: Final = Path(__file__).resolve().parent / "schemas" / "manifest-2.schema.json"
 MAX_MANIFEST_BYTES: Final = 64 << 20
 MAX_DEPTH: Final = 32
 HEX32: Final = frozenset("0123456789abcdef")
@@ -158,16 +160,22 @@ def safe_relative(directory: Path, rel: str, *, key: str = "path") -> Path:
     return full
 
 
+def is_old_format(exc: ManifestError) -> bool:
+    """Whether ``exc`` refused a manifest for being of a format an older seqpipe wrote."""
+    return "old_format" in exc.details
+
+
 def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
     """Check a parsed manifest against the schema and its own hashes; return it."""
     c = _Check(where)
     if not isinstance(manifest, dict):
         raise c.fail("(top)", "expected a JSON object")
     if manifest.get("format") in OLD_FORMATS:
-        raise c.fail(
-            "format",
-            f"made by an older seqpipe (format {manifest['format']}); this version reads {FORMAT}: "
+        raise ManifestError(
+            f"{where}: made by an older seqpipe (format {manifest['format']}); this version reads {FORMAT}: "
             "rebuild it with `seqpipe build RECIPE`",
+            key="format",
+            old_format=manifest["format"],
         )
     if manifest.get("format") != FORMAT:
         raise c.fail(

@@ -163,3 +163,27 @@ def test_verify_problems_exit_1(
     code, stdout, stderr = run(["verify", str(copy)], capsys)
     assert code == EXIT_VERIFY_FAILED
     assert shard.name in stdout and "problem(s)" in stderr
+
+
+@pytest.mark.parametrize(
+    "command",
+    [
+        ["inspect"],
+        ["inspect", "--json"],
+        ["verify"],
+        ["verify", "--json"],
+        ["batches", "--batch-size", "2", "--window", "4"],
+    ],
+)
+def test_dataset_of_the_old_format_is_refused_with_what_to_do(
+    command: list[str], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A dataset an older seqpipe wrote (format seqpipe-dataset/1) exits 4 with a message that names
+    both formats and says to rebuild, from every command that reads a dataset."""
+    d = tmp_path / "old"
+    d.mkdir()
+    shutil.copyfile(Path(__file__).parent.parent / "fixtures" / "manifests" / "old-format-1.json", d / MANIFEST_NAME)
+    code, out, err = run([command[0], str(d), *command[1:]], capsys)
+    assert code == EXIT_DATASET, (out, err)
+    assert "made by an older seqpipe (format seqpipe-dataset/1)" in err
+    assert "this version reads seqpipe.manifest/2: rebuild it with `seqpipe build RECIPE`" in err
