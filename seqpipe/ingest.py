@@ -436,7 +436,7 @@ def fragment_path(stage_dir: str, number: int, split: str) -> Path:
 
 def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     """Encode one part's kept documents per split, markers added. Writes per split an id file
-    and a document fragment (length, source, hash per document); returns per split the totals
+    and a document fragment (length, input, hash per document); returns per split the totals
     ``tokens``, ``documents``, ``unknown``, ``bytes`` and ``words``."""
     from seqpipe.recipe import SPLIT_NAMES
     from seqpipe.tokenizers.base import expand
