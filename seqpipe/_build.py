@@ -2,7 +2,7 @@
 
 Each phase is a function below that takes and returns small frozen values. The executor tasks
 the phases run are in seqpipe/ingest.py, how they run (order, progress) in seqpipe/_runner.py,
-and the shard phase's arithmetic (shard cuts, docs tables) in seqpipe/_layout.py::
+and the shard phase's arithmetic (shard cuts, documents tables) in seqpipe/_layout.py::
 
     plan     resolve globs, hash inputs (stat-cached), cut files into parts      -> Plan
     ingest   read + clean + segment each part, task per part, cached parts reused -> Ingested
@@ -13,7 +13,7 @@ and the shard phase's arithmetic (shard cuts, docs tables) in seqpipe/_layout.py
     fit      vocabulary (+ learned merges)     -> stage/vocab.arrow, tokenizer.arrow -> Fitted
     encode   ids per part and split, task per part -> stage/encoded/*            -> per-part totals
     shard    fixed-size shards per split, task per shard -> stage/shards/<split>/*.arrow
-             and, in the driver meanwhile, docs tables -> stage/docs/<split>.arrow -> Sharded
+             and, in the driver meanwhile, documents tables -> stage/documents/<split>.arrow -> Sharded
     publish  manifest, atomic rename into the output directory                   -> manifest
     upload   only when the output is a URI: the local dataset copied up (seqpipe/transfer.py)
 
@@ -471,7 +471,7 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
 
 
 def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path) -> Sharded:
-    """Write every shard (tasks) and, meanwhile in this thread, the docs tables."""
+    """Write every shard (tasks) and, meanwhile in this thread, the documents tables."""
     tasks = [task for layout in layouts for task in layout.shards]
     view = View("writing shards", unit="shard")
     results, docs = run_beside(

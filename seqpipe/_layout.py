@@ -2,7 +2,7 @@
 table, and its manifest entry.
 
 A split's tokens form one stream, the encoded parts' files one after another in corpus order;
-shard k holds tokens ``[k * per_shard, (k + 1) * per_shard)`` of it. The docs table gives each
+shard k holds tokens ``[k * per_shard, (k + 1) * per_shard)`` of it. The documents table gives each
 document's start in that stream, re-cut into fixed batches so its bytes depend on the content
 only, never on how the inputs were cut into parts.
 """
@@ -42,7 +42,7 @@ class SplitLayout:
 
 @dataclass(frozen=True, slots=True)
 class DocsTable:
-    """A written docs table, and the number of documents starting in each shard of its split."""
+    """A written documents table, and the number of documents starting in each shard of its split."""
 
     path: str
     size: int
@@ -83,7 +83,7 @@ def _split_layout(
 
 
 def write_docs_tables(stage: Path, layouts: Sequence[SplitLayout]) -> tuple[DocsTable, ...]:
-    """The docs tables, streamed fragment by fragment; counts the documents starting in each shard."""
+    """The documents tables, streamed fragment by fragment; counts the documents starting in each shard."""
     out = []
     for layout in layouts:
         rel = docs_path(layout.name)
