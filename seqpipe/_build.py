@@ -2,7 +2,7 @@
 
 Each phase is a function below that takes and returns small frozen values. The executor tasks
 the phases run are in seqpipe/ingest.py, how they run (order, progress) in seqpipe/_runner.py,
-and the shard phase's arithmetic (shard cuts, docs tables) in seqpipe/_layout.py::
+and the shard phase's arithmetic (shard cuts, documents tables) in seqpipe/_layout.py::
 
     plan     resolve globs, hash inputs (stat-cached), cut files into parts      -> Plan
     ingest   read + clean + segment each part, task per part, cached parts reused -> Ingested
@@ -13,7 +13,7 @@ and the shard phase's arithmetic (shard cuts, docs tables) in seqpipe/_layout.py
     fit      vocabulary (+ learned merges)     -> stage/vocab.arrow, tokenizer.arrow -> Fitted
     encode   ids per part and split, task per part -> stage/encoded/*            -> per-part totals
     shard    fixed-size shards per split, task per shard -> stage/shards/<split>/*.arrow
-             and, in the driver meanwhile, docs tables -> stage/docs/<split>.arrow -> Sharded
+             and, in the driver meanwhile, documents tables -> stage/documents/<split>.arrow -> Sharded
     publish  manifest, atomic rename into the output directory                   -> manifest
     upload   only when the output is a URI: the local dataset copied up (seqpipe/transfer.py)
 
@@ -90,7 +90,7 @@ class BuildResult:
 
     @property
     def fingerprint(self) -> str:
-        return str(self.manifest["dataset_fingerprint"])
+        return str(self.manifest["fingerprint"])
 
     def summary_lines(self) -> list[str]:
         """Human-readable build summary."""
@@ -99,8 +99,9 @@ class BuildResult:
         mbs = self.input_bytes / 1e6 / max(self.seconds, 1e-9)
         lines = [
             f"dataset      {self.directory}",
-            f"fingerprint  {m['dataset_fingerprint']}",
-            f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['size']} (ids as {m['dtype']})",
+            f"fingerprint  {m['fingerprint']}",
+            f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['entries']} entries "
+            f"(ids as {m['dtype']})",
             f"inputs       {len(m['inputs'])} file(s), {self.input_bytes / 1e6:.2f} MB read in "
             f"{self.seconds:.2f} s ({mbs:.1f} MB/s); parts reused from cache: "
             f"{self.parts_reused}/{self.parts_total}",
@@ -360,7 +361,7 @@ def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
     sizes = [file_size(f) for _, f in files]
     # a URI input is recorded as the URI; a local one relative to the recipe's directory
     inputs = tuple(
-        {"path": str(f) if is_uri(f) else os.path.relpath(f, recipe.root).replace(os.sep, "/"), "size": sz, "hash": h}
+        {"path": str(f) if is_uri(f) else os.path.relpath(f, recipe.root).replace(os.sep, "/"), "bytes": sz, "hash": h}
         for (_, f), sz, h in zip(files, sizes, hashes, strict=True)
     )
     tasks: list[IngestTask] = []
@@ -470,7 +471,7 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
 
 
 def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path) -> Sharded:
-    """Write every shard (tasks) and, meanwhile in this thread, the docs tables."""
+    """Write every shard (tasks) and, meanwhile in this thread, the documents tables."""
     tasks = [task for layout in layouts for task in layout.shards]
     view = View("writing shards", unit="shard")
     results, docs = run_beside(
@@ -509,10 +510,9 @@ def _manifest_body(
         "inputs": list(plan.inputs),
         "tokenizer": {
             "kind": recipe.tokenizer.kind,
-            "vocab_size": fitted.vocab_size,
             "files": [_stage_file(stage, f) for f in fitted.files],
         },
-        "vocabulary": {**_stage_file(stage, VOCAB_FILE), "size": fitted.vocab_size},
+        "vocabulary": {**_stage_file(stage, VOCAB_FILE), "entries": fitted.vocab_size},
         "dtype": fitted.dtype,
         "splits": sharded.splits,
         "summary": {

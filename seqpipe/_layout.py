@@ -2,7 +2,7 @@
 table, and its manifest entry.
 
 A split's tokens form one stream, the encoded parts' files one after another in corpus order;
-shard k holds tokens ``[k * per_shard, (k + 1) * per_shard)`` of it. The docs table gives each
+shard k holds tokens ``[k * per_shard, (k + 1) * per_shard)`` of it. The documents table gives each
 document's start in that stream, re-cut into fixed batches so its bytes depend on the content
 only, never on how the inputs were cut into parts.
 """
@@ -42,7 +42,7 @@ class SplitLayout:
 
 @dataclass(frozen=True, slots=True)
 class DocsTable:
-    """A written docs table, and the number of documents starting in each shard of its split."""
+    """A written documents table, and the number of documents starting in each shard of its split."""
 
     path: str
     size: int
@@ -83,7 +83,7 @@ def _split_layout(
 
 
 def write_docs_tables(stage: Path, layouts: Sequence[SplitLayout]) -> tuple[DocsTable, ...]:
-    """The docs tables, streamed fragment by fragment; counts the documents starting in each shard."""
+    """The documents tables, streamed fragment by fragment; counts the documents starting in each shard."""
     out = []
     for layout in layouts:
         rel = docs_path(layout.name)
@@ -102,9 +102,9 @@ def split_entry(layout: SplitLayout, docs: DocsTable, written: Sequence[dict[str
             "path": shard_path(layout.name, k),
             "tokens": min(first + layout.per_shard, n_tokens) - first,
             "documents": docs.shard_documents[k],
-            "first": first,
+            "first_token": first,
             "bytes": res["bytes"],
-            "file_hash": res["file_hash"],
+            "hash": res["file_hash"],
             "token_hash": res["token_hash"],
         }
         for k, (first, res) in enumerate(zip(range(0, n_tokens, layout.per_shard), written, strict=True))
@@ -113,7 +113,7 @@ def split_entry(layout: SplitLayout, docs: DocsTable, written: Sequence[dict[str
         "documents": layout.totals["documents"],
         "tokens": n_tokens,
         "shards": shards,
-        "docs": {"path": docs.path, "bytes": docs.size, "hash": docs.hash},
+        "document_table": {"path": docs.path, "bytes": docs.size, "hash": docs.hash},
     }
 
 
@@ -125,7 +125,7 @@ def split_summary(totals: dict[str, int]) -> dict[str, Any]:
         "unknown_rate": totals["unknown"] / n_tokens if n_tokens else 0.0,
         "bytes_per_token": totals["bytes"] / n_tokens if n_tokens else 0.0,
         "tokens_per_word": n_tokens / totals["words"] if totals["words"] else 0.0,
-        "documents_assigned": totals["documents"],
+        "documents": totals["documents"],
     }
 
 
@@ -150,7 +150,7 @@ def _docs_batches(
                 {
                     "start": pa.array(starts, pa.int64()),
                     "length": frag.column("length"),
-                    "source": frag.column("source"),
+                    "input": frag.column("input"),
                     "hash": frag.column("hash"),
                 },
                 schema=DOCS_SCHEMA,

@@ -19,12 +19,12 @@ from pathlib import Path
 from typing import Any, Final
 
 from seqpipe.errors import DatasetError, ManifestError, ShardMissingError, UnsafePathError
-from seqpipe.formats import PRIVATE
-from seqpipe.manifest import MANIFEST_NAME, dumps, parse_manifest, validate
+from seqpipe.formats import DOCS_DIR, PRIVATE, SHARDS_DIR
+from seqpipe.manifest import MANIFEST_NAME, dumps, is_old_format, parse_manifest, validate
 from seqpipe.storage import Store, open_store
 
 TOP_LEVEL_OK: Final = frozenset({MANIFEST_NAME, PRIVATE})  # top-level names that are never unlisted
-DATA_DIRS: Final = ("docs", "shards")  # the folders that hold listed files only
+DATA_DIRS: Final = (DOCS_DIR, SHARDS_DIR)  # the folders that hold listed files only
 
 
 @dataclass(frozen=True)
@@ -73,8 +73,8 @@ def listed_files(manifest: dict[str, Any]) -> list[dict[str, Any]]:
     ]
     out += [dict(f) for f in manifest["tokenizer"]["files"]]
     for sp in manifest["splits"].values():
-        out.append(dict(sp["docs"]))
-        out += [{"path": s["path"], "bytes": s["bytes"], "hash": s["file_hash"]} for s in sp["shards"]]
+        out.append(dict(sp["document_table"]))
+        out += [{"path": s["path"], "bytes": s["bytes"], "hash": s["hash"]} for s in sp["shards"]]
     return out
 
 
@@ -136,7 +136,7 @@ def unlisted(store: Store, listed: set[str]) -> list[Problem]:
 def _compare(manifest: dict[str, Any], committed: dict[str, Any]) -> list[Problem]:
     """Differences between the dataset's manifest and a committed one."""
     problems = []
-    for key in ("recipe_fingerprint", "dataset_fingerprint"):
+    for key in ("recipe_fingerprint", "fingerprint"):
         if manifest[key] != committed[key]:
             problems.append(Problem(MANIFEST_NAME, "mismatch", f"{key} {manifest[key]}, committed {committed[key]}"))
     if manifest["vocabulary"]["hash"] != committed["vocabulary"]["hash"]:
@@ -162,7 +162,8 @@ def verify(
     expect: str | None = None,
     threads: int | None = None,
 ) -> VerifyReport:
-    """Recompute every hash of a dataset and report each problem found (never raises for them).
+    """Recompute every hash of a dataset and report each problem found (never raises for them;
+    a dataset an older seqpipe wrote raises ManifestError, since this version cannot check it).
 
     ``directory`` may be a filesystem URI (see :mod:`seqpipe.storage`): its files are then
     streamed and hashed, and the files it holds listed recursively. ``threads`` overrides how
@@ -174,9 +175,11 @@ def verify(
         raw = store.read_manifest()
         manifest = parse_manifest(raw, store.where(MANIFEST_NAME))
     except (ManifestError, DatasetError) as exc:
+        if isinstance(exc, ManifestError) and is_old_format(exc):
+            raise  # not damage to report: this version cannot check the dataset at all
         report.problems.append(Problem(MANIFEST_NAME, "manifest", str(exc)))
         return report
-    report.fingerprint = manifest["dataset_fingerprint"]
+    report.fingerprint = manifest["fingerprint"]
     if raw != dumps(manifest).encode("ascii"):
         report.problems.append(
             Problem(
@@ -192,11 +195,9 @@ def verify(
     report.problems += unlisted(store, {e["path"] for e in entries})
     if against is not None:
         report.problems += _against(manifest, against)
-    if expect is not None and expect.lower() != manifest["dataset_fingerprint"]:
+    if expect is not None and expect.lower() != manifest["fingerprint"]:
         report.problems.append(
-            Problem(
-                MANIFEST_NAME, "mismatch", f"dataset fingerprint {manifest['dataset_fingerprint']}, expected {expect}"
-            )
+            Problem(MANIFEST_NAME, "mismatch", f"fingerprint {manifest['fingerprint']}, expected {expect}")
         )
     return report
 

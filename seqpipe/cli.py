@@ -114,10 +114,10 @@ def cmd_inspect(args: argparse.Namespace) -> int:
         return EXIT_OK
     print(f"dataset      {args.directory} ({m['recipe']['dataset']['name']})")
     print(f"format       {m['format']}, written by seqpipe {m['seqpipe_version']}")
-    print(f"fingerprint  {m['dataset_fingerprint']}")
+    print(f"fingerprint  {m['fingerprint']}")
     print(f"recipe       {m['recipe_fingerprint']}")
-    print(f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['size']}, ids {m['dtype']}")
-    print(f"inputs       {len(m['inputs'])} file(s), {sum(i['size'] for i in m['inputs'])} bytes")
+    print(f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['entries']} entries, ids {m['dtype']}")
+    print(f"inputs       {len(m['inputs'])} file(s), {sum(i['bytes'] for i in m['inputs'])} bytes")
     for name in ds.splits:
         sp = m["splits"][name]
         size = sum(s["bytes"] for s in sp["shards"])

@@ -16,7 +16,7 @@ import numpy as np
 import pyarrow as pa
 
 from seqpipe.errors import DatasetError, IntegrityError, ManifestError, ShardCorruptError
-from seqpipe.formats import DOCS_SCHEMA
+from seqpipe.formats import DOCS_SCHEMA, DOCUMENTS_FORMAT
 from seqpipe.manifest import read_manifest, safe_relative
 from seqpipe.shards import read_shard, read_table
 from seqpipe.tokenizers import parse_tokenizer
@@ -46,16 +46,19 @@ class Split:
 
     @cached_property
     def documents(self) -> pa.Table:
-        """Per document: start (offset in the split's stream), length, source, hash."""
-        rel = self.info["docs"]["path"]
-        table = read_table(safe_relative(self.dataset.directory, rel, key=f"splits.{self.name}.docs.path"))
+        """Per document: start (offset in the split's stream), length, input, hash."""
+        rel = self.info["document_table"]["path"]
+        table = read_table(safe_relative(self.dataset.directory, rel, key=f"splits.{self.name}.document_table.path"))
         try:
-            same = table.schema.remove_metadata().equals(DOCS_SCHEMA)
+            meta = table.schema.metadata or {}
+            same = table.schema.equals(DOCS_SCHEMA) and meta.get(b"seqpipe.format") == DOCUMENTS_FORMAT.encode()
         except (UnicodeDecodeError, pa.ArrowException):
             same = False
         if not same or any(c.null_count for c in table.columns):
             raise ShardCorruptError(
-                f"{rel}: not a documents table (expected columns start, length, source, hash without nulls)", path=rel
+                f"{rel}: not a documents table (expected format {DOCUMENTS_FORMAT}: columns start, length, input, "
+                "hash without nulls)",
+                path=rel,
             )
         if table.num_rows != self.num_documents:
             raise DatasetError(f"{rel}: holds {table.num_rows} documents, manifest says {self.num_documents}")
@@ -92,7 +95,7 @@ class Dataset:
 
     @property
     def fingerprint(self) -> str:
-        return str(self.manifest["dataset_fingerprint"])
+        return str(self.manifest["fingerprint"])
 
     @property
     def splits(self) -> tuple[str, ...]:

@@ -41,7 +41,7 @@ from seqpipe.splits import assign_splits
 from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
 
-PART_FORMAT: Final = 3
+PART_FORMAT: Final = "seqpipe.part/4"
 _THREADS: list[int] = []  # set by set_ingest_threads (e.g. in pool workers); else the environment
 
 
@@ -404,7 +404,7 @@ class EncodeTask:
     stage_dir: str
     recipe: Recipe
     number: int  # part number, names the output files
-    input_index: int  # the part's input file (the docs tables' "source")
+    input_index: int  # the part's input file (the documents tables' "input")
     keep: np.ndarray | None  # bool per document (None: keep all)
     dtype: str
 
@@ -436,7 +436,7 @@ def fragment_path(stage_dir: str, number: int, split: str) -> Path:
 
 def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     """Encode one part's kept documents per split, markers added. Writes per split an id file
-    and a document fragment (length, source, hash per document); returns per split the totals
+    and a document fragment (length, input, hash per document); returns per split the totals
     ``tokens``, ``documents``, ``unknown``, ``bytes`` and ``words``."""
     from seqpipe.recipe import SPLIT_NAMES
     from seqpipe.tokenizers.base import expand
@@ -471,7 +471,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
             table=pa.table(
                 {
                     "length": pa.array(lengths, pa.int64()),
-                    "source": pa.array(np.full(len(lengths), task.input_index, np.int32)),
+                    "input": pa.array(np.full(len(lengths), task.input_index, np.int32)),
                     "hash": hashes.filter(pa.array(dmask)),
                 }
             ),

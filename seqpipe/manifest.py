@@ -2,19 +2,22 @@
 
 ``manifest.json`` (UTF-8 JSON object)::
 
-    format             "seqpipe-dataset/1"   readers refuse any other value
+    format             "seqpipe.manifest/2"   readers refuse any other value
     seqpipe_version    library version that wrote it
     recipe             the canonical recipe (see Recipe.to_dict)
     recipe_fingerprint XXH3-128 of the canonical recipe
-    inputs             [{path, size, hash}]  input files relative to the recipe directory
-    tokenizer          {kind, vocab_size, files: [{path, bytes, hash}]}
-    vocabulary         {path, bytes, hash, size}
+    inputs             [{path, bytes, hash}]  input files relative to the recipe directory
+    tokenizer          {kind, files: [{path, bytes, hash}]}
+    vocabulary         {path, bytes, hash, entries}
     dtype              "uint8" | "uint16" | "uint32"
-    splits             {name: {documents, tokens, docs: {path, bytes, hash},
-                               shards: [{path, tokens, documents, first, bytes, file_hash, token_hash}]}}
+    splits             {name: {documents, tokens, document_table: {path, bytes, hash},
+                               shards: [{path, tokens, documents, first_token, bytes, hash, token_hash}]}}
     summary            deterministic build figures (drops, unknown-token counts, ...)
-    dataset_fingerprint XXH3-128 over all of the above (canonical JSON)
-    manifest_hash      XXH3-128 over all of the above plus dataset_fingerprint
+    fingerprint        XXH3-128 over all of the above (canonical JSON)
+    manifest_hash      XXH3-128 over all of the above plus fingerprint
+
+The JSON Schema ``seqpipe/schemas/manifest-2.schema.json`` describes the same format; the
+README's "On disk" section says how to check a dataset with an Arrow reader and xxhash only.
 
 No timestamps and no absolute paths: two builds of the same recipe and inputs write the same
 bytes. Parsing validates types, limits sizes and nesting, and checks both hashes.
@@ -29,8 +32,11 @@ from typing import Any, Final
 from seqpipe._hashing import hash_json
 from seqpipe.errors import ManifestError, UnsafePathError
 
-FORMAT: Final = "seqpipe-dataset/1"
+FORMAT: Final = "seqpipe.manifest/2"
+OLD_FORMATS: Final = ("seqpipe-dataset/1",)
 MANIFEST_NAME: Final = "manifest.json"
+# the JSON Schema (draft 2020-12) of this format, shipped as package data for other tools
+SCHEMA_FILE: Final = Path(__file__).resolve().parent / "schemas" / "manifest-2.schema.json"
 MAX_MANIFEST_BYTES: Final = 64 << 20
 MAX_DEPTH: Final = 32
 HEX32: Final = frozenset("0123456789abcdef")
@@ -46,16 +52,17 @@ TOP_KEYS: Final = (
     "dtype",
     "splits",
     "summary",
-    "dataset_fingerprint",
+    "fingerprint",
     "manifest_hash",
 )
+SHARD_KEYS: Final = ("path", "tokens", "documents", "first_token", "bytes", "hash", "token_hash")
 
 
 def seal(body: dict[str, Any]) -> dict[str, Any]:
-    """Add ``dataset_fingerprint`` and ``manifest_hash`` to a manifest body."""
-    core = {k: v for k, v in body.items() if k not in ("dataset_fingerprint", "manifest_hash")}
+    """Add ``fingerprint`` and ``manifest_hash`` to a manifest body."""
+    core = {k: v for k, v in body.items() if k not in ("fingerprint", "manifest_hash")}
     out = dict(core)
-    out["dataset_fingerprint"] = hash_json(core)
+    out["fingerprint"] = hash_json(core)
     out["manifest_hash"] = hash_json(out)
     return out
 
@@ -153,11 +160,23 @@ def safe_relative(directory: Path, rel: str, *, key: str = "path") -> Path:
     return full
 
 
+def is_old_format(exc: ManifestError) -> bool:
+    """Whether ``exc`` refused a manifest for being of a format an older seqpipe wrote."""
+    return "old_format" in exc.details
+
+
 def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
     """Check a parsed manifest against the schema and its own hashes; return it."""
     c = _Check(where)
     if not isinstance(manifest, dict):
         raise c.fail("(top)", "expected a JSON object")
+    if manifest.get("format") in OLD_FORMATS:
+        raise ManifestError(
+            f"{where}: made by an older seqpipe (format {manifest['format']}); this version reads {FORMAT}: "
+            "rebuild it with `seqpipe build RECIPE`",
+            key="format",
+            old_format=manifest["format"],
+        )
     if manifest.get("format") != FORMAT:
         raise c.fail(
             "format",
@@ -174,17 +193,13 @@ def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
     if hash_json(m["recipe"]) != m["recipe_fingerprint"]:
         raise c.fail("recipe_fingerprint", "does not match the recipe stored in the manifest")
     for i, inp in enumerate(c.list_(m["inputs"], "inputs")):
-        d = c.obj(inp, f"inputs[{i}]", ("path", "size", "hash"))
-        c.str_(d["path"], f"inputs[{i}].path")
-        c.int_(d["size"], f"inputs[{i}].size")
-        c.hex_(d["hash"], f"inputs[{i}].hash")
-    tok = c.obj(m["tokenizer"], "tokenizer", ("kind", "vocab_size", "files"))
+        c.file_(inp, f"inputs[{i}]")
+    tok = c.obj(m["tokenizer"], "tokenizer", ("kind", "files"))
     c.str_(tok["kind"], "tokenizer.kind")
-    c.int_(tok["vocab_size"], "tokenizer.vocab_size")
     for i, f in enumerate(c.list_(tok["files"], "tokenizer.files")):
         c.file_(f, f"tokenizer.files[{i}]")
-    voc = c.file_(m["vocabulary"], "vocabulary", ("size",))
-    c.int_(voc["size"], "vocabulary.size")
+    voc = c.file_(m["vocabulary"], "vocabulary", ("entries",))
+    c.int_(voc["entries"], "vocabulary.entries")
     if m["dtype"] not in DTYPES:
         raise c.fail("dtype", f"expected one of {list(DTYPES)}, got {m['dtype']!r}")
     splits = m["splits"]
@@ -192,31 +207,33 @@ def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
         raise c.fail("splits", "expected an object")
     for name, sp in splits.items():
         k = f"splits.{name}"
-        d = c.obj(sp, k, ("documents", "tokens", "docs", "shards"))
+        d = c.obj(sp, k, ("documents", "tokens", "document_table", "shards"))
         c.int_(d["documents"], f"{k}.documents")
         total = c.int_(d["tokens"], f"{k}.tokens")
-        c.file_(d["docs"], f"{k}.docs")
+        c.file_(d["document_table"], f"{k}.document_table")
         first = 0
         for j, sh in enumerate(c.list_(d["shards"], f"{k}.shards")):
             sk = f"{k}.shards[{j}]"
-            s = c.obj(sh, sk, ("path", "tokens", "documents", "first", "bytes", "file_hash", "token_hash"))
+            s = c.obj(sh, sk, SHARD_KEYS)
             c.str_(s["path"], f"{sk}.path")
-            for num in ("tokens", "documents", "first", "bytes"):
+            for num in ("tokens", "documents", "first_token", "bytes"):
                 c.int_(s[num], f"{sk}.{num}")
-            c.hex_(s["file_hash"], f"{sk}.file_hash")
+            c.hex_(s["hash"], f"{sk}.hash")
             c.hex_(s["token_hash"], f"{sk}.token_hash")
-            if s["first"] != first:
-                raise c.fail(f"{sk}.first", f"expected {first} (shards must tile the split), got {s['first']}")
+            if s["first_token"] != first:
+                raise c.fail(
+                    f"{sk}.first_token", f"expected {first} (shards must tile the split), got {s['first_token']}"
+                )
             first += s["tokens"]
         if first != total:
             raise c.fail(f"{k}.tokens", f"shards hold {first} tokens, split says {total}")
     if not isinstance(m["summary"], dict):
         raise c.fail("summary", "expected an object")
-    c.hex_(m["dataset_fingerprint"], "dataset_fingerprint")
+    c.hex_(m["fingerprint"], "fingerprint")
     c.hex_(m["manifest_hash"], "manifest_hash")
     resealed = seal(m)
-    if resealed["dataset_fingerprint"] != m["dataset_fingerprint"]:
-        raise c.fail("dataset_fingerprint", "does not match the manifest's content (the manifest was edited)")
+    if resealed["fingerprint"] != m["fingerprint"]:
+        raise c.fail("fingerprint", "does not match the manifest's content (the manifest was edited)")
     if resealed["manifest_hash"] != m["manifest_hash"]:
         raise c.fail("manifest_hash", "does not match the manifest's content (the manifest was edited)")
     return m

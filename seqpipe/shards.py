@@ -21,7 +21,7 @@ import pyarrow as pa
 from seqpipe._hashing import hash_array
 from seqpipe.errors import ShardCorruptError, ShardMissingError
 
-SHARD_FORMAT: Final = "1"
+SHARD_FORMAT: Final = "seqpipe.shard/2"
 ARROW_MAGIC: Final = b"ARROW1"
 
 
@@ -142,6 +142,12 @@ def read_shard(path: Path, *, dtype: np.dtype | None = None, expected_tokens: in
         raise ShardCorruptError(f"{path}: malformed shard schema ({exc})", path=str(path)) from exc
     if meta.get(b"seqpipe.table") != b"shard" or col is None:
         raise ShardCorruptError(f"{path}: not a seqpipe shard (expected one column 'ids')", path=str(path))
+    if meta.get(b"seqpipe.format") != SHARD_FORMAT.encode():
+        raise ShardCorruptError(
+            f"{path}: shard format {meta.get(b'seqpipe.format', b'?').decode('utf-8', 'replace')!r}, this seqpipe "
+            f"reads {SHARD_FORMAT}: rebuild the dataset with `seqpipe build RECIPE`",
+            path=str(path),
+        )
     if not pa.types.is_unsigned_integer(col.type):
         raise ShardCorruptError(f"{path}: ids have type {col.type}, expected an unsigned integer", path=str(path))
     if dtype is not None and col.type != pa.from_numpy_dtype(dtype):

@@ -11,7 +11,7 @@ procedure over :class:`seqpipe.storage.Store` (:func:`_sync`):
    manifest (it stops being a complete dataset), copy every other listed file (a store without
    rename checks each size after the write; a fetched file is also hashed, since the remote
    bytes are not trusted), then write the manifest last;
-3. delete files under ``shards/`` and ``docs/`` (and optional top-level files) that the
+3. delete files under ``shards/`` and ``documents/`` (and optional top-level files) that the
    manifest does not list.
 
 A copy cut short leaves no manifest; running it again copies only what is missing or

@@ -25,7 +25,7 @@ from seqpipe._parse import parse_int, parse_str, parse_str_tuple
 from seqpipe.errors import RecipeError, ShardCorruptError, TokenizerError
 
 ROLES: Final = ("unknown", "padding", "begin", "end")
-VOCAB_FORMAT: Final = "1"
+VOCAB_FORMAT: Final = "seqpipe.vocabulary/2"
 COUNTS_SCHEMA: Final = pa.schema([("key", pa.binary()), ("count", pa.int64())])
 
 

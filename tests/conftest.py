@@ -6,12 +6,14 @@ from a seeded generator so every run writes the same bytes. It is not a referenc
 
 from __future__ import annotations
 
+import functools
 import os
 import random
 import subprocess
 import sys
-from collections.abc import Sequence
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -151,3 +153,79 @@ def project(tmp_path: Path) -> Path:
 def built_dataset(tmp_path: Path, project: Path) -> Path:
     """The small corpus built with ``workers=1`` into ``tmp_path/dataset``."""
     return build_dir(project, tmp_path / "dataset")
+
+
+# -- every manifest the tests build follows the shipped JSON Schema ---------------------------------
+# In this process the build's manifest text is made by seqpipe._build.dumps: wrapped below, every
+# build any test runs has its manifest checked before it is written. Builds in other processes
+# (the CLI tests) are found on disk at the end of the session: every manifest.json under the
+# session's temporary directory that the strict reader accepts must pass the schema too.
+
+
+@functools.cache
+def manifest_schema() -> Any:
+    """A validator for seqpipe/schemas/manifest-2.schema.json (JSON Schema draft 2020-12)."""
+    import json
+
+    from jsonschema import Draft202012Validator
+
+    from seqpipe.manifest import SCHEMA_FILE
+
+    return Draft202012Validator(json.loads(SCHEMA_FILE.read_text(encoding="utf-8")))
+
+
+def manifest_schema_problems(manifest: object) -> list[str]:
+    """Where ``manifest`` breaks seqpipe/schemas/manifest-2.schema.json (draft 2020-12), if anywhere."""
+    return [
+        f"{'/'.join(map(str, e.absolute_path)) or '(top)'}: {e.message}"
+        for e in manifest_schema().iter_errors(manifest)
+    ]
+
+
+def unschematic_manifests(root: Path) -> tuple[int, list[str]]:
+    """(manifests the strict reader accepts under ``root``, problems of those the schema refuses)."""
+    from seqpipe.errors import DatasetError
+    from seqpipe.manifest import MANIFEST_NAME, parse_manifest
+
+    accepted, problems = 0, []
+    for folder, _, files in os.walk(root):  # does not follow symlinks (some tests plant loops)
+        if MANIFEST_NAME not in files:
+            continue
+        path = Path(folder) / MANIFEST_NAME
+        try:
+            manifest = parse_manifest(path.read_bytes(), str(path))
+        except (DatasetError, OSError):
+            continue  # hostile test data, refused by the reader as it should be
+        accepted += 1
+        problems += [f"{path}: {p}" for p in manifest_schema_problems(manifest)]
+    return accepted, problems
+
+
+class ManifestSchemaError(AssertionError):
+    """A build wrote a manifest that the shipped JSON Schema refuses."""
+
+
+def schema_checked(dumps: Callable[[dict[str, Any]], str]) -> Callable[[dict[str, Any]], str]:
+    """``dumps`` that first checks the manifest against the schema."""
+
+    def checked(manifest: dict[str, Any]) -> str:
+        problems = manifest_schema_problems(manifest)
+        if problems:
+            raise ManifestSchemaError("the build wrote a manifest the schema refuses:\n" + "\n".join(problems))
+        return dumps(manifest)
+
+    return checked
+
+
+@pytest.fixture(autouse=True, scope="session")
+def _manifests_follow_the_schema(tmp_path_factory: pytest.TempPathFactory) -> Iterator[None]:
+    """Every manifest a build writes in this session passes the JSON Schema (see above)."""
+    import seqpipe._build
+
+    original = seqpipe._build.dumps
+    seqpipe._build.dumps = schema_checked(original)
+    yield
+    seqpipe._build.dumps = original
+    _, problems = unschematic_manifests(tmp_path_factory.getbasetemp())
+    if problems:
+        pytest.fail("manifests the reader accepts but the schema refuses:\n" + "\n".join(problems[:20]))

@@ -75,7 +75,7 @@ def _documents_table(lengths: np.ndarray, texts: Sequence[str]) -> pa.Table:
         {
             "start": pa.array(starts, pa.int64()),
             "length": pa.array(lengths, pa.int64()),
-            "source": pa.array(np.zeros(len(lengths), np.int32), pa.int32()),
+            "input": pa.array(np.zeros(len(lengths), np.int32), pa.int32()),
             "hash": pa.array(hashes, pa.binary(16)),
         }
     )

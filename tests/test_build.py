@@ -134,7 +134,7 @@ test = 0.0
     tokens = [t.decode() for t in ds.vocabulary.tokens.to_pylist()]
     assert tokens[0] == "<unk>"
     assert sorted(tokens[1:]) == sorted(BOARD_ALPHABET)
-    assert res.manifest["vocabulary"]["size"] == len(BOARD_ALPHABET) + 1
+    assert res.manifest["vocabulary"]["entries"] == len(BOARD_ALPHABET) + 1
     unknown = ds.vocabulary.unknown_id
     assert unknown not in ds.encoder.encode("09:15 pm").tolist()
     assert ds.encoder.encode("Dock!").tolist() == [unknown] * 5

@@ -43,7 +43,7 @@ def test_build_prints_a_json_summary_matching_the_manifest(cli_build: tuple[Path
     summary = json.loads(stdout)
     manifest = json.loads((out / MANIFEST_NAME).read_text(encoding="utf-8"))
     assert Path(summary["directory"]) == out
-    assert summary["fingerprint"] == manifest["dataset_fingerprint"]
+    assert summary["fingerprint"] == manifest["fingerprint"]
     assert summary["summary"] == manifest["summary"]
     assert summary["parts_reused"] == 0
 
@@ -65,7 +65,7 @@ def test_inspect_shows_the_manifest(cli_build: tuple[Path, str], capsys: pytest.
     code, stdout, _ = run(["inspect", str(out), "--json"], capsys)
     assert code == EXIT_OK and json.loads(stdout) == manifest
     code, stdout, _ = run(["inspect", str(out)], capsys)
-    assert code == EXIT_OK and manifest["dataset_fingerprint"] in stdout
+    assert code == EXIT_OK and manifest["fingerprint"] in stdout
     assert all(any(line.startswith(name) for line in stdout.splitlines()) for name in manifest["splits"])
 
 
@@ -163,3 +163,27 @@ def test_verify_problems_exit_1(
     code, stdout, stderr = run(["verify", str(copy)], capsys)
     assert code == EXIT_VERIFY_FAILED
     assert shard.name in stdout and "problem(s)" in stderr
+
+
+@pytest.mark.parametrize(
+    "command",
+    [
+        ["inspect"],
+        ["inspect", "--json"],
+        ["verify"],
+        ["verify", "--json"],
+        ["batches", "--batch-size", "2", "--window", "4"],
+    ],
+)
+def test_dataset_of_the_old_format_is_refused_with_what_to_do(
+    command: list[str], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A dataset an older seqpipe wrote (format seqpipe-dataset/1) exits 4 with a message that names
+    both formats and says to rebuild, from every command that reads a dataset."""
+    d = tmp_path / "old"
+    d.mkdir()
+    shutil.copyfile(Path(__file__).parent.parent / "fixtures" / "manifests" / "old-format-1.json", d / MANIFEST_NAME)
+    code, out, err = run([command[0], str(d), *command[1:]], capsys)
+    assert code == EXIT_DATASET, (out, err)
+    assert "made by an older seqpipe (format seqpipe-dataset/1)" in err
+    assert "this version reads seqpipe.manifest/2: rebuild it with `seqpipe build RECIPE`" in err

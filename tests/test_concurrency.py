@@ -33,7 +33,7 @@ def build_args(recipe: Path, out: Path) -> list[str]:
 
 
 def fingerprint_of(d: Path) -> str:
-    return str(json.loads((d / MANIFEST_NAME).read_text())["dataset_fingerprint"])
+    return str(json.loads((d / MANIFEST_NAME).read_text())["fingerprint"])
 
 
 def test_second_build_fails_fast_while_first_holds_the_lock(
@@ -177,7 +177,7 @@ def test_verify_against_committed_manifest(built_dataset: Path, project: Path, t
     assert code == 1 and not report["ok"]
     kinds = {(p["kind"], p["path"]) for p in report["problems"]}
     assert ("mismatch", MANIFEST_NAME) in kinds
-    assert any("dataset_fingerprint" in p["detail"] for p in report["problems"])
+    assert any("fingerprint" in p["detail"] for p in report["problems"])
     plain = run_cli(["verify", str(built_dataset), "--against", str(committed)])
     assert plain.returncode == 1 and "mismatch" in plain.stdout and "problem(s)" in plain.stderr
 
@@ -194,7 +194,7 @@ def test_committed_manifest_catches_a_resealed_tampering(built_dataset: Path, tm
     j = int(np.flatnonzero(ids != ids[0])[0])
     ids[[0, j]] = ids[[j, 0]]  # two ids swapped: same vocabulary, same length, other content
     write_shard(path, ids)
-    entry.update(bytes=path.stat().st_size, file_hash=hash_file(path), token_hash=hash_array(ids))
+    entry.update(bytes=path.stat().st_size, hash=hash_file(path), token_hash=hash_array(ids))
     (built_dataset / MANIFEST_NAME).write_text(dumps(seal(m)))
     assert verify(built_dataset).ok  # a re-sealed manifest is self-consistent: verify alone cannot tell
     report = verify(built_dataset, against=committed)

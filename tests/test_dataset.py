@@ -40,7 +40,7 @@ def test_splits_are_the_manifests_in_pipeline_order(built: Path) -> None:
     assert isinstance(ds, Dataset)
     assert set(ds.splits) == set(manifest["splits"])  # type: ignore[arg-type]
     assert ds.splits[0] == "train"
-    assert ds.fingerprint == manifest["dataset_fingerprint"]
+    assert ds.fingerprint == manifest["fingerprint"]
 
 
 def test_token_and_document_counts_equal_the_manifest(built: Path) -> None:

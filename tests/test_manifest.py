@@ -27,23 +27,23 @@ def minimal() -> dict[str, Any]:
             "seqpipe_version": "0",
             "recipe": recipe,
             "recipe_fingerprint": hash_json(recipe),
-            "inputs": [{"path": "a.txt", "size": 3, "hash": HEX}],
-            "tokenizer": {"kind": "words", "vocab_size": 5, "files": []},
-            "vocabulary": {"path": "vocab.arrow", "bytes": 10, "hash": HEX, "size": 5},
+            "inputs": [{"path": "a.txt", "bytes": 3, "hash": HEX}],
+            "tokenizer": {"kind": "words", "files": []},
+            "vocabulary": {"path": "vocab.arrow", "bytes": 10, "hash": HEX, "entries": 5},
             "dtype": "uint8",
             "splits": {
                 "train": {
                     "documents": 1,
                     "tokens": 4,
-                    "docs": {"path": "docs/train.arrow", "bytes": 1, "hash": HEX},
+                    "document_table": {"path": "documents/train.arrow", "bytes": 1, "hash": HEX},
                     "shards": [
                         {
                             "path": "shards/train/000000.arrow",
                             "tokens": 4,
                             "documents": 1,
-                            "first": 0,
+                            "first_token": 0,
                             "bytes": 9,
-                            "file_hash": HEX,
+                            "hash": HEX,
                             "token_hash": HEX,
                         }
                     ],
@@ -63,7 +63,7 @@ def test_sealed_manifest_validates() -> None:
 @pytest.mark.parametrize(
     "edit",
     [
-        lambda m: m.update(format="seqpipe-dataset/2"),
+        lambda m: m.update(format="seqpipe.manifest/3"),
         lambda m: m.update(extra=1),
         lambda m: m["splits"]["train"]["shards"][0].update(tokens=5),
         lambda m: m["splits"]["train"].update(tokens=3),
@@ -84,7 +84,7 @@ def test_edits_are_refused(edit: Any) -> None:
 def test_resealed_edit_still_caught_by_structure() -> None:
     """Even re-sealed, a manifest whose shards do not tile the split is refused."""
     m = minimal()
-    m["splits"]["train"]["shards"][0]["first"] = 1
+    m["splits"]["train"]["shards"][0]["first_token"] = 1
     with pytest.raises(ManifestError, match="tile"):
         validate(seal(m))
 

@@ -37,7 +37,7 @@ FULL_KILLS = 24
 def fingerprint_of(directory: Path) -> str | None:
     """The dataset fingerprint in ``directory``'s manifest, or None when there is none."""
     try:
-        return str(json.loads((directory / MANIFEST_NAME).read_text())["dataset_fingerprint"])
+        return str(json.loads((directory / MANIFEST_NAME).read_text())["fingerprint"])
     except (OSError, ValueError, KeyError):
         return None
 

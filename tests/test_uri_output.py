@@ -144,7 +144,7 @@ def test_unlisted_files_are_reported(root: Path, tmp_path: Path, mem: pafs.FileS
 def test_hostile_manifest_path_is_refused(root: Path, tmp_path: Path, mem: pafs.FileSystem, hostile: str) -> None:
     """A sealed manifest naming a path outside the dataset: verify reports it unsafe, reads nothing there."""
     result = run(root, DEST, work_dir=tmp_path / "work")
-    body = {k: v for k, v in result.manifest.items() if k not in ("dataset_fingerprint", "manifest_hash")}
+    body = {k: v for k, v in result.manifest.items() if k not in ("fingerprint", "manifest_hash")}
     body["splits"]["train"]["shards"][0]["path"] = hostile
     hacked = seal(body)
     mem_write(mem, MANIFEST_NAME, dumps(hacked).encode("ascii"))

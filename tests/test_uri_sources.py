@@ -129,12 +129,12 @@ def outputs(result: BuildResult) -> dict[str, Any]:
             name: {
                 "documents": sp["documents"],
                 "tokens": sp["tokens"],
-                "docs": sp["docs"]["hash"],
-                "shards": [(s["token_hash"], s["file_hash"]) for s in sp["shards"]],
+                "document_table": sp["document_table"]["hash"],
+                "shards": [(s["token_hash"], s["hash"]) for s in sp["shards"]],
             }
             for name, sp in m["splits"].items()
         },
-        "inputs": [(i["size"], i["hash"]) for i in m["inputs"]],
+        "inputs": [(i["bytes"], i["hash"]) for i in m["inputs"]],
         "read": m["summary"]["read"],
     }
 

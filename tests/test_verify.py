@@ -124,20 +124,20 @@ def _truncated(store: Store) -> list[tuple[str, str]]:
 
 
 def _missing(store: Store) -> list[tuple[str, str]]:
-    rel = manifest_of(store)["splits"]["train"]["docs"]["path"]
+    rel = manifest_of(store)["splits"]["train"]["document_table"]["path"]
     store.delete(rel)
     return [(rel, "missing")]
 
 
 def _unlisted(store: Store) -> list[tuple[str, str]]:
     store.write_bytes("shards/train/999999.arrow", b"stray")
-    store.write_bytes("docs/extra/notes.arrow", b"stray")
+    store.write_bytes("documents/extra/notes.arrow", b"stray")
     store.write_bytes("notes/todo.txt", b"stray")
     store.write_bytes("README.txt", b"stray")
     return [
         ("README.txt", "unlisted"),
         ("notes", "unlisted"),
-        ("docs/extra/notes.arrow", "unlisted"),
+        ("documents/extra/notes.arrow", "unlisted"),
         ("shards/train/999999.arrow", "unlisted"),
     ]
 
@@ -160,7 +160,7 @@ def _edited_manifest_layout(store: Store) -> list[tuple[str, str]]:
 
 def _resealed_hash(store: Store) -> list[tuple[str, str]]:
     rel = shard(store, 0)
-    reseal(store, lambda m: m["splits"]["train"]["shards"][0].update(file_hash="0" * 32))
+    reseal(store, lambda m: m["splits"]["train"]["shards"][0].update(hash="0" * 32))
     return [(rel, "corrupt")]
 
 
@@ -189,7 +189,7 @@ def test_verify_reports_each_damage_alike_on_every_store(store: Store, case: str
     assert report.directory == store.location
     if case == "intact":
         m = manifest_of(store)
-        assert report.fingerprint == m["dataset_fingerprint"]
+        assert report.fingerprint == m["fingerprint"]
         assert report.files_checked == len(listed_files(m))
         assert report.bytes_checked == sum(e["bytes"] for e in listed_files(m))
 
@@ -221,6 +221,6 @@ def test_expect_and_against_work_over_a_uri(store: Store, tmp_path: Path) -> Non
     m = manifest_of(store)
     committed = tmp_path / "committed.json"
     committed.write_bytes(store.read_manifest())
-    assert verify(store, against=committed, expect=m["dataset_fingerprint"].upper()).ok
+    assert verify(store, against=committed, expect=m["fingerprint"].upper()).ok
     report = verify(store, expect="0" * 32)
     assert [(p.path, p.kind) for p in report.problems] == [(MANIFEST_NAME, "mismatch")]

@@ -319,8 +319,8 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     big = make_corpus(workdir / "big", big_size, files=40)
     rss_small = peak_rss_kib(small.root / "recipe.toml", workdir / "rss-small")
     rss_big = peak_rss_kib(big.root / "recipe.toml", workdir / "rss-big")
-    vocab_small = open_dataset(workdir / "rss-small").manifest["vocabulary"]["size"]
-    vocab_big = open_dataset(workdir / "rss-big").manifest["vocabulary"]["size"]
+    vocab_small = open_dataset(workdir / "rss-small").manifest["vocabulary"]["entries"]
+    vocab_big = open_dataset(workdir / "rss-big").manifest["vocabulary"]["entries"]
     yield Measure(
         "build.peak_rss_1g_vs_100m",
         rss_big / rss_small,

@@ -17,7 +17,7 @@ from seqpipe.report import leakage, lm, stats
 from seqpipe.report.corpus import DatasetLike, Roles, SplitTokens, load_split
 from seqpipe.report.ngrams import count_ngrams, key_bits, max_order
 
-REPORT_FORMAT: Final = "seqpipe.report/1"
+REPORT_FORMAT: Final = "seqpipe.report/2"
 TRAIN: Final = "train"
 TOP_ORDERS: Final = (1, 2, 3)
 

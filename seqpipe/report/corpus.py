@@ -4,7 +4,7 @@ The report works on any object with the attributes of :class:`seqpipe.dataset.Da
 that it uses (:class:`DatasetLike`), so it runs on a built dataset directory and on
 the tests' in-memory stand-in alike.
 
-A document's row in the docs table spans its begin/end markers when the build adds
+A document's row in the documents table spans its begin/end markers when the build adds
 them; the report strips a leading begin id and a trailing end id per document and
 calls what is left the document's *content*.
 """
@@ -87,8 +87,8 @@ class SplitTokens:
 
     name: str
     ids: np.ndarray  # the split's whole token stream
-    starts: np.ndarray  # int64, docs table ``start``
-    lengths: np.ndarray  # int64, docs table ``length`` (markers included)
+    starts: np.ndarray  # int64, documents table ``start``
+    lengths: np.ndarray  # int64, documents table ``length`` (markers included)
     content_starts: np.ndarray  # int64
     content_lengths: np.ndarray  # int64
     has_end: np.ndarray  # bool: the document ends with the end marker

@@ -3,7 +3,7 @@
 (a) A document of another split *leaks* when its content id sequence also is the
 content of some train document: XXH3-128 of each document's content ids (one
 xxhash call per document, over a zero-copy view of the ids), matched with Arrow's
-``index_in``. The docs table's text hash gives the same check on cleaned text.
+``index_in``. The documents table's text hash gives the same check on cleaned text.
 
 (b) The share of an evaluation split's length-n windows (inside one document) whose
 hash also occurs among the train windows; see

@@ -98,7 +98,7 @@ def _splits(report: dict[str, Any]) -> list[str]:
         )
     lines += _table(header, rows)
     lines += [
-        "Lengths count tokens including begin/end markers (docs table); the other token figures "
+        "Lengths count tokens including begin/end markers (documents table); the other token figures "
         "count content tokens (markers dropped). The 95th percentile interpolates linearly.",
         "",
     ]

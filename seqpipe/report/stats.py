@@ -1,7 +1,7 @@
 """Split statistics: sizes, document lengths, unknown-token rate, coverage, Zipf fit.
 
 All figures are computed from per-id counts (one ``np.bincount`` per split) and the
-docs table; none needs a pass in Python over tokens.
+documents table; none needs a pass in Python over tokens.
 """
 
 from __future__ import annotations

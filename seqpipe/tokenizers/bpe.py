@@ -60,7 +60,7 @@ from seqpipe.vocab import VocabSpec, Vocabulary, specials_table
 
 DEFAULT_SPECIALS: Final = VocabSpec().specials
 MERGES_FILE: Final = "tokenizer.arrow"
-MERGES_FORMAT: Final = "1"
+MERGES_FORMAT: Final = "seqpipe.merges/2"
 MERGES_SCHEMA: Final = pa.schema(
     [("rank", pa.int32()), ("left", pa.int32()), ("right", pa.int32()), ("merged", pa.int32()), ("token", pa.binary())]
 )
