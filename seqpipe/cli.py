@@ -210,17 +210,17 @@ def cmd_report(args: argparse.Namespace) -> int:
 
 
 def cmd_encode(args: argparse.Namespace) -> int:
-    from seqpipe.dataset import load_tokenizer
+    from seqpipe.dataset import load_encoder
 
-    enc = load_tokenizer(args.directory)
+    enc = load_encoder(args.directory)
     print(" ".join(str(int(i)) for i in enc.encode(args.text)))
     return EXIT_OK
 
 
 def cmd_decode(args: argparse.Namespace) -> int:
-    from seqpipe.dataset import load_tokenizer
+    from seqpipe.dataset import load_encoder
 
-    enc = load_tokenizer(args.directory)
+    enc = load_encoder(args.directory)
     print(enc.decode(args.ids))
     return EXIT_OK
 

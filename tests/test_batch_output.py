@@ -9,8 +9,8 @@ from typing import Any
 
 import numpy as np
 import pytest
-from seqpipe import build
 
+from seqpipe import build
 from seqpipe.batch_output import shown_tokens
 from seqpipe.cli import main, parser
 from seqpipe.dataset import Dataset, open_dataset

@@ -25,7 +25,7 @@ from seqpipe.vocab import VocabSpec
 
 ROOT = Path(__file__).resolve().parents[2]
 SPEC = VocabSpec()
-START = len(SPEC.specials) + 256  # specials + byte alphabet
+START = len(SPEC.reserved) + 256  # specials + byte alphabet
 # The chunking rule before the named presets (a space led the word after it), kept here only as
 # the baseline of bpe.chunking_compression_vs_previous.
 PREVIOUS_PATTERN = (

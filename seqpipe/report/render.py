@@ -200,7 +200,7 @@ def to_markdown(report: dict[str, Any], *, plots_drawn: bool) -> str:
         "# Corpus report",
         "",
         f"Dataset fingerprint `{ds['fingerprint']}`, vocabulary of {ds['vocab_size']:,} ids "
-        f"(specials: {', '.join(ds['specials'])}).",
+        f"(reserved: {', '.join(ds['reserved'])}).",
         "",
     ]
     lines += _splits(report)
