@@ -177,10 +177,10 @@ class Recipe:
         table = check_keys(path, data, allowed)
         fmt = table.get("format", RECIPE_FORMAT)
         if fmt != RECIPE_FORMAT:
+            todo = "rename the keys the README lists for format 2, then drop or update format" if fmt == 1 else ""
             raise RecipeError(
                 f"{path}.format",
-                f"this seqpipe reads recipe format {RECIPE_FORMAT!r}, got {fmt!r}; "
-                "rename the keys as the README's recipe table shows, then drop or update format",
+                f"this seqpipe reads recipe format {RECIPE_FORMAT!r}, got {fmt!r}" + (f"; {todo}" if todo else ""),
             )
         sources_raw = table.get("sources")
         if sources_raw is None:

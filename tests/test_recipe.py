@@ -178,9 +178,12 @@ def test_format_1_keys_are_refused_with_their_new_name(change: tuple[str, str], 
 def test_old_format_tag_is_refused() -> None:
     """A recipe stating format 1 (or any other tag) is refused, naming the format this version reads."""
     with pytest.raises(
-        RecipeError, match=r"recipe\.format: this seqpipe reads recipe format 'seqpipe\.recipe/2', got 1"
+        RecipeError,
+        match=r"recipe\.format: this seqpipe reads recipe format 'seqpipe\.recipe/2', got 1; rename the keys",
     ):
         parse_recipe("format = 1\n" + FULL)
+    with pytest.raises(RecipeError, match=r"got 'seqpipe\.recipe/3'$"):
+        parse_recipe('format = "seqpipe.recipe/3"\n' + FULL)
     assert parse_recipe('format = "seqpipe.recipe/2"\n' + FULL) == parse_recipe(FULL)
 
 
