@@ -18,7 +18,7 @@ __version__ = "0.1.0"  # the build records it in manifests
 if _typing.TYPE_CHECKING:
     from seqpipe._build import BuildResult, build
     from seqpipe._verify import VerifyReport, verify
-    from seqpipe.dataset import Dataset, Split, load_tokenizer, open_dataset
+    from seqpipe.dataset import Dataset, Split, load_encoder, open_dataset
     from seqpipe.errors import SeqpipeError
     from seqpipe.recipe import Recipe, load_recipe, parse_recipe
     from seqpipe.report import corpus_report, write_report
@@ -34,7 +34,7 @@ _HOME: _typing.Final = {
     "build": "_build",
     "Dataset": "dataset",
     "Split": "dataset",
-    "load_tokenizer": "dataset",
+    "load_encoder": "dataset",
     "open_dataset": "dataset",
     "SeqpipeError": "errors",
     "Recipe": "recipe",
@@ -78,8 +78,8 @@ __all__ = [
     "VerifyReport",
     "build",
     "corpus_report",
+    "load_encoder",
     "load_recipe",
-    "load_tokenizer",
     "open_dataset",
     "parse_recipe",
     "stream_fingerprint",

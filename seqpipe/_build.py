@@ -451,7 +451,7 @@ def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: Coun
 
 def fit(recipe: Recipe, counts: pa.Table, stage: Path) -> Fitted:
     """Fit the tokenizer's vocabulary (and learned state) on the counts; store both in the stage."""
-    encoder = recipe.tokenizer.fit(counts, recipe.vocab)
+    encoder = recipe.tokenizer.fit(counts, recipe.vocabulary)
     vocab = encoder.vocabulary
     for stale in (VOCAB_FILE, *OPTIONAL_TOP):
         (stage / stale).unlink(missing_ok=True)

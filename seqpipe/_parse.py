@@ -2,7 +2,7 @@
 
 Each raises :class:`RecipeError` whose key is the field name; the section
 builder (:func:`section`) prefixes the path, so a user reads
-``recipe.vocab.max_size: expected a positive integer, got -3``.
+``recipe.vocabulary.cap: expected a positive integer, got -3``.
 """
 
 from __future__ import annotations

@@ -226,9 +226,9 @@ def _usage_error(message: str) -> int:
 
 
 def cmd_encode(args: argparse.Namespace) -> int:
-    from seqpipe.dataset import load_tokenizer
+    from seqpipe.dataset import load_encoder
 
-    enc = load_tokenizer(args.directory)
+    enc = load_encoder(args.directory)
     try:  # the text is what the user typed: one the tokenizer cannot take is a usage error
         ids = enc.encode(args.text)
     except TokenizerError as exc:
@@ -238,9 +238,9 @@ def cmd_encode(args: argparse.Namespace) -> int:
 
 
 def cmd_decode(args: argparse.Namespace) -> int:
-    from seqpipe.dataset import load_tokenizer
+    from seqpipe.dataset import load_encoder
 
-    enc = load_tokenizer(args.directory)
+    enc = load_encoder(args.directory)
     try:  # as for encode: an id outside the vocabulary is a mistake in the command line
         text = enc.decode(args.ids)
     except TokenizerError as exc:

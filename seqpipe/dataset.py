@@ -159,6 +159,6 @@ def open_dataset(directory: str | Path, *, verify: bool = False, copy_dir: str |
     return Dataset(d, read_manifest(d))
 
 
-def load_tokenizer(directory: str | Path) -> Encoder:
+def load_encoder(directory: str | Path) -> Encoder:
     """The trained tokenizer of a built dataset: ``encode(text)`` / ``decode(ids)``."""
     return open_dataset(directory).encoder

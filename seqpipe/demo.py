@@ -241,7 +241,7 @@ form = "NFC"
 [tokenizer]
 kind = "words"
 
-[vocab]
+[vocabulary]
 min_count = 2
 
 [splits]

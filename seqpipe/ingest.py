@@ -451,8 +451,8 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     splits = assign_splits(recipe.splits, fixed16(docs, "hash"), task.keep)
     values, offsets = enc.piece_ids(keys)
     voc = enc.vocabulary
-    begin = voc.id_of("begin") if recipe.encode.begin else None
-    end = voc.id_of("end") if recipe.encode.end else None
+    begin = voc.id_of("begin") if recipe.encode.prepend_begin else None
+    end = voc.id_of("end") if recipe.encode.append_end else None
     unk = voc.unknown_id
     hashes = docs.column("hash").combine_chunks()
     out: dict[str, dict[str, int]] = {}

@@ -7,14 +7,18 @@ built in Python from frozen dataclasses. Sections, in data-flow order::
     [[sources]]  where the text comes from (seqpipe.sources)
     [[clean]]    ordered cleaning steps (seqpipe.clean)
     [tokenizer]  how text becomes tokens (seqpipe.tokenizers)
-    [vocab]      reserved specials, min_count, max_size (seqpipe.vocab)
-    [encode]     begin/end markers around each document
+    [vocabulary] reserved tokens and their roles, min_count, cap (seqpipe.vocab)
+    [encode]     prepend_begin/append_end markers around each document
     [splits]     train/validation/test fractions and the split seed
     [shards]     tokens per shard, compression
 
 Validation happens at construction; every error names the key path, the bad value and what is
 allowed. ``Recipe.to_dict()`` is the canonical form (defaults filled in); its canonical JSON is
 hashed into ``Recipe.fingerprint``.
+
+Recipe format 2 renamed keys of format 1; a recipe that still uses an old name is refused
+with the old name, the new one and where it moved (``RENAMED_KEYS``), not a generic
+"unknown key".
 """
 
 from __future__ import annotations
@@ -37,7 +41,7 @@ from seqpipe.tokenizers.base import Tokenizer
 from seqpipe.tokenizers.words import WordTokenizer
 from seqpipe.vocab import VocabSpec
 
-RECIPE_FORMAT: Final = 1
+RECIPE_FORMAT: Final = "seqpipe.recipe/2"
 SPLIT_NAMES: Final = ("train", "validation", "test")
 MAX_RECIPE_BYTES: Final = 1 << 20
 
@@ -56,12 +60,12 @@ class DatasetSpec:
 class EncodeSpec:
     """Recipe section ``[encode]``: markers written around every document."""
 
-    begin: bool = False
-    end: bool = True
+    prepend_begin: bool = False
+    append_end: bool = True
 
     def __post_init__(self) -> None:
-        parse_bool("begin", self.begin)
-        parse_bool("end", self.end)
+        parse_bool("prepend_begin", self.prepend_begin)
+        parse_bool("append_end", self.append_end)
 
 
 @dataclass(frozen=True, slots=True)
@@ -108,7 +112,7 @@ class Recipe:
     sources: tuple[Source, ...]
     tokenizer: Tokenizer = field(default_factory=WordTokenizer)
     clean: tuple[CleanStep, ...] = ()
-    vocab: VocabSpec = field(default_factory=VocabSpec)
+    vocabulary: VocabSpec = field(default_factory=VocabSpec)
     encode: EncodeSpec = field(default_factory=EncodeSpec)
     splits: SplitSpec = field(default_factory=SplitSpec)
     shards: ShardSpec = field(default_factory=ShardSpec)
@@ -122,16 +126,24 @@ class Recipe:
         if not self.sources:
             raise RecipeError("sources", "at least one [[sources]] entry is required")
         tokenizer = self.tokenizer
-        names = getattr(tokenizer, "special_names", None)
-        if names not in (None, self.vocab.specials) and dataclasses.is_dataclass(tokenizer):
-            # the tokenizer matches literal specials by name; the names live in [vocab]
-            object.__setattr__(self, "tokenizer", dataclasses.replace(tokenizer, special_names=self.vocab.specials))
+        names = getattr(tokenizer, "reserved_names", None)
+        if names not in (None, self.vocabulary.reserved) and dataclasses.is_dataclass(tokenizer):
+            # the tokenizer matches reserved tokens by name; the names live in [vocabulary]
+            synced = dataclasses.replace(tokenizer, reserved_names=self.vocabulary.reserved)
+            object.__setattr__(self, "tokenizer", synced)
+        if getattr(tokenizer, "grows_vocabulary", False) and not self.vocabulary.cap:
+            raise RecipeError(
+                "vocabulary.cap",
+                f"tokenizer kind {getattr(tokenizer, 'kind', '?')!r} learns entries until the vocabulary "
+                "reaches [vocabulary] cap; set cap to the number of entries wanted (e.g. cap = 8000)",
+            )
         dedupes = [i for i, s in enumerate(self.clean) if getattr(s, "is_dedupe", False)]
         if len(dedupes) > 1:
             raise RecipeError(f"clean[{dedupes[1]}]", "only one dedupe step is allowed")
-        for role, wanted in (("begin", self.encode.begin), ("end", self.encode.end)):
-            if wanted and not getattr(self.vocab, role):
-                raise RecipeError(f"encode.{role}", f"markers need a special token: set vocab.{role}")
+        markers = (("prepend_begin", "begin", self.encode.prepend_begin), ("append_end", "end", self.encode.append_end))
+        for key, role, wanted in markers:
+            if wanted and not getattr(self.vocabulary, role):
+                raise RecipeError(f"encode.{key}", f"markers need a reserved token: set vocabulary.{role}")
 
     def to_dict(self) -> dict[str, Any]:
         """The canonical recipe: every section with defaults filled in."""
@@ -141,7 +153,7 @@ class Recipe:
             "sources": [to_plain(s) for s in self.sources],
             "clean": [to_plain(s) for s in self.clean],
             "tokenizer": to_plain(self.tokenizer),
-            "vocab": to_plain(self.vocab),
+            "vocabulary": to_plain(self.vocabulary),
             "encode": to_plain(self.encode),
             "splits": to_plain(self.splits),
             "shards": to_plain(self.shards),
@@ -160,11 +172,16 @@ class Recipe:
     @classmethod
     def from_dict(cls, data: Any, root: Path | str = ".", path: str = "recipe") -> Recipe:
         """Build and validate a recipe from plain data (parsed TOML or JSON)."""
-        allowed = ("format", "dataset", "sources", "clean", "tokenizer", "vocab", "encode", "splits", "shards")
+        allowed = ("format", "dataset", "sources", "clean", "tokenizer", "vocabulary", "encode", "splits", "shards")
+        refuse_renamed_keys(data, path)
         table = check_keys(path, data, allowed)
         fmt = table.get("format", RECIPE_FORMAT)
         if fmt != RECIPE_FORMAT:
-            raise RecipeError(f"{path}.format", f"this seqpipe reads recipe format {RECIPE_FORMAT}, got {fmt!r}")
+            todo = "rename the keys the README lists for format 2, then drop or update format" if fmt == 1 else ""
+            raise RecipeError(
+                f"{path}.format",
+                f"this seqpipe reads recipe format {RECIPE_FORMAT!r}, got {fmt!r}" + (f"; {todo}" if todo else ""),
+            )
         sources_raw = table.get("sources")
         if sources_raw is None:
             raise RecipeError(f"{path}.sources", "missing: add at least one [[sources]] table")
@@ -178,7 +195,7 @@ class Recipe:
                 sources=tuple(parse_source(s, f"{path}.sources[{i}]") for i, s in enumerate(sources_raw)),
                 clean=tuple(parse_step(s, f"{path}.clean[{i}]") for i, s in enumerate(clean_raw)),
                 tokenizer=parse_tokenizer(table.get("tokenizer", {}), f"{path}.tokenizer"),
-                vocab=section(VocabSpec, table.get("vocab", {}), f"{path}.vocab"),
+                vocabulary=section(VocabSpec, table.get("vocabulary", {}), f"{path}.vocabulary"),
                 encode=section(EncodeSpec, table.get("encode", {}), f"{path}.encode"),
                 splits=section(SplitSpec, table.get("splits", {}), f"{path}.splits"),
                 shards=section(ShardSpec, table.get("shards", {}), f"{path}.shards"),
@@ -189,6 +206,52 @@ class Recipe:
             if exc.key.startswith(path):
                 raise
             raise RecipeError(f"{path}.{exc.key}", exc.reason) from None
+
+
+# Keys recipe format 1 used, by the table they sat in: old name -> new name.
+# "*" tables apply to every entry of [[sources]]/[[clean]]; "clean:min_length" only to that kind.
+RENAMED_KEYS: Final[dict[str, dict[str, str]]] = {
+    "": {"vocab": "vocabulary"},
+    "vocabulary": {"specials": "reserved", "max_size": "cap"},
+    "tokenizer": {
+        "vocab_size": "[vocabulary] cap",
+        "literal_specials": "literal_reserved",
+        "special_names": "reserved_names",
+    },
+    "encode": {"begin": "prepend_begin", "end": "append_end"},
+    "sources": {"invalid_utf8": "on_invalid_utf8", "bad_records": "on_bad_record", "oversize": "on_oversize"},
+    "clean:min_length": {"chars": "characters"},
+}
+
+
+def _renamed(where: str, old: str, new: str) -> RecipeError:
+    return RecipeError(
+        f"{where}.{old}" if where else old,
+        f"recipe format 2 renamed it to {new!r}; rename the key (the README's recipe table lists every renamed key)",
+    )
+
+
+def _check_renamed(table: Any, where: str, renames: dict[str, str]) -> None:
+    if isinstance(table, dict):
+        for old, new in renames.items():
+            if old in table:
+                raise _renamed(where, old, new)
+
+
+def refuse_renamed_keys(data: Any, path: str = "recipe") -> None:
+    """Raise a :class:`RecipeError` naming the first recipe-format-1 key in ``data``, if any."""
+    if not isinstance(data, dict):
+        return
+    _check_renamed(data, path, RENAMED_KEYS[""])
+    for name in ("tokenizer", "encode", "vocabulary"):
+        _check_renamed(data.get(name), f"{path}.{name}", RENAMED_KEYS[name])
+    sources = data.get("sources")
+    for i, source in enumerate(sources if isinstance(sources, list) else []):
+        _check_renamed(source, f"{path}.sources[{i}]", RENAMED_KEYS["sources"])
+    steps = data.get("clean")
+    for i, step in enumerate(steps if isinstance(steps, list) else []):
+        if isinstance(step, dict):
+            _check_renamed(step, f"{path}.clean[{i}]", RENAMED_KEYS.get(f"clean:{step.get('kind')}", {}))
 
 
 def parse_recipe(text: str, root: Path | str = ".", *, name: str = "recipe") -> Recipe:

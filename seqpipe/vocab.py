@@ -1,12 +1,15 @@
-"""Vocabulary: reserved special tokens first, then tokens by count.
+"""Vocabulary: reserved tokens first, then tokens by count.
 
-Counted on the train split only. Order: specials in recipe order take ids
-0..k-1; then tokens by descending count, ties broken by code-point order of
+Counted on the train split only. Order: the reserved tokens in recipe order take
+ids 0..k-1; then tokens by descending count, ties broken by code-point order of
 the token (for UTF-8 keys, byte order equals code-point order). ``min_count``
-drops rare tokens; ``max_size`` caps the whole vocabulary, specials included.
+drops rare tokens; ``cap`` caps the whole vocabulary, reserved tokens included.
+
+The default reserved order puts the padding token first (id 0): an array filled
+with zeros, or a zero-initialised buffer, is then all padding, never a real token.
 
 Stored as an Arrow IPC file with columns ``token`` (binary), ``count``
-(int64), ``special`` (bool); row i is id i. Schema metadata records the roles.
+(int64), ``reserved`` (bool); row i is id i. Schema metadata records the roles.
 """
 
 from __future__ import annotations
@@ -31,42 +34,42 @@ COUNTS_SCHEMA: Final = pa.schema([("key", pa.binary()), ("count", pa.int64())])
 
 @dataclass(frozen=True, slots=True)
 class VocabSpec:
-    """Recipe section ``[vocab]``."""
+    """Recipe section ``[vocabulary]``."""
 
-    specials: tuple[str, ...] = ("<unk>", "<pad>", "<bos>", "<eos>")
+    reserved: tuple[str, ...] = ("<pad>", "<unk>", "<bos>", "<eos>")
     unknown: str = "<unk>"
     padding: str = "<pad>"
     begin: str = "<bos>"
     end: str = "<eos>"
     min_count: int = 1
-    max_size: int = 0  # 0: no cap
+    cap: int = 0  # 0: no cap
 
     def __post_init__(self) -> None:
-        specials = parse_str_tuple("specials", self.specials)
-        if len(set(specials)) != len(specials):
-            raise RecipeError("specials", f"names must be distinct, got {list(specials)}")
-        object.__setattr__(self, "specials", specials)
+        reserved = parse_str_tuple("reserved", self.reserved)
+        if len(set(reserved)) != len(reserved):
+            raise RecipeError("reserved", f"names must be distinct, got {list(reserved)}")
+        object.__setattr__(self, "reserved", reserved)
         for role in ROLES:
             name = parse_str(role, getattr(self, role), allow_empty=True)
-            if name and name not in specials:
+            if name and name not in reserved:
                 raise RecipeError(
                     role,
-                    f"{name!r} is not listed in specials {list(specials)}; "
+                    f"{name!r} is not listed in reserved {list(reserved)}; "
                     'add it there or set this role to "" for none',
                 )
         parse_int("min_count", self.min_count, minimum=1)
-        parse_int("max_size", self.max_size, minimum=0)
-        if self.max_size and self.max_size <= len(specials):
-            raise RecipeError("max_size", f"expected more than the {len(specials)} specials, got {self.max_size}")
+        parse_int("cap", self.cap, minimum=0)
+        if self.cap and self.cap <= len(reserved):
+            raise RecipeError("cap", f"expected more than the {len(reserved)} reserved tokens, got {self.cap}")
 
 
 @dataclass(frozen=True)
 class Vocabulary:
-    """id -> token bytes, with counts and special-token roles."""
+    """id -> token bytes, with counts and reserved-token roles."""
 
     tokens: pa.Array  # binary, row i = id i
     counts: np.ndarray  # int64
-    n_special: int
+    n_reserved: int
     roles: dict[str, int] = field(default_factory=dict)  # role -> id
 
     def __len__(self) -> int:
@@ -77,44 +80,45 @@ class Vocabulary:
         return self.roles.get("unknown")
 
     def id_of(self, role: str) -> int | None:
-        """Id of a special role (``unknown``, ``padding``, ``begin``, ``end``), or None."""
+        """Id of a reserved role (``unknown``, ``padding``, ``begin``, ``end``), or None."""
         return self.roles.get(role)
 
     def token(self, token_id: int) -> bytes:
         return bytes(self.tokens[int(token_id)].as_py())
 
     def lookup(self, keys: pa.Array) -> np.ndarray:
-        """Ids of non-special tokens ``keys`` (binary); misses get the unknown id."""
-        normal = self.tokens.slice(self.n_special)
+        """Ids of non-reserved tokens ``keys`` (binary); misses get the unknown id."""
+        normal = self.tokens.slice(self.n_reserved)
         pos = pc.index_in(keys.cast(pa.binary()), value_set=normal)
         ids = pos.to_numpy(zero_copy_only=False)
         missing = pos.is_null().to_numpy(zero_copy_only=False)
         out = np.where(missing, -1, np.nan_to_num(ids, nan=-1)).astype(np.int64)
-        out[~missing] += self.n_special
+        out[~missing] += self.n_reserved
         if missing.any():
             unk = self.unknown_id
             if unk is None:
                 first = keys[int(np.flatnonzero(missing)[0])].as_py()
                 raise TokenizerError(
-                    f"token {first!r} is not in the vocabulary and the recipe sets no unknown token (vocab.unknown)"
+                    f"token {first!r} is not in the vocabulary and the recipe sets no unknown token "
+                    "(vocabulary.unknown)"
                 )
             out[missing] = unk
         return out
 
-    def tokens_for(self, ids: Iterable[int] | np.ndarray, *, show_specials: bool = False) -> list[bytes]:
-        """Token bytes for ids; specials are dropped unless ``show_specials``."""
+    def tokens_for(self, ids: Iterable[int] | np.ndarray, *, show_reserved: bool = False) -> list[bytes]:
+        """Token bytes for ids; reserved tokens are dropped unless ``show_reserved``."""
         arr = np.asarray(list(ids) if not isinstance(ids, np.ndarray) else ids, dtype=np.int64)
         if len(arr) and (arr.min() < 0 or arr.max() >= len(self)):
             bad = int(arr[(arr < 0) | (arr >= len(self))][0])
             raise TokenizerError(f"id {bad} is outside the vocabulary (0..{len(self) - 1})")
-        if not show_specials:
-            arr = arr[arr >= self.n_special]
+        if not show_reserved:
+            arr = arr[arr >= self.n_reserved]
         return [bytes(b) for b in self.tokens.take(pa.array(arr, pa.int64())).to_pylist()]
 
     # -- storage -------------------------------------------------------------
     def to_table(self) -> pa.Table:
-        special = np.zeros(len(self), dtype=bool)
-        special[: self.n_special] = True
+        reserved = np.zeros(len(self), dtype=bool)
+        reserved[: self.n_reserved] = True
         meta = {
             b"seqpipe.table": b"vocabulary",
             b"seqpipe.format": VOCAB_FORMAT.encode(),
@@ -124,7 +128,7 @@ class Vocabulary:
             {
                 "token": self.tokens.cast(pa.binary()),
                 "count": pa.array(self.counts, pa.int64()),
-                "special": pa.array(special),
+                "reserved": pa.array(reserved),
             }
         ).replace_schema_metadata(meta)
 
@@ -142,19 +146,19 @@ class Vocabulary:
         if meta.get(b"seqpipe.table") != b"vocabulary" or meta.get(b"seqpipe.format") != VOCAB_FORMAT.encode():
             raise ShardCorruptError(f"{path}: not a seqpipe vocabulary file (format {VOCAB_FORMAT})", path=str(path))
         try:
-            expected = {"token": pa.binary(), "count": pa.int64(), "special": pa.bool_()}
+            expected = {"token": pa.binary(), "count": pa.int64(), "reserved": pa.bool_()}
             if {f.name: f.type for f in table.schema} != expected or any(c.null_count for c in table.columns):
-                raise ValueError("expected columns token (binary), count (int64), special (bool), no nulls")
+                raise ValueError("expected columns token (binary), count (int64), reserved (bool), no nulls")
             roles = {str(k): int(v) for k, v in json.loads(meta[b"seqpipe.roles"]).items()}
-            special = table.column("special").to_numpy(zero_copy_only=False)
+            reserved = table.column("reserved").to_numpy(zero_copy_only=False)
             tokens = table.column("token").combine_chunks()
             counts = table.column("count").to_numpy().astype(np.int64)
         except (KeyError, ValueError, TypeError, UnicodeDecodeError, AttributeError, pa.ArrowException) as exc:
             raise ShardCorruptError(f"{path}: malformed vocabulary file ({exc})", path=str(path)) from exc
-        n_special = int(special.sum())
-        if not special[:n_special].all() or any(not 0 <= v < n_special for v in roles.values()):
-            raise ShardCorruptError(f"{path}: malformed vocabulary file (special rows)", path=str(path))
-        return cls(tokens=tokens, counts=counts, n_special=n_special, roles=roles)
+        n_reserved = int(reserved.sum())
+        if not reserved[:n_reserved].all() or any(not 0 <= v < n_reserved for v in roles.values()):
+            raise ShardCorruptError(f"{path}: malformed vocabulary file (reserved rows)", path=str(path))
+        return cls(tokens=tokens, counts=counts, n_reserved=n_reserved, roles=roles)
 
 
 def ordered_counts(counts: pa.Table) -> pa.Table:
@@ -164,10 +168,10 @@ def ordered_counts(counts: pa.Table) -> pa.Table:
     return counts.sort_by([("count", "descending"), ("key", "ascending")])
 
 
-def specials_table(spec: VocabSpec) -> tuple[list[bytes], dict[str, int]]:
-    """The special tokens (as bytes, in id order) and their role -> id map."""
-    tokens = [s.encode("utf-8") for s in spec.specials]
-    roles = {r: spec.specials.index(getattr(spec, r)) for r in ROLES if getattr(spec, r)}
+def reserved_table(spec: VocabSpec) -> tuple[list[bytes], dict[str, int]]:
+    """The reserved tokens (as bytes, in id order) and their role -> id map."""
+    tokens = [s.encode("utf-8") for s in spec.reserved]
+    roles = {r: spec.reserved.index(getattr(spec, r)) for r in ROLES if getattr(spec, r)}
     return tokens, roles
 
 
@@ -176,11 +180,11 @@ def build_vocabulary(counts: pa.Table, spec: VocabSpec, *, always: Sequence[byte
 
     ``always`` lists tokens that are kept whatever their count (e.g. all 256 bytes).
     """
-    special_tokens, roles = specials_table(spec)
+    reserved_tokens, roles = reserved_table(spec)
     ordered = ordered_counts(counts)
     keys = ordered.column("key").combine_chunks() if ordered.num_rows else pa.array([], pa.binary())
     cnt = ordered.column("count").to_numpy() if ordered.num_rows else np.zeros(0, np.int64)
-    # a key equal to a special name is still an ordinary token of the text; keep both
+    # a key equal to a reserved name is still an ordinary token of the text; keep both
     keep = cnt >= spec.min_count
     keys, cnt = keys.filter(pa.array(keep)), cnt[keep]
     if always:
@@ -189,9 +193,9 @@ def build_vocabulary(counts: pa.Table, spec: VocabSpec, *, always: Sequence[byte
         if extra:
             keys = pa.concat_arrays([keys, pa.array(extra, pa.binary())])
             cnt = np.concatenate([cnt, np.zeros(len(extra), np.int64)])
-    if spec.max_size:
-        room = spec.max_size - len(special_tokens)
+    if spec.cap:
+        room = spec.cap - len(reserved_tokens)
         keys, cnt = keys.slice(0, room), cnt[:room]
-    tokens = pa.concat_arrays([pa.array(special_tokens, pa.binary()), keys.cast(pa.binary())])
-    counts_all = np.concatenate([np.zeros(len(special_tokens), np.int64), cnt]).astype(np.int64)
-    return Vocabulary(tokens=tokens, counts=counts_all, n_special=len(special_tokens), roles=roles)
+    tokens = pa.concat_arrays([pa.array(reserved_tokens, pa.binary()), keys.cast(pa.binary())])
+    counts_all = np.concatenate([np.zeros(len(reserved_tokens), np.int64), cnt]).astype(np.int64)
+    return Vocabulary(tokens=tokens, counts=counts_all, n_reserved=len(reserved_tokens), roles=roles)

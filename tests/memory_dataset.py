@@ -1,7 +1,7 @@
 """An in-memory dataset with the attributes the report reads, built from token lists.
 
 For the report's tests, on data that was never built into a directory: each document is a
-list of token strings; the vocabulary is counted on the ``train`` split with the usual specials
+list of token strings; the vocabulary is counted on the ``train`` split with the usual reserved tokens
 and ordering (:func:`seqpipe.vocab.build_vocabulary`), and tokens of other splits that it lacks
 become the unknown id.
 """

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import os
 import subprocess
@@ -26,7 +27,13 @@ from seqpipe.tokenizers.bpe import BpeEncoder, BpeTokenizer
 from seqpipe.vocab import VocabSpec
 
 SPEC = VocabSpec()
-N_SPECIAL = len(SPEC.specials)
+N_RESERVED = len(SPEC.reserved)
+
+
+def capped(cap: int, spec: VocabSpec = SPEC) -> VocabSpec:
+    """``spec`` with ``[vocabulary] cap``, the size byte-pair training grows the vocabulary to."""
+    return dataclasses.replace(spec, cap=cap)
+
 
 # Invented scenario for training text: the harbour log of a ferry on the (made-up) Tessel Reach.
 LOG = (
@@ -111,12 +118,14 @@ def naive_merges(
 
 # -- the contract every tokenizer kind passes (tests/test_tokenizers.py) ---------------------------
 class TestBpeBytesContract(TokenizerContract):
-    table: ClassVar[dict[str, Any]] = {"kind": "bpe", "vocab_size": 320}
+    table: ClassVar[dict[str, Any]] = {"kind": "bpe"}
+    cap = 320
     covers_everything = True  # the 256 byte values are the base alphabet
 
 
 class TestBpeCharsContract(TokenizerContract):
-    table: ClassVar[dict[str, Any]] = {"kind": "bpe", "base": "chars", "vocab_size": 2000}
+    table: ClassVar[dict[str, Any]] = {"kind": "bpe", "base": "chars"}
+    cap = 2000
 
 
 # -- outside checks: the paper's worked examples ---------------------------------------------------
@@ -127,8 +136,10 @@ def test_paper_toy_dictionary_merges() -> None:
     # The paper breaks ties by dict order; under our rule (earliest first occurrence) the list
     # below was derived by hand: counts 9,9,9 (e s / es t / est </w>, all first seen in
     # 'newest'), then 7,7 (l o / lo w), then 6,6,6 (n e / ne w / new est</w>), 5, then 3 (w i).
-    tok = BpeTokenizer(base="chars", end_of_word="</w>", vocab_size=N_SPECIAL + 11 + 10)
-    enc = tok.fit(counts_table([(b"low", 5), (b"lower", 2), (b"newest", 6), (b"widest", 3)]), SPEC)
+    tok = BpeTokenizer(base="chars", end_of_word="</w>")
+    enc = tok.fit(
+        counts_table([(b"low", 5), (b"lower", 2), (b"newest", 6), (b"widest", 3)]), capped(N_RESERVED + 11 + 10)
+    )
     assert merge_strings(enc) == [
         "e s",
         "es t",
@@ -141,7 +152,7 @@ def test_paper_toy_dictionary_merges() -> None:
         "low </w>",
         "w i",
     ]
-    assert len(enc.vocabulary) == N_SPECIAL + 11 + 10
+    assert len(enc.vocabulary) == N_RESERVED + 11 + 10
 
 
 def test_paper_figure1_unseen_word() -> None:
@@ -150,8 +161,8 @@ def test_paper_figure1_unseen_word() -> None:
     # the merges r+</w>, l+o, lo+w, e+r</w> are learned and 'lower' becomes 'low er</w>'.
     # Setting: each word counted once, min_pair_count 2 (the paper's four merges are exactly the
     # pairs occurring twice); our tie rule orders them l o, lo w, e r, er </w>, same segmentation.
-    tok = BpeTokenizer(base="chars", end_of_word="</w>", vocab_size=1000, min_pair_count=2)
-    enc = tok.fit(counts_table([(b"low", 1), (b"lowest", 1), (b"newer", 1), (b"wider", 1)]), SPEC)
+    tok = BpeTokenizer(base="chars", end_of_word="</w>", min_pair_count=2)
+    enc = tok.fit(counts_table([(b"low", 1), (b"lowest", 1), (b"newer", 1), (b"wider", 1)]), capped(1000))
     assert merge_strings(enc) == ["l o", "lo w", "e r", "er </w>"]
     assert tokens_of(enc, "lower") == [b"low", b"er</w>"]
     assert enc.decode(enc.encode("lower")) == "lower"
@@ -189,11 +200,9 @@ def test_trainer_matches_naive_reference(corpus: list[tuple[str, int]], base: st
     else:
         alphabet_size = len({ch for w, _ in corpus for ch in w}) + bool(marker)
         words = [[ch.encode() for ch in w] + ([marker.encode()] if marker else []) for w, _ in corpus]
-    start = N_SPECIAL + alphabet_size
-    tok = BpeTokenizer(
-        base="chars" if marker else base, end_of_word=marker, vocab_size=start + extra, min_pair_count=min_count
-    )
-    enc = tok.fit(counts_table(list(zip(keys, freqs, strict=True))), SPEC)
+    start = N_RESERVED + alphabet_size
+    tok = BpeTokenizer(base="chars" if marker else base, end_of_word=marker, min_pair_count=min_count)
+    enc = tok.fit(counts_table(list(zip(keys, freqs, strict=True))), capped(start + extra))
     want, final = naive_merges(words, freqs, start, start + extra, min_count)
     v = enc.vocabulary
     assert [(v.token(a), v.token(b)) for a, b, _ in enc.merges] == want
@@ -292,9 +301,9 @@ def test_default_chunking_is_a_named_preset() -> None:
 
 
 @pytest.mark.parametrize("name", sorted(PRESETS))
-def test_literal_specials_cut_out_before_any_preset(name: str) -> None:
-    """With literal_specials a special name is one chunk whatever the preset cuts around it."""
-    tok = BpeTokenizer(chunking=name, literal_specials=True)
+def test_literal_reserved_cut_out_before_any_preset(name: str) -> None:
+    """With literal_reserved a reserved name is one chunk whatever the preset cuts around it."""
+    tok = BpeTokenizer(chunking=name, literal_reserved=True)
     (chunks,) = doc_chunks(tok, ["lamp<eos> lit<bos>12 "])
     assert b"<eos>" in chunks and b"<bos>" in chunks
     assert b"".join(chunks) == b"lamp<eos> lit<bos>12 "
@@ -316,25 +325,25 @@ _ENCODERS: dict[str, BpeEncoder] = {}
 def bytes_encoder(chunking: str = "trailing-space") -> BpeEncoder:
     """A byte-base encoder with the given chunking preset, trained once on the harbour log."""
     if chunking not in _ENCODERS:
-        tok = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 120, chunking=chunking)
-        _ENCODERS[chunking] = tok.fit(counts_from_texts(tok, [LOG]), SPEC)
+        tok = BpeTokenizer(chunking=chunking)
+        _ENCODERS[chunking] = tok.fit(counts_from_texts(tok, [LOG]), capped(N_RESERVED + 256 + 120))
     return _ENCODERS[chunking]
 
 
-def test_training_reaches_vocab_size() -> None:
-    """Training stops at vocab_size; the layout is specials, 256 bytes, then merges in order."""
+def test_training_reaches_the_cap() -> None:
+    """Training stops at the cap; the layout is reserved tokens, 256 bytes, then merges in order."""
     enc = bytes_encoder()
     v = enc.vocabulary
-    assert len(v) == N_SPECIAL + 256 + 120
-    assert [v.token(i) for i in range(N_SPECIAL)] == [s.encode() for s in SPEC.specials]
-    assert [v.token(N_SPECIAL + b) for b in range(256)] == [bytes([b]) for b in range(256)]
+    assert len(v) == N_RESERVED + 256 + 120
+    assert [v.token(i) for i in range(N_RESERVED)] == [s.encode() for s in SPEC.reserved]
+    assert [v.token(N_RESERVED + b) for b in range(256)] == [bytes([b]) for b in range(256)]
     # every merge joins earlier ids, and new ids appear in merge order
-    assert all(N_SPECIAL <= a < z and N_SPECIAL <= b < z for a, b, z in enc.merges)
-    fresh = [z for _, _, z in enc.merges if z >= N_SPECIAL + 256]
-    assert fresh == list(range(N_SPECIAL + 256, len(v)))
+    assert all(N_RESERVED <= a < z and N_RESERVED <= b < z for a, b, z in enc.merges)
+    fresh = [z for _, _, z in enc.merges if z >= N_RESERVED + 256]
+    assert fresh == list(range(N_RESERVED + 256, len(v)))
     assert len(set(v.tokens.to_pylist())) == len(v)  # no token spelled twice
     # the byte counts are the symbol counts of the text (common practice: the unigram counts)
-    assert int(v.counts[N_SPECIAL + ord("a")]) == LOG.encode().count(b"a")
+    assert int(v.counts[N_RESERVED + ord("a")]) == LOG.encode().count(b"a")
 
 
 @settings(max_examples=200, deadline=None)
@@ -347,7 +356,7 @@ def test_bytes_round_trip(text: str) -> None:
     enc = bytes_encoder()
     ids = enc.encode(text)
     assert ids.dtype == np.int64
-    assert (ids >= N_SPECIAL).all()
+    assert (ids >= N_RESERVED).all()
     assert enc.decode(ids) == text
 
 
@@ -378,8 +387,8 @@ def test_frequent_words_become_single_tokens() -> None:
 
 def test_cache_is_bounded(monkeypatch: pytest.MonkeyPatch) -> None:
     """The chunk cache never outgrows its limit and a reset does not change encodings."""
-    tok = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 60)
-    enc = tok.fit(counts_from_texts(tok, [LOG]), SPEC)
+    tok = BpeTokenizer()
+    enc = tok.fit(counts_from_texts(tok, [LOG]), capped(N_RESERVED + 256 + 60))
     want = enc.encode(LOG)
     monkeypatch.setattr(bpe_module, "CACHE_LIMIT", 5)
     enc._cache.clear()
@@ -390,16 +399,16 @@ def test_cache_is_bounded(monkeypatch: pytest.MonkeyPatch) -> None:
 def test_decode_policy() -> None:
     """Specials print only on request; ids outside the vocabulary raise TokenizerError."""
     enc = bytes_encoder()
-    ids = [SPEC.specials.index("<bos>"), *enc.encode("lamp").tolist(), SPEC.specials.index("<eos>")]
+    ids = [SPEC.reserved.index("<bos>"), *enc.encode("lamp").tolist(), SPEC.reserved.index("<eos>")]
     assert enc.decode(ids) == "lamp"
-    assert enc.decode(ids, show_specials=True) == "<bos>lamp<eos>"
+    assert enc.decode(ids, show_reserved=True) == "<bos>lamp<eos>"
     assert enc.decode(np.zeros(0, np.int64)) == ""
     with pytest.raises(TokenizerError, match="outside the vocabulary"):
         enc.decode([len(enc.vocabulary)])
     with pytest.raises(TokenizerError, match="outside the vocabulary"):
         enc.decode([-1])
     # a lone continuation byte is not UTF-8: replaced, not raised (common practice: U+FFFD)
-    assert enc.decode([N_SPECIAL + 0x80]) == "\ufffd"
+    assert enc.decode([N_RESERVED + 0x80]) == "\ufffd"
 
 
 # -- chars base ----------------------------------------------------------------------------------
@@ -407,16 +416,16 @@ def test_decode_policy() -> None:
 def test_chars_round_trip_and_unknown(marker: str) -> None:
     """Chars base: seen text round-trips (the marker prints as nothing); unseen characters map
     to the unknown id and are dropped by decode."""
-    tok = BpeTokenizer(base="chars", end_of_word=marker, vocab_size=400)
-    enc = tok.fit(counts_from_texts(tok, [LOG]), SPEC)
+    tok = BpeTokenizer(base="chars", end_of_word=marker)
+    enc = tok.fit(counts_from_texts(tok, [LOG]), capped(400))
     v = enc.vocabulary
-    alphabet = [v.token(i) for i in range(N_SPECIAL, N_SPECIAL + enc.alphabet_size)]
+    alphabet = [v.token(i) for i in range(N_RESERVED, N_RESERVED + enc.alphabet_size)]
     chars = sorted(set(LOG))
     assert alphabet == [c.encode() for c in chars] + ([marker.encode()] if marker else [])
     sample = "Odra Venn left the lamp at Quill Point; café 😀.\n"
     assert enc.decode(enc.encode(sample)) == sample
     ids = enc.encode("lamp Ω")
-    assert int(ids[-2 if marker else -1]) == SPEC.specials.index("<unk>")
+    assert int(ids[-2 if marker else -1]) == SPEC.reserved.index("<unk>")
     assert enc.decode(ids) == "lamp "
     if marker:  # the marker closes every chunk
         assert tokens_of(enc, " lamp")[-1].endswith(b"</w>")
@@ -424,56 +433,56 @@ def test_chars_round_trip_and_unknown(marker: str) -> None:
 
 def test_chars_unknown_needs_unknown_role() -> None:
     """Without an unknown token, an unseen character is a TokenizerError."""
-    spec = VocabSpec(specials=("<pad>",), unknown="", begin="", end="")
-    tok = BpeTokenizer(base="chars", vocab_size=200)
-    enc = tok.fit(counts_from_texts(tok, ["abc abc"]), spec)
+    spec = VocabSpec(reserved=("<pad>",), unknown="", begin="", end="")
+    tok = BpeTokenizer(base="chars")
+    enc = tok.fit(counts_from_texts(tok, ["abc abc"]), capped(200, spec))
     with pytest.raises(TokenizerError, match="not seen in training"):
         enc.encode("abz")
 
 
 def test_chars_marker_seen_in_text_rejected() -> None:
     """A one-character marker that also occurs in the text is refused (it would be ambiguous)."""
-    tok = BpeTokenizer(base="chars", end_of_word="_", vocab_size=200)
+    tok = BpeTokenizer(base="chars", end_of_word="_")
     with pytest.raises(TokenizerError, match="end_of_word '_'"):
-        tok.fit(counts_from_texts(tok, ["a_b a_b"]), SPEC)
+        tok.fit(counts_from_texts(tok, ["a_b a_b"]), capped(200))
 
 
-# -- specials ----------------------------------------------------------------------------------
-def test_literal_specials_only_when_enabled() -> None:
-    """Special names in text become their reserved ids only with literal_specials."""
+# -- reserved tokens ----------------------------------------------------------------------------------
+def test_literal_reserved_only_when_enabled() -> None:
+    """Reserved names in text become their reserved ids only with literal_reserved."""
     text = "lamp lit <eos> the ferry<bos>left"
-    plain = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 50)
-    enc = plain.fit(counts_from_texts(plain, [LOG, text]), SPEC)
+    plain = BpeTokenizer()
+    enc = plain.fit(counts_from_texts(plain, [LOG, text]), capped(N_RESERVED + 256 + 50))
     ids = enc.encode(text)
-    assert (ids >= N_SPECIAL).all()
+    assert (ids >= N_RESERVED).all()
     assert enc.decode(ids) == text
 
-    lit = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 50, literal_specials=True)
-    enc = lit.fit(counts_from_texts(lit, [LOG, text * 20]), SPEC)
+    lit = BpeTokenizer(literal_reserved=True)
+    enc = lit.fit(counts_from_texts(lit, [LOG, text * 20]), capped(N_RESERVED + 256 + 50))
     ids = enc.encode(text).tolist()
-    assert [i for i in ids if i < N_SPECIAL] == [SPEC.specials.index("<eos>"), SPEC.specials.index("<bos>")]
-    assert enc.decode(ids, show_specials=True) == text
+    assert [i for i in ids if i < N_RESERVED] == [SPEC.reserved.index("<eos>"), SPEC.reserved.index("<bos>")]
+    assert enc.decode(ids, show_reserved=True) == text
     # the names never take part in a merge
     assert not any(b"<eos>" in enc.vocabulary.token(z) or b"<bos>" in enc.vocabulary.token(z) for _, _, z in enc.merges)
 
 
-def test_literal_specials_must_match_vocab_specials() -> None:
-    """literal_specials with names other than vocab.specials is a RecipeError naming the field."""
-    spec = VocabSpec(specials=("<unk>", "<sep>"), unknown="<unk>", padding="", begin="", end="")
-    tok = BpeTokenizer(literal_specials=True, vocab_size=400)
-    with pytest.raises(RecipeError, match="special_names"):
-        tok.fit(counts_from_texts(tok, ["a b"]), spec)
-    tok = BpeTokenizer(literal_specials=True, vocab_size=400, special_names=("<unk>", "<sep>"))
-    enc = tok.fit(counts_from_texts(tok, ["x<sep>y"]), spec)
+def test_literal_reserved_must_match_vocabulary_reserved() -> None:
+    """literal_reserved with names other than vocab.reserved is a RecipeError naming the field."""
+    spec = VocabSpec(reserved=("<unk>", "<sep>"), unknown="<unk>", padding="", begin="", end="")
+    tok = BpeTokenizer(literal_reserved=True)
+    with pytest.raises(RecipeError, match="reserved_names"):
+        tok.fit(counts_from_texts(tok, ["a b"]), capped(400, spec))
+    tok = BpeTokenizer(literal_reserved=True, reserved_names=("<unk>", "<sep>"))
+    enc = tok.fit(counts_from_texts(tok, ["x<sep>y"]), capped(400, spec))
     assert enc.encode("x<sep>y").tolist()[1] == 1
 
 
-def test_specials_never_merged() -> None:
-    """Specials keep ids 0..k-1 and no merge uses or produces them."""
+def test_reserved_never_merged() -> None:
+    """Reserved tokens keep ids 0..k-1 and no merge uses or produces them."""
     enc = bytes_encoder()
-    assert all(min(m) >= N_SPECIAL for m in enc.merges)
-    assert enc.vocabulary.n_special == N_SPECIAL
-    assert enc.vocabulary.roles == {"unknown": 0, "padding": 1, "begin": 2, "end": 3}
+    assert all(min(m) >= N_RESERVED for m in enc.merges)
+    assert enc.vocabulary.n_reserved == N_RESERVED
+    assert enc.vocabulary.roles == {"padding": 0, "unknown": 1, "begin": 2, "end": 3}
 
 
 # -- storage -----------------------------------------------------------------------------------------
@@ -487,14 +496,15 @@ def saved(enc: BpeEncoder, directory: Path) -> Path:
 @pytest.mark.parametrize(
     "kwargs",
     [
-        {"vocab_size": N_SPECIAL + 256 + 80},
-        {"base": "chars", "end_of_word": "</w>", "vocab_size": 300, "literal_specials": True},
+        {"cap": N_RESERVED + 256 + 80},
+        {"base": "chars", "end_of_word": "</w>", "cap": 300, "literal_reserved": True},
     ],
 )
 def test_save_load_round_trip(tmp_path: Path, kwargs: dict[str, object]) -> None:
     """A stored and reloaded encoder has the same merges and encodes identically."""
+    cap = int(kwargs.pop("cap"))  # type: ignore[call-overload]
     tok = BpeTokenizer(**kwargs)  # type: ignore[arg-type]
-    enc = tok.fit(counts_from_texts(tok, [LOG]), SPEC)
+    enc = tok.fit(counts_from_texts(tok, [LOG]), capped(cap))
     again = tok.load(saved(enc, tmp_path))
     assert again.merges == enc.merges
     assert again.vocabulary.tokens.equals(enc.vocabulary.tokens)
@@ -505,15 +515,15 @@ def test_save_load_round_trip(tmp_path: Path, kwargs: dict[str, object]) -> None
 
 def test_load_rejects_malformed(tmp_path: Path) -> None:
     """A garbled, foreign, tampered or mismatched tokenizer.arrow raises ShardCorruptError."""
-    tok = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 30)
-    enc = tok.fit(counts_from_texts(tok, [LOG]), SPEC)
+    tok = BpeTokenizer()
+    enc = tok.fit(counts_from_texts(tok, [LOG]), capped(N_RESERVED + 256 + 30))
     saved(enc, tmp_path)
     path = tmp_path / "tokenizer.arrow"
     table = pa.ipc.open_file(pa.memory_map(str(path))).read_all()
     meta = table.schema.metadata
 
     with pytest.raises(ShardCorruptError, match="recipe says"):
-        BpeTokenizer(vocab_size=N_SPECIAL + 256 + 31).load(tmp_path)
+        BpeTokenizer(min_pair_count=3).load(tmp_path)
 
     tampered = table.set_column(4, "token", pa.array([b"zz"] * table.num_rows, pa.binary()))
     write_table(path, tampered.replace_schema_metadata(meta))
@@ -543,8 +553,7 @@ def test_load_rejects_malformed(tmp_path: Path) -> None:
     [
         ({"base": "words"}, "base"),
         ({"end_of_word": "</w>"}, "end_of_word"),
-        ({"vocab_size": 0}, "vocab_size"),
-        ({"vocab_size": True}, "vocab_size"),
+        ({"vocab_size": 300}, "vocab_size"),
         ({"min_pair_count": 0}, "min_pair_count"),
         ({"chunking": "wordpiece"}, "chunking"),
         ({"chunking": "custom"}, "chunk_regex"),
@@ -552,8 +561,8 @@ def test_load_rejects_malformed(tmp_path: Path) -> None:
         ({"chunking": "custom", "chunk_regex": "(a)|b"}, "chunk_regex"),
         ({"chunk_regex": "a+"}, "chunk_regex"),
         ({"chunk_pattern": "a+"}, "chunk_pattern"),
-        ({"literal_specials": "yes"}, "literal_specials"),
-        ({"special_names": ["<a>", "<a>"]}, "special_names"),
+        ({"literal_reserved": "yes"}, "literal_reserved"),
+        ({"reserved_names": ["<a>", "<a>"]}, "reserved_names"),
         ({"merges": 3}, "merges"),
     ],
 )
@@ -566,31 +575,36 @@ def test_recipe_errors_name_the_key(table: dict[str, object], key: str) -> None:
 
 def test_recipe_round_trip() -> None:
     """parse_tokenizer builds a BpeTokenizer whose plain form rebuilds the same tokenizer."""
-    tok = parse_tokenizer({"kind": "bpe", "base": "chars", "end_of_word": "</w>", "vocab_size": 500})
+    tok = parse_tokenizer({"kind": "bpe", "base": "chars", "end_of_word": "</w>", "min_pair_count": 3})
     assert isinstance(tok, BpeTokenizer)
     plain = to_plain(tok)
     assert plain["kind"] == "bpe"
     assert section(BpeTokenizer, plain, "tokenizer", skip=("kind",)) == tok
 
 
-def test_vocab_size_too_small_and_empty_corpus() -> None:
-    """vocab_size below specials + alphabet is a RecipeError; no text gives the bare alphabet."""
-    tok = BpeTokenizer(vocab_size=100)
-    with pytest.raises(RecipeError, match="expected at least 260"):
+def test_cap_too_small_or_missing_and_empty_corpus() -> None:
+    """A cap below reserved + alphabet, or no cap at all, is a RecipeError; no text gives the bare alphabet."""
+    tok = BpeTokenizer()
+    with pytest.raises(RecipeError, match="needs at least 260") as info:
+        tok.fit(counts_from_texts(tok, ["abc"]), capped(100))
+    assert info.value.key == "vocabulary.cap"
+    with pytest.raises(RecipeError, match=r"grows the vocabulary up to \[vocabulary\] cap") as info:
         tok.fit(counts_from_texts(tok, ["abc"]), SPEC)
-    enc = BpeTokenizer().fit(counts_from_texts(tok, [""]), SPEC)
-    assert (len(enc.vocabulary), enc.merges) == (N_SPECIAL + 256, [])
+    assert info.value.key == "vocabulary.cap"
+    enc = BpeTokenizer().fit(counts_from_texts(tok, [""]), capped(1000))
+    assert (len(enc.vocabulary), enc.merges) == (N_RESERVED + 256, [])
     assert enc.decode(enc.encode("new text")) == "new text"
-    enc = BpeTokenizer(base="chars").fit(counts_from_texts(tok, [""]), SPEC)
-    assert len(enc.vocabulary) == N_SPECIAL
-    assert enc.encode("ab").tolist() == [SPEC.specials.index("<unk>")] * 2
+    enc = BpeTokenizer(base="chars").fit(counts_from_texts(tok, [""]), capped(1000))
+    assert len(enc.vocabulary) == N_RESERVED
+    assert enc.encode("ab").tolist() == [SPEC.reserved.index("<unk>")] * 2
 
 
-def test_max_size_caps_training() -> None:
-    """vocab.max_size caps the vocabulary below vocab_size."""
-    tok = BpeTokenizer(vocab_size=N_SPECIAL + 256 + 100)
-    enc = tok.fit(counts_from_texts(tok, [LOG]), VocabSpec(max_size=N_SPECIAL + 256 + 7))
-    assert len(enc.vocabulary) == N_SPECIAL + 256 + 7
+@pytest.mark.parametrize("learned", [0, 7, 40])
+def test_cap_is_the_vocabulary_size_training_reaches(learned: int) -> None:
+    """[vocabulary] cap is the number of entries byte-pair training grows the vocabulary to."""
+    tok = BpeTokenizer()
+    enc = tok.fit(counts_from_texts(tok, [LOG]), capped(N_RESERVED + 256 + learned))
+    assert len(enc.vocabulary) == N_RESERVED + 256 + learned and len(enc.merges) == learned
 
 
 _HASH_SEED_SCRIPT = """
@@ -600,7 +614,7 @@ from seqpipe.vocab import VocabSpec
 words = [w.encode() for w in "ab ba abab aab bba baab abba".split()] + [b"ab", b"ba"]
 keys = list(dict.fromkeys(words))
 table = pa.table({"key": pa.array(keys, pa.binary()), "count": pa.array([3, 3, 2, 2, 1, 2, 2], pa.int64())})
-enc = BpeTokenizer(vocab_size=300, min_pair_count=1).fit(table, VocabSpec())
+enc = BpeTokenizer(min_pair_count=1).fit(table, VocabSpec(cap=300))
 print(enc.merges)
 """
 

@@ -115,13 +115,13 @@ pattern = "[^{BOARD_ALPHABET}]"
 replacement = ""
 [tokenizer]
 kind = "chars"
-[vocab]
-specials = ["<unk>"]
+[vocabulary]
+reserved = ["<unk>"]
 padding = ""
 begin = ""
 end = ""
 [encode]
-end = false
+append_end = false
 [splits]
 train = 1.0
 validation = 0.0
@@ -228,7 +228,7 @@ def test_empty_corpus_and_missing_files(tmp_path: Path) -> None:
     """A corpus that cleans down to nothing, or a glob with no match, is a clear error."""
     (tmp_path / "logs").mkdir()
     (tmp_path / "logs" / "a.txt").write_text("tiny\n\nwee\n")
-    short = RECIPE.replace('[[clean]]\nkind = "lowercase"', '[[clean]]\nkind = "min_length"\nchars = 100')
+    short = RECIPE.replace('[[clean]]\nkind = "lowercase"', '[[clean]]\nkind = "min_length"\ncharacters = 100')
     with pytest.raises(EmptyCorpusError, match="no document is left"):
         build(parse_recipe(short, tmp_path), tmp_path / "out", workers=1, progress=False)
     with pytest.raises(SourceMissingError):
@@ -247,7 +247,7 @@ def test_invalid_utf8_names_file_and_offset(tmp_path: Path) -> None:
     with pytest.raises(InvalidUtf8Error) as info:
         build(parse_recipe(RECIPE, tmp_path), tmp_path / "out", workers=1, progress=False)
     assert info.value.offset == 15 and "bad.txt" in str(info.value)
-    replaced = RECIPE.replace('document = "paragraph"', 'document = "paragraph"\ninvalid_utf8 = "skip"')
+    replaced = RECIPE.replace('document = "paragraph"', 'document = "paragraph"\non_invalid_utf8 = "skip"')
     res = build(parse_recipe(replaced, tmp_path), tmp_path / "out2", workers=1, progress=False)
     assert res.manifest["summary"]["read"]["invalid_utf8_skipped"] == 1
 
@@ -255,7 +255,11 @@ def test_invalid_utf8_names_file_and_offset(tmp_path: Path) -> None:
 @pytest.mark.parametrize(
     ("recipe_text", "code", "needle"),
     [
-        ("[[sources]]\nkind = 'text'\npaths = 'logs/*.txt'\n[vocab]\nmin_cout = 2\n", 2, "did you mean 'min_count'"),
+        (
+            "[[sources]]\nkind = 'text'\npaths = 'logs/*.txt'\n[vocabulary]\nmin_cout = 2\n",
+            2,
+            "did you mean 'min_count'",
+        ),
         ("[[sources]]\nkind = 'text'\npaths = 'logs/*.txt'\n[shards]\ntokens = 'many'\n", 2, "expected an integer"),
         ("[[sources]]\nkind = 'text'\npaths = 'nowhere/*.txt'\n", 3, "nowhere/*.txt"),
     ],

@@ -223,14 +223,14 @@ def test_collapse_whitespace_keep_newlines_matches_re(docs: list[str]) -> None:
 @given(docs=_docs, chars=st.integers(1, 12))
 def test_min_length_counts_code_points(docs: list[str], chars: int) -> None:
     """Documents of fewer than N code points go; keep() is the mask apply() uses."""
-    step = MinLength(chars=chars)
+    step = MinLength(characters=chars)
     assert run(step, docs) == [d for d in docs if len(d) >= chars]
     assert step.keep(pa.array(docs, pa.large_string())).tolist() == [len(d) >= chars for d in docs]
 
 
 def test_min_length_counts_code_points_not_bytes() -> None:
     """ "字字" is 2 code points (6 UTF-8 bytes); "\U0001f41f" is one."""
-    assert run(MinLength(chars=2), ["字字", "\U0001f41f", "ab"]) == ["字字", "ab"]
+    assert run(MinLength(characters=2), ["字字", "\U0001f41f", "ab"]) == ["字字", "ab"]
 
 
 def test_dedupe_is_a_marker() -> None:
@@ -249,7 +249,7 @@ _EXAMPLES = [
     {"kind": "replace", "pattern": r"\d", "replacement": "#"},
     {"kind": "strip_control", "keep": "\n"},
     {"kind": "collapse_whitespace", "keep_newlines": True},
-    {"kind": "min_length", "chars": 3},
+    {"kind": "min_length", "characters": 3},
     {"kind": "dedupe"},
 ]
 
@@ -280,7 +280,7 @@ def test_step_accepts_any_string_array(table: dict[str, Any]) -> None:
         ({}, "recipe.clean[1].kind", "missing"),
         ({"kind": "normalize", "form": "nfc"}, "recipe.clean[1].form", "got 'nfc'"),
         ({"kind": "lowercase", "mode": "upper"}, "recipe.clean[1].mode", "'upper'"),
-        ({"kind": "min_length", "chars": 0}, "recipe.clean[1].chars", "got 0"),
+        ({"kind": "min_length", "characters": 0}, "recipe.clean[1].characters", "got 0"),
         ({"kind": "collapse_whitespace", "keep_newlines": "yes"}, "recipe.clean[1].keep_newlines", "'yes'"),
         ({"kind": "strip_control", "keep": 5}, "recipe.clean[1].keep", "5"),
         ({"kind": "dedupe", "by": "hash"}, "recipe.clean[1].by", "unknown key"),

@@ -12,7 +12,7 @@ from conftest import run_cli, write_project
 
 from seqpipe import __version__
 from seqpipe.cli import main
-from seqpipe.dataset import load_tokenizer, open_dataset
+from seqpipe.dataset import load_encoder, open_dataset
 from seqpipe.errors import EXIT_DATASET, EXIT_OK, EXIT_USAGE, EXIT_VERIFY_FAILED
 from seqpipe.manifest import MANIFEST_NAME
 from seqpipe.windows import stream_fingerprint
@@ -99,7 +99,7 @@ def test_encode_then_decode_round_trips(cli_build: tuple[Path, str], capsys: pyt
     code, stdout, _ = run(["encode", str(out), "the Quill left Eastreach"], capsys)
     ids = stdout.split()
     assert code == EXIT_OK
-    assert [int(i) for i in ids] == load_tokenizer(out).encode("the Quill left Eastreach").tolist()
+    assert [int(i) for i in ids] == load_encoder(out).encode("the Quill left Eastreach").tolist()
     code, stdout, _ = run(["decode", str(out), *ids], capsys)
     assert code == EXIT_OK and stdout.strip() == "the Quill left Eastreach"
 
@@ -135,7 +135,7 @@ def test_version_prints_the_package_version(capsys: pytest.CaptureFixture[str]) 
 def test_bad_recipe_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     """A recipe with an unknown key exits 2 with a message naming the key, and builds nothing."""
     recipe = write_project(tmp_path / "src")
-    recipe.write_text(recipe.read_text(encoding="utf-8") + "[vocab]\nsize_cap = 3\n", encoding="utf-8")
+    recipe.write_text(recipe.read_text(encoding="utf-8") + "[vocabulary]\nsize_cap = 3\n", encoding="utf-8")
     code, _, stderr = run(["build", str(recipe), "-o", str(tmp_path / "out"), "--quiet"], capsys)
     assert code == EXIT_USAGE and "size_cap" in stderr
     assert not (tmp_path / "out" / MANIFEST_NAME).exists()

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from conftest import build_dir, write_project
 
-from seqpipe.dataset import Dataset, load_tokenizer, open_dataset
+from seqpipe.dataset import Dataset, load_encoder, open_dataset
 from seqpipe.errors import DatasetError, ManifestError, ShardCorruptError
 from seqpipe.manifest import MANIFEST_NAME
 
@@ -70,8 +70,8 @@ def test_stream_ids_fit_the_vocabulary(built: Path) -> None:
 
 
 def test_tokenizer_round_trips_corpus_words(built: Path) -> None:
-    """load_tokenizer gives the trained encoder: decoding the ids of known words gives them back."""
-    encoder = load_tokenizer(built)
+    """load_encoder gives the trained encoder: decoding the ids of known words gives them back."""
+    encoder = load_encoder(built)
     ids = encoder.encode("the Quill left Eastreach")
     assert encoder.decode(ids) == "the Quill left Eastreach"
 

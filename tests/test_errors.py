@@ -102,10 +102,10 @@ def test_every_class_has_its_documented_exit_code() -> None:
 
 def test_recipe_error_carries_the_key_path() -> None:
     """RecipeError keeps the key path and the reason apart and prefixes the path in its message."""
-    exc = RecipeError("vocab.max_size", "expected a positive integer, got -3")
-    assert (exc.key, exc.reason) == ("vocab.max_size", "expected a positive integer, got -3")
-    assert str(exc) == "vocab.max_size: expected a positive integer, got -3"
-    assert exc.details == {"key": "vocab.max_size"}
+    exc = RecipeError("vocabulary.cap", "expected a positive integer, got -3")
+    assert (exc.key, exc.reason) == ("vocabulary.cap", "expected a positive integer, got -3")
+    assert str(exc) == "vocabulary.cap: expected a positive integer, got -3"
+    assert exc.details == {"key": "vocabulary.cap"}
     assert str(RecipeError("", "no sources")) == "no sources"
 
 

@@ -94,7 +94,7 @@ def test_fast_reader_equals_exact_reader(
     data: bytes, mode: str, target: int, batch: int, limit: int, oversize: str, invalid: str, compressed: bool
 ) -> None:
     """Fast and exact readers give the same documents, counters and errors for any bytes and cuts."""
-    src = _source(mode, max_document_bytes=limit, oversize=oversize, invalid_utf8=invalid)
+    src = _source(mode, max_document_bytes=limit, on_oversize=oversize, on_invalid_utf8=invalid)
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / ("a.txt.gz" if compressed else "a.txt")
         path.write_bytes(gzip.compress(data) if compressed else data)
@@ -104,7 +104,7 @@ def test_fast_reader_equals_exact_reader(
 
 def _exact_chunk(data: bytes, mode: str, limit: int) -> tuple[list[str], dict[str, int]]:
     stats = ReadStats()
-    src = _source(mode, max_document_bytes=limit, oversize="skip", invalid_utf8="replace")
+    src = _source(mode, max_document_bytes=limit, on_oversize="skip", on_invalid_utf8="replace")
     out = src._chunk(bytearray(data), len(data), 0, DocumentFinisher(src, Path("a.txt"), stats), slow=True)
     return out.to_pylist(), stats.as_dict()
 

@@ -111,10 +111,10 @@ def test_part_keys_change_when_the_cleaning_changes(tmp_path: Path) -> None:
     assert key_of(recipe, tmp_path, "e" * 32) != key_of(recipe, tmp_path)
 
 
-@pytest.mark.parametrize("vocab", [VocabSpec(min_count=2), VocabSpec(max_size=8)])
+@pytest.mark.parametrize("vocab", [VocabSpec(min_count=2), VocabSpec(cap=8)])
 def test_part_keys_stay_when_only_the_vocabulary_changes(tmp_path: Path, vocab: VocabSpec) -> None:
     """A vocabulary setting is not part of the key: a rebuild with it reuses every part."""
     recipe = tiny_recipe(tmp_path)
-    changed = recipe.replace(vocab=vocab)
+    changed = recipe.replace(vocabulary=vocab)
     assert changed.fingerprint != recipe.fingerprint
     assert key_of(changed, tmp_path) == key_of(recipe, tmp_path)

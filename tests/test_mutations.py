@@ -380,8 +380,8 @@ def _docs_other_columns(raw: bytes, n: int) -> bytes:
 def _vocab_nulls(raw: bytes, n: int) -> bytes:
     table = pa.ipc.open_file(pa.py_buffer(raw)).read_all()
     counts = pa.array([None] * table.num_rows, pa.int64())
-    special = pa.array([True] * 4 + [None] * (table.num_rows - 4), pa.bool_())
-    return _ipc_file(table.set_column(1, "count", counts).set_column(2, "special", special))
+    reserved = pa.array([True] * 4 + [None] * (table.num_rows - 4), pa.bool_())
+    return _ipc_file(table.set_column(1, "count", counts).set_column(2, "reserved", reserved))
 
 
 TABLE_CASES: dict[str, tuple[str, Callable[[bytes, int], bytes]]] = {

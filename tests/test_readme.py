@@ -19,10 +19,10 @@ def blocks(lang: str) -> list[str]:
 
 
 def test_readme_recipe_is_valid() -> None:
-    """The recipe shown in the README loads without error and keeps its stated specials."""
+    """The recipe shown in the README loads without error and keeps its stated reserved tokens."""
     (recipe_text,) = [b for b in blocks("toml") if "[[sources]]" in b]
     recipe = parse_recipe(recipe_text)
-    assert recipe.vocab.specials == ("<unk>", "<pad>", "<bos>", "<eos>")
+    assert recipe.vocabulary.reserved == ("<pad>", "<unk>", "<bos>", "<eos>")
     assert [s.kind for s in recipe.clean] == ["normalize", "lowercase", "collapse_whitespace", "min_length", "dedupe"]
 
 

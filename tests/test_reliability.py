@@ -260,7 +260,7 @@ document = "paragraph"
 [[sources]]
 kind = "jsonl"
 paths = "radio/*.jsonl"
-bad_records = "skip"
+on_bad_record = "skip"
 [[clean]]
 kind = "normalize"
 [[clean]]
@@ -275,16 +275,16 @@ kind = "strip_control"
 kind = "collapse_whitespace"
 [[clean]]
 kind = "min_length"
-chars = 5
+characters = 5
 [[clean]]
 kind = "dedupe"
 [tokenizer]
 kind = "{kind}"
-[vocab]
+[vocabulary]
 min_count = 2
-max_size = 5000
+cap = 5000
 [encode]
-begin = true
+prepend_begin = true
 [splits]
 train = 0.8
 validation = 0.1
@@ -471,7 +471,7 @@ CLI_CASES: dict[str, tuple[Callable[[Path], list[str]], int, str]] = {
     "missing-recipe": (lambda tmp: build_args(tmp / "nope.toml", tmp / "out"), 2, "recipe file not found"),
     "not-toml": (_recipe_case("[[sources]\nkind = "), 2, "not valid TOML"),
     "recipe-not-utf8": (_bytes_recipe, 2, "not UTF-8"),
-    "misspelt-key": (_recipe_case(_GOOD + "[vocab]\nmin_cout = 2\n"), 2, "did you mean 'min_count'"),
+    "misspelt-key": (_recipe_case(_GOOD + "[vocabulary]\nmin_cout = 2\n"), 2, "did you mean 'min_count'"),
     "wrong-type": (_recipe_case(_GOOD + "[shards]\ntokens = 'many'\n"), 2, "recipe.shards.tokens"),
     "bad-choice": (_recipe_case(_GOOD + "[tokenizer]\nkind = 'wrds'\n"), 2, "did you mean 'words'"),
     "glob-matches-nothing": (_recipe_case(_GOOD.replace("corpus/*.txt", "ledgers/*.txt")), 3, "ledgers/*.txt"),

@@ -200,7 +200,7 @@ def test_vocabulary_too_large_for_trigram_keys() -> None:
     vocab = Vocabulary(
         tokens=tokens,
         counts=np.zeros(size, np.int64),
-        n_special=4,
+        n_reserved=4,
         roles={"unknown": 0, "padding": 1, "begin": 2, "end": 3},
     )
     stream = np.array([2, 5, size - 1, 5, 3], dtype=np.uint32)

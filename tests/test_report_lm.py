@@ -220,7 +220,7 @@ def test_empty_split_has_no_perplexity() -> None:
 def test_events_are_built_from_the_split_tokens() -> None:
     """Events carry the split's own ids: two documents [x y] [z] give w = x y end z end."""
     ids = np.array([2, 7, 8, 3, 2, 9, 3], dtype=np.uint8)
-    roles = Roles(unknown=0, padding=1, begin=2, end=3, n_special=4, vocab_size=10)
+    roles = Roles(unknown=0, padding=1, begin=2, end=3, n_reserved=4, vocab_size=10)
     split = SplitTokens(
         "x", ids, np.array([0, 4]), np.array([4, 3]), np.array([1, 5]), np.array([2, 1]), np.array([True, True])
     )

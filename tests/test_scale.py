@@ -78,8 +78,9 @@ document = "paragraph"
 [tokenizer]
 kind = "{tokenizer}"
 {tokenizer_extra}
-[vocab]
+[vocabulary]
 min_count = {min_count}
+cap = {cap}
 [splits]
 train = {train}
 validation = {validation}
@@ -96,6 +97,7 @@ def recipe_text(
     tokenizer_extra: str = "",
     clean: str = "",
     min_count: int = 1,
+    cap: int = 0,
     train: float = 0.8,
     validation: float = 0.1,
     test: float = 0.1,
@@ -110,6 +112,7 @@ def recipe_text(
         tokenizer_extra=tokenizer_extra,
         clean=clean,
         min_count=min_count,
+        cap=cap,
         train=train,
         validation=validation,
         test=test,
@@ -145,15 +148,13 @@ def corpus_root(tmp_path: Path) -> Path:
     return root
 
 
-@pytest.mark.parametrize(
-    ("tokenizer", "extra", "dedupe"), [("words", "", True), ("words", "", False), ("bpe", "vocab_size = 300", True)]
-)
+@pytest.mark.parametrize(("tokenizer", "cap", "dedupe"), [("words", 0, True), ("words", 0, False), ("bpe", 300, True)])
 def test_one_and_two_workers_write_identical_bytes(
-    corpus_root: Path, tmp_path: Path, tokenizer: str, extra: str, dedupe: bool
+    corpus_root: Path, tmp_path: Path, tokenizer: str, cap: int, dedupe: bool
 ) -> None:
     """workers=1 (in-process) and workers=2 (this process and a spawned one) give the same
     manifest and file bytes."""
-    recipe = make_recipe(corpus_root, tokenizer=tokenizer, tokenizer_extra=extra, dedupe=dedupe)
+    recipe = make_recipe(corpus_root, tokenizer=tokenizer, cap=cap, dedupe=dedupe)
     one = build(recipe, tmp_path / "one", workers=1, progress=False, part_bytes=SMALL_PARTS)
     two = build(recipe, tmp_path / "two", workers=2, progress=False, part_bytes=SMALL_PARTS)
     assert one.parts_total > 3 * 2  # several parts per input file, or the test proves little
@@ -281,7 +282,7 @@ def test_identical_input_files_are_each_counted_once(tmp_path: Path) -> None:
 
     def counts(result: BuildResult) -> dict[bytes, int]:
         v = Vocabulary.load(result.directory / "vocab.arrow")
-        return {v.token(i): int(c) for i, c in enumerate(v.counts) if i >= v.n_special}
+        return {v.token(i): int(c) for i, c in enumerate(v.counts) if i >= v.n_reserved}
 
     single = counts(one_file)
     assert counts(two_files) == {k: 2 * c for k, c in single.items()}

@@ -124,11 +124,14 @@ class SourceContract:
             read_all(self.source(max_document_bytes=51), tmp_path)
         assert tmp_path in Path(info.value.path).parents
         stats = ReadStats()
-        assert read_all(self.source(max_document_bytes=51, oversize="skip"), tmp_path, stats=stats) == ["short", "tail"]
+        assert read_all(self.source(max_document_bytes=51, on_oversize="skip"), tmp_path, stats=stats) == [
+            "short",
+            "tail",
+        ]
         assert stats.oversize_skipped == 1
         stats = ReadStats()
         # 51 bytes would cut the 26th "é" (2 bytes each): 25 whole ones are kept.
-        got = read_all(self.source(max_document_bytes=51, oversize="truncate"), tmp_path, stats=stats)
+        got = read_all(self.source(max_document_bytes=51, on_oversize="truncate"), tmp_path, stats=stats)
         assert got == ["short", "é" * 25, "tail"]
         assert stats.oversize_truncated == 1
 
@@ -146,11 +149,11 @@ class SourceContract:
         else:
             assert "row 1" in str(info.value)
         stats = ReadStats()
-        got = read_all(self.source(invalid_utf8="replace"), tmp_path, stats=stats)
+        got = read_all(self.source(on_invalid_utf8="replace"), tmp_path, stats=stats)
         assert got == ["good one", "bad \ufffd byte", "good two"]
         assert stats.invalid_utf8_replaced == 1
         stats = ReadStats()
-        assert read_all(self.source(invalid_utf8="skip"), tmp_path, stats=stats) == ["good one", "good two"]
+        assert read_all(self.source(on_invalid_utf8="skip"), tmp_path, stats=stats) == ["good one", "good two"]
         assert stats.invalid_utf8_skipped == 1
 
     def test_line_ends_become_lf(self, tmp_path: Path) -> None:
@@ -173,7 +176,7 @@ class SourceContract:
 
     def test_recipe_round_trip(self) -> None:
         """parse_source(source.to_dict()) rebuilds an equal source."""
-        src = self.source(max_document_bytes=1000, oversize="skip")
+        src = self.source(max_document_bytes=1000, on_oversize="skip")
         assert parse_source(src.to_dict(), "recipe.sources[0]") == src
 
 
@@ -418,7 +421,7 @@ def test_text_reader_matches_a_naive_definition(
     with tempfile.TemporaryDirectory() as tmp:
         (Path(tmp) / "a.txt").write_bytes(data)
         src = TextSource(
-            paths="a.txt", document=mode, invalid_utf8="replace", max_document_bytes=limit, oversize=oversize
+            paths="a.txt", document=mode, on_invalid_utf8="replace", max_document_bytes=limit, on_oversize=oversize
         )
         got = read_all(src, Path(tmp), target_bytes=target, batch_bytes=batch, stats=got_stats)
     assert got == want
@@ -497,7 +500,7 @@ def test_long_single_line_keeps_memory_bounded(tmp_path: Path) -> None:
         ("error", 64 << 20, [size - 15, 13], 2.5 * size),
     ]
     for policy, max_bytes, want, bound in cases:
-        src = TextSource(paths="long.txt", document="line", max_document_bytes=max_bytes, oversize=policy)
+        src = TextSource(paths="long.txt", document="line", max_document_bytes=max_bytes, on_oversize=policy)
         stats = ReadStats()
         lengths: list[int] = []
         tracemalloc.start()
@@ -538,7 +541,7 @@ def test_jsonl_bad_record_names_file_and_line(tmp_path: Path, line: str, problem
     assert info.value.line == 3
     assert info.value.path == str(tmp_path / "a.jsonl")
     stats = ReadStats()
-    assert read_all(JsonlSource(paths="a.jsonl", bad_records="skip"), tmp_path, stats=stats) == ["fine"] * 2
+    assert read_all(JsonlSource(paths="a.jsonl", on_bad_record="skip"), tmp_path, stats=stats) == ["fine"] * 2
     assert stats.bad_records_skipped == 1
 
 
@@ -564,7 +567,7 @@ def test_jsonl_huge_line_is_judged_without_parsing(tmp_path: Path, batch: int) -
     assert info.value.line == 2
     for policy in ("skip", "truncate"):
         stats = ReadStats()
-        src = JsonlSource(paths="a.jsonl", max_document_bytes=1000, oversize=policy)
+        src = JsonlSource(paths="a.jsonl", max_document_bytes=1000, on_oversize=policy)
         assert read_all(src, tmp_path, batch_bytes=batch, stats=stats) == ["a", "b"]
         assert stats.oversize_skipped == 1
 
@@ -608,7 +611,7 @@ def test_columnar_nulls_follow_bad_records(tmp_path: Path, kind: str) -> None:
     with pytest.raises(RecordError, match="row 2: field 'text' is null"):
         read_all(SOURCE_KINDS[kind](paths="*"), tmp_path)
     stats = ReadStats()
-    assert read_all(SOURCE_KINDS[kind](paths="*", bad_records="skip"), tmp_path, stats=stats) == ["a", "b", "d"]
+    assert read_all(SOURCE_KINDS[kind](paths="*", on_bad_record="skip"), tmp_path, stats=stats) == ["a", "b", "d"]
     assert stats.bad_records_skipped == 2
 
 
@@ -619,7 +622,7 @@ def test_columnar_fast_and_per_value_paths_agree(docs: list[str]) -> None:
     from seqpipe.sources._columnar import finish_column
     from seqpipe.sources.base import DocumentFinisher
 
-    src = ArrowSource(paths="x", bad_records="skip")
+    src = ArrowSource(paths="x", on_bad_record="skip")
     fast = finish_column(pa.array(docs, pa.string()), 0, src, DocumentFinisher(src, Path("x"), ReadStats()))
     # A trailing null sends the batch down the per-value path; skip drops the null again.
     slow = finish_column(pa.array([*docs, None], pa.string()), 0, src, DocumentFinisher(src, Path("x"), ReadStats()))
@@ -666,9 +669,9 @@ def test_resolve_names_a_glob_that_matches_nothing(tmp_path: Path) -> None:
         ({"paths": "x"}, "recipe.sources[1].kind", "missing"),
         ({"kind": "text"}, "recipe.sources[1].paths", "missing"),
         ({"kind": "text", "paths": 5}, "recipe.sources[1].paths", "5"),
-        ({"kind": "text", "paths": "x", "invalid_utf8": "ignore"}, "recipe.sources[1].invalid_utf8", "'ignore'"),
+        ({"kind": "text", "paths": "x", "on_invalid_utf8": "ignore"}, "recipe.sources[1].on_invalid_utf8", "'ignore'"),
         ({"kind": "text", "paths": "x", "document": "lines"}, "recipe.sources[1].document", "did you mean 'line'"),
-        ({"kind": "jsonl", "paths": "x", "bad_records": "drop"}, "recipe.sources[1].bad_records", "'drop'"),
+        ({"kind": "jsonl", "paths": "x", "on_bad_record": "drop"}, "recipe.sources[1].on_bad_record", "'drop'"),
         ({"kind": "arrow", "paths": "x", "max_document_bytes": 0}, "recipe.sources[1].max_document_bytes", "0"),
         ({"kind": "parquet", "paths": "x", "compression": "gzip"}, "recipe.sources[1].compression", "unknown key"),
     ],
@@ -714,10 +717,10 @@ def test_hostile_invalid_utf8(mode: str) -> None:
         _text("invalid_utf8.txt", mode)
     assert info.value.offset == data.index(b"\xff")
     assert "invalid_utf8.txt" in str(info.value)
-    docs, stats = _text("invalid_utf8.txt", mode, invalid_utf8="replace")
+    docs, stats = _text("invalid_utf8.txt", mode, on_invalid_utf8="replace")
     assert "".join(docs).count("\ufffd") == 2  # the stray byte and the cut-off euro sign
     assert stats.invalid_utf8_replaced == {"line": 2, "paragraph": 1, "file": 1}[mode]
-    docs, stats = _text("invalid_utf8.txt", mode, invalid_utf8="skip")
+    docs, stats = _text("invalid_utf8.txt", mode, on_invalid_utf8="skip")
     assert docs == {"line": ["a clean first line", "a clean last line"], "paragraph": [], "file": []}[mode]
     assert stats.invalid_utf8_skipped == {"line": 2, "paragraph": 1, "file": 1}[mode]
 
@@ -729,7 +732,7 @@ def test_hostile_binary_file() -> None:
         with pytest.raises(InvalidUtf8Error) as info:
             _text("binary.bin", mode)
         assert info.value.offset == data.index(b"\x80") == 128
-    docs, stats = _text("binary.bin", "line", invalid_utf8="skip")
+    docs, stats = _text("binary.bin", "line", on_invalid_utf8="skip")
     assert docs == ["".join(map(chr, range(10)))]  # bytes 0..9, before the first LF
     assert stats.invalid_utf8_skipped == 4
 
@@ -757,7 +760,7 @@ def test_hostile_empty_files_give_no_documents(name: str, mode: str) -> None:
 def test_hostile_truncated_compressed_file(name: str) -> None:
     """A truncated gzip / zstd file raises SourceError naming the file."""
     with pytest.raises(SourceError, match="truncated or corrupt") as info:
-        _text(name, "line", invalid_utf8="replace")
+        _text(name, "line", on_invalid_utf8="replace")
     assert info.value.path == str(HOSTILE / name)
 
 
@@ -767,7 +770,7 @@ def test_hostile_records() -> None:
         read_all(JsonlSource(paths="records.jsonl"), HOSTILE)
     assert info.value.line == 2
     stats = ReadStats()
-    assert read_all(JsonlSource(paths="records.jsonl", bad_records="skip"), HOSTILE, stats=stats) == [
+    assert read_all(JsonlSource(paths="records.jsonl", on_bad_record="skip"), HOSTILE, stats=stats) == [
         "first good record",
         "last good record",
     ]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 from typing import Any, ClassVar
 
 import numpy as np
@@ -24,17 +25,19 @@ TEXT = st.text(alphabet=st.characters(exclude_categories=("Cs",)), max_size=60)
 DOCS = st.lists(TEXT, min_size=1, max_size=6)
 
 
-def fit_on(tok: Tokenizer, docs: list[str], spec: VocabSpec | None = None) -> Encoder:
+def fit_on(tok: Tokenizer, docs: list[str], spec: VocabSpec | None = None, cap: int = 0) -> Encoder:
     seg = tok.segment(docs)
     counts = np.bincount(seg.codes, minlength=len(seg.keys)).astype(np.int64)
     table = pa.table({"key": seg.keys, "count": pa.array(counts, pa.int64())})
-    return tok.fit(table, spec or VocabSpec())
+    return tok.fit(table, dataclasses.replace(spec or VocabSpec(), cap=cap))
 
 
 class TokenizerContract:
-    """Properties every tokenizer kind must have. Subclasses set ``table``."""
+    """Properties every tokenizer kind must have. Subclasses set ``table`` (and ``cap`` for kinds
+    that grow the vocabulary up to ``[vocabulary] cap``)."""
 
     table: ClassVar[dict[str, Any]]
+    cap: ClassVar[int] = 0
     lossless: ClassVar[bool] = True
     covers_everything: ClassVar[bool] = False  # every text encodes without the unknown id
 
@@ -60,7 +63,7 @@ class TokenizerContract:
         """decode(encode(x)) == x for lossless kinds, on the text the vocabulary was fitted on."""
         if not self.lossless:
             return
-        enc = fit_on(self.tok, docs)
+        enc = fit_on(self.tok, docs, cap=self.cap)
         for d in docs:
             assert enc.decode(enc.encode(d)) == d
 
@@ -68,7 +71,7 @@ class TokenizerContract:
     @given(docs=DOCS)
     def test_batch_equals_one_by_one(self, docs: list[str]) -> None:
         """Encoding a batch gives the same ids as encoding each document alone."""
-        enc = fit_on(self.tok, docs)
+        enc = fit_on(self.tok, docs, cap=self.cap)
         ids, lengths = enc.encode_batch(docs)
         pos = 0
         for d, n in zip(docs, lengths, strict=True):
@@ -79,7 +82,7 @@ class TokenizerContract:
     def test_save_load_gives_same_encoder(self, tmp_path: Any) -> None:
         """An encoder stored by a build loads back and encodes identically."""
         docs = ["The ferry left at dawn.", "Crates of salt, 12 of them; café au lait ☕."]
-        enc = fit_on(self.tok, docs)
+        enc = fit_on(self.tok, docs, cap=self.cap)
         enc.vocabulary.save(tmp_path / "vocab.arrow")
         enc.save(tmp_path)
         again = self.tok.load(tmp_path)
@@ -89,16 +92,16 @@ class TokenizerContract:
     def test_unknown_maps_to_unknown_id(self) -> None:
         """A token never seen in training maps to the unknown id; a kind whose vocabulary covers
         every input (bytes) never produces it."""
-        enc = fit_on(self.tok, ["aaa bbb"])
+        enc = fit_on(self.tok, ["aaa bbb"], cap=self.cap)
         ids = enc.encode("zzz")
         unk = enc.vocabulary.unknown_id
         assert len(ids) > 0
         assert not (ids == unk).any() if self.covers_everything else (ids == unk).all()
 
-    def test_specials_take_first_ids(self) -> None:
-        """Reserved specials take ids 0..k-1 in recipe order and never appear in encoded text."""
-        spec = VocabSpec(specials=("<pad>", "<unk>", "<x>"), unknown="<unk>", padding="<pad>", begin="", end="")
-        enc = fit_on(self.tok, ["<pad> <x> plain text"], spec)
+    def test_reserved_take_first_ids(self) -> None:
+        """Reserved tokens take ids 0..k-1 in recipe order and never appear in encoded text."""
+        spec = VocabSpec(reserved=("<pad>", "<unk>", "<x>"), unknown="<unk>", padding="<pad>", begin="", end="")
+        enc = fit_on(self.tok, ["<pad> <x> plain text"], spec, cap=self.cap)
         assert enc.vocabulary.tokens.to_pylist()[:3] == [b"<pad>", b"<unk>", b"<x>"]
         assert enc.vocabulary.roles == {"padding": 0, "unknown": 1}
         ids = enc.encode("<pad> <x> plain text")

@@ -50,7 +50,7 @@ test = 0.0
 tokens = 8388608
 """
 BASELINE_PATTERN = r"\w+|[^\w\s]"
-SPECIALS = ("<unk>", "<pad>", "<bos>", "<eos>")  # the [vocab] defaults the recipe keeps
+RESERVED = ("<pad>", "<unk>", "<bos>", "<eos>")  # the [vocabulary] defaults the recipe keeps
 
 # Runs one build in a fresh interpreter and reports peak RSS in KiB (Linux). VmHWM, not
 # getrusage(RUSAGE_SELF): Linux keeps ru_maxrss across exec, so a child would report the parent's
@@ -166,9 +166,9 @@ def naive_pipeline(paths: list[Path]) -> list[int]:
                 else:
                     flush(lines)
         flush(lines)
-    # specials first, then by descending count, ties in code-point order (the vocabulary rule)
+    # reserved tokens first, then by descending count, ties in code-point order (the vocabulary rule)
     ordered = sorted(counts.items(), key=lambda kv: (-kv[1], kv[0]))
-    ids = {tok: i for i, tok in enumerate([*SPECIALS, *(t for t, _ in ordered)])}
+    ids = {tok: i for i, tok in enumerate([*RESERVED, *(t for t, _ in ordered)])}
     end = ids["<eos>"]
     out: list[int] = []
     for tokens in docs:

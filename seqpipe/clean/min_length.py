@@ -15,7 +15,7 @@ from seqpipe.clean.base import CleanStep, as_documents
 
 @dataclass(frozen=True, slots=True)
 class MinLength(CleanStep):
-    """Keep documents of at least ``chars`` code points (``pc.utf8_length``, C).
+    """Keep documents of at least ``characters`` code points (``pc.utf8_length``, C).
 
     Being a filter, it also exposes :meth:`keep`, the mask ``apply`` filters with, so
     the build can drop the matching rows of anything it tracks per document.
@@ -23,14 +23,14 @@ class MinLength(CleanStep):
 
     kind: ClassVar[str] = "min_length"
 
-    chars: int = 1
+    characters: int = 1
 
     def __post_init__(self) -> None:
-        parse_int("chars", self.chars, minimum=1)
+        parse_int("characters", self.characters, minimum=1)
 
     def keep(self, docs: pa.Array) -> np.ndarray:
         """Boolean mask: True for each document ``apply`` keeps."""
-        mask = pc.greater_equal(pc.utf8_length(as_documents(docs)), self.chars)
+        mask = pc.greater_equal(pc.utf8_length(as_documents(docs)), self.characters)
         return np.asarray(mask.to_numpy(zero_copy_only=False), dtype=bool)
 
     def apply(self, docs: pa.Array) -> pa.Array:

@@ -76,7 +76,7 @@ def collect(
     kn_discount: float = 0.75,
     progress: bool = True,
 ) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-    """The report and, per split, the descending frequencies of non-special ids (for plots)."""
+    """The report and, per split, the descending frequencies of non-reserved ids (for plots)."""
     _check(ngram_n, top_k, add_k, kn_discount, progress)
     vocab = dataset.vocabulary
     roles = Roles.of(vocab)
@@ -84,13 +84,13 @@ def collect(
     names = tuple(dataset.splits)
     others = [n for n in names if n != TRAIN]
     has_train = TRAIN in names
-    notes: list[str] = ["Zipf fits and rank-frequency curves exclude special tokens (the unknown token too)."]
+    notes: list[str] = ["Zipf fits and rank-frequency curves exclude reserved tokens (the unknown token too)."]
     report: dict[str, Any] = {
         "format": REPORT_FORMAT,
         "dataset": {
             "fingerprint": dataset.fingerprint,
-            "vocab_size": roles.vocab_size,
-            "specials": [vocab.token(i).decode("utf-8", "backslashreplace") for i in range(roles.n_special)],
+            "vocabulary_entries": roles.vocab_size,
+            "reserved": [vocab.token(i).decode("utf-8", "backslashreplace") for i in range(roles.n_reserved)],
             "roles": dict(sorted(vocab.roles.items())),
             "splits": list(names),
         },
@@ -107,11 +107,11 @@ def collect(
             if s.ids.dtype != common:  # one dtype, so document hashes compare across splits
                 loaded[name] = dataclasses.replace(s, ids=s.ids.astype(common))
         counts = {name: stats.id_counts(s, roles.vocab_size) for name, s in loaded.items()}
-        ranking = stats.frequency_ranking(counts[TRAIN], roles.n_special) if has_train else None
+        ranking = stats.frequency_ranking(counts[TRAIN], roles.n_reserved) if has_train else None
         report["splits"] = {}
         for name, s in loaded.items():
             report["splits"][name] = stats.split_stats(s, counts[name], roles, ranking)
-            curves[name] = counts[name][stats.frequency_ranking(counts[name], roles.n_special)]
+            curves[name] = counts[name][stats.frequency_ranking(counts[name], roles.n_reserved)]
             bar.update()
         if not has_train:
             notes.append(

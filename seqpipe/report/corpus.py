@@ -60,7 +60,7 @@ class Roles:
     padding: int | None
     begin: int | None
     end: int | None
-    n_special: int
+    n_reserved: int
     vocab_size: int
 
     @classmethod
@@ -71,7 +71,7 @@ class Roles:
             padding=roles.get("padding"),
             begin=roles.get("begin"),
             end=roles.get("end"),
-            n_special=int(vocab.n_special),
+            n_reserved=int(vocab.n_reserved),
             vocab_size=len(vocab),
         )
 

@@ -63,7 +63,7 @@ def rank_frequency_png(path: Path, curves: Mapping[str, np.ndarray], fits: Mappi
                 color=line.get_color(),
                 label=f"{name} fit, s = {fit.exponent:.3f}",
             )
-    ax.set_xlabel("rank (special tokens excluded)")
+    ax.set_xlabel("rank (reserved tokens excluded)")
     ax.set_ylabel("frequency")
     ax.set_title("Rank-frequency")
     ax.grid(True, which="major", alpha=0.3)

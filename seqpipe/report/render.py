@@ -199,8 +199,8 @@ def to_markdown(report: dict[str, Any], *, plots_drawn: bool) -> str:
     lines = [
         "# Corpus report",
         "",
-        f"Dataset fingerprint `{ds['fingerprint']}`, vocabulary of {ds['vocab_size']:,} ids "
-        f"(specials: {', '.join(ds['specials'])}).",
+        f"Dataset fingerprint `{ds['fingerprint']}`, vocabulary of {ds['vocabulary_entries']:,} ids "
+        f"(reserved: {', '.join(ds['reserved'])}).",
         "",
     ]
     lines += _splits(report)

@@ -22,12 +22,12 @@ def id_counts(split: SplitTokens, vocab_size: int) -> np.ndarray:
     return np.bincount(split.content_ids(), minlength=vocab_size).astype(np.int64)
 
 
-def frequency_ranking(counts: np.ndarray, n_special: int) -> np.ndarray:
-    """Non-special ids with a nonzero count, most frequent first (ties by id)."""
-    ordinary = counts[n_special:]
+def frequency_ranking(counts: np.ndarray, n_reserved: int) -> np.ndarray:
+    """Non-reserved ids with a nonzero count, most frequent first (ties by id)."""
+    ordinary = counts[n_reserved:]
     order = np.argsort(-ordinary, kind="stable")
     order = order[ordinary[order] > 0]
-    return order + n_special
+    return order + n_reserved
 
 
 def length_summary(lengths: np.ndarray) -> dict[str, float | int | None]:
@@ -93,7 +93,7 @@ def split_stats(
                 coverage[str(k)] = float(covered[k - 1]) / content if content else None
         if len(train_ranking) and str(len(train_ranking)) not in coverage:
             coverage[str(len(train_ranking))] = float(covered[-1]) / content if content else None
-    ranking = frequency_ranking(counts, roles.n_special)
+    ranking = frequency_ranking(counts, roles.n_reserved)
     fit = zipf_fit(counts[ranking])
     return {
         "documents": split.num_documents,

@@ -128,10 +128,10 @@ def finish_column(column: pa.Array, first_row: int, source: RecordSource, finish
     for i, value in enumerate(column.cast(pa.large_binary()).to_pylist()):
         row = first_row + i
         if value is None:
-            if source.bad_records == "error":
+            if source.on_bad_record == "error":
                 raise finisher.error(
                     RecordError,
-                    f'field {source.field!r} is null; set bad_records = "skip" to drop such records',
+                    f'field {source.field!r} is null; set on_bad_record = "skip" to drop such records',
                     row=row,
                 )
             finisher.stats.bad_records_skipped += 1

@@ -12,9 +12,9 @@ The documents a file yields never depend on how it was planned or on
 ``batch_bytes``: the contract tests check this for every kind.
 
 Rules every kind follows (see :class:`DocumentFinisher`): a document larger than
-``max_document_bytes`` is refused, skipped or truncated (``oversize``) *before*
+``max_document_bytes`` is refused, skipped or truncated (``on_oversize``) *before*
 its bytes are decoded; bytes that are not UTF-8 are refused, replaced with
-U+FFFD or make the document skipped (``invalid_utf8``); CRLF and CR-only line
+U+FFFD or make the document skipped (``on_invalid_utf8``); CRLF and CR-only line
 ends become ``"\\n"``; a document with nothing but ASCII blanks (space, tab,
 vertical tab, form feed, line ends) is not emitted.
 """
@@ -109,15 +109,15 @@ class Source(ABC):
     kind: ClassVar[str]
 
     paths: tuple[str, ...] = ()
-    invalid_utf8: str = "error"
+    on_invalid_utf8: str = "error"
     max_document_bytes: int = DEFAULT_MAX_DOCUMENT_BYTES
-    oversize: str = "error"
+    on_oversize: str = "error"
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "paths", _parse_paths(self.paths))
-        parse_str("invalid_utf8", self.invalid_utf8, choices=INVALID_UTF8_POLICIES)
+        parse_str("on_invalid_utf8", self.on_invalid_utf8, choices=INVALID_UTF8_POLICIES)
         parse_int("max_document_bytes", self.max_document_bytes, minimum=1)
-        parse_str("oversize", self.oversize, choices=OVERSIZE_POLICIES)
+        parse_str("on_oversize", self.on_oversize, choices=OVERSIZE_POLICIES)
 
     def to_dict(self) -> dict[str, Any]:
         """The source as a plain table (with its ``kind``), for canonical recipes."""
@@ -169,18 +169,18 @@ class Source(ABC):
 class RecordSource(Source):
     """Fields of the kinds that hold records (JSON Lines, Parquet, Arrow IPC).
 
-    ``field`` names the text field (column). ``bad_records``: what to do with a
+    ``field`` names the text field (column). ``on_bad_record``: what to do with a
     record whose text is missing, null or not a string (JSON Lines also: a line
     that is not JSON) -- ``"error"`` or ``"skip"`` (counted).
     """
 
     field: str = "text"
-    bad_records: str = "error"
+    on_bad_record: str = "error"
 
     def __post_init__(self) -> None:
         Source.__post_init__(self)
         parse_str("field", self.field)
-        parse_str("bad_records", self.bad_records, choices=BAD_RECORD_POLICIES)
+        parse_str("on_bad_record", self.on_bad_record, choices=BAD_RECORD_POLICIES)
 
 
 Data = bytes | bytearray | memoryview
@@ -233,8 +233,8 @@ class DocumentFinisher:
         self.path = str(path)
         self.stats = stats
         self._limit = source.max_document_bytes
-        self._oversize = source.oversize
-        self._invalid = source.invalid_utf8
+        self._oversize = source.on_oversize
+        self._invalid = source.on_invalid_utf8
         self._compressed = compressed
         self._line_of = line_of
 
@@ -263,7 +263,7 @@ class DocumentFinisher:
         what = "a document" if size is None else f"a document of {size} bytes"
         message = (
             f"{what} is larger than max_document_bytes = {self._limit}; raise the limit "
-            'or set oversize = "skip" or "truncate"'
+            'or set on_oversize = "skip" or "truncate"'
         )
         return self.error(SourceError, message, offset=offset, line=line, row=row)
 
@@ -289,14 +289,15 @@ class DocumentFinisher:
         line: int | None = None,
         row: int | None = None,
     ) -> str | None:
-        """``data`` as text under the ``invalid_utf8`` policy (None: the document is skipped)."""
+        """``data`` as text under the ``on_invalid_utf8`` policy (None: the document is skipped)."""
         try:
             return str(data, "utf-8")
         except UnicodeDecodeError as exc:
             if self._invalid == "error":
                 at = None if offset is None else offset + exc.start
                 where = "" if row is None else f"at byte {exc.start} of the value "
-                message = f'invalid UTF-8 {where}({exc.reason}); set invalid_utf8 = "replace" or "skip" to read past it'
+                hint = 'set on_invalid_utf8 = "replace" or "skip" to read past it'
+                message = f"invalid UTF-8 {where}({exc.reason}); {hint}"
                 raise self.error(InvalidUtf8Error, message, offset=at, line=line, row=row) from None
         if self._invalid == "skip":
             self.stats.invalid_utf8_skipped += 1

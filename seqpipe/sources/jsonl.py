@@ -10,7 +10,7 @@ needs the number.
 
 A line longer than ``4 * max_document_bytes + 64 KiB`` is judged oversize
 without being parsed, so a single huge line cannot fill memory; with
-``oversize = "truncate"`` such a record is skipped (there is no text to cut
+``on_oversize = "truncate"`` such a record is skipped (there is no text to cut
 before it is parsed) and counted in ``oversize_skipped``.
 """
 
@@ -122,7 +122,7 @@ class JsonlSource(RecordSource):
                 base += cut
             frm = len(buf)
             if not eof and len(buf) > line_limit:
-                if self.oversize == "error":
+                if self.on_oversize == "error":
                     raise finisher.oversize_error(None, offset=base, line=lines + 1)
                 stats.oversize_skipped += 1
                 skipping = True
@@ -150,7 +150,7 @@ class JsonlSource(RecordSource):
                 stop = cut if nl < 0 else nl
                 lines += 1
                 if stop - pos > line_limit:
-                    if self.oversize == "error":
+                    if self.on_oversize == "error":
                         raise finisher.oversize_error(None, offset=base + pos, line=lines)
                     finisher.stats.oversize_skipped += 1
                 elif _NONBLANK.search(buf, pos, stop) is not None:
@@ -167,8 +167,8 @@ class JsonlSource(RecordSource):
         value, size, problem = self._text_of(raw)
         if problem is None:
             return finisher.finish_text(value, size, line=line)
-        if self.bad_records == "error":
-            hint = '; set bad_records = "skip" to drop such records'
+        if self.on_bad_record == "error":
+            hint = '; set on_bad_record = "skip" to drop such records'
             raise finisher.error(RecordError, problem + hint, line=line)
         finisher.stats.bad_records_skipped += 1
         return None

@@ -15,7 +15,7 @@ compiled ``re`` byte patterns (C), documents sliced out as memoryviews and finis
 one by ``DocumentFinisher``. The read buffer holds
 about ``batch_bytes`` plus the document being read; a document found to exceed
 ``max_document_bytes`` stops growing the buffer (its first ``max_document_bytes``
-bytes are kept for ``oversize = "truncate"``).
+bytes are kept for ``on_oversize = "truncate"``).
 """
 
 from __future__ import annotations
@@ -166,7 +166,7 @@ class TextSource(Source):
                 head += block[: limit + 1 - len(head)]
         if not content:
             return
-        if total > limit and self.oversize == "error":
+        if total > limit and self.on_oversize == "error":
             raise finisher.oversize_error(total, offset=start)
         text = finisher.finish(head, offset=start)
         if text is not None:
@@ -266,7 +266,7 @@ class _SplitReader:
     window: _Window
     slow: bool = False
     skipping: bool = False  # inside an oversize document, dropping bytes up to its end
-    kept: bytes | None = None  # its first limit + 1 bytes, for oversize = "truncate"
+    kept: bytes | None = None  # its first limit + 1 bytes, for on_oversize = "truncate"
     kept_at: int = 0
 
     @property
@@ -337,9 +337,9 @@ class _SplitReader:
         if first is None or window.tail - first <= limit:
             return
         start = _line_start(window.buf, 0, first)
-        if self.source.oversize == "error":
+        if self.source.on_oversize == "error":
             raise self.finisher.oversize_error(None, offset=window.base + start)
-        if self.source.oversize == "truncate":
+        if self.source.on_oversize == "truncate":
             self.kept, self.kept_at = bytes(window.buf[start : start + limit + 1]), window.base + start
         else:
             self.finisher.stats.oversize_skipped += 1

@@ -76,7 +76,7 @@ class Learned:
 
     merges: list[tuple[int, int, int]]  # (left id, right id, merged id)
     merge_counts: list[int]  # pair frequency when the merge was chosen
-    tokens: list[bytes]  # bytes of every id, specials included
+    tokens: list[bytes]  # bytes of every id, reserved tokens included
     words: list[list[int]]  # each training chunk's symbols after the last merge
 
 
@@ -259,7 +259,7 @@ def _split(flat: list[int], lengths: Sequence[int], tail: list[int]) -> list[lis
 
 
 def byte_symbols(
-    keys: list[bytes], freqs: np.ndarray, n_special: int
+    keys: list[bytes], freqs: np.ndarray, n_reserved: int
 ) -> tuple[list[bytes], np.ndarray, list[list[int]]]:
     """Alphabet of all 256 bytes, byte counts, and each chunk as byte ids."""
     data = np.frombuffer(b"".join(keys), dtype=np.uint8)
@@ -267,12 +267,12 @@ def byte_symbols(
     weights = np.repeat(freqs, lengths)
     counts = np.zeros(256, dtype=np.int64)
     np.add.at(counts, data, weights)
-    words = _split((data.astype(np.int64) + n_special).tolist(), lengths, [])
+    words = _split((data.astype(np.int64) + n_reserved).tolist(), lengths, [])
     return [bytes([b]) for b in range(256)], counts, words
 
 
 def char_symbols(
-    keys: list[bytes], freqs: np.ndarray, n_special: int, marker: str
+    keys: list[bytes], freqs: np.ndarray, n_reserved: int, marker: str
 ) -> tuple[list[bytes], np.ndarray, list[list[int]]]:
     """Alphabet of the characters seen (code-point order) plus the marker, counts, chunk ids."""
     try:
@@ -293,6 +293,6 @@ def char_symbols(
             )
         alphabet.append(marker.encode("utf-8"))
         counts[-1] = int(freqs.sum())
-        tail = [n_special + len(alphabet) - 1]
-    words = _split((inverse.ravel().astype(np.int64) + n_special).tolist(), lengths, tail)
+        tail = [n_reserved + len(alphabet) - 1]
+    words = _split((inverse.ravel().astype(np.int64) + n_reserved).tolist(), lengths, tail)
     return alphabet, counts, words

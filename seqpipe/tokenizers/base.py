@@ -78,7 +78,7 @@ class Encoder(ABC):
 
     @abstractmethod
     def decode(self, ids: Sequence[int] | np.ndarray) -> str:
-        """Text for a sequence of ids (specials are skipped unless ``show_specials``)."""
+        """Text for a sequence of ids (reserved tokens are skipped unless ``show_reserved``)."""
 
     def save(self, directory: Path) -> list[str]:
         """Write any learned state besides the vocabulary into ``directory``;
@@ -146,8 +146,8 @@ class VocabEncoder(Encoder):
         ids = self.vocabulary.lookup(keys)
         return ids, np.arange(len(ids) + 1, dtype=np.int64)
 
-    def decode(self, ids: Sequence[int] | np.ndarray, *, show_specials: bool = False) -> str:
-        toks = self.vocabulary.tokens_for(ids, show_specials=show_specials)
+    def decode(self, ids: Sequence[int] | np.ndarray, *, show_reserved: bool = False) -> str:
+        toks = self.vocabulary.tokens_for(ids, show_reserved=show_reserved)
         return self.join(toks)
 
     def join(self, tokens: list[bytes]) -> str:

@@ -56,9 +56,9 @@ from seqpipe.tokenizers._bpe_train import (
 from seqpipe.tokenizers._chunking import CHOICES, CUSTOM, DEFAULT, chunker, pattern_of
 from seqpipe.tokenizers._common import segments_from_tokens, stored_vocabulary
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, expand
-from seqpipe.vocab import VocabSpec, Vocabulary, specials_table
+from seqpipe.vocab import VocabSpec, Vocabulary, reserved_table
 
-DEFAULT_SPECIALS: Final = VocabSpec().specials
+DEFAULT_RESERVED: Final = VocabSpec().reserved
 MERGES_FILE: Final = "tokenizer.arrow"
 MERGES_FORMAT: Final = "seqpipe.merges/2"
 MERGES_SCHEMA: Final = pa.schema(
@@ -70,7 +70,7 @@ CACHE_LIMIT: Final = 200_000
 
 
 @lru_cache(maxsize=16)
-def _special_splitter(names: tuple[str, ...]) -> Any:
+def _reserved_splitter(names: tuple[str, ...]) -> Any:
     # longest first, so a name that starts another name cannot shadow it
     alternatives = "|".join(regex.escape(n) for n in sorted(names, key=len, reverse=True))
     return regex.compile(f"({alternatives})")
@@ -109,24 +109,25 @@ class BpeTokenizer(Tokenizer):
     ``chunking`` names how text is cut into chunks (a preset of ``_chunking.PRESETS``, or
     ``"custom"`` with the regular expression in ``chunk_regex``).
 
-    ``vocab_size`` is the target size of the whole vocabulary (specials, base
-    alphabet and merges); training also stops when no pair occurs at least
-    ``min_pair_count`` times. ``vocab.max_size``, when set, caps it further.
-    With ``literal_specials``, the names in ``special_names`` (which must equal
-    ``vocab.specials``) are cut out of the text as their own chunks and encode
+    Training grows the vocabulary (reserved tokens, base alphabet and merges) up to
+    ``[vocabulary] cap`` entries, one number for one concept; it also stops when no pair
+    occurs at least ``min_pair_count`` times. A cap of 0 ("no cap") is refused: byte-pair
+    training would otherwise merge until every chunk is one token.
+    With ``literal_reserved``, the names in ``reserved_names`` (which must equal
+    ``vocabulary.reserved``) are cut out of the text as their own chunks and encode
     as their reserved ids; otherwise they are ordinary text.
     """
 
     kind: ClassVar[str] = "bpe"
+    grows_vocabulary: ClassVar[bool] = True
 
     base: str = "bytes"
     end_of_word: str = ""
-    vocab_size: int = 8000
     min_pair_count: int = 2
     chunking: str = DEFAULT
     chunk_regex: str = ""
-    literal_specials: bool = False
-    special_names: tuple[str, ...] = DEFAULT_SPECIALS
+    literal_reserved: bool = False
+    reserved_names: tuple[str, ...] = DEFAULT_RESERVED
 
     def __post_init__(self) -> None:
         parse_str("base", self.base, choices=("bytes", "chars"))
@@ -135,7 +136,6 @@ class BpeTokenizer(Tokenizer):
             raise RecipeError(
                 "end_of_word", f"only applies to base = 'chars', got {self.end_of_word!r} with base = {self.base!r}"
             )
-        parse_int("vocab_size", self.vocab_size, minimum=2)
         parse_int("min_pair_count", self.min_pair_count, minimum=1)
         parse_str("chunking", self.chunking, choices=CHOICES)
         parse_str("chunk_regex", self.chunk_regex, allow_empty=True)
@@ -145,11 +145,11 @@ class BpeTokenizer(Tokenizer):
             raise RecipeError(
                 "chunk_regex", f"is only read with chunking = 'custom', but chunking = {self.chunking!r}; drop one"
             )
-        parse_bool("literal_specials", self.literal_specials)
-        names = parse_str_tuple("special_names", self.special_names)
+        parse_bool("literal_reserved", self.literal_reserved)
+        names = parse_str_tuple("reserved_names", self.reserved_names)
         if len(set(names)) != len(names):
-            raise RecipeError("special_names", f"names must be distinct, got {list(names)}")
-        object.__setattr__(self, "special_names", names)
+            raise RecipeError("reserved_names", f"names must be distinct, got {list(names)}")
+        object.__setattr__(self, "reserved_names", names)
 
     @property
     def pattern(self) -> str:
@@ -162,7 +162,7 @@ class BpeTokenizer(Tokenizer):
         if isinstance(texts, (pa.Array, pa.ChunkedArray)):
             texts = texts.to_pylist()
         cut = chunker(self.pattern)
-        splitter = _special_splitter(self.special_names) if self.literal_specials and self.special_names else None
+        splitter = _reserved_splitter(self.reserved_names) if self.literal_reserved and self.reserved_names else None
         flat: list[str] = []
         lengths = np.empty(len(texts), dtype=np.int64)
         for d, text in enumerate(texts):
@@ -172,7 +172,7 @@ class BpeTokenizer(Tokenizer):
                 chunks = []
                 for j, part in enumerate(splitter.split(text)):
                     if j % 2:
-                        chunks.append(part)  # a special name, kept whole
+                        chunks.append(part)  # a reserved name, kept whole
                     elif part:
                         chunks.extend(cut.findall(part))
             if not all(chunks):  # a pattern that can match empty text
@@ -194,38 +194,44 @@ class BpeTokenizer(Tokenizer):
         (chunk row, then position within the chunk). The result does not depend
         on ``PYTHONHASHSEED``.
         """
-        if self.literal_specials and self.special_names != spec.specials:
+        if self.literal_reserved and self.reserved_names != spec.reserved:
             raise RecipeError(
-                "special_names",
-                f"with literal_specials these must equal vocab.specials "
-                f"{list(spec.specials)}, got {list(self.special_names)}",
+                "reserved_names",
+                f"with literal_reserved these must equal vocabulary.reserved "
+                f"{list(spec.reserved)}, got {list(self.reserved_names)}",
+            )
+        if not spec.cap:
+            raise RecipeError(
+                "vocabulary.cap",
+                "byte-pair training grows the vocabulary up to [vocabulary] cap; set cap (e.g. cap = 8000)",
             )
         keys, freqs = read_counts(counts)
-        if self.literal_specials:
-            reserved = {n.encode("utf-8") for n in self.special_names}
+        if self.literal_reserved:
+            reserved = {n.encode("utf-8") for n in self.reserved_names}
             kept = [i for i, k in enumerate(keys) if k not in reserved]
             keys, freqs = [keys[i] for i in kept], freqs[kept]
-        special_tokens, roles = specials_table(spec)
-        n_special = len(special_tokens)
+        reserved_tokens, roles = reserved_table(spec)
+        n_reserved = len(reserved_tokens)
         if self.base == "bytes":
-            alphabet, alpha_counts, words = byte_symbols(keys, freqs, n_special)
+            alphabet, alpha_counts, words = byte_symbols(keys, freqs, n_reserved)
         else:
-            alphabet, alpha_counts, words = char_symbols(keys, freqs, n_special, self.end_of_word)
-        limit = min(self.vocab_size, spec.max_size) if spec.max_size else self.vocab_size
-        if limit < n_special + len(alphabet):
-            need = n_special + len(alphabet)
+            alphabet, alpha_counts, words = char_symbols(keys, freqs, n_reserved, self.end_of_word)
+        limit = spec.cap
+        if limit < n_reserved + len(alphabet):
+            need = n_reserved + len(alphabet)
             raise RecipeError(
-                "vocab_size",
-                f"expected at least {need} ({n_special} specials + {len(alphabet)} base symbols), got {limit}",
+                "vocabulary.cap",
+                f"byte-pair training needs at least {need} ({n_reserved} reserved + {len(alphabet)} base symbols), "
+                f"got {limit}",
             )
-        tokens = [*special_tokens, *alphabet]
+        tokens = [*reserved_tokens, *alphabet]
         learned = learn(words, freqs.tolist(), tokens, limit=limit, min_count=self.min_pair_count)
         vocabulary = Vocabulary(
             tokens=pa.array(learned.tokens, pa.binary()),
             counts=np.concatenate(
-                [np.zeros(n_special, np.int64), alpha_counts, np.array(learned.merge_counts, np.int64)]
+                [np.zeros(n_reserved, np.int64), alpha_counts, np.array(learned.merge_counts, np.int64)]
             ),
-            n_special=n_special,
+            n_reserved=n_reserved,
             roles=roles,
         )
         encoder = BpeEncoder(self, vocabulary, learned.merges, alphabet_size=len(alphabet))
@@ -253,9 +259,9 @@ class BpeTokenizer(Tokenizer):
             alphabet_size = int(stored["alphabet_size"])
         except (KeyError, ValueError, TypeError) as exc:
             raise corrupt(f"unreadable tokenizer parameters ({exc})") from exc
-        mine = self._params(alphabet_size, vocabulary.n_special)
+        mine = self._params(alphabet_size, vocabulary.n_reserved)
         for key in sorted(set(mine) | set(stored)):
-            if key != "special_names" and stored.get(key) != mine.get(key):
+            if key != "reserved_names" and stored.get(key) != mine.get(key):
                 raise corrupt(f"written with {key} = {stored.get(key)!r}, but the recipe says {mine.get(key)!r}")
         if not table.schema.equals(MERGES_SCHEMA, check_metadata=False):
             raise corrupt(
@@ -266,29 +272,29 @@ class BpeTokenizer(Tokenizer):
             raise corrupt("merge table holds nulls")
         merges = _check_merges(table, vocabulary, alphabet_size, self, corrupt)
         tokenizer = self
-        if self.literal_specials:
-            names = tuple(vocabulary.token(i).decode("utf-8", errors="replace") for i in range(vocabulary.n_special))
-            tokenizer = dataclasses.replace(self, special_names=names)
+        if self.literal_reserved:
+            names = tuple(vocabulary.token(i).decode("utf-8", errors="replace") for i in range(vocabulary.n_reserved))
+            tokenizer = dataclasses.replace(self, reserved_names=names)
         return BpeEncoder(tokenizer, vocabulary, merges, alphabet_size=alphabet_size)
 
-    def _params(self, alphabet_size: int, n_special: int) -> dict[str, Any]:
+    def _params(self, alphabet_size: int, n_reserved: int) -> dict[str, Any]:
         plain: dict[str, Any] = to_plain(self)
-        return {**plain, "alphabet_size": alphabet_size, "n_special": n_special}
+        return {**plain, "alphabet_size": alphabet_size, "n_reserved": n_reserved}
 
 
 def _check_merges(
     table: pa.Table, vocabulary: Vocabulary, alphabet_size: int, tokenizer: BpeTokenizer, corrupt: Any
 ) -> list[tuple[int, int, int]]:
     """Merges of a stored table, each checked against the vocabulary beside it."""
-    n_special = vocabulary.n_special
+    n_reserved = vocabulary.n_reserved
     tokens = [bytes(t) for t in vocabulary.tokens.to_pylist()]
-    first_new = n_special + alphabet_size
+    first_new = n_reserved + alphabet_size
     if len(tokens) < first_new:
-        raise corrupt(f"vocabulary has {len(tokens)} tokens, fewer than specials + alphabet ({first_new})")
-    base = tokens[n_special:first_new]
+        raise corrupt(f"vocabulary has {len(tokens)} tokens, fewer than reserved + alphabet ({first_new})")
+    base = tokens[n_reserved:first_new]
     if tokenizer.base == "bytes":
         if base != [bytes([b]) for b in range(256)]:
-            raise corrupt("vocabulary rows after the specials are not the 256 byte values in order")
+            raise corrupt("vocabulary rows after the reserved tokens are not the 256 byte values in order")
     else:
         marker = tokenizer.end_of_word.encode("utf-8")
         chars = base[:-1] if marker else base
@@ -317,7 +323,7 @@ def _check_merges(
     merges: list[tuple[int, int, int]] = []
     for r, (a, b, z, tok) in enumerate(rows):
         # merge r makes id first_new + r out of ids that existed before it
-        if z != first_new + r or not (n_special <= a < z and n_special <= b < z):
+        if z != first_new + r or not (n_reserved <= a < z and n_reserved <= b < z):
             raise corrupt(f"merge {r} ({a}, {b} -> {z}) does not join earlier ids into id {first_new + r}")
         if tok != tokens[a] + tokens[b] or tokens[z] != tok:
             raise corrupt(f"merge {r} does not match the vocabulary")
@@ -345,34 +351,35 @@ class BpeEncoder(Encoder):
         self._bpe = tokenizer
         self._ranks = rank_table(self.merges)
         self._cache: dict[bytes, tuple[int, ...]] = {}
-        n_special = vocabulary.n_special
+        n_reserved = vocabulary.n_reserved
         tokens = [bytes(t) for t in vocabulary.tokens.to_pylist()]
         marker = tokenizer.end_of_word.encode("utf-8")
         self._char_id: dict[str, int] = {}
         self._tail: list[int] = []
         if tokenizer.base == "chars":
             n_chars = alphabet_size - bool(marker)
-            self._char_id = {tokens[i].decode("utf-8"): i for i in range(n_special, n_special + n_chars)}
-            self._tail = [n_special + n_chars] if marker else []
-        self._special_id = {tokens[i]: i for i in range(n_special)} if tokenizer.literal_specials else {}
+            self._char_id = {tokens[i].decode("utf-8"): i for i in range(n_reserved, n_reserved + n_chars)}
+            self._tail = [n_reserved + n_chars] if marker else []
+        self._reserved_id = {tokens[i]: i for i in range(n_reserved)} if tokenizer.literal_reserved else {}
         # decode table: the bytes each id prints as (a token-final marker prints as nothing)
         shown = [
-            t[: -len(marker)] if marker and i >= n_special and t.endswith(marker) else t for i, t in enumerate(tokens)
+            t[: -len(marker)] if marker and i >= n_reserved and t.endswith(marker) else t for i, t in enumerate(tokens)
         ]
         self._shown = np.frombuffer(b"".join(shown), dtype=np.uint8).astype(np.int64)
         self._shown_offsets = np.concatenate([[0], np.cumsum([len(t) for t in shown])]).astype(np.int64)
 
     def _symbols(self, key: bytes) -> list[int]:
         if self._bpe.base == "bytes":
-            n_special = self.vocabulary.n_special
-            return [n_special + b for b in key]
+            n_reserved = self.vocabulary.n_reserved
+            return [n_reserved + b for b in key]
         unknown = self.vocabulary.unknown_id
         out: list[int] = []
         for ch in key.decode("utf-8"):
             sid = self._char_id.get(ch, unknown)
             if sid is None:
                 raise TokenizerError(
-                    f"character {ch!r} was not seen in training and the recipe sets no unknown token (vocab.unknown)"
+                    f"character {ch!r} was not seen in training and the recipe sets no unknown token "
+                    "(vocabulary.unknown)"
                 )
             out.append(sid)
         return out + self._tail
@@ -381,8 +388,8 @@ class BpeEncoder(Encoder):
         """Ids of one chunk (cached)."""
         ids = self._cache.get(key)
         if ids is None:
-            special = self._special_id.get(key)
-            ids = (special,) if special is not None else tuple(apply_merges(self._symbols(key), self._ranks))
+            reserved = self._reserved_id.get(key)
+            ids = (reserved,) if reserved is not None else tuple(apply_merges(self._symbols(key), self._ranks))
             if len(self._cache) >= CACHE_LIMIT:
                 self._cache.clear()
             self._cache[key] = ids
@@ -396,17 +403,17 @@ class BpeEncoder(Encoder):
         values = np.fromiter(itertools.chain.from_iterable(runs), dtype=np.int64, count=int(offsets[-1]))
         return values, offsets
 
-    def decode(self, ids: Sequence[int] | np.ndarray, *, show_specials: bool = False) -> str:
+    def decode(self, ids: Sequence[int] | np.ndarray, *, show_reserved: bool = False) -> str:
         """Text of ``ids``: token bytes joined and read as UTF-8 (invalid sequences, possible
         only for id runs no text encodes to, become U+FFFD). Specials print as their names
-        when ``show_specials``, else nothing."""
+        when ``show_reserved``, else nothing."""
         arr = np.asarray(ids, dtype=np.int64).ravel()
         size = len(self.vocabulary)
         if len(arr) and (arr.min() < 0 or arr.max() >= size):
             bad = int(arr[(arr < 0) | (arr >= size)][0])
             raise TokenizerError(f"id {bad} is outside the vocabulary (0..{size - 1})")
-        if not show_specials:
-            arr = arr[arr >= self.vocabulary.n_special]
+        if not show_reserved:
+            arr = arr[arr >= self.vocabulary.n_reserved]
         if not len(arr):
             return ""
         flat, _ = expand(self._shown, self._shown_offsets, arr, np.array([len(arr)], dtype=np.int64))
@@ -426,7 +433,7 @@ class BpeEncoder(Encoder):
             },
             schema=MERGES_SCHEMA,
         )
-        params = self._bpe._params(self.alphabet_size, self.vocabulary.n_special)
+        params = self._bpe._params(self.alphabet_size, self.vocabulary.n_reserved)
         table = table.replace_schema_metadata(
             {
                 b"seqpipe.table": b"bpe-merges",
