@@ -101,6 +101,16 @@ def test_in_process_tensors_share_memory_and_dlpack_round_trips() -> None:
     np.testing.assert_array_equal(t.numpy(), batch.targets)
 
 
+def test_batch_tensors_take_view_minus_one() -> None:
+    """Loader tensors are contiguous, so ``tensor.view(-1)`` works as a training loss expects."""
+    for order in ("random", "sequential"):
+        ds = TorchBatches(stream(), order=order, **SETTINGS)
+        for item in DataLoader(ds, batch_size=None, num_workers=0):
+            assert item["targets"].is_contiguous() and item["inputs"].is_contiguous()
+            flat = item["targets"].view(-1)  # raises on a strided tensor
+            assert flat.numel() == item["targets"].numel()
+
+
 def test_tuples_masks_epochs_and_resume() -> None:
     """as_tuple gives (inputs, targets); masks come through; set_epoch and resume move the start."""
     ds = TorchBatches(stream(), as_tuple=True, **SETTINGS)

@@ -345,6 +345,16 @@ def test_boundary_mask_and_fresh() -> None:
     assert BatchStream(stream, batch_size=1, window=4).batch(0).mask is None
 
 
+@given(setups())
+def test_inputs_and_targets_are_separate_c_contiguous_arrays(setup: dict[str, Any]) -> None:
+    """Every batch hands out C-contiguous inputs and targets that do not overlap (reshapable in place)."""
+    for b in build(setup):
+        for arr in (b.inputs, b.targets):
+            assert arr.flags.c_contiguous
+            assert np.shares_memory(arr.reshape(-1), arr)  # flattening is a view, not a copy
+        assert not np.shares_memory(b.inputs, b.targets)
+
+
 def test_output_dtype_and_state_tracking() -> None:
     """dtype sets the batch id type; state() advances with each batch handed out."""
     bs = BatchStream(
