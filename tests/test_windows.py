@@ -132,6 +132,17 @@ def test_fingerprint_is_xxh3_128_of_little_endian_int64() -> None:
     assert stream_fingerprint([]) == xxhash.xxh3_128().hexdigest()
 
 
+@pytest.mark.parametrize("dtype", [np.int32, np.uint16, np.dtype(">i8")])
+def test_fingerprint_does_not_depend_on_the_batch_dtype(dtype: Any) -> None:
+    """Batches of int32, uint16 or big-endian ids fingerprint like the int64 batches of the same stream."""
+    stream = make_stream((np.arange(300) * 7 % 251).astype(np.uint16), [120])
+    settings: dict[str, Any] = {"batch_size": 3, "window": 5, "seed": 2, "stream_key": "k"}
+    wide = BatchStream(stream, **settings)
+    narrow = BatchStream(stream, dtype=dtype, **settings)
+    assert next(iter(narrow)).inputs.dtype == np.dtype(dtype)
+    assert stream_fingerprint(narrow.iter_steps(0, 1)) == stream_fingerprint(wide.iter_steps(0, 1))
+
+
 # --- identities (hypothesis) ------------------------------------------------------------------------
 
 
