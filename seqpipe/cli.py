@@ -2,7 +2,8 @@
 
 Exit codes: 0 success; 1 verification found problems; 2 usage or recipe error; 3 input error
 (a source file cannot be read as declared); 4 dataset error (missing, malformed or unsafe);
-5 another build holds the output directory; 70 internal error (a bug: please report it).
+5 another build holds the output directory; 6 a build worker process died; 70 internal error
+(a bug: please report it).
 """
 
 from __future__ import annotations

@@ -147,3 +147,25 @@ def test_spawned_workers_start_one_blas_thread_and_the_caller_keeps_its_environm
         with worker_environment():
             fut = pool.submit(blas_setting, 0)
         assert fut.result()[0] == "3"
+
+
+def die(_: int) -> int:
+    """A task whose worker process ends at once, without a result or a Python error."""
+    os._exit(9)
+
+
+def test_a_dead_worker_is_a_worker_error() -> None:
+    """A worker process that dies mid-build surfaces as WorkerError (exit code 6), not BrokenProcessPool."""
+    from seqpipe._runner import View, run
+    from seqpipe.errors import WorkerError
+    from seqpipe.executors import process_pool
+
+    pool = process_pool(1, threads=1)
+    shared = SharedQueueExecutor(pool, 1, local=0)
+    try:
+        with pytest.raises(WorkerError, match="__main__") as caught:
+            run(shared, False, die, [1, 2], View("test"))
+    finally:
+        shared.shutdown(wait=True, cancel_futures=True)
+        pool.shutdown(wait=True)
+    assert caught.value.exit_code == 6
