@@ -28,9 +28,10 @@ def _print_json(obj: Any) -> None:
 def cmd_build(args: argparse.Namespace) -> int:
     from contextlib import nullcontext
 
-    from seqpipe.executors import TaskPool, keep_freed_memory, task_pool
+    from seqpipe.executors import TaskPool, interrupt_on_terminate, keep_freed_memory, task_pool
 
     keep_freed_memory()  # this process is ours: reuse freed arrays' pages (see executors.py)
+    interrupt_on_terminate()  # SIGTERM unwinds like Ctrl-C: pool shut down, lock released
     # --workers N > 1: start the spawned workers first, so their start-up (an interpreter and
     # the numpy, pyarrow and seqpipe imports) runs while this process imports the same modules
     # and reads the recipe, instead of after the build has begun
