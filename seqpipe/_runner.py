@@ -7,11 +7,19 @@ so a phase can fold results in without keeping them all.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from concurrent.futures import Executor, Future
+from concurrent.futures import BrokenExecutor, Executor, Future
 from dataclasses import dataclass
-from typing import Any, TypeVar
+from typing import Any, Final, TypeVar
 
+from seqpipe.errors import WorkerError
 from seqpipe.progress import bar
+
+WORKER_DIED: Final = (
+    "a build worker process died without a result (killed by a signal, out of memory, or, when "
+    'build(..., workers=N) runs from a script, a script without an `if __name__ == "__main__":` '
+    "guard: each spawned worker imports the script and starts the build again); guard the script, "
+    "check memory, then rerun the build"
+)
 
 M = TypeVar("M")
 
@@ -99,7 +107,10 @@ def run_beside(
 
 
 def _take(fut: Future[Any], i: int, each: Callable[[int, Any], Any] | None, ticker: _Ticker) -> Any:
-    value = fut.result()
+    try:
+        value = fut.result()
+    except BrokenExecutor as exc:
+        raise WorkerError(WORKER_DIED, cause=type(exc).__name__) from exc
     kept = each(i, value) if each is not None else value
     ticker.tick(i, value)
     return kept

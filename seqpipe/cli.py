@@ -4,6 +4,7 @@ Exit codes: 0 success; 1 verification found problems; 2 usage or recipe error (a
 value, an output path that is a regular file, text or ids the tokenizer cannot take); 3 input
 error (a source file cannot be read as declared); 4 dataset error (missing, malformed or unsafe;
 ``verify`` too when there is no dataset to check); 5 another build holds the output directory;
+6 a build worker process died;
 70 internal error (a bug: please report it).
 """
 
@@ -29,9 +30,10 @@ def _print_json(obj: Any) -> None:
 def cmd_build(args: argparse.Namespace) -> int:
     from contextlib import nullcontext
 
-    from seqpipe.executors import TaskPool, keep_freed_memory, task_pool
+    from seqpipe.executors import TaskPool, interrupt_on_terminate, keep_freed_memory, task_pool
 
     keep_freed_memory()  # this process is ours: reuse freed arrays' pages (see executors.py)
+    interrupt_on_terminate()  # SIGTERM unwinds like Ctrl-C: pool shut down, lock released
     # --workers N > 1: start the spawned workers first, so their start-up (an interpreter and
     # the numpy, pyarrow and seqpipe imports) runs while this process imports the same modules
     # and reads the recipe, instead of after the build has begun

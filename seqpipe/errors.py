@@ -19,6 +19,7 @@ already catch ``ValueError`` or ``FileNotFoundError`` keep working::
     │   └── ShardCorruptError                a shard is truncated, malformed or hashes wrong
     ├── IntegrityError                       ``verify`` found problems (carries the list)
     ├── BuildLockedError(RuntimeError)       another build holds the output directory
+    ├── WorkerError(RuntimeError)            a build worker process died (no result, no Python error)
     └── StreamError(ValueError)              bad batch-stream parameters or resume state
 
 Every class has an ``exit_code`` that the CLI uses (see README, "Exit codes").
@@ -34,6 +35,7 @@ EXIT_USAGE: Final = 2
 EXIT_INPUT: Final = 3
 EXIT_DATASET: Final = 4
 EXIT_LOCKED: Final = 5
+EXIT_WORKER: Final = 6
 
 
 class SeqpipeError(Exception):
@@ -133,6 +135,13 @@ class BuildLockedError(SeqpipeError, RuntimeError):
     """Another live build holds the output directory's lock."""
 
     exit_code = EXIT_LOCKED
+
+
+class WorkerError(SeqpipeError, RuntimeError):
+    """A build worker process ended without handing back a result (killed, out of memory, or a
+    script that starts a multi-process build without an ``if __name__ == "__main__":`` guard)."""
+
+    exit_code = EXIT_WORKER
 
 
 class StreamError(SeqpipeError, ValueError):

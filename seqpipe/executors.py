@@ -8,13 +8,15 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import signal
 import threading
+import time
 from collections import deque
 from collections.abc import Callable, Iterator
 from concurrent.futures import Executor, Future, ProcessPoolExecutor, ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass
-from typing import Any, TypeVar
+from typing import Any, Final, TypeVar
 
 T = TypeVar("T")
 
@@ -117,7 +119,7 @@ def process_pool(workers: int, threads: int | None = None) -> ProcessPoolExecuto
         max_workers=workers,
         mp_context=multiprocessing.get_context("spawn"),
         initializer=start_worker,
-        initargs=(threads or max(1, default_workers() // workers),),
+        initargs=(threads or max(1, default_workers() // workers), os.getpid()),
     )
 
 
@@ -142,12 +144,42 @@ def worker_environment() -> Iterator[None]:
         os.environ.pop("OPENBLAS_NUM_THREADS", None)
 
 
-def start_worker(threads: int) -> None:
-    """Set up a spawned worker process: its ingest threads, and malloc that keeps freed memory."""
+def start_worker(threads: int, parent: int = 0) -> None:
+    """Set up a spawned worker process: its ingest threads, malloc that keeps freed memory, and
+    (``parent``: the pid of the process that made the pool) an exit when that process is gone."""
     from seqpipe.ingest import set_ingest_threads
 
     set_ingest_threads(threads)
     keep_freed_memory()
+    if parent:
+        threading.Thread(target=_exit_with_parent, args=(parent,), daemon=True, name="seqpipe-parent-watch").start()
+
+
+_PARENT_POLL_SECONDS: Final = 0.5
+
+
+def _exit_with_parent(parent: int) -> None:
+    """End this worker once ``parent`` is no longer its parent process.
+
+    A parent killed with SIGKILL (or dying any way that skips the pool's shutdown) cannot tell
+    its workers; they would run on as orphans, holding memory and the resource tracker open. An
+    orphan is re-parented (to init or a subreaper), so a changed parent pid is the sign.
+    """
+    while os.getppid() == parent:
+        time.sleep(_PARENT_POLL_SECONDS)
+    os._exit(1)  # nobody is left to take a result; skip cleanup that could block on the dead parent
+
+
+def interrupt_on_terminate() -> None:
+    """Make SIGTERM raise KeyboardInterrupt in the main thread, so a terminated command cleans up
+    (shuts its pool down, releases the build lock) the way Ctrl-C does. For seqpipe's own
+    command line only: a library never changes its caller's signal handlers."""
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGTERM, _raise_interrupt)
+
+
+def _raise_interrupt(signum: int, frame: object) -> None:
+    raise KeyboardInterrupt
 
 
 def keep_freed_memory() -> bool:

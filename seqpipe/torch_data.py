@@ -11,6 +11,9 @@ initialized ``torch.distributed`` process group (else 0 and 1), read once in
 the process that builds the dataset. Loader workers split the batches round-robin
 by step (:meth:`BatchStream.iter_steps`), and the loader's in-order round-robin
 fetch puts them back in step order, so a loader yields exactly the numpy stream.
+:meth:`TorchBatches.set_epoch` and :meth:`TorchBatches.resume` also reach workers kept alive
+with ``persistent_workers=True``: the position lives in shared memory that each worker reads
+when a pass starts.
 
 Arrays become tensors with ``torch.from_numpy`` (no copy in the producing
 process). With the ``spawn``/``forkserver`` start methods the dataset is pickled
@@ -112,6 +115,11 @@ class TorchBatches(IterableDataset[Any]):
         }
         self.as_tuple = bool(as_tuple)
         self._cache: BatchStream | None = None
+        # (epoch, start step) in shared memory: loader workers keep their own copy of this object
+        # (persistent_workers=True keeps it across passes), so set_epoch/resume in the main process
+        # reach them only through memory both sides see; each __iter__ reads it before the first batch.
+        position = torch.tensor([int(epoch), int(start_step)], dtype=torch.int64)
+        self._position = position.share_memory_()  # type: ignore[no-untyped-call]  # torch leaves it unannotated
         if isinstance(source, TokenStream):
             self.batch_stream()  # validate the settings now rather than inside a worker
 
@@ -154,14 +162,17 @@ class TorchBatches(IterableDataset[Any]):
         self._move(moved.epoch, moved.start_step)
 
     def _move(self, epoch: int, start_step: int) -> None:
+        self._adopt(epoch, start_step)
+        self._position[0], self._position[1] = epoch, start_step
+
+    def _adopt(self, epoch: int, start_step: int) -> None:
+        """Rebuild this copy's BatchStream at (epoch, start_step) unless it already stands there."""
+        if (self._settings["epoch"], self._settings["start_step"]) == (epoch, start_step):
+            return
         settings = {**self._settings, "epoch": epoch, "start_step": start_step}
-        old, self._settings = self._settings, settings
-        try:
-            stream = self.batch_stream().stream
-            self._cache = BatchStream(stream, **settings)
-        except StreamError:
-            self._settings = old
-            raise
+        stream = self.batch_stream().stream
+        self._cache = BatchStream(stream, **settings)  # validates before anything changes
+        self._settings = settings
 
     def state_after(self, item: dict[str, Any] | Batch) -> StreamState:
         """The state once the loader item (dict form) or numpy batch has been consumed."""
@@ -174,6 +185,8 @@ class TorchBatches(IterableDataset[Any]):
     def __iter__(self) -> Iterator[Any]:
         info = get_worker_info()
         worker, workers = (0, 1) if info is None else (info.id, info.num_workers)
+        epoch, start_step = (int(v) for v in self._position.tolist())
+        self._adopt(epoch, start_step)  # a persistent worker's copy follows the main process
         for batch in self.batch_stream().iter_steps(worker, workers):
             yield self.convert(batch)
 

@@ -146,7 +146,7 @@ class StreamState:
 
 @dataclass(frozen=True, slots=True, eq=False)
 class Batch:
-    """One rank's batch: ``inputs``/``targets`` are ``(rows, width)`` views of one gathered block.
+    """One rank's batch: ``inputs``/``targets`` are C-contiguous ``(rows, width)`` arrays.
 
     ``width`` is the window length ``T``, except possibly in the last sequential batch when
     ``keep_last=True``. ``mask`` (only with ``boundaries=True``) is True where the target starts a new document.
@@ -316,14 +316,16 @@ class BatchStream:
     def batch(self, step: int) -> Batch:
         """Batch ``step`` of this epoch for this rank, computed directly (no replay)."""
         starts, width = self.starts_for(step)
-        block = self.stream.gather(starts, width + 1, self.dtype)
+        block = self.stream.gather(starts, width + 1, self.stream.dtype)  # stored width: the cheapest copy
         mask = self.stream.boundary_mask(starts, width + 1) if self.boundaries else None
         fresh = self.order == "random" or step == 0
+        # Two C-contiguous arrays, not views of one block: frameworks reshape them in place (a strided
+        # view refuses ``tensor.view(-1)``). The cast to the output dtype makes each copy in one pass.
         return Batch(
             step=int(step),
             epoch=self.epoch,
-            inputs=block[:, :-1],
-            targets=block[:, 1:],
+            inputs=block[:, :-1].astype(self.dtype, order="C"),
+            targets=block[:, 1:].astype(self.dtype, order="C"),
             starts=starts,
             fresh=fresh,
             mask=mask,

@@ -16,6 +16,13 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from hypothesis import settings
+
+# Property tests build datasets, train byte-pair merges and map shards; on a shared 2-core machine one
+# example can take longer than Hypothesis's default 200 ms deadline without anything being wrong, so
+# the suite runs without a deadline (a slow example is a benchmark matter, not a failure).
+settings.register_profile("seqpipe", deadline=None)
+settings.load_profile("seqpipe")
 
 REPO = Path(__file__).resolve().parent.parent
 

@@ -72,7 +72,7 @@ def test_class_derives_from_its_drawn_parent_and_builtins(name: str) -> None:
 
 
 # The exit codes the command line documents (seqpipe/cli.py docstring, README "Exit codes"):
-# 1 verification problems, 2 usage or recipe, 3 input, 4 dataset, 5 locked.
+# 1 verification problems, 2 usage or recipe, 3 input, 4 dataset, 5 locked, 6 a worker died.
 EXIT_CODES = {
     "IntegrityError": 1,
     "RecipeError": 2,
@@ -90,6 +90,7 @@ EXIT_CODES = {
     "ShardMissingError": 4,
     "ShardCorruptError": 4,
     "BuildLockedError": 5,
+    "WorkerError": 6,
 }
 
 

@@ -8,12 +8,20 @@ shutdown(wait=True) finishes the work already submitted).
 from __future__ import annotations
 
 import os
+import signal
+import subprocess
+import sys
 import threading
+import time
 from concurrent.futures import ThreadPoolExecutor, as_completed
+from pathlib import Path
+from typing import Any
 
 import pytest
 
 from seqpipe.executors import SharedQueueExecutor, executor_for
+
+REPO = Path(__file__).resolve().parent.parent
 
 
 def square(x: int) -> int:
@@ -147,3 +155,95 @@ def test_spawned_workers_start_one_blas_thread_and_the_caller_keeps_its_environm
         with worker_environment():
             fut = pool.submit(blas_setting, 0)
         assert fut.result()[0] == "3"
+
+
+def die(_: int) -> int:
+    """A task whose worker process ends at once, without a result or a Python error."""
+    os._exit(9)
+
+
+def test_a_dead_worker_is_a_worker_error() -> None:
+    """A worker process that dies mid-build surfaces as WorkerError (exit code 6), not BrokenProcessPool."""
+    from seqpipe._runner import View, run
+    from seqpipe.errors import WorkerError
+    from seqpipe.executors import process_pool
+
+    pool = process_pool(1, threads=1)
+    shared = SharedQueueExecutor(pool, 1, local=0)
+    try:
+        with pytest.raises(WorkerError, match="__main__") as caught:
+            run(shared, False, die, [1, 2], View("test"))
+    finally:
+        shared.shutdown(wait=True, cancel_futures=True)
+        pool.shutdown(wait=True)
+    assert caught.value.exit_code == 6
+
+
+def _children(pid: int) -> set[int]:
+    """Pids whose parent is ``pid`` (Linux /proc)."""
+    found = set()
+    for entry in os.listdir("/proc"):
+        if entry.isdigit():
+            try:
+                with open(f"/proc/{entry}/stat", encoding="ascii", errors="replace") as fh:
+                    fields = fh.read().rsplit(")", 1)[1].split()
+            except OSError:
+                continue
+            if int(fields[1]) == pid:  # field 4 of proc_pid_stat(5): the parent pid
+                found.add(int(entry))
+    return found
+
+
+def _alive(pid: int) -> bool:
+    try:
+        with open(f"/proc/{pid}/stat", encoding="ascii", errors="replace") as fh:
+            return fh.read().rsplit(")", 1)[1].split()[0] != "Z"
+    except OSError:
+        return False
+
+
+def _wait_for(check: Any, timeout: float) -> bool:
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if check():
+            return True
+        time.sleep(0.1)
+    return check()
+
+
+def _start_slow_build(tmp_path: Path) -> tuple[subprocess.Popen[bytes], set[int]]:
+    """A `seqpipe build --workers 2` whose worker spends long on its first task; returns the
+    process and its children (the spawned worker and the resource tracker) once they exist."""
+    from seqpipe.demo import demo_recipe_text, write_demo_corpus
+
+    write_demo_corpus(tmp_path, documents=3000)
+    (tmp_path / "recipe.toml").write_text(demo_recipe_text(), encoding="utf-8")
+    env = {**os.environ, "PYTHONPATH": str(REPO), "SEQPIPE_TASK_THREADS": "1"}
+    cmd = [sys.executable, "-m", "seqpipe.cli", "build", "recipe.toml", "-o", "out", "--workers", "2", "--quiet"]
+    proc = subprocess.Popen(cmd, cwd=tmp_path, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    assert _wait_for(lambda: len(_children(proc.pid)) >= 2 or proc.poll() is not None, 60)
+    kids = _children(proc.pid)
+    if proc.poll() is not None or not kids:
+        pytest.skip("the build finished before its workers could be seen")
+    return proc, kids
+
+
+@pytest.mark.skipif(not os.path.isdir("/proc/self"), reason="reads /proc (Linux)")
+def test_killed_build_leaves_no_orphans(tmp_path: Path) -> None:
+    """kill -9 of a two-worker build: its spawned worker and resource tracker exit on their own."""
+    proc, kids = _start_slow_build(tmp_path)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait(30)
+    assert _wait_for(lambda: not any(_alive(k) for k in kids), 60), [k for k in kids if _alive(k)]
+
+
+@pytest.mark.skipif(not os.path.isdir("/proc/self"), reason="reads /proc (Linux)")
+def test_terminated_build_cleans_up_like_an_interrupt(tmp_path: Path) -> None:
+    """SIGTERM to a two-worker build exits 130 as Ctrl-C does, and leaves no worker behind."""
+    proc, kids = _start_slow_build(tmp_path)
+    proc.send_signal(signal.SIGTERM)
+    code = proc.wait(120)
+    if code == 0:
+        pytest.skip("the build finished before the signal arrived")
+    assert code == 130
+    assert _wait_for(lambda: not any(_alive(k) for k in kids), 60), [k for k in kids if _alive(k)]

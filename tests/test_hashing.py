@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import mmap
+
 import numpy as np
+import pytest
 import xxhash
 
 from seqpipe._hashing import canonical_json, hash_array, hash_bytes, hash_file, hash_json
@@ -34,8 +37,23 @@ def test_canonical_json_ignores_key_order() -> None:
 
 
 def test_file_hash_equals_bytes_hash(tmp_path) -> None:  # type: ignore[no-untyped-def]
-    """Hashing a file in blocks gives the hash of its whole content."""
+    """Hashing a file from its memory map gives the hash of its whole content."""
     data = np.random.default_rng(0).integers(0, 256, 3 * (1 << 20) + 17, dtype=np.uint8).tobytes()
     p = tmp_path / "f.bin"
     p.write_bytes(data)
-    assert hash_file(p, block=1 << 20) == hash_bytes(data)
+    assert hash_file(p) == hash_bytes(data)
+
+
+@pytest.mark.parametrize("size", [0, 1, 1000, 4096, 3 * 4096 + 17])
+def test_block_path_hashes_only_the_bytes_read(tmp_path, monkeypatch, size: int) -> None:  # type: ignore[no-untyped-def]
+    """Where a file cannot be mapped, hashing it in blocks gives the whole-content hash (a short
+    last block counts only the bytes read, not the rest of the buffer)."""
+
+    def refuse(*args: object, **kwargs: object) -> None:
+        raise OSError("mapping refused (test)")
+
+    monkeypatch.setattr(mmap, "mmap", refuse)
+    data = np.random.default_rng(size).integers(0, 256, size, dtype=np.uint8).tobytes()
+    p = tmp_path / "f.bin"
+    p.write_bytes(data)
+    assert hash_file(p, block=4096) == hash_bytes(data)

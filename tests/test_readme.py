@@ -2,16 +2,18 @@
 
 from __future__ import annotations
 
+import importlib.util
 import os
 import re
+import subprocess
+import sys
 from pathlib import Path
-
-import pytest
 
 from seqpipe.demo import demo_recipe_text, write_demo_corpus
 from seqpipe.recipe import parse_recipe
 
-README = (Path(__file__).resolve().parent.parent / "README.md").read_text(encoding="utf-8")
+REPO = Path(__file__).resolve().parent.parent
+README = (REPO / "README.md").read_text(encoding="utf-8")
 
 
 def blocks(lang: str) -> list[str]:
@@ -26,18 +28,43 @@ def test_readme_recipe_is_valid() -> None:
     assert [s.kind for s in recipe.clean] == ["normalize", "lowercase", "collapse_whitespace", "min_length", "dedupe"]
 
 
-def test_readme_python_examples_run(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    """Build, batch and (with torch) loader examples run in order on the demo corpus."""
+def run_script(folder: Path, name: str, code: str, timeout: float = 300) -> subprocess.CompletedProcess[str]:
+    """Save ``code`` as ``folder/name`` and run it with this interpreter in ``folder``, as a user would."""
+    (folder / name).write_text(code, encoding="utf-8")
+    env = {**os.environ, "PYTHONPATH": str(REPO)}
+    return subprocess.run(
+        [sys.executable, name], cwd=folder, capture_output=True, text=True, timeout=timeout, env=env, check=False
+    )
+
+
+def test_readme_python_examples_run_as_scripts(tmp_path: Path) -> None:
+    """Every README Python block, saved as its own script file, runs in a fresh process (in README
+    order, sharing the demo corpus and the dataset the first block builds) and exits 0."""
     write_demo_corpus(tmp_path)
     (tmp_path / "recipe.toml").write_text(demo_recipe_text(), encoding="utf-8")
-    monkeypatch.chdir(tmp_path)
     code = blocks("python")
-    try:
-        import torch  # noqa: F401
-    except ImportError:
+    assert len(code) >= 3  # build, batches, loader
+    if importlib.util.find_spec("torch") is None:
         code = [c for c in code if "torch" not in c]
-    namespace: dict[str, object] = {}
-    for block in code:
-        exec(compile(block, "README.md", "exec"), namespace)  # the README's own code, as a user runs it
+    for i, block in enumerate(code):
+        done = run_script(tmp_path, f"readme_block_{i}.py", block)
+        assert done.returncode == 0, f"README python block {i} failed:\n{block}\n{done.stderr[-3000:]}"
     assert (tmp_path / "data" / "ferry" / "manifest.json").is_file()
     assert os.path.isdir(tmp_path / "data" / "ferry" / "shards")
+
+
+def test_unguarded_multi_worker_script_gets_a_worker_error(tmp_path: Path) -> None:
+    """A script that calls build(workers=2) without a __main__ guard fails with WorkerError and
+    the advice to add the guard, not a BrokenProcessPool traceback."""
+    write_demo_corpus(tmp_path)
+    (tmp_path / "recipe.toml").write_text(demo_recipe_text(), encoding="utf-8")
+    script = (
+        "from seqpipe import build, load_recipe\n"
+        "result = build(load_recipe('recipe.toml'), 'data/ferry', workers=2, progress=False)\n"
+    )
+    done = run_script(tmp_path, "unguarded.py", script)
+    assert done.returncode != 0
+    # the spawned worker's own traceback (it hits the build lock) may interleave with the parent's
+    raised = [line for line in done.stderr.splitlines() if line.startswith("seqpipe.errors.WorkerError: ")]
+    assert raised, done.stderr[-3000:]
+    assert "__main__" in raised[0]

@@ -60,12 +60,15 @@ class TokenizerContract:
     @settings(CONTRACT, max_examples=60)
     @given(docs=DOCS)
     def test_roundtrip_when_lossless(self, docs: list[str]) -> None:
-        """decode(encode(x)) == x for lossless kinds, on the text the vocabulary was fitted on."""
-        if not self.lossless:
-            return
+        """decode(encode(x)) == x for lossless kinds; for lossy kinds decoding is a fixed point of
+        encoding (encode(decode(ids)) == ids), on the text the vocabulary was fitted on."""
         enc = fit_on(self.tok, docs, cap=self.cap)
         for d in docs:
-            assert enc.decode(enc.encode(d)) == d
+            ids = enc.encode(d)
+            if self.lossless:
+                assert enc.decode(ids) == d
+            else:
+                np.testing.assert_array_equal(enc.encode(enc.decode(ids)), ids)
 
     @settings(CONTRACT, max_examples=40)
     @given(docs=DOCS)

@@ -14,7 +14,7 @@ import pytest
 from seqpipe.errors import StreamError
 from seqpipe.shards import read_shard, write_shard
 from seqpipe.stream import TokenStream
-from seqpipe.windows import BatchStream
+from seqpipe.windows import BatchStream, StreamState
 
 
 def test_package_import_does_not_import_torch() -> None:
@@ -101,6 +101,16 @@ def test_in_process_tensors_share_memory_and_dlpack_round_trips() -> None:
     np.testing.assert_array_equal(t.numpy(), batch.targets)
 
 
+def test_batch_tensors_take_view_minus_one() -> None:
+    """Loader tensors are contiguous, so ``tensor.view(-1)`` works as a training loss expects."""
+    for order in ("random", "sequential"):
+        ds = TorchBatches(stream(), order=order, **SETTINGS)
+        for item in DataLoader(ds, batch_size=None, num_workers=0):
+            assert item["targets"].is_contiguous() and item["inputs"].is_contiguous()
+            flat = item["targets"].view(-1)  # raises on a strided tensor
+            assert flat.numel() == item["targets"].numel()
+
+
 def test_tuples_masks_epochs_and_resume() -> None:
     """as_tuple gives (inputs, targets); masks come through; set_epoch and resume move the start."""
     ds = TorchBatches(stream(), as_tuple=True, **SETTINGS)
@@ -149,3 +159,15 @@ def test_from_dataset_matches_split_batches(tmp_path: Path) -> None:
     items = list(DataLoader(ds, batch_size=None, num_workers=0))
     ref = list(open_dataset(out).split("train").batches(batch_size=3, window=7, seed=4))
     assert_items_equal(items, ref)
+
+
+@pytest.mark.parametrize("context", ["fork", "spawn"])
+def test_persistent_workers_follow_set_epoch_and_resume(context: str) -> None:
+    """With persistent_workers=True, three epochs via set_epoch, then a resume, match the numpy streams."""
+    ds = TorchBatches(stream(), **SETTINGS)
+    loader = DataLoader(ds, batch_size=None, num_workers=2, persistent_workers=True, multiprocessing_context=context)
+    for epoch in range(3):
+        ds.set_epoch(epoch)
+        assert_items_equal(list(loader), list(BatchStream(stream(), epoch=epoch, **SETTINGS)))
+    ds.resume(BatchStream(stream(), epoch=1, **SETTINGS).resume(StreamState(epoch=1, step=4)).state())
+    assert_items_equal(list(loader), list(BatchStream(stream(), epoch=1, start_step=4, **SETTINGS)))

@@ -132,6 +132,17 @@ def test_fingerprint_is_xxh3_128_of_little_endian_int64() -> None:
     assert stream_fingerprint([]) == xxhash.xxh3_128().hexdigest()
 
 
+@pytest.mark.parametrize("dtype", [np.int32, np.uint16, np.dtype(">i8")])
+def test_fingerprint_does_not_depend_on_the_batch_dtype(dtype: Any) -> None:
+    """Batches of int32, uint16 or big-endian ids fingerprint like the int64 batches of the same stream."""
+    stream = make_stream((np.arange(300) * 7 % 251).astype(np.uint16), [120])
+    settings: dict[str, Any] = {"batch_size": 3, "window": 5, "seed": 2, "stream_key": "k"}
+    wide = BatchStream(stream, **settings)
+    narrow = BatchStream(stream, dtype=dtype, **settings)
+    assert next(iter(narrow)).inputs.dtype == np.dtype(dtype)
+    assert stream_fingerprint(narrow.iter_steps(0, 1)) == stream_fingerprint(wide.iter_steps(0, 1))
+
+
 # --- identities (hypothesis) ------------------------------------------------------------------------
 
 
@@ -343,6 +354,16 @@ def test_boundary_mask_and_fresh() -> None:
             np.testing.assert_array_equal(b.mask, expected)
             assert b.fresh == (order == "random" or b.step == 0)
     assert BatchStream(stream, batch_size=1, window=4).batch(0).mask is None
+
+
+@given(setups())
+def test_inputs_and_targets_are_separate_c_contiguous_arrays(setup: dict[str, Any]) -> None:
+    """Every batch hands out C-contiguous inputs and targets that do not overlap (reshapable in place)."""
+    for b in build(setup):
+        for arr in (b.inputs, b.targets):
+            assert arr.flags.c_contiguous
+            assert np.shares_memory(arr.reshape(-1), arr)  # flattening is a view, not a copy
+        assert not np.shares_memory(b.inputs, b.targets)
 
 
 def test_output_dtype_and_state_tracking() -> None:
