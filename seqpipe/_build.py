@@ -66,7 +66,7 @@ from seqpipe.manifest import FORMAT, MANIFEST_NAME, dumps, seal
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype
-from seqpipe.staging import build_lock, private_dir, publish
+from seqpipe.staging import build_lock, check_output, private_dir, publish
 
 if TYPE_CHECKING:
     from seqpipe.storage import UriStore
@@ -158,6 +158,7 @@ def build(
     if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
         raise RecipeError("workers", f"expected a positive integer, got {workers!r}")
     local, remote = _work_directory(out, work_dir, cache_dir)
+    check_output(local)
     local.mkdir(parents=True, exist_ok=True)
     show = enabled(progress)
     with build_lock(local):
@@ -528,9 +529,7 @@ def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fi
     """Write the manifest into the stage and move everything into ``out``, the manifest last."""
     (stage / MANIFEST_NAME).write_text(dumps(manifest))
     entries = [VOCAB_FILE, *fitted.files, DOCS_DIR, SHARDS_DIR]
-    for gone in OPTIONAL_TOP:
-        if gone not in entries and (out / gone).exists():
-            (out / gone).unlink()
+    # old entries the new build lacks (tokenizer.arrow) go in publish, after the old manifest
     publish(out, stage, entries, MANIFEST_NAME)
     shutil.rmtree(stage, ignore_errors=True)
 

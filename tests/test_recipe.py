@@ -96,3 +96,11 @@ def test_load_recipe_file_errors(tmp_path: Path) -> None:
     ok = tmp_path / "r.toml"
     ok.write_text(GOOD)
     assert load_recipe(ok).root == tmp_path.resolve()
+
+
+@pytest.mark.parametrize("name", [".", "..", "a/b", "../elsewhere", "a\\b"])
+def test_dataset_name_must_be_one_plain_directory_name(name: str) -> None:
+    """dataset.name is the default output directory: '.', '..' and names with a path separator
+    are refused, so a build never defaults into the current directory or outside it."""
+    with pytest.raises(RecipeError, match=r"dataset\.name"):
+        parse_recipe(GOOD.replace('name = "ferry"', f"name = '{name}'"))

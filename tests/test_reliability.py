@@ -173,11 +173,20 @@ class _Os:
         os.rename(src, dst)
         if point == "after-rename" and calls[0] == n:
             os.kill(os.getpid(), signal.SIGKILL)
-    def link(self, *args, **kwargs):
-        os.link(*args, **kwargs)
+    def write(self, *args, **kwargs):
+        written = os.write(*args, **kwargs)
         if point == "lock-created":
             os.kill(os.getpid(), signal.SIGKILL)
+        return written
 staging.os = _Os()
+if point == "manifest-unlink":
+    import pathlib
+    real_unlink = pathlib.Path.unlink
+    def unlink(self, *args, **kwargs):
+        if self.name == "manifest.json" and self.parent.name != "stage":
+            os.kill(os.getpid(), signal.SIGKILL)
+        real_unlink(self, *args, **kwargs)
+    pathlib.Path.unlink = unlink
 from seqpipe.cli import main
 sys.exit(main(sys.argv[3:]))
 """
@@ -238,6 +247,23 @@ def test_kill_at_publish_steps(small_setup: dict[str, Any]) -> None:
     assert run_child("after-rename", renames, s["recipe"], out) == -signal.SIGKILL
     assert check_after_kill(out, {s["reference_fingerprint"]})  # manifest in place: new dataset complete
     rerun_and_check(s["recipe"], out, s["reference_fingerprint"])
+
+
+def test_nothing_the_old_manifest_lists_changes_before_it_is_gone(small_setup: dict[str, Any]) -> None:
+    """A build without tokenizer.arrow over an older dataset with one, killed as it deletes the
+    old manifest, leaves the old dataset complete: its tokenizer.arrow was not removed first."""
+    s = small_setup
+    bpe_recipe = s["root"] / "src" / "bpe.toml"
+    bpe_recipe.write_text(s["recipe"].read_text().replace('kind = "words"', 'kind = "bpe"'))
+    out = build_dir(bpe_recipe, s["root"] / "old-bpe")
+    assert (out / "tokenizer.arrow").exists()
+    old = fingerprint_of(out)
+    assert run_child("manifest-unlink", 0, s["recipe"], out) == -signal.SIGKILL
+    report = verify(out)
+    assert report.ok, report.problems
+    assert report.fingerprint == old
+    rerun_and_check(s["recipe"], out, s["reference_fingerprint"])
+    assert not (out / "tokenizer.arrow").exists()
 
 
 def test_kill_while_creating_lock_does_not_block_later_builds(small_setup: dict[str, Any]) -> None:
