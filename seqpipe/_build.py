@@ -44,7 +44,7 @@ from seqpipe._hashing import hash_file, hash_json
 from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
 from seqpipe._runner import View, run, run_beside
 from seqpipe.counts import CountMerger, first_occurrence
-from seqpipe.errors import EmptyCorpusError, RecipeError, SourceMissingError
+from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SourceMissingError
 from seqpipe.executors import TaskPool, task_pool
 from seqpipe.formats import DOCS_DIR, OPTIONAL_TOP, SHARDS_DIR, VOCAB_FILE
 from seqpipe.ingest import (
@@ -62,7 +62,7 @@ from seqpipe.ingest import (
     read_part_docs,
     write_shard_task,
 )
-from seqpipe.manifest import FORMAT, MANIFEST_NAME, dumps, seal
+from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype
@@ -73,6 +73,11 @@ if TYPE_CHECKING:
     from seqpipe.transfer import PublishStats
 
 PART_BYTES: Final = 16 << 20
+# For the shard-count check before a build starts: no tokenizer gives fewer tokens per input
+# byte than one per this many bytes on text (words average under 8 bytes with their space),
+# and one shard's manifest entry takes about this many bytes (path, counts, two hashes).
+BYTES_PER_TOKEN_AT_MOST: Final = 8
+SHARD_ENTRY_BYTES: Final = 250
 
 
 @dataclass
@@ -322,17 +327,37 @@ def _build(
     """The phases in order, each handing the next what it needs."""
     ctx = Context(recipe, pool, cache, show)
     plan = plan_build(recipe, cache, part_bytes)
+    check_shard_count(recipe, plan.input_bytes)
     stage = _fresh_stage(out, plan.build_key[:16])
-    merger = CountMerger()  # parts counted by their ingest task arrive first, the others in count
-    ingested = ingest(ctx, plan, merger)
-    kept = assign(ctx, plan)
-    counts = count(ctx, plan, ingested, kept, merger)
-    fitted = fit(recipe, counts, stage)
-    encoded = encode(ctx, plan, kept, fitted, stage)
-    sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage), stage)
-    manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage))
-    publish_dataset(out, stage, manifest, fitted)
+    try:
+        merger = CountMerger()  # parts counted by their ingest task arrive first, the others in count
+        ingested = ingest(ctx, plan, merger)
+        kept = assign(ctx, plan)
+        counts = count(ctx, plan, ingested, kept, merger)
+        fitted = fit(recipe, counts, stage)
+        encoded = encode(ctx, plan, kept, fitted, stage)
+        sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage), stage)
+        manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage))
+        publish_dataset(out, stage, manifest, fitted)
+    except OutputWriteError:
+        shutil.rmtree(stage, ignore_errors=True)  # frees the space; the cache keeps what is whole
+        raise
     return BuildResult(out, manifest, time.perf_counter() - t0, plan.input_bytes, len(plan.tasks), ingested.reused)
+
+
+def check_shard_count(recipe: Recipe, input_bytes: int) -> None:
+    """Refuse, before any work, a build whose shard entries alone would make a manifest larger
+    than readers accept, estimating its tokens low (so only a hopeless build is refused)."""
+    tokens = input_bytes // BYTES_PER_TOKEN_AT_MOST
+    shards = -(-tokens // recipe.shards.tokens)
+    if shards * SHARD_ENTRY_BYTES > MAX_MANIFEST_BYTES:
+        least = -(-tokens * SHARD_ENTRY_BYTES // MAX_MANIFEST_BYTES)
+        raise RecipeError(
+            "shards.tokens",
+            f"{recipe.shards.tokens} tokens per shard gives at least {shards} shards for these "
+            f"{input_bytes} input bytes, more than a manifest readers accept "
+            f"({MAX_MANIFEST_BYTES} bytes) can list; raise shards.tokens (to {least} or more)",
+        )
 
 
 def _input_files(recipe: Recipe) -> list[tuple[int, Path | str]]:
@@ -527,7 +552,17 @@ def _manifest_body(
 
 def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fitted) -> None:
     """Write the manifest into the stage and move everything into ``out``, the manifest last."""
-    (stage / MANIFEST_NAME).write_text(dumps(manifest))
+    text = dumps(manifest)
+    if len(text.encode()) > MAX_MANIFEST_BYTES:
+        raise RecipeError(
+            "shards.tokens",
+            f"the manifest would be {len(text.encode())} bytes, over the {MAX_MANIFEST_BYTES} bytes "
+            "readers accept; raise shards.tokens so there are fewer shards",
+        )
+    try:
+        (stage / MANIFEST_NAME).write_text(text)
+    except OSError as exc:
+        raise OutputWriteError(f"{stage / MANIFEST_NAME}: cannot write it ({exc})", path=str(stage)) from exc
     entries = [VOCAB_FILE, *fitted.files, DOCS_DIR, SHARDS_DIR]
     # old entries the new build lacks (tokenizer.arrow) go in publish, after the old manifest
     publish(out, stage, entries, MANIFEST_NAME)

@@ -19,6 +19,7 @@ already catch ``ValueError`` or ``FileNotFoundError`` keep working::
     │   └── ShardCorruptError                a shard is truncated, malformed or hashes wrong
     ├── IntegrityError                       ``verify`` found problems (carries the list)
     ├── BuildLockedError(RuntimeError)       another build holds the output directory
+    ├── OutputWriteError(OSError)            a file of the build cannot be written (disk full)
     └── StreamError(ValueError)              bad batch-stream parameters or resume state
 
 Every class has an ``exit_code`` that the CLI uses (see README, "Exit codes").
@@ -133,6 +134,12 @@ class BuildLockedError(SeqpipeError, RuntimeError):
     """Another live build holds the output directory's lock."""
 
     exit_code = EXIT_LOCKED
+
+
+class OutputWriteError(SeqpipeError, OSError):
+    """A file the build writes cannot be written (no space left, no permission); ``path`` names it."""
+
+    exit_code = EXIT_DATASET
 
 
 class StreamError(SeqpipeError, ValueError):

@@ -341,3 +341,62 @@ def test_a_part_with_more_distinct_words_than_two_byte_codes_hold(tmp_path: Path
         for t in ds.vocabulary.tokens_for(ds.split(name).stream.slice(0, ds.split(name).num_tokens))
     ]
     assert sorted(got) == sorted(few.split())
+
+
+def test_a_full_disk_names_the_file_and_leaves_the_old_dataset_and_no_staging_files(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A write failing with ENOSPC (simulated at the first fsync of a file) stops the build with
+    OutputWriteError naming that file; the old dataset still verifies and no staging or
+    temporary file is left in the output directory."""
+    import errno
+
+    from conftest import build_dir, write_project
+
+    from seqpipe import shards
+    from seqpipe.errors import OutputWriteError
+
+    recipe = write_project(tmp_path / "src")
+    out = build_dir(recipe, tmp_path / "out")
+    old = verify(out).fingerprint
+    recipe.write_text(recipe.read_text().replace("tokens = 300", "tokens = 500"))
+
+    class FullDisk:
+        def __getattr__(self, name: str) -> object:
+            return getattr(os, name)
+
+        def fsync(self, fd: int) -> None:
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(shards, "os", FullDisk())
+    with pytest.raises(OutputWriteError) as caught:
+        build(load_recipe(recipe), out, workers=1, progress=False)
+    assert caught.value.exit_code == 4
+    assert str(out) in str(caught.value) and ".arrow" in str(caught.value)
+    assert "No space left" in str(caught.value)
+    monkeypatch.undo()
+    report = verify(out)
+    assert report.ok and report.fingerprint == old, report.problems
+    stage = out / ".seqpipe" / "stage"
+    assert not stage.exists() or not any(stage.iterdir())
+    assert not [p for p in out.rglob("*") if p.name.endswith(".tmp")]
+
+
+def test_a_build_with_far_too_many_shards_is_refused_before_it_starts(tmp_path: Path) -> None:
+    """shards.tokens = 1 over a few megabytes would list more shards than a manifest readers
+    accept can hold: the CLI refuses it with exit code 2 naming shards.tokens, writing nothing."""
+    from conftest import run_cli
+
+    src = tmp_path / "src"
+    (src / "logs").mkdir(parents=True)
+    line = "the evening ferry left the north pier with nine cars and a bicycle\n"
+    (src / "logs" / "big.txt").write_text(line * (3_000_000 // len(line)))
+    (src / "recipe.toml").write_text(
+        '[dataset]\nname = "big"\n[[sources]]\nkind = "text"\npaths = "logs/*.txt"\ndocument = "line"\n'
+        '[tokenizer]\nkind = "words"\n[shards]\ntokens = 1\n'
+    )
+    out = tmp_path / "out"
+    proc = run_cli(["build", str(src / "recipe.toml"), "-o", str(out), "--workers", "1", "--quiet"], timeout=90)
+    assert proc.returncode == 2, proc.stderr
+    assert "shards.tokens" in proc.stderr and "Traceback" not in proc.stderr
+    assert not (out / ".seqpipe" / "stage").exists() or not any((out / ".seqpipe" / "stage").iterdir())
