@@ -228,7 +228,7 @@ def _uploaded(result: BuildResult, remote: UriStore, stats: PublishStats, local:
     return dataclasses.replace(result, directory=remote.location, seconds=time.perf_counter() - t0, extra=extra)
 
 
-def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[str]:
+def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[tuple[str, tuple[int, ...] | None]]:
     """XXH3-128 of each input, reusing a stored hash while its change stamp is unchanged:
     (size, mtime, inode) for a local file, (size, mtime) for a URI; a URI whose filesystem
     reports no mtime has no stamp and is hashed on every build."""
@@ -239,19 +239,23 @@ def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[str]:
         index: dict[str, Any] = json.loads(index_path.read_text())
     except (OSError, ValueError):
         index = {}
-    out = []
+    out: list[tuple[str, tuple[int, ...] | None]] = []
     changed = False
     for f in files:
         stamp = change_stamp(f)
         rec = index.get(str(f))
         if stamp is not None and rec and rec.get("stamp") == stamp:
-            out.append(rec["hash"])
+            out.append((rec["hash"], tuple(stamp)))
             continue
         h = hash_file(f)
+        if stamp is not None and change_stamp(f) != stamp:
+            # changed while hashed: keep the stamp from before, so reading it is refused
+            out.append((h, tuple(stamp)))
+            continue
         if stamp is not None:
             index[str(f)] = {"stamp": stamp, "hash": h}
             changed = True
-        out.append(h)
+        out.append((h, None if stamp is None else tuple(stamp)))
     if changed:
         cache.mkdir(parents=True, exist_ok=True)
         tmp = index_path.with_suffix(".tmp")
@@ -382,7 +386,8 @@ def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
     from seqpipe.filesystem import file_size, is_uri
 
     files = _input_files(recipe)
-    hashes = _input_hashes([f for _, f in files], cache)
+    hashed = _input_hashes([f for _, f in files], cache)
+    hashes = [h for h, _ in hashed]
     sizes = [file_size(f) for _, f in files]
     # a URI input is recorded as the URI; a local one relative to the recipe's directory
     inputs = tuple(
@@ -394,7 +399,8 @@ def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
     for ii, ((si, f), h) in enumerate(zip(files, hashes, strict=True)):
         parts = recipe.sources[si].plan(f, part_bytes)
         for part in parts:
-            tasks.append(IngestTask(recipe, si, ii, str(f), part, part_key(recipe, si, h, part), str(cache)))
+            key = part_key(recipe, si, h, part)
+            tasks.append(IngestTask(recipe, si, ii, str(f), part, key, str(cache), stamp=hashed[ii][1]))
             weights.append(sizes[ii] // max(len(parts), 1))
     build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes})
     return Plan(inputs, tuple(tasks), tuple(weights), sum(sizes), build_key)

@@ -34,7 +34,7 @@ import xxhash
 
 from seqpipe._hashing import hash_array, hash_json
 from seqpipe._parse import to_plain
-from seqpipe.errors import SeqpipeError
+from seqpipe.errors import SeqpipeError, SourceError
 from seqpipe.recipe import Recipe
 from seqpipe.shards import fsync_dir, id_dtype, read_shard, read_table, write_shard, write_table
 from seqpipe.splits import assign_splits
@@ -90,6 +90,9 @@ class IngestTask:
     # corpus position of the part: when set (no dedupe step, so every document is kept), the
     # task also counts the part's train pieces while they are in memory (see PartMeta.counts)
     count_order: int | None = None
+    # the input's change stamp when its hash was taken (filesystem.change_stamp); a part read
+    # while the stamp differs is refused, never cached
+    stamp: tuple[int, ...] | None = None
 
 
 @dataclass
@@ -288,10 +291,27 @@ def ingest_part(task: IngestTask) -> PartMeta:
         read={k: int(v) for k, v in asdict(stats).items()},
         dropped=got.dropped,
     )
+    _check_unchanged(task)
     _store_part(task, _docs_table(recipe, got), keys, _stored_codes(seg.codes, len(keys)), meta)
     if task.count_order is not None:
         meta.counts = _count(recipe, got.columns["hash"], seg.doc_lengths, keys, seg.codes, None, task.count_order)
     return meta
+
+
+def _check_unchanged(task: IngestTask) -> None:
+    """Refuse a part whose input changed since its hash was taken: what was read may not be
+    what the hash (and so the manifest and the cache key) says."""
+    from seqpipe.filesystem import change_stamp
+
+    if task.stamp is None:
+        return
+    now = change_stamp(task.path)
+    if now is None or tuple(now) != task.stamp:
+        raise SourceError(
+            task.path,
+            "changed while the build was reading it (size or modification time differ from when it "
+            "was hashed); run the build again once the file no longer changes",
+        )
 
 
 def _store_part(task: IngestTask, docs: pa.Table, keys: pa.Array, codes: pa.Array, meta: PartMeta) -> None:

@@ -17,7 +17,7 @@ from seqpipe import build
 from seqpipe._verify import verify
 from seqpipe.cli import main
 from seqpipe.dataset import open_dataset
-from seqpipe.errors import EmptyCorpusError, InvalidUtf8Error, SourceMissingError
+from seqpipe.errors import EmptyCorpusError, InvalidUtf8Error, SourceError, SourceMissingError
 from seqpipe.recipe import load_recipe, parse_recipe
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
@@ -400,3 +400,38 @@ def test_a_build_with_far_too_many_shards_is_refused_before_it_starts(tmp_path: 
     assert proc.returncode == 2, proc.stderr
     assert "shards.tokens" in proc.stderr and "Traceback" not in proc.stderr
     assert not (out / ".seqpipe" / "stage").exists() or not any((out / ".seqpipe" / "stage").iterdir())
+
+
+def test_an_input_changed_before_it_is_read_fails_the_build_and_is_not_cached(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """An input rewritten (same size) between being hashed and being read would give data that
+    does not match its recorded hash: the build fails with exit code 3 naming the file, and no
+    part of that file is cached."""
+    from conftest import write_project
+
+    from seqpipe.ingest import load_part_meta
+    from seqpipe.sources.text import TextSource
+
+    recipe_path = write_project(tmp_path / "src")
+    recipe = load_recipe(recipe_path)
+    victim = sorted((tmp_path / "src").rglob("*.txt"))[0]
+    real_read = TextSource.read
+    touched: list[str] = []
+
+    def rewriting_read(self: TextSource, path: str, *args: object, **kwargs: object) -> object:
+        if Path(path) == victim and not touched:
+            touched.append(path)
+            data = bytearray(victim.read_bytes())
+            data[:5] = b"XXXXX"
+            victim.write_bytes(bytes(data))
+        return real_read(self, path, *args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(TextSource, "read", rewriting_read)
+    with pytest.raises(SourceError) as caught:
+        build(recipe, tmp_path / "out", workers=1, progress=False)
+    assert caught.value.exit_code == 3
+    assert str(victim) in str(caught.value) and "changed" in str(caught.value)
+    parts = tmp_path / "out" / ".seqpipe" / "cache" / "parts"
+    metas = [load_part_meta(str(parts.parent), p.name) for p in parts.iterdir() if not p.name.startswith(".")]
+    assert touched and all(m is not None and m.input_index != 0 for m in metas)
