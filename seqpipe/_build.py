@@ -58,6 +58,7 @@ from seqpipe.ingest import (
     fixed16,
     ingest_part,
     load_part_meta,
+    part_intact,
     part_key,
     read_part_docs,
     write_shard_task,
@@ -110,6 +111,10 @@ class BuildResult:
             f"{self.seconds:.2f} s ({mbs:.1f} MB/s); parts reused from cache: "
             f"{self.parts_reused}/{self.parts_total}",
         ]
+        if self.extra.get("parts_damaged"):
+            lines.append(
+                f"cache        {self.extra['parts_damaged']} cached part(s) did not match their hashes and were rebuilt"
+            )
         for name in SPLIT_NAMES:
             sp, st = m["splits"][name], s["splits"][name]
             lines.append(
@@ -295,6 +300,7 @@ class Ingested:
     parts: tuple[PartMeta, ...]
     reused: int  # parts found in the cache
     recount: tuple[int, ...]  # parts their ingest task did not count (reused ones; all with dedupe)
+    damaged: int = 0  # cached parts that failed their hash check and were ingested again
 
 
 @dataclass(frozen=True, slots=True)
@@ -346,7 +352,10 @@ def _build(
     except OutputWriteError:
         shutil.rmtree(stage, ignore_errors=True)  # frees the space; the cache keeps what is whole
         raise
-    return BuildResult(out, manifest, time.perf_counter() - t0, plan.input_bytes, len(plan.tasks), ingested.reused)
+    extra = {"parts_damaged": ingested.damaged} if ingested.damaged else {}
+    return BuildResult(
+        out, manifest, time.perf_counter() - t0, plan.input_bytes, len(plan.tasks), ingested.reused, extra
+    )
 
 
 def check_shard_count(recipe: Recipe, input_bytes: int) -> None:
@@ -428,7 +437,7 @@ def ingest(ctx: Context, plan: Plan, merger: CountMerger) -> Ingested:
     fresh part is counted by its own ingest task while its arrays are in memory (into
     ``merger``); the rest are counted in the count phase."""
     cache = str(ctx.cache)
-    metas = [load_part_meta(cache, t.key) for t in plan.tasks]
+    metas, damaged = _cached_parts(cache, plan)
     todo = [i for i, m in enumerate(metas) if m is None]
     dedupe = _has_dedupe(ctx.recipe)
     threads = ctx.pool.threads.for_ingest(len(todo))
@@ -448,7 +457,20 @@ def ingest(ctx: Context, plan: Plan, merger: CountMerger) -> Ingested:
             "globs and the clean steps (e.g. min_length)"
         )
     recount = tuple(i for i in range(len(plan.tasks)) if i not in counted)
-    return Ingested(parts, len(plan.tasks) - len(todo), recount)
+    return Ingested(parts, len(plan.tasks) - len(todo), recount, damaged)
+
+
+def _cached_parts(cache: str, plan: Plan) -> tuple[list[PartMeta | None], int]:
+    """The metadata of each part found whole in the cache (None for the others), and how many
+    were there but no longer match their hashes (removed, so they are ingested again)."""
+    metas = [load_part_meta(cache, t.key) for t in plan.tasks]
+    damaged = 0
+    for i, meta in enumerate(metas):
+        if meta is not None and not part_intact(cache, meta):
+            shutil.rmtree(Path(cache) / "parts" / meta.key, ignore_errors=True)
+            metas[i] = None
+            damaged += 1
+    return metas, damaged
 
 
 def assign(ctx: Context, plan: Plan) -> Kept:

@@ -32,7 +32,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import xxhash
 
-from seqpipe._hashing import hash_array, hash_json
+from seqpipe._hashing import hash_array, hash_file, hash_json
 from seqpipe._parse import to_plain
 from seqpipe.errors import SeqpipeError, SourceError
 from seqpipe.recipe import Recipe
@@ -106,6 +106,8 @@ class PartMeta:
     read: dict[str, int] = field(default_factory=dict)
     dropped: dict[str, int] = field(default_factory=dict)
     reused: bool = False
+    # XXH3-128 of each file of the cached part, checked before the part is reused
+    files: dict[str, str] | None = None
     # what count_part would return for this part, when the ingest task counted it (not stored)
     counts: tuple[pa.Table, int] | None = field(default=None, compare=False, repr=False)
 
@@ -166,8 +168,23 @@ def _merge_segments(parts: Sequence[Segments]) -> Segments:
     return Segments(enc.dictionary.cast(pa.binary()), codes, lengths)
 
 
+PART_FILES: Final = ("docs.arrow", "keys.arrow", "codes.arrow")
+
+
 def _part_dir(cache_dir: str, key: str) -> Path:
     return Path(cache_dir) / "parts" / key
+
+
+def part_intact(cache_dir: str, meta: PartMeta) -> bool:
+    """Whether every file of a cached part still has the hash it was written with (a part
+    stored without hashes is not trusted)."""
+    if meta.files is None or set(meta.files) != set(PART_FILES):
+        return False
+    part = _part_dir(cache_dir, meta.key)
+    try:
+        return all(hash_file(part / name) == digest for name, digest in meta.files.items())
+    except OSError:
+        return False
 
 
 def load_part_meta(cache_dir: str, key: str) -> PartMeta | None:
@@ -324,6 +341,7 @@ def _store_part(task: IngestTask, docs: pa.Table, keys: pa.Array, codes: pa.Arra
         write_table(tmp / "docs.arrow", docs, durable=False)
         write_table(tmp / "keys.arrow", pa.table({"key": keys}), durable=False)
         write_table(tmp / "codes.arrow", pa.table({"code": codes}), durable=False)
+        meta.files = {name: hash_file(tmp / name) for name in PART_FILES}
         (tmp / "meta.json").write_text(json.dumps(asdict(meta), sort_keys=True))
         fsync_dir(tmp)
         try:

@@ -435,3 +435,25 @@ def test_an_input_changed_before_it_is_read_fails_the_build_and_is_not_cached(
     parts = tmp_path / "out" / ".seqpipe" / "cache" / "parts"
     metas = [load_part_meta(str(parts.parent), p.name) for p in parts.iterdir() if not p.name.startswith(".")]
     assert touched and all(m is not None and m.input_index != 0 for m in metas)
+
+
+def test_a_damaged_cached_part_is_rebuilt_not_trusted(tmp_path: Path) -> None:
+    """A cached part whose file no longer matches the hash it was stored with (here a valid Arrow
+    file with other codes) is ingested again: the rebuild equals the first build, and the
+    summary says how many parts were rebuilt."""
+    import pyarrow as pa
+    from conftest import build_dir, write_project
+
+    from seqpipe.shards import read_table, write_table
+
+    recipe = write_project(tmp_path / "src")
+    out = build_dir(recipe, tmp_path / "out")
+    first = verify(out).fingerprint
+    parts = sorted(p for p in (out / ".seqpipe" / "cache" / "parts").iterdir() if not p.name.startswith("."))
+    codes = read_table(parts[0] / "codes.arrow", memory_map=False).column("code")
+    write_table(parts[0] / "codes.arrow", pa.table({"code": pa.array([0] * len(codes), codes.type)}))
+    result = build(load_recipe(recipe), out, workers=1, progress=False)
+    assert result.fingerprint == first
+    assert result.parts_reused == result.parts_total - 1
+    assert any("1 cached part(s) did not match" in line for line in result.summary_lines())
+    assert verify(out).ok
