@@ -10,7 +10,9 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import signal
 import sys
+import threading
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, Final
@@ -363,17 +365,29 @@ def _add_reading(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p.set_defaults(fn=cmd_decode)
 
 
+class _Terminated(KeyboardInterrupt):
+    """SIGTERM, turned into an interrupt so a build stops the way it does on Ctrl-C."""
+
+
+def _on_sigterm(signum: int, frame: object) -> None:
+    raise _Terminated
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     args = parser().parse_args(argv)
+    in_main = threading.current_thread() is threading.main_thread()
+    previous = signal.signal(signal.SIGTERM, _on_sigterm) if in_main else None
     try:
         code: int = args.fn(args)
         return code
     except SeqpipeError as exc:
         print(f"seqpipe: error: {exc}", file=sys.stderr)
         return exc.exit_code
-    except KeyboardInterrupt:
-        print("seqpipe: interrupted", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        # the shell's convention: 128 + the signal's number
+        terminated = isinstance(exc, _Terminated)
+        print(f"seqpipe: {'terminated' if terminated else 'interrupted'}", file=sys.stderr)
+        return 143 if terminated else 130
     except BrokenPipeError:
         return EXIT_OK
     except OSError as exc:
@@ -388,6 +402,9 @@ def main(argv: Sequence[str] | None = None) -> int:
             file=sys.stderr,
         )
         return EXIT_INTERNAL
+    finally:
+        if in_main:
+            signal.signal(signal.SIGTERM, previous)
 
 
 if __name__ == "__main__":

@@ -87,8 +87,13 @@ def task_pool(executor: Executor | None, workers: int | None) -> Iterator[TaskPo
         if threads == 1:
             yield TaskPool(InlineExecutor())
             return
-        with ThreadPoolExecutor(max_workers=threads) as tpool:
+        tpool = ThreadPoolExecutor(max_workers=threads)
+        try:
             yield TaskPool(tpool, Threads(side_by_side=threads))
+        finally:
+            # on an interrupt or a failed task, tasks still queued are dropped, not run: only
+            # the ones already running are waited for
+            tpool.shutdown(wait=True, cancel_futures=True)
         return
     per_task = max(1, default_workers() // n)
     pool = process_pool(n - 1, threads=per_task)
