@@ -24,6 +24,7 @@ import json
 import os
 import shutil
 import socket
+import time
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager, suppress
 from pathlib import Path
@@ -35,6 +36,7 @@ from seqpipe.manifest import MANIFEST_NAME
 from seqpipe.shards import fsync_dir
 
 PUBLISHING: Final = "publishing.json"
+_HOLDER_READS: Final = 100  # times 10 ms: how long a refused build waits for the holder's PID
 # manifest sections whose paths are not files of the dataset directory
 _NOT_DATASET_PATHS: Final = ("inputs", "recipe")
 
@@ -105,12 +107,17 @@ def check_output(out: Path) -> None:
 
 
 def _holder(fd: int) -> dict[str, Any]:
-    """What the lock file says about its holder (empty while the holder is still writing it)."""
-    try:
-        held = json.loads(os.pread(fd, 4096, 0) or b"{}")
-    except (OSError, ValueError):
-        return {}
-    return held if isinstance(held, dict) else {}
+    """What the lock file says about its holder; the holder writes it right after locking, so
+    an empty file is read again for a moment (empty if it stays so)."""
+    for _ in range(_HOLDER_READS):
+        try:
+            held = json.loads(os.pread(fd, 4096, 0) or b"null")
+        except (OSError, ValueError):
+            held = None
+        if isinstance(held, dict):
+            return held
+        time.sleep(0.01)
+    return {}
 
 
 def _take_lock(lock: Path, out: Path) -> int:
