@@ -168,7 +168,7 @@ def build(
     if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
         raise RecipeError("workers", f"expected a positive integer, got {workers!r}")
     local, remote = _work_directory(out, work_dir, cache_dir)
-    check_output(local)
+    check_output(local, _inside(cache_dir, local))
     local.mkdir(parents=True, exist_ok=True)
     show = enabled(progress)
     with build_lock(local):
@@ -181,6 +181,17 @@ def build(
 
         stats = publish_remote(local, remote, result.manifest, show=show)
     return _uploaded(result, remote, stats, local, t0)
+
+
+def _inside(cache_dir: str | Path | None, local: Path) -> tuple[str, ...]:
+    """The top-level name of ``cache_dir`` within ``local``, when it lies there."""
+    if cache_dir is None:
+        return ()
+    try:
+        rel = Path(cache_dir).resolve().relative_to(local.resolve())
+    except ValueError:
+        return ()
+    return rel.parts[:1]
 
 
 def _work_directory(

@@ -82,14 +82,15 @@ def owned_entries(out: Path) -> set[str] | None:
     return owned | {MANIFEST_NAME}
 
 
-def check_output(out: Path) -> None:
+def check_output(out: Path, also: Sequence[str] = ()) -> None:
     """Refuse to build into ``out`` unless it is new, empty, or holds only an earlier seqpipe
-    dataset (what its manifest lists) and seqpipe's private area."""
+    dataset (what its manifest lists), seqpipe's private area and the names in ``also`` (a
+    parts cache the caller keeps inside ``out``)."""
     if not out.exists() and not out.is_symlink():
         return
     if not out.is_dir():
         raise DatasetError(f"{out}: exists and is not a directory; choose another output directory")
-    present = {p.name for p in out.iterdir()} - {PRIVATE}
+    present = {p.name for p in out.iterdir()} - {PRIVATE, *also}
     owned = owned_entries(out)
     if owned is None:
         raise DatasetError(

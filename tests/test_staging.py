@@ -199,3 +199,17 @@ def test_output_check_allows_new_empty_and_earlier_datasets_only(tmp_path: Path)
     (ds / "manifest.json").write_text(json.dumps({"format": "other-tool/3"}))
     with pytest.raises(DatasetError, match="not a seqpipe manifest"):
         check_output(ds)
+
+
+def test_a_parts_cache_kept_inside_the_output_directory_is_not_in_the_way(tmp_path: Path) -> None:
+    """A build whose --cache lies inside its output directory can be run again: the cache's
+    folder is not taken for a stranger's file."""
+    from conftest import build_dir, write_project
+
+    recipe = write_project(tmp_path / "src")
+    out = tmp_path / "out"
+    build_dir(recipe, out, cache_dir=out / "parts-cache")
+    build_dir(recipe, out, cache_dir=out / "parts-cache")
+    assert (out / "manifest.json").exists()
+    with pytest.raises(DatasetError, match="parts-cache"):
+        check_output(out)
