@@ -44,7 +44,7 @@ from seqpipe._hashing import hash_file, hash_json
 from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
 from seqpipe._runner import View, run, run_beside
 from seqpipe.counts import CountMerger, first_occurrence
-from seqpipe.errors import EmptyCorpusError, RecipeError, SourceMissingError
+from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SourceMissingError
 from seqpipe.executors import TaskPool, task_pool
 from seqpipe.formats import DOCS_DIR, OPTIONAL_TOP, SHARDS_DIR, VOCAB_FILE
 from seqpipe.ingest import (
@@ -58,21 +58,27 @@ from seqpipe.ingest import (
     fixed16,
     ingest_part,
     load_part_meta,
+    part_intact,
     part_key,
     read_part_docs,
     write_shard_task,
 )
-from seqpipe.manifest import FORMAT, MANIFEST_NAME, dumps, seal
+from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype
-from seqpipe.staging import build_lock, private_dir, publish
+from seqpipe.staging import build_lock, check_output, private_dir, publish
 
 if TYPE_CHECKING:
     from seqpipe.storage import UriStore
     from seqpipe.transfer import PublishStats
 
 PART_BYTES: Final = 16 << 20
+# For the shard-count check before a build starts: no tokenizer gives fewer tokens per input
+# byte than one per this many bytes on text (words average under 8 bytes with their space),
+# and one shard's manifest entry takes about this many bytes (path, counts, two hashes).
+BYTES_PER_TOKEN_AT_MOST: Final = 8
+SHARD_ENTRY_BYTES: Final = 250
 
 
 @dataclass
@@ -106,6 +112,10 @@ class BuildResult:
             f"{self.seconds:.2f} s ({mbs:.1f} MB/s); parts reused from cache: "
             f"{self.parts_reused}/{self.parts_total}",
         ]
+        if self.extra.get("parts_damaged"):
+            lines.append(
+                f"cache        {self.extra['parts_damaged']} cached part(s) did not match their hashes and were rebuilt"
+            )
         for name in SPLIT_NAMES:
             sp, st = m["splits"][name], s["splits"][name]
             lines.append(
@@ -159,6 +169,7 @@ def build(
     if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
         raise RecipeError("workers", f"expected a positive integer, got {workers!r}")
     local, remote = _work_directory(out, work_dir, cache_dir)
+    check_output(local, _inside(cache_dir, local))
     local.mkdir(parents=True, exist_ok=True)
     show = enabled(progress)
     with build_lock(local):
@@ -171,6 +182,17 @@ def build(
 
         stats = publish_remote(local, remote, result.manifest, show=show)
     return _uploaded(result, remote, stats, local, t0)
+
+
+def _inside(cache_dir: str | Path | None, local: Path) -> tuple[str, ...]:
+    """The top-level name of ``cache_dir`` within ``local``, when it lies there."""
+    if cache_dir is None:
+        return ()
+    try:
+        rel = Path(cache_dir).resolve().relative_to(local.resolve())
+    except ValueError:
+        return ()
+    return rel.parts[:1]
 
 
 def _work_directory(
@@ -223,7 +245,7 @@ def _uploaded(result: BuildResult, remote: UriStore, stats: PublishStats, local:
     return dataclasses.replace(result, directory=remote.location, seconds=time.perf_counter() - t0, extra=extra)
 
 
-def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[str]:
+def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[tuple[str, tuple[int, ...] | None]]:
     """XXH3-128 of each input, reusing a stored hash while its change stamp is unchanged:
     (size, mtime, inode) for a local file, (size, mtime) for a URI; a URI whose filesystem
     reports no mtime has no stamp and is hashed on every build."""
@@ -234,19 +256,23 @@ def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[str]:
         index: dict[str, Any] = json.loads(index_path.read_text())
     except (OSError, ValueError):
         index = {}
-    out = []
+    out: list[tuple[str, tuple[int, ...] | None]] = []
     changed = False
     for f in files:
         stamp = change_stamp(f)
         rec = index.get(str(f))
         if stamp is not None and rec and rec.get("stamp") == stamp:
-            out.append(rec["hash"])
+            out.append((rec["hash"], tuple(stamp)))
             continue
         h = hash_file(f)
+        if stamp is not None and change_stamp(f) != stamp:
+            # changed while hashed: keep the stamp from before, so reading it is refused
+            out.append((h, tuple(stamp)))
+            continue
         if stamp is not None:
             index[str(f)] = {"stamp": stamp, "hash": h}
             changed = True
-        out.append(h)
+        out.append((h, None if stamp is None else tuple(stamp)))
     if changed:
         cache.mkdir(parents=True, exist_ok=True)
         tmp = index_path.with_suffix(".tmp")
@@ -286,6 +312,7 @@ class Ingested:
     parts: tuple[PartMeta, ...]
     reused: int  # parts found in the cache
     recount: tuple[int, ...]  # parts their ingest task did not count (reused ones; all with dedupe)
+    damaged: int = 0  # cached parts that failed their hash check and were ingested again
 
 
 @dataclass(frozen=True, slots=True)
@@ -322,17 +349,40 @@ def _build(
     """The phases in order, each handing the next what it needs."""
     ctx = Context(recipe, pool, cache, show)
     plan = plan_build(recipe, cache, part_bytes)
+    check_shard_count(recipe, plan.input_bytes)
     stage = _fresh_stage(out, plan.build_key[:16])
-    merger = CountMerger()  # parts counted by their ingest task arrive first, the others in count
-    ingested = ingest(ctx, plan, merger)
-    kept = assign(ctx, plan)
-    counts = count(ctx, plan, ingested, kept, merger)
-    fitted = fit(recipe, counts, stage)
-    encoded = encode(ctx, plan, kept, fitted, stage)
-    sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage), stage)
-    manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage))
-    publish_dataset(out, stage, manifest, fitted)
-    return BuildResult(out, manifest, time.perf_counter() - t0, plan.input_bytes, len(plan.tasks), ingested.reused)
+    try:
+        merger = CountMerger()  # parts counted by their ingest task arrive first, the others in count
+        ingested = ingest(ctx, plan, merger)
+        kept = assign(ctx, plan)
+        counts = count(ctx, plan, ingested, kept, merger)
+        fitted = fit(recipe, counts, stage)
+        encoded = encode(ctx, plan, kept, fitted, stage)
+        sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage), stage)
+        manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage))
+        publish_dataset(out, stage, manifest, fitted)
+    except OutputWriteError:
+        shutil.rmtree(stage, ignore_errors=True)  # frees the space; the cache keeps what is whole
+        raise
+    extra = {"parts_damaged": ingested.damaged} if ingested.damaged else {}
+    return BuildResult(
+        out, manifest, time.perf_counter() - t0, plan.input_bytes, len(plan.tasks), ingested.reused, extra
+    )
+
+
+def check_shard_count(recipe: Recipe, input_bytes: int) -> None:
+    """Refuse, before any work, a build whose shard entries alone would make a manifest larger
+    than readers accept, estimating its tokens low (so only a hopeless build is refused)."""
+    tokens = input_bytes // BYTES_PER_TOKEN_AT_MOST
+    shards = -(-tokens // recipe.shards.tokens)
+    if shards * SHARD_ENTRY_BYTES > MAX_MANIFEST_BYTES:
+        least = -(-tokens * SHARD_ENTRY_BYTES // MAX_MANIFEST_BYTES)
+        raise RecipeError(
+            "shards.tokens",
+            f"{recipe.shards.tokens} tokens per shard gives at least {shards} shards for these "
+            f"{input_bytes} input bytes, more than a manifest readers accept "
+            f"({MAX_MANIFEST_BYTES} bytes) can list; raise shards.tokens (to {least} or more)",
+        )
 
 
 def _input_files(recipe: Recipe) -> list[tuple[int, Path | str]]:
@@ -357,7 +407,8 @@ def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
     from seqpipe.filesystem import file_size, is_uri
 
     files = _input_files(recipe)
-    hashes = _input_hashes([f for _, f in files], cache)
+    hashed = _input_hashes([f for _, f in files], cache)
+    hashes = [h for h, _ in hashed]
     sizes = [file_size(f) for _, f in files]
     # a URI input is recorded as the URI; a local one relative to the recipe's directory
     inputs = tuple(
@@ -369,7 +420,8 @@ def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
     for ii, ((si, f), h) in enumerate(zip(files, hashes, strict=True)):
         parts = recipe.sources[si].plan(f, part_bytes)
         for part in parts:
-            tasks.append(IngestTask(recipe, si, ii, str(f), part, part_key(recipe, si, h, part), str(cache)))
+            key = part_key(recipe, si, h, part)
+            tasks.append(IngestTask(recipe, si, ii, str(f), part, key, str(cache), stamp=hashed[ii][1]))
             weights.append(sizes[ii] // max(len(parts), 1))
     build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes})
     return Plan(inputs, tuple(tasks), tuple(weights), sum(sizes), build_key)
@@ -397,7 +449,7 @@ def ingest(ctx: Context, plan: Plan, merger: CountMerger) -> Ingested:
     fresh part is counted by its own ingest task while its arrays are in memory (into
     ``merger``); the rest are counted in the count phase."""
     cache = str(ctx.cache)
-    metas = [load_part_meta(cache, t.key) for t in plan.tasks]
+    metas, damaged = _cached_parts(cache, plan)
     todo = [i for i, m in enumerate(metas) if m is None]
     dedupe = _has_dedupe(ctx.recipe)
     threads = ctx.pool.threads.for_ingest(len(todo))
@@ -417,7 +469,20 @@ def ingest(ctx: Context, plan: Plan, merger: CountMerger) -> Ingested:
             "globs and the clean steps (e.g. min_length)"
         )
     recount = tuple(i for i in range(len(plan.tasks)) if i not in counted)
-    return Ingested(parts, len(plan.tasks) - len(todo), recount)
+    return Ingested(parts, len(plan.tasks) - len(todo), recount, damaged)
+
+
+def _cached_parts(cache: str, plan: Plan) -> tuple[list[PartMeta | None], int]:
+    """The metadata of each part found whole in the cache (None for the others), and how many
+    were there but no longer match their hashes (removed, so they are ingested again)."""
+    metas = [load_part_meta(cache, t.key) for t in plan.tasks]
+    damaged = 0
+    for i, meta in enumerate(metas):
+        if meta is not None and not part_intact(cache, meta):
+            shutil.rmtree(Path(cache) / "parts" / meta.key, ignore_errors=True)
+            metas[i] = None
+            damaged += 1
+    return metas, damaged
 
 
 def assign(ctx: Context, plan: Plan) -> Kept:
@@ -526,11 +591,19 @@ def _manifest_body(
 
 def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fitted) -> None:
     """Write the manifest into the stage and move everything into ``out``, the manifest last."""
-    (stage / MANIFEST_NAME).write_text(dumps(manifest))
+    text = dumps(manifest)
+    if len(text.encode()) > MAX_MANIFEST_BYTES:
+        raise RecipeError(
+            "shards.tokens",
+            f"the manifest would be {len(text.encode())} bytes, over the {MAX_MANIFEST_BYTES} bytes "
+            "readers accept; raise shards.tokens so there are fewer shards",
+        )
+    try:
+        (stage / MANIFEST_NAME).write_text(text)
+    except OSError as exc:
+        raise OutputWriteError(f"{stage / MANIFEST_NAME}: cannot write it ({exc})", path=str(stage)) from exc
     entries = [VOCAB_FILE, *fitted.files, DOCS_DIR, SHARDS_DIR]
-    for gone in OPTIONAL_TOP:
-        if gone not in entries and (out / gone).exists():
-            (out / gone).unlink()
+    # old entries the new build lacks (tokenizer.arrow) go in publish, after the old manifest
     publish(out, stage, entries, MANIFEST_NAME)
     shutil.rmtree(stage, ignore_errors=True)
 

@@ -13,7 +13,9 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import signal
 import sys
+import threading
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, Final
@@ -30,10 +32,9 @@ def _print_json(obj: Any) -> None:
 def cmd_build(args: argparse.Namespace) -> int:
     from contextlib import nullcontext
 
-    from seqpipe.executors import TaskPool, interrupt_on_terminate, keep_freed_memory, task_pool
+    from seqpipe.executors import TaskPool, keep_freed_memory, task_pool
 
     keep_freed_memory()  # this process is ours: reuse freed arrays' pages (see executors.py)
-    interrupt_on_terminate()  # SIGTERM unwinds like Ctrl-C: pool shut down, lock released
     # --workers N > 1: start the spawned workers first, so their start-up (an interpreter and
     # the numpy, pyarrow and seqpipe imports) runs while this process imports the same modules
     # and reads the recipe, instead of after the build has begun
@@ -479,17 +480,29 @@ def _add_tokenizer(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p.set_defaults(fn=cmd_decode)
 
 
+class _Terminated(KeyboardInterrupt):
+    """SIGTERM, turned into an interrupt so a build stops the way it does on Ctrl-C."""
+
+
+def _on_sigterm(signum: int, frame: object) -> None:
+    raise _Terminated
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     args = parser().parse_args(argv)
+    in_main = threading.current_thread() is threading.main_thread()
+    previous = signal.signal(signal.SIGTERM, _on_sigterm) if in_main else None
     try:
         code: int = args.fn(args)
         return code
     except SeqpipeError as exc:
         print(f"seqpipe: error: {exc}", file=sys.stderr)
         return exc.exit_code
-    except KeyboardInterrupt:
-        print("seqpipe: interrupted", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        # the shell's convention: 128 + the signal's number
+        terminated = isinstance(exc, _Terminated)
+        print(f"seqpipe: {'terminated' if terminated else 'interrupted'}", file=sys.stderr)
+        return 143 if terminated else 130
     except BrokenPipeError:
         return EXIT_OK
     except OSError as exc:
@@ -504,6 +517,9 @@ def main(argv: Sequence[str] | None = None) -> int:
             file=sys.stderr,
         )
         return EXIT_INTERNAL
+    finally:
+        if in_main:
+            signal.signal(signal.SIGTERM, previous)
 
 
 if __name__ == "__main__":

@@ -20,6 +20,7 @@ already catch ``ValueError`` or ``FileNotFoundError`` keep working::
     ├── IntegrityError                       ``verify`` found problems (carries the list)
     ├── BuildLockedError(RuntimeError)       another build holds the output directory
     ├── WorkerError(RuntimeError)            a build worker process died (no result, no Python error)
+    ├── OutputWriteError(OSError)            a file of the build cannot be written (disk full)
     └── StreamError(ValueError)              bad batch-stream parameters or resume state
 
 Every class has an ``exit_code`` that the CLI uses (see README, "Exit codes").
@@ -142,6 +143,12 @@ class WorkerError(SeqpipeError, RuntimeError):
     script that starts a multi-process build without an ``if __name__ == "__main__":`` guard)."""
 
     exit_code = EXIT_WORKER
+
+
+class OutputWriteError(SeqpipeError, OSError):
+    """A file the build writes cannot be written (no space left, no permission); ``path`` names it."""
+
+    exit_code = EXIT_DATASET
 
 
 class StreamError(SeqpipeError, ValueError):

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import multiprocessing
 import os
-import signal
 import threading
 import time
 from collections import deque
@@ -89,8 +88,13 @@ def task_pool(executor: Executor | None, workers: int | None) -> Iterator[TaskPo
         if threads == 1:
             yield TaskPool(InlineExecutor())
             return
-        with ThreadPoolExecutor(max_workers=threads) as tpool:
+        tpool = ThreadPoolExecutor(max_workers=threads)
+        try:
             yield TaskPool(tpool, Threads(side_by_side=threads))
+        finally:
+            # on an interrupt or a failed task, tasks still queued are dropped, not run: only
+            # the ones already running are waited for
+            tpool.shutdown(wait=True, cancel_futures=True)
         return
     per_task = max(1, default_workers() // n)
     pool = process_pool(n - 1, threads=per_task)
@@ -168,18 +172,6 @@ def _exit_with_parent(parent: int) -> None:
     while os.getppid() == parent:
         time.sleep(_PARENT_POLL_SECONDS)
     os._exit(1)  # nobody is left to take a result; skip cleanup that could block on the dead parent
-
-
-def interrupt_on_terminate() -> None:
-    """Make SIGTERM raise KeyboardInterrupt in the main thread, so a terminated command cleans up
-    (shuts its pool down, releases the build lock) the way Ctrl-C does. For seqpipe's own
-    command line only: a library never changes its caller's signal handlers."""
-    if threading.current_thread() is threading.main_thread():
-        signal.signal(signal.SIGTERM, _raise_interrupt)
-
-
-def _raise_interrupt(signum: int, frame: object) -> None:
-    raise KeyboardInterrupt
 
 
 def keep_freed_memory() -> bool:

@@ -32,9 +32,9 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import xxhash
 
-from seqpipe._hashing import hash_array, hash_json
+from seqpipe._hashing import hash_array, hash_file, hash_json
 from seqpipe._parse import to_plain
-from seqpipe.errors import SeqpipeError
+from seqpipe.errors import SeqpipeError, SourceError
 from seqpipe.recipe import Recipe
 from seqpipe.shards import fsync_dir, id_dtype, read_shard, read_table, write_shard, write_table
 from seqpipe.splits import assign_splits
@@ -90,6 +90,9 @@ class IngestTask:
     # corpus position of the part: when set (no dedupe step, so every document is kept), the
     # task also counts the part's train pieces while they are in memory (see PartMeta.counts)
     count_order: int | None = None
+    # the input's change stamp when its hash was taken (filesystem.change_stamp); a part read
+    # while the stamp differs is refused, never cached
+    stamp: tuple[int, ...] | None = None
 
 
 @dataclass
@@ -103,6 +106,8 @@ class PartMeta:
     read: dict[str, int] = field(default_factory=dict)
     dropped: dict[str, int] = field(default_factory=dict)
     reused: bool = False
+    # XXH3-128 of each file of the cached part, checked before the part is reused
+    files: dict[str, str] | None = None
     # what count_part would return for this part, when the ingest task counted it (not stored)
     counts: tuple[pa.Table, int] | None = field(default=None, compare=False, repr=False)
 
@@ -163,8 +168,23 @@ def _merge_segments(parts: Sequence[Segments]) -> Segments:
     return Segments(enc.dictionary.cast(pa.binary()), codes, lengths)
 
 
+PART_FILES: Final = ("docs.arrow", "keys.arrow", "codes.arrow")
+
+
 def _part_dir(cache_dir: str, key: str) -> Path:
     return Path(cache_dir) / "parts" / key
+
+
+def part_intact(cache_dir: str, meta: PartMeta) -> bool:
+    """Whether every file of a cached part still has the hash it was written with (a part
+    stored without hashes is not trusted)."""
+    if meta.files is None or set(meta.files) != set(PART_FILES):
+        return False
+    part = _part_dir(cache_dir, meta.key)
+    try:
+        return all(hash_file(part / name) == digest for name, digest in meta.files.items())
+    except OSError:
+        return False
 
 
 def load_part_meta(cache_dir: str, key: str) -> PartMeta | None:
@@ -288,10 +308,27 @@ def ingest_part(task: IngestTask) -> PartMeta:
         read={k: int(v) for k, v in asdict(stats).items()},
         dropped=got.dropped,
     )
+    _check_unchanged(task)
     _store_part(task, _docs_table(recipe, got), keys, _stored_codes(seg.codes, len(keys)), meta)
     if task.count_order is not None:
         meta.counts = _count(recipe, got.columns["hash"], seg.doc_lengths, keys, seg.codes, None, task.count_order)
     return meta
+
+
+def _check_unchanged(task: IngestTask) -> None:
+    """Refuse a part whose input changed since its hash was taken: what was read may not be
+    what the hash (and so the manifest and the cache key) says."""
+    from seqpipe.filesystem import change_stamp
+
+    if task.stamp is None:
+        return
+    now = change_stamp(task.path)
+    if now is None or tuple(now) != task.stamp:
+        raise SourceError(
+            task.path,
+            "changed while the build was reading it (size or modification time differ from when it "
+            "was hashed); run the build again once the file no longer changes",
+        )
 
 
 def _store_part(task: IngestTask, docs: pa.Table, keys: pa.Array, codes: pa.Array, meta: PartMeta) -> None:
@@ -304,6 +341,7 @@ def _store_part(task: IngestTask, docs: pa.Table, keys: pa.Array, codes: pa.Arra
         write_table(tmp / "docs.arrow", docs, durable=False)
         write_table(tmp / "keys.arrow", pa.table({"key": keys}), durable=False)
         write_table(tmp / "codes.arrow", pa.table({"code": codes}), durable=False)
+        meta.files = {name: hash_file(tmp / name) for name in PART_FILES}
         (tmp / "meta.json").write_text(json.dumps(asdict(meta), sort_keys=True))
         fsync_dir(tmp)
         try:

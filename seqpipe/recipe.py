@@ -54,6 +54,10 @@ class DatasetSpec:
 
     def __post_init__(self) -> None:
         parse_str("name", self.name)
+        # the name is the default output directory: it must be one new directory, never
+        # the current one, its parent or a path elsewhere
+        if self.name in (".", "..") or "/" in self.name or "\\" in self.name:
+            raise RecipeError("dataset.name", f"expected a plain directory name, got {self.name!r}")
 
 
 @dataclass(frozen=True, slots=True)

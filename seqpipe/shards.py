@@ -19,7 +19,7 @@ import numpy as np
 import pyarrow as pa
 
 from seqpipe._hashing import hash_array
-from seqpipe.errors import ShardCorruptError, ShardMissingError
+from seqpipe.errors import OutputWriteError, SeqpipeError, ShardCorruptError, ShardMissingError
 
 SHARD_FORMAT: Final = "seqpipe.shard/2"
 ARROW_MAGIC: Final = b"ARROW1"
@@ -67,6 +67,14 @@ def _atomic(path: Path, durable: bool = True) -> Iterator[Path]:
             with open(tmp, "rb+") as fh:
                 os.fsync(fh.fileno())
         os.replace(tmp, path)
+    except OSError as exc:
+        if isinstance(exc, SeqpipeError):  # a reader's error (a missing input), not this write's
+            raise
+        raise OutputWriteError(
+            f"{path}: cannot write it ({exc}); free space (or fix permissions) there and run the build "
+            "again: it resumes",
+            path=str(path),
+        ) from exc
     finally:
         if tmp.exists():
             tmp.unlink()

@@ -17,7 +17,7 @@ from seqpipe import build
 from seqpipe._verify import verify
 from seqpipe.cli import main
 from seqpipe.dataset import open_dataset
-from seqpipe.errors import EmptyCorpusError, InvalidUtf8Error, SourceMissingError
+from seqpipe.errors import EmptyCorpusError, InvalidUtf8Error, SourceError, SourceMissingError
 from seqpipe.recipe import load_recipe, parse_recipe
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
@@ -345,3 +345,119 @@ def test_a_part_with_more_distinct_words_than_two_byte_codes_hold(tmp_path: Path
         for t in ds.vocabulary.tokens_for(ds.split(name).stream.slice(0, ds.split(name).num_tokens))
     ]
     assert sorted(got) == sorted(few.split())
+
+
+def test_a_full_disk_names_the_file_and_leaves_the_old_dataset_and_no_staging_files(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A write failing with ENOSPC (simulated at the first fsync of a file) stops the build with
+    OutputWriteError naming that file; the old dataset still verifies and no staging or
+    temporary file is left in the output directory."""
+    import errno
+
+    from conftest import build_dir, write_project
+
+    from seqpipe import shards
+    from seqpipe.errors import OutputWriteError
+
+    recipe = write_project(tmp_path / "src")
+    out = build_dir(recipe, tmp_path / "out")
+    old = verify(out).fingerprint
+    recipe.write_text(recipe.read_text().replace("tokens = 300", "tokens = 500"))
+
+    class FullDisk:
+        def __getattr__(self, name: str) -> object:
+            return getattr(os, name)
+
+        def fsync(self, fd: int) -> None:
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(shards, "os", FullDisk())
+    with pytest.raises(OutputWriteError) as caught:
+        build(load_recipe(recipe), out, workers=1, progress=False)
+    assert caught.value.exit_code == 4
+    assert str(out) in str(caught.value) and ".arrow" in str(caught.value)
+    assert "No space left" in str(caught.value)
+    monkeypatch.undo()
+    report = verify(out)
+    assert report.ok and report.fingerprint == old, report.problems
+    stage = out / ".seqpipe" / "stage"
+    assert not stage.exists() or not any(stage.iterdir())
+    assert not [p for p in out.rglob("*") if p.name.endswith(".tmp")]
+
+
+def test_a_build_with_far_too_many_shards_is_refused_before_it_starts(tmp_path: Path) -> None:
+    """shards.tokens = 1 over a few megabytes would list more shards than a manifest readers
+    accept can hold: the CLI refuses it with exit code 2 naming shards.tokens, writing nothing."""
+    from conftest import run_cli
+
+    src = tmp_path / "src"
+    (src / "logs").mkdir(parents=True)
+    line = "the evening ferry left the north pier with nine cars and a bicycle\n"
+    (src / "logs" / "big.txt").write_text(line * (3_000_000 // len(line)))
+    (src / "recipe.toml").write_text(
+        '[dataset]\nname = "big"\n[[sources]]\nkind = "text"\npaths = "logs/*.txt"\ndocument = "line"\n'
+        '[tokenizer]\nkind = "words"\n[shards]\ntokens = 1\n'
+    )
+    out = tmp_path / "out"
+    proc = run_cli(["build", str(src / "recipe.toml"), "-o", str(out), "--workers", "1", "--quiet"], timeout=90)
+    assert proc.returncode == 2, proc.stderr
+    assert "shards.tokens" in proc.stderr and "Traceback" not in proc.stderr
+    assert not (out / ".seqpipe" / "stage").exists() or not any((out / ".seqpipe" / "stage").iterdir())
+
+
+def test_an_input_changed_before_it_is_read_fails_the_build_and_is_not_cached(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """An input rewritten (same size) between being hashed and being read would give data that
+    does not match its recorded hash: the build fails with exit code 3 naming the file, and no
+    part of that file is cached."""
+    from conftest import write_project
+
+    from seqpipe.ingest import load_part_meta
+    from seqpipe.sources.text import TextSource
+
+    recipe_path = write_project(tmp_path / "src")
+    recipe = load_recipe(recipe_path)
+    victim = sorted((tmp_path / "src").rglob("*.txt"))[0]
+    real_read = TextSource.read
+    touched: list[str] = []
+
+    def rewriting_read(self: TextSource, path: str, *args: object, **kwargs: object) -> object:
+        if Path(path) == victim and not touched:
+            touched.append(path)
+            data = bytearray(victim.read_bytes())
+            data[:5] = b"XXXXX"
+            victim.write_bytes(bytes(data))
+        return real_read(self, path, *args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(TextSource, "read", rewriting_read)
+    with pytest.raises(SourceError) as caught:
+        build(recipe, tmp_path / "out", workers=1, progress=False)
+    assert caught.value.exit_code == 3
+    assert str(victim) in str(caught.value) and "changed" in str(caught.value)
+    parts = tmp_path / "out" / ".seqpipe" / "cache" / "parts"
+    metas = [load_part_meta(str(parts.parent), p.name) for p in parts.iterdir() if not p.name.startswith(".")]
+    assert touched and all(m is not None and m.input_index != 0 for m in metas)
+
+
+def test_a_damaged_cached_part_is_rebuilt_not_trusted(tmp_path: Path) -> None:
+    """A cached part whose file no longer matches the hash it was stored with (here a valid Arrow
+    file with other codes) is ingested again: the rebuild equals the first build, and the
+    summary says how many parts were rebuilt."""
+    import pyarrow as pa
+    from conftest import build_dir, write_project
+
+    from seqpipe.shards import read_table, write_table
+
+    recipe = write_project(tmp_path / "src")
+    out = build_dir(recipe, tmp_path / "out")
+    first = verify(out).fingerprint
+    parts = sorted(p for p in (out / ".seqpipe" / "cache" / "parts").iterdir() if not p.name.startswith("."))
+    codes = read_table(parts[0] / "codes.arrow", memory_map=False).column("code")
+    write_table(parts[0] / "codes.arrow", pa.table({"code": pa.array([0] * len(codes), codes.type)}))
+    result = build(load_recipe(recipe), out, workers=1, progress=False)
+    assert result.fingerprint == first
+    assert result.parts_reused == result.parts_total - 1
+    assert any("1 cached part(s) did not match" in line for line in result.summary_lines())
+    assert verify(out).ok

@@ -136,24 +136,34 @@ def test_stale_lock_is_taken_over(built_dataset: Path, project: Path) -> None:
     assert not lock.exists()
 
 
-@pytest.mark.parametrize("holder", ["live-process", "other-host"])
-def test_live_or_foreign_lock_is_respected(built_dataset: Path, project: Path, holder: str) -> None:
-    """A lock held by a running process, or by any process on another host (whose liveness this
-    host cannot check), makes the build exit 5 and leaves the dataset and the lock as they were."""
+HOLDER = r"""
+import sys, time
+from pathlib import Path
+from seqpipe.staging import build_lock
+with build_lock(Path(sys.argv[1])):
+    print("held", flush=True)
+    time.sleep(60)
+"""
+
+
+def test_a_held_lock_is_respected(built_dataset: Path, project: Path) -> None:
+    """A lock held by a running build process makes another build exit 5 naming the holder's PID,
+    and leaves the dataset and the lock as they were."""
     before = (built_dataset / MANIFEST_NAME).read_bytes()
-    sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    holder = subprocess.Popen(
+        [sys.executable, "-c", HOLDER, str(built_dataset)], stdout=subprocess.PIPE, text=True, cwd=REPO
+    )
     try:
-        pid, host = (
-            (sleeper.pid, socket.gethostname()) if holder == "live-process" else (_dead_pid(), "elsewhere.invalid")
-        )
-        lock = _write_lock(built_dataset, pid, host)
+        assert holder.stdout is not None and holder.stdout.readline().strip() == "held"
         proc = run_cli(build_args(project, built_dataset))
+        lock_there = (built_dataset / PRIVATE / "lock").exists()
     finally:
-        sleeper.kill()
-        sleeper.wait()
+        holder.kill()
+        holder.communicate()
     assert proc.returncode == EXIT_LOCKED, proc.stderr
-    assert f"pid {pid}" in proc.stderr and host in proc.stderr and "Traceback" not in proc.stderr
-    assert lock.exists() and (built_dataset / MANIFEST_NAME).read_bytes() == before
+    assert f"pid {holder.pid}" in proc.stderr and socket.gethostname() in proc.stderr
+    assert "Traceback" not in proc.stderr
+    assert lock_there and (built_dataset / MANIFEST_NAME).read_bytes() == before
 
 
 # -- committed manifests -----------------------------------------------------------------------------

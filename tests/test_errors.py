@@ -89,6 +89,7 @@ EXIT_CODES = {
     "UnsafePathError": 4,
     "ShardMissingError": 4,
     "ShardCorruptError": 4,
+    "OutputWriteError": 4,
     "BuildLockedError": 5,
     "WorkerError": 6,
 }

@@ -201,3 +201,11 @@ def test_default_reserved_order_puts_padding_at_id_0() -> None:
     """The default reserved tokens start with padding, so zero-filled id arrays are padding."""
     r = parse_recipe(GOOD)
     assert r.vocabulary.reserved.index(r.vocabulary.padding) == 0
+
+
+@pytest.mark.parametrize("name", [".", "..", "a/b", "../elsewhere", "a\\b"])
+def test_dataset_name_must_be_one_plain_directory_name(name: str) -> None:
+    """dataset.name is the default output directory: '.', '..' and names with a path separator
+    are refused, so a build never defaults into the current directory or outside it."""
+    with pytest.raises(RecipeError, match=r"dataset\.name"):
+        parse_recipe(GOOD.replace('name = "ferry"', f"name = '{name}'"))

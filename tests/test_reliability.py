@@ -173,11 +173,20 @@ class _Os:
         os.rename(src, dst)
         if point == "after-rename" and calls[0] == n:
             os.kill(os.getpid(), signal.SIGKILL)
-    def link(self, *args, **kwargs):
-        os.link(*args, **kwargs)
+    def write(self, *args, **kwargs):
+        written = os.write(*args, **kwargs)
         if point == "lock-created":
             os.kill(os.getpid(), signal.SIGKILL)
+        return written
 staging.os = _Os()
+if point == "manifest-unlink":
+    import pathlib
+    real_unlink = pathlib.Path.unlink
+    def unlink(self, *args, **kwargs):
+        if self.name == "manifest.json" and self.parent.name != "stage":
+            os.kill(os.getpid(), signal.SIGKILL)
+        real_unlink(self, *args, **kwargs)
+    pathlib.Path.unlink = unlink
 from seqpipe.cli import main
 sys.exit(main(sys.argv[3:]))
 """
@@ -238,6 +247,28 @@ def test_kill_at_publish_steps(small_setup: dict[str, Any]) -> None:
     assert run_child("after-rename", renames, s["recipe"], out) == -signal.SIGKILL
     assert check_after_kill(out, {s["reference_fingerprint"]})  # manifest in place: new dataset complete
     rerun_and_check(s["recipe"], out, s["reference_fingerprint"])
+
+
+def test_nothing_the_old_manifest_lists_changes_before_it_is_gone(small_setup: dict[str, Any]) -> None:
+    """A build without tokenizer.arrow over an older dataset with one, killed as it deletes the
+    old manifest, leaves the old dataset complete: its tokenizer.arrow was not removed first."""
+    s = small_setup
+    bpe_recipe = s["root"] / "src" / "bpe.toml"
+    bpe_recipe.write_text(
+        s["recipe"]
+        .read_text()
+        .replace('kind = "words"', 'kind = "bpe"')
+        .replace("[shards]", "[vocabulary]\ncap = 300\n[shards]")
+    )
+    out = build_dir(bpe_recipe, s["root"] / "old-bpe")
+    assert (out / "tokenizer.arrow").exists()
+    old = fingerprint_of(out)
+    assert run_child("manifest-unlink", 0, s["recipe"], out) == -signal.SIGKILL
+    report = verify(out)
+    assert report.ok, report.problems
+    assert report.fingerprint == old
+    rerun_and_check(s["recipe"], out, s["reference_fingerprint"])
+    assert not (out / "tokenizer.arrow").exists()
 
 
 def test_kill_while_creating_lock_does_not_block_later_builds(small_setup: dict[str, Any]) -> None:
@@ -510,3 +541,45 @@ def test_cli_bad_input_exit_code_and_no_traceback(case: str, tmp_path: Path) -> 
     assert proc.returncode == code, (proc.returncode, proc.stdout, proc.stderr)
     assert "Traceback" not in proc.stderr and "internal error" not in proc.stderr, proc.stderr
     assert needle in proc.stdout + proc.stderr, (proc.stdout, proc.stderr)
+
+
+# -- interrupts ---------------------------------------------------------------------------------------
+@pytest.mark.parametrize(("signum", "code"), [(signal.SIGINT, 130), (signal.SIGTERM, 143)])
+def test_an_interrupted_build_stops_early_keeps_the_old_dataset_and_resumes(
+    tmp_path: Path, signum: signal.Signals, code: int
+) -> None:
+    """Ctrl-C (SIGINT) or SIGTERM in the middle of ingesting a default build (tasks on threads)
+    drops the queued tasks instead of running them all, exits 130 / 143, leaves the old dataset
+    complete, and the same command run again completes with the uninterrupted fingerprint."""
+    import os
+
+    recipe = write_project(tmp_path / "src", files=30, paragraphs=200, shard_tokens=4000)
+    old_recipe = tmp_path / "src" / "old.toml"
+    old_recipe.write_text(recipe.read_text().replace("tokens = 4000", "tokens = 9000"))
+    out = build_dir(old_recipe, tmp_path / "out", cache_dir=tmp_path / "old-cache")  # out's cache stays empty
+    old = fingerprint_of(out)
+    parts = out / PRIVATE / "cache" / "parts"
+    env = {k: v for k, v in os.environ.items() if k != "SEQPIPE_DEBUG"}
+    env["SEQPIPE_TASK_THREADS"] = "2"  # tasks side by side on threads, as on a two-core machine
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "seqpipe.cli", "build", str(recipe), "-o", str(out), "--quiet"],
+        cwd=REPO,
+        env=env,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    deadline = time.monotonic() + 60
+    while not (parts.is_dir() and any(not p.name.startswith(".") for p in parts.iterdir())) and proc.poll() is None:
+        assert time.monotonic() < deadline, "the build never cached a part"
+        time.sleep(0.005)
+    proc.send_signal(signum)
+    _, stderr = proc.communicate(timeout=60)
+    assert proc.returncode == code, stderr
+    assert "Traceback" not in stderr
+    cached = sum(1 for p in parts.iterdir() if not p.name.startswith("."))
+    assert cached < 30  # the queued parts were dropped, not all read
+    report = verify(out)
+    assert report.ok and report.fingerprint == old, report.problems
+    proc2 = run_cli(build_args(recipe, out))
+    assert proc2.returncode == 0, proc2.stderr
+    assert verify(out).ok and fingerprint_of(out) != old

@@ -12,9 +12,9 @@ from pathlib import Path
 import pytest
 
 from seqpipe import staging
-from seqpipe.errors import EXIT_LOCKED, BuildLockedError, SeqpipeError
+from seqpipe.errors import EXIT_DATASET, EXIT_LOCKED, BuildLockedError, DatasetError, SeqpipeError
 from seqpipe.formats import PRIVATE
-from seqpipe.staging import build_lock, private_dir, publish
+from seqpipe.staging import build_lock, check_output, private_dir, publish
 
 
 def dead_pid() -> int:
@@ -44,12 +44,13 @@ def test_a_held_lock_refuses_another_build_with_the_locked_exit_code(tmp_path: P
     assert not lock.exists()  # released on leaving
 
 
-def test_a_lock_of_another_host_is_respected(tmp_path: Path) -> None:
-    """A lock written on another host (whose processes this one cannot see) refuses the build."""
-    lock = write_lock(tmp_path, dead_pid(), "elsewhere.invalid")
-    with pytest.raises(BuildLockedError, match=r"elsewhere\.invalid"), build_lock(tmp_path):
-        pass
-    assert json.loads(lock.read_text())["host"] == "elsewhere.invalid"
+def test_a_lock_file_without_a_live_holder_is_taken_whatever_it_says(tmp_path: Path) -> None:
+    """A lock file left behind (even naming another host) holds nothing once its process is gone:
+    the kernel lock died with it, so the next build takes it and removes it on leaving."""
+    write_lock(tmp_path, dead_pid(), "elsewhere.invalid")
+    with build_lock(tmp_path) as lock:
+        assert json.loads(lock.read_text()) == {"pid": os.getpid(), "host": socket.gethostname()}
+    assert not lock.exists()
 
 
 def test_a_stale_lock_is_taken_over_and_released(tmp_path: Path) -> None:
@@ -59,6 +60,54 @@ def test_a_stale_lock_is_taken_over_and_released(tmp_path: Path) -> None:
     with build_lock(tmp_path) as lock:
         assert json.loads(lock.read_text()) == {"pid": os.getpid(), "host": socket.gethostname()}
     assert not lock.exists()
+
+
+# Each child takes the lock (retrying while it is held), marks itself the holder with an
+# exclusive create, and dies without releasing, as a killed build does; a second holder at
+# the same time finds the mark and exits 3.
+RACER = r"""
+import os, sys, time
+from pathlib import Path
+from seqpipe.errors import BuildLockedError
+from seqpipe.staging import build_lock
+out, start = Path(sys.argv[1]), float(sys.argv[2])
+while time.time() < start:
+    time.sleep(0.001)
+deadline = time.time() + 60
+while True:
+    try:
+        ctx = build_lock(out)
+        ctx.__enter__()
+        break
+    except BuildLockedError:
+        if time.time() > deadline:
+            os._exit(4)
+try:
+    fd = os.open(out / "holder", os.O_CREAT | os.O_EXCL | os.O_WRONLY)
+except FileExistsError:
+    os._exit(3)
+time.sleep(0.02)
+os.close(fd)
+os.unlink(out / "holder")
+os._exit(0)
+"""
+
+
+def test_two_processes_never_hold_the_lock_at_once(tmp_path: Path) -> None:
+    """Processes that die holding the lock (stale locks) and others racing to take it over:
+    never are two holders at once, and every one gets its turn."""
+    import time
+
+    from conftest import REPO
+
+    write_lock(tmp_path, dead_pid(), socket.gethostname())
+    for _ in range(3):
+        start = time.time() + 1.5  # every racer imported and waiting before the start
+        racers = [
+            subprocess.Popen([sys.executable, "-c", RACER, str(tmp_path), str(start)], cwd=REPO) for _ in range(6)
+        ]
+        codes = [proc.wait(timeout=120) for proc in racers]
+        assert codes == [0] * 6, codes
 
 
 def staged(stage: Path, version: str) -> list[str]:
@@ -101,3 +150,66 @@ def test_publish_moves_every_entry_and_the_manifest_last(tmp_path: Path, monkeyp
     }.items():
         assert (out / rel).read_text() == text
     assert not (private_dir(out) / "trash").exists()
+
+
+@pytest.mark.parametrize("foreign", ["docs", "shards", "vocab.arrow", "tokenizer.arrow", "notes.txt"])
+def test_a_build_into_a_directory_that_was_never_a_dataset_is_refused(tmp_path: Path, foreign: str) -> None:
+    """A directory holding anything but an earlier seqpipe dataset (a project's docs/, a stray
+    vocab.arrow) is refused with exit code 4 naming what is in the way, and nothing is touched."""
+    from conftest import run_cli, write_project
+
+    recipe = write_project(tmp_path / "src")
+    out = tmp_path / "project"
+    out.mkdir()
+    target = out / foreign
+    if foreign in ("docs", "shards"):
+        target.mkdir()
+        (target / "guide.md").write_text("the ferry timetable")
+    else:
+        target.write_text("the ferry timetable")
+    before = sorted(str(p.relative_to(out)) for p in out.rglob("*"))
+    proc = run_cli(["build", str(recipe), "-o", str(out), "--workers", "1", "--quiet"])
+    assert proc.returncode == EXIT_DATASET, proc.stderr
+    assert foreign in proc.stderr and "Traceback" not in proc.stderr
+    assert sorted(str(p.relative_to(out)) for p in out.rglob("*")) == before
+    assert not (out / PRIVATE).exists()
+
+
+def test_output_check_allows_new_empty_and_earlier_datasets_only(tmp_path: Path) -> None:
+    """New or empty directories and a seqpipe dataset (manifest plus what it lists) may be built
+    into; an unlisted extra file or a manifest of another program may not."""
+    check_output(tmp_path / "new")
+    (tmp_path / "empty").mkdir()
+    check_output(tmp_path / "empty")
+    ds = tmp_path / "ds"
+    (ds / "shards" / "train").mkdir(parents=True)
+    (ds / "vocab.arrow").write_text("v")
+    manifest = {
+        "format": "seqpipe-dataset/1",
+        "inputs": [{"path": "corpus/a.txt"}],
+        "vocabulary": {"path": "vocab.arrow"},
+        "splits": {"train": {"shards": [{"path": "shards/train/000000.arrow"}]}},
+    }
+    (ds / "manifest.json").write_text(json.dumps(manifest))
+    check_output(ds)
+    (ds / "corpus").mkdir()  # listed only as an input, not as a file of the dataset
+    with pytest.raises(DatasetError, match="corpus"):
+        check_output(ds)
+    (ds / "corpus").rmdir()
+    (ds / "manifest.json").write_text(json.dumps({"format": "other-tool/3"}))
+    with pytest.raises(DatasetError, match="not a seqpipe manifest"):
+        check_output(ds)
+
+
+def test_a_parts_cache_kept_inside_the_output_directory_is_not_in_the_way(tmp_path: Path) -> None:
+    """A build whose --cache lies inside its output directory can be run again: the cache's
+    folder is not taken for a stranger's file."""
+    from conftest import build_dir, write_project
+
+    recipe = write_project(tmp_path / "src")
+    out = tmp_path / "out"
+    build_dir(recipe, out, cache_dir=out / "parts-cache")
+    build_dir(recipe, out, cache_dir=out / "parts-cache")
+    assert (out / "manifest.json").exists()
+    with pytest.raises(DatasetError, match="parts-cache"):
+        check_output(out)
