@@ -119,7 +119,7 @@ class BuildResult:
         for name in SPLIT_NAMES:
             sp, st = m["splits"][name], s["splits"][name]
             lines.append(
-                f"{name:<12} {sp['documents']:>9} docs {sp['tokens']:>11} tokens  "
+                f"{name:<12} {sp['documents']:>9} documents {sp['tokens']:>11} tokens  "
                 f"{len(sp['shards'])} shard(s)  unknown {st['unknown_rate']:.4%}  "
                 f"{st['bytes_per_token']:.2f} bytes/token  {st['tokens_per_word']:.2f} tokens/word"
             )
