@@ -9,6 +9,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 PACKAGE = Path(__file__).resolve().parent.parent / "seqpipe"
+REPO = PACKAGE.parent
 MAX_FUNCTION_LINES = 80
 
 
@@ -221,3 +222,22 @@ def test_no_module_uses_another_modules_private_names() -> None:
     known = set(modules)
     found = [entry for name, module in modules.items() if name != "seqpipe" for entry in private_reaches(module, known)]
     assert found == []
+
+
+def _developers_map() -> list[str]:
+    """Names in the first column of DEVELOPERS.md's architecture block."""
+    text = (REPO / "DEVELOPERS.md").read_text(encoding="utf-8")
+    block = text.split("## Architecture", 1)[1].split("```", 2)[1]
+    return [line.split()[0] for line in block.splitlines() if line.strip()]
+
+
+def test_developers_map_names_every_module_and_nothing_else() -> None:
+    """DEVELOPERS.md's package map has one line per module or subpackage of seqpipe/, and each
+    line names one that exists (so the map cannot drift from the code)."""
+    package = REPO / "seqpipe"
+    actual = {p.name for p in package.glob("*.py")} | {
+        f"{p.name}/" for p in package.iterdir() if p.is_dir() and p.name != "__pycache__"
+    }
+    listed = _developers_map()
+    assert len(listed) == len(set(listed)), "a module is listed twice"
+    assert set(listed) == actual, (sorted(actual - set(listed)), sorted(set(listed) - actual))
