@@ -42,6 +42,8 @@ import pyarrow as pa
 from seqpipe import __version__
 from seqpipe._hashing import hash_file, hash_json
 from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
+from seqpipe._parse import to_plain
+from seqpipe._reuse import VocabSource, adopt_vocabulary, open_vocab_source, reused_entry, vocabulary_fingerprint
 from seqpipe._runner import View, run, run_beside
 from seqpipe.counts import CountMerger, first_occurrence
 from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SourceMissingError
@@ -348,18 +350,21 @@ def _build(
 ) -> BuildResult:
     """The phases in order, each handing the next what it needs."""
     ctx = Context(recipe, pool, cache, show)
-    plan = plan_build(recipe, cache, part_bytes)
+    source = open_vocab_source(recipe)
+    plan = plan_build(recipe, cache, part_bytes, source)
     check_shard_count(recipe, plan.input_bytes)
     stage = _fresh_stage(out, plan.build_key[:16])
     try:
         merger = CountMerger()  # parts counted by their ingest task arrive first, the others in count
-        ingested = ingest(ctx, plan, merger)
+        ingested = ingest(ctx, plan, merger, counting=source is None)
         kept = assign(ctx, plan)
-        counts = count(ctx, plan, ingested, kept, merger)
-        fitted = fit(recipe, counts, stage)
+        if source is None:
+            fitted = fit(recipe, count(ctx, plan, ingested, kept, merger), stage)
+        else:  # the ids of another dataset: nothing to count or fit
+            fitted = reuse(recipe, source, stage)
         encoded = encode(ctx, plan, kept, fitted, stage)
         sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage), stage)
-        manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage))
+        manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage, source))
         publish_dataset(out, stage, manifest, fitted)
     except OutputWriteError:
         shutil.rmtree(stage, ignore_errors=True)  # frees the space; the cache keeps what is whole
@@ -402,7 +407,7 @@ def _input_files(recipe: Recipe) -> list[tuple[int, Path | str]]:
     return files
 
 
-def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
+def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None) -> Plan:
     """Resolve the inputs, hash them, and cut each into parts of about ``part_bytes``."""
     from seqpipe.filesystem import file_size, is_uri
 
@@ -423,7 +428,8 @@ def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
             key = part_key(recipe, si, h, part)
             tasks.append(IngestTask(recipe, si, ii, str(f), part, key, str(cache), stamp=hashed[ii][1]))
             weights.append(sizes[ii] // max(len(parts), 1))
-    build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes})
+    reused = source.manifest["fingerprint"] if source is not None else None
+    build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes, "reused": reused})
     return Plan(inputs, tuple(tasks), tuple(weights), sum(sizes), build_key)
 
 
@@ -444,14 +450,15 @@ def _documents(meta: PartMeta) -> int:
     return meta.documents
 
 
-def ingest(ctx: Context, plan: Plan, merger: CountMerger) -> Ingested:
+def ingest(ctx: Context, plan: Plan, merger: CountMerger, *, counting: bool = True) -> Ingested:
     """Ingest every part not in the cache. Without a dedupe step every document is kept, so a
     fresh part is counted by its own ingest task while its arrays are in memory (into
-    ``merger``); the rest are counted in the count phase."""
+    ``merger``); the rest are counted in the count phase. Nothing is counted without
+    ``counting`` (a reused vocabulary)."""
     cache = str(ctx.cache)
     metas, damaged = _cached_parts(cache, plan)
     todo = [i for i, m in enumerate(metas) if m is None]
-    dedupe = _has_dedupe(ctx.recipe)
+    dedupe = _has_dedupe(ctx.recipe) or not counting
     threads = ctx.pool.threads.for_ingest(len(todo))
     tasks = [dataclasses.replace(plan.tasks[i], threads=threads, count_order=None if dedupe else i) for i in todo]
     merger.expect(0 if dedupe else len(todo))
@@ -525,6 +532,14 @@ def fit(recipe: Recipe, counts: pa.Table, stage: Path) -> Fitted:
     return Fitted(len(vocab), id_dtype(len(vocab)).name, files)
 
 
+def reuse(recipe: Recipe, source: VocabSource, stage: Path) -> Fitted:
+    """Copy the reused dataset's vocabulary and tokenizer files into the stage, unchanged."""
+    for stale in (VOCAB_FILE, *OPTIONAL_TOP):
+        (stage / stale).unlink(missing_ok=True)
+    entries, files = adopt_vocabulary(source, stage)
+    return Fitted(entries, id_dtype(entries).name, files)
+
+
 def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) -> tuple[dict[str, dict[str, int]], ...]:
     """Encode every part's kept documents per split; per part, the totals per split it holds."""
     shutil.rmtree(encoded_dir(str(stage)), ignore_errors=True)
@@ -564,9 +579,23 @@ def _stage_file(stage: Path, rel: str) -> dict[str, Any]:
 
 
 def _manifest_body(
-    recipe: Recipe, plan: Plan, ingested: Ingested, kept: Kept, fitted: Fitted, sharded: Sharded, stage: Path
+    recipe: Recipe,
+    plan: Plan,
+    ingested: Ingested,
+    kept: Kept,
+    fitted: Fitted,
+    sharded: Sharded,
+    stage: Path,
+    source: VocabSource | None = None,
 ) -> dict[str, Any]:
-    """The manifest before sealing: what was read, fitted and written, and the build's figures."""
+    """The manifest before sealing: what was read, fitted (or reused) and written, and the build's figures."""
+    vocabulary = {
+        **_stage_file(stage, VOCAB_FILE),
+        "entries": fitted.vocab_size,
+        "fingerprint": vocabulary_fingerprint(stage, to_plain(recipe.tokenizer), fitted.files),
+    }
+    if source is not None:
+        vocabulary["reused_from"] = reused_entry(source)
     return {
         "format": FORMAT,
         "seqpipe_version": __version__,
@@ -577,7 +606,7 @@ def _manifest_body(
             "kind": recipe.tokenizer.kind,
             "files": [_stage_file(stage, f) for f in fitted.files],
         },
-        "vocabulary": {**_stage_file(stage, VOCAB_FILE), "entries": fitted.vocab_size},
+        "vocabulary": vocabulary,
         "dtype": fitted.dtype,
         "splits": sharded.splits,
         "summary": {
