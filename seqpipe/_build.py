@@ -69,6 +69,7 @@ from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, s
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype
+from seqpipe.splits import assign_splits, fixed_split_of, held_out_overlap
 from seqpipe.staging import build_lock, check_output, private_dir, publish
 
 if TYPE_CHECKING:
@@ -323,6 +324,8 @@ class Kept:
 
     keeps: tuple[np.ndarray | None, ...]
     duplicates: int
+    overlap: int = 0  # train documents whose content a fixed validation/test source also holds
+    overlap_removed: int = 0  # of those, removed from train ([splits] exclude_overlap_from_train)
 
 
 @dataclass(frozen=True, slots=True)
@@ -458,7 +461,8 @@ def ingest(ctx: Context, plan: Plan, merger: CountMerger, *, counting: bool = Tr
     cache = str(ctx.cache)
     metas, damaged = _cached_parts(cache, plan)
     todo = [i for i, m in enumerate(metas) if m is None]
-    dedupe = _has_dedupe(ctx.recipe) or not counting
+    # counting at ingest sees every document: not when some are dropped later (dedupe, overlap)
+    dedupe = _has_dedupe(ctx.recipe) or ctx.recipe.splits.exclude_overlap_from_train or not counting
     threads = ctx.pool.threads.for_ingest(len(todo))
     tasks = [dataclasses.replace(plan.tasks[i], threads=threads, count_order=None if dedupe else i) for i in todo]
     merger.expect(0 if dedupe else len(todo))
@@ -494,7 +498,13 @@ def _cached_parts(cache: str, plan: Plan) -> tuple[list[PartMeta | None], int]:
 
 def assign(ctx: Context, plan: Plan) -> Kept:
     """Which documents stay: with a dedupe step, an exact duplicate keeps its first occurrence
-    in corpus order (splits are computed in the tasks, from each document's hash)."""
+    in corpus order (splits are computed in the tasks, from each document's hash); then the
+    train documents that a fixed validation/test source also holds are counted (and removed
+    with ``exclude_overlap_from_train``)."""
+    return held_out(ctx, plan, _deduped(ctx, plan))
+
+
+def _deduped(ctx: Context, plan: Plan) -> Kept:
     if not _has_dedupe(ctx.recipe):
         return Kept((None,) * len(plan.tasks), 0)
     # the one per-document array the driver holds: 16 bytes per document, only with dedupe
@@ -505,6 +515,40 @@ def assign(ctx: Context, plan: Plan) -> Kept:
     return Kept(keeps, int((~keep_all).sum()))
 
 
+def _fixed(recipe: Recipe, task: IngestTask) -> int | None:
+    return fixed_split_of(recipe.sources[task.source_index])
+
+
+def held_out(ctx: Context, plan: Plan, kept: Kept) -> Kept:
+    """Count the train documents whose content (hash) a source with a fixed validation or test
+    split also holds; with ``exclude_overlap_from_train`` drop them from train. Hash-assigned
+    documents cannot overlap (equal content, equal split), so the driver holds only the
+    fixed-split documents' hashes (16 bytes each) and reads the other parts one at a time."""
+    recipe, cache = ctx.recipe, str(ctx.cache)
+    held_parts = [i for i, t in enumerate(plan.tasks) if (_fixed(recipe, t) or 0) > 0]
+    if not held_parts:
+        return kept
+    held_rows = []
+    for i in held_parts:
+        hashes = fixed16(read_part_docs(cache, plan.tasks[i].key), "hash")
+        keep = kept.keeps[i]
+        held_rows.append(hashes if keep is None else hashes[keep])
+    held = np.unique(np.ascontiguousarray(np.concatenate(held_rows)).view("V16").reshape(-1))
+    keeps = list(kept.keeps)
+    overlap = 0
+    for i, task in enumerate(plan.tasks):
+        if i in held_parts:
+            continue
+        hashes = fixed16(read_part_docs(cache, task.key), "hash")
+        train = assign_splits(recipe.splits, hashes, keeps[i], _fixed(recipe, task)) == 0
+        hit = train & held_out_overlap(hashes, held)
+        overlap += int(hit.sum())
+        if recipe.splits.exclude_overlap_from_train and hit.any():
+            keeps[i] = ~hit if keeps[i] is None else keeps[i] & ~hit
+    removed = overlap if recipe.splits.exclude_overlap_from_train else 0
+    return Kept(tuple(keeps), kept.duplicates, overlap, removed)
+
+
 def _merge_counted(merger: CountMerger, _: int, counted: tuple[pa.Table, int]) -> None:
     merger.add(counted)
 
@@ -513,7 +557,10 @@ def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: Coun
     """Count the parts not counted at ingest into ``merger``; the corpus-wide ``(key, count)``
     table in first-occurrence order."""
     cache = str(ctx.cache)
-    tasks = [CountTask(cache, plan.tasks[i].key, i, ctx.recipe, kept.keeps[i]) for i in ingested.recount]
+    tasks = [
+        CountTask(cache, plan.tasks[i].key, i, ctx.recipe, kept.keeps[i], _fixed(ctx.recipe, plan.tasks[i]))
+        for i in ingested.recount
+    ]
     merger.expect(len(tasks))
     run(ctx.pool.executor, ctx.show, count_part, tasks, View("counting"), each=partial(_merge_counted, merger))
     if merger.train_documents == 0:
@@ -544,7 +591,17 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
     """Encode every part's kept documents per split; per part, the totals per split it holds."""
     shutil.rmtree(encoded_dir(str(stage)), ignore_errors=True)
     tasks = [
-        EncodeTask(str(ctx.cache), t.key, str(stage), ctx.recipe, i, t.input_index, kept.keeps[i], fitted.dtype)
+        EncodeTask(
+            str(ctx.cache),
+            t.key,
+            str(stage),
+            ctx.recipe,
+            i,
+            t.input_index,
+            kept.keeps[i],
+            fitted.dtype,
+            _fixed(ctx.recipe, t),
+        )
         for i, t in enumerate(plan.tasks)
     ]
     return tuple(run(ctx.pool.executor, ctx.show, encode_part, tasks, View("encoding")))
@@ -613,6 +670,7 @@ def _manifest_body(
             "read": _summed(m.read for m in ingested.parts),
             "dropped": _summed(m.dropped for m in ingested.parts),
             "duplicates_dropped": kept.duplicates,
+            "train_overlap": {"documents": kept.overlap, "removed": kept.overlap_removed},
             "splits": sharded.summary,
         },
     }

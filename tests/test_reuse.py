@@ -141,3 +141,81 @@ def test_missing_source_dataset_is_a_recipe_error(tmp_path: Path) -> None:
     _corpus(tmp_path)
     with pytest.raises(RecipeError, match=r"reuse_from.*out/base"):
         _build(tmp_path, ADDED.format(kind="words", cap=0), "added")
+
+
+FIXED = """
+[[sources]]
+kind = "text"
+paths = "base/*.txt"
+document = "paragraph"
+[[sources]]
+kind = "text"
+paths = "held/*.txt"
+document = "paragraph"
+fixed_split = "{split}"
+[splits]
+train = 0.8
+validation = 0.1
+test = 0.1
+exclude_overlap_from_train = {exclude}
+"""
+
+
+def _held(root: Path, extra: list[str]) -> list[str]:
+    rnd = np.random.default_rng(9)
+    held = [" ".join(rnd.choice(["gangway", "bollard", "wharf", "buoy", "stern"], size=7)) for _ in range(15)]
+    (root / "held").mkdir(parents=True)
+    (root / "held" / "h.txt").write_text("\n\n".join([*held, *extra]) + "\n", encoding="utf-8")
+    return [*held, *extra]
+
+
+def _hashes(ds: Dataset, split: str) -> set[bytes]:
+    return set(ds.split(split).documents.column("hash").to_pylist())
+
+
+@pytest.mark.parametrize("split", ["validation", "test", "train"])
+def test_fixed_split_source_lands_entirely_in_its_split(tmp_path: Path, split: str) -> None:
+    """Every document of a source with fixed_split is in that split, none elsewhere."""
+    _corpus(tmp_path)
+    held = {xxhash.xxh3_128_digest(t.encode()) for t in _held(tmp_path, [])}
+    ds = open_dataset(_build(tmp_path, FIXED.format(split=split, exclude="false"), "fixed"))
+    assert held <= _hashes(ds, split)
+    for other in ds.splits:
+        if other != split:
+            assert not held & _hashes(ds, other)
+    base_hashes = set().union(*(_hashes(ds, s) for s in ds.splits)) - held
+    assert base_hashes  # the hash-assigned source still fills the splits
+
+
+def test_overlap_with_train_is_counted_and_kept_by_default(tmp_path: Path) -> None:
+    """A held-out document whose text is also a train document is counted, and train keeps it."""
+    _corpus(tmp_path)
+    # the base corpus's first paragraph: find one that hashes into train
+    base = open_dataset(_build(tmp_path, BASE.format(kind="words", cap=0), "base"))
+    paras = (tmp_path / "base" / "a.txt").read_text(encoding="utf-8").strip().split("\n\n")
+    train = _hashes(base, "train")
+    in_train = [p for p in paras if xxhash.xxh3_128_digest(p.encode()) in train][:2]
+    assert len(in_train) == 2
+    _held(tmp_path, in_train)
+    ds = open_dataset(_build(tmp_path, FIXED.format(split="validation", exclude="false"), "fixed"))
+    assert ds.manifest["summary"]["train_overlap"] == {"documents": len(in_train), "removed": 0}
+    shared = {xxhash.xxh3_128_digest(p.encode()) for p in in_train}
+    assert shared <= _hashes(ds, "train") and shared <= _hashes(ds, "validation")
+
+
+def test_overlap_is_removed_from_train_only_with_the_option(tmp_path: Path) -> None:
+    """With exclude_overlap_from_train the overlapping documents leave train and stay in validation."""
+    _corpus(tmp_path)
+    base = open_dataset(_build(tmp_path, BASE.format(kind="words", cap=0), "base"))
+    paras = (tmp_path / "base" / "a.txt").read_text(encoding="utf-8").strip().split("\n\n")
+    train = _hashes(base, "train")
+    in_train = [p for p in paras if xxhash.xxh3_128_digest(p.encode()) in train][:2]
+    assert len(in_train) == 2
+    _held(tmp_path, in_train)
+    ds = open_dataset(_build(tmp_path, FIXED.format(split="validation", exclude="true"), "fixed"))
+    assert ds.manifest["summary"]["train_overlap"] == {"documents": len(in_train), "removed": len(in_train)}
+    shared = {xxhash.xxh3_128_digest(p.encode()) for p in in_train}
+    assert not shared & _hashes(ds, "train")
+    assert shared <= _hashes(ds, "validation")
+    assert ds.split("train").num_documents == base.split("train").num_documents - len(in_train)
+    assert verify(tmp_path / "out" / "fixed").ok
