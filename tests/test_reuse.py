@@ -219,3 +219,18 @@ def test_overlap_is_removed_from_train_only_with_the_option(tmp_path: Path) -> N
     assert shared <= _hashes(ds, "validation")
     assert ds.split("train").num_documents == base.split("train").num_documents - len(in_train)
     assert verify(tmp_path / "out" / "fixed").ok
+
+
+def test_inspect_shows_both_datasets_cleaning_steps(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """inspect of a reusing dataset names the reused dataset and both lists of cleaning steps."""
+    from seqpipe.cli import main
+
+    _corpus(tmp_path)
+    base = open_dataset(_build(tmp_path, BASE.format(kind="words", cap=0), "base"))
+    added = _build(tmp_path, ADDED.format(kind="words", cap=0), "added")
+    capsys.readouterr()
+    assert main(["inspect", str(added)]) == 0
+    out = capsys.readouterr().out
+    assert f"reused from  out/base (dataset fingerprint {base.fingerprint})" in out
+    assert "clean        lowercase" in out
+    assert "clean there  (none)" in out
