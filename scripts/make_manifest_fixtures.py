@@ -45,7 +45,7 @@ def base() -> dict[str, Any]:
         "recipe_fingerprint": hash_json(RECIPE),
         "inputs": [{"path": "corpus/log-000.txt", "bytes": 2210, "hash": H}],
         "tokenizer": {"kind": "words", "files": []},
-        "vocabulary": {"path": "vocab.arrow", "bytes": 1530, "hash": H, "entries": 40},
+        "vocabulary": {"path": "vocab.arrow", "bytes": 1530, "hash": H, "entries": 40, "fingerprint": H},
         "dtype": "uint8",
         "splits": {
             "train": {"documents": 2, "tokens": 30, "shards": shards, "document_table": table("train", 1210)},

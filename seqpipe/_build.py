@@ -42,6 +42,8 @@ import pyarrow as pa
 from seqpipe import __version__
 from seqpipe._hashing import hash_file, hash_json
 from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
+from seqpipe._parse import to_plain
+from seqpipe._reuse import VocabSource, adopt_vocabulary, open_vocab_source, reused_entry, vocabulary_fingerprint
 from seqpipe._runner import View, run, run_beside
 from seqpipe.counts import CountMerger, first_occurrence
 from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SourceMissingError
@@ -67,6 +69,7 @@ from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, s
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype
+from seqpipe.splits import assign_splits, fixed_split_of, held_out_overlap
 from seqpipe.staging import build_lock, check_output, private_dir, publish
 
 if TYPE_CHECKING:
@@ -321,6 +324,8 @@ class Kept:
 
     keeps: tuple[np.ndarray | None, ...]
     duplicates: int
+    overlap: int = 0  # train documents whose content a fixed validation/test source also holds
+    overlap_removed: int = 0  # of those, removed from train ([splits] exclude_overlap_from_train)
 
 
 @dataclass(frozen=True, slots=True)
@@ -348,18 +353,21 @@ def _build(
 ) -> BuildResult:
     """The phases in order, each handing the next what it needs."""
     ctx = Context(recipe, pool, cache, show)
-    plan = plan_build(recipe, cache, part_bytes)
+    source = open_vocab_source(recipe)
+    plan = plan_build(recipe, cache, part_bytes, source)
     check_shard_count(recipe, plan.input_bytes)
     stage = _fresh_stage(out, plan.build_key[:16])
     try:
         merger = CountMerger()  # parts counted by their ingest task arrive first, the others in count
-        ingested = ingest(ctx, plan, merger)
+        ingested = ingest(ctx, plan, merger, counting=source is None)
         kept = assign(ctx, plan)
-        counts = count(ctx, plan, ingested, kept, merger)
-        fitted = fit(recipe, counts, stage)
+        if source is None:
+            fitted = fit(recipe, count(ctx, plan, ingested, kept, merger), stage)
+        else:  # the ids of another dataset: nothing to count or fit
+            fitted = reuse(recipe, source, stage)
         encoded = encode(ctx, plan, kept, fitted, stage)
         sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage), stage)
-        manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage))
+        manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage, source))
         publish_dataset(out, stage, manifest, fitted)
     except OutputWriteError:
         shutil.rmtree(stage, ignore_errors=True)  # frees the space; the cache keeps what is whole
@@ -402,7 +410,7 @@ def _input_files(recipe: Recipe) -> list[tuple[int, Path | str]]:
     return files
 
 
-def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
+def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None) -> Plan:
     """Resolve the inputs, hash them, and cut each into parts of about ``part_bytes``."""
     from seqpipe.filesystem import file_size, is_uri
 
@@ -423,7 +431,8 @@ def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
             key = part_key(recipe, si, h, part)
             tasks.append(IngestTask(recipe, si, ii, str(f), part, key, str(cache), stamp=hashed[ii][1]))
             weights.append(sizes[ii] // max(len(parts), 1))
-    build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes})
+    reused = source.manifest["fingerprint"] if source is not None else None
+    build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes, "reused": reused})
     return Plan(inputs, tuple(tasks), tuple(weights), sum(sizes), build_key)
 
 
@@ -444,14 +453,16 @@ def _documents(meta: PartMeta) -> int:
     return meta.documents
 
 
-def ingest(ctx: Context, plan: Plan, merger: CountMerger) -> Ingested:
+def ingest(ctx: Context, plan: Plan, merger: CountMerger, *, counting: bool = True) -> Ingested:
     """Ingest every part not in the cache. Without a dedupe step every document is kept, so a
     fresh part is counted by its own ingest task while its arrays are in memory (into
-    ``merger``); the rest are counted in the count phase."""
+    ``merger``); the rest are counted in the count phase. Nothing is counted without
+    ``counting`` (a reused vocabulary)."""
     cache = str(ctx.cache)
     metas, damaged = _cached_parts(cache, plan)
     todo = [i for i, m in enumerate(metas) if m is None]
-    dedupe = _has_dedupe(ctx.recipe)
+    # counting at ingest sees every document: not when some are dropped later (dedupe, overlap)
+    dedupe = _has_dedupe(ctx.recipe) or ctx.recipe.splits.exclude_overlap_from_train or not counting
     threads = ctx.pool.threads.for_ingest(len(todo))
     tasks = [dataclasses.replace(plan.tasks[i], threads=threads, count_order=None if dedupe else i) for i in todo]
     merger.expect(0 if dedupe else len(todo))
@@ -487,7 +498,13 @@ def _cached_parts(cache: str, plan: Plan) -> tuple[list[PartMeta | None], int]:
 
 def assign(ctx: Context, plan: Plan) -> Kept:
     """Which documents stay: with a dedupe step, an exact duplicate keeps its first occurrence
-    in corpus order (splits are computed in the tasks, from each document's hash)."""
+    in corpus order (splits are computed in the tasks, from each document's hash); then the
+    train documents that a fixed validation/test source also holds are counted (and removed
+    with ``exclude_overlap_from_train``)."""
+    return held_out(ctx, plan, _deduped(ctx, plan))
+
+
+def _deduped(ctx: Context, plan: Plan) -> Kept:
     if not _has_dedupe(ctx.recipe):
         return Kept((None,) * len(plan.tasks), 0)
     # the one per-document array the driver holds: 16 bytes per document, only with dedupe
@@ -498,6 +515,40 @@ def assign(ctx: Context, plan: Plan) -> Kept:
     return Kept(keeps, int((~keep_all).sum()))
 
 
+def _fixed(recipe: Recipe, task: IngestTask) -> int | None:
+    return fixed_split_of(recipe.sources[task.source_index])
+
+
+def held_out(ctx: Context, plan: Plan, kept: Kept) -> Kept:
+    """Count the train documents whose content (hash) a source with a fixed validation or test
+    split also holds; with ``exclude_overlap_from_train`` drop them from train. Hash-assigned
+    documents cannot overlap (equal content, equal split), so the driver holds only the
+    fixed-split documents' hashes (16 bytes each) and reads the other parts one at a time."""
+    recipe, cache = ctx.recipe, str(ctx.cache)
+    held_parts = [i for i, t in enumerate(plan.tasks) if (_fixed(recipe, t) or 0) > 0]
+    if not held_parts:
+        return kept
+    held_rows = []
+    for i in held_parts:
+        hashes = fixed16(read_part_docs(cache, plan.tasks[i].key), "hash")
+        keep = kept.keeps[i]
+        held_rows.append(hashes if keep is None else hashes[keep])
+    held = np.unique(np.ascontiguousarray(np.concatenate(held_rows)).view("V16").reshape(-1))
+    keeps = list(kept.keeps)
+    overlap = 0
+    for i, task in enumerate(plan.tasks):
+        if i in held_parts:
+            continue
+        hashes = fixed16(read_part_docs(cache, task.key), "hash")
+        train = assign_splits(recipe.splits, hashes, keeps[i], _fixed(recipe, task)) == 0
+        hit = train & held_out_overlap(hashes, held)
+        overlap += int(hit.sum())
+        if recipe.splits.exclude_overlap_from_train and hit.any():
+            keeps[i] = ~hit if keeps[i] is None else keeps[i] & ~hit
+    removed = overlap if recipe.splits.exclude_overlap_from_train else 0
+    return Kept(tuple(keeps), kept.duplicates, overlap, removed)
+
+
 def _merge_counted(merger: CountMerger, _: int, counted: tuple[pa.Table, int]) -> None:
     merger.add(counted)
 
@@ -506,7 +557,10 @@ def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: Coun
     """Count the parts not counted at ingest into ``merger``; the corpus-wide ``(key, count)``
     table in first-occurrence order."""
     cache = str(ctx.cache)
-    tasks = [CountTask(cache, plan.tasks[i].key, i, ctx.recipe, kept.keeps[i]) for i in ingested.recount]
+    tasks = [
+        CountTask(cache, plan.tasks[i].key, i, ctx.recipe, kept.keeps[i], _fixed(ctx.recipe, plan.tasks[i]))
+        for i in ingested.recount
+    ]
     merger.expect(len(tasks))
     run(ctx.pool.executor, ctx.show, count_part, tasks, View("counting"), each=partial(_merge_counted, merger))
     if merger.train_documents == 0:
@@ -525,11 +579,29 @@ def fit(recipe: Recipe, counts: pa.Table, stage: Path) -> Fitted:
     return Fitted(len(vocab), id_dtype(len(vocab)).name, files)
 
 
+def reuse(recipe: Recipe, source: VocabSource, stage: Path) -> Fitted:
+    """Copy the reused dataset's vocabulary and tokenizer files into the stage, unchanged."""
+    for stale in (VOCAB_FILE, *OPTIONAL_TOP):
+        (stage / stale).unlink(missing_ok=True)
+    entries, files = adopt_vocabulary(source, stage)
+    return Fitted(entries, id_dtype(entries).name, files)
+
+
 def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) -> tuple[dict[str, dict[str, int]], ...]:
     """Encode every part's kept documents per split; per part, the totals per split it holds."""
     shutil.rmtree(encoded_dir(str(stage)), ignore_errors=True)
     tasks = [
-        EncodeTask(str(ctx.cache), t.key, str(stage), ctx.recipe, i, t.input_index, kept.keeps[i], fitted.dtype)
+        EncodeTask(
+            str(ctx.cache),
+            t.key,
+            str(stage),
+            ctx.recipe,
+            i,
+            t.input_index,
+            kept.keeps[i],
+            fitted.dtype,
+            _fixed(ctx.recipe, t),
+        )
         for i, t in enumerate(plan.tasks)
     ]
     return tuple(run(ctx.pool.executor, ctx.show, encode_part, tasks, View("encoding")))
@@ -564,9 +636,23 @@ def _stage_file(stage: Path, rel: str) -> dict[str, Any]:
 
 
 def _manifest_body(
-    recipe: Recipe, plan: Plan, ingested: Ingested, kept: Kept, fitted: Fitted, sharded: Sharded, stage: Path
+    recipe: Recipe,
+    plan: Plan,
+    ingested: Ingested,
+    kept: Kept,
+    fitted: Fitted,
+    sharded: Sharded,
+    stage: Path,
+    source: VocabSource | None = None,
 ) -> dict[str, Any]:
-    """The manifest before sealing: what was read, fitted and written, and the build's figures."""
+    """The manifest before sealing: what was read, fitted (or reused) and written, and the build's figures."""
+    vocabulary = {
+        **_stage_file(stage, VOCAB_FILE),
+        "entries": fitted.vocab_size,
+        "fingerprint": vocabulary_fingerprint(stage, to_plain(recipe.tokenizer), fitted.files),
+    }
+    if source is not None:
+        vocabulary["reused_from"] = reused_entry(source)
     return {
         "format": FORMAT,
         "seqpipe_version": __version__,
@@ -577,13 +663,14 @@ def _manifest_body(
             "kind": recipe.tokenizer.kind,
             "files": [_stage_file(stage, f) for f in fitted.files],
         },
-        "vocabulary": {**_stage_file(stage, VOCAB_FILE), "entries": fitted.vocab_size},
+        "vocabulary": vocabulary,
         "dtype": fitted.dtype,
         "splits": sharded.splits,
         "summary": {
             "read": _summed(m.read for m in ingested.parts),
             "dropped": _summed(m.dropped for m in ingested.parts),
             "duplicates_dropped": kept.duplicates,
+            "train_overlap": {"documents": kept.overlap, "removed": kept.overlap_removed},
             "splits": sharded.summary,
         },
     }

@@ -107,6 +107,11 @@ def cmd_verify(args: argparse.Namespace) -> int:
     return EXIT_OK if report.ok else EXIT_VERIFY_FAILED
 
 
+def _steps(steps: list[Any]) -> str:
+    """Cleaning steps by kind, in order (the reused vocabulary's dataset may have other ones)."""
+    return ", ".join(str(step.get("kind", "?")) for step in steps if isinstance(step, dict)) or "(none)"
+
+
 def cmd_inspect(args: argparse.Namespace) -> int:
     from seqpipe.dataset import open_dataset
 
@@ -120,6 +125,13 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     print(f"fingerprint  {m['fingerprint']}")
     print(f"recipe       {m['recipe_fingerprint']}")
     print(f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['entries']} entries, ids {m['dtype']}")
+    print(f"vocabulary   fingerprint {m['vocabulary']['fingerprint']}")
+    reused = m["vocabulary"].get("reused_from")
+    if reused:
+        print(f"reused from  {reused['dataset']} (dataset fingerprint {reused['fingerprint']})")
+    print(f"clean        {_steps(m['recipe'].get('clean', []))}")
+    if reused:
+        print(f"clean there  {_steps(reused['clean'])}")
     print(f"inputs       {len(m['inputs'])} file(s), {sum(i['bytes'] for i in m['inputs'])} bytes")
     for name in ds.splits:
         sp = m["splits"][name]

@@ -37,7 +37,7 @@ from seqpipe._parse import to_plain
 from seqpipe.errors import SeqpipeError, SourceError
 from seqpipe.recipe import Recipe
 from seqpipe.shards import fsync_dir, id_dtype, read_shard, read_table, write_shard, write_table
-from seqpipe.splits import assign_splits
+from seqpipe.splits import assign_splits, fixed_split_of
 from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
 
@@ -311,7 +311,10 @@ def ingest_part(task: IngestTask) -> PartMeta:
     _check_unchanged(task)
     _store_part(task, _docs_table(recipe, got), keys, _stored_codes(seg.codes, len(keys)), meta)
     if task.count_order is not None:
-        meta.counts = _count(recipe, got.columns["hash"], seg.doc_lengths, keys, seg.codes, None, task.count_order)
+        fixed = fixed_split_of(recipe.sources[task.source_index])
+        meta.counts = _count(
+            recipe, got.columns["hash"], seg.doc_lengths, keys, seg.codes, None, task.count_order, fixed
+        )
     return meta
 
 
@@ -389,6 +392,7 @@ class CountTask:
     order: int  # corpus position of this part, for first-occurrence ranks
     recipe: Recipe
     keep: np.ndarray | None  # bool per document (None: no dedupe step, keep all)
+    fixed: int | None = None  # the split of every document, for a source with a fixed split
 
 
 def count_part(task: CountTask) -> tuple[pa.Table, int]:
@@ -399,7 +403,14 @@ def count_part(task: CountTask) -> tuple[pa.Table, int]:
     keys = read_table(d / "keys.arrow").column("key").combine_chunks()
     codes = read_table(d / "codes.arrow").column("code").to_numpy()
     return _count(
-        task.recipe, fixed16(docs, "hash"), docs.column("pieces").to_numpy(), keys, codes, task.keep, task.order
+        task.recipe,
+        fixed16(docs, "hash"),
+        docs.column("pieces").to_numpy(),
+        keys,
+        codes,
+        task.keep,
+        task.order,
+        task.fixed,
     )
 
 
@@ -411,10 +422,11 @@ def _count(
     codes: np.ndarray,
     keep: np.ndarray | None,
     order: int,
+    fixed: int | None = None,
 ) -> tuple[pa.Table, int]:
     """count_part's result from a part's arrays (document hashes, pieces per document, distinct
     keys, one code per piece)."""
-    train = assign_splits(recipe.splits, hashes, keep) == 0
+    train = assign_splits(recipe.splits, hashes, keep, fixed) == 0
     sel = codes[_piece_mask(pieces, train)] if len(codes) else codes
     counts = np.bincount(sel, minlength=len(keys)).astype(np.int64)
     present = np.flatnonzero(counts)
@@ -445,6 +457,7 @@ class EncodeTask:
     input_index: int  # the part's input file (the documents tables' "input")
     keep: np.ndarray | None  # bool per document (None: keep all)
     dtype: str
+    fixed: int | None = None  # the split of every document, for a source with a fixed split
 
 
 _ENCODERS: dict[str, Encoder] = {}
@@ -486,7 +499,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     keys = read_table(d / "keys.arrow").column("key").combine_chunks()
     codes = read_table(d / "codes.arrow").column("code").to_numpy()
     pieces = docs.column("pieces").to_numpy()
-    splits = assign_splits(recipe.splits, fixed16(docs, "hash"), task.keep)
+    splits = assign_splits(recipe.splits, fixed16(docs, "hash"), task.keep, task.fixed)
     values, offsets = enc.piece_ids(keys)
     voc = enc.vocabulary
     begin = voc.id_of("begin") if recipe.encode.prepend_begin else None

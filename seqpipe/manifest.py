@@ -198,8 +198,15 @@ def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
     c.str_(tok["kind"], "tokenizer.kind")
     for i, f in enumerate(c.list_(tok["files"], "tokenizer.files")):
         c.file_(f, f"tokenizer.files[{i}]")
-    voc = c.file_(m["vocabulary"], "vocabulary", ("entries",))
+    reused = isinstance(m["vocabulary"], dict) and "reused_from" in m["vocabulary"]
+    voc = c.file_(m["vocabulary"], "vocabulary", ("entries", "fingerprint", *(("reused_from",) if reused else ())))
     c.int_(voc["entries"], "vocabulary.entries")
+    c.hex_(voc["fingerprint"], "vocabulary.fingerprint")
+    if reused:
+        src = c.obj(voc["reused_from"], "vocabulary.reused_from", ("dataset", "fingerprint", "clean"))
+        c.str_(src["dataset"], "vocabulary.reused_from.dataset")
+        c.hex_(src["fingerprint"], "vocabulary.reused_from.fingerprint")
+        c.list_(src["clean"], "vocabulary.reused_from.clean")
     if m["dtype"] not in DTYPES:
         raise c.fail("dtype", f"expected one of {list(DTYPES)}, got {m['dtype']!r}")
     splits = m["splits"]

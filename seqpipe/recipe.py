@@ -81,8 +81,12 @@ class SplitSpec:
     validation: float = 0.05
     test: float = 0.05
     seed: int = 0
+    # remove from train the documents whose content also occurs in a source with a fixed
+    # validation or test split (they are counted in the summary either way)
+    exclude_overlap_from_train: bool = False
 
     def __post_init__(self) -> None:
+        parse_bool("exclude_overlap_from_train", self.exclude_overlap_from_train)
         for name in SPLIT_NAMES:
             object.__setattr__(self, name, parse_float(name, getattr(self, name), minimum=0.0, maximum=1.0))
         parse_int("seed", self.seed, minimum=0, maximum=2**63 - 1)

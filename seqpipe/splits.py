@@ -9,7 +9,7 @@ compute it for its own part without asking the driver. The index follows ``SPLIT
 from __future__ import annotations
 
 from collections.abc import Sequence
-from typing import Final
+from typing import Any, Final
 
 import numpy as np
 
@@ -44,8 +44,29 @@ def split_of(hashes: np.ndarray, fractions: Sequence[float], seed: int) -> np.nd
     return np.searchsorted(edges, u, side="right").astype(np.int8)
 
 
-def assign_splits(spec: SplitSpec, hashes: np.ndarray, keep: np.ndarray | None) -> np.ndarray:
-    """Split index per document of a part (from its (n, 16) content hashes); ``DROPPED`` where
-    ``keep`` (bool per document, None: keep all) drops a duplicate."""
-    splits = split_of(hashes, spec.fractions(), spec.seed)
+def assign_splits(spec: SplitSpec, hashes: np.ndarray, keep: np.ndarray | None, fixed: int | None = None) -> np.ndarray:
+    """Split index per document of a part (from its (n, 16) content hashes, or ``fixed`` for
+    every document of a source with a fixed split); ``DROPPED`` where ``keep`` (bool per
+    document, None: keep all) drops a duplicate or an overlap with a held-out split."""
+    if fixed is None:
+        splits = split_of(hashes, spec.fractions(), spec.seed)
+    else:
+        splits = np.full(len(hashes), fixed, dtype=np.int8)
     return splits if keep is None else np.where(keep, splits, DROPPED).astype(np.int8)
+
+
+def fixed_split_of(source: Any) -> int | None:
+    """The split index a source sends all its documents to, or None (hash-based)."""
+    from seqpipe.recipe import SPLIT_NAMES
+
+    name = getattr(source, "fixed_split", "")
+    return SPLIT_NAMES.index(name) if name else None
+
+
+def held_out_overlap(train_hashes: np.ndarray, held: np.ndarray) -> np.ndarray:
+    """Bool per row of ``train_hashes`` ((n, 16) uint8): True where the content also occurs in
+    ``held`` (the sorted distinct 16-byte hashes of fixed validation/test documents)."""
+    if len(train_hashes) == 0 or len(held) == 0:
+        return np.zeros(len(train_hashes), dtype=bool)
+    rows = np.ascontiguousarray(train_hashes).view("V16").reshape(-1)
+    return np.isin(rows, held)

@@ -43,6 +43,9 @@ class VocabSpec:
     end: str = "<eos>"
     min_count: int = 1
     cap: int = 0  # 0: no cap
+    # a dataset (path relative to the recipe, or a URI) whose vocabulary and tokenizer state this
+    # build copies instead of fitting its own ("": fit one); see seqpipe/_reuse.py
+    reuse_from: str = ""
 
     def __post_init__(self) -> None:
         reserved = parse_str_tuple("reserved", self.reserved)
@@ -59,6 +62,7 @@ class VocabSpec:
                 )
         parse_int("min_count", self.min_count, minimum=1)
         parse_int("cap", self.cap, minimum=0)
+        parse_str("reuse_from", self.reuse_from, allow_empty=True)
         if self.cap and self.cap <= len(reserved):
             raise RecipeError("cap", f"expected more than the {len(reserved)} reserved tokens, got {self.cap}")
 

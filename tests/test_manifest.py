@@ -30,7 +30,7 @@ def minimal() -> dict[str, Any]:
             "recipe_fingerprint": hash_json(recipe),
             "inputs": [{"path": "a.txt", "bytes": 3, "hash": HEX}],
             "tokenizer": {"kind": "words", "files": []},
-            "vocabulary": {"path": "vocab.arrow", "bytes": 10, "hash": HEX, "entries": 5},
+            "vocabulary": {"path": "vocab.arrow", "bytes": 10, "hash": HEX, "entries": 5, "fingerprint": HEX},
             "dtype": "uint8",
             "splits": {
                 "train": {

@@ -42,6 +42,7 @@ DEFAULT_BATCH_BYTES: Final = 1 << 20
 INVALID_UTF8_POLICIES: Final = ("error", "replace", "skip")
 OVERSIZE_POLICIES: Final = ("error", "skip", "truncate")
 BAD_RECORD_POLICIES: Final = ("error", "skip")
+SPLIT_NAMES: Final = ("train", "validation", "test")  # as seqpipe.recipe.SPLIT_NAMES (which imports this module)
 
 # A document made only of these (after line-end handling) is empty for our purposes.
 _BLANK_TEXT: Final = re.compile(r"[ \t\x0b\x0c\r\n]*")
@@ -112,9 +113,13 @@ class Source(ABC):
     on_invalid_utf8: str = "error"
     max_document_bytes: int = DEFAULT_MAX_DOCUMENT_BYTES
     on_oversize: str = "error"
+    # a split every document of this source goes to ("": the hash-based assignment), e.g. a
+    # held-out logbook that must stay in validation whatever its content hashes to
+    fixed_split: str = ""
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "paths", _parse_paths(self.paths))
+        parse_str("fixed_split", self.fixed_split, choices=("", *SPLIT_NAMES), allow_empty=True)
         parse_str("on_invalid_utf8", self.on_invalid_utf8, choices=INVALID_UTF8_POLICIES)
         parse_int("max_document_bytes", self.max_document_bytes, minimum=1)
         parse_str("on_oversize", self.on_oversize, choices=OVERSIZE_POLICIES)
