@@ -124,6 +124,10 @@ def _doc_hashes(docs: pa.Array) -> np.ndarray:
     return np.frombuffer(joined, dtype=np.uint8).reshape(-1, 16)
 
 
+BLANK_DOCUMENT_RE2: Final = r"^[ \t\x0b\x0c\r\n]*$"  # the blank set of sources.base.is_blank
+BLANK_AFTER_CLEANING: Final = "blank_after_cleaning"  # the summary.dropped key of such documents
+
+
 def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int]) -> tuple[pa.Array, np.ndarray | None]:
     """Run the cleaning steps in order; return the documents and, with a dedupe step, the hash of
     each surviving document as it was at the dedupe step."""
@@ -146,6 +150,14 @@ def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int]) -> tuple[pa.
                 raise SeqpipeError(f"clean step {name} drops documents but exposes no keep() mask")
         if len(docs) != before:
             dropped[name] = dropped.get(name, 0) + before - len(docs)
+    if recipe.clean and len(docs):
+        # Cleaning that leaves nothing but blanks drops the document (the rule readers apply),
+        # so no document becomes an end marker alone.
+        kept = pc.invert(pc.match_substring_regex(docs, BLANK_DOCUMENT_RE2)).to_numpy(zero_copy_only=False)
+        if not kept.all():
+            dropped[BLANK_AFTER_CLEANING] = dropped.get(BLANK_AFTER_CLEANING, 0) + int((~kept).sum())
+            docs = docs.filter(pa.array(kept))
+            dedupe = None if dedupe is None else dedupe[kept]
     return docs, dedupe
 
 

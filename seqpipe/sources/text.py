@@ -198,7 +198,9 @@ class TextSource(Source):
         ``slow`` skips the vectorized path (the tests compare the two).
         """
         if not slow:
-            fast = fast_documents(buf, cut, self.document == "paragraph", self.max_document_bytes)
+            fast = fast_documents(
+                buf, cut, self.document == "paragraph", self.max_document_bytes, keep_cr=self.line_ends == "keep"
+            )
             if fast is not None:
                 finisher.stats.documents += len(fast)
                 return fast

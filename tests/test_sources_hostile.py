@@ -1,0 +1,147 @@
+"""Sources in a hostile file tree and with hostile content: loops, special files, blank documents."""
+
+from __future__ import annotations
+
+import ast
+import os
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import pytest
+
+from seqpipe import build
+from seqpipe.errors import SourceError
+from seqpipe.recipe import parse_recipe
+from seqpipe.sources.base import ReadStats
+from seqpipe.sources.jsonl import JsonlSource
+from seqpipe.sources.text import TextSource
+
+REPO = Path(__file__).resolve().parent.parent
+
+RECIPE = """
+[[sources]]
+kind = "text"
+paths = "logs/**/*.txt"
+document = "line"{extra}
+[tokenizer]
+kind = "words"
+[shards]
+tokens = 500
+"""
+
+
+def run_python(code: str, timeout: float = 120) -> subprocess.CompletedProcess[str]:
+    """``code`` run by this interpreter in a child process with the repository importable."""
+    env = {**os.environ, "PYTHONPATH": str(REPO)}
+    return subprocess.run(
+        [sys.executable, "-c", textwrap.dedent(code)], capture_output=True, text=True, timeout=timeout, env=env
+    )
+
+
+def make_loop_tree(root: Path) -> None:
+    """logs/a.txt, logs/deck/b.txt and three symlinks back up the tree (a branching loop)."""
+    (root / "logs" / "deck").mkdir(parents=True)
+    (root / "logs" / "a.txt").write_text("stern line\n")
+    (root / "logs" / "deck" / "b.txt").write_text("bow line\n")
+    for name in ("up1", "up2"):
+        (root / "logs" / "deck" / name).symlink_to("..")
+    (root / "logs" / "self").symlink_to(".")
+
+
+def test_a_branching_symlink_loop_is_walked_once_and_listed(tmp_path: Path) -> None:
+    """A glob over a tree with a branching symlink loop ends, yields each file once, and lists every loop."""
+    make_loop_tree(tmp_path)
+    # In a child with a deadline: a walk that follows the loop would not end for hours.
+    done = run_python(
+        f"""
+        from pathlib import Path
+        from seqpipe.sources.text import TextSource
+        got = TextSource(paths="logs/**/*.txt").resolve_all(Path({str(tmp_path)!r}))
+        print(sorted(str(p) for p in got.files))
+        print(sorted(got.skipped))
+        """,
+        timeout=60,
+    )
+    assert done.returncode == 0, done.stderr
+    files, skipped = done.stdout.splitlines()
+    assert files == repr(sorted(str(tmp_path / p) for p in ("logs/a.txt", "logs/deck/b.txt")))
+    loops = ast.literal_eval(skipped)
+    assert sorted(p for p, what in loops if what == "symlink loop") == ["logs/deck/up1", "logs/deck/up2", "logs/self"]
+
+
+def test_symlink_loops_refused_when_asked(tmp_path: Path) -> None:
+    """on_special_file = "error" refuses a symlink loop with an error naming the link."""
+    make_loop_tree(tmp_path)
+    with pytest.raises(SourceError, match=r"deck/up1.*symlink loop"):
+        TextSource(paths="logs/**/*.txt", on_special_file="error").resolve(tmp_path)
+
+
+def make_special_tree(root: Path) -> None:
+    """Regular files plus a FIFO, a dangling symlink and a directory whose names match ``*.txt``."""
+    (root / "logs").mkdir(parents=True)
+    (root / "logs" / "a.txt").write_text("stern line\nbow line\n")
+    os.mkfifo(root / "logs" / "pipe.txt")
+    (root / "logs" / "gone.txt").symlink_to("nowhere.txt")
+    (root / "logs" / "old.txt").mkdir()
+
+
+def test_special_files_are_skipped_counted_and_named(tmp_path: Path) -> None:
+    """A FIFO, a dangling symlink and a directory that match the glob are named in the manifest and summary."""
+    make_special_tree(tmp_path)
+    res = build(parse_recipe(RECIPE.format(extra=""), tmp_path), tmp_path / "out", workers=1, progress=False)
+    assert res.manifest["summary"]["skipped_paths"] == [
+        {"path": "logs/gone.txt", "what": "dangling symlink"},
+        {"path": "logs/old.txt", "what": "directory"},
+        {"path": "logs/pipe.txt", "what": "fifo"},
+    ]
+    assert [i["path"] for i in res.manifest["inputs"]] == ["logs/a.txt"]
+    lines = "\n".join(res.summary_lines())
+    assert "logs/pipe.txt (fifo" in lines and "logs/gone.txt (dangling symlink" in lines
+
+
+def test_special_files_refused_when_asked(tmp_path: Path) -> None:
+    """on_special_file = "error" stops the build naming the first special file the glob matches."""
+    make_special_tree(tmp_path)
+    recipe = parse_recipe(RECIPE.format(extra='\non_special_file = "error"'), tmp_path)
+    with pytest.raises(SourceError, match=r"gone\.txt.*dangling symlink"):
+        build(recipe, tmp_path / "out", workers=1, progress=False)
+
+
+def test_blank_records_are_counted_at_read(tmp_path: Path) -> None:
+    """JSON Lines records whose text is blank are dropped and counted in summary.read.blank_skipped."""
+    (tmp_path / "logs").mkdir()
+    lines = ['{"text": "ferry left at dawn"}', '{"text": "  \\t "}', '{"text": "\\r\\n"}', '{"text": "fog"}']
+    (tmp_path / "logs" / "a.jsonl").write_text("\n".join(lines) + "\n")
+    recipe = (
+        RECIPE.replace('kind = "text"', 'kind = "jsonl"').replace("*.txt", "*.jsonl").replace('document = "line"', "")
+    )
+    res = build(parse_recipe(recipe.format(extra=""), tmp_path), tmp_path / "out", workers=1, progress=False)
+    read = res.manifest["summary"]["read"]
+    assert (read["documents"], read["blank_skipped"]) == (2, 2)
+
+
+def test_cleaning_that_blanks_a_document_drops_it_counted(tmp_path: Path) -> None:
+    """A paragraph of only NBSP and U+3000 is dropped (counted) after collapse_whitespace, not kept end-marker-only."""
+    (tmp_path / "logs").mkdir()
+    (tmp_path / "logs" / "a.txt").write_text("ferry left\n\n\u00a0\u3000\u00a0\n\nfog lifted\n", encoding="utf-8")
+    recipe = RECIPE.replace('document = "line"', 'document = "paragraph"') + '[[clean]]\nkind = "collapse_whitespace"\n'
+    res = build(parse_recipe(recipe.format(extra=""), tmp_path), tmp_path / "out", workers=1, progress=False)
+    summary = res.manifest["summary"]
+    assert summary["read"]["documents"] == 3
+    assert summary["dropped"] == {"blank_after_cleaning": 1}
+    assert sum(s["documents"] for s in res.manifest["splits"].values()) == 2
+
+
+@pytest.mark.parametrize(("line_ends", "expected"), [("normalize", "deck\nhold"), ("keep", "deck\r\nhold")])
+def test_line_ends_keep_leaves_carriage_returns(tmp_path: Path, line_ends: str, expected: str) -> None:
+    """line_ends = "keep" reads CRLF inside a document as written (text and JSON Lines); the default gives LF."""
+    (tmp_path / "a.txt").write_bytes(b"deck\r\nhold\r\n\r\nstern\r\n")
+    (tmp_path / "a.jsonl").write_bytes(b'{"text": "deck\\r\\nhold"}\n{"text": "stern"}\n')
+    for source in (
+        TextSource(paths="a.txt", document="paragraph", line_ends=line_ends),
+        JsonlSource(paths="a.jsonl", line_ends=line_ends),
+    ):
+        docs = [d for batch in source.documents(tmp_path, ReadStats()) for d in batch.to_pylist()]
+        assert docs == [expected, "stern"], type(source).__name__
