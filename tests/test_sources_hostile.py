@@ -145,3 +145,50 @@ def test_line_ends_keep_leaves_carriage_returns(tmp_path: Path, line_ends: str, 
     ):
         docs = [d for batch in source.documents(tmp_path, ReadStats()) for d in batch.to_pylist()]
         assert docs == [expected, "stern"], type(source).__name__
+
+
+# Alternatives that match the same text under a repetition: exponential backtracking on a run of
+# 'a' then 'b' (common practice). The textbook "(a+)+$" is not used: the regex module's own
+# checks end it at once (tried on regex 2026.11.19), while this one runs for hours on 40 letters.
+CATASTROPHIC = "(a|a)+$"
+
+
+@pytest.mark.parametrize(
+    ("section", "step"),
+    [
+        (f'[[clean]]\nkind = "replace"\npattern = "{CATASTROPHIC}"\n', "clean[0] replace"),
+        (f'[tokenizer]\nkind = "words"\npattern = "{CATASTROPHIC}"\n', "tokenizer words"),
+        (
+            '[tokenizer]\nkind = "bpe"\nchunking = "custom"\nchunk_regex = "(?:a|a)+$"\n[vocabulary]\ncap = 300\n',
+            "tokenizer bpe chunking",
+        ),
+    ],
+)
+def test_a_backtracking_pattern_fails_with_exit_3_naming_document_step_and_pattern(
+    tmp_path: Path, section: str, step: str
+) -> None:
+    """A catastrophic pattern on a 41-character line stops the build (exit 3) naming file, document, step, pattern."""
+    (tmp_path / "logs").mkdir()
+    (tmp_path / "logs" / "a.txt").write_text("harbour calm\n" + "a" * 40 + "b\n")
+    recipe = RECIPE.format(extra="")
+    if section.startswith("[tokenizer]"):
+        recipe = recipe.replace('[tokenizer]\nkind = "words"\n', section)
+    else:
+        recipe = recipe.replace("[tokenizer]", section + "[tokenizer]")
+    (tmp_path / "recipe.toml").write_text(recipe)
+    # The limit is lowered in the child so the test takes about a second, not the default 10 s.
+    done = run_python(
+        f"""
+        import sys
+        from seqpipe import _patterns
+        from seqpipe.cli import main
+        _patterns.SECONDS_PER_DOCUMENT = 0.5
+        sys.exit(main(["build", {str(tmp_path / "recipe.toml")!r}, "-o", {str(tmp_path / "out")!r}, "--workers", "1"]))
+        """,
+        timeout=120,
+    )
+    assert done.returncode == 3, done.stderr
+    pattern = "(?:a|a)+$" if "bpe" in step else CATASTROPHIC
+    assert "logs/a.txt" in done.stderr and "document 1 " in done.stderr
+    assert step in done.stderr and repr(pattern) in done.stderr
+    assert "Traceback" not in done.stderr
