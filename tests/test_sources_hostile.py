@@ -192,3 +192,86 @@ def test_a_backtracking_pattern_fails_with_exit_3_naming_document_step_and_patte
     assert "logs/a.txt" in done.stderr and "document 1 " in done.stderr
     assert step in done.stderr and repr(pattern) in done.stderr
     assert "Traceback" not in done.stderr
+
+
+@pytest.mark.slow
+def test_ingest_memory_of_a_highly_compressed_input_is_bounded_by_the_part_size(tmp_path: Path) -> None:
+    """Ingesting a 10 MB gzip of 200 MB of short lines in 8 MB parts keeps peak RSS growth bounded by the parts."""
+    part = 8 << 20
+    # In a child: ru_maxrss is the process's peak, and this process's peak is the test run's.
+    done = run_python(
+        f"""
+        import gc, gzip, resource
+        from pathlib import Path
+        from seqpipe._build import plan_build
+        from seqpipe.ingest import ingest_part
+        from seqpipe.recipe import parse_recipe
+        root = Path({str(tmp_path)!r})
+        (root / "logs").mkdir()
+        lines = b"".join(b"ferry %d north calm\\n" % i for i in range(1000)) * 64
+        with gzip.open(root / "logs" / "big.txt.gz", "wb", compresslevel=1) as f:
+            for _ in range((200 << 20) // len(lines)):
+                f.write(lines)
+        text = '[[sources]]\\nkind = "text"\\npaths = "logs/*.gz"\\ndocument = "line"\\n'
+        recipe = parse_recipe(text + '[tokenizer]\\nkind = "words"\\n', root)
+        plan = plan_build(recipe, root / "cache", {part})
+        gc.collect()
+        base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss << 10  # KiB on Linux
+        docs = sum(ingest_part(task).documents for task in plan.tasks)
+        print(len(plan.tasks), docs, (resource.getrusage(resource.RUSAGE_SELF).ru_maxrss << 10) - base)
+        """,
+        timeout=600,
+    )
+    assert done.returncode == 0, done.stderr
+    parts, docs, growth = map(int, done.stdout.split())
+    assert parts >= 20 and docs > 9_000_000
+    # A part of 20-byte lines costs about 16 times its bytes (per-document arrays, pieces and the
+    # Python strings of a batch on each ingest thread); the whole stream as one part cost 1.7 GB here.
+    assert growth < 40 * part, f"peak RSS grew by {growth} bytes over {parts} parts"
+
+
+def test_max_input_bytes_refuses_a_stream_that_decompresses_too_far(tmp_path: Path) -> None:
+    """max_input_bytes stops planning a compressed input once it decompresses past the limit, naming the file."""
+    import gzip
+
+    (tmp_path / "logs").mkdir()
+    (tmp_path / "logs" / "a.txt.gz").write_bytes(gzip.compress(b"calm sea\n" * 200_000))
+    for document in ("line", "file"):
+        source = TextSource(paths="logs/*.gz", document=document, max_input_bytes=1 << 20)
+        with pytest.raises(SourceError, match=r"a\.txt\.gz: decompresses to more than max_input_bytes = 1048576"):
+            source.plan(tmp_path / "logs" / "a.txt.gz", 1 << 16)
+    assert (
+        len(
+            TextSource(paths="x", document="line", max_input_bytes=2 << 20).plan(
+                tmp_path / "logs" / "a.txt.gz", 1 << 16
+            )
+        )
+        > 1
+    )
+    (tmp_path / "logs" / "a.jsonl.gz").write_bytes(gzip.compress(b'{"text": "fog"}\n' * 200_000))
+    with pytest.raises(SourceError, match=r"a\.jsonl\.gz: decompresses to more than"):
+        JsonlSource(paths="x", max_input_bytes=1 << 20).plan(tmp_path / "logs" / "a.jsonl.gz", 1 << 16)
+
+
+@pytest.mark.parametrize("codec", ["gzip", "zstd"])
+def test_compressed_parts_read_as_the_whole_stream(tmp_path: Path, codec: str) -> None:
+    """Paragraphs (CRLF, blank runs) and JSON Lines cut in the decompressed stream read exactly as one part does."""
+    import random
+
+    import pyarrow as pa
+
+    rnd = random.Random(5)
+    seps = [b"\n\n", b"\r\n\r\n", b"\n \n\t\n", b"\r\r"]
+    body = b"".join(b"tide %d\r\nrope %d" % (i, rnd.randint(0, 9)) + rnd.choice(seps) for i in range(3000))
+    records = b"".join(b'{"text": "dock %d"}\n' % i for i in range(3000))
+    suffix = {"gzip": ".gz", "zstd": ".zst"}[codec]
+    for name, data in (("a.txt", body), ("a.jsonl", records)):
+        with pa.output_stream(str(tmp_path / (name + suffix)), compression=codec) as out:
+            out.write(data)
+    for source, name in ((TextSource(paths="x", document="paragraph"), "a.txt"), (JsonlSource(paths="x"), "a.jsonl")):
+        path = tmp_path / (name + suffix)
+        whole = [d for a in source.read(path, source.plan(path, 1 << 30)[0], ReadStats()) for d in a.to_pylist()]
+        parts = source.plan(path, 997)
+        assert len(parts) > 10
+        cut = [d for p in parts for a in source.read(path, p, ReadStats()) for d in a.to_pylist()]
+        assert cut == whole and len(whole) == 3000
