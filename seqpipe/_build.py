@@ -132,6 +132,10 @@ class BuildResult:
             shown["duplicates dropped"] = s["duplicates_dropped"]
         if shown:
             lines.append("counted      " + ", ".join(f"{k}: {v}" for k, v in sorted(shown.items())))
+        skipped = s.get("skipped_paths", [])
+        lines.extend(f"skipped      {e['path']} ({e['what']}, not a regular file)" for e in skipped[:5])
+        if len(skipped) > 5:
+            lines.append(f"skipped      ... and {len(skipped) - 5} more (manifest summary.skipped_paths)")
         if "uploaded" in self.extra:
             x = self.extra
             lines.append(
@@ -306,6 +310,7 @@ class Plan:
     weights: tuple[int, ...]  # approximate bytes per part, for the progress bar
     input_bytes: int
     build_key: str  # names this build's staging directory
+    skipped: tuple[dict[str, str], ...] = ()  # glob matches that are not regular files: path, what
 
 
 @dataclass(frozen=True, slots=True)
@@ -393,28 +398,32 @@ def check_shard_count(recipe: Recipe, input_bytes: int) -> None:
         )
 
 
-def _input_files(recipe: Recipe) -> list[tuple[int, Path | str]]:
-    """(source index, file) for each input, in recipe order then each source's sorted order; a
-    file two sources match is read once, by the first."""
+def _input_files(recipe: Recipe) -> tuple[list[tuple[int, Path | str]], tuple[dict[str, str], ...]]:
+    """(source index, file) for each input, in recipe order then each source's sorted order (a
+    file two sources match is read once, by the first); and the matches skipped as not files."""
     from seqpipe.filesystem import identity
 
     files: list[tuple[int, Path | str]] = []  # a local Path, or a filesystem URI
     seen: set[Path | str] = set()
+    skipped: dict[str, str] = {}
     for si, source in enumerate(recipe.sources):
-        for f in source.resolve(recipe.root):
+        resolved = source.resolve_all(recipe.root)
+        for rel, what in resolved.skipped:
+            skipped.setdefault(rel, what)
+        for f in resolved.files:
             if identity(f) not in seen:
                 seen.add(identity(f))
                 files.append((si, f))
     if not files:
         raise SourceMissingError(str(recipe.root), "the recipe's sources match no file")
-    return files
+    return files, tuple({"path": p, "what": w} for p, w in sorted(skipped.items()))
 
 
 def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None) -> Plan:
     """Resolve the inputs, hash them, and cut each into parts of about ``part_bytes``."""
     from seqpipe.filesystem import file_size, is_uri
 
-    files = _input_files(recipe)
+    files, skipped = _input_files(recipe)
     hashed = _input_hashes([f for _, f in files], cache)
     hashes = [h for h, _ in hashed]
     sizes = [file_size(f) for _, f in files]
@@ -433,7 +442,7 @@ def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource
             weights.append(sizes[ii] // max(len(parts), 1))
     reused = source.manifest["fingerprint"] if source is not None else None
     build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes, "reused": reused})
-    return Plan(inputs, tuple(tasks), tuple(weights), sum(sizes), build_key)
+    return Plan(inputs, tuple(tasks), tuple(weights), sum(sizes), build_key, skipped)
 
 
 def _has_dedupe(recipe: Recipe) -> bool:
@@ -671,6 +680,7 @@ def _manifest_body(
             "dropped": _summed(m.dropped for m in ingested.parts),
             "duplicates_dropped": kept.duplicates,
             "train_overlap": {"documents": kept.overlap, "removed": kept.overlap_removed},
+            "skipped_paths": list(plan.skipped),
             "splits": sharded.summary,
         },
     }

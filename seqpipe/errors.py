@@ -11,6 +11,7 @@ already catch ``ValueError`` or ``FileNotFoundError`` keep working::
     │   ├── InvalidUtf8Error                 bytes that are not UTF-8 (path + byte offset)
     │   └── RecordError                      a JSON Lines / Parquet / Arrow record is unusable
     ├── EmptyCorpusError(ValueError)         nothing left to build from (after cleaning)
+    ├── PatternTimeoutError(TimeoutError)    a regular expression ran past its per-document time limit
     ├── TokenizerError(ValueError)           text the tokenizer cannot encode or decode
     ├── DatasetError(ValueError)             a built dataset cannot be used
     │   ├── ManifestError                    manifest missing, malformed, wrong version
@@ -93,6 +94,21 @@ class RecordError(SourceError):
 
 class EmptyCorpusError(SeqpipeError, ValueError):
     """No document survives reading and cleaning, or a split needed for a step is empty."""
+
+
+class PatternTimeoutError(SeqpipeError, TimeoutError):
+    """A recipe's regular expression took longer than its per-document limit on one document.
+
+    ``step`` names the recipe step (``clean[2] replace``, ``tokenizer words``), ``pattern`` the
+    expression and ``document`` the document's index: in the batch the step saw when raised
+    by a step, among the part's documents as read once the build names the input file.
+    """
+
+    def __init__(self, message: str, *, step: str, pattern: str, document: int) -> None:
+        super().__init__(message, step=step, pattern=pattern, document=document)
+        self.step = step
+        self.pattern = pattern
+        self.document = document
 
 
 class TokenizerError(SeqpipeError, ValueError):

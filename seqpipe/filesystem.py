@@ -22,6 +22,7 @@ from __future__ import annotations
 import fnmatch
 import os
 import re
+import stat
 import threading
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -319,3 +320,131 @@ def suffix(path: SourcePath) -> str:
     if is_uri(path):
         return PurePosixPath(parse_uri(str(path)).path).suffix
     return Path(path).suffix
+
+
+# -- local globs -------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class LocalMatches:
+    """What a local glob matched: regular files, and the matches that are not one.
+
+    ``files`` are relative POSIX paths of regular files (symlinks to one included), in walk
+    order. ``skipped`` pairs a relative path with what it is instead: ``"fifo"``, ``"socket"``,
+    ``"character device"``, ``"block device"``, ``"directory"``, ``"dangling symlink"``, or
+    ``"symlink loop"`` (a directory symlink that leads back to a directory being walked).
+    """
+
+    files: tuple[str, ...]
+    skipped: tuple[tuple[str, str], ...]
+
+
+def _kind_of(mode: int) -> str:
+    kinds = (
+        (stat.S_ISFIFO, "fifo"),
+        (stat.S_ISSOCK, "socket"),
+        (stat.S_ISCHR, "character device"),
+        (stat.S_ISBLK, "block device"),
+        (stat.S_ISDIR, "directory"),
+    )
+    return next((name for test, name in kinds if test(mode)), "special file")
+
+
+def _target_stat(path: str) -> os.stat_result | None:
+    """``os.stat`` following symlinks; None for a dangling symlink or a symlink loop."""
+    try:
+        return os.stat(path)
+    except OSError:
+        return None
+
+
+class _LocalWalk:
+    """One walk of a directory tree for the segments of a glob after its fixed prefix.
+
+    Each real directory (device and inode) is entered at most once, so a symlink that points
+    back to a directory on the current walk, or a branching loop of them, costs one visit
+    instead of growing until the path length limit (which ``glob.glob`` does).
+    """
+
+    __slots__ = ("base", "deep", "files", "hidden", "rest", "seen", "skipped")
+
+    def __init__(self, base: str, rest: list[str]) -> None:
+        self.base = base
+        self.rest = rest
+        self.deep = "**" in rest
+        self.hidden = any(s.startswith(".") for s in rest)
+        self.files: list[str] = []
+        self.skipped: list[tuple[str, str]] = []
+        self.seen: set[tuple[int, int]] = set()
+
+    def _may_descend(self, names: list[str]) -> bool:
+        if not self.hidden and names[-1].startswith("."):
+            return False
+        if self.deep:
+            return True
+        return len(names) < len(self.rest) and all(_match_name(p, n) for p, n in zip(self.rest, names, strict=False))
+
+    def walk(self, directory: str, names: list[str], ancestors: frozenset[tuple[int, int]]) -> None:
+        try:
+            with os.scandir(directory) as it:
+                entries = sorted(it, key=lambda e: e.name)
+        except OSError:
+            return  # unreadable or vanished directory: glob.glob skips it too
+        for entry in entries:
+            here = [*names, entry.name]
+            rel = "/".join(here)
+            st = _target_stat(entry.path)
+            if st is None:
+                if _match(self.rest, here):
+                    self.skipped.append((rel, "dangling symlink" if entry.is_symlink() else "unreadable"))
+                continue
+            if stat.S_ISDIR(st.st_mode):
+                if _match(self.rest, here) and self.rest[-1] != "**":
+                    self.skipped.append((rel, "directory"))
+                if not self._may_descend(here):
+                    continue
+                ident = (st.st_dev, st.st_ino)
+                if ident in ancestors:
+                    self.skipped.append((rel, "symlink loop"))
+                elif ident not in self.seen:
+                    self.seen.add(ident)
+                    self.walk(entry.path, here, ancestors | {ident})
+            elif _match(self.rest, here):
+                if stat.S_ISREG(st.st_mode):
+                    self.files.append(rel)
+                else:
+                    self.skipped.append((rel, _kind_of(st.st_mode)))
+
+
+def glob_local(root: Path, pattern: str) -> LocalMatches:
+    """What ``pattern`` (relative to ``root``, or absolute) matches on the local disk.
+
+    The same syntax as :func:`glob_uri` (and ``glob.glob(recursive=True)``): ``*``, ``?``,
+    ``[...]``, ``**`` for any number of directories, hidden names only for patterns that start
+    with a dot. Paths in the result are relative to ``root`` as written (``..`` kept).
+    """
+    if pattern.endswith("/"):
+        return LocalMatches((), ())  # a pattern ending in a slash names directories, never a file
+    segments = [s for s in pattern.split("/") if s and s != "."]
+    fixed = next((i for i, s in enumerate(segments) if _MAGIC.search(s)), len(segments))
+    base, rest = segments[:fixed], segments[fixed:]
+    prefix = "/" if pattern.startswith("/") else ""
+    base_rel = prefix + "/".join(base)
+    if not rest:
+        full = os.path.join(root, base_rel) if base_rel else str(root)
+        st = _target_stat(full)
+        if st is None:
+            dangling = os.path.islink(full)
+            return LocalMatches((), ((base_rel, "dangling symlink"),) if dangling else ())
+        if not os.path.isfile(full):
+            return LocalMatches((), ((base_rel, _kind_of(st.st_mode)),))
+        return LocalMatches((base_rel,), ())
+    start = os.path.join(root, base_rel) if base_rel else str(root)
+    walk = _LocalWalk(start, rest)
+    st = _target_stat(start)
+    if st is None or not os.path.isdir(start):
+        return LocalMatches((), ())
+    walk.seen.add((st.st_dev, st.st_ino))
+    walk.walk(start, [], frozenset({(st.st_dev, st.st_ino)}))
+    join = (lambda rel: f"{base_rel.rstrip('/')}/{rel}") if base_rel else (lambda rel: rel)
+    return LocalMatches(tuple(join(f) for f in walk.files), tuple((join(p), w) for p, w in walk.skipped))

@@ -34,7 +34,7 @@ import xxhash
 
 from seqpipe._hashing import hash_array, hash_file, hash_json
 from seqpipe._parse import to_plain
-from seqpipe.errors import SeqpipeError, SourceError
+from seqpipe.errors import PatternTimeoutError, SeqpipeError, SourceError
 from seqpipe.recipe import Recipe
 from seqpipe.shards import fsync_dir, id_dtype, read_shard, read_table, write_shard, write_table
 from seqpipe.splits import assign_splits, fixed_split_of
@@ -124,10 +124,15 @@ def _doc_hashes(docs: pa.Array) -> np.ndarray:
     return np.frombuffer(joined, dtype=np.uint8).reshape(-1, 16)
 
 
-def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int]) -> tuple[pa.Array, np.ndarray | None]:
-    """Run the cleaning steps in order; return the documents and, with a dedupe step, the hash of
-    each surviving document as it was at the dedupe step."""
+BLANK_DOCUMENT_RE2: Final = r"^[ \t\x0b\x0c\r\n]*$"  # the blank set of sources.base.is_blank
+BLANK_AFTER_CLEANING: Final = "blank_after_cleaning"  # the summary.dropped key of such documents
+
+
+def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int]) -> tuple[pa.Array, np.ndarray | None, np.ndarray]:
+    """Run the cleaning steps in order; return the documents, with a dedupe step the hash of
+    each surviving document as it was at the dedupe step, and each survivor's index in ``docs``."""
     dedupe: np.ndarray | None = None
+    positions = np.arange(len(docs), dtype=np.int64)
     for i, step in enumerate(recipe.clean):
         name = f"{i}:{step.kind}"
         if getattr(step, "is_dedupe", False):
@@ -138,15 +143,38 @@ def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int]) -> tuple[pa.
         if keep_fn is not None:
             mask = np.asarray(keep_fn(docs), dtype=bool)
             docs = docs.filter(pa.array(mask))
+            positions = positions[mask]
             if dedupe is not None:
                 dedupe = dedupe[mask]
         else:
-            docs = step.apply(docs)
+            try:
+                docs = step.apply(docs)
+            except PatternTimeoutError as exc:
+                raise _renumbered(exc, f"clean[{i}] {step.kind}", positions) from None
             if len(docs) != before and dedupe is not None:
                 raise SeqpipeError(f"clean step {name} drops documents but exposes no keep() mask")
         if len(docs) != before:
             dropped[name] = dropped.get(name, 0) + before - len(docs)
-    return docs, dedupe
+    if recipe.clean and len(docs):
+        # Cleaning that leaves nothing but blanks drops the document (the rule readers apply),
+        # so no document becomes an end marker alone.
+        kept = pc.invert(pc.match_substring_regex(docs, BLANK_DOCUMENT_RE2)).to_numpy(zero_copy_only=False)
+        if not kept.all():
+            dropped[BLANK_AFTER_CLEANING] = dropped.get(BLANK_AFTER_CLEANING, 0) + int((~kept).sum())
+            docs = docs.filter(pa.array(kept))
+            positions = positions[kept]
+            dedupe = None if dedupe is None else dedupe[kept]
+    return docs, dedupe, positions
+
+
+def _renumbered(exc: PatternTimeoutError, step: str, positions: np.ndarray, first: int = 0) -> PatternTimeoutError:
+    """``exc`` with its document counted among the documents as read (``positions`` maps the
+    step's batch to the read batch, whose first document is number ``first``)."""
+    document = first + int(positions[exc.document])
+    message = exc.message.replace(f"{exc.step}:", f"{step}:", 1).replace(
+        f"on document {exc.document} ", f"on document {document} ", 1
+    )
+    return PatternTimeoutError(message, step=step, pattern=exc.pattern, document=document)
 
 
 def _merge_segments(parts: Sequence[Segments]) -> Segments:
@@ -204,10 +232,14 @@ class _Batch:
     dropped: dict[str, int]
 
 
-def _process_batch(recipe: Recipe, batch: pa.Array) -> _Batch:
-    """Clean, segment and describe one batch of documents (runs on an ingest thread)."""
+def _process_batch(recipe: Recipe, batch: pa.Array, first: int = 0) -> _Batch:
+    """Clean, segment and describe one batch of documents (runs on an ingest thread); the
+    batch's first document is document ``first`` of the part (for error messages)."""
     dropped: dict[str, int] = {}
-    docs, dedupe = _clean(recipe, batch, dropped)
+    try:
+        docs, dedupe, positions = _clean(recipe, batch, dropped)
+    except PatternTimeoutError as exc:
+        raise _renumbered(exc, exc.step, np.arange(len(batch)), first) from None
     if len(docs) == 0:
         return _Batch(None, {}, dropped)
     docs = docs.cast(pa.large_string())
@@ -216,7 +248,10 @@ def _process_batch(recipe: Recipe, batch: pa.Array) -> _Batch:
         "bytes": pc.binary_length(docs).to_numpy(zero_copy_only=False).astype(np.int64),
         "words": count_words(docs),
     }
-    segments = recipe.tokenizer.segment(docs)
+    try:
+        segments = recipe.tokenizer.segment(docs)
+    except PatternTimeoutError as exc:
+        raise _renumbered(exc, exc.step, positions, first) from None
     if dedupe is not None:
         columns["dedupe"] = dedupe
     return _Batch(segments, columns, dropped)
@@ -228,14 +263,17 @@ def _processed(recipe: Recipe, batches: Iterator[pa.Array], threads: int) -> Ite
     Batches are cleaned and segmented on a few threads (Arrow and numpy release the GIL) while
     this thread reads on. With one thread, batches are processed inline: a worker given one
     core uses one core."""
+    first = 0
     if threads == 1:
         for batch in batches:
-            yield _process_batch(recipe, batch)
+            yield _process_batch(recipe, batch, first)
+            first += len(batch)
         return
     with ThreadPoolExecutor(max_workers=threads) as pool:
         pending: deque[Future[_Batch]] = deque()
         for batch in batches:
-            pending.append(pool.submit(_process_batch, recipe, batch))
+            pending.append(pool.submit(_process_batch, recipe, batch, first))
+            first += len(batch)
             while len(pending) > threads:
                 yield pending.popleft().result()
         while pending:
@@ -297,7 +335,14 @@ def ingest_part(task: IngestTask) -> PartMeta:
     recipe = task.recipe
     stats = ReadStats()
     batches = recipe.sources[task.source_index].read(task.path, task.part, stats, batch_bytes=task.batch_bytes)
-    got = _gather(_processed(recipe, batches, task.threads or ingest_threads()))
+    try:
+        got = _gather(_processed(recipe, batches, task.threads or ingest_threads()))
+    except PatternTimeoutError as exc:
+        # a part's start: a byte offset (text, JSON Lines) or a row group / record batch index
+        where = task.path + (f" (the part starting at {task.part.start})" if task.part.start else "")
+        raise PatternTimeoutError(
+            f"{where}: {exc.message}", step=exc.step, pattern=exc.pattern, document=exc.document
+        ) from None
     seg = got.segments
     keys = seg.keys.cast(pa.binary())
     meta = PartMeta(

@@ -83,6 +83,7 @@ EXIT_CODES = {
     "InvalidUtf8Error": 3,
     "RecordError": 3,
     "EmptyCorpusError": 3,
+    "PatternTimeoutError": 3,
     "TokenizerError": 3,
     "DatasetError": 4,
     "ManifestError": 4,

@@ -461,11 +461,16 @@ def test_plan_cuts_on_document_boundaries(tmp_path: Path) -> None:
             assert data[: after.start].endswith(ends)
 
 
-def test_compressed_and_whole_file_sources_are_one_part(tmp_path: Path) -> None:
-    """A compressed file cannot be cut (no random access), nor can a file-mode document."""
-    (tmp_path / "a.txt.gz").write_bytes(gzip.compress(b"x\n" * 10000))
+def test_compressed_sources_are_cut_in_the_decompressed_stream(tmp_path: Path) -> None:
+    """A compressed file is cut into parts of its decompressed stream that read as the whole file; a
+    file-mode document is one part."""
+    (tmp_path / "a.txt.gz").write_bytes(gzip.compress(b"".join(b"x%d\n" % i for i in range(10000))))
     (tmp_path / "b.txt").write_bytes(b"x\n" * 10000)
-    assert len(TextSource(paths="*", document="line").plan(tmp_path / "a.txt.gz", 10)) == 1
+    source = TextSource(paths="*", document="line")
+    parts = source.plan(tmp_path / "a.txt.gz", 1000)
+    assert len(parts) > 50 and parts[0].start == 0 and parts[-1].stop is None
+    docs = [d for part in parts for a in source.read(tmp_path / "a.txt.gz", part, ReadStats()) for d in a.to_pylist()]
+    assert docs == [f"x{i}" for i in range(10000)]
     assert len(TextSource(paths="*", document="file").plan(tmp_path / "b.txt", 10)) == 1
     assert len(TextSource(paths="*", document="line").plan(tmp_path / "b.txt", 10)) > 1
 

@@ -9,6 +9,7 @@ from typing import Any, ClassVar
 import pyarrow as pa
 import regex
 
+from seqpipe import _patterns
 from seqpipe._parse import parse_str
 from seqpipe.clean.base import CleanStep, as_documents
 from seqpipe.errors import RecipeError
@@ -53,4 +54,12 @@ class Replace(CleanStep):
         # The replacement is a template to regex.sub; doubling each backslash makes it literal
         # (no "\1" or "\g<name>" expansion) while still running in C, not a call per match.
         literal = self.replacement.replace("\\", "\\\\")
-        return pa.array([sub(literal, text) for text in docs.to_pylist()], type=pa.large_string())
+        texts = docs.to_pylist()
+        limit = _patterns.SECONDS_PER_DOCUMENT
+        out = []
+        for d, text in enumerate(texts):
+            try:
+                out.append(sub(literal, text, timeout=limit))
+            except TimeoutError:
+                raise _patterns.pattern_timeout("replace", self.pattern, d, text) from None
+        return pa.array(out, type=pa.large_string())

@@ -24,7 +24,7 @@ from seqpipe.sources.base import DocumentFinisher, Part, RecordSource
 T = TypeVar("T")
 
 # The blank set of base.is_blank, applied after CR has become LF.
-_BLANK_RE2: Final = r"^[ \t\x0b\x0c\n]*$"
+_BLANK_RE2: Final = r"^[ \t\x0b\x0c\r\n]*$"
 
 
 def group_parts(sizes: list[int], target_bytes: int) -> list[Part]:
@@ -119,9 +119,10 @@ def finish_column(column: pa.Array, first_row: int, source: RecordSource, finish
     finisher.stats.bytes_read += int(pc.sum(lengths).as_py() or 0)
     oversize = bool(pc.any(pc.greater(lengths, source.max_document_bytes)).as_py())
     if column.null_count == 0 and not oversize and _valid_utf8(column):
-        if pc.any(pc.match_substring(column, "\r")).as_py():
+        if source.line_ends != "keep" and pc.any(pc.match_substring(column, "\r")).as_py():
             column = pc.replace_substring(pc.replace_substring(column, "\r\n", "\n"), "\r", "\n")
         blank = pc.match_substring_regex(column, _BLANK_RE2)
+        finisher.stats.blank_skipped += int(pc.sum(blank).as_py() or 0)
         out: pa.Array = column.filter(pc.invert(blank))
         return out
     docs = []

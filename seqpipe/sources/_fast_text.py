@@ -102,7 +102,9 @@ def document_spans(a: Bytes, paragraphs: bool, has_cr: bool) -> tuple[Int64s, In
     return starts[first], stops[last]
 
 
-def fast_documents(buf: bytes | bytearray, end: int, paragraphs: bool, limit: int) -> pa.Array | None:
+def fast_documents(
+    buf: bytes | bytearray, end: int, paragraphs: bool, limit: int, *, keep_cr: bool = False
+) -> pa.Array | None:
     """The documents of ``buf[:end]`` (whole documents) as ``large_string``, or None for the exact path.
 
     See the module docstring for the fallback conditions. The result owns its bytes (``take``
@@ -128,7 +130,7 @@ def fast_documents(buf: bytes | bytearray, end: int, paragraphs: bool, limit: in
         docs.validate(full=True)  # the UTF-8 of every value, in C
     except pa.ArrowInvalid:
         return None
-    if paragraphs and has_cr:
+    if paragraphs and has_cr and not keep_cr:
         # The order of normalize_line_ends: CRLF first, then a lone CR.
         docs = pc.replace_substring(pc.replace_substring(docs, "\r\n", "\n"), "\r", "\n")
     out: pa.Array = docs

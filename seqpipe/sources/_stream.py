@@ -55,13 +55,16 @@ def read_blocks(
 
     A UTF-8 byte order mark at offset 0 is dropped; offsets stay absolute, so the
     first block of such a file starts at offset 3 (and is empty if nothing follows
-    the mark). Never reads at or past ``stop``.
+    the mark). Never reads at or past ``stop``. A compressed stream cannot seek: a part
+    that starts later decompresses the bytes before ``start`` and drops them.
     """
-    if codec is not None and start != 0:
-        raise SourceError(str(path), "a compressed file can only be read from its start")
     with _open(path, codec) as stream:
-        if start:
+        if start and codec is None:
             stream.seek(start)
+        elif start:
+            skipped = 0
+            while skipped < start and (more := _read(stream, min(_SCAN_BLOCK << 4, start - skipped), path, codec)):
+                skipped += len(more)
         pos = start
         pending = b""
         if start == 0:
@@ -130,6 +133,42 @@ def plan_cuts(path: SourcePath, size: int, target_bytes: int, separator: re.Patt
             break
         cuts.append(cut)
     return list(zip(cuts, [*cuts[1:], size], strict=True))
+
+
+def plan_stream_cuts(
+    path: SourcePath, codec: str, target_bytes: int, separator: re.Pattern[bytes], max_input_bytes: int
+) -> list[tuple[int, int | None]]:
+    """Ranges of the decompressed stream of ``path``: parts of about ``target_bytes``, each cut
+    just after a ``separator`` match (the last part runs to the end: ``None``).
+
+    Decompresses the stream once, holding one block and the blank run carried between blocks,
+    so the memory of the parts (and of planning) does not depend on the compression ratio.
+    ``max_input_bytes`` (0: none) refuses a stream that decompresses to more bytes.
+    """
+    cuts = [0]
+    pos = 0  # offset of buf[0] in the decompressed stream
+    buf = bytearray()
+    with _open(path, codec) as stream:
+        while block := _read(stream, _SCAN_BLOCK << 4, path, codec):
+            buf += block
+            if max_input_bytes and pos + len(buf) > max_input_bytes:
+                raise SourceError(
+                    str(path),
+                    f"decompresses to more than max_input_bytes = {max_input_bytes} bytes; raise the limit "
+                    "(0 for none) if this input is expected to be this large",
+                )
+            frm = max(0, cuts[-1] + target_bytes - pos)
+            # a match that reaches the end of the buffer may go on in the next block: wait for it
+            while frm < len(buf) and (match := separator.search(buf, frm)) is not None and match.end() < len(buf):
+                cuts.append(pos + match.end())
+                frm = max(match.end(), cuts[-1] + target_bytes - pos)
+            keep = max(len(buf.rstrip()), min(len(buf), max(0, cuts[-1] + target_bytes - pos)))
+            buf = drop_front(buf, keep)
+            pos += keep
+    end = pos + len(buf)
+    if len(cuts) > 1 and cuts[-1] >= end:
+        cuts.pop()  # a cut at the very end leaves nothing after it
+    return list(zip(cuts, [*cuts[1:], None], strict=True))
 
 
 def drop_front(buf: bytearray, n: int) -> bytearray:

@@ -15,27 +15,27 @@ Rules every kind follows (see :class:`DocumentFinisher`): a document larger than
 ``max_document_bytes`` is refused, skipped or truncated (``on_oversize``) *before*
 its bytes are decoded; bytes that are not UTF-8 are refused, replaced with
 U+FFFD or make the document skipped (``on_invalid_utf8``); CRLF and CR-only line
-ends become ``"\\n"``; a document with nothing but ASCII blanks (space, tab,
-vertical tab, form feed, line ends) is not emitted.
+ends become ``"\\n"`` (unless ``line_ends = "keep"``); a document with nothing but
+ASCII blanks (space, tab, vertical tab, form feed, line ends) is not emitted and is
+counted in ``ReadStats.blank_skipped``.
 """
 
 from __future__ import annotations
 
 import dataclasses
-import glob
 import os
 import re
 from abc import ABC, abstractmethod
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
-from pathlib import Path, PurePath
+from pathlib import Path
 from typing import Any, ClassVar, Final
 
 import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str, parse_str_tuple, to_plain
 from seqpipe.errors import InvalidUtf8Error, RecipeError, SourceError, SourceMissingError
-from seqpipe.filesystem import SourcePath, glob_uri, is_uri
+from seqpipe.filesystem import SourcePath, glob_local, glob_uri, is_uri
 
 DEFAULT_MAX_DOCUMENT_BYTES: Final = 64 << 20
 DEFAULT_BATCH_BYTES: Final = 1 << 20
@@ -43,6 +43,8 @@ INVALID_UTF8_POLICIES: Final = ("error", "replace", "skip")
 OVERSIZE_POLICIES: Final = ("error", "skip", "truncate")
 BAD_RECORD_POLICIES: Final = ("error", "skip")
 SPLIT_NAMES: Final = ("train", "validation", "test")  # as seqpipe.recipe.SPLIT_NAMES (which imports this module)
+SPECIAL_FILE_POLICIES: Final = ("skip", "error")
+LINE_END_MODES: Final = ("normalize", "keep")
 
 # A document made only of these (after line-end handling) is empty for our purposes.
 _BLANK_TEXT: Final = re.compile(r"[ \t\x0b\x0c\r\n]*")
@@ -77,6 +79,7 @@ class ReadStats:
     bad_records_skipped: int = 0
     oversize_skipped: int = 0
     oversize_truncated: int = 0
+    blank_skipped: int = 0
 
     def add(self, other: ReadStats) -> None:
         """Add ``other``'s counts to these."""
@@ -86,6 +89,15 @@ class ReadStats:
     def as_dict(self) -> dict[str, int]:
         """The counters as a plain dict (for manifests and reports)."""
         return {f.name: int(getattr(self, f.name)) for f in dataclasses.fields(self)}
+
+
+@dataclass(frozen=True, slots=True)
+class Resolved:
+    """What a source's globs matched: the files to read, and ``(path, what)`` of each other match
+    (paths relative to the recipe's directory, see :meth:`Source.resolve_all`)."""
+
+    files: list[SourcePath]
+    skipped: tuple[tuple[str, str], ...]
 
 
 def _parse_paths(value: Any) -> tuple[str, ...]:
@@ -116,6 +128,8 @@ class Source(ABC):
     # a split every document of this source goes to ("": the hash-based assignment), e.g. a
     # held-out logbook that must stay in validation whatever its content hashes to
     fixed_split: str = ""
+    on_special_file: str = "skip"
+    line_ends: str = "normalize"
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "paths", _parse_paths(self.paths))
@@ -123,6 +137,8 @@ class Source(ABC):
         parse_str("on_invalid_utf8", self.on_invalid_utf8, choices=INVALID_UTF8_POLICIES)
         parse_int("max_document_bytes", self.max_document_bytes, minimum=1)
         parse_str("on_oversize", self.on_oversize, choices=OVERSIZE_POLICIES)
+        parse_str("on_special_file", self.on_special_file, choices=SPECIAL_FILE_POLICIES)
+        parse_str("line_ends", self.line_ends, choices=LINE_END_MODES)
 
     def to_dict(self) -> dict[str, Any]:
         """The source as a plain table (with its ``kind``), for canonical recipes."""
@@ -134,22 +150,40 @@ class Source(ABC):
 
         A local file is a ``Path`` under ``root``; a URI glob yields URIs (``str``), sorted
         among the local keys by the URI itself. Raises :class:`SourceMissingError` for a
-        glob that matches no file.
+        glob that matches no file. What else a local glob matches is in :meth:`resolve_all`.
+        """
+        return self.resolve_all(root).files
+
+    def resolve_all(self, root: Path) -> Resolved:
+        """:meth:`resolve`'s files, and the local matches that are not regular files.
+
+        A FIFO, socket, device, directory, dangling symlink or symlink loop that a glob
+        matches is skipped and listed (``on_special_file = "skip"``, the default) or refused
+        with a :class:`SourceError` naming it (``"error"``). Each real directory is walked
+        once, so a symlink loop cannot make the glob run forever.
         """
         found: dict[str, SourcePath] = {}
+        skipped: dict[str, str] = {}
         for pattern in self.paths:
             if is_uri(pattern):
                 for uri in glob_uri(pattern):
                     found.setdefault(uri, uri)
                 continue
-            hits = glob.glob(pattern, root_dir=root, recursive=True)
-            files = [h for h in hits if (root / h).is_file()]
-            if not files:
+            matches = glob_local(root, pattern)
+            for rel, what in matches.skipped:
+                if self.on_special_file == "error":
+                    raise SourceError(
+                        str(root / rel),
+                        f"glob {pattern!r} matches a {what}, not a regular file; remove it, narrow the "
+                        'glob, or set on_special_file = "skip" to skip and list it',
+                    )
+                skipped.setdefault(rel, what)
+            if not matches.files:
                 raise SourceMissingError(str(root), f"glob {pattern!r} matched no file under {root}")
-            for hit in files:
-                key = PurePath(os.path.normpath(hit)).as_posix()
+            for hit in matches.files:
+                key = os.path.normpath(hit).replace(os.sep, "/")
                 found.setdefault(key, root / key)
-        return [found[key] for key in sorted(found)]
+        return Resolved([found[key] for key in sorted(found)], tuple(sorted(skipped.items())))
 
     @abstractmethod
     def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:
@@ -224,7 +258,7 @@ class DocumentFinisher:
     only called when an error is raised (JSON Lines parts count lines lazily).
     """
 
-    __slots__ = ("_compressed", "_invalid", "_limit", "_line_of", "_oversize", "path", "stats")
+    __slots__ = ("_compressed", "_invalid", "_keep_cr", "_limit", "_line_of", "_oversize", "path", "stats")
 
     def __init__(
         self,
@@ -240,6 +274,7 @@ class DocumentFinisher:
         self._limit = source.max_document_bytes
         self._oversize = source.on_oversize
         self._invalid = source.on_invalid_utf8
+        self._keep_cr = source.line_ends == "keep"
         self._compressed = compressed
         self._line_of = line_of
 
@@ -324,8 +359,16 @@ class DocumentFinisher:
         text = self.decode(truncate_utf8(data, self._limit), offset=offset, line=line, row=row)
         if text is None:
             return None
-        text = normalize_line_ends(text)
-        return None if is_blank(text) else text
+        return self._unless_blank(text)
+
+    def _unless_blank(self, text: str) -> str | None:
+        """``text`` with its line ends as ``line_ends`` says, or None (counted) when it is blank."""
+        if not self._keep_cr:
+            text = normalize_line_ends(text)
+        if is_blank(text):
+            self.stats.blank_skipped += 1
+            return None
+        return text
 
     def finish_text(
         self, text: str, encoded_size: int, *, line: int | None = None, row: int | None = None
@@ -335,8 +378,7 @@ class DocumentFinisher:
             return None
         if encoded_size > self._limit:
             text = str(truncate_utf8(text.encode("utf-8"), self._limit), "utf-8")
-        text = normalize_line_ends(text)
-        return None if is_blank(text) else text
+        return self._unless_blank(text)
 
 
 def to_array(docs: list[str], stats: ReadStats) -> pa.Array:

@@ -27,7 +27,7 @@ import pyarrow as pa
 from seqpipe._parse import parse_int, parse_str
 from seqpipe.errors import RecordError
 from seqpipe.filesystem import SourcePath, file_size
-from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, plan_cuts, read_blocks
+from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, plan_cuts, plan_stream_cuts, read_blocks
 from seqpipe.sources.base import (
     DEFAULT_BATCH_BYTES,
     DocumentFinisher,
@@ -42,10 +42,10 @@ _LF: Final = re.compile(rb"\n")
 _NONBLANK: Final = re.compile(rb"[^ \t\x0b\x0c\r\n]")
 
 
-def _count_lines_before(path: SourcePath, offset: int) -> int:
-    """Number of LF bytes in the first ``offset`` bytes of an uncompressed file."""
+def _count_lines_before(path: SourcePath, offset: int, codec: str | None) -> int:
+    """Number of LF bytes in the first ``offset`` bytes of a file (of its decompressed stream)."""
     count = 0
-    for _, block in read_blocks(path, None, 0, offset, 8 << 20):
+    for _, block in read_blocks(path, codec, 0, offset, 8 << 20):
         count += block.count(b"\n")
     return count
 
@@ -57,16 +57,20 @@ class JsonlSource(RecordSource):
     kind: ClassVar[str] = "jsonl"
 
     compression: str = "auto"
+    max_input_bytes: int = 0
 
     def __post_init__(self) -> None:
         RecordSource.__post_init__(self)
         parse_str("compression", self.compression, choices=COMPRESSIONS)
+        parse_int("max_input_bytes", self.max_input_bytes, minimum=0)
 
     def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:
-        """Byte ranges cut just after a line end; a compressed file is one part."""
+        """Byte ranges cut just after a line end; a compressed file's ranges are of its decompressed
+        stream, found as it decompresses (memory bounded by the part size; ``max_input_bytes``)."""
         parse_int("target_bytes", target_bytes, minimum=1)
-        if codec_for(path, self.compression) is not None:
-            return [Part(0, None)]
+        codec = codec_for(path, self.compression)
+        if codec is not None:
+            return [Part(a, b) for a, b in plan_stream_cuts(path, codec, target_bytes, _LF, self.max_input_bytes)]
         size = file_size(path)
         # Only LF ends a JSON Lines record (a CR before it is JSON whitespace).
         return [Part(a, b) for a, b in plan_cuts(path, size, target_bytes, _LF)]
@@ -81,7 +85,7 @@ class JsonlSource(RecordSource):
 
         def line_of(relative: int) -> int:
             if not first_line:
-                first_line.append(_count_lines_before(path, part.start) if part.start else 0)
+                first_line.append(_count_lines_before(path, part.start, codec) if part.start else 0)
             return first_line[0] + relative
 
         finisher = DocumentFinisher(self, path, stats, compressed=codec is not None, line_of=line_of)

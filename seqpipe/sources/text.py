@@ -30,7 +30,7 @@ import pyarrow as pa
 from seqpipe._parse import parse_int, parse_str
 from seqpipe.filesystem import SourcePath, file_size
 from seqpipe.sources._fast_text import fast_documents, last_paragraph_cut
-from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, plan_cuts, read_blocks
+from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, plan_cuts, plan_stream_cuts, read_blocks
 from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, Source, to_array
 
 DOCUMENT_MODES: Final = ("file", "line", "paragraph")
@@ -119,22 +119,32 @@ class TextSource(Source):
 
     document: str = "file"
     compression: str = "auto"
+    max_input_bytes: int = 0
 
     def __post_init__(self) -> None:
         Source.__post_init__(self)
         parse_str("document", self.document, choices=DOCUMENT_MODES)
         parse_str("compression", self.compression, choices=COMPRESSIONS)
+        parse_int("max_input_bytes", self.max_input_bytes, minimum=0)
 
     def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:
         """Byte ranges cut just after a line end (line mode) or a blank line (paragraph mode).
 
-        Compressed files and ``document = "file"`` are one part.
+        ``document = "file"`` is one part. A compressed file is cut into parts of the decompressed
+        stream as it is decompressed (see ``plan_stream_cuts``), so memory stays bounded by the
+        part size whatever the compression ratio; ``max_input_bytes`` limits its decompressed size.
         """
         parse_int("target_bytes", target_bytes, minimum=1)
-        if codec_for(path, self.compression) is not None or self.document == "file":
+        codec = codec_for(path, self.compression)
+        separator = LINE_SEPARATOR if self.document == "line" else PARAGRAPH_SEPARATOR
+        if codec is not None and self.document != "file":
+            cuts = plan_stream_cuts(path, codec, target_bytes, separator, self.max_input_bytes)
+            return [Part(a, b) for a, b in cuts]
+        if codec is not None or self.document == "file":
+            if codec is not None and self.max_input_bytes:
+                plan_stream_cuts(path, codec, 1 << 62, separator, self.max_input_bytes)  # the size check only
             return [Part(0, None)]
         size = file_size(path)
-        separator = LINE_SEPARATOR if self.document == "line" else PARAGRAPH_SEPARATOR
         return [Part(a, b) for a, b in plan_cuts(path, size, target_bytes, separator)]
 
     def read(
@@ -198,7 +208,9 @@ class TextSource(Source):
         ``slow`` skips the vectorized path (the tests compare the two).
         """
         if not slow:
-            fast = fast_documents(buf, cut, self.document == "paragraph", self.max_document_bytes)
+            fast = fast_documents(
+                buf, cut, self.document == "paragraph", self.max_document_bytes, keep_cr=self.line_ends == "keep"
+            )
             if fast is not None:
                 finisher.stats.documents += len(fast)
                 return fast

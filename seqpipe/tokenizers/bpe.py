@@ -41,6 +41,7 @@ import numpy as np
 import pyarrow as pa
 import regex
 
+from seqpipe import _patterns
 from seqpipe._hashing import canonical_json
 from seqpipe._parse import parse_bool, parse_int, parse_str, parse_str_tuple, to_plain
 from seqpipe.errors import RecipeError, ShardCorruptError, TokenizerError
@@ -100,6 +101,20 @@ def _check_chunk_regex(pattern: str) -> None:
     if compiled.groups:
         # findall would return the groups instead of whole chunks
         raise RecipeError("chunk_regex", f"use non-capturing groups (?:...), got {pattern!r}")
+
+
+def _chunks(cut: Any, splitter: Any, text: str, limit: float) -> list[str]:
+    """``text`` cut into chunks (reserved names kept whole when ``splitter`` is given)."""
+    if splitter is None:
+        found: list[str] = cut.findall(text, timeout=limit)
+        return found
+    chunks: list[str] = []
+    for j, part in enumerate(splitter.split(text)):
+        if j % 2:
+            chunks.append(part)  # a reserved name, kept whole
+        elif part:
+            chunks.extend(cut.findall(part, timeout=limit))
+    return chunks
 
 
 @dataclass(frozen=True, slots=True)
@@ -165,16 +180,12 @@ class BpeTokenizer(Tokenizer):
         splitter = _reserved_splitter(self.reserved_names) if self.literal_reserved and self.reserved_names else None
         flat: list[str] = []
         lengths = np.empty(len(texts), dtype=np.int64)
+        limit = _patterns.SECONDS_PER_DOCUMENT
         for d, text in enumerate(texts):
-            if splitter is None:
-                chunks = cut.findall(text)
-            else:
-                chunks = []
-                for j, part in enumerate(splitter.split(text)):
-                    if j % 2:
-                        chunks.append(part)  # a reserved name, kept whole
-                    elif part:
-                        chunks.extend(cut.findall(part))
+            try:
+                chunks = _chunks(cut, splitter, text, limit)
+            except TimeoutError:
+                raise _patterns.pattern_timeout("tokenizer bpe chunking", self.pattern, d, text) from None
             if not all(chunks):  # a pattern that can match empty text
                 chunks = [c for c in chunks if c]
             lengths[d] = len(chunks)

@@ -15,12 +15,13 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import ClassVar, Final
+from typing import Any, ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
 import regex
 
+from seqpipe import _patterns
 from seqpipe._parse import parse_str
 from seqpipe.errors import RecipeError
 from seqpipe.tokenizers._common import as_string_array, segments_from_tokens, stored_vocabulary
@@ -154,6 +155,18 @@ def _segment_default(texts: pa.Array) -> tuple[pa.Array, np.ndarray]:
     return flat, np.diff(np.searchsorted(tok_pos, doc_bytes)).astype(np.int64)
 
 
+def _find_all(compiled: Any, texts: list[str], pattern: str) -> list[list[str]]:
+    """Every document's matches, each document under the pattern time limit."""
+    limit = _patterns.SECONDS_PER_DOCUMENT
+    found = []
+    for d, text in enumerate(texts):
+        try:
+            found.append(compiled.findall(text, timeout=limit))
+        except TimeoutError:
+            raise _patterns.pattern_timeout("tokenizer words", pattern, d, text) from None
+    return found
+
+
 @dataclass(frozen=True, slots=True)
 class WordTokenizer(Tokenizer):
     """Words by a regex pattern; decode joins tokens with ``separator``."""
@@ -175,8 +188,7 @@ class WordTokenizer(Tokenizer):
         if self.pattern == DEFAULT_PATTERN:
             flat, lengths = _segment_default(arr)
             return segments_from_tokens(flat, lengths)
-        compiled = regex.compile(self.pattern)
-        found = [compiled.findall(t) for t in arr.to_pylist()]
+        found = _find_all(regex.compile(self.pattern), arr.to_pylist(), self.pattern)
         lengths = np.fromiter((len(f) for f in found), dtype=np.int64, count=len(found))
         flat_list = [tok for toks in found for tok in toks]
         return segments_from_tokens(pa.array(flat_list, pa.large_string()), lengths)
