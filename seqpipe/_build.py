@@ -123,6 +123,7 @@ class BuildResult:
                 f"{len(sp['shards'])} shard(s)  unknown {st['unknown_rate']:.4%}  "
                 f"{st['bytes_per_token']:.2f} bytes/token  {st['tokens_per_word']:.2f} tokens/word"
             )
+        lines.extend(_empty_split_warnings(m))
         drops = {**s["read"], **{f"clean {k}": v for k, v in s["dropped"].items()}}
         shown = {k: v for k, v in drops.items() if v and k not in ("documents", "bytes_read")}
         if s["duplicates_dropped"]:
@@ -137,6 +138,18 @@ class BuildResult:
                 f"work directory {x['work_dir']}"
             )
         return lines
+
+
+def _empty_split_warnings(manifest: dict[str, Any]) -> list[str]:
+    """A line per split that got no document although the recipe gives it a share (a corpus too
+    small for its split fractions): its loss or perplexity could not be measured."""
+    fractions = manifest["recipe"]["splits"]
+    return [
+        f"warning      split {name!r} is empty (share {fractions[name]:g} of too few documents); "
+        "add documents or change [splits]"
+        for name in SPLIT_NAMES
+        if manifest["splits"][name]["documents"] == 0 and fractions.get(name, 0) > 0
+    ]
 
 
 def build(

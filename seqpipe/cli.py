@@ -202,8 +202,26 @@ def cmd_batches(args: argparse.Namespace) -> int:
         )
     except StreamError as exc:
         raise _option_error(exc) from None
+    if not len(stream):
+        raise _no_batches(args, split.num_tokens)
     print_batches(ds, stream, limit=args.limit, fmt=args.format)
     return EXIT_OK
+
+
+def _no_batches(args: argparse.Namespace, tokens: int) -> StreamError:
+    """The error for a stream without a single batch: an epoch of none is a mistake, not a result."""
+    if args.window + 1 > tokens:
+        return StreamError(
+            f"--window: {args.window} tokens (plus the one target beyond) is longer than split {args.split!r}, "
+            f"which holds {tokens} tokens; choose a window of at most {max(tokens - 1, 0)}",
+            key="window",
+        )
+    return StreamError(
+        f"--batch-size: split {args.split!r} ({tokens} tokens) gives no full batch of {args.batch_size} "
+        f"windows of {args.window} tokens on {args.world_size} rank(s); lower --batch-size or --window, "
+        "or pass --keep-last",
+        key="batch_size",
+    )
 
 
 def cmd_report(args: argparse.Namespace) -> int:

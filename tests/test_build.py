@@ -461,3 +461,17 @@ def test_a_damaged_cached_part_is_rebuilt_not_trusted(tmp_path: Path) -> None:
     assert result.parts_reused == result.parts_total - 1
     assert any("1 cached part(s) did not match" in line for line in result.summary_lines())
     assert verify(out).ok
+
+
+def test_summary_warns_about_empty_validation_and_test_splits(tmp_path: Path) -> None:
+    """A corpus too small to give every split a document builds, but the summary names each empty
+    split with a warning instead of listing it as if nothing were wrong."""
+    from conftest import write_project
+
+    recipe = load_recipe(write_project(tmp_path / "src", files=1, paragraphs=2))
+    result = build(recipe, tmp_path / "out", workers=1, progress=False)
+    empty = [n for n, sp in result.manifest["splits"].items() if sp["documents"] == 0]
+    assert empty, "the corpus was meant to leave a split empty"
+    warnings = [line for line in result.summary_lines() if line.startswith("warning")]
+    assert len(warnings) == len(empty)
+    assert all(any(f"split {name!r}" in w for w in warnings) for name in empty)

@@ -187,3 +187,19 @@ def test_dataset_of_the_old_format_is_refused_with_what_to_do(
     assert code == EXIT_DATASET, (out, err)
     assert "made by an older seqpipe (format seqpipe-dataset/1)" in err
     assert "this version reads seqpipe.manifest/2: rebuild it with `seqpipe build RECIPE`" in err
+
+
+def test_batches_with_a_window_longer_than_the_split_is_a_usage_error(
+    cli_build: tuple[Path, str], capsys: pytest.CaptureFixture[str]
+) -> None:
+    """``batches`` whose window does not fit the split exits 2 naming the window and the split's length,
+    instead of printing an epoch of zero batches."""
+    out, _ = cli_build
+    tokens = open_dataset(out).split("test").num_tokens
+    code, stdout, err = run(
+        ["batches", str(out), "--split", "test", "--batch-size", "1", "--window", str(tokens)], capsys
+    )
+    assert code == EXIT_USAGE and stdout == ""
+    assert f"--window: {tokens} tokens" in err and f"holds {tokens} tokens" in err
+    code, _, err = run(["batches", str(out), "--split", "test", "--batch-size", "100000", "--window", "2"], capsys)
+    assert code == EXIT_USAGE and "--batch-size" in err and "no full batch" in err
