@@ -225,14 +225,13 @@ def _no_batches(args: argparse.Namespace, tokens: int) -> StreamError:
 
 
 def cmd_report(args: argparse.Namespace) -> int:
-    from seqpipe.filesystem import is_uri
-    from seqpipe.report import write_report
+    from seqpipe.dataset import open_dataset
+    from seqpipe.report import write_dataset_report
 
-    if args.output:
-        out = Path(args.output)
-    else:  # beside a local dataset; for one behind a URI, in the working directory
-        out = Path("report") if is_uri(args.directory) else Path(args.directory) / "report"
-    report = write_report(args.directory, out, ngram_n=args.leakage_n, progress=not args.quiet and sys.stderr.isatty())
+    dataset = open_dataset(args.directory)  # a URI is read from a local copy
+    # by default never inside the dataset, whose verification refuses files it does not list
+    out = Path(args.output) if args.output else Path(f"{dataset.manifest['recipe']['dataset']['name']}-report")
+    report = write_dataset_report(dataset, out, ngram_n=args.leakage_n, progress=not args.quiet and sys.stderr.isatty())
     if report["plots"]:
         print(f"report written to {out} (report.md, report.json, {', '.join(report['plots'])})")
     else:
@@ -473,7 +472,8 @@ def _add_report(sub: Subparsers[argparse.ArgumentParser]) -> None:
         "--output",
         type=directory_path,
         metavar="DIR",
-        help="output directory (default: DIR/report; ./report for a URI)",
+        help="output directory (default: ./NAME-report in the working directory, NAME the dataset's name; "
+        "never inside the dataset unless named here)",
     )
     p.add_argument(
         "--leakage-n",

@@ -203,3 +203,17 @@ def test_batches_with_a_window_longer_than_the_split_is_a_usage_error(
     assert f"--window: {tokens} tokens" in err and f"holds {tokens} tokens" in err
     code, _, err = run(["batches", str(out), "--split", "test", "--batch-size", "100000", "--window", "2"], capsys)
     assert code == EXIT_USAGE and "--batch-size" in err and "no full batch" in err
+
+
+def test_report_by_default_writes_outside_the_dataset(
+    cli_build: tuple[Path, str], tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """``report DIR`` without ``-o`` writes ./<dataset-name>-report in the working directory, so the
+    dataset is unchanged and ``verify`` still passes."""
+    out, _ = cli_build
+    monkeypatch.chdir(tmp_path)
+    code, _, _ = run(["report", str(out.resolve()), "--quiet"], capsys)
+    name = open_dataset(out).manifest["recipe"]["dataset"]["name"]
+    assert code == EXIT_OK and (tmp_path / f"{name}-report" / "report.json").is_file()
+    code, stdout, _ = run(["verify", str(out.resolve())], capsys)
+    assert code == EXIT_OK and stdout.startswith("ok: ")
