@@ -250,7 +250,7 @@ def cmd_encode(args: argparse.Namespace) -> int:
 
     enc = load_encoder(args.directory)
     try:  # the text is what the user typed: one the tokenizer cannot take is a usage error
-        ids = enc.encode(args.text)
+        ids = enc.encode(args.text, clean=not args.raw)
     except TokenizerError as exc:
         return _usage_error(f"TEXT: {exc}")
     print(" ".join(str(int(i)) for i in ids))
@@ -262,7 +262,7 @@ def cmd_decode(args: argparse.Namespace) -> int:
 
     enc = load_encoder(args.directory)
     try:  # as for encode: an id outside the vocabulary is a mistake in the command line
-        text = enc.decode(args.ids)
+        text = enc.decode(args.ids, show_reserved=args.show_reserved)
     except TokenizerError as exc:
         return _usage_error(f"IDS: {exc}")
     print(text)
@@ -490,11 +490,17 @@ def _add_tokenizer(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p = sub.add_parser("encode", help="encode text with a dataset's tokenizer", description="Print the ids of TEXT.")
     p.add_argument("directory", help="dataset directory")
     p.add_argument("text", metavar="TEXT", help="the text to encode (quote it)")
+    p.add_argument("--raw", action="store_true", help="encode TEXT as given, without the dataset's cleaning steps")
     p.set_defaults(fn=cmd_encode)
 
     p = sub.add_parser("decode", help="decode ids with a dataset's tokenizer", description="Print the text of IDS.")
     p.add_argument("directory", help="dataset directory")
     p.add_argument("ids", nargs="+", type=int, metavar="IDS", help="token ids, separated by spaces")
+    p.add_argument(
+        "--show-reserved",
+        action="store_true",
+        help="print reserved tokens (unknown, begin, end, padding) by name instead of leaving them out",
+    )
     p.set_defaults(fn=cmd_decode)
 
 

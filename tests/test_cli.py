@@ -217,3 +217,44 @@ def test_report_by_default_writes_outside_the_dataset(
     assert code == EXIT_OK and (tmp_path / f"{name}-report" / "report.json").is_file()
     code, stdout, _ = run(["verify", str(out.resolve())], capsys)
     assert code == EXIT_OK and stdout.startswith("ok: ")
+
+
+@pytest.fixture(scope="module")
+def lowercased(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The conftest corpus built with a lowercase cleaning step."""
+    from conftest import build_dir
+
+    root = tmp_path_factory.mktemp("lower")
+    recipe = write_project(root / "src")
+    text = recipe.read_text(encoding="utf-8").replace("[tokenizer]", '[[clean]]\nkind = "lowercase"\n[tokenizer]')
+    recipe.write_text(text, encoding="utf-8")
+    return build_dir(recipe, root / "dataset")
+
+
+def test_encode_applies_the_dataset_cleaning_unless_raw(lowercased: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """On a dataset whose recipe lowercases, ``encode`` (CLI and API) lowercases the text first, so
+    mixed-case words get their ids instead of the unknown id; ``--raw`` / ``clean=False`` does not."""
+    enc = load_encoder(lowercased)
+    unk = enc.vocabulary.unknown_id
+    want = enc.encode("the quill left eastreach", clean=False).tolist()
+    assert unk not in want
+    assert enc.encode("The QUILL left Eastreach").tolist() == want
+    code, stdout, _ = run(["encode", str(lowercased), "The QUILL left Eastreach"], capsys)
+    assert code == EXIT_OK and [int(i) for i in stdout.split()] == want
+    code, stdout, _ = run(["encode", str(lowercased), "--raw", "The QUILL left Eastreach"], capsys)
+    raw = [int(i) for i in stdout.split()]
+    assert code == EXIT_OK and raw == enc.encode("The QUILL left Eastreach", clean=False).tolist()
+    assert unk in raw
+
+
+def test_decode_shows_reserved_tokens_when_asked(lowercased: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """``decode`` leaves reserved tokens out by default; ``--show-reserved`` prints them by name,
+    so an unknown id no longer disappears silently."""
+    enc = load_encoder(lowercased)
+    unk = enc.vocabulary.unknown_id
+    assert unk is not None
+    ids = [str(i) for i in [*enc.encode("quill").tolist(), unk]]
+    code, stdout, _ = run(["decode", str(lowercased), *ids], capsys)
+    assert code == EXIT_OK and "<unk>" not in stdout
+    code, stdout, _ = run(["decode", str(lowercased), "--show-reserved", *ids], capsys)
+    assert code == EXIT_OK and "quill" in stdout and "<unk>" in stdout
