@@ -93,24 +93,32 @@ class BuildResult:
     parts_total: int
     parts_reused: int
     extra: dict[str, Any] = field(default_factory=dict)
+    bytes_read: int | None = None  # input bytes this build read (parts taken from the cache are not); None: all
 
     @property
     def fingerprint(self) -> str:
         return str(self.manifest["fingerprint"])
 
+    def _read_figures(self) -> str:
+        """What this build read and how fast: only bytes it read count, so a build served from
+        the cache says it read nothing rather than showing a rate it never had."""
+        read = self.input_bytes if self.bytes_read is None else self.bytes_read
+        if read == 0:
+            return f"nothing read (all from cache), built in {self.seconds:.2f} s"
+        rate = read / 1e6 / max(self.seconds, 1e-9)
+        return f"{read / 1e6:.2f} MB read, built in {self.seconds:.2f} s ({rate:.1f} MB/s)"
+
     def summary_lines(self) -> list[str]:
         """Human-readable build summary."""
         m = self.manifest
         s = m["summary"]
-        mbs = self.input_bytes / 1e6 / max(self.seconds, 1e-9)
         lines = [
             f"dataset      {self.directory}",
             f"fingerprint  {m['fingerprint']}",
             f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['entries']} entries "
             f"(ids as {m['dtype']})",
-            f"inputs       {len(m['inputs'])} file(s), {self.input_bytes / 1e6:.2f} MB read in "
-            f"{self.seconds:.2f} s ({mbs:.1f} MB/s); parts reused from cache: "
-            f"{self.parts_reused}/{self.parts_total}",
+            f"inputs       {len(m['inputs'])} file(s), {self.input_bytes / 1e6:.2f} MB; {self._read_figures()}; "
+            f"parts reused from cache: {self.parts_reused}/{self.parts_total}",
         ]
         if self.extra.get("parts_damaged"):
             lines.append(
@@ -326,6 +334,7 @@ class Ingested:
     reused: int  # parts found in the cache
     recount: tuple[int, ...]  # parts their ingest task did not count (reused ones; all with dedupe)
     damaged: int = 0  # cached parts that failed their hash check and were ingested again
+    bytes_read: int = 0  # input bytes the fresh parts' tasks read (cached parts read none)
 
 
 @dataclass(frozen=True, slots=True)
@@ -372,6 +381,7 @@ def _build(
         fitted = fit(recipe, counts, stage)
         encoded = encode(ctx, plan, kept, fitted, stage)
         sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage), stage)
+        count_train_ids(stage, sharded, fitted)
         manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage))
         publish_dataset(out, stage, manifest, fitted)
     except OutputWriteError:
@@ -379,7 +389,14 @@ def _build(
         raise
     extra = {"parts_damaged": ingested.damaged} if ingested.damaged else {}
     return BuildResult(
-        out, manifest, time.perf_counter() - t0, plan.input_bytes, len(plan.tasks), ingested.reused, extra
+        out,
+        manifest,
+        time.perf_counter() - t0,
+        plan.input_bytes,
+        len(plan.tasks),
+        ingested.reused,
+        extra,
+        bytes_read=ingested.bytes_read,
     )
 
 
@@ -471,8 +488,10 @@ def ingest(ctx: Context, plan: Plan, merger: CountMerger) -> Ingested:
     view = View("reading", unit="B", weights=[plan.weights[i] for i in todo], tally=("documents", _documents))
     fresh = run(ctx.pool.executor, ctx.show, ingest_part, tasks, view, each=partial(_merge_arrived, merger))
     counted: set[int] = set()
+    read = 0
     for i, (meta, was_counted) in zip(todo, fresh, strict=True):
         metas[i] = meta
+        read += meta.read.get("bytes_read", 0)
         if was_counted:
             counted.add(i)
     parts = tuple(m for m in metas if m is not None)
@@ -482,7 +501,7 @@ def ingest(ctx: Context, plan: Plan, merger: CountMerger) -> Ingested:
             "globs and the clean steps (e.g. min_length)"
         )
     recount = tuple(i for i in range(len(plan.tasks)) if i not in counted)
-    return Ingested(parts, len(plan.tasks) - len(todo), recount, damaged)
+    return Ingested(parts, len(plan.tasks) - len(todo), recount, damaged, read)
 
 
 def _cached_parts(cache: str, plan: Plan) -> tuple[list[PartMeta | None], int]:
@@ -562,6 +581,21 @@ def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path) -> Sharded:
         splits[layout.name] = split_entry(layout, table, results[at : at + len(layout.shards)])
         at += len(layout.shards)
     return Sharded(splits, {layout.name: split_summary(layout.totals) for layout in layouts})
+
+
+def count_train_ids(stage: Path, sharded: Sharded, fitted: Fitted) -> None:
+    """Rewrite the vocabulary's ``count`` column as what it is documented to be: how often each
+    id occurs in the train split's shards (reserved tokens and begin/end markers included). The
+    fitted counts are of pieces before encoding (bpe's pre-merge symbols, 0 for reserved tokens)."""
+    from seqpipe.shards import read_shard
+    from seqpipe.vocab import Vocabulary
+
+    counts = np.zeros(fitted.vocab_size, np.int64)
+    for entry in sharded.splits["train"]["shards"]:
+        ids = read_shard(stage / entry["path"], dtype=np.dtype(fitted.dtype), expected_tokens=entry["tokens"])
+        counts += np.bincount(ids, minlength=fitted.vocab_size)
+    vocab = Vocabulary.load(stage / VOCAB_FILE)
+    dataclasses.replace(vocab, counts=counts).save(stage / VOCAB_FILE)
 
 
 def _summed(tables: Iterator[dict[str, int]]) -> dict[str, int]:

@@ -475,7 +475,8 @@ def fragment_path(stage_dir: str, number: int, split: str) -> Path:
 def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     """Encode one part's kept documents per split, markers added. Writes per split an id file
     and a document fragment (length, input, hash per document); returns per split the totals
-    ``tokens``, ``documents``, ``unknown``, ``bytes`` and ``words``."""
+    ``tokens``, ``content`` (tokens without the begin/end markers), ``documents``, ``unknown``,
+    ``bytes`` and ``words``."""
     from seqpipe.recipe import SPLIT_NAMES
     from seqpipe.tokenizers.base import expand
 
@@ -499,6 +500,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
         if not dmask.any():
             continue
         ids, lengths = expand(values, offsets, codes[_piece_mask(pieces, dmask)], pieces[dmask])
+        content = len(ids)  # the documents' own tokens, before begin/end markers
         ids = _add_markers(ids, lengths, begin, end)
         lengths = lengths + (begin is not None) + (end is not None)
         unknown = int(np.count_nonzero(ids == unk)) if unk is not None else 0
@@ -516,6 +518,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
         )
         out[split] = {
             "tokens": int(lengths.sum()),
+            "content": content,
             "documents": int(dmask.sum()),
             "unknown": unknown,
             "bytes": int(docs.column("bytes").to_numpy()[dmask].sum()),
