@@ -40,6 +40,7 @@ import numpy as np
 import pyarrow as pa
 
 from seqpipe import __version__
+from seqpipe._environment import environment
 from seqpipe._hashing import hash_file, hash_json
 from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
 from seqpipe._runner import View, run, run_beside
@@ -617,6 +618,7 @@ def _manifest_body(
     return {
         "format": FORMAT,
         "seqpipe_version": __version__,
+        "environment": environment(),
         "recipe": recipe.to_dict(),
         "recipe_fingerprint": recipe.fingerprint,
         "inputs": list(plan.inputs),

@@ -119,6 +119,14 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     print(f"format       {m['format']}, written by seqpipe {m['seqpipe_version']}")
     print(f"fingerprint  {m['fingerprint']}")
     print(f"recipe       {m['recipe_fingerprint']}")
+    env = m.get("environment")
+    if env:
+        print(
+            f"environment  Python {env['python']} (Unicode {env['unicode']}), regex {env['regex']}, "
+            f"pyarrow {env['pyarrow']}, numpy {env['numpy']}"
+        )
+    else:
+        print("environment  not recorded (built before seqpipe recorded it)")
     print(f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['entries']} entries, ids {m['dtype']}")
     print(f"inputs       {len(m['inputs'])} file(s), {sum(i['bytes'] for i in m['inputs'])} bytes")
     for name in ds.splits:

@@ -32,6 +32,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import xxhash
 
+from seqpipe._environment import part_environment
 from seqpipe._hashing import hash_array, hash_file, hash_json
 from seqpipe._parse import to_plain
 from seqpipe.errors import SeqpipeError, SourceError
@@ -72,6 +73,8 @@ def part_key(recipe: Recipe, source_index: int, file_hash: str, part: Any) -> st
             "part": to_plain(part) if hasattr(part, "__dataclass_fields__") else repr(part),
             "clean": [to_plain(s) for s in recipe.clean],
             "tokenizer": to_plain(recipe.tokenizer),
+            # Unicode tables and the libraries that apply them: an upgrade must not reuse parts
+            "environment": part_environment(),
         }
     )
 

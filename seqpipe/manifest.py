@@ -4,6 +4,9 @@
 
     format             "seqpipe.manifest/2"   readers refuse any other value
     seqpipe_version    library version that wrote it
+    environment        {numpy, pyarrow, python, regex, unicode}: versions that decide the bytes
+                       (unicode: Python's Unicode tables; regex: its package version, which fixes
+                       its own Unicode tables); absent in manifests written before it was recorded
     recipe             the canonical recipe (see Recipe.to_dict)
     recipe_fingerprint XXH3-128 of the canonical recipe
     inputs             [{path, bytes, hash}]  input files relative to the recipe directory
@@ -31,6 +34,7 @@ from typing import Any, Final
 
 from seqpipe._hashing import hash_json
 from seqpipe.errors import ManifestError, UnsafePathError
+from seqpipe.formats import ENVIRONMENT_KEYS
 
 FORMAT: Final = "seqpipe.manifest/2"
 OLD_FORMATS: Final = ("seqpipe-dataset/1",)
@@ -183,10 +187,14 @@ def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
             f"this seqpipe reads {FORMAT!r}, got {manifest.get('format')!r}; "
             "rebuild the dataset with this version or use the seqpipe that wrote it",
         )
-    m = c.obj(manifest, "(top)", TOP_KEYS)
+    m = c.obj(manifest, "(top)", (*TOP_KEYS, "environment") if "environment" in manifest else TOP_KEYS)
     if _depth(m) > MAX_DEPTH:
         raise c.fail("(top)", f"nested deeper than {MAX_DEPTH} levels")
     c.str_(m["seqpipe_version"], "seqpipe_version")
+    if "environment" in m:  # absent only in manifests written before it was recorded
+        env = c.obj(m["environment"], "environment", ENVIRONMENT_KEYS)
+        for key in ENVIRONMENT_KEYS:
+            c.str_(env[key], f"environment.{key}")
     if not isinstance(m["recipe"], dict):
         raise c.fail("recipe", "expected an object")
     c.hex_(m["recipe_fingerprint"], "recipe_fingerprint")

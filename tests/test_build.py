@@ -542,3 +542,28 @@ def test_a_build_served_from_the_cache_reports_nothing_read(tmp_path: Path) -> N
     assert again.parts_reused == again.parts_total and again.bytes_read == 0
     line = next(line for line in again.summary_lines() if line.startswith("inputs"))
     assert "nothing read" in line and "MB/s" not in line
+
+
+def test_environment_is_recorded_and_keys_the_part_cache(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The manifest records the Unicode and library versions; a cached part made under another
+    Unicode version (or regex version) is not reused, and the fingerprint changes with it."""
+    import unicodedata
+
+    import regex
+
+    from seqpipe._environment import environment
+    from seqpipe.formats import ENVIRONMENT_KEYS
+
+    assert sorted(environment()) == sorted(ENVIRONMENT_KEYS)
+    recipe = load_recipe(_project(tmp_path / "src", ""))
+    first = build(recipe, tmp_path / "out", workers=1, progress=False)
+    assert first.manifest["environment"] == environment()
+    assert first.manifest["environment"]["unicode"] == unicodedata.unidata_version
+    monkeypatch.setattr(unicodedata, "unidata_version", "0.0.1-test")
+    again = build(recipe, tmp_path / "out", workers=1, progress=False)
+    assert again.parts_reused == 0 < again.parts_total
+    assert again.manifest["environment"]["unicode"] == "0.0.1-test"
+    assert again.fingerprint != first.fingerprint
+    monkeypatch.setattr(regex, "__version__", "0.0.2-test")
+    assert build(recipe, tmp_path / "out", workers=1, progress=False).parts_reused == 0
+    assert verify(tmp_path / "out").ok
