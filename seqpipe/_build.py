@@ -416,18 +416,19 @@ def check_shard_count(recipe: Recipe, input_bytes: int) -> None:
         )
 
 
-def _input_files(recipe: Recipe) -> list[tuple[int, Path | str]]:
-    """(source index, file) for each input, in recipe order then each source's sorted order; a
-    file two sources match is read once, by the first."""
+def _input_files(recipe: Recipe) -> list[tuple[int, Path | str, str]]:
+    """(source index, file, recorded name) for each input, in recipe order then each source's
+    sorted order; a file two sources match is read once, by the first. The name is the file's
+    path relative to its glob's fixed directory (Source.resolve_named), never to the recipe."""
     from seqpipe.filesystem import identity
 
-    files: list[tuple[int, Path | str]] = []  # a local Path, or a filesystem URI
+    files: list[tuple[int, Path | str, str]] = []  # a local Path, or a filesystem URI
     seen: set[Path | str] = set()
     for si, source in enumerate(recipe.sources):
-        for f in source.resolve(recipe.root):
+        for f, name in source.resolve_named(recipe.root):
             if identity(f) not in seen:
                 seen.add(identity(f))
-                files.append((si, f))
+                files.append((si, f, name))
     if not files:
         raise SourceMissingError(str(recipe.root), "the recipe's sources match no file")
     return files
@@ -435,20 +436,18 @@ def _input_files(recipe: Recipe) -> list[tuple[int, Path | str]]:
 
 def plan_build(recipe: Recipe, cache: Path, part_bytes: int) -> Plan:
     """Resolve the inputs, hash them, and cut each into parts of about ``part_bytes``."""
-    from seqpipe.filesystem import file_size, is_uri
+    from seqpipe.filesystem import file_size
 
     files = _input_files(recipe)
-    hashed = _input_hashes([f for _, f in files], cache)
+    hashed = _input_hashes([f for _, f, _ in files], cache)
     hashes = [h for h, _ in hashed]
-    sizes = [file_size(f) for _, f in files]
-    # a URI input is recorded as the URI; a local one relative to the recipe's directory
+    sizes = [file_size(f) for _, f, _ in files]
     inputs = tuple(
-        {"path": str(f) if is_uri(f) else os.path.relpath(f, recipe.root).replace(os.sep, "/"), "bytes": sz, "hash": h}
-        for (_, f), sz, h in zip(files, sizes, hashes, strict=True)
+        {"path": name, "bytes": sz, "hash": h} for (_, _, name), sz, h in zip(files, sizes, hashes, strict=True)
     )
     tasks: list[IngestTask] = []
     weights: list[int] = []
-    for ii, ((si, f), h) in enumerate(zip(files, hashes, strict=True)):
+    for ii, ((si, f, _), h) in enumerate(zip(files, hashes, strict=True)):
         parts = recipe.sources[si].plan(f, part_bytes)
         for part in parts:
             key = part_key(recipe, si, h, part)

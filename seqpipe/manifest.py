@@ -9,7 +9,7 @@
                        its own Unicode tables); absent in manifests written before it was recorded
     recipe             the canonical recipe (see Recipe.to_dict)
     recipe_fingerprint XXH3-128 of the canonical recipe
-    inputs             [{path, bytes, hash}]  input files relative to the recipe directory
+    inputs             [{path, bytes, hash}]  input files relative to their glob's fixed directory
     tokenizer          {kind, files: [{path, bytes, hash}]}
     vocabulary         {path, bytes, hash, entries}
     dtype              "uint8" | "uint16" | "uint32"

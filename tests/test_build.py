@@ -567,3 +567,39 @@ def test_environment_is_recorded_and_keys_the_part_cache(tmp_path: Path, monkeyp
     monkeypatch.setattr(regex, "__version__", "0.0.2-test")
     assert build(recipe, tmp_path / "out", workers=1, progress=False).parts_reused == 0
     assert verify(tmp_path / "out").ok
+
+
+def test_fingerprint_does_not_depend_on_where_the_recipe_sits(tmp_path: Path) -> None:
+    """The same recipe with absolute globs, saved in two folders, over the same files gives the
+    same fingerprint: inputs are named relative to their glob's fixed directory, not the recipe."""
+    from conftest import write_corpus
+
+    write_corpus(tmp_path / "data", files=2, paragraphs=10)
+    text = f'[[sources]]\nkind = "text"\npaths = "{(tmp_path / "data" / "corpus").as_posix()}/*.txt"\n'
+    text += 'document = "paragraph"\n[tokenizer]\nkind = "words"\n'
+    prints = []
+    for where in ("a", "b/deeper/still"):
+        folder = tmp_path / where
+        folder.mkdir(parents=True)
+        (folder / "recipe.toml").write_text(text, encoding="utf-8")
+        result = build(load_recipe(folder / "recipe.toml"), folder / "out", workers=1, progress=False)
+        assert [i["path"] for i in result.manifest["inputs"]] == ["log-000.txt", "log-001.txt"]
+        prints.append(result.fingerprint)
+    assert prints[0] == prints[1]
+
+
+@pytest.mark.parametrize(
+    ("pattern", "base"),
+    [
+        ("logs/2026/*.txt", "logs/2026"),
+        ("*.txt", "."),
+        ("/srv/x/**/a?.txt", "/srv/x"),
+        ("a.txt", "."),
+        ("d/a.txt", "d"),
+    ],
+)
+def test_glob_base_is_the_fixed_directory_part(pattern: str, base: str) -> None:
+    """glob_base keeps the leading components without a wildcard, never the file component."""
+    from seqpipe.sources.base import glob_base
+
+    assert glob_base(pattern) == base

@@ -47,6 +47,20 @@ BAD_RECORD_POLICIES: Final = ("error", "skip")
 _BLANK_TEXT: Final = re.compile(r"[ \t\x0b\x0c\r\n]*")
 
 
+def glob_base(pattern: str) -> str:
+    """The fixed directory part of a glob: its leading components without a wildcard, the last
+    component (the file part) never included ("logs/2026/*.txt" -> "logs/2026", "*.txt" -> ".")."""
+    parts = re.split(r"[/\\]", pattern) if os.sep == "\\" else pattern.split("/")
+    fixed: list[str] = []
+    for part in parts[:-1]:
+        if re.search(r"[*?\[]", part):
+            break
+        fixed.append(part)
+    if not fixed:
+        return "."
+    return "/".join(fixed) or "/"  # an absolute glob's first component is empty
+
+
 @dataclass(frozen=True, slots=True)
 class Part:
     """A piece of one file that one ``read`` call handles.
@@ -131,19 +145,28 @@ class Source(ABC):
         among the local keys by the URI itself. Raises :class:`SourceMissingError` for a
         glob that matches no file.
         """
-        found: dict[str, SourcePath] = {}
+        return [path for path, _ in self.resolve_named(root)]
+
+    def resolve_named(self, root: Path) -> list[tuple[SourcePath, str]]:
+        """:meth:`resolve`'s files, each with the name a manifest records for it: its POSIX path
+        relative to the glob base (the fixed directory part) of the first glob that matched it,
+        so neither where the recipe sits nor an absolute glob's directory enters a fingerprint;
+        a URI is its own name."""
+        found: dict[str, tuple[SourcePath, str]] = {}
         for pattern in self.paths:
             if is_uri(pattern):
                 for uri in glob_uri(pattern):
-                    found.setdefault(uri, uri)
+                    found.setdefault(uri, (uri, uri))
                 continue
             hits = glob.glob(pattern, root_dir=root, recursive=True)
             files = [h for h in hits if (root / h).is_file()]
             if not files:
                 raise SourceMissingError(str(root), f"glob {pattern!r} matched no file under {root}")
+            base = glob_base(pattern)
             for hit in files:
                 key = PurePath(os.path.normpath(hit)).as_posix()
-                found.setdefault(key, root / key)
+                name = PurePath(os.path.relpath(os.path.normpath(hit), base)).as_posix()
+                found.setdefault(key, (root / key, name))
         return [found[key] for key in sorted(found)]
 
     @abstractmethod
