@@ -7,7 +7,7 @@ The public API, in data-flow order::
     report = verify("data/ferry")                   # -> VerifyReport (problems, if any)
     ds = open_dataset("data/ferry")                 # -> Dataset (splits as token streams)
     for batch in ds.split("train").batches(batch_size=32, window=128, seed=1): ...
-    write_report("data/ferry", "data/ferry/report")
+    write_report("data/ferry", "ferry-report")      # outside the dataset, which verify checks
 """
 
 import importlib as _importlib

@@ -40,6 +40,7 @@ import numpy as np
 import pyarrow as pa
 
 from seqpipe import __version__
+from seqpipe._environment import environment
 from seqpipe._hashing import hash_file, hash_json
 from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
 from seqpipe._parse import to_plain
@@ -96,24 +97,32 @@ class BuildResult:
     parts_total: int
     parts_reused: int
     extra: dict[str, Any] = field(default_factory=dict)
+    bytes_read: int | None = None  # input bytes this build read (parts taken from the cache are not); None: all
 
     @property
     def fingerprint(self) -> str:
         return str(self.manifest["fingerprint"])
 
+    def _read_figures(self) -> str:
+        """What this build read and how fast: only bytes it read count, so a build served from
+        the cache says it read nothing rather than showing a rate it never had."""
+        read = self.input_bytes if self.bytes_read is None else self.bytes_read
+        if read == 0:
+            return f"nothing read (all from cache), built in {self.seconds:.2f} s"
+        rate = read / 1e6 / max(self.seconds, 1e-9)
+        return f"{read / 1e6:.2f} MB read, built in {self.seconds:.2f} s ({rate:.1f} MB/s)"
+
     def summary_lines(self) -> list[str]:
         """Human-readable build summary."""
         m = self.manifest
         s = m["summary"]
-        mbs = self.input_bytes / 1e6 / max(self.seconds, 1e-9)
         lines = [
             f"dataset      {self.directory}",
             f"fingerprint  {m['fingerprint']}",
             f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['entries']} entries "
             f"(ids as {m['dtype']})",
-            f"inputs       {len(m['inputs'])} file(s), {self.input_bytes / 1e6:.2f} MB read in "
-            f"{self.seconds:.2f} s ({mbs:.1f} MB/s); parts reused from cache: "
-            f"{self.parts_reused}/{self.parts_total}",
+            f"inputs       {len(m['inputs'])} file(s), {self.input_bytes / 1e6:.2f} MB; {self._read_figures()}; "
+            f"parts reused from cache: {self.parts_reused}/{self.parts_total}",
         ]
         if self.extra.get("parts_damaged"):
             lines.append(
@@ -126,6 +135,7 @@ class BuildResult:
                 f"{len(sp['shards'])} shard(s)  unknown {st['unknown_rate']:.4%}  "
                 f"{st['bytes_per_token']:.2f} bytes/token  {st['tokens_per_word']:.2f} tokens/word"
             )
+        lines.extend(_empty_split_warnings(m))
         drops = {**s["read"], **{f"clean {k}": v for k, v in s["dropped"].items()}}
         shown = {k: v for k, v in drops.items() if v and k not in ("documents", "bytes_read")}
         if s["duplicates_dropped"]:
@@ -144,6 +154,18 @@ class BuildResult:
                 f"work directory {x['work_dir']}"
             )
         return lines
+
+
+def _empty_split_warnings(manifest: dict[str, Any]) -> list[str]:
+    """A line per split that got no document although the recipe gives it a share (a corpus too
+    small for its split fractions): its loss or perplexity could not be measured."""
+    fractions = manifest["recipe"]["splits"]
+    return [
+        f"warning      split {name!r} is empty (share {fractions[name]:g} of too few documents); "
+        "add documents or change [splits]"
+        for name in SPLIT_NAMES
+        if manifest["splits"][name]["documents"] == 0 and fractions.get(name, 0) > 0
+    ]
 
 
 def build(
@@ -321,6 +343,7 @@ class Ingested:
     reused: int  # parts found in the cache
     recount: tuple[int, ...]  # parts their ingest task did not count (reused ones; all with dedupe)
     damaged: int = 0  # cached parts that failed their hash check and were ingested again
+    bytes_read: int = 0  # input bytes the fresh parts' tasks read (cached parts read none)
 
 
 @dataclass(frozen=True, slots=True)
@@ -372,6 +395,7 @@ def _build(
             fitted = reuse(recipe, source, stage)
         encoded = encode(ctx, plan, kept, fitted, stage)
         sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage), stage)
+        count_train_ids(stage, sharded, fitted)
         manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage, source))
         publish_dataset(out, stage, manifest, fitted)
     except OutputWriteError:
@@ -379,7 +403,14 @@ def _build(
         raise
     extra = {"parts_damaged": ingested.damaged} if ingested.damaged else {}
     return BuildResult(
-        out, manifest, time.perf_counter() - t0, plan.input_bytes, len(plan.tasks), ingested.reused, extra
+        out,
+        manifest,
+        time.perf_counter() - t0,
+        plan.input_bytes,
+        len(plan.tasks),
+        ingested.reused,
+        extra,
+        bytes_read=ingested.bytes_read,
     )
 
 
@@ -398,22 +429,24 @@ def check_shard_count(recipe: Recipe, input_bytes: int) -> None:
         )
 
 
-def _input_files(recipe: Recipe) -> tuple[list[tuple[int, Path | str]], tuple[dict[str, str], ...]]:
-    """(source index, file) for each input, in recipe order then each source's sorted order (a
-    file two sources match is read once, by the first); and the matches skipped as not files."""
+def _input_files(recipe: Recipe) -> tuple[list[tuple[int, Path | str, str]], tuple[dict[str, str], ...]]:
+    """(source index, file, recorded name) for each input, in recipe order then each source's
+    sorted order (a file two sources match is read once, by the first); and the matches skipped
+    as not files. The name is the file's path relative to its glob's fixed directory
+    (Source.resolve_named), never to the recipe."""
     from seqpipe.filesystem import identity
 
-    files: list[tuple[int, Path | str]] = []  # a local Path, or a filesystem URI
+    files: list[tuple[int, Path | str, str]] = []  # a local Path, or a filesystem URI
     seen: set[Path | str] = set()
     skipped: dict[str, str] = {}
     for si, source in enumerate(recipe.sources):
         resolved = source.resolve_all(recipe.root)
         for rel, what in resolved.skipped:
             skipped.setdefault(rel, what)
-        for f in resolved.files:
+        for f, name in zip(resolved.files, resolved.names, strict=True):
             if identity(f) not in seen:
                 seen.add(identity(f))
-                files.append((si, f))
+                files.append((si, f, name))
     if not files:
         raise SourceMissingError(str(recipe.root), "the recipe's sources match no file")
     return files, tuple({"path": p, "what": w} for p, w in sorted(skipped.items()))
@@ -421,20 +454,18 @@ def _input_files(recipe: Recipe) -> tuple[list[tuple[int, Path | str]], tuple[di
 
 def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None) -> Plan:
     """Resolve the inputs, hash them, and cut each into parts of about ``part_bytes``."""
-    from seqpipe.filesystem import file_size, is_uri
+    from seqpipe.filesystem import file_size
 
     files, skipped = _input_files(recipe)
-    hashed = _input_hashes([f for _, f in files], cache)
+    hashed = _input_hashes([f for _, f, _ in files], cache)
     hashes = [h for h, _ in hashed]
-    sizes = [file_size(f) for _, f in files]
-    # a URI input is recorded as the URI; a local one relative to the recipe's directory
+    sizes = [file_size(f) for _, f, _ in files]
     inputs = tuple(
-        {"path": str(f) if is_uri(f) else os.path.relpath(f, recipe.root).replace(os.sep, "/"), "bytes": sz, "hash": h}
-        for (_, f), sz, h in zip(files, sizes, hashes, strict=True)
+        {"path": name, "bytes": sz, "hash": h} for (_, _, name), sz, h in zip(files, sizes, hashes, strict=True)
     )
     tasks: list[IngestTask] = []
     weights: list[int] = []
-    for ii, ((si, f), h) in enumerate(zip(files, hashes, strict=True)):
+    for ii, ((si, f, _), h) in enumerate(zip(files, hashes, strict=True)):
         parts = recipe.sources[si].plan(f, part_bytes)
         for part in parts:
             key = part_key(recipe, si, h, part)
@@ -478,8 +509,10 @@ def ingest(ctx: Context, plan: Plan, merger: CountMerger, *, counting: bool = Tr
     view = View("reading", unit="B", weights=[plan.weights[i] for i in todo], tally=("documents", _documents))
     fresh = run(ctx.pool.executor, ctx.show, ingest_part, tasks, view, each=partial(_merge_arrived, merger))
     counted: set[int] = set()
+    read = 0
     for i, (meta, was_counted) in zip(todo, fresh, strict=True):
         metas[i] = meta
+        read += meta.read.get("bytes_read", 0)
         if was_counted:
             counted.add(i)
     parts = tuple(m for m in metas if m is not None)
@@ -489,7 +522,7 @@ def ingest(ctx: Context, plan: Plan, merger: CountMerger, *, counting: bool = Tr
             "globs and the clean steps (e.g. min_length)"
         )
     recount = tuple(i for i in range(len(plan.tasks)) if i not in counted)
-    return Ingested(parts, len(plan.tasks) - len(todo), recount, damaged)
+    return Ingested(parts, len(plan.tasks) - len(todo), recount, damaged, read)
 
 
 def _cached_parts(cache: str, plan: Plan) -> tuple[list[PartMeta | None], int]:
@@ -632,6 +665,21 @@ def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path) -> Sharded:
     return Sharded(splits, {layout.name: split_summary(layout.totals) for layout in layouts})
 
 
+def count_train_ids(stage: Path, sharded: Sharded, fitted: Fitted) -> None:
+    """Rewrite the vocabulary's ``count`` column as what it is documented to be: how often each
+    id occurs in the train split's shards (reserved tokens and begin/end markers included). The
+    fitted counts are of pieces before encoding (bpe's pre-merge symbols, 0 for reserved tokens)."""
+    from seqpipe.shards import read_shard
+    from seqpipe.vocab import Vocabulary
+
+    counts = np.zeros(fitted.vocab_size, np.int64)
+    for entry in sharded.splits["train"]["shards"]:
+        ids = read_shard(stage / entry["path"], dtype=np.dtype(fitted.dtype), expected_tokens=entry["tokens"])
+        counts += np.bincount(ids, minlength=fitted.vocab_size)
+    vocab = Vocabulary.load(stage / VOCAB_FILE)
+    dataclasses.replace(vocab, counts=counts).save(stage / VOCAB_FILE)
+
+
 def _summed(tables: Iterator[dict[str, int]]) -> dict[str, int]:
     total: dict[str, int] = {}
     for table in tables:
@@ -665,6 +713,7 @@ def _manifest_body(
     return {
         "format": FORMAT,
         "seqpipe_version": __version__,
+        "environment": environment(),
         "recipe": recipe.to_dict(),
         "recipe_fingerprint": recipe.fingerprint,
         "inputs": list(plan.inputs),

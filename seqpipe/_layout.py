@@ -25,7 +25,7 @@ from seqpipe.shards import read_table, write_batches
 
 DOCS_BATCH_ROWS: Final = 1 << 16
 # what encode_part reports per split and part, summed per split
-TOTALS: Final = ("tokens", "documents", "unknown", "bytes", "words")
+TOTALS: Final = ("tokens", "content", "documents", "unknown", "bytes", "words")
 
 
 @dataclass(frozen=True, slots=True)
@@ -122,7 +122,9 @@ def split_summary(totals: dict[str, int]) -> dict[str, Any]:
     n_tokens = totals["tokens"]
     return {
         "unknown": totals["unknown"],
-        "unknown_rate": totals["unknown"] / n_tokens if n_tokens else 0.0,
+        # one definition, the report's too: unknown tokens per content token (begin/end markers,
+        # which are never unknown, left out of the denominator)
+        "unknown_rate": totals["unknown"] / totals["content"] if totals["content"] else 0.0,
         "bytes_per_token": totals["bytes"] / n_tokens if n_tokens else 0.0,
         "tokens_per_word": n_tokens / totals["words"] if totals["words"] else 0.0,
         "documents": totals["documents"],

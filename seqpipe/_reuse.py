@@ -2,8 +2,9 @@
 
 A recipe with ``[vocabulary] reuse_from = "../base-dataset"`` (a path relative to the recipe's
 directory, or a filesystem URI) skips the count and fit phases: the build copies the source
-dataset's ``vocab.arrow`` and tokenizer files byte for byte, so every id means in the new
-dataset exactly what it means in the source. The recipe's tokenizer and vocabulary settings must
+dataset's ``vocab.arrow`` and tokenizer files byte for byte (the build later rewrites only the
+``count`` column with its own train counts), so every id means in the new dataset exactly what it
+means in the source. The recipe's tokenizer and vocabulary settings must
 equal the source's (the ids would otherwise mean something the settings do not say); each
 difference is refused naming both values. Cleaning steps and sources may differ.
 

@@ -124,6 +124,14 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     print(f"format       {m['format']}, written by seqpipe {m['seqpipe_version']}")
     print(f"fingerprint  {m['fingerprint']}")
     print(f"recipe       {m['recipe_fingerprint']}")
+    env = m.get("environment")
+    if env:
+        print(
+            f"environment  Python {env['python']} (Unicode {env['unicode']}), regex {env['regex']}, "
+            f"pyarrow {env['pyarrow']}, numpy {env['numpy']}"
+        )
+    else:
+        print("environment  not recorded (built before seqpipe recorded it)")
     print(f"tokenizer    {m['tokenizer']['kind']}, vocabulary {m['vocabulary']['entries']} entries, ids {m['dtype']}")
     print(f"vocabulary   fingerprint {m['vocabulary']['fingerprint']}")
     reused = m["vocabulary"].get("reused_from")
@@ -214,19 +222,36 @@ def cmd_batches(args: argparse.Namespace) -> int:
         )
     except StreamError as exc:
         raise _option_error(exc) from None
+    if not len(stream):
+        raise _no_batches(args, split.num_tokens)
     print_batches(ds, stream, limit=args.limit, fmt=args.format)
     return EXIT_OK
 
 
-def cmd_report(args: argparse.Namespace) -> int:
-    from seqpipe.filesystem import is_uri
-    from seqpipe.report import write_report
+def _no_batches(args: argparse.Namespace, tokens: int) -> StreamError:
+    """The error for a stream without a single batch: an epoch of none is a mistake, not a result."""
+    if args.window + 1 > tokens:
+        return StreamError(
+            f"--window: {args.window} tokens (plus the one target beyond) is longer than split {args.split!r}, "
+            f"which holds {tokens} tokens; choose a window of at most {max(tokens - 1, 0)}",
+            key="window",
+        )
+    return StreamError(
+        f"--batch-size: split {args.split!r} ({tokens} tokens) gives no full batch of {args.batch_size} "
+        f"windows of {args.window} tokens on {args.world_size} rank(s); lower --batch-size or --window, "
+        "or pass --keep-last",
+        key="batch_size",
+    )
 
-    if args.output:
-        out = Path(args.output)
-    else:  # beside a local dataset; for one behind a URI, in the working directory
-        out = Path("report") if is_uri(args.directory) else Path(args.directory) / "report"
-    report = write_report(args.directory, out, ngram_n=args.leakage_n, progress=not args.quiet and sys.stderr.isatty())
+
+def cmd_report(args: argparse.Namespace) -> int:
+    from seqpipe.dataset import open_dataset
+    from seqpipe.report import write_dataset_report
+
+    dataset = open_dataset(args.directory)  # a URI is read from a local copy
+    # by default never inside the dataset, whose verification refuses files it does not list
+    out = Path(args.output) if args.output else Path(f"{dataset.manifest['recipe']['dataset']['name']}-report")
+    report = write_dataset_report(dataset, out, ngram_n=args.leakage_n, progress=not args.quiet and sys.stderr.isatty())
     if report["plots"]:
         print(f"report written to {out} (report.md, report.json, {', '.join(report['plots'])})")
     else:
@@ -245,7 +270,7 @@ def cmd_encode(args: argparse.Namespace) -> int:
 
     enc = load_encoder(args.directory)
     try:  # the text is what the user typed: one the tokenizer cannot take is a usage error
-        ids = enc.encode(args.text)
+        ids = enc.encode(args.text, clean=not args.raw)
     except TokenizerError as exc:
         return _usage_error(f"TEXT: {exc}")
     print(" ".join(str(int(i)) for i in ids))
@@ -257,7 +282,7 @@ def cmd_decode(args: argparse.Namespace) -> int:
 
     enc = load_encoder(args.directory)
     try:  # as for encode: an id outside the vocabulary is a mistake in the command line
-        text = enc.decode(args.ids)
+        text = enc.decode(args.ids, show_reserved=args.show_reserved)
     except TokenizerError as exc:
         return _usage_error(f"IDS: {exc}")
     print(text)
@@ -467,7 +492,8 @@ def _add_report(sub: Subparsers[argparse.ArgumentParser]) -> None:
         "--output",
         type=directory_path,
         metavar="DIR",
-        help="output directory (default: DIR/report; ./report for a URI)",
+        help="output directory (default: ./NAME-report in the working directory, NAME the dataset's name; "
+        "never inside the dataset unless named here)",
     )
     p.add_argument(
         "--leakage-n",
@@ -484,11 +510,17 @@ def _add_tokenizer(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p = sub.add_parser("encode", help="encode text with a dataset's tokenizer", description="Print the ids of TEXT.")
     p.add_argument("directory", help="dataset directory")
     p.add_argument("text", metavar="TEXT", help="the text to encode (quote it)")
+    p.add_argument("--raw", action="store_true", help="encode TEXT as given, without the dataset's cleaning steps")
     p.set_defaults(fn=cmd_encode)
 
     p = sub.add_parser("decode", help="decode ids with a dataset's tokenizer", description="Print the text of IDS.")
     p.add_argument("directory", help="dataset directory")
     p.add_argument("ids", nargs="+", type=int, metavar="IDS", help="token ids, separated by spaces")
+    p.add_argument(
+        "--show-reserved",
+        action="store_true",
+        help="print reserved tokens (unknown, begin, end, padding) by name instead of leaving them out",
+    )
     p.set_defaults(fn=cmd_decode)
 
 

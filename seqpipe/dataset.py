@@ -15,6 +15,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pyarrow as pa
 
+from seqpipe.clean import parse_step
 from seqpipe.errors import DatasetError, IntegrityError, ManifestError, ShardCorruptError
 from seqpipe.formats import DOCS_SCHEMA, DOCUMENTS_FORMAT
 from seqpipe.manifest import read_manifest, safe_relative
@@ -123,11 +124,17 @@ class Dataset:
         for i, f in enumerate(self.manifest["tokenizer"]["files"]):
             safe_relative(self.directory, f["path"], key=f"tokenizer.files[{i}].path")
         safe_relative(self.directory, self.manifest["vocabulary"]["path"], key="vocabulary.path")
+        recipe = self.manifest["recipe"]
         try:
-            tokenizer = parse_tokenizer(self.manifest["recipe"].get("tokenizer", {}), "recipe.tokenizer")
+            tokenizer = parse_tokenizer(recipe.get("tokenizer", {}), "recipe.tokenizer")
+            steps = tuple(parse_step(s, f"recipe.clean[{i}]") for i, s in enumerate(recipe.get("clean", [])))
         except Exception as exc:  # a manifest whose recipe this version cannot read
-            raise ManifestError(f"{self.directory}: the manifest's tokenizer section is not usable ({exc})") from exc
-        return tokenizer.load(self.directory)
+            raise ManifestError(
+                f"{self.directory}: the manifest's tokenizer or clean section is not usable ({exc})"
+            ) from exc
+        encoder = tokenizer.load(self.directory)
+        encoder.cleaning = steps
+        return encoder
 
 
 def open_dataset(directory: str | Path, *, verify: bool = False, copy_dir: str | Path | None = None) -> Dataset:
@@ -160,5 +167,6 @@ def open_dataset(directory: str | Path, *, verify: bool = False, copy_dir: str |
 
 
 def load_encoder(directory: str | Path) -> Encoder:
-    """The trained tokenizer of a built dataset: ``encode(text)`` / ``decode(ids)``."""
+    """The trained tokenizer of a built dataset: ``encode(text)`` (the dataset's cleaning applied
+    first; ``encode(text, clean=False)`` skips it) / ``decode(ids)``."""
     return open_dataset(directory).encoder

@@ -42,3 +42,7 @@ def docs_path(split: str) -> str:
 def shard_path(split: str, number: int) -> str:
     """Shard ``number`` of ``split``, relative to the dataset directory."""
     return f"{SHARDS_DIR}/{split}/{number:06d}.arrow"
+
+
+# the keys of the manifest's ``environment`` object (seqpipe/_environment.py fills it)
+ENVIRONMENT_KEYS: Final = ("numpy", "pyarrow", "python", "regex", "unicode")

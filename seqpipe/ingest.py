@@ -32,6 +32,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import xxhash
 
+from seqpipe._environment import part_environment
 from seqpipe._hashing import hash_array, hash_file, hash_json
 from seqpipe._parse import to_plain
 from seqpipe.errors import PatternTimeoutError, SeqpipeError, SourceError
@@ -72,6 +73,8 @@ def part_key(recipe: Recipe, source_index: int, file_hash: str, part: Any) -> st
             "part": to_plain(part) if hasattr(part, "__dataclass_fields__") else repr(part),
             "clean": [to_plain(s) for s in recipe.clean],
             "tokenizer": to_plain(recipe.tokenizer),
+            # Unicode tables and the libraries that apply them: an upgrade must not reuse parts
+            "environment": part_environment(),
         }
     )
 
@@ -533,7 +536,8 @@ def fragment_path(stage_dir: str, number: int, split: str) -> Path:
 def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     """Encode one part's kept documents per split, markers added. Writes per split an id file
     and a document fragment (length, input, hash per document); returns per split the totals
-    ``tokens``, ``documents``, ``unknown``, ``bytes`` and ``words``."""
+    ``tokens``, ``content`` (tokens without the begin/end markers), ``documents``, ``unknown``,
+    ``bytes`` and ``words``."""
     from seqpipe.recipe import SPLIT_NAMES
     from seqpipe.tokenizers.base import expand
 
@@ -557,6 +561,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
         if not dmask.any():
             continue
         ids, lengths = expand(values, offsets, codes[_piece_mask(pieces, dmask)], pieces[dmask])
+        content = len(ids)  # the documents' own tokens, before begin/end markers
         ids = _add_markers(ids, lengths, begin, end)
         lengths = lengths + (begin is not None) + (end is not None)
         unknown = int(np.count_nonzero(ids == unk)) if unk is not None else 0
@@ -574,6 +579,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
         )
         out[split] = {
             "tokens": int(lengths.sum()),
+            "content": content,
             "documents": int(dmask.sum()),
             "unknown": unknown,
             "bytes": int(docs.column("bytes").to_numpy()[dmask].sum()),

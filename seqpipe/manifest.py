@@ -4,9 +4,12 @@
 
     format             "seqpipe.manifest/2"   readers refuse any other value
     seqpipe_version    library version that wrote it
+    environment        {numpy, pyarrow, python, regex, unicode}: versions that decide the bytes
+                       (unicode: Python's Unicode tables; regex: its package version, which fixes
+                       its own Unicode tables); absent in manifests written before it was recorded
     recipe             the canonical recipe (see Recipe.to_dict)
     recipe_fingerprint XXH3-128 of the canonical recipe
-    inputs             [{path, bytes, hash}]  input files relative to the recipe directory
+    inputs             [{path, bytes, hash}]  input files relative to their glob's fixed directory
     tokenizer          {kind, files: [{path, bytes, hash}]}
     vocabulary         {path, bytes, hash, entries}
     dtype              "uint8" | "uint16" | "uint32"
@@ -31,6 +34,7 @@ from typing import Any, Final
 
 from seqpipe._hashing import hash_json
 from seqpipe.errors import ManifestError, UnsafePathError
+from seqpipe.formats import ENVIRONMENT_KEYS
 
 FORMAT: Final = "seqpipe.manifest/2"
 OLD_FORMATS: Final = ("seqpipe-dataset/1",)
@@ -170,6 +174,38 @@ def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
     c = _Check(where)
     if not isinstance(manifest, dict):
         raise c.fail("(top)", "expected a JSON object")
+    _check_format(manifest, where, c)
+    m = c.obj(manifest, "(top)", (*TOP_KEYS, "environment") if "environment" in manifest else TOP_KEYS)
+    if _depth(m) > MAX_DEPTH:
+        raise c.fail("(top)", f"nested deeper than {MAX_DEPTH} levels")
+    c.str_(m["seqpipe_version"], "seqpipe_version")
+    if "environment" in m:  # absent only in manifests written before it was recorded
+        env = c.obj(m["environment"], "environment", ENVIRONMENT_KEYS)
+        for key in ENVIRONMENT_KEYS:
+            c.str_(env[key], f"environment.{key}")
+    if not isinstance(m["recipe"], dict):
+        raise c.fail("recipe", "expected an object")
+    c.hex_(m["recipe_fingerprint"], "recipe_fingerprint")
+    if hash_json(m["recipe"]) != m["recipe_fingerprint"]:
+        raise c.fail("recipe_fingerprint", "does not match the recipe stored in the manifest")
+    for i, inp in enumerate(c.list_(m["inputs"], "inputs")):
+        c.file_(inp, f"inputs[{i}]")
+    tok = c.obj(m["tokenizer"], "tokenizer", ("kind", "files"))
+    c.str_(tok["kind"], "tokenizer.kind")
+    for i, f in enumerate(c.list_(tok["files"], "tokenizer.files")):
+        c.file_(f, f"tokenizer.files[{i}]")
+    _check_vocabulary(m["vocabulary"], c)
+    if m["dtype"] not in DTYPES:
+        raise c.fail("dtype", f"expected one of {list(DTYPES)}, got {m['dtype']!r}")
+    _check_splits(m["splits"], c)
+    if not isinstance(m["summary"], dict):
+        raise c.fail("summary", "expected an object")
+    _check_seals(m, c)
+    return m
+
+
+def _check_format(manifest: dict[str, Any], where: str, c: _Check) -> None:
+    """An older seqpipe's format gets its own message (rebuild); any other unknown format is refused."""
     if manifest.get("format") in OLD_FORMATS:
         raise ManifestError(
             f"{where}: made by an older seqpipe (format {manifest['format']}); this version reads {FORMAT}: "
@@ -183,23 +219,11 @@ def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
             f"this seqpipe reads {FORMAT!r}, got {manifest.get('format')!r}; "
             "rebuild the dataset with this version or use the seqpipe that wrote it",
         )
-    m = c.obj(manifest, "(top)", TOP_KEYS)
-    if _depth(m) > MAX_DEPTH:
-        raise c.fail("(top)", f"nested deeper than {MAX_DEPTH} levels")
-    c.str_(m["seqpipe_version"], "seqpipe_version")
-    if not isinstance(m["recipe"], dict):
-        raise c.fail("recipe", "expected an object")
-    c.hex_(m["recipe_fingerprint"], "recipe_fingerprint")
-    if hash_json(m["recipe"]) != m["recipe_fingerprint"]:
-        raise c.fail("recipe_fingerprint", "does not match the recipe stored in the manifest")
-    for i, inp in enumerate(c.list_(m["inputs"], "inputs")):
-        c.file_(inp, f"inputs[{i}]")
-    tok = c.obj(m["tokenizer"], "tokenizer", ("kind", "files"))
-    c.str_(tok["kind"], "tokenizer.kind")
-    for i, f in enumerate(c.list_(tok["files"], "tokenizer.files")):
-        c.file_(f, f"tokenizer.files[{i}]")
-    reused = isinstance(m["vocabulary"], dict) and "reused_from" in m["vocabulary"]
-    voc = c.file_(m["vocabulary"], "vocabulary", ("entries", "fingerprint", *(("reused_from",) if reused else ())))
+
+
+def _check_vocabulary(vocabulary: Any, c: _Check) -> None:
+    reused = isinstance(vocabulary, dict) and "reused_from" in vocabulary
+    voc = c.file_(vocabulary, "vocabulary", ("entries", "fingerprint", *(("reused_from",) if reused else ())))
     c.int_(voc["entries"], "vocabulary.entries")
     c.hex_(voc["fingerprint"], "vocabulary.fingerprint")
     if reused:
@@ -207,9 +231,10 @@ def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
         c.str_(src["dataset"], "vocabulary.reused_from.dataset")
         c.hex_(src["fingerprint"], "vocabulary.reused_from.fingerprint")
         c.list_(src["clean"], "vocabulary.reused_from.clean")
-    if m["dtype"] not in DTYPES:
-        raise c.fail("dtype", f"expected one of {list(DTYPES)}, got {m['dtype']!r}")
-    splits = m["splits"]
+
+
+def _check_splits(splits: Any, c: _Check) -> None:
+    """Each split's entries, and shards that tile it: each starts where the one before ended."""
     if not isinstance(splits, dict):
         raise c.fail("splits", "expected an object")
     for name, sp in splits.items():
@@ -234,8 +259,9 @@ def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
             first += s["tokens"]
         if first != total:
             raise c.fail(f"{k}.tokens", f"shards hold {first} tokens, split says {total}")
-    if not isinstance(m["summary"], dict):
-        raise c.fail("summary", "expected an object")
+
+
+def _check_seals(m: dict[str, Any], c: _Check) -> None:
     c.hex_(m["fingerprint"], "fingerprint")
     c.hex_(m["manifest_hash"], "manifest_hash")
     resealed = seal(m)
@@ -243,7 +269,6 @@ def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
         raise c.fail("fingerprint", "does not match the manifest's content (the manifest was edited)")
     if resealed["manifest_hash"] != m["manifest_hash"]:
         raise c.fail("manifest_hash", "does not match the manifest's content (the manifest was edited)")
-    return m
 
 
 def read_manifest(directory: Path) -> dict[str, Any]:

@@ -145,6 +145,14 @@ class Recipe:
                 f"tokenizer kind {getattr(tokenizer, 'kind', '?')!r} learns entries until the vocabulary "
                 "reaches [vocabulary] cap; set cap to the number of entries wanted (e.g. cap = 8000)",
             )
+        if getattr(tokenizer, "fixed_vocabulary", False) and self.vocabulary.cap:
+            # a cap drops byte values, and every byte of a character outside it becomes unknown
+            raise RecipeError(
+                "vocabulary.cap",
+                f"tokenizer kind {getattr(tokenizer, 'kind', '?')!r} has a fixed vocabulary (the byte values "
+                f"plus the reserved tokens); a cap of {self.vocabulary.cap} would turn text outside it into "
+                "unknown tokens: remove cap (or set cap = 0)",
+            )
         dedupes = [i for i, s in enumerate(self.clean) if getattr(s, "is_dedupe", False)]
         if len(dedupes) > 1:
             raise RecipeError(f"clean[{dedupes[1]}]", "only one dedupe step is allowed")

@@ -10,6 +10,8 @@ with zeros, or a zero-initialised buffer, is then all padding, never a real toke
 
 Stored as an Arrow IPC file with columns ``token`` (binary), ``count``
 (int64), ``reserved`` (bool); row i is id i. Schema metadata records the roles.
+A build rewrites ``count`` once the shards exist: the occurrences of each id in the
+train split's shards (seqpipe._build.count_train_ids), one definition for every kind.
 """
 
 from __future__ import annotations

@@ -137,7 +137,9 @@ test = 0.0
     assert res.manifest["vocabulary"]["entries"] == len(BOARD_ALPHABET) + 1
     unknown = ds.vocabulary.unknown_id
     assert unknown not in ds.encoder.encode("09:15 pm").tolist()
-    assert ds.encoder.encode("Dock!").tolist() == [unknown] * 5
+    assert ds.encoder.encode("Dock!", clean=False).tolist() == [unknown] * 5
+    # with the dataset's cleaning (the default) the text is lowercased and off-board characters removed first
+    assert ds.encoder.encode("09:15 PM!").tolist() == ds.encoder.encode("09:15 pm", clean=False).tolist()
 
 
 def test_builds_are_byte_identical_and_hashseed_free(tmp_path: Path) -> None:
@@ -461,3 +463,143 @@ def test_a_damaged_cached_part_is_rebuilt_not_trusted(tmp_path: Path) -> None:
     assert result.parts_reused == result.parts_total - 1
     assert any("1 cached part(s) did not match" in line for line in result.summary_lines())
     assert verify(out).ok
+
+
+def test_summary_warns_about_empty_validation_and_test_splits(tmp_path: Path) -> None:
+    """A corpus too small to give every split a document builds, but the summary names each empty
+    split with a warning instead of listing it as if nothing were wrong."""
+    from conftest import write_project
+
+    recipe = load_recipe(write_project(tmp_path / "src", files=1, paragraphs=2))
+    result = build(recipe, tmp_path / "out", workers=1, progress=False)
+    empty = [n for n, sp in result.manifest["splits"].items() if sp["documents"] == 0]
+    assert empty, "the corpus was meant to leave a split empty"
+    warnings = [line for line in result.summary_lines() if line.startswith("warning")]
+    assert len(warnings) == len(empty)
+    assert all(any(f"split {name!r}" in w for w in warnings) for name in empty)
+
+
+def _project(root: Path, extra: str, tokenizer: str = "words") -> Path:
+    """The conftest corpus and recipe with ``extra`` recipe lines and another tokenizer kind."""
+    from conftest import write_project
+
+    recipe = write_project(root, files=2, paragraphs=40)
+    text = recipe.read_text(encoding="utf-8").replace('kind = "words"', f'kind = "{tokenizer}"')
+    recipe.write_text(text + extra, encoding="utf-8")
+    return recipe
+
+
+def _train_bincount(directory: Path) -> np.ndarray:
+    """Occurrences of every id in the train split, recomputed from its shards."""
+    ds = open_dataset(directory)
+    ids = np.concatenate([np.asarray(c) for c in ds.split("train").stream.chunks])
+    return np.bincount(ids.astype(np.int64), minlength=len(ds.vocabulary))
+
+
+@pytest.mark.parametrize("tokenizer", ["words", "bpe"])
+def test_vocabulary_count_column_is_the_train_shards_id_count(tmp_path: Path, tokenizer: str) -> None:
+    """vocab.arrow's ``count`` is how often each id occurs in the train shards (np.bincount over
+    them), reserved tokens and markers included -- not 0 for reserved tokens, nor bpe's pre-merge
+    symbol counts."""
+    extra = "[vocabulary]\ncap = 320\n[encode]\nprepend_begin = true\n" if tokenizer == "bpe" else ""
+    out = tmp_path / "out"
+    build(load_recipe(_project(tmp_path / "src", extra, tokenizer)), out, workers=1, progress=False)
+    vocab = open_dataset(out).vocabulary
+    want = _train_bincount(out)
+    assert vocab.counts.tolist() == want.tolist()
+    assert vocab.counts[vocab.id_of("end")] == open_dataset(out).split("train").num_documents
+    assert verify(out).ok
+
+
+def test_unknown_rate_has_one_definition_in_summary_and_report(tmp_path: Path) -> None:
+    """The build summary and the report give the same unknown rate per split: unknown tokens over
+    content tokens (begin/end markers left out), recomputed here from the shards."""
+    from seqpipe.report import corpus_report
+
+    out = tmp_path / "out"
+    extra = "[vocabulary]\nmin_count = 3\n[encode]\nprepend_begin = true\n"
+    result = build(load_recipe(_project(tmp_path / "src", extra)), out, workers=1, progress=False)
+    ds = open_dataset(out)
+    report = corpus_report(ds, progress=False)
+    unk = ds.vocabulary.unknown_id
+    for name in ds.splits:
+        split = ds.split(name)
+        ids = np.concatenate([np.asarray(c) for c in split.stream.chunks])
+        content = len(ids) - 2 * split.num_documents  # one begin and one end marker per document
+        want = int(np.count_nonzero(ids == unk)) / content
+        assert want > 0, "min_count was meant to leave unknown tokens"
+        assert result.manifest["summary"]["splits"][name]["unknown_rate"] == pytest.approx(want, rel=1e-12)
+        assert report["splits"][name]["unknown_rate"] == pytest.approx(want, rel=1e-12)
+
+
+def test_a_build_served_from_the_cache_reports_nothing_read(tmp_path: Path) -> None:
+    """A rebuild whose parts all come from the cache reads no input bytes and says so, instead of
+    a read rate for bytes it never read; the first build reports what it read."""
+    recipe = load_recipe(_project(tmp_path / "src", ""))
+    first = build(recipe, tmp_path / "out", workers=1, progress=False)
+    assert first.bytes_read == first.input_bytes > 0
+    again = build(recipe, tmp_path / "out", workers=1, progress=False)
+    assert again.parts_reused == again.parts_total and again.bytes_read == 0
+    line = next(line for line in again.summary_lines() if line.startswith("inputs"))
+    assert "nothing read" in line and "MB/s" not in line
+
+
+def test_environment_is_recorded_and_keys_the_part_cache(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The manifest records the Unicode and library versions; a cached part made under another
+    Unicode version (or regex version) is not reused, and the fingerprint changes with it."""
+    import unicodedata
+
+    import regex
+
+    from seqpipe._environment import environment
+    from seqpipe.formats import ENVIRONMENT_KEYS
+
+    assert sorted(environment()) == sorted(ENVIRONMENT_KEYS)
+    recipe = load_recipe(_project(tmp_path / "src", ""))
+    first = build(recipe, tmp_path / "out", workers=1, progress=False)
+    assert first.manifest["environment"] == environment()
+    assert first.manifest["environment"]["unicode"] == unicodedata.unidata_version
+    monkeypatch.setattr(unicodedata, "unidata_version", "0.0.1-test")
+    again = build(recipe, tmp_path / "out", workers=1, progress=False)
+    assert again.parts_reused == 0 < again.parts_total
+    assert again.manifest["environment"]["unicode"] == "0.0.1-test"
+    assert again.fingerprint != first.fingerprint
+    monkeypatch.setattr(regex, "__version__", "0.0.2-test")
+    assert build(recipe, tmp_path / "out", workers=1, progress=False).parts_reused == 0
+    assert verify(tmp_path / "out").ok
+
+
+def test_fingerprint_does_not_depend_on_where_the_recipe_sits(tmp_path: Path) -> None:
+    """The same recipe with absolute globs, saved in two folders, over the same files gives the
+    same fingerprint: inputs are named relative to their glob's fixed directory, not the recipe."""
+    from conftest import write_corpus
+
+    write_corpus(tmp_path / "data", files=2, paragraphs=10)
+    text = f'[[sources]]\nkind = "text"\npaths = "{(tmp_path / "data" / "corpus").as_posix()}/*.txt"\n'
+    text += 'document = "paragraph"\n[tokenizer]\nkind = "words"\n'
+    prints = []
+    for where in ("a", "b/deeper/still"):
+        folder = tmp_path / where
+        folder.mkdir(parents=True)
+        (folder / "recipe.toml").write_text(text, encoding="utf-8")
+        result = build(load_recipe(folder / "recipe.toml"), folder / "out", workers=1, progress=False)
+        assert [i["path"] for i in result.manifest["inputs"]] == ["log-000.txt", "log-001.txt"]
+        prints.append(result.fingerprint)
+    assert prints[0] == prints[1]
+
+
+@pytest.mark.parametrize(
+    ("pattern", "base"),
+    [
+        ("logs/2026/*.txt", "logs/2026"),
+        ("*.txt", "."),
+        ("/srv/x/**/a?.txt", "/srv/x"),
+        ("a.txt", "."),
+        ("d/a.txt", "d"),
+    ],
+)
+def test_glob_base_is_the_fixed_directory_part(pattern: str, base: str) -> None:
+    """glob_base keeps the leading components without a wildcard, never the file component."""
+    from seqpipe.sources.base import glob_base
+
+    assert glob_base(pattern) == base

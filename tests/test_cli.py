@@ -187,3 +187,74 @@ def test_dataset_of_the_old_format_is_refused_with_what_to_do(
     assert code == EXIT_DATASET, (out, err)
     assert "made by an older seqpipe (format seqpipe-dataset/1)" in err
     assert "this version reads seqpipe.manifest/2: rebuild it with `seqpipe build RECIPE`" in err
+
+
+def test_batches_with_a_window_longer_than_the_split_is_a_usage_error(
+    cli_build: tuple[Path, str], capsys: pytest.CaptureFixture[str]
+) -> None:
+    """``batches`` whose window does not fit the split exits 2 naming the window and the split's length,
+    instead of printing an epoch of zero batches."""
+    out, _ = cli_build
+    tokens = open_dataset(out).split("test").num_tokens
+    code, stdout, err = run(
+        ["batches", str(out), "--split", "test", "--batch-size", "1", "--window", str(tokens)], capsys
+    )
+    assert code == EXIT_USAGE and stdout == ""
+    assert f"--window: {tokens} tokens" in err and f"holds {tokens} tokens" in err
+    code, _, err = run(["batches", str(out), "--split", "test", "--batch-size", "100000", "--window", "2"], capsys)
+    assert code == EXIT_USAGE and "--batch-size" in err and "no full batch" in err
+
+
+def test_report_by_default_writes_outside_the_dataset(
+    cli_build: tuple[Path, str], tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """``report DIR`` without ``-o`` writes ./<dataset-name>-report in the working directory, so the
+    dataset is unchanged and ``verify`` still passes."""
+    out, _ = cli_build
+    monkeypatch.chdir(tmp_path)
+    code, _, _ = run(["report", str(out.resolve()), "--quiet"], capsys)
+    name = open_dataset(out).manifest["recipe"]["dataset"]["name"]
+    assert code == EXIT_OK and (tmp_path / f"{name}-report" / "report.json").is_file()
+    code, stdout, _ = run(["verify", str(out.resolve())], capsys)
+    assert code == EXIT_OK and stdout.startswith("ok: ")
+
+
+@pytest.fixture(scope="module")
+def lowercased(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The conftest corpus built with a lowercase cleaning step."""
+    from conftest import build_dir
+
+    root = tmp_path_factory.mktemp("lower")
+    recipe = write_project(root / "src")
+    text = recipe.read_text(encoding="utf-8").replace("[tokenizer]", '[[clean]]\nkind = "lowercase"\n[tokenizer]')
+    recipe.write_text(text, encoding="utf-8")
+    return build_dir(recipe, root / "dataset")
+
+
+def test_encode_applies_the_dataset_cleaning_unless_raw(lowercased: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """On a dataset whose recipe lowercases, ``encode`` (CLI and API) lowercases the text first, so
+    mixed-case words get their ids instead of the unknown id; ``--raw`` / ``clean=False`` does not."""
+    enc = load_encoder(lowercased)
+    unk = enc.vocabulary.unknown_id
+    want = enc.encode("the quill left eastreach", clean=False).tolist()
+    assert unk not in want
+    assert enc.encode("The QUILL left Eastreach").tolist() == want
+    code, stdout, _ = run(["encode", str(lowercased), "The QUILL left Eastreach"], capsys)
+    assert code == EXIT_OK and [int(i) for i in stdout.split()] == want
+    code, stdout, _ = run(["encode", str(lowercased), "--raw", "The QUILL left Eastreach"], capsys)
+    raw = [int(i) for i in stdout.split()]
+    assert code == EXIT_OK and raw == enc.encode("The QUILL left Eastreach", clean=False).tolist()
+    assert unk in raw
+
+
+def test_decode_shows_reserved_tokens_when_asked(lowercased: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """``decode`` leaves reserved tokens out by default; ``--show-reserved`` prints them by name,
+    so an unknown id no longer disappears silently."""
+    enc = load_encoder(lowercased)
+    unk = enc.vocabulary.unknown_id
+    assert unk is not None
+    ids = [str(i) for i in [*enc.encode("quill").tolist(), unk]]
+    code, stdout, _ = run(["decode", str(lowercased), *ids], capsys)
+    assert code == EXIT_OK and "<unk>" not in stdout
+    code, stdout, _ = run(["decode", str(lowercased), "--show-reserved", *ids], capsys)
+    assert code == EXIT_OK and "quill" in stdout and "<unk>" in stdout

@@ -209,3 +209,12 @@ def test_dataset_name_must_be_one_plain_directory_name(name: str) -> None:
     are refused, so a build never defaults into the current directory or outside it."""
     with pytest.raises(RecipeError, match=r"dataset\.name"):
         parse_recipe(GOOD.replace('name = "ferry"', f"name = '{name}'"))
+
+
+def test_bytes_tokenizer_refuses_a_vocabulary_cap() -> None:
+    """A cap on the bytes tokenizer would make dropped byte values unknown (text such as '日本'
+    encoding to unknowns), so a recipe with kind = "bytes" and cap > 0 is refused at load."""
+    text = GOOD.replace('kind = "chars"', 'kind = "bytes"')
+    parse_recipe(text)  # no cap: accepted
+    with pytest.raises(RecipeError, match=r"vocabulary\.cap.*bytes"):
+        parse_recipe(text.replace("min_count = 2", "min_count = 2\ncap = 100"))

@@ -29,6 +29,7 @@ from seqpipe.errors import RecipeError, SourceError, SourceMissingError
 from seqpipe.executors import InlineExecutor
 from seqpipe.recipe import parse_recipe
 from seqpipe.sources import TextSource
+from seqpipe.sources.base import glob_base
 
 # pyarrow ships an in-memory filesystem for its own tests as pyarrow._fs._MockFileSystem (found in
 # the installed pyarrow; its docstring reads "_MockFileSystem(datetime current_time=None)").
@@ -189,9 +190,10 @@ def test_file_uris_build_the_same_dataset(
     assert sum(len(sp["shards"]) for sp in local.manifest["splits"].values()) > 2
     assert local.parts_total > len(local.manifest["inputs"])
     assert remote.parts_total == local.parts_total
-    # the manifest records the URI of each input, the local build the path under the recipe root
+    # the manifest records the URI of each input, the local build the path under its glob's fixed directory
+    base = corpus / glob_base(KINDS[kind][0])
     assert [i["path"] for i in remote.manifest["inputs"]] == [
-        file_uri(corpus / i["path"]) for i in local.manifest["inputs"]
+        file_uri(base / i["path"]) for i in local.manifest["inputs"]
     ]
 
 
@@ -216,7 +218,8 @@ def test_in_memory_filesystem_builds_the_same_dataset(
     remote = build_glob(corpus, kind, f"{MEM}/{KINDS[kind][0]}", tmp_path / "out")  # default executor
     assert outputs(remote) == outputs(local_builds[kind])
     local_paths = [i["path"] for i in local_builds[kind].manifest["inputs"]]
-    assert [i["path"] for i in remote.manifest["inputs"]] == [f"{MEM}/{p}" for p in local_paths]
+    base = glob_base(KINDS[kind][0])
+    assert [i["path"] for i in remote.manifest["inputs"]] == [f"{MEM}/{base}/{p}" for p in local_paths]
 
 
 def _count_uri_hashes(monkeypatch: pytest.MonkeyPatch) -> list[str]:

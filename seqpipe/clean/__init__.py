@@ -38,6 +38,16 @@ def apply_steps(steps: Sequence[CleanStep], docs: pa.Array) -> pa.Array:
     return docs
 
 
+def clean_text(steps: Sequence[CleanStep], text: str) -> str:
+    """``text`` through the steps that rewrite text, as a build cleans a document; filters
+    (steps with ``keep``) and ``dedupe`` judge whole documents of a corpus and are skipped."""
+    docs = pa.array([text], pa.large_string())
+    for step in steps:
+        if not step.is_dedupe and not hasattr(step, "keep"):
+            docs = step.apply(docs)
+    return str(docs[0].as_py())
+
+
 __all__ = [
     "STEP_KINDS",
     "CleanStep",
@@ -49,5 +59,6 @@ __all__ = [
     "Replace",
     "StripControl",
     "apply_steps",
+    "clean_text",
     "parse_step",
 ]

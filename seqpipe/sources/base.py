@@ -28,7 +28,7 @@ import re
 from abc import ABC, abstractmethod
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
-from pathlib import Path
+from pathlib import Path, PurePath
 from typing import Any, ClassVar, Final
 
 import pyarrow as pa
@@ -48,6 +48,20 @@ LINE_END_MODES: Final = ("normalize", "keep")
 
 # A document made only of these (after line-end handling) is empty for our purposes.
 _BLANK_TEXT: Final = re.compile(r"[ \t\x0b\x0c\r\n]*")
+
+
+def glob_base(pattern: str) -> str:
+    """The fixed directory part of a glob: its leading components without a wildcard, the last
+    component (the file part) never included ("logs/2026/*.txt" -> "logs/2026", "*.txt" -> ".")."""
+    parts = re.split(r"[/\\]", pattern) if os.sep == "\\" else pattern.split("/")
+    fixed: list[str] = []
+    for part in parts[:-1]:
+        if re.search(r"[*?\[]", part):
+            break
+        fixed.append(part)
+    if not fixed:
+        return "."
+    return "/".join(fixed) or "/"  # an absolute glob's first component is empty
 
 
 @dataclass(frozen=True, slots=True)
@@ -98,6 +112,7 @@ class Resolved:
 
     files: list[SourcePath]
     skipped: tuple[tuple[str, str], ...]
+    names: tuple[str, ...] = ()  # per file, the name a manifest records (Source.resolve_named)
 
 
 def _parse_paths(value: Any) -> tuple[str, ...]:
@@ -154,20 +169,29 @@ class Source(ABC):
         """
         return self.resolve_all(root).files
 
+    def resolve_named(self, root: Path) -> list[tuple[SourcePath, str]]:
+        """:meth:`resolve`'s files, each with the name a manifest records for it: its POSIX path
+        relative to the glob base (the fixed directory part) of the first glob that matched it,
+        so neither where the recipe sits nor an absolute glob's directory enters a fingerprint;
+        a URI is its own name."""
+        resolved = self.resolve_all(root)
+        return list(zip(resolved.files, resolved.names, strict=True))
+
     def resolve_all(self, root: Path) -> Resolved:
-        """:meth:`resolve`'s files, and the local matches that are not regular files.
+        """:meth:`resolve`'s files (with their recorded names, see :meth:`resolve_named`), and
+        the local matches that are not regular files.
 
         A FIFO, socket, device, directory, dangling symlink or symlink loop that a glob
         matches is skipped and listed (``on_special_file = "skip"``, the default) or refused
         with a :class:`SourceError` naming it (``"error"``). Each real directory is walked
         once, so a symlink loop cannot make the glob run forever.
         """
-        found: dict[str, SourcePath] = {}
+        found: dict[str, tuple[SourcePath, str]] = {}
         skipped: dict[str, str] = {}
         for pattern in self.paths:
             if is_uri(pattern):
                 for uri in glob_uri(pattern):
-                    found.setdefault(uri, uri)
+                    found.setdefault(uri, (uri, uri))
                 continue
             matches = glob_local(root, pattern)
             for rel, what in matches.skipped:
@@ -180,10 +204,13 @@ class Source(ABC):
                 skipped.setdefault(rel, what)
             if not matches.files:
                 raise SourceMissingError(str(root), f"glob {pattern!r} matched no file under {root}")
+            base = glob_base(pattern)
             for hit in matches.files:
-                key = os.path.normpath(hit).replace(os.sep, "/")
-                found.setdefault(key, root / key)
-        return Resolved([found[key] for key in sorted(found)], tuple(sorted(skipped.items())))
+                key = PurePath(os.path.normpath(hit)).as_posix()
+                name = PurePath(os.path.relpath(os.path.normpath(hit), base)).as_posix()
+                found.setdefault(key, (root / key, name))
+        ordered = [found[key] for key in sorted(found)]
+        return Resolved([p for p, _ in ordered], tuple(sorted(skipped.items())), tuple(n for _, n in ordered))
 
     @abstractmethod
     def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:

@@ -27,6 +27,7 @@ import numpy as np
 import pyarrow as pa
 
 if TYPE_CHECKING:
+    from seqpipe.clean.base import CleanStep
     from seqpipe.vocab import VocabSpec, Vocabulary
 
 
@@ -70,6 +71,9 @@ class Encoder(ABC):
 
     tokenizer: Tokenizer
     vocabulary: Vocabulary
+    # the cleaning steps of the dataset the encoder was loaded from (set by Dataset.encoder), so
+    # encode() sees text as the build saw it; none for an encoder fitted outside a dataset
+    cleaning: tuple[CleanStep, ...] = ()
 
     @abstractmethod
     def piece_ids(self, keys: pa.Array) -> tuple[np.ndarray, np.ndarray]:
@@ -77,7 +81,7 @@ class Encoder(ABC):
         ``values[offsets[i]:offsets[i+1]]`` the ids of ``keys[i]`` (offsets has len(keys)+1)."""
 
     @abstractmethod
-    def decode(self, ids: Sequence[int] | np.ndarray) -> str:
+    def decode(self, ids: Sequence[int] | np.ndarray, *, show_reserved: bool = False) -> str:
         """Text for a sequence of ids (reserved tokens are skipped unless ``show_reserved``)."""
 
     def save(self, directory: Path) -> list[str]:
@@ -95,8 +99,14 @@ class Encoder(ABC):
         values, offsets = self.piece_ids(seg.keys)
         return expand(values, offsets, seg.codes, seg.doc_lengths)
 
-    def encode(self, text: str) -> np.ndarray:
-        """Ids for one text (no begin/end markers)."""
+    def encode(self, text: str, *, clean: bool = True) -> np.ndarray:
+        """Ids for one text (no begin/end markers). With ``clean`` (the default) the text first
+        goes through the dataset's cleaning steps that rewrite text (lowercase, normalize, ...),
+        as every document of the dataset did; ``clean=False`` encodes it as given."""
+        if clean and self.cleaning:
+            from seqpipe.clean import clean_text
+
+            text = clean_text(self.cleaning, text)
         ids, _ = self.encode_segments(self.tokenizer.segment([text]))
         return ids
 

@@ -26,6 +26,8 @@ class ByteTokenizer(Tokenizer):
     (so nothing is ever unknown) instead of only the bytes seen in training."""
 
     kind: ClassVar[str] = "bytes"
+    # the vocabulary is the byte values: a [vocabulary] cap is refused at recipe load
+    fixed_vocabulary: ClassVar[bool] = True
     all_bytes: bool = True
 
     def __post_init__(self) -> None:
