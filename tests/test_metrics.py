@@ -32,13 +32,13 @@ def test_worked_example_by_hand() -> None:
 
 
 @settings(max_examples=100, deadline=None)
-@given(st.floats(0.0, 1e7), st.integers(1, 10**9), st.integers(1, 10**9))
-def test_bits_per_byte_is_log2_perplexity_times_tokens_over_bytes(loss: float, tokens: int, n_bytes: int) -> None:
+@given(st.floats(0.01, 50.0), st.integers(1, 10**9), st.integers(1, 10**9))
+def test_bits_per_byte_is_log2_perplexity_times_tokens_over_bytes(mean: float, tokens: int, n_bytes: int) -> None:
     """Common practice: bits per byte = log2(perplexity) * tokens / bytes, and log2(perplexity)
-    is bits per token."""
+    is bits per token (mean losses from 0.01 to 50 nats per token: below, log2 of a perplexity
+    near 1 loses the digits the identity compares)."""
+    loss = mean * tokens
     ppl = perplexity(loss, tokens)
-    if math.isinf(ppl):
-        return  # exp overflows; the identity is checked through bits_per_token below
     assert bits_per_token(loss, tokens) == pytest.approx(math.log2(ppl), rel=1e-9, abs=1e-12)
     assert bits_per_byte(loss, n_bytes) == pytest.approx(math.log2(ppl) * tokens / n_bytes, rel=1e-9, abs=1e-12)
 
@@ -47,6 +47,14 @@ def test_numpy_counts_and_losses_are_accepted() -> None:
     """A numpy float loss and numpy integer counts (what a vectorized pass produces) work."""
     fig = loss_figures(np.float64(np.log(2) * 8), tokens=np.int64(4), text_bytes=np.int64(2), characters=np.int32(2))
     assert (fig.bits_per_token, fig.bits_per_byte, fig.bits_per_character) == pytest.approx((2.0, 4.0, 4.0))
+
+
+def test_perplexity_past_the_float_range_is_infinite() -> None:
+    """A mean loss whose exp overflows gives perplexity inf, while bits per token stay finite."""
+    fig = loss_figures(800.0, tokens=1, text_bytes=2)
+    assert math.isinf(fig.perplexity)
+    assert fig.bits_per_token == pytest.approx(800 / math.log(2))
+    assert fig.bits_per_byte == pytest.approx(400 / math.log(2))
 
 
 def test_counts_are_optional() -> None:
