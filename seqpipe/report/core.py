@@ -32,6 +32,12 @@ PREDICTED: Final = (
     "the train split's events. Kneser-Ney: discount {d} at every order; its unigram level is the "
     "continuation distribution interpolated with the uniform one, so no event has probability 0."
 )
+ZIPF_NOTE: Final = (
+    "Zipf fits and rank-frequency curves exclude reserved tokens (the unknown token too). The fit is the "
+    "discrete power-law maximum-likelihood estimate of Clauset, Shalizi & Newman (2009) on the counts of "
+    "token types at or above x_min (x_min chosen by their Kolmogorov-Smirnov method); alpha is the exponent "
+    "of the count distribution, rank_exponent = 1/(alpha-1) that of rank-frequency (Zipf's s)."
+)
 PER_TEXT: Final = (
     "Bits per byte: a model's total negative log2-likelihood over a split's events divided by the UTF-8 bytes "
     "of the split's cleaned documents as stored before tokenization (the build summary's bytes); bits per "
@@ -98,12 +104,7 @@ def collect(
     names = tuple(dataset.splits)
     others = [n for n in names if n != TRAIN]
     has_train = TRAIN in names
-    notes: list[str] = [
-        "Zipf fits and rank-frequency curves exclude reserved tokens (the unknown token too). The fit is the "
-        "discrete power-law maximum-likelihood estimate of Clauset, Shalizi & Newman (2009) on the counts of "
-        "token types at or above x_min (x_min chosen by their Kolmogorov-Smirnov method); alpha is the exponent "
-        "of the count distribution, rank_exponent = 1/(alpha-1) that of rank-frequency (Zipf's s)."
-    ]
+    notes: list[str] = [ZIPF_NOTE]
     report: dict[str, Any] = {
         "format": REPORT_FORMAT,
         "dataset": {
@@ -152,11 +153,7 @@ def collect(
             report["leakage"] = _leakage(dataset, loaded, others, ngram_n, bar)
             if max_order(bits) >= 3:
                 report["perplexity"] = _perplexity(loaded, others, roles, bits, add_k, kn_discount, bar)
-                sizes = {name: _text_sizes(dataset, name) for name in others}
-                _add_per_text(report["perplexity"], sizes)
-                missing = [name for name, (b, _) in sizes.items() if b is None]
-                if missing:
-                    notes.append(NO_TEXT_SIZES.format(splits=", ".join(missing)))
+                notes += _add_per_text(report["perplexity"], {name: _text_sizes(dataset, name) for name in others})
     report["notes"] = notes
     return report, curves
 
@@ -227,8 +224,9 @@ def _text_sizes(dataset: DatasetLike, name: str) -> tuple[int | None, int | None
     return (n_bytes if isinstance(n_bytes, int) else None, chars if isinstance(chars, int) else None)
 
 
-def _add_per_text(ppl: dict[str, Any], sizes: dict[str, tuple[int | None, int | None]]) -> None:
-    """Beside each perplexity, bits per byte and per character of the same model on the same split."""
+def _add_per_text(ppl: dict[str, Any], sizes: dict[str, tuple[int | None, int | None]]) -> list[str]:
+    """Beside each perplexity, bits per byte and per character of the same model on the same split;
+    returns the notes to add (splits without recorded text sizes)."""
     ppl["per_text"] = PER_TEXT
     for name, entry in ppl["splits"].items():
         n_bytes, chars = sizes[name]
@@ -246,6 +244,8 @@ def _add_per_text(ppl: dict[str, Any], sizes: dict[str, tuple[int | None, int | 
                 )
             entry["bits_per_byte"][model] = fig.bits_per_byte if fig else None
             entry["bits_per_character"][model] = fig.bits_per_character if fig else None
+    missing = [name for name, (n_bytes, _) in sizes.items() if n_bytes is None]
+    return [NO_TEXT_SIZES.format(splits=", ".join(missing))] if missing else []
 
 
 def corpus_report(
