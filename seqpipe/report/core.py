@@ -188,7 +188,8 @@ def _perplexity(
     loaded: dict[str, SplitTokens], others: list[str], roles: Roles, bits: int, add_k: float, d: float, bar: Any
 ) -> dict[str, Any]:
     space = lm.event_space(roles)
-    tables = lm.CountTables.fit(lm.events(loaded[TRAIN], roles), bits, roles.vocab_size + 1)
+    train_events = (lm.events(c, roles) for c in lm.chunks(loaded[TRAIN]))
+    tables = lm.CountTables.fit_chunks(train_events, bits, roles.vocab_size + 1)
     bar.update()
     begin = "the begin token" if roles.begin is not None else "a virtual begin id (no begin token)"
     ended = sum(int(loaded[n].has_end.sum()) for n in others)
@@ -200,8 +201,8 @@ def _perplexity(
         "splits": {},
     }
     for name in others:
-        ev = lm.events(loaded[name], roles)
-        out["splits"][name] = {"events": len(ev), **lm.evaluate(tables, ev, space=space, k=add_k, d=d)}
+        parts = (lm.events(c, roles) for c in lm.chunks(loaded[name]))
+        out["splits"][name] = lm.evaluate(tables, parts, space=space, k=add_k, d=d)
         bar.update()
     return out
 
