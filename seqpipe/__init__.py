@@ -20,6 +20,7 @@ if _typing.TYPE_CHECKING:
     from seqpipe._verify import VerifyReport, verify
     from seqpipe.dataset import Dataset, Split, load_encoder, open_dataset
     from seqpipe.errors import SeqpipeError
+    from seqpipe.metrics import LossFigures, loss_figures
     from seqpipe.recipe import Recipe, load_recipe, parse_recipe
     from seqpipe.report import corpus_report, write_report
     from seqpipe.stream import TokenStream
@@ -37,6 +38,8 @@ _HOME: _typing.Final = {
     "load_encoder": "dataset",
     "open_dataset": "dataset",
     "SeqpipeError": "errors",
+    "LossFigures": "metrics",
+    "loss_figures": "metrics",
     "Recipe": "recipe",
     "load_recipe": "recipe",
     "parse_recipe": "recipe",
@@ -70,6 +73,7 @@ __all__ = [
     "BatchStream",
     "BuildResult",
     "Dataset",
+    "LossFigures",
     "Recipe",
     "SeqpipeError",
     "Split",
@@ -80,6 +84,7 @@ __all__ = [
     "corpus_report",
     "load_encoder",
     "load_recipe",
+    "loss_figures",
     "open_dataset",
     "parse_recipe",
     "stream_fingerprint",

@@ -25,7 +25,7 @@ from seqpipe.shards import read_table, write_batches
 
 DOCS_BATCH_ROWS: Final = 1 << 16
 # what encode_part reports per split and part, summed per split
-TOTALS: Final = ("tokens", "content", "documents", "unknown", "bytes", "words")
+TOTALS: Final = ("tokens", "content", "documents", "unknown", "bytes", "characters", "words")
 
 
 @dataclass(frozen=True, slots=True)
@@ -128,6 +128,9 @@ def split_summary(totals: dict[str, int]) -> dict[str, Any]:
         "bytes_per_token": totals["bytes"] / n_tokens if n_tokens else 0.0,
         "tokens_per_word": n_tokens / totals["words"] if totals["words"] else 0.0,
         "documents": totals["documents"],
+        # UTF-8 bytes and code points of the cleaned documents: the report's bits per byte / character
+        "bytes": totals["bytes"],
+        "characters": totals["characters"],
     }
 
 

@@ -42,7 +42,7 @@ from seqpipe.splits import assign_splits, fixed_split_of
 from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
 
-PART_FORMAT: Final = "seqpipe.part/4"
+PART_FORMAT: Final = "seqpipe.part/5"  # /5: docs.arrow counts characters
 _THREADS: list[int] = []  # set by set_ingest_threads (e.g. in pool workers); else the environment
 
 
@@ -249,6 +249,7 @@ def _process_batch(recipe: Recipe, batch: pa.Array, first: int = 0) -> _Batch:
     columns = {
         "hash": _doc_hashes(docs),
         "bytes": pc.binary_length(docs).to_numpy(zero_copy_only=False).astype(np.int64),
+        "characters": pc.utf8_length(docs).to_numpy(zero_copy_only=False).astype(np.int64),
         "words": count_words(docs),
     }
     try:
@@ -295,7 +296,7 @@ class _Gathered:
 def _gather(done: Iterable[_Batch]) -> _Gathered:
     dropped: dict[str, int] = {}
     segs: list[Segments] = []
-    columns: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "bytes", "words")}
+    columns: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "bytes", "characters", "words")}
     for batch in done:
         for name, count in batch.dropped.items():
             dropped[name] = dropped.get(name, 0) + count
@@ -316,12 +317,13 @@ def _joined(parts: list[np.ndarray], width: int | None) -> np.ndarray:
 
 
 def _docs_table(recipe: Recipe, got: _Gathered) -> pa.Table:
-    """The part's docs.arrow: per document its hash, pieces, bytes, words (and dedupe hash)."""
+    """The part's docs.arrow: per document its hash, pieces, bytes, characters, words (and dedupe hash)."""
     n = len(got.segments.doc_lengths)
     table: dict[str, Any] = {
         "hash": pa.FixedSizeBinaryArray.from_buffers(HASH_TYPE, n, [None, pa.py_buffer(got.columns["hash"].tobytes())]),
         "pieces": pa.array(got.segments.doc_lengths, pa.int64()),
         "bytes": pa.array(got.columns["bytes"], pa.int64()),
+        "characters": pa.array(got.columns["characters"], pa.int64()),
         "words": pa.array(got.columns["words"], pa.int64()),
     }
     if any(getattr(s, "is_dedupe", False) for s in recipe.clean):
@@ -583,6 +585,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
             "documents": int(dmask.sum()),
             "unknown": unknown,
             "bytes": int(docs.column("bytes").to_numpy()[dmask].sum()),
+            "characters": int(docs.column("characters").to_numpy()[dmask].sum()),
             "words": int(docs.column("words").to_numpy()[dmask].sum()),
         }
     return out

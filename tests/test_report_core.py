@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 import sys
 from pathlib import Path
 
@@ -216,3 +217,47 @@ def test_vocabulary_too_large_for_trigram_keys() -> None:
     assert report["top_ngrams"]["2"][0]["ids"] in ([5, size - 1], [size - 1, 5])
     assert report["leakage"]["documents"]["test"]["duplicated"] == 1
     assert any("too large" in note for note in report["notes"])
+
+
+def test_bits_per_byte_divide_by_the_bytes_of_the_split_text(tmp_path: Path) -> None:
+    """The build records each split's UTF-8 bytes and characters of its cleaned documents (found
+    here by the documents' text hashes, XXH3-128 of the UTF-8 text); the report's bits per byte
+    (per character) of every model is log2(perplexity) * events / bytes (/ characters)."""
+    import xxhash
+
+    from seqpipe import build
+    from seqpipe.dataset import open_dataset
+    from seqpipe.recipe import parse_recipe
+
+    (tmp_path / "logs").mkdir()
+    texts: dict[bytes, str] = {}
+    for f in range(3):
+        # invented ferry-log lines with multi-byte characters, so bytes and characters differ
+        paras = [f"{LINES[(f + i) % len(LINES)]} near Ærø café № {f * 40 + i}" for i in range(40)]
+        texts.update({xxhash.xxh3_128_digest(p.encode()): p for p in paras})
+        (tmp_path / "logs" / f"day{f}.txt").write_text("\n\n".join(paras) + "\n", encoding="utf-8")
+    build(parse_recipe(RECIPE, root=tmp_path), tmp_path / "ds", workers=1, progress=False)
+    ds = open_dataset(tmp_path / "ds")
+    report = corpus_report(ds, progress=False)
+    ppl = report["perplexity"]
+    for name in ("validation", "test"):
+        docs = [texts[h] for h in ds.split(name).documents.column("hash").to_pylist()]
+        summary = ds.manifest["summary"]["splits"][name]
+        assert summary["bytes"] == sum(len(d.encode("utf-8")) for d in docs)
+        assert summary["characters"] == sum(len(d) for d in docs) < summary["bytes"]
+        entry = ppl["splits"][name]
+        assert (entry["text_bytes"], entry["characters"]) == (summary["bytes"], summary["characters"])
+        for model in ("uniform", "trigram_kneser_ney"):
+            total_bits = math.log2(entry[model]) * entry["events"]
+            assert entry["bits_per_byte"][model] == pytest.approx(total_bits / summary["bytes"])
+            assert entry["bits_per_character"][model] == pytest.approx(total_bits / summary["characters"])
+    assert "bits per byte" in ppl["per_text"].lower() and "no bytes" in ppl["per_text"]
+    assert report["dataset"]["name"].startswith("dataset (")
+
+
+def test_in_memory_dataset_without_text_sizes_says_so() -> None:
+    """Without bytes/characters in the build summary, bits per byte are null and a note says why."""
+    report = corpus_report(small(), progress=False)
+    entry = report["perplexity"]["splits"]["validation"]
+    assert entry["bits_per_byte"]["uniform"] is None and entry["text_bytes"] is None
+    assert any("rebuild the dataset" in note for note in report["notes"])

@@ -228,3 +228,31 @@ def test_events_are_built_from_the_split_tokens() -> None:
     assert ev.w.tolist() == [7, 8, 3, 9, 3]
     assert ev.h1.tolist() == [2, 7, 8, 2, 9]
     assert ev.h2.tolist() == [2, 2, 7, 2, 2]
+
+
+@settings(max_examples=30, deadline=None)
+@given(
+    st.lists(st.lists(st.sampled_from(["a", "b", "c", "d", "e", "f"]), max_size=9), min_size=1, max_size=25),
+    st.integers(1, 40),
+)
+def test_chunked_fit_and_evaluation_equal_the_whole_split(docs: list[list[str]], size: int) -> None:
+    """Fitting on groups of whole documents of about ``size`` tokens and summing the evaluation over
+    groups gives the tables and perplexities of the whole split at once; the groups hold every
+    document once, in order."""
+    ds = dataset_from_documents({"train": [*docs, ["a", "b"]], "validation": docs})
+    roles = Roles.of(ds.vocabulary)
+    bits, n_ids, space = key_bits(roles.vocab_size), roles.vocab_size + 1, lm.event_space(roles)
+    train = load_split(ds, "train", roles)
+    parts = list(lm.chunks(train, size))
+    assert sum(p.num_documents for p in parts) == train.num_documents
+    assert np.concatenate([p.content_ids() for p in parts]).tolist() == train.content_ids().tolist()
+    whole = lm.CountTables.fit(lm.events(train, roles), bits, n_ids)
+    chunked = lm.CountTables.fit_chunks((lm.events(p, roles) for p in parts), bits, n_ids)
+    for field in lm.CountTables.__dataclass_fields__:
+        assert np.array_equal(getattr(whole, field), getattr(chunked, field)), field
+    val = load_split(ds, "validation", roles)
+    at_once = lm.evaluate(whole, lm.events(val, roles), space=space, k=1.0, d=0.75)
+    by_parts = lm.evaluate(chunked, (lm.events(p, roles) for p in lm.chunks(val, size)), space=space, k=1.0, d=0.75)
+    assert at_once["events"] == by_parts["events"]
+    for model in lm.MODELS:
+        assert by_parts[model] == pytest.approx(at_once[model], rel=1e-12)

@@ -13,29 +13,9 @@ from hypothesis import strategies as st
 from memory_dataset import dataset_from_documents
 
 from seqpipe.report import corpus_report
-from seqpipe.report.stats import length_summary, zipf_fit
+from seqpipe.report.stats import length_summary
 
 TRAIN = ["the cat sat on the mat", "the dog sat on the log", "the cat saw the dog"]
-
-
-@settings(max_examples=50, deadline=None)
-@given(st.floats(0.3, 2.5), st.floats(1.0, 1e6), st.integers(2, 1500))
-def test_zipf_fit_recovers_an_exact_power_law(s: float, c: float, ranks: int) -> None:
-    """Frequencies c * r**-s give back exponent s with R² = 1 (least squares on an exact line),
-    using ranks 1..1000 only."""
-    f = c * np.arange(1, ranks + 1, dtype=np.float64) ** -s
-    fit = zipf_fit(f)
-    assert fit is not None
-    assert fit.exponent == pytest.approx(s, abs=1e-9)
-    assert fit.intercept == pytest.approx(np.log(c), abs=1e-7)
-    assert fit.r_squared == pytest.approx(1.0, abs=1e-9)
-    assert fit.ranks == min(ranks, 1000)
-
-
-def test_zipf_fit_needs_two_ranks() -> None:
-    """With fewer than two nonzero frequencies there is no line to fit."""
-    assert zipf_fit(np.array([5.0])) is None
-    assert zipf_fit(np.array([5.0, 0.0])) is None
 
 
 @settings(max_examples=100, deadline=None)
@@ -79,14 +59,18 @@ def _verses() -> list[str]:
 
 
 def test_zipf_exponent_of_english_text_is_near_one() -> None:
-    """Zipf (1949), common practice: English word frequencies fall roughly as 1/rank. On 6,604
-    verses (267k whitespace-separated words) the fitted exponent over ranks 1..1000 lies in
-    [0.8, 1.2] and "the" is among the three most frequent words."""
+    """Clauset, Shalizi & Newman (2009), Table 6.1 (from memory): word counts of an English novel
+    fit a discrete power law with alpha 1.95 (+-0.02), i.e. Zipf's rank exponent s = 1/(alpha-1)
+    near 1 (Zipf 1949, common practice). On 6,604 verses (267k whitespace-separated words) the
+    maximum-likelihood alpha lies in [1.7, 2.3] (s in [0.77, 1.43]), the KS distance of the fit
+    is small, and "the" is among the three most frequent words."""
     verses = _verses()
     docs = [v.split() for v in verses]
     report = corpus_report(dataset_from_documents({"train": docs}), progress=False)
     zipf = report["splits"]["train"]["zipf"]
-    assert zipf["ranks"] == 1000
-    assert 0.8 <= zipf["exponent"] <= 1.2
+    assert 1.7 <= zipf["alpha"] <= 2.3
+    assert zipf["rank_exponent"] == pytest.approx(1 / (zipf["alpha"] - 1))
+    assert zipf["x_min_method"] == "ks" and zipf["types"] >= 50
+    assert zipf["ks_distance"] < 0.05
     top3 = [e["tokens"][0] for e in report["top_ngrams"]["1"][:3]]
     assert "the" in top3

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import math
 import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -13,6 +14,7 @@ import numpy as np
 
 from seqpipe._parse import parse_bool, parse_float, parse_int
 from seqpipe.errors import RecipeError, SeqpipeError
+from seqpipe.metrics import loss_figures
 from seqpipe.report import leakage, lm, stats
 from seqpipe.report.corpus import DatasetLike, Roles, SplitTokens, load_split
 from seqpipe.report.ngrams import count_ngrams, key_bits, max_order
@@ -29,6 +31,24 @@ PREDICTED: Final = (
     "Event space: the vocabulary without the padding token ({space} ids). Models are fitted on "
     "the train split's events. Kneser-Ney: discount {d} at every order; its unigram level is the "
     "continuation distribution interpolated with the uniform one, so no event has probability 0."
+)
+ZIPF_NOTE: Final = (
+    "Zipf fits and rank-frequency curves exclude reserved tokens (the unknown token too). The fit is the "
+    "discrete power-law maximum-likelihood estimate of Clauset, Shalizi & Newman (2009) on the counts of "
+    "token types at or above x_min (x_min chosen by their Kolmogorov-Smirnov method); alpha is the exponent "
+    "of the count distribution, rank_exponent = 1/(alpha-1) that of rank-frequency (Zipf's s)."
+)
+PER_TEXT: Final = (
+    "Bits per byte: a model's total negative log2-likelihood over a split's events divided by the UTF-8 bytes "
+    "of the split's cleaned documents as stored before tokenization (the build summary's bytes); bits per "
+    "character divides by their Unicode code points (characters). Equivalently log2(perplexity) x events / bytes. "
+    "Every byte of the document text counts, newlines and whitespace the tokenizer drops included; begin/end "
+    "markers add no bytes, yet a predicted end marker adds its loss; an unknown token is one event, and the "
+    "bytes of the text it replaced are counted. Unlike perplexity, these compare across tokenizers of one text."
+)
+NO_TEXT_SIZES: Final = (
+    "The build summary records no text bytes/characters for {splits} (a dataset built before they were "
+    "recorded, or one held in memory): no bits per byte or per character; rebuild the dataset to get them."
 )
 
 
@@ -75,8 +95,8 @@ def collect(
     add_k: float = 1.0,
     kn_discount: float = 0.75,
     progress: bool = True,
-) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-    """The report and, per split, the descending frequencies of non-reserved ids (for plots)."""
+) -> tuple[dict[str, Any], dict[str, stats.RankCurve]]:
+    """The report and, per split, its rank-frequency curve and Zipf fit (for plots)."""
     _check(ngram_n, top_k, add_k, kn_discount, progress)
     vocab = dataset.vocabulary
     roles = Roles.of(vocab)
@@ -84,10 +104,11 @@ def collect(
     names = tuple(dataset.splits)
     others = [n for n in names if n != TRAIN]
     has_train = TRAIN in names
-    notes: list[str] = ["Zipf fits and rank-frequency curves exclude reserved tokens (the unknown token too)."]
+    notes: list[str] = [ZIPF_NOTE]
     report: dict[str, Any] = {
         "format": REPORT_FORMAT,
         "dataset": {
+            "name": _dataset_name(dataset),
             "fingerprint": dataset.fingerprint,
             "vocabulary_entries": roles.vocab_size,
             "reserved": [vocab.token(i).decode("utf-8", "backslashreplace") for i in range(roles.n_reserved)],
@@ -97,7 +118,7 @@ def collect(
         "settings": {"ngram_n": ngram_n, "top_k": top_k, "add_k": add_k, "kn_discount": kn_discount},
     }
     steps = len(names) + (3 + 2 * len(others) if has_train else 0)
-    curves: dict[str, np.ndarray] = {}
+    curves: dict[str, stats.RankCurve] = {}
     with _progress(steps, progress) as bar:
         loaded: dict[str, SplitTokens] = {}
         for name in names:
@@ -109,9 +130,12 @@ def collect(
         counts = {name: stats.id_counts(s, roles.vocab_size) for name, s in loaded.items()}
         ranking = stats.frequency_ranking(counts[TRAIN], roles.n_reserved) if has_train else None
         report["splits"] = {}
+        alphabet = stats.is_alphabet(vocab)
         for name, s in loaded.items():
-            report["splits"][name] = stats.split_stats(s, counts[name], roles, ranking)
-            curves[name] = counts[name][stats.frequency_ranking(counts[name], roles.n_reserved)]
+            own = stats.frequency_ranking(counts[name], roles.n_reserved)
+            zipf, fit = stats.zipf_figures(counts[name], own, alphabet)
+            report["splits"][name] = stats.split_stats(s, counts[name], roles, ranking, zipf)
+            curves[name] = stats.RankCurve(counts[name][own], int(s.content_lengths.sum()), fit)
             bar.update()
         if not has_train:
             notes.append(
@@ -129,6 +153,7 @@ def collect(
             report["leakage"] = _leakage(dataset, loaded, others, ngram_n, bar)
             if max_order(bits) >= 3:
                 report["perplexity"] = _perplexity(loaded, others, roles, bits, add_k, kn_discount, bar)
+                notes += _add_per_text(report["perplexity"], {name: _text_sizes(dataset, name) for name in others})
     report["notes"] = notes
     return report, curves
 
@@ -163,7 +188,8 @@ def _perplexity(
     loaded: dict[str, SplitTokens], others: list[str], roles: Roles, bits: int, add_k: float, d: float, bar: Any
 ) -> dict[str, Any]:
     space = lm.event_space(roles)
-    tables = lm.CountTables.fit(lm.events(loaded[TRAIN], roles), bits, roles.vocab_size + 1)
+    train_events = (lm.events(c, roles) for c in lm.chunks(loaded[TRAIN]))
+    tables = lm.CountTables.fit_chunks(train_events, bits, roles.vocab_size + 1)
     bar.update()
     begin = "the begin token" if roles.begin is not None else "a virtual begin id (no begin token)"
     ended = sum(int(loaded[n].has_end.sum()) for n in others)
@@ -175,10 +201,52 @@ def _perplexity(
         "splits": {},
     }
     for name in others:
-        ev = lm.events(loaded[name], roles)
-        out["splits"][name] = {"events": len(ev), **lm.evaluate(tables, ev, space=space, k=add_k, d=d)}
+        parts = (lm.events(c, roles) for c in lm.chunks(loaded[name]))
+        out["splits"][name] = lm.evaluate(tables, parts, space=space, k=add_k, d=d)
         bar.update()
     return out
+
+
+def _dataset_name(dataset: DatasetLike) -> str:
+    """The recipe's dataset name with the fingerprint's first 12 digits (the fingerprint alone
+    for a dataset without a manifest)."""
+    manifest = getattr(dataset, "manifest", None) or {}
+    name = manifest.get("recipe", {}).get("dataset", {}).get("name")
+    short = dataset.fingerprint[:12]
+    return f"{name} ({short})" if isinstance(name, str) else short
+
+
+def _text_sizes(dataset: DatasetLike, name: str) -> tuple[int | None, int | None]:
+    """UTF-8 bytes and characters of split ``name``'s cleaned documents, from the build summary
+    (None where the manifest does not record them)."""
+    manifest = getattr(dataset, "manifest", None) or {}
+    figures = manifest.get("summary", {}).get("splits", {}).get(name, {})
+    n_bytes, chars = figures.get("bytes"), figures.get("characters")
+    return (n_bytes if isinstance(n_bytes, int) else None, chars if isinstance(chars, int) else None)
+
+
+def _add_per_text(ppl: dict[str, Any], sizes: dict[str, tuple[int | None, int | None]]) -> list[str]:
+    """Beside each perplexity, bits per byte and per character of the same model on the same split;
+    returns the notes to add (splits without recorded text sizes)."""
+    ppl["per_text"] = PER_TEXT
+    for name, entry in ppl["splits"].items():
+        n_bytes, chars = sizes[name]
+        entry["text_bytes"], entry["characters"] = n_bytes, chars
+        entry["bits_per_byte"], entry["bits_per_character"] = {}, {}
+        for model in lm.MODELS:
+            value = entry[model]
+            fig = None
+            if value is not None and entry["events"] > 0:
+                fig = loss_figures(
+                    math.log(value) * entry["events"],
+                    tokens=entry["events"],
+                    text_bytes=n_bytes or None,
+                    characters=chars or None,
+                )
+            entry["bits_per_byte"][model] = fig.bits_per_byte if fig else None
+            entry["bits_per_character"][model] = fig.bits_per_character if fig else None
+    missing = [name for name, (n_bytes, _) in sizes.items() if n_bytes is None]
+    return [NO_TEXT_SIZES.format(splits=", ".join(missing))] if missing else []
 
 
 def corpus_report(
@@ -232,8 +300,8 @@ def write_dataset_report(dataset: DatasetLike, out_dir: str | Path, **options: A
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise SeqpipeError(f"{out}: cannot create the report directory ({exc})") from exc
-    fits = {name: stats.zipf_fit(curve) for name, curve in curves.items()}
-    drawn = plots.rank_frequency_png(out / plots.RANK_FREQUENCY_PNG, curves, fits)
+    title = _dataset_name(dataset)
+    drawn = plots.rank_frequency_png(out / plots.RANK_FREQUENCY_PNG, curves, title=title)
     report["plots"] = [plots.RANK_FREQUENCY_PNG] if drawn else []
     render.write_text(out / "report.json", render.to_json(report))
     render.write_text(out / "report.md", render.to_markdown(report, plots_drawn=drawn))

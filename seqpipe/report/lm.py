@@ -23,11 +23,20 @@ distinct types, ``d`` = discount):
 
 Perplexity is ``exp`` of the mean negative log-likelihood per event. Every lookup
 is a ``np.searchsorted`` into sorted packed keys.
+
+Memory: a split is processed in groups of whole documents of about ``CHUNK_TOKENS`` tokens
+(:func:`chunks`). Fitting keeps only the distinct train trigrams with their counts, merged
+chunk by chunk; evaluation sums log-probabilities chunk by chunk. The per-event arrays
+(contexts, packed keys, probabilities: some 60 bytes per event) exist for one chunk at a time.
 """
 
 from __future__ import annotations
 
+import dataclasses
+import itertools
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
+from typing import Final
 
 import numpy as np
 
@@ -45,6 +54,35 @@ class Events:
 
     def __len__(self) -> int:
         return len(self.w)
+
+
+CHUNK_TOKENS: Final = 1 << 20  # tokens per group of documents: bounds the per-event temporaries
+
+
+def chunks(split: SplitTokens, size: int = CHUNK_TOKENS) -> Iterator[SplitTokens]:
+    """The split's documents in consecutive groups of about ``size`` tokens, a document never cut;
+    each group's ``ids`` is a view of the split's stream from its first document's start."""
+    n = split.num_documents
+    if n == 0:
+        yield split
+        return
+    ends = split.starts + split.lengths
+    # the first document of each group: where the running token count passes a multiple of size
+    cuts = np.unique(np.searchsorted(ends - split.starts[0], np.arange(size, int(ends[-1] - split.starts[0]), size)))
+    bounds = [0, *(int(c) + 1 for c in cuts if int(c) + 1 < n), n]
+    for a, b in itertools.pairwise(bounds):
+        if a == b:
+            continue
+        lo, hi = int(split.starts[a]), int(ends[b - 1])
+        yield dataclasses.replace(
+            split,
+            ids=split.ids[lo:hi],
+            starts=split.starts[a:b] - lo,
+            lengths=split.lengths[a:b],
+            content_starts=split.content_starts[a:b] - lo,
+            content_lengths=split.content_lengths[a:b],
+            has_end=split.has_end[a:b],
+        )
 
 
 def event_space(roles: Roles) -> int:
@@ -103,10 +141,24 @@ class CountTables:
 
     @classmethod
     def fit(cls, ev: Events, bits: int, n_ids: int) -> CountTables:
-        """Count everything from one sort of the trigram keys and one of their suffixes."""
-        keys = pack([ev.h2, ev.h1, ev.w], bits)
-        keys.sort()
-        tri, tri_c, _ = runs(keys)
+        """The tables of one array of events."""
+        return cls.fit_chunks([ev], bits, n_ids)
+
+    @classmethod
+    def fit_chunks(cls, parts: Iterable[Events], bits: int, n_ids: int) -> CountTables:
+        """The tables of the events of every part, keeping only distinct trigrams between parts."""
+        tri = np.zeros(0, np.uint64)
+        tri_c = np.zeros(0, np.int64)
+        for ev in parts:
+            keys = pack([ev.h2, ev.h1, ev.w], bits)
+            keys.sort()
+            new, new_c, _ = runs(keys)
+            tri, tri_c = _merge_counts(tri, tri_c, new, new_c)
+        return cls._from_trigrams(tri, tri_c, bits, n_ids)
+
+    @classmethod
+    def _from_trigrams(cls, tri: np.ndarray, tri_c: np.ndarray, bits: int, n_ids: int) -> CountTables:
+        """Count everything from the sorted distinct trigram keys and one sort of their suffixes."""
         shift = np.uint64(bits)
         ctx, ctx_types, ctx_starts = runs(tri >> shift)
         ctx_c = np.add.reduceat(tri_c, ctx_starts) if len(tri) else tri_c
@@ -118,9 +170,10 @@ class CountTables:
         h1_c = np.add.reduceat(bi_c, h1_starts) if len(bi) else bi_c
         h1_left = np.add.reduceat(bi_left, h1_starts) if len(bi) else bi_left
         w_of_bi = (bi & np.uint64(filler(bits))).astype(np.int64)
+        w_of_tri = (tri & np.uint64(filler(bits))).astype(np.int64)
         return cls(
             bits=bits,
-            n_events=len(ev),
+            n_events=int(tri_c.sum()),
             tri_keys=tri,
             tri_counts=tri_c,
             ctx_keys=ctx,
@@ -133,10 +186,22 @@ class CountTables:
             h1_counts=h1_c,
             h1_types=h1_types,
             h1_left=h1_left,
-            uni_counts=np.bincount(ev.w, minlength=n_ids).astype(np.int64),
+            uni_counts=np.bincount(w_of_tri, weights=tri_c, minlength=n_ids).astype(np.int64),
             uni_left=np.bincount(w_of_bi, minlength=n_ids).astype(np.int64),
             bigram_types=len(bi),
         )
+
+
+def _merge_counts(
+    keys: np.ndarray, counts: np.ndarray, more: np.ndarray, more_counts: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Two sets of distinct sorted keys with counts, as one (counts of shared keys added)."""
+    if len(keys) == 0:
+        return more, more_counts
+    joined = np.concatenate([keys, more])
+    order = np.argsort(joined, kind="stable")
+    merged, _, starts = runs(joined[order])
+    return merged, np.add.reduceat(np.concatenate([counts, more_counts])[order], starts)
 
 
 @dataclass(frozen=True, slots=True)
@@ -229,19 +294,44 @@ def perplexity(probs: np.ndarray) -> float | None:
     return float(np.exp(-np.mean(np.log(probs))))
 
 
+def _log_loss(probs: np.ndarray) -> float:
+    """Summed negative natural-log probability; inf when some event has probability 0."""
+    if (probs <= 0).any():
+        return float("inf")
+    return float(-np.log(probs).sum())
+
+
 MODELS = ("uniform", "unigram_add_k", "bigram_add_k", "trigram_add_k", "bigram_kneser_ney", "trigram_kneser_ney")
 
 
-def evaluate(t: CountTables, ev: Events, *, space: int, k: float, d: float) -> dict[str, float | None]:
-    """Perplexity of every baseline model on one split's events."""
-    if len(ev) == 0:
-        return dict.fromkeys(MODELS)
+def _chunk_losses(t: CountTables, ev: Events, space: int, k: float, d: float) -> dict[str, float]:
     q = Lookups.of(t, ev)
     return {
-        "uniform": perplexity(np.full(len(ev), 1.0 / space)),
-        "unigram_add_k": perplexity(add_k(t, q, 1, k, space)),
-        "bigram_add_k": perplexity(add_k(t, q, 2, k, space)),
-        "trigram_add_k": perplexity(add_k(t, q, 3, k, space)),
-        "bigram_kneser_ney": perplexity(kneser_ney(t, q, 2, d, space)),
-        "trigram_kneser_ney": perplexity(kneser_ney(t, q, 3, d, space)),
+        "uniform": len(ev) * float(np.log(space)),
+        "unigram_add_k": _log_loss(add_k(t, q, 1, k, space)),
+        "bigram_add_k": _log_loss(add_k(t, q, 2, k, space)),
+        "trigram_add_k": _log_loss(add_k(t, q, 3, k, space)),
+        "bigram_kneser_ney": _log_loss(kneser_ney(t, q, 2, d, space)),
+        "trigram_kneser_ney": _log_loss(kneser_ney(t, q, 3, d, space)),
     }
+
+
+def evaluate(
+    t: CountTables, ev: Events | Iterable[Events], *, space: int, k: float, d: float
+) -> dict[str, float | None]:
+    """Perplexity of every baseline model on one split's events (one array, or its chunks);
+    the event count is under ``"events"``."""
+    parts = [ev] if isinstance(ev, Events) else ev
+    total = dict.fromkeys(MODELS, 0.0)
+    n = 0
+    for part in parts:
+        if len(part) == 0:
+            continue
+        n += len(part)
+        for model, loss in _chunk_losses(t, part, space, k, d).items():
+            total[model] += loss
+    out: dict[str, float | None] = {"events": n}
+    for model in MODELS:
+        mean = total[model] / n if n else float("inf")
+        out[model] = float(np.exp(mean)) if np.isfinite(mean) else None
+    return out

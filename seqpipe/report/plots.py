@@ -14,7 +14,7 @@ from typing import Final
 import numpy as np
 
 from seqpipe.errors import SeqpipeError
-from seqpipe.report.stats import ZipfFit
+from seqpipe.report.stats import RankCurve
 
 RANK_FREQUENCY_PNG: Final = "rank_frequency.png"
 MAX_POINTS: Final = 2000  # log-spaced ranks drawn per curve: the shape, at a fixed cost
@@ -36,9 +36,11 @@ def _sample(freqs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return ranks[pick], freqs[pick]
 
 
-def rank_frequency_png(path: Path, curves: Mapping[str, np.ndarray], fits: Mapping[str, ZipfFit | None]) -> bool:
-    """Draw frequency against rank on log-log axes, one curve per split, with the fitted
-    Zipf line over the fitted ranks. Returns False (writing nothing) without matplotlib."""
+def rank_frequency_png(path: Path, curves: Mapping[str, RankCurve], *, title: str) -> bool:
+    """Draw relative frequency (count / the split's content tokens, so splits of any size
+    compare) against rank on log-log axes, one curve per split, with its fitted power law over
+    the ranks it covers (the types counted at least ``x_min`` times). ``title`` names the
+    dataset. Returns False (writing nothing) without matplotlib."""
     try:
         from matplotlib.backends.backend_agg import FigureCanvasAgg
         from matplotlib.figure import Figure
@@ -47,25 +49,25 @@ def rank_frequency_png(path: Path, curves: Mapping[str, np.ndarray], fits: Mappi
     fig = Figure(figsize=(7, 5), dpi=100)
     FigureCanvasAgg(fig)
     ax = fig.add_subplot()
-    for name, freqs in curves.items():
-        if len(freqs) == 0:
+    for name, curve in curves.items():
+        if len(curve.counts) == 0 or curve.tokens == 0:
             continue
-        r, f = _sample(np.asarray(freqs, dtype=np.float64))
+        r, f = _sample(np.asarray(curve.counts, dtype=np.float64) / curve.tokens)
         (line,) = ax.loglog(r, f, marker=".", markersize=2, linewidth=1, label=name)
-        fit = fits.get(name)
+        fit = curve.fit
         if fit is not None:
-            fr = np.array([1.0, float(fit.ranks)])
+            fr = np.geomspace(1.0, float(fit.types), 50)
             ax.loglog(
                 fr,
-                np.exp(fit.intercept) * fr ** (-fit.exponent),
+                fit.rank_line(fr) / curve.tokens,
                 linestyle="--",
                 linewidth=1,
                 color=line.get_color(),
-                label=f"{name} fit, s = {fit.exponent:.3f}",
+                label=f"{name} fit: alpha = {fit.alpha:.3f}, s = {fit.rank_exponent:.3f} (x_min {fit.x_min})",
             )
     ax.set_xlabel("rank (reserved tokens excluded)")
-    ax.set_ylabel("frequency")
-    ax.set_title("Rank-frequency")
+    ax.set_ylabel("count / content tokens of the split")
+    ax.set_title(f"Rank-frequency: {title}")
     ax.grid(True, which="major", alpha=0.3)
     if ax.get_legend_handles_labels()[0]:
         ax.legend(fontsize="small")

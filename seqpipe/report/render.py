@@ -76,13 +76,15 @@ def _splits(report: dict[str, Any]) -> list[str]:
         "empty docs",
         "length min / median / p95 / max",
         "unknown rate",
-        "Zipf exponent (R²)",
+        "Zipf alpha ± s.e. (s; x_min, types, KS distance)",
     ]
     rows = []
+    skipped: dict[str, list[str]] = {}
     for name, s in splits.items():
         dl = s["document_length"]
-        z = s["zipf"]
-        zipf = f"{z['exponent']:.3f} ({z['r_squared']:.3f}, ranks 1..{z['ranks']})" if z else "n/a"
+        zipf = _zipf_cell(s["zipf"])
+        if "skipped" in s["zipf"]:
+            skipped.setdefault(s["zipf"]["skipped"], []).append(name)
         rows.append(
             [
                 name,
@@ -99,15 +101,29 @@ def _splits(report: dict[str, Any]) -> list[str]:
     lines += _table(header, rows)
     lines += [
         "Lengths count tokens including begin/end markers (documents table); the other token figures "
-        "count content tokens (markers dropped). The 95th percentile interpolates linearly.",
+        "count content tokens (markers dropped). The 95th percentile interpolates linearly. Zipf: the "
+        "discrete power law fitted by maximum likelihood to the counts of token types at or above x_min "
+        "(Clauset, Shalizi & Newman 2009); alpha is the exponent of the count distribution, s = 1/(alpha-1) "
+        "the rank-frequency exponent; KS distance: the fit's Kolmogorov-Smirnov distance to the tail.",
         "",
     ]
+    lines += [f"Zipf for {', '.join(names)}: {reason}." for reason, names in skipped.items()]
+    lines += [""] if skipped else []
     ks = sorted({k for s in splits.values() for k in s["coverage"]}, key=int)
     if ks:
         lines += ["### Coverage by the k most frequent train tokens", ""]
         rows = [[name] + [_pct(s["coverage"].get(k)) for k in ks] for name, s in splits.items()]
         lines += _table(["split"] + [f"k = {k}" for k in ks], rows)
     return lines
+
+
+def _zipf_cell(z: dict[str, Any]) -> str:
+    if "skipped" in z:
+        return "not fitted"
+    return (
+        f"{z['alpha']:.3f} ± {z['standard_error']:.3f} ({z['rank_exponent']:.3f}; {_num(z['x_min'])}, "
+        f"{_num(z['types'])}, {z['ks_distance']:.3f})"
+    )
 
 
 def _ngrams(report: dict[str, Any]) -> list[str]:
@@ -187,9 +203,34 @@ def _perplexity(report: dict[str, Any]) -> list[str]:
         "",
     ]
     names = list(ppl["splits"])
-    rows = [[MODEL_NAMES[m]] + [_num(ppl["splits"][n][m], 6) for n in names] for m in MODEL_NAMES]
-    rows.append(["events"] + [_num(ppl["splits"][n]["events"]) for n in names])
-    lines += _table(["model", *names], rows)
+    sp = ppl["splits"]
+    header = ["model"] + [f"{n} {col}" for n in names for col in ("perplexity", "bits/byte", "bits/char")]
+    rows = [
+        [MODEL_NAMES[m]]
+        + [
+            cell
+            for n in names
+            for cell in (
+                _num(sp[n][m], 6),
+                _num(sp[n].get("bits_per_byte", {}).get(m), 4),
+                _num(sp[n].get("bits_per_character", {}).get(m), 4),
+            )
+        ]
+        for m in MODEL_NAMES
+    ]
+    lines += _table(header, rows)
+    lines += [
+        "Counted: "
+        + "; ".join(
+            f"{n}: {_num(sp[n]['events'])} events, {_num(sp[n].get('text_bytes'))} bytes, "
+            f"{_num(sp[n].get('characters'))} characters"
+            for n in names
+        )
+        + ".",
+        "",
+    ]
+    if ppl.get("per_text"):
+        lines += [ppl["per_text"], ""]
     return lines
 
 
@@ -197,7 +238,7 @@ def to_markdown(report: dict[str, Any], *, plots_drawn: bool) -> str:
     """The human-readable report."""
     ds = report["dataset"]
     lines = [
-        "# Corpus report",
+        f"# Corpus report: {ds.get('name', ds['fingerprint'][:12])}",
         "",
         f"Dataset fingerprint `{ds['fingerprint']}`, vocabulary of {ds['vocabulary_entries']:,} ids "
         f"(reserved: {', '.join(ds['reserved'])}).",

@@ -1,4 +1,5 @@
-"""Split statistics: sizes, document lengths, unknown-token rate, coverage, Zipf fit.
+"""Split statistics: sizes, document lengths, unknown-token rate, coverage, Zipf fit
+(:mod:`seqpipe.report.zipf`).
 
 All figures are computed from per-id counts (one ``np.bincount`` per split) and the
 documents table; none needs a pass in Python over tokens.
@@ -12,9 +13,10 @@ from typing import Any, Final
 import numpy as np
 
 from seqpipe.report.corpus import Roles, SplitTokens
+from seqpipe.report.zipf import MIN_TAIL, ZipfFit, fit_power_law
+from seqpipe.vocab import Vocabulary
 
 COVERAGE_KS: Final = (1, 10, 100, 1000, 10000)
-ZIPF_MAX_RANK: Final = 1000
 
 
 def id_counts(split: SplitTokens, vocab_size: int) -> np.ndarray:
@@ -42,43 +44,44 @@ def length_summary(lengths: np.ndarray) -> dict[str, float | int | None]:
     }
 
 
+ALPHABET_SKIP: Final = (
+    "not fitted: every vocabulary entry other than the reserved ones is a single character or byte; "
+    "such a closed alphabet of a few hundred symbols has no power-law tail to fit"
+)
+TOO_FEW_TYPES: Final = f"not fitted: fewer than {MIN_TAIL} token types, too few to tell a power law from noise"
+
+
+def is_alphabet(vocab: Vocabulary) -> bool:
+    """True when every non-reserved entry is one byte or one UTF-8 character (a character or
+    byte tokenizer's vocabulary). One pass over the vocabulary, stopping at the first longer entry."""
+    for i in range(int(vocab.n_reserved), len(vocab)):
+        token = vocab.token(i)
+        if len(token) > 1 and len(token.decode("utf-8", "replace")) != 1:
+            return False
+    return True
+
+
+def zipf_figures(counts: np.ndarray, ranking: np.ndarray, alphabet: bool) -> tuple[dict[str, Any], ZipfFit | None]:
+    """The report's Zipf entry for one split (the fit, or why there is none) and the fit itself."""
+    if alphabet:
+        return {"skipped": ALPHABET_SKIP}, None
+    fit = fit_power_law(counts[ranking])
+    if fit is None:
+        return {"skipped": TOO_FEW_TYPES}, None
+    return fit.as_dict(), fit
+
+
 @dataclass(frozen=True, slots=True)
-class ZipfFit:
-    """Least squares of log frequency on log rank over ranks ``1..ranks``."""
+class RankCurve:
+    """One split's rank-frequency curve for the plot: descending counts, their total, the fit."""
 
-    exponent: float  # minus the slope
-    intercept: float  # natural log of the fitted frequency at rank 1
-    r_squared: float
-    ranks: int
-
-    def as_dict(self) -> dict[str, Any]:
-        return {
-            "exponent": self.exponent,
-            "intercept": self.intercept,
-            "r_squared": self.r_squared,
-            "ranks": self.ranks,
-        }
-
-
-def zipf_fit(frequencies: np.ndarray, max_rank: int = ZIPF_MAX_RANK) -> ZipfFit | None:
-    """Fit ``log f = a - s log r`` to descending ``frequencies``; None with fewer than 2 ranks."""
-    f = np.asarray(frequencies, dtype=np.float64)[:max_rank]
-    f = f[f > 0]
-    if len(f) < 2:
-        return None
-    x = np.log(np.arange(1, len(f) + 1, dtype=np.float64))
-    y = np.log(f)
-    xc, yc = x - x.mean(), y - y.mean()
-    slope = float((xc * yc).sum() / (xc * xc).sum())
-    intercept = float(y.mean() - slope * x.mean())
-    total = float((yc * yc).sum())
-    resid = float(((yc - slope * xc) ** 2).sum())
-    r2 = 1.0 - resid / total if total > 0 else 1.0
-    return ZipfFit(exponent=-slope, intercept=intercept, r_squared=r2, ranks=len(f))
+    counts: np.ndarray  # counts of the non-reserved ids that occur, most frequent first
+    tokens: int  # the split's content tokens: counts / tokens compares splits of any size
+    fit: ZipfFit | None
 
 
 def split_stats(
-    split: SplitTokens, counts: np.ndarray, roles: Roles, train_ranking: np.ndarray | None
+    split: SplitTokens, counts: np.ndarray, roles: Roles, train_ranking: np.ndarray | None, zipf: dict[str, Any]
 ) -> dict[str, Any]:
     """Every per-split figure of the report (see the module docstring)."""
     content = int(split.content_lengths.sum())
@@ -93,8 +96,6 @@ def split_stats(
                 coverage[str(k)] = float(covered[k - 1]) / content if content else None
         if len(train_ranking) and str(len(train_ranking)) not in coverage:
             coverage[str(len(train_ranking))] = float(covered[-1]) / content if content else None
-    ranking = frequency_ranking(counts, roles.n_reserved)
-    fit = zipf_fit(counts[ranking])
     return {
         "documents": split.num_documents,
         "tokens": split.num_tokens,
@@ -105,5 +106,5 @@ def split_stats(
         "unknown_tokens": unknown,
         "unknown_rate": unknown / content if content else None,
         "coverage": coverage,
-        "zipf": fit.as_dict() if fit else None,
+        "zipf": zipf,
     }
