@@ -125,6 +125,7 @@ class BuildResult:
             )
         drops = {**s["read"], **{f"clean {k}": v for k, v in s["dropped"].items()}}
         shown = {k: v for k, v in drops.items() if v and k not in ("documents", "bytes_read")}
+        shown.update({f"redacted {k}": v for k, v in s.get("redacted", {}).items() if v})
         if s["duplicates_dropped"]:
             shown["duplicates dropped"] = s["duplicates_dropped"]
         if shown:
@@ -584,6 +585,7 @@ def _manifest_body(
             "read": _summed(m.read for m in ingested.parts),
             "dropped": _summed(m.dropped for m in ingested.parts),
             "duplicates_dropped": kept.duplicates,
+            "redacted": _summed(m.redacted for m in ingested.parts),
             "splits": sharded.summary,
         },
     }

@@ -105,6 +105,8 @@ class PartMeta:
     pieces: int = 0
     read: dict[str, int] = field(default_factory=dict)
     dropped: dict[str, int] = field(default_factory=dict)
+    # matches replaced by placeholder tokens, by target (redact steps)
+    redacted: dict[str, int] = field(default_factory=dict)
     reused: bool = False
     # XXH3-128 of each file of the cached part, checked before the part is reused
     files: dict[str, str] | None = None
@@ -124,9 +126,12 @@ def _doc_hashes(docs: pa.Array) -> np.ndarray:
     return np.frombuffer(joined, dtype=np.uint8).reshape(-1, 16)
 
 
-def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int]) -> tuple[pa.Array, np.ndarray | None]:
+def _clean(
+    recipe: Recipe, docs: pa.Array, dropped: dict[str, int], redacted: dict[str, int]
+) -> tuple[pa.Array, np.ndarray | None]:
     """Run the cleaning steps in order; return the documents and, with a dedupe step, the hash of
-    each surviving document as it was at the dedupe step."""
+    each surviving document as it was at the dedupe step. Steps that count what they replaced
+    (``apply_counted``) add their counts to ``redacted``."""
     dedupe: np.ndarray | None = None
     for i, step in enumerate(recipe.clean):
         name = f"{i}:{step.kind}"
@@ -140,6 +145,10 @@ def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int]) -> tuple[pa.
             docs = docs.filter(pa.array(mask))
             if dedupe is not None:
                 dedupe = dedupe[mask]
+        elif (counted := getattr(step, "apply_counted", None)) is not None:
+            docs, counts = counted(docs)
+            for target, n in counts.items():
+                redacted[target] = redacted.get(target, 0) + n
         else:
             docs = step.apply(docs)
             if len(docs) != before and dedupe is not None:
@@ -202,14 +211,16 @@ class _Batch:
     segments: Segments | None
     columns: dict[str, np.ndarray]
     dropped: dict[str, int]
+    redacted: dict[str, int]
 
 
 def _process_batch(recipe: Recipe, batch: pa.Array) -> _Batch:
     """Clean, segment and describe one batch of documents (runs on an ingest thread)."""
     dropped: dict[str, int] = {}
-    docs, dedupe = _clean(recipe, batch, dropped)
+    redacted: dict[str, int] = {}
+    docs, dedupe = _clean(recipe, batch, dropped, redacted)
     if len(docs) == 0:
-        return _Batch(None, {}, dropped)
+        return _Batch(None, {}, dropped, redacted)
     docs = docs.cast(pa.large_string())
     columns = {
         "hash": _doc_hashes(docs),
@@ -219,7 +230,7 @@ def _process_batch(recipe: Recipe, batch: pa.Array) -> _Batch:
     segments = recipe.tokenizer.segment(docs)
     if dedupe is not None:
         columns["dedupe"] = dedupe
-    return _Batch(segments, columns, dropped)
+    return _Batch(segments, columns, dropped, redacted)
 
 
 def _processed(recipe: Recipe, batches: Iterator[pa.Array], threads: int) -> Iterator[_Batch]:
@@ -249,15 +260,19 @@ class _Gathered:
     segments: Segments
     columns: dict[str, np.ndarray]
     dropped: dict[str, int]
+    redacted: dict[str, int]
 
 
 def _gather(done: Iterable[_Batch]) -> _Gathered:
     dropped: dict[str, int] = {}
+    redacted: dict[str, int] = {}
     segs: list[Segments] = []
     columns: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "bytes", "words")}
     for batch in done:
         for name, count in batch.dropped.items():
             dropped[name] = dropped.get(name, 0) + count
+        for name, count in batch.redacted.items():
+            redacted[name] = redacted.get(name, 0) + count
         if batch.segments is None:
             continue
         segs.append(batch.segments)
@@ -265,7 +280,7 @@ def _gather(done: Iterable[_Batch]) -> _Gathered:
             columns[name].append(values)
     widths = {"hash": 16, "dedupe": 16}  # (n, 16) hashes; the others one value per document
     joined = {name: _joined(parts, widths.get(name)) for name, parts in columns.items()}
-    return _Gathered(_merge_segments(segs), joined, dropped)
+    return _Gathered(_merge_segments(segs), joined, dropped, redacted)
 
 
 def _joined(parts: list[np.ndarray], width: int | None) -> np.ndarray:
@@ -307,6 +322,7 @@ def ingest_part(task: IngestTask) -> PartMeta:
         pieces=len(seg.codes),
         read={k: int(v) for k, v in asdict(stats).items()},
         dropped=got.dropped,
+        redacted=got.redacted,
     )
     _check_unchanged(task)
     _store_part(task, _docs_table(recipe, got), keys, _stored_codes(seg.codes, len(keys)), meta)

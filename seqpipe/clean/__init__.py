@@ -18,11 +18,22 @@ from seqpipe.clean.dedupe import Dedupe
 from seqpipe.clean.lowercase import Lowercase
 from seqpipe.clean.min_length import MinLength
 from seqpipe.clean.normalize import Normalize
+from seqpipe.clean.redact import Redact
 from seqpipe.clean.replace import Replace
 from seqpipe.clean.strip_control import StripControl
 
 STEP_KINDS: Final[dict[str, type[CleanStep]]] = {
-    cls.kind: cls for cls in (Normalize, Lowercase, Replace, StripControl, CollapseWhitespace, MinLength, Dedupe)
+    cls.kind: cls
+    for cls in (
+        Normalize,
+        Lowercase,
+        Replace,
+        StripControl,
+        CollapseWhitespace,
+        MinLength,
+        Dedupe,
+        Redact,
+    )
 }
 
 
@@ -46,6 +57,7 @@ __all__ = [
     "Lowercase",
     "MinLength",
     "Normalize",
+    "Redact",
     "Replace",
     "StripControl",
     "apply_steps",
