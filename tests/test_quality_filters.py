@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 from typing import Any
 
@@ -20,6 +21,7 @@ from seqpipe.clean.repeated_lines import RepeatedLines
 from seqpipe.clean.repeated_ngrams import RepeatedNgrams
 from seqpipe.clean.word_length import WordLength
 from seqpipe.errors import RecipeError
+from seqpipe.filter_preview import preview_filters
 
 # small alphabets so that repeats, empty lines and whitespace runs are frequent
 _TEXT = st.text(alphabet=st.sampled_from(list("ab c\n\t.7é")), max_size=60)
@@ -156,3 +158,24 @@ def test_build_counts_each_filter_by_cause(tmp_path: Path) -> None:
     result = build(recipe, tmp_path / "out", workers=1, progress=False)
     assert result.manifest["summary"]["dropped"] == {"0:letter_share": 1, "1:repeated_lines": 1, "2:longest_line": 1}
     assert result.manifest["splits"]["train"]["documents"] == 2
+    preview = preview_filters(recipe)
+    assert preview.dropped == result.manifest["summary"]["dropped"]
+    assert (preview.documents, preview.kept) == (5, 2)
+
+
+def test_dry_run_filters_builds_nothing(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """``build --dry-run-filters`` prints per-step removals (text or JSON), exits 0 and writes no output."""
+    from seqpipe.cli import main
+
+    (tmp_path / "in.txt").write_text(f"{PROSE}\n\n{LOG}\n\n{PROSE} Again.\n", encoding="utf-8")
+    (tmp_path / "r.toml").write_text(
+        '[dataset]\nname = "never"\n[[sources]]\nkind = "text"\npaths = "in.txt"\ndocument = "paragraph"\n'
+        '[[clean]]\nkind = "repeated_lines"\n[[clean]]\nkind = "function_words"\n',
+        encoding="utf-8",
+    )
+    assert main(["build", str(tmp_path / "r.toml"), "--dry-run-filters", "--json"]) == 0
+    got = json.loads(capsys.readouterr().out)
+    assert got == {"documents": 3, "dropped": {"0:repeated_lines": 1, "1:function_words": 0}, "redacted": {}, "kept": 2}
+    assert main(["build", str(tmp_path / "r.toml"), "--dry-run-filters"]) == 0
+    assert "clean 0:repeated_lines" in capsys.readouterr().out
+    assert not (tmp_path / "never").exists() and not Path("never").exists()
