@@ -2,8 +2,9 @@
 
 Reads every input the build would read, runs the ``[[clean]]`` steps in recipe order exactly as
 an ingest task does, and counts per step the documents it drops and, for ``redact`` steps, the
-matches it replaces. Nothing is written: no cache, no dataset. Exact duplicates (``dedupe``) are
-found across the whole corpus by the build and are not counted here.
+matches it replaces. Nothing is written: no cache, no dataset. Exact and near duplicates
+(``dedupe``, ``near_dedupe``) are found across the whole corpus by the build and are not
+counted here.
 """
 
 from __future__ import annotations
@@ -39,7 +40,7 @@ class FilterPreview:
             out.append(f"clean {name:<20} would remove {count:>9} ({share:.2%})")
         for target, count in self.redacted.items():
             out.append(f"redact {target:<19} would replace {count:>8}")
-        out.append(f"kept         {self.kept} documents (exact duplicates not counted: the build finds them)")
+        out.append(f"kept         {self.kept} documents (duplicates not counted: the build finds them)")
         return out
 
 

@@ -128,15 +128,20 @@ def _doc_hashes(docs: pa.Array) -> np.ndarray:
 
 def _clean(
     recipe: Recipe, docs: pa.Array, dropped: dict[str, int], redacted: dict[str, int]
-) -> tuple[pa.Array, np.ndarray | None]:
+) -> tuple[pa.Array, np.ndarray | None, np.ndarray | None]:
     """Run the cleaning steps in order; return the documents and, with a dedupe step, the hash of
     each surviving document as it was at the dedupe step. Steps that count what they replaced
-    (``apply_counted``) add their counts to ``redacted``."""
+    (``apply_counted``) add their counts to ``redacted``. With a near_dedupe step, also each
+    surviving document's MinHash signature as it was at that step."""
     dedupe: np.ndarray | None = None
+    near: np.ndarray | None = None
     for i, step in enumerate(recipe.clean):
         name = f"{i}:{step.kind}"
         if getattr(step, "is_dedupe", False):
             dedupe = _doc_hashes(docs)
+            continue
+        if getattr(step, "is_near_dedupe", False):
+            near = step.signatures(docs)  # type: ignore[attr-defined]
             continue
         before = len(docs)
         keep_fn = getattr(step, "keep", None)
@@ -145,17 +150,19 @@ def _clean(
             docs = docs.filter(pa.array(mask))
             if dedupe is not None:
                 dedupe = dedupe[mask]
+            if near is not None:
+                near = near[mask]
         elif (counted := getattr(step, "apply_counted", None)) is not None:
             docs, counts = counted(docs)
             for target, n in counts.items():
                 redacted[target] = redacted.get(target, 0) + n
         else:
             docs = step.apply(docs)
-            if len(docs) != before and dedupe is not None:
+            if len(docs) != before and (dedupe is not None or near is not None):
                 raise SeqpipeError(f"clean step {name} drops documents but exposes no keep() mask")
         if len(docs) != before:
             dropped[name] = dropped.get(name, 0) + before - len(docs)
-    return docs, dedupe
+    return docs, dedupe, near
 
 
 def _merge_segments(parts: Sequence[Segments]) -> Segments:
@@ -218,7 +225,7 @@ def _process_batch(recipe: Recipe, batch: pa.Array) -> _Batch:
     """Clean, segment and describe one batch of documents (runs on an ingest thread)."""
     dropped: dict[str, int] = {}
     redacted: dict[str, int] = {}
-    docs, dedupe = _clean(recipe, batch, dropped, redacted)
+    docs, dedupe, near = _clean(recipe, batch, dropped, redacted)
     if len(docs) == 0:
         return _Batch(None, {}, dropped, redacted)
     docs = docs.cast(pa.large_string())
@@ -230,6 +237,8 @@ def _process_batch(recipe: Recipe, batch: pa.Array) -> _Batch:
     segments = recipe.tokenizer.segment(docs)
     if dedupe is not None:
         columns["dedupe"] = dedupe
+    if near is not None:
+        columns["near"] = near
     return _Batch(segments, columns, dropped, redacted)
 
 
@@ -267,7 +276,7 @@ def _gather(done: Iterable[_Batch]) -> _Gathered:
     dropped: dict[str, int] = {}
     redacted: dict[str, int] = {}
     segs: list[Segments] = []
-    columns: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "bytes", "words")}
+    columns: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "near", "bytes", "words")}
     for batch in done:
         for name, count in batch.dropped.items():
             dropped[name] = dropped.get(name, 0) + count
@@ -302,6 +311,13 @@ def _docs_table(recipe: Recipe, got: _Gathered) -> pa.Table:
         table["dedupe"] = pa.FixedSizeBinaryArray.from_buffers(
             HASH_TYPE, n, [None, pa.py_buffer(got.columns["dedupe"].tobytes())]
         )
+    for step in recipe.clean:
+        if getattr(step, "is_near_dedupe", False):  # signatures: bands * rows uint32 per document
+            width = 4 * int(step.hashes)  # type: ignore[attr-defined]
+            near = got.columns["near"].astype("<u4", copy=False)
+            table["near"] = pa.FixedSizeBinaryArray.from_buffers(
+                pa.binary(width), n, [None, pa.py_buffer(near.tobytes() if n else b"")]
+            )
     return pa.table(table)
 
 
@@ -376,6 +392,17 @@ def _stored_codes(codes: np.ndarray, n_keys: int) -> pa.Array:
     values, as shard ids are (a 16 MB part of English-like text has some 40,000 distinct
     words, so two bytes: half the bytes the cache writes and the encode tasks read back)."""
     return pa.array(codes.astype(id_dtype(n_keys), copy=False))
+
+
+def signature_rows(table: pa.Table, hashes: int) -> np.ndarray:
+    """The ``near`` column of a part's docs table as an (n, hashes) uint32 array."""
+    col = table.column("near").combine_chunks()
+    buf = col.buffers()[1]
+    if buf is None or len(col) == 0:
+        return np.zeros((0, hashes), np.uint32)
+    width = 4 * hashes
+    raw = np.frombuffer(buf, dtype=np.uint8)[col.offset * width : (col.offset + len(col)) * width]
+    return raw.view("<u4").reshape(-1, hashes).astype(np.uint32)
 
 
 def read_part_docs(cache_dir: str, key: str) -> pa.Table:

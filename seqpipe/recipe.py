@@ -144,6 +144,9 @@ class Recipe:
         dedupes = [i for i, s in enumerate(self.clean) if getattr(s, "is_dedupe", False)]
         if len(dedupes) > 1:
             raise RecipeError(f"clean[{dedupes[1]}]", "only one dedupe step is allowed")
+        nears = [i for i, s in enumerate(self.clean) if getattr(s, "is_near_dedupe", False)]
+        if len(nears) > 1:
+            raise RecipeError(f"clean[{nears[1]}]", "only one near_dedupe step is allowed")
         self._check_placeholders()
         markers = (("prepend_begin", "begin", self.encode.prepend_begin), ("append_end", "end", self.encode.append_end))
         for key, role, wanted in markers:

@@ -20,6 +20,7 @@ from seqpipe.clean.letter_share import LetterShare
 from seqpipe.clean.longest_line import LongestLine
 from seqpipe.clean.lowercase import Lowercase
 from seqpipe.clean.min_length import MinLength
+from seqpipe.clean.near_dedupe import NearDedupe
 from seqpipe.clean.normalize import Normalize
 from seqpipe.clean.redact import Redact
 from seqpipe.clean.repeated_lines import RepeatedLines
@@ -45,6 +46,7 @@ STEP_KINDS: Final[dict[str, type[CleanStep]]] = {
         WordLength,
         LongestLine,
         FunctionWords,
+        NearDedupe,
     )
 }
 
@@ -71,6 +73,7 @@ __all__ = [
     "LongestLine",
     "Lowercase",
     "MinLength",
+    "NearDedupe",
     "Normalize",
     "Redact",
     "RepeatedLines",
