@@ -20,6 +20,7 @@ if _typing.TYPE_CHECKING:
     from seqpipe._verify import VerifyReport, verify
     from seqpipe.dataset import Dataset, Split, load_encoder, open_dataset
     from seqpipe.errors import SeqpipeError
+    from seqpipe.filter_preview import preview_filters
     from seqpipe.recipe import Recipe, load_recipe, parse_recipe
     from seqpipe.report import corpus_report, write_report
     from seqpipe.stream import TokenStream
@@ -37,6 +38,7 @@ _HOME: _typing.Final = {
     "load_encoder": "dataset",
     "open_dataset": "dataset",
     "SeqpipeError": "errors",
+    "preview_filters": "filter_preview",
     "Recipe": "recipe",
     "load_recipe": "recipe",
     "parse_recipe": "recipe",
@@ -82,6 +84,7 @@ __all__ = [
     "load_recipe",
     "open_dataset",
     "parse_recipe",
+    "preview_filters",
     "stream_fingerprint",
     "verify",
     "write_report",
