@@ -20,6 +20,7 @@ if _typing.TYPE_CHECKING:
     from seqpipe._verify import VerifyReport, verify
     from seqpipe.dataset import Dataset, Split, load_encoder, open_dataset
     from seqpipe.errors import SeqpipeError
+    from seqpipe.filter_preview import preview_filters
     from seqpipe.metrics import LossFigures, loss_figures
     from seqpipe.recipe import Recipe, load_recipe, parse_recipe
     from seqpipe.report import corpus_report, write_report
@@ -40,6 +41,7 @@ _HOME: _typing.Final = {
     "SeqpipeError": "errors",
     "LossFigures": "metrics",
     "loss_figures": "metrics",
+    "preview_filters": "filter_preview",
     "Recipe": "recipe",
     "load_recipe": "recipe",
     "parse_recipe": "recipe",
@@ -87,6 +89,7 @@ __all__ = [
     "loss_figures",
     "open_dataset",
     "parse_recipe",
+    "preview_filters",
     "stream_fingerprint",
     "verify",
     "write_report",

@@ -64,6 +64,7 @@ from seqpipe.ingest import (
     part_intact,
     part_key,
     read_part_docs,
+    signature_rows,
     write_shard_task,
 )
 from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal
@@ -138,8 +139,11 @@ class BuildResult:
         lines.extend(_empty_split_warnings(m))
         drops = {**s["read"], **{f"clean {k}": v for k, v in s["dropped"].items()}}
         shown = {k: v for k, v in drops.items() if v and k not in ("documents", "bytes_read")}
+        shown.update({f"redacted {k}": v for k, v in s.get("redacted", {}).items() if v})
         if s["duplicates_dropped"]:
             shown["duplicates dropped"] = s["duplicates_dropped"]
+        if s.get("near_duplicates_dropped"):
+            shown["near-duplicates dropped"] = s["near_duplicates_dropped"]
         if shown:
             lines.append("counted      " + ", ".join(f"{k}: {v}" for k, v in sorted(shown.items())))
         skipped = s.get("skipped_paths", [])
@@ -352,6 +356,7 @@ class Kept:
 
     keeps: tuple[np.ndarray | None, ...]
     duplicates: int
+    near_duplicates: int = 0
     overlap: int = 0  # train documents whose content a fixed validation/test source also holds
     overlap_removed: int = 0  # of those, removed from train ([splits] exclude_overlap_from_train)
 
@@ -477,7 +482,12 @@ def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource
 
 
 def _has_dedupe(recipe: Recipe) -> bool:
-    return any(getattr(s, "is_dedupe", False) for s in recipe.clean)
+    """Whether documents are dropped across the whole corpus (exact or near duplicates)."""
+    return any(getattr(s, "is_dedupe", False) or getattr(s, "is_near_dedupe", False) for s in recipe.clean)
+
+
+def _near_step(recipe: Recipe) -> Any:
+    return next((s for s in recipe.clean if getattr(s, "is_near_dedupe", False)), None)
 
 
 def _merge_arrived(merger: CountMerger, _: int, meta: PartMeta) -> tuple[PartMeta, bool]:
@@ -540,7 +550,8 @@ def _cached_parts(cache: str, plan: Plan) -> tuple[list[PartMeta | None], int]:
 
 def assign(ctx: Context, plan: Plan) -> Kept:
     """Which documents stay: with a dedupe step, an exact duplicate keeps its first occurrence
-    in corpus order (splits are computed in the tasks, from each document's hash); then the
+    in corpus order, and with a near_dedupe step so does the first of each group of near-duplicates
+    (splits are computed in the tasks, from each document's hash); then the
     train documents that a fixed validation/test source also holds are counted (and removed
     with ``exclude_overlap_from_train``)."""
     return held_out(ctx, plan, _deduped(ctx, plan))
@@ -549,12 +560,23 @@ def assign(ctx: Context, plan: Plan) -> Kept:
 def _deduped(ctx: Context, plan: Plan) -> Kept:
     if not _has_dedupe(ctx.recipe):
         return Kept((None,) * len(plan.tasks), 0)
-    # the one per-document array the driver holds: 16 bytes per document, only with dedupe
-    keys = [fixed16(read_part_docs(str(ctx.cache), t.key), "dedupe") for t in plan.tasks]
-    keep_all = first_occurrence(np.concatenate(keys))
-    bounds = np.cumsum([0] + [len(k) for k in keys])
-    keeps = tuple(keep_all[bounds[i] : bounds[i + 1]] for i in range(len(keys)))
-    return Kept(keeps, int((~keep_all).sum()))
+    # the per-document arrays the driver holds: 16 bytes per document with dedupe, 4 bytes per
+    # hash function with near_dedupe
+    tables = [read_part_docs(str(ctx.cache), t.key) for t in plan.tasks]
+    sizes = [t.num_rows for t in tables]
+    keep_all = np.ones(sum(sizes), dtype=bool)
+    if any(getattr(s, "is_dedupe", False) for s in ctx.recipe.clean):
+        keep_all = first_occurrence(np.concatenate([fixed16(t, "dedupe") for t in tables]))
+    duplicates = int((~keep_all).sum())
+    near = _near_step(ctx.recipe)
+    if near is not None:
+        from seqpipe.clean.near_dedupe import near_duplicate_keep
+
+        sig = np.concatenate([signature_rows(t, near.hashes) for t in tables])
+        keep_all &= near_duplicate_keep(sig, near.bands, near.rows, near.threshold)
+    bounds = np.cumsum([0, *sizes])
+    keeps = tuple(keep_all[bounds[i] : bounds[i + 1]] for i in range(len(sizes)))
+    return Kept(keeps, duplicates, int((~keep_all).sum()) - duplicates)
 
 
 def _fixed(recipe: Recipe, task: IngestTask) -> int | None:
@@ -588,7 +610,7 @@ def held_out(ctx: Context, plan: Plan, kept: Kept) -> Kept:
         if recipe.splits.exclude_overlap_from_train and hit.any():
             keeps[i] = ~hit if keeps[i] is None else keeps[i] & ~hit
     removed = overlap if recipe.splits.exclude_overlap_from_train else 0
-    return Kept(tuple(keeps), kept.duplicates, overlap, removed)
+    return Kept(tuple(keeps), kept.duplicates, kept.near_duplicates, overlap, removed)
 
 
 def _merge_counted(merger: CountMerger, _: int, counted: tuple[pa.Table, int]) -> None:
@@ -730,6 +752,8 @@ def _manifest_body(
             "duplicates_dropped": kept.duplicates,
             "train_overlap": {"documents": kept.overlap, "removed": kept.overlap_removed},
             "skipped_paths": list(plan.skipped),
+            "near_duplicates_dropped": kept.near_duplicates,
+            "redacted": _summed(m.redacted for m in ingested.parts),
             "splits": sharded.summary,
         },
     }

@@ -46,6 +46,8 @@ def cmd_build(args: argparse.Namespace) -> int:
         from seqpipe.recipe import load_recipe
 
         recipe = load_recipe(args.recipe)
+        if args.dry_run_filters:
+            return _preview_filters(recipe, as_json=args.json)
         out: str | Path = Path(recipe.dataset.name)
         if args.output:
             out = args.output if is_uri(args.output) else Path(args.output)
@@ -83,6 +85,17 @@ def cmd_build(args: argparse.Namespace) -> int:
         )
     elif not args.quiet:
         print("\n".join(result.summary_lines()))
+    return EXIT_OK
+
+
+def _preview_filters(recipe: Any, *, as_json: bool) -> int:
+    from seqpipe.filter_preview import preview_filters
+
+    preview = preview_filters(recipe)
+    if as_json:
+        _print_json(preview.to_dict())
+    else:
+        print("\n".join(preview.lines()))
     return EXIT_OK
 
 
@@ -384,6 +397,11 @@ def _add_build(sub: Subparsers[argparse.ArgumentParser]) -> None:
         help="cache directory for ingested parts (default: OUTPUT/.seqpipe/cache)",
     )
     p.add_argument("--force", action="store_true", help="ignore cached parts; rebuild everything")
+    p.add_argument(
+        "--dry-run-filters",
+        action="store_true",
+        help="read the inputs and report what each clean step would remove; build nothing",
+    )
     p.add_argument("--quiet", action="store_true", help="no progress bars, no summary")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     p.set_defaults(fn=cmd_build)

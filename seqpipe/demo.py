@@ -6,8 +6,11 @@ cargo, weather), passenger remarks, repairs and a sign-off. Every sentence is
 built from the templates and word lists below with ``random.Random(seed)``, so the
 same seed gives byte-identical files. The text carries some non-ASCII on purpose
 (accented names, a few CJK cargo marks, emoji in remarks, and now and then a name
-typed in decomposed form so that NFC normalization has work to do), and a few
-planted duplicates: exact copies and copies with one word changed.
+typed in decomposed form so that NFC normalization has work to do), a few
+planted duplicates (exact copies and copies with one word changed), and in every
+ninth log a notice with invented contact details (an e-mail address at an example.*
+domain, documentation IP addresses, a telephone number, a test card number) for the
+``redact`` step to replace.
 
 Layout written under ``out_dir``::
 
@@ -111,6 +114,16 @@ SIGNOFFS: Final = (
     "nothing further to report",
     "fare box counted and sealed",
 )
+# Invented contact details the ferry clerks wrote into some logs, for the redact step to find:
+# example.* domains (RFC 2606), documentation addresses (RFC 5737 IPv4, RFC 3849 IPv6), a
+# drama-range telephone number and a card number published for testing payment forms.
+NOTICES: Final = (
+    "Notice: lost property goes to the ticket office, tickets@harbour-office.example.",
+    "Notice: the fare machine at Mill Quay reports to 192.0.2.41 and 2001:db8:7::41.",
+    "Notice: for the night boat telephone the harbour master on +44 1632 960118.",
+    "Notice: a season ticket was paid by card 4111 1111 1111 1111; refund to purser.ned@quay-ledger.example.",
+)
+_NOTICE_EVERY: Final = 9
 _NEAR_DUPLICATE_EVERY: Final = 40
 _EXACT_DUPLICATE_EVERY: Final = 97
 
@@ -141,6 +154,9 @@ def _log_entry(rng: random.Random, number: int) -> str:
             lines.append(f"Repair: {rng.choice(REPAIRS)}.")
         minute += rng.randint(25, 55)
         here = there
+    if number % _NOTICE_EVERY == 1:
+        # by entry number, not the random stream: the rest of the corpus stays as it was
+        lines.append(NOTICES[(number // _NOTICE_EVERY) % len(NOTICES)])
     lines.append(f"Signed at {here}, {rng.choice(SIGNOFFS)}.")
     return "\n".join(lines)
 
@@ -238,10 +254,15 @@ field = "text"
 kind = "normalize"
 form = "NFC"
 
+[[clean]]
+kind = "redact"
+
 [tokenizer]
 kind = "words"
+literal_reserved = true
 
 [vocabulary]
+reserved = ["<pad>", "<unk>", "<bos>", "<eos>", "<email>", "<ip>", "<card>", "<phone>"]
 min_count = 2
 
 [splits]

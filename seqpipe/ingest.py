@@ -108,6 +108,8 @@ class PartMeta:
     pieces: int = 0
     read: dict[str, int] = field(default_factory=dict)
     dropped: dict[str, int] = field(default_factory=dict)
+    # matches replaced by placeholder tokens, by target (redact steps)
+    redacted: dict[str, int] = field(default_factory=dict)
     reused: bool = False
     # XXH3-128 of each file of the cached part, checked before the part is reused
     files: dict[str, str] | None = None
@@ -131,43 +133,63 @@ BLANK_DOCUMENT_RE2: Final = r"^[ \t\x0b\x0c\r\n]*$"  # the blank set of sources.
 BLANK_AFTER_CLEANING: Final = "blank_after_cleaning"  # the summary.dropped key of such documents
 
 
-def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int]) -> tuple[pa.Array, np.ndarray | None, np.ndarray]:
-    """Run the cleaning steps in order; return the documents, with a dedupe step the hash of
-    each surviving document as it was at the dedupe step, and each survivor's index in ``docs``."""
+@dataclass(slots=True)
+class _Cleaned:
+    """A batch as the cleaning steps leave it: the documents, each survivor's index in the batch as
+    read, and (with a dedupe / near_dedupe step) its hash / MinHash signature as it was at that step."""
+
+    docs: pa.Array
+    positions: np.ndarray
     dedupe: np.ndarray | None = None
-    positions = np.arange(len(docs), dtype=np.int64)
+    near: np.ndarray | None = None
+
+    def keep(self, mask: np.ndarray) -> None:
+        """Keep the documents where ``mask`` is True, with everything known about them."""
+        self.docs = self.docs.filter(pa.array(mask))
+        self.positions = self.positions[mask]
+        if self.dedupe is not None:
+            self.dedupe = self.dedupe[mask]
+        if self.near is not None:
+            self.near = self.near[mask]
+
+
+def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int], redacted: dict[str, int]) -> _Cleaned:
+    """Run the cleaning steps in order. Steps that count what they replaced (``apply_counted``)
+    add their counts to ``redacted``; documents a step drops are counted in ``dropped``."""
+    out = _Cleaned(docs, np.arange(len(docs), dtype=np.int64))
     for i, step in enumerate(recipe.clean):
         name = f"{i}:{step.kind}"
         if getattr(step, "is_dedupe", False):
-            dedupe = _doc_hashes(docs)
+            out.dedupe = _doc_hashes(out.docs)
             continue
-        before = len(docs)
+        if getattr(step, "is_near_dedupe", False):
+            out.near = step.signatures(out.docs)  # type: ignore[attr-defined]
+            continue
+        before = len(out.docs)
         keep_fn = getattr(step, "keep", None)
         if keep_fn is not None:
-            mask = np.asarray(keep_fn(docs), dtype=bool)
-            docs = docs.filter(pa.array(mask))
-            positions = positions[mask]
-            if dedupe is not None:
-                dedupe = dedupe[mask]
+            out.keep(np.asarray(keep_fn(out.docs), dtype=bool))
+        elif (counted := getattr(step, "apply_counted", None)) is not None:
+            out.docs, counts = counted(out.docs)
+            for target, n in counts.items():
+                redacted[target] = redacted.get(target, 0) + n
         else:
             try:
-                docs = step.apply(docs)
+                out.docs = step.apply(out.docs)
             except PatternTimeoutError as exc:
-                raise _renumbered(exc, f"clean[{i}] {step.kind}", positions) from None
-            if len(docs) != before and dedupe is not None:
+                raise _renumbered(exc, f"clean[{i}] {step.kind}", out.positions) from None
+            if len(out.docs) != before and (out.dedupe is not None or out.near is not None):
                 raise SeqpipeError(f"clean step {name} drops documents but exposes no keep() mask")
-        if len(docs) != before:
-            dropped[name] = dropped.get(name, 0) + before - len(docs)
-    if recipe.clean and len(docs):
+        if len(out.docs) != before:
+            dropped[name] = dropped.get(name, 0) + before - len(out.docs)
+    if recipe.clean and len(out.docs):
         # Cleaning that leaves nothing but blanks drops the document (the rule readers apply),
         # so no document becomes an end marker alone.
-        kept = pc.invert(pc.match_substring_regex(docs, BLANK_DOCUMENT_RE2)).to_numpy(zero_copy_only=False)
+        kept = pc.invert(pc.match_substring_regex(out.docs, BLANK_DOCUMENT_RE2)).to_numpy(zero_copy_only=False)
         if not kept.all():
             dropped[BLANK_AFTER_CLEANING] = dropped.get(BLANK_AFTER_CLEANING, 0) + int((~kept).sum())
-            docs = docs.filter(pa.array(kept))
-            positions = positions[kept]
-            dedupe = None if dedupe is None else dedupe[kept]
-    return docs, dedupe, positions
+            out.keep(kept)
+    return out
 
 
 def _renumbered(exc: PatternTimeoutError, step: str, positions: np.ndarray, first: int = 0) -> PatternTimeoutError:
@@ -233,18 +255,21 @@ class _Batch:
     segments: Segments | None
     columns: dict[str, np.ndarray]
     dropped: dict[str, int]
+    redacted: dict[str, int]
 
 
 def _process_batch(recipe: Recipe, batch: pa.Array, first: int = 0) -> _Batch:
     """Clean, segment and describe one batch of documents (runs on an ingest thread); the
     batch's first document is document ``first`` of the part (for error messages)."""
     dropped: dict[str, int] = {}
+    redacted: dict[str, int] = {}
     try:
-        docs, dedupe, positions = _clean(recipe, batch, dropped)
+        cleaned = _clean(recipe, batch, dropped, redacted)
     except PatternTimeoutError as exc:
         raise _renumbered(exc, exc.step, np.arange(len(batch)), first) from None
+    docs, dedupe, near, positions = cleaned.docs, cleaned.dedupe, cleaned.near, cleaned.positions
     if len(docs) == 0:
-        return _Batch(None, {}, dropped)
+        return _Batch(None, {}, dropped, redacted)
     docs = docs.cast(pa.large_string())
     columns = {
         "hash": _doc_hashes(docs),
@@ -258,7 +283,9 @@ def _process_batch(recipe: Recipe, batch: pa.Array, first: int = 0) -> _Batch:
         raise _renumbered(exc, exc.step, positions, first) from None
     if dedupe is not None:
         columns["dedupe"] = dedupe
-    return _Batch(segments, columns, dropped)
+    if near is not None:
+        columns["near"] = near
+    return _Batch(segments, columns, dropped, redacted)
 
 
 def _processed(recipe: Recipe, batches: Iterator[pa.Array], threads: int) -> Iterator[_Batch]:
@@ -291,15 +318,19 @@ class _Gathered:
     segments: Segments
     columns: dict[str, np.ndarray]
     dropped: dict[str, int]
+    redacted: dict[str, int]
 
 
 def _gather(done: Iterable[_Batch]) -> _Gathered:
     dropped: dict[str, int] = {}
+    redacted: dict[str, int] = {}
     segs: list[Segments] = []
-    columns: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "bytes", "characters", "words")}
+    columns: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "near", "bytes", "characters", "words")}
     for batch in done:
         for name, count in batch.dropped.items():
             dropped[name] = dropped.get(name, 0) + count
+        for name, count in batch.redacted.items():
+            redacted[name] = redacted.get(name, 0) + count
         if batch.segments is None:
             continue
         segs.append(batch.segments)
@@ -307,7 +338,7 @@ def _gather(done: Iterable[_Batch]) -> _Gathered:
             columns[name].append(values)
     widths = {"hash": 16, "dedupe": 16}  # (n, 16) hashes; the others one value per document
     joined = {name: _joined(parts, widths.get(name)) for name, parts in columns.items()}
-    return _Gathered(_merge_segments(segs), joined, dropped)
+    return _Gathered(_merge_segments(segs), joined, dropped, redacted)
 
 
 def _joined(parts: list[np.ndarray], width: int | None) -> np.ndarray:
@@ -330,6 +361,13 @@ def _docs_table(recipe: Recipe, got: _Gathered) -> pa.Table:
         table["dedupe"] = pa.FixedSizeBinaryArray.from_buffers(
             HASH_TYPE, n, [None, pa.py_buffer(got.columns["dedupe"].tobytes())]
         )
+    for step in recipe.clean:
+        if getattr(step, "is_near_dedupe", False):  # signatures: bands * rows uint32 per document
+            width = 4 * int(step.hashes)  # type: ignore[attr-defined]
+            near = got.columns["near"].astype("<u4", copy=False)
+            table["near"] = pa.FixedSizeBinaryArray.from_buffers(
+                pa.binary(width), n, [None, pa.py_buffer(near.tobytes() if n else b"")]
+            )
     return pa.table(table)
 
 
@@ -357,6 +395,7 @@ def ingest_part(task: IngestTask) -> PartMeta:
         pieces=len(seg.codes),
         read={k: int(v) for k, v in asdict(stats).items()},
         dropped=got.dropped,
+        redacted=got.redacted,
     )
     _check_unchanged(task)
     _store_part(task, _docs_table(recipe, got), keys, _stored_codes(seg.codes, len(keys)), meta)
@@ -413,6 +452,17 @@ def _stored_codes(codes: np.ndarray, n_keys: int) -> pa.Array:
     values, as shard ids are (a 16 MB part of English-like text has some 40,000 distinct
     words, so two bytes: half the bytes the cache writes and the encode tasks read back)."""
     return pa.array(codes.astype(id_dtype(n_keys), copy=False))
+
+
+def signature_rows(table: pa.Table, hashes: int) -> np.ndarray:
+    """The ``near`` column of a part's docs table as an (n, hashes) uint32 array."""
+    col = table.column("near").combine_chunks()
+    buf = col.buffers()[1]
+    if buf is None or len(col) == 0:
+        return np.zeros((0, hashes), np.uint32)
+    width = 4 * hashes
+    raw = np.frombuffer(buf, dtype=np.uint8)[col.offset * width : (col.offset + len(col)) * width]
+    return raw.view("<u4").reshape(-1, hashes).astype(np.uint32)
 
 
 def read_part_docs(cache_dir: str, key: str) -> pa.Table:

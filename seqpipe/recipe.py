@@ -156,10 +156,32 @@ class Recipe:
         dedupes = [i for i, s in enumerate(self.clean) if getattr(s, "is_dedupe", False)]
         if len(dedupes) > 1:
             raise RecipeError(f"clean[{dedupes[1]}]", "only one dedupe step is allowed")
+        nears = [i for i, s in enumerate(self.clean) if getattr(s, "is_near_dedupe", False)]
+        if len(nears) > 1:
+            raise RecipeError(f"clean[{nears[1]}]", "only one near_dedupe step is allowed")
+        self._check_placeholders()
         markers = (("prepend_begin", "begin", self.encode.prepend_begin), ("append_end", "end", self.encode.append_end))
         for key, role, wanted in markers:
             if wanted and not getattr(self.vocabulary, role):
                 raise RecipeError(f"encode.{key}", f"markers need a reserved token: set vocabulary.{role}")
+
+    def _check_placeholders(self) -> None:
+        """Placeholders a step writes (``redact``) must each encode as one reserved id."""
+        for i, step in enumerate(self.clean):
+            wanted: tuple[str, ...] = getattr(step, "placeholders", ())
+            missing = [p for p in wanted if p not in self.vocabulary.reserved]
+            if missing:
+                raise RecipeError(
+                    "vocabulary.reserved",
+                    f"clean[{i}] ({step.kind}) writes the placeholders {list(missing)}; add them to "
+                    f"[vocabulary] reserved (e.g. reserved = {[*self.vocabulary.reserved, *missing]})",
+                )
+            if wanted and not getattr(self.tokenizer, "literal_reserved", False):
+                raise RecipeError(
+                    "tokenizer.literal_reserved",
+                    f"clean[{i}] ({step.kind}) writes placeholder tokens; set [tokenizer] literal_reserved = true "
+                    "so each placeholder is one reserved id instead of ordinary text",
+                )
 
     def to_dict(self) -> dict[str, Any]:
         """The canonical recipe: every section with defaults filled in."""

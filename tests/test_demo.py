@@ -100,3 +100,17 @@ def test_no_outside_text_markers(corpus: Path) -> None:
     """Every document is a ferry log entry or a remark page of the invented service."""
     for doc in _documents(corpus):
         assert doc.startswith(("Logbook of the ", "Remark book of the "))
+
+
+def test_planted_contact_details_are_redacted(corpus: Path) -> None:
+    """The demo's invented contact details all sit at example.* domains and the redact step finds each kind."""
+    import re
+
+    from seqpipe.clean.redact import redact_text
+
+    docs = _documents(corpus)
+    text = "\n".join(docs)
+    domains = set(re.findall(r"@([a-z0-9.-]+[a-z0-9])", text))
+    assert domains and all(d.endswith(".example") for d in domains)  # RFC 2606 reserved names
+    _, counts = redact_text(text)
+    assert all(counts[t] > 0 for t in ("email", "ip", "card", "phone")), counts

@@ -15,14 +15,39 @@ from seqpipe._parse import parse_kind
 from seqpipe.clean.base import CleanStep
 from seqpipe.clean.collapse_whitespace import CollapseWhitespace
 from seqpipe.clean.dedupe import Dedupe
+from seqpipe.clean.function_words import FunctionWords
+from seqpipe.clean.letter_share import LetterShare
+from seqpipe.clean.longest_line import LongestLine
 from seqpipe.clean.lowercase import Lowercase
 from seqpipe.clean.min_length import MinLength
+from seqpipe.clean.near_dedupe import NearDedupe
 from seqpipe.clean.normalize import Normalize
+from seqpipe.clean.redact import Redact
+from seqpipe.clean.repeated_lines import RepeatedLines
+from seqpipe.clean.repeated_ngrams import RepeatedNgrams
 from seqpipe.clean.replace import Replace
 from seqpipe.clean.strip_control import StripControl
+from seqpipe.clean.word_length import WordLength
 
 STEP_KINDS: Final[dict[str, type[CleanStep]]] = {
-    cls.kind: cls for cls in (Normalize, Lowercase, Replace, StripControl, CollapseWhitespace, MinLength, Dedupe)
+    cls.kind: cls
+    for cls in (
+        Normalize,
+        Lowercase,
+        Replace,
+        StripControl,
+        CollapseWhitespace,
+        MinLength,
+        Dedupe,
+        Redact,
+        LetterShare,
+        RepeatedLines,
+        RepeatedNgrams,
+        WordLength,
+        LongestLine,
+        FunctionWords,
+        NearDedupe,
+    )
 }
 
 
@@ -53,11 +78,19 @@ __all__ = [
     "CleanStep",
     "CollapseWhitespace",
     "Dedupe",
+    "FunctionWords",
+    "LetterShare",
+    "LongestLine",
     "Lowercase",
     "MinLength",
+    "NearDedupe",
     "Normalize",
+    "Redact",
+    "RepeatedLines",
+    "RepeatedNgrams",
     "Replace",
     "StripControl",
+    "WordLength",
     "apply_steps",
     "clean_text",
     "parse_step",

@@ -2,16 +2,22 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
+from functools import lru_cache
 from pathlib import Path
+from typing import Any, Final
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+import regex
 
-from seqpipe.errors import TokenizerError
+from seqpipe._parse import parse_bool, parse_str_tuple
+from seqpipe.errors import RecipeError, TokenizerError
 from seqpipe.tokenizers.base import Segments
-from seqpipe.vocab import Vocabulary
+from seqpipe.vocab import VocabSpec, Vocabulary
+
+DEFAULT_RESERVED: Final = VocabSpec().reserved
 
 
 def as_string_array(texts: Sequence[str] | pa.Array) -> pa.Array:
@@ -43,3 +49,75 @@ def segments_from_tokens(flat: pa.Array, doc_lengths: np.ndarray) -> Segments:
 def stored_vocabulary(directory: Path) -> Vocabulary:
     """The vocabulary a build stored in ``directory`` (every kind keeps it in the same file)."""
     return Vocabulary.load(directory / "vocab.arrow")
+
+
+@lru_cache(maxsize=16)
+def reserved_splitter(names: tuple[str, ...]) -> Any:
+    """A ``regex`` that splits text around literal reserved names (one capture group)."""
+    # longest first, so a name that starts another name cannot shadow it
+    alternatives = "|".join(regex.escape(n) for n in sorted(names, key=len, reverse=True))
+    return regex.compile(f"({alternatives})")
+
+
+def segment_with_reserved(segment: Callable[[pa.Array], Segments], texts: pa.Array, names: tuple[str, ...]) -> Segments:
+    """``segment(texts)``, except that each literal occurrence of a name in ``names`` is one
+    piece whose key is the name's UTF-8 bytes (the encoder maps it to its reserved id).
+
+    Only documents holding a name are split (one ``regex.split`` each); the text between names
+    goes through ``segment`` as a batch of fragments, and the pieces are put back in order
+    with numpy, so the kind's own segmentation is unchanged around the names.
+    """
+    names = tuple(n for n in names if n)
+    if not names or len(texts) == 0:
+        return segment(texts)
+    holds = np.zeros(len(texts), dtype=bool)
+    for name in names:
+        holds |= np.asarray(pc.match_substring(texts, name).fill_null(False).to_numpy(zero_copy_only=False), bool)
+    if not holds.any():
+        return segment(texts)
+    splitter = reserved_splitter(names)
+    fragments: list[str] = []  # text between names, in order
+    item_doc: list[int] = []  # per item (fragment or name): its document
+    item_name: list[int] = []  # per item: index into names, or -1 for a fragment
+    name_index = {n: i for i, n in enumerate(names)}
+    for d, text in enumerate(texts.to_pylist()):
+        parts = splitter.split(text) if holds[d] else [text]
+        for j, part in enumerate(parts):
+            item_doc.append(d)
+            if j % 2:
+                item_name.append(name_index[part])
+            else:
+                item_name.append(-1)
+                fragments.append(part)
+    plain = segment(pa.array(fragments, pa.large_string()))
+    is_name = np.asarray(item_name, dtype=np.int64) >= 0
+    per_item = np.ones(len(item_name), dtype=np.int64)
+    per_item[~is_name] = plain.doc_lengths
+    from_fragment = np.repeat(~is_name, per_item)
+    codes = np.empty(int(per_item.sum()), dtype=np.int32)
+    codes[from_fragment] = plain.codes
+    # only the names that occur become keys (keys are the batch's distinct pieces)
+    used, slot = np.unique(np.asarray(item_name, dtype=np.int64)[is_name], return_inverse=True)
+    codes[~from_fragment] = len(plain.keys) + slot.astype(np.int32)
+    named = pa.array([names[int(i)].encode() for i in used], pa.binary())
+    keys = pa.concat_arrays([plain.keys.cast(pa.binary()), named])
+    lengths = np.bincount(np.asarray(item_doc, dtype=np.int64), weights=per_item, minlength=len(texts))
+    return Segments(keys, codes, lengths.astype(np.int64))
+
+
+def drop_reserved_counts(counts: pa.Table, names: tuple[str, ...]) -> pa.Table:
+    """``counts`` without the keys that are literal reserved names (they are not text tokens)."""
+    if not names or counts.num_rows == 0:
+        return counts
+    reserved = pa.array([n.encode() for n in names], pa.binary())
+    keep = pc.invert(pc.is_in(counts.column("key").cast(pa.binary()), value_set=reserved))
+    return counts.filter(keep)
+
+
+def check_literal_fields(tokenizer: Any) -> None:
+    """Validate a vocabulary kind's ``literal_reserved`` and ``reserved_names`` fields."""
+    parse_bool("literal_reserved", tokenizer.literal_reserved)
+    names = parse_str_tuple("reserved_names", tokenizer.reserved_names)
+    if len(set(names)) != len(names):
+        raise RecipeError("reserved_names", f"names must be distinct, got {list(names)}")
+    object.__setattr__(tokenizer, "reserved_names", names)

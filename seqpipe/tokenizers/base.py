@@ -25,6 +25,7 @@ from typing import TYPE_CHECKING, ClassVar
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 if TYPE_CHECKING:
     from seqpipe.clean.base import CleanStep
@@ -145,6 +146,20 @@ def expand(
     return ids, (ends - starts_doc).astype(np.int64)
 
 
+def reserved_piece_ids(vocabulary: Vocabulary, keys: pa.Array) -> np.ndarray:
+    """Ids for piece keys where reserved names are their reserved ids and any other key is looked
+    up among the ordinary tokens (misses become the unknown id)."""
+    keys = keys.cast(pa.binary())
+    pos = pc.index_in(keys, value_set=vocabulary.tokens.slice(0, vocabulary.n_reserved).cast(pa.binary()))
+    hit = np.asarray(pos.is_valid().to_numpy(zero_copy_only=False), dtype=bool)
+    ids = np.empty(len(keys), dtype=np.int64)
+    if hit.any():
+        ids[hit] = pos.filter(pa.array(hit)).to_numpy(zero_copy_only=False)
+    if not hit.all():
+        ids[~hit] = vocabulary.lookup(keys.filter(pa.array(~hit)))
+    return ids
+
+
 class VocabEncoder(Encoder):
     """Encoder for kinds whose pieces are whole tokens: one id per piece, unknown for misses."""
 
@@ -153,7 +168,10 @@ class VocabEncoder(Encoder):
         self.vocabulary = vocabulary
 
     def piece_ids(self, keys: pa.Array) -> tuple[np.ndarray, np.ndarray]:
-        ids = self.vocabulary.lookup(keys)
+        if getattr(self.tokenizer, "literal_reserved", False):
+            ids = reserved_piece_ids(self.vocabulary, keys)
+        else:
+            ids = self.vocabulary.lookup(keys)
         return ids, np.arange(len(ids) + 1, dtype=np.int64)
 
     def decode(self, ids: Sequence[int] | np.ndarray, *, show_reserved: bool = False) -> str:

@@ -19,7 +19,15 @@ import regex
 
 from seqpipe._parse import parse_str
 from seqpipe.errors import TokenizerError
-from seqpipe.tokenizers._common import as_string_array, segments_from_tokens, stored_vocabulary
+from seqpipe.tokenizers._common import (
+    DEFAULT_RESERVED,
+    as_string_array,
+    check_literal_fields,
+    drop_reserved_counts,
+    segment_with_reserved,
+    segments_from_tokens,
+    stored_vocabulary,
+)
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, VocabEncoder
 from seqpipe.vocab import VocabSpec, build_vocabulary
 
@@ -32,12 +40,22 @@ class CharTokenizer(Tokenizer):
 
     kind: ClassVar[str] = "chars"
     unit: str = "codepoint"
+    # with literal_reserved, the names in reserved_names (synced from [vocabulary] reserved by the
+    # recipe) are cut out of the text and encode as their reserved ids, e.g. redaction placeholders
+    literal_reserved: bool = False
+    reserved_names: tuple[str, ...] = DEFAULT_RESERVED
 
     def __post_init__(self) -> None:
         parse_str("unit", self.unit, choices=("codepoint", "grapheme"))
+        check_literal_fields(self)
 
     def segment(self, texts: Sequence[str] | pa.Array) -> Segments:
         arr = as_string_array(texts)
+        if self.literal_reserved:
+            return segment_with_reserved(self._segment, arr, self.reserved_names)
+        return self._segment(arr)
+
+    def _segment(self, arr: pa.Array) -> Segments:
         if self.unit == "grapheme":
             found = [_GRAPHEME.findall(t) for t in arr.to_pylist()]
             lengths = np.fromiter((len(f) for f in found), dtype=np.int64, count=len(found))
@@ -60,7 +78,10 @@ class CharTokenizer(Tokenizer):
         return Segments(keys, rank[inverse].astype(np.int32), lengths)
 
     def fit(self, counts: pa.Table, spec: VocabSpec) -> Encoder:
-        return VocabEncoder(self, build_vocabulary(counts, spec))
+        return VocabEncoder(self, build_vocabulary(self._counts(counts), spec))
+
+    def _counts(self, counts: pa.Table) -> pa.Table:
+        return drop_reserved_counts(counts, self.reserved_names) if self.literal_reserved else counts
 
     def load(self, directory: Path) -> Encoder:
         return VocabEncoder(self, stored_vocabulary(directory))

@@ -13,7 +13,14 @@ from typing import ClassVar
 import numpy as np
 import pyarrow as pa
 
-from seqpipe.tokenizers._common import as_string_array, stored_vocabulary
+from seqpipe.tokenizers._common import (
+    DEFAULT_RESERVED,
+    as_string_array,
+    check_literal_fields,
+    drop_reserved_counts,
+    segment_with_reserved,
+    stored_vocabulary,
+)
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, VocabEncoder
 from seqpipe.vocab import VocabSpec, build_vocabulary
 
@@ -29,14 +36,24 @@ class ByteTokenizer(Tokenizer):
     # the vocabulary is the byte values: a [vocabulary] cap is refused at recipe load
     fixed_vocabulary: ClassVar[bool] = True
     all_bytes: bool = True
+    # with literal_reserved, the names in reserved_names (synced from [vocabulary] reserved by the
+    # recipe) are cut out of the text and encode as their reserved ids, e.g. redaction placeholders
+    literal_reserved: bool = False
+    reserved_names: tuple[str, ...] = DEFAULT_RESERVED
 
     def __post_init__(self) -> None:
         from seqpipe._parse import parse_bool
 
         parse_bool("all_bytes", self.all_bytes)
+        check_literal_fields(self)
 
     def segment(self, texts: Sequence[str] | pa.Array) -> Segments:
         arr = as_string_array(texts)
+        if self.literal_reserved:
+            return segment_with_reserved(self._segment, arr, self.reserved_names)
+        return self._segment(arr)
+
+    def _segment(self, arr: pa.Array) -> Segments:
         offsets = np.frombuffer(arr.buffers()[1], dtype=np.int64)[arr.offset : arr.offset + len(arr) + 1]
         data = arr.buffers()[2]
         raw = (
@@ -54,7 +71,12 @@ class ByteTokenizer(Tokenizer):
         return Segments(keys, remap[raw], lengths)
 
     def fit(self, counts: pa.Table, spec: VocabSpec) -> Encoder:
-        return VocabEncoder(self, build_vocabulary(counts, spec, always=_ALL_BYTES if self.all_bytes else ()))
+        return VocabEncoder(
+            self, build_vocabulary(self._counts(counts), spec, always=_ALL_BYTES if self.all_bytes else ())
+        )
+
+    def _counts(self, counts: pa.Table) -> pa.Table:
+        return drop_reserved_counts(counts, self.reserved_names) if self.literal_reserved else counts
 
     def load(self, directory: Path) -> Encoder:
         return VocabEncoder(self, stored_vocabulary(directory))

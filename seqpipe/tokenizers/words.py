@@ -24,7 +24,15 @@ import regex
 from seqpipe import _patterns
 from seqpipe._parse import parse_str
 from seqpipe.errors import RecipeError
-from seqpipe.tokenizers._common import as_string_array, segments_from_tokens, stored_vocabulary
+from seqpipe.tokenizers._common import (
+    DEFAULT_RESERVED,
+    as_string_array,
+    check_literal_fields,
+    drop_reserved_counts,
+    segment_with_reserved,
+    segments_from_tokens,
+    stored_vocabulary,
+)
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, VocabEncoder
 from seqpipe.vocab import VocabSpec, build_vocabulary
 
@@ -174,6 +182,10 @@ class WordTokenizer(Tokenizer):
     kind: ClassVar[str] = "words"
     pattern: str = DEFAULT_PATTERN
     separator: str = " "
+    # with literal_reserved, the names in reserved_names (synced from [vocabulary] reserved by the
+    # recipe) are cut out of the text and encode as their reserved ids, e.g. redaction placeholders
+    literal_reserved: bool = False
+    reserved_names: tuple[str, ...] = DEFAULT_RESERVED
 
     def __post_init__(self) -> None:
         parse_str("pattern", self.pattern)
@@ -182,9 +194,15 @@ class WordTokenizer(Tokenizer):
             regex.compile(self.pattern)
         except regex.error as exc:
             raise RecipeError("pattern", f"not a valid regular expression ({exc}): {self.pattern!r}") from None
+        check_literal_fields(self)
 
     def segment(self, texts: Sequence[str] | pa.Array) -> Segments:
         arr = as_string_array(texts)
+        if self.literal_reserved:
+            return segment_with_reserved(self._segment, arr, self.reserved_names)
+        return self._segment(arr)
+
+    def _segment(self, arr: pa.Array) -> Segments:
         if self.pattern == DEFAULT_PATTERN:
             flat, lengths = _segment_default(arr)
             return segments_from_tokens(flat, lengths)
@@ -194,7 +212,10 @@ class WordTokenizer(Tokenizer):
         return segments_from_tokens(pa.array(flat_list, pa.large_string()), lengths)
 
     def fit(self, counts: pa.Table, spec: VocabSpec) -> Encoder:
-        return WordEncoder(self, build_vocabulary(counts, spec))
+        return WordEncoder(self, build_vocabulary(self._counts(counts), spec))
+
+    def _counts(self, counts: pa.Table) -> pa.Table:
+        return drop_reserved_counts(counts, self.reserved_names) if self.literal_reserved else counts
 
     def load(self, directory: Path) -> Encoder:
         return WordEncoder(self, stored_vocabulary(directory))

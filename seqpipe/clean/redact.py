@@ -1,0 +1,186 @@
+"""``kind = "redact"``: replace personal contact details with reserved placeholder tokens.
+
+What counts as each target (a help against accidental leaks, not a guarantee; the README
+lists what it does not catch):
+
+``email``
+    ``local@domain`` where ``local`` is an RFC 5322 section 3.2.3 ``dot-atom-text`` of at most
+    64 octets (RFC 5321 section 4.5.3.1.1) and ``domain`` is an RFC 5321 section 4.1.2
+    ``Domain`` of at least two labels (letters, digits, inner hyphens; labels of at most 63
+    octets). Not matched: quoted local parts, address literals (``[192.0.2.1]``), comments,
+    internationalized addresses (RFC 6531), single-label domains.
+``ip``
+    IPv4 dotted decimal with octets 0-255 and no leading zeros (RFC 3986 section 3.2.2
+    ``dec-octet``), and every IPv6 text form of RFC 4291 section 2.2: eight groups, ``::``
+    compression, and a trailing embedded IPv4 address. The bare unspecified address ``::``
+    is left alone (it names no host and is common punctuation in code).
+``card``
+    13 to 19 digits, single spaces or dashes allowed between them, that pass the Luhn check
+    (ISO/IEC 7812-1 annex B).
+``phone``
+    7 to 15 digits (ITU-T E.164 allows at most 15) written either after a ``+`` country code,
+    with an area code in parentheses, or in at least three groups separated by spaces, dots or
+    dashes. Runs shaped like dates (``2026-12-04``, ``04.12.2026``) are left, and so are
+    two-group runs (``555-0134`` cannot be told from a range such as ``1990-2000``).
+
+Each match becomes its target's placeholder (``<email>``, ``<ip>``, ``<card>``, ``<phone>``).
+A recipe with this step must list the placeholders in ``[vocabulary] reserved`` and set
+``[tokenizer] literal_reserved = true`` so each placeholder is one id whatever the tokenizer
+(checked by :class:`seqpipe.recipe.Recipe`). Matching runs once per document (the ``regex``
+module, in C) and only on documents holding an ``@``, a ``:`` or a digit.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any, ClassVar, Final
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import regex
+
+from seqpipe._parse import parse_str_tuple
+from seqpipe.clean.base import CleanStep, as_documents
+from seqpipe.errors import RecipeError
+
+TARGETS: Final = ("email", "ip", "card", "phone")
+PLACEHOLDERS: Final[dict[str, str]] = {t: f"<{t}>" for t in TARGETS}
+
+# RFC 5322 section 3.2.3 atext
+_ATEXT: Final = r"A-Za-z0-9!#$%&'*+/=?^_`{|}~\-"
+_LABEL: Final = r"[A-Za-z0-9](?:[A-Za-z0-9-]{0,61}[A-Za-z0-9])?"
+_EMAIL: Final = (
+    rf"(?<![{_ATEXT}.])(?=[{_ATEXT}.]{{1,64}}@)[{_ATEXT}]+(?:\.[{_ATEXT}]+)*"
+    rf"@(?:{_LABEL}\.)+{_LABEL}(?![A-Za-z0-9-])"
+)
+
+# RFC 3986 section 3.2.2 dec-octet / IPv4address / IPv6address (which spells out RFC 4291 2.2)
+_OCTET: Final = r"(?:25[0-5]|2[0-4][0-9]|1[0-9]{2}|[1-9][0-9]|[0-9])"
+_IPV4: Final = rf"{_OCTET}(?:\.{_OCTET}){{3}}"
+_H16: Final = r"[0-9A-Fa-f]{1,4}"
+_LS32: Final = rf"(?:{_IPV4}|{_H16}:{_H16})"
+_IPV6_FORMS: Final = (
+    rf"(?:{_H16}:){{6}}{_LS32}",
+    rf"::(?:{_H16}:){{5}}{_LS32}",
+    rf"(?:{_H16})?::(?:{_H16}:){{4}}{_LS32}",
+    rf"(?:(?:{_H16}:){{0,1}}{_H16})?::(?:{_H16}:){{3}}{_LS32}",
+    rf"(?:(?:{_H16}:){{0,2}}{_H16})?::(?:{_H16}:){{2}}{_LS32}",
+    rf"(?:(?:{_H16}:){{0,3}}{_H16})?::{_H16}:{_LS32}",
+    rf"(?:(?:{_H16}:){{0,4}}{_H16})?::{_LS32}",
+    rf"(?:(?:{_H16}:){{0,5}}{_H16})?::{_H16}",
+    rf"(?:(?:{_H16}:){{0,6}}{_H16})::",  # at least one group: a bare "::" is left
+)
+_IP: Final = r"(?<![0-9A-Za-z_:.])(?:" + "|".join(_IPV6_FORMS) + rf"|{_IPV4})" + r"(?![0-9A-Za-z_:]|\.[0-9])"
+
+_CARD: Final = r"(?<![0-9][ -]?)[0-9](?:[ -]?[0-9]){12,18}(?![ -]?[0-9])"
+
+_SEP: Final = r"[ .\-]"
+_PHONE: Final = (
+    r"(?<![0-9A-Za-z_+(])"
+    rf"(?:\+[0-9]{{1,3}}{_SEP}?(?:\([0-9]{{1,4}}\){_SEP}?)?[0-9]{{1,4}}(?:{_SEP}?[0-9]{{1,4}}){{1,5}}"
+    rf"|\([0-9]{{1,4}}\){_SEP}?[0-9]{{2,4}}(?:{_SEP}[0-9]{{2,4}}){{1,4}}"
+    rf"|[0-9]{{2,5}}(?:{_SEP}[0-9]{{2,4}}){{2,4}})"
+    r"(?![0-9A-Za-z_]|[.\-][0-9])"
+)
+_DATE: Final = regex.compile(r"[0-9]{4}([.\-])[0-9]{1,2}\1[0-9]{1,2}|[0-9]{1,2}([.\-])[0-9]{1,2}\2[0-9]{4}")
+
+_COMPILED: Final[dict[str, Any]] = {
+    "email": regex.compile(_EMAIL),
+    "ip": regex.compile(_IP),
+    "card": regex.compile(_CARD),
+    "phone": regex.compile(_PHONE),
+}
+
+
+def luhn_ok(digits: str) -> bool:
+    """Whether a string of ASCII digits passes the Luhn check (ISO/IEC 7812-1 annex B)."""
+    values = np.frombuffer(digits.encode("ascii"), dtype=np.uint8).astype(np.int64) - 48
+    doubled = values[::-1].copy()
+    doubled[1::2] *= 2
+    doubled[doubled > 9] -= 9
+    return bool(len(values)) and int(doubled.sum()) % 10 == 0
+
+
+def _card_digits_ok(text: str) -> bool:
+    digits = text.replace(" ", "").replace("-", "")
+    return 13 <= len(digits) <= 19 and luhn_ok(digits)
+
+
+def _phone_ok(text: str) -> bool:
+    digits = sum(ch.isdigit() for ch in text)
+    return 7 <= digits <= 15 and _DATE.fullmatch(text) is None
+
+
+# targets whose pattern finds candidates that a check then accepts or leaves as they are
+_CHECKS: Final[dict[str, Callable[[str], bool]]] = {"card": _card_digits_ok, "phone": _phone_ok}
+
+
+def redact_text(text: str, targets: tuple[str, ...] = TARGETS) -> tuple[str, dict[str, int]]:
+    """``text`` with each target replaced by its placeholder, and the count per target.
+
+    Targets run in the fixed order of :data:`TARGETS` (an e-mail address's digits are never
+    taken for a phone number; a card number is checked before it could look like a phone).
+    """
+    counts = dict.fromkeys(targets, 0)
+    for target in TARGETS:
+        if target not in counts:
+            continue
+        placeholder = PLACEHOLDERS[target]
+        check = _CHECKS.get(target)
+        if check is None:
+            text, n = _COMPILED[target].subn(placeholder, text)
+            counts[target] += n
+            continue
+        found = [m for m in _COMPILED[target].finditer(text) if check(m.group())]
+        for m in reversed(found):
+            text = text[: m.start()] + placeholder + text[m.end() :]
+        counts[target] += len(found)
+    return text, counts
+
+
+@dataclass(frozen=True, slots=True)
+class Redact(CleanStep):
+    """Replace e-mail addresses, IP addresses, card numbers and phone numbers by placeholders.
+
+    ``targets`` chooses which of ``email``, ``ip``, ``card``, ``phone`` are replaced (all by
+    default); see the module docstring for exactly what each matches.
+    """
+
+    kind: ClassVar[str] = "redact"
+
+    targets: tuple[str, ...] = TARGETS
+
+    def __post_init__(self) -> None:
+        targets = parse_str_tuple("targets", self.targets)
+        unknown = [t for t in targets if t not in TARGETS]
+        if unknown or not targets or len(set(targets)) != len(targets):
+            raise RecipeError("targets", f"expected distinct names among {list(TARGETS)}, got {list(targets)}")
+        object.__setattr__(self, "targets", targets)
+
+    @property
+    def placeholders(self) -> tuple[str, ...]:
+        """The reserved tokens this step writes, in ``targets`` order."""
+        return tuple(PLACEHOLDERS[t] for t in self.targets)
+
+    def apply(self, docs: pa.Array) -> pa.Array:
+        """Documents with every match replaced."""
+        return self.apply_counted(docs)[0]
+
+    def apply_counted(self, docs: pa.Array) -> tuple[pa.Array, dict[str, int]]:
+        """Documents with every match replaced, and how many matches each target had."""
+        docs = as_documents(docs)
+        totals = dict.fromkeys(self.targets, 0)
+        mask = pc.fill_null(pc.match_substring_regex(docs, "[@:0-9]"), False)
+        where = np.flatnonzero(mask.to_numpy(zero_copy_only=False))
+        if not len(where):
+            return docs, totals
+        changed: list[str] = []
+        for text in docs.take(pa.array(where)).to_pylist():
+            out, counts = redact_text(text, self.targets)
+            changed.append(out)
+            for target, n in counts.items():
+                totals[target] += n
+        result: pa.Array = pc.replace_with_mask(docs, mask, pa.array(changed, type=pa.large_string()))
+        return result, totals

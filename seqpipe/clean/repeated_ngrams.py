@@ -1,0 +1,66 @@
+"""``kind = "repeated_ngrams"``: drop documents where much of the text sits in repeated word n-grams."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import ClassVar
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from seqpipe._parse import parse_float, parse_int
+from seqpipe.clean._quality import Pieces, QualityFilter, share, words
+
+
+def covered_by_repeats(pieces: Pieces, n: int) -> np.ndarray:
+    """Per word: True when it lies inside a word n-gram that occurs more than once in its document."""
+    m = len(pieces.text)
+    covered = np.zeros(m, dtype=bool)
+    if m < n:
+        return covered
+    codes = np.asarray(pc.dictionary_encode(pieces.text).indices.to_numpy(zero_copy_only=False), dtype=np.int64)
+    starts = np.arange(m - n + 1)
+    same_doc = pieces.doc[starts] == pieces.doc[starts + n - 1]  # docs are contiguous
+    starts = starts[same_doc]
+    if not len(starts):
+        return covered
+    grams = np.stack([pieces.doc[starts], *(codes[starts + k] for k in range(n))], axis=1)
+    _, inverse, counts = np.unique(grams, axis=0, return_inverse=True, return_counts=True)
+    dup_starts = starts[counts[inverse.ravel()] > 1]
+    edges = np.zeros(m + 1, dtype=np.int64)  # +1 where a repeated n-gram starts, -1 after it ends
+    np.add.at(edges, dup_starts, 1)
+    np.add.at(edges, dup_starts + n, -1)
+    covered = np.cumsum(edges[:m]) > 0
+    return covered
+
+
+@dataclass(frozen=True, slots=True)
+class RepeatedNgrams(QualityFilter):
+    """Keep documents where at most ``maximum`` of the word characters lie inside word
+    ``n``-grams that occur more than once in the document (each character counted once).
+
+    Defaults n = 5, 0.15: the duplicate 5-gram character fraction of Rae et al. 2021, "Scaling
+    Language Models: Methods, Analysis & Insights from Training Gopher", appendix A (from
+    memory; the paper uses 0.14 for n = 6 down to 0.10 for n = 10).
+    """
+
+    kind: ClassVar[str] = "repeated_ngrams"
+
+    n: int = 5
+    maximum: float = 0.15
+
+    def __post_init__(self) -> None:
+        parse_int("n", self.n, minimum=1, maximum=64)
+        object.__setattr__(self, "maximum", parse_float("maximum", self.maximum, minimum=0.0, maximum=1.0))
+
+    def measure(self, docs: pa.Array) -> np.ndarray:
+        """Per document: characters in repeated n-grams / word characters."""
+        pieces = words(docs)
+        lengths = pieces.lengths().astype(np.float64)
+        inside = pieces.per_document(np.where(covered_by_repeats(pieces, self.n), lengths, 0.0))
+        return share(inside, pieces.per_document(lengths))
+
+    def keep(self, docs: pa.Array) -> np.ndarray:
+        """Boolean mask: True for each document ``apply`` keeps."""
+        return np.asarray(self.measure(docs) <= self.maximum, dtype=bool)

@@ -1,0 +1,120 @@
+"""near_dedupe: MinHash estimates follow the binomial bound, banding follows 1 - (1 - s^r)^b, first kept."""
+
+from __future__ import annotations
+
+import math
+import random
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pytest
+
+from seqpipe.clean import parse_step
+from seqpipe.clean.near_dedupe import NearDedupe, band_buckets, near_duplicate_keep, signatures
+from seqpipe.errors import RecipeError
+
+
+def pair_with_jaccard(rng: random.Random, union: int, shared: int, tag: str) -> tuple[str, str, float]:
+    """Two documents of distinct invented words whose word sets (shingle = 1) have a known Jaccard."""
+    words = [f"{tag}w{i}" for i in range(union)]
+    rng.shuffle(words)
+    common, rest = words[:shared], words[shared:]
+    half = len(rest) // 2
+    a, b = common + rest[:half], common + rest[half:]
+    rng.shuffle(a)
+    rng.shuffle(b)
+    return " ".join(a), " ".join(b), shared / union
+
+
+def test_estimate_within_binomial_bound() -> None:
+    """Share of equal signature values estimates Jaccard: within 4 binomial standard deviations
+    (Broder 1997: each value agrees with probability J, so the count is Binomial(H, J))."""
+    rng = random.Random(3)
+    hashes = 256
+    for k, shared in enumerate([0, 10, 40, 80, 120, 160, 199]):
+        a, b, jaccard = pair_with_jaccard(rng, 200, shared, f"p{k}")
+        sig = signatures(pa.array([a, b]), shingle=1, hashes=hashes, seed=k)
+        estimate = float((sig[0] == sig[1]).mean())
+        bound = 4 * math.sqrt(jaccard * (1 - jaccard) / hashes) + 1 / hashes
+        assert abs(estimate - jaccard) <= bound, (jaccard, estimate)
+
+
+def test_shingles_of_words_match_the_set_definition() -> None:
+    """With 5-word shingles, identical texts agree everywhere and reordered halves agree partly."""
+    text = " ".join(f"v{i}" for i in range(60))
+    moved = " ".join(f"v{i}" for i in list(range(30, 60)) + list(range(30)))
+    sig = signatures(pa.array([text, text, moved, ""]), shingle=5, hashes=128, seed=0)
+    assert (sig[0] == sig[1]).all()
+    # shingles: 56 each; 52 shared (those not crossing the cut) -> Jaccard 52 / 60
+    assert abs((sig[0] == sig[2]).mean() - 52 / 60) <= 4 * math.sqrt(52 / 60 * 8 / 60 / 128) + 1 / 128
+    assert (sig[3] == 0xFFFFFFFF).all()  # no words: no shingle
+
+
+@pytest.mark.parametrize(("similarity", "bands", "rows"), [(0.5, 8, 4), (0.7, 4, 6), (0.3, 20, 2)])
+def test_banding_candidate_rate_follows_the_s_curve(similarity: float, bands: int, rows: int) -> None:
+    """The share of pairs sharing a band is 1 - (1 - s^r)^b within 4 binomial standard deviations
+    (Rajaraman and Ullman, Mining of Massive Datasets, chapter 3, section 3.4)."""
+    rng = random.Random(11)
+    pairs = 300
+    docs: list[str] = []
+    for p in range(pairs):
+        a, b, _ = pair_with_jaccard(rng, 100, round(100 * similarity), f"q{p}")
+        docs += [a, b]
+    sig = signatures(pa.array(docs), shingle=1, hashes=bands * rows, seed=5)
+    buckets = band_buckets(sig, bands, rows)
+    hit = (buckets[0::2] == buckets[1::2]).any(axis=1)
+    expected = 1 - (1 - similarity**rows) ** bands
+    sd = math.sqrt(expected * (1 - expected) / pairs)
+    assert abs(hit.mean() - expected) <= 4 * sd + 1 / pairs, (hit.mean(), expected)
+
+
+def test_first_in_corpus_order_is_kept() -> None:
+    """Of a group of near-duplicates the earliest stays; a document similar only to a dropped one is compared
+    with kept documents only."""
+    base = np.arange(32, dtype=np.uint32)
+    near = base.copy()
+    near[0] = 999  # 31/32 agree
+    other = np.arange(100, 132, dtype=np.uint32)
+    sig = np.stack([other, base, near, base, other + 1000])
+    assert near_duplicate_keep(sig, 8, 4, 0.9).tolist() == [True, True, False, False, True]
+    assert near_duplicate_keep(sig, 8, 4, 1.0).tolist() == [True, True, True, False, True]
+
+
+def test_step_checks_its_parameters() -> None:
+    """The step round-trips through its table and refuses parameters out of range, naming the key."""
+    table = {"kind": "near_dedupe", "shingle": 3, "bands": 10, "rows": 5, "threshold": 0.7, "seed": 9}
+    step = parse_step(table, "c")
+    assert step.to_dict() == table and isinstance(step, NearDedupe) and step.hashes == 50
+    for bad, key in [({"bands": 0}, "c.bands"), ({"threshold": 1.2}, "c.threshold"), ({"shingle": 0}, "c.shingle")]:
+        with pytest.raises(RecipeError) as info:
+            parse_step({"kind": "near_dedupe", **bad}, "c")
+        assert info.value.key == key
+
+
+def test_build_drops_near_duplicates_after_the_first(tmp_path: Path) -> None:
+    """A build keeps the first of each near-duplicate group, counts the rest, and the counts add up."""
+    from seqpipe import build
+    from seqpipe.recipe import parse_recipe
+
+    rng = random.Random(2)
+    vocab = [f"oar{i}" for i in range(3000)]
+    originals = [[rng.choice(vocab) for _ in range(120)] for _ in range(6)]
+    docs = [" ".join(w) for w in originals]
+    for w in originals[:3]:  # a clerk's copy with two words changed
+        copy = list(w)
+        copy[10], copy[90] = "ferry", "tide"
+        docs.append(" ".join(copy))
+    docs.append(docs[0])  # an exact copy
+    (tmp_path / "in.txt").write_text("\n\n".join(docs) + "\n", encoding="utf-8")
+    recipe = parse_recipe(
+        '[[sources]]\nkind = "text"\npaths = "in.txt"\ndocument = "paragraph"\n\n'
+        '[[clean]]\nkind = "dedupe"\n\n[[clean]]\nkind = "near_dedupe"\nthreshold = 0.7\n\n'
+        "[splits]\ntrain = 1.0\nvalidation = 0.0\ntest = 0.0\n",
+        tmp_path,
+    )
+    result = build(recipe, tmp_path / "out", workers=1, progress=False)
+    summary = result.manifest["summary"]
+    assert summary["duplicates_dropped"] == 1 and summary["near_duplicates_dropped"] == 3
+    assert result.manifest["splits"]["train"]["documents"] == 6
+    assert any("near-duplicates dropped: 3" in line for line in result.summary_lines())
