@@ -130,6 +130,10 @@ def unlisted(store: Store, listed: set[str]) -> list[Problem]:
                 for rel in below
                 if rel not in listed
             ]
+            problems += [
+                Problem(rel, "unsafe" if "symlink" in why else "unlisted", f"{why} in a dataset folder")
+                for rel, why in store.stray_folders(top)
+            ]
         elif top not in TOP_LEVEL_OK and top not in listed:
             problems.append(Problem(top, "unlisted", "not part of the dataset (not in the manifest)"))
     return sorted(problems, key=lambda p: (p.path.split("/", 1)[0] in DATA_DIRS, p.path))
@@ -173,6 +177,11 @@ def verify(
     """
     store = open_store(directory)
     report = VerifyReport(store.location)
+    try:
+        store.check_path(MANIFEST_NAME)  # a manifest that is a symlink leading outside is not this dataset's
+    except UnsafePathError as exc:
+        report.problems.append(Problem(MANIFEST_NAME, "unsafe", str(exc)))
+        return report
     try:
         raw = store.read_manifest()
         manifest = parse_manifest(raw, store.where(MANIFEST_NAME))

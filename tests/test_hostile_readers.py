@@ -13,14 +13,19 @@ import shutil
 import struct
 import subprocess
 import sys
+from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
 import pytest
 from conftest import REPO, build_dir, run_cli, write_project
 
+from seqpipe import open_dataset
+from seqpipe._verify import verify
 from seqpipe.cli import main
+from seqpipe.errors import ManifestError, UnsafePathError
 from seqpipe.manifest import MANIFEST_NAME, dumps, seal
 
 HOSTILE = REPO / "fixtures" / "hostile"
@@ -221,3 +226,88 @@ def test_verify_against_a_fifo_is_refused_without_waiting(dataset: Path, tmp_pat
     done = run_cli(["verify", str(dataset), "--against", str(fifo)], timeout=60)
     assert done.returncode == 1, (done.returncode, done.stderr)
     assert "regular file" in done.stdout + done.stderr
+
+
+# -- verify leaves no gaps ---------------------------------------------------------------------------
+def _reseal(d: Path, edit: Callable[[dict[str, Any]], None]) -> None:
+    m: dict[str, Any] = json.loads((d / MANIFEST_NAME).read_text())
+    edit(m)
+    (d / MANIFEST_NAME).write_text(dumps(seal(m)))
+
+
+@pytest.mark.parametrize("folder", ["shards/train", "documents"])
+def test_verify_reports_an_empty_folder_in_a_data_folder(dataset: Path, folder: str) -> None:
+    """An empty folder below shards/ or documents/ is reported as unlisted."""
+    (dataset / folder / "spare").mkdir()
+    report = verify(dataset)
+    assert [(p.path, p.kind) for p in report.problems] == [(f"{folder}/spare", "unlisted")], report.problems
+
+
+@pytest.mark.parametrize("location", ["local", "file-uri"])
+@pytest.mark.parametrize("folder", ["shards/train", "documents"])
+def test_verify_reports_a_symlinked_folder_in_a_data_folder(
+    dataset: Path, tmp_path: Path, folder: str, location: str
+) -> None:
+    """A symlink to a folder outside (``shards/train/etc -> elsewhere``) inside a data folder is
+    reported as unsafe, for a local directory and for the same dataset named by a file:// URI."""
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    (elsewhere / "passwd").write_text("not the dataset's\n")
+    os.symlink(elsewhere, dataset / folder / "etc", target_is_directory=True)
+    report = verify(dataset if location == "local" else dataset.as_uri())
+    assert [(p.path, p.kind) for p in report.problems] == [(f"{folder}/etc", "unsafe")], report.problems
+
+
+def test_manifest_symlink_leading_outside_is_refused(dataset: Path, tmp_path: Path) -> None:
+    """A manifest.json that is a symlink to a file outside the dataset is reported unsafe by verify
+    and refused by open_dataset, even when the file it points at is a valid manifest."""
+    outside = tmp_path / "elsewhere.json"
+    shutil.move(dataset / MANIFEST_NAME, outside)
+    os.symlink(outside, dataset / MANIFEST_NAME)
+    assert [(p.path, p.kind) for p in verify(dataset).problems] == [(MANIFEST_NAME, "unsafe")]
+    with pytest.raises(UnsafePathError):
+        open_dataset(dataset)
+
+
+def test_file_uri_dataset_with_a_shard_symlinked_outside_is_unsafe(dataset: Path, tmp_path: Path) -> None:
+    """A dataset named by a file:// URI whose shard is a symlink to a file outside is reported unsafe."""
+    path, _ = _first_shard(dataset)
+    outside = tmp_path / "moved.arrow"
+    shutil.move(path, outside)
+    os.symlink(outside, path)
+    rel = path.relative_to(dataset).as_posix()
+    assert [(p.path, p.kind) for p in verify(dataset.as_uri()).problems] == [(rel, "unsafe")]
+
+
+def test_shard_listed_twice_is_a_manifest_problem(dataset: Path) -> None:
+    """A re-sealed manifest listing one shard file in two entries is a manifest problem (and the
+    file is not hashed once per entry)."""
+    _first_shard(dataset, 1)[0].unlink()
+
+    def twice(m: dict[str, Any]) -> None:
+        shards = m["splits"]["train"]["shards"]
+        for key in ("path", "bytes", "hash", "token_hash"):
+            shards[1][key] = shards[0][key]
+
+    _reseal(dataset, twice)
+    report = verify(dataset)
+    assert [p.kind for p in report.problems] == ["manifest"] and "more than once" in report.problems[0].detail
+    assert report.files_checked == 0
+    with pytest.raises(ManifestError, match="more than once"):
+        open_dataset(dataset)
+
+
+@pytest.mark.parametrize("where", ["shard", "summary"])
+def test_document_counts_that_disagree_are_a_manifest_problem(dataset: Path, where: str) -> None:
+    """A re-sealed manifest whose shards begin more documents than the split holds, or whose
+    summary gives the split another document count, is a manifest problem."""
+
+    def edit(m: dict[str, Any]) -> None:
+        if where == "shard":
+            m["splits"]["train"]["shards"][0]["documents"] += 1
+        else:
+            m["summary"]["splits"]["train"]["documents"] += 1
+
+    _reseal(dataset, edit)
+    report = verify(dataset)
+    assert [p.kind for p in report.problems] == ["manifest"] and "documents" in report.problems[0].detail
