@@ -13,6 +13,7 @@ from __future__ import annotations
 import argparse
 import json
 import random
+import struct
 from pathlib import Path
 
 import pyarrow as pa
@@ -56,9 +57,44 @@ compare these files with a fresh run). What each file holds:
 - `records.jsonl`: line 1 good, 2 no "text" field, 3 a number, 4 cut-off JSON,
   5 null, 6 blank, 7 an array, 8 good.
 - `truncated.txt.gz`, `truncated.txt.zst`: compressed streams cut in half.
+- `big_integer.jsonl`: line 1 has a 5,000-digit integer in a field beside the text, line 2 is plain.
+- `arrow_huge_offsets.arrow`, `arrow_negative_offset.arrow`, `arrow_huge_length.arrow`: Arrow IPC
+  files (column `text`) whose third string offset is 2**30, whose second is -5, and whose record
+  batch declares 2**40 rows over buffers for seven.
 
 The 50 MB single-line file is written by the memory test into a temporary directory.
 """
+
+
+def _arrow_texts() -> bytes:
+    """An Arrow IPC file with one string column ``text`` of seven rows."""
+    rows = ["the ferry left at dawn", "fog on the river", "two carts aboard", "late return", "calm", "x", "end"]
+    table = pa.table({"text": pa.array(rows, pa.string())})
+    sink = pa.BufferOutputStream()
+    with pa.ipc.new_file(sink, table.schema) as writer:
+        writer.write_table(table)
+    return bytes(sink.getvalue().to_pybytes())
+
+
+def _patched(raw: bytes, fmt: str, old: int, new: int, count: int) -> bytes:
+    """``raw`` with each of the ``count`` packed occurrences of ``old`` replaced by ``new``."""
+    before, after = struct.pack(fmt, old), struct.pack(fmt, new)
+    assert raw.count(before) == count, (fmt, old, raw.count(before))
+    return raw.replace(before, after)
+
+
+def arrow_attacks() -> dict[str, bytes]:
+    """Arrow IPC files whose metadata lies: string offsets past the data, a negative offset, and a
+    row count of 2**40 (in the record batch and its field node) over seven rows of buffers."""
+    raw = _arrow_texts()
+    first_offsets = struct.pack("<iii", 0, 22, 38)  # the first three offsets of the text column
+    assert raw.count(first_offsets) == 1
+    at = raw.index(first_offsets)
+    return {
+        "arrow_huge_offsets.arrow": raw[: at + 8] + struct.pack("<i", 1 << 30) + raw[at + 12 :],
+        "arrow_negative_offset.arrow": raw[: at + 4] + struct.pack("<i", -5) + raw[at + 8 :],
+        "arrow_huge_length.arrow": _patched(raw, "<q", 7, 1 << 40, 2),
+    }
 
 
 def contents(tmp: Path) -> dict[str, bytes]:
@@ -97,6 +133,11 @@ def contents(tmp: Path) -> dict[str, bytes]:
         "records.jsonl": ("\n".join(records) + "\n").encode("utf-8"),
         "truncated.txt.gz": gz[: len(gz) // 2],
         "truncated.txt.zst": zst[: len(zst) // 2],
+        "big_integer.jsonl": (
+            '{"text": "a record with a huge number beside it", "crossing": ' + "7" * 5000 + "}\n"
+            '{"text": "a plain record after it"}\n'
+        ).encode("ascii"),
+        **arrow_attacks(),
     }
 
 

@@ -10,7 +10,7 @@ from __future__ import annotations
 import dataclasses
 import difflib
 from collections.abc import Mapping, Sequence
-from typing import Any, TypeVar
+from typing import Any, Final, TypeVar
 
 from seqpipe.errors import RecipeError
 
@@ -18,8 +18,14 @@ T = TypeVar("T")
 
 
 def _show(value: Any) -> str:
-    text = repr(value)
+    try:
+        text = repr(value)
+    except ValueError:  # an int past Python's digit limit for str()
+        return f"an integer of {value.bit_length()} bits"
     return text if len(text) <= 80 else text[:77] + "..."
+
+
+INT64_MAX: Final = (1 << 63) - 1
 
 
 def parse_int(key: str, value: Any, *, minimum: int | None = None, maximum: int | None = None) -> int:
@@ -29,8 +35,10 @@ def parse_int(key: str, value: Any, *, minimum: int | None = None, maximum: int 
     if minimum is not None and value < minimum:
         what = "a positive integer" if minimum == 1 else f"an integer >= {minimum}"
         raise RecipeError(key, f"expected {what}, got {value}")
-    if maximum is not None and value > maximum:
-        raise RecipeError(key, f"expected an integer <= {maximum}, got {value}")
+    # Every count, size and seed ends up in a 64-bit field (numpy, Arrow, the manifest's readers).
+    limit = INT64_MAX if maximum is None else min(maximum, INT64_MAX)
+    if value > limit:
+        raise RecipeError(key, f"expected an integer <= {limit}, got {_show(value)}")
     return value
 
 

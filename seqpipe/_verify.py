@@ -13,6 +13,8 @@ the network.
 from __future__ import annotations
 
 import json
+import os
+import stat
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -20,7 +22,7 @@ from typing import Any, Final
 
 from seqpipe.errors import DatasetError, ManifestError, ShardMissingError, UnsafePathError
 from seqpipe.formats import DOCS_DIR, PRIVATE, SHARDS_DIR
-from seqpipe.manifest import MANIFEST_NAME, dumps, is_old_format, parse_manifest, validate
+from seqpipe.manifest import MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, is_old_format, parse_manifest, validate
 from seqpipe.storage import Store, open_store
 
 TOP_LEVEL_OK: Final = frozenset({MANIFEST_NAME, PRIVATE})  # top-level names that are never unlisted
@@ -128,6 +130,10 @@ def unlisted(store: Store, listed: set[str]) -> list[Problem]:
                 for rel in below
                 if rel not in listed
             ]
+            problems += [
+                Problem(rel, "unsafe" if "symlink" in why else "unlisted", f"{why} in a dataset folder")
+                for rel, why in store.stray_folders(top)
+            ]
         elif top not in TOP_LEVEL_OK and top not in listed:
             problems.append(Problem(top, "unlisted", "not part of the dataset (not in the manifest)"))
     return sorted(problems, key=lambda p: (p.path.split("/", 1)[0] in DATA_DIRS, p.path))
@@ -172,6 +178,11 @@ def verify(
     store = open_store(directory)
     report = VerifyReport(store.location)
     try:
+        store.check_path(MANIFEST_NAME)  # a manifest that is a symlink leading outside is not this dataset's
+    except UnsafePathError as exc:
+        report.problems.append(Problem(MANIFEST_NAME, "unsafe", str(exc)))
+        return report
+    try:
         raw = store.read_manifest()
         manifest = parse_manifest(raw, store.where(MANIFEST_NAME))
     except (ManifestError, DatasetError) as exc:
@@ -204,8 +215,26 @@ def verify(
 
 def _against(manifest: dict[str, Any], against: str | Path) -> list[Problem]:
     """Differences from the committed manifest in the local file ``against``, or why it is unusable."""
+    where = str(against)
     try:
-        committed = validate(json.loads(Path(against).read_text(encoding="utf-8")), str(against))
+        # A FIFO or a device would block the read (or never end): only a regular file is read,
+        # and only up to the manifest size limit.
+        st = os.stat(against)
+        if not stat.S_ISREG(st.st_mode):
+            raise ManifestError(f"{where}: not a regular file; give the path of a manifest.json", path=where)
+        if st.st_size > MAX_MANIFEST_BYTES:
+            raise ManifestError(f"{where}: {st.st_size} bytes, over the {MAX_MANIFEST_BYTES}-byte limit", path=where)
+        committed = parse_committed(Path(against).read_bytes(), where)
     except (OSError, ValueError, ManifestError) as exc:
-        return [Problem(str(against), "manifest", f"committed manifest unusable: {exc}")]
+        return [Problem(where, "manifest", f"committed manifest unusable: {exc}")]
     return _compare(manifest, committed)
+
+
+def parse_committed(raw: bytes, where: str) -> dict[str, Any]:
+    """A committed manifest's content, validated like a dataset's (its seal is not required to
+    match: a committed copy may have been reformatted)."""
+    try:
+        data = json.loads(raw.decode("utf-8"))
+    except (UnicodeDecodeError, RecursionError, ValueError) as exc:
+        raise ManifestError(f"{where}: not valid JSON ({exc})", path=where) from None
+    return validate(data, where)

@@ -29,6 +29,17 @@ if TYPE_CHECKING:
     from seqpipe.windows import BatchStream
 
 
+def _check_ids(ids: np.ndarray, entries: int, rel: str) -> None:
+    """Refuse a shard holding an id the vocabulary does not have (one pass over the shard, in C,
+    once when the split is opened): a model would index past its embedding table with it."""
+    if len(ids) and entries <= np.iinfo(ids.dtype).max and int(ids.max()) >= entries:
+        raise ShardCorruptError(
+            f"{rel}: holds id {int(ids.max())}, but the vocabulary has {entries} entries (ids 0..{entries - 1}); "
+            "run 'seqpipe verify' on the dataset, then rebuild it",
+            path=rel,
+        )
+
+
 @dataclass
 class Split:
     """One split of a dataset: its token stream over the mapped shards and its documents."""
@@ -49,7 +60,9 @@ class Split:
     def documents(self) -> pa.Table:
         """Per document: start (offset in the split's stream), length, input, hash."""
         rel = self.info["document_table"]["path"]
-        table = read_table(safe_relative(self.dataset.directory, rel, key=f"splits.{self.name}.document_table.path"))
+        table = read_table(
+            safe_relative(self.dataset.directory, rel, key=f"splits.{self.name}.document_table.path"), full=True
+        )
         try:
             meta = table.schema.metadata or {}
             same = table.schema.equals(DOCS_SCHEMA) and meta.get(b"seqpipe.format") == DOCUMENTS_FORMAT.encode()
@@ -75,6 +88,7 @@ class Split:
         for j, sh in enumerate(self.info["shards"]):
             path = safe_relative(self.dataset.directory, sh["path"], key=f"splits.{self.name}.shards[{j}].path")
             chunks.append(read_shard(path, dtype=dtype, expected_tokens=sh["tokens"]))
+            _check_ids(chunks[-1], int(self.dataset.manifest["vocabulary"]["entries"]), sh["path"])
         starts = self.documents.column("start").to_numpy() if self.num_documents else np.zeros(0, np.int64)
         return TokenStream(chunks, doc_starts=starts)
 
@@ -116,7 +130,14 @@ class Dataset:
     @cached_property
     def vocabulary(self) -> Vocabulary:
         rel = self.manifest["vocabulary"]["path"]
-        return Vocabulary.load(safe_relative(self.directory, rel, key="vocabulary.path"))
+        vocabulary = Vocabulary.load(safe_relative(self.directory, rel, key="vocabulary.path"))
+        if len(vocabulary) != self.manifest["vocabulary"]["entries"]:
+            raise ShardCorruptError(
+                f"{rel}: holds {len(vocabulary)} entries, manifest says {self.manifest['vocabulary']['entries']}; "
+                "run 'seqpipe verify' on the dataset, then rebuild it",
+                path=rel,
+            )
+        return vocabulary
 
     @cached_property
     def encoder(self) -> Encoder:

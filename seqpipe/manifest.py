@@ -29,6 +29,7 @@ bytes. Parsing validates types, limits sizes and nesting, and checks both hashes
 from __future__ import annotations
 
 import json
+import posixpath
 from pathlib import Path, PurePosixPath
 from typing import Any, Final
 
@@ -169,6 +170,35 @@ def is_old_format(exc: ManifestError) -> bool:
     return "old_format" in exc.details
 
 
+def _check_counts(c: _Check, m: dict[str, Any]) -> None:
+    """Counts that describe one thing twice agree: a split's documents, the documents its shards
+    begin, and the summary's count of them."""
+    if not isinstance(m["summary"], dict):
+        raise c.fail("summary", "expected an object")
+    summary = m["summary"].get("splits", {})
+    for name, sp in m["splits"].items():
+        begun = sum(s["documents"] for s in sp["shards"])
+        if sp["shards"] and begun != sp["documents"]:
+            raise c.fail(f"splits.{name}.documents", f"shards begin {begun} documents, split says {sp['documents']}")
+        told = summary.get(name, {}).get("documents", sp["documents"]) if isinstance(summary, dict) else None
+        if told != sp["documents"]:
+            raise c.fail(f"summary.splits.{name}.documents", f"says {told!r}, split says {sp['documents']}")
+
+
+def _check_distinct_paths(c: _Check, m: dict[str, Any]) -> None:
+    """Each file is listed once: a path listed twice would be hashed twice by verify (a manifest
+    listing one shard 200,000 times would read it 200,000 times) and read twice into a stream."""
+    paths = [m["vocabulary"]["path"], *(f["path"] for f in m["tokenizer"]["files"])]
+    for sp in m["splits"].values():
+        paths += [sp["document_table"]["path"], *(s["path"] for s in sp["shards"])]
+    seen: set[str] = set()
+    for path in paths:
+        key = posixpath.normpath(path) if isinstance(path, str) else repr(path)
+        if key in seen:
+            raise c.fail("splits", f"the file {path!r} is listed more than once")
+        seen.add(key)
+
+
 def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
     """Check a parsed manifest against the schema and its own hashes; return it."""
     c = _Check(where)
@@ -200,6 +230,8 @@ def validate(manifest: Any, where: str = MANIFEST_NAME) -> dict[str, Any]:
     _check_splits(m["splits"], c)
     if not isinstance(m["summary"], dict):
         raise c.fail("summary", "expected an object")
+    _check_counts(c, m)
+    _check_distinct_paths(c, m)
     _check_seals(m, c)
     return m
 
@@ -284,6 +316,7 @@ def read_manifest(directory: Path) -> dict[str, Any]:
             "(an interrupted build leaves none: run the build again)",
             path=str(path),
         )
+    safe_relative(directory, MANIFEST_NAME, key="manifest")  # a symlink leading outside is not this dataset's
     size = path.stat().st_size
     if size > MAX_MANIFEST_BYTES:
         raise ManifestError(

@@ -298,6 +298,10 @@ def parse_recipe(text: str, root: Path | str = ".", *, name: str = "recipe") -> 
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise RecipeError(name, f"not valid TOML: {exc}") from None
+    except RecursionError:
+        raise RecipeError(name, "not a usable recipe: arrays or tables nested too deeply to parse") from None
+    except ValueError as exc:  # tomllib lets Python's limit on integer digits through
+        raise RecipeError(name, f"not a usable recipe: {exc}") from None
     return Recipe.from_dict(data, root)
 
 

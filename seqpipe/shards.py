@@ -107,14 +107,23 @@ def write_batches(path: Path, schema: pa.Schema, batches: Iterator[pa.RecordBatc
     return path.stat().st_size
 
 
-def read_table(path: Path, *, memory_map: bool = True) -> pa.Table:
-    """Read an Arrow IPC file, turning any Arrow/OS failure into our error."""
+def read_table(path: Path, *, memory_map: bool = True, full: bool = False) -> pa.Table:
+    """Read an Arrow IPC file, turning any Arrow/OS failure into our error.
+
+    Every array is validated before a value is used: the IPC reader trusts the lengths in the
+    file's metadata, so a file declaring more rows than its buffers hold would otherwise be read
+    past the end of the mapping (a crash, or bytes of other memory taken for ids). The structural
+    check (buffer sizes against length and type) costs nothing per value; ``full`` adds the checks
+    that read values (offsets of binary/string columns, dictionary indices), for the small tables
+    whose offsets are followed."""
     if not path.is_file():
         raise ShardMissingError(f"{path}: file is missing", path=str(path))
     try:
         source = pa.memory_map(str(path), "r") if memory_map else pa.OSFile(str(path), "rb")
         reader = pa.ipc.open_file(source)
-        return reader.read_all()
+        table = reader.read_all()
+        table.validate(full=full)
+        return table
     except (pa.ArrowException, OSError, ValueError) as exc:
         raise ShardCorruptError(
             f"{path}: not a readable Arrow IPC file ({exc}); run 'seqpipe verify' on the dataset, then rebuild it",

@@ -94,6 +94,12 @@ class Store(ABC):
         sorted; [] when ``rel`` is not a folder. A local store does not descend into
         symlinked folders below ``rel``."""
 
+    def stray_folders(self, rel: str = "") -> list[tuple[str, str]]:
+        """Folders below ``rel`` that hold no file to list: ``(path, why)`` for each empty folder
+        and each symlink to a folder (which :meth:`list_files` does not enter). A store that
+        cannot tell returns what it can."""
+        return []
+
     @abstractmethod
     def write(self, rel: str, source: IO[bytes]) -> int:
         """Store the bytes left in ``source`` as ``rel`` (parent folders made as needed) and
@@ -227,6 +233,21 @@ class LocalStore(Store):
             found += [name if base == "." else f"{base}/{name}" for name in filenames]
         return sorted(found)
 
+    def stray_folders(self, rel: str = "") -> list[tuple[str, str]]:
+        top = self.path(rel)
+        if not top.is_dir() or top.is_symlink():
+            return []
+        found = []
+        for dirpath, dirnames, filenames in os.walk(top):
+            base = Path(dirpath).relative_to(self.directory).as_posix()
+            for name in dirnames:
+                if (Path(dirpath) / name).is_symlink():
+                    target = os.path.realpath(Path(dirpath) / name)
+                    found.append((f"{base}/{name}", f"a symlink to the folder {target}"))
+            if not dirnames and not filenames and base != rel:
+                found.append((base, "an empty folder"))
+        return sorted(found)
+
     def write(self, rel: str, source: IO[bytes]) -> int:
         dest = self.path(rel)
         # a name no other process or thread writing the same file uses
@@ -258,7 +279,7 @@ class LocalStore(Store):
 class UriStore(Store):
     """A dataset behind a filesystem URI, reached through :mod:`seqpipe.filesystem`."""
 
-    __slots__ = ("_made", "filesystem", "location", "read_threads", "root")
+    __slots__ = ("_local", "_made", "filesystem", "location", "read_threads", "root")
 
     def __init__(self, uri: str, *, key: str = "uri") -> None:
         """RecipeError naming ``key`` when ``uri`` is not a URI or pyarrow cannot use it."""
@@ -274,6 +295,9 @@ class UriStore(Store):
         # reads wait on the network: more threads than cores keep more requests in flight
         self.read_threads = min(8, _CORES * 2)
         self._made: set[str] = set()  # folders this store has created (object stores: one call each)
+        # A file:// dataset is a local directory: the local rules for symlinks apply to it too.
+        local = isinstance(self.filesystem, filesystem.pyarrow_fs().LocalFileSystem)
+        self._local: LocalStore | None = LocalStore(self.root) if local else None
 
     def __repr__(self) -> str:
         return f"UriStore({self.location!r})"
@@ -281,6 +305,21 @@ class UriStore(Store):
     def inner(self, rel: str) -> str:
         """The filesystem's own path of ``rel``."""
         return filesystem.dir_prefix(self.root) + rel if rel else self.root
+
+    def check_path(self, rel: str) -> None:
+        if self._local is not None and self._local.directory.is_dir():  # a folder not yet made holds no links
+            self._local.check_path(rel)
+        else:
+            check_relative(rel)
+
+    def stray_folders(self, rel: str = "") -> list[tuple[str, str]]:
+        if self._local is not None:
+            return self._local.stray_folders(rel)
+        directory = filesystem.pyarrow_fs().FileType.Directory
+        infos = self._infos(rel, True)
+        parents = {r.rsplit("/", 1)[0] for r in (self._relative(i.path) for i in infos) if r and "/" in r}
+        folders = (self._relative(i.path) for i in infos if i.type == directory)
+        return sorted((r, "an empty folder") for r in folders if r and r not in parents)
 
     def _info(self, rel: str) -> pafs.FileInfo:
         try:
@@ -333,6 +372,8 @@ class UriStore(Store):
         return sorted(r.rsplit("/", 1)[-1] for r in found if r)
 
     def list_files(self, rel: str = "") -> list[str]:
+        if self._local is not None:  # the local store's listing: it does not enter symlinked folders
+            return self._local.list_files(rel)
         file = filesystem.pyarrow_fs().FileType.File
         found = (self._relative(i.path) for i in self._infos(rel, True) if i.type == file)
         return sorted(r for r in found if r)

@@ -31,6 +31,8 @@ from seqpipe.errors import RecipeError, ShardCorruptError, TokenizerError
 
 ROLES: Final = ("unknown", "padding", "begin", "end")
 VOCAB_FORMAT: Final = "seqpipe.vocabulary/2"
+# Ids are stored as at most uint32 (the README's on-disk layout), so no vocabulary is larger.
+MAX_ENTRIES: Final = 1 << 32
 COUNTS_SCHEMA: Final = pa.schema([("key", pa.binary()), ("count", pa.int64())])
 
 
@@ -63,7 +65,7 @@ class VocabSpec:
                     'add it there or set this role to "" for none',
                 )
         parse_int("min_count", self.min_count, minimum=1)
-        parse_int("cap", self.cap, minimum=0)
+        parse_int("cap", self.cap, minimum=0, maximum=MAX_ENTRIES)
         parse_str("reuse_from", self.reuse_from, allow_empty=True)
         if self.cap and self.cap <= len(reserved):
             raise RecipeError("cap", f"expected more than the {len(reserved)} reserved tokens, got {self.cap}")
@@ -147,7 +149,7 @@ class Vocabulary:
     def load(cls, path: Path) -> Vocabulary:
         from seqpipe.shards import read_table
 
-        table = read_table(path)
+        table = read_table(path, full=True)
         meta = table.schema.metadata or {}
         if meta.get(b"seqpipe.table") != b"vocabulary" or meta.get(b"seqpipe.format") != VOCAB_FORMAT.encode():
             raise ShardCorruptError(f"{path}: not a seqpipe vocabulary file (format {VOCAB_FORMAT})", path=str(path))

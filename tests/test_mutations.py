@@ -165,7 +165,7 @@ def _escape_by_symlinked_folder(d: Path) -> list[str]:
     outside = d.parent / "outside"
     shutil.move(str(d / "shards" / "train"), outside)
     os.symlink(outside, d / "shards" / "train", target_is_directory=True)
-    return shards
+    return [*shards, "shards/train"]  # the symlinked folder itself is reported too
 
 
 def _escape_by_symlinked_file(d: Path) -> list[str]:

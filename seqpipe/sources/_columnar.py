@@ -83,6 +83,25 @@ def open_or_fail(opener: Callable[[], T], path: SourcePath, what: str) -> T:
         raise SourceError(str(path), f"not a readable {what}: {exc}") from exc
 
 
+def checked_column(column: pa.Array, path: SourcePath, first_row: int) -> pa.Array:
+    """``column`` once its buffers and offsets are known to lie inside it; SourceError otherwise.
+
+    The IPC reader takes lengths and offsets from the file as written, so a crafted file can point
+    a string past its data (a read outside the mapping: a crash) or give a negative length. The
+    check reads the offsets but not the text: invalid UTF-8 is the finisher's to report under the
+    ``on_invalid_utf8`` policy, so a string column is checked through its binary twin."""
+    kind = column.type
+    twin = {pa.string(): pa.binary(), pa.large_string(): pa.large_binary(), pa.string_view(): pa.binary_view()}
+    try:
+        column.validate()
+        (column.view(twin[kind]) if kind in twin else column).validate(full=True)
+    except pa.ArrowException as exc:
+        raise SourceError(
+            str(path), f"malformed column in the record batch holding row {first_row} ({exc}); re-export the file"
+        ) from exc
+    return column
+
+
 def byte_slices(column: pa.Array, batch_bytes: int) -> Iterator[tuple[int, pa.Array]]:
     """``(first row, slice)`` of ``column``, each slice about ``batch_bytes`` of text."""
     lengths = pc.fill_null(pc.binary_length(column), 0).to_numpy(zero_copy_only=False)

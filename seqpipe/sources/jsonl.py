@@ -50,6 +50,16 @@ def _count_lines_before(path: SourcePath, offset: int, codec: str | None) -> int
     return count
 
 
+# Python refuses to turn more than 4,300 digits into an int (sys.int_info.default_max_str_digits,
+# a guard against quadratic-time conversion), which json.loads reports as a bare ValueError. Only
+# the text field's value is used, so any integer can stand for a long one: its type is what counts.
+_INT_DIGITS: Final = 4000
+
+
+def _bounded_int(digits: str) -> int:
+    return int(digits) if len(digits) <= _INT_DIGITS else 0
+
+
 @dataclass(frozen=True, slots=True)
 class JsonlSource(RecordSource):
     """Recipe ``kind = "jsonl"``: JSON Lines files, optionally compressed (gzip, bz2, zstd)."""
@@ -180,7 +190,7 @@ class JsonlSource(RecordSource):
     def _text_of(self, raw: str) -> tuple[str, int, str | None]:
         """``(text, UTF-8 size, None)``, or ``("", 0, what is wrong)`` for a bad record."""
         try:
-            obj = json.loads(raw)
+            obj = json.loads(raw, parse_int=_bounded_int)
         except json.JSONDecodeError as exc:
             return "", 0, f"not valid JSON ({exc.msg} at column {exc.colno})"
         except RecursionError:

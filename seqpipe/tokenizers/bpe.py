@@ -257,7 +257,7 @@ class BpeTokenizer(Tokenizer):
         """The encoder stored in ``directory`` (``vocab.arrow`` + ``tokenizer.arrow``), validated."""
         vocabulary = stored_vocabulary(directory)
         path = directory / MERGES_FILE
-        table = read_table(path)
+        table = read_table(path, full=True)
 
         def corrupt(why: str) -> ShardCorruptError:
             return ShardCorruptError(f"{path}: {why}; rebuild the dataset", path=str(path))
