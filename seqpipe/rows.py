@@ -126,10 +126,8 @@ class DocumentRows:
         self.window = window
         self.starts = distinct_starts(stream.doc_starts)
         self.lengths = np.diff(np.append(self.starts, len(stream)))
-        if len(stream) == 0:
-            self.starts, self.lengths = self.starts[:0], self.lengths[:0]
         # a document of L tokens has L - 1 targets: ceil((L - 1) / T) pieces, and at least one
-        self.pieces = np.maximum(1, -(-(self.lengths - 1) // window))
+        self.pieces = np.where(self.lengths > 0, np.maximum(1, -(-(self.lengths - 1) // window)), 0)
         self.cum = np.cumsum(self.pieces)
         self.count = int(self.cum[-1]) if self.cum.size else 0
 

@@ -250,7 +250,6 @@ class BatchStream:
             self.num_windows = self._plan.count
             whole, part = divmod(self.num_windows, self.global_batch)
             self.lane_length = 0
-            part = part and (self.keep_last or self.order == "evaluation")  # evaluation scores every target
         elif self.order == "random":
             self.num_windows = usable // t
             whole, part = divmod(self.num_windows, self.global_batch)
@@ -259,7 +258,8 @@ class BatchStream:
             self.num_windows = 0
             self.lane_length = usable // self.global_batch
             whole, part = divmod(self.lane_length, t)
-        self._len: int = whole + (1 if part and self.keep_last else 0)
+        keep = self.keep_last or self.order == "evaluation"  # an evaluation pass scores every target
+        self._len: int = whole + (1 if part and keep else 0)
         self._shuffle: _Shuffle | None = None
         self._page: tuple[int, np.ndarray] = (0, np.zeros(0, np.int64))  # (first window, starts)
         self.start_step: int = _check(parse_int, "start_step", start_step, minimum=0)
