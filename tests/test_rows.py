@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import itertools
+import json
 from pathlib import Path
 from typing import Any
 
@@ -297,3 +298,26 @@ def test_row_options_are_checked() -> None:
     plain = BatchStream(stream, batch_size=2, window=4, order="documents")
     with pytest.raises(StreamError, match="different key"):
         plain.resume(grouped.state())
+
+
+def test_cli_documents_and_evaluation_orders(built_dataset: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """``batches --order documents|evaluation --positions`` prints loss masks and positions in jsonl and text."""
+    from seqpipe.cli import main
+
+    base = ["batches", str(built_dataset), "--batch-size", "2", "--window", "8", "--format", "jsonl", "--positions"]
+    assert main([*base, "--order", "evaluation"]) == 0
+    rows = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    split = open_dataset(built_dataset).split("train")
+    assert sum(sum(map(sum, r["loss_mask"])) for r in rows) == split.num_tokens - 1
+    assert rows[0]["starts"] == [0, 8] and rows[0]["doc_position"][0][0] == 0
+    assert main([*base, "--order", "documents", "--limit", "2"]) == 0
+    rows = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    assert len(rows) == 2 and all(set(map(len, r["doc_index"])) == {8} for r in rows)
+    starts = set(split.documents.column("start").to_pylist())
+    for r in rows:
+        for first, pos in zip(r["starts"], r["doc_position"], strict=True):
+            assert (first in starts) == (pos[0] == 0)
+    text = [*base[:-3], "--order", "documents", "--limit", "1", "--positions"]
+    assert main(text) == 0
+    out = capsys.readouterr().out
+    assert "documents order" in out and "scored :" in out and "positions:" in out
