@@ -207,3 +207,33 @@ class Evaluation:
         if not self.text_bytes:
             raise StreamError("bits_per_byte: the manifest records no text size for this split")
         return total_loss / math.log(2) / self.text_bytes
+
+
+def window_positions(starts_unique: np.ndarray, starts: np.ndarray, width: int) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`row_positions` for full windows ``[s, s + width)``, from one bisection per row.
+
+    Only the document starts inside each window are located (as in ``TokenStream.boundary_mask``);
+    a running sum along the rows numbers the documents, and each cell's position is its offset
+    minus the start of its document.
+    """
+    ds = starts_unique
+    rows = len(starts)
+    lo = np.searchsorted(ds, starts, side="right")  # ds[lo - 1] <= start < ds[lo]; ds[0] == 0
+    hi = np.searchsorted(ds, starts + (width - 1), side="right")
+    counts = hi - lo
+    marks = np.zeros((rows, width), np.int64)
+    # steps: each cell's position is the previous one's plus 1, except at a document start, where
+    # the step undoes the run since the previous anchor (the row's start, or the previous document)
+    steps = np.ones((rows, width), np.int64)
+    steps[:, 0] = starts - ds[lo - 1]
+    total = int(counts.sum())
+    if total:
+        row = np.repeat(np.arange(rows), counts)
+        k = np.arange(total) - np.repeat(np.cumsum(counts) - counts - lo, counts)
+        col = ds[k] - starts[row]
+        marks[row, col] = 1
+        previous = ds[k - 1] - starts[row]  # the previous start: inside the row, or at/before column 0
+        steps[row, col] = previous - col + 1
+    doc_index = np.cumsum(marks, axis=1, out=marks)
+    doc_position = np.cumsum(steps, axis=1, out=steps)
+    return doc_index, doc_position

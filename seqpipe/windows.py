@@ -60,6 +60,7 @@ from seqpipe.rows import (
     documents_loss_mask,
     padded_rows,
     row_positions,
+    window_positions,
 )
 from seqpipe.stream import TokenStream
 
@@ -467,8 +468,7 @@ class BatchStream:
         mask = self.stream.boundary_mask(starts, width + 1) if self.boundaries else None
         doc_index = doc_position = None
         if self.positions:
-            cells = starts[:, None] + np.arange(width, dtype=np.int64)
-            doc_index, doc_position = row_positions(self._starts_unique(), cells)
+            doc_index, doc_position = window_positions(self._starts_unique(), starts, width)
         fresh = self.order == "random" or step == 0
         # Two C-contiguous arrays, not views of one block: frameworks reshape them in place (a strided
         # view refuses ``tensor.view(-1)``). The cast to the output dtype makes each copy in one pass.
