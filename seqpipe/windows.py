@@ -344,13 +344,15 @@ class BatchStream:
         Entries are computed a page at a time and the last page is kept. A page starts at eight
         global batches (so a first or resumed batch is cheap) and doubles while reading moves
         forward, up to ``_PAGE_WINDOWS``, so steady reading pays little numpy overhead per batch.
+        In the row orders the entries are the permuted row numbers themselves.
         """
         lo, cached = self._page
         if lo <= first and first + count <= lo + len(cached):
             return cached[first - lo : first - lo + count].copy()
         if self._shuffle is None:
             rng = self._rng()
-            rng.integers(0, self.window)  # the offset draw, replayed so the keys follow it
+            if self._plan is None:
+                rng.integers(0, self.window)  # the offset draw, replayed so the keys follow it
             self._shuffle = _Shuffle(self.num_windows, rng)
         big = self.global_batch
         start = first // big * big
@@ -359,7 +361,8 @@ class BatchStream:
         size = min(2 * len(cached), most) if forward else min(8 * big, most)
         end = min(max(start + size, first + count), self.num_windows)
         idx = np.arange(start, end, dtype=np.int64)
-        self._page = (start, self._shuffle(idx) * self.window + self.offset)
+        perm = self._shuffle(idx)
+        self._page = (start, perm if self._plan is not None else perm * self.window + self.offset)
         return self._page[1][first - start : first - start + count].copy()
 
     def rows(self, step: int) -> tuple[int, int]:
@@ -395,9 +398,7 @@ class BatchStream:
 
     def _shuffled(self, first: int, count: int) -> np.ndarray:
         """Rows ``first .. first + count - 1`` of the epoch's permutation of the planned rows."""
-        if self._shuffle is None:
-            self._shuffle = _Shuffle(self.num_windows, self._rng())
-        return self._shuffle(np.arange(first, first + count, dtype=np.int64))
+        return self._random_starts(first, count)
 
     def _row_ids(self, step: int) -> tuple[np.ndarray, int]:
         """Planned rows of this rank at ``step`` and the batch width (row orders)."""
