@@ -24,7 +24,7 @@ from seqpipe.tokenizers.base import Encoder
 from seqpipe.vocab import Vocabulary
 
 if TYPE_CHECKING:
-    from seqpipe.rows import Evaluation
+    from seqpipe.evaluation import Evaluation
     from seqpipe.stream import TokenStream
     from seqpipe.windows import BatchStream
 
@@ -119,7 +119,7 @@ class Split:
         **kwargs: Any,
     ) -> Evaluation:
         """The exact evaluation pass over this split (see :class:`seqpipe.windows.Evaluation`)."""
-        from seqpipe.rows import Evaluation
+        from seqpipe.evaluation import Evaluation
 
         stream = self.batches(
             batch_size=batch_size,

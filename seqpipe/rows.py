@@ -20,18 +20,12 @@ exactly on real targets that count.
 
 from __future__ import annotations
 
-import math
-from collections.abc import Iterator
 from dataclasses import dataclass
-from typing import TYPE_CHECKING
 
 import numpy as np
 
 from seqpipe.errors import StreamError
 from seqpipe.stream import TokenStream
-
-if TYPE_CHECKING:
-    from seqpipe.windows import Batch, BatchStream
 
 
 def distinct_starts(doc_starts: np.ndarray | None) -> np.ndarray:
@@ -140,10 +134,6 @@ class DocumentRows:
         real = np.minimum(self.window + 1, self.lengths[doc] - within)
         return Rows(starts=start, real=real, first_position=within)
 
-    def lengths_of(self, rows: np.ndarray) -> np.ndarray:
-        """Real token count of each row (for grouping rows by length)."""
-        return self.locate(rows).real
-
 
 class EvaluationRows:
     """Order ``evaluation``: window ``k`` starts at ``k * stride``; every target scored once."""
@@ -175,38 +165,6 @@ def documents_loss_mask(rows: Rows, width: int, mask_continued: bool) -> np.ndar
     if mask_continued and width:
         mask[:, 0] &= rows.first_position == 0
     return mask
-
-
-@dataclass(frozen=True, slots=True)
-class Evaluation:
-    """An exact evaluation pass over a split (``Split.evaluation``).
-
-    ``batches`` is this rank's stream in order ``evaluation``; over all ranks the ``loss_mask``
-    cells number exactly ``targets`` (every target of the split once). ``text_bytes`` is the
-    UTF-8 size of the split's text when the manifest records it, else None.
-    """
-
-    batches: BatchStream
-    targets: int
-    text_bytes: int | None
-
-    def __iter__(self) -> Iterator[Batch]:
-        return iter(self.batches)
-
-    def __len__(self) -> int:
-        return len(self.batches)
-
-    def perplexity(self, total_loss: float) -> float:
-        """``exp(total_loss / targets)`` for the summed natural-log loss of every rank's masked targets."""
-        if self.targets == 0:
-            raise StreamError("perplexity: the pass scores no targets (the split has fewer than 2 tokens)")
-        return math.exp(total_loss / self.targets)
-
-    def bits_per_byte(self, total_loss: float) -> float:
-        """The summed natural-log loss of the pass in bits per byte of text."""
-        if not self.text_bytes:
-            raise StreamError("bits_per_byte: the manifest records no text size for this split")
-        return total_loss / math.log(2) / self.text_bytes
 
 
 def window_positions(starts_unique: np.ndarray, starts: np.ndarray, width: int) -> tuple[np.ndarray, np.ndarray]:
