@@ -59,6 +59,10 @@ def _print_jsonl(batches: Iterator[Batch]) -> None:
         }
         if b.mask is not None:
             row["mask"] = b.mask.astype(int).tolist()
+        for name in ("loss_mask", "doc_index", "doc_position"):
+            value = getattr(b, name)
+            if value is not None:
+                row[name] = value.astype(int).tolist()
         print(json.dumps(row))
 
 
@@ -76,6 +80,10 @@ def _print_text(ds: Dataset, stream: BatchStream, batches: Iterator[Batch]) -> N
             print(f"    targets: {shown_tokens(ds.encoder, b.targets[r])}")
             if b.mask is not None:
                 print(f"    boundaries: {_shown_boundaries(b.mask[r])}")
+            if b.loss_mask is not None:
+                print(f"    scored : {int(b.loss_mask[r].sum())} of {b.loss_mask.shape[1]} targets")
+            if b.doc_position is not None:
+                print(f"    positions: {' '.join(map(str, b.doc_position[r].tolist()))}")
 
 
 def print_batches(ds: Dataset, stream: BatchStream, *, limit: int | None, fmt: str) -> None:

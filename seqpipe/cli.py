@@ -232,6 +232,7 @@ def cmd_batches(args: argparse.Namespace) -> int:
             keep_last=args.keep_last,
             boundaries=args.boundaries,
             start_step=args.start_step,
+            positions=args.positions,
         )
     except StreamError as exc:
         raise _option_error(exc) from None
@@ -464,9 +465,11 @@ def _add_reading(sub: Subparsers[argparse.ArgumentParser]) -> None:
     )
     p.add_argument(
         "--order",
-        choices=("random", "sequential"),
+        choices=("random", "sequential", "documents", "evaluation"),
         default="random",
-        help="random: shuffled windows; sequential: each row continues the previous batch's row (default: random)",
+        help="random: shuffled windows; sequential: each row continues the previous batch's row; documents: "
+        "each row a document or a piece of one, padded; evaluation: every target scored once, from offset 0 "
+        "(default: random)",
     )
     p.add_argument("--seed", type=int, default=0, help="seed of the window offset and order (default: 0)")
     p.add_argument("--epoch", type=int, default=0, help="epoch to read; each has its own offset and order (default: 0)")
@@ -493,6 +496,11 @@ def _add_reading(sub: Subparsers[argparse.ArgumentParser]) -> None:
         "--boundaries",
         action="store_true",
         help="mark where documents start (jsonl: a mask per batch; text: target positions per row)",
+    )
+    p.add_argument(
+        "--positions",
+        action="store_true",
+        help="add per input the document number within the row and the position within the document",
     )
     p.add_argument("--verify", action="store_true", help="hash every file of the dataset before the first batch")
     p.set_defaults(fn=cmd_batches)

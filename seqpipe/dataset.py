@@ -25,6 +25,7 @@ from seqpipe.tokenizers.base import Encoder
 from seqpipe.vocab import Vocabulary
 
 if TYPE_CHECKING:
+    from seqpipe.evaluation import Evaluation
     from seqpipe.stream import TokenStream
     from seqpipe.windows import BatchStream
 
@@ -93,11 +94,58 @@ class Split:
         return TokenStream(chunks, doc_starts=starts)
 
     def batches(self, **kwargs: Any) -> BatchStream:
-        """A :class:`seqpipe.windows.BatchStream` over this split (keyword arguments as there)."""
+        """A :class:`seqpipe.windows.BatchStream` over this split (keyword arguments as there).
+
+        Rows are padded with the vocabulary's padding token (``pad_id`` overrides it).
+        """
         from seqpipe.windows import BatchStream
 
+        if "pad_id" not in kwargs and kwargs.get("order") in ("documents", "evaluation"):
+            kwargs["pad_id"] = self._padding_id()
         key = f"{self.dataset.fingerprint}:{self.name}"
         return BatchStream(self.stream, stream_key=key, **kwargs)
+
+    def _padding_id(self) -> int:
+        pad = self.dataset.vocabulary.id_of("padding")
+        if pad is None:
+            raise DatasetError(
+                f"{self.dataset.directory}: the vocabulary has no padding token, which padded rows need; "
+                "name one in [vocabulary] padding and rebuild, or pass pad_id"
+            )
+        return pad
+
+    @property
+    def text_bytes(self) -> int | None:
+        """UTF-8 bytes of the split's cleaned text (from the manifest summary), or None if not recorded."""
+        figures = self.dataset.manifest.get("summary", {}).get("splits", {}).get(self.name)
+        per_token = figures.get("bytes_per_token") if isinstance(figures, dict) else None
+        if isinstance(per_token, bool) or not isinstance(per_token, (int, float)):
+            return None
+        return round(per_token * self.num_tokens)
+
+    def evaluation(
+        self,
+        batch_size: int,
+        window: int,
+        *,
+        rank: int = 0,
+        world_size: int = 1,
+        stride: int | None = None,
+        **kwargs: Any,
+    ) -> Evaluation:
+        """The exact evaluation pass over this split (see :class:`seqpipe.windows.Evaluation`)."""
+        from seqpipe.evaluation import Evaluation
+
+        stream = self.batches(
+            batch_size=batch_size,
+            window=window,
+            order="evaluation",
+            rank=rank,
+            world_size=world_size,
+            stride=stride,
+            **kwargs,
+        )
+        return Evaluation(stream, targets=max(0, self.num_tokens - 1), text_bytes=self.text_bytes)
 
 
 class Dataset:

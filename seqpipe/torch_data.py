@@ -203,6 +203,8 @@ class TorchBatches(IterableDataset[Any]):
             "epoch": batch.epoch,
             "fresh": batch.fresh,
         }
-        if batch.mask is not None:
-            out["mask"] = torch.from_numpy(batch.mask)
+        for name in ("mask", "loss_mask", "doc_index", "doc_position"):
+            value = getattr(batch, name)
+            if value is not None:
+                out[name] = torch.from_numpy(value)
         return out

@@ -25,6 +25,17 @@ Orders (both draw a start offset in ``[0, T)`` per epoch, so window edges move):
             ``k``-th window, so row ``j`` of step ``k+1`` continues where step ``k`` ended
             (hidden state can be carried; ``fresh`` marks step 0).
 
+``documents``  every row starts at a document start or continues the previous piece of the same
+            document (:class:`seqpipe.rows.DocumentRows`); rows are permuted per epoch like
+            windows; short rows are padded with ``pad_id`` and ``loss_mask`` marks real targets.
+            ``group_lengths=K`` sorts the rows of each pool of ``K`` global batches by length
+            (longest first) and cuts each global batch to its longest row.
+``evaluation``  seed-free: windows from offset 0 every ``stride`` tokens (default ``window``),
+            each target of the split scored exactly once (``loss_mask``), the last row padded.
+
+With ``positions=True`` each batch also carries, per input cell, the document number within
+the row and the position within that document (:func:`seqpipe.rows.row_positions`).
+
 The generator is always ``np.random.Generator(np.random.PCG64(np.random.SeedSequence(...)))``
 built from integers only; global random state is never read or written.
 """
@@ -42,9 +53,19 @@ import xxhash
 from seqpipe._hashing import hash_json
 from seqpipe._parse import check_keys, parse_bool, parse_int, parse_str
 from seqpipe.errors import RecipeError, StreamError
+from seqpipe.rows import (
+    DocumentRows,
+    EvaluationRows,
+    distinct_starts,
+    documents_loss_mask,
+    padded_rows,
+    row_positions,
+    window_positions,
+)
 from seqpipe.stream import TokenStream
 
-ORDERS: Final = ("random", "sequential")
+ORDERS: Final = ("random", "sequential", "documents", "evaluation")
+_ROW_ORDERS: Final = ("documents", "evaluation")  # rows planned by seqpipe.rows, padded to the window
 # Separates this use of the user's seed from any other seeded step (arbitrary constant).
 _DOMAIN: Final = 0x57A3_0001
 # Feistel rounds: 4 already make a pseudorandom permutation from a good round function
@@ -148,8 +169,11 @@ class StreamState:
 class Batch:
     """One rank's batch: ``inputs``/``targets`` are C-contiguous ``(rows, width)`` arrays.
 
-    ``width`` is the window length ``T``, except possibly in the last sequential batch when
-    ``keep_last=True``. ``mask`` (only with ``boundaries=True``) is True where the target starts a new document.
+        ``width`` is the window length ``T``, except possibly in the last sequential batch when
+        ``keep_last=True``. ``mask`` (only with ``boundaries=True``) is True where the target starts a new document.
+    ``loss_mask`` (orders ``documents`` and ``evaluation``) is True on the targets that count.
+    ``doc_index`` / ``doc_position`` (only with ``positions=True``) give, per input cell, the document
+    number within the row (from 0; -1 on padding) and the position within that document.
     """
 
     step: int
@@ -159,6 +183,9 @@ class Batch:
     starts: np.ndarray
     fresh: bool
     mask: np.ndarray | None = None
+    loss_mask: np.ndarray | None = None
+    doc_index: np.ndarray | None = None
+    doc_position: np.ndarray | None = None
 
 
 class BatchStream:
@@ -188,6 +215,11 @@ class BatchStream:
         boundaries: bool = False,
         stream_key: str = "",
         start_step: int = 0,
+        positions: bool = False,
+        pad_id: int = 0,
+        mask_continued: bool = False,
+        group_lengths: int = 0,
+        stride: int | None = None,
     ) -> None:
         if not isinstance(stream, TokenStream):
             raise StreamError(f"stream: expected a TokenStream, got {type(stream).__name__}")
@@ -210,11 +242,16 @@ class BatchStream:
             raise StreamError(f"dtype: {self.dtype} cannot hold every {stream.dtype} token id", key="dtype")
         if boundaries and stream.doc_starts is None:
             raise StreamError("boundaries: the stream has no document offsets (doc_starts)", key="boundaries")
+        self._init_rows(positions, pad_id, mask_continued, group_lengths, stride)
         self.global_batch = self.batch_size * self.world_size
         t, n = self.window, len(stream)
-        self.offset = int(self._rng().integers(0, t))
+        self.offset = 0 if self._plan is not None else int(self._rng().integers(0, t))
         usable = max(0, n - 1 - self.offset)
-        if self.order == "random":
+        if self._plan is not None:
+            self.num_windows = self._plan.count
+            whole, part = divmod(self.num_windows, self.global_batch)
+            self.lane_length = 0
+        elif self.order == "random":
             self.num_windows = usable // t
             whole, part = divmod(self.num_windows, self.global_batch)
             self.lane_length = 0
@@ -222,7 +259,8 @@ class BatchStream:
             self.num_windows = 0
             self.lane_length = usable // self.global_batch
             whole, part = divmod(self.lane_length, t)
-        self._len: int = whole + (1 if part and self.keep_last else 0)
+        keep = self.keep_last or self.order == "evaluation"  # an evaluation pass scores every target
+        self._len: int = whole + (1 if part and keep else 0)
         self._shuffle: _Shuffle | None = None
         self._page: tuple[int, np.ndarray] = (0, np.zeros(0, np.int64))  # (first window, starts)
         self.start_step: int = _check(parse_int, "start_step", start_step, minimum=0)
@@ -232,6 +270,34 @@ class BatchStream:
                 key="start_step",
             )
         self._next = self.start_step
+
+    def _init_rows(
+        self, positions: bool, pad_id: int, mask_continued: bool, group_lengths: int, stride: int | None
+    ) -> None:
+        """Validate the options of positions and of the row orders; build the row plan."""
+        self.positions: bool = _check(parse_bool, "positions", positions)
+        self.pad_id: int = _check(parse_int, "pad_id", pad_id, minimum=0, maximum=int(np.iinfo(self.stream.dtype).max))
+        self.mask_continued: bool = _check(parse_bool, "mask_continued", mask_continued)
+        self.group_lengths: int = _check(parse_int, "group_lengths", group_lengths, minimum=0)
+        self.stride: int | None = None
+        if stride is not None:
+            self.stride = _check(parse_int, "stride", stride, minimum=1, maximum=self.window)
+        for key, used, needs in (
+            ("mask_continued", mask_continued, "documents"),
+            ("group_lengths", group_lengths, "documents"),
+            ("stride", stride is not None, "evaluation"),
+        ):
+            if used and self.order != needs:
+                raise StreamError(f"{key}: applies to order {needs!r} only, not {self.order!r}", key=key)
+        if positions and self.stream.doc_starts is None:
+            raise StreamError("positions: the stream has no document offsets (doc_starts)", key="positions")
+        self._plan: DocumentRows | EvaluationRows | None = None
+        if self.order == "documents":
+            self._plan = DocumentRows(self.stream, self.window)
+        elif self.order == "evaluation":
+            self._plan = EvaluationRows(len(self.stream), self.window, self.stride or self.window)
+        self._unique: np.ndarray | None = None  # distinct document starts, computed when first needed
+        self._pool: tuple[int, np.ndarray, np.ndarray] = (-1, np.zeros(0, np.int64), np.zeros(0, np.int64))
 
     # --- identity --------------------------------------------------------------------------------
     def _rng(self) -> np.random.Generator:
@@ -251,6 +317,14 @@ class BatchStream:
                 "seed": self.seed,
                 "keep_last": self.keep_last,
                 "tokens": len(self.stream),
+                # only row orders add keys, so the configs of window streams stay as they were
+                **(
+                    {"pad_id": self.pad_id, "mask_continued": self.mask_continued, "group_lengths": self.group_lengths}
+                    if self.order == "documents"
+                    else {"stride": self.stride or self.window}
+                    if self.order == "evaluation"
+                    else {}
+                ),
             }
         )
 
@@ -270,13 +344,15 @@ class BatchStream:
         Entries are computed a page at a time and the last page is kept. A page starts at eight
         global batches (so a first or resumed batch is cheap) and doubles while reading moves
         forward, up to ``_PAGE_WINDOWS``, so steady reading pays little numpy overhead per batch.
+        In the row orders the entries are the permuted row numbers themselves.
         """
         lo, cached = self._page
         if lo <= first and first + count <= lo + len(cached):
             return cached[first - lo : first - lo + count].copy()
         if self._shuffle is None:
             rng = self._rng()
-            rng.integers(0, self.window)  # the offset draw, replayed so the keys follow it
+            if self._plan is None:
+                rng.integers(0, self.window)  # the offset draw, replayed so the keys follow it
             self._shuffle = _Shuffle(self.num_windows, rng)
         big = self.global_batch
         start = first // big * big
@@ -285,13 +361,14 @@ class BatchStream:
         size = min(2 * len(cached), most) if forward else min(8 * big, most)
         end = min(max(start + size, first + count), self.num_windows)
         idx = np.arange(start, end, dtype=np.int64)
-        self._page = (start, self._shuffle(idx) * self.window + self.offset)
+        perm = self._shuffle(idx)
+        self._page = (start, perm if self._plan is not None else perm * self.window + self.offset)
         return self._page[1][first - start : first - start + count].copy()
 
     def rows(self, step: int) -> tuple[int, int]:
         """This rank's row range ``[lo, hi)`` within global batch ``step``."""
         b, w, r = self.batch_size, self.world_size, self.rank
-        if self.order == "random":
+        if self.order != "sequential":
             m = min(self.global_batch, self.num_windows - step * self.global_batch)
         else:
             m = self.global_batch
@@ -301,11 +378,17 @@ class BatchStream:
         lo = r * q + min(r, rem)
         return lo, lo + q + (1 if r < rem else 0)
 
-    def starts_for(self, step: int) -> tuple[np.ndarray, int]:
-        """Window start offsets of this rank's rows at ``step`` and the window width."""
+    def _step(self, step: int) -> int:
         if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or not 0 <= step < self._len:
             raise StreamError(f"step: expected 0 <= step < {self._len}, got {step!r}", key="step")
-        step = int(step)
+        return int(step)
+
+    def starts_for(self, step: int) -> tuple[np.ndarray, int]:
+        """Window start offsets of this rank's rows at ``step`` and the window width."""
+        step = self._step(step)
+        if self._plan is not None:
+            ids, width = self._row_ids(step)
+            return self._plan.locate(ids).starts, width
         lo, hi = self.rows(step)
         if self.order == "random":
             return self._random_starts(step * self.global_batch + lo, hi - lo), self.window
@@ -313,11 +396,80 @@ class BatchStream:
         width = min(self.window, self.lane_length - step * self.window)
         return self.offset + lanes * self.lane_length + step * self.window, width
 
+    def _shuffled(self, first: int, count: int) -> np.ndarray:
+        """Rows ``first .. first + count - 1`` of the epoch's permutation of the planned rows."""
+        return self._random_starts(first, count)
+
+    def _row_ids(self, step: int) -> tuple[np.ndarray, int]:
+        """Planned rows of this rank at ``step`` and the batch width (row orders)."""
+        assert self._plan is not None
+        lo, hi = self.rows(step)
+        big = self.global_batch
+        first = step * big
+        if self.order == "evaluation":
+            return np.arange(first + lo, first + hi, dtype=np.int64), self.window
+        if not self.group_lengths:
+            return self._shuffled(first + lo, hi - lo), self.window
+        pool = step // self.group_lengths
+        pool_first = pool * self.group_lengths * big
+        if self._pool[0] != pool:
+            ids = self._shuffled(pool_first, min(self.num_windows, pool_first + self.group_lengths * big) - pool_first)
+            real = self._plan.locate(ids).real
+            by_length = np.argsort(-real, kind="stable")  # stable: ties keep the shuffled order
+            self._pool = (pool, ids[by_length], real[by_length])
+        _, ids, real = self._pool
+        at = first - pool_first
+        # the width comes from the whole global batch, so every rank gets the same width
+        width = min(self.window, max(1, int(real[at : at + big].max()) - 1))
+        return ids[at + lo : at + hi].copy(), width
+
+    def _starts_unique(self) -> np.ndarray:
+        if self._unique is None:
+            self._unique = distinct_starts(self.stream.doc_starts)
+        return self._unique
+
+    def _row_batch(self, step: int) -> Batch:
+        """Batch ``step`` of a row order: padded rows with their loss mask."""
+        assert self._plan is not None
+        ids, width = self._row_ids(step)
+        rows = self._plan.locate(ids)
+        block = padded_rows(self.stream, rows.starts, rows.real, width + 1, self.pad_id)
+        if isinstance(self._plan, EvaluationRows):
+            loss = self._plan.loss_mask(ids, rows.real, width)
+        else:
+            loss = documents_loss_mask(rows, width, self.mask_continued)
+        cols = np.arange(width, dtype=np.int64)
+        doc_index = doc_position = mask = None
+        if self.positions:
+            real_inputs = cols < rows.real[:, None]
+            doc_index, doc_position = row_positions(self._starts_unique(), rows.starts[:, None] + cols, real_inputs)
+        if self.boundaries:
+            real_targets = cols < (rows.real - 1)[:, None]
+            _, at = row_positions(self._starts_unique(), rows.starts[:, None] + 1 + cols, real_targets)
+            mask = (at == 0) & real_targets
+        return Batch(
+            step=int(step),
+            epoch=self.epoch,
+            inputs=block[:, :-1].astype(self.dtype, order="C"),
+            targets=block[:, 1:].astype(self.dtype, order="C"),
+            starts=rows.starts,
+            fresh=True,
+            mask=mask,
+            loss_mask=loss,
+            doc_index=doc_index,
+            doc_position=doc_position,
+        )
+
     def batch(self, step: int) -> Batch:
         """Batch ``step`` of this epoch for this rank, computed directly (no replay)."""
+        if self._plan is not None:
+            return self._row_batch(self._step(step))
         starts, width = self.starts_for(step)
         block = self.stream.gather(starts, width + 1, self.stream.dtype)  # stored width: the cheapest copy
         mask = self.stream.boundary_mask(starts, width + 1) if self.boundaries else None
+        doc_index = doc_position = None
+        if self.positions:
+            doc_index, doc_position = window_positions(self._starts_unique(), starts, width)
         fresh = self.order == "random" or step == 0
         # Two C-contiguous arrays, not views of one block: frameworks reshape them in place (a strided
         # view refuses ``tensor.view(-1)``). The cast to the output dtype makes each copy in one pass.
@@ -329,6 +481,8 @@ class BatchStream:
             starts=starts,
             fresh=fresh,
             mask=mask,
+            doc_index=doc_index,
+            doc_position=doc_position,
         )
 
     # --- iteration -------------------------------------------------------------------------------
@@ -374,6 +528,11 @@ class BatchStream:
             boundaries=self.boundaries,
             stream_key=self.stream_key,
             start_step=start_step,
+            positions=self.positions,
+            pad_id=self.pad_id,
+            mask_continued=self.mask_continued,
+            group_lengths=self.group_lengths,
+            stride=self.stride,
         )
 
     def resume(self, state: StreamState) -> BatchStream:

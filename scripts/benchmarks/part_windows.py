@@ -157,3 +157,66 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
         f"from {len(big)} mapped shards vs {n_batches / t_numpy:,.0f}/s numpy index-array gather in "
         f"memory; vs a sliding-window-view gather in memory the ratio is {t_strided / t_ours:.2f})",
     )
+
+    # --- positions, documents as rows, length grouping ---------------------------------------------------
+    yield from _row_measures(open_stream(big), n_batches)
+
+
+def _with_documents(stream: TokenStream, seed: int) -> TokenStream:
+    """The stream with invented document starts: lengths 20..1000 tokens from a fixed-seed generator."""
+    rng = np.random.Generator(np.random.PCG64(seed))
+    lengths = rng.integers(20, 1001, len(stream) // 20 + 1)
+    starts = np.concatenate([[0], np.cumsum(lengths)])
+    return TokenStream(list(stream.chunks), starts[starts < len(stream)])
+
+
+def _row_measures(plain: TokenStream, n_batches: int) -> Iterator[Measure]:
+    stream = _with_documents(plain, seed=9)
+    documents = len(stream.doc_starts) if stream.doc_starts is not None else 0
+    settings = {"batch_size": B, "window": WINDOW, "seed": 1, "stream_key": KEY}
+    without = BatchStream(stream, **settings)
+    with_pos = BatchStream(stream, positions=True, **settings)
+    rows = BatchStream(stream, order="documents", **settings)
+    n = min(n_batches, len(rows))
+
+    def run(bs: BatchStream) -> None:
+        for k in range(n):
+            bs.batch(k)
+
+    for bs in (without, with_pos, rows):  # first pass maps the pages
+        run(bs)
+    t_plain, t_pos, t_rows = (best_time(lambda bs=bs: run(bs), 5) for bs in (without, with_pos, rows))
+    yield Measure(
+        "windows.positions_rate",
+        t_plain / t_pos,
+        0.6,
+        f"(best of 5, {n} random batches B={B} window={WINDOW} with positions vs without: "
+        f"{n / t_pos:,.0f} vs {n / t_plain:,.0f} batches/s; {documents:,} documents)",
+    )
+    yield Measure(
+        "rows.rate_vs_windows",
+        t_plain / t_rows,
+        0.5,
+        f"(best of 5, {n} documents-as-rows batches vs random window batches, B={B} window={WINDOW}: "
+        f"{n / t_rows:,.0f} vs {n / t_plain:,.0f} batches/s)",
+    )
+    grouped = BatchStream(stream, order="documents", group_lengths=8, **settings)
+
+    def padding_share(bs: BatchStream) -> float:
+        cells = padded = 0
+        for k in range(n):
+            mask = bs.batch(k).loss_mask
+            assert mask is not None
+            cells += mask.size
+            padded += int(mask.size - mask.sum())
+        return padded / cells
+
+    share_plain, share_grouped = padding_share(rows), padding_share(grouped)
+    yield Measure(
+        "rows.padding_share_grouped_vs_plain",
+        share_grouped / share_plain if share_plain else 1.0,
+        1.0,
+        f"(info: unscored target cells over {n} documents-as-rows batches: {share_grouped:.1%} with "
+        f"group_lengths=8, {share_plain:.1%} without; documents of 20..1000 tokens, window={WINDOW})",
+        higher_is_better=False,
+    )

@@ -1,0 +1,197 @@
+"""Rows that follow documents: positions within documents, documents as rows, the evaluation pass.
+
+Three pieces used by :class:`seqpipe.windows.BatchStream`:
+
+* :func:`row_positions` - per row cell, which document it belongs to (numbered within the row from
+  0) and its position within that document, from the stored document starts by bisection;
+  :func:`attention_mask` turns the document numbers into a block-diagonal mask.
+* :class:`DocumentRows` - order ``documents``: each document cut into pieces of at most
+  ``window + 1`` tokens (inputs ``[:-1]``, targets ``[1:]``); piece ``k`` starts at token
+  ``k * window`` of its document, so consecutive pieces share one token and every target of the
+  document is in exactly one piece. Row ``r`` of the epoch is found from the cumulative piece
+  counts (one bisection), so any row is computed directly.
+* :class:`EvaluationRows` - order ``evaluation``: windows at ``k * stride`` from offset 0, the
+  first scoring all its targets and each later one only the ``stride`` targets no earlier window
+  scored, so every target of the split is scored exactly once.
+
+Rows shorter than ``window + 1`` tokens are filled with the padding id; ``loss_mask`` is True
+exactly on real targets that count.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from seqpipe.errors import StreamError
+from seqpipe.stream import TokenStream
+
+
+def distinct_starts(doc_starts: np.ndarray | None) -> np.ndarray:
+    """Document starts without repeats (an empty document shares its start with the next one)."""
+    if doc_starts is None or doc_starts.size == 0:
+        return np.zeros(1, np.int64)
+    ds = doc_starts.astype(np.int64, copy=False)
+    if ds.size > 1 and bool(np.any(ds[1:] == ds[:-1])):
+        ds = np.unique(ds)
+    # tokens before the first listed start form a document of their own
+    return ds if ds[0] == 0 else np.concatenate([np.zeros(1, np.int64), ds])
+
+
+def row_positions(
+    starts_unique: np.ndarray, cells: np.ndarray, real: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray]:
+    """``(doc_index, doc_position)`` for token offsets ``cells`` of shape ``(rows, T)``.
+
+    ``doc_index`` numbers the documents met along each row from 0; ``doc_position`` is the
+    offset within the token's document (0 at a document start). Cells where ``real`` is False
+    (padding) get document -1 and position 0.
+    """
+    d = np.searchsorted(starts_unique, cells, side="right") - 1
+    doc_index = d - d[:, :1]
+    doc_position = cells - starts_unique[d]
+    if real is not None:
+        doc_index[~real] = -1
+        doc_position[~real] = 0
+    return doc_index, doc_position
+
+
+def attention_mask(doc_index: np.ndarray, *, causal: bool = True) -> np.ndarray:
+    """Bool ``(..., T, T)``: True where query ``i`` may attend to key ``j`` of the same row.
+
+    Block-diagonal: ``i`` and ``j`` must share a document (``doc_index`` of one row ``(T,)`` or a
+    batch ``(rows, T)``); with ``causal=True`` (the default) also ``j <= i``. Padding cells
+    (document -1) form one block of their own, so no query row is all False.
+    """
+    doc = np.asarray(doc_index)
+    if doc.ndim < 1 or not np.issubdtype(doc.dtype, np.integer):
+        raise StreamError(f"doc_index: expected an integer array of shape (..., T), got {doc.dtype} {doc.shape}")
+    mask: np.ndarray = doc[..., :, None] == doc[..., None, :]
+    if causal:
+        t = doc.shape[-1]
+        mask &= np.tri(t, t, dtype=bool)
+    return mask
+
+
+def padded_rows(stream: TokenStream, starts: np.ndarray, real: np.ndarray, width: int, pad: int) -> np.ndarray:
+    """Rows ``stream[s : s + n]`` filled with ``pad`` to ``width`` tokens, shape ``(rows, width)``.
+
+    Every row is read with one windowed gather; rows that would leave the stream are read from
+    an earlier start and shifted back, so the stream is never read past its end.
+    """
+    n_tok = len(stream)
+    cols = np.arange(width, dtype=np.int64)
+    valid = cols < real[:, None]
+    if n_tok >= width:
+        first = np.minimum(starts, n_tok - width)
+        block = stream.gather(first, width, stream.dtype)
+        shift = starts - first
+        moved = np.flatnonzero(shift)
+        if moved.size:  # only rows at the very end of the stream
+            col = np.minimum(shift[moved, None] + cols, width - 1)
+            block[moved] = np.take_along_axis(block[moved], col, axis=1)
+    else:
+        whole = np.zeros(width, stream.dtype)
+        whole[:n_tok] = stream.slice(0, n_tok)
+        block = whole[np.minimum(starts[:, None] + cols, width - 1)]
+    if not valid.all():
+        block[~valid] = pad
+    return block
+
+
+@dataclass(frozen=True, slots=True)
+class Rows:
+    """Rows of one batch: start offsets, real tokens per row (<= window + 1), loss mask, positions."""
+
+    starts: np.ndarray
+    real: np.ndarray
+    first_position: np.ndarray  # position within its document of each row's first token, or of k * stride
+
+
+class DocumentRows:
+    """Order ``documents``: row ``r`` is piece ``k`` of document ``d`` (see the module docstring)."""
+
+    __slots__ = ("count", "cum", "lengths", "pieces", "starts", "window")
+
+    def __init__(self, stream: TokenStream, window: int) -> None:
+        if stream.doc_starts is None:
+            raise StreamError("order: 'documents' needs the stream's document offsets (doc_starts)", key="order")
+        self.window = window
+        self.starts = distinct_starts(stream.doc_starts)
+        self.lengths = np.diff(np.append(self.starts, len(stream)))
+        # a document of L tokens has L - 1 targets: ceil((L - 1) / T) pieces, and at least one
+        self.pieces = np.where(self.lengths > 0, np.maximum(1, -(-(self.lengths - 1) // window)), 0)
+        self.cum = np.cumsum(self.pieces)
+        self.count = int(self.cum[-1]) if self.cum.size else 0
+
+    def locate(self, rows: np.ndarray) -> Rows:
+        """Start, real token count and piece offset of epoch rows ``rows`` (int64)."""
+        doc = np.searchsorted(self.cum, rows, side="right")
+        piece = rows - (self.cum[doc] - self.pieces[doc])
+        within = piece * self.window
+        start = self.starts[doc] + within
+        real = np.minimum(self.window + 1, self.lengths[doc] - within)
+        return Rows(starts=start, real=real, first_position=within)
+
+
+class EvaluationRows:
+    """Order ``evaluation``: window ``k`` starts at ``k * stride``; every target scored once."""
+
+    __slots__ = ("count", "n_tokens", "stride", "window")
+
+    def __init__(self, n_tokens: int, window: int, stride: int) -> None:
+        self.window, self.stride, self.n_tokens = window, stride, n_tokens
+        targets = max(0, n_tokens - 1)
+        self.count = 0 if targets == 0 else 1 + -(-max(0, targets - window) // stride)
+
+    def locate(self, rows: np.ndarray) -> Rows:
+        """Start and real token count of windows ``rows``."""
+        start = rows * self.stride
+        return Rows(starts=start, real=np.minimum(self.window + 1, self.n_tokens - start), first_position=start)
+
+    def loss_mask(self, rows: np.ndarray, real: np.ndarray, width: int) -> np.ndarray:
+        """True on targets this window is the first to score (and that are not padding)."""
+        cols = np.arange(width)
+        mask = cols < (real - 1)[:, None]
+        # window k > 0 repeats the targets of window k - 1 but its last ``stride``
+        mask &= (rows[:, None] == 0) | (cols >= width - self.stride)
+        return mask
+
+
+def documents_loss_mask(rows: Rows, width: int, mask_continued: bool) -> np.ndarray:
+    """True on real targets; with ``mask_continued`` False on the first target of a continued piece."""
+    mask = np.arange(width) < (rows.real - 1)[:, None]
+    if mask_continued and width:
+        mask[:, 0] &= rows.first_position == 0
+    return mask
+
+
+def window_positions(starts_unique: np.ndarray, starts: np.ndarray, width: int) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`row_positions` for full windows ``[s, s + width)``, from one bisection per row.
+
+    Only the document starts inside each window are located (as in ``TokenStream.boundary_mask``);
+    a running sum along the rows numbers the documents, and each cell's position is its offset
+    minus the start of its document.
+    """
+    ds = starts_unique
+    rows = len(starts)
+    lo = np.searchsorted(ds, starts, side="right")  # ds[lo - 1] <= start < ds[lo]; ds[0] == 0
+    hi = np.searchsorted(ds, starts + (width - 1), side="right")
+    counts = hi - lo
+    marks = np.zeros((rows, width), np.int64)
+    # steps: each cell's position is the previous one's plus 1, except at a document start, where
+    # the step undoes the run since the previous anchor (the row's start, or the previous document)
+    steps = np.ones((rows, width), np.int64)
+    steps[:, 0] = starts - ds[lo - 1]
+    total = int(counts.sum())
+    if total:
+        row = np.repeat(np.arange(rows), counts)
+        k = np.arange(total) - np.repeat(np.cumsum(counts) - counts - lo, counts)
+        col = ds[k] - starts[row]
+        marks[row, col] = 1
+        previous = ds[k - 1] - starts[row]  # the previous start: inside the row, or at/before column 0
+        steps[row, col] = previous - col + 1
+    doc_index = np.cumsum(marks, axis=1, out=marks)
+    doc_position = np.cumsum(steps, axis=1, out=steps)
+    return doc_index, doc_position
