@@ -6,7 +6,8 @@ schedule over the global row index ``g = (epoch * steps_per_epoch + step) * B + 
 
 * the weights, divided by their greatest common divisor, sum to a period ``P``; within each run of
   ``P`` rows component ``i`` gets exactly ``w_i`` rows. Inside a period, row ``n`` goes to the
-  component furthest behind its quota ``(n + 1) * w_i / P`` (ties: the lower index). The table of
+  component whose next row is due soonest (earliest deadline first among the rows already due, ties:
+  the lower index; see :func:`schedule_table`). The table of
   one period is checked at construction to keep every prefix within one row of its share, so the
   rows component ``i`` has received before row ``g`` are ``(g // P) * w_i + table[g % P, i]``:
   closed form, for any step.
@@ -175,7 +176,7 @@ class OpenMixture:
 def schedule_table(weights: Sequence[int]) -> np.ndarray:
     """Rows per component before each row of one period: shape ``(P + 1, k)``, int64.
 
-    Row ``n`` of the period goes to the component furthest behind its quota; the returned
+    Row ``n`` of the period goes to the due component with the earliest deadline; the returned
     prefix counts are checked to stay within one row of ``n * w_i / P`` (exact integer test).
     """
     w = np.asarray([_check(parse_int, f"weights[{i}]", x, minimum=1) for i, x in enumerate(weights)], np.int64)
@@ -191,8 +192,12 @@ def schedule_table(weights: Sequence[int]) -> np.ndarray:
     counts = np.zeros((period + 1, w.size), np.int64)
     current = np.zeros(w.size, np.int64)
     for n in range(period):  # one entry per row of the period, not per token; built once per stream
-        lag = (n + 1) * w - current * period  # quota minus count, times P
-        current[int(np.argmax(lag))] += 1
+        # Component i's next row is due in rows [c*P // w, ceil((c+1)*P / w)); of those already due,
+        # the earliest deadline goes first (earliest-deadline-first is optimal on one machine and these
+        # rows fill the period exactly, so every row meets its window: every prefix within one row).
+        released = current * period // w <= n
+        deadline = np.where(released, -(-(current + 1) * period // w), np.iinfo(np.int64).max)
+        current[int(np.argmin(deadline))] += 1
         counts[n + 1] = current
     spread = np.abs(counts * period - np.arange(period + 1)[:, None] * w)
     if int(spread.max()) > period:  # should never happen; guards the share bound the docs promise
