@@ -109,6 +109,14 @@ def cmd_verify(args: argparse.Namespace) -> int:
 
 def cmd_inspect(args: argparse.Namespace) -> int:
     from seqpipe.dataset import open_dataset
+    from seqpipe.mixture import is_mixture_file, read_mixture, summary_lines
+
+    if is_mixture_file(args.directory):
+        lines = summary_lines(
+            read_mixture(args.directory).open(), batch_size=args.batch_size, window=args.window, steps=args.steps
+        )
+        print("\n".join(lines))
+        return EXIT_OK
 
     ds = open_dataset(args.directory)
     m = ds.manifest
@@ -184,7 +192,10 @@ def _option_error(exc: StreamError) -> StreamError:
 def cmd_batches(args: argparse.Namespace) -> int:
     from seqpipe.batch_output import print_batches
     from seqpipe.dataset import open_dataset
+    from seqpipe.mixture import is_mixture_file
 
+    if is_mixture_file(args.directory):
+        return _mixture_batches(args)
     ds = open_dataset(args.directory, verify=args.verify)
     split = ds.split(args.split)
     try:
@@ -203,6 +214,33 @@ def cmd_batches(args: argparse.Namespace) -> int:
     except StreamError as exc:
         raise _option_error(exc) from None
     print_batches(ds, stream, limit=args.limit, fmt=args.format)
+    return EXIT_OK
+
+
+def _mixture_batches(args: argparse.Namespace) -> int:
+    from seqpipe.batch_output import print_batches
+    from seqpipe.mixture import read_mixture
+
+    if args.keep_last:
+        raise StreamError(
+            "--keep-last: a mixture has no last, smaller batch (its epochs have no tail)", key="keep_last"
+        )
+    opened = read_mixture(args.directory).open(verify=args.verify)
+    try:
+        stream = opened.batches(
+            batch_size=args.batch_size,
+            window=args.window,
+            order=args.order,
+            seed=args.seed,
+            epoch=args.epoch,
+            rank=args.rank,
+            world_size=args.world_size,
+            boundaries=args.boundaries,
+            start_step=args.start_step,
+        )
+    except StreamError as exc:
+        raise _option_error(exc) from None
+    print_batches(opened.datasets[0], stream, limit=args.limit, fmt=args.format)
     return EXIT_OK
 
 
@@ -362,9 +400,16 @@ def _add_checks(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p.add_argument("--expect", metavar="FINGERPRINT", help="the dataset fingerprint must equal this hex")
     p.set_defaults(fn=cmd_verify)
 
-    p = sub.add_parser("inspect", help="show what a dataset's manifest holds", description="Show a dataset's manifest.")
+    p = sub.add_parser(
+        "inspect",
+        help="show what a dataset's manifest (or a mixture file) holds",
+        description="Show a dataset's manifest, or a mixture file's components (MIXTURE.toml).",
+    )
     p.add_argument("directory", help=URI_DIR_HELP)
     p.add_argument("--json", action="store_true", help="print the whole manifest as JSON")
+    p.add_argument("--batch-size", type=positive_int, metavar="B", help="mixture file: global batch for exact epochs")
+    p.add_argument("--window", type=positive_int, metavar="T", help="mixture file: window length for exact epochs")
+    p.add_argument("--steps", type=positive_int, metavar="N", help="mixture file: steps in one mixture epoch")
     p.set_defaults(fn=cmd_inspect)
 
 
@@ -398,10 +443,10 @@ def _add_reading(sub: Subparsers[argparse.ArgumentParser]) -> None:
 
     p = sub.add_parser(
         "batches",
-        help="show or fingerprint the batch stream of a split",
-        description="Show or fingerprint the batch stream of a split.",
+        help="show or fingerprint the batch stream of a split or a mixture",
+        description="Show or fingerprint the batch stream of a split, or of a mixture file (MIXTURE.toml).",
     )
-    p.add_argument("directory", help=URI_DIR_HELP)
+    p.add_argument("directory", help=URI_DIR_HELP + "; or a mixture file MIXTURE.toml (its components name the splits)")
     p.add_argument("--split", default="train", help="split to read (default: train)")
     p.add_argument("--batch-size", type=int, required=True, metavar="B", help="rows per batch on this rank")
     p.add_argument(

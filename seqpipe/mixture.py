@@ -101,11 +101,12 @@ class Mixture:
                 raise StreamError(f"components[{i}]: expected a Component, got {type(c).__name__}", key="components")
         object.__setattr__(self, "components", items)
 
-    def open(self) -> OpenMixture:
-        """Open every component's dataset; refuse components whose vocabularies differ."""
+    def open(self, *, verify: bool = False) -> OpenMixture:
+        """Open every component's dataset (``verify`` as for ``open_dataset``); refuse components
+        whose vocabularies differ."""
         from seqpipe.dataset import open_dataset
 
-        datasets = [open_dataset(c.dataset) for c in self.components]
+        datasets = [open_dataset(c.dataset, verify=verify) for c in self.components]
         first = vocabulary_identity(datasets[0].manifest)
         for c, ds in zip(self.components[1:], datasets[1:], strict=True):
             if vocabulary_identity(ds.manifest) != first:
@@ -487,3 +488,40 @@ class MixtureStream:
         """How many component epochs one mixture epoch (``len(self)`` global batches) reads, per component."""
         rows = self.rows_before(self.steps_per_epoch * self.global_batch)
         return [int(k) / r for k, r in zip(rows, self.windows, strict=True)]
+
+
+def is_mixture_file(path: str | Path) -> bool:
+    """True for a path naming a mixture file (``.toml``) rather than a dataset directory or URI."""
+    return str(path).endswith(".toml") and Path(path).is_file()
+
+
+def summary_lines(
+    opened: OpenMixture, *, batch_size: int | None = None, window: int | None = None, steps: int | None = None
+) -> list[str]:
+    """What ``seqpipe inspect MIXTURE.toml`` prints: per component its tokens, weight, share and how
+    many of its epochs one mixture epoch reads (exact for a given batch size and window, else from
+    token counts alone)."""
+    comps = opened.mixture.components
+    tokens = [len(s) for s in opened.streams()]
+    total_weight = sum(c.weight for c in comps)
+    if batch_size is not None and window is not None:
+        ms = opened.batches(batch_size=batch_size, window=window, steps_per_epoch=steps)
+        epochs = ms.epochs_per_mixture_epoch()
+        head = f"one mixture epoch: {len(ms)} steps of {ms.global_batch} windows of {window} tokens"
+    else:
+        # Default epoch: as many rows as all components hold windows, so about total tokens / T rows.
+        epochs = [c.weight / total_weight * sum(tokens) / max(n, 1) for c, n in zip(comps, tokens, strict=True)]
+        head = (
+            "one mixture epoch: as many windows as the components hold together "
+            "(approximate; exact with --batch-size and --window)"
+        )
+    lines = [
+        f"mixture      {len(comps)} component(s), vocabulary {vocabulary_identity(opened.datasets[0].manifest)}",
+        head,
+    ]
+    for c, n, e in zip(comps, tokens, epochs, strict=True):
+        share = c.weight / total_weight
+        lines.append(
+            f"  {c.dataset} [{c.split}]: {n} tokens, weight {c.weight} ({share:.1%} of rows), {e:.3g} epochs of it"
+        )
+    return lines
