@@ -444,8 +444,12 @@ class MixtureStream:
 
     def state_after(self, batch: Batch) -> MixtureState:
         """The state once ``batch`` has been consumed (for loaders that prefetch)."""
-        moved = self if batch.epoch == self.epoch else self._with(batch.epoch, 0)
-        return MixtureState(batch.epoch, batch.step + 1, self.config, moved.positions(batch.step + 1))
+        return self.state_at(batch.epoch, batch.step + 1)
+
+    def state_at(self, epoch: int, step: int) -> MixtureState:
+        """The state standing before ``step`` of ``epoch``."""
+        moved = self if epoch == self.epoch else self._with(epoch, 0)
+        return MixtureState(epoch, step, self.config, moved.positions(step))
 
     def _with(self, epoch: int, start_step: int) -> MixtureStream:
         out = MixtureStream(

@@ -279,3 +279,28 @@ def test_a_mixture_file_with_an_unknown_key_is_refused(tmp_path: Path) -> None:
     path.write_text('[[components]]\ndataset = "x"\nweigth = 2\n', encoding="utf-8")
     with pytest.raises(StreamError, match="weigth"):
         read_mixture(path)
+
+
+def test_the_torch_adapter_streams_a_mixture_with_two_workers_and_resumes(
+    two_datasets: tuple[Path, Path], tmp_path: Path
+) -> None:
+    """TorchBatches.from_mixture with two loader workers yields the numpy mixture stream; resume skips ahead."""
+    torch = pytest.importorskip("torch")
+    from torch.utils.data import DataLoader
+
+    from seqpipe.torch_data import TorchBatches
+
+    one, _ = two_datasets
+    mixture = Mixture([Component(str(one), "train", 2), Component(str(one), "validation", 1)])
+    settings = {"batch_size": 3, "window": 5, "seed": 4, "steps_per_epoch": 7, "rank": 0, "world_size": 1}
+    ds = TorchBatches.from_mixture(mixture, **settings)
+    items = list(DataLoader(ds, batch_size=None, num_workers=2))
+    expected = list(mixture.open().batches(**settings))
+    assert len(items) == len(expected) == 7
+    for item, batch in zip(items, expected, strict=True):
+        assert torch.equal(item["inputs"], torch.from_numpy(batch.inputs))
+        assert torch.equal(item["targets"], torch.from_numpy(batch.targets))
+    ds.resume(ds.state_after(items[3]))
+    rest = list(DataLoader(ds, batch_size=None, num_workers=0))
+    assert [int(i["step"]) for i in rest] == [4, 5, 6]
+    assert torch.equal(rest[0]["inputs"], torch.from_numpy(expected[4].inputs))
