@@ -47,6 +47,7 @@ if TYPE_CHECKING:
 MAX_PERIOD: Final = 1 << 16  # weights (after dividing by their gcd) may sum to at most this: one table row each
 MIXTURE_FORMAT: Final = "seqpipe.mixture/1"
 _SEED_DOMAIN: Final = "seqpipe.mixture.component-seed"
+_WALKER_PAGE: Final = 4096  # windows of a component's order computed at once (windows._PAGE_WINDOWS)
 
 
 def _check(fn: Any, key: str, *args: Any, **kwargs: Any) -> Any:
@@ -295,6 +296,7 @@ class MixtureStream:
         self.dtype: np.dtype[Any] = np.dtype(dtype)
         self.global_batch: int = self.batch_size * self.world_size
         self.windows = [self._windows_of(i, s) for i, s in enumerate(self.streams)]
+        self._joined, self._bases = self._join()
         default_steps = max(1, sum(self.windows) // self.global_batch)
         self.steps_per_epoch: int = _check(
             parse_int, "steps_per_epoch", default_steps if steps_per_epoch is None else steps_per_epoch, minimum=1
@@ -319,6 +321,23 @@ class MixtureStream:
                 key="window",
             )
         return count
+
+    def _join(self) -> tuple[TokenStream, np.ndarray]:
+        """All components' chunks as one stream (views, no copy) and each component's first offset."""
+        kinds = sorted({str(s.dtype) for s in self.streams})
+        if len(kinds) > 1:
+            raise StreamError(
+                f"streams: components store ids as {' and '.join(kinds)}; mix only datasets built with one "
+                "vocabulary (they then share one id type)",
+                key="streams",
+            )
+        bases = np.zeros(len(self.streams), np.int64)
+        np.cumsum([len(s) for s in self.streams[:-1]], out=bases[1:])
+        chunks = [c for s in self.streams for c in s.chunks]
+        docs = None
+        if self.boundaries:  # offsets of every document, shifted to the joined stream (only when asked for)
+            docs = np.concatenate([s.doc_starts + b for s, b in zip(self.streams, bases.tolist(), strict=True)])
+        return TokenStream(chunks, doc_starts=docs, dtype=self.streams[0].dtype), bases
 
     # --- identity --------------------------------------------------------------------------------
     @property
@@ -367,12 +386,16 @@ class MixtureStream:
         return tuple((int(k) // r, int(k) % r) for k, r in zip(before, self.windows, strict=True))
 
     def _walker(self, i: int, epoch: int) -> BatchStream:
-        """Component ``i``'s single-split random order at ``epoch`` (batch size 1), kept per component."""
+        """Component ``i``'s single-split random order at ``epoch``, kept per component."""
         walker = self._walkers.get(i)
         if walker is None or walker.epoch != epoch:
+            # The window order does not depend on the batch size; only the page of the permutation a
+            # BatchStream computes at once does (eight batches, growing to _WALKER_PAGE). A component
+            # takes few rows per batch, so small pages would recompute the permutation every few
+            # batches: the walker's batch size makes every page full size from the start.
             walker = BatchStream(
                 self.streams[i],
-                batch_size=1,
+                batch_size=_WALKER_PAGE // 8,
                 window=self.window,
                 seed=self.seeds[i],
                 epoch=epoch,
@@ -399,24 +422,24 @@ class MixtureStream:
             raise StreamError(f"step: expected 0 <= step < {len(self)}, got {step!r}", key="step")
         step = int(step)
         labels = self.components_for(step)
-        before = self.rows_before(self._first_row(step))
+        first = self._first_row(step)
+        before = self.rows_before(first)
+        counts = self.rows_before(first + self.batch_size) - before
         width = self.window + 1
-        block = np.empty((self.batch_size, width), self.dtype)
         starts = np.empty(self.batch_size, np.int64)
-        mask = np.empty((self.batch_size, width - 1), bool) if self.boundaries else None
-        for i in np.unique(labels).tolist():
-            where = np.flatnonzero(labels == i)
-            own = self.component_starts(i, int(before[i]), len(where))
-            stream = self.streams[i]
-            block[where] = stream.gather(own, width, stream.dtype)
-            starts[where] = own
-            if mask is not None:
-                mask[where] = stream.boundary_mask(own, width)
+        for i in np.flatnonzero(counts).tolist():
+            where = np.flatnonzero(labels == i) if counts[i] < self.batch_size else slice(None)
+            starts[where] = self.component_starts(i, int(before[i]), int(counts[i]))
+        # One gather over all components laid end to end (no window crosses a component's end),
+        # so a mixture batch costs one gather in row order, like a single split's.
+        joined = starts + self._bases[labels]
+        block = self._joined.gather(joined, width, self._joined.dtype)
+        mask = self._joined.boundary_mask(joined, width) if self.boundaries else None
         return Batch(
             step=step,
             epoch=self.epoch,
-            inputs=np.ascontiguousarray(block[:, :-1]),
-            targets=np.ascontiguousarray(block[:, 1:]),
+            inputs=block[:, :-1].astype(self.dtype, order="C"),
+            targets=block[:, 1:].astype(self.dtype, order="C"),
             starts=starts,
             fresh=True,
             mask=mask,
