@@ -47,6 +47,7 @@ if TYPE_CHECKING:
 MAX_PERIOD: Final = 1 << 16  # weights (after dividing by their gcd) may sum to at most this: one table row each
 MIXTURE_FORMAT: Final = "seqpipe.mixture/1"
 _SEED_DOMAIN: Final = "seqpipe.mixture.component-seed"
+_LAYOUTS_KEPT: Final = 1024  # batch layouts kept per stream (one per phase of the period a batch starts at)
 _WALKER_PAGE: Final = 4096  # windows of a component's order computed at once (windows._PAGE_WINDOWS)
 
 
@@ -305,6 +306,7 @@ class MixtureStream:
         self.start_step: int = _check(parse_int, "start_step", start_step, minimum=0, maximum=self.steps_per_epoch)
         self._next = self.start_step
         self._walkers: dict[int, BatchStream] = {}
+        self._layouts: dict[int, tuple[list[tuple[int, int]], np.ndarray, np.ndarray]] = {}
 
     def _windows_of(self, i: int, stream: TokenStream) -> int:
         if not isinstance(stream, TokenStream):
@@ -336,7 +338,10 @@ class MixtureStream:
         chunks = [c for s in self.streams for c in s.chunks]
         docs = None
         if self.boundaries:  # offsets of every document, shifted to the joined stream (only when asked for)
-            docs = np.concatenate([s.doc_starts + b for s, b in zip(self.streams, bases.tolist(), strict=True)])
+            # _windows_of has checked that every component has doc_starts when boundaries are asked for
+            docs = np.concatenate(
+                [np.asarray(s.doc_starts) + b for s, b in zip(self.streams, bases.tolist(), strict=True)]
+            )
         return TokenStream(chunks, doc_starts=docs, dtype=self.streams[0].dtype), bases
 
     # --- identity --------------------------------------------------------------------------------
@@ -380,6 +385,24 @@ class MixtureStream:
         rows = self._first_row(step) + np.arange(self.batch_size, dtype=np.int64)
         return np.asarray(self.owner[rows % self.period], np.int64)
 
+    def _layout(self, phase: int) -> tuple[list[tuple[int, int]], np.ndarray, np.ndarray]:
+        """For a batch whose first row sits at ``phase`` of the period: (component, rows) pairs in
+        component order, the permutation from component order to row order, each row's offset in the
+        joined stream. It depends on the phase alone, so it is kept (a few entries for usual weights)."""
+        cached = self._layouts.get(phase)
+        if cached is None:
+            labels = self.owner[(phase + np.arange(self.batch_size, dtype=np.int64)) % self.period]
+            by_component = np.argsort(labels, kind="stable")
+            counts = np.bincount(labels, minlength=len(self.streams))
+            parts = [(i, int(c)) for i, c in enumerate(counts.tolist()) if c]
+            order = np.empty(self.batch_size, np.int64)
+            order[by_component] = np.arange(self.batch_size)
+            cached = (parts, order, self._bases[labels])
+            if len(self._layouts) >= _LAYOUTS_KEPT:
+                self._layouts.clear()
+            self._layouts[phase] = cached
+        return cached
+
     def positions(self, step: int) -> tuple[tuple[int, int], ...]:
         """Per component: (component epoch, window index in it) of its next row at ``step`` of this epoch."""
         before = self.rows_before((self.epoch * self.steps_per_epoch + step) * self.global_batch)
@@ -421,18 +444,16 @@ class MixtureStream:
         if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or not 0 <= step < len(self):
             raise StreamError(f"step: expected 0 <= step < {len(self)}, got {step!r}", key="step")
         step = int(step)
-        labels = self.components_for(step)
         first = self._first_row(step)
         before = self.rows_before(first)
-        counts = self.rows_before(first + self.batch_size) - before
-        width = self.window + 1
-        starts = np.empty(self.batch_size, np.int64)
-        for i in np.flatnonzero(counts).tolist():
-            where = np.flatnonzero(labels == i) if counts[i] < self.batch_size else slice(None)
-            starts[where] = self.component_starts(i, int(before[i]), int(counts[i]))
+        parts, order, bases = self._layout(first % self.period)
+        # Each component's rows in its own order, laid out by component, then put in row order.
+        own = [self.component_starts(i, int(before[i]), count) for i, count in parts]
+        starts = (own[0] if len(own) == 1 else np.concatenate(own))[order]
         # One gather over all components laid end to end (no window crosses a component's end),
         # so a mixture batch costs one gather in row order, like a single split's.
-        joined = starts + self._bases[labels]
+        joined = starts + bases
+        width = self.window + 1
         block = self._joined.gather(joined, width, self._joined.dtype)
         mask = self._joined.boundary_mask(joined, width) if self.boundaries else None
         return Batch(
