@@ -240,7 +240,12 @@ class MixtureState:
         for key in ("epoch", "step"):
             if key not in table:
                 raise StreamError(f"mixture_state.{key}: missing", key=key)
-        positions = tuple((int(e), int(k)) for e, k in table.get("positions", ()))
+        try:
+            positions = tuple((int(e), int(k)) for e, k in table.get("positions", ()))
+        except (TypeError, ValueError) as exc:
+            raise StreamError(
+                f"mixture_state.positions: expected [epoch, index] pairs ({exc})", key="positions"
+            ) from exc
         return cls(table["epoch"], table["step"], str(table.get("config", "")), positions)
 
 
@@ -294,7 +299,12 @@ class MixtureStream:
         self.world_size: int = _check(parse_int, "world_size", world_size, minimum=1)
         self.rank: int = _check(parse_int, "rank", rank, minimum=0, maximum=self.world_size - 1)
         self.boundaries = bool(boundaries)
-        self.dtype: np.dtype[Any] = np.dtype(dtype)
+        try:
+            self.dtype: np.dtype[Any] = np.dtype(dtype)
+        except TypeError as exc:
+            raise StreamError(f"dtype: not a numpy dtype: {dtype!r}", key="dtype") from exc
+        if not np.issubdtype(self.dtype, np.integer):
+            raise StreamError(f"dtype: expected an integer type, got {self.dtype}", key="dtype")
         self.global_batch: int = self.batch_size * self.world_size
         self.windows = [self._windows_of(i, s) for i, s in enumerate(self.streams)]
         self._joined, self._bases = self._join()
@@ -526,7 +536,14 @@ class MixtureStream:
             )
         if state.step > len(self):
             raise StreamError(f"resume: step {state.step} is past the end of an epoch ({len(self)} steps)", key="step")
-        return self._with(state.epoch, state.step)
+        moved = self._with(state.epoch, state.step)
+        if isinstance(state, MixtureState) and state.positions and state.positions != moved.positions(state.step):
+            raise StreamError(
+                "resume: the state's component positions do not follow from its epoch and step; "
+                "the state was edited or saved by another version",
+                key="positions",
+            )
+        return moved
 
     def next_epoch(self) -> MixtureStream:
         """The same stream at the start of the following epoch."""
@@ -540,7 +557,7 @@ class MixtureStream:
 
 def is_mixture_file(path: str | Path) -> bool:
     """True for a path naming a mixture file (``.toml``) rather than a dataset directory or URI."""
-    return str(path).endswith(".toml") and Path(path).is_file()
+    return str(path).endswith(".toml")
 
 
 def summary_lines(

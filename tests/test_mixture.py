@@ -304,3 +304,26 @@ def test_the_torch_adapter_streams_a_mixture_with_two_workers_and_resumes(
     rest = list(DataLoader(ds, batch_size=None, num_workers=0))
     assert [int(i["step"]) for i in rest] == [4, 5, 6]
     assert torch.equal(rest[0]["inputs"], torch.from_numpy(expected[4].inputs))
+
+
+def test_boundary_masks_are_each_components_own() -> None:
+    """With boundaries, each row's mask is its component's boundary mask at that row's start."""
+    values = [np.arange(n, dtype=np.int64) + i * 10**6 for i, n in enumerate([200, 150])]
+    docs = [np.arange(0, 200, 17), np.arange(0, 150, 11)]
+    streams = [TokenStream([v], doc_starts=d) for v, d in zip(values, docs, strict=True)]
+    ms = MixtureStream(streams, [1, 2], batch_size=3, window=6, seed=5, boundaries=True)
+    for step in range(len(ms)):
+        b = ms.batch(step)
+        assert b.mask is not None
+        for row, label in enumerate(ms.components_for(step).tolist()):
+            own = streams[label].boundary_mask(b.starts[row : row + 1], 7)
+            assert np.array_equal(b.mask[row], own[0])
+
+
+def test_an_edited_state_is_refused() -> None:
+    """A state whose component positions do not follow from its epoch and step is refused."""
+    ms = MixtureStream(_streams([300, 300]), [1, 1], batch_size=2, window=4)
+    data = ms.state_at(0, 3).to_dict()
+    data["positions"] = [[0, 0], [0, 0]]
+    with pytest.raises(StreamError, match="positions"):
+        ms.resume(MixtureState.from_dict(data))
