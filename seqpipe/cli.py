@@ -197,7 +197,7 @@ def cmd_batches(args: argparse.Namespace) -> int:
     if is_mixture_file(args.directory):
         return _mixture_batches(args)
     ds = open_dataset(args.directory, verify=args.verify)
-    split = ds.split(args.split)
+    split = ds.split(args.split or "train")
     try:
         stream = split.batches(
             batch_size=args.batch_size,
@@ -221,6 +221,8 @@ def _mixture_batches(args: argparse.Namespace) -> int:
     from seqpipe.batch_output import print_batches
     from seqpipe.mixture import read_mixture
 
+    if args.split is not None:
+        raise StreamError("--split: a mixture file names each component's split; leave --split out", key="split")
     if args.keep_last:
         raise StreamError(
             "--keep-last: a mixture has no last, smaller batch (its epochs have no tail)", key="keep_last"
@@ -447,7 +449,7 @@ def _add_reading(sub: Subparsers[argparse.ArgumentParser]) -> None:
         description="Show or fingerprint the batch stream of a split, or of a mixture file (MIXTURE.toml).",
     )
     p.add_argument("directory", help=URI_DIR_HELP + "; or a mixture file MIXTURE.toml (its components name the splits)")
-    p.add_argument("--split", default="train", help="split to read (default: train)")
+    p.add_argument("--split", default=None, help="split to read (default: train; not with a mixture file)")
     p.add_argument("--batch-size", type=int, required=True, metavar="B", help="rows per batch on this rank")
     p.add_argument(
         "--window", type=int, required=True, metavar="T", help="window length: tokens per row (inputs and targets)"

@@ -327,3 +327,24 @@ def test_an_edited_state_is_refused() -> None:
     data["positions"] = [[0, 0], [0, 0]]
     with pytest.raises(StreamError, match="positions"):
         ms.resume(MixtureState.from_dict(data))
+
+
+def test_epochs_per_mixture_epoch_count_the_rows_each_component_gets() -> None:
+    """One mixture epoch reads, of component i, the rows the schedule gives it divided by its windows per epoch."""
+    ms = MixtureStream(_streams([1000, 200]), [1, 1], batch_size=4, window=9, steps_per_epoch=30)
+    rows = [0, 0]
+    for step in range(len(ms)):
+        for label in ms.components_for(step).tolist():
+            rows[label] += 1
+    assert rows == [60, 60]
+    assert ms.epochs_per_mixture_epoch() == [60 / ms.windows[0], 60 / ms.windows[1]]
+    assert ms.windows == [(1000 - 9) // 9, (200 - 9) // 9]
+
+
+def test_the_command_line_refuses_split_with_a_mixture_file(two_datasets: tuple[Path, Path], tmp_path: Path) -> None:
+    """--split with a mixture file is a usage error naming the option (the file names the splits)."""
+    one, _ = two_datasets
+    path = tmp_path / "mix.toml"
+    path.write_text(f'[[components]]\ndataset = "{one}"\n', encoding="utf-8")
+    done = run_cli(["batches", str(path), "--batch-size", "2", "--window", "4", "--split", "train", "--limit", "1"])
+    assert done.returncode != 0 and "--split" in done.stderr
