@@ -10,6 +10,7 @@ if TYPE_CHECKING:
     import numpy as np
 
     from seqpipe.dataset import Dataset
+    from seqpipe.mixture import MixtureStream
     from seqpipe.tokenizers.base import Encoder
     from seqpipe.windows import Batch, BatchStream
 
@@ -27,7 +28,7 @@ _ESCAPES: Final[dict[int, str]] = {
 }
 
 
-def _selected(stream: BatchStream, limit: int | None) -> Iterator[Batch]:
+def _selected(stream: BatchStream | MixtureStream, limit: int | None) -> Iterator[Batch]:
     start = stream.start_step
     end = len(stream) if limit is None else min(len(stream), start + limit)
     for step in range(start, end):
@@ -66,7 +67,7 @@ def _print_jsonl(batches: Iterator[Batch]) -> None:
         print(json.dumps(row))
 
 
-def _print_text(ds: Dataset, stream: BatchStream, batches: Iterator[Batch]) -> None:
+def _print_text(ds: Dataset, stream: BatchStream | MixtureStream, batches: Iterator[Batch]) -> None:
     print(
         f"{len(stream)} batches per epoch ({stream.order} order, window {stream.window}); "
         f"showing from step {stream.start_step}"
@@ -86,7 +87,7 @@ def _print_text(ds: Dataset, stream: BatchStream, batches: Iterator[Batch]) -> N
                 print(f"    positions: {' '.join(map(str, b.doc_position[r].tolist()))}")
 
 
-def print_batches(ds: Dataset, stream: BatchStream, *, limit: int | None, fmt: str) -> None:
+def print_batches(ds: Dataset, stream: BatchStream | MixtureStream, *, limit: int | None, fmt: str) -> None:
     """Print at most ``limit`` batches of ``stream`` from its ``start_step`` in format ``fmt``.
 
     ``text`` shows decoded tokens per row (and, with boundaries, where documents start),

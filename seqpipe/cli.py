@@ -127,6 +127,14 @@ def _steps(steps: list[Any]) -> str:
 
 def cmd_inspect(args: argparse.Namespace) -> int:
     from seqpipe.dataset import open_dataset
+    from seqpipe.mixture import is_mixture_file, read_mixture, summary_lines
+
+    if is_mixture_file(args.directory):
+        lines = summary_lines(
+            read_mixture(args.directory).open(), batch_size=args.batch_size, window=args.window, steps=args.steps
+        )
+        print("\n".join(lines))
+        return EXIT_OK
 
     ds = open_dataset(args.directory)
     m = ds.manifest
@@ -217,9 +225,12 @@ def _option_error(exc: StreamError) -> StreamError:
 def cmd_batches(args: argparse.Namespace) -> int:
     from seqpipe.batch_output import print_batches
     from seqpipe.dataset import open_dataset
+    from seqpipe.mixture import is_mixture_file
 
+    if is_mixture_file(args.directory):
+        return _mixture_batches(args)
     ds = open_dataset(args.directory, verify=args.verify)
-    split = ds.split(args.split)
+    split = ds.split(args.split or "train")
     try:
         stream = split.batches(
             batch_size=args.batch_size,
@@ -237,25 +248,54 @@ def cmd_batches(args: argparse.Namespace) -> int:
     except StreamError as exc:
         raise _option_error(exc) from None
     if not len(stream):
-        raise _no_batches(args, split.num_tokens)
+        raise _no_batches(args, split.name, split.num_tokens)
     print_batches(ds, stream, limit=args.limit, fmt=args.format)
     return EXIT_OK
 
 
-def _no_batches(args: argparse.Namespace, tokens: int) -> StreamError:
+def _no_batches(args: argparse.Namespace, name: str, tokens: int) -> StreamError:
     """The error for a stream without a single batch: an epoch of none is a mistake, not a result."""
     if args.window + 1 > tokens:
         return StreamError(
-            f"--window: {args.window} tokens (plus the one target beyond) is longer than split {args.split!r}, "
+            f"--window: {args.window} tokens (plus the one target beyond) is longer than split {name!r}, "
             f"which holds {tokens} tokens; choose a window of at most {max(tokens - 1, 0)}",
             key="window",
         )
     return StreamError(
-        f"--batch-size: split {args.split!r} ({tokens} tokens) gives no full batch of {args.batch_size} "
+        f"--batch-size: split {name!r} ({tokens} tokens) gives no full batch of {args.batch_size} "
         f"windows of {args.window} tokens on {args.world_size} rank(s); lower --batch-size or --window, "
         "or pass --keep-last",
         key="batch_size",
     )
+
+
+def _mixture_batches(args: argparse.Namespace) -> int:
+    from seqpipe.batch_output import print_batches
+    from seqpipe.mixture import read_mixture
+
+    if args.split is not None:
+        raise StreamError("--split: a mixture file names each component's split; leave --split out", key="split")
+    if args.keep_last:
+        raise StreamError(
+            "--keep-last: a mixture has no last, smaller batch (its epochs have no tail)", key="keep_last"
+        )
+    opened = read_mixture(args.directory).open(verify=args.verify)
+    try:
+        stream = opened.batches(
+            batch_size=args.batch_size,
+            window=args.window,
+            order=args.order,
+            seed=args.seed,
+            epoch=args.epoch,
+            rank=args.rank,
+            world_size=args.world_size,
+            boundaries=args.boundaries,
+            start_step=args.start_step,
+        )
+    except StreamError as exc:
+        raise _option_error(exc) from None
+    print_batches(opened.datasets[0], stream, limit=args.limit, fmt=args.format)
+    return EXIT_OK
 
 
 def cmd_report(args: argparse.Namespace) -> int:
@@ -418,9 +458,16 @@ def _add_checks(sub: Subparsers[argparse.ArgumentParser]) -> None:
     p.add_argument("--expect", metavar="FINGERPRINT", help="the dataset fingerprint must equal this hex")
     p.set_defaults(fn=cmd_verify)
 
-    p = sub.add_parser("inspect", help="show what a dataset's manifest holds", description="Show a dataset's manifest.")
+    p = sub.add_parser(
+        "inspect",
+        help="show what a dataset's manifest (or a mixture file) holds",
+        description="Show a dataset's manifest, or a mixture file's components (MIXTURE.toml).",
+    )
     p.add_argument("directory", help=URI_DIR_HELP)
     p.add_argument("--json", action="store_true", help="print the whole manifest as JSON")
+    p.add_argument("--batch-size", type=positive_int, metavar="B", help="mixture file: global batch for exact epochs")
+    p.add_argument("--window", type=positive_int, metavar="T", help="mixture file: window length for exact epochs")
+    p.add_argument("--steps", type=positive_int, metavar="N", help="mixture file: steps in one mixture epoch")
     p.set_defaults(fn=cmd_inspect)
 
 
@@ -454,11 +501,11 @@ def _add_reading(sub: Subparsers[argparse.ArgumentParser]) -> None:
 
     p = sub.add_parser(
         "batches",
-        help="show or fingerprint the batch stream of a split",
-        description="Show or fingerprint the batch stream of a split.",
+        help="show or fingerprint the batch stream of a split or a mixture",
+        description="Show or fingerprint the batch stream of a split, or of a mixture file (MIXTURE.toml).",
     )
-    p.add_argument("directory", help=URI_DIR_HELP)
-    p.add_argument("--split", default="train", help="split to read (default: train)")
+    p.add_argument("directory", help=URI_DIR_HELP + "; or a mixture file MIXTURE.toml (its components name the splits)")
+    p.add_argument("--split", default=None, help="split to read (default: train; not with a mixture file)")
     p.add_argument("--batch-size", type=int, required=True, metavar="B", help="rows per batch on this rank")
     p.add_argument(
         "--window", type=int, required=True, metavar="T", help="window length: tokens per row (inputs and targets)"

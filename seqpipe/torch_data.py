@@ -35,10 +35,15 @@ import torch.distributed as dist
 from torch.utils.data import IterableDataset, get_worker_info
 
 from seqpipe.errors import StreamError
+from seqpipe.mixture import Mixture, MixtureState, MixtureStream, OpenMixture
 from seqpipe.stream import TokenStream
 from seqpipe.windows import Batch, BatchStream, StreamState
 
-StreamSource = TokenStream | Callable[[], TokenStream]
+StreamSource = TokenStream | Callable[[], TokenStream | OpenMixture]
+
+
+def _open_mixture(mixture: Mixture) -> OpenMixture:
+    return mixture.open()
 
 
 def _split_stream(directory: str, split: str) -> TokenStream:
@@ -75,6 +80,25 @@ class TorchBatches(IterableDataset[Any]):
         ds.split(split)  # refuse an unknown split here, not in a worker
         factory = functools.partial(_split_stream, str(directory), split)
         return cls(factory, stream_key=f"{ds.fingerprint}:{split}", **kwargs)
+
+    @classmethod
+    def from_mixture(cls, mixture: str | Path | Mixture, **kwargs: Any) -> TorchBatches:
+        """Batches of a mixture (a :class:`Mixture` or a mixture file); workers open the datasets
+        themselves. Keyword arguments are those of :class:`MixtureStream` (``rank``/``world_size``
+        default as for every TorchBatches)."""
+        from seqpipe.mixture import read_mixture
+
+        mix = mixture if isinstance(mixture, Mixture) else read_mixture(mixture)
+        mix.open()  # refuse different vocabularies or unknown splits here, not in a worker
+        steps = kwargs.pop("steps_per_epoch", None)
+        if kwargs.get("keep_last"):
+            raise StreamError(
+                "keep_last: a mixture has no last, smaller batch (its epochs have no tail)", key="keep_last"
+            )
+        out = cls(functools.partial(_open_mixture, mix), **kwargs)
+        out._mixture_steps = steps
+        out.batch_stream()  # validate the settings now rather than inside a worker
+        return out
 
     def __init__(
         self,
@@ -114,7 +138,9 @@ class TorchBatches(IterableDataset[Any]):
             "start_step": start_step,
         }
         self.as_tuple = bool(as_tuple)
-        self._cache: BatchStream | None = None
+        self._cache: BatchStream | MixtureStream | None = None
+        self._made: TokenStream | OpenMixture | None = None  # what the source gave, once per process
+        self._mixture_steps: int | None = None
         # (epoch, start step) in shared memory: loader workers keep their own copy of this object
         # (persistent_workers=True keeps it across passes), so set_epoch/resume in the main process
         # reach them only through memory both sides see; each __iter__ reads it before the first batch.
@@ -124,14 +150,22 @@ class TorchBatches(IterableDataset[Any]):
             self.batch_stream()  # validate the settings now rather than inside a worker
 
     # --- the underlying numpy stream -----------------------------------------------------------------
-    def batch_stream(self) -> BatchStream:
-        """The BatchStream this dataset reads (built on first use in each process)."""
+    def batch_stream(self) -> BatchStream | MixtureStream:
+        """The BatchStream (or MixtureStream) this dataset reads (built on first use in each process)."""
         if self._cache is None:
-            stream = self._source if isinstance(self._source, TokenStream) else self._source()
-            if not isinstance(stream, TokenStream):
-                raise StreamError(f"source: the factory returned {type(stream).__name__}, not a TokenStream")
-            self._cache = BatchStream(stream, **self._settings)
+            self._cache = self._stream_at(self._settings)
         return self._cache
+
+    def _stream_at(self, settings: dict[str, Any]) -> BatchStream | MixtureStream:
+        if self._made is None:
+            made = self._source if isinstance(self._source, TokenStream) else self._source()
+            if not isinstance(made, (TokenStream, OpenMixture)):
+                raise StreamError(f"source: the factory returned {type(made).__name__}, not a TokenStream")
+            self._made = made
+        if isinstance(self._made, OpenMixture):
+            kept = {k: v for k, v in settings.items() if k not in ("keep_last", "stream_key")}
+            return self._made.batches(steps_per_epoch=self._mixture_steps, **kept)
+        return BatchStream(self._made, **settings)
 
     @property
     def rank(self) -> int:
@@ -144,7 +178,7 @@ class TorchBatches(IterableDataset[Any]):
     def __getstate__(self) -> dict[str, Any]:
         state = self.__dict__.copy()
         if not isinstance(self._source, TokenStream):
-            state["_cache"] = None  # workers rebuild from the factory instead of receiving the arrays
+            state["_cache"] = state["_made"] = None  # workers rebuild from the factory instead of receiving arrays
         return state
 
     def __len__(self) -> int:
@@ -156,9 +190,15 @@ class TorchBatches(IterableDataset[Any]):
         """Start the next iteration at step 0 of ``epoch`` (call before each loader pass)."""
         self._move(epoch, 0)
 
-    def resume(self, state: StreamState) -> None:
+    def resume(self, state: StreamState | MixtureState) -> None:
         """Start the next iteration at ``state`` (validated like :meth:`BatchStream.resume`)."""
-        moved = self.batch_stream().resume(state)
+        bs = self.batch_stream()
+        if isinstance(bs, MixtureStream):
+            moved: BatchStream | MixtureStream = bs.resume(state)
+        elif isinstance(state, MixtureState):
+            raise StreamError("resume: the state was saved by a mixture stream, not by one split; resume a mixture")
+        else:
+            moved = bs.resume(state)
         self._move(moved.epoch, moved.start_step)
 
     def _move(self, epoch: int, start_step: int) -> None:
@@ -170,15 +210,16 @@ class TorchBatches(IterableDataset[Any]):
         if (self._settings["epoch"], self._settings["start_step"]) == (epoch, start_step):
             return
         settings = {**self._settings, "epoch": epoch, "start_step": start_step}
-        stream = self.batch_stream().stream
-        self._cache = BatchStream(stream, **settings)  # validates before anything changes
+        self._cache = self._stream_at(settings)  # validates before anything changes
         self._settings = settings
 
-    def state_after(self, item: dict[str, Any] | Batch) -> StreamState:
+    def state_after(self, item: dict[str, Any] | Batch) -> StreamState | MixtureState:
         """The state once the loader item (dict form) or numpy batch has been consumed."""
         bs = self.batch_stream()
         if isinstance(item, Batch):
             return bs.state_after(item)
+        if isinstance(bs, MixtureStream):
+            return bs.state_at(int(item["epoch"]), int(item["step"]) + 1)
         return StreamState(epoch=int(item["epoch"]), step=int(item["step"]) + 1, config=bs.config)
 
     # --- iteration -----------------------------------------------------------------------------------
