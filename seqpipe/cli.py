@@ -311,6 +311,8 @@ def cmd_report(args: argparse.Namespace) -> int:
     else:
         print(f"report written to {out} (report.md, report.json)")
         print(f"plots skipped: matplotlib is not installed ({PLOTS_INSTALL} in a seqpipe checkout)", file=sys.stderr)
+    if "vocabulary_reuse" in report:
+        print(f"vocabulary reused from {report['vocabulary_reuse']['dataset']} (report.md: unknown rate and coverage)")
     return EXIT_OK
 
 

@@ -137,6 +137,9 @@ def collect(
             report["splits"][name] = stats.split_stats(s, counts[name], roles, ranking, zipf)
             curves[name] = stats.RankCurve(counts[name][own], int(s.content_lengths.sum()), fit)
             bar.update()
+        reuse = _vocabulary_reuse(dataset, counts, loaded, roles)
+        if reuse is not None:
+            report["vocabulary_reuse"] = reuse
         if not has_train:
             notes.append(
                 "The dataset has no 'train' split: coverage, n-grams, leakage and perplexities are not reported."
@@ -156,6 +159,24 @@ def collect(
                 notes += _add_per_text(report["perplexity"], {name: _text_sizes(dataset, name) for name in others})
     report["notes"] = notes
     return report, curves
+
+
+def _vocabulary_reuse(
+    dataset: DatasetLike, counts: dict[str, np.ndarray], loaded: dict[str, SplitTokens], roles: Roles
+) -> dict[str, Any] | None:
+    """For a dataset built with ``[vocabulary] reuse_from``: which dataset the vocabulary came from
+    and, per split, the unknown rate and the share of the vocabulary that occurs (None otherwise)."""
+    manifest = getattr(dataset, "manifest", None) or {}
+    source = manifest.get("vocabulary", {}).get("reused_from")
+    if not isinstance(source, dict):
+        return None
+    return {
+        "dataset": source.get("dataset"),
+        "fingerprint": source.get("fingerprint"),
+        "splits": {
+            name: stats.vocabulary_use(counts[name], roles, int(s.content_lengths.sum())) for name, s in loaded.items()
+        },
+    }
 
 
 def _leakage(
@@ -265,7 +286,9 @@ def corpus_report(
     train/validation/test leakage (duplicated documents, shared ``ngram_n``-grams);
     baseline perplexities (uniform, add-``add_k`` uni/bi/trigram, interpolated
     Kneser-Ney bi/trigram with ``kn_discount``). ``report["perplexity"]["predicted"]``
-    states exactly which tokens are predicted.
+    states exactly which tokens are predicted. For a dataset that reused another's
+    vocabulary, ``report["vocabulary_reuse"]`` names that dataset and gives per split the
+    unknown rate and the share of the vocabulary's non-reserved entries that occur.
     """
     return collect(dataset, ngram_n=ngram_n, top_k=top_k, add_k=add_k, kn_discount=kn_discount, progress=progress)[0]
 

@@ -140,6 +140,25 @@ def _ngrams(report: dict[str, Any]) -> list[str]:
     return lines
 
 
+def _vocabulary_reuse(report: dict[str, Any]) -> list[str]:
+    reuse = report.get("vocabulary_reuse")
+    if not reuse:
+        return []
+    lines = [
+        "## Reused vocabulary",
+        "",
+        f"The vocabulary was reused from the dataset `{reuse['dataset']}` (fingerprint `{reuse['fingerprint']}`): "
+        "its ids mean what they mean there. Coverage: the share of the vocabulary's non-reserved entries that "
+        "occur in the split's content tokens.",
+        "",
+    ]
+    rows = [
+        [name, _pct(s["unknown_rate"]), f"{_pct(s['coverage'])} ({_num(s['entries_seen'])} of {_num(s['entries'])})"]
+        for name, s in reuse["splits"].items()
+    ]
+    return lines + _table(["split", "unknown rate", "vocabulary coverage"], rows)
+
+
 def _leakage(report: dict[str, Any]) -> list[str]:
     leak = report.get("leakage")
     if not leak:
@@ -244,7 +263,7 @@ def to_markdown(report: dict[str, Any], *, plots_drawn: bool) -> str:
         f"(reserved: {', '.join(ds['reserved'])}).",
         "",
     ]
-    lines += _splits(report)
+    lines += _splits(report) + _vocabulary_reuse(report)
     lines += ["## Rank-frequency", ""]
     lines += ["![rank-frequency](rank_frequency.png)", ""] if plots_drawn else [PLOTS_HINT, ""]
     lines += _ngrams(report) + _leakage(report) + _perplexity(report)

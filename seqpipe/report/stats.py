@@ -108,3 +108,17 @@ def split_stats(
         "coverage": coverage,
         "zipf": zipf,
     }
+
+
+def vocabulary_use(counts: np.ndarray, roles: Roles, content: int) -> dict[str, Any]:
+    """How a split uses its vocabulary: the unknown rate of its content tokens and the share of the
+    vocabulary's non-reserved entries that occur in it (``entries_seen`` of ``entries``)."""
+    entries = roles.vocab_size - roles.n_reserved
+    seen = int(np.count_nonzero(counts[roles.n_reserved :]))
+    unknown = int(counts[roles.unknown]) if roles.unknown is not None else 0
+    return {
+        "unknown_rate": unknown / content if content else None,
+        "entries": entries,
+        "entries_seen": seen,
+        "coverage": seen / entries if entries else None,
+    }
