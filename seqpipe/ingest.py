@@ -669,10 +669,14 @@ class ShardTask:
     pieces: tuple[tuple[str, int, int], ...]  # (encoded file, start, end) in stream order
     compression: str | None
     dtype: str
+    # train shards: the vocabulary size, and the task also returns how often each id occurs
+    # (``id_counts``), counted here while the ids are in memory rather than read back by the driver
+    count_ids: int | None = None
 
 
 def write_shard_task(task: ShardTask) -> dict[str, Any]:
-    """Concatenate slices of encoded files into one shard; return its size and hashes."""
+    """Concatenate slices of encoded files into one shard; return its size and hashes (and,
+    with ``count_ids``, each id's occurrences in it)."""
     from seqpipe._hashing import hash_file
 
     chunks = [read_shard(Path(p))[a:b] for p, a, b in task.pieces]
@@ -690,6 +694,7 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
                     "file_hash": hash_file(target),
                     "tokens": len(ids),
                     "reused": True,
+                    **_id_counts(ids, task.count_ids),
                 }
         except SeqpipeError:
             pass
@@ -700,7 +705,14 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
         "file_hash": hash_file(target),
         "tokens": len(ids),
         "reused": False,
+        **_id_counts(ids, task.count_ids),
     }
+
+
+def _id_counts(ids: np.ndarray, vocab_size: int | None) -> dict[str, np.ndarray]:
+    if vocab_size is None:
+        return {}
+    return {"id_counts": np.bincount(ids, minlength=vocab_size).astype(np.int64, copy=False)}
 
 
 def _is_compressed(path: Path) -> bool:
