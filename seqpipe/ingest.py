@@ -222,6 +222,7 @@ def _merge_segments(parts: Sequence[Segments]) -> Segments:
 
 
 PART_FILES: Final = ("docs.arrow", "keys.arrow", "codes.arrow")
+COUNT_SLICE: Final = 1 << 20  # ids per np.bincount call when a shard task counts its ids
 
 
 def _part_dir(cache_dir: str, key: str) -> Path:
@@ -710,9 +711,15 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
 
 
 def _id_counts(ids: np.ndarray, vocab_size: int | None) -> dict[str, np.ndarray]:
+    """How often each id below ``vocab_size`` occurs, as ``{"id_counts": ...}``; nothing without one."""
     if vocab_size is None:
         return {}
-    return {"id_counts": np.bincount(ids, minlength=vocab_size).astype(np.int64, copy=False)}
+    counts = np.zeros(vocab_size, np.int64)
+    # in slices: bincount copies its input to intp first, and a whole shard's copy (8 bytes per
+    # id) would be fresh memory to fault in (DEVELOPERS.md, "Where the time goes")
+    for at in range(0, len(ids), COUNT_SLICE):
+        counts += np.bincount(ids[at : at + COUNT_SLICE], minlength=vocab_size)
+    return {"id_counts": counts}
 
 
 def _is_compressed(path: Path) -> bool:

@@ -121,11 +121,15 @@ def test_part_keys_stay_when_only_the_vocabulary_changes(tmp_path: Path, vocab: 
 
 
 @pytest.mark.parametrize("count_ids", [None, 12])
-def test_shard_task_counts_its_ids_fresh_and_when_kept(tmp_path: Path, count_ids: int | None) -> None:
+def test_shard_task_counts_its_ids_fresh_and_when_kept(
+    tmp_path: Path, count_ids: int | None, monkeypatch: pytest.MonkeyPatch
+) -> None:
     """A shard task with ``count_ids`` returns np.bincount of exactly the ids it wrote (also when it
-    keeps a shard an interrupted run left), and no counts without it."""
+    keeps a shard an interrupted run left, and counted in slices), and no counts without it."""
     from seqpipe.ingest import ShardTask, write_shard_task
     from seqpipe.shards import write_shard
+
+    monkeypatch.setattr("seqpipe.ingest.COUNT_SLICE", 4)  # the 6 ids in two slices, the last one short
 
     a, b = tmp_path / "a.arrow", tmp_path / "b.arrow"
     write_shard(a, np.array([1, 2, 2, 7, 3], np.uint16))
