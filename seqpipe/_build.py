@@ -376,6 +376,7 @@ class Sharded:
 
     splits: dict[str, Any]
     summary: dict[str, Any]
+    train_id_counts: np.ndarray  # occurrences of each id in the train shards, summed from their tasks
 
 
 # -- the phases ------------------------------------------------------------------------------------
@@ -399,8 +400,8 @@ def _build(
         else:  # the ids of another dataset: nothing to count or fit
             fitted = reuse(recipe, source, stage)
         encoded = encode(ctx, plan, kept, fitted, stage)
-        sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage), stage)
-        count_train_ids(stage, sharded, fitted)
+        sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage, fitted.vocab_size), stage, fitted)
+        count_train_ids(stage, sharded)
         manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage, source))
         publish_dataset(out, stage, manifest, fitted)
     except OutputWriteError:
@@ -671,12 +672,20 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
     return tuple(run(ctx.pool.executor, ctx.show, encode_part, tasks, View("encoding")))
 
 
-def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path) -> Sharded:
-    """Write every shard (tasks) and, meanwhile in this thread, the documents tables."""
+def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path, fitted: Fitted) -> Sharded:
+    """Write every shard (tasks) and, meanwhile in this thread, the documents tables; the train
+    shards' id counts are summed as their tasks finish."""
     tasks = [task for layout in layouts for task in layout.shards]
     view = View("writing shards", unit="shard")
+    id_counts = np.zeros(fitted.vocab_size, np.int64)
     results, docs = run_beside(
-        ctx.pool.executor, ctx.show, write_shard_task, tasks, view, partial(write_docs_tables, stage, layouts)
+        ctx.pool.executor,
+        ctx.show,
+        write_shard_task,
+        tasks,
+        view,
+        partial(write_docs_tables, stage, layouts),
+        each=partial(_add_id_counts, id_counts),
     )
     shutil.rmtree(encoded_dir(str(stage)), ignore_errors=True)
     splits: dict[str, Any] = {}
@@ -684,22 +693,26 @@ def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path) -> Sharded:
     for layout, table in zip(layouts, docs, strict=True):
         splits[layout.name] = split_entry(layout, table, results[at : at + len(layout.shards)])
         at += len(layout.shards)
-    return Sharded(splits, {layout.name: split_summary(layout.totals) for layout in layouts})
+    return Sharded(splits, {layout.name: split_summary(layout.totals) for layout in layouts}, id_counts)
 
 
-def count_train_ids(stage: Path, sharded: Sharded, fitted: Fitted) -> None:
+def _add_id_counts(total: np.ndarray, _: int, result: dict[str, Any]) -> dict[str, Any]:
+    """Fold a train shard's id counts into ``total`` as it arrives; keep the rest of its result."""
+    counts = result.pop("id_counts", None)
+    if counts is not None:
+        total += counts
+    return result
+
+
+def count_train_ids(stage: Path, sharded: Sharded) -> None:
     """Rewrite the vocabulary's ``count`` column as what it is documented to be: how often each
     id occurs in the train split's shards (reserved tokens and begin/end markers included). The
-    fitted counts are of pieces before encoding (bpe's pre-merge symbols, 0 for reserved tokens)."""
-    from seqpipe.shards import read_shard
+    fitted counts are of pieces before encoding (bpe's pre-merge symbols, 0 for reserved tokens);
+    the shard tasks counted their ids while writing them."""
     from seqpipe.vocab import Vocabulary
 
-    counts = np.zeros(fitted.vocab_size, np.int64)
-    for entry in sharded.splits["train"]["shards"]:
-        ids = read_shard(stage / entry["path"], dtype=np.dtype(fitted.dtype), expected_tokens=entry["tokens"])
-        counts += np.bincount(ids, minlength=fitted.vocab_size)
     vocab = Vocabulary.load(stage / VOCAB_FILE)
-    dataclasses.replace(vocab, counts=counts).save(stage / VOCAB_FILE)
+    dataclasses.replace(vocab, counts=sharded.train_id_counts).save(stage / VOCAB_FILE)
 
 
 def _summed(tables: Iterator[dict[str, int]]) -> dict[str, int]:

@@ -51,14 +51,27 @@ class DocsTable:
 
 
 def lay_out(
-    recipe: Recipe, encoded: Sequence[dict[str, dict[str, int]]], dtype: str, stage: Path
+    recipe: Recipe,
+    encoded: Sequence[dict[str, dict[str, int]]],
+    dtype: str,
+    stage: Path,
+    vocab_size: int | None = None,
 ) -> tuple[SplitLayout, ...]:
-    """Each split's shards: ``shards.tokens`` tokens each, cut from the encoded parts."""
-    return tuple(_split_layout(recipe, split, encoded, dtype, stage) for split in SPLIT_NAMES)
+    """Each split's shards: ``shards.tokens`` tokens each, cut from the encoded parts; with
+    ``vocab_size`` the train shards' tasks also count their ids (the vocabulary's ``count``)."""
+    return tuple(
+        _split_layout(recipe, split, encoded, dtype, stage, vocab_size if split == "train" else None)
+        for split in SPLIT_NAMES
+    )
 
 
 def _split_layout(
-    recipe: Recipe, split: str, encoded: Sequence[dict[str, dict[str, int]]], dtype: str, stage: Path
+    recipe: Recipe,
+    split: str,
+    encoded: Sequence[dict[str, dict[str, int]]],
+    dtype: str,
+    stage: Path,
+    count_ids: int | None,
 ) -> SplitLayout:
     per_shard = recipe.shards.tokens
     compression = None if recipe.shards.compression == "none" else recipe.shards.compression
@@ -78,7 +91,7 @@ def _split_layout(
             for j in range(lo, hi)
             if max(first, int(starts[j])) < min(last, int(ends[j]))
         )
-        shards.append(ShardTask(str(stage / shard_path(split, k)), pieces, compression, dtype))
+        shards.append(ShardTask(str(stage / shard_path(split, k)), pieces, compression, dtype, count_ids))
     return SplitLayout(split, tuple(held), totals, per_shard, tuple(shards))
 
 

@@ -222,6 +222,7 @@ def _merge_segments(parts: Sequence[Segments]) -> Segments:
 
 
 PART_FILES: Final = ("docs.arrow", "keys.arrow", "codes.arrow")
+COUNT_SLICE: Final = 1 << 20  # ids per np.bincount call when a shard task counts its ids
 
 
 def _part_dir(cache_dir: str, key: str) -> Path:
@@ -669,10 +670,14 @@ class ShardTask:
     pieces: tuple[tuple[str, int, int], ...]  # (encoded file, start, end) in stream order
     compression: str | None
     dtype: str
+    # train shards: the vocabulary size, and the task also returns how often each id occurs
+    # (``id_counts``), counted here while the ids are in memory rather than read back by the driver
+    count_ids: int | None = None
 
 
 def write_shard_task(task: ShardTask) -> dict[str, Any]:
-    """Concatenate slices of encoded files into one shard; return its size and hashes."""
+    """Concatenate slices of encoded files into one shard; return its size and hashes (and,
+    with ``count_ids``, each id's occurrences in it)."""
     from seqpipe._hashing import hash_file
 
     chunks = [read_shard(Path(p))[a:b] for p, a, b in task.pieces]
@@ -690,6 +695,7 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
                     "file_hash": hash_file(target),
                     "tokens": len(ids),
                     "reused": True,
+                    **_id_counts(ids, task.count_ids),
                 }
         except SeqpipeError:
             pass
@@ -700,7 +706,20 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
         "file_hash": hash_file(target),
         "tokens": len(ids),
         "reused": False,
+        **_id_counts(ids, task.count_ids),
     }
+
+
+def _id_counts(ids: np.ndarray, vocab_size: int | None) -> dict[str, np.ndarray]:
+    """How often each id below ``vocab_size`` occurs, as ``{"id_counts": ...}``; nothing without one."""
+    if vocab_size is None:
+        return {}
+    counts = np.zeros(vocab_size, np.int64)
+    # in slices: bincount copies its input to intp first, and a whole shard's copy (8 bytes per
+    # id) would be fresh memory to fault in (DEVELOPERS.md, "Where the time goes")
+    for at in range(0, len(ids), COUNT_SLICE):
+        counts += np.bincount(ids[at : at + COUNT_SLICE], minlength=vocab_size)
+    return {"id_counts": counts}
 
 
 def _is_compressed(path: Path) -> bool:

@@ -118,3 +118,28 @@ def test_part_keys_stay_when_only_the_vocabulary_changes(tmp_path: Path, vocab: 
     changed = recipe.replace(vocabulary=vocab)
     assert changed.fingerprint != recipe.fingerprint
     assert key_of(changed, tmp_path) == key_of(recipe, tmp_path)
+
+
+@pytest.mark.parametrize("count_ids", [None, 12])
+def test_shard_task_counts_its_ids_fresh_and_when_kept(
+    tmp_path: Path, count_ids: int | None, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A shard task with ``count_ids`` returns np.bincount of exactly the ids it wrote (also when it
+    keeps a shard an interrupted run left, and counted in slices), and no counts without it."""
+    from seqpipe.ingest import ShardTask, write_shard_task
+    from seqpipe.shards import write_shard
+
+    monkeypatch.setattr("seqpipe.ingest.COUNT_SLICE", 4)  # the 6 ids in two slices, the last one short
+
+    a, b = tmp_path / "a.arrow", tmp_path / "b.arrow"
+    write_shard(a, np.array([1, 2, 2, 7, 3], np.uint16))
+    write_shard(b, np.array([7, 7, 0, 11], np.uint16))
+    task = ShardTask(str(tmp_path / "s.arrow"), ((str(a), 1, 4), (str(b), 0, 3)), None, "uint16", count_ids)
+    fresh, kept = write_shard_task(task), write_shard_task(task)
+    assert (fresh["reused"], kept["reused"]) == (False, True)
+    for result in (fresh, kept):
+        if count_ids is None:
+            assert "id_counts" not in result
+        else:
+            want = np.bincount(np.array([2, 2, 7, 7, 7, 0]), minlength=count_ids)
+            assert result["id_counts"].tolist() == want.tolist()
