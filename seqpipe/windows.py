@@ -59,6 +59,7 @@ from seqpipe.rows import (
     distinct_starts,
     documents_loss_mask,
     padded_rows,
+    prefix_mask,
     row_positions,
     window_positions,
 )
@@ -441,10 +442,10 @@ class BatchStream:
         cols = np.arange(width, dtype=np.int64)
         doc_index = doc_position = mask = None
         if self.positions:
-            real_inputs = cols < rows.real[:, None]
+            real_inputs = prefix_mask(rows.real, width)
             doc_index, doc_position = row_positions(self._starts_unique(), rows.starts[:, None] + cols, real_inputs)
         if self.boundaries:
-            real_targets = cols < (rows.real - 1)[:, None]
+            real_targets = prefix_mask(rows.real - 1, width)
             _, at = row_positions(self._starts_unique(), rows.starts[:, None] + 1 + cols, real_targets)
             mask = (at == 0) & real_targets
         return Batch(
