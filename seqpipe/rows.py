@@ -75,11 +75,14 @@ def attention_mask(doc_index: np.ndarray, *, causal: bool = True) -> np.ndarray:
     return mask
 
 
-def padded_rows(stream: TokenStream, starts: np.ndarray, real: np.ndarray, width: int, pad: int) -> np.ndarray:
+def padded_rows(
+    stream: TokenStream, starts: np.ndarray, real: np.ndarray, width: int, pad: int
+) -> tuple[np.ndarray, np.ndarray]:
     """Rows ``stream[s : s + n]`` filled with ``pad`` to ``width`` tokens, shape ``(rows, width)``.
 
     Every row is read with one windowed gather; rows that would leave the stream are read from
-    an earlier start and shifted back, so the stream is never read past its end.
+    an earlier start and shifted back, so the stream is never read past its end. Also returns
+    the padding mask (True on filled cells), from which the loss mask is cut.
     """
     n_tok = len(stream)
     cols = np.arange(width, dtype=np.int64)
@@ -98,7 +101,7 @@ def padded_rows(stream: TokenStream, starts: np.ndarray, real: np.ndarray, width
     padding = prefix_mask(real, width, inverse=True)
     if padding.any():
         np.copyto(block, pad, where=padding)
-    return block
+    return block, padding
 
 
 def prefix_mask(lengths: np.ndarray, width: int, *, inverse: bool = False) -> np.ndarray:
@@ -170,15 +173,20 @@ class EvaluationRows:
     def loss_mask(self, rows: np.ndarray, real: np.ndarray, width: int) -> np.ndarray:
         """True on targets this window is the first to score (and that are not padding)."""
         cols = np.arange(width)
-        mask = cols < (real - 1)[:, None]
+        mask = prefix_mask(real - 1, width)
         # window k > 0 repeats the targets of window k - 1 but its last ``stride``
         mask &= (rows[:, None] == 0) | (cols >= width - self.stride)
         return mask
 
 
-def documents_loss_mask(rows: Rows, width: int, mask_continued: bool) -> np.ndarray:
-    """True on real targets; with ``mask_continued`` False on the first target of a continued piece."""
-    mask = prefix_mask(rows.real - 1, width)
+def documents_loss_mask(rows: Rows, padding: np.ndarray, mask_continued: bool) -> np.ndarray:
+    """True on real targets; with ``mask_continued`` False on the first target of a continued piece.
+
+    ``padding`` is the mask :func:`padded_rows` returned for the rows of ``width + 1`` tokens:
+    target ``j`` is real exactly when token ``j + 1`` is.
+    """
+    mask = ~padding[:, 1:]  # a new C-contiguous array
+    width = mask.shape[1]
     if mask_continued and width:
         mask[:, 0] &= rows.first_position == 0
     return mask
