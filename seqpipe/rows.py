@@ -21,6 +21,7 @@ exactly on real targets that count.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
@@ -74,15 +75,17 @@ def attention_mask(doc_index: np.ndarray, *, causal: bool = True) -> np.ndarray:
     return mask
 
 
-def padded_rows(stream: TokenStream, starts: np.ndarray, real: np.ndarray, width: int, pad: int) -> np.ndarray:
+def padded_rows(
+    stream: TokenStream, starts: np.ndarray, real: np.ndarray, width: int, pad: int
+) -> tuple[np.ndarray, np.ndarray]:
     """Rows ``stream[s : s + n]`` filled with ``pad`` to ``width`` tokens, shape ``(rows, width)``.
 
     Every row is read with one windowed gather; rows that would leave the stream are read from
-    an earlier start and shifted back, so the stream is never read past its end.
+    an earlier start and shifted back, so the stream is never read past its end. Also returns
+    the padding mask (True on filled cells), from which the loss mask is cut.
     """
     n_tok = len(stream)
     cols = np.arange(width, dtype=np.int64)
-    valid = cols < real[:, None]
     if n_tok >= width:
         first = np.minimum(starts, n_tok - width)
         block = stream.gather(first, width, stream.dtype)
@@ -95,9 +98,26 @@ def padded_rows(stream: TokenStream, starts: np.ndarray, real: np.ndarray, width
         whole = np.zeros(width, stream.dtype)
         whole[:n_tok] = stream.slice(0, n_tok)
         block = whole[np.minimum(starts[:, None] + cols, width - 1)]
-    if not valid.all():
-        block[~valid] = pad
-    return block
+    padding = prefix_mask(real, width, inverse=True)
+    if padding.any():
+        np.copyto(block, pad, where=padding)
+    return block, padding
+
+
+def prefix_mask(lengths: np.ndarray, width: int, *, inverse: bool = False) -> np.ndarray:
+    """Bool ``(rows, width)``: True on the first ``lengths[r]`` cells of row ``r`` (False with ``inverse``).
+
+    Built as one ``np.repeat`` of alternating runs: cheaper than comparing a column range
+    against every row, which numpy evaluates as a broadcast.
+    """
+    rows = len(lengths)
+    head = np.minimum(lengths, width)  # lengths are token counts (>= 0): only the top needs a bound
+    runs = np.empty(2 * rows, np.int64)
+    runs[0::2] = head
+    np.subtract(width, head, out=runs[1::2])
+    values = np.zeros(2 * rows, bool)
+    values[int(inverse) :: 2] = True
+    return np.repeat(values, runs).reshape(rows, width)
 
 
 @dataclass(frozen=True, slots=True)
@@ -153,45 +173,62 @@ class EvaluationRows:
     def loss_mask(self, rows: np.ndarray, real: np.ndarray, width: int) -> np.ndarray:
         """True on targets this window is the first to score (and that are not padding)."""
         cols = np.arange(width)
-        mask = cols < (real - 1)[:, None]
+        mask = prefix_mask(real - 1, width)
         # window k > 0 repeats the targets of window k - 1 but its last ``stride``
         mask &= (rows[:, None] == 0) | (cols >= width - self.stride)
         return mask
 
 
-def documents_loss_mask(rows: Rows, width: int, mask_continued: bool) -> np.ndarray:
-    """True on real targets; with ``mask_continued`` False on the first target of a continued piece."""
-    mask = np.arange(width) < (rows.real - 1)[:, None]
+def documents_loss_mask(rows: Rows, padding: np.ndarray, mask_continued: bool) -> np.ndarray:
+    """True on real targets; with ``mask_continued`` False on the first target of a continued piece.
+
+    ``padding`` is the mask :func:`padded_rows` returned for the rows of ``width + 1`` tokens:
+    target ``j`` is real exactly when token ``j + 1`` is.
+    """
+    mask = ~padding[:, 1:]  # a new C-contiguous array
+    width = mask.shape[1]
     if mask_continued and width:
         mask[:, 0] &= rows.first_position == 0
     return mask
 
 
 def window_positions(starts_unique: np.ndarray, starts: np.ndarray, width: int) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`row_positions` for full windows ``[s, s + width)``, from one bisection per row.
+    """:func:`row_positions` for full windows ``[s, s + width)``, from one bisection per row end.
 
-    Only the document starts inside each window are located (as in ``TokenStream.boundary_mask``);
-    a running sum along the rows numbers the documents, and each cell's position is its offset
-    minus the start of its document.
+    The batch read row after row is a run of segments, one per document piece: the document met
+    at column 0 of each row, then one per document start inside the row (located as in
+    ``TokenStream.boundary_mask``). A cell's document number is its segment's number within the
+    row, and its position is its flat cell number minus the segment's offset, so both outputs are
+    one ``np.repeat`` of a per-segment value (no pass per document, no running sum per cell).
     """
     ds = starts_unique
     rows = len(starts)
-    lo = np.searchsorted(ds, starts, side="right")  # ds[lo - 1] <= start < ds[lo]; ds[0] == 0
-    hi = np.searchsorted(ds, starts + (width - 1), side="right")
-    counts = hi - lo
-    marks = np.zeros((rows, width), np.int64)
-    # steps: each cell's position is the previous one's plus 1, except at a document start, where
-    # the step undoes the run since the previous anchor (the row's start, or the previous document)
-    steps = np.ones((rows, width), np.int64)
-    steps[:, 0] = starts - ds[lo - 1]
-    total = int(counts.sum())
-    if total:
-        row = np.repeat(np.arange(rows), counts)
-        k = np.arange(total) - np.repeat(np.cumsum(counts) - counts - lo, counts)
-        col = ds[k] - starts[row]
-        marks[row, col] = 1
-        previous = ds[k - 1] - starts[row]  # the previous start: inside the row, or at/before column 0
-        steps[row, col] = previous - col + 1
-    doc_index = np.cumsum(marks, axis=1, out=marks)
-    doc_position = np.cumsum(steps, axis=1, out=steps)
-    return doc_index, doc_position
+    if rows == 0:  # a rank may get no rows of the last batch
+        return np.zeros((0, width), np.int64), np.zeros((0, width), np.int64)
+    ends = np.searchsorted(ds, np.concatenate((starts, starts + (width - 1))), side="right")
+    lo = ends[:rows]  # ds[lo - 1] <= start < ds[lo]; ds[0] == 0
+    per_row = ends[rows:] - lo
+    per_row += 1  # segments of a row: the document at column 0 and one per start inside the row
+    seg_row = np.repeat(np.arange(rows), per_row)
+    first_seg = np.cumsum(per_row)
+    first_seg -= per_row
+    within = np.arange(len(seg_row)) - first_seg[seg_row]  # the segment's document number in its row
+    row_base = seg_row * width
+    # the flat cell number of a segment's token at stream offset x is x + offset
+    offset = ds[(lo - 1)[seg_row] + within] + (row_base - starts[seg_row])
+    flat_start = np.maximum(offset, row_base)  # the first segment of a row starts at its column 0
+    run = np.empty_like(flat_start)
+    np.subtract(flat_start[1:], flat_start[:-1], out=run[:-1])
+    run[-1] = rows * width - flat_start[-1]
+    doc_index = np.repeat(within, run).reshape(rows, width)
+    doc_position = np.repeat(offset, run)
+    np.subtract(_cell_numbers(rows * width), doc_position, out=doc_position)
+    return doc_index, doc_position.reshape(rows, width)
+
+
+@lru_cache(maxsize=8)
+def _cell_numbers(size: int) -> np.ndarray:
+    """``arange(size)`` as int64, read-only: batches of one stream share one shape."""
+    cells = np.arange(size, dtype=np.int64)
+    cells.flags.writeable = False
+    return cells

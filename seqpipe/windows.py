@@ -433,18 +433,18 @@ class BatchStream:
         assert self._plan is not None
         ids, width = self._row_ids(step)
         rows = self._plan.locate(ids)
-        block = padded_rows(self.stream, rows.starts, rows.real, width + 1, self.pad_id)
+        block, padding = padded_rows(self.stream, rows.starts, rows.real, width + 1, self.pad_id)
         if isinstance(self._plan, EvaluationRows):
             loss = self._plan.loss_mask(ids, rows.real, width)
         else:
-            loss = documents_loss_mask(rows, width, self.mask_continued)
+            loss = documents_loss_mask(rows, padding, self.mask_continued)
         cols = np.arange(width, dtype=np.int64)
         doc_index = doc_position = mask = None
         if self.positions:
-            real_inputs = cols < rows.real[:, None]
+            real_inputs = ~padding[:, :-1]
             doc_index, doc_position = row_positions(self._starts_unique(), rows.starts[:, None] + cols, real_inputs)
         if self.boundaries:
-            real_targets = cols < (rows.real - 1)[:, None]
+            real_targets = ~padding[:, 1:]
             _, at = row_positions(self._starts_unique(), rows.starts[:, None] + 1 + cols, real_targets)
             mask = (at == 0) & real_targets
         return Batch(
