@@ -444,7 +444,7 @@ class MixtureStream:
         while count > 0:
             epoch, within = divmod(first, per_epoch)
             take = min(count, per_epoch - within)
-            parts.append(self._walker(i, epoch)._random_starts(within, take))
+            parts.append(self._walker(i, epoch).window_starts(within, take))
             first, count = first + take, count - take
         return parts[0] if len(parts) == 1 else np.concatenate(parts)
 

@@ -338,8 +338,9 @@ class BatchStream:
         )
 
     # --- random access ---------------------------------------------------------------------------
-    def _random_starts(self, first: int, count: int) -> np.ndarray:
-        """Start offsets of permuted windows ``first .. first + count - 1`` of the epoch.
+    def window_starts(self, first: int, count: int) -> np.ndarray:
+        """Start offsets of permuted windows ``first .. first + count - 1`` of the epoch (public:
+        a mixture walks each component's windows in this order).
 
         Entries are computed a page at a time and the last page is kept. A page starts at eight
         global batches (so a first or resumed batch is cheap) and doubles while reading moves
@@ -391,14 +392,14 @@ class BatchStream:
             return self._plan.locate(ids).starts, width
         lo, hi = self.rows(step)
         if self.order == "random":
-            return self._random_starts(step * self.global_batch + lo, hi - lo), self.window
+            return self.window_starts(step * self.global_batch + lo, hi - lo), self.window
         lanes = np.arange(lo, hi, dtype=np.int64)
         width = min(self.window, self.lane_length - step * self.window)
         return self.offset + lanes * self.lane_length + step * self.window, width
 
     def _shuffled(self, first: int, count: int) -> np.ndarray:
         """Rows ``first .. first + count - 1`` of the epoch's permutation of the planned rows."""
-        return self._random_starts(first, count)
+        return self.window_starts(first, count)
 
     def _row_ids(self, step: int) -> tuple[np.ndarray, int]:
         """Planned rows of this rank at ``step`` and the batch width (row orders)."""
