@@ -17,12 +17,13 @@ from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 from test_tokenizers import TokenizerContract  # the shared suite (tests/ is on sys.path under pytest)
 
+from seqpipe import _patterns
 from seqpipe._parse import section, to_plain
-from seqpipe.errors import RecipeError, ShardCorruptError, TokenizerError
+from seqpipe.errors import PatternTimeoutError, RecipeError, ShardCorruptError, TokenizerError
 from seqpipe.shards import write_table
 from seqpipe.tokenizers import bpe as bpe_module
 from seqpipe.tokenizers import parse_tokenizer
-from seqpipe.tokenizers._chunking import PRESETS
+from seqpipe.tokenizers._chunking import _WORD, PRESETS, _trailing, chunker, needs_time_limit
 from seqpipe.tokenizers.bpe import BpeEncoder, BpeTokenizer
 from seqpipe.vocab import VocabSpec
 
@@ -289,6 +290,27 @@ def test_digits_grouped_in_threes_from_the_right(number: int) -> None:
     first = len(digits) % 3 or 3
     assert [len(c) for c in chunks] == [first] + [3] * ((len(digits) - first) // 3)
     assert b"".join(chunks) == digits.encode()
+
+
+@settings(max_examples=300)
+@given(text=st.text(alphabet="0123456789\u00b2\u00bd\u216b\u0663a .,'\n\u0301-("))
+def test_digit_rule_equals_the_lookahead_at_every_group(text: str) -> None:
+    """The default preset's digit rule (threes inside a run) cuts like the lookahead applied at every group."""
+    every_group = chunker(_trailing(_WORD, r"\p{N}{1,3}(?=(?:\p{N}{3})*(?!\p{N}))"))
+    assert chunker(PRESETS["trailing-space"]).findall(text) == every_group.findall(text)
+
+
+def test_presets_skip_the_time_limit_unless_a_digit_run_is_long(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Presets chunk prose without the pattern time limit; custom patterns and long digit runs keep it."""
+    monkeypatch.setattr(_patterns, "SECONDS_PER_DOCUMENT", 1e-9)  # any limit at all runs out at once
+    prose = "harbour calm, 1200 tonnes. " * 2000
+    assert not needs_time_limit("trailing-space", prose)
+    assert b"".join(doc_chunks(BpeTokenizer(), [prose])[0]) == prose.encode()
+    assert needs_time_limit("trailing-space", prose + "7" * 1000) and not needs_time_limit("x", "7" * 999)
+    with pytest.raises(PatternTimeoutError, match="document 0"):
+        BpeTokenizer().segment([prose + "7" * 1000])
+    with pytest.raises(PatternTimeoutError, match="document 1"):
+        BpeTokenizer(chunking="custom", chunk_regex=r"\w+|\W").segment(["", prose])
 
 
 def test_default_chunking_is_a_named_preset() -> None:

@@ -54,7 +54,7 @@ from seqpipe.tokenizers._bpe_train import (
     rank_table,
     read_counts,
 )
-from seqpipe.tokenizers._chunking import CHOICES, CUSTOM, DEFAULT, chunker, pattern_of
+from seqpipe.tokenizers._chunking import CHOICES, CUSTOM, DEFAULT, chunker, needs_time_limit, pattern_of
 from seqpipe.tokenizers._common import segments_from_tokens, stored_vocabulary
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, expand
 from seqpipe.vocab import VocabSpec, Vocabulary, reserved_table
@@ -103,7 +103,7 @@ def _check_chunk_regex(pattern: str) -> None:
         raise RecipeError("chunk_regex", f"use non-capturing groups (?:...), got {pattern!r}")
 
 
-def _chunks(cut: Any, splitter: Any, text: str, limit: float) -> list[str]:
+def _chunks(cut: Any, splitter: Any, text: str, limit: float | None) -> list[str]:
     """``text`` cut into chunks (reserved names kept whole when ``splitter`` is given)."""
     if splitter is None:
         found: list[str] = cut.findall(text, timeout=limit)
@@ -183,7 +183,7 @@ class BpeTokenizer(Tokenizer):
         limit = _patterns.SECONDS_PER_DOCUMENT
         for d, text in enumerate(texts):
             try:
-                chunks = _chunks(cut, splitter, text, limit)
+                chunks = _chunks(cut, splitter, text, limit if needs_time_limit(self.chunking, text) else None)
             except TimeoutError:
                 raise _patterns.pattern_timeout("tokenizer bpe chunking", self.pattern, d, text) from None
             if not all(chunks):  # a pattern that can match empty text
