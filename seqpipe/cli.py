@@ -232,25 +232,28 @@ def cmd_batches(args: argparse.Namespace) -> int:
     ds = open_dataset(args.directory, verify=args.verify)
     split = ds.split(args.split or "train")
     try:
-        stream = split.batches(
-            batch_size=args.batch_size,
-            window=args.window,
-            order=args.order,
-            seed=args.seed,
-            epoch=args.epoch,
-            rank=args.rank,
-            world_size=args.world_size,
-            keep_last=args.keep_last,
-            boundaries=args.boundaries,
-            start_step=args.start_step,
-            positions=args.positions,
-        )
+        stream = split.batches(**_stream_options(args), keep_last=args.keep_last, positions=args.positions)
     except StreamError as exc:
         raise _option_error(exc) from None
     if not len(stream):
         raise _no_batches(args, split.name, split.num_tokens)
     print_batches(ds, stream, limit=args.limit, fmt=args.format)
     return EXIT_OK
+
+
+def _stream_options(args: argparse.Namespace) -> dict[str, Any]:
+    """The batch-stream settings a dataset split and a mixture take alike."""
+    return {
+        "batch_size": args.batch_size,
+        "window": args.window,
+        "order": args.order,
+        "seed": args.seed,
+        "epoch": args.epoch,
+        "rank": args.rank,
+        "world_size": args.world_size,
+        "boundaries": args.boundaries,
+        "start_step": args.start_step,
+    }
 
 
 def _no_batches(args: argparse.Namespace, name: str, tokens: int) -> StreamError:
@@ -279,19 +282,13 @@ def _mixture_batches(args: argparse.Namespace) -> int:
         raise StreamError(
             "--keep-last: a mixture has no last, smaller batch (its epochs have no tail)", key="keep_last"
         )
+    if args.positions:
+        raise StreamError(
+            "--positions: not available for a mixture file (a row's component changes per batch)", key="positions"
+        )
     opened = read_mixture(args.directory).open(verify=args.verify)
     try:
-        stream = opened.batches(
-            batch_size=args.batch_size,
-            window=args.window,
-            order=args.order,
-            seed=args.seed,
-            epoch=args.epoch,
-            rank=args.rank,
-            world_size=args.world_size,
-            boundaries=args.boundaries,
-            start_step=args.start_step,
-        )
+        stream = opened.batches(**_stream_options(args))
     except StreamError as exc:
         raise _option_error(exc) from None
     print_batches(opened.datasets[0], stream, limit=args.limit, fmt=args.format)

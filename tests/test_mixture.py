@@ -348,3 +348,14 @@ def test_the_command_line_refuses_split_with_a_mixture_file(two_datasets: tuple[
     path.write_text(f'[[components]]\ndataset = "{one}"\n', encoding="utf-8")
     done = run_cli(["batches", str(path), "--batch-size", "2", "--window", "4", "--split", "train", "--limit", "1"])
     assert done.returncode != 0 and "--split" in done.stderr
+
+
+def test_the_command_line_refuses_positions_with_a_mixture_file(
+    two_datasets: tuple[Path, Path], tmp_path: Path
+) -> None:
+    """--positions with a mixture file is a usage error naming the option, never silently ignored."""
+    one, _ = two_datasets
+    path = tmp_path / "mix.toml"
+    path.write_text(f'[[components]]\ndataset = "{one}"\n', encoding="utf-8")
+    done = run_cli(["batches", str(path), "--batch-size", "2", "--window", "4", "--positions", "--limit", "1"])
+    assert done.returncode == 2 and "--positions" in done.stderr
