@@ -20,10 +20,12 @@ if _typing.TYPE_CHECKING:
     from seqpipe._verify import VerifyReport, verify
     from seqpipe.dataset import Dataset, Split, load_encoder, open_dataset
     from seqpipe.errors import SeqpipeError
+    from seqpipe.evaluation import Evaluation
     from seqpipe.filter_preview import preview_filters
     from seqpipe.metrics import LossFigures, loss_figures
     from seqpipe.recipe import Recipe, load_recipe, parse_recipe
     from seqpipe.report import corpus_report, write_report
+    from seqpipe.rows import attention_mask
     from seqpipe.stream import TokenStream
     from seqpipe.windows import Batch, BatchStream, StreamState, stream_fingerprint
 
@@ -39,8 +41,10 @@ _HOME: _typing.Final = {
     "load_encoder": "dataset",
     "open_dataset": "dataset",
     "SeqpipeError": "errors",
+    "Evaluation": "evaluation",
     "LossFigures": "metrics",
     "loss_figures": "metrics",
+    "attention_mask": "rows",
     "preview_filters": "filter_preview",
     "Recipe": "recipe",
     "load_recipe": "recipe",
@@ -75,6 +79,7 @@ __all__ = [
     "BatchStream",
     "BuildResult",
     "Dataset",
+    "Evaluation",
     "LossFigures",
     "Recipe",
     "SeqpipeError",
@@ -82,6 +87,7 @@ __all__ = [
     "StreamState",
     "TokenStream",
     "VerifyReport",
+    "attention_mask",
     "build",
     "corpus_report",
     "load_encoder",
