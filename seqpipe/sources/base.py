@@ -108,11 +108,17 @@ class ReadStats:
 @dataclass(frozen=True, slots=True)
 class Resolved:
     """What a source's globs matched: the files to read, and ``(path, what)`` of each other match
-    (paths relative to the recipe's directory, see :meth:`Source.resolve_all`)."""
+    (paths relative to the glob base, as inputs are named; see :meth:`Source.resolve_all`)."""
 
     files: list[SourcePath]
     skipped: tuple[tuple[str, str], ...]
     names: tuple[str, ...] = ()  # per file, the name a manifest records (Source.resolve_named)
+
+
+def _recorded_name(path: str, base: str) -> str:
+    """``path`` (relative to the recipe's directory) as a manifest records it: relative to the
+    fixed directory part of the glob that matched it, with '/' separators."""
+    return PurePath(os.path.relpath(os.path.normpath(path), base)).as_posix()
 
 
 def _parse_paths(value: Any) -> tuple[str, ...]:
@@ -194,6 +200,7 @@ class Source(ABC):
                     found.setdefault(uri, (uri, uri))
                 continue
             matches = glob_local(root, pattern)
+            base = glob_base(pattern)
             for rel, what in matches.skipped:
                 if self.on_special_file == "error":
                     raise SourceError(
@@ -201,14 +208,14 @@ class Source(ABC):
                         f"glob {pattern!r} matches a {what}, not a regular file; remove it, narrow the "
                         'glob, or set on_special_file = "skip" to skip and list it',
                     )
-                skipped.setdefault(rel, what)
+                # named like the inputs (relative to the glob base), so the manifest does not
+                # depend on where the recipe sits
+                skipped.setdefault(_recorded_name(rel, base), what)
             if not matches.files:
                 raise SourceMissingError(str(root), f"glob {pattern!r} matched no file under {root}")
-            base = glob_base(pattern)
             for hit in matches.files:
                 key = PurePath(os.path.normpath(hit)).as_posix()
-                name = PurePath(os.path.relpath(os.path.normpath(hit), base)).as_posix()
-                found.setdefault(key, (root / key, name))
+                found.setdefault(key, (root / key, _recorded_name(hit, base)))
         ordered = [found[key] for key in sorted(found)]
         return Resolved([p for p, _ in ordered], tuple(sorted(skipped.items())), tuple(n for _, n in ordered))
 
