@@ -21,7 +21,6 @@ exactly on real targets that count.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from functools import lru_cache
 
 import numpy as np
 
@@ -205,30 +204,39 @@ def window_positions(starts_unique: np.ndarray, starts: np.ndarray, width: int) 
     rows = len(starts)
     if rows == 0:  # a rank may get no rows of the last batch
         return np.zeros((0, width), np.int64), np.zeros((0, width), np.int64)
-    ends = np.searchsorted(ds, np.concatenate((starts, starts + (width - 1))), side="right")
-    lo = ends[:rows]  # ds[lo - 1] <= start < ds[lo]; ds[0] == 0
-    per_row = ends[rows:] - lo
-    per_row += 1  # segments of a row: the document at column 0 and one per start inside the row
-    seg_row = np.repeat(np.arange(rows), per_row)
-    first_seg = np.cumsum(per_row)
+    ends = ds.searchsorted(np.concatenate((starts, starts + (width - 1))), side="right")
+    before = ends[:rows]
+    before -= 1  # the document at column 0 of each row: ds[before] <= start < ds[before + 1]
+    per_row = ends[rows:] - before  # segments of a row: that document and one per start inside the row
+    seg_row = _cell_numbers(rows).repeat(per_row)
+    first_seg = per_row.cumsum()
     first_seg -= per_row
-    within = np.arange(len(seg_row)) - first_seg[seg_row]  # the segment's document number in its row
-    row_base = seg_row * width
+    within = _cell_numbers(len(seg_row)) - first_seg[seg_row]  # the segment's document number in its row
     # the flat cell number of a segment's token at stream offset x is x + offset
-    offset = ds[(lo - 1)[seg_row] + within] + (row_base - starts[seg_row])
-    flat_start = np.maximum(offset, row_base)  # the first segment of a row starts at its column 0
+    shift = _cell_numbers(rows) * width
+    shift -= starts
+    offset = ds[before[seg_row] + within]
+    offset += shift[seg_row]
+    flat_start = np.maximum(offset, seg_row * width)  # the first segment of a row starts at its column 0
     run = np.empty_like(flat_start)
     np.subtract(flat_start[1:], flat_start[:-1], out=run[:-1])
     run[-1] = rows * width - flat_start[-1]
-    doc_index = np.repeat(within, run).reshape(rows, width)
-    doc_position = np.repeat(offset, run)
+    doc_index = within.repeat(run).reshape(rows, width)
+    doc_position = offset.repeat(run)
     np.subtract(_cell_numbers(rows * width), doc_position, out=doc_position)
     return doc_index, doc_position.reshape(rows, width)
 
 
-@lru_cache(maxsize=8)
+_COUNTING = np.arange(0, dtype=np.int64)
+
+
 def _cell_numbers(size: int) -> np.ndarray:
-    """``arange(size)`` as int64, read-only: batches of one stream share one shape."""
-    cells = np.arange(size, dtype=np.int64)
-    cells.flags.writeable = False
-    return cells
+    """``arange(size)`` as int64: a read-only view of one shared buffer that grows by doubling
+    (each batch asks for a few sizes: rows, segments, cells)."""
+    global _COUNTING
+    cells = _COUNTING
+    if len(cells) < size:
+        cells = np.arange(max(size, 2 * len(cells)), dtype=np.int64)
+        cells.flags.writeable = False
+        _COUNTING = cells  # one assignment: a thread holding the old buffer still has a valid one
+    return cells[:size]

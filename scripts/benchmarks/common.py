@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -38,4 +38,16 @@ def best_time(fn: Callable[[], Any], repeat: int = 3) -> float:
         t0 = time.perf_counter()
         fn()
         best = min(best, time.perf_counter() - t0)
+    return best
+
+
+def best_times(fns: Sequence[Callable[[], Any]], repeat: int = 5) -> list[float]:
+    """Fastest wall time of each of ``fns`` over ``repeat`` rounds that call them in turn: a
+    slow spell of the machine then hits every side of a ratio alike, not only one of them."""
+    best = [float("inf")] * len(fns)
+    for _ in range(repeat):
+        for i, fn in enumerate(fns):
+            t0 = time.perf_counter()
+            fn()
+            best[i] = min(best[i], time.perf_counter() - t0)
     return best

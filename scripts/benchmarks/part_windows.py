@@ -15,7 +15,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
-from common import Measure, best_time
+from common import Measure, best_time, best_times
 from numpy.lib.stride_tricks import sliding_window_view
 
 from seqpipe.recipe import ShardSpec
@@ -185,12 +185,12 @@ def _row_measures(plain: TokenStream, n_batches: int) -> Iterator[Measure]:
 
     for bs in (without, with_pos, rows):  # first pass maps the pages
         run(bs)
-    t_plain, t_pos, t_rows = (best_time(lambda bs=bs: run(bs), 5) for bs in (without, with_pos, rows))
+    t_plain, t_pos, t_rows = best_times([lambda bs=bs: run(bs) for bs in (without, with_pos, rows)], 5)
     yield Measure(
         "windows.positions_rate",
         t_plain / t_pos,
         0.6,
-        f"(best of 5, {n} random batches B={B} window={WINDOW} with positions vs without: "
+        f"(best of 5 interleaved rounds, {n} random batches B={B} window={WINDOW} with positions vs without: "
         f"{n / t_pos:,.0f} vs {n / t_plain:,.0f} batches/s; {documents:,} documents)",
     )
     yield Measure(
