@@ -224,9 +224,9 @@ class BpeTokenizer(Tokenizer):
         reserved_tokens, roles = reserved_table(spec)
         n_reserved = len(reserved_tokens)
         if self.base == "bytes":
-            alphabet, alpha_counts, words = byte_symbols(keys, freqs, n_reserved)
+            alphabet, alpha_counts, flat, lengths = byte_symbols(keys, freqs, n_reserved)
         else:
-            alphabet, alpha_counts, words = char_symbols(keys, freqs, n_reserved, self.end_of_word)
+            alphabet, alpha_counts, flat, lengths = char_symbols(keys, freqs, n_reserved, self.end_of_word)
         limit = spec.cap
         if limit < n_reserved + len(alphabet):
             need = n_reserved + len(alphabet)
@@ -236,7 +236,7 @@ class BpeTokenizer(Tokenizer):
                 f"got {limit}",
             )
         tokens = [*reserved_tokens, *alphabet]
-        learned = learn(words, freqs.tolist(), tokens, limit=limit, min_count=self.min_pair_count)
+        learned = learn(flat, lengths, freqs, tokens, limit=limit, min_count=self.min_pair_count)
         vocabulary = Vocabulary(
             tokens=pa.array(learned.tokens, pa.binary()),
             counts=np.concatenate(
@@ -249,7 +249,7 @@ class BpeTokenizer(Tokenizer):
         # training already segmented every train chunk: keep the most frequent as cache entries,
         # so encoding the train split right after fitting is lookups only
         for i in np.argsort(-freqs, kind="stable")[:CACHE_LIMIT].tolist():
-            encoder._cache[keys[i]] = tuple(learned.words[i])
+            encoder._cache[keys[i]] = learned.word(i)
         return encoder
 
     # -- storage ---------------------------------------------------------------
