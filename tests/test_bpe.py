@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import functools
 import itertools
 import os
 import subprocess
@@ -192,6 +193,39 @@ corpora = st.lists(
 def test_trainer_matches_naive_reference(corpus: list[tuple[str, int]], base: str, extra: int, min_count: int) -> None:
     """Incremental training gives the naive trainer's merges, and encoding a training chunk
     gives the naive trainer's final segmentation of it."""
+    check_against_naive(corpus, base, extra, min_count)
+
+
+# letters, vowel signs and marks of many scripts (a few each, so pairs repeat and ties occur)
+MANY_SCRIPTS = (
+    "ab\u00e9\u0301 \u0430\u0431 \u03b1\u03b2 \u0627\u0628 \u0915\u093f\u094d \u4e2d\u6587"
+    " \ud55c\uae00 \u0e01\u0e48 \u1200 \u05e9 \u10d0 \u0561 7\u0967"
+)
+many_script_corpora = st.lists(
+    st.tuples(st.text(alphabet=MANY_SCRIPTS, min_size=1, max_size=16), st.integers(1, 9)),
+    min_size=1,
+    max_size=24,
+    unique_by=lambda t: t[0],
+)
+
+
+@settings(max_examples=120, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    corpus=many_script_corpora,
+    base=st.sampled_from(["bytes", "chars", "chars+marker"]),
+    extra=st.integers(0, 60),
+    min_count=st.integers(1, 3),
+)
+def test_trainer_matches_naive_reference_on_many_scripts(
+    corpus: list[tuple[str, int]], base: str, extra: int, min_count: int
+) -> None:
+    """On chunks mixing many scripts (multi-byte characters, combining marks, runs of one symbol),
+    the fast trainer's merges and final segmentations equal the naive trainer's."""
+    check_against_naive(corpus, base, extra, min_count)
+
+
+def check_against_naive(corpus: list[tuple[str, int]], base: str, extra: int, min_count: int) -> None:
+    """Train the fast and the naive trainer on ``corpus``; assert equal merges and segmentations."""
     marker = "</w>" if base == "chars+marker" else ""
     keys = [w.encode() for w, _ in corpus]
     freqs = [c for _, c in corpus]
@@ -657,3 +691,21 @@ def test_independent_of_hash_seed() -> None:
         runs.append(done.stdout)
     assert runs[0] == runs[1] == runs[2]
     assert runs[0].startswith("[(")
+
+
+@pytest.mark.parametrize("show", [True, False])
+def test_training_progress_bar_counts_merges(
+    show: bool, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """With ``show`` a bar on stderr counts merges up to the number the cap leaves; without, nothing is written."""
+    from seqpipe.tokenizers import _bpe_train
+
+    every_update = functools.partial(_bpe_train.bar, mininterval=0, miniters=1)  # redraw on each merge
+    monkeypatch.setattr(_bpe_train, "bar", every_update)
+    tok = BpeTokenizer()
+    tok.fit(counts_from_texts(tok, [LOG]), capped(N_RESERVED + 256 + 30), show=show)
+    err = capsys.readouterr().err
+    if show:
+        assert "byte-pair merges" in err and "30/30" in err
+    else:
+        assert err == ""

@@ -112,12 +112,14 @@ def learn(
     it appears, so each pair has one live entry. A pair below ``min_count`` can never reach it
     again, so it is forgotten (counts, positions) the moment it falls below.
     """
-    chain = _Chain.index(flat, lengths, freqs, max(limit, len(tokens)), min_count)
-    heap = chain.heap()
     merges: list[tuple[int, int, int]] = []
     merge_counts: list[int] = []
-    width = chain.width
-    with bar(limit - len(tokens), "byte-pair merges", unit="merge", show=show) as pbar:
+    with bar(max(0, limit - len(tokens)), "byte-pair merges", unit="merge", show=show) as pbar:
+        pbar.set_postfix_str("counting pairs")  # the bar is up before the one long step that precedes merging
+        chain = _Chain.index(flat, lengths, freqs, max(limit, len(tokens)), min_count)
+        heap = chain.heap()
+        width = chain.width
+        pbar.set_postfix_str("")
         while heap and len(tokens) < limit:
             neg, _, code = heapq.heappop(heap)
             c = chain.count.get(code, 0)
@@ -228,9 +230,9 @@ class _Chain:
             parts.append(self.sorted_slots[span[0] : span[1]])
         pos = np.concatenate(parts) if len(parts) > 1 else parts[0]
         a, b = divmod(code, self.width)
-        pos = pos[(self.sym[pos] == a) & (self.sym[self.nxt[pos]] == b)]
-        pos.sort()
-        return pos
+        found: np.ndarray = pos[(self.sym[pos] == a) & (self.sym[self.nxt[pos]] == b)]
+        found.sort()
+        return found
 
     def first(self, code: int) -> int:
         """The slot of the pair's first occurrence now (its positions compacted on the way)."""
@@ -298,7 +300,8 @@ def _left_to_right(pos: np.ndarray, nxt: np.ndarray) -> np.ndarray:
     run_start = np.flatnonzero(~linked)
     run = np.cumsum(~linked) - 1
     step = np.arange(len(pos)) - run_start[run]
-    return pos[step % 2 == 0]
+    kept: np.ndarray = pos[step % 2 == 0]
+    return kept
 
 
 # -- the symbols training starts from -------------------------------------------

@@ -197,13 +197,13 @@ class BpeTokenizer(Tokenizer):
         return segments_from_tokens(array, lengths)
 
     # -- training --------------------------------------------------------------
-    def fit(self, counts: pa.Table, spec: VocabSpec) -> BpeEncoder:
+    def fit(self, counts: pa.Table, spec: VocabSpec, *, show: bool = False) -> BpeEncoder:
         """Learn merges from distinct-chunk counts (rows in corpus first-occurrence order).
 
         Each step merges the most frequent adjacent pair; among pairs of equal
         count, the one whose first occurrence is earliest in corpus order wins
         (chunk row, then position within the chunk). The result does not depend
-        on ``PYTHONHASHSEED``.
+        on ``PYTHONHASHSEED``. ``show``: a progress bar counting merges.
         """
         if self.literal_reserved and self.reserved_names != spec.reserved:
             raise RecipeError(
@@ -236,7 +236,7 @@ class BpeTokenizer(Tokenizer):
                 f"got {limit}",
             )
         tokens = [*reserved_tokens, *alphabet]
-        learned = learn(flat, lengths, freqs, tokens, limit=limit, min_count=self.min_pair_count)
+        learned = learn(flat, lengths, freqs, tokens, limit=limit, min_count=self.min_pair_count, show=show)
         vocabulary = Vocabulary(
             tokens=pa.array(learned.tokens, pa.binary()),
             counts=np.concatenate(
