@@ -22,8 +22,8 @@ from seqpipe import _patterns
 from seqpipe._parse import section, to_plain
 from seqpipe.errors import PatternTimeoutError, RecipeError, ShardCorruptError, TokenizerError
 from seqpipe.shards import write_table
+from seqpipe.tokenizers import _bpe_train, parse_tokenizer
 from seqpipe.tokenizers import bpe as bpe_module
-from seqpipe.tokenizers import parse_tokenizer
 from seqpipe.tokenizers._chunking import _WORD, PRESETS, _trailing, chunker, needs_time_limit
 from seqpipe.tokenizers.bpe import BpeEncoder, BpeTokenizer
 from seqpipe.vocab import VocabSpec
@@ -185,15 +185,20 @@ corpora = st.lists(
     base=st.sampled_from(["bytes", "chars", "chars+marker"]),
     extra=st.integers(0, 40),
     min_count=st.integers(1, 3),
+    few=st.sampled_from([0, 10**9]),
 )
 # Found by a random search: a tie between two pairs of one chunk after symbols before them merged
 # (ranking such ties by symbol index instead of byte offset picked the wrong pair).
-@example(corpus=[("cccbcc", 3), ("bcbcc", 3)], base="bytes", extra=12, min_count=1)
-@example(corpus=[("ddbdcdb", 3), ("dcdbc", 3)], base="chars", extra=12, min_count=1)
-def test_trainer_matches_naive_reference(corpus: list[tuple[str, int]], base: str, extra: int, min_count: int) -> None:
+@example(corpus=[("cccbcc", 3), ("bcbcc", 3)], base="bytes", extra=12, min_count=1, few=0)
+@example(corpus=[("ddbdcdb", 3), ("dcdbc", 3)], base="chars", extra=12, min_count=1, few=0)
+@example(corpus=[("cccbcc", 3), ("bcbcc", 3)], base="bytes", extra=12, min_count=1, few=10**9)
+@example(corpus=[("ddbdcdb", 3), ("dcdbc", 3)], base="chars", extra=12, min_count=1, few=10**9)
+def test_trainer_matches_naive_reference(
+    corpus: list[tuple[str, int]], base: str, extra: int, min_count: int, few: int
+) -> None:
     """Incremental training gives the naive trainer's merges, and encoding a training chunk
-    gives the naive trainer's final segmentation of it."""
-    check_against_naive(corpus, base, extra, min_count)
+    gives the naive trainer's final segmentation of it (merges done with numpy and in plain Python)."""
+    check_against_naive(corpus, base, extra, min_count, few)
 
 
 # letters, vowel signs and marks of many scripts (a few each, so pairs repeat and ties occur)
@@ -215,17 +220,28 @@ many_script_corpora = st.lists(
     base=st.sampled_from(["bytes", "chars", "chars+marker"]),
     extra=st.integers(0, 60),
     min_count=st.integers(1, 3),
+    few=st.sampled_from([0, 10**9]),
 )
 def test_trainer_matches_naive_reference_on_many_scripts(
-    corpus: list[tuple[str, int]], base: str, extra: int, min_count: int
+    corpus: list[tuple[str, int]], base: str, extra: int, min_count: int, few: int
 ) -> None:
     """On chunks mixing many scripts (multi-byte characters, combining marks, runs of one symbol),
-    the fast trainer's merges and final segmentations equal the naive trainer's."""
-    check_against_naive(corpus, base, extra, min_count)
+    the fast trainer's merges and final segmentations equal the naive trainer's, both ways of merging."""
+    check_against_naive(corpus, base, extra, min_count, few)
 
 
-def check_against_naive(corpus: list[tuple[str, int]], base: str, extra: int, min_count: int) -> None:
-    """Train the fast and the naive trainer on ``corpus``; assert equal merges and segmentations."""
+def check_against_naive(corpus: list[tuple[str, int]], base: str, extra: int, min_count: int, few: int) -> None:
+    """Train the fast trainer (merging in plain Python up to ``few`` slots, else with numpy) and the
+    naive one on ``corpus``; assert equal merges and final segmentations."""
+    saved = _bpe_train.FEW
+    setattr(_bpe_train, "FEW", few)  # noqa: B010 (a Final constant, changed only for this check)
+    try:
+        _check_against_naive(corpus, base, extra, min_count)
+    finally:
+        setattr(_bpe_train, "FEW", saved)  # noqa: B010
+
+
+def _check_against_naive(corpus: list[tuple[str, int]], base: str, extra: int, min_count: int) -> None:
     marker = "</w>" if base == "chars+marker" else ""
     keys = [w.encode() for w, _ in corpus]
     freqs = [c for _, c in corpus]
@@ -698,8 +714,6 @@ def test_training_progress_bar_counts_merges(
     show: bool, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
 ) -> None:
     """With ``show`` a bar on stderr counts merges up to the number the cap leaves; without, nothing is written."""
-    from seqpipe.tokenizers import _bpe_train
-
     every_update = functools.partial(_bpe_train.bar, mininterval=0, miniters=1)  # redraw on each merge
     monkeypatch.setattr(_bpe_train, "bar", every_update)
     tok = BpeTokenizer()

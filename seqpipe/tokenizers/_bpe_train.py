@@ -18,10 +18,12 @@ survives a pop is the true best pair.
 
 from __future__ import annotations
 
+import array
 import heapq
 import itertools
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Final
 
 import numpy as np
 import pyarrow as pa
@@ -30,6 +32,9 @@ from seqpipe.errors import TokenizerError
 from seqpipe.progress import bar
 
 Pair = tuple[int, int]
+# A merge seen at no more slots than this runs in plain Python (see _Chain); tests set it to 0
+# and to a large number to prove both ways against the naive trainer.
+FEW: Final = 48
 
 
 def merge_word(symbols: list[int], left: int, right: int, merged: int) -> list[int]:
@@ -154,12 +159,17 @@ class _Chain:
     ``left * width + right``. Per pair kept (count at least ``min_count``): its count, and the
     slots where it was seen (a slice of the sorted first index plus arrays added as it appeared
     elsewhere; stale slots are dropped when read, by checking the symbols there).
+
+    A merge of many occurrences runs as numpy array operations; most merges late in training
+    have a few occurrences, where a numpy call costs more than the work, so those run as plain
+    Python over ``array.array`` twins of the same memory (``_few``).
     """
 
     sym: np.ndarray
     nxt: np.ndarray
     prv: np.ndarray
     weight: np.ndarray  # count of each slot's chunk (0 for the sentinel)
+    twins: tuple[array.array[int], array.array[int], array.array[int], array.array[int]]  # sym nxt prv weight
     width: int
     min_count: int
     count: dict[int, int]
@@ -187,7 +197,9 @@ class _Chain:
         weight[:n] = np.repeat(np.asarray(freqs, dtype=np.int64), lengths)
         left = np.flatnonzero(nxt[:n] != n)
         codes = sym[left] * width + sym[left + 1]
-        chain = cls(sym, nxt, prv, weight, width, min_count, {}, np.empty(0, np.int64), {})
+        twins = tuple(array.array("q", a.tobytes()) for a in (sym, nxt, prv, weight))
+        sym, nxt, prv, weight = (np.frombuffer(t, dtype=np.int64) for t in twins)  # one memory, two views
+        chain = cls(sym, nxt, prv, weight, twins, width, min_count, {}, np.empty(0, np.int64), {})  # type: ignore[arg-type]
         chain.firsts = chain._group(codes, left, keep_slots=True)
         return chain
 
@@ -222,12 +234,16 @@ class _Chain:
         heapq.heapify(heap)
         return heap
 
-    def _where(self, code: int) -> np.ndarray:
-        """Ascending slots where pair ``code`` occurs now (its position lists are taken out)."""
+    def _seen(self, code: int) -> list[np.ndarray]:
+        """The position lists of pair ``code`` (taken out: the caller puts back what it keeps)."""
         parts = self.added.pop(code, [])
         span = self.groups.pop(code, None)
         if span is not None:
             parts.append(self.sorted_slots[span[0] : span[1]])
+        return parts
+
+    def _where(self, parts: list[np.ndarray], code: int) -> np.ndarray:
+        """Ascending slots of ``parts`` where pair ``code`` occurs now."""
         pos = np.concatenate(parts) if len(parts) > 1 else parts[0]
         a, b = divmod(code, self.width)
         found: np.ndarray = pos[(self.sym[pos] == a) & (self.sym[self.nxt[pos]] == b)]
@@ -236,16 +252,19 @@ class _Chain:
 
     def first(self, code: int) -> int:
         """The slot of the pair's first occurrence now (its positions compacted on the way)."""
-        pos = self._where(code)
+        pos = self._where(self._seen(code), code)
         self.added[code] = [pos]
         return int(pos[0])
 
     def merge(self, code: int, merged: int) -> list[HeapEntry]:
         """Replace pair ``code`` by ``merged`` everywhere (left to right within a chunk); update
         the counts; return heap entries of the pairs that appeared and reach ``min_count``."""
-        sym, nxt, prv, n = self.sym, self.nxt, self.prv, len(self.sym) - 1
-        pos = self._where(code)
+        parts = self._seen(code)
         del self.count[code]
+        if sum(map(len, parts)) <= FEW:
+            return self._few(parts, code, merged)
+        sym, nxt, prv, n = self.sym, self.nxt, self.prv, len(self.sym) - 1
+        pos = self._where(parts, code)
         if len(pos) > 1 and code // self.width == code % self.width:
             pos = _left_to_right(pos, nxt)
         right = nxt[pos]
@@ -254,7 +273,10 @@ class _Chain:
         lost = np.unique(np.concatenate([before[before != n], right[after != n]]))
         lost_codes = sym[lost] * self.width + sym[nxt[lost]]
         keep = lost_codes != code  # the rest of a run of the merged pair; its count is gone already
-        self._lose(lost_codes[keep], self.weight[lost[keep]])
+        if np.any(keep):
+            unique, inverse = np.unique(lost_codes[keep], return_inverse=True)
+            totals = np.bincount(inverse.ravel(), weights=self.weight[lost[keep]], minlength=len(unique))
+            self._lose(zip(unique.tolist(), totals.astype(np.int64).tolist(), strict=True))
         sym[pos] = merged
         sym[right] = -1
         nxt[pos] = after
@@ -264,14 +286,64 @@ class _Chain:
         gained = np.unique(np.concatenate([before[before != n], pos[after != n]]))
         return self._group(sym[gained] * self.width + sym[nxt[gained]], gained)
 
-    def _lose(self, codes: np.ndarray, weights: np.ndarray) -> None:
-        """Subtract ``weights`` from the counts of pairs ``codes``; forget pairs below ``min_count``."""
-        if not len(codes):
-            return
-        unique, inverse = np.unique(codes, return_inverse=True)
-        totals = np.bincount(inverse.ravel(), weights=weights, minlength=len(unique)).astype(np.int64)
+    def _few(self, parts: list[np.ndarray], code: int, merged: int) -> list[HeapEntry]:
+        """:meth:`merge` for a pair seen at a few slots, in plain Python (same steps, same result)."""
+        sym, nxt, prv, weight = self.twins
+        n, width = len(sym) - 1, self.width
+        a, b = divmod(code, width)
+        pos: list[int] = []
+        taken = -1  # the right slot of the last merge: in a run ``x x x`` it cannot start another
+        for s in sorted(itertools.chain.from_iterable(p.tolist() for p in parts)):
+            if s != taken and sym[s] == a and sym[nxt[s]] == b:
+                pos.append(s)
+                taken = nxt[s]
+        lost: set[int] = set()
+        for s in pos:
+            if prv[s] != n:
+                lost.add(prv[s])
+            if nxt[nxt[s]] != n:
+                lost.add(nxt[s])
+        totals: dict[int, int] = {}
+        for t in lost:
+            c = sym[t] * width + sym[nxt[t]]
+            if c != code:  # the rest of a run of the merged pair; its count is gone already
+                totals[c] = totals.get(c, 0) + weight[t]
+        self._lose(totals.items())
+        for s in pos:
+            r = nxt[s]
+            after = nxt[r]
+            sym[s] = merged
+            sym[r] = -1
+            nxt[s] = after
+            if after != n:
+                prv[after] = s
+        gained: set[int] = set()
+        for s in pos:
+            if prv[s] != n:
+                gained.add(prv[s])
+            if nxt[s] != n:
+                gained.add(s)
+        born: dict[int, list[int]] = {}  # pair -> [count, slots...] (ascending)
+        for t in sorted(gained):
+            c = sym[t] * width + sym[nxt[t]]
+            seen = born.get(c)
+            if seen is None:
+                born[c] = [weight[t], t]
+            else:
+                seen[0] += weight[t]
+                seen.append(t)
+        entries: list[HeapEntry] = []
+        for c, (total, *slots) in born.items():
+            if total >= self.min_count:
+                self.count[c] = total
+                self.added[c] = [np.array(slots, dtype=np.int64)]
+                entries.append((-total, slots[0], c))
+        return entries
+
+    def _lose(self, totals: Iterable[tuple[int, int]]) -> None:
+        """Subtract each pair's total from its count; forget pairs below ``min_count``."""
         count = self.count
-        for code, t in zip(unique.tolist(), totals.tolist(), strict=True):
+        for code, t in totals:
             c = count.get(code)
             if c is None:
                 continue
