@@ -723,3 +723,30 @@ def test_training_progress_bar_counts_merges(
         assert "byte-pair merges" in err and "30/30" in err
     else:
         assert err == ""
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    texts=st.lists(st.text(alphabet=MANY_SCRIPTS, min_size=1, max_size=30), min_size=70, max_size=110, unique=True),
+    base=st.sampled_from(["bytes", "chars", "chars+marker"]),
+    extra=st.integers(0, 120),
+)
+def test_merging_many_chunks_together_equals_one_by_one(texts: list[str], base: str, extra: int) -> None:
+    """Ids of many uncached chunks merged together (array rounds) equal those merged one chunk at a time,
+    unseen characters included."""
+    marker = "</w>" if base == "chars+marker" else ""
+    tok = BpeTokenizer(base="chars" if marker else base, end_of_word=marker, min_pair_count=1)
+    trained = texts[: len(texts) // 2]  # the other half holds chunks (and characters) training never saw
+    alphabet = 256 if base == "bytes" else len(set("".join(trained))) + bool(marker)
+    enc = tok.fit(counts_table([(t.encode(), 1) for t in trained]), capped(N_RESERVED + alphabet + extra))
+    keys = pa.array([t.encode() for t in texts], pa.binary())
+    enc._cache.clear()
+    together = enc.piece_ids(keys)
+    saved = bpe_module.BATCH_MISSES
+    setattr(bpe_module, "BATCH_MISSES", 10**9)  # noqa: B010 (a Final constant, changed only for this check)
+    try:
+        enc._cache.clear()
+        one_by_one = enc.piece_ids(keys)
+    finally:
+        setattr(bpe_module, "BATCH_MISSES", saved)  # noqa: B010
+    assert np.array_equal(together[0], one_by_one[0]) and np.array_equal(together[1], one_by_one[1])

@@ -77,6 +77,75 @@ def rank_table(merges: Sequence[tuple[int, int, int]]) -> dict[Pair, tuple[int, 
 
 
 @dataclass(frozen=True, slots=True)
+class RankArrays:
+    """The merges as sorted pair codes (``left * width + right``) with each one's rank and merged id,
+    for :func:`apply_merges_many`."""
+
+    width: int
+    codes: np.ndarray
+    ranks: np.ndarray
+    merged: np.ndarray
+
+    @classmethod
+    def of(cls, merges: Sequence[tuple[int, int, int]], width: int) -> RankArrays:
+        table = np.array(merges, dtype=np.int64).reshape(-1, 3)
+        codes = table[:, 0] * width + table[:, 1]
+        order = np.argsort(codes, kind="stable")
+        return cls(width, codes[order], order.astype(np.int64), table[order, 2])
+
+
+def apply_merges_many(flat: np.ndarray, lengths: np.ndarray, ranks: RankArrays) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`apply_merges` on many chunks at once (``flat`` symbols, ``lengths`` per chunk): each
+    round merges, in every chunk still changing, the lowest-ranked pair it holds; chunks with no
+    merge left leave the working set. Returns the symbols and lengths after the last merge."""
+    rows = len(lengths)
+    sym = np.asarray(flat, dtype=np.int64)
+    row = np.repeat(np.arange(rows, dtype=np.int64), lengths)
+    done_sym: list[np.ndarray] = []
+    done_row: list[np.ndarray] = []
+    top = len(ranks.codes) - 1
+    while len(sym) > 1 and top >= 0:
+        codes = sym[:-1] * ranks.width + sym[1:]
+        at = np.minimum(np.searchsorted(ranks.codes, codes), top)
+        hit = (row[:-1] == row[1:]) & (ranks.codes[at] == codes)
+        active = np.zeros(rows, dtype=bool)
+        active[row[:-1][hit]] = True
+        still = active[row]
+        done_sym.append(sym[~still])
+        done_row.append(row[~still])
+        if not hit.any():
+            sym, row = sym[:0], row[:0]
+            break
+        rank = np.where(hit, ranks.ranks[at], len(ranks.codes))
+        best = np.full(rows, len(ranks.codes), dtype=np.int64)
+        np.minimum.at(best, row[:-1], rank)
+        site = np.flatnonzero(hit & (rank == best[row[:-1]]))
+        if len(site) > 1 and np.any(site[1:] == site[:-1] + 1):
+            site = _every_other(site)  # a run of one pair x x: left to right, each merge takes two
+        keep = np.ones(len(sym), dtype=bool)
+        keep[site + 1] = False
+        sym = sym.copy()
+        sym[site] = ranks.merged[at[site]]
+        keep &= still
+        sym, row = sym[keep], row[keep]
+    done_sym.append(sym)
+    done_row.append(row)
+    all_rows = np.concatenate(done_row)
+    order = np.argsort(all_rows, kind="stable")  # stable: a chunk's symbols keep their order
+    out_lengths = np.bincount(all_rows, minlength=rows).astype(np.int64)
+    return np.concatenate(done_sym)[order], out_lengths
+
+
+def _every_other(site: np.ndarray) -> np.ndarray:
+    """Of ascending sites, those a left-to-right scan merges where sites run on (``s``, ``s + 1``)."""
+    linked = np.concatenate([[False], site[1:] == site[:-1] + 1])
+    run_start = np.flatnonzero(~linked)
+    step = np.arange(len(site)) - run_start[np.cumsum(~linked) - 1]
+    kept: np.ndarray = site[step % 2 == 0]
+    return kept
+
+
+@dataclass(frozen=True, slots=True)
 class Learned:
     """What training produced: merges in rank order and the chunks' final symbols."""
 
