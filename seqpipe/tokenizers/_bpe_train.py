@@ -1,4 +1,4 @@
-"""Byte-pair encoding: learning merges, and applying them to one chunk.
+"""Byte-pair encoding: learning merges, and applying them to chunks.
 
 The learning rule is the one of Sennrich, Haddow & Birch (ACL 2016), section
 3.2: repeatedly replace the most frequent adjacent symbol pair by a new symbol.
@@ -7,13 +7,16 @@ names symbols by their strings; the two agree as long as no merge spells an
 existing token a second way, which greedy left-to-right merging has not done in
 any corpus we tried; the tests compare against a string-based trainer.)
 
-Each distinct chunk is stored once with its frequency. Pair counts and, per
-pair, the set of chunks holding it, are kept up to date after each merge by
-revisiting only the chunks that held the merged pair. The next pair comes from
-a heap with lazy invalidation: every pair always has an entry whose key is at
-most its true key ``(-count, first chunk, first position)``; a popped entry
-whose key is out of date is pushed back with the true key, so the entry that
-survives a pop is the true best pair.
+Each distinct chunk is stored once with its frequency; all chunks' symbols sit in
+one linked list of slots (:class:`_Chain`), so a merge touches only the slots where
+the merged pair occurs, not the whole chunks holding it. Pair counts and, per
+pair, the slots where it occurs are kept up to date after each merge; text in
+many scripts has very many distinct chunks and pairs, so the first count is a
+numpy group-by, large merges are array operations and pairs that fall below the
+minimum count are forgotten. The next pair comes from a heap with lazy
+invalidation: every pair always has an entry whose key is at most its true key
+``(-count, first slot)``; a popped entry whose key is out of date is pushed back
+with the true key, so the entry that survives a pop is the true best pair.
 """
 
 from __future__ import annotations
@@ -155,9 +158,10 @@ class Learned:
     symbols: np.ndarray  # every training chunk's symbols after the last merge, chunk after chunk
     offsets: np.ndarray  # chunk ``i`` is ``symbols[offsets[i]:offsets[i + 1]]``
 
-    def word(self, i: int) -> tuple[int, ...]:
-        """Training chunk ``i``'s symbols after the last merge."""
-        return tuple(self.symbols[self.offsets[i] : self.offsets[i + 1]].tolist())
+    def words(self, rows: Sequence[int]) -> list[tuple[int, ...]]:
+        """The symbols after the last merge of each training chunk in ``rows``."""
+        values, offsets = self.symbols.tolist(), self.offsets.tolist()
+        return [tuple(values[offsets[i] : offsets[i + 1]]) for i in rows]
 
 
 def learn(

@@ -253,8 +253,8 @@ class BpeTokenizer(Tokenizer):
         encoder = BpeEncoder(self, vocabulary, learned.merges, alphabet_size=len(alphabet))
         # training already segmented every train chunk: keep the most frequent as cache entries,
         # so encoding the train split right after fitting is lookups only
-        for i in np.argsort(-freqs, kind="stable")[:CACHE_LIMIT].tolist():
-            encoder._cache[keys[i]] = learned.word(i)
+        top = np.argsort(-freqs, kind="stable")[:CACHE_LIMIT].tolist()
+        encoder._cache.update(zip([keys[i] for i in top], learned.words(top), strict=True))
         return encoder
 
     # -- storage ---------------------------------------------------------------
