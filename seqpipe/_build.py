@@ -396,7 +396,7 @@ def _build(
         ingested = ingest(ctx, plan, merger, counting=source is None)
         kept = assign(ctx, plan)
         if source is None:
-            fitted = fit(recipe, count(ctx, plan, ingested, kept, merger), stage)
+            fitted = fit(recipe, count(ctx, plan, ingested, kept, merger), stage, show=ctx.show)
         else:  # the ids of another dataset: nothing to count or fit
             fitted = reuse(recipe, source, stage)
         encoded = encode(ctx, plan, kept, fitted, stage)
@@ -633,9 +633,9 @@ def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: Coun
     return merger.result()
 
 
-def fit(recipe: Recipe, counts: pa.Table, stage: Path) -> Fitted:
+def fit(recipe: Recipe, counts: pa.Table, stage: Path, *, show: bool = False) -> Fitted:
     """Fit the tokenizer's vocabulary (and learned state) on the counts; store both in the stage."""
-    encoder = recipe.tokenizer.fit(counts, recipe.vocabulary)
+    encoder = recipe.tokenizer.fit(counts, recipe.vocabulary, show=show)
     vocab = encoder.vocabulary
     for stale in (VOCAB_FILE, *OPTIONAL_TOP):
         (stage / stale).unlink(missing_ok=True)

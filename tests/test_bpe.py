@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import functools
 import itertools
 import os
 import subprocess
@@ -21,8 +22,8 @@ from seqpipe import _patterns
 from seqpipe._parse import section, to_plain
 from seqpipe.errors import PatternTimeoutError, RecipeError, ShardCorruptError, TokenizerError
 from seqpipe.shards import write_table
+from seqpipe.tokenizers import _bpe_train, parse_tokenizer
 from seqpipe.tokenizers import bpe as bpe_module
-from seqpipe.tokenizers import parse_tokenizer
 from seqpipe.tokenizers._chunking import _WORD, PRESETS, _trailing, chunker, needs_time_limit
 from seqpipe.tokenizers.bpe import BpeEncoder, BpeTokenizer
 from seqpipe.vocab import VocabSpec
@@ -184,14 +185,63 @@ corpora = st.lists(
     base=st.sampled_from(["bytes", "chars", "chars+marker"]),
     extra=st.integers(0, 40),
     min_count=st.integers(1, 3),
+    few=st.sampled_from([0, 10**9]),
 )
 # Found by a random search: a tie between two pairs of one chunk after symbols before them merged
 # (ranking such ties by symbol index instead of byte offset picked the wrong pair).
-@example(corpus=[("cccbcc", 3), ("bcbcc", 3)], base="bytes", extra=12, min_count=1)
-@example(corpus=[("ddbdcdb", 3), ("dcdbc", 3)], base="chars", extra=12, min_count=1)
-def test_trainer_matches_naive_reference(corpus: list[tuple[str, int]], base: str, extra: int, min_count: int) -> None:
+@example(corpus=[("cccbcc", 3), ("bcbcc", 3)], base="bytes", extra=12, min_count=1, few=0)
+@example(corpus=[("ddbdcdb", 3), ("dcdbc", 3)], base="chars", extra=12, min_count=1, few=0)
+@example(corpus=[("cccbcc", 3), ("bcbcc", 3)], base="bytes", extra=12, min_count=1, few=10**9)
+@example(corpus=[("ddbdcdb", 3), ("dcdbc", 3)], base="chars", extra=12, min_count=1, few=10**9)
+def test_trainer_matches_naive_reference(
+    corpus: list[tuple[str, int]], base: str, extra: int, min_count: int, few: int
+) -> None:
     """Incremental training gives the naive trainer's merges, and encoding a training chunk
-    gives the naive trainer's final segmentation of it."""
+    gives the naive trainer's final segmentation of it (merges done with numpy and in plain Python)."""
+    check_against_naive(corpus, base, extra, min_count, few)
+
+
+# letters, vowel signs and marks of many scripts (a few each, so pairs repeat and ties occur)
+MANY_SCRIPTS = (
+    "ab\u00e9\u0301 \u0430\u0431 \u03b1\u03b2 \u0627\u0628 \u0915\u093f\u094d \u4e2d\u6587"
+    " \ud55c\uae00 \u0e01\u0e48 \u1200 \u05e9 \u10d0 \u0561 7\u0967"
+)
+many_script_corpora = st.lists(
+    st.tuples(st.text(alphabet=MANY_SCRIPTS, min_size=1, max_size=16), st.integers(1, 9)),
+    min_size=1,
+    max_size=24,
+    unique_by=lambda t: t[0],
+)
+
+
+@settings(max_examples=120, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    corpus=many_script_corpora,
+    base=st.sampled_from(["bytes", "chars", "chars+marker"]),
+    extra=st.integers(0, 60),
+    min_count=st.integers(1, 3),
+    few=st.sampled_from([0, 10**9]),
+)
+def test_trainer_matches_naive_reference_on_many_scripts(
+    corpus: list[tuple[str, int]], base: str, extra: int, min_count: int, few: int
+) -> None:
+    """On chunks mixing many scripts (multi-byte characters, combining marks, runs of one symbol),
+    the fast trainer's merges and final segmentations equal the naive trainer's, both ways of merging."""
+    check_against_naive(corpus, base, extra, min_count, few)
+
+
+def check_against_naive(corpus: list[tuple[str, int]], base: str, extra: int, min_count: int, few: int) -> None:
+    """Train the fast trainer (merging in plain Python up to ``few`` slots, else with numpy) and the
+    naive one on ``corpus``; assert equal merges and final segmentations."""
+    saved = _bpe_train.FEW
+    setattr(_bpe_train, "FEW", few)  # noqa: B010 (a Final constant, changed only for this check)
+    try:
+        _check_against_naive(corpus, base, extra, min_count)
+    finally:
+        setattr(_bpe_train, "FEW", saved)  # noqa: B010
+
+
+def _check_against_naive(corpus: list[tuple[str, int]], base: str, extra: int, min_count: int) -> None:
     marker = "</w>" if base == "chars+marker" else ""
     keys = [w.encode() for w, _ in corpus]
     freqs = [c for _, c in corpus]
@@ -657,3 +707,46 @@ def test_independent_of_hash_seed() -> None:
         runs.append(done.stdout)
     assert runs[0] == runs[1] == runs[2]
     assert runs[0].startswith("[(")
+
+
+@pytest.mark.parametrize("show", [True, False])
+def test_training_progress_bar_counts_merges(
+    show: bool, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """With ``show`` a bar on stderr counts merges up to the number the cap leaves; without, nothing is written."""
+    every_update = functools.partial(_bpe_train.bar, mininterval=0, miniters=1)  # redraw on each merge
+    monkeypatch.setattr(_bpe_train, "bar", every_update)
+    tok = BpeTokenizer()
+    tok.fit(counts_from_texts(tok, [LOG]), capped(N_RESERVED + 256 + 30), show=show)
+    err = capsys.readouterr().err
+    if show:
+        assert "byte-pair merges" in err and "30/30" in err
+    else:
+        assert err == ""
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    texts=st.lists(st.text(alphabet=MANY_SCRIPTS, min_size=1, max_size=30), min_size=70, max_size=110, unique=True),
+    base=st.sampled_from(["bytes", "chars", "chars+marker"]),
+    extra=st.integers(0, 120),
+)
+def test_merging_many_chunks_together_equals_one_by_one(texts: list[str], base: str, extra: int) -> None:
+    """Ids of many uncached chunks merged together (array rounds) equal those merged one chunk at a time,
+    unseen characters included."""
+    marker = "</w>" if base == "chars+marker" else ""
+    tok = BpeTokenizer(base="chars" if marker else base, end_of_word=marker, min_pair_count=1)
+    trained = texts[: len(texts) // 2]  # the other half holds chunks (and characters) training never saw
+    alphabet = 256 if base == "bytes" else len(set("".join(trained))) + bool(marker)
+    enc = tok.fit(counts_table([(t.encode(), 1) for t in trained]), capped(N_RESERVED + alphabet + extra))
+    keys = pa.array([t.encode() for t in texts], pa.binary())
+    enc._cache.clear()
+    together = enc.piece_ids(keys)
+    saved = bpe_module.BATCH_MISSES
+    setattr(bpe_module, "BATCH_MISSES", 10**9)  # noqa: B010 (a Final constant, changed only for this check)
+    try:
+        enc._cache.clear()
+        one_by_one = enc.piece_ids(keys)
+    finally:
+        setattr(bpe_module, "BATCH_MISSES", saved)  # noqa: B010
+    assert np.array_equal(together[0], one_by_one[0]) and np.array_equal(together[1], one_by_one[1])

@@ -1,8 +1,10 @@
 """Byte-pair encoding: training against a recount-everything trainer, encoding against the bare regex split,
-and the default chunking's compression against the chunking rule it replaced.
+the default chunking's compression against the chunking rule it replaced, and training and whole builds
+on text in many scripts.
 
-The text is English-like but invented: pseudo-words built from syllables with a
-fixed seed, drawn with Zipf-like frequencies into sentences and documents.
+The text is invented: English-like pseudo-words built from syllables with a fixed seed, drawn
+with Zipf-like frequencies into sentences and documents; and, for the ``multiscript`` lines,
+invented words in a dozen scripts (``_scripts_corpus.py``), which give far more distinct chunks.
 """
 
 from __future__ import annotations
@@ -19,8 +21,11 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 import regex
+from _scripts_corpus import write_multiscript
 from common import Measure, best_time
 
+from seqpipe import build
+from seqpipe.recipe import parse_recipe
 from seqpipe.tokenizers.bpe import BpeEncoder, BpeTokenizer
 from seqpipe.vocab import VocabSpec
 
@@ -132,7 +137,13 @@ def _symbols_after(enc: BpeEncoder, keys: pa.Array) -> list[list[bytes]]:
 
 
 def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
-    """``bpe.train_vs_naive``, ``bpe.encode_vs_regex_split`` and ``bpe.chunking_compression_vs_previous``."""
+    """``bpe.train_vs_naive``, ``bpe.encode_vs_regex_split``, ``bpe.chunking_compression_vs_previous``,
+    ``bpe.multiscript_train_vs_naive`` and ``bpe.multiscript_build_vs_bytes``."""
+    yield from _english_like(quick)
+    yield from _multiscript(quick, workdir)
+
+
+def _english_like(quick: bool) -> Iterator[Measure]:
     docs = make_documents(200_000 if quick else 5_000_000)
     text = "".join(docs)
     n_merges = 500 if quick else 4000
@@ -141,28 +152,13 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     spec = dataclasses.replace(SPEC, cap=START + n_merges)
     counts = _counts(tok, docs)
     keys = counts.column("key").combine_chunks()
-    freqs = counts.column("count").to_pylist()
 
     fast = best_time(lambda: tok.fit(counts, spec))
     enc = tok.fit(counts, spec)
     if len(enc.merges) != n_merges:
         raise RuntimeError(f"training stopped after {len(enc.merges)} of {n_merges} merges")
 
-    # The naive trainer recounts every pair each merge; its cost per merge falls as chunks
-    # shrink, so it is timed for `sample` merges at five points of training and integrated.
-    naive = _naive_reference()
-    points = [0, n_merges // 4, n_merges // 2, 3 * n_merges // 4, n_merges - sample]
-    per_merge = []
-    for m in points:
-        state = tok.fit(counts, dataclasses.replace(SPEC, cap=START + m))
-        words = _symbols_after(state, keys)
-        t0 = time.perf_counter()
-        got, _ = naive(words, freqs, 0, sample, 2)
-        per_merge.append((time.perf_counter() - t0) / sample)
-        v = enc.vocabulary
-        if got != [(v.token(a), v.token(b)) for a, b, _ in enc.merges[m : m + sample]]:
-            raise RuntimeError(f"naive and fast trainers disagree after {m} merges")
-    naive_total = float(np.trapezoid(per_merge, points) + per_merge[-1] * sample)
+    naive_total, points = _naive_seconds(tok, counts, enc, START, sample)
     yield Measure(
         "bpe.train_vs_naive",
         naive_total / fast,
@@ -207,6 +203,91 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
         0.98,
         f"(tokens per byte at {START + n_merges} ids on {len(text) / 1e6:.1f} MB: previous rule {before:.4f}, "
         f"default {tok.chunking!r} {now:.4f}, ratio {before / now:.4f}; above 1 the default needs fewer tokens)",
+    )
+
+
+def _naive_seconds(
+    tok: BpeTokenizer, counts: pa.Table, enc: BpeEncoder, start: int, sample: int
+) -> tuple[float, list[int]]:
+    """Seconds the naive trainer would take for ``enc``'s merges, and the merge counts it was timed at.
+
+    The naive trainer recounts every pair each merge; its cost per merge falls as chunks shrink,
+    so it is timed for ``sample`` merges at five points of training and integrated."""
+    naive = _naive_reference()
+    keys = counts.column("key").combine_chunks()
+    freqs = counts.column("count").to_pylist()
+    n_merges = len(enc.merges)
+    points = [0, n_merges // 4, n_merges // 2, 3 * n_merges // 4, n_merges - sample]
+    per_merge = []
+    for m in points:
+        state = tok.fit(counts, dataclasses.replace(SPEC, cap=start + m))
+        words = _symbols_after(state, keys)
+        t0 = time.perf_counter()
+        got, _ = naive(words, freqs, 0, sample, tok.min_pair_count)
+        per_merge.append((time.perf_counter() - t0) / sample)
+        v = enc.vocabulary
+        if got != [(v.token(a), v.token(b)) for a, b, _ in enc.merges[m : m + sample]]:
+            raise RuntimeError(f"naive and fast trainers disagree after {m} merges")
+    return float(np.trapezoid(per_merge, points) + per_merge[-1] * sample), points
+
+
+_SCRIPTS_RECIPE = """
+[dataset]
+name = "bench-scripts"
+[[sources]]
+kind = "text"
+paths = "corpus/*.txt"
+document = "line"
+"""
+
+
+def _multiscript(quick: bool, workdir: Path) -> Iterator[Measure]:
+    """Training (chars base) and whole builds on invented text in many scripts."""
+    path = workdir / "scripts" / "corpus" / "scripts.txt"
+    size = write_multiscript(path, 250_000 if quick else 7_000_000, seed=5)
+    text = path.read_text(encoding="utf-8")
+    docs = text.splitlines(keepends=True)
+    n_merges = 300 if quick else 16_000
+    sample = 3 if quick else 5
+    tok = BpeTokenizer(base="chars", min_pair_count=2)
+    counts = _counts(tok, docs)
+    start = len(SPEC.reserved) + len(set(text))  # reserved tokens + the characters seen
+    spec = dataclasses.replace(SPEC, cap=start + n_merges)
+    fast = best_time(lambda: tok.fit(counts, spec), repeat=3 if quick else 2)
+    enc = tok.fit(counts, spec)
+    if len(enc.merges) != n_merges:
+        raise RuntimeError(f"training stopped after {len(enc.merges)} of {n_merges} merges")
+    naive_total, points = _naive_seconds(tok, counts, enc, start, sample)
+    yield Measure(
+        "bpe.multiscript_train_vs_naive",
+        naive_total / fast,
+        100,
+        f"(chars base, {n_merges} merges on {size / 1e6:.1f} MB in {len(set(text))} characters, {counts.num_rows} "
+        f"distinct chunks: fast {fast:.2f} s best of {3 if quick else 2}; naive {naive_total:.1f} s extrapolated "
+        f"from {sample} merges timed at each of {points})",
+    )
+
+    root = path.parent.parent
+    recipes = {
+        "bytes": _SCRIPTS_RECIPE + '[tokenizer]\nkind = "bytes"\n',
+        "bpe": _SCRIPTS_RECIPE + f'[tokenizer]\nkind = "bpe"\nbase = "chars"\n[vocabulary]\ncap = {start + n_merges}\n',
+    }
+    seconds: dict[str, float] = {}
+    for name, text_of in recipes.items():
+        recipe = parse_recipe(text_of, root)
+        runs = []
+        for i in range(2 if quick else 3):
+            t0 = time.perf_counter()
+            build(recipe, workdir / f"scripts-{name}-{i}", workers=1, progress=False)
+            runs.append(time.perf_counter() - t0)
+        seconds[name] = min(runs)
+    yield Measure(
+        "bpe.multiscript_build_vs_bytes",
+        seconds["bytes"] / seconds["bpe"],
+        0.15,
+        f"(whole build of {size / 1e6:.1f} MB in many scripts, one document per line, best of {len(runs)} fresh "
+        f"builds each: byte-pair chars base at cap {start + n_merges} {seconds['bpe']:.2f} s, bytes "
+        f"{seconds['bytes']:.2f} s)",
     )
 
 

@@ -1,4 +1,4 @@
-"""Byte-pair encoding: learning merges, and applying them to one chunk.
+"""Byte-pair encoding: learning merges, and applying them to chunks.
 
 The learning rule is the one of Sennrich, Haddow & Birch (ACL 2016), section
 3.2: repeatedly replace the most frequent adjacent symbol pair by a new symbol.
@@ -7,28 +7,37 @@ names symbols by their strings; the two agree as long as no merge spells an
 existing token a second way, which greedy left-to-right merging has not done in
 any corpus we tried; the tests compare against a string-based trainer.)
 
-Each distinct chunk is stored once with its frequency. Pair counts and, per
-pair, the set of chunks holding it, are kept up to date after each merge by
-revisiting only the chunks that held the merged pair. The next pair comes from
-a heap with lazy invalidation: every pair always has an entry whose key is at
-most its true key ``(-count, first chunk, first position)``; a popped entry
-whose key is out of date is pushed back with the true key, so the entry that
-survives a pop is the true best pair.
+Each distinct chunk is stored once with its frequency; all chunks' symbols sit in
+one linked list of slots (:class:`_Chain`), so a merge touches only the slots where
+the merged pair occurs, not the whole chunks holding it. Pair counts and, per
+pair, the slots where it occurs are kept up to date after each merge; text in
+many scripts has very many distinct chunks and pairs, so the first count is a
+numpy group-by, large merges are array operations and pairs that fall below the
+minimum count are forgotten. The next pair comes from a heap with lazy
+invalidation: every pair always has an entry whose key is at most its true key
+``(-count, first slot)``; a popped entry whose key is out of date is pushed back
+with the true key, so the entry that survives a pop is the true best pair.
 """
 
 from __future__ import annotations
 
+import array
 import heapq
 import itertools
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Final
 
 import numpy as np
 import pyarrow as pa
 
 from seqpipe.errors import TokenizerError
+from seqpipe.progress import bar
 
 Pair = tuple[int, int]
+# A merge seen at no more slots than this runs in plain Python (see _Chain); tests set it to 0
+# and to a large number to prove both ways against the naive trainer.
+FEW: Final = 48
 
 
 def merge_word(symbols: list[int], left: int, right: int, merged: int) -> list[int]:
@@ -71,174 +80,373 @@ def rank_table(merges: Sequence[tuple[int, int, int]]) -> dict[Pair, tuple[int, 
 
 
 @dataclass(frozen=True, slots=True)
+class RankArrays:
+    """The merges as sorted pair codes (``left * width + right``) with each one's rank and merged id,
+    for :func:`apply_merges_many`."""
+
+    width: int
+    codes: np.ndarray
+    ranks: np.ndarray
+    merged: np.ndarray
+
+    @classmethod
+    def of(cls, merges: Sequence[tuple[int, int, int]], width: int) -> RankArrays:
+        table = np.array(merges, dtype=np.int64).reshape(-1, 3)
+        codes = table[:, 0] * width + table[:, 1]
+        order = np.argsort(codes, kind="stable")
+        return cls(width, codes[order], order.astype(np.int64), table[order, 2])
+
+
+def apply_merges_many(flat: np.ndarray, lengths: np.ndarray, ranks: RankArrays) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`apply_merges` on many chunks at once (``flat`` symbols, ``lengths`` per chunk): each
+    round merges, in every chunk still changing, the lowest-ranked pair it holds; chunks with no
+    merge left leave the working set. Returns the symbols and lengths after the last merge."""
+    rows = len(lengths)
+    sym = np.asarray(flat, dtype=np.int64)
+    row = np.repeat(np.arange(rows, dtype=np.int64), lengths)
+    done_sym: list[np.ndarray] = []
+    done_row: list[np.ndarray] = []
+    top = len(ranks.codes) - 1
+    while len(sym) > 1 and top >= 0:
+        codes = sym[:-1] * ranks.width + sym[1:]
+        at = np.minimum(np.searchsorted(ranks.codes, codes), top)
+        hit = (row[:-1] == row[1:]) & (ranks.codes[at] == codes)
+        active = np.zeros(rows, dtype=bool)
+        active[row[:-1][hit]] = True
+        still = active[row]
+        done_sym.append(sym[~still])
+        done_row.append(row[~still])
+        if not hit.any():
+            sym, row = sym[:0], row[:0]
+            break
+        rank = np.where(hit, ranks.ranks[at], len(ranks.codes))
+        best = np.full(rows, len(ranks.codes), dtype=np.int64)
+        np.minimum.at(best, row[:-1], rank)
+        site = np.flatnonzero(hit & (rank == best[row[:-1]]))
+        if len(site) > 1 and np.any(site[1:] == site[:-1] + 1):
+            site = _every_other(site)  # a run of one pair x x: left to right, each merge takes two
+        keep = np.ones(len(sym), dtype=bool)
+        keep[site + 1] = False
+        sym = sym.copy()
+        sym[site] = ranks.merged[at[site]]
+        keep &= still
+        sym, row = sym[keep], row[keep]
+    done_sym.append(sym)
+    done_row.append(row)
+    all_rows = np.concatenate(done_row)
+    order = np.argsort(all_rows, kind="stable")  # stable: a chunk's symbols keep their order
+    out_lengths = np.bincount(all_rows, minlength=rows).astype(np.int64)
+    return np.concatenate(done_sym)[order], out_lengths
+
+
+def _every_other(site: np.ndarray) -> np.ndarray:
+    """Of ascending sites, those a left-to-right scan merges where sites run on (``s``, ``s + 1``)."""
+    linked = np.concatenate([[False], site[1:] == site[:-1] + 1])
+    run_start = np.flatnonzero(~linked)
+    step = np.arange(len(site)) - run_start[np.cumsum(~linked) - 1]
+    kept: np.ndarray = site[step % 2 == 0]
+    return kept
+
+
+@dataclass(frozen=True, slots=True)
 class Learned:
     """What training produced: merges in rank order and the chunks' final symbols."""
 
     merges: list[tuple[int, int, int]]  # (left id, right id, merged id)
     merge_counts: list[int]  # pair frequency when the merge was chosen
     tokens: list[bytes]  # bytes of every id, reserved tokens included
-    words: list[list[int]]  # each training chunk's symbols after the last merge
+    symbols: np.ndarray  # every training chunk's symbols after the last merge, chunk after chunk
+    offsets: np.ndarray  # chunk ``i`` is ``symbols[offsets[i]:offsets[i + 1]]``
+
+    def words(self, rows: Sequence[int]) -> list[tuple[int, ...]]:
+        """The symbols after the last merge of each training chunk in ``rows``."""
+        values, offsets = self.symbols.tolist(), self.offsets.tolist()
+        return [tuple(values[offsets[i] : offsets[i + 1]]) for i in rows]
 
 
-def _first_of(pair: Pair, where: set[int], words: Sequence[list[int]], sizes: Sequence[int]) -> tuple[int, int]:
-    """The pair's first occurrence now: (chunk row, byte offset in the chunk)."""
-    w = min(where)
-    sym = words[w]
-    a, b = pair
-    offset = 0
-    for i in range(len(sym) - 1):
-        if sym[i] == a and sym[i + 1] == b:
-            return w, offset
-        offset += sizes[sym[i]]
-    raise AssertionError("pair index out of step with chunk symbols")  # a bug, not bad input
-
-
-def learn(words: list[list[int]], freqs: Sequence[int], tokens: list[bytes], *, limit: int, min_count: int) -> Learned:
+def learn(
+    flat: np.ndarray,
+    lengths: np.ndarray,
+    freqs: np.ndarray,
+    tokens: list[bytes],
+    *,
+    limit: int,
+    min_count: int,
+    show: bool = False,
+) -> Learned:
     """Merge pairs until ``len(tokens) == limit`` or no pair occurs ``min_count`` times.
 
-    ``words`` (chunk symbols in corpus order) and ``tokens`` are updated in place.
-    Ties on count go to the pair whose first occurrence is earliest in corpus
-    order: chunk row, then position within the chunk. Only integers are hashed,
-    so the result does not depend on ``PYTHONHASHSEED``.
+    ``flat`` holds the chunks' starting symbols one chunk after another (``lengths`` each, in
+    corpus order), ``freqs`` each chunk's count; ``tokens`` (bytes per id) is extended in place.
+    Ties on count go to the pair whose first occurrence is earliest in corpus order: chunk row,
+    then position within the chunk. Only integers are compared, so the result does not depend on
+    ``PYTHONHASHSEED``. ``show``: a progress bar counting merges.
 
-    Heap keys are ``(-count, first row, first byte offset, left, right)``; a byte
-    offset, unlike a symbol index, does not move when symbols before it merge, and
-    it orders positions within a chunk the same way. A merge
-    creates pairs only with its new id, so an existing pair never gains: its
-    count and first occurrence change only by losses, and an entry whose count
-    is still current is exact. A popped entry with a stale count is pushed back
-    with the true key; a pair is pushed once when it appears, so each pair has
-    one live entry.
+    Heap keys are ``(-count, first slot, pair code)``; a slot (see :class:`_Chain`) orders
+    occurrences by row, then position, and does not move when symbols before it merge. A merge
+    creates pairs only with its new id, so an existing pair never gains: its count and first
+    occurrence change only by losses, and an entry whose count is still current is exact. A
+    popped entry with a stale count is pushed back with the true key; a pair is pushed once when
+    it appears, so each pair has one live entry. A pair below ``min_count`` can never reach it
+    again, so it is forgotten (counts, positions) the moment it falls below.
     """
-    pairs = _Pairs(words, freqs, [len(t) for t in tokens])  # sizes: bytes per id
-    heap = pairs.index(min_count)
     merges: list[tuple[int, int, int]] = []
     merge_counts: list[int] = []
-    while heap and len(tokens) < limit:
-        neg, _, _, a, b = heapq.heappop(heap)
-        pair = (a, b)
-        c = pairs.count.get(pair, 0)
-        if c < min_count:
-            continue  # counts only fall, so the pair is done
-        if c != -neg:
-            heapq.heappush(heap, (-c, *_first_of(pair, pairs.where[pair], words, pairs.sizes), a, b))
-            continue
-        z = len(tokens)
-        tokens.append(tokens[a] + tokens[b])
-        pairs.sizes.append(pairs.sizes[a] + pairs.sizes[b])
-        merges.append((a, b, z))
-        merge_counts.append(c)
-        for p, at in pairs.merge(pair, z).items():
-            if pairs.count[p] >= min_count:
-                heapq.heappush(heap, (-pairs.count[p], *at, *p))
-    return Learned(merges=merges, merge_counts=merge_counts, tokens=tokens, words=words)
+    with bar(max(0, limit - len(tokens)), "byte-pair merges", unit="merge", show=show) as pbar:
+        pbar.set_postfix_str("counting pairs")  # the bar is up before the one long step that precedes merging
+        chain = _Chain.index(flat, lengths, freqs, max(limit, len(tokens)), min_count)
+        heap = chain.heap()
+        width = chain.width
+        pbar.set_postfix_str("")
+        while heap and len(tokens) < limit:
+            neg, _, code = heapq.heappop(heap)
+            c = chain.count.get(code, 0)
+            if c < min_count:
+                continue  # counts only fall, so the pair is done
+            if c != -neg:
+                heapq.heappush(heap, (-c, chain.first(code), code))
+                continue
+            a, b = divmod(code, width)
+            z = len(tokens)
+            tokens.append(tokens[a] + tokens[b])
+            merges.append((a, b, z))
+            merge_counts.append(c)
+            for entry in chain.merge(code, z):
+                heapq.heappush(heap, entry)
+            pbar.update(1)
+    symbols, offsets = chain.words(np.asarray(lengths, dtype=np.int64))
+    return Learned(merges=merges, merge_counts=merge_counts, tokens=tokens, symbols=symbols, offsets=offsets)
 
 
-HeapEntry = tuple[int, int, int, int, int]  # (-count, first row, first byte offset, left, right)
+HeapEntry = tuple[int, int, int]  # (-count, first slot, pair code)
 
 
 @dataclass(slots=True)
-class _Pairs:
-    """Adjacent-pair statistics of the training chunks, kept current as merges rewrite them:
-    each pair's total count and the rows (chunks) holding it. ``words`` is updated in place."""
+class _Chain:
+    """The training chunks as one doubly linked list of symbol slots, with pair counts and positions.
 
-    words: list[list[int]]
-    freqs: Sequence[int]
-    sizes: list[int]  # bytes per id
-    count: dict[Pair, int] = field(default_factory=dict)
-    where: dict[Pair, set[int]] = field(default_factory=dict)
+    Slot ``s`` starts as the ``s``-th starting symbol of all chunks in corpus order; a merge
+    writes the new id into its left slot and kills the right one (symbol -1), so slot order is
+    row order, then position order, for ever. ``nxt``/``prv`` link the live slots of a chunk;
+    slot ``n`` is a sentinel (symbol -1) that ends every chunk. A pair is the integer code
+    ``left * width + right``. Per pair kept (count at least ``min_count``): its count, and the
+    slots where it was seen (a slice of the sorted first index plus arrays added as it appeared
+    elsewhere; stale slots are dropped when read, by checking the symbols there).
 
-    def index(self, min_count: int) -> list[HeapEntry]:
-        """Count every pair; return the heap of those occurring ``min_count`` times."""
-        count, where, sizes = self.count, self.where, self.sizes
-        first: dict[Pair, tuple[int, int]] = {}
-        for w, sym in enumerate(self.words):
-            f = self.freqs[w]
-            offset = 0
-            for i in range(len(sym) - 1):
-                pair = (sym[i], sym[i + 1])
-                count[pair] = count.get(pair, 0) + f
-                rows = where.get(pair)
-                if rows is None:
-                    where[pair] = {w}
-                    first[pair] = (w, offset)
-                else:
-                    rows.add(w)
-                offset += sizes[sym[i]]
-        heap = [(-c, *first[p], *p) for p, c in count.items() if c >= min_count]
+    A merge of many occurrences runs as numpy array operations; most merges late in training
+    have a few occurrences, where a numpy call costs more than the work, so those run as plain
+    Python over ``array.array`` twins of the same memory (``_few``).
+    """
+
+    sym: np.ndarray
+    nxt: np.ndarray
+    prv: np.ndarray
+    weight: np.ndarray  # count of each slot's chunk (0 for the sentinel)
+    twins: tuple[array.array[int], array.array[int], array.array[int], array.array[int]]  # sym nxt prv weight
+    width: int
+    min_count: int
+    count: dict[int, int]
+    sorted_slots: np.ndarray  # slots of the first index, grouped by pair
+    groups: dict[int, tuple[int, int]]  # pair -> its range in sorted_slots
+    added: dict[int, list[np.ndarray]] = field(default_factory=dict)
+    firsts: list[HeapEntry] = field(default_factory=list)
+
+    @classmethod
+    def index(cls, flat: np.ndarray, lengths: np.ndarray, freqs: np.ndarray, width: int, min_count: int) -> _Chain:
+        """Link the chunks and count every adjacent pair with vectorized group-bys."""
+        n = len(flat)
+        lengths = np.asarray(lengths, dtype=np.int64)
+        ends = np.cumsum(lengths)
+        sym = np.empty(n + 1, dtype=np.int64)
+        sym[:n] = flat
+        sym[n] = -1
+        nxt = np.arange(1, n + 2, dtype=np.int64)
+        prv = np.arange(-1, n, dtype=np.int64)
+        nonempty = lengths > 0
+        nxt[ends[nonempty] - 1] = n
+        prv[(ends - lengths)[nonempty]] = n
+        nxt[n] = prv[n] = n
+        weight = np.zeros(n + 1, dtype=np.int64)
+        weight[:n] = np.repeat(np.asarray(freqs, dtype=np.int64), lengths)
+        left = np.flatnonzero(nxt[:n] != n)
+        codes = sym[left] * width + sym[left + 1]
+        twins = tuple(array.array("q", a.tobytes()) for a in (sym, nxt, prv, weight))
+        sym, nxt, prv, weight = (np.frombuffer(t, dtype=np.int64) for t in twins)  # one memory, two views
+        chain = cls(sym, nxt, prv, weight, twins, width, min_count, {}, np.empty(0, np.int64), {})  # type: ignore[arg-type]
+        chain.firsts = chain._group(codes, left, keep_slots=True)
+        return chain
+
+    def _group(self, codes: np.ndarray, slots: np.ndarray, *, keep_slots: bool = False) -> list[HeapEntry]:
+        """Count pairs ``codes`` seen at ascending ``slots``; keep those reaching ``min_count``
+        (count and positions); return their heap entries."""
+        if not len(codes):
+            return []
+        order = np.argsort(codes, kind="stable")  # stable: slots stay ascending within a pair
+        codes, slots = codes[order], slots[order]
+        starts = np.flatnonzero(np.concatenate([[True], codes[1:] != codes[:-1]]))
+        totals = np.add.reduceat(self.weight[slots], starts)
+        stops = np.append(starts[1:], len(codes))
+        keep = np.flatnonzero(totals >= self.min_count)
+        kept_codes = codes[starts[keep]].tolist()
+        kept_totals = totals[keep].tolist()
+        kept_firsts = slots[starts[keep]].tolist()
+        self.count.update(zip(kept_codes, kept_totals, strict=True))
+        if keep_slots:
+            self.sorted_slots = slots
+            self.groups = dict(
+                zip(kept_codes, zip(starts[keep].tolist(), stops[keep].tolist(), strict=True), strict=True)
+            )
+        else:
+            for code, lo, hi in zip(kept_codes, starts[keep].tolist(), stops[keep].tolist(), strict=True):
+                self.added[code] = [slots[lo:hi]]
+        return [(-t, f, c) for c, t, f in zip(kept_codes, kept_totals, kept_firsts, strict=True)]
+
+    def heap(self) -> list[HeapEntry]:
+        """The heap of the pairs counted by :meth:`index`."""
+        heap, self.firsts = self.firsts, []
         heapq.heapify(heap)
         return heap
 
-    def merge(self, pair: Pair, merged: int) -> dict[Pair, tuple[int, int]]:
-        """Replace ``pair`` by ``merged`` in every chunk holding it; return the pairs that
-        appeared, each with its first occurrence (row, byte offset)."""
-        born: dict[Pair, tuple[int, int]] = {}
-        for w in sorted(self.where.pop(pair)):  # ascending rows: the first sighting is the first occurrence
-            old = self.words[w]
-            new, touched, sites = _merge_sites(old, pair, merged)
-            self.words[w] = new
-            self._lose(w, old, new, touched, pair)
-            self._gain(w, new, sites, born)
-        del self.count[pair]
-        return born
+    def _seen(self, code: int) -> list[np.ndarray]:
+        """The position lists of pair ``code`` (taken out: the caller puts back what it keeps)."""
+        parts = self.added.pop(code, [])
+        span = self.groups.pop(code, None)
+        if span is not None:
+            parts.append(self.sorted_slots[span[0] : span[1]])
+        return parts
 
-    def _lose(self, w: int, old: list[int], new: list[int], touched: set[int], pair: Pair) -> None:
-        """Take row ``w``'s pairs that vanished around the merge sites out of the counts."""
-        count, f, n = self.count, self.freqs[w], len(old)
-        lost: set[Pair] = set()
-        for j in touched:
-            if 0 <= j < n - 1:
-                p = (old[j], old[j + 1])
-                if p == pair:
-                    continue  # an overlapping run of the merged pair; dropped in merge()
-                left = count[p] - f
-                if left:
-                    count[p] = left
-                else:
-                    del count[p]
-                lost.add(p)
-        if lost:
-            for p in lost.difference(itertools.pairwise(new)):
-                rows = self.where[p]
-                rows.discard(w)
-                if not rows:
-                    del self.where[p]
+    def _where(self, parts: list[np.ndarray], code: int) -> np.ndarray:
+        """Ascending slots of ``parts`` where pair ``code`` occurs now."""
+        pos = np.concatenate(parts) if len(parts) > 1 else parts[0]
+        a, b = divmod(code, self.width)
+        found: np.ndarray = pos[(self.sym[pos] == a) & (self.sym[self.nxt[pos]] == b)]
+        found.sort()
+        return found
 
-    def _gain(self, w: int, new: list[int], sites: list[int], born: dict[Pair, tuple[int, int]]) -> None:
-        """Count row ``w``'s pairs next to each merged symbol; note first sightings in ``born``."""
-        count, where, sizes, f = self.count, self.where, self.sizes, self.freqs[w]
-        last = -1
-        for k in sites:
-            for j in (k - 1, k):
-                if last < j < len(new) - 1:  # ascending, each position once
-                    last = j
-                    p = (new[j], new[j + 1])
-                    count[p] = count.get(p, 0) + f
-                    where.setdefault(p, set()).add(w)
-                    if p not in born:
-                        born[p] = (w, sum(sizes[s] for s in new[:j]))
+    def first(self, code: int) -> int:
+        """The slot of the pair's first occurrence now (its positions compacted on the way)."""
+        pos = self._where(self._seen(code), code)
+        self.added[code] = [pos]
+        return int(pos[0])
+
+    def merge(self, code: int, merged: int) -> list[HeapEntry]:
+        """Replace pair ``code`` by ``merged`` everywhere (left to right within a chunk); update
+        the counts; return heap entries of the pairs that appeared and reach ``min_count``."""
+        parts = self._seen(code)
+        del self.count[code]
+        if sum(map(len, parts)) <= FEW:
+            return self._few(parts, code, merged)
+        sym, nxt, prv, n = self.sym, self.nxt, self.prv, len(self.sym) - 1
+        pos = self._where(parts, code)
+        if len(pos) > 1 and code // self.width == code % self.width:
+            pos = _left_to_right(pos, nxt)
+        right = nxt[pos]
+        after = nxt[right]
+        before = prv[pos]
+        lost = np.unique(np.concatenate([before[before != n], right[after != n]]))
+        lost_codes = sym[lost] * self.width + sym[nxt[lost]]
+        keep = lost_codes != code  # the rest of a run of the merged pair; its count is gone already
+        if np.any(keep):
+            unique, inverse = np.unique(lost_codes[keep], return_inverse=True)
+            totals = np.bincount(inverse.ravel(), weights=self.weight[lost[keep]], minlength=len(unique))
+            self._lose(zip(unique.tolist(), totals.astype(np.int64).tolist(), strict=True))
+        sym[pos] = merged
+        sym[right] = -1
+        nxt[pos] = after
+        prv[after] = pos
+        prv[n] = n
+        before = prv[pos]
+        gained = np.unique(np.concatenate([before[before != n], pos[after != n]]))
+        return self._group(sym[gained] * self.width + sym[nxt[gained]], gained)
+
+    def _few(self, parts: list[np.ndarray], code: int, merged: int) -> list[HeapEntry]:
+        """:meth:`merge` for a pair seen at a few slots, in plain Python (same steps, same result)."""
+        sym, nxt, prv, weight = self.twins
+        n, width = len(sym) - 1, self.width
+        a, b = divmod(code, width)
+        pos: list[int] = []
+        taken = -1  # the right slot of the last merge: in a run ``x x x`` it cannot start another
+        for s in sorted(itertools.chain.from_iterable(p.tolist() for p in parts)):
+            if s != taken and sym[s] == a and sym[nxt[s]] == b:
+                pos.append(s)
+                taken = nxt[s]
+        lost: set[int] = set()
+        for s in pos:
+            if prv[s] != n:
+                lost.add(prv[s])
+            if nxt[nxt[s]] != n:
+                lost.add(nxt[s])
+        totals: dict[int, int] = {}
+        for t in lost:
+            c = sym[t] * width + sym[nxt[t]]
+            if c != code:  # the rest of a run of the merged pair; its count is gone already
+                totals[c] = totals.get(c, 0) + weight[t]
+        self._lose(totals.items())
+        for s in pos:
+            r = nxt[s]
+            after = nxt[r]
+            sym[s] = merged
+            sym[r] = -1
+            nxt[s] = after
+            if after != n:
+                prv[after] = s
+        gained: set[int] = set()
+        for s in pos:
+            if prv[s] != n:
+                gained.add(prv[s])
+            if nxt[s] != n:
+                gained.add(s)
+        born: dict[int, list[int]] = {}  # pair -> [count, slots...] (ascending)
+        for t in sorted(gained):
+            c = sym[t] * width + sym[nxt[t]]
+            seen = born.get(c)
+            if seen is None:
+                born[c] = [weight[t], t]
+            else:
+                seen[0] += weight[t]
+                seen.append(t)
+        entries: list[HeapEntry] = []
+        for c, (total, *slots) in born.items():
+            if total >= self.min_count:
+                self.count[c] = total
+                self.added[c] = [np.array(slots, dtype=np.int64)]
+                entries.append((-total, slots[0], c))
+        return entries
+
+    def _lose(self, totals: Iterable[tuple[int, int]]) -> None:
+        """Subtract each pair's total from its count; forget pairs below ``min_count``."""
+        count = self.count
+        for code, t in totals:
+            c = count.get(code)
+            if c is None:
+                continue
+            if c - t >= self.min_count:
+                count[code] = c - t
+            else:
+                del count[code]
+                self.added.pop(code, None)
+                self.groups.pop(code, None)
+
+    def words(self, lengths: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Every chunk's live symbols, chunk after chunk, and the offsets of each chunk
+        (``lengths``: each chunk's starting symbols, as indexed)."""
+        n, rows = len(self.sym) - 1, len(lengths)
+        alive = self.sym[:n] >= 0
+        row_of = np.repeat(np.arange(rows, dtype=np.int64), lengths)
+        offsets = np.zeros(rows + 1, dtype=np.int64)
+        np.cumsum(np.bincount(row_of[alive], minlength=rows), out=offsets[1:])
+        return self.sym[:n][alive], offsets
 
 
-def _merge_sites(old: list[int], pair: Pair, merged: int) -> tuple[list[int], set[int], list[int]]:
-    """``old`` with ``pair`` merged (left to right), the positions in ``old`` of the pairs that
-    vanish next to each merge, and the positions of ``merged`` in the result."""
-    a, b = pair
-    n = len(old)
-    new: list[int] = []
-    touched: set[int] = set()
-    sites: list[int] = []
-    i = 0
-    while i < n:
-        if i + 1 < n and old[i] == a and old[i + 1] == b:
-            touched.add(i - 1)
-            touched.add(i + 1)
-            sites.append(len(new))
-            new.append(merged)
-            i += 2
-        else:
-            new.append(old[i])
-            i += 1
-    return new, touched, sites
+def _left_to_right(pos: np.ndarray, nxt: np.ndarray) -> np.ndarray:
+    """Of a pair ``x x`` seen at ascending ``pos``, the occurrences a left-to-right scan merges:
+    in a run where each occurrence starts at the previous one's right symbol, every other one."""
+    linked = np.concatenate([[False], nxt[pos[:-1]] == pos[1:]])
+    run_start = np.flatnonzero(~linked)
+    run = np.cumsum(~linked) - 1
+    step = np.arange(len(pos)) - run_start[run]
+    kept: np.ndarray = pos[step % 2 == 0]
+    return kept
 
 
 # -- the symbols training starts from -------------------------------------------
@@ -253,28 +461,21 @@ def read_counts(counts: pa.Table) -> tuple[list[bytes], np.ndarray]:
     return keys, freqs
 
 
-def _split(flat: list[int], lengths: Sequence[int], tail: list[int]) -> list[list[int]]:
-    ends = list(itertools.accumulate(lengths))
-    return [flat[e - n : e] + tail for e, n in zip(ends, lengths, strict=True)]
-
-
 def byte_symbols(
     keys: list[bytes], freqs: np.ndarray, n_reserved: int
-) -> tuple[list[bytes], np.ndarray, list[list[int]]]:
-    """Alphabet of all 256 bytes, byte counts, and each chunk as byte ids."""
+) -> tuple[list[bytes], np.ndarray, np.ndarray, np.ndarray]:
+    """Alphabet of all 256 bytes, byte counts, and the chunks as byte ids (flat) with their lengths."""
     data = np.frombuffer(b"".join(keys), dtype=np.uint8)
-    lengths = [len(k) for k in keys]
-    weights = np.repeat(freqs, lengths)
-    counts = np.zeros(256, dtype=np.int64)
-    np.add.at(counts, data, weights)
-    words = _split((data.astype(np.int64) + n_reserved).tolist(), lengths, [])
-    return [bytes([b]) for b in range(256)], counts, words
+    lengths = np.fromiter(map(len, keys), dtype=np.int64, count=len(keys))
+    counts = np.bincount(data, weights=np.repeat(freqs, lengths), minlength=256).astype(np.int64)
+    return [bytes([b]) for b in range(256)], counts, data.astype(np.int64) + n_reserved, lengths
 
 
 def char_symbols(
     keys: list[bytes], freqs: np.ndarray, n_reserved: int, marker: str
-) -> tuple[list[bytes], np.ndarray, list[list[int]]]:
-    """Alphabet of the characters seen (code-point order) plus the marker, counts, chunk ids."""
+) -> tuple[list[bytes], np.ndarray, np.ndarray, np.ndarray]:
+    """Alphabet of the characters seen (code-point order) plus the marker, counts, and the chunks
+    as ids (flat, the marker ending each) with their lengths."""
     try:
         texts = [k.decode("utf-8") for k in keys]
     except UnicodeDecodeError as exc:
@@ -282,10 +483,10 @@ def char_symbols(
     points = np.frombuffer("".join(texts).encode("utf-32-le"), dtype="<u4")
     seen, inverse = np.unique(points, return_inverse=True)
     alphabet = [chr(c).encode("utf-8") for c in seen.tolist()]
-    lengths = [len(t) for t in texts]
+    lengths = np.fromiter(map(len, texts), dtype=np.int64, count=len(texts))
     counts = np.zeros(len(seen) + bool(marker), dtype=np.int64)
-    np.add.at(counts, inverse.ravel(), np.repeat(freqs, lengths))
-    tail: list[int] = []
+    counts[: len(seen)] = np.bincount(inverse.ravel(), weights=np.repeat(freqs, lengths), minlength=len(seen))
+    flat = inverse.ravel().astype(np.int64) + n_reserved
     if marker:
         if marker.encode("utf-8") in alphabet:
             raise TokenizerError(
@@ -293,6 +494,6 @@ def char_symbols(
             )
         alphabet.append(marker.encode("utf-8"))
         counts[-1] = int(freqs.sum())
-        tail = [n_reserved + len(alphabet) - 1]
-    words = _split((inverse.ravel().astype(np.int64) + n_reserved).tolist(), lengths, tail)
-    return alphabet, counts, words
+        flat = np.insert(flat, np.cumsum(lengths), n_reserved + len(alphabet) - 1)
+        lengths = lengths + 1
+    return alphabet, counts, flat, lengths

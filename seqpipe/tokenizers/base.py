@@ -59,8 +59,9 @@ class Tokenizer(ABC):
         """Cut ``texts`` into pieces (see module docstring)."""
 
     @abstractmethod
-    def fit(self, counts: pa.Table, spec: VocabSpec) -> Encoder:
-        """Train on corpus-wide piece counts (table ``key: binary, count: int64``)."""
+    def fit(self, counts: pa.Table, spec: VocabSpec, *, show: bool = False) -> Encoder:
+        """Train on corpus-wide piece counts (table ``key: binary, count: int64``); ``show``: a
+        progress bar where training takes long."""
 
     @abstractmethod
     def load(self, directory: Path) -> Encoder:

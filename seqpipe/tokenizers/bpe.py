@@ -47,7 +47,9 @@ from seqpipe._parse import parse_bool, parse_int, parse_str, parse_str_tuple, to
 from seqpipe.errors import RecipeError, ShardCorruptError, TokenizerError
 from seqpipe.shards import read_table, write_table
 from seqpipe.tokenizers._bpe_train import (
+    RankArrays,
     apply_merges,
+    apply_merges_many,
     byte_symbols,
     char_symbols,
     learn,
@@ -68,6 +70,9 @@ MERGES_SCHEMA: Final = pa.schema(
 # Distinct chunks whose ids are remembered; a corpus's frequent chunks fit many
 # times over, and a full cache is simply emptied (cheaper than per-entry aging).
 CACHE_LIMIT: Final = 200_000
+# A batch with more chunks than this missing from the cache merges them together with array
+# operations (one round per merge step); fewer go one by one, where that costs less.
+BATCH_MISSES: Final = 64
 
 
 @lru_cache(maxsize=16)
@@ -197,13 +202,13 @@ class BpeTokenizer(Tokenizer):
         return segments_from_tokens(array, lengths)
 
     # -- training --------------------------------------------------------------
-    def fit(self, counts: pa.Table, spec: VocabSpec) -> BpeEncoder:
+    def fit(self, counts: pa.Table, spec: VocabSpec, *, show: bool = False) -> BpeEncoder:
         """Learn merges from distinct-chunk counts (rows in corpus first-occurrence order).
 
         Each step merges the most frequent adjacent pair; among pairs of equal
         count, the one whose first occurrence is earliest in corpus order wins
         (chunk row, then position within the chunk). The result does not depend
-        on ``PYTHONHASHSEED``.
+        on ``PYTHONHASHSEED``. ``show``: a progress bar counting merges.
         """
         if self.literal_reserved and self.reserved_names != spec.reserved:
             raise RecipeError(
@@ -224,9 +229,9 @@ class BpeTokenizer(Tokenizer):
         reserved_tokens, roles = reserved_table(spec)
         n_reserved = len(reserved_tokens)
         if self.base == "bytes":
-            alphabet, alpha_counts, words = byte_symbols(keys, freqs, n_reserved)
+            alphabet, alpha_counts, flat, lengths = byte_symbols(keys, freqs, n_reserved)
         else:
-            alphabet, alpha_counts, words = char_symbols(keys, freqs, n_reserved, self.end_of_word)
+            alphabet, alpha_counts, flat, lengths = char_symbols(keys, freqs, n_reserved, self.end_of_word)
         limit = spec.cap
         if limit < n_reserved + len(alphabet):
             need = n_reserved + len(alphabet)
@@ -236,7 +241,7 @@ class BpeTokenizer(Tokenizer):
                 f"got {limit}",
             )
         tokens = [*reserved_tokens, *alphabet]
-        learned = learn(words, freqs.tolist(), tokens, limit=limit, min_count=self.min_pair_count)
+        learned = learn(flat, lengths, freqs, tokens, limit=limit, min_count=self.min_pair_count, show=show)
         vocabulary = Vocabulary(
             tokens=pa.array(learned.tokens, pa.binary()),
             counts=np.concatenate(
@@ -248,8 +253,8 @@ class BpeTokenizer(Tokenizer):
         encoder = BpeEncoder(self, vocabulary, learned.merges, alphabet_size=len(alphabet))
         # training already segmented every train chunk: keep the most frequent as cache entries,
         # so encoding the train split right after fitting is lookups only
-        for i in np.argsort(-freqs, kind="stable")[:CACHE_LIMIT].tolist():
-            encoder._cache[keys[i]] = tuple(learned.words[i])
+        top = np.argsort(-freqs, kind="stable")[:CACHE_LIMIT].tolist()
+        encoder._cache.update(zip([keys[i] for i in top], learned.words(top), strict=True))
         return encoder
 
     # -- storage ---------------------------------------------------------------
@@ -361,6 +366,7 @@ class BpeEncoder(Encoder):
         self.alphabet_size = alphabet_size
         self._bpe = tokenizer
         self._ranks = rank_table(self.merges)
+        self._rank_arrays = RankArrays.of(self.merges, len(vocabulary))
         self._cache: dict[bytes, tuple[int, ...]] = {}
         n_reserved = vocabulary.n_reserved
         tokens = [bytes(t) for t in vocabulary.tokens.to_pylist()]
@@ -370,7 +376,10 @@ class BpeEncoder(Encoder):
         if tokenizer.base == "chars":
             n_chars = alphabet_size - bool(marker)
             self._char_id = {tokens[i].decode("utf-8"): i for i in range(n_reserved, n_reserved + n_chars)}
+            self._char_points = np.array([ord(c) for c in self._char_id], dtype=np.int64)  # code-point order
             self._tail = [n_reserved + n_chars] if marker else []
+        else:
+            self._char_points = np.empty(0, dtype=np.int64)
         self._reserved_id = {tokens[i]: i for i in range(n_reserved)} if tokenizer.literal_reserved else {}
         # decode table: the bytes each id prints as (a token-final marker prints as nothing)
         shown = [
@@ -406,8 +415,49 @@ class BpeEncoder(Encoder):
             self._cache[key] = ids
         return ids
 
+    def _many_symbols(self, keys: list[bytes]) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`_symbols` of many chunks: flat ids and each chunk's length."""
+        n_reserved = self.vocabulary.n_reserved
+        if self._bpe.base == "bytes":
+            lengths = np.fromiter(map(len, keys), dtype=np.int64, count=len(keys))
+            return np.frombuffer(b"".join(keys), dtype=np.uint8).astype(np.int64) + n_reserved, lengths
+        texts = [k.decode("utf-8") for k in keys]
+        lengths = np.fromiter(map(len, texts), dtype=np.int64, count=len(texts))
+        points = np.frombuffer("".join(texts).encode("utf-32-le"), dtype="<u4").astype(np.int64)
+        at = np.minimum(np.searchsorted(self._char_points, points), max(len(self._char_points) - 1, 0))
+        seen = self._char_points[at] == points if len(self._char_points) else np.zeros(len(points), dtype=bool)
+        flat = at + n_reserved
+        if not seen.all():
+            unknown = self.vocabulary.unknown_id
+            if unknown is None:
+                self._symbols(chr(int(points[~seen][0])).encode("utf-8"))  # raises the error it gives
+            flat[~seen] = unknown
+        if self._tail:
+            flat = np.insert(flat, np.cumsum(lengths), self._tail[0])
+            lengths = lengths + 1
+        return flat, lengths
+
+    def _fill(self, keys: list[bytes]) -> dict[bytes, tuple[int, ...]]:
+        """Ids of the chunks among ``keys`` missing from the cache when there are many (merged
+        together); the cache takes them while it has room."""
+        cache, reserved = self._cache, self._reserved_id
+        missing = [k for k in keys if k not in cache and k not in reserved]
+        if len(missing) <= BATCH_MISSES:
+            return {}
+        flat, lengths = apply_merges_many(*self._many_symbols(missing), self._rank_arrays)
+        values = flat.tolist()
+        ends = itertools.accumulate(lengths.tolist())
+        fresh = {k: tuple(values[e - n : e]) for k, e, n in zip(missing, ends, lengths.tolist(), strict=True)}
+        if len(cache) + len(fresh) > CACHE_LIMIT:
+            cache.clear()
+        if len(fresh) <= CACHE_LIMIT:
+            cache.update(fresh)
+        return fresh
+
     def piece_ids(self, keys: pa.Array) -> tuple[np.ndarray, np.ndarray]:
-        runs = [self.chunk_ids(k) for k in keys.to_pylist()]
+        chunks: list[bytes] = keys.to_pylist()
+        fresh = self._fill(chunks)
+        runs = [fresh.get(k) or self.chunk_ids(k) for k in chunks]
         lengths = np.fromiter(map(len, runs), dtype=np.int64, count=len(runs))
         offsets = np.zeros(len(runs) + 1, dtype=np.int64)
         np.cumsum(lengths, out=offsets[1:])

@@ -77,7 +77,7 @@ class CharTokenizer(Tokenizer):
         keys = pa.array([chr(int(c)).encode("utf-8") for c in uniq[order]], pa.binary())
         return Segments(keys, rank[inverse].astype(np.int32), lengths)
 
-    def fit(self, counts: pa.Table, spec: VocabSpec) -> Encoder:
+    def fit(self, counts: pa.Table, spec: VocabSpec, *, show: bool = False) -> Encoder:
         return VocabEncoder(self, build_vocabulary(self._counts(counts), spec))
 
     def _counts(self, counts: pa.Table) -> pa.Table:

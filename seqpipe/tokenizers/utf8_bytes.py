@@ -70,7 +70,7 @@ class ByteTokenizer(Tokenizer):
         keys = pa.array([bytes([int(b)]) for b in byte_values], pa.binary())
         return Segments(keys, remap[raw], lengths)
 
-    def fit(self, counts: pa.Table, spec: VocabSpec) -> Encoder:
+    def fit(self, counts: pa.Table, spec: VocabSpec, *, show: bool = False) -> Encoder:
         return VocabEncoder(
             self, build_vocabulary(self._counts(counts), spec, always=_ALL_BYTES if self.all_bytes else ())
         )

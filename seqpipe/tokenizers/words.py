@@ -211,7 +211,7 @@ class WordTokenizer(Tokenizer):
         flat_list = [tok for toks in found for tok in toks]
         return segments_from_tokens(pa.array(flat_list, pa.large_string()), lengths)
 
-    def fit(self, counts: pa.Table, spec: VocabSpec) -> Encoder:
+    def fit(self, counts: pa.Table, spec: VocabSpec, *, show: bool = False) -> Encoder:
         return WordEncoder(self, build_vocabulary(self._counts(counts), spec))
 
     def _counts(self, counts: pa.Table) -> pa.Table:
