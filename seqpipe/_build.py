@@ -54,6 +54,7 @@ from seqpipe.ingest import (
     CountTask,
     EncodeTask,
     IngestTask,
+    Member,
     PartMeta,
     count_part,
     encode_part,
@@ -71,6 +72,7 @@ from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, s
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype
+from seqpipe.sources.base import Part
 from seqpipe.splits import assign_splits, fixed_split_of, held_out_overlap
 from seqpipe.staging import build_lock, check_output, private_dir, publish
 
@@ -79,6 +81,9 @@ if TYPE_CHECKING:
     from seqpipe.transfer import PublishStats
 
 PART_BYTES: Final = 16 << 20
+# Small inputs share parts (see plan_build); tests turn this off to check that the dataset's
+# bytes do not depend on how inputs are grouped.
+GROUP_INPUTS = True
 # For the shard-count check before a build starts: no tokenizer gives fewer tokens per input
 # byte than one per this many bytes on text (words average under 8 bytes with their space),
 # and one shard's manifest entry takes about this many bytes (path, counts, two hashes).
@@ -459,27 +464,87 @@ def _input_files(recipe: Recipe) -> tuple[list[tuple[int, Path | str, str]], tup
 
 
 def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None) -> Plan:
-    """Resolve the inputs, hash them, and cut each into parts of about ``part_bytes``."""
-    from seqpipe.filesystem import file_size
-
+    """Resolve the inputs, hash them, cut each large one into parts of about ``part_bytes`` and
+    group consecutive small ones (of one source, in corpus order) into parts of about as much."""
     files, skipped = _input_files(recipe)
     hashed = _input_hashes([f for _, f, _ in files], cache)
     hashes = [h for h, _ in hashed]
-    sizes = [file_size(f) for _, f, _ in files]
+    sizes = [_size(f, stamp) for (_, f, _), (_, stamp) in zip(files, hashed, strict=True)]
     inputs = tuple(
         {"path": name, "bytes": sz, "hash": h} for (_, _, name), sz, h in zip(files, sizes, hashes, strict=True)
     )
-    tasks: list[IngestTask] = []
-    weights: list[int] = []
-    for ii, ((si, f, _), h) in enumerate(zip(files, hashes, strict=True)):
-        parts = recipe.sources[si].plan(f, part_bytes)
-        for part in parts:
-            key = part_key(recipe, si, h, part)
-            tasks.append(IngestTask(recipe, si, ii, str(f), part, key, str(cache), stamp=hashed[ii][1]))
-            weights.append(sizes[ii] // max(len(parts), 1))
+    cuts = _PlanCache(cache, recipe, part_bytes)
+    groups: list[tuple[int, list[tuple[Member, str, int]]]] = []  # per part: source, (member, hash, bytes)
+    open_group: list[tuple[Member, str, int]] | None = None  # the group small inputs are joining
+    held = 0
+    for ii, ((si, f, _), (h, stamp)) in enumerate(zip(files, hashed, strict=True)):
+        parts = cuts.parts(si, f, h)
+        members = [(Member(ii, str(f), part, stamp), h, sizes[ii] // len(parts)) for part in parts]
+        small = len(parts) == 1 and sizes[ii] < part_bytes and GROUP_INPUTS
+        if not small:
+            groups.extend((si, [m]) for m in members)
+            open_group = None
+            continue
+        if open_group is None or groups[-1][0] != si or held + sizes[ii] > part_bytes:
+            open_group, held = [], 0
+            groups.append((si, open_group))
+        open_group.extend(members)
+        held += sizes[ii]
+    cuts.save()
+    tasks = tuple(_ingest_task(recipe, si, group, cache) for si, group in groups)
+    weights = tuple(sum(w for _, _, w in group) for _, group in groups)
     reused = source.manifest["fingerprint"] if source is not None else None
     build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes, "reused": reused})
-    return Plan(inputs, tuple(tasks), tuple(weights), sum(sizes), build_key, skipped)
+    return Plan(inputs, tasks, weights, sum(sizes), build_key, skipped)
+
+
+def _ingest_task(recipe: Recipe, si: int, group: list[tuple[Member, str, int]], cache: Path) -> IngestTask:
+    """The task of one part: its members in order, its key from their hashes and cuts."""
+    key = part_key(recipe, si, [(h, m.part) for m, h, _ in group])
+    return IngestTask(recipe, si, tuple(m for m, _, _ in group), key, str(cache))
+
+
+def _size(f: Path | str, stamp: tuple[int, ...] | None) -> int:
+    """An input's size: the first field of its change stamp, else asked of its filesystem."""
+    from seqpipe.filesystem import file_size
+
+    return stamp[0] if stamp is not None else file_size(f)
+
+
+class _PlanCache:
+    """Each input's parts (``Source.plan``), stored beside the input hashes by content hash and
+    what the cuts depend on (the source's settings, ``part_bytes``): a rebuild then plans no
+    input it has planned before (planning may open the file: columnar metadata, cut scans)."""
+
+    def __init__(self, cache: Path, recipe: Recipe, part_bytes: int) -> None:
+        self.path = cache / "plans.json"
+        self.recipe = recipe
+        self.part_bytes = part_bytes
+        self.settings = [hash_json({"source": to_plain(s), "part_bytes": part_bytes})[:16] for s in recipe.sources]
+        try:
+            self.stored: dict[str, list[list[int | None]]] = json.loads(self.path.read_text())
+        except (OSError, ValueError):
+            self.stored = {}
+        self.changed = False
+
+    def parts(self, source_index: int, f: Path | str, file_hash: str) -> list[Part]:
+        name = f"{file_hash}.{self.settings[source_index]}"
+        got = self.stored.get(name)
+        if isinstance(got, list) and got and all(isinstance(p, list) and len(p) == 2 for p in got):
+            return [Part(int(a or 0), None if b is None else int(b)) for a, b in got]
+        parts = self.recipe.sources[source_index].plan(f, self.part_bytes)
+        if parts and all(type(p) is Part for p in parts):
+            self.stored[name] = [[p.start, p.stop] for p in parts]
+            self.changed = True
+        return parts
+
+    def save(self) -> None:
+        if not self.changed:
+            return
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = self.path.with_suffix(".tmp")
+        tmp.write_text(json.dumps(self.stored, sort_keys=True))
+        os.replace(tmp, self.path)
 
 
 def _has_dedupe(recipe: Recipe) -> bool:
@@ -662,7 +727,7 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
             str(stage),
             ctx.recipe,
             i,
-            t.input_index,
+            tuple(m.input_index for m in t.members),
             kept.keeps[i],
             fitted.dtype,
             _fixed(ctx.recipe, t),
