@@ -445,22 +445,36 @@ def _input_files(recipe: Recipe) -> tuple[list[tuple[int, Path | str, str]], tup
     sorted order (a file two sources match is read once, by the first); and the matches skipped
     as not files. The name is the file's path relative to its glob's fixed directory
     (Source.resolve_named), never to the recipe."""
-    from seqpipe.filesystem import identity
-
     files: list[tuple[int, Path | str, str]] = []  # a local Path, or a filesystem URI
     seen: set[Path | str] = set()
     skipped: dict[str, str] = {}
+    parents: dict[str, str] = {}  # each directory resolved once, not each file's path
     for si, source in enumerate(recipe.sources):
         resolved = source.resolve_all(recipe.root)
         for rel, what in resolved.skipped:
             skipped.setdefault(rel, what)
         for f, name in zip(resolved.files, resolved.names, strict=True):
-            if identity(f) not in seen:
-                seen.add(identity(f))
+            same = _identity(f, parents)
+            if same not in seen:
+                seen.add(same)
                 files.append((si, f, name))
     if not files:
         raise SourceMissingError(str(recipe.root), "the recipe's sources match no file")
     return files, tuple({"path": p, "what": w} for p, w in sorted(skipped.items()))
+
+
+def _identity(f: Path | str, parents: dict[str, str]) -> Path | str:
+    """``filesystem.identity(f)``, resolving each directory once: a file that is not a symlink
+    is its resolved directory joined with its name."""
+    from seqpipe.filesystem import identity, is_uri
+
+    if is_uri(f) or os.path.islink(f):
+        return identity(f)
+    head, name = os.path.split(os.fspath(f))
+    real = parents.get(head)
+    if real is None:
+        real = parents[head] = os.path.realpath(head or ".")
+    return os.path.join(real, name)  # a str never equal to a URI (those start with a scheme)
 
 
 def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None) -> Plan:

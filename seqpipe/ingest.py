@@ -78,13 +78,22 @@ def part_key(recipe: Recipe, source_index: int, members: Sequence[tuple[str, Any
         {
             "format": PART_FORMAT,
             "source": to_plain(recipe.sources[source_index]),
-            "members": [[h, to_plain(p) if hasattr(p, "__dataclass_fields__") else repr(p)] for h, p in members],
+            "members": [[h, _plain_part(p)] for h, p in members],
             "clean": [to_plain(s) for s in recipe.clean],
             "tokenizer": to_plain(recipe.tokenizer),
             # Unicode tables and the libraries that apply them: an upgrade must not reuse parts
             "environment": part_environment(),
         }
     )
+
+
+def _plain_part(part: Any) -> Any:
+    """A source's part as JSON (the common start/stop kind directly: a key may list many)."""
+    from seqpipe.sources.base import Part
+
+    if type(part) is Part:
+        return [part.start, part.stop]
+    return to_plain(part) if hasattr(part, "__dataclass_fields__") else repr(part)
 
 
 @dataclass(frozen=True, slots=True)
@@ -426,21 +435,19 @@ def ingest_part(task: IngestTask) -> PartMeta:
 
 
 def _read_members(source: Any, task: IngestTask, stats: Any, read_counts: list[int]) -> Iterator[pa.Array]:
-    """The documents of each member in turn, small batches of consecutive members joined into
-    batches of about ``batch_bytes`` (a batch per small file would cost a cleaning and a
-    segmenting call per file); appends each finished member's document count to ``read_counts``."""
+    """The documents of each member in turn (``Source.read_many``, which appends each member's
+    document count to ``read_counts``), small batches of consecutive members joined into
+    batches of about ``batch_bytes``: a batch per small file would cost a cleaning and a
+    segmenting call per file."""
     held: list[pa.Array] = []
     held_bytes = 0
-    for m in task.members:
-        documents = 0
-        for batch in source.read(m.path, m.part, stats, batch_bytes=task.batch_bytes):
-            documents += len(batch)
-            held.append(batch)
-            held_bytes += batch.nbytes
-            if held_bytes >= task.batch_bytes:
-                yield _joined_batches(held)
-                held, held_bytes = [], 0
-        read_counts.append(documents)
+    parts = [(m.path, m.part) for m in task.members]
+    for batch in source.read_many(parts, stats, read_counts, batch_bytes=task.batch_bytes):
+        held.append(batch)
+        held_bytes += batch.nbytes
+        if held_bytes >= task.batch_bytes:
+            yield _joined_batches(held)
+            held, held_bytes = [], 0
     if held:
         yield _joined_batches(held)
 

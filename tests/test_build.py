@@ -423,18 +423,18 @@ def test_an_input_changed_before_it_is_read_fails_the_build_and_is_not_cached(
     recipe_path = write_project(tmp_path / "src")
     recipe = load_recipe(recipe_path)
     victim = sorted((tmp_path / "src").rglob("*.txt"))[0]
-    real_read = TextSource.read
+    real_read = TextSource.read_many
     touched: list[str] = []
 
-    def rewriting_read(self: TextSource, path: str, *args: object, **kwargs: object) -> object:
-        if Path(path) == victim and not touched:
-            touched.append(path)
+    def rewriting_read(self: TextSource, parts: list[tuple[str, object]], *args: object, **kwargs: object) -> object:
+        if any(Path(path) == victim for path, _ in parts) and not touched:
+            touched.append(str(victim))
             data = bytearray(victim.read_bytes())
             data[:5] = b"XXXXX"
             victim.write_bytes(bytes(data))
-        return real_read(self, path, *args, **kwargs)  # type: ignore[arg-type]
+        return real_read(self, parts, *args, **kwargs)  # type: ignore[arg-type]
 
-    monkeypatch.setattr(TextSource, "read", rewriting_read)
+    monkeypatch.setattr(TextSource, "read_many", rewriting_read)
     planned = plan_build(recipe, tmp_path / "planned", PART_BYTES)  # the keys the build gives its parts
     with pytest.raises(SourceError) as caught:
         build(recipe, tmp_path / "out", workers=1, progress=False)
