@@ -255,7 +255,7 @@ def _part_dir(cache_dir: str, key: str) -> Path:
 def part_intact(cache_dir: str, meta: PartMeta) -> bool:
     """Whether every file of a cached part still has the hash it was written with (a part
     stored without hashes is not trusted)."""
-    if meta.files is None or set(meta.files) != {PART_FILE}:
+    if meta.files is None or PART_FILE not in meta.files:
         return False
     part = _part_dir(cache_dir, meta.key)
     try:
@@ -425,13 +425,28 @@ def ingest_part(task: IngestTask) -> PartMeta:
     )
     for m in task.members:
         _check_unchanged(m)
-    _store_part(task, _docs_table(recipe, got, member), keys, _stored_codes(seg.codes, len(keys)), meta)
+    counted = None
     if task.count_order is not None:
         fixed = fixed_split_of(recipe.sources[task.source_index])
-        meta.counts = _count(
-            recipe, got.columns["hash"], seg.doc_lengths, keys, seg.codes, None, task.count_order, fixed
-        )
+        counted = _count(recipe, got.columns["hash"], seg.doc_lengths, keys, seg.codes, None, 0, fixed)
+    stored = _stored_codes(seg.codes, len(keys))
+    _store_part(task, _docs_table(recipe, got, member), keys, stored, meta, counted)
+    if counted is not None and task.count_order is not None:
+        meta.counts = (_in_corpus_order(counted[0], task.count_order), counted[1])
     return meta
+
+
+def counts_file(recipe: Recipe) -> str:
+    """The name of a part's stored counts under ``recipe``'s splits: the train split is all
+    they depend on besides the part (a rebuild that changes only the vocabulary reuses them)."""
+    return f"counts.{hash_json(to_plain(recipe.splits))[:16]}.arrow"
+
+
+def _in_corpus_order(table: pa.Table, order: int) -> pa.Table:
+    """A part's count table (``first``: the position within the part) with ``first`` ranked in
+    the corpus (the part's position in the upper bits)."""
+    first = pa.array(table.column("first").to_numpy() + (np.int64(order) << 40), pa.int64())
+    return table.set_column(table.schema.get_field_index("first"), "first", first)
 
 
 def _read_members(source: Any, task: IngestTask, stats: Any, read_counts: list[int]) -> Iterator[pa.Array]:
@@ -486,7 +501,14 @@ def _check_unchanged(member: Member) -> None:
         )
 
 
-def _store_part(task: IngestTask, docs: dict[str, pa.Array], keys: pa.Array, codes: pa.Array, meta: PartMeta) -> None:
+def _store_part(
+    task: IngestTask,
+    docs: dict[str, pa.Array],
+    keys: pa.Array,
+    codes: pa.Array,
+    meta: PartMeta,
+    counted: tuple[pa.Table, int] | None = None,
+) -> None:
     """Write the part into the cache atomically: a private directory renamed into place (a twin
     task that finished first wins; a torn leftover is replaced). No fsync: a part lost to a
     crash is found missing or failing its hash, and ingested again."""
@@ -497,7 +519,12 @@ def _store_part(task: IngestTask, docs: dict[str, pa.Array], keys: pa.Array, cod
         columns = {**docs, "keys": keys, "codes": codes}
         row = {name: pa.LargeListArray.from_arrays(pa.array([0, len(a)], pa.int64()), a) for name, a in columns.items()}
         write_table(tmp / PART_FILE, pa.table(row), durable=False)
-        meta.files = {PART_FILE: hash_file(tmp / PART_FILE)}
+        names = [PART_FILE]
+        if counted is not None:  # the ingest task counted every document: keep them for rebuilds
+            names.append(counts_file(task.recipe))
+            table = counted[0].replace_schema_metadata({"train_documents": str(counted[1])})
+            write_table(tmp / names[-1], table, durable=False)
+        meta.files = {name: hash_file(tmp / name) for name in names}
         (tmp / "meta.json").write_text(json.dumps(asdict(meta), sort_keys=True))
         try:
             os.rename(tmp, final)
@@ -570,6 +597,10 @@ class CountTask:
 def count_part(task: CountTask) -> tuple[pa.Table, int]:
     """Piece counts over the part's train documents: table (key, count, first), and how many
     train documents there are."""
+    if task.keep is None:
+        stored = _stored_counts(task)
+        if stored is not None:
+            return stored
     docs, keys, codes = _read_part(task.cache_dir, task.key)
     return _count(
         task.recipe,
@@ -581,6 +612,19 @@ def count_part(task: CountTask) -> tuple[pa.Table, int]:
         task.order,
         task.fixed,
     )
+
+
+def _stored_counts(task: CountTask) -> tuple[pa.Table, int] | None:
+    """The counts the part's ingest task stored for these splits (its hash was checked with the
+    part's), when it stored them."""
+    path = _part_dir(task.cache_dir, task.key) / counts_file(task.recipe)
+    if not path.is_file():
+        return None
+    table = read_table(path, full=True)
+    train = int((table.schema.metadata or {}).get(b"train_documents", b"-1"))
+    if train < 0:
+        return None
+    return _in_corpus_order(table.replace_schema_metadata(None), task.order), train
 
 
 def _count(

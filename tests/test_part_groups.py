@@ -198,14 +198,29 @@ def test_a_pattern_timeout_names_the_member_and_its_document() -> None:
 
 
 def test_grouped_part_stores_one_arrow_file(tmp_path: Path) -> None:
-    """A part of many files is one Arrow file and its meta in the cache: its documents' member
-    column counts every document of every file in order."""
+    """A part of many files is one Arrow file (and its counts) and its meta in the cache: its
+    documents' member column counts every document of every file in order."""
     write_notes(tmp_path, awkward=False)
     build(recipe_of(tmp_path), tmp_path / "out", workers=1, progress=False)
     [part] = [p for p in (tmp_path / "out" / ".seqpipe" / "cache" / "parts").iterdir()]
-    assert sorted(p.name for p in part.iterdir()) == ["meta.json", "part.arrow"]
-    from seqpipe.ingest import read_part_docs
+    from seqpipe.ingest import counts_file, read_part_docs
+
+    # the counts its ingest task made (no dedupe step) are kept for rebuilds with these splits
+    assert sorted(p.name for p in part.iterdir()) == sorted(
+        [counts_file(recipe_of(tmp_path)), "meta.json", "part.arrow"]
+    )
 
     member = read_part_docs(str(part.parent.parent), part.name).column("member").to_numpy()
     assert len(member) and bool(np.all(np.diff(member) >= 0)) and member.dtype == np.int32
     assert pa.types.is_int32(pa.array(member).type)
+
+
+def test_a_rebuild_from_stored_counts_equals_a_fresh_build(tmp_path: Path) -> None:
+    """A rebuild with another vocabulary cap, its counts taken from the parts' stored counts,
+    writes the same dataset bytes as a fresh build (``force``) with that cap."""
+    write_notes(tmp_path)
+    build(recipe_of(tmp_path), tmp_path / "out", workers=1, progress=False, part_bytes=300)
+    again = build(recipe_of(tmp_path, cap=9), tmp_path / "out", workers=1, progress=False, part_bytes=300)
+    assert again.parts_reused == again.parts_total > 2
+    build(recipe_of(tmp_path, cap=9), tmp_path / "fresh", workers=1, progress=False, part_bytes=300, force=True)
+    assert dataset_files(tmp_path / "out") == dataset_files(tmp_path / "fresh")
