@@ -38,6 +38,7 @@ from typing import TYPE_CHECKING, Any, Final
 
 import numpy as np
 import pyarrow as pa
+import xxhash
 
 from seqpipe import __version__
 from seqpipe._environment import environment
@@ -302,7 +303,7 @@ def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[tuple[str, t
         if stamp is not None and rec and rec.get("stamp") == stamp:
             out.append((rec["hash"], tuple(stamp)))
             continue
-        h = hash_file(f)
+        h = _hash_input(f, stamp)
         if stamp is not None and change_stamp(f) != stamp:
             # changed while hashed: keep the stamp from before, so reading it is refused
             out.append((h, tuple(stamp)))
@@ -317,6 +318,22 @@ def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[tuple[str, t
         tmp.write_text(json.dumps(index, sort_keys=True))
         os.replace(tmp, index_path)
     return out
+
+
+SMALL_INPUT: Final = 1 << 20  # read whole to hash: a memory map costs more than the read
+
+
+def _hash_input(f: Path | str, stamp: list[int] | None) -> str:
+    """``hash_file(f)``; a small local file read in one call instead of mapped."""
+    from seqpipe.filesystem import is_uri
+
+    if stamp is not None and stamp[0] < SMALL_INPUT and not is_uri(f):
+        try:
+            with open(f, "rb") as fh:
+                return xxhash.xxh3_128_hexdigest(fh.read())
+        except OSError:
+            pass  # hash_file raises the error the build reports
+    return hash_file(f)
 
 
 # -- the values phases pass on -------------------------------------------------------------------

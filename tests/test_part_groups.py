@@ -162,6 +162,7 @@ def test_a_cached_rebuild_reads_no_input(tmp_path: Path, monkeypatch: pytest.Mon
         return real_hash(path)
 
     monkeypatch.setattr(build_module, "hash_file", hash_outputs_only)
+    monkeypatch.setattr(build_module, "_hash_input", refuse)
     again = build(recipe_of(tmp_path, cap=8), tmp_path / "out", workers=1, progress=False, part_bytes=400)
     assert again.parts_reused == again.parts_total == first.parts_total
     assert again.bytes_read == 0
