@@ -712,6 +712,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     pieces = docs.column("pieces").to_numpy()
     inputs = np.asarray(task.inputs, np.int32)[docs.column("member").to_numpy()]
     splits = assign_splits(recipe.splits, fixed16(docs, "hash"), task.keep, task.fixed)
+    piece_split = np.repeat(splits, pieces)  # once, not a repeat per split
     values, offsets = enc.piece_ids(keys)
     voc = enc.vocabulary
     begin = voc.id_of("begin") if recipe.encode.prepend_begin else None
@@ -723,9 +724,10 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
         dmask = splits == s
         if not dmask.any():
             continue
-        ids, lengths = expand(values, offsets, codes[_piece_mask(pieces, dmask)], pieces[dmask])
+        ids, lengths = expand(values, offsets, codes[piece_split == s], pieces[dmask])
         content = len(ids)  # the documents' own tokens, before begin/end markers
-        ids = _add_markers(ids, lengths, begin, end)
+        # in the ids' stored type from here on: the marker pass moves a quarter of the bytes
+        ids = _add_markers(ids.astype(task.dtype, copy=False), lengths, begin, end)
         lengths = lengths + (begin is not None) + (end is not None)
         unknown = int(np.count_nonzero(ids == unk)) if unk is not None else 0
         write_shard(encoded_path(task.stage_dir, task.number, split), ids.astype(task.dtype), durable=False)
@@ -758,7 +760,7 @@ def _add_markers(ids: np.ndarray, lengths: np.ndarray, begin: int | None, end: i
     if not extra:
         return ids
     new_len = lengths + extra
-    out = np.empty(int(new_len.sum()), dtype=np.int64)
+    out = np.empty(int(new_len.sum()), dtype=ids.dtype)
     starts = np.cumsum(new_len) - new_len
     body = np.ones(len(out), dtype=bool)
     if begin is not None:

@@ -86,8 +86,8 @@ def _one_file(many: Path, one: Path) -> None:
 
 
 def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
-    files, big = (300, 4 * MB) if quick else (10_000, 100 * MB)
-    repeat = 2 if quick else 3
+    files, big = (200, 2 * MB) if quick else (10_000, 100 * MB)
+    repeat = 1 if quick else 3
     many = workdir / "many"
     input_many = write_many_small_files(many / "notes", files, 2500, seed=11)
     _one_file(many / "notes", workdir / "one" / "notes")
@@ -107,7 +107,7 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
 
     c_many, reused_many, total_many = _cached(many, paths, workdir / "out-many", repeat)
     large = workdir / "large"
-    t_large = _fresh(_recipe(large, paths), workdir / "out-large", 1 if not quick else repeat)
+    t_large = _fresh(_recipe(large, paths), workdir / "out-large", repeat)
     c_large, reused_large, total_large = _cached(large, paths, workdir / "out-large", repeat)
     r_many, r_large = t_many / c_many, t_large / c_large
     yield Measure(
