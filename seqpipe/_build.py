@@ -557,9 +557,11 @@ class _PlanCache:
         except (OSError, ValueError):
             self.stored = {}
         self.changed = False
+        self.used: set[str] = set()
 
     def parts(self, source_index: int, f: Path | str, file_hash: str) -> list[Part]:
         name = f"{file_hash}.{self.settings[source_index]}"
+        self.used.add(name)
         got = self.stored.get(name)
         if isinstance(got, list) and got and all(isinstance(p, list) and len(p) == 2 for p in got):
             return [Part(int(a or 0), None if b is None else int(b)) for a, b in got]
@@ -570,11 +572,14 @@ class _PlanCache:
         return parts
 
     def save(self) -> None:
-        if not self.changed:
+        """Store the cuts of this build's inputs (those of inputs no longer planned are dropped,
+        so the file does not grow with every edit)."""
+        if not self.changed and len(self.used) == len(self.stored):
             return
         self.path.parent.mkdir(parents=True, exist_ok=True)
         tmp = self.path.with_suffix(".tmp")
-        tmp.write_text(json.dumps(self.stored, sort_keys=True))
+        kept = {name: cuts for name, cuts in self.stored.items() if name in self.used}
+        tmp.write_text(json.dumps(kept, sort_keys=True))
         os.replace(tmp, self.path)
 
 

@@ -225,3 +225,20 @@ def test_a_rebuild_from_stored_counts_equals_a_fresh_build(tmp_path: Path) -> No
     assert again.parts_reused == again.parts_total > 2
     build(recipe_of(tmp_path, cap=9), tmp_path / "fresh", workers=1, progress=False, part_bytes=300, force=True)
     assert dataset_files(tmp_path / "out") == dataset_files(tmp_path / "fresh")
+
+
+def test_stored_cuts_follow_the_inputs(tmp_path: Path) -> None:
+    """The cache keeps one entry of cuts per input planned by the last build: a removed file's
+    entry goes, an edited file's entry is replaced."""
+    import json
+
+    paths = write_notes(tmp_path, files=12, awkward=False)
+    cache = tmp_path / "cache"
+    plan_build(recipe_of(tmp_path), cache, 1 << 20)
+    assert len(json.loads((cache / "plans.json").read_text())) == 12
+    paths[3].unlink()
+    paths[4].write_text("tide calm\n")
+    plan_build(recipe_of(tmp_path), cache, 1 << 20)
+    stored = json.loads((cache / "plans.json").read_text())
+    assert len(stored) == 11
+    assert [[0, len(b"tide calm\n")]] in stored.values()
