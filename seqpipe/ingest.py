@@ -15,7 +15,9 @@ Ingest output ("part", cached by a fingerprint of its inputs, see ``part_key``):
                                       piece keys) and ``codes`` (one code per piece position,
                                       documents in order, in the smallest unsigned type that
                                       holds the part's key count)
-    <cache>/parts/<key>/meta.json     read/clean statistics and the hash of part.arrow
+    <cache>/parts/<key>/counts.<splits>.arrow   the part's train piece counts (key, count, first
+                                      within the part), when its ingest task counted it
+    <cache>/parts/<key>/meta.json     read/clean statistics and the hashes of the files above
 
 One Arrow file, not one per array: a cache of many small parts costs files and opens per part.
 Parts are rebuilt after a crash, so they are written without fsync (only renamed into place).
