@@ -38,6 +38,7 @@ from typing import TYPE_CHECKING, Any, Final
 
 import numpy as np
 import pyarrow as pa
+import xxhash
 
 from seqpipe import __version__
 from seqpipe._environment import environment
@@ -54,6 +55,7 @@ from seqpipe.ingest import (
     CountTask,
     EncodeTask,
     IngestTask,
+    Member,
     PartMeta,
     count_part,
     encode_part,
@@ -71,6 +73,7 @@ from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, s
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype
+from seqpipe.sources.base import Part
 from seqpipe.splits import assign_splits, fixed_split_of, held_out_overlap
 from seqpipe.staging import build_lock, check_output, private_dir, publish
 
@@ -79,6 +82,9 @@ if TYPE_CHECKING:
     from seqpipe.transfer import PublishStats
 
 PART_BYTES: Final = 16 << 20
+# Small inputs share parts (see plan_build); tests turn this off to check that the dataset's
+# bytes do not depend on how inputs are grouped.
+GROUP_INPUTS = True
 # For the shard-count check before a build starts: no tokenizer gives fewer tokens per input
 # byte than one per this many bytes on text (words average under 8 bytes with their space),
 # and one shard's manifest entry takes about this many bytes (path, counts, two hashes).
@@ -297,7 +303,7 @@ def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[tuple[str, t
         if stamp is not None and rec and rec.get("stamp") == stamp:
             out.append((rec["hash"], tuple(stamp)))
             continue
-        h = hash_file(f)
+        h = _hash_input(f, stamp)
         if stamp is not None and change_stamp(f) != stamp:
             # changed while hashed: keep the stamp from before, so reading it is refused
             out.append((h, tuple(stamp)))
@@ -312,6 +318,22 @@ def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[tuple[str, t
         tmp.write_text(json.dumps(index, sort_keys=True))
         os.replace(tmp, index_path)
     return out
+
+
+SMALL_INPUT: Final = 1 << 20  # read whole to hash: a memory map costs more than the read
+
+
+def _hash_input(f: Path | str, stamp: list[int] | None) -> str:
+    """``hash_file(f)``; a small local file read in one call instead of mapped."""
+    from seqpipe.filesystem import is_uri
+
+    if stamp is not None and stamp[0] < SMALL_INPUT and not is_uri(f):
+        try:
+            with open(f, "rb") as fh:
+                return xxhash.xxh3_128_hexdigest(fh.read())
+        except OSError:
+            pass  # hash_file raises the error the build reports
+    return hash_file(f)
 
 
 # -- the values phases pass on -------------------------------------------------------------------
@@ -440,46 +462,125 @@ def _input_files(recipe: Recipe) -> tuple[list[tuple[int, Path | str, str]], tup
     sorted order (a file two sources match is read once, by the first); and the matches skipped
     as not files. The name is the file's path relative to its glob's fixed directory
     (Source.resolve_named), never to the recipe."""
-    from seqpipe.filesystem import identity
-
     files: list[tuple[int, Path | str, str]] = []  # a local Path, or a filesystem URI
     seen: set[Path | str] = set()
     skipped: dict[str, str] = {}
+    parents: dict[str, str] = {}  # each directory resolved once, not each file's path
     for si, source in enumerate(recipe.sources):
         resolved = source.resolve_all(recipe.root)
         for rel, what in resolved.skipped:
             skipped.setdefault(rel, what)
         for f, name in zip(resolved.files, resolved.names, strict=True):
-            if identity(f) not in seen:
-                seen.add(identity(f))
+            same = _identity(f, parents)
+            if same not in seen:
+                seen.add(same)
                 files.append((si, f, name))
     if not files:
         raise SourceMissingError(str(recipe.root), "the recipe's sources match no file")
     return files, tuple({"path": p, "what": w} for p, w in sorted(skipped.items()))
 
 
-def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None) -> Plan:
-    """Resolve the inputs, hash them, and cut each into parts of about ``part_bytes``."""
-    from seqpipe.filesystem import file_size
+def _identity(f: Path | str, parents: dict[str, str]) -> Path | str:
+    """``filesystem.identity(f)``, resolving each directory once: a file that is not a symlink
+    is its resolved directory joined with its name."""
+    from seqpipe.filesystem import identity, is_uri
 
+    if is_uri(f) or os.path.islink(f):
+        return identity(f)
+    head, name = os.path.split(os.fspath(f))
+    real = parents.get(head)
+    if real is None:
+        real = parents[head] = os.path.realpath(head or ".")
+    return os.path.join(real, name)  # a str never equal to a URI (those start with a scheme)
+
+
+def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None) -> Plan:
+    """Resolve the inputs, hash them, cut each large one into parts of about ``part_bytes`` and
+    group consecutive small ones (of one source, in corpus order) into parts of about as much."""
     files, skipped = _input_files(recipe)
     hashed = _input_hashes([f for _, f, _ in files], cache)
     hashes = [h for h, _ in hashed]
-    sizes = [file_size(f) for _, f, _ in files]
+    sizes = [_size(f, stamp) for (_, f, _), (_, stamp) in zip(files, hashed, strict=True)]
     inputs = tuple(
         {"path": name, "bytes": sz, "hash": h} for (_, _, name), sz, h in zip(files, sizes, hashes, strict=True)
     )
-    tasks: list[IngestTask] = []
-    weights: list[int] = []
-    for ii, ((si, f, _), h) in enumerate(zip(files, hashes, strict=True)):
-        parts = recipe.sources[si].plan(f, part_bytes)
-        for part in parts:
-            key = part_key(recipe, si, h, part)
-            tasks.append(IngestTask(recipe, si, ii, str(f), part, key, str(cache), stamp=hashed[ii][1]))
-            weights.append(sizes[ii] // max(len(parts), 1))
+    cuts = _PlanCache(cache, recipe, part_bytes)
+    groups: list[tuple[int, list[tuple[Member, str, int]]]] = []  # per part: source, (member, hash, bytes)
+    open_group: list[tuple[Member, str, int]] | None = None  # the group small inputs are joining
+    held = 0
+    for ii, ((si, f, _), (h, stamp)) in enumerate(zip(files, hashed, strict=True)):
+        parts = cuts.parts(si, f, h)
+        members = [(Member(ii, str(f), part, stamp), h, sizes[ii] // len(parts)) for part in parts]
+        small = len(parts) == 1 and sizes[ii] < part_bytes and GROUP_INPUTS
+        if not small:
+            groups.extend((si, [m]) for m in members)
+            open_group = None
+            continue
+        if open_group is None or groups[-1][0] != si or held + sizes[ii] > part_bytes:
+            open_group, held = [], 0
+            groups.append((si, open_group))
+        open_group.extend(members)
+        held += sizes[ii]
+    cuts.save()
+    tasks = tuple(_ingest_task(recipe, si, group, cache) for si, group in groups)
+    weights = tuple(sum(w for _, _, w in group) for _, group in groups)
     reused = source.manifest["fingerprint"] if source is not None else None
     build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes, "reused": reused})
-    return Plan(inputs, tuple(tasks), tuple(weights), sum(sizes), build_key, skipped)
+    return Plan(inputs, tasks, weights, sum(sizes), build_key, skipped)
+
+
+def _ingest_task(recipe: Recipe, si: int, group: list[tuple[Member, str, int]], cache: Path) -> IngestTask:
+    """The task of one part: its members in order, its key from their hashes and cuts."""
+    key = part_key(recipe, si, [(h, m.part) for m, h, _ in group])
+    return IngestTask(recipe, si, tuple(m for m, _, _ in group), key, str(cache))
+
+
+def _size(f: Path | str, stamp: tuple[int, ...] | None) -> int:
+    """An input's size: the first field of its change stamp, else asked of its filesystem."""
+    from seqpipe.filesystem import file_size
+
+    return stamp[0] if stamp is not None else file_size(f)
+
+
+class _PlanCache:
+    """Each input's parts (``Source.plan``), stored beside the input hashes by content hash and
+    what the cuts depend on (the source's settings, ``part_bytes``): a rebuild then plans no
+    input it has planned before (planning may open the file: columnar metadata, cut scans)."""
+
+    def __init__(self, cache: Path, recipe: Recipe, part_bytes: int) -> None:
+        self.path = cache / "plans.json"
+        self.recipe = recipe
+        self.part_bytes = part_bytes
+        self.settings = [hash_json({"source": to_plain(s), "part_bytes": part_bytes})[:16] for s in recipe.sources]
+        try:
+            self.stored: dict[str, list[list[int | None]]] = json.loads(self.path.read_text())
+        except (OSError, ValueError):
+            self.stored = {}
+        self.changed = False
+        self.used: set[str] = set()
+
+    def parts(self, source_index: int, f: Path | str, file_hash: str) -> list[Part]:
+        name = f"{file_hash}.{self.settings[source_index]}"
+        self.used.add(name)
+        got = self.stored.get(name)
+        if isinstance(got, list) and got and all(isinstance(p, list) and len(p) == 2 for p in got):
+            return [Part(int(a or 0), None if b is None else int(b)) for a, b in got]
+        parts = self.recipe.sources[source_index].plan(f, self.part_bytes)
+        if parts and all(type(p) is Part for p in parts):
+            self.stored[name] = [[p.start, p.stop] for p in parts]
+            self.changed = True
+        return parts
+
+    def save(self) -> None:
+        """Store the cuts of this build's inputs (those of inputs no longer planned are dropped,
+        so the file does not grow with every edit)."""
+        if not self.changed and len(self.used) == len(self.stored):
+            return
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = self.path.with_suffix(".tmp")
+        kept = {name: cuts for name, cuts in self.stored.items() if name in self.used}
+        tmp.write_text(json.dumps(kept, sort_keys=True))
+        os.replace(tmp, self.path)
 
 
 def _has_dedupe(recipe: Recipe) -> bool:
@@ -662,7 +763,7 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
             str(stage),
             ctx.recipe,
             i,
-            t.input_index,
+            tuple(m.input_index for m in t.members),
             kept.keeps[i],
             fitted.dtype,
             _fixed(ctx.recipe, t),

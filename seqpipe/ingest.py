@@ -4,13 +4,23 @@ Every task is a top-level function taking one small picklable task object and re
 metadata. Each writes its output atomically under a deterministic name, so a task that runs
 twice (a retried cluster task, a resumed build) produces the same bytes and never a torn file.
 
+A part is a run of consecutive small inputs of one source (read one after another) or one cut
+of a large input: per-part costs (a task, a cache entry) are paid per ``part_bytes``, not per file.
+
 Ingest output ("part", cached by a fingerprint of its inputs, see ``part_key``)::
 
-    <cache>/parts/<key>/docs.arrow    per document: hash, dedupe, pieces, bytes, words
-    <cache>/parts/<key>/keys.arrow    distinct piece keys of the part (binary)
-    <cache>/parts/<key>/codes.arrow   one code per piece position, documents in order, in the
-                                      smallest unsigned type that holds the part's key count
-    <cache>/parts/<key>/meta.json     read/clean statistics
+    <cache>/parts/<key>/part.arrow    one row, one list column per array: the documents' columns
+                                      (hash, dedupe, pieces, bytes, characters, words, member:
+                                      which of the part's inputs holds it), ``keys`` (the distinct
+                                      piece keys) and ``codes`` (one code per piece position,
+                                      documents in order, in the smallest unsigned type that
+                                      holds the part's key count)
+    <cache>/parts/<key>/counts.<splits>.arrow   the part's train piece counts (key, count, first
+                                      within the part), when its ingest task counted it
+    <cache>/parts/<key>/meta.json     read/clean statistics and the hashes of the files above
+
+One Arrow file, not one per array: a cache of many small parts costs files and opens per part.
+Parts are rebuilt after a crash, so they are written without fsync (only renamed into place).
 """
 
 from __future__ import annotations
@@ -37,12 +47,12 @@ from seqpipe._hashing import hash_array, hash_file, hash_json
 from seqpipe._parse import to_plain
 from seqpipe.errors import PatternTimeoutError, SeqpipeError, SourceError
 from seqpipe.recipe import Recipe
-from seqpipe.shards import fsync_dir, id_dtype, read_shard, read_table, write_shard, write_table
+from seqpipe.shards import id_dtype, read_shard, read_table, write_shard, write_table
 from seqpipe.splits import assign_splits, fixed_split_of
 from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
 
-PART_FORMAT: Final = "seqpipe.part/5"  # /5: docs.arrow counts characters
+PART_FORMAT: Final = "seqpipe.part/6"  # /6: one part.arrow per part, a part may hold many inputs
 _THREADS: list[int] = []  # set by set_ingest_threads (e.g. in pool workers); else the environment
 
 
@@ -63,14 +73,14 @@ HASH_TYPE: Final = pa.binary(16)
 # -- ingest ------------------------------------------------------------------------------------------
 
 
-def part_key(recipe: Recipe, source_index: int, file_hash: str, part: Any) -> str:
-    """Fingerprint of everything an ingested part depends on (not vocab, splits or shards)."""
+def part_key(recipe: Recipe, source_index: int, members: Sequence[tuple[str, Any]]) -> str:
+    """Fingerprint of everything an ingested part depends on (not vocab, splits or shards):
+    ``members`` gives each of its inputs' hash and the source's part of it, in reading order."""
     return hash_json(
         {
             "format": PART_FORMAT,
             "source": to_plain(recipe.sources[source_index]),
-            "file": file_hash,
-            "part": to_plain(part) if hasattr(part, "__dataclass_fields__") else repr(part),
+            "members": [[h, _plain_part(p)] for h, p in members],
             "clean": [to_plain(s) for s in recipe.clean],
             "tokenizer": to_plain(recipe.tokenizer),
             # Unicode tables and the libraries that apply them: an upgrade must not reuse parts
@@ -79,13 +89,32 @@ def part_key(recipe: Recipe, source_index: int, file_hash: str, part: Any) -> st
     )
 
 
+def _plain_part(part: Any) -> Any:
+    """A source's part as JSON (the common start/stop kind directly: a key may list many)."""
+    from seqpipe.sources.base import Part
+
+    if type(part) is Part:
+        return [part.start, part.stop]
+    return to_plain(part) if hasattr(part, "__dataclass_fields__") else repr(part)
+
+
+@dataclass(frozen=True, slots=True)
+class Member:
+    """One input's share of a part: the whole of a small file, or one cut of a large one."""
+
+    input_index: int  # index into the manifest's inputs
+    path: str
+    part: Any  # the source's Part
+    # the input's change stamp when its hash was taken (filesystem.change_stamp); a part read
+    # while the stamp differs is refused, never cached
+    stamp: tuple[int, ...] | None = None
+
+
 @dataclass(frozen=True)
 class IngestTask:
     recipe: Recipe
     source_index: int
-    input_index: int
-    path: str
-    part: Any
+    members: tuple[Member, ...]  # read in this order; every document keeps its member's index
     key: str
     cache_dir: str
     batch_bytes: int = 1 << 20
@@ -93,9 +122,6 @@ class IngestTask:
     # corpus position of the part: when set (no dedupe step, so every document is kept), the
     # task also counts the part's train pieces while they are in memory (see PartMeta.counts)
     count_order: int | None = None
-    # the input's change stamp when its hash was taken (filesystem.change_stamp); a part read
-    # while the stamp differs is refused, never cached
-    stamp: tuple[int, ...] | None = None
 
 
 @dataclass
@@ -103,7 +129,6 @@ class PartMeta:
     """What an ingested part reports back (also stored as meta.json)."""
 
     key: str
-    input_index: int
     documents: int = 0
     pieces: int = 0
     read: dict[str, int] = field(default_factory=dict)
@@ -221,7 +246,7 @@ def _merge_segments(parts: Sequence[Segments]) -> Segments:
     return Segments(enc.dictionary.cast(pa.binary()), codes, lengths)
 
 
-PART_FILES: Final = ("docs.arrow", "keys.arrow", "codes.arrow")
+PART_FILE: Final = "part.arrow"
 COUNT_SLICE: Final = 1 << 20  # ids per np.bincount call when a shard task counts its ids
 
 
@@ -232,7 +257,7 @@ def _part_dir(cache_dir: str, key: str) -> Path:
 def part_intact(cache_dir: str, meta: PartMeta) -> bool:
     """Whether every file of a cached part still has the hash it was written with (a part
     stored without hashes is not trusted)."""
-    if meta.files is None or set(meta.files) != set(PART_FILES):
+    if meta.files is None or PART_FILE not in meta.files:
         return False
     part = _part_dir(cache_dir, meta.key)
     try:
@@ -277,6 +302,7 @@ def _process_batch(recipe: Recipe, batch: pa.Array, first: int = 0) -> _Batch:
         "bytes": pc.binary_length(docs).to_numpy(zero_copy_only=False).astype(np.int64),
         "characters": pc.utf8_length(docs).to_numpy(zero_copy_only=False).astype(np.int64),
         "words": count_words(docs),
+        "position": first + positions,  # index among the part's documents as read
     }
     try:
         segments = recipe.tokenizer.segment(docs)
@@ -326,7 +352,8 @@ def _gather(done: Iterable[_Batch]) -> _Gathered:
     dropped: dict[str, int] = {}
     redacted: dict[str, int] = {}
     segs: list[Segments] = []
-    columns: dict[str, list[np.ndarray]] = {k: [] for k in ("hash", "dedupe", "near", "bytes", "characters", "words")}
+    names = ("hash", "dedupe", "near", "bytes", "characters", "words", "position")
+    columns: dict[str, list[np.ndarray]] = {k: [] for k in names}
     for batch in done:
         for name, count in batch.dropped.items():
             dropped[name] = dropped.get(name, 0) + count
@@ -348,8 +375,9 @@ def _joined(parts: list[np.ndarray], width: int | None) -> np.ndarray:
     return np.zeros((0, width), np.uint8) if width else np.zeros(0, np.int64)
 
 
-def _docs_table(recipe: Recipe, got: _Gathered) -> pa.Table:
-    """The part's docs.arrow: per document its hash, pieces, bytes, characters, words (and dedupe hash)."""
+def _docs_table(recipe: Recipe, got: _Gathered, member: np.ndarray) -> dict[str, pa.Array]:
+    """The part's documents columns: per document its hash, pieces, bytes, characters, words, the
+    member (of the part's inputs) it comes from (and dedupe hash, MinHash signature)."""
     n = len(got.segments.doc_lengths)
     table: dict[str, Any] = {
         "hash": pa.FixedSizeBinaryArray.from_buffers(HASH_TYPE, n, [None, pa.py_buffer(got.columns["hash"].tobytes())]),
@@ -357,6 +385,7 @@ def _docs_table(recipe: Recipe, got: _Gathered) -> pa.Table:
         "bytes": pa.array(got.columns["bytes"], pa.int64()),
         "characters": pa.array(got.columns["characters"], pa.int64()),
         "words": pa.array(got.columns["words"], pa.int64()),
+        "member": pa.array(member, pa.int32()),
     }
     if any(getattr(s, "is_dedupe", False) for s in recipe.clean):
         table["dedupe"] = pa.FixedSizeBinaryArray.from_buffers(
@@ -369,83 +398,153 @@ def _docs_table(recipe: Recipe, got: _Gathered) -> pa.Table:
             table["near"] = pa.FixedSizeBinaryArray.from_buffers(
                 pa.binary(width), n, [None, pa.py_buffer(near.tobytes() if n else b"")]
             )
-    return pa.table(table)
+    return table
 
 
 def ingest_part(task: IngestTask) -> PartMeta:
-    """Read one part of one input file, clean it, segment it, and store it in the cache."""
+    """Read one part (its inputs one after another), clean it, segment it, and store it in the cache."""
     from seqpipe.sources.base import ReadStats
 
     recipe = task.recipe
     stats = ReadStats()
-    batches = recipe.sources[task.source_index].read(task.path, task.part, stats, batch_bytes=task.batch_bytes)
+    read_counts: list[int] = []  # documents read from each member so far, in member order
+    batches = _read_members(recipe.sources[task.source_index], task, stats, read_counts)
     try:
         got = _gather(_processed(recipe, batches, task.threads or ingest_threads()))
     except PatternTimeoutError as exc:
-        # a part's start: a byte offset (text, JSON Lines) or a row group / record batch index
-        where = task.path + (f" (the part starting at {task.part.start})" if task.part.start else "")
-        raise PatternTimeoutError(
-            f"{where}: {exc.message}", step=exc.step, pattern=exc.pattern, document=exc.document
-        ) from None
+        raise _in_member(exc, task, read_counts) from None
     seg = got.segments
     keys = seg.keys.cast(pa.binary())
+    ends = np.cumsum(np.asarray(read_counts, np.int64))
+    member = np.searchsorted(ends, got.columns["position"], side="right").astype(np.int32)
     meta = PartMeta(
         key=task.key,
-        input_index=task.input_index,
         documents=len(seg.doc_lengths),
         pieces=len(seg.codes),
         read={k: int(v) for k, v in asdict(stats).items()},
         dropped=got.dropped,
         redacted=got.redacted,
     )
-    _check_unchanged(task)
-    _store_part(task, _docs_table(recipe, got), keys, _stored_codes(seg.codes, len(keys)), meta)
+    for m in task.members:
+        _check_unchanged(m)
+    counted = None
     if task.count_order is not None:
         fixed = fixed_split_of(recipe.sources[task.source_index])
-        meta.counts = _count(
-            recipe, got.columns["hash"], seg.doc_lengths, keys, seg.codes, None, task.count_order, fixed
-        )
+        counted = _count(recipe, got.columns["hash"], seg.doc_lengths, keys, seg.codes, None, 0, fixed)
+    stored = _stored_codes(seg.codes, len(keys))
+    _store_part(task, _docs_table(recipe, got, member), keys, stored, meta, counted)
+    if counted is not None and task.count_order is not None:
+        meta.counts = (_in_corpus_order(counted[0], task.count_order), counted[1])
     return meta
 
 
-def _check_unchanged(task: IngestTask) -> None:
+def counts_file(recipe: Recipe) -> str:
+    """The name of a part's stored counts under ``recipe``'s splits: the train split is all
+    they depend on besides the part (a rebuild that changes only the vocabulary reuses them)."""
+    return f"counts.{hash_json(to_plain(recipe.splits))[:16]}.arrow"
+
+
+def _in_corpus_order(table: pa.Table, order: int) -> pa.Table:
+    """A part's count table (``first``: the position within the part) with ``first`` ranked in
+    the corpus (the part's position in the upper bits)."""
+    first = pa.array(table.column("first").to_numpy() + (np.int64(order) << 40), pa.int64())
+    return table.set_column(table.schema.get_field_index("first"), "first", first)
+
+
+def _read_members(source: Any, task: IngestTask, stats: Any, read_counts: list[int]) -> Iterator[pa.Array]:
+    """The documents of each member in turn (``Source.read_many``, which appends each member's
+    document count to ``read_counts``), small batches of consecutive members joined into
+    batches of about ``batch_bytes``: a batch per small file would cost a cleaning and a
+    segmenting call per file."""
+    held: list[pa.Array] = []
+    held_bytes = 0
+    parts = [(m.path, m.part) for m in task.members]
+    for batch in source.read_many(parts, stats, read_counts, batch_bytes=task.batch_bytes):
+        held.append(batch)
+        held_bytes += batch.nbytes
+        if held_bytes >= task.batch_bytes:
+            yield _joined_batches(held)
+            held, held_bytes = [], 0
+    if held:
+        yield _joined_batches(held)
+
+
+def _joined_batches(arrays: list[pa.Array]) -> pa.Array:
+    return arrays[0] if len(arrays) == 1 else pa.concat_arrays(arrays)
+
+
+def _in_member(exc: PatternTimeoutError, task: IngestTask, read_counts: list[int]) -> PatternTimeoutError:
+    """``exc`` (its document counted among the part's documents as read) naming the member file
+    that holds the document, and the document's number within that file's part."""
+    ends = np.cumsum(np.asarray(read_counts, np.int64))
+    at = int(np.searchsorted(ends, exc.document, side="right"))
+    at = min(at, len(task.members) - 1)  # a member still being read when the pattern ran over
+    document = exc.document - (int(ends[at - 1]) if at else 0)
+    m = task.members[at]
+    # a part's start: a byte offset (text, JSON Lines) or a row group / record batch index
+    where = m.path + (f" (the part starting at {m.part.start})" if m.part.start else "")
+    message = exc.message.replace(f"on document {exc.document} ", f"on document {document} ", 1)
+    return PatternTimeoutError(f"{where}: {message}", step=exc.step, pattern=exc.pattern, document=document)
+
+
+def _check_unchanged(member: Member) -> None:
     """Refuse a part whose input changed since its hash was taken: what was read may not be
     what the hash (and so the manifest and the cache key) says."""
     from seqpipe.filesystem import change_stamp
 
-    if task.stamp is None:
+    if member.stamp is None:
         return
-    now = change_stamp(task.path)
-    if now is None or tuple(now) != task.stamp:
+    now = change_stamp(member.path)
+    if now is None or tuple(now) != member.stamp:
         raise SourceError(
-            task.path,
+            member.path,
             "changed while the build was reading it (size or modification time differ from when it "
             "was hashed); run the build again once the file no longer changes",
         )
 
 
-def _store_part(task: IngestTask, docs: pa.Table, keys: pa.Array, codes: pa.Array, meta: PartMeta) -> None:
+def _store_part(
+    task: IngestTask,
+    docs: dict[str, pa.Array],
+    keys: pa.Array,
+    codes: pa.Array,
+    meta: PartMeta,
+    counted: tuple[pa.Table, int] | None = None,
+) -> None:
     """Write the part into the cache atomically: a private directory renamed into place (a twin
-    task that finished first wins; a torn leftover is replaced)."""
+    task that finished first wins; a torn leftover is replaced). No fsync: a part lost to a
+    crash is found missing or failing its hash, and ingested again."""
     final = _part_dir(task.cache_dir, task.key)
     tmp = final.with_name(f".{task.key}.{os.getpid()}.{uuid.uuid4().hex[:8]}.tmp")
     tmp.mkdir(parents=True)
     try:
-        write_table(tmp / "docs.arrow", docs, durable=False)
-        write_table(tmp / "keys.arrow", pa.table({"key": keys}), durable=False)
-        write_table(tmp / "codes.arrow", pa.table({"code": codes}), durable=False)
-        meta.files = {name: hash_file(tmp / name) for name in PART_FILES}
+        columns = {**docs, "keys": keys, "codes": codes}
+        row = {name: pa.LargeListArray.from_arrays(pa.array([0, len(a)], pa.int64()), a) for name, a in columns.items()}
+        write_table(tmp / PART_FILE, pa.table(row), durable=False)
+        names = [PART_FILE]
+        if counted is not None:  # the ingest task counted every document: keep them for rebuilds
+            names.append(counts_file(task.recipe))
+            table = counted[0].replace_schema_metadata({"train_documents": str(counted[1])})
+            write_table(tmp / names[-1], table, durable=False)
+        meta.files = {name: hash_file(tmp / name) for name in names}
         (tmp / "meta.json").write_text(json.dumps(asdict(meta), sort_keys=True))
-        fsync_dir(tmp)
         try:
             os.rename(tmp, final)
         except OSError:
             if load_part_meta(task.cache_dir, task.key) is None:  # not a finished twin: replace it
                 shutil.rmtree(final, ignore_errors=True)
                 os.rename(tmp, final)
-        fsync_dir(final.parent)
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
+
+
+def _read_part(cache_dir: str, key: str) -> tuple[pa.Table, pa.Array, np.ndarray]:
+    """A cached part: its documents table, its distinct piece keys, and its piece codes."""
+    row = read_table(_part_dir(cache_dir, key) / PART_FILE)
+    values = {name: row.column(name).combine_chunks().flatten() for name in row.column_names}
+    keys = values.pop("keys")
+    codes = values.pop("codes").to_numpy(zero_copy_only=False)
+    return pa.table(values), keys, codes
 
 
 def _stored_codes(codes: np.ndarray, n_keys: int) -> pa.Array:
@@ -467,7 +566,8 @@ def signature_rows(table: pa.Table, hashes: int) -> np.ndarray:
 
 
 def read_part_docs(cache_dir: str, key: str) -> pa.Table:
-    return read_table(_part_dir(cache_dir, key) / "docs.arrow")
+    """A cached part's documents table (one row per document, see the module docstring)."""
+    return _read_part(cache_dir, key)[0]
 
 
 def _piece_mask(pieces: np.ndarray, doc_mask: np.ndarray) -> np.ndarray:
@@ -499,10 +599,11 @@ class CountTask:
 def count_part(task: CountTask) -> tuple[pa.Table, int]:
     """Piece counts over the part's train documents: table (key, count, first), and how many
     train documents there are."""
-    d = _part_dir(task.cache_dir, task.key)
-    docs = read_table(d / "docs.arrow")
-    keys = read_table(d / "keys.arrow").column("key").combine_chunks()
-    codes = read_table(d / "codes.arrow").column("code").to_numpy()
+    if task.keep is None:
+        stored = _stored_counts(task)
+        if stored is not None:
+            return stored
+    docs, keys, codes = _read_part(task.cache_dir, task.key)
     return _count(
         task.recipe,
         fixed16(docs, "hash"),
@@ -513,6 +614,19 @@ def count_part(task: CountTask) -> tuple[pa.Table, int]:
         task.order,
         task.fixed,
     )
+
+
+def _stored_counts(task: CountTask) -> tuple[pa.Table, int] | None:
+    """The counts the part's ingest task stored for these splits (its hash was checked with the
+    part's), when it stored them."""
+    path = _part_dir(task.cache_dir, task.key) / counts_file(task.recipe)
+    if not path.is_file():
+        return None
+    table = read_table(path, full=True)
+    train = int((table.schema.metadata or {}).get(b"train_documents", b"-1"))
+    if train < 0:
+        return None
+    return _in_corpus_order(table.replace_schema_metadata(None), task.order), train
 
 
 def _count(
@@ -555,7 +669,7 @@ class EncodeTask:
     stage_dir: str
     recipe: Recipe
     number: int  # part number, names the output files
-    input_index: int  # the part's input file (the documents tables' "input")
+    inputs: tuple[int, ...]  # the input index of each of the part's members (the documents tables' "input")
     keep: np.ndarray | None  # bool per document (None: keep all)
     dtype: str
     fixed: int | None = None  # the split of every document, for a source with a fixed split
@@ -596,12 +710,11 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
 
     recipe = task.recipe
     enc = _encoder(recipe, task.stage_dir)
-    d = _part_dir(task.cache_dir, task.key)
-    docs = read_table(d / "docs.arrow")
-    keys = read_table(d / "keys.arrow").column("key").combine_chunks()
-    codes = read_table(d / "codes.arrow").column("code").to_numpy()
+    docs, keys, codes = _read_part(task.cache_dir, task.key)
     pieces = docs.column("pieces").to_numpy()
+    inputs = np.asarray(task.inputs, np.int32)[docs.column("member").to_numpy()]
     splits = assign_splits(recipe.splits, fixed16(docs, "hash"), task.keep, task.fixed)
+    piece_split = np.repeat(splits, pieces)  # once, not a repeat per split
     values, offsets = enc.piece_ids(keys)
     voc = enc.vocabulary
     begin = voc.id_of("begin") if recipe.encode.prepend_begin else None
@@ -613,9 +726,10 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
         dmask = splits == s
         if not dmask.any():
             continue
-        ids, lengths = expand(values, offsets, codes[_piece_mask(pieces, dmask)], pieces[dmask])
+        ids, lengths = expand(values, offsets, codes[piece_split == s], pieces[dmask])
         content = len(ids)  # the documents' own tokens, before begin/end markers
-        ids = _add_markers(ids, lengths, begin, end)
+        # in the ids' stored type from here on: the marker pass moves a quarter of the bytes
+        ids = _add_markers(ids.astype(task.dtype, copy=False), lengths, begin, end)
         lengths = lengths + (begin is not None) + (end is not None)
         unknown = int(np.count_nonzero(ids == unk)) if unk is not None else 0
         write_shard(encoded_path(task.stage_dir, task.number, split), ids.astype(task.dtype), durable=False)
@@ -625,7 +739,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
             table=pa.table(
                 {
                     "length": pa.array(lengths, pa.int64()),
-                    "input": pa.array(np.full(len(lengths), task.input_index, np.int32)),
+                    "input": pa.array(inputs[dmask]),
                     "hash": hashes.filter(pa.array(dmask)),
                 }
             ),
@@ -648,7 +762,7 @@ def _add_markers(ids: np.ndarray, lengths: np.ndarray, begin: int | None, end: i
     if not extra:
         return ids
     new_len = lengths + extra
-    out = np.empty(int(new_len.sum()), dtype=np.int64)
+    out = np.empty(int(new_len.sum()), dtype=ids.dtype)
     starts = np.cumsum(new_len) - new_len
     body = np.ones(len(out), dtype=bool)
     if begin is not None:

@@ -326,8 +326,8 @@ def test_a_part_with_more_distinct_words_than_two_byte_codes_hold(tmp_path: Path
     )
     result = build(recipe, tmp_path / "out", progress=False)
     [part] = (tmp_path / "out" / ".seqpipe" / "cache" / "parts").iterdir()
-    with ipc.open_file(part / "codes.arrow") as f:
-        assert str(f.schema.field("code").type) == "uint32"
+    with ipc.open_file(part / "part.arrow") as f:
+        assert str(f.schema.field("codes").type.value_type) == "uint32"
     ds = open_dataset(result.directory)
     tokens = ds.vocabulary.tokens_for(ds.split("train").stream.slice(0, ds.split("train").num_tokens))
     assert [t.decode() for t in tokens] == [w for w in text.split()]
@@ -338,8 +338,8 @@ def test_a_part_with_more_distinct_words_than_two_byte_codes_hold(tmp_path: Path
     (small / "logs" / "narrow.txt").write_text(few + "\n", encoding="utf-8")
     result = build(parse_recipe(RECIPE, small), small / "out", progress=False)
     [part] = (small / "out" / ".seqpipe" / "cache" / "parts").iterdir()
-    with ipc.open_file(part / "codes.arrow") as f:
-        assert str(f.schema.field("code").type) == "uint16"
+    with ipc.open_file(part / "part.arrow") as f:
+        assert str(f.schema.field("codes").type.value_type) == "uint16"
     ds = open_dataset(result.directory)
     got = [
         t.decode()
@@ -416,31 +416,33 @@ def test_an_input_changed_before_it_is_read_fails_the_build_and_is_not_cached(
     part of that file is cached."""
     from conftest import write_project
 
+    from seqpipe._build import PART_BYTES, plan_build
     from seqpipe.ingest import load_part_meta
     from seqpipe.sources.text import TextSource
 
     recipe_path = write_project(tmp_path / "src")
     recipe = load_recipe(recipe_path)
     victim = sorted((tmp_path / "src").rglob("*.txt"))[0]
-    real_read = TextSource.read
+    real_read = TextSource.read_many
     touched: list[str] = []
 
-    def rewriting_read(self: TextSource, path: str, *args: object, **kwargs: object) -> object:
-        if Path(path) == victim and not touched:
-            touched.append(path)
+    def rewriting_read(self: TextSource, parts: list[tuple[str, object]], *args: object, **kwargs: object) -> object:
+        if any(Path(path) == victim for path, _ in parts) and not touched:
+            touched.append(str(victim))
             data = bytearray(victim.read_bytes())
             data[:5] = b"XXXXX"
             victim.write_bytes(bytes(data))
-        return real_read(self, path, *args, **kwargs)  # type: ignore[arg-type]
+        return real_read(self, parts, *args, **kwargs)  # type: ignore[arg-type]
 
-    monkeypatch.setattr(TextSource, "read", rewriting_read)
+    monkeypatch.setattr(TextSource, "read_many", rewriting_read)
+    planned = plan_build(recipe, tmp_path / "planned", PART_BYTES)  # the keys the build gives its parts
     with pytest.raises(SourceError) as caught:
         build(recipe, tmp_path / "out", workers=1, progress=False)
     assert caught.value.exit_code == 3
     assert str(victim) in str(caught.value) and "changed" in str(caught.value)
-    parts = tmp_path / "out" / ".seqpipe" / "cache" / "parts"
-    metas = [load_part_meta(str(parts.parent), p.name) for p in parts.iterdir() if not p.name.startswith(".")]
-    assert touched and all(m is not None and m.input_index != 0 for m in metas)
+    cache = tmp_path / "out" / ".seqpipe" / "cache"
+    [holder] = [t for t in planned.tasks if any(Path(m.path) == victim for m in t.members)]
+    assert touched and load_part_meta(str(cache), holder.key) is None
 
 
 def test_a_damaged_cached_part_is_rebuilt_not_trusted(tmp_path: Path) -> None:
@@ -456,8 +458,10 @@ def test_a_damaged_cached_part_is_rebuilt_not_trusted(tmp_path: Path) -> None:
     out = build_dir(recipe, tmp_path / "out")
     first = verify(out).fingerprint
     parts = sorted(p for p in (out / ".seqpipe" / "cache" / "parts").iterdir() if not p.name.startswith("."))
-    codes = read_table(parts[0] / "codes.arrow", memory_map=False).column("code")
-    write_table(parts[0] / "codes.arrow", pa.table({"code": pa.array([0] * len(codes), codes.type)}))
+    row = read_table(parts[0] / "part.arrow", memory_map=False)
+    codes = row.column("codes").combine_chunks().flatten()
+    other = pa.LargeListArray.from_arrays(pa.array([0, len(codes)], pa.int64()), pa.array([0] * len(codes), codes.type))
+    write_table(parts[0] / "part.arrow", row.set_column(row.schema.get_field_index("codes"), "codes", other))
     result = build(load_recipe(recipe), out, workers=1, progress=False)
     assert result.fingerprint == first
     assert result.parts_reused == result.parts_total - 1

@@ -100,7 +100,7 @@ def test_fresh_parts_are_counted_at_ingest_and_cached_ones_in_the_count_phase(tm
 def key_of(recipe: Recipe, root: Path, file_hash: str = "f" * 32) -> str:
     """The cache key of the first part of the tiny corpus's file under ``recipe``."""
     part = recipe.sources[0].plan(root / "logs" / "day-1.txt", 1 << 20)[0]
-    return part_key(recipe, 0, file_hash, part)
+    return part_key(recipe, 0, [(file_hash, part)])
 
 
 def test_part_keys_change_when_the_cleaning_changes(tmp_path: Path) -> None:

@@ -181,17 +181,18 @@ def test_output_does_not_depend_on_part_size(
 
 
 class ReadCounter:
-    """Counts TextSource.read calls made in this process (workers=1 runs tasks inline)."""
+    """Counts the file parts TextSource.read_many is asked to read in this process (workers=1
+    runs tasks inline): an ingest task reads its part's members through it."""
 
     def __init__(self, monkeypatch: pytest.MonkeyPatch) -> None:
         self.calls = 0
-        original = TextSource.read
+        original = TextSource.read_many
 
-        def counting(source: TextSource, *args: Any, **kwargs: Any) -> Iterator[Any]:
-            self.calls += 1
-            return original(source, *args, **kwargs)
+        def counting(source: TextSource, parts: Any, *args: Any, **kwargs: Any) -> Iterator[Any]:
+            self.calls += len(parts)
+            return original(source, parts, *args, **kwargs)
 
-        monkeypatch.setattr(TextSource, "read", counting)
+        monkeypatch.setattr(TextSource, "read_many", counting)
 
     def take(self) -> int:
         n, self.calls = self.calls, 0

@@ -116,6 +116,29 @@ class SourceContract:
             self.write(root, [t.encode("utf-8") for t in texts])
             assert read_all(self.source(), root, target_bytes=target, batch_bytes=batch) == texts
 
+    @_CONTRACT_SETTINGS
+    @given(data=st.data(), batch=st.integers(1, 256))
+    def test_read_many_equals_reading_each_file(self, data: st.DataObject, batch: int) -> None:
+        """Reading several files' parts with ``read_many`` gives the documents of reading each in
+        turn, in order, the same stats, and how many documents each file gave."""
+        groups = data.draw(st.lists(st.lists(self.doc, max_size=4), min_size=1, max_size=5))
+        with tempfile.TemporaryDirectory() as tmp:
+            parts = []
+            for i, texts in enumerate(groups):
+                (Path(tmp) / f"f{i}").mkdir()
+                self.write(Path(tmp) / f"f{i}", [t.encode("utf-8") for t in texts])
+                for path in sorted(p for p in (Path(tmp) / f"f{i}").rglob("*") if p.is_file()):
+                    parts.extend((path, part) for part in self.source().plan(path, 1 << 30))
+            one, many = ReadStats(), ReadStats()
+            each = [
+                [d for a in self.source().read(path, part, one, batch_bytes=batch) for d in a.to_pylist()]
+                for path, part in parts
+            ]
+            counts: list[int] = []
+            got = [d for a in self.source().read_many(parts, many, counts, batch_bytes=batch) for d in a.to_pylist()]
+            assert got == [d for docs in each for d in docs] == [t for texts in groups for t in texts]
+            assert counts == [len(docs) for docs in each] and one == many
+
     def test_oversize_policies(self, tmp_path: Path) -> None:
         """A document over max_document_bytes is refused, skipped or cut at a character boundary."""
         docs = ["short", "é" * 40, "tail"]  # the middle one is 80 bytes

@@ -26,7 +26,7 @@ import dataclasses
 import os
 import re
 from abc import ABC, abstractmethod
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path, PurePath
 from typing import Any, ClassVar, Final
@@ -118,7 +118,20 @@ class Resolved:
 def _recorded_name(path: str, base: str) -> str:
     """``path`` (relative to the recipe's directory) as a manifest records it: relative to the
     fixed directory part of the glob that matched it, with '/' separators."""
-    return PurePath(os.path.relpath(os.path.normpath(path), base)).as_posix()
+    path = os.path.normpath(path)
+    if os.sep == "/":  # the common case without relpath's two abspath calls (a corpus of many files)
+        base = os.path.normpath(base)
+        if base == "." and not os.path.isabs(path):
+            return path
+        if path.startswith(base.rstrip("/") + "/"):
+            return path[len(base.rstrip("/")) + 1 :]
+    return PurePath(os.path.relpath(path, base)).as_posix()
+
+
+def _posix_key(path: str) -> str:
+    """A glob match's normalized POSIX path (its sort key)."""
+    path = os.path.normpath(path)
+    return path if os.sep == "/" else PurePath(path).as_posix()
 
 
 def _parse_paths(value: Any) -> tuple[str, ...]:
@@ -214,7 +227,7 @@ class Source(ABC):
             if not matches.files:
                 raise SourceMissingError(str(root), f"glob {pattern!r} matched no file under {root}")
             for hit in matches.files:
-                key = PurePath(os.path.normpath(hit)).as_posix()
+                key = _posix_key(hit)
                 found.setdefault(key, (root / key, _recorded_name(hit, base)))
         ordered = [found[key] for key in sorted(found)]
         return Resolved([p for p, _ in ordered], tuple(sorted(skipped.items())), tuple(n for _, n in ordered))
@@ -228,6 +241,23 @@ class Source(ABC):
         self, path: SourcePath, part: Part, stats: ReadStats, *, batch_bytes: int = DEFAULT_BATCH_BYTES
     ) -> Iterator[pa.Array]:
         """Yield the documents of ``part`` as ``large_string`` arrays of about ``batch_bytes``."""
+
+    def read_many(
+        self,
+        parts: Sequence[tuple[SourcePath, Part]],
+        stats: ReadStats,
+        counts: list[int],
+        *,
+        batch_bytes: int = DEFAULT_BATCH_BYTES,
+    ) -> Iterator[pa.Array]:
+        """The documents of several ``(path, part)`` in turn (a run of small files sharing a
+        build part); appends to ``counts`` how many documents each gave, once it is read."""
+        for path, part in parts:
+            documents = 0
+            for batch in self.read(path, part, stats, batch_bytes=batch_bytes):
+                documents += len(batch)
+                yield batch
+            counts.append(documents)
 
     def documents(
         self, root: Path, stats: ReadStats, *, target_bytes: int = 64 << 20, batch_bytes: int = DEFAULT_BATCH_BYTES

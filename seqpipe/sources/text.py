@@ -21,15 +21,16 @@ bytes are kept for ``on_oversize = "truncate"``).
 from __future__ import annotations
 
 import re
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import ClassVar, Final
 
+import numpy as np
 import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str
-from seqpipe.filesystem import SourcePath, file_size
-from seqpipe.sources._fast_text import fast_documents, last_paragraph_cut
+from seqpipe.filesystem import SourcePath, file_size, is_uri
+from seqpipe.sources._fast_text import document_spans, fast_documents, last_paragraph_cut
 from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, plan_cuts, plan_stream_cuts, read_blocks
 from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, Source, to_array
 
@@ -156,6 +157,60 @@ class TextSource(Source):
             return self._read_file(path, part, stats, batch_bytes)
         return self._read_split(path, part, stats, batch_bytes)
 
+    def read_many(
+        self,
+        parts: Sequence[tuple[SourcePath, Part]],
+        stats: ReadStats,
+        counts: list[int],
+        *,
+        batch_bytes: int = DEFAULT_BATCH_BYTES,
+    ) -> Iterator[pa.Array]:
+        """:meth:`Source.read_many`, reading runs of whole small plain local files (line and
+        paragraph documents) as one buffer, a separator between files, through the vectorized
+        path: a file costs a read, not a reader. A run the vectorized path declines (a CR, an
+        oversize document, bytes that are not UTF-8) is read file by file, as are other parts."""
+        run: list[tuple[SourcePath, Part]] = []
+        held = 0
+        for path, part in parts:
+            if not self._joinable(path, part, batch_bytes):
+                yield from self._read_run(run, stats, counts, batch_bytes)
+                run, held = [], 0
+                yield from Source.read_many(self, [(path, part)], stats, counts, batch_bytes=batch_bytes)
+                continue
+            run.append((path, part))
+            held += part.stop or 0
+            if held >= batch_bytes:
+                yield from self._read_run(run, stats, counts, batch_bytes)
+                run, held = [], 0
+        yield from self._read_run(run, stats, counts, batch_bytes)
+
+    def _joinable(self, path: SourcePath, part: Part, batch_bytes: int) -> bool:
+        """A part that is a small whole plain local file of line or paragraph documents."""
+        return (
+            self.document != "file"
+            and part.start == 0
+            and part.stop is not None
+            and part.stop <= batch_bytes
+            and not is_uri(path)
+            and codec_for(path, self.compression) is None
+        )
+
+    def _read_run(
+        self, run: list[tuple[SourcePath, Part]], stats: ReadStats, counts: list[int], batch_bytes: int
+    ) -> Iterator[pa.Array]:
+        if not run:
+            return
+        joined = _joined_documents(run, self.document == "paragraph", self.max_document_bytes)
+        if joined is None:
+            yield from Source.read_many(self, run, stats, counts, batch_bytes=batch_bytes)
+            return
+        docs, per_file, read = joined
+        stats.bytes_read += read
+        stats.documents += len(docs)
+        counts.extend(per_file)
+        if len(docs):
+            yield docs
+
     def _read_file(self, path: SourcePath, part: Part, stats: ReadStats, batch_bytes: int) -> Iterator[pa.Array]:
         codec = codec_for(path, self.compression)
         finisher = DocumentFinisher(self, path, stats, compressed=codec is not None)
@@ -226,6 +281,40 @@ class TextSource(Source):
                 if text is not None:
                     docs.append(text)
         return to_array(docs, finisher.stats)
+
+
+_BOM: Final = b"\xef\xbb\xbf"
+
+
+def _joined_documents(
+    run: list[tuple[SourcePath, Part]], paragraphs: bool, limit: int
+) -> tuple[pa.Array, list[int], int] | None:
+    """The documents of whole plain files read as one buffer (each file's byte order mark
+    dropped, as ``read_blocks`` does, and a separator after each, so no document spans two
+    files), how many each file gave, and the bytes read; None where the vectorized path
+    declines or a file cannot be read, so the exact reader (and its errors) decide."""
+    pieces: list[bytes] = []
+    read = 0
+    for path, part in run:
+        try:
+            with open(path, "rb") as fh:
+                data = fh.read(part.stop)
+        except OSError:
+            return None
+        read += len(data)
+        pieces.append(data[3:] if data.startswith(_BOM) else data)
+    separator = b"\n\n" if paragraphs else b"\n"
+    buf = separator.join(pieces) + separator
+    if b"\r" in buf:
+        return None
+    docs = fast_documents(buf, len(buf), paragraphs, limit)
+    if docs is None:
+        return None
+    lengths = np.array([len(p) + len(separator) for p in pieces], np.int64)
+    starts, _ = document_spans(np.frombuffer(buf, np.uint8), paragraphs, False)
+    first = np.searchsorted(starts, np.cumsum(lengths) - lengths)
+    per_file = np.diff(first, append=len(starts))
+    return docs, per_file.tolist(), read
 
 
 @dataclass(slots=True)

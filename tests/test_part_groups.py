@@ -1,0 +1,244 @@
+"""Parts that hold many small inputs: same dataset bytes, each document's own input, cache keys
+per group, cached rebuilds that open no input, errors naming the file inside a group."""
+
+from __future__ import annotations
+
+import random
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pytest
+import xxhash
+
+import seqpipe._build as build_module
+from seqpipe import build
+from seqpipe._build import plan_build
+from seqpipe.dataset import open_dataset
+from seqpipe.errors import InvalidUtf8Error, PatternTimeoutError
+from seqpipe.ingest import IngestTask, Member, _in_member
+from seqpipe.recipe import Recipe, parse_recipe
+from seqpipe.sources.base import Part
+
+WORDS = ("ferry", "river", "north", "bank", "calm", "tide", "rope", "deck", "wharf", "fog", "pier", "crew")
+RECIPE = """\
+[[sources]]
+kind = "text"
+paths = "notes/**/*.txt"
+document = "{document}"
+on_invalid_utf8 = "{invalid}"
+max_document_bytes = 400
+on_oversize = "skip"
+[tokenizer]
+kind = "words"
+[vocabulary]
+cap = {cap}
+[splits]
+train = 0.6
+validation = 0.2
+test = 0.2
+[shards]
+tokens = 200
+"""
+
+
+def _words(rnd: random.Random, n: int) -> str:
+    return " ".join(rnd.choice(WORDS) for _ in range(n))
+
+
+def write_notes(root: Path, files: int = 60, seed: int = 3, *, awkward: bool = True) -> list[Path]:
+    """Small files in nested directories, one or a few paragraphs each; with ``awkward`` also a
+    byte order mark, CRLF line ends, a blank file, trailing blanks without a line end, an
+    oversize paragraph and bytes that are not UTF-8."""
+    rnd = random.Random(seed)
+    paths = []
+    for i in range(files):
+        path = root / "notes" / f"shelf-{i % 3}" / f"box-{i % 4}" / f"note-{i:03d}.txt"
+        path.parent.mkdir(parents=True, exist_ok=True)
+        text = "\n\n".join(_words(rnd, rnd.randint(1, 12)) for _ in range(rnd.choice((1, 1, 1, 2, 3)))) + "\n"
+        data = text.encode()
+        if awkward and i == 5:
+            data = b"\xef\xbb\xbf" + data
+        elif awkward and i == 9:
+            data = data.replace(b"\n", b"\r\n")
+        elif awkward and i == 13:
+            data = b" \n\t\n"
+        elif awkward and i == 17:
+            data = data.rstrip(b"\n") + b"  "
+        elif awkward and i == 21:
+            data = (_words(rnd, 120) + "\n").encode()  # over max_document_bytes: skipped
+        elif awkward and i == 25:
+            data = b"calm \xff tide\n"
+        path.write_bytes(data)
+        paths.append(path)
+    return paths
+
+
+def recipe_of(root: Path, *, document: str = "paragraph", invalid: str = "replace", cap: int = 0) -> Recipe:
+    return parse_recipe(RECIPE.format(document=document, invalid=invalid, cap=cap), root)
+
+
+def dataset_files(out: Path) -> dict[str, bytes]:
+    return {
+        str(p.relative_to(out)): p.read_bytes()
+        for p in sorted(out.rglob("*"))
+        if p.is_file() and ".seqpipe" not in p.parts
+    }
+
+
+@pytest.mark.parametrize("document", ["paragraph", "line", "file"])
+def test_grouped_small_files_give_the_same_dataset_bytes(
+    tmp_path: Path, document: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Many small files built in shared parts give byte for byte the dataset built with one part
+    per file (grouping off) and the one built with parts of 64 bytes (large files cut)."""
+    write_notes(tmp_path)
+    recipe = recipe_of(tmp_path, document=document)
+    grouped = build(recipe, tmp_path / "grouped", workers=1, progress=False)
+    assert grouped.parts_total == 1
+    monkeypatch.setattr(build_module, "GROUP_INPUTS", False)
+    alone = build(recipe, tmp_path / "alone", workers=1, progress=False)
+    assert alone.parts_total == len(grouped.manifest["inputs"])
+    tiny = build(recipe, tmp_path / "tiny", workers=1, progress=False, part_bytes=64)
+    assert tiny.parts_total > alone.parts_total or document == "file"  # a file document is never cut
+    want = dataset_files(tmp_path / "alone")
+    assert dataset_files(tmp_path / "grouped") == want
+    assert dataset_files(tmp_path / "tiny") == want
+
+
+def test_each_document_keeps_its_own_input_inside_a_group(tmp_path: Path) -> None:
+    """In a part holding many files, the documents table's ``input`` names each document's own
+    file: the file's text hashes (XXH3-128, as documents are hashed) to the document's hash."""
+    paths = write_notes(tmp_path, awkward=False)
+    for i, path in enumerate(paths):  # one paragraph per file, so a file's text is its document
+        path.write_text(f"note {i} " + " ".join(WORDS[: 1 + i % len(WORDS)]) + "\n")
+    result = build(recipe_of(tmp_path, document="file"), tmp_path / "out", workers=1, progress=False)
+    assert result.parts_total == 1
+    ds = open_dataset(result.directory)
+    inputs = result.manifest["inputs"]
+    seen = 0
+    for name in ds.splits:
+        table = ds.split(name).documents
+        for index, digest in zip(table.column("input").to_pylist(), table.column("hash").to_pylist(), strict=True):
+            text = (tmp_path / "notes" / inputs[index]["path"]).read_bytes()
+            assert xxhash.xxh3_128_digest(text) == digest
+            seen += 1
+    assert seen == len(paths)
+
+
+def test_a_changed_file_changes_only_its_groups_key(tmp_path: Path) -> None:
+    """With parts of about 600 bytes, editing one file changes the cache key of the one part
+    holding it and no other."""
+    paths = write_notes(tmp_path, files=40, awkward=False)
+    recipe = recipe_of(tmp_path)
+    before = plan_build(recipe, tmp_path / "cache", 600)
+    assert len(before.tasks) > 3 and all(len(t.members) >= 1 for t in before.tasks)
+    victim = paths[17]
+    victim.write_text(victim.read_text() + "fog fog\n")
+    after = plan_build(recipe, tmp_path / "cache", 600)
+    changed = [a.key != b.key for a, b in zip(before.tasks, after.tasks, strict=True)]
+    holding = [any(Path(m.path) == victim for m in t.members) for t in after.tasks]
+    assert changed == holding and sum(changed) == 1
+
+
+def test_a_cached_rebuild_reads_no_input(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A rebuild that only changes the vocabulary takes every part from the cache without
+    reading, hashing or planning any input file (those calls are made to fail)."""
+    write_notes(tmp_path)
+    first = build(recipe_of(tmp_path), tmp_path / "out", workers=1, progress=False, part_bytes=400)
+    assert first.parts_total > 2
+
+    def refuse(*args: object, **kwargs: object) -> None:
+        raise AssertionError("an input was opened")
+
+    from seqpipe.sources.text import TextSource
+
+    for name in ("read", "read_many", "plan"):
+        monkeypatch.setattr(TextSource, name, refuse)
+    real_hash = build_module.hash_file
+
+    def hash_outputs_only(path: Path) -> str:
+        assert "notes" not in Path(path).parts, "an input was hashed"
+        return real_hash(path)
+
+    monkeypatch.setattr(build_module, "hash_file", hash_outputs_only)
+    monkeypatch.setattr(build_module, "_hash_input", refuse)
+    again = build(recipe_of(tmp_path, cap=8), tmp_path / "out", workers=1, progress=False, part_bytes=400)
+    assert again.parts_reused == again.parts_total == first.parts_total
+    assert again.bytes_read == 0
+
+
+def test_an_error_inside_a_group_names_its_file(tmp_path: Path) -> None:
+    """Bytes that are not UTF-8 in one file of a shared part (policy error) fail the build with
+    a message naming that file, not the part's first."""
+    paths = write_notes(tmp_path, awkward=False)
+    bad = paths[23]
+    bad.write_bytes(b"tide \xfe calm\n")
+    with pytest.raises(InvalidUtf8Error) as caught:
+        build(recipe_of(tmp_path, invalid="error"), tmp_path / "out", workers=1, progress=False)
+    assert str(bad) in str(caught.value)
+    assert str(paths[0]) not in str(caught.value)
+
+
+def test_a_pattern_timeout_names_the_member_and_its_document() -> None:
+    """A pattern timeout on document 5 of a part whose members gave 3 and 4 documents names the
+    second member and its document 2."""
+    members = (Member(0, "notes/a.txt", Part(0, 10)), Member(1, "notes/b.txt", Part(0, 20)))
+    task = IngestTask(
+        parse_recipe(RECIPE.format(document="line", invalid="error", cap=0), Path(".")), 0, members, "k", "."
+    )
+    exc = PatternTimeoutError(
+        "clean[0] replace: pattern 'x' ran long on document 5 (starting 'a')",
+        step="clean[0] replace",
+        pattern="x",
+        document=5,
+    )
+    got = _in_member(exc, task, [3, 4])
+    assert got.document == 2
+    assert str(got).startswith("notes/b.txt: ") and "on document 2 " in str(got)
+
+
+def test_grouped_part_stores_one_arrow_file(tmp_path: Path) -> None:
+    """A part of many files is one Arrow file (and its counts) and its meta in the cache: its
+    documents' member column counts every document of every file in order."""
+    write_notes(tmp_path, awkward=False)
+    build(recipe_of(tmp_path), tmp_path / "out", workers=1, progress=False)
+    [part] = [p for p in (tmp_path / "out" / ".seqpipe" / "cache" / "parts").iterdir()]
+    from seqpipe.ingest import counts_file, read_part_docs
+
+    # the counts its ingest task made (no dedupe step) are kept for rebuilds with these splits
+    assert sorted(p.name for p in part.iterdir()) == sorted(
+        [counts_file(recipe_of(tmp_path)), "meta.json", "part.arrow"]
+    )
+
+    member = read_part_docs(str(part.parent.parent), part.name).column("member").to_numpy()
+    assert len(member) and bool(np.all(np.diff(member) >= 0)) and member.dtype == np.int32
+    assert pa.types.is_int32(pa.array(member).type)
+
+
+def test_a_rebuild_from_stored_counts_equals_a_fresh_build(tmp_path: Path) -> None:
+    """A rebuild with another vocabulary cap, its counts taken from the parts' stored counts,
+    writes the same dataset bytes as a fresh build (``force``) with that cap."""
+    write_notes(tmp_path)
+    build(recipe_of(tmp_path), tmp_path / "out", workers=1, progress=False, part_bytes=300)
+    again = build(recipe_of(tmp_path, cap=9), tmp_path / "out", workers=1, progress=False, part_bytes=300)
+    assert again.parts_reused == again.parts_total > 2
+    build(recipe_of(tmp_path, cap=9), tmp_path / "fresh", workers=1, progress=False, part_bytes=300, force=True)
+    assert dataset_files(tmp_path / "out") == dataset_files(tmp_path / "fresh")
+
+
+def test_stored_cuts_follow_the_inputs(tmp_path: Path) -> None:
+    """The cache keeps one entry of cuts per input planned by the last build: a removed file's
+    entry goes, an edited file's entry is replaced."""
+    import json
+
+    paths = write_notes(tmp_path, files=12, awkward=False)
+    cache = tmp_path / "cache"
+    plan_build(recipe_of(tmp_path), cache, 1 << 20)
+    assert len(json.loads((cache / "plans.json").read_text())) == 12
+    paths[3].unlink()
+    paths[4].write_text("tide calm\n")
+    plan_build(recipe_of(tmp_path), cache, 1 << 20)
+    stored = json.loads((cache / "plans.json").read_text())
+    assert len(stored) == 11
+    assert [[0, len(b"tide calm\n")]] in stored.values()
