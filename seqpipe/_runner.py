@@ -153,7 +153,8 @@ def run_beside(
                 futures[fut] = run_
         beside = meanwhile()
         for fut in as_completed(list(futures)):
-            _take(fut, futures[fut], batched is not None, results, each, ticker)
+            # dropped once taken: a Dask worker keeps a result while its future is referenced
+            _take(fut, futures.pop(fut), batched is not None, results, each, ticker)
     return results, beside
 
 
