@@ -2,6 +2,12 @@
 
 Results come back in task order, never completion order; a callback sees each as it arrives,
 so a phase can fold results in without keeping them all.
+
+On an executor whose tasks run elsewhere (a Dask cluster: see ``executors.task_slots``) every
+submitted task costs a scheduler round trip and its own pickling, a few milliseconds, which a
+corpus of thousands of small parts pays thousands of times; there consecutive tasks are sent
+together as one ``Batch`` (a few per slot; the recipe they share is pickled once per batch),
+and the bar, ``each`` and the results still see every original task.
 """
 
 from __future__ import annotations
@@ -12,6 +18,7 @@ from dataclasses import dataclass
 from typing import Any, Final, TypeVar
 
 from seqpipe.errors import WorkerError
+from seqpipe.executors import settle_remote_worker, task_slots
 from seqpipe.progress import bar
 
 WORKER_DIED: Final = (
@@ -22,6 +29,46 @@ WORKER_DIED: Final = (
 )
 
 M = TypeVar("M")
+
+# batches per slot of a remote executor: enough that a slow batch leaves the other slots work
+# to take, few enough that per-task costs are paid dozens of times per phase, not thousands
+BATCHES_PER_SLOT: Final = 8
+
+
+@dataclass(frozen=True, slots=True)
+class Batch:
+    """One task submitted to a remote executor: sets up the process it lands in (once), then
+    runs ``fn`` over several tasks, in order, and returns their results."""
+
+    fn: Callable[[Any], Any]
+
+    def __call__(self, tasks: Sequence[Any]) -> list[Any]:
+        settle_remote_worker()
+        return [self.fn(t) for t in tasks]
+
+
+def batch_ranges(count: int, weights: Sequence[int] | None, slots: int | None) -> list[range]:
+    """Consecutive runs of ``count`` tasks, one per submitted task: each alone without ``slots``
+    (an executor in this process) or when they are few, else about ``BATCHES_PER_SLOT`` runs per
+    slot of equal weight (``weights``, else equal per task); a task heavier than a run's share
+    makes a run of its own."""
+    if not slots or count <= slots * BATCHES_PER_SLOT:
+        return [range(i, i + 1) for i in range(count)]
+    w = list(weights) if weights is not None and sum(weights) > 0 else [1] * count
+    share = sum(w) / (slots * BATCHES_PER_SLOT)
+    runs: list[range] = []
+    start, held = 0, 0
+    for i, x in enumerate(w):
+        if held and held + x > share:  # the run is full without this task
+            runs.append(range(start, i))
+            start, held = i, 0
+        held += x
+        if held >= share:
+            runs.append(range(start, i + 1))
+            start, held = i + 1, 0
+    if start < count:
+        runs.append(range(start, count))
+    return runs
 
 
 @dataclass(frozen=True, slots=True)
@@ -87,30 +134,44 @@ def run_beside(
     submitted and before waiting for them; returns its result too."""
     from concurrent.futures import as_completed
 
-    futures: dict[Future[Any], int] = {}
+    futures: dict[Future[Any], range] = {}
     results: list[Any] = [None] * len(tasks)
     total = sum(view.weights) if view.weights is not None else len(tasks)
     shown = show and bool(tasks)
+    slots = task_slots(executor) if tasks else None
+    batched = Batch(fn) if slots is not None else None
     with bar(total, view.desc, unit=view.unit, show=shown, unit_scale=view.weights is not None) as pbar:
         ticker = _Ticker(pbar, view, shown)
-        for i, t in enumerate(tasks):
-            fut = executor.submit(fn, t)
-            if fut.done():
-                results[i] = _take(fut, i, each, ticker)
+        for run_ in batch_ranges(len(tasks), view.weights, slots):
+            if batched is None:
+                fut = executor.submit(fn, tasks[run_.start])
             else:
-                futures[fut] = i
+                fut = executor.submit(batched, [tasks[i] for i in run_])
+            if fut.done():
+                _take(fut, run_, batched is not None, results, each, ticker)
+            else:
+                futures[fut] = run_
         beside = meanwhile()
         for fut in as_completed(list(futures)):
-            i = futures[fut]
-            results[i] = _take(fut, i, each, ticker)
+            # dropped once taken: a Dask worker keeps a result while its future is referenced
+            _take(fut, futures.pop(fut), batched is not None, results, each, ticker)
     return results, beside
 
 
-def _take(fut: Future[Any], i: int, each: Callable[[int, Any], Any] | None, ticker: _Ticker) -> Any:
+def _take(
+    fut: Future[Any],
+    run_: range,
+    batched: bool,
+    results: list[Any],
+    each: Callable[[int, Any], Any] | None,
+    ticker: _Ticker,
+) -> None:
+    """Store a finished task's result (a batch's: each of its tasks' results) in ``results``."""
     try:
         value = fut.result()
     except BrokenExecutor as exc:
         raise WorkerError(WORKER_DIED, cause=type(exc).__name__) from exc
-    kept = each(i, value) if each is not None else value
-    ticker.tick(i, value)
-    return kept
+    values = value if batched else [value]
+    for i, v in zip(run_, values, strict=True):
+        results[i] = each(i, v) if each is not None else v
+        ticker.tick(i, v)
