@@ -290,8 +290,7 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
     ids, bucket = ids[order], bucket[order]
     members, where = np.unique(ids, return_inverse=True)
     sig = _signatures(scheme, members, bands * rows)[where.ravel()]
-    starts = np.flatnonzero(np.r_[True, bucket[1:] != bucket[:-1]])
-    ends = np.r_[starts[1:], len(bucket)]
+    starts, ends = _runs(bucket)
     found_repeats: list[np.ndarray] = []
     found_pairs: list[np.ndarray] = []
     for a, b in zip(starts.tolist(), ends.tolist(), strict=True):  # one step per shared bucket
@@ -300,6 +299,14 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
         found_pairs.append(pair)
     pairs = np.unique(np.concatenate(found_pairs), axis=0) if found_pairs else none[1]
     return np.unique(np.concatenate(found_repeats)), pairs.reshape(-1, 2)
+
+
+def _runs(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Start and end of each run of equal values in a sorted array."""
+    if len(values) == 0:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    starts = np.flatnonzero(np.r_[True, values[1:] != values[:-1]])
+    return starts, np.r_[starts[1:], len(values)]
 
 
 def _bucket_pairs(ids: np.ndarray, sig: np.ndarray, threshold: float) -> tuple[np.ndarray, np.ndarray]:
@@ -353,8 +360,7 @@ def resolve_pairs(scheme: Scheme) -> int:
     pairs = pairs[np.lexsort((pairs[:, 0], pairs[:, 1]))]
     dropped: set[int] = set()
     later = pairs[:, 1]
-    starts = np.flatnonzero(np.r_[True, later[1:] != later[:-1]]) if len(later) else np.zeros(0, np.int64)
-    ends = np.r_[starts[1:], len(later)]
+    starts, ends = _runs(later)
     for a, b in zip(starts.tolist(), ends.tolist(), strict=True):  # one step per near-copy
         if any(j not in dropped for j in pairs[a:b, 0].tolist()):
             dropped.add(int(later[a]))
