@@ -4,6 +4,7 @@ and the held-out overlap check, for any split of the corpus into parts and parti
 
 from __future__ import annotations
 
+import itertools
 from pathlib import Path
 from types import SimpleNamespace
 from typing import Any
@@ -104,7 +105,7 @@ def test_partitioned_drops_equal_the_whole_corpus_functions(
                 "near": fixed_binary(sig[a:b].astype("<u4").view(np.uint8).reshape(b - a, 4 * bands * rows)),
             }
         )
-        for i, (a, b) in enumerate(zip(bounds[:-1], bounds[1:], strict=True))
+        for i, (a, b) in enumerate(itertools.pairwise(bounds))
     }
     want_keep, want_dup, want_near, want_overlap = whole_corpus(content, dedupe, sig, near, fixed, bounds, splits)
     work = tmp_path_factory.mktemp("drops")
