@@ -44,8 +44,8 @@ from seqpipe.recipe import SplitSpec
 from seqpipe.splits import assign_splits
 
 # Rows a group task holds at most per partition (exact: one per document, near: one per
-# document and band): about 40 bytes each, so some 80 MB of keys in a worker at most.
-ROWS_PER_PARTITION: Final = 1 << 21
+# document and band): about 40 bytes each, so some 40 MB of keys in a worker at most.
+ROWS_PER_PARTITION: Final = 1 << 20
 MAX_PARTITIONS: Final = 4096
 _MIX1: Final = np.uint64(0xBF58476D1CE4E5B9)
 _MIX2: Final = np.uint64(0x94D049BB133111EB)
