@@ -5,7 +5,8 @@ per part.
 Each build runs as ``build(..., workers=2)`` in its own interpreter, which reports the peak RSS
 of its own process only (VmHWM of /proc/self/status: Linux keeps ru_maxrss across exec, so
 getrusage(RUSAGE_SELF) in a child would report its parent's size at fork; the spawned worker is
-a separate process and not counted). With workers=2 the driver also runs tasks (seqpipe's
+a separate process and not counted; its own peak is shown beside, from RUSAGE_CHILDREN, which
+counts from its fork). With workers=2 the driver also runs tasks (seqpipe's
 executor lets this process take tasks beside the spawned one), so its peak includes one task's
 memory: per part and per partition, both bounded.
 
@@ -32,7 +33,7 @@ MB: Final = 1 << 20
 CHUNK_LINES: Final = 100_000
 
 _DRIVER = """
-import json, sys
+import json, resource, sys
 from pathlib import Path
 from seqpipe import build
 from seqpipe.recipe import load_recipe
@@ -40,6 +41,7 @@ result = build(load_recipe(sys.argv[1]), sys.argv[2], workers=2, progress=False)
 hwm = [l for l in Path("/proc/self/status").read_text().splitlines() if l.startswith("VmHWM:")]
 summary = result.manifest["summary"]
 print(json.dumps({"driver_kib": int(hwm[0].split()[1]), "seconds": result.seconds,
+                  "worker_kib": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss,
                   "duplicates": summary["duplicates_dropped"],
                   "near": summary["near_duplicates_dropped"]}))
 """
@@ -132,7 +134,8 @@ def _doc_line(small: int, big: int, workdir: Path) -> Measure:
     detail = (
         f"(driver peak {sizes[big]['driver_kib'] / 1024:.0f} MB for {big:,} documents vs "
         f"{sizes[small]['driver_kib'] / 1024:.0f} MB for {small:,}; dedupe on, workers=2; "
-        f"builds {sizes[big]['seconds']:.1f} s and {sizes[small]['seconds']:.1f} s)"
+        f"builds {sizes[big]['seconds']:.1f} s and {sizes[small]['seconds']:.1f} s; spawned worker peak "
+        f"{sizes[big]['worker_kib'] / 1024:.0f} MB and {sizes[small]['worker_kib'] / 1024:.0f} MB)"
     )
     return Measure("build.driver_rss_10m_vs_1m_docs", ratio, 1.3, detail, higher_is_better=False)
 
@@ -152,7 +155,9 @@ def _near_line(small: int, big: int, workdir: Path) -> Measure:
     detail = (
         f"(driver peak {rb['driver_kib'] / 1024:.0f} MB for {bb / MB:.0f} MB of text vs "
         f"{rs['driver_kib'] / 1024:.0f} MB for {bs / MB:.0f} MB; near_dedupe on, workers=2; "
-        f"{rb['near']:.0f} and {rs['near']:.0f} near-copies removed)"
+        f"{rb['near']:.0f} and {rs['near']:.0f} near-copies removed; builds {rb['seconds']:.1f} s and "
+        f"{rs['seconds']:.1f} s; spawned worker peak {rb['worker_kib'] / 1024:.0f} MB and "
+        f"{rs['worker_kib'] / 1024:.0f} MB)"
     )
     return Measure("clean.near_dedupe_driver_rss", ratio, 1.3, detail, higher_is_better=False)
 
