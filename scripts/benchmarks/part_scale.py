@@ -13,8 +13,9 @@ getrusage(RUSAGE_SELF) in a child would report its parent's size at fork.
 
 With workers=2 the driver also runs tasks (seqpipe's executor lets this process take tasks
 beside the spawned one), so its peak includes one task's memory: per part, per partition and
-per shard, all bounded. Shards hold 1M tokens, so both sizes fill whole shards and the comparison is of documents, not of a half-empty shard against full ones
-(a shard task's memory grows with ``shards.tokens``, not with the corpus).
+per shard, all bounded. Shards hold 1M tokens, so both sizes fill whole shards and the
+comparison is of documents, not of a half-empty shard against full ones (a shard task's memory
+grows with ``shards.tokens``, not with the corpus).
 
 Inputs are invented words (``_corpus.invent_words``), one document per line: short lines of
 3-8 words (about 5% planted exact repeats) for the document count, lines of 40-120 words with
