@@ -311,7 +311,9 @@ def _runs(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 def _bucket_pairs(ids: np.ndarray, sig: np.ndarray, threshold: float) -> tuple[np.ndarray, np.ndarray]:
     """In one band bucket (members in corpus order): members whose signature an earlier member
-    has (always dropped), and the (earlier, later) pairs of the others at ``threshold``."""
+    has (always dropped), and the (earlier, later) pairs of the others at ``threshold``. Every
+    pair of distinct signatures is compared: quadratic in them, so a bucket of thousands of
+    different near-copies of one text is what makes a group task slow, not the corpus size."""
     rows = np.ascontiguousarray(sig).view(np.dtype((np.void, sig.dtype.itemsize * sig.shape[1]))).ravel()
     _, first = np.unique(rows, return_index=True)
     first.sort()
