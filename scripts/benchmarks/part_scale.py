@@ -37,6 +37,7 @@ from _corpus import invent_words
 from common import Measure
 
 MB: Final = 1 << 20
+PART_BYTES: Final = 16 << 20  # the build's default (seqpipe._build.PART_BYTES)
 CHUNK_LINES: Final = 100_000
 
 _DRIVER = """
@@ -56,7 +57,7 @@ def sample():
         time.sleep(0.005)
 
 threading.Thread(target=sample, daemon=True).start()
-result = build(load_recipe(sys.argv[1]), sys.argv[2], workers=2, progress=False)
+result = build(load_recipe(sys.argv[1]), sys.argv[2], workers=2, progress=False, part_bytes=int(sys.argv[3]))
 peak[0] = max(peak[0], status("RssAnon"))
 summary = result.manifest["summary"]
 print(json.dumps({"driver_kib": peak[0], "hwm_kib": status("VmHWM"), "seconds": result.seconds,
@@ -125,12 +126,12 @@ def write_lines(path: Path, documents: int, *, shortest: int, longest: int, near
     return written
 
 
-def driver_peak(root: Path, steps: str) -> dict[str, float]:
+def driver_peak(root: Path, steps: str, part_bytes: int) -> dict[str, float]:
     """Build ``root``'s corpus with ``workers=2`` in its own interpreter; the driver's figures."""
     (root / "recipe.toml").write_text(RECIPE.format(steps=steps), encoding="utf-8")
     env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parents[2]), SEQPIPE_INGEST_THREADS="1")
     done = subprocess.run(
-        [sys.executable, "-c", _DRIVER, str(root / "recipe.toml"), str(root / "out")],
+        [sys.executable, "-c", _DRIVER, str(root / "recipe.toml"), str(root / "out"), str(part_bytes)],
         env=env,
         capture_output=True,
         text=True,
@@ -142,12 +143,12 @@ def driver_peak(root: Path, steps: str) -> dict[str, float]:
     return report
 
 
-def _doc_line(small: int, big: int, workdir: Path) -> Measure:
+def _doc_line(small: int, big: int, workdir: Path, part_bytes: int) -> Measure:
     sizes = {}
     for n in (small, big):
         root = workdir / f"docs-{n}"
         write_lines(root / "corpus" / "lines.txt", n, shortest=3, longest=8, near=False, seed=3)
-        report = driver_peak(root, EXACT)
+        report = driver_peak(root, EXACT, part_bytes)
         if not report["duplicates"]:
             raise RuntimeError("the short-document corpus has no duplicate: the dedupe phases did not run")
         sizes[n] = report
@@ -162,13 +163,13 @@ def _doc_line(small: int, big: int, workdir: Path) -> Measure:
     return Measure("build.driver_rss_10m_vs_1m_docs", ratio, 1.3, detail, higher_is_better=False)
 
 
-def _near_line(small: int, big: int, workdir: Path) -> Measure:
+def _near_line(small: int, big: int, workdir: Path, part_bytes: int) -> Measure:
     sizes = {}
     for n in (small, big):
         root = workdir / f"near-{n}"
         per_line = 720  # bytes: 1,342 MB came out of 1 GiB / 560 lines on 2026-12-04
         bytes_ = write_lines(root / "corpus" / "lines.txt", n // per_line, shortest=40, longest=120, near=True, seed=4)
-        report = driver_peak(root, EXACT + NEAR)
+        report = driver_peak(root, EXACT + NEAR, part_bytes)
         if not report["near"]:
             raise RuntimeError("no near-copy was found: the near_dedupe phases did not run")
         sizes[n] = (report, bytes_)
@@ -187,8 +188,10 @@ def _near_line(small: int, big: int, workdir: Path) -> Measure:
 
 def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
     if quick:
-        yield _doc_line(5_000, 50_000, workdir)
-        yield _near_line(MB, 5 * MB, workdir)
+        # smaller sizes fall below one part, where the one task the driver runs grows with the
+        # corpus (a fixed cost per part at full size)
+        yield _doc_line(20_000, 200_000, workdir, PART_BYTES)
+        yield _near_line(MB, 5 * MB, workdir, PART_BYTES)
     else:
-        yield _doc_line(1_000_000, 10_000_000, workdir)
-        yield _near_line(100 * MB, 1000 * MB, workdir)
+        yield _doc_line(1_000_000, 10_000_000, workdir, PART_BYTES)
+        yield _near_line(100 * MB, 1000 * MB, workdir, PART_BYTES)
