@@ -6,7 +6,8 @@ and the shard phase's arithmetic (shard cuts, documents tables) in seqpipe/_layo
 
     plan     resolve globs, hash inputs (stat-cached), cut files into parts      -> Plan
     ingest   read + clean + segment each part, task per part, cached parts reused -> Ingested
-    assign   which documents are kept: exact duplicates dropped (driver, dedupe) -> Kept
+    assign   which documents are kept: duplicates, near-copies and held-out overlap found by
+             hash-partitioned tasks (seqpipe/_dedupe.py); a drop list per part -> Kept
              (splits are not assigned here: each task computes its documents' splits from
              their content hashes, seqpipe/splits.py)
     count    piece counts over train documents, task per part, merged by group-by -> count table
@@ -41,13 +42,31 @@ import pyarrow as pa
 import xxhash
 
 from seqpipe import __version__
+from seqpipe._dedupe import (
+    Finished,
+    Masked,
+    PartitionTask,
+    PartTask,
+    Scheme,
+    drop_list,
+    finish_part,
+    group_partition,
+    masked_count,
+    masked_encode,
+    overlap_lists,
+    overlap_partition,
+    partitions_for,
+    reset,
+    resolve_pairs,
+    write_keys,
+)
 from seqpipe._environment import environment
 from seqpipe._hashing import hash_file, hash_json
 from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
 from seqpipe._parse import to_plain
 from seqpipe._reuse import VocabSource, adopt_vocabulary, open_vocab_source, reused_entry, vocabulary_fingerprint
 from seqpipe._runner import View, run, run_beside
-from seqpipe.counts import CountMerger, first_occurrence
+from seqpipe.counts import CountMerger
 from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SourceMissingError
 from seqpipe.executors import TaskPool, task_pool
 from seqpipe.formats import DOCS_DIR, OPTIONAL_TOP, SHARDS_DIR, VOCAB_FILE
@@ -60,13 +79,10 @@ from seqpipe.ingest import (
     count_part,
     encode_part,
     encoded_dir,
-    fixed16,
     ingest_part,
     load_part_meta,
     part_intact,
     part_key,
-    read_part_docs,
-    signature_rows,
     write_shard_task,
 )
 from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal
@@ -74,7 +90,7 @@ from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype
 from seqpipe.sources.base import Part
-from seqpipe.splits import assign_splits, fixed_split_of, held_out_overlap
+from seqpipe.splits import fixed_split_of
 from seqpipe.staging import build_lock, check_output, private_dir, publish
 
 if TYPE_CHECKING:
@@ -85,6 +101,7 @@ PART_BYTES: Final = 16 << 20
 # Small inputs share parts (see plan_build); tests turn this off to check that the dataset's
 # bytes do not depend on how inputs are grouped.
 GROUP_INPUTS = True
+DEDUPE_DIR: Final = "dedupe"  # in the stage: the drop phases' work files, removed after encoding
 # For the shard-count check before a build starts: no tokenizer gives fewer tokens per input
 # byte than one per this many bytes on text (words average under 8 bytes with their space),
 # and one shard's manifest entry takes about this many bytes (path, counts, two hashes).
@@ -374,9 +391,10 @@ class Ingested:
 
 @dataclass(frozen=True, slots=True)
 class Kept:
-    """Which documents stay: per part a bool per document (None: all), and how many were dropped."""
+    """Which documents stay: per part the drop-list files its tasks read, and how many were dropped."""
 
-    keeps: tuple[np.ndarray | None, ...]
+    files: tuple[tuple[str, ...], ...]  # per part: files listing its dropped documents (none: all kept)
+    documents: tuple[int, ...]  # per part
     duplicates: int
     near_duplicates: int = 0
     overlap: int = 0  # train documents whose content a fixed validation/test source also holds
@@ -416,7 +434,7 @@ def _build(
     try:
         merger = CountMerger()  # parts counted by their ingest task arrive first, the others in count
         ingested = ingest(ctx, plan, merger, counting=source is None)
-        kept = assign(ctx, plan)
+        kept = assign(ctx, plan, ingested, stage)
         if source is None:
             fitted = fit(recipe, count(ctx, plan, ingested, kept, merger), stage, show=ctx.show)
         else:  # the ids of another dataset: nothing to count or fit
@@ -650,69 +668,74 @@ def _cached_parts(cache: str, plan: Plan) -> tuple[list[PartMeta | None], int]:
     return metas, damaged
 
 
-def assign(ctx: Context, plan: Plan) -> Kept:
+def assign(ctx: Context, plan: Plan, ingested: Ingested, stage: Path) -> Kept:
     """Which documents stay: with a dedupe step, an exact duplicate keeps its first occurrence
     in corpus order, and with a near_dedupe step so does the first of each group of near-duplicates
     (splits are computed in the tasks, from each document's hash); then the
     train documents that a fixed validation/test source also holds are counted (and removed
-    with ``exclude_overlap_from_train``)."""
-    return held_out(ctx, plan, _deduped(ctx, plan))
+    with ``exclude_overlap_from_train``). All per-document work runs in hash-partitioned tasks
+    (seqpipe/_dedupe.py) that leave a drop list per part in ``stage``; the driver keeps figures
+    per part."""
+    recipe = ctx.recipe
+    documents = tuple(m.documents for m in ingested.parts)
+    exact = any(getattr(s, "is_dedupe", False) for s in recipe.clean)
+    near = _near_step(recipe)
+    held = any((_fixed(recipe, t) or 0) > 0 for t in plan.tasks)
+    if not (exact or near is not None or held):
+        return Kept(((),) * len(plan.tasks), documents, 0)
+    rows = int(exact) + (int(near.bands) if near is not None else 0)
+    scheme = Scheme(
+        str(ctx.cache),
+        str(stage / DEDUPE_DIR),
+        len(plan.tasks),
+        partitions_for(sum(documents), rows),
+        exact,
+        (int(near.bands), int(near.rows), float(near.threshold)) if near is not None else None,
+        recipe.splits if held else None,
+    )
+    reset(scheme.work_dir, [t.key for t in plan.tasks])
+    return _dropped(ctx, plan, scheme, documents)
 
 
-def _deduped(ctx: Context, plan: Plan) -> Kept:
-    if not _has_dedupe(ctx.recipe):
-        return Kept((None,) * len(plan.tasks), 0)
-    # the per-document arrays the driver holds: 16 bytes per document with dedupe, 4 bytes per
-    # hash function with near_dedupe
-    tables = [read_part_docs(str(ctx.cache), t.key) for t in plan.tasks]
-    sizes = [t.num_rows for t in tables]
-    keep_all = np.ones(sum(sizes), dtype=bool)
-    if any(getattr(s, "is_dedupe", False) for s in ctx.recipe.clean):
-        keep_all = first_occurrence(np.concatenate([fixed16(t, "dedupe") for t in tables]))
-    duplicates = int((~keep_all).sum())
-    near = _near_step(ctx.recipe)
-    if near is not None:
-        from seqpipe.clean.near_dedupe import near_duplicate_keep
-
-        sig = np.concatenate([signature_rows(t, near.hashes) for t in tables])
-        keep_all &= near_duplicate_keep(sig, near.bands, near.rows, near.threshold)
-    bounds = np.cumsum([0, *sizes])
-    keeps = tuple(keep_all[bounds[i] : bounds[i + 1]] for i in range(len(sizes)))
-    return Kept(keeps, duplicates, int((~keep_all).sum()) - duplicates)
+def _dropped(ctx: Context, plan: Plan, scheme: Scheme, documents: tuple[int, ...]) -> Kept:
+    """Run the drop phases (keys, group, resolve, finish, overlap); the per-part drop lists."""
+    parts = [PartTask(scheme, i, t.key, documents[i], _fixed(ctx.recipe, t)) for i, t in enumerate(plan.tasks)]
+    partitions = [PartitionTask(scheme, p) for p in range(scheme.partitions)]
+    executor, show = ctx.pool.executor, ctx.show
+    if scheme.exact or scheme.near is not None:
+        run(executor, show, write_keys, parts, View("dedupe keys"))
+        run(executor, show, group_partition, partitions, View("dedupe groups", unit="partition"))
+    if scheme.near is not None:
+        resolve_pairs(scheme)
+    finished: list[Finished] = run(executor, show, finish_part, parts, View("drop lists"))
+    overlap = 0
+    if scheme.splits is not None:
+        overlap = sum(run(executor, show, overlap_partition, partitions, View("overlap", unit="partition")))
+    exclude = ctx.recipe.splits.exclude_overlap_from_train and overlap > 0
+    shared = overlap_lists(scheme) if exclude else ()
+    files = tuple(((drop_list(scheme, i),) if f.has_drops else ()) + shared for i, f in enumerate(finished))
+    return Kept(
+        files,
+        documents,
+        sum(f.exact for f in finished),
+        sum(f.near for f in finished),
+        overlap,
+        overlap if ctx.recipe.splits.exclude_overlap_from_train else 0,
+    )
 
 
 def _fixed(recipe: Recipe, task: IngestTask) -> int | None:
     return fixed_split_of(recipe.sources[task.source_index])
 
 
-def held_out(ctx: Context, plan: Plan, kept: Kept) -> Kept:
-    """Count the train documents whose content (hash) a source with a fixed validation or test
-    split also holds; with ``exclude_overlap_from_train`` drop them from train. Hash-assigned
-    documents cannot overlap (equal content, equal split), so the driver holds only the
-    fixed-split documents' hashes (16 bytes each) and reads the other parts one at a time."""
-    recipe, cache = ctx.recipe, str(ctx.cache)
-    held_parts = [i for i, t in enumerate(plan.tasks) if (_fixed(recipe, t) or 0) > 0]
-    if not held_parts:
-        return kept
-    held_rows = []
-    for i in held_parts:
-        hashes = fixed16(read_part_docs(cache, plan.tasks[i].key), "hash")
-        keep = kept.keeps[i]
-        held_rows.append(hashes if keep is None else hashes[keep])
-    held = np.unique(np.ascontiguousarray(np.concatenate(held_rows)).view("V16").reshape(-1))
-    keeps = list(kept.keeps)
-    overlap = 0
-    for i, task in enumerate(plan.tasks):
-        if i in held_parts:
-            continue
-        hashes = fixed16(read_part_docs(cache, task.key), "hash")
-        train = assign_splits(recipe.splits, hashes, keeps[i], _fixed(recipe, task)) == 0
-        hit = train & held_out_overlap(hashes, held)
-        overlap += int(hit.sum())
-        if recipe.splits.exclude_overlap_from_train and hit.any():
-            keeps[i] = ~hit if keeps[i] is None else keeps[i] & ~hit
-    removed = overlap if recipe.splits.exclude_overlap_from_train else 0
-    return Kept(tuple(keeps), kept.duplicates, kept.near_duplicates, overlap, removed)
+def _masked(kept: Kept, tasks: Sequence[Any], count: bool) -> tuple[Any, list[Any]]:
+    """The task function and tasks: plain ones when nothing is dropped, else each wrapped with
+    its part's drop list (read by the task, not shipped as a mask)."""
+    numbers = [t.order if count else t.number for t in tasks]
+    if not any(kept.files[i] for i in numbers):
+        return (count_part if count else encode_part), list(tasks)
+    wrapped = [Masked(t, i, kept.documents[i], kept.files[i]) for t, i in zip(tasks, numbers, strict=True)]
+    return (masked_count if count else masked_encode), wrapped
 
 
 def _merge_counted(merger: CountMerger, _: int, counted: tuple[pa.Table, int]) -> None:
@@ -724,11 +747,12 @@ def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: Coun
     table in first-occurrence order."""
     cache = str(ctx.cache)
     tasks = [
-        CountTask(cache, plan.tasks[i].key, i, ctx.recipe, kept.keeps[i], _fixed(ctx.recipe, plan.tasks[i]))
+        CountTask(cache, plan.tasks[i].key, i, ctx.recipe, None, _fixed(ctx.recipe, plan.tasks[i]))
         for i in ingested.recount
     ]
     merger.expect(len(tasks))
-    run(ctx.pool.executor, ctx.show, count_part, tasks, View("counting"), each=partial(_merge_counted, merger))
+    fn, work = _masked(kept, tasks, count=True)
+    run(ctx.pool.executor, ctx.show, fn, work, View("counting"), each=partial(_merge_counted, merger))
     if merger.train_documents == 0:
         raise EmptyCorpusError("the train split is empty: add documents or raise splits.train")
     return merger.result()
@@ -764,13 +788,16 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
             ctx.recipe,
             i,
             tuple(m.input_index for m in t.members),
-            kept.keeps[i],
+            None,
             fitted.dtype,
             _fixed(ctx.recipe, t),
         )
         for i, t in enumerate(plan.tasks)
     ]
-    return tuple(run(ctx.pool.executor, ctx.show, encode_part, tasks, View("encoding")))
+    fn, work = _masked(kept, tasks, count=False)
+    totals = tuple(run(ctx.pool.executor, ctx.show, fn, work, View("encoding")))
+    shutil.rmtree(stage / DEDUPE_DIR, ignore_errors=True)  # the drop lists are no longer read
+    return totals
 
 
 def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path, fitted: Fitted) -> Sharded:

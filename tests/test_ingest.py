@@ -64,7 +64,7 @@ def test_a_part_is_ingested_counted_and_encoded(tmp_path: Path) -> None:
     ingested = ingest(ctx, plan, merger)
     assert [m.documents for m in ingested.parts] == [len(DOCS)]
     assert load_part_meta(str(ctx.cache), plan.tasks[0].key) == ingested.parts[0]
-    kept = assign(ctx, plan)
+    kept = assign(ctx, plan, ingested, tmp_path / "stage")
     counts = count(ctx, plan, ingested, kept, merger)
     want = collections.Counter(w for d in DOCS for w in d.split())
     assert counts.column("key").to_pylist() == [w.encode() for w in want]  # Counter keeps first-seen order

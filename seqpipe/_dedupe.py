@@ -1,0 +1,504 @@
+"""Which documents a build drops, worked out in hash-partitioned tasks so the driver's memory
+depends on the number of parts, not of documents.
+
+The phases (each a set of executor tasks; files in the build's work directory)::
+
+    keys     task per part: its documents' keys (exact ``dedupe`` hash; each near_dedupe band's
+             rows) into one Arrow IPC file whose record batch p holds partition p (by key hash)
+    group    task per partition: batch p of every part, grouped by key. Exact: every occurrence
+             after the first in corpus order is dropped. Near: in each band bucket, a document
+             whose signature equals an earlier member's is dropped (whatever happens to that
+             one, the same earlier document that drops it drops this one); the other members
+             give candidate pairs (earlier, later), confirmed where the estimated Jaccard
+             similarity reaches the threshold (signatures read from the parts, for candidates only)
+    resolve  driver: the confirmed pairs (they scale with near-copies, not documents) in corpus
+             order, as clean.near_dedupe.near_duplicate_keep does: a document is dropped when
+             an earlier *kept* document is its near-copy
+    finish   task per part: its drop list (exact, near) into one file; with a fixed validation
+             or test source, the hashes for the overlap check, partitioned like the keys
+    overlap  task per partition: train documents whose content a held-out document also has
+
+Count and encode tasks read their part's drop list by path (``masked_count``,
+``masked_encode``). Every grouping breaks ties by (part, row), so results do not depend on the
+number of partitions, workers or the order tasks finish in.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import os
+import shutil
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Final
+
+import numpy as np
+import pyarrow as pa
+
+from seqpipe.counts import first_occurrence
+from seqpipe.errors import ShardCorruptError
+from seqpipe.ingest import count_part, encode_part, fixed16, read_part_docs, signature_rows
+from seqpipe.recipe import SplitSpec
+from seqpipe.splits import assign_splits
+
+# Rows a group task holds at most per partition (exact: one per document, near: one per
+# document and band): about 40 bytes each, so some 40 MB of keys in a worker at most.
+ROWS_PER_PARTITION: Final = 1 << 20
+MAX_PARTITIONS: Final = 4096
+_MIX1: Final = np.uint64(0xBF58476D1CE4E5B9)
+_MIX2: Final = np.uint64(0x94D049BB133111EB)
+_GOLDEN: Final = np.uint64(0x9E3779B97F4A7C15)
+_PLACES: Final = pa.schema([("part", pa.int32()), ("row", pa.int32())])
+
+
+@dataclass(frozen=True, slots=True)
+class Scheme:
+    """What every task of the drop phases shares: where parts and work files are, how many
+    partitions, and which steps run (``near``: bands, rows, threshold)."""
+
+    cache_dir: str
+    work_dir: str
+    parts: int
+    partitions: int
+    exact: bool
+    near: tuple[int, int, float] | None = None
+    splits: SplitSpec | None = None  # set when held-out overlap is checked
+    exclude_overlap: bool = False
+
+
+def partitions_for(documents: int, rows_per_document: int) -> int:
+    """Partitions so that no group task holds more than ROWS_PER_PARTITION rows (on average:
+    the keys are hashes, so partitions are even). Depends on the corpus only, never on workers."""
+    rows = documents * max(1, rows_per_document)
+    return int(min(MAX_PARTITIONS, max(1, -(-rows // ROWS_PER_PARTITION))))
+
+
+def _mix(x: np.ndarray) -> np.ndarray:
+    """splitmix64's finalizer (Steele, Lea and Flood 2014), as in seqpipe.splits."""
+    with np.errstate(over="ignore"):
+        x = x ^ (x >> np.uint64(30))
+        x = x * _MIX1
+        x = x ^ (x >> np.uint64(27))
+        x = x * _MIX2
+        out: np.ndarray = x ^ (x >> np.uint64(31))
+        return out
+
+
+def _path(scheme: Scheme, kind: str, number: int) -> Path:
+    return Path(scheme.work_dir) / kind / f"{number:06d}.arrow"
+
+
+def _write(path: Path, schema: pa.Schema, batches: Sequence[pa.RecordBatch]) -> None:
+    """An intermediate Arrow IPC file (no fsync: a crash reruns the build's phase)."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    with pa.OSFile(str(tmp), "wb") as sink, pa.ipc.new_file(sink, schema) as writer:
+        for batch in batches:
+            writer.write_batch(batch)
+    os.replace(tmp, path)
+
+
+def _write_partitioned(path: Path, columns: dict[str, pa.Array], where: np.ndarray, partitions: int) -> None:
+    """Rows into record batch ``where[i]`` of ``path``, keeping their order within a batch."""
+    order = np.argsort(where, kind="stable")
+    bounds = np.searchsorted(where[order], np.arange(partitions + 1))
+    taken = {name: col.take(pa.array(order)) for name, col in columns.items()}
+    schema = pa.schema([(name, col.type) for name, col in taken.items()])
+    batches = [
+        pa.record_batch([col.slice(a, b - a) for col in taken.values()], schema=schema)
+        for a, b in zip(bounds[:-1].tolist(), bounds[1:].tolist(), strict=True)
+    ]
+    _write(path, schema, batches)
+
+
+def _open(path: Path) -> Any:
+    try:
+        return pa.ipc.open_file(pa.memory_map(str(path), "r"))
+    except (OSError, pa.ArrowInvalid) as exc:
+        raise ShardCorruptError(
+            f"{path}: a work file of the dedupe phases cannot be read ({exc}); run the build again",
+            path=str(path),
+        ) from exc
+
+
+def _batch(path: Path, index: int) -> pa.RecordBatch:
+    return _open(path).get_batch(index)
+
+
+def _binary(values: np.ndarray) -> pa.Array:
+    """(n, width) uint8 rows as a fixed_size_binary(width) array."""
+    n, width = values.shape
+    return pa.FixedSizeBinaryArray.from_buffers(
+        pa.binary(width), n, [None, pa.py_buffer(np.ascontiguousarray(values).tobytes())]
+    )
+
+
+def _rows(array: pa.Array, width: int) -> np.ndarray:
+    """A fixed_size_binary(width) array as (n, width) uint8."""
+    n = len(array)
+    buf = array.buffers()[1]
+    if buf is None or n == 0:
+        return np.zeros((0, width), np.uint8)
+    return np.frombuffer(buf, np.uint8)[array.offset * width : (array.offset + n) * width].reshape(n, width)
+
+
+# -- keys: a task per part ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class PartTask:
+    scheme: Scheme
+    number: int  # the part's position in corpus order
+    key: str  # its cache key
+    documents: int
+    fixed: int | None = None  # the split of a source with a fixed split
+
+
+def band_rows(sig: np.ndarray, bands: int, rows: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Band-major: per (band, document) the band index, the document's row, and the band's
+    ``rows`` values as (n * bands, 4 * rows) bytes."""
+    n = len(sig)
+    blocks = [np.ascontiguousarray(sig[:, b * rows : (b + 1) * rows]).astype("<u4") for b in range(bands)]
+    values = np.concatenate(blocks) if blocks else np.zeros((0, rows), "<u4")
+    band = np.repeat(np.arange(bands, dtype=np.int16), n)
+    row = np.tile(np.arange(n, dtype=np.int32), bands)
+    return band, row, values.view(np.uint8).reshape(n * bands, 4 * rows)
+
+
+def _band_hash(band: np.ndarray, values: np.ndarray) -> np.ndarray:
+    words = values.view("<u4")
+    with np.errstate(over="ignore"):
+        h = _mix(band.astype(np.uint64) * _GOLDEN + _GOLDEN)
+        for r in range(words.shape[1]):  # a loop over a band's rows, not over documents
+            h = _mix(h ^ words[:, r].astype(np.uint64))
+    return h
+
+
+def write_keys(task: PartTask) -> int:
+    """Phase keys: the part's exact and band keys, partitioned by key hash; returns its documents."""
+    scheme = task.scheme
+    table = read_part_docs(scheme.cache_dir, task.key)
+    n = table.num_rows
+    p = np.uint64(scheme.partitions)
+    if scheme.exact:
+        keys = fixed16(table, "dedupe")
+        where = (np.ascontiguousarray(keys[:, :8]).view("<u8").ravel() % p).astype(np.int64)
+        columns = {"key": _binary(keys), "row": pa.array(np.arange(n, dtype=np.int32))}
+        _write_partitioned(_path(scheme, "exact", task.number), columns, where, scheme.partitions)
+    if scheme.near is not None:
+        bands, rows, _ = scheme.near
+        band, row, values = band_rows(signature_rows(table, bands * rows), bands, rows)
+        where = (_band_hash(band, values) % p).astype(np.int64)
+        columns = {"band": pa.array(band), "key": _binary(values), "row": pa.array(row)}
+        _write_partitioned(_path(scheme, "near", task.number), columns, where, scheme.partitions)
+    return int(n)
+
+
+# -- group: a task per partition ---------------------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class PartitionTask:
+    scheme: Scheme
+    partition: int
+
+
+@dataclass(frozen=True, slots=True)
+class Grouped:
+    """What a group task found in its partition (figures only; the rows are in its files)."""
+
+    exact: int  # exact duplicates dropped
+    repeats: int  # documents whose signature equals an earlier one's in a shared band
+    pairs: int  # confirmed near pairs
+
+
+def _gathered(scheme: Scheme, kind: str, partition: int) -> tuple[pa.Table, np.ndarray]:
+    """Batch ``partition`` of every part's ``kind`` file, in corpus order, and the part of each row."""
+    batches: list[pa.RecordBatch] = []
+    parts: list[np.ndarray] = []
+    for n in range(scheme.parts):
+        batch = _batch(_path(scheme, kind, n), partition)
+        if batch.num_rows:
+            batches.append(batch)
+            parts.append(np.full(batch.num_rows, n, np.int64))
+    if not batches:
+        return pa.table({}), np.zeros(0, np.int64)
+    return pa.Table.from_batches(batches), np.concatenate(parts)
+
+
+def _places(ids: np.ndarray) -> list[pa.RecordBatch]:
+    """Document ids (part << 32 | row), sorted, as one (part, row) batch."""
+    ids = np.unique(ids)
+    return [
+        pa.record_batch(
+            [pa.array((ids >> 32).astype(np.int32)), pa.array((ids & 0xFFFFFFFF).astype(np.int32))], schema=_PLACES
+        )
+    ]
+
+
+def _ids(parts: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    return (parts.astype(np.int64) << 32) | rows.astype(np.int64)
+
+
+def group_partition(task: PartitionTask) -> Grouped:
+    """Phase group for one partition: exact drops, signature repeats and confirmed near pairs
+    into this partition's files."""
+    scheme, p = task.scheme, task.partition
+    exact = 0
+    if scheme.exact:
+        table, parts = _gathered(scheme, "exact", p)
+        drops = np.zeros(0, np.int64)
+        if len(parts):
+            keep = first_occurrence(_rows(table.column("key").combine_chunks(), 16))
+            drops = _ids(parts, table.column("row").to_numpy())[~keep]
+        _write(_path(scheme, "exact-drops", p), _PLACES, _places(drops))
+        exact = len(drops)
+    repeats = pairs = np.zeros(0, np.int64)
+    if scheme.near is not None:
+        repeats, pairs = _near_partition(scheme, p)
+        _write(_path(scheme, "repeats", p), _PLACES, _places(repeats))
+        pair_schema = pa.schema([("earlier", pa.int64()), ("later", pa.int64())])
+        batch = pa.record_batch([pa.array(pairs[:, 0]), pa.array(pairs[:, 1])], schema=pair_schema)
+        _write(_path(scheme, "pairs", p), pair_schema, [batch])
+    return Grouped(exact, len(repeats), len(pairs))
+
+
+def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
+    """The partition's signature repeats (document ids) and confirmed (earlier, later) pairs."""
+    assert scheme.near is not None
+    bands, rows, threshold = scheme.near
+    table, parts = _gathered(scheme, "near", p)
+    none = np.zeros(0, np.int64), np.zeros((0, 2), np.int64)
+    if len(parts) < 2:
+        return none
+    width = 4 * rows + 2
+    packed = np.empty((len(parts), width), np.uint8)
+    packed[:, :2] = table.column("band").to_numpy().astype(">i2").view(np.uint8).reshape(-1, 2)
+    packed[:, 2:] = _rows(table.column("key").combine_chunks(), 4 * rows)
+    _, bucket, sizes = np.unique(
+        packed.view(np.dtype((np.void, width))).ravel(), return_inverse=True, return_counts=True
+    )
+    bucket = bucket.ravel()
+    shared = sizes[bucket] > 1
+    if not shared.any():
+        return none
+    ids = _ids(parts, table.column("row").to_numpy())[shared]
+    bucket = bucket[shared]
+    order = np.lexsort((ids, bucket))  # by bucket, then corpus order
+    ids, bucket = ids[order], bucket[order]
+    members, where = np.unique(ids, return_inverse=True)
+    sig = _signatures(scheme, members, bands * rows)[where.ravel()]
+    starts, ends = _runs(bucket)
+    found_repeats: list[np.ndarray] = []
+    found_pairs: list[np.ndarray] = []
+    for a, b in zip(starts.tolist(), ends.tolist(), strict=True):  # one step per shared bucket
+        rep, pair = _bucket_pairs(ids[a:b], sig[a:b], threshold)
+        found_repeats.append(rep)
+        found_pairs.append(pair)
+    pairs = np.unique(np.concatenate(found_pairs), axis=0) if found_pairs else none[1]
+    return np.unique(np.concatenate(found_repeats)), pairs.reshape(-1, 2)
+
+
+def _runs(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Start and end of each run of equal values in a sorted array."""
+    if len(values) == 0:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    starts = np.flatnonzero(np.r_[True, values[1:] != values[:-1]])
+    return starts, np.r_[starts[1:], len(values)]
+
+
+def _bucket_pairs(ids: np.ndarray, sig: np.ndarray, threshold: float) -> tuple[np.ndarray, np.ndarray]:
+    """In one band bucket (members in corpus order): members whose signature an earlier member
+    has (always dropped), and the (earlier, later) pairs of the others at ``threshold``. Every
+    pair of distinct signatures is compared: quadratic in them, so a bucket of thousands of
+    different near-copies of one text is what makes a group task slow, not the corpus size."""
+    rows = np.ascontiguousarray(sig).view(np.dtype((np.void, sig.dtype.itemsize * sig.shape[1]))).ravel()
+    _, first = np.unique(rows, return_index=True)
+    first.sort()
+    repeat = np.ones(len(ids), bool)
+    repeat[first] = False
+    if len(first) < 2:
+        return ids[repeat], np.zeros((0, 2), np.int64)
+    i, j = np.triu_indices(len(first), 1)
+    own = sig[first]
+    similar = (own[i] == own[j]).mean(axis=1) >= threshold  # the estimate near_duplicate_keep uses
+    return ids[repeat], np.stack([ids[first][i[similar]], ids[first][j[similar]]], axis=1)
+
+
+def _part_keys(scheme: Scheme) -> list[str]:
+    path = Path(scheme.work_dir) / "parts.json"
+    try:
+        keys: list[str] = json.loads(path.read_text())
+    except (OSError, ValueError) as exc:
+        raise ShardCorruptError(f"{path}: cannot read the parts list ({exc}); run the build again") from exc
+    return keys
+
+
+def _signatures(scheme: Scheme, members: np.ndarray, hashes: int) -> np.ndarray:
+    """The signatures of ``members`` (sorted document ids), read from their parts' tables."""
+    keys = _part_keys(scheme)
+    out = np.empty((len(members), hashes), np.uint32)
+    parts = members >> 32
+    for n in np.unique(parts).tolist():
+        at = np.flatnonzero(parts == n)
+        column = read_part_docs(scheme.cache_dir, keys[n]).column("near")
+        taken = column.take(pa.array(members[at] & 0xFFFFFFFF))
+        out[at] = signature_rows(pa.table({"near": taken}), hashes)
+    return out
+
+
+# -- resolve: in the driver, over the confirmed pairs only -------------------------------------------
+
+
+def resolve_pairs(scheme: Scheme) -> int:
+    """Phase resolve: walk the confirmed pairs in corpus order of their later document; drop it
+    when one of its earlier documents is kept. Writes the dropped ones; returns their number."""
+    found = [_open(_path(scheme, "pairs", p)).read_all() for p in range(scheme.partitions)]
+    table = pa.concat_tables(found)
+    pairs = np.stack([table.column("earlier").to_numpy(), table.column("later").to_numpy()], axis=1)
+    pairs = np.unique(pairs.reshape(-1, 2), axis=0)
+    pairs = pairs[np.lexsort((pairs[:, 0], pairs[:, 1]))]
+    dropped: set[int] = set()
+    later = pairs[:, 1]
+    starts, ends = _runs(later)
+    for a, b in zip(starts.tolist(), ends.tolist(), strict=True):  # one step per near-copy
+        if any(j not in dropped for j in pairs[a:b, 0].tolist()):
+            dropped.add(int(later[a]))
+    ids = np.fromiter(sorted(dropped), np.int64, count=len(dropped))
+    _write(_path(scheme, "near-drops", 0), _PLACES, _places(ids))
+    return len(ids)
+
+
+# -- finish: a task per part -------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class Finished:
+    """A part's figures: documents dropped as exact and (besides those) as near duplicates,
+    whether it has a drop list, and (overlap) whether it is a held-out part."""
+
+    exact: int
+    near: int
+    has_drops: bool
+    held: bool = False
+
+
+def _rows_of(path: Path, number: int) -> np.ndarray:
+    """The rows of part ``number`` in a (part, row) file sorted by part."""
+    table = _open(path).read_all()
+    parts = table.column("part").to_numpy()
+    a, b = np.searchsorted(parts, [number, number + 1])
+    return np.asarray(table.column("row").to_numpy()[a:b], np.int64)
+
+
+def _found(scheme: Scheme, number: int) -> tuple[np.ndarray, np.ndarray]:
+    """The part's exact drops and near drops (rows), from every partition's files."""
+    exact = [np.zeros(0, np.int64)]
+    near = [np.zeros(0, np.int64)]
+    for p in range(scheme.partitions):
+        if scheme.exact:
+            exact.append(_rows_of(_path(scheme, "exact-drops", p), number))
+        if scheme.near is not None:
+            near.append(_rows_of(_path(scheme, "repeats", p), number))
+    if scheme.near is not None:
+        near.append(_rows_of(_path(scheme, "near-drops", 0), number))
+    return np.unique(np.concatenate(exact)), np.unique(np.concatenate(near))
+
+
+def finish_part(task: PartTask) -> Finished:
+    """Phase finish: the part's drop list in one file; with the overlap check, its hashes
+    (held-out part: kept documents; other parts: kept train documents) partitioned by hash."""
+    scheme, n = task.scheme, task.number
+    exact, near = _found(scheme, n)
+    dropped = np.union1d(exact, near)
+    if len(dropped):
+        _write(_path(scheme, "drops", n), _PLACES, _places(_ids(np.full(len(dropped), n), dropped)))
+    held = (task.fixed or 0) > 0
+    if scheme.splits is not None:
+        table = read_part_docs(scheme.cache_dir, task.key)
+        hashes = fixed16(table, "hash")
+        keep = np.ones(len(hashes), bool)
+        keep[dropped] = False
+        chosen = keep if held else assign_splits(scheme.splits, hashes, keep, task.fixed) == 0
+        rows = np.flatnonzero(chosen)
+        where = (np.ascontiguousarray(hashes[rows, :8]).view("<u8").ravel() % np.uint64(scheme.partitions)).astype(
+            np.int64
+        )
+        columns = {"key": _binary(hashes[rows]), "row": pa.array(rows.astype(np.int32))}
+        _write_partitioned(_path(scheme, "held" if held else "train", n), columns, where, scheme.partitions)
+    return Finished(len(exact), len(dropped) - len(exact), bool(len(dropped)), held)
+
+
+def overlap_partition(task: PartitionTask) -> int:
+    """Phase overlap for one partition: the kept train documents whose content a held-out part
+    also holds, into this partition's file; returns how many."""
+    scheme, p = task.scheme, task.partition
+    held_keys: list[np.ndarray] = [np.zeros((0, 16), np.uint8)]
+    train: list[tuple[int, pa.RecordBatch]] = []
+    for n in range(scheme.parts):
+        held = _path(scheme, "held", n)
+        if held.is_file():
+            held_keys.append(_rows(_batch(held, p).column("key"), 16).copy())
+        else:
+            train.append((n, _batch(_path(scheme, "train", n), p)))
+    known = np.unique(np.ascontiguousarray(np.concatenate(held_keys)).view("V16").reshape(-1))
+    hits = [np.zeros(0, np.int64)]
+    for n, batch in train:
+        keys = np.ascontiguousarray(_rows(batch.column("key"), 16)).view("V16").reshape(-1)
+        rows = batch.column("row").to_numpy()[np.isin(keys, known)]
+        hits.append(_ids(np.full(len(rows), n), rows))
+    found = np.concatenate(hits)
+    _write(_path(scheme, "overlap", p), _PLACES, _places(found))
+    return len(found)
+
+
+# -- count and encode tasks that read their drop list ------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class Masked:
+    """A count or encode task (``keep`` unset) and where its part's drop list is."""
+
+    task: Any
+    number: int
+    documents: int
+    files: tuple[str, ...]  # (part, row) files sorted by part; this part's rows are dropped
+
+
+def keep_mask(files: Sequence[str], number: int, documents: int) -> np.ndarray:
+    """Bool per document of part ``number``: False where one of ``files`` lists it."""
+    keep = np.ones(documents, bool)
+    for name in files:
+        keep[_rows_of(Path(name), number)] = False
+    return keep
+
+
+def _unmasked(masked: Masked) -> Any:
+    return dataclasses.replace(masked.task, keep=keep_mask(masked.files, masked.number, masked.documents))
+
+
+def masked_count(masked: Masked) -> tuple[pa.Table, int]:
+    """ingest.count_part with the part's drop list read from its files."""
+    return count_part(_unmasked(masked))
+
+
+def masked_encode(masked: Masked) -> dict[str, dict[str, int]]:
+    """ingest.encode_part with the part's drop list read from its files."""
+    return encode_part(_unmasked(masked))
+
+
+def reset(work_dir: str, keys: Sequence[str]) -> None:
+    """An empty work directory holding the list of parts' cache keys (the group tasks read it)."""
+    shutil.rmtree(work_dir, ignore_errors=True)
+    Path(work_dir).mkdir(parents=True)
+    (Path(work_dir) / "parts.json").write_text(json.dumps(list(keys)))
+
+
+def drop_list(scheme: Scheme, number: int) -> str:
+    return str(_path(scheme, "drops", number))
+
+
+def overlap_lists(scheme: Scheme) -> tuple[str, ...]:
+    return tuple(str(_path(scheme, "overlap", p)) for p in range(scheme.partitions))
