@@ -40,8 +40,9 @@ from typing import Final
 
 import numpy as np
 
+from seqpipe.report import corpus
 from seqpipe.report.corpus import Roles, SplitTokens
-from seqpipe.report.ngrams import filler, lookup, pack, positions, runs, take
+from seqpipe.report.ngrams import filler, lookup, merge_counts, pack, positions, runs, take
 
 
 @dataclass(frozen=True, slots=True)
@@ -56,7 +57,7 @@ class Events:
         return len(self.w)
 
 
-CHUNK_TOKENS: Final = 1 << 20  # tokens per group of documents: bounds the per-event temporaries
+CHUNK_TOKENS: Final = corpus.CHUNK_TOKENS  # tokens per group of documents: bounds the per-event temporaries
 
 
 def chunks(split: SplitTokens, size: int = CHUNK_TOKENS) -> Iterator[SplitTokens]:
@@ -196,12 +197,7 @@ def _merge_counts(
     keys: np.ndarray, counts: np.ndarray, more: np.ndarray, more_counts: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray]:
     """Two sets of distinct sorted keys with counts, as one (counts of shared keys added)."""
-    if len(keys) == 0:
-        return more, more_counts
-    joined = np.concatenate([keys, more])
-    order = np.argsort(joined, kind="stable")
-    merged, _, starts = runs(joined[order])
-    return merged, np.add.reduceat(np.concatenate([counts, more_counts])[order], starts)
+    return merge_counts(keys, counts, more, more_counts)
 
 
 @dataclass(frozen=True, slots=True)

@@ -113,6 +113,18 @@ def lookup(sorted_keys: np.ndarray, values: np.ndarray, query: np.ndarray) -> np
     return take(values, positions(sorted_keys, query))
 
 
+def merge_counts(
+    keys: np.ndarray, counts: np.ndarray, more: np.ndarray, more_counts: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Two sets of distinct sorted keys with counts, as one (counts of shared keys added)."""
+    if len(keys) == 0:
+        return more, more_counts
+    joined = np.concatenate([keys, more])
+    order = np.argsort(joined, kind="stable")  # two sorted runs: a merge
+    merged, _, starts = runs(joined[order])
+    return merged, np.add.reduceat(np.concatenate([counts, more_counts])[order], starts)
+
+
 @dataclass(frozen=True, slots=True)
 class NgramCounts:
     """Distinct n-grams (packed keys, ascending) and how often each occurs."""
