@@ -15,7 +15,7 @@ import numpy as np
 from seqpipe._parse import parse_bool, parse_float, parse_int
 from seqpipe.errors import RecipeError, SeqpipeError
 from seqpipe.metrics import loss_figures
-from seqpipe.report import leakage, lm, stats
+from seqpipe.report import leakage, lm, near, stats
 from seqpipe.report.corpus import DatasetLike, Roles, SplitShape, SplitTokens, read_chunks, scan_split, stream_dtype
 from seqpipe.report.ngrams import NgramCounts, count_ngrams, key_bits, max_order, merge_counts
 
@@ -210,6 +210,9 @@ def _leakage(source: _Source, others: list[str], n: int, bar: Any) -> dict[str, 
         )
         out["ngrams"][name] = leakage.shared_ngrams_chunked(train_windows, source.chunks(name), n)
         bar.update()
+    manifest = getattr(dataset, "manifest", None)
+    others_chunks = {name: source.chunks(name) for name in others}
+    out["near_copies"] = near.leakage_section(manifest, source.chunks(TRAIN), others_chunks, decode)
     return out
 
 

@@ -1,0 +1,189 @@
+"""Near-copies across splits: evaluation documents with a near-copy in train, whether or not the
+build removed near-duplicates.
+
+The scheme is the build's ``near_dedupe`` step (:mod:`seqpipe.clean.near_dedupe`): MinHash
+signatures over word shingles of each document's text, ``bands`` bands of ``rows`` values,
+candidates sharing a whole band, confirmed when the estimated Jaccard similarity (the share of
+equal signature values) reaches ``threshold``. Its parameters come from the dataset's recipe
+when it has that step, else are the step's defaults. A document's text is its content ids
+decoded by the dataset's encoder (the text as tokenized, so both sides are read alike).
+
+Memory: per train document one 8-byte key per band (sorted, with the document's index); the
+train signatures go to a temporary file and only the candidates' rows are read back.
+"""
+
+from __future__ import annotations
+
+import tempfile
+from collections.abc import Callable, Iterable, Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Final
+
+import numpy as np
+import pyarrow as pa
+
+from seqpipe.clean.near_dedupe import NearDedupe
+from seqpipe.errors import SeqpipeError
+from seqpipe.report.corpus import SplitTokens
+
+MAX_EXAMPLES: Final = 5
+# Train documents looked at per band bucket: a bucket shared by many train documents (say, a
+# boilerplate paragraph) gives its first ones, which agree on that band anyway.
+MAX_BUCKET: Final = 32
+_EMPTY: Final = np.uint32(0xFFFFFFFF)
+_MULT: Final = np.uint64(0x9E3779B97F4A7C15)
+
+
+def scheme(manifest: dict[str, Any] | None) -> tuple[NearDedupe, str]:
+    """The recipe's ``near_dedupe`` step (or the step's defaults) and which of the two it is."""
+    steps = ((manifest or {}).get("recipe") or {}).get("clean") or []
+    for step in steps:
+        if isinstance(step, dict) and step.get("kind") == NearDedupe.kind:
+            keys = ("shingle", "bands", "rows", "threshold", "seed")
+            return NearDedupe(**{k: step[k] for k in keys if k in step}), "recipe"
+    return NearDedupe(), "defaults"
+
+
+def _texts(chunk: SplitTokens, decode: Callable[[np.ndarray], str]) -> tuple[pa.Array, np.ndarray]:
+    """Decoded text of each non-empty document of the chunk, and those documents' indexes."""
+    keep = np.flatnonzero(chunk.content_lengths > 0)
+    starts, lengths = chunk.content_starts[keep].tolist(), chunk.content_lengths[keep].tolist()
+    # one decode per document (documents have variable length), none per token
+    texts = [decode(chunk.ids[a : a + m]) for a, m in zip(starts, lengths, strict=True)]
+    return pa.array(texts, type=pa.large_string()), keep
+
+
+def _signatures(step: NearDedupe, chunk: SplitTokens, decode: Callable[[np.ndarray], str]) -> tuple[Any, Any]:
+    """Signatures of the chunk's documents that have words, and those documents' indexes."""
+    texts, keep = _texts(chunk, decode)
+    sig = step.signatures(texts) if len(texts) else np.zeros((0, step.hashes), np.uint32)
+    words = ~(sig == _EMPTY).all(axis=1)  # a document without words has no shingles to compare
+    return sig[words], keep[words]
+
+
+def band_keys(sig: np.ndarray, bands: int, rows: int) -> np.ndarray:
+    """(documents, bands) uint64: one key per band of each signature (equal band values, equal key;
+    the band's number is mixed in, so keys of different bands do not meet)."""
+    out = np.zeros((len(sig), bands), dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        for b in range(bands):
+            acc = np.full(len(sig), np.uint64(b + 1) * _MULT, dtype=np.uint64)
+            for r in range(rows):
+                acc = (acc ^ sig[:, b * rows + r].astype(np.uint64)) * _MULT
+                acc ^= acc >> np.uint64(29)
+            out[:, b] = acc
+    return out
+
+
+@dataclass(frozen=True, slots=True)
+class TrainBands:
+    """Sorted band keys of the train documents with each key's document, and where the signatures are."""
+
+    keys: np.ndarray  # uint64, sorted
+    docs: np.ndarray  # int64: the train document of each key
+    rows: np.ndarray  # int64: the signature file row of each key
+    path: Path
+    hashes: int
+
+    @classmethod
+    def of(
+        cls, step: NearDedupe, chunks: Iterable[SplitTokens], decode: Callable[[np.ndarray], str], path: Path
+    ) -> TrainBands:
+        keys, docs, rows, done, written = [], [], [], 0, 0
+        with open(path, "wb") as fh:
+            for chunk in chunks:
+                sig, idx = _signatures(step, chunk, decode)
+                np.ascontiguousarray(sig).tofile(fh)
+                keys.append(band_keys(sig, step.bands, step.rows).ravel())
+                docs.append(np.repeat(idx + done, step.bands))
+                rows.append(np.repeat(np.arange(written, written + len(sig)), step.bands))
+                done += chunk.num_documents
+                written += len(sig)
+        key = np.concatenate(keys) if keys else np.zeros(0, np.uint64)
+        order = np.argsort(key, kind="stable")
+        doc = np.concatenate(docs).astype(np.int64) if docs else np.zeros(0, np.int64)
+        row = np.concatenate(rows).astype(np.int64) if rows else np.zeros(0, np.int64)
+        return cls(key[order], doc[order], row[order], path, step.hashes)
+
+    def signatures(self, rows: np.ndarray) -> np.ndarray:
+        """The train signatures at file rows ``rows`` (read from disk)."""
+        if len(rows) == 0 or self.path.stat().st_size == 0:
+            return np.zeros((len(rows), self.hashes), np.uint32)
+        table = np.memmap(self.path, dtype=np.uint32, mode="r").reshape(-1, self.hashes)
+        return np.array(table[rows])
+
+
+def _candidates(train: TrainBands, keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Pairs (query row, position in ``train.keys``) of equal band keys, at most MAX_BUCKET per key."""
+    flat = keys.ravel()
+    lo = np.searchsorted(train.keys, flat, side="left")
+    hi = np.minimum(np.searchsorted(train.keys, flat, side="right"), lo + MAX_BUCKET)
+    count = hi - lo
+    query = np.repeat(np.arange(len(flat)) // keys.shape[1], count)
+    pos = np.repeat(lo, count) + (np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count, count))
+    return query, pos
+
+
+def near_copies(
+    step: NearDedupe, train: TrainBands, chunks: Iterable[SplitTokens], decode: Callable[[np.ndarray], str]
+) -> dict[str, Any]:
+    """Count the documents of one split that have a near-copy in train, with a few examples."""
+    documents = checked = found = 0
+    examples: list[dict[str, Any]] = []
+    for chunk in chunks:
+        sig, idx = _signatures(step, chunk, decode)
+        query, pos = _candidates(train, band_keys(sig, step.bands, step.rows))
+        pairs = np.unique(np.stack([query, train.rows[pos]], axis=1), axis=0) if len(query) else np.zeros((0, 2), int)
+        sim = (sig[pairs[:, 0]] == train.signatures(pairs[:, 1])).mean(axis=1) if len(pairs) else np.zeros(0)
+        hit = sim >= step.threshold
+        best = np.full(len(sig), -1.0)
+        np.maximum.at(best, pairs[hit, 0], sim[hit])
+        near = np.flatnonzero(best >= 0)
+        for q in near[: MAX_EXAMPLES - len(examples)].tolist():
+            j = np.flatnonzero(hit & (pairs[:, 0] == q) & (sim == best[q]))[0]
+            row = int(np.flatnonzero(train.rows == pairs[j, 1])[0])
+            examples.append(
+                {
+                    "document": documents + int(idx[q]),
+                    "train_document": int(train.docs[row]),
+                    "similarity": float(best[q]),
+                }
+            )
+        documents += chunk.num_documents
+        checked += len(sig)
+        found += len(near)
+    return {
+        "documents": documents,
+        "checked": checked,
+        "near_copies": found,
+        "share": found / checked if checked else None,
+        "examples": examples,
+    }
+
+
+def leakage_section(
+    manifest: dict[str, Any] | None,
+    train_chunks: Iterable[SplitTokens],
+    others: Mapping[str, Iterable[SplitTokens]],
+    decode: Callable[[np.ndarray], str],
+) -> dict[str, Any]:
+    """The report's ``leakage.near_copies`` entry: the scheme used and, per other split, its figures."""
+    step, origin = scheme(manifest)
+    try:
+        with tempfile.TemporaryDirectory(prefix="seqpipe-report-") as tmp:
+            train = TrainBands.of(step, train_chunks, decode, Path(tmp) / "train-signatures.u32")
+            splits = {name: near_copies(step, train, chunks, decode) for name, chunks in others.items()}
+    except OSError as exc:
+        raise SeqpipeError(f"near-copy check: cannot write the train signatures to a temporary file ({exc})") from exc
+    return {
+        "parameters": {
+            "from": origin,
+            "shingle": step.shingle,
+            "bands": step.bands,
+            "rows": step.rows,
+            "threshold": step.threshold,
+            "seed": step.seed,
+        },
+        "splits": splits,
+    }
