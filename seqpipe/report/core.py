@@ -212,7 +212,8 @@ def _leakage(source: _Source, others: list[str], n: int, bar: Any) -> dict[str, 
         bar.update()
     manifest = getattr(dataset, "manifest", None)
     others_chunks = {name: source.chunks(name) for name in others}
-    out["near_copies"] = near.leakage_section(manifest, source.chunks(TRAIN), others_chunks, decode)
+    train_documents = len(dataset.split(TRAIN).documents)
+    out["near_copies"] = near.leakage_section(manifest, source.chunks(TRAIN), train_documents, others_chunks, decode)
     return out
 
 

@@ -8,8 +8,8 @@ equal signature values) reaches ``threshold``. Its parameters come from the data
 when it has that step, else are the step's defaults. A document's text is its content ids
 decoded by the dataset's encoder (the text as tokenized, so both sides are read alike).
 
-Memory: per train document one 8-byte key per band (sorted, with the document's index); the
-train signatures go to a temporary file and only the candidates' rows are read back.
+Memory: per train document one 8-byte entry per band (sorted) and its index; the train
+signatures go to a temporary file and only the candidates' rows are read back.
 """
 
 from __future__ import annotations
@@ -76,35 +76,41 @@ def band_keys(sig: np.ndarray, bands: int, rows: int) -> np.ndarray:
     return out
 
 
+_LOW: Final = np.uint64(0xFFFFFFFF)
+
+
 @dataclass(frozen=True, slots=True)
 class TrainBands:
-    """Sorted band keys of the train documents with each key's document, and where the signatures are."""
+    """One 8-byte entry per band of each train document that has words, sorted: the band key's
+    high 32 bits above the document's row in the signature file (a false match of the 32 key bits
+    only adds a candidate, which the similarity check drops)."""
 
-    keys: np.ndarray  # uint64, sorted
-    docs: np.ndarray  # int64: the train document of each key
-    rows: np.ndarray  # int64: the signature file row of each key
+    entries: np.ndarray  # uint64, sorted
+    docs: np.ndarray  # int64: the train document of each signature file row
     path: Path
     hashes: int
 
     @classmethod
     def of(
-        cls, step: NearDedupe, chunks: Iterable[SplitTokens], decode: Callable[[np.ndarray], str], path: Path
+        cls, step: NearDedupe, chunks: Iterable[SplitTokens], decode: Callable[[np.ndarray], str], path: Path, size: int
     ) -> TrainBands:
-        keys, docs, rows, done, written = [], [], [], 0, 0
+        """``size``: the train split's number of documents (room for every entry, filled in place)."""
+        entries = np.empty(size * step.bands, dtype=np.uint64)
+        docs, done, written = [], 0, 0
         with open(path, "wb") as fh:
             for chunk in chunks:
                 sig, idx = _signatures(step, chunk, decode)
                 np.ascontiguousarray(sig).tofile(fh)
-                keys.append(band_keys(sig, step.bands, step.rows).ravel())
-                docs.append(np.repeat(idx + done, step.bands))
-                rows.append(np.repeat(np.arange(written, written + len(sig)), step.bands))
+                keys = band_keys(sig, step.bands, step.rows) & ~_LOW
+                keys |= np.arange(written, written + len(sig), dtype=np.uint64)[:, None]
+                entries[written * step.bands : (written + len(sig)) * step.bands] = keys.ravel()
+                docs.append(idx + done)
                 done += chunk.num_documents
                 written += len(sig)
-        key = np.concatenate(keys) if keys else np.zeros(0, np.uint64)
-        order = np.argsort(key, kind="stable")
+        entries = entries[: written * step.bands]
+        entries.sort()
         doc = np.concatenate(docs).astype(np.int64) if docs else np.zeros(0, np.int64)
-        row = np.concatenate(rows).astype(np.int64) if rows else np.zeros(0, np.int64)
-        return cls(key[order], doc[order], row[order], path, step.hashes)
+        return cls(entries, doc, path, step.hashes)
 
     def signatures(self, rows: np.ndarray) -> np.ndarray:
         """The train signatures at file rows ``rows`` (read from disk)."""
@@ -115,14 +121,14 @@ class TrainBands:
 
 
 def _candidates(train: TrainBands, keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Pairs (query row, position in ``train.keys``) of equal band keys, at most MAX_BUCKET per key."""
-    flat = keys.ravel()
-    lo = np.searchsorted(train.keys, flat, side="left")
-    hi = np.minimum(np.searchsorted(train.keys, flat, side="right"), lo + MAX_BUCKET)
+    """Pairs (query row, train signature row) of equal band keys (high 32 bits), at most MAX_BUCKET per key."""
+    flat = keys.ravel() & ~_LOW
+    lo = np.searchsorted(train.entries, flat, side="left")
+    hi = np.minimum(np.searchsorted(train.entries, flat | _LOW, side="right"), lo + MAX_BUCKET)
     count = hi - lo
     query = np.repeat(np.arange(len(flat)) // keys.shape[1], count)
     pos = np.repeat(lo, count) + (np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count, count))
-    return query, pos
+    return query, (train.entries[pos] & _LOW).astype(np.int64)
 
 
 def near_copies(
@@ -133,8 +139,8 @@ def near_copies(
     examples: list[dict[str, Any]] = []
     for chunk in chunks:
         sig, idx = _signatures(step, chunk, decode)
-        query, pos = _candidates(train, band_keys(sig, step.bands, step.rows))
-        pairs = np.unique(np.stack([query, train.rows[pos]], axis=1), axis=0) if len(query) else np.zeros((0, 2), int)
+        query, rows = _candidates(train, band_keys(sig, step.bands, step.rows))
+        pairs = np.unique(np.stack([query, rows], axis=1), axis=0) if len(query) else np.zeros((0, 2), int)
         sim = (sig[pairs[:, 0]] == train.signatures(pairs[:, 1])).mean(axis=1) if len(pairs) else np.zeros(0)
         hit = sim >= step.threshold
         best = np.full(len(sig), -1.0)
@@ -142,11 +148,10 @@ def near_copies(
         near = np.flatnonzero(best >= 0)
         for q in near[: MAX_EXAMPLES - len(examples)].tolist():
             j = np.flatnonzero(hit & (pairs[:, 0] == q) & (sim == best[q]))[0]
-            row = int(np.flatnonzero(train.rows == pairs[j, 1])[0])
             examples.append(
                 {
                     "document": documents + int(idx[q]),
-                    "train_document": int(train.docs[row]),
+                    "train_document": int(train.docs[pairs[j, 1]]),
                     "similarity": float(best[q]),
                 }
             )
@@ -165,6 +170,7 @@ def near_copies(
 def leakage_section(
     manifest: dict[str, Any] | None,
     train_chunks: Iterable[SplitTokens],
+    train_documents: int,
     others: Mapping[str, Iterable[SplitTokens]],
     decode: Callable[[np.ndarray], str],
 ) -> dict[str, Any]:
@@ -172,7 +178,8 @@ def leakage_section(
     step, origin = scheme(manifest)
     try:
         with tempfile.TemporaryDirectory(prefix="seqpipe-report-") as tmp:
-            train = TrainBands.of(step, train_chunks, decode, Path(tmp) / "train-signatures.u32")
+            path = Path(tmp) / "train-signatures.u32"
+            train = TrainBands.of(step, train_chunks, decode, path, train_documents)
             splits = {name: near_copies(step, train, chunks, decode) for name, chunks in others.items()}
     except OSError as exc:
         raise SeqpipeError(f"near-copy check: cannot write the train signatures to a temporary file ({exc})") from exc
