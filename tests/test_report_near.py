@@ -86,13 +86,15 @@ def _figures(report: dict[str, object]) -> str:
 
 
 def test_report_does_not_depend_on_the_chunk_size(monkeypatch: pytest.MonkeyPatch) -> None:
-    """Read in groups of a few documents, every figure of the report equals the one-group report
-    (perplexities to float rounding: they are sums over groups)."""
+    """Read in groups of a few documents (and near-copy signatures made a few documents at a time),
+    every figure of the report equals the one-group report (perplexities to float rounding: they are
+    sums over groups)."""
     train = [_words(int(20 + 7 * (s % 5)), s) for s in range(40)]
     other = [_words(25, 200 + s) for s in range(6)] + [train[5], _changed(train[9], 3)]
     ds = dataset_from_documents({"train": train, "validation": other, "test": other[::-1]})
     whole = corpus_report(ds, ngram_n=3, progress=False)
     monkeypatch.setitem(corpus.read_chunks.__kwdefaults__, "size", 60)
+    monkeypatch.setattr(near, "BATCH_TOKENS", 40)
     pieces = corpus_report(ds, ngram_n=3, progress=False)
     ppl_whole, ppl_pieces = whole.pop("perplexity"), pieces.pop("perplexity")
     assert _figures(whole) == _figures(pieces)

@@ -14,6 +14,7 @@ signatures go to a temporary file and only the candidates' rows are read back.
 
 from __future__ import annotations
 
+import itertools
 import tempfile
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
@@ -31,6 +32,7 @@ MAX_EXAMPLES: Final = 5
 # Train documents looked at per band bucket: a bucket shared by many train documents (say, a
 # boilerplate paragraph) gives its first ones, which agree on that band anyway.
 MAX_BUCKET: Final = 32
+BATCH_TOKENS: Final = 1 << 16
 _EMPTY: Final = np.uint32(0xFFFFFFFF)
 _MULT: Final = np.uint64(0x9E3779B97F4A7C15)
 
@@ -55,9 +57,14 @@ def _texts(chunk: SplitTokens, decode: Callable[[np.ndarray], str]) -> tuple[pa.
 
 
 def _signatures(step: NearDedupe, chunk: SplitTokens, decode: Callable[[np.ndarray], str]) -> tuple[Any, Any]:
-    """Signatures of the chunk's documents that have words, and those documents' indexes."""
+    """Signatures of the chunk's documents that have words, and those documents' indexes; made
+    for groups of about BATCH_TOKENS tokens, which bounds the per-shingle temporaries."""
     texts, keep = _texts(chunk, decode)
-    sig = step.signatures(texts) if len(texts) else np.zeros((0, step.hashes), np.uint32)
+    sig = np.zeros((len(texts), step.hashes), np.uint32)
+    sizes = np.cumsum(chunk.content_lengths[keep])
+    cuts = [0, *np.searchsorted(sizes, np.arange(BATCH_TOKENS, int(sizes[-1]) if len(sizes) else 0, BATCH_TOKENS))]
+    for a, b in itertools.pairwise(sorted({*(int(c) for c in cuts), len(texts)})):
+        sig[a:b] = step.signatures(texts.slice(a, b - a))
     words = ~(sig == _EMPTY).all(axis=1)  # a document without words has no shingles to compare
     return sig[words], keep[words]
 
