@@ -157,3 +157,21 @@ def test_pieces_accept_every_id_dtype(dtype: type) -> None:
         assert np.array_equal(whole[k].keys, pieces[k].keys)
         assert np.array_equal(whole[k].counts, pieces[k].counts)
         assert whole[k].total == 400 - k + 1
+
+
+def test_merge_counts_equals_counting_the_joined_keys() -> None:
+    """merge_counts of two distinct sorted key sets gives the distinct keys of both, sorted, with
+    counts added, as sorting and counting the joined keys does."""
+    from seqpipe.report.ngrams import merge_counts, runs
+
+    rng = np.random.default_rng(1)
+    for _ in range(200):
+        a = np.unique(rng.integers(0, 50, int(rng.integers(0, 30))).astype(np.uint64))
+        b = np.unique(rng.integers(0, 50, int(rng.integers(0, 30))).astype(np.uint64))
+        ca, cb = rng.integers(1, 9, len(a)), rng.integers(1, 9, len(b))
+        keys, counts = merge_counts(a, ca, b, cb)
+        joined = np.concatenate([a, b])
+        order = np.argsort(joined, kind="stable")
+        want, _, starts = runs(joined[order])
+        want_counts = np.add.reduceat(np.concatenate([ca, cb])[order], starts) if len(want) else np.zeros(0, int)
+        assert keys.tolist() == want.tolist() and counts.tolist() == want_counts.tolist()

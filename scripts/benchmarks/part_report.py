@@ -1,4 +1,4 @@
-"""Benchmark of the corpus report's n-gram counting.
+"""Benchmarks of the corpus report: its n-gram counting, and how its peak memory grows with a split.
 
 ``report.ngram_count_vs_counter``: bigram + trigram counts of one split (documents
 respected) with :func:`seqpipe.report.ngrams.count_ngrams` (one sort of packed keys)
@@ -11,16 +11,26 @@ Input (deterministic, seed 7): a 32,000-id vocabulary; a pool of 200,000 "phrase
 2-12 ids drawn from a Zipf-Mandelbrot law (p(r) ~ 1/(r + 2.7)); the split is phrases
 drawn from the pool with the same law over the pool, cut into documents of geometric
 length (mean 400 ids). Repeated phrases give the repeated n-grams of real text.
+
+``report.rss_growth_per_token``: peak memory (max RSS) of a whole report (every section, 13-gram
+leakage included) on a dataset of about 20M tokens minus that on one of about 2M, per added token
+(``--quick``: 2M and 0.2M). Each report runs in a fresh Python process, which prints its own peak.
+Datasets: English-like invented text from ``_corpus.py`` (seed 2), paragraphs as documents, the
+word tokenizer, 90/5/5 splits.
 """
 
 from __future__ import annotations
 
+import json
+import subprocess
+import sys
 from collections import Counter
 from collections.abc import Iterator
 from itertools import pairwise
 from pathlib import Path
 
 import numpy as np
+from _corpus import write_corpus
 from common import Measure, best_time
 
 from seqpipe.report.ngrams import count_ngrams, key_bits
@@ -77,4 +87,67 @@ def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
         target=20.0,
         detail=f"(Counter {t_counter:.2f} s / count_ngrams {t_ours:.3f} s, bigrams+trigrams of "
         f"{n_tokens:,} tokens in {len(starts):,} documents, 32k ids)",
+    )
+    yield rss_growth(quick, workdir)
+
+
+TOKENS_PER_BYTE = 1 / 4.1  # words and punctuation per byte of _corpus.py text (9 MB sample: 2.19M tokens)
+
+RECIPE = """
+[dataset]
+name = "report-memory"
+[[sources]]
+kind = "text"
+paths = "text/*.txt"
+document = "paragraph"
+[tokenizer]
+kind = "words"
+[splits]
+train = 0.9
+validation = 0.05
+test = 0.05
+"""
+
+CHILD = """
+import json, resource, sys
+from seqpipe.report import write_report
+write_report(sys.argv[1], sys.argv[2], progress=False)
+print(json.dumps({"peak": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024}))
+"""
+
+
+def _dataset(workdir: Path, tokens: int) -> tuple[Path, int]:
+    """A built dataset of about ``tokens`` tokens (reused if there); its path and token count."""
+    from seqpipe import build
+    from seqpipe.dataset import open_dataset
+    from seqpipe.recipe import parse_recipe
+
+    root = workdir / f"report-{tokens}"
+    if not (root / "ds" / "manifest.json").is_file():
+        write_corpus(root / "text", int(tokens / TOKENS_PER_BYTE), files=2)
+        build(parse_recipe(RECIPE, root=root), root / "ds", workers=1, progress=False)
+    ds = open_dataset(root / "ds")
+    return root / "ds", sum(ds.split(name).num_tokens for name in ds.splits)
+
+
+def _report_peak(dataset: Path, out: Path) -> int:
+    """Peak RSS in bytes of one report of ``dataset``, made in a fresh process."""
+    done = subprocess.run(
+        [sys.executable, "-c", CHILD, str(dataset), str(out)], check=True, capture_output=True, text=True
+    )
+    return int(json.loads(done.stdout.strip().splitlines()[-1])["peak"])
+
+
+def rss_growth(quick: bool, workdir: Path) -> Measure:
+    small, large = (200_000, 2_000_000) if quick else (2_000_000, 20_000_000)
+    (a, n_a), (b, n_b) = _dataset(workdir, small), _dataset(workdir, large)
+    peak_a = _report_peak(a, workdir / "rep-a")  # peaks vary little between runs: one run each
+    peak_b = _report_peak(b, workdir / "rep-b")
+    return Measure(
+        name="report.rss_growth_per_token",
+        ratio=(peak_b - peak_a) / (n_b - n_a),
+        target=8.0,
+        detail=f"(peak {peak_b / 2**20:.0f} MiB at {n_b:,} tokens - {peak_a / 2**20:.0f} MiB at {n_a:,}, "
+        "bytes per added token; each report in a fresh process)",
+        higher_is_better=False,
     )

@@ -2,11 +2,11 @@
 
 from __future__ import annotations
 
-import dataclasses
 import math
 import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Final
 
@@ -15,9 +15,9 @@ import numpy as np
 from seqpipe._parse import parse_bool, parse_float, parse_int
 from seqpipe.errors import RecipeError, SeqpipeError
 from seqpipe.metrics import loss_figures
-from seqpipe.report import leakage, lm, stats
-from seqpipe.report.corpus import DatasetLike, Roles, SplitTokens, load_split
-from seqpipe.report.ngrams import count_ngrams, key_bits, max_order
+from seqpipe.report import leakage, lm, near, stats
+from seqpipe.report.corpus import DatasetLike, Roles, SplitShape, SplitTokens, read_chunks, scan_split, stream_dtype
+from seqpipe.report.ngrams import NgramCounts, count_ngrams, key_bits, max_order, merge_counts
 
 REPORT_FORMAT: Final = "seqpipe.report/2"
 TRAIN: Final = "train"
@@ -74,14 +74,30 @@ def _check(ngram_n: int, top_k: int, add_k: float, kn_discount: float, progress:
     parse_bool("progress", progress)
 
 
-def _top_ngrams(dataset: DatasetLike, train: SplitTokens, bits: int, top_k: int) -> dict[str, Any]:
+@dataclass(frozen=True, slots=True)
+class _Source:
+    """How the report reads the dataset's splits: one id type for all, and the roles of ids."""
+
+    dataset: DatasetLike
+    roles: Roles
+    dtype: np.dtype[Any]
+
+    def chunks(self, name: str) -> Iterator[SplitTokens]:
+        return read_chunks(self.dataset, name, self.roles, dtype=self.dtype)
+
+
+def _top_ngrams(source: _Source, bits: int, top_k: int) -> dict[str, Any]:
     orders = [n for n in TOP_ORDERS if n <= max_order(bits)]
-    counted = count_ngrams(train.ids, orders, bits=bits, starts=train.content_starts, lengths=train.content_lengths)
+    tables = {n: (np.zeros(0, np.uint64), np.zeros(0, np.int64)) for n in orders}
+    for chunk in source.chunks(TRAIN):
+        found = count_ngrams(chunk.ids, orders, bits=bits, starts=chunk.content_starts, lengths=chunk.content_lengths)
+        for n, part in found.items():
+            tables[n] = merge_counts(*tables[n], part.keys, part.counts)
     out: dict[str, Any] = {}
-    for n, counts in counted.items():
-        rows, freq = counts.most_common(top_k)
+    for n, (keys, counts) in tables.items():
+        rows, freq = NgramCounts(n=n, bits=bits, keys=keys, counts=counts).most_common(top_k)
         out[str(n)] = [
-            {"tokens": [dataset.encoder.token_text(int(i)) for i in row], "ids": row.tolist(), "count": int(c)}
+            {"tokens": [source.dataset.encoder.token_text(int(i)) for i in row], "ids": row.tolist(), "count": int(c)}
             for row, c in zip(rows, freq, strict=True)
         ]
     return out
@@ -120,24 +136,22 @@ def collect(
     steps = len(names) + (3 + 2 * len(others) if has_train else 0)
     curves: dict[str, stats.RankCurve] = {}
     with _progress(steps, progress) as bar:
-        loaded: dict[str, SplitTokens] = {}
+        dtypes = [stream_dtype(dataset, name) for name in names]
+        source = _Source(dataset, roles, np.result_type(*dtypes) if dtypes else np.dtype(np.uint32))
+        shapes: dict[str, SplitShape] = {}
+        counts: dict[str, np.ndarray] = {}
         for name in names:
-            loaded[name] = load_split(dataset, name, roles)
-        common = np.result_type(*(s.ids.dtype for s in loaded.values())) if loaded else np.uint32
-        for name, s in loaded.items():
-            if s.ids.dtype != common:  # one dtype, so document hashes compare across splits
-                loaded[name] = dataclasses.replace(s, ids=s.ids.astype(common))
-        counts = {name: stats.id_counts(s, roles.vocab_size) for name, s in loaded.items()}
+            shapes[name], counts[name] = scan_split(dataset, name, roles, source.dtype)
         ranking = stats.frequency_ranking(counts[TRAIN], roles.n_reserved) if has_train else None
         report["splits"] = {}
         alphabet = stats.is_alphabet(vocab)
-        for name, s in loaded.items():
+        for name, s in shapes.items():
             own = stats.frequency_ranking(counts[name], roles.n_reserved)
             zipf, fit = stats.zipf_figures(counts[name], own, alphabet)
             report["splits"][name] = stats.split_stats(s, counts[name], roles, ranking, zipf)
             curves[name] = stats.RankCurve(counts[name][own], int(s.content_lengths.sum()), fit)
             bar.update()
-        reuse = _vocabulary_reuse(dataset, counts, loaded, roles)
+        reuse = _vocabulary_reuse(dataset, counts, shapes, roles)
         if reuse is not None:
             report["vocabulary_reuse"] = reuse
         if not has_train:
@@ -145,24 +159,24 @@ def collect(
                 "The dataset has no 'train' split: coverage, n-grams, leakage and perplexities are not reported."
             )
         else:
-            train = loaded[TRAIN]
-            report["top_ngrams"] = _top_ngrams(dataset, train, bits, top_k)
+            report["top_ngrams"] = _top_ngrams(source, bits, top_k)
             if max_order(bits) < 3:
                 notes.append(
                     "The vocabulary is too large to pack trigrams into 64-bit keys: "
                     "no trigram counts and no perplexities."
                 )
             bar.update()
-            report["leakage"] = _leakage(dataset, loaded, others, ngram_n, bar)
+            report["leakage"] = _leakage(source, others, ngram_n, bar)
+            notes += _sampling_notes(report["leakage"])
             if max_order(bits) >= 3:
-                report["perplexity"] = _perplexity(loaded, others, roles, bits, add_k, kn_discount, bar)
+                report["perplexity"] = _perplexity(source, shapes, others, bits, add_k, kn_discount, bar)
                 notes += _add_per_text(report["perplexity"], {name: _text_sizes(dataset, name) for name in others})
     report["notes"] = notes
     return report, curves
 
 
 def _vocabulary_reuse(
-    dataset: DatasetLike, counts: dict[str, np.ndarray], loaded: dict[str, SplitTokens], roles: Roles
+    dataset: DatasetLike, counts: dict[str, np.ndarray], loaded: dict[str, SplitShape], roles: Roles
 ) -> dict[str, Any] | None:
     """For a dataset built with ``[vocabulary] reuse_from``: which dataset the vocabulary came from
     and, per split, the unknown rate and the share of the vocabulary that occurs (None otherwise)."""
@@ -179,12 +193,11 @@ def _vocabulary_reuse(
     }
 
 
-def _leakage(
-    dataset: DatasetLike, loaded: dict[str, SplitTokens], others: list[str], n: int, bar: Any
-) -> dict[str, Any]:
-    train = loaded[TRAIN]
+def _leakage(source: _Source, others: list[str], n: int, bar: Any) -> dict[str, Any]:
+    dataset = source.dataset
     texts = {name: _text_hashes(dataset, name) for name in [TRAIN, *others]}
-    train_hashes = leakage.train_window_hashes(train, n)
+    train_docs = leakage.TrainDocuments.of(source.chunks(TRAIN))
+    train_windows = leakage.WindowSet.of(source.chunks(TRAIN), n)
     bar.update()
     out: dict[str, Any] = {"documents": {}, "ngrams": {}}
 
@@ -192,11 +205,30 @@ def _leakage(
         return dataset.encoder.decode(ids)
 
     for name in others:
-        out["documents"][name] = leakage.duplicate_documents(
-            train, loaded[name], train_text=texts[TRAIN], other_text=texts[name], decode=decode
+        out["documents"][name] = leakage.duplicate_documents_chunked(
+            train_docs, source.chunks(name), train_text=texts[TRAIN], other_text=texts[name], decode=decode
         )
-        out["ngrams"][name] = leakage.shared_ngrams(train_hashes, loaded[name], n)
+        out["ngrams"][name] = leakage.shared_ngrams_chunked(train_windows, source.chunks(name), n)
         bar.update()
+    manifest = getattr(dataset, "manifest", None)
+    others_chunks = {name: source.chunks(name) for name in others}
+    train_documents = len(dataset.split(TRAIN).documents)
+    out["near_copies"] = near.leakage_section(manifest, source.chunks(TRAIN), train_documents, others_chunks, decode)
+    return out
+
+
+def _sampling_notes(leaks: dict[str, Any]) -> list[str]:
+    """A note for each split whose shared n-gram share is estimated on a sample of hashes."""
+    out = []
+    for name, entry in leaks["ngrams"].items():
+        sample = entry.get("sample")
+        if sample is not None:
+            out.append(
+                f"Shared {entry['n']}-grams of {name!r} are estimated: the train split has more distinct windows "
+                f"than the report keeps, so only window hashes below 2**64/{sample['every']} are compared "
+                f"({sample['windows']} of {entry['windows']} windows); standard error of the share "
+                f"{sample['standard_error']:.2g} (binomial, treating sampled windows as independent)."
+            )
     return out
 
 
@@ -206,15 +238,16 @@ def _text_hashes(dataset: DatasetLike, name: str) -> Any:
 
 
 def _perplexity(
-    loaded: dict[str, SplitTokens], others: list[str], roles: Roles, bits: int, add_k: float, d: float, bar: Any
+    source: _Source, shapes: dict[str, SplitShape], others: list[str], bits: int, add_k: float, d: float, bar: Any
 ) -> dict[str, Any]:
+    roles = source.roles
     space = lm.event_space(roles)
-    train_events = (lm.events(c, roles) for c in lm.chunks(loaded[TRAIN]))
+    train_events = (lm.events(c, roles) for c in source.chunks(TRAIN))
     tables = lm.CountTables.fit_chunks(train_events, bits, roles.vocab_size + 1)
     bar.update()
     begin = "the begin token" if roles.begin is not None else "a virtual begin id (no begin token)"
-    ended = sum(int(loaded[n].has_end.sum()) for n in others)
-    documents = sum(loaded[n].num_documents for n in others)
+    ended = sum(int(shapes[n].has_end.sum()) for n in others)
+    documents = sum(shapes[n].num_documents for n in others)
     out: dict[str, Any] = {
         "predicted": PREDICTED.format(ended=ended, documents=documents, begin=begin, space=space, d=d),
         "event_space": space,
@@ -222,7 +255,7 @@ def _perplexity(
         "splits": {},
     }
     for name in others:
-        parts = (lm.events(c, roles) for c in lm.chunks(loaded[name]))
+        parts = (lm.events(c, roles) for c in source.chunks(name))
         out["splits"][name] = lm.evaluate(tables, parts, space=space, k=add_k, d=d)
         bar.update()
     return out

@@ -40,8 +40,9 @@ from typing import Final
 
 import numpy as np
 
+from seqpipe.report import corpus
 from seqpipe.report.corpus import Roles, SplitTokens
-from seqpipe.report.ngrams import filler, lookup, pack, positions, runs, take
+from seqpipe.report.ngrams import filler, lookup, merge_counts, pack, positions, runs, take
 
 
 @dataclass(frozen=True, slots=True)
@@ -56,7 +57,7 @@ class Events:
         return len(self.w)
 
 
-CHUNK_TOKENS: Final = 1 << 20  # tokens per group of documents: bounds the per-event temporaries
+CHUNK_TOKENS: Final = corpus.CHUNK_TOKENS  # tokens per group of documents: bounds the per-event temporaries
 
 
 def chunks(split: SplitTokens, size: int = CHUNK_TOKENS) -> Iterator[SplitTokens]:
@@ -162,15 +163,19 @@ class CountTables:
         shift = np.uint64(bits)
         ctx, ctx_types, ctx_starts = runs(tri >> shift)
         ctx_c = np.add.reduceat(tri_c, ctx_starts) if len(tri) else tri_c
-        suffix = tri & np.uint64(filler(2 * bits))
-        order = np.argsort(suffix)
-        bi, bi_left, bi_starts = runs(suffix[order])  # bi_left: trigram types per (h1, w)
+        del ctx_starts
+        # trigram-sized temporaries are dropped as soon as used: they set the report's peak memory
+        order = np.argsort(tri & np.uint64(filler(2 * bits)))
+        suffix = tri[order]
+        np.bitwise_and(suffix, np.uint64(filler(2 * bits)), out=suffix)
+        bi, bi_left, bi_starts = runs(suffix)  # bi_left: trigram types per (h1, w)
+        del suffix
         bi_c = np.add.reduceat(tri_c[order], bi_starts) if len(bi) else tri_c
+        del order, bi_starts
         h1, h1_types, h1_starts = runs(bi >> shift)
         h1_c = np.add.reduceat(bi_c, h1_starts) if len(bi) else bi_c
         h1_left = np.add.reduceat(bi_left, h1_starts) if len(bi) else bi_left
-        w_of_bi = (bi & np.uint64(filler(bits))).astype(np.int64)
-        w_of_tri = (tri & np.uint64(filler(bits))).astype(np.int64)
+        w_of_bi = (bi & np.uint64(filler(bits))).view(np.int64)
         return cls(
             bits=bits,
             n_events=int(tri_c.sum()),
@@ -186,7 +191,8 @@ class CountTables:
             h1_counts=h1_c,
             h1_types=h1_types,
             h1_left=h1_left,
-            uni_counts=np.bincount(w_of_tri, weights=tri_c, minlength=n_ids).astype(np.int64),
+            # every event has one (h1, w): c(w) sums the bigram counts of w (exact: integer weights below 2**53)
+            uni_counts=np.bincount(w_of_bi, weights=bi_c, minlength=n_ids).astype(np.int64),
             uni_left=np.bincount(w_of_bi, minlength=n_ids).astype(np.int64),
             bigram_types=len(bi),
         )
@@ -196,12 +202,7 @@ def _merge_counts(
     keys: np.ndarray, counts: np.ndarray, more: np.ndarray, more_counts: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray]:
     """Two sets of distinct sorted keys with counts, as one (counts of shared keys added)."""
-    if len(keys) == 0:
-        return more, more_counts
-    joined = np.concatenate([keys, more])
-    order = np.argsort(joined, kind="stable")
-    merged, _, starts = runs(joined[order])
-    return merged, np.add.reduceat(np.concatenate([counts, more_counts])[order], starts)
+    return merge_counts(keys, counts, more, more_counts)
 
 
 @dataclass(frozen=True, slots=True)

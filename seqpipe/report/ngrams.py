@@ -113,6 +113,27 @@ def lookup(sorted_keys: np.ndarray, values: np.ndarray, query: np.ndarray) -> np
     return take(values, positions(sorted_keys, query))
 
 
+def merge_counts(
+    keys: np.ndarray, counts: np.ndarray, more: np.ndarray, more_counts: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Two sets of distinct sorted keys with counts, as one (counts of shared keys added).
+
+    A merge by binary search: the keys of ``more`` that are new are inserted, the others add their
+    counts in place, so the only temporaries at the size of ``keys`` are the two results (a sort of
+    the joined keys would need several)."""
+    if len(keys) == 0:
+        return more, more_counts
+    pos = np.searchsorted(keys, more)
+    found = pos < len(keys)
+    found[found] = keys[pos[found]] == more[found]
+    new = ~found
+    # a found key moves right by the number of new keys inserted before it (all smaller: more is sorted)
+    shift: np.ndarray = np.cumsum(new) - new
+    merged_counts = np.insert(counts, pos[new], more_counts[new])
+    merged_counts[pos[found] + shift[found]] += more_counts[found]
+    return np.insert(keys, pos[new], more[new]), merged_counts
+
+
 @dataclass(frozen=True, slots=True)
 class NgramCounts:
     """Distinct n-grams (packed keys, ascending) and how often each occurs."""

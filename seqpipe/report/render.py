@@ -196,6 +196,7 @@ def _leakage(report: dict[str, Any]) -> list[str]:
         f"hash of every {n}-token window inside one document.",
         "",
     ]
+    lines += _near_copies(leak.get("near_copies"))
     for name, d in leak["documents"].items():
         if d["examples"]:
             lines += [f"Examples from {name}:", ""]
@@ -203,6 +204,30 @@ def _leakage(report: dict[str, Any]) -> list[str]:
                 f"- document {e['document']} = train document {e['train_document']} "
                 f"({e['tokens']} tokens): {e['text']!r}"
                 for e in d["examples"]
+            ]
+            lines.append("")
+    return lines
+
+
+def _near_copies(near: dict[str, Any] | None) -> list[str]:
+    if not near:
+        return []
+    p = near["parameters"]
+    rows = [[name, _num(e["checked"]), _num(e["near_copies"]), _pct(e["share"])] for name, e in near["splits"].items()]
+    lines = _table(["split", "documents checked", "with a near-copy in train", "share"], rows)
+    lines += [
+        f"Near-copies: MinHash over {p['shingle']}-word shingles of each document's decoded text, {p['bands']} bands "
+        f"of {p['rows']} rows, estimated Jaccard similarity at least {p['threshold']} (seed {p['seed']}; parameters "
+        f"from the {'recipe' + chr(39) + 's near_dedupe step' if p['from'] == 'recipe' else 'near_dedupe defaults'}), "
+        "whether or not the build removed near-duplicates.",
+        "",
+    ]
+    for name, e in near["splits"].items():
+        if e["examples"]:
+            lines += [f"Near-copies in {name}:", ""]
+            lines += [
+                f"- document {x['document']} ~ train document {x['train_document']} (similarity {x['similarity']:.3f})"
+                for x in e["examples"]
             ]
             lines.append("")
     return lines

@@ -12,7 +12,7 @@ from typing import Any, Final
 
 import numpy as np
 
-from seqpipe.report.corpus import Roles, SplitTokens
+from seqpipe.report.corpus import Roles, SplitShape, SplitTokens
 from seqpipe.report.zipf import MIN_TAIL, ZipfFit, fit_power_law
 from seqpipe.vocab import Vocabulary
 
@@ -81,7 +81,11 @@ class RankCurve:
 
 
 def split_stats(
-    split: SplitTokens, counts: np.ndarray, roles: Roles, train_ranking: np.ndarray | None, zipf: dict[str, Any]
+    split: SplitShape | SplitTokens,
+    counts: np.ndarray,
+    roles: Roles,
+    train_ranking: np.ndarray | None,
+    zipf: dict[str, Any],
 ) -> dict[str, Any]:
     """Every per-split figure of the report (see the module docstring)."""
     content = int(split.content_lengths.sum())
