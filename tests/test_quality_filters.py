@@ -189,3 +189,21 @@ def test_word_measures_are_the_same_on_every_call() -> None:
     want = [ref_mean_word_length(d) for d in docs]
     for _ in range(300):
         assert np.allclose(WordLength().measure(arr(docs)), want)
+
+
+def test_repeated_ngrams_falls_back_exactly_on_hash_collisions(monkeypatch: pytest.MonkeyPatch) -> None:
+    """With a hash that sends every n-gram to one value, the measure still equals the Python reference."""
+    import seqpipe.clean.repeated_ngrams as module
+
+    monkeypatch.setattr(module, "mix64", lambda x: np.zeros_like(x))
+    docs = ["a b c a b c d", "x y z x y", "one two three four", "a b c a b c d"]
+    for n in (1, 2, 3):
+        assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
+
+
+def test_letter_share_counts_non_ascii_code_points_as_re2_does() -> None:
+    """Letters beyond ASCII (Greek, CJK, an astral letter) count; combining marks, symbols, emoji and
+    no-break spaces are visible non-letters; RE2's whitespace (tab, LF, FF, CR, space) is not visible."""
+    docs = ["\u03a9\u8336\U00010400\u0301\u2192\U0001f600\u00a0\x0bab", "\t\n\x0c\r a", ""]
+    m = LetterShare().measure(arr(docs))
+    assert m.tolist() == [5 / 10, 1.0, 0.0]

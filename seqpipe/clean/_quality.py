@@ -11,13 +11,48 @@ from __future__ import annotations
 
 from abc import abstractmethod
 from dataclasses import dataclass
-from typing import ClassVar
+from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe.clean.base import CleanStep, as_documents
+
+# splitmix64 finalizer constants (the same as seqpipe.splits; Steele, Lea and Flood 2014)
+_MIX1: Final = np.uint64(0xBF58476D1CE4E5B9)
+_MIX2: Final = np.uint64(0x94D049BB133111EB)
+
+
+def mix64(x: np.ndarray) -> np.ndarray:
+    """The splitmix64 finalizer applied to every uint64 of ``x`` (a bijection that spreads bits)."""
+    with np.errstate(over="ignore"):
+        x = x ^ (x >> np.uint64(30))
+        x = x * _MIX1
+        x = x ^ (x >> np.uint64(27))
+        x = x * _MIX2
+        out: np.ndarray = x ^ (x >> np.uint64(31))
+        return out
+
+
+def utf8_buffers(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """The UTF-8 bytes of a ``large_string`` array (uint8) and each document's start and end in
+    them (int64, ``len(docs) + 1`` offsets starting at 0); no copy of the text."""
+    n = len(docs)
+    offsets = np.frombuffer(docs.buffers()[1], dtype=np.int64)[docs.offset : docs.offset + n + 1]
+    data = docs.buffers()[2]
+    if data is None or n == 0 or offsets[-1] == offsets[0]:
+        return np.zeros(0, np.uint8), np.zeros(n + 1, np.int64)
+    raw = np.frombuffer(data, dtype=np.uint8)[offsets[0] : offsets[-1]]
+    return raw, offsets - offsets[0]
+
+
+def per_document_sum(flags: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """Per document: how many of ``flags`` (one per byte) are true within its byte range."""
+    total = np.zeros(len(flags) + 1, dtype=np.int64)
+    np.cumsum(flags, out=total[1:])
+    out: np.ndarray = total[offsets[1:]] - total[offsets[:-1]]
+    return out
 
 
 @dataclass(frozen=True, slots=True)
@@ -96,9 +131,11 @@ def repeated(pieces: Pieces) -> np.ndarray:
     """Per piece: True when an equal piece came earlier in the same document."""
     if len(pieces.text) == 0:
         return np.zeros(0, dtype=bool)
-    codes = np.asarray(pc.dictionary_encode(pieces.text).indices.to_numpy(zero_copy_only=False), dtype=np.int64)
-    keys = np.stack([pieces.doc, codes], axis=1)
-    _, first = np.unique(keys, axis=0, return_index=True)
+    encoded = pc.dictionary_encode(pieces.text)
+    codes = np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64)
+    # one int64 key per (document, piece): exact, since documents * distinct pieces < 2**63
+    keys = pieces.doc * np.int64(len(encoded.dictionary)) + codes
+    _, first = np.unique(keys, return_index=True)
     seen_before = np.ones(len(codes), dtype=bool)
     seen_before[first] = False
     return seen_before

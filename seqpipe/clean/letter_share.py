@@ -3,15 +3,41 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import ClassVar
+from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float
-from seqpipe.clean._quality import QualityFilter, share
+from seqpipe.clean._quality import QualityFilter, per_document_sum, share, utf8_buffers
 from seqpipe.clean.base import as_documents
+
+# per byte value: an ASCII letter (what \p{L} matches below U+0080); RE2's \s, which is only
+# tab, line feed, form feed, carriage return and space (RE2 syntax reference, "Perl classes")
+_ASCII_LETTER: Final = np.array([chr(b).isascii() and chr(b).isalpha() for b in range(256)], dtype=bool)
+_RE2_SPACE: Final = np.isin(np.arange(256), [9, 10, 12, 13, 32])
+
+
+def _code_points(data: np.ndarray, lead: np.ndarray) -> np.ndarray:
+    """The code point starting at each of the positions ``lead`` (first bytes >= 0xC0 of valid UTF-8)."""
+    first = data[lead].astype(np.int64)
+    size = np.where(first >= 0xF0, 4, np.where(first >= 0xE0, 3, 2))
+    cp = first & np.where(size == 4, 0x07, np.where(size == 3, 0x0F, 0x1F))
+    for k in (1, 2, 3):  # continuation bytes, up to three
+        more = size > k
+        cont = data[np.minimum(lead + k, len(data) - 1)].astype(np.int64) & 0x3F
+        cp = np.where(more, (cp << 6) | cont, cp)
+    return cp
+
+
+def _letters(cps: np.ndarray) -> np.ndarray:
+    """Per code point: whether RE2 counts it in \\p{L}, asked once per distinct code point."""
+    distinct, inverse = np.unique(cps, return_inverse=True)
+    chars = pa.array([chr(c) for c in distinct.tolist()], pa.large_string())
+    is_letter = np.asarray(pc.match_substring_regex(chars, r"^\p{L}$").to_numpy(zero_copy_only=False), dtype=bool)
+    out: np.ndarray = is_letter[inverse.ravel()]
+    return out
 
 
 @dataclass(frozen=True, slots=True)
@@ -22,7 +48,8 @@ class LetterShare(QualityFilter):
     Tables of numbers, dumps of symbols and markup score low. The default 0.5 is our own
     choice (common practice puts such a threshold between one half and four fifths); a
     document with no visible character scores 0 and is dropped. Counted with RE2 in pyarrow
-    compute (``\\p{L}`` and ``\\s``), one C pass per batch.
+    compute's rules (``\\p{L}``; ``\\s`` is ASCII whitespace but vertical tab): numpy counts over
+    the batch's UTF-8 bytes, and RE2 classifies each distinct non-ASCII code point once.
     """
 
     kind: ClassVar[str] = "letter_share"
@@ -34,11 +61,14 @@ class LetterShare(QualityFilter):
 
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: letters / non-whitespace characters."""
-        docs = as_documents(docs)
-        letters = pc.count_substring_regex(docs, r"\p{L}").to_numpy(zero_copy_only=False)
-        spaces = pc.count_substring_regex(docs, r"\s").to_numpy(zero_copy_only=False)
-        visible = pc.utf8_length(docs).to_numpy(zero_copy_only=False) - spaces
-        return share(np.asarray(letters, np.float64), np.asarray(visible, np.float64))
+        data, offsets = utf8_buffers(as_documents(docs))
+        starts = (data & 0xC0) != 0x80  # the first byte of each code point
+        letter = _ASCII_LETTER[data]
+        wide = np.flatnonzero(data >= 0xC0)  # first bytes of code points beyond ASCII
+        if len(wide):
+            letter[wide] = _letters(_code_points(data, wide))
+        visible = per_document_sum(starts & ~_RE2_SPACE[data], offsets)
+        return share(per_document_sum(letter, offsets).astype(np.float64), visible.astype(np.float64))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
         """Boolean mask: True for each document ``apply`` keeps."""
