@@ -23,7 +23,7 @@ def _code_points(data: np.ndarray, lead: np.ndarray) -> np.ndarray:
     """The code point starting at each of the positions ``lead`` (first bytes >= 0xC0 of valid UTF-8)."""
     first = data[lead].astype(np.int64)
     size = np.where(first >= 0xF0, 4, np.where(first >= 0xE0, 3, 2))
-    cp = first & np.where(size == 4, 0x07, np.where(size == 3, 0x0F, 0x1F))
+    cp: np.ndarray = first & np.where(size == 4, 0x07, np.where(size == 3, 0x0F, 0x1F))
     for k in (1, 2, 3):  # continuation bytes, up to three
         more = size > k
         cont = data[np.minimum(lead + k, len(data) - 1)].astype(np.int64) & 0x3F
