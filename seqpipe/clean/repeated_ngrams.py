@@ -10,9 +10,9 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import Pieces, QualityFilter, mix64, share, words
+from seqpipe.clean._quality import Pieces, QualityFilter, share, words
 
-_MULTIPLIER: Final = np.uint64(0x100000001B3)  # an odd multiplier between the words of an n-gram
+_MULTIPLIER: Final = np.uint64(0x9E3779B97F4A7C15)  # odd, with bits spread over the whole word
 
 
 def covered_by_repeats(pieces: Pieces, n: int) -> np.ndarray:
@@ -37,29 +37,25 @@ def covered_by_repeats(pieces: Pieces, n: int) -> np.ndarray:
 
 def _repeated_rows(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: int) -> np.ndarray:
     """Per n-gram (document ``doc[i]``, words ``codes[starts[i]:starts[i] + n]``): True when an
-    equal n-gram of the same document exists. Sorted by a 64-bit hash of the row; rows with equal
-    hashes are compared whole, and on a collision of unequal rows the rows themselves are sorted."""
+    equal n-gram of the same document exists. A 64-bit polynomial key per row finds the
+    candidates (equal rows have equal keys; most rows of real text have a key of their own), and
+    only the candidates' rows are compared exactly, so a collision costs time, never a result."""
     with np.errstate(over="ignore"):
-        h = mix64(doc.astype(np.uint64))
+        h = doc.astype(np.uint64)
         for k in range(n):
-            h = mix64(h * _MULTIPLIER + codes[starts + k].astype(np.uint64))
-    order = np.argsort(h, kind="stable")
-    same = h[order[1:]] == h[order[:-1]]
-    a, b = order[1:][same], order[:-1][same]
-    equal = doc[a] == doc[b]
-    for k in range(n):
-        equal &= codes[starts[a] + k] == codes[starts[b] + k]
-    if not equal.all():  # a hash collision: fall back to the exact (slower) row sort
-        grams = np.stack([doc, *(codes[starts + k] for k in range(n))], axis=1)
-        _, inverse, counts = np.unique(grams, axis=0, return_inverse=True, return_counts=True)
-        out: np.ndarray = counts[inverse.ravel()] > 1
+            h = h * _MULTIPLIER + codes[starts + k].astype(np.uint64)
+    ordered = np.sort(h)
+    shared = np.unique(ordered[1:][ordered[1:] == ordered[:-1]])  # keys held by more than one row
+    out = np.zeros(len(h), dtype=bool)
+    if not len(shared):
         return out
-    in_group = np.zeros(len(h), dtype=bool)  # sorted position i has an equal neighbour
-    in_group[1:] |= same
-    in_group[:-1] |= same
-    repeated = np.empty(len(h), dtype=bool)
-    repeated[order] = in_group
-    return repeated
+    where = np.minimum(np.searchsorted(shared, h), len(shared) - 1)
+    candidates = np.flatnonzero(shared[where] == h)
+    at = starts[candidates]
+    rows = np.stack([doc[candidates], *(codes[at + k] for k in range(n))], axis=1)
+    _, inverse, counts = np.unique(rows, axis=0, return_inverse=True, return_counts=True)
+    out[candidates] = counts[inverse.ravel()] > 1
+    return out
 
 
 @dataclass(frozen=True, slots=True)
