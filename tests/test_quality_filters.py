@@ -208,3 +208,21 @@ def test_letter_share_counts_non_ascii_code_points_as_re2_does() -> None:
     docs = ["\u03a9\u8336\U00010400\u0301\u2192\U0001f600\u00a0\x0bab", "\t\n\x0c\r a", ""]
     m = LetterShare().measure(arr(docs))
     assert m.tolist() == [5 / 10, 1.0, 0.0]
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
+        st.text(alphabet=st.sampled_from(list("ab \n\x0b\x1c\x85\xa0\u2003\u3000\u200b\u0301é茶😀")), max_size=40),
+        max_size=6,
+    )
+)
+def test_mean_word_length_uses_the_unicode_whitespace_of_words(docs: list[str]) -> None:
+    """Byte-level word counts split at the same Unicode whitespace as str.split() (which also
+    treats U+001C-U+001F, U+0085, U+00A0, U+2000-U+200A, U+3000 as space) and as words()."""
+    a = arr(docs)
+    assert np.allclose(WordLength().measure(a), [ref_mean_word_length(d) for d in docs])
+    from seqpipe.clean._quality import word_sizes, words
+
+    count, _ = word_sizes(a)
+    assert count.tolist() == words(a).count().tolist()

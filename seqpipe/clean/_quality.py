@@ -10,6 +10,7 @@ made per word.
 from __future__ import annotations
 
 from abc import abstractmethod
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import ClassVar, Final
 
@@ -47,11 +48,68 @@ def utf8_buffers(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     return raw, offsets - offsets[0]
 
 
+def code_points(data: np.ndarray, lead: np.ndarray) -> np.ndarray:
+    """The code point starting at each of the positions ``lead`` (first bytes >= 0xC0 of valid UTF-8)."""
+    first = data[lead].astype(np.int64)
+    size = np.where(first >= 0xF0, 4, np.where(first >= 0xE0, 3, 2))
+    cp: np.ndarray = first & np.where(size == 4, 0x07, np.where(size == 3, 0x0F, 0x1F))
+    for k in (1, 2, 3):  # continuation bytes, up to three
+        more = size > k
+        cont = data[np.minimum(lead + k, len(data) - 1)].astype(np.int64) & 0x3F
+        cp = np.where(more, (cp << 6) | cont, cp)
+    return cp
+
+
+def classify(cps: np.ndarray, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
+    """Per code point: ``kernel`` (a pyarrow predicate over one-character strings), asked once
+    per distinct code point, so the answer is the library's own for every character."""
+    distinct, inverse = np.unique(cps, return_inverse=True)
+    chars = pa.array([chr(c) for c in distinct.tolist()], pa.large_string())
+    answer = np.asarray(kernel(chars).to_numpy(zero_copy_only=False), dtype=bool)
+    out: np.ndarray = answer[inverse.ravel()]
+    return out
+
+
+# per byte value below 0x80: whitespace as pyarrow's utf8_split_whitespace (and so words()) sees it
+_ASCII_SPACE: Final = np.zeros(256, dtype=bool)
+_ASCII_SPACE[:128] = np.asarray(
+    pc.utf8_is_space(pa.array([chr(b) for b in range(128)], pa.large_string())).to_numpy(zero_copy_only=False),
+    dtype=bool,
+)
+
+
+def word_sizes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """Per document: the number of words of :func:`words` and the code points inside them,
+    counted over the UTF-8 bytes with numpy (the same whitespace: pyarrow's ``utf8_is_space``,
+    asked once per distinct non-ASCII code point) without cutting the text into words."""
+    docs = as_documents(docs)
+    data, offsets = utf8_buffers(docs)
+    space = _ASCII_SPACE[data]
+    wide = np.flatnonzero(data >= 0xC0)
+    if len(wide):  # a multi-byte code point's flag goes on all its bytes
+        flag = classify(code_points(data, wide), pc.utf8_is_space)
+        size = np.where(data[wide] >= 0xF0, 4, np.where(data[wide] >= 0xE0, 3, 2))
+        for k in range(4):
+            at = size > k
+            space[wide[at] + k] = flag[at]
+    lead = (data & 0xC0) != 0x80  # the first byte of each code point
+    before = np.empty(len(data), dtype=bool)  # the byte before is whitespace, or there is none
+    if len(data):
+        before[0] = True
+        before[1:] = space[:-1]
+        before[offsets[:-1][offsets[1:] > offsets[:-1]]] = True
+    starts = per_document_sum(before & lead & ~space, offsets)
+    spaces = per_document_sum(space & lead, offsets)
+    length = np.asarray(pc.utf8_length(docs).to_numpy(zero_copy_only=False), dtype=np.int64)
+    return starts, length - spaces
+
+
 def per_document_sum(flags: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     """Per document: how many of ``flags`` (one per byte) are true within its byte range."""
-    total = np.zeros(len(flags) + 1, dtype=np.int64)
-    np.cumsum(flags, out=total[1:])
-    out: np.ndarray = total[offsets[1:]] - total[offsets[:-1]]
+    out = np.zeros(len(offsets) - 1, dtype=np.int64)
+    filled = offsets[1:] > offsets[:-1]
+    if filled.any():
+        out[filled] = np.add.reduceat(flags, offsets[:-1][filled], dtype=np.int64)
     return out
 
 

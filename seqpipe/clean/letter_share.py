@@ -10,7 +10,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float
-from seqpipe.clean._quality import QualityFilter, per_document_sum, share, utf8_buffers
+from seqpipe.clean._quality import QualityFilter, classify, code_points, per_document_sum, share, utf8_buffers
 from seqpipe.clean.base import as_documents
 
 # per byte value: an ASCII letter (what \p{L} matches below U+0080); RE2's \s, which is only
@@ -19,25 +19,8 @@ _ASCII_LETTER: Final = np.array([chr(b).isascii() and chr(b).isalpha() for b in 
 _RE2_SPACE: Final = np.isin(np.arange(256), [9, 10, 12, 13, 32])
 
 
-def _code_points(data: np.ndarray, lead: np.ndarray) -> np.ndarray:
-    """The code point starting at each of the positions ``lead`` (first bytes >= 0xC0 of valid UTF-8)."""
-    first = data[lead].astype(np.int64)
-    size = np.where(first >= 0xF0, 4, np.where(first >= 0xE0, 3, 2))
-    cp: np.ndarray = first & np.where(size == 4, 0x07, np.where(size == 3, 0x0F, 0x1F))
-    for k in (1, 2, 3):  # continuation bytes, up to three
-        more = size > k
-        cont = data[np.minimum(lead + k, len(data) - 1)].astype(np.int64) & 0x3F
-        cp = np.where(more, (cp << 6) | cont, cp)
-    return cp
-
-
-def _letters(cps: np.ndarray) -> np.ndarray:
-    """Per code point: whether RE2 counts it in \\p{L}, asked once per distinct code point."""
-    distinct, inverse = np.unique(cps, return_inverse=True)
-    chars = pa.array([chr(c) for c in distinct.tolist()], pa.large_string())
-    is_letter = np.asarray(pc.match_substring_regex(chars, r"^\p{L}$").to_numpy(zero_copy_only=False), dtype=bool)
-    out: np.ndarray = is_letter[inverse.ravel()]
-    return out
+def _is_letter(chars: pa.Array) -> pa.Array:
+    return pc.match_substring_regex(chars, r"^\p{L}$")
 
 
 @dataclass(frozen=True, slots=True)
@@ -66,7 +49,7 @@ class LetterShare(QualityFilter):
         letter = _ASCII_LETTER[data]
         wide = np.flatnonzero(data >= 0xC0)  # first bytes of code points beyond ASCII
         if len(wide):
-            letter[wide] = _letters(_code_points(data, wide))
+            letter[wide] = classify(code_points(data, wide), _is_letter)
         visible = per_document_sum(starts & ~_RE2_SPACE[data], offsets)
         return share(per_document_sum(letter, offsets).astype(np.float64), visible.astype(np.float64))
 
