@@ -335,3 +335,24 @@ def test_batch_prefilter_skips_no_document_that_would_change(targets: tuple[str,
     assert out.to_pylist() == [e[0] for e in expected]
     assert counts == {t: sum(e[1][t] for e in expected) for t in targets}
     assert any(e[0] != d for e, d in zip(expected, docs, strict=True))
+
+
+@pytest.mark.parametrize("kind", ["words", "chars", "bytes"])
+def test_batch_with_and_without_placeholders_segments_like_each_document_alone(kind: str) -> None:
+    """In a batch mixing documents with and without placeholders, each document's pieces are the
+    ones it gets when segmented alone (documents without a name are not split in Python)."""
+    from seqpipe.tokenizers._common import segment_with_reserved
+
+    tok = parse_tokenizer({"kind": kind, "literal_reserved": True}, "tokenizer")
+    names = ("<email>", "<ip>")
+    docs = ["ferry at 9.", "<email> wrote", "", "a<ip>b<email>", "quay é ok", "<ip>"]
+
+    def pieces(batch: list[str]) -> list[list[bytes]]:
+        seg = segment_with_reserved(tok._segment, pa.array(batch, pa.large_string()), names)  # type: ignore[attr-defined]
+        keys = seg.keys.to_pylist()
+        flat = [keys[c] for c in seg.codes.tolist()]
+        bounds = np.cumsum([0, *seg.doc_lengths.tolist()])
+        return [flat[bounds[i] : bounds[i + 1]] for i in range(len(batch))]
+
+    assert pieces(docs) == [pieces([d])[0] for d in docs]
+    assert [b"<email>"] in [p[:1] for p in pieces(docs)]
