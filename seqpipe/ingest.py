@@ -42,7 +42,7 @@ from seqpipe.splits import assign_splits, fixed_split_of
 from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
 
-PART_FORMAT: Final = "seqpipe.part/5"  # /5: docs.arrow counts characters
+PART_FORMAT: Final = "seqpipe.part/6"  # /6: near_dedupe signatures by multiply-add hashing
 _THREADS: list[int] = []  # set by set_ingest_threads (e.g. in pool workers); else the environment
 
 

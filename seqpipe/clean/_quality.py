@@ -9,6 +9,8 @@ made per word.
 
 from __future__ import annotations
 
+import itertools
+import threading
 from abc import abstractmethod
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -17,6 +19,7 @@ from typing import ClassVar, Final
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+import xxhash
 
 from seqpipe.clean.base import CleanStep, as_documents
 
@@ -137,6 +140,9 @@ class Pieces:
     text: pa.Array  # large_string
     doc: np.ndarray  # int64, non-decreasing
     documents: int
+    # filled by encoded() the first time it is asked: the distinct pieces and each piece's index
+    distinct: pa.Array | None = None
+    codes: np.ndarray | None = None
 
     def per_document(self, values: np.ndarray) -> np.ndarray:
         """Sum of ``values`` (one per piece) for each document."""
@@ -150,6 +156,65 @@ class Pieces:
         """Code points of each piece."""
         return np.asarray(pc.utf8_length(self.text).to_numpy(zero_copy_only=False), dtype=np.int64)
 
+    def encoded(self) -> tuple[pa.Array, np.ndarray]:
+        """The distinct pieces (some may no longer occur after :meth:`subset`) and, per piece, its
+        index among them; computed once and kept."""
+        if self.distinct is None or self.codes is None:
+            encoded = pc.dictionary_encode(self.text)
+            codes = np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64)
+            object.__setattr__(self, "distinct", encoded.dictionary)
+            object.__setattr__(self, "codes", codes)
+            return encoded.dictionary, codes
+        return self.distinct, self.codes
+
+    def subset(self, keep: np.ndarray) -> Pieces:
+        """The pieces of the documents where ``keep`` is True, numbered among those documents."""
+        inside = keep[self.doc]
+        renumber = np.cumsum(keep) - 1
+        return Pieces(
+            self.text.filter(pa.array(inside)),
+            renumber[self.doc[inside]],
+            int(keep.sum()),
+            self.distinct,
+            None if self.codes is None else self.codes[inside],
+        )
+
+
+class _LastWords(threading.local):
+    """Per thread, the last batch cut into words: the filters of one batch run one after the
+    other on the same documents, or on what the previous filter kept of them."""
+
+    def __init__(self) -> None:
+        self.docs: pa.Array | None = None
+        self.digests: list[bytes] = []
+        self.pieces: Pieces | None = None
+
+
+_LAST_WORDS: Final = _LastWords()
+
+
+def _digests(docs: pa.Array) -> list[bytes]:
+    """XXH3-128 of each document's UTF-8 bytes (one C call per document)."""
+    data, offsets = utf8_buffers(docs)
+    view = data.data  # a memoryview of the bytes, no copy
+    digest = xxhash.xxh3_128_digest
+    bounds = offsets.tolist()
+    return [digest(view[a:b]) for a, b in itertools.pairwise(bounds)]
+
+
+def _kept_from(before: list[bytes], after: list[bytes]) -> np.ndarray | None:
+    """``keep`` such that the documents ``after`` are those of ``before`` where ``keep`` is True,
+    in order (by content digest); None when they are not (or ``before`` repeats a document)."""
+    where = {d: i for i, d in enumerate(before)}
+    if len(where) != len(before) or len(after) > len(before):
+        return None
+    at = np.fromiter((where.get(d, -1) for d in after), dtype=np.int64, count=len(after))
+    if len(at) and (at[0] < 0 or (np.diff(at) <= 0).any()):
+        return None
+    keep = np.zeros(len(before), dtype=bool)
+    keep[at] = True
+    return keep
+
 
 def _pieces(docs: pa.Array, split: pa.Array) -> Pieces:
     lengths = np.asarray(pc.list_value_length(split).to_numpy(zero_copy_only=False), dtype=np.int64)
@@ -162,8 +227,23 @@ def _pieces(docs: pa.Array, split: pa.Array) -> Pieces:
 
 
 def words(docs: pa.Array) -> Pieces:
-    """Whitespace-separated words of every document (Unicode whitespace)."""
+    """Whitespace-separated words of every document (Unicode whitespace).
+
+    The last batch's words are kept per thread: called again with the same documents, or with
+    some of them dropped (a filter in between), it reuses them instead of cutting the text again.
+    """
     docs = as_documents(docs)
+    last = _LAST_WORDS
+    if last.pieces is not None and docs is last.docs:
+        return last.pieces
+    digests = _digests(docs)
+    keep = _kept_from(last.digests, digests) if last.pieces is not None else None
+    pieces = last.pieces.subset(keep) if last.pieces is not None and keep is not None else _split_words(docs)
+    last.docs, last.digests, last.pieces = docs, digests, pieces
+    return pieces
+
+
+def _split_words(docs: pa.Array) -> Pieces:
     # pyarrow 26's utf8_split_whitespace sometimes keeps a trailing whitespace character of the
     # array's last value inside its last word (it looks past the end of the data buffer; seen
     # on about 1 call in 3 for the same input): a non-blank sentinel value after the documents
@@ -189,10 +269,9 @@ def repeated(pieces: Pieces) -> np.ndarray:
     """Per piece: True when an equal piece came earlier in the same document."""
     if len(pieces.text) == 0:
         return np.zeros(0, dtype=bool)
-    encoded = pc.dictionary_encode(pieces.text)
-    codes = np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64)
+    distinct, codes = pieces.encoded()
     # one int64 key per (document, piece): exact, since documents * distinct pieces < 2**63
-    keys = pieces.doc * np.int64(len(encoded.dictionary)) + codes
+    keys = pieces.doc * np.int64(len(distinct)) + codes
     _, first = np.unique(keys, return_index=True)
     seen_before = np.ones(len(codes), dtype=bool)
     seen_before[first] = False

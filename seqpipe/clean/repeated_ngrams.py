@@ -7,7 +7,6 @@ from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
 from seqpipe.clean._quality import Pieces, QualityFilter, share, words
@@ -21,7 +20,7 @@ def covered_by_repeats(pieces: Pieces, n: int) -> np.ndarray:
     covered = np.zeros(m, dtype=bool)
     if m < n:
         return covered
-    codes = np.asarray(pc.dictionary_encode(pieces.text).indices.to_numpy(zero_copy_only=False), dtype=np.int64)
+    codes = pieces.encoded()[1]
     starts = np.arange(m - n + 1)
     same_doc = pieces.doc[starts] == pieces.doc[starts + n - 1]  # docs are contiguous
     starts = starts[same_doc]
