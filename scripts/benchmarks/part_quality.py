@@ -181,6 +181,8 @@ def write_corpus(root: Path, total: int) -> Planted:
                 doc = doc.strip("\n")
                 if not doc:
                     continue
+                if size >= per_file:  # the file is full: the rest of the chunk is not used
+                    break
                 r = rng.random()
                 if r < JUNK_SHARE:
                     planted.junk.append(junk(len(planted.junk)))
@@ -281,7 +283,7 @@ def check_filters(planted: Planted, filtered: BuildResult) -> str:
 
 
 def measures(quick: bool, workdir: Path) -> Iterator[Measure]:
-    size = 4 * MB if quick else 100 * MB
+    size = 3 * MB if quick else 100 * MB
     repeat = 1 if quick else 3
     root = workdir / "q"
     planted = write_corpus(root, size)
