@@ -232,14 +232,15 @@ def test_mean_word_length_uses_the_unicode_whitespace_of_words(docs: list[str]) 
 @given(docs=_DOCS, keep=st.lists(st.booleans(), min_size=6, max_size=6))
 def test_words_reused_after_a_filter_equal_a_fresh_cut(docs: list[str], keep: list[bool]) -> None:
     """Words kept from the previous batch (same documents, or some dropped) equal cutting the text
-    afresh, codes included; duplicate documents in a batch fall back to a fresh cut."""
+    afresh, codes included, also for batches holding copies of a document."""
     from seqpipe.clean._quality import _split_words, words
 
     a = arr(docs)
     first = words(a)
     first.encoded()
     mask = np.array(keep[: len(docs)], dtype=bool)
-    for batch in (a, a.filter(pa.array(mask)), arr(docs + docs)):
+    twice = arr(docs + docs)
+    for batch in (a, a.filter(pa.array(mask)), twice, twice.filter(pa.array(np.concatenate([mask, ~mask]))), a):
         got, fresh = words(batch), _split_words(batch)
         assert got.text.to_pylist() == fresh.text.to_pylist()
         assert got.doc.tolist() == fresh.doc.tolist() and got.documents == fresh.documents

@@ -204,11 +204,22 @@ def _digests(docs: pa.Array) -> list[bytes]:
 
 def _kept_from(before: list[bytes], after: list[bytes]) -> np.ndarray | None:
     """``keep`` such that the documents ``after`` are those of ``before`` where ``keep`` is True,
-    in order (by content digest); None when they are not (or ``before`` repeats a document)."""
-    where = {d: i for i, d in enumerate(before)}
-    if len(where) != len(before) or len(after) > len(before):
+    in order (by content digest); None when they are not. The k-th copy of a document in
+    ``after`` is taken as the k-th in ``before`` (a filter keeps or drops all copies alike)."""
+    if len(after) > len(before):
         return None
-    at = np.fromiter((where.get(d, -1) for d in after), dtype=np.int64, count=len(after))
+    seen: dict[bytes, int] = {}
+    where: dict[tuple[bytes, int], int] = {}
+    for i, d in enumerate(before):
+        k = seen.get(d, 0)
+        seen[d] = k + 1
+        where[d, k] = i
+    seen.clear()
+    at = np.empty(len(after), dtype=np.int64)
+    for j, d in enumerate(after):
+        k = seen.get(d, 0)
+        seen[d] = k + 1
+        at[j] = where.get((d, k), -1)
     if len(at) and (at[0] < 0 or (np.diff(at) <= 0).any()):
         return None
     keep = np.zeros(len(before), dtype=bool)
