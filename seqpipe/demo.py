@@ -7,7 +7,8 @@ built from the templates and word lists below with ``random.Random(seed)``, so t
 same seed gives byte-identical files. The text carries some non-ASCII on purpose
 (accented names, a few CJK cargo marks, emoji in remarks, and now and then a name
 typed in decomposed form so that NFC normalization has work to do), a few
-planted duplicates (exact copies and copies with one word changed), and in every
+planted duplicates (exact copies for ``dedupe`` and copies with one word changed for
+``near_dedupe``; the demo recipe has both, so its summary counts them), and in every
 ninth log a notice with invented contact details (an e-mail address at an example.*
 domain, documentation IP addresses, a telephone number, a test card number) for the
 ``redact`` step to replace.
@@ -256,6 +257,12 @@ form = "NFC"
 
 [[clean]]
 kind = "redact"
+
+[[clean]]
+kind = "dedupe"
+
+[[clean]]
+kind = "near_dedupe"
 
 [tokenizer]
 kind = "words"

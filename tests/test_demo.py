@@ -114,3 +114,25 @@ def test_planted_contact_details_are_redacted(corpus: Path) -> None:
     assert domains and all(d.endswith(".example") for d in domains)  # RFC 2606 reserved names
     _, counts = redact_text(text)
     assert all(counts[t] > 0 for t in ("email", "ip", "card", "phone")), counts
+
+
+def test_demo_build_counts_planted_copies_and_redactions(corpus: Path, tmp_path: Path) -> None:
+    """The demo recipe drops every planted exact and near copy and counts each redacted kind; the
+    build summary shows both counts."""
+    from seqpipe import build
+    from seqpipe.demo import _EXACT_DUPLICATE_EVERY, _NEAR_DUPLICATE_EVERY
+    from seqpipe.recipe import parse_recipe
+
+    result = build(parse_recipe(demo_recipe_text(), corpus), tmp_path / "out", workers=1, progress=False)
+    summary = result.manifest["summary"]
+    # 600 documents: 420 logs, 90 archived logs, 90 remark pages; a copy every 40th / 97th entry
+    sections = (420, 90, 90)
+    near = sum(
+        1 for n in sections for i in range(1, n) if i % _NEAR_DUPLICATE_EVERY == 0 and i % _EXACT_DUPLICATE_EVERY
+    )
+    exact = sum(1 for n in sections for i in range(1, n) if i % _EXACT_DUPLICATE_EVERY == 0)
+    assert summary["near_duplicates_dropped"] >= near > 0
+    assert summary["duplicates_dropped"] >= exact > 0
+    assert all(summary["redacted"][t] > 0 for t in ("email", "ip", "card", "phone")), summary["redacted"]
+    counted = next(line for line in result.summary_lines() if line.startswith("counted"))
+    assert "near-duplicates dropped" in counted and "redacted email" in counted

@@ -118,3 +118,19 @@ def test_build_drops_near_duplicates_after_the_first(tmp_path: Path) -> None:
     assert summary["duplicates_dropped"] == 1 and summary["near_duplicates_dropped"] == 3
     assert result.manifest["splits"]["train"]["documents"] == 6
     assert any("near-duplicates dropped: 3" in line for line in result.summary_lines())
+
+
+def test_band_buckets_group_exactly_equal_bands_even_when_keys_collide(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Documents share a bucket exactly when they agree on the whole band, also when the folded
+    64-bit keys of different bands collide (a zero multiplier keeps only each band's last value)."""
+    import seqpipe.clean.near_dedupe as module
+
+    rng = np.random.default_rng(2)
+    sig = rng.integers(0, 3, size=(200, 8)).astype(np.uint32)  # few values: many equal bands
+    expected = band_buckets(sig, 4, 2)
+    monkeypatch.setattr(module, "_GOLDEN", np.uint64(0))
+    for buckets in (expected, band_buckets(sig, 4, 2)):
+        for b in range(4):
+            same = buckets[:, b][:, None] == buckets[:, b][None, :]
+            band = sig[:, 2 * b : 2 * b + 2]
+            assert np.array_equal(same, (band[:, None, :] == band[None, :, :]).all(axis=2))

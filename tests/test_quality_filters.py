@@ -189,3 +189,60 @@ def test_word_measures_are_the_same_on_every_call() -> None:
     want = [ref_mean_word_length(d) for d in docs]
     for _ in range(300):
         assert np.allclose(WordLength().measure(arr(docs)), want)
+
+
+def test_repeated_ngrams_is_exact_under_hash_collisions(monkeypatch: pytest.MonkeyPatch) -> None:
+    """With a key that collides for every n-gram ending in the same word, the measure still
+    equals the Python reference: candidates are compared word by word."""
+    import seqpipe.clean.repeated_ngrams as module
+
+    monkeypatch.setattr(module, "_MULTIPLIER", np.uint64(0))  # every row's key is its last word
+    docs = ["a b c a b c d", "x y z x y", "one two three four", "a b c a b c d"]
+    for n in (1, 2, 3):
+        assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
+
+
+def test_letter_share_counts_non_ascii_code_points_as_re2_does() -> None:
+    """Letters beyond ASCII (Greek, CJK, an astral letter) count; combining marks, symbols, emoji and
+    no-break spaces are visible non-letters; RE2's whitespace (tab, LF, FF, CR, space) is not visible."""
+    docs = ["\u03a9\u8336\U00010400\u0301\u2192\U0001f600\u00a0\x0bab", "\t\n\x0c\r a", ""]
+    m = LetterShare().measure(arr(docs))
+    assert m.tolist() == [5 / 10, 1.0, 0.0]
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
+        st.text(alphabet=st.sampled_from(list("ab \n\x0b\x1c\x85\xa0\u2003\u3000\u200b\u0301é茶😀")), max_size=40),
+        max_size=6,
+    )
+)
+def test_mean_word_length_uses_the_unicode_whitespace_of_words(docs: list[str]) -> None:
+    """Byte-level word counts split at the same Unicode whitespace as str.split() (which also
+    treats U+001C-U+001F, U+0085, U+00A0, U+2000-U+200A, U+3000 as space) and as words()."""
+    a = arr(docs)
+    assert np.allclose(WordLength().measure(a), [ref_mean_word_length(d) for d in docs])
+    from seqpipe.clean._quality import word_sizes, words
+
+    count, _ = word_sizes(a)
+    assert count.tolist() == words(a).count().tolist()
+
+
+@settings(max_examples=100, deadline=None)
+@given(docs=_DOCS, keep=st.lists(st.booleans(), min_size=6, max_size=6))
+def test_words_reused_after_a_filter_equal_a_fresh_cut(docs: list[str], keep: list[bool]) -> None:
+    """Words kept from the previous batch (same documents, or some dropped) equal cutting the text
+    afresh, codes included, also for batches holding copies of a document."""
+    from seqpipe.clean._quality import _split_words, words
+
+    a = arr(docs)
+    first = words(a)
+    first.encoded()
+    mask = np.array(keep[: len(docs)], dtype=bool)
+    twice = arr(docs + docs)
+    for batch in (a, a.filter(pa.array(mask)), twice, twice.filter(pa.array(np.concatenate([mask, ~mask]))), a):
+        got, fresh = words(batch), _split_words(batch)
+        assert got.text.to_pylist() == fresh.text.to_pylist()
+        assert got.doc.tolist() == fresh.doc.tolist() and got.documents == fresh.documents
+        distinct, codes = got.encoded()
+        assert [distinct[int(c)].as_py() for c in codes] == fresh.text.to_pylist()

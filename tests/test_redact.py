@@ -312,3 +312,47 @@ def test_placeholders_follow_targets() -> None:
     """The step's placeholders are those of its targets, in order."""
     assert Redact(targets=("card", "ip")).placeholders == (PLACEHOLDERS["card"], PLACEHOLDERS["ip"])
     assert VocabSpec(reserved=tuple(RESERVED)).reserved[4:] == Redact().placeholders
+
+
+_ALL_SAMPLES = [
+    *(f"write to {a}, or call." for a in VALID_EMAILS),
+    *(f"from {a} at dawn" for a in VALID_IPV6),
+    "host 192.0.2.44 up",
+    "call +44 1632 960123 now",
+    "call (555) 010-0199 now",
+    "call 0161 496 0123 now",
+    "paid 4111-1111-1111-1111 at the quay",
+    "crew of 12 34 56, ticket 1234567, at 12:30:45 sharp",
+]
+
+
+@pytest.mark.parametrize("targets", [("email",), ("ip",), ("card",), ("phone",), ("email", "ip", "card", "phone")])
+def test_batch_prefilter_skips_no_document_that_would_change(targets: tuple[str, ...]) -> None:
+    """The batch-wide RE2 hint is only a shortcut: the step equals redact_text run on every document."""
+    docs = [*_ALL_SAMPLES, "a quiet crossing", "", "ferry 7 at 9"]
+    out, counts = Redact(targets=targets).apply_counted(pa.array(docs, pa.large_string()))
+    expected = [redact_text(d, targets) for d in docs]
+    assert out.to_pylist() == [e[0] for e in expected]
+    assert counts == {t: sum(e[1][t] for e in expected) for t in targets}
+    assert any(e[0] != d for e, d in zip(expected, docs, strict=True))
+
+
+@pytest.mark.parametrize("kind", ["words", "chars", "bytes"])
+def test_batch_with_and_without_placeholders_segments_like_each_document_alone(kind: str) -> None:
+    """In a batch mixing documents with and without placeholders, each document's pieces are the
+    ones it gets when segmented alone (documents without a name are not split in Python)."""
+    from seqpipe.tokenizers._common import segment_with_reserved
+
+    tok = parse_tokenizer({"kind": kind, "literal_reserved": True}, "tokenizer")
+    names = ("<email>", "<ip>")
+    docs = ["ferry at 9.", "<email> wrote", "", "a<ip>b<email>", "quay é ok", "<ip>"]
+
+    def pieces(batch: list[str]) -> list[list[bytes]]:
+        seg = segment_with_reserved(tok._segment, pa.array(batch, pa.large_string()), names)  # type: ignore[attr-defined]
+        keys = seg.keys.to_pylist()
+        flat = [keys[c] for c in seg.codes.tolist()]
+        bounds = np.cumsum([0, *seg.doc_lengths.tolist()])
+        return [flat[bounds[i] : bounds[i + 1]] for i in range(len(batch))]
+
+    assert pieces(docs) == [pieces([d])[0] for d in docs]
+    assert [b"<email>"] in [p[:1] for p in pieces(docs)]

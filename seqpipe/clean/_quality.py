@@ -9,15 +9,111 @@ made per word.
 
 from __future__ import annotations
 
+import itertools
+import threading
 from abc import abstractmethod
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import ClassVar
+from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+import xxhash
 
 from seqpipe.clean.base import CleanStep, as_documents
+
+# splitmix64 finalizer constants (the same as seqpipe.splits; Steele, Lea and Flood 2014)
+_MIX1: Final = np.uint64(0xBF58476D1CE4E5B9)
+_MIX2: Final = np.uint64(0x94D049BB133111EB)
+
+
+def mix64(x: np.ndarray) -> np.ndarray:
+    """The splitmix64 finalizer applied to every uint64 of ``x`` (a bijection that spreads bits)."""
+    with np.errstate(over="ignore"):
+        x = x ^ (x >> np.uint64(30))
+        x = x * _MIX1
+        x = x ^ (x >> np.uint64(27))
+        x = x * _MIX2
+        out: np.ndarray = x ^ (x >> np.uint64(31))
+        return out
+
+
+def utf8_buffers(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """The UTF-8 bytes of a ``large_string`` array (uint8) and each document's start and end in
+    them (int64, ``len(docs) + 1`` offsets starting at 0); no copy of the text."""
+    n = len(docs)
+    offsets = np.frombuffer(docs.buffers()[1], dtype=np.int64)[docs.offset : docs.offset + n + 1]
+    data = docs.buffers()[2]
+    if data is None or n == 0 or offsets[-1] == offsets[0]:
+        return np.zeros(0, np.uint8), np.zeros(n + 1, np.int64)
+    raw = np.frombuffer(data, dtype=np.uint8)[offsets[0] : offsets[-1]]
+    return raw, offsets - offsets[0]
+
+
+def code_points(data: np.ndarray, lead: np.ndarray) -> np.ndarray:
+    """The code point starting at each of the positions ``lead`` (first bytes >= 0xC0 of valid UTF-8)."""
+    first = data[lead].astype(np.int64)
+    size = np.where(first >= 0xF0, 4, np.where(first >= 0xE0, 3, 2))
+    cp: np.ndarray = first & np.where(size == 4, 0x07, np.where(size == 3, 0x0F, 0x1F))
+    for k in (1, 2, 3):  # continuation bytes, up to three
+        more = size > k
+        cont = data[np.minimum(lead + k, len(data) - 1)].astype(np.int64) & 0x3F
+        cp = np.where(more, (cp << 6) | cont, cp)
+    return cp
+
+
+def classify(cps: np.ndarray, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
+    """Per code point: ``kernel`` (a pyarrow predicate over one-character strings), asked once
+    per distinct code point, so the answer is the library's own for every character."""
+    distinct, inverse = np.unique(cps, return_inverse=True)
+    chars = pa.array([chr(c) for c in distinct.tolist()], pa.large_string())
+    answer = np.asarray(kernel(chars).to_numpy(zero_copy_only=False), dtype=bool)
+    out: np.ndarray = answer[inverse.ravel()]
+    return out
+
+
+# per byte value below 0x80: whitespace as pyarrow's utf8_split_whitespace (and so words()) sees it
+_ASCII_SPACE: Final = np.zeros(256, dtype=bool)
+_ASCII_SPACE[:128] = np.asarray(
+    pc.utf8_is_space(pa.array([chr(b) for b in range(128)], pa.large_string())).to_numpy(zero_copy_only=False),
+    dtype=bool,
+)
+
+
+def word_sizes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """Per document: the number of words of :func:`words` and the code points inside them,
+    counted over the UTF-8 bytes with numpy (the same whitespace: pyarrow's ``utf8_is_space``,
+    asked once per distinct non-ASCII code point) without cutting the text into words."""
+    docs = as_documents(docs)
+    data, offsets = utf8_buffers(docs)
+    space = _ASCII_SPACE[data]
+    wide = np.flatnonzero(data >= 0xC0)
+    if len(wide):  # a multi-byte code point's flag goes on all its bytes
+        flag = classify(code_points(data, wide), pc.utf8_is_space)
+        size = np.where(data[wide] >= 0xF0, 4, np.where(data[wide] >= 0xE0, 3, 2))
+        for k in range(4):
+            at = size > k
+            space[wide[at] + k] = flag[at]
+    lead = (data & 0xC0) != 0x80  # the first byte of each code point
+    before = np.empty(len(data), dtype=bool)  # the byte before is whitespace, or there is none
+    if len(data):
+        before[0] = True
+        before[1:] = space[:-1]
+        before[offsets[:-1][offsets[1:] > offsets[:-1]]] = True
+    starts = per_document_sum(before & lead & ~space, offsets)
+    spaces = per_document_sum(space & lead, offsets)
+    length = np.asarray(pc.utf8_length(docs).to_numpy(zero_copy_only=False), dtype=np.int64)
+    return starts, length - spaces
+
+
+def per_document_sum(flags: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """Per document: how many of ``flags`` (one per byte) are true within its byte range."""
+    out = np.zeros(len(offsets) - 1, dtype=np.int64)
+    filled = offsets[1:] > offsets[:-1]
+    if filled.any():
+        out[filled] = np.add.reduceat(flags, offsets[:-1][filled], dtype=np.int64)
+    return out
 
 
 @dataclass(frozen=True, slots=True)
@@ -44,6 +140,9 @@ class Pieces:
     text: pa.Array  # large_string
     doc: np.ndarray  # int64, non-decreasing
     documents: int
+    # filled by encoded() the first time it is asked: the distinct pieces and each piece's index
+    distinct: pa.Array | None = None
+    codes: np.ndarray | None = None
 
     def per_document(self, values: np.ndarray) -> np.ndarray:
         """Sum of ``values`` (one per piece) for each document."""
@@ -57,6 +156,76 @@ class Pieces:
         """Code points of each piece."""
         return np.asarray(pc.utf8_length(self.text).to_numpy(zero_copy_only=False), dtype=np.int64)
 
+    def encoded(self) -> tuple[pa.Array, np.ndarray]:
+        """The distinct pieces (some may no longer occur after :meth:`subset`) and, per piece, its
+        index among them; computed once and kept."""
+        if self.distinct is None or self.codes is None:
+            encoded = pc.dictionary_encode(self.text)
+            codes = np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64)
+            object.__setattr__(self, "distinct", encoded.dictionary)
+            object.__setattr__(self, "codes", codes)
+            return encoded.dictionary, codes
+        return self.distinct, self.codes
+
+    def subset(self, keep: np.ndarray) -> Pieces:
+        """The pieces of the documents where ``keep`` is True, numbered among those documents."""
+        inside = keep[self.doc]
+        renumber = np.cumsum(keep) - 1
+        return Pieces(
+            self.text.filter(pa.array(inside)),
+            renumber[self.doc[inside]],
+            int(keep.sum()),
+            self.distinct,
+            None if self.codes is None else self.codes[inside],
+        )
+
+
+class _LastWords(threading.local):
+    """Per thread, the last batch cut into words: the filters of one batch run one after the
+    other on the same documents, or on what the previous filter kept of them."""
+
+    def __init__(self) -> None:
+        self.docs: pa.Array | None = None
+        self.digests: list[bytes] = []
+        self.pieces: Pieces | None = None
+
+
+_LAST_WORDS: Final = _LastWords()
+
+
+def _digests(docs: pa.Array) -> list[bytes]:
+    """XXH3-128 of each document's UTF-8 bytes (one C call per document)."""
+    data, offsets = utf8_buffers(docs)
+    view = data.data  # a memoryview of the bytes, no copy
+    digest = xxhash.xxh3_128_digest
+    bounds = offsets.tolist()
+    return [digest(view[a:b]) for a, b in itertools.pairwise(bounds)]
+
+
+def _kept_from(before: list[bytes], after: list[bytes]) -> np.ndarray | None:
+    """``keep`` such that the documents ``after`` are those of ``before`` where ``keep`` is True,
+    in order (by content digest); None when they are not. The k-th copy of a document in
+    ``after`` is taken as the k-th in ``before`` (a filter keeps or drops all copies alike)."""
+    if len(after) > len(before):
+        return None
+    seen: dict[bytes, int] = {}
+    where: dict[tuple[bytes, int], int] = {}
+    for i, d in enumerate(before):
+        k = seen.get(d, 0)
+        seen[d] = k + 1
+        where[d, k] = i
+    seen.clear()
+    at = np.empty(len(after), dtype=np.int64)
+    for j, d in enumerate(after):
+        k = seen.get(d, 0)
+        seen[d] = k + 1
+        at[j] = where.get((d, k), -1)
+    if len(at) and (at[0] < 0 or (np.diff(at) <= 0).any()):
+        return None
+    keep = np.zeros(len(before), dtype=bool)
+    keep[at] = True
+    return keep
+
 
 def _pieces(docs: pa.Array, split: pa.Array) -> Pieces:
     lengths = np.asarray(pc.list_value_length(split).to_numpy(zero_copy_only=False), dtype=np.int64)
@@ -69,8 +238,23 @@ def _pieces(docs: pa.Array, split: pa.Array) -> Pieces:
 
 
 def words(docs: pa.Array) -> Pieces:
-    """Whitespace-separated words of every document (Unicode whitespace)."""
+    """Whitespace-separated words of every document (Unicode whitespace).
+
+    The last batch's words are kept per thread: called again with the same documents, or with
+    some of them dropped (a filter in between), it reuses them instead of cutting the text again.
+    """
     docs = as_documents(docs)
+    last = _LAST_WORDS
+    if last.pieces is not None and docs is last.docs:
+        return last.pieces
+    digests = _digests(docs)
+    keep = _kept_from(last.digests, digests) if last.pieces is not None else None
+    pieces = last.pieces.subset(keep) if last.pieces is not None and keep is not None else _split_words(docs)
+    last.docs, last.digests, last.pieces = docs, digests, pieces
+    return pieces
+
+
+def _split_words(docs: pa.Array) -> Pieces:
     # pyarrow 26's utf8_split_whitespace sometimes keeps a trailing whitespace character of the
     # array's last value inside its last word (it looks past the end of the data buffer; seen
     # on about 1 call in 3 for the same input): a non-blank sentinel value after the documents
@@ -96,9 +280,10 @@ def repeated(pieces: Pieces) -> np.ndarray:
     """Per piece: True when an equal piece came earlier in the same document."""
     if len(pieces.text) == 0:
         return np.zeros(0, dtype=bool)
-    codes = np.asarray(pc.dictionary_encode(pieces.text).indices.to_numpy(zero_copy_only=False), dtype=np.int64)
-    keys = np.stack([pieces.doc, codes], axis=1)
-    _, first = np.unique(keys, axis=0, return_index=True)
+    distinct, codes = pieces.encoded()
+    # one int64 key per (document, piece): exact, since documents * distinct pieces < 2**63
+    keys = pieces.doc * np.int64(len(distinct)) + codes
+    _, first = np.unique(keys, return_index=True)
     seen_before = np.ones(len(codes), dtype=bool)
     seen_before[first] = False
     return seen_before

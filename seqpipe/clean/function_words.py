@@ -43,9 +43,10 @@ class FunctionWords(QualityFilter):
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: occurrences of the language's function words."""
         pieces = words(docs)
-        bare = pc.utf8_trim(pc.utf8_lower(pieces.text), characters="\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d")
+        distinct, codes = pieces.encoded()  # each distinct word is judged once
+        bare = pc.utf8_trim(pc.utf8_lower(distinct), characters="\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d")
         hit = pc.is_in(bare, value_set=pa.array(FUNCTION_WORDS[self.language], pa.large_string()))
-        flags = np.asarray(hit.to_numpy(zero_copy_only=False), dtype=np.float64)
+        flags = np.asarray(hit.to_numpy(zero_copy_only=False), dtype=np.float64)[codes]
         return pieces.per_document(flags).astype(np.int64)
 
     def keep(self, docs: pa.Array) -> np.ndarray:

@@ -3,15 +3,24 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import ClassVar
+from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float
-from seqpipe.clean._quality import QualityFilter, share
+from seqpipe.clean._quality import QualityFilter, classify, code_points, per_document_sum, share, utf8_buffers
 from seqpipe.clean.base import as_documents
+
+# per byte value: an ASCII letter (what \p{L} matches below U+0080); RE2's \s, which is only
+# tab, line feed, form feed, carriage return and space (RE2 syntax reference, "Perl classes")
+_ASCII_LETTER: Final = np.array([chr(b).isascii() and chr(b).isalpha() for b in range(256)], dtype=bool)
+_RE2_SPACE: Final = np.isin(np.arange(256), [9, 10, 12, 13, 32])
+
+
+def _is_letter(chars: pa.Array) -> pa.Array:
+    return pc.match_substring_regex(chars, r"^\p{L}$")
 
 
 @dataclass(frozen=True, slots=True)
@@ -22,7 +31,8 @@ class LetterShare(QualityFilter):
     Tables of numbers, dumps of symbols and markup score low. The default 0.5 is our own
     choice (common practice puts such a threshold between one half and four fifths); a
     document with no visible character scores 0 and is dropped. Counted with RE2 in pyarrow
-    compute (``\\p{L}`` and ``\\s``), one C pass per batch.
+    compute's rules (``\\p{L}``; ``\\s`` is ASCII whitespace but vertical tab): numpy counts over
+    the batch's UTF-8 bytes, and RE2 classifies each distinct non-ASCII code point once.
     """
 
     kind: ClassVar[str] = "letter_share"
@@ -34,11 +44,14 @@ class LetterShare(QualityFilter):
 
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: letters / non-whitespace characters."""
-        docs = as_documents(docs)
-        letters = pc.count_substring_regex(docs, r"\p{L}").to_numpy(zero_copy_only=False)
-        spaces = pc.count_substring_regex(docs, r"\s").to_numpy(zero_copy_only=False)
-        visible = pc.utf8_length(docs).to_numpy(zero_copy_only=False) - spaces
-        return share(np.asarray(letters, np.float64), np.asarray(visible, np.float64))
+        data, offsets = utf8_buffers(as_documents(docs))
+        starts = (data & 0xC0) != 0x80  # the first byte of each code point
+        letter = _ASCII_LETTER[data]
+        wide = np.flatnonzero(data >= 0xC0)  # first bytes of code points beyond ASCII
+        if len(wide):
+            letter[wide] = classify(code_points(data, wide), _is_letter)
+        visible = per_document_sum(starts & ~_RE2_SPACE[data], offsets)
+        return share(per_document_sum(letter, offsets).astype(np.float64), visible.astype(np.float64))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
         """Boolean mask: True for each document ``apply`` keeps."""

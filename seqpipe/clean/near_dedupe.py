@@ -10,9 +10,10 @@ candidates (probability ``1 - (1 - s**rows)**bands`` at similarity ``s``); a can
 estimated similarity (the share of equal values) reaches ``threshold`` with an earlier kept
 document is dropped, so the first document of each group in corpus order stays.
 
-Signatures are computed in the ingest tasks (numpy over the batch's UTF-8 bytes: no Python call
-per word); only the comparison of colliding documents runs in the driver, one Python step per
-such document.
+Signatures are computed in the ingest tasks (numpy over the batch: each distinct word's bytes
+are hashed once, shingles combine word hashes, and each hash function is a multiply-add over all
+shingles; no Python call per word); only the comparison of colliding documents runs in the
+driver, one Python step per such document.
 """
 
 from __future__ import annotations
@@ -24,39 +25,24 @@ import numpy as np
 import pyarrow as pa
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import words
+from seqpipe.clean._quality import mix64, utf8_buffers, words
 from seqpipe.clean.base import CleanStep, as_documents
 from seqpipe.errors import RecipeError
 
-# splitmix64 finalizer constants (the same as seqpipe.splits; Steele, Lea and Flood 2014)
-_GOLDEN: Final = np.uint64(0x9E3779B97F4A7C15)
-_MIX1: Final = np.uint64(0xBF58476D1CE4E5B9)
-_MIX2: Final = np.uint64(0x94D049BB133111EB)
+_GOLDEN: Final = np.uint64(0x9E3779B97F4A7C15)  # the splitmix64 increment (Steele, Lea and Flood 2014)
+_OFFSET_SEED: Final = 0x5EED_0FF5E7  # the offsets b_i come from another seed than the multipliers a_i
 _BYTE_BASE: Final = np.uint64(0x100000001B3)  # an odd multiplier for the byte polynomial (FNV's prime)
 _EMPTY: Final = np.uint32(0xFFFFFFFF)
 
 
-def _mix(x: np.ndarray) -> np.ndarray:
-    with np.errstate(over="ignore"):
-        x = x ^ (x >> np.uint64(30))
-        x = x * _MIX1
-        x = x ^ (x >> np.uint64(27))
-        x = x * _MIX2
-        out: np.ndarray = x ^ (x >> np.uint64(31))
-        return out
-
-
-def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
-    """A 64-bit hash of each word's UTF-8 bytes (a polynomial over the bytes, then mixed), and the
-    document of each word; computed with numpy over the whole batch."""
-    pieces = words(docs)
-    text = pieces.text
+def _byte_hashes(text: pa.Array) -> np.ndarray:
+    """A 64-bit hash of each value's UTF-8 bytes (a polynomial over the bytes, then mixed)."""
     n = len(text)
+    data, offsets = utf8_buffers(text)
     if n == 0:
-        return np.zeros(0, np.uint64), pieces.doc
-    offsets = np.frombuffer(text.buffers()[1], dtype=np.int64)[text.offset : text.offset + n + 1]
-    data = np.frombuffer(text.buffers()[2], dtype=np.uint8)[offsets[0] : offsets[-1]].astype(np.uint64)
-    starts = offsets[:-1] - offsets[0]
+        return np.zeros(0, np.uint64)
+    data = data.astype(np.uint64)
+    starts = offsets[:-1]
     lengths = np.diff(offsets)
     position = np.arange(len(data), dtype=np.int64) - np.repeat(starts, lengths)
     powers = (
@@ -64,8 +50,21 @@ def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     )
     with np.errstate(over="ignore"):
         terms = (data + np.uint64(1)) * powers[position]
-        sums = np.add.reduceat(terms, starts) if len(data) else np.zeros(n, np.uint64)
-    return _mix(sums + lengths.astype(np.uint64)), pieces.doc
+        sums = np.zeros(n, np.uint64)
+        filled = lengths > 0
+        if len(data):
+            sums[filled] = np.add.reduceat(terms, starts[filled])
+    return mix64(sums + lengths.astype(np.uint64))
+
+
+def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """A 64-bit hash of each word's UTF-8 bytes and the document of each word: each distinct
+    word of the batch is hashed once (numpy over its bytes), then looked up per word."""
+    pieces = words(docs)
+    if len(pieces.text) == 0:
+        return np.zeros(0, np.uint64), pieces.doc
+    distinct, codes = pieces.encoded()
+    return _byte_hashes(distinct)[codes], pieces.doc
 
 
 def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
@@ -87,19 +86,27 @@ def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
         for k in range(size):  # a loop over shingle positions, not over words
             inside = k < width
             value = word[np.minimum(starts + k, n - 1)]
-            acc = np.where(inside, _mix(acc * _BYTE_BASE + value), acc)
-    return acc, doc[starts]
+            acc = np.where(inside, acc * _BYTE_BASE + value, acc)
+    return mix64(acc + width.astype(np.uint64)), doc[starts]
 
 
 def seeds(count: int, seed: int) -> np.ndarray:
     """``count`` 64-bit seeds, one per hash function, from the step's ``seed``."""
     with np.errstate(over="ignore"):
         base = np.uint64(seed) * _GOLDEN + np.arange(1, count + 1, dtype=np.uint64) * _GOLDEN
-    return _mix(base)
+    return mix64(base)
 
 
 def signatures(docs: pa.Array, *, shingle: int, hashes: int, seed: int) -> np.ndarray:
-    """(documents, hashes) uint32 MinHash signatures; a document without words gets all 0xFFFFFFFF."""
+    """(documents, hashes) uint32 MinHash signatures; a document without words gets all 0xFFFFFFFF.
+
+    Hash function i maps a shingle's 64-bit hash x to the top 32 bits of ``a_i * x + b_i``
+    (mod 2**64; ``a_i`` odd, both from the seed): multiply-add-shift hashing (Dietzfelbinger,
+    Hagerup, Katajainen and Penttonen 1997, "A reliable randomized algorithm for the
+    closest-pair problem"). The top bits are a non-decreasing function of the 64-bit value, so
+    the minimum is taken over the 64-bit values and shifted once per document: two array passes
+    per hash function over the batch's shingles.
+    """
     docs = as_documents(docs)
     values, doc = _shingle_hashes(docs, shingle)
     out = np.full((len(docs), hashes), _EMPTY, dtype=np.uint32)
@@ -107,21 +114,41 @@ def signatures(docs: pa.Array, *, shingle: int, hashes: int, seed: int) -> np.nd
         return out
     present = np.unique(doc)
     starts = np.searchsorted(doc, present)
-    for i, s in enumerate(seeds(hashes, seed)):
-        mixed = (_mix(values ^ s) >> np.uint64(32)).astype(np.uint32)
-        out[present, i] = np.minimum.reduceat(mixed, starts)
+    multipliers = seeds(hashes, seed) | np.uint64(1)
+    offsets = seeds(hashes, seed ^ _OFFSET_SEED)
+    mixed = np.empty_like(values)
+    lowest = np.empty((hashes, len(present)), dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        for i in range(hashes):
+            np.multiply(values, multipliers[i], out=mixed)
+            np.add(mixed, offsets[i], out=mixed)
+            np.minimum.reduceat(mixed, starts, out=lowest[i])
+    out[present] = (lowest >> np.uint64(32)).astype(np.uint32).T
     return out
 
 
 def band_buckets(sig: np.ndarray, bands: int, rows: int) -> np.ndarray:
-    """(documents, bands) int64: documents with equal ids in a column agree on that whole band."""
+    """(documents, bands) int64: documents with equal ids in a column agree on that whole band.
+
+    Each band's ``rows`` values are folded into one 64-bit key (one sort of integers per band,
+    not of byte strings); every document is then checked to equal the first document of its
+    key, and a band where two different rows share a key is grouped by its rows instead.
+    """
     out = np.empty((len(sig), bands), dtype=np.int64)
     offset = 0
     for b in range(bands):
         block = np.ascontiguousarray(sig[:, b * rows : (b + 1) * rows])
-        keys = block.view(np.dtype((np.void, block.dtype.itemsize * rows))).ravel()
-        _, inverse = np.unique(keys, return_inverse=True)
-        out[:, b] = inverse.ravel() + offset
+        key = np.zeros(len(sig), dtype=np.uint64)
+        with np.errstate(over="ignore"):
+            for r in range(rows):
+                key = key * _GOLDEN + block[:, r].astype(np.uint64)
+        _, first, inverse = np.unique(key, return_index=True, return_inverse=True)
+        inverse = inverse.ravel()
+        if not np.array_equal(block, block[first[inverse]]):  # a key shared by different rows
+            keys = block.view(np.dtype((np.void, block.dtype.itemsize * rows))).ravel()
+            _, inverse = np.unique(keys, return_inverse=True)
+            inverse = inverse.ravel()
+        out[:, b] = inverse + offset
         offset += len(sig)
     return out
 

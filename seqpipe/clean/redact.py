@@ -27,7 +27,8 @@ Each match becomes its target's placeholder (``<email>``, ``<ip>``, ``<card>``, 
 A recipe with this step must list the placeholders in ``[vocabulary] reserved`` and set
 ``[tokenizer] literal_reserved = true`` so each placeholder is one id whatever the tokenizer
 (checked by :class:`seqpipe.recipe.Recipe`). Matching runs once per document (the ``regex``
-module, in C) and only on documents holding an ``@``, a ``:`` or a digit.
+module, in C) and only on documents that an RE2 pass over the whole batch finds holding a
+necessary part of some target (``_HINTS``).
 """
 
 from __future__ import annotations
@@ -85,6 +86,22 @@ _PHONE: Final = (
     r"(?![0-9A-Za-z_]|[.\-][0-9])"
 )
 _DATE: Final = regex.compile(r"[0-9]{4}([.\-])[0-9]{1,2}\1[0-9]{1,2}|[0-9]{1,2}([.\-])[0-9]{1,2}\2[0-9]{4}")
+
+# Per target, an RE2 pattern every match of the target's pattern contains (a necessary
+# condition, looser than the pattern): documents matching none of the chosen targets' hints
+# cannot change, so only the others go through the Python-level matching below.
+#   email: the "@" and the first character of the domain's first label;
+#   ip: IPv4 is four dotted decimal groups; every IPv6 form (with at least one group) has two
+#       colons with at most four hexadecimal digits between them;
+#   card: 13 digits with at most one space or dash between neighbours;
+#   phone: the three alternatives begin "+digit", "(digit" or hold digit, separator, 2-4 digits,
+#       separator, digit.
+_HINTS: Final[dict[str, str]] = {
+    "email": r"@[A-Za-z0-9]",
+    "ip": r"[0-9]\.[0-9]{1,3}\.[0-9]{1,3}\.[0-9]|:[0-9A-Fa-f]{0,4}:",
+    "card": r"[0-9](?:[ -]?[0-9]){12}",
+    "phone": r"\+[0-9]|\([0-9]|[0-9][ .\-][0-9]{2,4}[ .\-][0-9]",
+}
 
 _COMPILED: Final[dict[str, Any]] = {
     "email": regex.compile(_EMAIL),
@@ -172,7 +189,8 @@ class Redact(CleanStep):
         """Documents with every match replaced, and how many matches each target had."""
         docs = as_documents(docs)
         totals = dict.fromkeys(self.targets, 0)
-        mask = pc.fill_null(pc.match_substring_regex(docs, "[@:0-9]"), False)
+        hint = "|".join(_HINTS[t] for t in self.targets)
+        mask = pc.fill_null(pc.match_substring_regex(docs, hint), False)
         where = np.flatnonzero(mask.to_numpy(zero_copy_only=False))
         if not len(where):
             return docs, totals

@@ -3,14 +3,15 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import ClassVar
+from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
 from seqpipe.clean._quality import Pieces, QualityFilter, share, words
+
+_MULTIPLIER: Final = np.uint64(0x9E3779B97F4A7C15)  # odd, with bits spread over the whole word
 
 
 def covered_by_repeats(pieces: Pieces, n: int) -> np.ndarray:
@@ -19,20 +20,41 @@ def covered_by_repeats(pieces: Pieces, n: int) -> np.ndarray:
     covered = np.zeros(m, dtype=bool)
     if m < n:
         return covered
-    codes = np.asarray(pc.dictionary_encode(pieces.text).indices.to_numpy(zero_copy_only=False), dtype=np.int64)
+    codes = pieces.encoded()[1]
     starts = np.arange(m - n + 1)
     same_doc = pieces.doc[starts] == pieces.doc[starts + n - 1]  # docs are contiguous
     starts = starts[same_doc]
     if not len(starts):
         return covered
-    grams = np.stack([pieces.doc[starts], *(codes[starts + k] for k in range(n))], axis=1)
-    _, inverse, counts = np.unique(grams, axis=0, return_inverse=True, return_counts=True)
-    dup_starts = starts[counts[inverse.ravel()] > 1]
+    dup_starts = starts[_repeated_rows(pieces.doc[starts], codes, starts, n)]
     edges = np.zeros(m + 1, dtype=np.int64)  # +1 where a repeated n-gram starts, -1 after it ends
     np.add.at(edges, dup_starts, 1)
     np.add.at(edges, dup_starts + n, -1)
     covered = np.cumsum(edges[:m]) > 0
     return covered
+
+
+def _repeated_rows(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: int) -> np.ndarray:
+    """Per n-gram (document ``doc[i]``, words ``codes[starts[i]:starts[i] + n]``): True when an
+    equal n-gram of the same document exists. A 64-bit polynomial key per row finds the
+    candidates (equal rows have equal keys; most rows of real text have a key of their own), and
+    only the candidates' rows are compared exactly, so a collision costs time, never a result."""
+    with np.errstate(over="ignore"):
+        h = doc.astype(np.uint64)
+        for k in range(n):
+            h = h * _MULTIPLIER + codes[starts + k].astype(np.uint64)
+    ordered = np.sort(h)
+    shared = np.unique(ordered[1:][ordered[1:] == ordered[:-1]])  # keys held by more than one row
+    out = np.zeros(len(h), dtype=bool)
+    if not len(shared):
+        return out
+    where = np.minimum(np.searchsorted(shared, h), len(shared) - 1)
+    candidates = np.flatnonzero(shared[where] == h)
+    at = starts[candidates]
+    rows = np.stack([doc[candidates], *(codes[at + k] for k in range(n))], axis=1)
+    _, inverse, counts = np.unique(rows, axis=0, return_inverse=True, return_counts=True)
+    out[candidates] = counts[inverse.ravel()] > 1
+    return out
 
 
 @dataclass(frozen=True, slots=True)

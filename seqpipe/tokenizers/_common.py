@@ -59,6 +59,47 @@ def reserved_splitter(names: tuple[str, ...]) -> Any:
     return regex.compile(f"({alternatives})")
 
 
+def _split_at_names(
+    texts: pa.Array, holds: np.ndarray, names: tuple[str, ...]
+) -> tuple[pa.Array, np.ndarray, np.ndarray]:
+    """The text between names (fragments, in order) and, per item (a fragment or a name), its
+    document and its index into ``names`` (-1 for a fragment). Only the documents that hold a
+    name are split in Python; every other document is one fragment, taken as it is."""
+    splitter = reserved_splitter(names)
+    name_index = {n: i for i, n in enumerate(names)}
+    held = np.flatnonzero(holds)
+    held_fragments: list[str] = []
+    held_names: list[int] = []  # per item of the documents that hold a name
+    held_items = np.empty(len(held), dtype=np.int64)
+    for k, text in enumerate(texts.take(pa.array(held)).to_pylist()):
+        parts = splitter.split(text)
+        held_items[k] = len(parts)
+        for j, part in enumerate(parts):
+            held_names.append(name_index[part] if j % 2 else -1)
+            if not j % 2:
+                held_fragments.append(part)
+    per_doc = np.ones(len(texts), dtype=np.int64)
+    per_doc[held] = held_items
+    item_doc = np.repeat(np.arange(len(texts), dtype=np.int64), per_doc)
+    item_name = np.full(len(item_doc), -1, dtype=np.int64)
+    first = np.cumsum(per_doc) - per_doc
+    within = np.arange(int(held_items.sum()), dtype=np.int64) - np.repeat(
+        np.cumsum(held_items) - held_items, held_items
+    )
+    item_name[np.repeat(first[held], held_items) + within] = held_names
+    # fragments in item order: whole documents without a name, then the held ones' pieces
+    frag_doc = item_doc[item_name < 0]
+    from_held = holds[frag_doc]
+    order = np.empty(len(frag_doc), dtype=np.int64)
+    whole = int((~holds).sum())
+    order[~from_held] = np.arange(whole, dtype=np.int64)
+    order[from_held] = whole + np.arange(len(held_fragments), dtype=np.int64)
+    pool = pa.concat_arrays(
+        [texts.filter(pa.array(~holds)).cast(pa.large_string()), pa.array(held_fragments, pa.large_string())]
+    )
+    return pool.take(pa.array(order)), item_doc, item_name
+
+
 def segment_with_reserved(segment: Callable[[pa.Array], Segments], texts: pa.Array, names: tuple[str, ...]) -> Segments:
     """``segment(texts)``, except that each literal occurrence of a name in ``names`` is one
     piece whose key is the name's UTF-8 bytes (the encoder maps it to its reserved id).
@@ -75,33 +116,20 @@ def segment_with_reserved(segment: Callable[[pa.Array], Segments], texts: pa.Arr
         holds |= np.asarray(pc.match_substring(texts, name).fill_null(False).to_numpy(zero_copy_only=False), bool)
     if not holds.any():
         return segment(texts)
-    splitter = reserved_splitter(names)
-    fragments: list[str] = []  # text between names, in order
-    item_doc: list[int] = []  # per item (fragment or name): its document
-    item_name: list[int] = []  # per item: index into names, or -1 for a fragment
-    name_index = {n: i for i, n in enumerate(names)}
-    for d, text in enumerate(texts.to_pylist()):
-        parts = splitter.split(text) if holds[d] else [text]
-        for j, part in enumerate(parts):
-            item_doc.append(d)
-            if j % 2:
-                item_name.append(name_index[part])
-            else:
-                item_name.append(-1)
-                fragments.append(part)
-    plain = segment(pa.array(fragments, pa.large_string()))
-    is_name = np.asarray(item_name, dtype=np.int64) >= 0
+    fragments, item_doc, item_name = _split_at_names(texts, holds, names)
+    plain = segment(fragments)
+    is_name = item_name >= 0
     per_item = np.ones(len(item_name), dtype=np.int64)
     per_item[~is_name] = plain.doc_lengths
     from_fragment = np.repeat(~is_name, per_item)
     codes = np.empty(int(per_item.sum()), dtype=np.int32)
     codes[from_fragment] = plain.codes
     # only the names that occur become keys (keys are the batch's distinct pieces)
-    used, slot = np.unique(np.asarray(item_name, dtype=np.int64)[is_name], return_inverse=True)
+    used, slot = np.unique(item_name[is_name], return_inverse=True)
     codes[~from_fragment] = len(plain.keys) + slot.astype(np.int32)
     named = pa.array([names[int(i)].encode() for i in used], pa.binary())
     keys = pa.concat_arrays([plain.keys.cast(pa.binary()), named])
-    lengths = np.bincount(np.asarray(item_doc, dtype=np.int64), weights=per_item, minlength=len(texts))
+    lengths = np.bincount(item_doc, weights=per_item, minlength=len(texts))
     return Segments(keys, codes, lengths.astype(np.int64))
 
 
