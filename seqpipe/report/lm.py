@@ -25,9 +25,11 @@ Perplexity is ``exp`` of the mean negative log-likelihood per event. Every looku
 is a ``np.searchsorted`` into sorted packed keys.
 
 Memory: a split is processed in groups of whole documents of about ``CHUNK_TOKENS`` tokens
-(:func:`chunks`). Fitting keeps only the distinct train trigrams with their counts, merged
-chunk by chunk; evaluation sums log-probabilities chunk by chunk. The per-event arrays
-(contexts, packed keys, probabilities: some 60 bytes per event) exist for one chunk at a time.
+(:func:`chunks`). Fitting never holds a table of all train trigrams: each group's distinct
+trigrams are spilled to disk in hash partitions, and the partitions yield the counts at the
+validation/test keys only (:meth:`CountTables.fit_spilled`). Evaluation sums log-probabilities
+over slices of ``EVAL_EVENTS`` events, so its per-event arrays (contexts, packed keys, looked-up
+counts, probabilities: some 150 bytes per event) exist for one slice at a time.
 """
 
 from __future__ import annotations
@@ -60,6 +62,7 @@ class Events:
 
 
 CHUNK_TOKENS: Final = corpus.CHUNK_TOKENS  # tokens per group of documents: bounds the per-event temporaries
+EVAL_EVENTS: Final = 1 << 18  # events per evaluation slice
 
 
 def chunks(split: SplitTokens, size: int = CHUNK_TOKENS) -> Iterator[SplitTokens]:
@@ -461,11 +464,13 @@ def evaluate(
     total = dict.fromkeys(MODELS, 0.0)
     n = 0
     for part in parts:
-        if len(part) == 0:
-            continue
         n += len(part)
-        for model, loss in _chunk_losses(t, part, space, k, d).items():
-            total[model] += loss
+        for lo in range(0, len(part), EVAL_EVENTS):
+            piece = Events(
+                h2=part.h2[lo : lo + EVAL_EVENTS], h1=part.h1[lo : lo + EVAL_EVENTS], w=part.w[lo : lo + EVAL_EVENTS]
+            )
+            for model, loss in _chunk_losses(t, piece, space, k, d).items():
+                total[model] += loss
     out: dict[str, float | None] = {"events": n}
     for model in MODELS:
         mean = total[model] / n if n else float("inf")
