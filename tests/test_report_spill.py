@@ -102,7 +102,8 @@ def test_partition_count_covers_the_rows() -> None:
 
 
 def test_report_with_tiny_partitions_equals_the_default(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    """The whole report does not depend on the partition size, and leaves no temporary file behind."""
+    """The whole report does not depend on the partition size or the evaluation slice, and leaves no
+    temporary file behind."""
     rng = np.random.default_rng(11)
     docs = {
         name: [[WORDS[i] for i in rng.integers(0, len(WORDS), size=rng.integers(0, 12))] for _ in range(n)]
@@ -112,7 +113,13 @@ def test_report_with_tiny_partitions_equals_the_default(tmp_path: Path, monkeypa
     monkeypatch.setattr("tempfile.tempdir", str(tmp_path))
     default = corpus_report(ds, progress=False, top_k=5)
     monkeypatch.setattr(spill, "PART_ROWS", 7)
+    monkeypatch.setattr(lm, "EVAL_EVENTS", 5)
     tiny = corpus_report(ds, progress=False, top_k=5)
     assert tiny["top_ngrams"] == default["top_ngrams"]
-    assert tiny["perplexity"] == default["perplexity"]
+    assert tiny["perplexity"]["train_events"] == default["perplexity"]["train_events"]
+    for name in ("validation", "test"):
+        want, got = default["perplexity"]["splits"][name], tiny["perplexity"]["splits"][name]
+        assert got["events"] == want["events"] > 5
+        for model in lm.MODELS:
+            assert got[model] == pytest.approx(want[model], rel=1e-12)
     assert list(tmp_path.iterdir()) == []
