@@ -12,6 +12,7 @@ from hypothesis import strategies as st
 from seqpipe.errors import SeqpipeError
 from seqpipe.report.ngrams import (
     count_ngrams,
+    distinct_sorted,
     filler,
     key_bits,
     pack,
@@ -175,3 +176,11 @@ def test_merge_counts_equals_counting_the_joined_keys() -> None:
         want, _, starts = runs(joined[order])
         want_counts = np.add.reduceat(np.concatenate([ca, cb])[order], starts) if len(want) else np.zeros(0, int)
         assert keys.tolist() == want.tolist() and counts.tolist() == want_counts.tolist()
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.lists(st.integers(0, 50), max_size=60))
+def test_distinct_sorted_equals_the_distinct_runs(values: list[int]) -> None:
+    """distinct_sorted of a sorted array is its distinct values in order (as numpy's unique gives them)."""
+    keys = np.sort(np.array(values, dtype=np.uint64))
+    assert distinct_sorted(keys).tolist() == np.unique(keys).tolist()

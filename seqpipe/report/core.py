@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 import sys
+import tempfile
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -15,9 +16,9 @@ import numpy as np
 from seqpipe._parse import parse_bool, parse_float, parse_int
 from seqpipe.errors import RecipeError, SeqpipeError
 from seqpipe.metrics import loss_figures
-from seqpipe.report import leakage, lm, near, stats
+from seqpipe.report import leakage, lm, near, spill, stats
 from seqpipe.report.corpus import DatasetLike, Roles, SplitShape, SplitTokens, read_chunks, scan_split, stream_dtype
-from seqpipe.report.ngrams import NgramCounts, count_ngrams, key_bits, max_order, merge_counts
+from seqpipe.report.ngrams import count_ngrams, key_bits, max_order, unpack
 
 REPORT_FORMAT: Final = "seqpipe.report/2"
 TRAIN: Final = "train"
@@ -86,19 +87,25 @@ class _Source:
         return read_chunks(self.dataset, name, self.roles, dtype=self.dtype)
 
 
-def _top_ngrams(source: _Source, bits: int, top_k: int) -> dict[str, Any]:
+def _top_ngrams(source: _Source, bits: int, top_k: int, workdir: Path, rows: int) -> dict[str, Any]:
+    """The ``top_k`` most frequent train n-grams of each order (ties in id order): each group's counts
+    are spilled to disk by n-gram hash (see :mod:`seqpipe.report.spill`), then counted partition by
+    partition; ``rows`` (the split's content tokens) sizes the partitions."""
     orders = [n for n in TOP_ORDERS if n <= max_order(bits)]
-    tables = {n: (np.zeros(0, np.uint64), np.zeros(0, np.int64)) for n in orders}
+    parts = spill.partition_count(rows)
+    spills = {n: spill.Spill(workdir, f"top-{n}", parts) for n in orders}
     for chunk in source.chunks(TRAIN):
         found = count_ngrams(chunk.ids, orders, bits=bits, starts=chunk.content_starts, lengths=chunk.content_lengths)
         for n, part in found.items():
-            tables[n] = merge_counts(*tables[n], part.keys, part.counts)
+            spills[n].add(part.keys, part.counts, part.keys)
+        del found
     out: dict[str, Any] = {}
-    for n, (keys, counts) in tables.items():
-        rows, freq = NgramCounts(n=n, bits=bits, keys=keys, counts=counts).most_common(top_k)
+    for n, table in spills.items():
+        keys, freq = spill.top_of_spill(table, top_k)
+        rows_ = unpack(keys, n, bits)
         out[str(n)] = [
             {"tokens": [source.dataset.encoder.token_text(int(i)) for i in row], "ids": row.tolist(), "count": int(c)}
-            for row, c in zip(rows, freq, strict=True)
+            for row, c in zip(rows_, freq, strict=True)
         ]
     return out
 
@@ -159,18 +166,21 @@ def collect(
                 "The dataset has no 'train' split: coverage, n-grams, leakage and perplexities are not reported."
             )
         else:
-            report["top_ngrams"] = _top_ngrams(source, bits, top_k)
-            if max_order(bits) < 3:
-                notes.append(
-                    "The vocabulary is too large to pack trigrams into 64-bit keys: "
-                    "no trigram counts and no perplexities."
-                )
-            bar.update()
-            report["leakage"] = _leakage(source, others, ngram_n, bar)
-            notes += _sampling_notes(report["leakage"])
-            if max_order(bits) >= 3:
-                report["perplexity"] = _perplexity(source, shapes, others, bits, add_k, kn_discount, bar)
-                notes += _add_per_text(report["perplexity"], {name: _text_sizes(dataset, name) for name in others})
+            with tempfile.TemporaryDirectory(prefix="seqpipe-report-") as tmp:
+                rows = int(shapes[TRAIN].content_lengths.sum()) + shapes[TRAIN].num_documents
+                report["top_ngrams"] = _top_ngrams(source, bits, top_k, Path(tmp), rows)
+                if max_order(bits) < 3:
+                    notes.append(
+                        "The vocabulary is too large to pack trigrams into 64-bit keys: "
+                        "no trigram counts and no perplexities."
+                    )
+                bar.update()
+                report["leakage"] = _leakage(source, others, ngram_n, bar)
+                notes += _sampling_notes(report["leakage"])
+                if max_order(bits) >= 3:
+                    spilled = _Fit(source, shapes, Path(tmp), rows)
+                    report["perplexity"] = _perplexity(spilled, others, bits, add_k, kn_discount, bar)
+                    notes += _add_per_text(report["perplexity"], {name: _text_sizes(dataset, name) for name in others})
     report["notes"] = notes
     return report, curves
 
@@ -237,13 +247,28 @@ def _text_hashes(dataset: DatasetLike, name: str) -> Any:
     return docs.column("hash").combine_chunks() if "hash" in docs.column_names else None
 
 
-def _perplexity(
-    source: _Source, shapes: dict[str, SplitShape], others: list[str], bits: int, add_k: float, d: float, bar: Any
-) -> dict[str, Any]:
+@dataclass(frozen=True, slots=True)
+class _Fit:
+    """What fitting the baseline models reads: the splits, their shapes, a directory for the train
+    counts spilled to disk, and about how many train events there are (sizes the partitions)."""
+
+    source: _Source
+    shapes: dict[str, SplitShape]
+    workdir: Path
+    rows: int
+
+
+def _perplexity(fit: _Fit, others: list[str], bits: int, add_k: float, d: float, bar: Any) -> dict[str, Any]:
+    source, shapes = fit.source, fit.shapes
     roles = source.roles
     space = lm.event_space(roles)
+    queries = lm.query_keys((lm.events(c, roles) for name in others for c in source.chunks(name)), bits)
     train_events = (lm.events(c, roles) for c in source.chunks(TRAIN))
-    tables = lm.CountTables.fit_chunks(train_events, bits, roles.vocab_size + 1)
+    partitions = spill.partition_count(fit.rows)
+    tables = lm.CountTables.fit_spilled(
+        train_events, queries, bits, roles.vocab_size + 1, workdir=fit.workdir, partitions=partitions
+    )
+    del queries
     bar.update()
     begin = "the begin token" if roles.begin is not None else "a virtual begin id (no begin token)"
     ended = sum(int(shapes[n].has_end.sum()) for n in others)

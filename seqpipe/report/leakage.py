@@ -30,7 +30,7 @@ import pyarrow.compute as pc
 import xxhash
 
 from seqpipe.report.corpus import SplitTokens
-from seqpipe.report.ngrams import runs, window_hashes
+from seqpipe.report.ngrams import distinct_sorted, runs, window_hashes
 
 MAX_EXAMPLES: Final = 5
 EXAMPLE_CHARS: Final = 120
@@ -204,9 +204,10 @@ class WindowSet:
     def add(self, hashes: np.ndarray) -> None:
         new = self.sampled(hashes)
         new.sort()
-        joined = np.concatenate([self.keys, runs(new)[0]])
+        joined = np.concatenate([self.keys, distinct_sorted(new)])
+        del new
         joined.sort(kind="stable")  # two sorted runs: a merge
-        self.keys = runs(joined)[0]
+        self.keys = distinct_sorted(joined)
         while len(self.keys) > self.cap:
             self.every *= 2
             self.keys = self.keys[: int(np.searchsorted(self.keys, np.uint64(2**64 // self.every)))]

@@ -25,9 +25,11 @@ Perplexity is ``exp`` of the mean negative log-likelihood per event. Every looku
 is a ``np.searchsorted`` into sorted packed keys.
 
 Memory: a split is processed in groups of whole documents of about ``CHUNK_TOKENS`` tokens
-(:func:`chunks`). Fitting keeps only the distinct train trigrams with their counts, merged
-chunk by chunk; evaluation sums log-probabilities chunk by chunk. The per-event arrays
-(contexts, packed keys, probabilities: some 60 bytes per event) exist for one chunk at a time.
+(:func:`chunks`). Fitting never holds a table of all train trigrams: each group's distinct
+trigrams are spilled to disk in hash partitions, and the partitions yield the counts at the
+validation/test keys only (:meth:`CountTables.fit_spilled`). Evaluation sums log-probabilities
+over slices of ``EVAL_EVENTS`` events, so its per-event arrays (contexts, packed keys, looked-up
+counts, probabilities: some 150 bytes per event) exist for one slice at a time.
 """
 
 from __future__ import annotations
@@ -36,13 +38,15 @@ import dataclasses
 import itertools
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
-from typing import Final
+from pathlib import Path
+from typing import Any, Final
 
 import numpy as np
 
 from seqpipe.report import corpus
 from seqpipe.report.corpus import Roles, SplitTokens
 from seqpipe.report.ngrams import filler, lookup, merge_counts, pack, positions, runs, take
+from seqpipe.report.spill import Spill, by_partition
 
 
 @dataclass(frozen=True, slots=True)
@@ -58,6 +62,7 @@ class Events:
 
 
 CHUNK_TOKENS: Final = corpus.CHUNK_TOKENS  # tokens per group of documents: bounds the per-event temporaries
+EVAL_EVENTS: Final = 1 << 18  # events per evaluation slice
 
 
 def chunks(split: SplitTokens, size: int = CHUNK_TOKENS) -> Iterator[SplitTokens]:
@@ -120,7 +125,8 @@ def events(split: SplitTokens, roles: Roles) -> Events:
 
 @dataclass(frozen=True, slots=True)
 class CountTables:
-    """Sorted packed keys of the train events' n-grams and the counts the models need."""
+    """Sorted packed keys of the train events' n-grams and the counts the models need (from
+    :meth:`fit_spilled`: only at the keys evaluation looks up, every key's figure exact)."""
 
     bits: int
     n_events: int
@@ -156,6 +162,49 @@ class CountTables:
             new, new_c, _ = runs(keys)
             tri, tri_c = _merge_counts(tri, tri_c, new, new_c)
         return cls._from_trigrams(tri, tri_c, bits, n_ids)
+
+    @classmethod
+    def fit_spilled(
+        cls, parts: Iterable[Events], queries: np.ndarray, bits: int, n_ids: int, *, workdir: Path, partitions: int
+    ) -> CountTables:
+        """Tables that equal :meth:`fit_chunks`'s at every trigram key of ``queries`` (sorted, distinct:
+        see :func:`query_keys`), at their contexts and suffixes, and at every id; other keys are absent.
+
+        No table of every train trigram is held: each part's distinct trigrams are spilled to
+        ``partitions`` files under ``workdir`` by context ``(h2, h1)``; each file, counted on its own,
+        gives the trigram and context figures and spills its distinct trigrams again by suffix
+        ``(h1, w)``, whose files give the bigram, ``h1`` and unigram figures (see :mod:`seqpipe.report.spill`)."""
+        by_ctx = Spill(workdir, "lm-context", partitions)
+        for ev in parts:
+            keys = pack([ev.h2, ev.h1, ev.w], bits)
+            keys.sort()
+            new, new_c, _ = runs(keys)
+            del keys
+            by_ctx.add(new, new_c, new >> np.uint64(bits))
+        by_bi = Spill(workdir, "lm-suffix", partitions)
+        n_events, tri_counts, ctx_keys, ctx_counts, ctx_types = _context_pass(by_ctx, by_bi, queries, bits)
+        for part in range(partitions):
+            by_ctx.path(part).unlink(missing_ok=True)
+        b = _bigram_pass(by_bi, queries, bits, n_ids)
+        return cls(
+            bits=bits,
+            n_events=n_events,
+            tri_keys=queries,
+            tri_counts=tri_counts,
+            ctx_keys=ctx_keys,
+            ctx_counts=ctx_counts,
+            ctx_types=ctx_types,
+            bi_keys=b["bi_keys"],
+            bi_counts=b["bi_counts"],
+            bi_left=b["bi_left"],
+            h1_keys=np.arange(n_ids, dtype=np.uint64),  # every id: the h1 figures are indexed by id
+            h1_counts=b["h1_counts"],
+            h1_types=b["h1_types"],
+            h1_left=b["h1_left"],
+            uni_counts=b["uni_counts"],
+            uni_left=b["uni_left"],
+            bigram_types=b["bigram_types"],
+        )
 
     @classmethod
     def _from_trigrams(cls, tri: np.ndarray, tri_c: np.ndarray, bits: int, n_ids: int) -> CountTables:
@@ -196,6 +245,95 @@ class CountTables:
             uni_left=np.bincount(w_of_bi, minlength=n_ids).astype(np.int64),
             bigram_types=len(bi),
         )
+
+
+@dataclass(frozen=True, slots=True)
+class _Queries:
+    """Sorted distinct keys looked up partition by partition: their indexes ordered by the
+    partition of their group key, and each partition's slice of that order."""
+
+    keys: np.ndarray
+    order: np.ndarray
+    edges: np.ndarray
+
+    @classmethod
+    def of(cls, keys: np.ndarray, group: np.ndarray, partitions: int) -> _Queries:
+        order, edges = by_partition(group, partitions)
+        return cls(keys=keys, order=order, edges=edges)
+
+    def gather(self, part: int, table_keys: np.ndarray, tables: list[np.ndarray], out: list[np.ndarray]) -> None:
+        """``out[i][j] = tables[i]`` at query ``j``'s key, for the queries of partition ``part``
+        (0 where ``table_keys`` lacks it); each query is in one partition, so this sets it once."""
+        idx = self.order[self.edges[part] : self.edges[part + 1]]
+        pos = positions(table_keys, self.keys[idx])
+        for table, dest in zip(tables, out, strict=True):
+            dest[idx] = take(table, pos)
+
+
+def query_keys(parts: Iterable[Events], bits: int) -> np.ndarray:
+    """Sorted distinct trigram keys of the events of every part: the keys evaluation looks up."""
+    out = np.zeros(0, np.uint64)
+    for ev in parts:
+        keys = pack([ev.h2, ev.h1, ev.w], bits)
+        keys.sort()
+        joined = np.concatenate([out, runs(keys)[0]])
+        joined.sort(kind="stable")  # two sorted runs: a merge
+        out = runs(joined)[0]
+    return out
+
+
+def _context_pass(
+    by_ctx: Spill, by_bi: Spill, queries: np.ndarray, bits: int
+) -> tuple[int, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """From train trigrams spilled by context ``(h2, h1)``: the number of events, the trigram counts at
+    ``queries``, the queries' contexts with ``c(h2 h1)`` and ``N1+(h2 h1 .)``; spills each distinct
+    trigram's suffix ``(h1, w)`` with the trigram's count into ``by_bi`` (one row per trigram)."""
+    shift = np.uint64(bits)
+    pair = np.uint64(filler(2 * bits))
+    ctx_keys = runs(queries >> shift)[0]
+    tri_q = _Queries.of(queries, queries >> shift, by_ctx.parts)
+    ctx_q = _Queries.of(ctx_keys, ctx_keys, by_ctx.parts)
+    tri_counts = np.zeros(len(queries), np.int64)
+    ctx_counts, ctx_types = np.zeros(len(ctx_keys), np.int64), np.zeros(len(ctx_keys), np.int64)
+    n_events = 0
+    for part in range(by_ctx.parts):
+        tri, tri_c, _ = by_ctx.totals(part)
+        n_events += int(tri_c.sum())
+        suffix = tri & pair
+        by_bi.add(suffix, tri_c, suffix)  # one row per distinct trigram, keyed by its suffix
+        del suffix
+        tri_q.gather(part, tri, [tri_c], [tri_counts])
+        ctx, types, starts = runs(tri >> shift)
+        ctx_c = np.add.reduceat(tri_c, starts) if len(ctx) else tri_c
+        ctx_q.gather(part, ctx, [ctx_c, types], [ctx_counts, ctx_types])
+    return n_events, tri_counts, ctx_keys, ctx_counts, ctx_types
+
+
+def _bigram_pass(by_bi: Spill, queries: np.ndarray, bits: int, n_ids: int) -> dict[str, Any]:
+    """From distinct train trigrams spilled by suffix ``(h1, w)``: the bigram figures at the queries'
+    suffixes, and the per-id figures (arrays indexed by id) of ``h1`` contexts and unigrams."""
+    shift = np.uint64(bits)
+    bi_keys = np.unique(queries & np.uint64(filler(2 * bits)))
+    bi_q = _Queries.of(bi_keys, bi_keys, by_bi.parts)
+    out: dict[str, Any] = {"bi_keys": bi_keys, "bi_counts": np.zeros(len(bi_keys), np.int64)}
+    out["bi_left"] = np.zeros(len(bi_keys), np.int64)
+    for name in ("h1_counts", "h1_types", "h1_left", "uni_counts", "uni_left"):
+        out[name] = np.zeros(n_ids, np.int64)
+    out["bigram_types"] = 0
+    for part in range(by_bi.parts):
+        # rows are distinct trigrams, so the rows of one bigram number its distinct h2: N1+(. h1 w)
+        bi, bi_c, bi_left = by_bi.totals(part)
+        bi_q.gather(part, bi, [bi_c, bi_left], [out["bi_counts"], out["bi_left"]])
+        h1 = (bi >> shift).view(np.int64)
+        w = (bi & np.uint64(filler(bits))).view(np.int64)
+        # float weights are exact for integer sums below 2**53
+        out["h1_counts"] += np.bincount(h1, weights=bi_c, minlength=n_ids).astype(np.int64)
+        out["h1_types"] += np.bincount(h1, minlength=n_ids)
+        out["h1_left"] += np.bincount(h1, weights=bi_left, minlength=n_ids).astype(np.int64)
+        out["uni_counts"] += np.bincount(w, weights=bi_c, minlength=n_ids).astype(np.int64)
+        out["uni_left"] += np.bincount(w, minlength=n_ids)
+        out["bigram_types"] += len(bi)
+    return out
 
 
 def _merge_counts(
@@ -326,11 +464,13 @@ def evaluate(
     total = dict.fromkeys(MODELS, 0.0)
     n = 0
     for part in parts:
-        if len(part) == 0:
-            continue
         n += len(part)
-        for model, loss in _chunk_losses(t, part, space, k, d).items():
-            total[model] += loss
+        for lo in range(0, len(part), EVAL_EVENTS):
+            piece = Events(
+                h2=part.h2[lo : lo + EVAL_EVENTS], h1=part.h1[lo : lo + EVAL_EVENTS], w=part.w[lo : lo + EVAL_EVENTS]
+            )
+            for model, loss in _chunk_losses(t, piece, space, k, d).items():
+                total[model] += loss
     out: dict[str, float | None] = {"events": n}
     for model in MODELS:
         mean = total[model] / n if n else float("inf")

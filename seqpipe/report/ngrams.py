@@ -84,6 +84,17 @@ def runs(sorted_keys: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return sorted_keys[starts], counts, starts
 
 
+def distinct_sorted(sorted_keys: np.ndarray) -> np.ndarray:
+    """Distinct values of a sorted array (:func:`runs` without the counts and starts it allocates)."""
+    if len(sorted_keys) == 0:
+        return sorted_keys[:0]
+    flags = np.empty(len(sorted_keys), dtype=bool)
+    flags[0] = True
+    np.not_equal(sorted_keys[1:], sorted_keys[:-1], out=flags[1:])
+    out: np.ndarray = sorted_keys[flags]
+    return out
+
+
 def positions(sorted_keys: np.ndarray, query: np.ndarray) -> np.ndarray:
     """Index of each query in ``sorted_keys``, or -1 where it is absent.
 
