@@ -805,8 +805,8 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
     chunks = [read_shard(Path(p))[a:b] for p, a, b in task.pieces]
     ids = np.concatenate(chunks).astype(task.dtype, copy=False) if chunks else np.zeros(0, task.dtype)
     target = Path(task.path)
-    want = hash_array(ids)
     if target.exists():  # left by an interrupted run of the same build: keep it if it checks out
+        want = hash_array(ids)
         try:
             old = read_shard(target, dtype=np.dtype(task.dtype), expected_tokens=len(ids))
             compressed = _is_compressed(target)
