@@ -477,7 +477,7 @@ def _input_files(
     skipped: dict[str, str] = {}
     parents: dict[str, str] = {}  # each directory resolved once, not each file's path
     for si, source in enumerate(recipe.sources):
-        resolved = source.resolve_all(recipe.root)
+        resolved = source.resolve_all(recipe.root, as_str=True)
         for rel, what in resolved.skipped:
             skipped.setdefault(rel, what)
         for f, name in zip(resolved.files, resolved.names, strict=True):
@@ -503,8 +503,8 @@ def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[
         st = os.lstat(f)
     except OSError:
         return identity(f), None  # the stamp asked later reports the error
-    if stat.S_ISLNK(st.st_mode):
-        return identity(f), None
+    if stat.S_ISLNK(st.st_mode):  # as a str, so it equals the same file's name found directly
+        return os.fspath(identity(f)), None
     head, name = os.path.split(os.fspath(f))
     real = parents.get(head)
     if real is None:
