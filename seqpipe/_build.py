@@ -505,12 +505,12 @@ def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[
         return identity(f), None  # the stamp asked later reports the error
     if stat.S_ISLNK(st.st_mode):  # as a str, so it equals the same file's name found directly
         return os.fspath(identity(f)), None
-    head, name = os.path.split(os.fspath(f))
+    head, name = os.path.split(f)
     real = parents.get(head)
-    if real is None:
-        real = parents[head] = os.path.realpath(head or ".")
+    if real is None:  # with its separator, so each file's name is one concatenation
+        real = parents[head] = os.path.join(os.path.realpath(head or "."), "")
     # a str never equal to a URI (those start with a scheme)
-    return os.path.join(real, name), [st.st_size, st.st_mtime_ns, st.st_ino]
+    return real + name, [st.st_size, st.st_mtime_ns, st.st_ino]
 
 
 def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None) -> Plan:

@@ -91,7 +91,7 @@ _MOUNTS: dict[tuple[str, str], Mount] = {}
 
 def is_uri(path: object) -> bool:
     """True for a ``str`` that starts with ``scheme://`` (a ``Path`` is always local)."""
-    return isinstance(path, str) and _URI.match(path) is not None
+    return isinstance(path, str) and "://" in path and _URI.match(path) is not None
 
 
 def parse_uri(uri: str) -> Uri:
