@@ -561,6 +561,10 @@ def _size(f: Path | str, stamp: tuple[int, ...] | None) -> int:
     return stamp[0] if stamp is not None else file_size(f)
 
 
+WHOLE_FILE: Final = [[0, None]]  # the stored cuts of an input read whole
+WHOLE_PART: Final = Part(0, None)
+
+
 class _PlanCache:
     """Each input's parts (``Source.plan``), stored beside the input hashes by content hash and
     what the cuts depend on (the source's settings, ``part_bytes``): a rebuild then plans no
@@ -582,6 +586,8 @@ class _PlanCache:
         name = f"{file_hash}.{self.settings[source_index]}"
         self.used.add(name)
         got = self.stored.get(name)
+        if got == WHOLE_FILE:  # most small inputs: one shared part, not a new one per input
+            return [WHOLE_PART]
         if isinstance(got, list) and got and all(isinstance(p, list) and len(p) == 2 for p in got):
             return [Part(int(a or 0), None if b is None else int(b)) for a, b in got]
         parts = self.recipe.sources[source_index].plan(f, self.part_bytes)

@@ -76,11 +76,14 @@ HASH_TYPE: Final = pa.binary(16)
 def part_key(recipe: Recipe, source_index: int, members: Sequence[tuple[str, Any]]) -> str:
     """Fingerprint of everything an ingested part depends on (not vocab, splits or shards):
     ``members`` gives each of its inputs' hash and the source's part of it, in reading order."""
+    from seqpipe.sources.base import Part
+
     return hash_json(
         {
             "format": PART_FORMAT,
             "source": to_plain(recipe.sources[source_index]),
-            "members": [[h, _plain_part(p)] for h, p in members],
+            # the common start/stop kind inline: a part of many small files lists each
+            "members": [[h, [p.start, p.stop] if type(p) is Part else _plain_part(p)] for h, p in members],
             "clean": [to_plain(s) for s in recipe.clean],
             "tokenizer": to_plain(recipe.tokenizer),
             # Unicode tables and the libraries that apply them: an upgrade must not reuse parts
