@@ -34,7 +34,7 @@ import posixpath
 from pathlib import Path, PurePosixPath
 from typing import Any, Final
 
-from seqpipe._hashing import hash_json
+from seqpipe._hashing import canonical_json, hash_bytes, hash_json
 from seqpipe.errors import ManifestError, UnsafePathError
 from seqpipe.formats import ENVIRONMENT_KEYS
 
@@ -63,14 +63,29 @@ TOP_KEYS: Final = (
 )
 SHARD_KEYS: Final = ("path", "tokens", "documents", "first_token", "bytes", "hash", "token_hash")
 
+_ESCAPE: Final = json.encoder.encode_basestring_ascii  # JSON string text, quotes included
+
 
 def seal(body: dict[str, Any]) -> dict[str, Any]:
     """Add ``fingerprint`` and ``manifest_hash`` to a manifest body."""
     core = {k: v for k, v in body.items() if k not in ("fingerprint", "manifest_hash")}
     out = dict(core)
-    out["fingerprint"] = hash_json(core)
-    out["manifest_hash"] = hash_json(out)
+    if any(type(k) is not str for k in core):
+        out["fingerprint"] = hash_json(core)
+        out["manifest_hash"] = hash_json(out)
+        return out
+    # both hashes are of canonical JSON that differs in one top-level key: each value is
+    # serialized once and the two texts joined from the pieces (a manifest lists every input)
+    pieces = {k: canonical_json(v) for k, v in core.items()}
+    out["fingerprint"] = hash_bytes(_joined(pieces))
+    pieces["fingerprint"] = canonical_json(out["fingerprint"])
+    out["manifest_hash"] = hash_bytes(_joined(pieces))
     return out
+
+
+def _joined(pieces: dict[str, str]) -> bytes:
+    """The canonical JSON of an object from its values' canonical JSON (``_hashing.canonical_json``)."""
+    return ("{" + ",".join(_ESCAPE(k) + ":" + pieces[k] for k in sorted(pieces)) + "}").encode("ascii")
 
 
 def dumps(manifest: dict[str, Any]) -> str:
@@ -85,9 +100,6 @@ def dumps(manifest: dict[str, Any]) -> str:
     if text is None:
         return json.dumps(manifest, sort_keys=True, indent=2, ensure_ascii=True, allow_nan=False) + "\n"
     return text + "\n"
-
-
-_ESCAPE: Final = json.encoder.encode_basestring_ascii
 
 
 def _indented(obj: Any, indent: str) -> str | None:

@@ -201,3 +201,21 @@ def test_dumps_writes_the_bytes_of_json_dumps_with_sorted_keys_and_an_indent(tre
             dumps(manifest)
         return
     assert dumps(manifest) == want
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.dictionaries(_JSON_KEYS | st.just("fingerprint"), _JSON_TREES, max_size=6))
+def test_seal_hashes_the_canonical_json_of_the_body_then_of_body_and_fingerprint(body: dict[str, Any]) -> None:
+    """seal's fingerprint is hash_json of the body without the two hashes, and its manifest_hash
+    hash_json of that plus the fingerprint (as the module docstring defines them)."""
+    try:
+        core = {k: v for k, v in body.items() if k not in ("fingerprint", "manifest_hash")}
+        want_fp = hash_json(core)
+        want_mh = hash_json({**core, "fingerprint": want_fp})
+    except ValueError:
+        with pytest.raises(ValueError, match="JSON compliant"):
+            seal(body)
+        return
+    sealed = seal(body)
+    assert (sealed["fingerprint"], sealed["manifest_hash"]) == (want_fp, want_mh)
+    assert {k: v for k, v in sealed.items() if k not in ("fingerprint", "manifest_hash")} == core
