@@ -471,7 +471,7 @@ def _input_files(
     local file that is not a symlink is both its identity and its stamp; None: ask again).
     The name is the file's path relative to its glob's fixed directory (Source.resolve_named),
     never to the recipe."""
-    files: list[tuple[int, Path | str, str]] = []  # a local Path, or a filesystem URI
+    files: list[tuple[int, Path | str, str]] = []  # a local path (str), or a filesystem URI
     stamps: list[list[int] | None] = []
     seen: set[Path | str] = set()
     skipped: dict[str, str] = {}
