@@ -28,6 +28,7 @@ import dataclasses
 import json
 import os
 import shutil
+import stat
 import time
 from collections.abc import Iterator, Sequence
 from concurrent.futures import Executor
@@ -301,22 +302,26 @@ def _uploaded(result: BuildResult, remote: UriStore, stats: PublishStats, local:
     return dataclasses.replace(result, directory=remote.location, seconds=time.perf_counter() - t0, extra=extra)
 
 
-def _input_hashes(files: Sequence[Path | str], cache: Path) -> list[tuple[str, tuple[int, ...] | None]]:
+def _input_hashes(
+    files: Sequence[Path | str], cache: Path, stamps: Sequence[list[int] | None] | None = None
+) -> list[tuple[str, tuple[int, ...] | None]]:
     """XXH3-128 of each input, reusing a stored hash while its change stamp is unchanged:
     (size, mtime, inode) for a local file, (size, mtime) for a URI; a URI whose filesystem
-    reports no mtime has no stamp and is hashed on every build."""
+    reports no mtime has no stamp and is hashed on every build. ``stamps`` (per file, None:
+    ask the filesystem) are those the caller took when it listed the files."""
     from seqpipe.filesystem import change_stamp
 
     index_path = cache / "inputs.json"
     try:
-        index: dict[str, Any] = json.loads(index_path.read_text())
+        index: dict[str, Any] = json.loads(index_path.read_bytes())
     except (OSError, ValueError):
         index = {}
     out: list[tuple[str, tuple[int, ...] | None]] = []
     changed = False
-    for f in files:
-        stamp = change_stamp(f)
-        rec = index.get(str(f))
+    for i, f in enumerate(files):
+        known = stamps[i] if stamps is not None else None
+        stamp = known if known is not None else change_stamp(f)
+        rec = index.get(f if isinstance(f, str) else str(f))
         if stamp is not None and rec and rec.get("stamp") == stamp:
             out.append((rec["hash"], tuple(stamp)))
             continue
@@ -475,48 +480,62 @@ def check_shard_count(recipe: Recipe, input_bytes: int) -> None:
         )
 
 
-def _input_files(recipe: Recipe) -> tuple[list[tuple[int, Path | str, str]], tuple[dict[str, str], ...]]:
+def _input_files(
+    recipe: Recipe,
+) -> tuple[list[tuple[int, Path | str, str]], tuple[dict[str, str], ...], list[list[int] | None]]:
     """(source index, file, recorded name) for each input, in recipe order then each source's
-    sorted order (a file two sources match is read once, by the first); and the matches skipped
-    as not files. The name is the file's path relative to its glob's fixed directory
-    (Source.resolve_named), never to the recipe."""
-    files: list[tuple[int, Path | str, str]] = []  # a local Path, or a filesystem URI
+    sorted order (a file two sources match is read once, by the first); the matches skipped
+    as not files; and per input its change stamp when listing it gave one (one ``lstat`` of a
+    local file that is not a symlink is both its identity and its stamp; None: ask again).
+    The name is the file's path relative to its glob's fixed directory (Source.resolve_named),
+    never to the recipe."""
+    files: list[tuple[int, Path | str, str]] = []  # a local path (str), or a filesystem URI
+    stamps: list[list[int] | None] = []
     seen: set[Path | str] = set()
     skipped: dict[str, str] = {}
     parents: dict[str, str] = {}  # each directory resolved once, not each file's path
     for si, source in enumerate(recipe.sources):
-        resolved = source.resolve_all(recipe.root)
+        resolved = source.resolve_all(recipe.root, as_str=True)
         for rel, what in resolved.skipped:
             skipped.setdefault(rel, what)
         for f, name in zip(resolved.files, resolved.names, strict=True):
-            same = _identity(f, parents)
+            same, stamp = _identity(f, parents)
             if same not in seen:
                 seen.add(same)
                 files.append((si, f, name))
+                stamps.append(stamp)
     if not files:
         raise SourceMissingError(str(recipe.root), "the recipe's sources match no file")
-    return files, tuple({"path": p, "what": w} for p, w in sorted(skipped.items()))
+    return files, tuple({"path": p, "what": w} for p, w in sorted(skipped.items())), stamps
 
 
-def _identity(f: Path | str, parents: dict[str, str]) -> Path | str:
+def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[int] | None]:
     """``filesystem.identity(f)``, resolving each directory once: a file that is not a symlink
-    is its resolved directory joined with its name."""
+    is its resolved directory joined with its name. With it, the file's change stamp
+    (``filesystem.change_stamp``) when the one ``lstat`` gave it (a local file, not a symlink)."""
     from seqpipe.filesystem import identity, is_uri
 
-    if is_uri(f) or os.path.islink(f):
-        return identity(f)
-    head, name = os.path.split(os.fspath(f))
+    if is_uri(f):
+        return identity(f), None
+    try:
+        st = os.lstat(f)
+    except OSError:
+        return identity(f), None  # the stamp asked later reports the error
+    if stat.S_ISLNK(st.st_mode):  # as a str, so it equals the same file's name found directly
+        return os.fspath(identity(f)), None
+    head, name = os.path.split(f)
     real = parents.get(head)
-    if real is None:
-        real = parents[head] = os.path.realpath(head or ".")
-    return os.path.join(real, name)  # a str never equal to a URI (those start with a scheme)
+    if real is None:  # with its separator, so each file's name is one concatenation
+        real = parents[head] = os.path.join(os.path.realpath(head or "."), "")
+    # a str never equal to a URI (those start with a scheme)
+    return real + name, [st.st_size, st.st_mtime_ns, st.st_ino]
 
 
 def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None) -> Plan:
     """Resolve the inputs, hash them, cut each large one into parts of about ``part_bytes`` and
     group consecutive small ones (of one source, in corpus order) into parts of about as much."""
-    files, skipped = _input_files(recipe)
-    hashed = _input_hashes([f for _, f, _ in files], cache)
+    files, skipped, stamps = _input_files(recipe)
+    hashed = _input_hashes([f for _, f, _ in files], cache, stamps)
     hashes = [h for h, _ in hashed]
     sizes = [_size(f, stamp) for (_, f, _), (_, stamp) in zip(files, hashed, strict=True)]
     inputs = tuple(
@@ -560,6 +579,10 @@ def _size(f: Path | str, stamp: tuple[int, ...] | None) -> int:
     return stamp[0] if stamp is not None else file_size(f)
 
 
+WHOLE_FILE: Final = [[0, None]]  # the stored cuts of an input read whole
+WHOLE_PART: Final = Part(0, None)
+
+
 class _PlanCache:
     """Each input's parts (``Source.plan``), stored beside the input hashes by content hash and
     what the cuts depend on (the source's settings, ``part_bytes``): a rebuild then plans no
@@ -581,6 +604,8 @@ class _PlanCache:
         name = f"{file_hash}.{self.settings[source_index]}"
         self.used.add(name)
         got = self.stored.get(name)
+        if got == WHOLE_FILE:  # most small inputs: one shared part, not a new one per input
+            return [WHOLE_PART]
         if isinstance(got, list) and got and all(isinstance(p, list) and len(p) == 2 for p in got):
             return [Part(int(a or 0), None if b is None else int(b)) for a, b in got]
         parts = self.recipe.sources[source_index].plan(f, self.part_bytes)

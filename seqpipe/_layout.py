@@ -162,7 +162,7 @@ def _docs_batches(
         starts = start + np.cumsum(lengths) - lengths
         start += int(lengths.sum())
         if len(starts):
-            np.add.at(docs_in, starts // per_shard, 1)
+            docs_in += np.bincount(starts // per_shard, minlength=len(docs_in))
         pending.append(
             pa.table(
                 {

@@ -24,7 +24,7 @@ import os
 import re
 import stat
 import threading
-from collections.abc import Sequence
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from pathlib import Path, PurePosixPath
 from typing import TYPE_CHECKING, Any, Final, TypeAlias
@@ -91,7 +91,7 @@ _MOUNTS: dict[tuple[str, str], Mount] = {}
 
 def is_uri(path: object) -> bool:
     """True for a ``str`` that starts with ``scheme://`` (a ``Path`` is always local)."""
-    return isinstance(path, str) and _URI.match(path) is not None
+    return isinstance(path, str) and "://" in path and _URI.match(path) is not None
 
 
 def parse_uri(uri: str) -> Uri:
@@ -358,12 +358,61 @@ def _target_stat(path: str) -> os.stat_result | None:
         return None
 
 
+def _advance(rest: Sequence[str], states: frozenset[int], name: str) -> frozenset[int]:
+    """The pattern positions reachable from ``states`` after one more path name (``_match`` as
+    a set of positions: a ``**`` consumes any name not hidden, or nothing)."""
+    out: set[int] = set()
+    for i in states:
+        if i == len(rest):
+            continue
+        head = rest[i]
+        if head == "**":
+            if not name.startswith("."):
+                out.add(i)
+        elif _match_name(head, name):
+            out.add(i + 1)
+    return _closure(rest, out)
+
+
+def _closure(rest: Sequence[str], states: Iterable[int]) -> frozenset[int]:
+    """``states`` with every position a run of ``**`` segments may skip to."""
+    out = set(states)
+    todo = list(out)
+    while todo:
+        i = todo.pop()
+        if i < len(rest) and rest[i] == "**" and i + 1 not in out:
+            out.add(i + 1)
+            todo.append(i + 1)
+    return frozenset(out)
+
+
+def _last_name_matcher(rest: Sequence[str], states: frozenset[int]) -> Callable[[str], bool]:
+    """Whether a name, appended to a path that reached ``states``, completes the match (what
+    ``len(rest) in _advance(rest, states, name)`` says, with the patterns compiled once)."""
+    end = len(rest)
+    # a trailing ``**`` the path reached takes any name not hidden
+    any_shown = end in states and rest[-1] == "**"
+    heads = sorted({rest[i] for i in states if i < end and rest[i] != "**" and all(r == "**" for r in rest[i + 1 :])})
+    compiled = [(h.startswith("."), re.compile(fnmatch.translate(h)).match) for h in heads]
+
+    def last(name: str) -> bool:
+        hidden = name.startswith(".")
+        if any_shown and not hidden:
+            return True
+        return any(match(name) is not None for dotted, match in compiled if dotted or not hidden)
+
+    return last
+
+
 class _LocalWalk:
     """One walk of a directory tree for the segments of a glob after its fixed prefix.
 
     Each real directory (device and inode) is entered at most once, so a symlink that points
     back to a directory on the current walk, or a branching loop of them, costs one visit
-    instead of growing until the path length limit (which ``glob.glob`` does).
+    instead of growing until the path length limit (which ``glob.glob`` does). An entry's type
+    comes from the directory listing: only symlinks, directories and special files are stat'ed,
+    so a tree of many files costs one listing per directory, and each directory carries the
+    pattern positions its path reached, so a file's name is matched once, not its whole path.
     """
 
     __slots__ = ("base", "deep", "files", "hidden", "rest", "seen", "skipped")
@@ -384,23 +433,38 @@ class _LocalWalk:
             return True
         return len(names) < len(self.rest) and all(_match_name(p, n) for p, n in zip(self.rest, names, strict=False))
 
-    def walk(self, directory: str, names: list[str], ancestors: frozenset[tuple[int, int]]) -> None:
+    def walk(
+        self, directory: str, names: list[str], ancestors: frozenset[tuple[int, int]], states: frozenset[int]
+    ) -> None:
         try:
             with os.scandir(directory) as it:
                 entries = sorted(it, key=lambda e: e.name)
         except OSError:
             return  # unreadable or vanished directory: glob.glob skips it too
+        end = len(self.rest)
+        prefix = "/".join(names) + "/" if names else ""
+        last = _last_name_matcher(self.rest, states)
         for entry in entries:
-            here = [*names, entry.name]
-            rel = "/".join(here)
+            try:
+                plain_file = not entry.is_symlink() and entry.is_file(follow_symlinks=False)
+            except OSError:
+                plain_file = False
+            if plain_file:  # the common case: no stat, one match of the name
+                if last(entry.name):
+                    self.files.append(prefix + entry.name)
+                continue
+            reached = _advance(self.rest, states, entry.name)
+            matched = end in reached
             st = _target_stat(entry.path)
+            rel = prefix + entry.name
             if st is None:
-                if _match(self.rest, here):
+                if matched:
                     self.skipped.append((rel, "dangling symlink" if entry.is_symlink() else "unreadable"))
                 continue
             if stat.S_ISDIR(st.st_mode):
-                if _match(self.rest, here) and self.rest[-1] != "**":
+                if matched and self.rest[-1] != "**":
                     self.skipped.append((rel, "directory"))
+                here = [*names, entry.name]
                 if not self._may_descend(here):
                     continue
                 ident = (st.st_dev, st.st_ino)
@@ -408,8 +472,8 @@ class _LocalWalk:
                     self.skipped.append((rel, "symlink loop"))
                 elif ident not in self.seen:
                     self.seen.add(ident)
-                    self.walk(entry.path, here, ancestors | {ident})
-            elif _match(self.rest, here):
+                    self.walk(entry.path, here, ancestors | {ident}, reached)
+            elif matched:
                 if stat.S_ISREG(st.st_mode):
                     self.files.append(rel)
                 else:
@@ -445,6 +509,6 @@ def glob_local(root: Path, pattern: str) -> LocalMatches:
     if st is None or not os.path.isdir(start):
         return LocalMatches((), ())
     walk.seen.add((st.st_dev, st.st_ino))
-    walk.walk(start, [], frozenset({(st.st_dev, st.st_ino)}))
+    walk.walk(start, [], frozenset({(st.st_dev, st.st_ino)}), _closure(rest, (0,)))
     join = (lambda rel: f"{base_rel.rstrip('/')}/{rel}") if base_rel else (lambda rel: rel)
     return LocalMatches(tuple(join(f) for f in walk.files), tuple((join(p), w) for p, w in walk.skipped))

@@ -76,11 +76,14 @@ HASH_TYPE: Final = pa.binary(16)
 def part_key(recipe: Recipe, source_index: int, members: Sequence[tuple[str, Any]]) -> str:
     """Fingerprint of everything an ingested part depends on (not vocab, splits or shards):
     ``members`` gives each of its inputs' hash and the source's part of it, in reading order."""
+    from seqpipe.sources.base import Part
+
     return hash_json(
         {
             "format": PART_FORMAT,
             "source": to_plain(recipe.sources[source_index]),
-            "members": [[h, _plain_part(p)] for h, p in members],
+            # the common start/stop kind inline: a part of many small files lists each
+            "members": [[h, [p.start, p.stop] if type(p) is Part else _plain_part(p)] for h, p in members],
             "clean": [to_plain(s) for s in recipe.clean],
             "tokenizer": to_plain(recipe.tokenizer),
             # Unicode tables and the libraries that apply them: an upgrade must not reuse parts
@@ -714,25 +717,33 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     pieces = docs.column("pieces").to_numpy()
     inputs = np.asarray(task.inputs, np.int32)[docs.column("member").to_numpy()]
     splits = assign_splits(recipe.splits, fixed16(docs, "hash"), task.keep, task.fixed)
-    piece_split = np.repeat(splits, pieces)  # once, not a repeat per split
     values, offsets = enc.piece_ids(keys)
     voc = enc.vocabulary
     begin = voc.id_of("begin") if recipe.encode.prepend_begin else None
     end = voc.id_of("end") if recipe.encode.append_end else None
     unk = voc.unknown_id
     hashes = docs.column("hash").combine_chunks()
+    # one id per piece (whole-word kinds): a table of the part's keys in the ids' stored type,
+    # so each split is one gather of its codes straight into the type it is written in
+    table = values.astype(task.dtype) if len(offsets) == len(values) + 1 and (np.diff(offsets) == 1).all() else None
+    whole = len(splits) > 0 and bool((splits == splits[0]).all())  # one split: no per-piece mask
+    piece_split = None if whole else np.repeat(splits, pieces)  # once, not a repeat per split
     out: dict[str, dict[str, int]] = {}
     for s, split in enumerate(SPLIT_NAMES):
         dmask = splits == s
         if not dmask.any():
             continue
-        ids, lengths = expand(values, offsets, codes[piece_split == s], pieces[dmask])
+        split_codes = codes if piece_split is None else codes[piece_split == s]
+        if table is not None:
+            ids, lengths = table[split_codes], pieces[dmask].astype(np.int64)
+        else:
+            ids, lengths = expand(values, offsets, split_codes, pieces[dmask])
         content = len(ids)  # the documents' own tokens, before begin/end markers
         # in the ids' stored type from here on: the marker pass moves a quarter of the bytes
         ids = _add_markers(ids.astype(task.dtype, copy=False), lengths, begin, end)
         lengths = lengths + (begin is not None) + (end is not None)
         unknown = int(np.count_nonzero(ids == unk)) if unk is not None else 0
-        write_shard(encoded_path(task.stage_dir, task.number, split), ids.astype(task.dtype), durable=False)
+        write_shard(encoded_path(task.stage_dir, task.number, split), ids, durable=False)
         write_table(
             fragment_path(task.stage_dir, task.number, split),
             durable=False,
@@ -797,8 +808,8 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
     chunks = [read_shard(Path(p))[a:b] for p, a, b in task.pieces]
     ids = np.concatenate(chunks).astype(task.dtype, copy=False) if chunks else np.zeros(0, task.dtype)
     target = Path(task.path)
-    want = hash_array(ids)
     if target.exists():  # left by an interrupted run of the same build: keep it if it checks out
+        want = hash_array(ids)
         try:
             old = read_shard(target, dtype=np.dtype(task.dtype), expected_tokens=len(ids))
             compressed = _is_compressed(target)

@@ -29,11 +29,12 @@ bytes. Parsing validates types, limits sizes and nesting, and checks both hashes
 from __future__ import annotations
 
 import json
+import math
 import posixpath
 from pathlib import Path, PurePosixPath
 from typing import Any, Final
 
-from seqpipe._hashing import hash_json
+from seqpipe._hashing import canonical_json, hash_bytes, hash_json
 from seqpipe.errors import ManifestError, UnsafePathError
 from seqpipe.formats import ENVIRONMENT_KEYS
 
@@ -62,19 +63,122 @@ TOP_KEYS: Final = (
 )
 SHARD_KEYS: Final = ("path", "tokens", "documents", "first_token", "bytes", "hash", "token_hash")
 
+_ESCAPE: Final = json.encoder.encode_basestring_ascii  # JSON string text, quotes included
+
 
 def seal(body: dict[str, Any]) -> dict[str, Any]:
     """Add ``fingerprint`` and ``manifest_hash`` to a manifest body."""
     core = {k: v for k, v in body.items() if k not in ("fingerprint", "manifest_hash")}
     out = dict(core)
-    out["fingerprint"] = hash_json(core)
-    out["manifest_hash"] = hash_json(out)
+    if any(type(k) is not str for k in core):
+        out["fingerprint"] = hash_json(core)
+        out["manifest_hash"] = hash_json(out)
+        return out
+    # both hashes are of canonical JSON that differs in one top-level key: each value is
+    # serialized once and the two texts joined from the pieces (a manifest lists every input)
+    pieces = {k: canonical_json(v) for k, v in core.items()}
+    out["fingerprint"] = hash_bytes(_joined(pieces))
+    pieces["fingerprint"] = canonical_json(out["fingerprint"])
+    out["manifest_hash"] = hash_bytes(_joined(pieces))
     return out
 
 
+def _joined(pieces: dict[str, str]) -> bytes:
+    """The canonical JSON of an object from its values' canonical JSON (``_hashing.canonical_json``)."""
+    return ("{" + ",".join(_ESCAPE(k) + ":" + pieces[k] for k in sorted(pieces)) + "}").encode("ascii")
+
+
 def dumps(manifest: dict[str, Any]) -> str:
-    """Manifest text: sorted keys, two-space indent, trailing newline (stable bytes)."""
-    return json.dumps(manifest, sort_keys=True, indent=2, ensure_ascii=True, allow_nan=False) + "\n"
+    """Manifest text: sorted keys, two-space indent, trailing newline (stable bytes).
+
+    The bytes are ``json.dumps(manifest, sort_keys=True, indent=2, ensure_ascii=True,
+    allow_nan=False)``'s; with an indent the json module encodes in Python node by node, so
+    plain trees (string keys; strings, ints, finite floats, booleans, None, lists, tuples)
+    are written here with each string encoded by the json module's C escaper, and anything
+    else is left to ``json.dumps`` (which also raises its errors)."""
+    text = _indented(manifest, "")
+    if text is None:
+        return json.dumps(manifest, sort_keys=True, indent=2, ensure_ascii=True, allow_nan=False) + "\n"
+    return text + "\n"
+
+
+def _indented(obj: Any, indent: str) -> str | None:
+    """``obj`` as ``json.dumps(..., sort_keys=True, indent=2)`` writes it at ``indent``; None
+    when it holds anything but plain values (see :func:`dumps`)."""
+    kind = type(obj)
+    if kind is str:
+        return str(_ESCAPE(obj))
+    if kind is int:
+        return int.__repr__(obj)
+    if kind is dict:
+        return _indented_dict(obj, indent)
+    if kind is list or kind is tuple:
+        if not obj:
+            return "[]"
+        inner = indent + "  "
+        items = _flat_entries(obj, inner)
+        if items is None:
+            nested = [_indented(v, inner) for v in obj]
+            if any(text is None for text in nested):
+                return None
+            items = [text for text in nested if text is not None]
+        return "[\n" + inner + (",\n" + inner).join(items) + "\n" + indent + "]"
+    if obj is None:
+        return "null"
+    if obj is True:
+        return "true"
+    if obj is False:
+        return "false"
+    if kind is float and math.isfinite(obj):
+        return float.__repr__(obj)
+    return None
+
+
+def _indented_dict(obj: dict[Any, Any], indent: str) -> str | None:
+    if not obj:
+        return "{}"
+    if any(type(k) is not str for k in obj):
+        return None
+    inner = indent + "  "
+    parts = []
+    for k in sorted(obj):
+        v = obj[k]
+        of = type(v)  # scalars inline: most of a manifest is flat entries (inputs, shards)
+        text = _ESCAPE(v) if of is str else int.__repr__(v) if of is int else _indented(v, inner)
+        if text is None:
+            return None
+        parts.append(_ESCAPE(k) + ": " + text)
+    return "{\n" + inner + (",\n" + inner).join(parts) + "\n" + indent + "}"
+
+
+def _flat_entries(entries: list[Any] | tuple[Any, ...], indent: str) -> list[str] | None:
+    """A list of objects with the same string keys and only string or int values (a manifest's
+    inputs and shards), each written from one template; None for any other list."""
+    first = entries[0]
+    if type(first) is not dict or not first or any(type(k) is not str for k in first):
+        return None
+    keys = sorted(first)
+    inner = indent + "  "
+    template = (
+        "{\n" + inner + (",\n" + inner).join(_ESCAPE(k).replace("%", "%%") + ": %s" for k in keys) + "\n" + indent + "}"
+    )
+    shape = first.keys()
+    out = []
+    for entry in entries:
+        if type(entry) is not dict or entry.keys() != shape:
+            return None
+        values = []
+        for k in keys:
+            v = entry[k]
+            of = type(v)
+            if of is str:
+                values.append(_ESCAPE(v))
+            elif of is int:
+                values.append(int.__repr__(v))
+            else:
+                return None
+        out.append(template % tuple(values))
+    return out
 
 
 def _depth(obj: Any, level: int = 0) -> int:

@@ -165,3 +165,57 @@ def test_mutated_sections_give_our_error(path: str, value: Any) -> None:
     except ManifestError as exc:
         message = str(exc)
     assert not message or re.search(rf"manifest\.json: {path}\b", message), message
+
+
+_JSON_KEYS = st.sampled_from(["path", "bytes", "hash", "a%s", "%", "é", "\n", ""])
+_JSON_SCALARS = (
+    st.none()
+    | st.booleans()
+    | st.integers(min_value=-(2**70), max_value=2**70)
+    | st.floats(allow_nan=True, allow_infinity=True)
+    | st.text(max_size=6)
+)
+_JSON_TREES = st.recursive(
+    _JSON_SCALARS,
+    lambda inner: (
+        st.lists(inner, max_size=4)
+        | st.dictionaries(_JSON_KEYS, inner, max_size=4)
+        | st.lists(
+            st.fixed_dictionaries({"path": st.text(max_size=4), "bytes": st.integers(0, 99)}), min_size=1, max_size=3
+        )
+    ),
+    max_leaves=20,
+)
+
+
+@settings(max_examples=300, deadline=None)
+@given(_JSON_TREES)
+def test_dumps_writes_the_bytes_of_json_dumps_with_sorted_keys_and_an_indent(tree: Any) -> None:
+    """dumps gives json.dumps(sort_keys=True, indent=2, ensure_ascii=True, allow_nan=False)'s text
+    plus a newline, and raises what it raises (NaN, infinities)."""
+    manifest = {"entries": tree, "inputs": [{"path": "a", "bytes": 1, "hash": "0" * 32}]}
+    try:
+        want = json.dumps(manifest, sort_keys=True, indent=2, ensure_ascii=True, allow_nan=False) + "\n"
+    except ValueError:
+        with pytest.raises(ValueError, match="JSON compliant"):
+            dumps(manifest)
+        return
+    assert dumps(manifest) == want
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.dictionaries(_JSON_KEYS | st.just("fingerprint"), _JSON_TREES, max_size=6))
+def test_seal_hashes_the_canonical_json_of_the_body_then_of_body_and_fingerprint(body: dict[str, Any]) -> None:
+    """seal's fingerprint is hash_json of the body without the two hashes, and its manifest_hash
+    hash_json of that plus the fingerprint (as the module docstring defines them)."""
+    try:
+        core = {k: v for k, v in body.items() if k not in ("fingerprint", "manifest_hash")}
+        want_fp = hash_json(core)
+        want_mh = hash_json({**core, "fingerprint": want_fp})
+    except ValueError:
+        with pytest.raises(ValueError, match="JSON compliant"):
+            seal(body)
+        return
+    sealed = seal(body)
+    assert (sealed["fingerprint"], sealed["manifest_hash"]) == (want_fp, want_mh)
+    assert {k: v for k, v in sealed.items() if k not in ("fingerprint", "manifest_hash")} == core

@@ -105,6 +105,17 @@ def test_special_files_are_skipped_counted_and_named(tmp_path: Path) -> None:
     assert "pipe.txt (fifo" in lines and "gone.txt (dangling symlink" in lines
 
 
+def test_a_symlink_and_its_target_both_matched_are_one_input(tmp_path: Path) -> None:
+    """A file the glob matches by its own name and through a symlink is read once, under the
+    name sorted first (the docstring of _build._input_files: a file two matches name is one input)."""
+    (tmp_path / "logs").mkdir()
+    (tmp_path / "logs" / "b.txt").write_text("".join(f"ferry crossing {i} left at dawn\n" for i in range(40)))
+    (tmp_path / "logs" / "a.txt").symlink_to("b.txt")
+    res = build(parse_recipe(RECIPE.format(extra=""), tmp_path), tmp_path / "out", workers=1, progress=False)
+    assert [i["path"] for i in res.manifest["inputs"]] == ["a.txt"]
+    assert res.manifest["summary"]["read"]["documents"] == 40
+
+
 def test_special_files_refused_when_asked(tmp_path: Path) -> None:
     """on_special_file = "error" stops the build naming the first special file the glob matches."""
     make_special_tree(tmp_path)

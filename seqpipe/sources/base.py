@@ -196,15 +196,17 @@ class Source(ABC):
         resolved = self.resolve_all(root)
         return list(zip(resolved.files, resolved.names, strict=True))
 
-    def resolve_all(self, root: Path) -> Resolved:
+    def resolve_all(self, root: Path, *, as_str: bool = False) -> Resolved:
         """:meth:`resolve`'s files (with their recorded names, see :meth:`resolve_named`), and
         the local matches that are not regular files.
 
         A FIFO, socket, device, directory, dangling symlink or symlink loop that a glob
         matches is skipped and listed (``on_special_file = "skip"``, the default) or refused
         with a :class:`SourceError` naming it (``"error"``). Each real directory is walked
-        once, so a symlink loop cannot make the glob run forever.
+        once, so a symlink loop cannot make the glob run forever. ``as_str``: local files as
+        the ``str`` of the ``Path`` they would be (a build of many files makes no ``Path``).
         """
+        top = str(root)
         found: dict[str, tuple[SourcePath, str]] = {}
         skipped: dict[str, str] = {}
         for pattern in self.paths:
@@ -228,7 +230,9 @@ class Source(ABC):
                 raise SourceMissingError(str(root), f"glob {pattern!r} matched no file under {root}")
             for hit in matches.files:
                 key = _posix_key(hit)
-                found.setdefault(key, (root / key, _recorded_name(hit, base)))
+                if key not in found:
+                    local = (key if top == "." else os.path.join(top, key)) if as_str else root / key
+                    found[key] = (local, _recorded_name(hit, base))
         ordered = [found[key] for key in sorted(found)]
         return Resolved([p for p, _ in ordered], tuple(sorted(skipped.items())), tuple(n for _, n in ordered))
 
