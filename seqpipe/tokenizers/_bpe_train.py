@@ -360,44 +360,47 @@ class _Chain:
         return self._group(sym[gained] * self.width + sym[nxt[gained]], gained)
 
     def _few(self, parts: list[np.ndarray], code: int, merged: int) -> list[HeapEntry]:
-        """:meth:`merge` for a pair seen at a few slots, in plain Python (same steps, same result)."""
+        """:meth:`merge` for a pair seen at a few slots, in plain Python (same result), in one pass.
+
+        Occurrences are merged in slot order as they are found. A later occurrence's own two
+        symbols are untouched by earlier merges, so finding it on the changing chain finds what
+        a scan before any merge finds. The pair left of an occurrence that directly follows the
+        previous one (its left neighbour is the previous merge's slot) was already counted lost
+        as that merge's right neighbour, and its new pair is counted once; codes of new pairs are
+        read after the last merge, when both of their symbols are final."""
         sym, nxt, prv, weight = self.twins
         n, width = len(sym) - 1, self.width
         a, b = divmod(code, width)
-        pos: list[int] = []
-        taken = -1  # the right slot of the last merge: in a run ``x x x`` it cannot start another
+        lost: dict[int, int] = {}
+        gained: list[int] = []  # left slots of the new pairs, ascending
+        last = -1  # the slot of the last merge
         for s in sorted(itertools.chain.from_iterable(p.tolist() for p in parts)):
-            if s != taken and sym[s] == a and sym[nxt[s]] == b:
-                pos.append(s)
-                taken = nxt[s]
-        lost: set[int] = set()
-        for s in pos:
-            if prv[s] != n:
-                lost.add(prv[s])
-            if nxt[nxt[s]] != n:
-                lost.add(nxt[s])
-        totals: dict[int, int] = {}
-        for t in lost:
-            c = sym[t] * width + sym[nxt[t]]
-            if c != code:  # the rest of a run of the merged pair; its count is gone already
-                totals[c] = totals.get(c, 0) + weight[t]
-        self._lose(totals.items())
-        for s in pos:
+            if sym[s] != a:
+                continue
             r = nxt[s]
+            if sym[r] != b:
+                continue
+            w = weight[s]
+            p = prv[s]
+            if p != n and p != last:
+                c = sym[p] * width + a
+                if c != code:  # the rest of a run of the merged pair; its count is gone already
+                    lost[c] = lost.get(c, 0) + w
+                gained.append(p)
             after = nxt[r]
+            if after != n:
+                c = b * width + sym[after]
+                if c != code:
+                    lost[c] = lost.get(c, 0) + w
+                prv[after] = s
+                gained.append(s)
             sym[s] = merged
             sym[r] = -1
             nxt[s] = after
-            if after != n:
-                prv[after] = s
-        gained: set[int] = set()
-        for s in pos:
-            if prv[s] != n:
-                gained.add(prv[s])
-            if nxt[s] != n:
-                gained.add(s)
+            last = s
+        self._lose(lost.items())
         born: dict[int, list[int]] = {}  # pair -> [count, slots...] (ascending)
-        for t in sorted(gained):
+        for t in gained:
             c = sym[t] * width + sym[nxt[t]]
             seen = born.get(c)
             if seen is None:
