@@ -483,12 +483,18 @@ def char_symbols(
         texts = [k.decode("utf-8") for k in keys]
     except UnicodeDecodeError as exc:
         raise TokenizerError(f"a chunk key is not UTF-8 ({exc}); base = 'chars' needs text keys") from exc
-    points = np.frombuffer("".join(texts).encode("utf-32-le"), dtype="<u4")
-    seen, inverse = np.unique(points, return_inverse=True)
-    alphabet = [chr(c).encode("utf-8") for c in seen.tolist()]
+    points = np.frombuffer("".join(texts).encode("utf-32-le"), dtype="<u4").astype(np.int64)
     lengths = np.fromiter(map(len, texts), dtype=np.int64, count=len(texts))
+    # a table over code points up to the largest seen (at most 0x10FFFF entries) numbers the
+    # characters in code-point order without sorting every character of every chunk
+    weighted = np.bincount(points, weights=np.repeat(freqs, lengths)) if len(points) else np.zeros(0)
+    seen = np.flatnonzero(np.bincount(points)) if len(points) else np.zeros(0, np.int64)
+    number = np.zeros(len(weighted), dtype=np.int64)
+    number[seen] = np.arange(len(seen))
+    inverse = number[points]
+    alphabet = [chr(c).encode("utf-8") for c in seen.tolist()]
     counts = np.zeros(len(seen) + bool(marker), dtype=np.int64)
-    counts[: len(seen)] = np.bincount(inverse.ravel(), weights=np.repeat(freqs, lengths), minlength=len(seen))
+    counts[: len(seen)] = weighted[seen]
     flat = inverse.ravel().astype(np.int64) + n_reserved
     if marker:
         if marker.encode("utf-8") in alphabet:
