@@ -219,6 +219,16 @@ def learn(
 
 
 HeapEntry = tuple[int, int, int]  # (-count, first slot, pair code)
+# Where a pair was seen: an array, or a short list of slots (a pair born in a small merge, where
+# making an array costs more than it saves).
+Slots = np.ndarray | list[int]
+
+
+def _ascending(parts: list[Slots]) -> list[int]:
+    """The slots of ``parts``, ascending, as Python ints."""
+    if len(parts) == 1 and isinstance(parts[0], list):
+        return parts[0]  # kept ascending where it was made
+    return sorted(itertools.chain.from_iterable(p if isinstance(p, list) else p.tolist() for p in parts))
 
 
 @dataclass(slots=True)
@@ -248,7 +258,7 @@ class _Chain:
     count: dict[int, int]
     sorted_slots: np.ndarray  # slots of the first index, grouped by pair
     groups: dict[int, tuple[int, int]]  # pair -> its range in sorted_slots
-    added: dict[int, list[np.ndarray]] = field(default_factory=dict)
+    added: dict[int, list[Slots]] = field(default_factory=dict)
     firsts: list[HeapEntry] = field(default_factory=list)
 
     @classmethod
@@ -307,7 +317,7 @@ class _Chain:
         heapq.heapify(heap)
         return heap
 
-    def _seen(self, code: int) -> list[np.ndarray]:
+    def _seen(self, code: int) -> list[Slots]:
         """The position lists of pair ``code`` (taken out: the caller puts back what it keeps)."""
         parts = self.added.pop(code, [])
         span = self.groups.pop(code, None)
@@ -315,9 +325,9 @@ class _Chain:
             parts.append(self.sorted_slots[span[0] : span[1]])
         return parts
 
-    def _where(self, parts: list[np.ndarray], code: int) -> np.ndarray:
+    def _where(self, parts: list[Slots], code: int) -> np.ndarray:
         """Ascending slots of ``parts`` where pair ``code`` occurs now."""
-        pos = np.concatenate(parts) if len(parts) > 1 else parts[0]
+        pos = np.concatenate(parts) if len(parts) > 1 else np.asarray(parts[0], dtype=np.int64)
         a, b = divmod(code, self.width)
         found: np.ndarray = pos[(self.sym[pos] == a) & (self.sym[self.nxt[pos]] == b)]
         found.sort()
@@ -325,7 +335,14 @@ class _Chain:
 
     def first(self, code: int) -> int:
         """The slot of the pair's first occurrence now (its positions compacted on the way)."""
-        pos = self._where(self._seen(code), code)
+        parts = self._seen(code)
+        if all(isinstance(p, list) for p in parts):
+            sym, nxt = self.twins[0], self.twins[1]
+            a, b = divmod(code, self.width)
+            live = [s for s in _ascending(parts) if sym[s] == a and sym[nxt[s]] == b]
+            self.added[code] = [live]
+            return live[0]
+        pos = self._where(parts, code)
         self.added[code] = [pos]
         return int(pos[0])
 
@@ -359,7 +376,7 @@ class _Chain:
         gained = np.unique(np.concatenate([before[before != n], pos[after != n]]))
         return self._group(sym[gained] * self.width + sym[nxt[gained]], gained)
 
-    def _few(self, parts: list[np.ndarray], code: int, merged: int) -> list[HeapEntry]:
+    def _few(self, parts: list[Slots], code: int, merged: int) -> list[HeapEntry]:
         """:meth:`merge` for a pair seen at a few slots, in plain Python (same result), in one pass.
 
         Occurrences are merged in slot order as they are found. A later occurrence's own two
@@ -371,10 +388,10 @@ class _Chain:
         sym, nxt, prv, weight = self.twins
         n, width = len(sym) - 1, self.width
         a, b = divmod(code, width)
-        lost: dict[int, int] = {}
+        count, min_count, added, groups = self.count, self.min_count, self.added, self.groups
         gained: list[int] = []  # left slots of the new pairs, ascending
         last = -1  # the slot of the last merge
-        for s in sorted(itertools.chain.from_iterable(p.tolist() for p in parts)):
+        for s in _ascending(parts):
             if sym[s] != a:
                 continue
             r = nxt[s]
@@ -382,23 +399,36 @@ class _Chain:
                 continue
             w = weight[s]
             p = prv[s]
+            # a lost pair's count falls at once; one that falls below min_count is forgotten there
+            # (counts only fall, so it could not come back); the merged pair's own count is gone
             if p != n and p != last:
                 c = sym[p] * width + a
-                if c != code:  # the rest of a run of the merged pair; its count is gone already
-                    lost[c] = lost.get(c, 0) + w
+                k = count.get(c)
+                if k is not None and c != code:
+                    if k - w >= min_count:
+                        count[c] = k - w
+                    else:
+                        del count[c]
+                        added.pop(c, None)
+                        groups.pop(c, None)
                 gained.append(p)
             after = nxt[r]
             if after != n:
                 c = b * width + sym[after]
-                if c != code:
-                    lost[c] = lost.get(c, 0) + w
+                k = count.get(c)
+                if k is not None and c != code:
+                    if k - w >= min_count:
+                        count[c] = k - w
+                    else:
+                        del count[c]
+                        added.pop(c, None)
+                        groups.pop(c, None)
                 prv[after] = s
                 gained.append(s)
             sym[s] = merged
             sym[r] = -1
             nxt[s] = after
             last = s
-        self._lose(lost.items())
         born: dict[int, list[int]] = {}  # pair -> [count, slots...] (ascending)
         for t in gained:
             c = sym[t] * width + sym[nxt[t]]
@@ -410,9 +440,9 @@ class _Chain:
                 seen.append(t)
         entries: list[HeapEntry] = []
         for c, (total, *slots) in born.items():
-            if total >= self.min_count:
-                self.count[c] = total
-                self.added[c] = [np.array(slots, dtype=np.int64)]
+            if total >= min_count:
+                count[c] = total
+                added[c] = [slots]
                 entries.append((-total, slots[0], c))
         return entries
 
