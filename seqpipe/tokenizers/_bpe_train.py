@@ -16,7 +16,8 @@ numpy group-by, large merges are array operations and pairs that fall below the
 minimum count are forgotten. The next pair comes from a heap with lazy
 invalidation: every pair always has an entry whose key is at most its true key
 ``(-count, first slot)``; a popped entry whose key is out of date is pushed back
-with the true key, so the entry that survives a pop is the true best pair.
+with a truer key, so the entry that survives a pop with its true key is the true
+best pair.
 """
 
 from __future__ import annotations
@@ -185,9 +186,12 @@ def learn(
     Heap keys are ``(-count, first slot, pair code)``; a slot (see :class:`_Chain`) orders
     occurrences by row, then position, and does not move when symbols before it merge. A merge
     creates pairs only with its new id, so an existing pair never gains: its count and first
-    occurrence change only by losses, and an entry whose count is still current is exact. A
-    popped entry with a stale count is pushed back with the true key; a pair is pushed once when
-    it appears, so each pair has one live entry. A pair below ``min_count`` can never reach it
+    occurrence change only by losses, so an entry pushed with the true key is exact while its
+    count is current. A popped entry with a stale count is pushed back with the current count and
+    its old first slot (still a lower bound; finding the true one costs a search, often wasted
+    on a pair that loses again before it is popped); popped again with a current count, its true
+    first slot is looked up, and it is pushed back once more if that differs. A pair is pushed
+    once when it appears, so each pair has one live entry. A pair below ``min_count`` can never reach it
     again, so it is forgotten (counts, positions) the moment it falls below.
     """
     merges: list[tuple[int, int, int]] = []
@@ -198,14 +202,23 @@ def learn(
         heap = chain.heap()
         width = chain.width
         pbar.set_postfix_str("")
+        loose: set[int] = set()  # pairs whose entry's first slot may be too early
         while heap and len(tokens) < limit:
-            neg, _, code = heapq.heappop(heap)
+            neg, slot, code = heapq.heappop(heap)
             c = chain.count.get(code, 0)
             if c < min_count:
+                loose.discard(code)
                 continue  # counts only fall, so the pair is done
             if c != -neg:
-                heapq.heappush(heap, (-c, chain.first(code), code))
+                heapq.heappush(heap, (-c, slot, code))  # the old first slot is still a lower bound
+                loose.add(code)
                 continue
+            if code in loose:
+                loose.discard(code)
+                first = chain.first(code)
+                if first != slot:
+                    heapq.heappush(heap, (-c, first, code))
+                    continue
             a, b = divmod(code, width)
             z = len(tokens)
             tokens.append(tokens[a] + tokens[b])
