@@ -220,13 +220,14 @@ many_script_corpora = st.lists(
     base=st.sampled_from(["bytes", "chars", "chars+marker"]),
     extra=st.integers(0, 60),
     min_count=st.integers(1, 3),
-    few=st.sampled_from([0, 10**9]),
+    few=st.sampled_from([0, 3, 10**9]),  # 3: small and large merges mixed in one training
 )
 def test_trainer_matches_naive_reference_on_many_scripts(
     corpus: list[tuple[str, int]], base: str, extra: int, min_count: int, few: int
 ) -> None:
     """On chunks mixing many scripts (multi-byte characters, combining marks, runs of one symbol),
-    the fast trainer's merges and final segmentations equal the naive trainer's, both ways of merging."""
+    the fast trainer's merges and final segmentations equal the naive trainer's, either way of merging
+    and both mixed."""
     check_against_naive(corpus, base, extra, min_count, few)
 
 

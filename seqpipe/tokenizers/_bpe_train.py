@@ -396,13 +396,13 @@ class _Chain:
         symbols are untouched by earlier merges, so finding it on the changing chain finds what
         a scan before any merge finds. The pair left of an occurrence that directly follows the
         previous one (its left neighbour is the previous merge's slot) was already counted lost
-        as that merge's right neighbour, and its new pair is counted once; codes of new pairs are
-        read after the last merge, when both of their symbols are final."""
+        as that merge's right neighbour, and its new pair is counted once. The new pair right of
+        an occurrence ends in the merged id when the next occurrence starts right after it."""
         sym, nxt, prv, weight = self.twins
         n, width = len(sym) - 1, self.width
         a, b = divmod(code, width)
         count, min_count, added, groups = self.count, self.min_count, self.added, self.groups
-        gained: list[int] = []  # left slots of the new pairs, ascending
+        born: dict[int, list[int]] = {}  # new pair -> [count, slots...] (ascending)
         last = -1  # the slot of the last merge
         for s in _ascending(parts):
             if sym[s] != a:
@@ -424,7 +424,13 @@ class _Chain:
                         del count[c]
                         added.pop(c, None)
                         groups.pop(c, None)
-                gained.append(p)
+                c = sym[p] * width + merged
+                seen = born.get(c)
+                if seen is None:
+                    born[c] = [w, p]
+                else:
+                    seen[0] += w
+                    seen.append(p)
             after = nxt[r]
             if after != n:
                 c = b * width + sym[after]
@@ -436,21 +442,19 @@ class _Chain:
                         del count[c]
                         added.pop(c, None)
                         groups.pop(c, None)
+                # the symbol after is final unless the next occurrence starts there
+                c = merged * width + (merged if sym[after] == a and sym[nxt[after]] == b else sym[after])
+                seen = born.get(c)
+                if seen is None:
+                    born[c] = [w, s]
+                else:
+                    seen[0] += w
+                    seen.append(s)
                 prv[after] = s
-                gained.append(s)
             sym[s] = merged
             sym[r] = -1
             nxt[s] = after
             last = s
-        born: dict[int, list[int]] = {}  # pair -> [count, slots...] (ascending)
-        for t in gained:
-            c = sym[t] * width + sym[nxt[t]]
-            seen = born.get(c)
-            if seen is None:
-                born[c] = [weight[t], t]
-            else:
-                seen[0] += weight[t]
-                seen.append(t)
         entries: list[HeapEntry] = []
         for c, (total, *slots) in born.items():
             if total >= min_count:
