@@ -373,7 +373,7 @@ class _Chain:
         right = nxt[pos]
         after = nxt[right]
         before = prv[pos]
-        lost = np.unique(np.concatenate([before[before != n], right[after != n]]))
+        lost = _beside(before, right, before != n, after != n)
         lost_codes = sym[lost] * self.width + sym[nxt[lost]]
         keep = lost_codes != code  # the rest of a run of the merged pair; its count is gone already
         if np.any(keep):
@@ -386,7 +386,7 @@ class _Chain:
         prv[after] = pos
         prv[n] = n
         before = prv[pos]
-        gained = np.unique(np.concatenate([before[before != n], pos[after != n]]))
+        gained = _beside(before, pos, before != n, after != n)
         return self._group(sym[gained] * self.width + sym[nxt[gained]], gained)
 
     def _few(self, parts: list[Slots], code: int, merged: int) -> list[HeapEntry]:
@@ -486,6 +486,18 @@ class _Chain:
         offsets = np.zeros(rows + 1, dtype=np.int64)
         np.cumsum(np.bincount(row_of[alive], minlength=rows), out=offsets[1:])
         return self.sym[:n][alive], offsets
+
+
+def _beside(left: np.ndarray, right: np.ndarray, left_ok: np.ndarray, right_ok: np.ndarray) -> np.ndarray:
+    """The slots ``left[i]``, ``right[i]`` of every occurrence ``i`` where ``ok``, ascending and
+    each once. Occurrences are ascending and do not overlap, so ``right[i - 1] <= left[i]``, equal
+    only where two occurrences share the slot between them: interleaving sorts, and dropping a
+    slot equal to the one before it removes the repeats (no sort needed)."""
+    both = np.stack([left, right], axis=1).ravel()
+    ok = np.stack([left_ok, right_ok], axis=1).ravel()
+    ok[1:] &= both[1:] != both[:-1]
+    kept: np.ndarray = both[ok]
+    return kept
 
 
 def _left_to_right(pos: np.ndarray, nxt: np.ndarray) -> np.ndarray:
