@@ -238,9 +238,10 @@ Slots = np.ndarray | list[int]
 
 
 def _ascending(parts: list[Slots]) -> list[int]:
-    """The slots of ``parts``, ascending, as Python ints."""
-    if len(parts) == 1 and isinstance(parts[0], list):
-        return parts[0]  # kept ascending where it was made
+    """The slots of ``parts``, ascending, as Python ints (each part is ascending as stored)."""
+    if len(parts) == 1:
+        only = parts[0]
+        return only if isinstance(only, list) else only.tolist()
     return sorted(itertools.chain.from_iterable(p if isinstance(p, list) else p.tolist() for p in parts))
 
 
@@ -253,8 +254,9 @@ class _Chain:
     row order, then position order, for ever. ``nxt``/``prv`` link the live slots of a chunk;
     slot ``n`` is a sentinel (symbol -1) that ends every chunk. A pair is the integer code
     ``left * width + right``. Per pair kept (count at least ``min_count``): its count, and the
-    slots where it was seen (a slice of the sorted first index plus arrays added as it appeared
-    elsewhere; stale slots are dropped when read, by checking the symbols there).
+    slots where it was seen (a slice of the sorted first index plus arrays or lists added as it
+    appeared elsewhere, each ascending; stale slots are dropped when read, by checking the symbols
+    there).
 
     A merge of many occurrences runs as numpy array operations; most merges late in training
     have a few occurrences, where a numpy call costs more than the work, so those run as plain
