@@ -159,11 +159,6 @@ class Learned:
     symbols: np.ndarray  # every training chunk's symbols after the last merge, chunk after chunk
     offsets: np.ndarray  # chunk ``i`` is ``symbols[offsets[i]:offsets[i + 1]]``
 
-    def words(self, rows: Sequence[int]) -> list[tuple[int, ...]]:
-        """The symbols after the last merge of each training chunk in ``rows``."""
-        values, offsets = self.symbols.tolist(), self.offsets.tolist()
-        return [tuple(values[offsets[i] : offsets[i + 1]]) for i in rows]
-
 
 def learn(
     flat: np.ndarray,
