@@ -220,13 +220,14 @@ many_script_corpora = st.lists(
     base=st.sampled_from(["bytes", "chars", "chars+marker"]),
     extra=st.integers(0, 60),
     min_count=st.integers(1, 3),
-    few=st.sampled_from([0, 10**9]),
+    few=st.sampled_from([0, 3, 10**9]),  # 3: small and large merges mixed in one training
 )
 def test_trainer_matches_naive_reference_on_many_scripts(
     corpus: list[tuple[str, int]], base: str, extra: int, min_count: int, few: int
 ) -> None:
     """On chunks mixing many scripts (multi-byte characters, combining marks, runs of one symbol),
-    the fast trainer's merges and final segmentations equal the naive trainer's, both ways of merging."""
+    the fast trainer's merges and final segmentations equal the naive trainer's, either way of merging
+    and both mixed."""
     check_against_naive(corpus, base, extra, min_count, few)
 
 
@@ -258,8 +259,8 @@ def _check_against_naive(corpus: list[tuple[str, int]], base: str, extra: int, m
     v = enc.vocabulary
     assert [(v.token(a), v.token(b)) for a, b, _ in enc.merges] == want
     key_array = pa.array(keys, pa.binary())
-    from_training = enc.piece_ids(key_array)  # the cache training filled
-    enc._cache.clear()
+    from_training = enc.piece_ids(key_array)  # the training chunks' ids, as training left them
+    enc.forget()
     values, offsets = enc.piece_ids(key_array)  # merges applied afresh
     assert np.array_equal(values, from_training[0])
     for j, symbols in enumerate(final):
@@ -463,7 +464,7 @@ def test_cache_is_bounded(monkeypatch: pytest.MonkeyPatch) -> None:
     enc = tok.fit(counts_from_texts(tok, [LOG]), capped(N_RESERVED + 256 + 60))
     want = enc.encode(LOG)
     monkeypatch.setattr(bpe_module, "CACHE_LIMIT", 5)
-    enc._cache.clear()
+    enc.forget()
     assert np.array_equal(enc.encode(LOG), want)
     assert len(enc._cache) <= 5
 
@@ -583,6 +584,37 @@ def test_save_load_round_trip(tmp_path: Path, kwargs: dict[str, object]) -> None
     for text in [LOG, "<eos>lamp <unk> oil", "Ωmega 12"]:
         assert np.array_equal(again.encode(text), enc.encode(text))
         assert again.decode(again.encode(text)) == enc.decode(enc.encode(text))
+
+
+def test_an_encoder_loaded_where_it_was_saved_reuses_the_training_chunks(tmp_path: Path) -> None:
+    """Loaded back from where it was just saved, an encoder looks up the training chunks and gives
+    the ids that merging them afresh gives."""
+    tok = BpeTokenizer(base="chars", min_pair_count=1)
+    counts = counts_from_texts(tok, [LOG])
+    enc = tok.fit(counts, capped(N_RESERVED + len(set(LOG)) + 90))
+    again = tok.load(saved(enc, tmp_path))
+    assert again._known is not None
+    keys = counts.column("key").combine_chunks()
+    looked_up = again.piece_ids(keys)
+    again.forget()
+    afresh = again.piece_ids(keys)
+    assert np.array_equal(looked_up[0], afresh[0]) and np.array_equal(looked_up[1], afresh[1])
+
+
+def test_files_replaced_after_saving_are_not_matched_with_the_saved_training_chunks(tmp_path: Path) -> None:
+    """An encoder whose files were replaced after it was saved merges every chunk from its own merges."""
+    tok = BpeTokenizer(min_pair_count=1)
+    counts = counts_from_texts(tok, [LOG])
+    other = tok.fit(counts, capped(N_RESERVED + 256 + 20))
+    saved(other, tmp_path / "other")
+    enc = tok.fit(counts, capped(N_RESERVED + 256 + 80))
+    saved(enc, tmp_path / "here")
+    for name in ("vocab.arrow", "tokenizer.arrow"):
+        (tmp_path / "here" / name).write_bytes((tmp_path / "other" / name).read_bytes())
+    loaded = tok.load(tmp_path / "here")
+    assert loaded._known is None
+    assert np.array_equal(loaded.encode(LOG), other.encode(LOG))
+    assert not np.array_equal(loaded.encode(LOG), enc.encode(LOG))
 
 
 def test_load_rejects_malformed(tmp_path: Path) -> None:
@@ -740,12 +772,12 @@ def test_merging_many_chunks_together_equals_one_by_one(texts: list[str], base: 
     alphabet = 256 if base == "bytes" else len(set("".join(trained))) + bool(marker)
     enc = tok.fit(counts_table([(t.encode(), 1) for t in trained]), capped(N_RESERVED + alphabet + extra))
     keys = pa.array([t.encode() for t in texts], pa.binary())
-    enc._cache.clear()
+    enc.forget()
     together = enc.piece_ids(keys)
     saved = bpe_module.BATCH_MISSES
     setattr(bpe_module, "BATCH_MISSES", 10**9)  # noqa: B010 (a Final constant, changed only for this check)
     try:
-        enc._cache.clear()
+        enc.forget()
         one_by_one = enc.piece_ids(keys)
     finally:
         setattr(bpe_module, "BATCH_MISSES", saved)  # noqa: B010

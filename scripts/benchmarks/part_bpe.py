@@ -172,12 +172,12 @@ def _english_like(quick: bool) -> Iterator[Measure]:
 
     def encode_all(encoder: BpeEncoder, *, empty_cache: bool = False) -> None:
         if empty_cache:
-            encoder._cache.clear()  # as if loaded from disk: every distinct chunk is merged once
+            encoder.forget()  # as if loaded in a new process: every distinct chunk is merged once
         for i in range(0, len(docs), 256):  # batches, as a build encodes
             encoder.encode_batch(docs[i : i + 256])
 
     empty = best_time(lambda: encode_all(enc, empty_cache=True))
-    enc = tok.fit(counts, spec)  # the state a build encodes with: its chunk cache as training left it
+    enc = tok.fit(counts, spec)  # the state a build encodes with: the training chunks' ids as training left them
     after = best_time(lambda: encode_all(enc))
     ids, _ = enc.encode_batch(docs)
     if enc.decode(ids) != text:

@@ -16,7 +16,8 @@ numpy group-by, large merges are array operations and pairs that fall below the
 minimum count are forgotten. The next pair comes from a heap with lazy
 invalidation: every pair always has an entry whose key is at most its true key
 ``(-count, first slot)``; a popped entry whose key is out of date is pushed back
-with the true key, so the entry that survives a pop is the true best pair.
+with a truer key, so the entry that survives a pop with its true key is the true
+best pair.
 """
 
 from __future__ import annotations
@@ -158,11 +159,6 @@ class Learned:
     symbols: np.ndarray  # every training chunk's symbols after the last merge, chunk after chunk
     offsets: np.ndarray  # chunk ``i`` is ``symbols[offsets[i]:offsets[i + 1]]``
 
-    def words(self, rows: Sequence[int]) -> list[tuple[int, ...]]:
-        """The symbols after the last merge of each training chunk in ``rows``."""
-        values, offsets = self.symbols.tolist(), self.offsets.tolist()
-        return [tuple(values[offsets[i] : offsets[i + 1]]) for i in rows]
-
 
 def learn(
     flat: np.ndarray,
@@ -185,9 +181,12 @@ def learn(
     Heap keys are ``(-count, first slot, pair code)``; a slot (see :class:`_Chain`) orders
     occurrences by row, then position, and does not move when symbols before it merge. A merge
     creates pairs only with its new id, so an existing pair never gains: its count and first
-    occurrence change only by losses, and an entry whose count is still current is exact. A
-    popped entry with a stale count is pushed back with the true key; a pair is pushed once when
-    it appears, so each pair has one live entry. A pair below ``min_count`` can never reach it
+    occurrence change only by losses, so an entry pushed with the true key is exact while its
+    count is current. A popped entry with a stale count is pushed back with the current count and
+    its old first slot (still a lower bound; finding the true one costs a search, often wasted
+    on a pair that loses again before it is popped); popped again with a current count, its true
+    first slot is looked up, and it is pushed back once more if that differs. A pair is pushed
+    once when it appears, so each pair has one live entry. A pair below ``min_count`` can never reach it
     again, so it is forgotten (counts, positions) the moment it falls below.
     """
     merges: list[tuple[int, int, int]] = []
@@ -198,14 +197,23 @@ def learn(
         heap = chain.heap()
         width = chain.width
         pbar.set_postfix_str("")
+        loose: set[int] = set()  # pairs whose entry's first slot may be too early
         while heap and len(tokens) < limit:
-            neg, _, code = heapq.heappop(heap)
+            neg, slot, code = heapq.heappop(heap)
             c = chain.count.get(code, 0)
             if c < min_count:
+                loose.discard(code)
                 continue  # counts only fall, so the pair is done
             if c != -neg:
-                heapq.heappush(heap, (-c, chain.first(code), code))
+                heapq.heappush(heap, (-c, slot, code))  # the old first slot is still a lower bound
+                loose.add(code)
                 continue
+            if code in loose:
+                loose.discard(code)
+                first = chain.first(code)
+                if first != slot:
+                    heapq.heappush(heap, (-c, first, code))
+                    continue
             a, b = divmod(code, width)
             z = len(tokens)
             tokens.append(tokens[a] + tokens[b])
@@ -219,6 +227,17 @@ def learn(
 
 
 HeapEntry = tuple[int, int, int]  # (-count, first slot, pair code)
+# Where a pair was seen: an array, or a short list of slots (a pair born in a small merge, where
+# making an array costs more than it saves).
+Slots = np.ndarray | list[int]
+
+
+def _ascending(parts: list[Slots]) -> list[int]:
+    """The slots of ``parts``, ascending, as Python ints (each part is ascending as stored)."""
+    if len(parts) == 1:
+        only = parts[0]
+        return only if isinstance(only, list) else only.tolist()
+    return sorted(itertools.chain.from_iterable(p if isinstance(p, list) else p.tolist() for p in parts))
 
 
 @dataclass(slots=True)
@@ -230,8 +249,9 @@ class _Chain:
     row order, then position order, for ever. ``nxt``/``prv`` link the live slots of a chunk;
     slot ``n`` is a sentinel (symbol -1) that ends every chunk. A pair is the integer code
     ``left * width + right``. Per pair kept (count at least ``min_count``): its count, and the
-    slots where it was seen (a slice of the sorted first index plus arrays added as it appeared
-    elsewhere; stale slots are dropped when read, by checking the symbols there).
+    slots where it was seen (a slice of the sorted first index plus arrays or lists added as it
+    appeared elsewhere, each ascending; stale slots are dropped when read, by checking the symbols
+    there).
 
     A merge of many occurrences runs as numpy array operations; most merges late in training
     have a few occurrences, where a numpy call costs more than the work, so those run as plain
@@ -248,7 +268,7 @@ class _Chain:
     count: dict[int, int]
     sorted_slots: np.ndarray  # slots of the first index, grouped by pair
     groups: dict[int, tuple[int, int]]  # pair -> its range in sorted_slots
-    added: dict[int, list[np.ndarray]] = field(default_factory=dict)
+    added: dict[int, list[Slots]] = field(default_factory=dict)
     firsts: list[HeapEntry] = field(default_factory=list)
 
     @classmethod
@@ -307,7 +327,7 @@ class _Chain:
         heapq.heapify(heap)
         return heap
 
-    def _seen(self, code: int) -> list[np.ndarray]:
+    def _seen(self, code: int) -> list[Slots]:
         """The position lists of pair ``code`` (taken out: the caller puts back what it keeps)."""
         parts = self.added.pop(code, [])
         span = self.groups.pop(code, None)
@@ -315,9 +335,9 @@ class _Chain:
             parts.append(self.sorted_slots[span[0] : span[1]])
         return parts
 
-    def _where(self, parts: list[np.ndarray], code: int) -> np.ndarray:
+    def _where(self, parts: list[Slots], code: int) -> np.ndarray:
         """Ascending slots of ``parts`` where pair ``code`` occurs now."""
-        pos = np.concatenate(parts) if len(parts) > 1 else parts[0]
+        pos = np.concatenate(parts) if len(parts) > 1 else np.asarray(parts[0], dtype=np.int64)
         a, b = divmod(code, self.width)
         found: np.ndarray = pos[(self.sym[pos] == a) & (self.sym[self.nxt[pos]] == b)]
         found.sort()
@@ -325,7 +345,14 @@ class _Chain:
 
     def first(self, code: int) -> int:
         """The slot of the pair's first occurrence now (its positions compacted on the way)."""
-        pos = self._where(self._seen(code), code)
+        parts = self._seen(code)
+        if all(isinstance(p, list) for p in parts):
+            sym, nxt = self.twins[0], self.twins[1]
+            a, b = divmod(code, self.width)
+            live = [s for s in _ascending(parts) if sym[s] == a and sym[nxt[s]] == b]
+            self.added[code] = [live]
+            return live[0]
+        pos = self._where(parts, code)
         self.added[code] = [pos]
         return int(pos[0])
 
@@ -343,7 +370,7 @@ class _Chain:
         right = nxt[pos]
         after = nxt[right]
         before = prv[pos]
-        lost = np.unique(np.concatenate([before[before != n], right[after != n]]))
+        lost = _beside(before, right, before != n, after != n)
         lost_codes = sym[lost] * self.width + sym[nxt[lost]]
         keep = lost_codes != code  # the rest of a run of the merged pair; its count is gone already
         if np.any(keep):
@@ -356,60 +383,80 @@ class _Chain:
         prv[after] = pos
         prv[n] = n
         before = prv[pos]
-        gained = np.unique(np.concatenate([before[before != n], pos[after != n]]))
+        gained = _beside(before, pos, before != n, after != n)
         return self._group(sym[gained] * self.width + sym[nxt[gained]], gained)
 
-    def _few(self, parts: list[np.ndarray], code: int, merged: int) -> list[HeapEntry]:
-        """:meth:`merge` for a pair seen at a few slots, in plain Python (same steps, same result)."""
+    def _few(self, parts: list[Slots], code: int, merged: int) -> list[HeapEntry]:
+        """:meth:`merge` for a pair seen at a few slots, in plain Python (same result), in one pass.
+
+        Occurrences are merged in slot order as they are found. A later occurrence's own two
+        symbols are untouched by earlier merges, so finding it on the changing chain finds what
+        a scan before any merge finds. The pair left of an occurrence that directly follows the
+        previous one (its left neighbour is the previous merge's slot) was already counted lost
+        as that merge's right neighbour, and its new pair is counted once. The new pair right of
+        an occurrence ends in the merged id when the next occurrence starts right after it."""
         sym, nxt, prv, weight = self.twins
         n, width = len(sym) - 1, self.width
         a, b = divmod(code, width)
-        pos: list[int] = []
-        taken = -1  # the right slot of the last merge: in a run ``x x x`` it cannot start another
-        for s in sorted(itertools.chain.from_iterable(p.tolist() for p in parts)):
-            if s != taken and sym[s] == a and sym[nxt[s]] == b:
-                pos.append(s)
-                taken = nxt[s]
-        lost: set[int] = set()
-        for s in pos:
-            if prv[s] != n:
-                lost.add(prv[s])
-            if nxt[nxt[s]] != n:
-                lost.add(nxt[s])
-        totals: dict[int, int] = {}
-        for t in lost:
-            c = sym[t] * width + sym[nxt[t]]
-            if c != code:  # the rest of a run of the merged pair; its count is gone already
-                totals[c] = totals.get(c, 0) + weight[t]
-        self._lose(totals.items())
-        for s in pos:
+        count, min_count, added, groups = self.count, self.min_count, self.added, self.groups
+        born: dict[int, list[int]] = {}  # new pair -> [count, slots...] (ascending)
+        last = -1  # the slot of the last merge
+        for s in _ascending(parts):
+            if sym[s] != a:
+                continue
             r = nxt[s]
+            if sym[r] != b:
+                continue
+            w = weight[s]
+            p = prv[s]
+            # a lost pair's count falls at once; one that falls below min_count is forgotten there
+            # (counts only fall, so it could not come back); the merged pair's own count is gone
+            if p != n and p != last:
+                c = sym[p] * width + a
+                k = count.get(c)
+                if k is not None and c != code:
+                    if k - w >= min_count:
+                        count[c] = k - w
+                    else:
+                        del count[c]
+                        added.pop(c, None)
+                        groups.pop(c, None)
+                c = sym[p] * width + merged
+                seen = born.get(c)
+                if seen is None:
+                    born[c] = [w, p]
+                else:
+                    seen[0] += w
+                    seen.append(p)
             after = nxt[r]
+            if after != n:
+                c = b * width + sym[after]
+                k = count.get(c)
+                if k is not None and c != code:
+                    if k - w >= min_count:
+                        count[c] = k - w
+                    else:
+                        del count[c]
+                        added.pop(c, None)
+                        groups.pop(c, None)
+                # the symbol after is final unless the next occurrence starts there
+                c = merged * width + (merged if sym[after] == a and sym[nxt[after]] == b else sym[after])
+                seen = born.get(c)
+                if seen is None:
+                    born[c] = [w, s]
+                else:
+                    seen[0] += w
+                    seen.append(s)
+                prv[after] = s
             sym[s] = merged
             sym[r] = -1
             nxt[s] = after
-            if after != n:
-                prv[after] = s
-        gained: set[int] = set()
-        for s in pos:
-            if prv[s] != n:
-                gained.add(prv[s])
-            if nxt[s] != n:
-                gained.add(s)
-        born: dict[int, list[int]] = {}  # pair -> [count, slots...] (ascending)
-        for t in sorted(gained):
-            c = sym[t] * width + sym[nxt[t]]
-            seen = born.get(c)
-            if seen is None:
-                born[c] = [weight[t], t]
-            else:
-                seen[0] += weight[t]
-                seen.append(t)
+            last = s
         entries: list[HeapEntry] = []
         for c, (total, *slots) in born.items():
-            if total >= self.min_count:
-                self.count[c] = total
-                self.added[c] = [np.array(slots, dtype=np.int64)]
+            if total >= min_count:
+                count[c] = total
+                added[c] = [slots]
                 entries.append((-total, slots[0], c))
         return entries
 
@@ -436,6 +483,18 @@ class _Chain:
         offsets = np.zeros(rows + 1, dtype=np.int64)
         np.cumsum(np.bincount(row_of[alive], minlength=rows), out=offsets[1:])
         return self.sym[:n][alive], offsets
+
+
+def _beside(left: np.ndarray, right: np.ndarray, left_ok: np.ndarray, right_ok: np.ndarray) -> np.ndarray:
+    """The slots ``left[i]``, ``right[i]`` of every occurrence ``i`` where ``ok``, ascending and
+    each once. Occurrences are ascending and do not overlap, so ``right[i - 1] <= left[i]``, equal
+    only where two occurrences share the slot between them: interleaving sorts, and dropping a
+    slot equal to the one before it removes the repeats (no sort needed)."""
+    both = np.stack([left, right], axis=1).ravel()
+    ok = np.stack([left_ok, right_ok], axis=1).ravel()
+    ok[1:] &= both[1:] != both[:-1]
+    kept: np.ndarray = both[ok]
+    return kept
 
 
 def _left_to_right(pos: np.ndarray, nxt: np.ndarray) -> np.ndarray:
@@ -480,12 +539,18 @@ def char_symbols(
         texts = [k.decode("utf-8") for k in keys]
     except UnicodeDecodeError as exc:
         raise TokenizerError(f"a chunk key is not UTF-8 ({exc}); base = 'chars' needs text keys") from exc
-    points = np.frombuffer("".join(texts).encode("utf-32-le"), dtype="<u4")
-    seen, inverse = np.unique(points, return_inverse=True)
-    alphabet = [chr(c).encode("utf-8") for c in seen.tolist()]
+    points = np.frombuffer("".join(texts).encode("utf-32-le"), dtype="<u4").astype(np.int64)
     lengths = np.fromiter(map(len, texts), dtype=np.int64, count=len(texts))
+    # a table over code points up to the largest seen (at most 0x10FFFF entries) numbers the
+    # characters in code-point order without sorting every character of every chunk
+    weighted = np.bincount(points, weights=np.repeat(freqs, lengths)) if len(points) else np.zeros(0)
+    seen = np.flatnonzero(np.bincount(points)) if len(points) else np.zeros(0, np.int64)
+    number = np.zeros(len(weighted), dtype=np.int64)
+    number[seen] = np.arange(len(seen))
+    inverse = number[points]
+    alphabet = [chr(c).encode("utf-8") for c in seen.tolist()]
     counts = np.zeros(len(seen) + bool(marker), dtype=np.int64)
-    counts[: len(seen)] = np.bincount(inverse.ravel(), weights=np.repeat(freqs, lengths), minlength=len(seen))
+    counts[: len(seen)] = weighted[seen]
     flat = inverse.ravel().astype(np.int64) + n_reserved
     if marker:
         if marker.encode("utf-8") in alphabet:

@@ -39,6 +39,7 @@ from typing import Any, ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import regex
 
 from seqpipe import _patterns
@@ -251,10 +252,8 @@ class BpeTokenizer(Tokenizer):
             roles=roles,
         )
         encoder = BpeEncoder(self, vocabulary, learned.merges, alphabet_size=len(alphabet))
-        # training already segmented every train chunk: keep the most frequent as cache entries,
-        # so encoding the train split right after fitting is lookups only
-        top = np.argsort(-freqs, kind="stable")[:CACHE_LIMIT].tolist()
-        encoder._cache.update(zip([keys[i] for i in top], learned.words(top), strict=True))
+        # training already segmented every train chunk: encoding them later is a table look-up
+        encoder._known = Known(pa.array(keys, pa.binary()), learned.symbols, learned.offsets)
         return encoder
 
     # -- storage ---------------------------------------------------------------
@@ -291,7 +290,9 @@ class BpeTokenizer(Tokenizer):
         if self.literal_reserved:
             names = tuple(vocabulary.token(i).decode("utf-8", errors="replace") for i in range(vocabulary.n_reserved))
             tokenizer = dataclasses.replace(self, reserved_names=names)
-        return BpeEncoder(tokenizer, vocabulary, merges, alphabet_size=alphabet_size)
+        encoder = BpeEncoder(tokenizer, vocabulary, merges, alphabet_size=alphabet_size)
+        encoder._known = _saved_known(directory, encoder)
+        return encoder
 
     def _params(self, alphabet_size: int, n_reserved: int) -> dict[str, Any]:
         plain: dict[str, Any] = to_plain(self)
@@ -349,6 +350,45 @@ def _check_merges(
     return merges
 
 
+@dataclass(frozen=True, slots=True)
+class Known:
+    """Chunks whose ids are known in advance (the training chunks, segmented by training):
+    chunk ``i`` of ``keys`` (binary) has ids ``symbols[offsets[i]:offsets[i + 1]]``."""
+
+    keys: pa.Array
+    symbols: np.ndarray
+    offsets: np.ndarray
+
+    def rows(self, keys: pa.Array) -> np.ndarray:
+        """The row of each of ``keys`` (binary), -1 where it is not known."""
+        found = pc.index_in(keys, value_set=self.keys)
+        rows: np.ndarray = found.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
+        return rows
+
+
+# The training chunks of the encoder last saved, per directory (one entry): a build that fits and
+# then encodes in one process loads the encoder back from disk, and with these it looks up the
+# train split's chunks instead of merging each again. Used only when the loaded merges and
+# vocabulary equal the saved ones, so a changed file can never be encoded with stale ids.
+_SAVED: dict[str, tuple[BpeEncoder, Known]] = {}
+
+
+def _saved_known(directory: Path, encoder: BpeEncoder) -> Known | None:
+    entry = _SAVED.get(str(directory))
+    if entry is None:
+        return None
+    saved, known = entry
+    same = (
+        saved.tokenizer == encoder.tokenizer
+        and saved.alphabet_size == encoder.alphabet_size
+        and saved.merges == encoder.merges
+        and saved.vocabulary.n_reserved == encoder.vocabulary.n_reserved
+        and saved.vocabulary.roles == encoder.vocabulary.roles
+        and saved.vocabulary.tokens.equals(encoder.vocabulary.tokens)
+    )
+    return known if same else None
+
+
 class BpeEncoder(Encoder):
     """A trained byte-pair encoding: merges by rank, applied per distinct chunk with a cache."""
 
@@ -368,6 +408,7 @@ class BpeEncoder(Encoder):
         self._ranks = rank_table(self.merges)
         self._rank_arrays = RankArrays.of(self.merges, len(vocabulary))
         self._cache: dict[bytes, tuple[int, ...]] = {}
+        self._known: Known | None = None
         n_reserved = vocabulary.n_reserved
         tokens = [bytes(t) for t in vocabulary.tokens.to_pylist()]
         marker = tokenizer.end_of_word.encode("utf-8")
@@ -454,14 +495,35 @@ class BpeEncoder(Encoder):
             cache.update(fresh)
         return fresh
 
+    def forget(self) -> None:
+        """Drop every chunk whose ids are remembered (the cache and the training chunks), so that
+        each chunk is merged afresh, as by an encoder loaded in a new process."""
+        self._cache.clear()
+        self._known = None
+
     def piece_ids(self, keys: pa.Array) -> tuple[np.ndarray, np.ndarray]:
-        chunks: list[bytes] = keys.to_pylist()
-        fresh = self._fill(chunks)
-        runs = [fresh.get(k) or self.chunk_ids(k) for k in chunks]
-        lengths = np.fromiter(map(len, runs), dtype=np.int64, count=len(runs))
-        offsets = np.zeros(len(runs) + 1, dtype=np.int64)
+        chunks = keys.cast(pa.binary())
+        rows = self._known.rows(chunks) if self._known is not None else np.full(len(chunks), -1, np.int64)
+        hit = rows >= 0
+        missing: list[bytes] = chunks.filter(pa.array(~hit)).to_pylist() if not hit.all() else []
+        fresh = self._fill(missing)
+        runs = [fresh.get(k) or self.chunk_ids(k) for k in missing]
+        lengths = np.empty(len(chunks), dtype=np.int64)
+        if self._known is not None:
+            lengths[hit] = np.diff(self._known.offsets)[rows[hit]]
+        lengths[~hit] = np.fromiter(map(len, runs), dtype=np.int64, count=len(runs))
+        offsets = np.zeros(len(chunks) + 1, dtype=np.int64)
         np.cumsum(lengths, out=offsets[1:])
-        values = np.fromiter(itertools.chain.from_iterable(runs), dtype=np.int64, count=int(offsets[-1]))
+        values = np.empty(int(offsets[-1]), dtype=np.int64)
+        from_known = np.repeat(hit, lengths)
+        if self._known is not None and hit.any():
+            found = rows[hit]
+            values[from_known], _ = expand(
+                self._known.symbols, self._known.offsets, found, np.array([len(found)], np.int64)
+            )
+        values[~from_known] = np.fromiter(
+            itertools.chain.from_iterable(runs), dtype=np.int64, count=len(values) - int(from_known.sum())
+        )
         return values, offsets
 
     def decode(self, ids: Sequence[int] | np.ndarray, *, show_reserved: bool = False) -> str:
@@ -503,4 +565,7 @@ class BpeEncoder(Encoder):
             }
         )
         write_table(directory / MERGES_FILE, table)
+        _SAVED.clear()
+        if self._known is not None:
+            _SAVED[str(directory)] = (self, self._known)
         return [MERGES_FILE]
