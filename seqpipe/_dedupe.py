@@ -37,6 +37,7 @@ from typing import Any, Final
 import numpy as np
 import pyarrow as pa
 
+from seqpipe.clean._quality import mix64
 from seqpipe.counts import first_occurrence
 from seqpipe.errors import ShardCorruptError
 from seqpipe.ingest import count_part, encode_part, fixed16, read_part_docs, signature_rows
@@ -47,8 +48,6 @@ from seqpipe.splits import assign_splits
 # document and band): about 40 bytes each, so some 40 MB of keys in a worker at most.
 ROWS_PER_PARTITION: Final = 1 << 20
 MAX_PARTITIONS: Final = 4096
-_MIX1: Final = np.uint64(0xBF58476D1CE4E5B9)
-_MIX2: Final = np.uint64(0x94D049BB133111EB)
 _GOLDEN: Final = np.uint64(0x9E3779B97F4A7C15)
 _PLACES: Final = pa.schema([("part", pa.int32()), ("row", pa.int32())])
 
@@ -73,17 +72,6 @@ def partitions_for(documents: int, rows_per_document: int) -> int:
     the keys are hashes, so partitions are even). Depends on the corpus only, never on workers."""
     rows = documents * max(1, rows_per_document)
     return int(min(MAX_PARTITIONS, max(1, -(-rows // ROWS_PER_PARTITION))))
-
-
-def _mix(x: np.ndarray) -> np.ndarray:
-    """splitmix64's finalizer (Steele, Lea and Flood 2014), as in seqpipe.splits."""
-    with np.errstate(over="ignore"):
-        x = x ^ (x >> np.uint64(30))
-        x = x * _MIX1
-        x = x ^ (x >> np.uint64(27))
-        x = x * _MIX2
-        out: np.ndarray = x ^ (x >> np.uint64(31))
-        return out
 
 
 def _path(scheme: Scheme, kind: str, number: int) -> Path:
@@ -124,7 +112,7 @@ def _open(path: Path) -> Any:
 
 
 def _batch(path: Path, index: int) -> pa.RecordBatch:
-    return _open(path).get_batch(index)
+    return _open(path).get_record_batch(index)
 
 
 def _binary(values: np.ndarray) -> pa.Array:
@@ -170,9 +158,9 @@ def band_rows(sig: np.ndarray, bands: int, rows: int) -> tuple[np.ndarray, np.nd
 def _band_hash(band: np.ndarray, values: np.ndarray) -> np.ndarray:
     words = values.view("<u4")
     with np.errstate(over="ignore"):
-        h = _mix(band.astype(np.uint64) * _GOLDEN + _GOLDEN)
+        h = mix64(band.astype(np.uint64) * _GOLDEN + _GOLDEN)
         for r in range(words.shape[1]):  # a loop over a band's rows, not over documents
-            h = _mix(h ^ words[:, r].astype(np.uint64))
+            h = mix64(h ^ words[:, r].astype(np.uint64))
     return h
 
 

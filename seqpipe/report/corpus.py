@@ -146,15 +146,7 @@ def load_split(dataset: DatasetLike, name: str, roles: Roles) -> SplitTokens:
             f"split {name!r}: document ranges are out of order, overlap, or run past "
             f"the {len(ids)}-token stream; run 'seqpipe verify' on the dataset"
         )
-    last = max(len(ids) - 1, 0)
-    has_begin = np.zeros(len(starts), dtype=bool)
-    if roles.begin is not None and len(ids):
-        has_begin = (lengths > 0) & (ids[np.minimum(starts, last)] == roles.begin)
-    has_end = np.zeros(len(starts), dtype=bool)
-    if roles.end is not None and len(ids):
-        has_end = (lengths > has_begin) & (ids[np.clip(ends - 1, 0, last)] == roles.end)
-    content_starts = starts + has_begin
-    content_lengths = lengths - has_begin - has_end
+    content_starts, content_lengths, has_end = _content_spans(ids, starts, lengths, roles)
     return SplitTokens(
         name=name,
         ids=ids,
@@ -284,7 +276,7 @@ def _file_pieces(path: Path, dtype: np.dtype[Any]) -> list[tuple[int, int, int]]
         reader = pa.ipc.open_file(source)
         out, first = [], 0
         for i in range(reader.num_record_batches):
-            col = reader.get_batch(i).column(0)
+            col = reader.get_record_batch(i).column(0)
             offset = col.buffers()[1].address + col.offset * dtype.itemsize - whole.address
             if not 0 <= offset <= whole.size - len(col) * dtype.itemsize:
                 return None
