@@ -356,3 +356,15 @@ def test_batch_with_and_without_placeholders_segments_like_each_document_alone(k
 
     assert pieces(docs) == [pieces([d])[0] for d in docs]
     assert [b"<email>"] in [p[:1] for p in pieces(docs)]
+
+
+def test_names_with_pattern_characters_are_found_as_literal_text() -> None:
+    """The one-pass search for reserved names treats each name as literal text (punctuation,
+    spaces and non-ASCII letters included), finding exactly the documents a plain search finds."""
+    from seqpipe.tokenizers._common import _holding_a_name
+
+    names = ("[x]", "a.b", "(q)*", "\\E", "¿é?", "<ip> x", "|")
+    docs = ["a.b", "axb", "[x]", "x", "(q)*", "(qq)", "\\E", "E", "¿é?", "é", "<ip> x", "<ip>x", "a|b", "ab", ""]
+    plain = [any(n in d for n in names) for d in docs]
+    assert _holding_a_name(pa.array(docs, pa.large_string()), names).tolist() == plain
+    assert plain.count(True) == 7
