@@ -186,7 +186,7 @@ class _LastWords(threading.local):
 
     def __init__(self) -> None:
         self.docs: pa.Array | None = None
-        self.digests: list[bytes] = []
+        self.digests: list[bytes] | None = None
         self.pieces: Pieces | None = None
 
 
@@ -247,11 +247,27 @@ def words(docs: pa.Array) -> Pieces:
     last = _LAST_WORDS
     if last.pieces is not None and docs is last.docs:
         return last.pieces
-    digests = _digests(docs)
-    keep = _kept_from(last.digests, digests) if last.pieces is not None else None
-    pieces = last.pieces.subset(keep) if last.pieces is not None and keep is not None else _split_words(docs)
-    last.docs, last.digests, last.pieces = docs, digests, pieces
+    pieces = None
+    if last.pieces is not None and last.docs is not None and _may_be_kept_from(last.docs, docs):
+        if last.digests is None:
+            last.digests = _digests(last.docs)
+        digests = _digests(docs)
+        keep = _kept_from(last.digests, digests)
+        if keep is not None:
+            pieces = last.pieces.subset(keep)
+            last.docs, last.digests, last.pieces = docs, digests, pieces
+            return pieces
+    pieces = _split_words(docs)
+    last.docs, last.digests, last.pieces = docs, None, pieces  # digests taken when first needed
     return pieces
+
+
+def _may_be_kept_from(before: pa.Array, after: pa.Array) -> bool:
+    """False when ``after`` surely is not some of the documents ``before`` (a check in C, so a
+    new batch costs no digest per document): it is longer, or its first document is not among them."""
+    if len(after) > len(before):
+        return False
+    return len(after) == 0 or bool(pc.is_in(after.slice(0, 1), value_set=before)[0].as_py())
 
 
 def _split_words(docs: pa.Array) -> Pieces:

@@ -7,6 +7,7 @@ from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
 from seqpipe.clean._quality import Pieces, QualityFilter, share, words
@@ -43,13 +44,12 @@ def _repeated_rows(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: in
         h = doc.astype(np.uint64)
         for k in range(n):
             h = h * _MULTIPLIER + codes[starts + k].astype(np.uint64)
-    ordered = np.sort(h)
-    shared = np.unique(ordered[1:][ordered[1:] == ordered[:-1]])  # keys held by more than one row
+    # Arrow's hash table numbers the distinct keys (no sort); a key seen more than once marks a candidate
+    numbered = np.asarray(pc.dictionary_encode(pa.array(h)).indices.to_numpy(zero_copy_only=False), dtype=np.int64)
     out = np.zeros(len(h), dtype=bool)
-    if not len(shared):
+    candidates = np.flatnonzero(np.bincount(numbered)[numbered] > 1)
+    if not len(candidates):
         return out
-    where = np.minimum(np.searchsorted(shared, h), len(shared) - 1)
-    candidates = np.flatnonzero(shared[where] == h)
     at = starts[candidates]
     rows = np.stack([doc[candidates], *(codes[at + k] for k in range(n))], axis=1)
     _, inverse, counts = np.unique(rows, axis=0, return_inverse=True, return_counts=True)
