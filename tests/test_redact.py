@@ -323,6 +323,8 @@ _ALL_SAMPLES = [
     "call 0161 496 0123 now",
     "paid 4111-1111-1111-1111 at the quay",
     "crew of 12 34 56, ticket 1234567, at 12:30:45 sharp",
+    "mate@quay.example:2001:db8::1 then 1.2.mate@quay.example.3.4 and +mate@quay.example44 1632 960123",
+    "4111 1111 1111 1111@pier.example and 192.0.2.1:ab:cd: +44 (0161) 496 0123",
 ]
 
 
