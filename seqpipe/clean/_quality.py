@@ -81,13 +81,11 @@ _ASCII_SPACE[:128] = np.asarray(
 )
 
 
-def word_sizes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
-    """Per document: the number of words of :func:`words` and the code points inside them,
-    counted over the UTF-8 bytes with numpy (the same whitespace: pyarrow's ``utf8_is_space``,
-    asked once per distinct non-ASCII code point) without cutting the text into words."""
-    docs = as_documents(docs)
-    data, offsets = utf8_buffers(docs)
-    space = _ASCII_SPACE[data]
+def space_bytes(data: np.ndarray) -> np.ndarray:
+    """Per byte of valid UTF-8 ``data``: whether it belongs to a whitespace code point as
+    pyarrow's ``utf8_is_space`` (and so ``utf8_split_whitespace``) sees it, asked once per
+    distinct non-ASCII code point."""
+    space: np.ndarray = _ASCII_SPACE[data]
     wide = np.flatnonzero(data >= 0xC0)
     if len(wide):  # a multi-byte code point's flag goes on all its bytes
         flag = classify(code_points(data, wide), pc.utf8_is_space)
@@ -95,16 +93,7 @@ def word_sizes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
         for k in range(4):
             at = size > k
             space[wide[at] + k] = flag[at]
-    lead = (data & 0xC0) != 0x80  # the first byte of each code point
-    before = np.empty(len(data), dtype=bool)  # the byte before is whitespace, or there is none
-    if len(data):
-        before[0] = True
-        before[1:] = space[:-1]
-        before[offsets[:-1][offsets[1:] > offsets[:-1]]] = True
-    starts = per_document_sum(before & lead & ~space, offsets)
-    spaces = per_document_sum(space & lead, offsets)
-    length = np.asarray(pc.utf8_length(docs).to_numpy(zero_copy_only=False), dtype=np.int64)
-    return starts, length - spaces
+    return space
 
 
 def per_document_sum(flags: np.ndarray, offsets: np.ndarray) -> np.ndarray:
@@ -143,6 +132,7 @@ class Pieces:
     # filled by encoded() the first time it is asked: the distinct pieces and each piece's index
     distinct: pa.Array | None = None
     codes: np.ndarray | None = None
+    sizes: np.ndarray | None = None  # filled by lengths() (or by the cut) when first asked
 
     def per_document(self, values: np.ndarray) -> np.ndarray:
         """Sum of ``values`` (one per piece) for each document."""
@@ -153,8 +143,12 @@ class Pieces:
         return np.bincount(self.doc, minlength=self.documents).astype(np.int64)
 
     def lengths(self) -> np.ndarray:
-        """Code points of each piece."""
-        return np.asarray(pc.utf8_length(self.text).to_numpy(zero_copy_only=False), dtype=np.int64)
+        """Code points of each piece; computed once and kept."""
+        if self.sizes is None:
+            sizes = np.asarray(pc.utf8_length(self.text).to_numpy(zero_copy_only=False), dtype=np.int64)
+            object.__setattr__(self, "sizes", sizes)
+            return sizes
+        return self.sizes
 
     def encoded(self) -> tuple[pa.Array, np.ndarray]:
         """The distinct pieces (some may no longer occur after :meth:`subset`) and, per piece, its
@@ -177,6 +171,7 @@ class Pieces:
             int(keep.sum()),
             self.distinct,
             None if self.codes is None else self.codes[inside],
+            None if self.sizes is None else self.sizes[inside],
         )
 
 
@@ -271,12 +266,30 @@ def _may_be_kept_from(before: pa.Array, after: pa.Array) -> bool:
 
 
 def _split_words(docs: pa.Array) -> Pieces:
-    # pyarrow 26's utf8_split_whitespace sometimes keeps a trailing whitespace character of the
-    # array's last value inside its last word (it looks past the end of the data buffer; seen
-    # on about 1 call in 3 for the same input): a non-blank sentinel value after the documents
-    # gives every real value a well-defined next byte, and its own split is dropped again
-    padded = pa.concat_arrays([docs, pa.array(["x"], docs.type)])
-    return _pieces(docs, pc.utf8_split_whitespace(padded).slice(0, len(docs)))
+    """The words of ``docs`` as ``utf8_split_whitespace`` cuts them, found over the UTF-8 bytes
+    with numpy: whitespace bytes are squeezed out and each word starts where a non-whitespace
+    byte follows whitespace or a document's start, so Arrow gets the squeezed buffer and the
+    word offsets (no string per word is built)."""
+    data, offsets = utf8_buffers(docs)
+    if not len(data):
+        return Pieces(pa.array([], pa.large_string()), np.zeros(0, np.int64), len(docs), sizes=np.zeros(0, np.int64))
+    space = space_bytes(data)
+    keep = ~space
+    starts = keep.copy()
+    starts[1:] &= space[:-1]
+    first = offsets[:-1][offsets[:-1] < len(data)]  # first bytes of the documents (a word never spans two)
+    starts[first] = keep[first]
+    # np.compress, not boolean indexing: faster on byte arrays (DEVELOPERS.md)
+    squeezed = np.compress(keep, data)
+    bounds = np.append(np.flatnonzero(np.compress(keep, starts)), len(squeezed)).astype(np.int64)
+    text = pa.LargeStringArray.from_buffers(len(bounds) - 1, pa.py_buffer(bounds), pa.py_buffer(squeezed))
+    doc = np.repeat(np.arange(len(docs), dtype=np.int64), per_document_sum(starts, offsets))
+    # code points per word: its bytes less its continuation bytes (few in most text)
+    sizes = np.diff(bounds)
+    continuation = np.flatnonzero((squeezed & 0xC0) == 0x80)
+    if len(continuation):
+        sizes -= np.bincount(np.searchsorted(bounds, continuation, side="right") - 1, minlength=len(sizes))
+    return Pieces(text, doc, len(docs), sizes=sizes)
 
 
 def lines(docs: pa.Array) -> Pieces:
