@@ -202,6 +202,17 @@ def test_repeated_ngrams_is_exact_under_hash_collisions(monkeypatch: pytest.Monk
         assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
 
 
+@settings(max_examples=100, deadline=None)
+@given(keys=st.lists(st.integers(0, 2**64 - 1) | st.integers(0, 40) | st.integers(2**64 - 40, 2**64 - 1), max_size=300))
+def test_shared_keys_are_exactly_the_keys_seen_twice(keys: list[int]) -> None:
+    """The bucket-then-hash search for repeated n-gram keys returns exactly the indices of keys
+    that occur more than once (keys with equal top bits included)."""
+    from seqpipe.clean.repeated_ngrams import _shared_keys
+
+    got = _shared_keys(np.array(keys, dtype=np.uint64)).tolist()
+    assert got == [i for i, k in enumerate(keys) if keys.count(k) > 1]
+
+
 def test_letter_share_counts_non_ascii_code_points_as_re2_does() -> None:
     """Letters beyond ASCII (Greek, CJK, an astral letter) count; combining marks, symbols, emoji and
     no-break spaces are visible non-letters; RE2's whitespace (tab, LF, FF, CR, space) is not visible."""

@@ -28,9 +28,8 @@ def covered_by_repeats(pieces: Pieces, n: int) -> np.ndarray:
     if not len(starts):
         return covered
     dup_starts = starts[_repeated_rows(pieces.doc[starts], codes, starts, n)]
-    edges = np.zeros(m + 1, dtype=np.int64)  # +1 where a repeated n-gram starts, -1 after it ends
-    np.add.at(edges, dup_starts, 1)
-    np.add.at(edges, dup_starts + n, -1)
+    # +1 where a repeated n-gram starts, -1 after it ends
+    edges = np.bincount(dup_starts, minlength=m + 1) - np.bincount(dup_starts + n, minlength=m + 1)
     covered = np.cumsum(edges[:m]) > 0
     return covered
 
@@ -44,16 +43,28 @@ def _repeated_rows(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: in
         h = doc.astype(np.uint64)
         for k in range(n):
             h = h * _MULTIPLIER + codes[starts + k].astype(np.uint64)
-    # Arrow's hash table numbers the distinct keys (no sort); a key seen more than once marks a candidate
-    numbered = np.asarray(pc.dictionary_encode(pa.array(h)).indices.to_numpy(zero_copy_only=False), dtype=np.int64)
     out = np.zeros(len(h), dtype=bool)
-    candidates = np.flatnonzero(np.bincount(numbered)[numbered] > 1)
+    candidates = _shared_keys(h)
     if not len(candidates):
         return out
     at = starts[candidates]
     rows = np.stack([doc[candidates], *(codes[at + k] for k in range(n))], axis=1)
     _, inverse, counts = np.unique(rows, axis=0, return_inverse=True, return_counts=True)
     out[candidates] = counts[inverse.ravel()] > 1
+    return out
+
+
+def _shared_keys(h: np.ndarray) -> np.ndarray:
+    """Indices of the keys of ``h`` that occur more than once, in order. A count per bucket of the
+    keys' top bits (about four buckets per key) rules out most keys at once; Arrow's hash table
+    then numbers the keys left (no sort)."""
+    bits = min(max(len(h).bit_length() + 2, 10), 24)
+    buckets = (h >> np.uint64(64 - bits)).astype(np.intp)
+    left = np.flatnonzero(np.bincount(buckets, minlength=1 << bits)[buckets] > 1)
+    if not len(left):
+        return left
+    numbered = np.asarray(pc.dictionary_encode(pa.array(h[left])).indices.to_numpy(zero_copy_only=False), np.int64)
+    out: np.ndarray = left[np.bincount(numbered)[numbered] > 1]
     return out
 
 
