@@ -63,14 +63,53 @@ def code_points(data: np.ndarray, lead: np.ndarray) -> np.ndarray:
     return cp
 
 
-def classify(cps: np.ndarray, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
-    """Per code point: ``kernel`` (a pyarrow predicate over one-character strings), asked once
-    per distinct code point, so the answer is the library's own for every character."""
-    distinct, inverse = np.unique(cps, return_inverse=True)
+def _asked(distinct: np.ndarray, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
+    """Per code point of ``distinct``: ``kernel``'s answer (a pyarrow predicate over one-character
+    strings), so the answer is the library's own for every character."""
     chars = pa.array([chr(c) for c in distinct.tolist()], pa.large_string())
-    answer = np.asarray(kernel(chars).to_numpy(zero_copy_only=False), dtype=bool)
-    out: np.ndarray = answer[inverse.ravel()]
-    return out
+    return np.asarray(kernel(chars).to_numpy(zero_copy_only=False), dtype=bool)
+
+
+@dataclass(frozen=True, slots=True)
+class Wide:
+    """A batch's code points beyond ASCII: the position of each one's first byte, its size in
+    bytes, and the distinct code points with, per position, its index among them."""
+
+    at: np.ndarray
+    size: np.ndarray
+    distinct: np.ndarray
+    inverse: np.ndarray
+
+    def classify(self, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
+        """Per position: ``kernel``'s answer for its code point (asked once per distinct one)."""
+        out: np.ndarray = _asked(self.distinct, kernel)[self.inverse]
+        return out
+
+
+class _LastWide(threading.local):
+    """Per thread, the last batch's :class:`Wide` (the filters of a batch measure the same documents)."""
+
+    def __init__(self) -> None:
+        self.docs: pa.Array | None = None
+        self.wide: Wide | None = None
+
+
+_LAST_WIDE: Final = _LastWide()
+
+
+def wide_code_points(docs: pa.Array) -> Wide:
+    """The :class:`Wide` of a ``large_string`` array's bytes (kept for the next call on the same array)."""
+    last = _LAST_WIDE
+    if last.wide is not None and docs is last.docs:
+        return last.wide
+    data = utf8_buffers(docs)[0]
+    at = np.flatnonzero(data >= 0xC0)
+    first = data[at]
+    size = np.where(first >= 0xF0, 4, np.where(first >= 0xE0, 3, 2))
+    distinct, inverse = np.unique(code_points(data, at), return_inverse=True)
+    wide = Wide(at, size, distinct, inverse.ravel())
+    last.docs, last.wide = docs, wide
+    return wide
 
 
 # per byte value below 0x80: whitespace as pyarrow's utf8_split_whitespace (and so words()) sees it
@@ -81,18 +120,18 @@ _ASCII_SPACE[:128] = np.asarray(
 )
 
 
-def space_bytes(data: np.ndarray) -> np.ndarray:
-    """Per byte of valid UTF-8 ``data``: whether it belongs to a whitespace code point as
-    pyarrow's ``utf8_is_space`` (and so ``utf8_split_whitespace``) sees it, asked once per
-    distinct non-ASCII code point."""
-    space: np.ndarray = _ASCII_SPACE[data]
-    wide = np.flatnonzero(data >= 0xC0)
-    if len(wide):  # a multi-byte code point's flag goes on all its bytes
-        flag = classify(code_points(data, wide), pc.utf8_is_space)
-        size = np.where(data[wide] >= 0xF0, 4, np.where(data[wide] >= 0xE0, 3, 2))
+def space_bytes(docs: pa.Array) -> np.ndarray:
+    """Per byte of a ``large_string`` array's UTF-8 bytes: whether it belongs to a whitespace
+    code point as pyarrow's ``utf8_is_space`` (and so ``utf8_split_whitespace``) sees it, asked
+    once per distinct non-ASCII code point."""
+    data = utf8_buffers(docs)[0]
+    space: np.ndarray = np.take(_ASCII_SPACE, data)  # np.take: faster than fancy indexing (DEVELOPERS.md)
+    wide = wide_code_points(docs)
+    if len(wide.at):  # a multi-byte code point's flag goes on all its bytes
+        flag = wide.classify(pc.utf8_is_space)
         for k in range(4):
-            at = size > k
-            space[wide[at] + k] = flag[at]
+            at = wide.size > k
+            space[wide.at[at] + k] = flag[at]
     return space
 
 
@@ -273,7 +312,7 @@ def _split_words(docs: pa.Array) -> Pieces:
     data, offsets = utf8_buffers(docs)
     if not len(data):
         return Pieces(pa.array([], pa.large_string()), np.zeros(0, np.int64), len(docs), sizes=np.zeros(0, np.int64))
-    space = space_bytes(data)
+    space = space_bytes(docs)
     keep = ~space
     starts = keep.copy()
     starts[1:] &= space[:-1]
@@ -292,10 +331,24 @@ def _split_words(docs: pa.Array) -> Pieces:
     return Pieces(text, doc, len(docs), sizes=sizes)
 
 
+class _LastLines(threading.local):
+    """Per thread, the last batch cut into lines (two filters measure lines of the same documents)."""
+
+    def __init__(self) -> None:
+        self.docs: pa.Array | None = None
+        self.pieces: Pieces | None = None
+
+
+_LAST_LINES: Final = _LastLines()
+
+
 def lines(docs: pa.Array) -> Pieces:
     """Non-empty lines of every document (split at ``\\n``; a trailing ``\\r`` stays in its line)."""
     docs = as_documents(docs)
-    return _pieces(docs, pc.split_pattern(docs, "\n"))
+    last = _LAST_LINES
+    if last.pieces is None or docs is not last.docs:
+        last.docs, last.pieces = docs, _pieces(docs, pc.split_pattern(docs, "\n"))
+    return last.pieces
 
 
 def share(part: np.ndarray, whole: np.ndarray) -> np.ndarray:
