@@ -9,6 +9,9 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 import pytest
+import regex
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from seqpipe.clean import parse_step
 from seqpipe.clean.redact import PLACEHOLDERS, Redact, luhn_ok, redact_text
@@ -370,3 +373,20 @@ def test_names_with_pattern_characters_are_found_as_literal_text() -> None:
     plain = [any(n in d for n in names) for d in docs]
     assert _holding_a_name(pa.array(docs, pa.large_string()), names).tolist() == plain
     assert plain.count(True) == 7
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    text=st.lists(
+        st.sampled_from(["::", ":", "a", "F", "1", "12", "255", "192.0.2.", ".", " ", "+", "(", ")", "-", "0", "x"]),
+        max_size=30,
+    ).map("".join)
+)
+def test_first_character_lookahead_changes_no_match(text: str) -> None:
+    """The ip and phone patterns as compiled (with a lookahead for their first character) find
+    exactly the spans of the patterns as written."""
+    from seqpipe.clean.redact import _COMPILED, _IP, _PHONE
+
+    for target, pattern in (("ip", _IP), ("phone", _PHONE)):
+        plain = [m.span() for m in regex.finditer(pattern, text)]
+        assert [m.span() for m in _COMPILED[target].finditer(text)] == plain
