@@ -174,8 +174,14 @@ class Pieces:
     sizes: np.ndarray | None = None  # filled by lengths() (or by the cut) when first asked
 
     def per_document(self, values: np.ndarray) -> np.ndarray:
-        """Sum of ``values`` (one per piece) for each document."""
-        return np.bincount(self.doc, weights=values, minlength=self.documents)
+        """Sum of ``values`` (one per piece, whole numbers: each sum is exact) for each document,
+        as float64: one reduction per run of a document's pieces (they are contiguous)."""
+        out = np.zeros(self.documents, dtype=np.float64)
+        if len(self.doc):
+            starts = np.searchsorted(self.doc, np.arange(self.documents + 1, dtype=np.int64))
+            filled = starts[1:] > starts[:-1]
+            out[filled] = np.add.reduceat(np.asarray(values, dtype=np.float64), starts[:-1][filled])
+        return out
 
     def count(self) -> np.ndarray:
         """Pieces per document."""
@@ -298,10 +304,13 @@ def words(docs: pa.Array) -> Pieces:
 
 def _may_be_kept_from(before: pa.Array, after: pa.Array) -> bool:
     """False when ``after`` surely is not some of the documents ``before`` (a check in C, so a
-    new batch costs no digest per document): it is longer, or its first document is not among them."""
+    new batch costs no digest per document): it is longer, or its first or last document is not among them."""
     if len(after) > len(before):
         return False
-    return len(after) == 0 or bool(pc.is_in(after.slice(0, 1), value_set=before)[0].as_py())
+    if len(after) == 0:
+        return True
+    ends = pc.is_in(after.take(pa.array([0, len(after) - 1])), value_set=before)  # its first and last
+    return bool(pc.all(ends).as_py())
 
 
 def _split_words(docs: pa.Array) -> Pieces:
