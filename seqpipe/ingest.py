@@ -185,8 +185,15 @@ def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int], redacted: di
     """Run the cleaning steps in order. Steps that count what they replaced (``apply_counted``)
     add their counts to ``redacted``; documents a step drops are counted in ``dropped``."""
     out = _Cleaned(docs, np.arange(len(docs), dtype=np.int64))
+    masks: dict[int, np.ndarray] = {}  # step index -> its keep mask, for each run of keep() steps
     for i, step in enumerate(recipe.clean):
         name = f"{i}:{step.kind}"
+        if i in masks:  # measured with the run of keep() steps it belongs to
+            continue
+        if getattr(step, "keep", None) is not None:
+            masks = _keep_masks(recipe.clean, i, out.docs)
+            out.keep(_count_first_failures(recipe.clean, masks, dropped))
+            continue
         if getattr(step, "is_dedupe", False):
             out.dedupe = _doc_hashes(out.docs)
             continue
@@ -194,10 +201,7 @@ def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int], redacted: di
             out.near = step.signatures(out.docs)  # type: ignore[attr-defined]
             continue
         before = len(out.docs)
-        keep_fn = getattr(step, "keep", None)
-        if keep_fn is not None:
-            out.keep(np.asarray(keep_fn(out.docs), dtype=bool))
-        elif (counted := getattr(step, "apply_counted", None)) is not None:
+        if (counted := getattr(step, "apply_counted", None)) is not None:
             out.docs, counts = counted(out.docs)
             for target, n in counts.items():
                 redacted[target] = redacted.get(target, 0) + n
@@ -218,6 +222,33 @@ def _clean(recipe: Recipe, docs: pa.Array, dropped: dict[str, int], redacted: di
             dropped[BLANK_AFTER_CLEANING] = dropped.get(BLANK_AFTER_CLEANING, 0) + int((~kept).sum())
             out.keep(kept)
     return out
+
+
+def _keep_masks(steps: Sequence[Any], start: int, docs: pa.Array) -> dict[int, np.ndarray]:
+    """The keep masks of the run of steps with a ``keep`` mask from ``start`` on, all measured on
+    the same documents: each such step judges a document by its own text alone, so running the
+    run in order keeps exactly the documents every mask keeps, and measuring all of them on one
+    array lets them share its cut into words (see clean._quality.words)."""
+    masks: dict[int, np.ndarray] = {}
+    for j in range(start, len(steps)):
+        keep_fn = getattr(steps[j], "keep", None)
+        if keep_fn is None:
+            break
+        masks[j] = np.asarray(keep_fn(docs), dtype=bool)
+    return masks
+
+
+def _count_first_failures(steps: Sequence[Any], masks: dict[int, np.ndarray], dropped: dict[str, int]) -> np.ndarray:
+    """The documents a run of keep() steps keeps; each step's drops (the documents it fails that
+    every earlier step of the run kept, as when the steps run one after another) go to ``dropped``."""
+    alive = np.ones(len(next(iter(masks.values()))), dtype=bool)
+    for j, mask in masks.items():
+        n = int((alive & ~mask).sum())
+        if n:
+            name = f"{j}:{steps[j].kind}"
+            dropped[name] = dropped.get(name, 0) + n
+        alive &= mask
+    return alive
 
 
 def _renumbered(exc: PatternTimeoutError, step: str, positions: np.ndarray, first: int = 0) -> PatternTimeoutError:

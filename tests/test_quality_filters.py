@@ -202,6 +202,17 @@ def test_repeated_ngrams_is_exact_under_hash_collisions(monkeypatch: pytest.Monk
         assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
 
 
+@settings(max_examples=100, deadline=None)
+@given(keys=st.lists(st.integers(0, 2**64 - 1) | st.integers(0, 40) | st.integers(2**64 - 40, 2**64 - 1), max_size=300))
+def test_shared_keys_are_exactly_the_keys_seen_twice(keys: list[int]) -> None:
+    """The bucket-then-hash search for repeated n-gram keys returns exactly the indices of keys
+    that occur more than once (keys with equal top bits included)."""
+    from seqpipe.clean.repeated_ngrams import _shared_keys
+
+    got = _shared_keys(np.array(keys, dtype=np.uint64)).tolist()
+    assert got == [i for i, k in enumerate(keys) if keys.count(k) > 1]
+
+
 def test_letter_share_counts_non_ascii_code_points_as_re2_does() -> None:
     """Letters beyond ASCII (Greek, CJK, an astral letter) count; combining marks, symbols, emoji and
     no-break spaces are visible non-letters; RE2's whitespace (tab, LF, FF, CR, space) is not visible."""
@@ -218,14 +229,21 @@ def test_letter_share_counts_non_ascii_code_points_as_re2_does() -> None:
     )
 )
 def test_mean_word_length_uses_the_unicode_whitespace_of_words(docs: list[str]) -> None:
-    """Byte-level word counts split at the same Unicode whitespace as str.split() (which also
-    treats U+001C-U+001F, U+0085, U+00A0, U+2000-U+200A, U+3000 as space) and as words()."""
+    """Words cut over the bytes split at the same Unicode whitespace as str.split() (which also
+    treats U+001C-U+001F, U+0085, U+00A0, U+2000-U+200A, U+3000 as space) and as pyarrow's
+    utf8_split_whitespace, one document at a time."""
+    import pyarrow.compute as pc
+
+    from seqpipe.clean._quality import _split_words
+
     a = arr(docs)
     assert np.allclose(WordLength().measure(a), [ref_mean_word_length(d) for d in docs])
-    from seqpipe.clean._quality import word_sizes, words
-
-    count, _ = word_sizes(a)
-    assert count.tolist() == words(a).count().tolist()
+    pieces = _split_words(a)
+    got = pieces.text.to_pylist()
+    assert got == [w for d in docs for w in d.split()]
+    assert got == [w for d in docs for w in pc.utf8_split_whitespace(arr([d, "x"]))[0].as_py() if w]
+    assert pieces.doc.tolist() == [i for i, d in enumerate(docs) for _ in d.split()]
+    assert pieces.lengths().tolist() == [len(w) for d in docs for w in d.split()]
 
 
 @settings(max_examples=100, deadline=None)

@@ -9,6 +9,9 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 import pytest
+import regex
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from seqpipe.clean import parse_step
 from seqpipe.clean.redact import PLACEHOLDERS, Redact, luhn_ok, redact_text
@@ -323,6 +326,8 @@ _ALL_SAMPLES = [
     "call 0161 496 0123 now",
     "paid 4111-1111-1111-1111 at the quay",
     "crew of 12 34 56, ticket 1234567, at 12:30:45 sharp",
+    "mate@quay.example:2001:db8::1 then 1.2.mate@quay.example.3.4 and +mate@quay.example44 1632 960123",
+    "4111 1111 1111 1111@pier.example and 192.0.2.1:ab:cd: +44 (0161) 496 0123",
 ]
 
 
@@ -356,3 +361,32 @@ def test_batch_with_and_without_placeholders_segments_like_each_document_alone(k
 
     assert pieces(docs) == [pieces([d])[0] for d in docs]
     assert [b"<email>"] in [p[:1] for p in pieces(docs)]
+
+
+def test_names_with_pattern_characters_are_found_as_literal_text() -> None:
+    """The one-pass search for reserved names treats each name as literal text (punctuation,
+    spaces and non-ASCII letters included), finding exactly the documents a plain search finds."""
+    from seqpipe.tokenizers._common import _holding_a_name
+
+    names = ("[x]", "a.b", "(q)*", "\\E", "¿é?", "<ip> x", "|")
+    docs = ["a.b", "axb", "[x]", "x", "(q)*", "(qq)", "\\E", "E", "¿é?", "é", "<ip> x", "<ip>x", "a|b", "ab", ""]
+    plain = [any(n in d for n in names) for d in docs]
+    assert _holding_a_name(pa.array(docs, pa.large_string()), names).tolist() == plain
+    assert plain.count(True) == 7
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    text=st.lists(
+        st.sampled_from(["::", ":", "a", "F", "1", "12", "255", "192.0.2.", ".", " ", "+", "(", ")", "-", "0", "x"]),
+        max_size=30,
+    ).map("".join)
+)
+def test_first_character_lookahead_changes_no_match(text: str) -> None:
+    """The ip and phone patterns as compiled (with a lookahead for their first character) find
+    exactly the spans of the patterns as written."""
+    from seqpipe.clean.redact import _COMPILED, _IP, _PHONE
+
+    for target, pattern in (("ip", _IP), ("phone", _PHONE)):
+        plain = [m.span() for m in regex.finditer(pattern, text)]
+        assert [m.span() for m in _COMPILED[target].finditer(text)] == plain

@@ -63,14 +63,53 @@ def code_points(data: np.ndarray, lead: np.ndarray) -> np.ndarray:
     return cp
 
 
-def classify(cps: np.ndarray, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
-    """Per code point: ``kernel`` (a pyarrow predicate over one-character strings), asked once
-    per distinct code point, so the answer is the library's own for every character."""
-    distinct, inverse = np.unique(cps, return_inverse=True)
+def _asked(distinct: np.ndarray, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
+    """Per code point of ``distinct``: ``kernel``'s answer (a pyarrow predicate over one-character
+    strings), so the answer is the library's own for every character."""
     chars = pa.array([chr(c) for c in distinct.tolist()], pa.large_string())
-    answer = np.asarray(kernel(chars).to_numpy(zero_copy_only=False), dtype=bool)
-    out: np.ndarray = answer[inverse.ravel()]
-    return out
+    return np.asarray(kernel(chars).to_numpy(zero_copy_only=False), dtype=bool)
+
+
+@dataclass(frozen=True, slots=True)
+class Wide:
+    """A batch's code points beyond ASCII: the position of each one's first byte, its size in
+    bytes, and the distinct code points with, per position, its index among them."""
+
+    at: np.ndarray
+    size: np.ndarray
+    distinct: np.ndarray
+    inverse: np.ndarray
+
+    def classify(self, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
+        """Per position: ``kernel``'s answer for its code point (asked once per distinct one)."""
+        out: np.ndarray = _asked(self.distinct, kernel)[self.inverse]
+        return out
+
+
+class _LastWide(threading.local):
+    """Per thread, the last batch's :class:`Wide` (the filters of a batch measure the same documents)."""
+
+    def __init__(self) -> None:
+        self.docs: pa.Array | None = None
+        self.wide: Wide | None = None
+
+
+_LAST_WIDE: Final = _LastWide()
+
+
+def wide_code_points(docs: pa.Array) -> Wide:
+    """The :class:`Wide` of a ``large_string`` array's bytes (kept for the next call on the same array)."""
+    last = _LAST_WIDE
+    if last.wide is not None and docs is last.docs:
+        return last.wide
+    data = utf8_buffers(docs)[0]
+    at = np.flatnonzero(data >= 0xC0)
+    first = data[at]
+    size = np.where(first >= 0xF0, 4, np.where(first >= 0xE0, 3, 2))
+    distinct, inverse = np.unique(code_points(data, at), return_inverse=True)
+    wide = Wide(at, size, distinct, inverse.ravel())
+    last.docs, last.wide = docs, wide
+    return wide
 
 
 # per byte value below 0x80: whitespace as pyarrow's utf8_split_whitespace (and so words()) sees it
@@ -81,30 +120,19 @@ _ASCII_SPACE[:128] = np.asarray(
 )
 
 
-def word_sizes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
-    """Per document: the number of words of :func:`words` and the code points inside them,
-    counted over the UTF-8 bytes with numpy (the same whitespace: pyarrow's ``utf8_is_space``,
-    asked once per distinct non-ASCII code point) without cutting the text into words."""
-    docs = as_documents(docs)
-    data, offsets = utf8_buffers(docs)
-    space = _ASCII_SPACE[data]
-    wide = np.flatnonzero(data >= 0xC0)
-    if len(wide):  # a multi-byte code point's flag goes on all its bytes
-        flag = classify(code_points(data, wide), pc.utf8_is_space)
-        size = np.where(data[wide] >= 0xF0, 4, np.where(data[wide] >= 0xE0, 3, 2))
+def space_bytes(docs: pa.Array) -> np.ndarray:
+    """Per byte of a ``large_string`` array's UTF-8 bytes: whether it belongs to a whitespace
+    code point as pyarrow's ``utf8_is_space`` (and so ``utf8_split_whitespace``) sees it, asked
+    once per distinct non-ASCII code point."""
+    data = utf8_buffers(docs)[0]
+    space: np.ndarray = np.take(_ASCII_SPACE, data)  # np.take: faster than fancy indexing (DEVELOPERS.md)
+    wide = wide_code_points(docs)
+    if len(wide.at):  # a multi-byte code point's flag goes on all its bytes
+        flag = wide.classify(pc.utf8_is_space)
         for k in range(4):
-            at = size > k
-            space[wide[at] + k] = flag[at]
-    lead = (data & 0xC0) != 0x80  # the first byte of each code point
-    before = np.empty(len(data), dtype=bool)  # the byte before is whitespace, or there is none
-    if len(data):
-        before[0] = True
-        before[1:] = space[:-1]
-        before[offsets[:-1][offsets[1:] > offsets[:-1]]] = True
-    starts = per_document_sum(before & lead & ~space, offsets)
-    spaces = per_document_sum(space & lead, offsets)
-    length = np.asarray(pc.utf8_length(docs).to_numpy(zero_copy_only=False), dtype=np.int64)
-    return starts, length - spaces
+            at = wide.size > k
+            space[wide.at[at] + k] = flag[at]
+    return space
 
 
 def per_document_sum(flags: np.ndarray, offsets: np.ndarray) -> np.ndarray:
@@ -143,18 +171,29 @@ class Pieces:
     # filled by encoded() the first time it is asked: the distinct pieces and each piece's index
     distinct: pa.Array | None = None
     codes: np.ndarray | None = None
+    sizes: np.ndarray | None = None  # filled by lengths() (or by the cut) when first asked
 
     def per_document(self, values: np.ndarray) -> np.ndarray:
-        """Sum of ``values`` (one per piece) for each document."""
-        return np.bincount(self.doc, weights=values, minlength=self.documents)
+        """Sum of ``values`` (one per piece, whole numbers: each sum is exact) for each document,
+        as float64: one reduction per run of a document's pieces (they are contiguous)."""
+        out = np.zeros(self.documents, dtype=np.float64)
+        if len(self.doc):
+            starts = np.searchsorted(self.doc, np.arange(self.documents + 1, dtype=np.int64))
+            filled = starts[1:] > starts[:-1]
+            out[filled] = np.add.reduceat(np.asarray(values, dtype=np.float64), starts[:-1][filled])
+        return out
 
     def count(self) -> np.ndarray:
         """Pieces per document."""
         return np.bincount(self.doc, minlength=self.documents).astype(np.int64)
 
     def lengths(self) -> np.ndarray:
-        """Code points of each piece."""
-        return np.asarray(pc.utf8_length(self.text).to_numpy(zero_copy_only=False), dtype=np.int64)
+        """Code points of each piece; computed once and kept."""
+        if self.sizes is None:
+            sizes = np.asarray(pc.utf8_length(self.text).to_numpy(zero_copy_only=False), dtype=np.int64)
+            object.__setattr__(self, "sizes", sizes)
+            return sizes
+        return self.sizes
 
     def encoded(self) -> tuple[pa.Array, np.ndarray]:
         """The distinct pieces (some may no longer occur after :meth:`subset`) and, per piece, its
@@ -177,6 +216,7 @@ class Pieces:
             int(keep.sum()),
             self.distinct,
             None if self.codes is None else self.codes[inside],
+            None if self.sizes is None else self.sizes[inside],
         )
 
 
@@ -186,7 +226,7 @@ class _LastWords(threading.local):
 
     def __init__(self) -> None:
         self.docs: pa.Array | None = None
-        self.digests: list[bytes] = []
+        self.digests: list[bytes] | None = None
         self.pieces: Pieces | None = None
 
 
@@ -247,26 +287,77 @@ def words(docs: pa.Array) -> Pieces:
     last = _LAST_WORDS
     if last.pieces is not None and docs is last.docs:
         return last.pieces
-    digests = _digests(docs)
-    keep = _kept_from(last.digests, digests) if last.pieces is not None else None
-    pieces = last.pieces.subset(keep) if last.pieces is not None and keep is not None else _split_words(docs)
-    last.docs, last.digests, last.pieces = docs, digests, pieces
+    pieces = None
+    if last.pieces is not None and last.docs is not None and _may_be_kept_from(last.docs, docs):
+        if last.digests is None:
+            last.digests = _digests(last.docs)
+        digests = _digests(docs)
+        keep = _kept_from(last.digests, digests)
+        if keep is not None:
+            pieces = last.pieces.subset(keep)
+            last.docs, last.digests, last.pieces = docs, digests, pieces
+            return pieces
+    pieces = _split_words(docs)
+    last.docs, last.digests, last.pieces = docs, None, pieces  # digests taken when first needed
     return pieces
 
 
+def _may_be_kept_from(before: pa.Array, after: pa.Array) -> bool:
+    """False when ``after`` surely is not some of the documents ``before`` (a check in C, so a
+    new batch costs no digest per document): it is longer, or its first or last document is not among them."""
+    if len(after) > len(before):
+        return False
+    if len(after) == 0:
+        return True
+    ends = pc.is_in(after.take(pa.array([0, len(after) - 1])), value_set=before)  # its first and last
+    return bool(pc.all(ends).as_py())
+
+
 def _split_words(docs: pa.Array) -> Pieces:
-    # pyarrow 26's utf8_split_whitespace sometimes keeps a trailing whitespace character of the
-    # array's last value inside its last word (it looks past the end of the data buffer; seen
-    # on about 1 call in 3 for the same input): a non-blank sentinel value after the documents
-    # gives every real value a well-defined next byte, and its own split is dropped again
-    padded = pa.concat_arrays([docs, pa.array(["x"], docs.type)])
-    return _pieces(docs, pc.utf8_split_whitespace(padded).slice(0, len(docs)))
+    """The words of ``docs`` as ``utf8_split_whitespace`` cuts them, found over the UTF-8 bytes
+    with numpy: whitespace bytes are squeezed out and each word starts where a non-whitespace
+    byte follows whitespace or a document's start, so Arrow gets the squeezed buffer and the
+    word offsets (no string per word is built)."""
+    data, offsets = utf8_buffers(docs)
+    if not len(data):
+        return Pieces(pa.array([], pa.large_string()), np.zeros(0, np.int64), len(docs), sizes=np.zeros(0, np.int64))
+    space = space_bytes(docs)
+    keep = ~space
+    starts = keep.copy()
+    starts[1:] &= space[:-1]
+    first = offsets[:-1][offsets[:-1] < len(data)]  # first bytes of the documents (a word never spans two)
+    starts[first] = keep[first]
+    # np.compress, not boolean indexing: faster on byte arrays (DEVELOPERS.md)
+    squeezed = np.compress(keep, data)
+    bounds = np.append(np.flatnonzero(np.compress(keep, starts)), len(squeezed)).astype(np.int64)
+    text = pa.LargeStringArray.from_buffers(len(bounds) - 1, pa.py_buffer(bounds), pa.py_buffer(squeezed))
+    doc = np.repeat(np.arange(len(docs), dtype=np.int64), per_document_sum(starts, offsets))
+    # code points per word: its bytes less its continuation bytes (few in most text)
+    sizes = np.diff(bounds)
+    continuation = np.flatnonzero((squeezed & 0xC0) == 0x80)
+    if len(continuation):
+        sizes -= np.bincount(np.searchsorted(bounds, continuation, side="right") - 1, minlength=len(sizes))
+    return Pieces(text, doc, len(docs), sizes=sizes)
+
+
+class _LastLines(threading.local):
+    """Per thread, the last batch cut into lines (two filters measure lines of the same documents)."""
+
+    def __init__(self) -> None:
+        self.docs: pa.Array | None = None
+        self.pieces: Pieces | None = None
+
+
+_LAST_LINES: Final = _LastLines()
 
 
 def lines(docs: pa.Array) -> Pieces:
     """Non-empty lines of every document (split at ``\\n``; a trailing ``\\r`` stays in its line)."""
     docs = as_documents(docs)
-    return _pieces(docs, pc.split_pattern(docs, "\n"))
+    last = _LAST_LINES
+    if last.pieces is None or docs is not last.docs:
+        last.docs, last.pieces = docs, _pieces(docs, pc.split_pattern(docs, "\n"))
+    return last.pieces
 
 
 def share(part: np.ndarray, whole: np.ndarray) -> np.ndarray:

@@ -28,7 +28,7 @@ A recipe with this step must list the placeholders in ``[vocabulary] reserved`` 
 ``[tokenizer] literal_reserved = true`` so each placeholder is one id whatever the tokenizer
 (checked by :class:`seqpipe.recipe.Recipe`). Matching runs once per document (the ``regex``
 module, in C) and only on documents that an RE2 pass over the whole batch finds holding a
-necessary part of some target (``_HINTS``).
+necessary part of some target (``_HINTS``), and there only for the targets whose part it holds.
 """
 
 from __future__ import annotations
@@ -103,11 +103,16 @@ _HINTS: Final[dict[str, str]] = {
     "phone": r"\+[0-9]|\([0-9]|[0-9][ .\-][0-9]{2,4}[ .\-][0-9]",
 }
 
+# Every IP match starts with a hexadecimal digit or ":", every phone match with a digit, "+" or
+# "(": a lookahead for that first character, put before the patterns' own lookbehind (lookarounds
+# at one position commute), lets the engine pass over other positions at once. It changes no match.
+_FIRST: Final[dict[str, str]] = {"ip": "(?=[0-9A-Fa-f:])", "phone": "(?=[0-9+(])"}
+
 _COMPILED: Final[dict[str, Any]] = {
     "email": regex.compile(_EMAIL),
-    "ip": regex.compile(_IP),
+    "ip": regex.compile(_FIRST["ip"] + _IP),
     "card": regex.compile(_CARD),
-    "phone": regex.compile(_PHONE),
+    "phone": regex.compile(_FIRST["phone"] + _PHONE),
 }
 
 
@@ -194,9 +199,18 @@ class Redact(CleanStep):
         where = np.flatnonzero(mask.to_numpy(zero_copy_only=False))
         if not len(where):
             return docs, totals
+        held = docs.take(pa.array(where))
+        # which targets' hints each of those documents holds: a target whose hint a document
+        # lacks is not matched there (the placeholders written before it hold no character of
+        # a later target's hint, so replacing cannot make one appear)
+        hinted = [
+            np.asarray(pc.fill_null(pc.match_substring_regex(held, _HINTS[t]), False).to_numpy(zero_copy_only=False))
+            for t in self.targets
+        ]
+        chosen = np.stack(hinted, axis=1).tolist()
         changed: list[str] = []
-        for text in docs.take(pa.array(where)).to_pylist():
-            out, counts = redact_text(text, self.targets)
+        for text, flags in zip(held.to_pylist(), chosen, strict=True):
+            out, counts = redact_text(text, tuple(t for t, f in zip(self.targets, flags, strict=True) if f))
             changed.append(out)
             for target, n in counts.items():
                 totals[target] += n

@@ -7,6 +7,7 @@ from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
 from seqpipe.clean._quality import Pieces, QualityFilter, share, words
@@ -21,39 +22,62 @@ def covered_by_repeats(pieces: Pieces, n: int) -> np.ndarray:
     if m < n:
         return covered
     codes = pieces.encoded()[1]
-    starts = np.arange(m - n + 1)
-    same_doc = pieces.doc[starts] == pieces.doc[starts + n - 1]  # docs are contiguous
-    starts = starts[same_doc]
+    windows = m - n + 1  # n-grams starting at every word, some across two documents
+    starts = np.flatnonzero(pieces.doc[:windows] == pieces.doc[n - 1 :])  # docs are contiguous
     if not len(starts):
         return covered
-    dup_starts = starts[_repeated_rows(pieces.doc[starts], codes, starts, n)]
-    edges = np.zeros(m + 1, dtype=np.int64)  # +1 where a repeated n-gram starts, -1 after it ends
-    np.add.at(edges, dup_starts, 1)
-    np.add.at(edges, dup_starts + n, -1)
+    keys = _window_keys(pieces.doc, codes, n)[starts]
+    dup_starts = starts[_repeated_rows(pieces.doc[starts], codes, starts, n, keys)]
+    # +1 where a repeated n-gram starts, -1 after it ends
+    edges = np.bincount(dup_starts, minlength=m + 1) - np.bincount(dup_starts + n, minlength=m + 1)
     covered = np.cumsum(edges[:m]) > 0
     return covered
 
 
-def _repeated_rows(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: int) -> np.ndarray:
-    """Per n-gram (document ``doc[i]``, words ``codes[starts[i]:starts[i] + n]``): True when an
-    equal n-gram of the same document exists. A 64-bit polynomial key per row finds the
-    candidates (equal rows have equal keys; most rows of real text have a key of their own), and
-    only the candidates' rows are compared exactly, so a collision costs time, never a result."""
+def _window_keys(doc: np.ndarray, codes: np.ndarray, n: int) -> np.ndarray:
+    """A 64-bit polynomial key of (document of the first word, the n word codes) for the n-gram
+    starting at every word that has n - 1 words after it (slices of the code array, no gather)."""
+    windows = len(codes) - n + 1
+    words = np.ascontiguousarray(codes, dtype=np.int64).view(np.uint64)  # codes are >= 0
     with np.errstate(over="ignore"):
-        h = doc.astype(np.uint64)
+        h = doc[:windows].astype(np.uint64)
         for k in range(n):
-            h = h * _MULTIPLIER + codes[starts + k].astype(np.uint64)
-    ordered = np.sort(h)
-    shared = np.unique(ordered[1:][ordered[1:] == ordered[:-1]])  # keys held by more than one row
-    out = np.zeros(len(h), dtype=bool)
-    if not len(shared):
+            h = h * _MULTIPLIER + words[k : k + windows]
+    return h
+
+
+def _repeated_rows(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: int, keys: np.ndarray) -> np.ndarray:
+    """Per n-gram (document ``doc[i]``, words ``codes[starts[i]:starts[i] + n]``, key ``keys[i]``):
+    True when an equal n-gram of the same document exists. Equal rows have equal keys and most
+    rows of real text have a key of their own, so only the rows whose key repeats are compared
+    exactly: a collision costs time, never a result."""
+    out = np.zeros(len(keys), dtype=bool)
+    candidates = _shared_keys(keys)
+    if not len(candidates):
         return out
-    where = np.minimum(np.searchsorted(shared, h), len(shared) - 1)
-    candidates = np.flatnonzero(shared[where] == h)
     at = starts[candidates]
     rows = np.stack([doc[candidates], *(codes[at + k] for k in range(n))], axis=1)
-    _, inverse, counts = np.unique(rows, axis=0, return_inverse=True, return_counts=True)
-    out[candidates] = counts[inverse.ravel()] > 1
+    order = np.lexsort(rows.T[::-1])  # equal rows end up next to each other
+    ordered = rows[order]
+    same = (ordered[1:] == ordered[:-1]).all(axis=1)
+    twice = np.zeros(len(order), dtype=bool)
+    twice[1:] |= same
+    twice[:-1] |= same
+    out[candidates[order]] = twice
+    return out
+
+
+def _shared_keys(h: np.ndarray) -> np.ndarray:
+    """Indices of the keys of ``h`` that occur more than once, in order. A count per bucket of the
+    keys' top bits (about four buckets per key) rules out most keys at once; Arrow's hash table
+    then numbers the keys left (no sort)."""
+    bits = min(max(len(h).bit_length() + 2, 10), 24)
+    buckets = (h >> np.uint64(64 - bits)).astype(np.intp)
+    left = np.flatnonzero(np.bincount(buckets, minlength=1 << bits)[buckets] > 1)
+    if not len(left):
+        return left
+    numbered = np.asarray(pc.dictionary_encode(pa.array(h[left])).indices.to_numpy(zero_copy_only=False), np.int64)
+    out: np.ndarray = left[np.bincount(numbered)[numbered] > 1]
     return out
 
 

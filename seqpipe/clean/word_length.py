@@ -9,7 +9,7 @@ import numpy as np
 import pyarrow as pa
 
 from seqpipe._parse import parse_float
-from seqpipe.clean._quality import QualityFilter, share, word_sizes
+from seqpipe.clean._quality import QualityFilter, share, words
 from seqpipe.errors import RecipeError
 
 
@@ -39,8 +39,8 @@ class WordLength(QualityFilter):
 
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: mean code points per word (0 without words)."""
-        count, characters = word_sizes(docs)
-        return share(characters.astype(np.float64), count.astype(np.float64))
+        pieces = words(docs)
+        return share(pieces.per_document(pieces.lengths().astype(np.float64)), pieces.count().astype(np.float64))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
         """Boolean mask: True for each document ``apply`` keeps."""

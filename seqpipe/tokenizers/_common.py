@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import string
 from collections.abc import Callable, Sequence
 from functools import lru_cache
 from pathlib import Path
@@ -100,6 +101,23 @@ def _split_at_names(
     return pool.take(pa.array(order)), item_doc, item_name
 
 
+def _re2_literal(name: str) -> str:
+    """``name`` as an RE2 pattern matching exactly its text (ASCII punctuation escaped)."""
+    return "".join(f"\\{ch}" if ch in string.punctuation else ch for ch in name)
+
+
+def _holding_a_name(texts: pa.Array, names: tuple[str, ...]) -> np.ndarray:
+    """Per document: whether it holds any of ``names`` (one RE2 pass for all names, not one per name)."""
+    try:
+        found = pc.match_substring_regex(texts, "|".join(_re2_literal(n) for n in names))
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):  # a name RE2 cannot spell: one scan per name
+        holds = np.zeros(len(texts), dtype=bool)
+        for name in names:
+            holds |= np.asarray(pc.match_substring(texts, name).fill_null(False).to_numpy(zero_copy_only=False), bool)
+        return holds
+    return np.asarray(found.fill_null(False).to_numpy(zero_copy_only=False), dtype=bool)
+
+
 def segment_with_reserved(segment: Callable[[pa.Array], Segments], texts: pa.Array, names: tuple[str, ...]) -> Segments:
     """``segment(texts)``, except that each literal occurrence of a name in ``names`` is one
     piece whose key is the name's UTF-8 bytes (the encoder maps it to its reserved id).
@@ -111,9 +129,7 @@ def segment_with_reserved(segment: Callable[[pa.Array], Segments], texts: pa.Arr
     names = tuple(n for n in names if n)
     if not names or len(texts) == 0:
         return segment(texts)
-    holds = np.zeros(len(texts), dtype=bool)
-    for name in names:
-        holds |= np.asarray(pc.match_substring(texts, name).fill_null(False).to_numpy(zero_copy_only=False), bool)
+    holds = _holding_a_name(texts, names)
     if not holds.any():
         return segment(texts)
     fragments, item_doc, item_name = _split_at_names(texts, holds, names)
