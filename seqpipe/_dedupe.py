@@ -279,14 +279,37 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
     members, where = np.unique(ids, return_inverse=True)
     sig = _signatures(scheme, members, bands * rows)[where.ravel()]
     starts, ends = _runs(bucket)
-    found_repeats: list[np.ndarray] = []
-    found_pairs: list[np.ndarray] = []
-    for a, b in zip(starts.tolist(), ends.tolist(), strict=True):  # one step per shared bucket
+    two = ends - starts == 2
+    found_repeats, found_pairs = _pair_buckets(ids, sig, starts[two], threshold)
+    # buckets of three or more: one step each (most shared buckets hold one pair)
+    for a, b in zip(starts[~two].tolist(), ends[~two].tolist(), strict=True):
         rep, pair = _bucket_pairs(ids[a:b], sig[a:b], threshold)
         found_repeats.append(rep)
         found_pairs.append(pair)
-    pairs = np.unique(np.concatenate(found_pairs), axis=0) if found_pairs else none[1]
+    pairs = np.unique(np.concatenate(found_pairs), axis=0)
     return np.unique(np.concatenate(found_repeats)), pairs.reshape(-1, 2)
+
+
+_PAIR_BLOCK: Final = 1 << 14  # pairs compared per numpy pass: bounds the (pairs, hashes) temporaries
+
+
+def _pair_buckets(
+    ids: np.ndarray, sig: np.ndarray, firsts: np.ndarray, threshold: float
+) -> tuple[list[np.ndarray], list[np.ndarray]]:
+    """:func:`_bucket_pairs` for every bucket of exactly two members (rows ``first`` and
+    ``first + 1``, in corpus order) at once: the later member is a repeat when the signatures
+    are equal, else the pair is kept when its estimated similarity reaches ``threshold``."""
+    repeats: list[np.ndarray] = [np.zeros(0, np.int64)]
+    pairs: list[np.ndarray] = [np.zeros((0, 2), np.int64)]
+    for lo in range(0, len(firsts), _PAIR_BLOCK):
+        a = firsts[lo : lo + _PAIR_BLOCK]
+        b = a + 1
+        share = (sig[a] == sig[b]).mean(axis=1)
+        same = share == 1.0
+        repeats.append(ids[b[same]])
+        keep = ~same & (share >= threshold)  # the estimate near_duplicate_keep uses
+        pairs.append(np.stack([ids[a[keep]], ids[b[keep]]], axis=1))
+    return repeats, pairs
 
 
 def _runs(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
