@@ -262,13 +262,21 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
     if len(parts) < 2:
         return none
     width = 4 * rows + 2
+    band = table.column("band").to_numpy()
     packed = np.empty((len(parts), width), np.uint8)
-    packed[:, :2] = table.column("band").to_numpy().astype(">i2").view(np.uint8).reshape(-1, 2)
+    packed[:, :2] = band.astype(">i2").view(np.uint8).reshape(-1, 2)
     packed[:, 2:] = _rows(table.column("key").combine_chunks(), 4 * rows)
-    _, bucket, sizes = np.unique(
-        packed.view(np.dtype((np.void, width))).ravel(), return_inverse=True, return_counts=True
+    # group by a 64-bit hash of the band's bytes (an integer sort), then check every row against
+    # its group's first: only if two different bands share a hash, group by the bytes themselves
+    _, first, bucket, sizes = np.unique(
+        _band_hash(band, packed[:, 2:]), return_index=True, return_inverse=True, return_counts=True
     )
     bucket = bucket.ravel()
+    if not np.array_equal(packed, packed[first[bucket]]):
+        _, bucket, sizes = np.unique(
+            packed.view(np.dtype((np.void, width))).ravel(), return_inverse=True, return_counts=True
+        )
+        bucket = bucket.ravel()
     shared = sizes[bucket] > 1
     if not shared.any():
         return none
