@@ -287,10 +287,10 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
     members, where = np.unique(ids, return_inverse=True)
     sig = _signatures(scheme, members, bands * rows)[where.ravel()]
     starts, ends = _runs(bucket)
-    two = ends - starts == 2
-    found_repeats, found_pairs = _pair_buckets(ids, sig, starts[two], threshold)
-    # buckets of three or more: one step each (most shared buckets hold one pair)
-    for a, b in zip(starts[~two].tolist(), ends[~two].tolist(), strict=True):
+    small = ends - starts <= _SMALL_BUCKET
+    found_repeats, found_pairs = _small_buckets(ids, sig, starts[small], ends[small] - starts[small], threshold)
+    # larger buckets: one step each (most shared buckets hold two or three documents)
+    for a, b in zip(starts[~small].tolist(), ends[~small].tolist(), strict=True):
         rep, pair = _bucket_pairs(ids[a:b], sig[a:b], threshold)
         found_repeats.append(rep)
         found_pairs.append(pair)
@@ -298,25 +298,32 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
     return np.unique(np.concatenate(found_repeats)), pairs.reshape(-1, 2)
 
 
+_SMALL_BUCKET: Final = 8  # buckets up to this size are compared together, all pairs at once
 _PAIR_BLOCK: Final = 1 << 14  # pairs compared per numpy pass: bounds the (pairs, hashes) temporaries
 
 
-def _pair_buckets(
-    ids: np.ndarray, sig: np.ndarray, firsts: np.ndarray, threshold: float
+def _small_buckets(
+    ids: np.ndarray, sig: np.ndarray, starts: np.ndarray, sizes: np.ndarray, threshold: float
 ) -> tuple[list[np.ndarray], list[np.ndarray]]:
-    """:func:`_bucket_pairs` for every bucket of exactly two members (rows ``first`` and
-    ``first + 1``, in corpus order) at once: the later member is a repeat when the signatures
-    are equal, else the pair is kept when its estimated similarity reaches ``threshold``."""
+    """:func:`_bucket_pairs` for many small buckets at once (rows ``start .. start + size`` of
+    ``ids``/``sig``, each bucket in corpus order), by bucket size: every pair of members is
+    compared; a member equal to an earlier one is a repeat, and the pairs of members that are not
+    repeats are kept when their estimated similarity reaches ``threshold``."""
     repeats: list[np.ndarray] = [np.zeros(0, np.int64)]
     pairs: list[np.ndarray] = [np.zeros((0, 2), np.int64)]
-    for lo in range(0, len(firsts), _PAIR_BLOCK):
-        a = firsts[lo : lo + _PAIR_BLOCK]
-        b = a + 1
-        share = (sig[a] == sig[b]).mean(axis=1)
-        same = share == 1.0
-        repeats.append(ids[b[same]])
-        keep = ~same & (share >= threshold)  # the estimate near_duplicate_keep uses
-        pairs.append(np.stack([ids[a[keep]], ids[b[keep]]], axis=1))
+    for m in range(2, _SMALL_BUCKET + 1):
+        first, second = np.triu_indices(m, 1)
+        group = starts[sizes == m]
+        step = max(1, _PAIR_BLOCK // len(first))
+        for lo in range(0, len(group), step):
+            base = group[lo : lo + step, None]
+            a, b = (base + first).ravel(), (base + second).ravel()
+            share = (sig[a] == sig[b]).mean(axis=1)
+            repeated = np.unique(b[share == 1.0])
+            repeats.append(ids[repeated])
+            # pairs between members that are not repeats (their signatures differ: share < 1)
+            keep = (share >= threshold) & ~np.isin(a, repeated) & ~np.isin(b, repeated)
+            pairs.append(np.stack([ids[a[keep]], ids[b[keep]]], axis=1))
     return repeats, pairs
 
 
