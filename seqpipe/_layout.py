@@ -19,9 +19,9 @@ import pyarrow as pa
 
 from seqpipe._hashing import hash_file
 from seqpipe.formats import DOCS_SCHEMA, docs_path, shard_path
-from seqpipe.ingest import ShardTask, encoded_path, fragment_path
+from seqpipe.ingest import ShardTask, encoded_path, fragment_path, read_fragment
 from seqpipe.recipe import SPLIT_NAMES, Recipe
-from seqpipe.shards import read_table, write_batches
+from seqpipe.shards import write_batches
 
 DOCS_BATCH_ROWS: Final = 1 << 16
 # what encode_part reports per split and part, summed per split
@@ -157,7 +157,7 @@ def _docs_batches(
     pending: list[pa.Table] = []
     rows = 0
     for i in numbers:
-        frag = read_table(fragment_path(str(stage), i, split))
+        frag = read_fragment(str(fragment_path(str(stage), i, split)))
         lengths = frag.column("length").to_numpy()
         starts = start + np.cumsum(lengths) - lengths
         start += int(lengths.sum())

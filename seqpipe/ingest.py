@@ -29,6 +29,7 @@ import itertools
 import json
 import os
 import shutil
+import threading
 import uuid
 from collections import deque
 from collections.abc import Iterable, Iterator, Sequence
@@ -676,6 +677,8 @@ class EncodeTask:
     keep: np.ndarray | None  # bool per document (None: keep all)
     dtype: str
     fixed: int | None = None  # the split of every document, for a source with a fixed split
+    # the task runs in the driver's process: it may hand its output to the shard phase in memory
+    hold: bool = False
 
 
 _ENCODERS: dict[str, Encoder] = {}
@@ -703,9 +706,78 @@ def fragment_path(stage_dir: str, number: int, split: str) -> Path:
     return encoded_dir(stage_dir) / f"{number:06d}.{split}.docs.arrow"
 
 
+# An encode task that runs in the driver's process (its thread pool) hands its ids and document
+# fragment to the shard phase in memory, under the file name it would otherwise write and the
+# shard phase read back; the rest go through files. Bounded in all, so the driver's memory does
+# not grow with the corpus: past the bound, files again.
+HELD_BYTES: Final = 128 << 20
+
+
+class _Held:
+    """Encoded arrays held for the shard phase, by file name (thread-safe)."""
+
+    def __init__(self) -> None:
+        self.lock = threading.Lock()
+        self.items: dict[str, tuple[Any, int]] = {}
+        self.bytes = 0
+
+    def put(self, path: Path, value: Any, nbytes: int) -> bool:
+        """Hold ``value`` as the file ``path``; False (nothing held) past HELD_BYTES."""
+        with self.lock:
+            if self.bytes + nbytes > HELD_BYTES:
+                return False
+            self.items[str(path)] = (value, nbytes)
+            self.bytes += nbytes
+            return True
+
+    def get(self, path: str) -> Any:
+        with self.lock:
+            got = self.items.get(path)
+        return None if got is None else got[0]
+
+    def release(self, stage_dir: str) -> None:
+        """Drop what is held for ``stage_dir``'s encoded files."""
+        prefix = str(encoded_dir(stage_dir))
+        with self.lock:
+            for name in [n for n in self.items if n.startswith(prefix)]:
+                self.bytes -= self.items.pop(name)[1]
+
+
+_HELD = _Held()
+
+
+def release_encoded(stage_dir: str) -> None:
+    """Forget the encoded output held in memory for the stage (with its files, once sharded)."""
+    _HELD.release(stage_dir)
+
+
+def read_encoded(path: str) -> np.ndarray:
+    """The ids an encode task wrote to ``path`` (or held under that name)."""
+    held = _HELD.get(path)
+    return held if held is not None else read_shard(Path(path))
+
+
+def read_fragment(path: str) -> pa.Table:
+    """The document fragment an encode task wrote to ``path`` (or held under that name)."""
+    held = _HELD.get(path)
+    return held if held is not None else read_table(Path(path))
+
+
+def _put_encoded(task: EncodeTask, split: str, ids: np.ndarray, fragment: pa.Table) -> None:
+    """Hand a split's ids and fragment on: held in memory when the task may, else written."""
+    path, frag_path = (
+        encoded_path(task.stage_dir, task.number, split),
+        fragment_path(task.stage_dir, task.number, split),
+    )
+    if not (task.hold and _HELD.put(path, ids, ids.nbytes)):
+        write_shard(path, ids, durable=False)
+    if not (task.hold and _HELD.put(frag_path, fragment, fragment.nbytes)):
+        write_table(frag_path, fragment, durable=False)
+
+
 def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
-    """Encode one part's kept documents per split, markers added. Writes per split an id file
-    and a document fragment (length, input, hash per document); returns per split the totals
+    """Encode one part's kept documents per split, markers added. Hands on per split its ids
+    and a document fragment (length, input, hash per document), see _put_encoded; returns per split the totals
     ``tokens``, ``content`` (tokens without the begin/end markers), ``documents``, ``unknown``,
     ``bytes`` and ``words``."""
     from seqpipe.recipe import SPLIT_NAMES
@@ -743,18 +815,14 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
         ids = _add_markers(ids.astype(task.dtype, copy=False), lengths, begin, end)
         lengths = lengths + (begin is not None) + (end is not None)
         unknown = int(np.count_nonzero(ids == unk)) if unk is not None else 0
-        write_shard(encoded_path(task.stage_dir, task.number, split), ids, durable=False)
-        write_table(
-            fragment_path(task.stage_dir, task.number, split),
-            durable=False,
-            table=pa.table(
-                {
-                    "length": pa.array(lengths, pa.int64()),
-                    "input": pa.array(inputs[dmask]),
-                    "hash": hashes.filter(pa.array(dmask)),
-                }
-            ),
+        fragment = pa.table(
+            {
+                "length": pa.array(lengths, pa.int64()),
+                "input": pa.array(inputs[dmask]),
+                "hash": hashes.filter(pa.array(dmask)),
+            }
         )
+        _put_encoded(task, split, ids, fragment)
         out[split] = {
             "tokens": int(lengths.sum()),
             "content": content,
@@ -805,7 +873,7 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
     with ``count_ids``, each id's occurrences in it)."""
     from seqpipe._hashing import hash_file
 
-    chunks = [read_shard(Path(p))[a:b] for p, a, b in task.pieces]
+    chunks = [read_encoded(p)[a:b] for p, a, b in task.pieces]
     ids = np.concatenate(chunks).astype(task.dtype, copy=False) if chunks else np.zeros(0, task.dtype)
     target = Path(task.path)
     if target.exists():  # left by an interrupted run of the same build: keep it if it checks out
