@@ -90,7 +90,7 @@ from seqpipe.ingest import (
 from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
-from seqpipe.shards import id_dtype
+from seqpipe.shards import id_dtype, sync_tree
 from seqpipe.sources.base import Part
 from seqpipe.splits import fixed_split_of
 from seqpipe.staging import build_lock, check_output, private_dir, publish
@@ -951,6 +951,7 @@ def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fi
     except OSError as exc:
         raise OutputWriteError(f"{stage / MANIFEST_NAME}: cannot write it ({exc})", path=str(stage)) from exc
     entries = [VOCAB_FILE, *fitted.files, DOCS_DIR, SHARDS_DIR]
+    sync_tree(stage, [*entries, MANIFEST_NAME])  # shards and documents tables were written without fsync
     # old entries the new build lacks (tokenizer.arrow) go in publish, after the old manifest
     publish(out, stage, entries, MANIFEST_NAME)
     shutil.rmtree(stage, ignore_errors=True)

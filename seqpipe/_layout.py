@@ -96,13 +96,14 @@ def _split_layout(
 
 
 def write_docs_tables(stage: Path, layouts: Sequence[SplitLayout]) -> tuple[DocsTable, ...]:
-    """The documents tables, streamed fragment by fragment; counts the documents starting in each shard."""
+    """The documents tables, streamed fragment by fragment; counts the documents starting in each
+    shard. Written without fsync: the build syncs its whole stage before publishing it."""
     out = []
     for layout in layouts:
         rel = docs_path(layout.name)
         docs_in = np.zeros(len(layout.shards), np.int64)
         batches = _docs_batches(stage, layout.name, layout.parts, layout.per_shard, docs_in)
-        size = write_batches(stage / rel, DOCS_SCHEMA, batches)
+        size = write_batches(stage / rel, DOCS_SCHEMA, batches, durable=False)
         out.append(DocsTable(rel, size, hash_file(stage / rel), tuple(int(c) for c in docs_in)))
     return tuple(out)
 

@@ -776,8 +776,9 @@ def _put_encoded(task: EncodeTask, split: str, ids: np.ndarray, fragment: pa.Tab
 
 
 def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
-    """Encode one part's kept documents per split, markers added. Hands on per split its ids
-    and a document fragment (length, input, hash per document), see _put_encoded; returns per split the totals
+    """Encode one part's kept documents per split, markers added. Hands on per split its
+    ids and a document fragment (length, input, hash per document), see _put_encoded; returns per
+    split the totals
     ``tokens``, ``content`` (tokens without the begin/end markers), ``documents``, ``unknown``,
     ``bytes`` and ``words``."""
     from seqpipe.recipe import SPLIT_NAMES
@@ -870,7 +871,8 @@ class ShardTask:
 
 def write_shard_task(task: ShardTask) -> dict[str, Any]:
     """Concatenate slices of encoded files into one shard; return its size and hashes (and,
-    with ``count_ids``, each id's occurrences in it)."""
+    with ``count_ids``, each id's occurrences in it). Written without fsync: the build syncs its
+    whole stage before publishing it (shards.sync_tree)."""
     from seqpipe._hashing import hash_file
 
     chunks = [read_encoded(p)[a:b] for p, a, b in task.pieces]
@@ -892,7 +894,7 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
                 }
         except SeqpipeError:
             pass
-    size, token_hash = write_shard(target, ids, compression=task.compression)
+    size, token_hash = write_shard(target, ids, compression=task.compression, durable=False)
     return {
         "bytes": size,
         "token_hash": token_hash,
