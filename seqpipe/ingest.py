@@ -46,7 +46,7 @@ import xxhash
 from seqpipe._environment import part_environment
 from seqpipe._hashing import hash_array, hash_file, hash_json
 from seqpipe._parse import to_plain
-from seqpipe.errors import PatternTimeoutError, SeqpipeError, SourceError
+from seqpipe.errors import PatternTimeoutError, SeqpipeError, ShardCorruptError, SourceError
 from seqpipe.recipe import Recipe
 from seqpipe.shards import id_dtype, read_shard, read_table, write_shard, write_table
 from seqpipe.splits import assign_splits, fixed_split_of
@@ -799,6 +799,11 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     # one id per piece (whole-word kinds): a table of the part's keys in the ids' stored type,
     # so each split is one gather of its codes straight into the type it is written in
     table = values.astype(task.dtype) if len(offsets) == len(values) + 1 and (np.diff(offsets) == 1).all() else None
+    if table is not None and len(codes) and int(codes.max()) >= len(table):
+        where = _part_dir(task.cache_dir, task.key)
+        raise ShardCorruptError(
+            f"{where}: a piece code has no key; remove that directory to rebuild the part", path=str(where)
+        )
     whole = len(splits) > 0 and bool((splits == splits[0]).all())  # one split: no per-piece mask
     piece_split = None if whole else np.repeat(splits, pieces)  # once, not a repeat per split
     out: dict[str, dict[str, int]] = {}
@@ -808,7 +813,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
             continue
         split_codes = codes if piece_split is None else codes[piece_split == s]
         if table is not None:
-            ids, lengths = table[split_codes], pieces[dmask].astype(np.int64)
+            ids, lengths = _gathered(table, split_codes), pieces[dmask].astype(np.int64)
         else:
             ids, lengths = expand(values, offsets, split_codes, pieces[dmask])
         content = len(ids)  # the documents' own tokens, before begin/end markers
@@ -834,6 +839,13 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
             "words": int(docs.column("words").to_numpy()[dmask].sum()),
         }
     return out
+
+
+def _gathered(table: np.ndarray, codes: np.ndarray) -> np.ndarray:
+    """``table[codes]`` for codes already checked to be below ``len(table)``: Arrow's take reads
+    the small unsigned codes as they are, where numpy would first copy them to 8-byte indices."""
+    ids: np.ndarray = pc.take(pa.array(table), pa.array(codes), boundscheck=False).to_numpy(zero_copy_only=False)
+    return ids
 
 
 def _add_markers(ids: np.ndarray, lengths: np.ndarray, begin: int | None, end: int | None) -> np.ndarray:
