@@ -12,10 +12,11 @@ and the shard phase's arithmetic (shard cuts, documents tables) in seqpipe/_layo
              their content hashes, seqpipe/splits.py)
     count    piece counts over train documents, task per part, merged by group-by -> count table
     fit      vocabulary (+ learned merges)     -> stage/vocab.arrow, tokenizer.arrow -> Fitted
-    encode   ids per part and split, task per part -> stage/encoded/*            -> per-part totals
+    encode   ids per part and split, task per part -> held in memory for the shard tasks when
+             they run in this process (up to a bound), else stage/encoded/* -> per-part totals
     shard    fixed-size shards per split, task per shard -> stage/shards/<split>/*.arrow
              and, in the driver meanwhile, documents tables -> stage/documents/<split>.arrow -> Sharded
-    publish  manifest, atomic rename into the output directory                   -> manifest
+    publish  manifest, the stage fsynced at once, atomic rename into the output directory -> manifest
     upload   only when the output is a URI: the local dataset copied up (seqpipe/transfer.py)
 
 Document order and every tie come from the inputs (recipe order, sorted paths, byte order),
