@@ -737,7 +737,7 @@ class _Held:
 
     def release(self, stage_dir: str) -> None:
         """Drop what is held for ``stage_dir``'s encoded files."""
-        prefix = str(encoded_dir(stage_dir))
+        prefix = os.path.join(encoded_dir(stage_dir), "")
         with self.lock:
             for name in [n for n in self.items if n.startswith(prefix)]:
                 self.bytes -= self.items.pop(name)[1]

@@ -259,4 +259,4 @@ def test_encoded_parts_held_in_memory_or_written_give_the_same_dataset(
     monkeypatch.setattr(ingest_module, "HELD_BYTES", held_bytes)
     build(recipe, tmp_path / "files", part_bytes=300, progress=False)
     assert dataset_files(tmp_path / "files") == dataset_files(tmp_path / "held")
-    assert ingest_module._HELD.items == {} and ingest_module._HELD.bytes == 0
+    assert not [name for name in ingest_module._HELD.items if name.startswith(str(tmp_path))]
