@@ -48,7 +48,7 @@ from seqpipe._hashing import hash_array, hash_file, hash_json
 from seqpipe._parse import to_plain
 from seqpipe.errors import PatternTimeoutError, SeqpipeError, ShardCorruptError, SourceError
 from seqpipe.recipe import Recipe
-from seqpipe.shards import id_dtype, read_shard, read_table, write_shard, write_table
+from seqpipe.shards import fsync_file, id_dtype, read_shard, read_table, write_shard, write_table
 from seqpipe.splits import assign_splits, fixed_split_of
 from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
@@ -883,8 +883,8 @@ class ShardTask:
 
 def write_shard_task(task: ShardTask) -> dict[str, Any]:
     """Concatenate slices of encoded files into one shard; return its size and hashes (and,
-    with ``count_ids``, each id's occurrences in it). Written without fsync: the build syncs its
-    whole stage before publishing it (shards.sync_tree)."""
+    with ``count_ids``, each id's occurrences in it). The file is fsynced here, its
+    directory when the build syncs its whole stage before publishing it (shards.sync_tree)."""
     from seqpipe._hashing import hash_file
 
     chunks = [read_encoded(p)[a:b] for p, a, b in task.pieces]
@@ -907,6 +907,8 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
         except SeqpipeError:
             pass
     size, token_hash = write_shard(target, ids, compression=task.compression, durable=False)
+    # its data now, while other tasks still compute (their directory is synced once, at publish)
+    fsync_file(target)
     return {
         "bytes": size,
         "token_hash": token_hash,

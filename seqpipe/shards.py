@@ -105,12 +105,13 @@ def sync_tree(root: Path, entries: Sequence[str]) -> None:
             files.append(top)
             dirs.add(top.parent)
     with ThreadPoolExecutor(max_workers=max(1, min(SYNC_THREADS, len(files)))) as pool:
-        list(pool.map(_fsync_file, files))
+        list(pool.map(fsync_file, files))
     for d in sorted(dirs, key=lambda p: len(p.parts), reverse=True):
         fsync_dir(d)
 
 
-def _fsync_file(path: Path) -> None:
+def fsync_file(path: Path) -> None:
+    """fsync one file; OutputWriteError naming it when that fails."""
     try:
         with open(path, "rb") as fh:
             os.fsync(fh.fileno())
