@@ -952,7 +952,7 @@ def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fi
     except OSError as exc:
         raise OutputWriteError(f"{stage / MANIFEST_NAME}: cannot write it ({exc})", path=str(stage)) from exc
     entries = [VOCAB_FILE, *fitted.files, DOCS_DIR, SHARDS_DIR]
-    sync_tree(stage, [*entries, MANIFEST_NAME])  # shards and documents tables were written without fsync
+    sync_tree(stage, [*entries, MANIFEST_NAME])  # documents tables, manifest and directories not yet synced
     # old entries the new build lacks (tokenizer.arrow) go in publish, after the old manifest
     publish(out, stage, entries, MANIFEST_NAME)
     shutil.rmtree(stage, ignore_errors=True)
