@@ -12,10 +12,11 @@ and the shard phase's arithmetic (shard cuts, documents tables) in seqpipe/_layo
              their content hashes, seqpipe/splits.py)
     count    piece counts over train documents, task per part, merged by group-by -> count table
     fit      vocabulary (+ learned merges)     -> stage/vocab.arrow, tokenizer.arrow -> Fitted
-    encode   ids per part and split, task per part -> stage/encoded/*            -> per-part totals
+    encode   ids per part and split, task per part -> held in memory for the shard tasks when
+             they run in this process (up to a bound), else stage/encoded/* -> per-part totals
     shard    fixed-size shards per split, task per shard -> stage/shards/<split>/*.arrow
              and, in the driver meanwhile, documents tables -> stage/documents/<split>.arrow -> Sharded
-    publish  manifest, atomic rename into the output directory                   -> manifest
+    publish  manifest, the stage fsynced at once, atomic rename into the output directory -> manifest
     upload   only when the output is a URI: the local dataset copied up (seqpipe/transfer.py)
 
 Document order and every tie come from the inputs (recipe order, sorted paths, byte order),
@@ -31,7 +32,7 @@ import shutil
 import stat
 import time
 from collections.abc import Iterator, Sequence
-from concurrent.futures import Executor
+from concurrent.futures import Executor, ThreadPoolExecutor
 from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass, field
 from functools import partial
@@ -69,7 +70,7 @@ from seqpipe._reuse import VocabSource, adopt_vocabulary, open_vocab_source, reu
 from seqpipe._runner import View, run, run_beside
 from seqpipe.counts import CountMerger
 from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SourceMissingError
-from seqpipe.executors import TaskPool, task_pool
+from seqpipe.executors import InlineExecutor, TaskPool, task_pool
 from seqpipe.formats import DOCS_DIR, OPTIONAL_TOP, SHARDS_DIR, VOCAB_FILE
 from seqpipe.ingest import (
     CountTask,
@@ -84,12 +85,13 @@ from seqpipe.ingest import (
     load_part_meta,
     part_intact,
     part_key,
+    release_encoded,
     write_shard_task,
 )
 from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
-from seqpipe.shards import id_dtype
+from seqpipe.shards import id_dtype, sync_tree
 from seqpipe.sources.base import Part
 from seqpipe.splits import fixed_split_of
 from seqpipe.staging import build_lock, check_output, private_dir, publish
@@ -803,8 +805,11 @@ def reuse(recipe: Recipe, source: VocabSource, stage: Path) -> Fitted:
 
 
 def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) -> tuple[dict[str, dict[str, int]], ...]:
-    """Encode every part's kept documents per split; per part, the totals per split it holds."""
+    """Encode every part's kept documents per split; per part, the totals per split it holds.
+    Tasks that run in this process hand their output to the shard phase in memory (up to a bound)."""
     shutil.rmtree(encoded_dir(str(stage)), ignore_errors=True)
+    release_encoded(str(stage))
+    local = isinstance(ctx.pool.executor, (ThreadPoolExecutor, InlineExecutor))
     tasks = [
         EncodeTask(
             str(ctx.cache),
@@ -816,11 +821,16 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
             None,
             fitted.dtype,
             _fixed(ctx.recipe, t),
+            hold=local,
         )
         for i, t in enumerate(plan.tasks)
     ]
     fn, work = _masked(kept, tasks, count=False)
-    totals = tuple(run(ctx.pool.executor, ctx.show, fn, work, View("encoding")))
+    try:
+        totals = tuple(run(ctx.pool.executor, ctx.show, fn, work, View("encoding")))
+    except BaseException:
+        release_encoded(str(stage))
+        raise
     shutil.rmtree(stage / DEDUPE_DIR, ignore_errors=True)  # the drop lists are no longer read
     return totals
 
@@ -831,15 +841,18 @@ def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path, fitted: Fit
     tasks = [task for layout in layouts for task in layout.shards]
     view = View("writing shards", unit="shard")
     id_counts = np.zeros(fitted.vocab_size, np.int64)
-    results, docs = run_beside(
-        ctx.pool.executor,
-        ctx.show,
-        write_shard_task,
-        tasks,
-        view,
-        partial(write_docs_tables, stage, layouts),
-        each=partial(_add_id_counts, id_counts),
-    )
+    try:
+        results, docs = run_beside(
+            ctx.pool.executor,
+            ctx.show,
+            write_shard_task,
+            tasks,
+            view,
+            partial(write_docs_tables, stage, layouts),
+            each=partial(_add_id_counts, id_counts),
+        )
+    finally:
+        release_encoded(str(stage))
     shutil.rmtree(encoded_dir(str(stage)), ignore_errors=True)
     splits: dict[str, Any] = {}
     at = 0
@@ -939,6 +952,7 @@ def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fi
     except OSError as exc:
         raise OutputWriteError(f"{stage / MANIFEST_NAME}: cannot write it ({exc})", path=str(stage)) from exc
     entries = [VOCAB_FILE, *fitted.files, DOCS_DIR, SHARDS_DIR]
+    sync_tree(stage, [*entries, MANIFEST_NAME])  # documents tables, manifest and directories not yet synced
     # old entries the new build lacks (tokenizer.arrow) go in publish, after the old manifest
     publish(out, stage, entries, MANIFEST_NAME)
     shutil.rmtree(stage, ignore_errors=True)

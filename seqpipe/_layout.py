@@ -19,9 +19,9 @@ import pyarrow as pa
 
 from seqpipe._hashing import hash_file
 from seqpipe.formats import DOCS_SCHEMA, docs_path, shard_path
-from seqpipe.ingest import ShardTask, encoded_path, fragment_path
+from seqpipe.ingest import ShardTask, encoded_path, fragment_path, read_fragment
 from seqpipe.recipe import SPLIT_NAMES, Recipe
-from seqpipe.shards import read_table, write_batches
+from seqpipe.shards import write_batches
 
 DOCS_BATCH_ROWS: Final = 1 << 16
 # what encode_part reports per split and part, summed per split
@@ -96,13 +96,14 @@ def _split_layout(
 
 
 def write_docs_tables(stage: Path, layouts: Sequence[SplitLayout]) -> tuple[DocsTable, ...]:
-    """The documents tables, streamed fragment by fragment; counts the documents starting in each shard."""
+    """The documents tables, streamed fragment by fragment; counts the documents starting in each
+    shard. Written without fsync: the build syncs its whole stage before publishing it."""
     out = []
     for layout in layouts:
         rel = docs_path(layout.name)
         docs_in = np.zeros(len(layout.shards), np.int64)
         batches = _docs_batches(stage, layout.name, layout.parts, layout.per_shard, docs_in)
-        size = write_batches(stage / rel, DOCS_SCHEMA, batches)
+        size = write_batches(stage / rel, DOCS_SCHEMA, batches, durable=False)
         out.append(DocsTable(rel, size, hash_file(stage / rel), tuple(int(c) for c in docs_in)))
     return tuple(out)
 
@@ -157,7 +158,7 @@ def _docs_batches(
     pending: list[pa.Table] = []
     rows = 0
     for i in numbers:
-        frag = read_table(fragment_path(str(stage), i, split))
+        frag = read_fragment(str(fragment_path(str(stage), i, split)))
         lengths = frag.column("length").to_numpy()
         starts = start + np.cumsum(lengths) - lengths
         start += int(lengths.sum())

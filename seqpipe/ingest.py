@@ -29,6 +29,7 @@ import itertools
 import json
 import os
 import shutil
+import threading
 import uuid
 from collections import deque
 from collections.abc import Iterable, Iterator, Sequence
@@ -45,9 +46,9 @@ import xxhash
 from seqpipe._environment import part_environment
 from seqpipe._hashing import hash_array, hash_file, hash_json
 from seqpipe._parse import to_plain
-from seqpipe.errors import PatternTimeoutError, SeqpipeError, SourceError
+from seqpipe.errors import PatternTimeoutError, SeqpipeError, ShardCorruptError, SourceError
 from seqpipe.recipe import Recipe
-from seqpipe.shards import id_dtype, read_shard, read_table, write_shard, write_table
+from seqpipe.shards import fsync_file, id_dtype, read_shard, read_table, write_shard, write_table
 from seqpipe.splits import assign_splits, fixed_split_of
 from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
@@ -707,6 +708,8 @@ class EncodeTask:
     keep: np.ndarray | None  # bool per document (None: keep all)
     dtype: str
     fixed: int | None = None  # the split of every document, for a source with a fixed split
+    # the task runs in the driver's process: it may hand its output to the shard phase in memory
+    hold: bool = False
 
 
 _ENCODERS: dict[str, Encoder] = {}
@@ -734,9 +737,79 @@ def fragment_path(stage_dir: str, number: int, split: str) -> Path:
     return encoded_dir(stage_dir) / f"{number:06d}.{split}.docs.arrow"
 
 
+# An encode task that runs in the driver's process (its thread pool) hands its ids and document
+# fragment to the shard phase in memory, under the file name it would otherwise write and the
+# shard phase read back; the rest go through files. Bounded in all, so the driver's memory does
+# not grow with the corpus: past the bound, files again.
+HELD_BYTES: Final = 128 << 20
+
+
+class _Held:
+    """Encoded arrays held for the shard phase, by file name (thread-safe)."""
+
+    def __init__(self) -> None:
+        self.lock = threading.Lock()
+        self.items: dict[str, tuple[Any, int]] = {}
+        self.bytes = 0
+
+    def put(self, path: Path, value: Any, nbytes: int) -> bool:
+        """Hold ``value`` as the file ``path``; False (nothing held) past HELD_BYTES."""
+        with self.lock:
+            if self.bytes + nbytes > HELD_BYTES:
+                return False
+            self.items[str(path)] = (value, nbytes)
+            self.bytes += nbytes
+            return True
+
+    def get(self, path: str) -> Any:
+        with self.lock:
+            got = self.items.get(path)
+        return None if got is None else got[0]
+
+    def release(self, stage_dir: str) -> None:
+        """Drop what is held for ``stage_dir``'s encoded files."""
+        prefix = os.path.join(encoded_dir(stage_dir), "")
+        with self.lock:
+            for name in [n for n in self.items if n.startswith(prefix)]:
+                self.bytes -= self.items.pop(name)[1]
+
+
+_HELD = _Held()
+
+
+def release_encoded(stage_dir: str) -> None:
+    """Forget the encoded output held in memory for the stage (with its files, once sharded)."""
+    _HELD.release(stage_dir)
+
+
+def read_encoded(path: str) -> np.ndarray:
+    """The ids an encode task wrote to ``path`` (or held under that name)."""
+    held = _HELD.get(path)
+    return held if held is not None else read_shard(Path(path))
+
+
+def read_fragment(path: str) -> pa.Table:
+    """The document fragment an encode task wrote to ``path`` (or held under that name)."""
+    held = _HELD.get(path)
+    return held if held is not None else read_table(Path(path))
+
+
+def _put_encoded(task: EncodeTask, split: str, ids: np.ndarray, fragment: pa.Table) -> None:
+    """Hand a split's ids and fragment on: held in memory when the task may, else written."""
+    path, frag_path = (
+        encoded_path(task.stage_dir, task.number, split),
+        fragment_path(task.stage_dir, task.number, split),
+    )
+    if not (task.hold and _HELD.put(path, ids, ids.nbytes)):
+        write_shard(path, ids, durable=False)
+    if not (task.hold and _HELD.put(frag_path, fragment, fragment.nbytes)):
+        write_table(frag_path, fragment, durable=False)
+
+
 def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
-    """Encode one part's kept documents per split, markers added. Writes per split an id file
-    and a document fragment (length, input, hash per document); returns per split the totals
+    """Encode one part's kept documents per split, markers added. Hands on per split its
+    ids and a document fragment (length, input, hash per document), see _put_encoded; returns per
+    split the totals
     ``tokens``, ``content`` (tokens without the begin/end markers), ``documents``, ``unknown``,
     ``bytes`` and ``words``."""
     from seqpipe.recipe import SPLIT_NAMES
@@ -757,6 +830,11 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
     # one id per piece (whole-word kinds): a table of the part's keys in the ids' stored type,
     # so each split is one gather of its codes straight into the type it is written in
     table = values.astype(task.dtype) if len(offsets) == len(values) + 1 and (np.diff(offsets) == 1).all() else None
+    if table is not None and len(codes) and int(codes.max()) >= len(table):
+        where = _part_dir(task.cache_dir, task.key)
+        raise ShardCorruptError(
+            f"{where}: a piece code has no key; remove that directory to rebuild the part", path=str(where)
+        )
     whole = len(splits) > 0 and bool((splits == splits[0]).all())  # one split: no per-piece mask
     piece_split = None if whole else np.repeat(splits, pieces)  # once, not a repeat per split
     out: dict[str, dict[str, int]] = {}
@@ -766,7 +844,7 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
             continue
         split_codes = codes if piece_split is None else codes[piece_split == s]
         if table is not None:
-            ids, lengths = table[split_codes], pieces[dmask].astype(np.int64)
+            ids, lengths = _gathered(table, split_codes), pieces[dmask].astype(np.int64)
         else:
             ids, lengths = expand(values, offsets, split_codes, pieces[dmask])
         content = len(ids)  # the documents' own tokens, before begin/end markers
@@ -774,18 +852,14 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
         ids = _add_markers(ids.astype(task.dtype, copy=False), lengths, begin, end)
         lengths = lengths + (begin is not None) + (end is not None)
         unknown = int(np.count_nonzero(ids == unk)) if unk is not None else 0
-        write_shard(encoded_path(task.stage_dir, task.number, split), ids, durable=False)
-        write_table(
-            fragment_path(task.stage_dir, task.number, split),
-            durable=False,
-            table=pa.table(
-                {
-                    "length": pa.array(lengths, pa.int64()),
-                    "input": pa.array(inputs[dmask]),
-                    "hash": hashes.filter(pa.array(dmask)),
-                }
-            ),
+        fragment = pa.table(
+            {
+                "length": pa.array(lengths, pa.int64()),
+                "input": pa.array(inputs[dmask]),
+                "hash": hashes.filter(pa.array(dmask)),
+            }
         )
+        _put_encoded(task, split, ids, fragment)
         out[split] = {
             "tokens": int(lengths.sum()),
             "content": content,
@@ -796,6 +870,13 @@ def encode_part(task: EncodeTask) -> dict[str, dict[str, int]]:
             "words": int(docs.column("words").to_numpy()[dmask].sum()),
         }
     return out
+
+
+def _gathered(table: np.ndarray, codes: np.ndarray) -> np.ndarray:
+    """``table[codes]`` for codes already checked to be below ``len(table)``: Arrow's take reads
+    the small unsigned codes as they are, where numpy would first copy them to 8-byte indices."""
+    ids: np.ndarray = pc.take(pa.array(table), pa.array(codes), boundscheck=False).to_numpy(zero_copy_only=False)
+    return ids
 
 
 def _add_markers(ids: np.ndarray, lengths: np.ndarray, begin: int | None, end: int | None) -> np.ndarray:
@@ -833,10 +914,11 @@ class ShardTask:
 
 def write_shard_task(task: ShardTask) -> dict[str, Any]:
     """Concatenate slices of encoded files into one shard; return its size and hashes (and,
-    with ``count_ids``, each id's occurrences in it)."""
+    with ``count_ids``, each id's occurrences in it). The file is fsynced here, its
+    directory when the build syncs its whole stage before publishing it (shards.sync_tree)."""
     from seqpipe._hashing import hash_file
 
-    chunks = [read_shard(Path(p))[a:b] for p, a, b in task.pieces]
+    chunks = [read_encoded(p)[a:b] for p, a, b in task.pieces]
     ids = np.concatenate(chunks).astype(task.dtype, copy=False) if chunks else np.zeros(0, task.dtype)
     target = Path(task.path)
     if target.exists():  # left by an interrupted run of the same build: keep it if it checks out
@@ -855,7 +937,9 @@ def write_shard_task(task: ShardTask) -> dict[str, Any]:
                 }
         except SeqpipeError:
             pass
-    size, token_hash = write_shard(target, ids, compression=task.compression)
+    size, token_hash = write_shard(target, ids, compression=task.compression, durable=False)
+    # its data now, while other tasks still compute (their directory is synced once, at publish)
+    fsync_file(target)
     return {
         "bytes": size,
         "token_hash": token_hash,

@@ -12,9 +12,8 @@ import pytest
 from seqpipe._build import Context, Plan, assign, count, encode, fit, ingest, plan_build
 from seqpipe.counts import CountMerger
 from seqpipe.executors import InlineExecutor, TaskPool
-from seqpipe.ingest import encoded_path, load_part_meta, part_key
+from seqpipe.ingest import encoded_path, load_part_meta, part_key, read_encoded, release_encoded
 from seqpipe.recipe import Recipe, parse_recipe
-from seqpipe.shards import read_shard
 from seqpipe.vocab import VocabSpec, Vocabulary
 
 # invented logbook lines, words separated by single spaces (so str.split gives the tokens)
@@ -74,7 +73,8 @@ def test_a_part_is_ingested_counted_and_encoded(tmp_path: Path) -> None:
     fitted = fit(recipe, counts, stage)
     totals = encode(ctx, plan, kept, fitted, stage)
     assert totals[0]["train"]["documents"] == len(DOCS)
-    ids = read_shard(encoded_path(str(stage), 0, "train"))
+    ids = read_encoded(str(encoded_path(str(stage), 0, "train")))
+    release_encoded(str(stage))  # no shard phase here to release what encode held
     vocab = Vocabulary.load(stage / "vocab.arrow")
     end = vocab.id_of("end")
     assert int(np.count_nonzero(ids == end)) == len(DOCS)  # one end marker per document

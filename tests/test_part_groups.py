@@ -242,3 +242,21 @@ def test_stored_cuts_follow_the_inputs(tmp_path: Path) -> None:
     stored = json.loads((cache / "plans.json").read_text())
     assert len(stored) == 11
     assert [[0, len(b"tide calm\n")]] in stored.values()
+
+
+@pytest.mark.parametrize("held_bytes", [0, 3000])
+def test_encoded_parts_held_in_memory_or_written_give_the_same_dataset(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, held_bytes: int
+) -> None:
+    """Encode tasks on the driver's threads hand their ids to the shard tasks in memory up to a
+    bound and through files beyond it: with no memory at all, or room for only some parts, the
+    dataset's bytes are those of a build that held every part; nothing stays held after it."""
+    import seqpipe.ingest as ingest_module
+
+    write_notes(tmp_path, files=60, awkward=False)
+    recipe = recipe_of(tmp_path)
+    build(recipe, tmp_path / "held", part_bytes=300, progress=False)
+    monkeypatch.setattr(ingest_module, "HELD_BYTES", held_bytes)
+    build(recipe, tmp_path / "files", part_bytes=300, progress=False)
+    assert dataset_files(tmp_path / "files") == dataset_files(tmp_path / "held")
+    assert not [name for name in ingest_module._HELD.items if name.startswith(str(tmp_path))]

@@ -73,3 +73,60 @@ def test_truncated_and_missing_shards_raise_our_errors(tmp_path: Path) -> None:
     p.write_bytes(raw)
     with pytest.raises(ShardCorruptError, match="manifest says"):
         read_shard(p, expected_tokens=999)
+
+
+def _stage_tree(root: Path) -> list[Path]:
+    """A stage with a file and nested shard directories listed, and one file not listed."""
+    for rel in ("vocab.arrow", "shards/train/000000.arrow", "shards/test/000000.arrow", "stray.txt"):
+        (root / rel).parent.mkdir(parents=True, exist_ok=True)
+        (root / rel).write_bytes(rel.encode())
+    return [root / "vocab.arrow", root / "shards/train/000000.arrow", root / "shards/test/000000.arrow"]
+
+
+def test_sync_tree_fsyncs_every_listed_file_and_the_directories_holding_them(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Every file under the listed entries and every directory on their way is fsynced; a file
+    outside them is not."""
+    import os
+
+    from seqpipe import shards
+
+    listed = _stage_tree(tmp_path)
+    synced: set[int] = set()
+
+    class Recording:
+        def __getattr__(self, name: str) -> object:
+            return getattr(os, name)
+
+        def fsync(self, fd: int) -> None:
+            synced.add(os.fstat(fd).st_ino)
+
+    monkeypatch.setattr(shards, "os", Recording())
+    shards.sync_tree(tmp_path, ["vocab.arrow", "shards", "missing.arrow"])
+    dirs = [tmp_path, tmp_path / "shards", tmp_path / "shards/train", tmp_path / "shards/test"]
+    assert {p.stat().st_ino for p in listed + dirs} <= synced
+    assert (tmp_path / "stray.txt").stat().st_ino not in synced
+
+
+def test_sync_tree_names_the_file_it_could_not_make_durable(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """An fsync failing with ENOSPC raises OutputWriteError naming the file."""
+    import errno
+    import os
+
+    from seqpipe import shards
+    from seqpipe.errors import OutputWriteError
+
+    _stage_tree(tmp_path)
+
+    class FullDisk:
+        def __getattr__(self, name: str) -> object:
+            return getattr(os, name)
+
+        def fsync(self, fd: int) -> None:
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(shards, "os", FullDisk())
+    with pytest.raises(OutputWriteError) as caught:
+        shards.sync_tree(tmp_path, ["shards"])
+    assert "000000.arrow" in str(caught.value) and "No space left" in str(caught.value)
