@@ -740,8 +740,10 @@ def fragment_path(stage_dir: str, number: int, split: str) -> Path:
 # An encode task that runs in the driver's process (its thread pool) hands its ids and document
 # fragment to the shard phase in memory, under the file name it would otherwise write and the
 # shard phase read back; the rest go through files. Bounded in all, so the driver's memory does
-# not grow with the corpus: past the bound, files again.
-HELD_BYTES: Final = 128 << 20
+# not grow with the corpus: past the bound, files again. The bound is small (a corpus of
+# 100 MB of words already has more encoded ids than this), so a large build holds no more
+# than a small one and the build's peak memory stays flat in corpus size.
+HELD_BYTES: Final = 32 << 20
 
 
 class _Held:
