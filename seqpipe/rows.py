@@ -5,6 +5,8 @@ Three pieces used by :class:`seqpipe.windows.BatchStream`:
 * :func:`row_positions` - per row cell, which document it belongs to (numbered within the row from
   0) and its position within that document, from the stored document starts by bisection;
   :func:`attention_mask` turns the document numbers into a block-diagonal mask.
+  :class:`PositionPage` gives the same for full windows from one bisection per row, found for
+  several batches at once when a stream is read in order.
 * :class:`DocumentRows` - order ``documents``: each document cut into pieces of at most
   ``window + 1`` tokens (inputs ``[:-1]``, targets ``[1:]``); piece ``k`` starts at token
   ``k * window`` of its document, so consecutive pieces share one token and every target of the
@@ -191,42 +193,92 @@ def documents_loss_mask(rows: Rows, padding: np.ndarray, mask_continued: bool) -
     return mask
 
 
-def window_positions(starts_unique: np.ndarray, starts: np.ndarray, width: int) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`row_positions` for full windows ``[s, s + width)``, from one bisection per row end.
+def narrow_starts(starts_unique: np.ndarray) -> np.ndarray:
+    """``starts_unique`` as int32 when every value fits (the form :meth:`PositionPage.of` searches fastest)."""
+    if len(starts_unique) and int(starts_unique[-1]) < 2**31 - 1:
+        return starts_unique.astype(np.int32)
+    return starts_unique
 
-    The batch read row after row is a run of segments, one per document piece: the document met
-    at column 0 of each row, then one per document start inside the row (located as in
-    ``TokenStream.boundary_mask``). A cell's document number is its segment's number within the
-    row, and its position is its flat cell number minus the segment's offset, so both outputs are
-    one ``np.repeat`` of a per-segment value (no pass per document, no running sum per cell).
+
+@dataclass(frozen=True, slots=True)
+class PositionPage:
+    """Where documents start in the rows of several batches of ``rows`` full windows each, as
+    segments: one per document piece met along a row.
+
+    The batch read row after row is a run of segments: the document met at column 0 of each row,
+    then one per document start inside the row (located as in ``TokenStream.boundary_mask``). A
+    cell's document number is its segment's number within the row and its position is its flat
+    cell number (within its batch) minus the segment's ``offset``, so both outputs of a batch are
+    one ``np.repeat`` of a per-segment value. Finding the segments costs some twenty small numpy
+    calls whatever the number of rows, so a stream read in order finds them for several batches
+    at once (:meth:`of`) and :meth:`take` writes out one batch.
     """
-    ds = starts_unique
-    rows = len(starts)
-    if rows == 0:  # a rank may get no rows of the last batch
-        return np.zeros((0, width), np.int64), np.zeros((0, width), np.int64)
-    ends = ds.searchsorted(np.concatenate((starts, starts + (width - 1))), side="right")
-    before = ends[:rows]
-    before -= 1  # the document at column 0 of each row: ds[before] <= start < ds[before + 1]
-    per_row = ends[rows:] - before  # segments of a row: that document and one per start inside the row
-    seg_row = _cell_numbers(rows).repeat(per_row)
-    first_seg = per_row.cumsum()
-    first_seg -= per_row
-    within = _cell_numbers(len(seg_row)) - first_seg[seg_row]  # the segment's document number in its row
-    # the flat cell number of a segment's token at stream offset x is x + offset
-    shift = _cell_numbers(rows) * width
-    shift -= starts
-    offset = ds[before[seg_row] + within]
-    offset += shift[seg_row]
-    flat_start = np.maximum(offset, seg_row * width)  # the first segment of a row starts at its column 0
-    run = np.empty_like(flat_start)
-    np.subtract(flat_start[1:], flat_start[:-1], out=run[:-1])
-    run[-1] = rows * width - flat_start[-1]
-    doc_index = within.repeat(run).reshape(rows, width)
-    doc_position = offset.repeat(run)
-    np.subtract(_cell_numbers(rows * width), doc_position, out=doc_position)
-    return doc_index, doc_position.reshape(rows, width)
+
+    rows: int
+    width: int
+    first: np.ndarray  # per batch, its first segment (one more entry: the total)
+    within: np.ndarray  # per segment, its document number within its row
+    offset: np.ndarray  # per segment, flat cell number (within its batch) of its document's token 0
+    run: np.ndarray  # per segment, its cells
+
+    @classmethod
+    def of(cls, starts_unique: np.ndarray, starts: np.ndarray, rows: int, width: int) -> PositionPage:
+        """The segments of windows ``[s, s + width)`` for ``starts``, ``rows`` per batch
+        (``starts_unique`` as :func:`distinct_starts` gives them, int64, or int32 when they fit:
+        half the memory the bisections read)."""
+        ds = starts_unique
+        n = len(starts)
+        if n == 0:  # a rank may get no rows of the last batch
+            empty = np.zeros(0, np.int64)
+            return cls(rows, width, np.zeros(2, np.int64), empty, empty, empty)
+        before = ds.searchsorted(starts.astype(ds.dtype, copy=False), side="right")
+        before -= 1  # the document at column 0 of each row: ds[before] <= start < ds[before + 1]
+        # document starts inside a row: the next few starts after ``before`` are read in one gather
+        # (their memory was just read by the bisection); rows with more are bisected
+        last = starts + (width - 1)
+        inside = np.less_equal(ds.take(before[:, None] + _PROBE, mode="clip"), last[:, None]).sum(axis=1)
+        more = np.flatnonzero(inside == len(_PROBE))
+        if len(more):
+            inside[more] = ds.searchsorted(last[more].astype(ds.dtype), side="right") - 1 - before[more]
+        per_row = inside
+        per_row += 1  # segments of a row: that document and one per start inside it
+        seg_row = _cell_numbers(n).repeat(per_row)
+        first_seg = per_row.cumsum()
+        first_seg -= per_row
+        within = _cell_numbers(len(seg_row)) - first_seg[seg_row]
+        # over the whole page, the flat cell number of a segment's token at stream offset x is x + shift
+        shift = _cell_numbers(n) * width
+        shift -= starts
+        offset = shift[seg_row]
+        offset += ds[before[seg_row] + within]
+        flat_start = np.maximum(offset, seg_row * width)  # the first segment of a row starts at its column 0
+        run = np.empty_like(flat_start)
+        np.subtract(flat_start[1:], flat_start[:-1], out=run[:-1])
+        run[-1] = n * width - flat_start[-1]
+        if n > rows:  # flat cell numbers counted within each segment's batch
+            offset -= seg_row // rows * (rows * width)
+        first = np.append(first_seg[::rows], len(seg_row))
+        return cls(rows, width, first, within, offset, run)
+
+    @property
+    def batches(self) -> int:
+        return len(self.first) - 1
+
+    def take(self, k: int) -> tuple[np.ndarray, np.ndarray]:
+        """``(doc_index, doc_position)``, each ``(rows, width)`` int64, of batch ``k`` of the page."""
+        lo, hi = self.first[k : k + 2].tolist()
+        width = self.width
+        if lo == hi:
+            return np.zeros((0, width), np.int64), np.zeros((0, width), np.int64)
+        run = self.run[lo:hi]
+        doc_index = self.within[lo:hi].repeat(run)
+        doc_position = self.offset[lo:hi].repeat(run)
+        np.subtract(_cell_numbers(len(doc_position)), doc_position, out=doc_position)
+        shape = (len(doc_position) // width, width)
+        return doc_index.reshape(shape), doc_position.reshape(shape)
 
 
+_PROBE = np.arange(1, 9, dtype=np.int64)  # document starts after a row's first read by gather, not bisection
 _COUNTING = np.arange(0, dtype=np.int64)
 
 

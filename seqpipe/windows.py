@@ -56,11 +56,12 @@ from seqpipe.errors import RecipeError, StreamError
 from seqpipe.rows import (
     DocumentRows,
     EvaluationRows,
+    PositionPage,
     distinct_starts,
     documents_loss_mask,
+    narrow_starts,
     padded_rows,
     row_positions,
-    window_positions,
 )
 from seqpipe.stream import TokenStream
 
@@ -73,6 +74,7 @@ _DOMAIN: Final = 0x57A3_0001
 _ROUNDS: Final = 6
 _MIX1: Final = np.uint64(0xBF58476D1CE4E5B9)  # multiply-xorshift finalizer constants (common practice)
 _MIX2: Final = np.uint64(0x94D049BB133111EB)
+_POSITION_PAGE: Final = 32  # most batches whose document segments are found together (positions=True)
 _PAGE_WINDOWS: Final = 4096  # permutation entries computed at once: amortizes numpy call overhead
 
 
@@ -297,6 +299,11 @@ class BatchStream:
         elif self.order == "evaluation":
             self._plan = EvaluationRows(len(self.stream), self.window, self.stride or self.window)
         self._unique: np.ndarray | None = None  # distinct document starts, computed when first needed
+        # positions=True: (first step, step stride, page) of the batches whose segments were found last,
+        # and the last step asked
+        self._positions_page: tuple[int, int, PositionPage] | None = None
+        self._positions_last = -1
+        self._narrow: np.ndarray | None = None  # the distinct starts as PositionPage.of searches them
         self._pool: tuple[int, np.ndarray, np.ndarray] = (-1, np.zeros(0, np.int64), np.zeros(0, np.int64))
 
     # --- identity --------------------------------------------------------------------------------
@@ -429,6 +436,52 @@ class BatchStream:
             self._unique = distinct_starts(self.stream.doc_starts)
         return self._unique
 
+    def _positions(self, step: int, starts: np.ndarray, width: int) -> tuple[np.ndarray, np.ndarray]:
+        """Document numbers and positions of the rows of window batch ``step`` (``starts``).
+
+        Read in order, or every n-th step as a loader worker reads, the segments of the next
+        batches are found together (a page that doubles up to ``_POSITION_PAGE`` batches while the
+        steps asked follow it); any other step is computed alone. The result depends only on the
+        step, never on what was asked before.
+        """
+        cached, last = self._positions_page, self._positions_last
+        self._positions_last = step
+        size, stride = 1, step - last if 0 <= last < step else 1
+        if cached is not None:
+            first, every, page = cached
+            k, r = divmod(step - first, every)
+            if r == 0 and 0 <= k < page.batches and page.width == width and page.rows == len(starts):
+                return page.take(k)
+            if step == first + page.batches * every:
+                size, stride = min(2 * page.batches, _POSITION_PAGE), every
+        if self._narrow is None:
+            self._narrow = narrow_starts(self._starts_unique())
+        page = PositionPage.of(self._narrow, self._starts_ahead(step, size, stride, starts, width), len(starts), width)
+        self._positions_page = (step, stride, page)
+        return page.take(0)
+
+    def _starts_ahead(self, step: int, size: int, stride: int, starts: np.ndarray, width: int) -> np.ndarray:
+        """``starts`` (the rows of ``step``) followed by the rows of up to ``size - 1`` later steps
+        ``stride`` apart that have as many rows of the same width."""
+        last = min(step + size * stride, self._len)
+        steps = range(step + stride, last, stride)
+        rows = len(starts)
+        if not steps:
+            return starts
+        lo, hi = self.rows(step)
+        big = self.global_batch
+        if self.order == "random" and stride == 1 and hi - lo == self.batch_size and last * big <= self.num_windows:
+            # whole global batches: one slice of the permutation, not one call per step
+            ahead = self.window_starts((step + 1) * big, len(steps) * big).reshape(len(steps), big)
+            return np.concatenate((starts, ahead[:, lo:hi].ravel()))
+        blocks = [starts]
+        for later in steps:
+            more, more_width = self.starts_for(later)
+            if more_width != width or len(more) != rows:
+                break
+            blocks.append(more)
+        return np.concatenate(blocks)
+
     def _row_batch(self, step: int) -> Batch:
         """Batch ``step`` of a row order: padded rows with their loss mask."""
         assert self._plan is not None
@@ -470,7 +523,7 @@ class BatchStream:
         mask = self.stream.boundary_mask(starts, width + 1) if self.boundaries else None
         doc_index = doc_position = None
         if self.positions:
-            doc_index, doc_position = window_positions(self._starts_unique(), starts, width)
+            doc_index, doc_position = self._positions(step, starts, width)
         fresh = self.order == "random" or step == 0
         # Two C-contiguous arrays, not views of one block: frameworks reshape them in place (a strided
         # view refuses ``tensor.view(-1)``). The cast to the output dtype makes each copy in one pass.

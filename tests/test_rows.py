@@ -14,7 +14,7 @@ from hypothesis import strategies as st
 
 from seqpipe.dataset import open_dataset
 from seqpipe.errors import StreamError
-from seqpipe.rows import attention_mask
+from seqpipe.rows import PositionPage, attention_mask, row_positions
 from seqpipe.stream import TokenStream
 from seqpipe.windows import Batch, BatchStream, StreamState
 
@@ -93,6 +93,42 @@ def test_window_positions_follow_the_document_offsets(setup: dict[str, Any], ord
         workers = [b for i in range(2) for b in bs.iter_steps(i, 2)]
         for b in workers:
             np.testing.assert_array_equal(b.doc_position, batches[b.step].doc_position)
+
+
+@settings(max_examples=30)
+@given(setups(), st.randoms(use_true_random=False))
+def test_positions_do_not_depend_on_the_order_steps_are_asked(setup: dict[str, Any], rnd: Any) -> None:
+    """Steps asked in order (found a page of batches at a time), every other one, or shuffled give the same arrays."""
+    in_order = all_batches(make(setup, positions=True, keep_last=True))
+    steps = list(range(len(in_order)))
+    rnd.shuffle(steps)
+    for asked in (steps, [*range(0, len(steps), 2), *range(1, len(steps), 2)]):
+        bs = make(setup, positions=True, keep_last=True)
+        for k in asked:
+            b = bs.batch(k)
+            np.testing.assert_array_equal(b.doc_index, in_order[k].doc_index)
+            np.testing.assert_array_equal(b.doc_position, in_order[k].doc_position)
+
+
+@pytest.mark.parametrize("dtype", [np.int64, np.int32])
+def test_position_pages_equal_the_plain_bisection(dtype: type) -> None:
+    """PositionPage over several batches, int64 or int32 starts, equals row_positions per batch, also
+    for rows holding more document starts than the page reads by gather (short documents)."""
+    rng = np.random.default_rng(11)
+    for high in (2, 6, 40, 900):  # documents of 1..high-1 tokens: many or few starts per row
+        lengths = rng.integers(1, high, 400)
+        ds = np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
+        width, rows, batches = 24, 5, 4
+        starts = rng.integers(0, int(lengths.sum()) - width, rows * batches)
+        page = PositionPage.of(ds.astype(dtype), starts, rows, width)
+        assert page.batches == batches
+        for k in range(batches):
+            cells = starts[k * rows : (k + 1) * rows, None] + np.arange(width)
+            want_index, want_position = row_positions(ds, cells)
+            got_index, got_position = page.take(k)
+            np.testing.assert_array_equal(got_index, want_index)
+            np.testing.assert_array_equal(got_position, want_position)
+            assert got_index.dtype == got_position.dtype == np.int64
 
 
 @given(setups())
