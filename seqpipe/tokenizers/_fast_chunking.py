@@ -17,18 +17,17 @@ import numpy as np
 import pyarrow as pa
 import regex
 
-from seqpipe.tokenizers import _chunking
-from seqpipe.tokenizers.words import _decode_code_points
+from seqpipe.tokenizers._chunking import BREAK_CLASS, SPACE_CLASS, TAIL_CLASS
 
 # character kinds; NONE stands before the first character of a document
 BREAK, SPACE, LETTER, MARK, NUMBER, TAIL, OTHER, NONE = range(8)
 _KINDS: Final = (
-    (BREAK, regex.compile(_chunking._BREAK)),
-    (SPACE, regex.compile(_chunking._SPACE)),
+    (BREAK, regex.compile(BREAK_CLASS)),
+    (SPACE, regex.compile(SPACE_CLASS)),
     (LETTER, regex.compile(r"\p{L}")),
     (MARK, regex.compile(r"\p{M}")),
     (NUMBER, regex.compile(r"\p{N}")),
-    (TAIL, regex.compile(_chunking._TAIL.removesuffix("*"))),
+    (TAIL, regex.compile(TAIL_CLASS)),
 )
 _APOSTROPHES: Final = (ord("'"), 0x2019)  # kept inside a word between two letters
 
@@ -57,6 +56,29 @@ def _kinds(points: np.ndarray) -> np.ndarray:
         _TABLE[fresh] = [_kind(c) for c in fresh.tolist()]
         kinds = _TABLE[points]
     return kinds
+
+
+def _code_points(data: np.ndarray, lead: np.ndarray) -> np.ndarray:
+    """The code point of each character of valid UTF-8 ``data`` starting at byte ``lead``."""
+    points: np.ndarray = data[lead].astype(np.int64)
+    multi = np.flatnonzero(points >= 0xC0)
+    if not len(multi):
+        return points
+    at = lead[multi]
+    padded = np.concatenate([data, np.zeros(3, np.uint8)])
+    # RFC 3629: the lead byte holds 5, 4 or 3 bits for 2-, 3- and 4-byte forms; each continuation byte 6
+    lead_bits, c1, c2, c3 = (padded[at + k].astype(np.uint32) & m for k, m in enumerate((0xFF, 0x3F, 0x3F, 0x3F)))
+    value = np.where(
+        lead_bits < 0xE0,
+        ((lead_bits & 0x1F) << 6) | c1,
+        np.where(
+            lead_bits < 0xF0,
+            ((lead_bits & 0x0F) << 12) | (c1 << 6) | c2,
+            ((lead_bits & 0x07) << 18) | (c1 << 12) | (c2 << 6) | c3,
+        ),
+    )
+    points[multi] = value
+    return points
 
 
 def _anchor(mask: np.ndarray) -> np.ndarray:
@@ -123,10 +145,7 @@ def chunk_batch(texts: pa.Array, *, digitwise: bool) -> tuple[pa.Array, np.ndarr
     data = np.frombuffer(buf, dtype=np.uint8)[offsets[0] : offsets[-1]]
     doc_bytes = offsets - offsets[0]
     lead = np.flatnonzero((data & 0xC0) != 0x80)  # the first byte of each character
-    points = data[lead].astype(np.int64)
-    multi = np.flatnonzero(points >= 0xC0)
-    if len(multi):
-        points[multi] = _decode_code_points(data, lead[multi])
+    points = _code_points(data, lead)
     first = np.zeros(len(lead), dtype=bool)
     nonempty = doc_bytes[1:] > doc_bytes[:-1]
     first[np.searchsorted(lead, doc_bytes[:-1][nonempty])] = True
