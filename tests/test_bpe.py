@@ -25,7 +25,7 @@ from seqpipe.shards import write_table
 from seqpipe.tokenizers import _bpe_train, parse_tokenizer
 from seqpipe.tokenizers import bpe as bpe_module
 from seqpipe.tokenizers._chunking import _WORD, PRESETS, _trailing, chunker, needs_time_limit
-from seqpipe.tokenizers.bpe import BpeEncoder, BpeTokenizer
+from seqpipe.tokenizers.bpe import FAST_CHUNKINGS, BpeEncoder, BpeTokenizer
 from seqpipe.vocab import VocabSpec
 
 SPEC = VocabSpec()
@@ -358,10 +358,41 @@ def test_presets_skip_the_time_limit_unless_a_digit_run_is_long(monkeypatch: pyt
     assert not needs_time_limit("trailing-space", prose)
     assert b"".join(doc_chunks(BpeTokenizer(), [prose])[0]) == prose.encode()
     assert needs_time_limit("trailing-space", prose + "7" * 1000) and not needs_time_limit("x", "7" * 999)
-    with pytest.raises(PatternTimeoutError, match="document 0"):
-        BpeTokenizer().segment([prose + "7" * 1000])
+    with pytest.raises(PatternTimeoutError, match="document 0"):  # literal names: the per-document regex path
+        BpeTokenizer(literal_reserved=True).segment([prose + "7" * 1000])
+    # the batch path (_fast_chunking) needs no limit: it reads each character a bounded number of times
+    long_run = prose + "7" * 1000
+    assert b"".join(doc_chunks(BpeTokenizer(), [long_run])[0]) == long_run.encode()
     with pytest.raises(PatternTimeoutError, match="document 1"):
         BpeTokenizer(chunking="custom", chunk_regex=r"\w+|\W").segment(["", prose])
+
+
+# letters, marks, apostrophes, digits of several kinds, tail and other punctuation, symbols,
+# spaces and line breaks of every sort: the classes the trailing-space rule tells apart
+_RULE_ALPHABET = (
+    "ab\u00e9\u0301\u0308'\u2019\u0430\u0915\u093f\u4e2d"
+    "0123\u0663\u00b2\u00bd\u216b"
+    '.,;:!?")]\u00bb\u201d%([\u00ab$-_+\u2014\u00a9'
+    " \t\u00a0\u3000\n\r\x0b\x0c\x85\u2028\u2029"
+)
+
+
+@settings(max_examples=400, deadline=None)
+@given(
+    texts=st.lists(st.text(alphabet=_RULE_ALPHABET, max_size=30) | st.text(max_size=12), max_size=6),
+    chunking=st.sampled_from(list(FAST_CHUNKINGS)),
+    skip=st.integers(0, 2),
+)
+def test_batch_chunking_equals_the_preset_regex(texts: list[str], chunking: str, skip: int) -> None:
+    """Chunking a whole batch with array operations gives, per document, exactly the chunks the
+    preset's regular expression finds in it (batches that start inside an Arrow buffer included)."""
+    array = pa.array(["skipped"] * skip + texts, pa.large_string()).slice(skip)
+    got = BpeTokenizer(chunking=chunking).segment(array)
+    keys = got.keys.to_pylist()
+    cut = chunker(PRESETS[chunking])
+    want = [[c.encode() for c in cut.findall(t)] for t in texts]
+    starts = np.concatenate([[0], np.cumsum(got.doc_lengths)])
+    assert [[keys[c] for c in got.codes[a:b].tolist()] for a, b in itertools.pairwise(starts.tolist())] == want
 
 
 def test_default_chunking_is_a_named_preset() -> None:

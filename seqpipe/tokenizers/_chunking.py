@@ -56,6 +56,10 @@ _WORD: Final = r"\p{L}[\p{L}\p{M}]*(?:['\u2019]\p{L}[\p{L}\p{M}]*)*"
 _DIGIT_GROUP: Final = r"(?<=\p{N})\p{N}{3}|\p{N}{1,3}(?=(?:\p{N}{3})*(?!\p{N}))"
 _TAIL: Final = r"[\p{Pe}\p{Pf}\p{Po}]*"  # closing brackets and quotes, and . , ; : ! ? ' " and the like
 _OTHER: Final = r"[^\s\p{L}\p{N}]+"  # punctuation, symbols, marks with no letter before them
+# the single-character classes above, for the batch chunker (_fast_chunking) to class characters by
+BREAK_CLASS: Final = _BREAK
+SPACE_CLASS: Final = _SPACE
+TAIL_CLASS: Final = _TAIL.removesuffix("*")
 
 
 def _trailing(*heads: str) -> str:

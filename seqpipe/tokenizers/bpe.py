@@ -59,6 +59,7 @@ from seqpipe.tokenizers._bpe_train import (
 )
 from seqpipe.tokenizers._chunking import CHOICES, CUSTOM, DEFAULT, chunker, needs_time_limit, pattern_of
 from seqpipe.tokenizers._common import segments_from_tokens, stored_vocabulary
+from seqpipe.tokenizers._fast_chunking import chunk_batch
 from seqpipe.tokenizers.base import Encoder, Segments, Tokenizer, expand
 from seqpipe.vocab import VocabSpec, Vocabulary, reserved_table
 
@@ -74,6 +75,8 @@ CACHE_LIMIT: Final = 200_000
 # A batch with more chunks than this missing from the cache merges them together with array
 # operations (one round per merge step); fewer go one by one, where that costs less.
 BATCH_MISSES: Final = 64
+# The chunkings segmented with array operations (see _fast_chunking); the second digit-wise.
+FAST_CHUNKINGS: Final = ("trailing-space", "trailing-space-digitwise")
 
 
 @lru_cache(maxsize=16)
@@ -180,6 +183,9 @@ class BpeTokenizer(Tokenizer):
     # -- segmenting ------------------------------------------------------------
     def segment(self, texts: Sequence[str]) -> Segments:
         """Cut each document into chunks; keys are the distinct chunks' UTF-8 bytes."""
+        fast = self._segment_fast(texts)
+        if fast is not None:
+            return fast
         if isinstance(texts, (pa.Array, pa.ChunkedArray)):
             texts = texts.to_pylist()
         cut = chunker(self.pattern)
@@ -201,6 +207,23 @@ class BpeTokenizer(Tokenizer):
         except (UnicodeEncodeError, pa.ArrowException) as exc:
             raise _surrogate_error(texts) from exc
         return segments_from_tokens(array, lengths)
+
+    def _segment_fast(self, texts: Sequence[str]) -> Segments | None:
+        """:meth:`segment` for the ``trailing-space`` presets with array operations over the whole
+        batch (same chunks); None where it does not apply (another chunking, literal reserved
+        names, nulls, or text with no UTF-8 form, which the per-document path reports)."""
+        if self.chunking not in FAST_CHUNKINGS or (self.literal_reserved and self.reserved_names):
+            return None
+        try:
+            if isinstance(texts, pa.ChunkedArray):
+                texts = texts.combine_chunks()
+            array = texts.cast(pa.large_string()) if isinstance(texts, pa.Array) else pa.array(texts, pa.large_string())
+        except (UnicodeEncodeError, pa.ArrowException):
+            return None
+        cut = chunk_batch(array, digitwise=self.chunking == FAST_CHUNKINGS[1])
+        if cut is None:
+            return None
+        return segments_from_tokens(*cut)
 
     # -- training --------------------------------------------------------------
     def fit(self, counts: pa.Table, spec: VocabSpec, *, show: bool = False) -> BpeEncoder:
