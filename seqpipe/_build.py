@@ -92,6 +92,7 @@ from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, s
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype, sync_tree
+from seqpipe.sources._stream import hold_input, release_inputs
 from seqpipe.sources.base import Part
 from seqpipe.splits import fixed_split_of
 from seqpipe.staging import build_lock, check_output, private_dir, publish
@@ -305,7 +306,7 @@ def _uploaded(result: BuildResult, remote: UriStore, stats: PublishStats, local:
 
 
 def _input_hashes(
-    files: Sequence[Path | str], cache: Path, stamps: Sequence[list[int] | None] | None = None
+    files: Sequence[Path | str], cache: Path, stamps: Sequence[list[int] | None] | None = None, hold: bool = False
 ) -> list[tuple[str, tuple[int, ...] | None]]:
     """XXH3-128 of each input, reusing a stored hash while its change stamp is unchanged:
     (size, mtime, inode) for a local file, (size, mtime) for a URI; a URI whose filesystem
@@ -327,7 +328,7 @@ def _input_hashes(
         if stamp is not None and rec and rec.get("stamp") == stamp:
             out.append((rec["hash"], tuple(stamp)))
             continue
-        h = _hash_input(f, stamp)
+        h = _hash_input(f, stamp, hold)
         if stamp is not None and change_stamp(f) != stamp:
             # changed while hashed: keep the stamp from before, so reading it is refused
             out.append((h, tuple(stamp)))
@@ -347,16 +348,20 @@ def _input_hashes(
 SMALL_INPUT: Final = 1 << 20  # read whole to hash: a memory map costs more than the read
 
 
-def _hash_input(f: Path | str, stamp: list[int] | None) -> str:
-    """``hash_file(f)``; a small local file read in one call instead of mapped."""
+def _hash_input(f: Path | str, stamp: list[int] | None, hold: bool = False) -> str:
+    """``hash_file(f)``; a small local file read in one call instead of mapped, its bytes
+    kept for this process's ingest tasks with ``hold`` (``sources._stream.hold_input``)."""
     from seqpipe.filesystem import is_uri
 
     if stamp is not None and stamp[0] < SMALL_INPUT and not is_uri(f):
         try:
             with open(f, "rb") as fh:
-                return xxhash.xxh3_128_hexdigest(fh.read())
+                data = fh.read()
         except OSError:
-            pass  # hash_file raises the error the build reports
+            return hash_file(f)  # it raises the error the build reports
+        if hold and isinstance(f, str):
+            hold_input(f, data)
+        return xxhash.xxh3_128_hexdigest(data)
     return hash_file(f)
 
 
@@ -435,12 +440,19 @@ def _build(
     """The phases in order, each handing the next what it needs."""
     ctx = Context(recipe, pool, cache, show)
     source = open_vocab_source(recipe)
-    plan = plan_build(recipe, cache, part_bytes, source)
-    check_shard_count(recipe, plan.input_bytes)
-    stage = _fresh_stage(out, plan.build_key[:16])
+    try:  # inputs read to hash them are kept for this process's ingest tasks, then forgotten
+        plan = plan_build(recipe, cache, part_bytes, source, hold=_local(pool))
+        check_shard_count(recipe, plan.input_bytes)
+        stage = _fresh_stage(out, plan.build_key[:16])
+    except BaseException:
+        release_inputs()
+        raise
     try:
         merger = CountMerger()  # parts counted by their ingest task arrive first, the others in count
-        ingested = ingest(ctx, plan, merger, counting=source is None)
+        try:
+            ingested = ingest(ctx, plan, merger, counting=source is None)
+        finally:
+            release_inputs()
         kept = assign(ctx, plan, ingested, stage)
         if source is None:
             fitted = fit(recipe, count(ctx, plan, ingested, kept, merger), stage, show=ctx.show)
@@ -533,11 +545,14 @@ def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[
     return real + name, [st.st_size, st.st_mtime_ns, st.st_ino]
 
 
-def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None) -> Plan:
+def plan_build(
+    recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None, *, hold: bool = False
+) -> Plan:
     """Resolve the inputs, hash them, cut each large one into parts of about ``part_bytes`` and
-    group consecutive small ones (of one source, in corpus order) into parts of about as much."""
+    group consecutive small ones (of one source, in corpus order) into parts of about as much.
+    ``hold``: keep small inputs read to hash them for ingest tasks in this process."""
     files, skipped, stamps = _input_files(recipe)
-    hashed = _input_hashes([f for _, f, _ in files], cache, stamps)
+    hashed = _input_hashes([f for _, f, _ in files], cache, stamps, hold)
     hashes = [h for h, _ in hashed]
     sizes = [_size(f, stamp) for (_, f, _), (_, stamp) in zip(files, hashed, strict=True)]
     inputs = tuple(
@@ -548,7 +563,7 @@ def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource
     open_group: list[tuple[Member, str, int]] | None = None  # the group small inputs are joining
     held = 0
     for ii, ((si, f, _), (h, stamp)) in enumerate(zip(files, hashed, strict=True)):
-        parts = cuts.parts(si, f, h)
+        parts = cuts.parts(si, f, h, sizes[ii])
         members = [(Member(ii, str(f), part, stamp), h, sizes[ii] // len(parts)) for part in parts]
         small = len(parts) == 1 and sizes[ii] < part_bytes and GROUP_INPUTS
         if not small:
@@ -602,7 +617,11 @@ class _PlanCache:
         self.changed = False
         self.used: set[str] = set()
 
-    def parts(self, source_index: int, f: Path | str, file_hash: str) -> list[Part]:
+    def parts(self, source_index: int, f: Path | str, file_hash: str, size: int) -> list[Part]:
+        source = self.recipe.sources[source_index]
+        known = source.plan_sized(f, size, self.part_bytes)
+        if known is not None:  # from the size alone: nothing to store
+            return known
         name = f"{file_hash}.{self.settings[source_index]}"
         self.used.add(name)
         got = self.stored.get(name)
@@ -610,7 +629,7 @@ class _PlanCache:
             return [WHOLE_PART]
         if isinstance(got, list) and got and all(isinstance(p, list) and len(p) == 2 for p in got):
             return [Part(int(a or 0), None if b is None else int(b)) for a, b in got]
-        parts = self.recipe.sources[source_index].plan(f, self.part_bytes)
+        parts = source.plan(f, self.part_bytes)
         if parts and all(type(p) is Part for p in parts):
             self.stored[name] = [[p.start, p.stop] for p in parts]
             self.changed = True
@@ -809,7 +828,7 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
     Tasks that run in this process hand their output to the shard phase in memory (up to a bound)."""
     shutil.rmtree(encoded_dir(str(stage)), ignore_errors=True)
     release_encoded(str(stage))
-    local = isinstance(ctx.pool.executor, (ThreadPoolExecutor, InlineExecutor))
+    local = _local(ctx.pool)
     tasks = [
         EncodeTask(
             str(ctx.cache),
@@ -833,6 +852,11 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
         raise
     shutil.rmtree(stage / DEDUPE_DIR, ignore_errors=True)  # the drop lists are no longer read
     return totals
+
+
+def _local(pool: TaskPool) -> bool:
+    """Whether the pool's tasks run in this process (memory handoffs reach them)."""
+    return isinstance(pool.executor, (ThreadPoolExecutor, InlineExecutor))
 
 
 def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path, fitted: Fitted) -> Sharded:

@@ -803,3 +803,16 @@ def test_hostile_records() -> None:
         "last good record",
     ]
     assert stats.bad_records_skipped == 5
+
+
+def test_local_suffix_is_the_suffix_a_path_gives() -> None:
+    """The compression suffix of a local ``str`` path, found without a ``Path``, is
+    ``PurePath.suffix`` of it (dot files, dots in directories, "." components, trailing "/")."""
+    from pathlib import PurePath
+
+    from seqpipe.sources._stream import _suffix
+
+    names = ["a.gz", "..gz", ".gz", "a/b.tar.gz", "a.", "x/y/", "a/.hidden", "a/b.c/d", "./c.zst", "a..gz"]
+    names += ["dir.gz/", "a/./b.bz2", ".", "x/..", "a/b/.", "/x/y.GZ", "y.gz/.", "notes/box-1/n.txt"]
+    for name in names:
+        assert _suffix(name) == PurePath(name).suffix, name

@@ -240,6 +240,12 @@ class Source(ABC):
     def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:
         """Cut ``path`` into parts of about ``target_bytes`` on document boundaries."""
 
+    def plan_sized(self, path: SourcePath, size: int, target_bytes: int) -> list[Part] | None:
+        """What :meth:`plan` gives for ``path`` of ``size`` bytes when that follows from the
+        size and the name alone (no read, no stat: planning many small files costs nothing per
+        file); None when only :meth:`plan` can tell."""
+        return None
+
     @abstractmethod
     def read(
         self, path: SourcePath, part: Part, stats: ReadStats, *, batch_bytes: int = DEFAULT_BATCH_BYTES
