@@ -328,11 +328,12 @@ def _joined_documents(
     buf = separator.join(pieces) + separator
     if b"\r" in buf:
         return None
-    docs = fast_documents(buf, len(buf), paragraphs, limit)
+    spans = document_spans(np.frombuffer(buf, np.uint8), paragraphs, False)
+    docs = fast_documents(buf, len(buf), paragraphs, limit, spans=spans)
     if docs is None:
         return None
     lengths = np.array([len(p) + len(separator) for p in pieces], np.int64)
-    starts, _ = document_spans(np.frombuffer(buf, np.uint8), paragraphs, False)
+    starts = spans[0]
     first = np.searchsorted(starts, np.cumsum(lengths) - lengths)
     per_file = np.diff(first, append=len(starts))
     return docs, per_file.tolist(), read
