@@ -62,7 +62,7 @@ from seqpipe._dedupe import (
     resolve_pairs,
     write_keys,
 )
-from seqpipe._environment import environment
+from seqpipe._environment import environment, part_environment
 from seqpipe._hashing import hash_file, hash_json
 from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
 from seqpipe._parse import to_plain
@@ -73,6 +73,7 @@ from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, Sour
 from seqpipe.executors import InlineExecutor, TaskPool, task_pool
 from seqpipe.formats import DOCS_DIR, OPTIONAL_TOP, SHARDS_DIR, VOCAB_FILE
 from seqpipe.ingest import (
+    PART_FORMAT,
     CountTask,
     EncodeTask,
     IngestTask,
@@ -306,12 +307,17 @@ def _uploaded(result: BuildResult, remote: UriStore, stats: PublishStats, local:
 
 
 def _input_hashes(
-    files: Sequence[Path | str], cache: Path, stamps: Sequence[list[int] | None] | None = None, hold: bool = False
+    files: Sequence[Path | str],
+    cache: Path,
+    stamps: Sequence[list[int] | None] | None = None,
+    hold: bool = False,
+    unsettled: list[int] | None = None,
 ) -> list[tuple[str, tuple[int, ...] | None]]:
     """XXH3-128 of each input, reusing a stored hash while its change stamp is unchanged:
     (size, mtime, inode) for a local file, (size, mtime) for a URI; a URI whose filesystem
     reports no mtime has no stamp and is hashed on every build. ``stamps`` (per file, None:
-    ask the filesystem) are those the caller took when it listed the files."""
+    ask the filesystem) are those the caller took when it listed the files; ``unsettled``
+    receives the index of each file that changed while it was hashed."""
     from seqpipe.filesystem import change_stamp
 
     index_path = cache / "inputs.json"
@@ -332,6 +338,8 @@ def _input_hashes(
         if stamp is not None and change_stamp(f) != stamp:
             # changed while hashed: keep the stamp from before, so reading it is refused
             out.append((h, tuple(stamp)))
+            if unsettled is not None:
+                unsettled.append(i)
             continue
         if stamp is not None:
             index[str(f)] = {"stamp": stamp, "hash": h}
@@ -550,14 +558,52 @@ def plan_build(
 ) -> Plan:
     """Resolve the inputs, hash them, cut each large one into parts of about ``part_bytes`` and
     group consecutive small ones (of one source, in corpus order) into parts of about as much.
-    ``hold``: keep small inputs read to hash them for ingest tasks in this process."""
+    ``hold``: keep small inputs read to hash them for ingest tasks in this process. When the
+    inputs' names and change stamps are those the last build planned, its plan is taken whole
+    from the cache (``plan.json``): a rebuild then does nothing per input beyond its ``lstat``."""
     files, skipped, stamps = _input_files(recipe)
-    hashed = _input_hashes([f for _, f, _ in files], cache, stamps, hold)
-    hashes = [h for h, _ in hashed]
-    sizes = [_size(f, stamp) for (_, f, _), (_, stamp) in zip(files, hashed, strict=True)]
+    listing = _listing_key(recipe, part_bytes, files, stamps)
+    grouped = _stored_plan(cache, listing, files, stamps)
+    if grouped is None:
+        grouped, settled = _group_inputs(recipe, cache, part_bytes, files, stamps, hold)
+        if settled and listing is not None:
+            _store_plan(cache, listing, grouped)
+    hashes = grouped.hashes
+    sizes = grouped.sizes
     inputs = tuple(
         {"path": name, "bytes": sz, "hash": h} for (_, _, name), sz, h in zip(files, sizes, hashes, strict=True)
     )
+    tasks = tuple(IngestTask(recipe, si, members, key, str(cache)) for si, members, key, _ in grouped.parts)
+    weights = tuple(weight for _, _, _, weight in grouped.parts)
+    reused = source.manifest["fingerprint"] if source is not None else None
+    build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes, "reused": reused})
+    return Plan(inputs, tasks, weights, sum(sizes), build_key, skipped)
+
+
+@dataclass(frozen=True, slots=True)
+class _Grouped:
+    """What planning found: each input's hash and size, and per part its source index, members
+    (in reading order), cache key and weight (its approximate bytes, for the progress bar)."""
+
+    hashes: list[str]
+    sizes: list[int]
+    parts: list[tuple[int, tuple[Member, ...], str, int]]
+
+
+def _group_inputs(
+    recipe: Recipe,
+    cache: Path,
+    part_bytes: int,
+    files: list[tuple[int, Path | str, str]],
+    stamps: list[list[int] | None],
+    hold: bool,
+) -> tuple[_Grouped, bool]:
+    """Hash the inputs (stat-cached), cut them and group the small ones; and whether every
+    input kept its stamp while it was hashed (only then may the plan be stored)."""
+    unsettled: list[int] = []
+    hashed = _input_hashes([f for _, f, _ in files], cache, stamps, hold, unsettled)
+    hashes = [h for h, _ in hashed]
+    sizes = [_size(f, stamp) for (_, f, _), (_, stamp) in zip(files, hashed, strict=True)]
     cuts = _PlanCache(cache, recipe, part_bytes)
     groups: list[tuple[int, list[tuple[Member, str, int]]]] = []  # per part: source, (member, hash, bytes)
     open_group: list[tuple[Member, str, int]] | None = None  # the group small inputs are joining
@@ -576,17 +622,89 @@ def plan_build(
         open_group.extend(members)
         held += sizes[ii]
     cuts.save()
-    tasks = tuple(_ingest_task(recipe, si, group, cache) for si, group in groups)
-    weights = tuple(sum(w for _, _, w in group) for _, group in groups)
-    reused = source.manifest["fingerprint"] if source is not None else None
-    build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes, "reused": reused})
-    return Plan(inputs, tasks, weights, sum(sizes), build_key, skipped)
+    planned = [
+        (
+            si,
+            tuple(m for m, _, _ in group),
+            part_key(recipe, si, [(h, m.part) for m, h, _ in group]),
+            sum(w for *_, w in group),
+        )
+        for si, group in groups
+    ]
+    return _Grouped(hashes, sizes, planned), not unsettled
 
 
-def _ingest_task(recipe: Recipe, si: int, group: list[tuple[Member, str, int]], cache: Path) -> IngestTask:
-    """The task of one part: its members in order, its key from their hashes and cuts."""
-    key = part_key(recipe, si, [(h, m.part) for m, h, _ in group])
-    return IngestTask(recipe, si, tuple(m for m, _, _ in group), key, str(cache))
+PLAN_FILE: Final = "plan.json"
+
+
+def _listing_key(
+    recipe: Recipe, part_bytes: int, files: list[tuple[int, Path | str, str]], stamps: list[list[int] | None]
+) -> str | None:
+    """A fingerprint of what a plan follows from: every input's source, path, recorded name and
+    change stamp, and everything a part key holds besides its inputs' hashes (``part_key``);
+    None when an input has no stamp from its listing (a URI or a symlink: asked again)."""
+    if any(stamp is None for stamp in stamps):
+        return None
+    digest = xxhash.xxh3_128()
+    settings = {
+        "format": PART_FORMAT,
+        "sources": [to_plain(s) for s in recipe.sources],
+        "clean": [to_plain(s) for s in recipe.clean],
+        "tokenizer": to_plain(recipe.tokenizer),
+        "environment": part_environment(),
+        "part_bytes": part_bytes,
+        "group": GROUP_INPUTS,
+    }
+    digest.update(hash_json(settings).encode())
+    digest.update(np.array([si for si, _, _ in files], np.int64).tobytes())
+    digest.update(np.array(stamps, np.int64).tobytes())
+    digest.update("\0".join([str(f) for _, f, _ in files]).encode(errors="surrogateescape"))
+    digest.update(b"\1")
+    digest.update("\0".join([name for _, _, name in files]).encode(errors="surrogateescape"))
+    return digest.hexdigest()
+
+
+def _store_plan(cache: Path, listing: str, grouped: _Grouped) -> None:
+    """Keep the plan for a rebuild of the same inputs, when every part of it is a plain byte
+    range (``Part``); members as their input's index and range, stamps from the listing."""
+    members = [m for _, ms, _, _ in grouped.parts for m in ms]
+    if not all(type(m.part) is Part for m in members):
+        return
+    body = {
+        "listing": listing,
+        "hashes": grouped.hashes,
+        "parts": [[si, key, weight, len(ms)] for si, ms, key, weight in grouped.parts],
+        "inputs": [m.input_index for m in members],
+        "starts": [m.part.start for m in members],
+        "stops": [m.part.stop for m in members],
+    }
+    cache.mkdir(parents=True, exist_ok=True)
+    tmp = cache / f".{PLAN_FILE}.tmp"
+    tmp.write_text(json.dumps(body, separators=(",", ":")))
+    os.replace(tmp, cache / PLAN_FILE)
+
+
+def _stored_plan(
+    cache: Path, listing: str | None, files: list[tuple[int, Path | str, str]], stamps: list[list[int] | None]
+) -> _Grouped | None:
+    """The stored plan when it was made from this very listing (see ``_listing_key``), else None."""
+    if listing is None:
+        return None
+    try:
+        body = json.loads((cache / PLAN_FILE).read_bytes())
+        if body["listing"] != listing:
+            return None
+        sizes = [stamp[0] for stamp in stamps if stamp is not None]
+        rows = zip(body["inputs"], body["starts"], body["stops"], strict=True)
+        members = [Member(i, str(files[i][1]), Part(a, b), tuple(stamps[i] or ())) for i, a, b in rows]
+        parts = []
+        at = 0
+        for si, key, weight, n in body["parts"]:
+            parts.append((si, tuple(members[at : at + n]), key, weight))
+            at += n
+        return _Grouped(body["hashes"], sizes, parts)
+    except (OSError, ValueError, KeyError, TypeError, IndexError):
+        return None  # no plan stored, or not one this build can read: plan again
 
 
 def _size(f: Path | str, stamp: tuple[int, ...] | None) -> int:

@@ -314,3 +314,76 @@ def test_held_input_changed_before_ingest_is_refused(tmp_path: Path, monkeypatch
     monkeypatch.setattr(build_module, "ingest", edit_then_ingest)
     with pytest.raises(SourceError, match="changed while the build was reading it"):
         build(recipe_of(tmp_path), tmp_path / "out", progress=False)
+
+
+def _plan_tuple(plan: object) -> tuple[object, ...]:
+    """What a plan decides (its tasks' recipe aside): inputs, each part's source, key and members."""
+    from seqpipe._build import Plan
+
+    assert isinstance(plan, Plan)
+    parts = tuple((t.source_index, t.key, t.members) for t in plan.tasks)
+    return plan.inputs, parts, plan.weights, plan.input_bytes, plan.build_key
+
+
+def test_a_stored_plan_equals_planning_afresh(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A rebuild of unchanged inputs takes the stored plan (hashing and cutting nothing), and
+    it is the plan that planning again without any cache gives."""
+    write_notes(tmp_path, files=40)
+    recipe = recipe_of(tmp_path)
+    first = plan_build(recipe, tmp_path / "cache", 600)
+    assert (tmp_path / "cache" / "plan.json").exists()
+
+    def refuse(*args: object, **kwargs: object) -> None:
+        raise AssertionError("planned again")
+
+    with monkeypatch.context() as patch:
+        patch.setattr(build_module, "_group_inputs", refuse)
+        again = plan_build(recipe, tmp_path / "cache", 600)
+    fresh = plan_build(recipe, tmp_path / "other-cache", 600)
+    assert _plan_tuple(again) == _plan_tuple(first) == _plan_tuple(fresh)
+
+
+@pytest.mark.parametrize("change", ["edit", "touch", "remove", "add", "part size", "tokenizer"])
+def test_a_stored_plan_is_not_taken_after_a_change(tmp_path: Path, change: str) -> None:
+    """Any change to an input's name, stamp or to what part keys hold plans again, and gives
+    the plan a build without a cache gives."""
+    import os
+
+    paths = write_notes(tmp_path, files=30, awkward=False)
+    recipe, size = recipe_of(tmp_path), 600
+    plan_build(recipe, tmp_path / "cache", size)
+    if change == "edit":
+        paths[7].write_text("rope deck\n")
+    elif change == "touch":
+        st = paths[7].stat()
+        os.utime(paths[7], ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000_000))
+    elif change == "remove":
+        paths[7].unlink()
+    elif change == "add":
+        (paths[7].parent / "note-extra.txt").write_text("crew calm\n")
+    elif change == "part size":
+        size = 900
+    else:
+        recipe = parse_recipe(
+            RECIPE.format(document="paragraph", invalid="replace", cap=0).replace("words", "chars"), tmp_path
+        )
+    again = plan_build(recipe, tmp_path / "cache", size)
+    fresh = plan_build(recipe, tmp_path / "other-cache", size)
+    assert _plan_tuple(again) == _plan_tuple(fresh)
+
+
+def test_no_plan_is_stored_when_an_input_changed_while_hashed(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A file that changed while it was hashed leaves no stored plan (its hash may not be that
+    of the bytes its stamp names), so the next build hashes it again."""
+    paths = write_notes(tmp_path, files=6, awkward=False)
+    real = build_module._hash_input
+
+    def changing(f: object, stamp: object, hold: bool = False) -> str:
+        digest = real(f, stamp, hold)  # type: ignore[arg-type]
+        if str(f) == str(paths[2]):
+            paths[2].write_text("pier fog pier fog pier fog pier fog\n")
+        return digest
+
+    monkeypatch.setattr(build_module, "_hash_input", changing)
+    plan_build(recipe_of(tmp_path), tmp_path / "cache", 600)
+    assert not (tmp_path / "cache" / "plan.json").exists()
