@@ -545,7 +545,9 @@ def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[
         return identity(f), None  # the stamp asked later reports the error
     if stat.S_ISLNK(st.st_mode):  # as a str, so it equals the same file's name found directly
         return os.fspath(identity(f)), None
-    head, name = os.path.split(f)
+    text = os.fspath(f)
+    cut = text.rfind(os.sep) + 1  # os.path.split without its calls; the head is only resolved
+    head, name = text[:cut], text[cut:]
     real = parents.get(head)
     if real is None:  # with its separator, so each file's name is one concatenation
         real = parents[head] = os.path.join(os.path.realpath(head or "."), "")

@@ -128,6 +128,15 @@ def _recorded_name(path: str, base: str) -> str:
     return PurePath(os.path.relpath(path, base)).as_posix()
 
 
+def _prefix(base: str) -> str:
+    """What ``_recorded_name`` strips from a normalized path under ``base`` ("" when it does
+    more: a base of ".", or separators other than "/")."""
+    base = os.path.normpath(base)
+    if os.sep != "/" or base == ".":
+        return ""
+    return base.rstrip("/") + "/"
+
+
 def _posix_key(path: str) -> str:
     """A glob match's normalized POSIX path (its sort key)."""
     path = os.path.normpath(path)
@@ -228,11 +237,14 @@ class Source(ABC):
                 skipped.setdefault(_recorded_name(rel, base), what)
             if not matches.files:
                 raise SourceMissingError(str(root), f"glob {pattern!r} matched no file under {root}")
+            under = _prefix(base)
             for hit in matches.files:
                 key = _posix_key(hit)
                 if key not in found:
                     local = (key if top == "." else os.path.join(top, key)) if as_str else root / key
-                    found[key] = (local, _recorded_name(hit, base))
+                    # the common case of _recorded_name without its calls (a corpus of many files)
+                    name = key[len(under) :] if under and key.startswith(under) else _recorded_name(hit, base)
+                    found[key] = (local, name)
         ordered = [found[key] for key in sorted(found)]
         return Resolved([p for p, _ in ordered], tuple(sorted(skipped.items())), tuple(n for _, n in ordered))
 
