@@ -137,6 +137,13 @@ def _prefix(base: str) -> str:
     return base.rstrip("/") + "/"
 
 
+def _joined(top: str, key: str) -> str:
+    """``os.path.join(top, key)`` for a non-empty ``top``, without its calls on "/" systems."""
+    if os.sep != "/" or key.startswith("/"):
+        return os.path.join(top, key)
+    return top + key if top.endswith("/") else top + "/" + key
+
+
 def _posix_key(path: str) -> str:
     """A glob match's normalized POSIX path (its sort key)."""
     path = os.path.normpath(path)
@@ -241,7 +248,7 @@ class Source(ABC):
             for hit in matches.files:
                 key = _posix_key(hit)
                 if key not in found:
-                    local = (key if top == "." else os.path.join(top, key)) if as_str else root / key
+                    local = (key if top == "." else _joined(top, key)) if as_str else root / key
                     # the common case of _recorded_name without its calls (a corpus of many files)
                     name = key[len(under) :] if under and key.startswith(under) else _recorded_name(hit, base)
                     found[key] = (local, name)
