@@ -334,8 +334,8 @@ def _input_hashes(
         if stamp is not None and rec and rec.get("stamp") == stamp:
             out.append((rec["hash"], tuple(stamp)))
             continue
-        h = _hash_input(f, stamp, hold)
-        if stamp is not None and change_stamp(f) != stamp:
+        h, after = _hash_input(f, stamp, hold)
+        if stamp is not None and after != stamp:
             # changed while hashed: keep the stamp from before, so reading it is refused
             out.append((h, tuple(stamp)))
             if unsettled is not None:
@@ -356,21 +356,26 @@ def _input_hashes(
 SMALL_INPUT: Final = 1 << 20  # read whole to hash: a memory map costs more than the read
 
 
-def _hash_input(f: Path | str, stamp: list[int] | None, hold: bool = False) -> str:
-    """``hash_file(f)``; a small local file read in one call instead of mapped, its bytes
-    kept for this process's ingest tasks with ``hold`` (``sources._stream.hold_input``)."""
-    from seqpipe.filesystem import is_uri
+def _hash_input(f: Path | str, stamp: list[int] | None, hold: bool = False) -> tuple[str, list[int] | None]:
+    """``hash_file(f)`` and the file's change stamp after it was read (what the bytes hashed
+    belong to); a small local file read in one call instead of mapped, its stamp from the open
+    file, its bytes kept for this process's ingest tasks with ``hold``
+    (``sources._stream.hold_input``)."""
+    from seqpipe.filesystem import change_stamp, is_uri
 
     if stamp is not None and stamp[0] < SMALL_INPUT and not is_uri(f):
         try:
             with open(f, "rb") as fh:
                 data = fh.read()
+                st = os.fstat(fh.fileno())
         except OSError:
-            return hash_file(f)  # it raises the error the build reports
-        if hold and isinstance(f, str):
-            hold_input(f, data)
-        return xxhash.xxh3_128_hexdigest(data)
-    return hash_file(f)
+            pass  # hash_file raises the error the build reports
+        else:
+            if hold and isinstance(f, str):
+                hold_input(f, data)
+            return xxhash.xxh3_128_hexdigest(data), [st.st_size, st.st_mtime_ns, st.st_ino]
+    digest = hash_file(f)
+    return digest, (change_stamp(f) if stamp is not None else None)
 
 
 # -- the values phases pass on -------------------------------------------------------------------
@@ -556,7 +561,12 @@ def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[
 
 
 def plan_build(
-    recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None, *, hold: bool = False
+    recipe: Recipe,
+    cache: Path,
+    part_bytes: int,
+    source: VocabSource | None = None,
+    *,
+    hold: bool = False,
 ) -> Plan:
     """Resolve the inputs, hash them, cut each large one into parts of about ``part_bytes`` and
     group consecutive small ones (of one source, in corpus order) into parts of about as much.

@@ -378,11 +378,10 @@ def test_no_plan_is_stored_when_an_input_changed_while_hashed(tmp_path: Path, mo
     paths = write_notes(tmp_path, files=6, awkward=False)
     real = build_module._hash_input
 
-    def changing(f: object, stamp: object, hold: bool = False) -> str:
-        digest = real(f, stamp, hold)  # type: ignore[arg-type]
-        if str(f) == str(paths[2]):
+    def changing(f: object, stamp: object, hold: bool = False) -> tuple[str, object]:
+        if str(f) == str(paths[2]):  # after its stamp was taken (listing), before it is read
             paths[2].write_text("pier fog pier fog pier fog pier fog\n")
-        return digest
+        return real(f, stamp, hold)  # type: ignore[arg-type]
 
     monkeypatch.setattr(build_module, "_hash_input", changing)
     plan_build(recipe_of(tmp_path), tmp_path / "cache", 600)
