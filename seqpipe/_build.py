@@ -71,6 +71,7 @@ from seqpipe._runner import View, run, run_beside
 from seqpipe.counts import CountMerger
 from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SourceMissingError
 from seqpipe.executors import InlineExecutor, TaskPool, task_pool
+from seqpipe.filesystem import change_stamp, file_size, identity, is_uri
 from seqpipe.formats import DOCS_DIR, OPTIONAL_TOP, SHARDS_DIR, VOCAB_FILE
 from seqpipe.ingest import (
     PART_FORMAT,
@@ -260,8 +261,6 @@ def _work_directory(
     out: str | Path, work_dir: str | Path | None, cache_dir: str | Path | None
 ) -> tuple[Path, UriStore | None]:
     """The local directory the build runs in, and the remote it is uploaded to (or None)."""
-    from seqpipe.filesystem import is_uri
-
     if is_uri(out):
         from seqpipe.transfer import default_work_dir, open_remote
 
@@ -318,8 +317,6 @@ def _input_hashes(
     reports no mtime has no stamp and is hashed on every build. ``stamps`` (per file, None:
     ask the filesystem) are those the caller took when it listed the files; ``unsettled``
     receives the index of each file that changed while it was hashed."""
-    from seqpipe.filesystem import change_stamp
-
     index_path = cache / "inputs.json"
     try:
         index: dict[str, Any] = json.loads(index_path.read_bytes())
@@ -361,8 +358,6 @@ def _hash_input(f: Path | str, stamp: list[int] | None, hold: bool = False) -> t
     belong to); a small local file read in one call instead of mapped, its stamp from the open
     file, its bytes kept for this process's ingest tasks with ``hold``
     (``sources._stream.hold_input``)."""
-    from seqpipe.filesystem import change_stamp, is_uri
-
     if stamp is not None and stamp[0] < SMALL_INPUT and not is_uri(f):
         try:
             with open(f, "rb") as fh:
@@ -540,8 +535,6 @@ def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[
     """``filesystem.identity(f)``, resolving each directory once: a file that is not a symlink
     is its resolved directory joined with its name. With it, the file's change stamp
     (``filesystem.change_stamp``) when the one ``lstat`` gave it (a local file, not a symlink)."""
-    from seqpipe.filesystem import identity, is_uri
-
     if is_uri(f):
         return identity(f), None
     try:
@@ -721,8 +714,6 @@ def _stored_plan(
 
 def _size(f: Path | str, stamp: tuple[int, ...] | None) -> int:
     """An input's size: the first field of its change stamp, else asked of its filesystem."""
-    from seqpipe.filesystem import file_size
-
     return stamp[0] if stamp is not None else file_size(f)
 
 

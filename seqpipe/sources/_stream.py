@@ -35,7 +35,7 @@ def codec_for(path: SourcePath, compression: str) -> str | None:
 def _suffix(path: SourcePath) -> str:
     """``filesystem.suffix(path)``; a local ``str`` without making a ``Path`` (a build of many
     small files asks this of each file more than once): the same rule as ``PurePath.suffix``."""
-    if not isinstance(path, str) or is_uri(path):
+    if not isinstance(path, str) or ("://" in path and is_uri(path)):
         return suffix(path)
     # a name with no "." component or trailing separator is already what ``Path`` would make of it
     name = (
