@@ -62,7 +62,7 @@ from seqpipe._dedupe import (
     resolve_pairs,
     write_keys,
 )
-from seqpipe._environment import environment
+from seqpipe._environment import environment, part_environment
 from seqpipe._hashing import hash_file, hash_json
 from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
 from seqpipe._parse import to_plain
@@ -71,8 +71,10 @@ from seqpipe._runner import View, run, run_beside
 from seqpipe.counts import CountMerger
 from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SourceMissingError
 from seqpipe.executors import InlineExecutor, TaskPool, task_pool
+from seqpipe.filesystem import change_stamp, file_size, identity, is_uri
 from seqpipe.formats import DOCS_DIR, OPTIONAL_TOP, SHARDS_DIR, VOCAB_FILE
 from seqpipe.ingest import (
+    PART_FORMAT,
     CountTask,
     EncodeTask,
     IngestTask,
@@ -92,6 +94,7 @@ from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, s
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype, sync_tree
+from seqpipe.sources._stream import hold_input, release_inputs
 from seqpipe.sources.base import Part
 from seqpipe.splits import fixed_split_of
 from seqpipe.staging import build_lock, check_output, private_dir, publish
@@ -258,8 +261,6 @@ def _work_directory(
     out: str | Path, work_dir: str | Path | None, cache_dir: str | Path | None
 ) -> tuple[Path, UriStore | None]:
     """The local directory the build runs in, and the remote it is uploaded to (or None)."""
-    from seqpipe.filesystem import is_uri
-
     if is_uri(out):
         from seqpipe.transfer import default_work_dir, open_remote
 
@@ -305,14 +306,17 @@ def _uploaded(result: BuildResult, remote: UriStore, stats: PublishStats, local:
 
 
 def _input_hashes(
-    files: Sequence[Path | str], cache: Path, stamps: Sequence[list[int] | None] | None = None
+    files: Sequence[Path | str],
+    cache: Path,
+    stamps: Sequence[list[int] | None] | None = None,
+    hold: bool = False,
+    unsettled: list[int] | None = None,
 ) -> list[tuple[str, tuple[int, ...] | None]]:
     """XXH3-128 of each input, reusing a stored hash while its change stamp is unchanged:
     (size, mtime, inode) for a local file, (size, mtime) for a URI; a URI whose filesystem
     reports no mtime has no stamp and is hashed on every build. ``stamps`` (per file, None:
-    ask the filesystem) are those the caller took when it listed the files."""
-    from seqpipe.filesystem import change_stamp
-
+    ask the filesystem) are those the caller took when it listed the files; ``unsettled``
+    receives the index of each file that changed while it was hashed."""
     index_path = cache / "inputs.json"
     try:
         index: dict[str, Any] = json.loads(index_path.read_bytes())
@@ -327,10 +331,12 @@ def _input_hashes(
         if stamp is not None and rec and rec.get("stamp") == stamp:
             out.append((rec["hash"], tuple(stamp)))
             continue
-        h = _hash_input(f, stamp)
-        if stamp is not None and change_stamp(f) != stamp:
+        h, after = _hash_input(f, stamp, hold)
+        if stamp is not None and after != stamp:
             # changed while hashed: keep the stamp from before, so reading it is refused
             out.append((h, tuple(stamp)))
+            if unsettled is not None:
+                unsettled.append(i)
             continue
         if stamp is not None:
             index[str(f)] = {"stamp": stamp, "hash": h}
@@ -347,17 +353,24 @@ def _input_hashes(
 SMALL_INPUT: Final = 1 << 20  # read whole to hash: a memory map costs more than the read
 
 
-def _hash_input(f: Path | str, stamp: list[int] | None) -> str:
-    """``hash_file(f)``; a small local file read in one call instead of mapped."""
-    from seqpipe.filesystem import is_uri
-
+def _hash_input(f: Path | str, stamp: list[int] | None, hold: bool = False) -> tuple[str, list[int] | None]:
+    """``hash_file(f)`` and the file's change stamp after it was read (what the bytes hashed
+    belong to); a small local file read in one call instead of mapped, its stamp from the open
+    file, its bytes kept for this process's ingest tasks with ``hold``
+    (``sources._stream.hold_input``)."""
     if stamp is not None and stamp[0] < SMALL_INPUT and not is_uri(f):
         try:
             with open(f, "rb") as fh:
-                return xxhash.xxh3_128_hexdigest(fh.read())
+                data = fh.read()
+                st = os.fstat(fh.fileno())
         except OSError:
             pass  # hash_file raises the error the build reports
-    return hash_file(f)
+        else:
+            if hold and isinstance(f, str):
+                hold_input(f, data)
+            return xxhash.xxh3_128_hexdigest(data), [st.st_size, st.st_mtime_ns, st.st_ino]
+    digest = hash_file(f)
+    return digest, (change_stamp(f) if stamp is not None else None)
 
 
 # -- the values phases pass on -------------------------------------------------------------------
@@ -435,12 +448,19 @@ def _build(
     """The phases in order, each handing the next what it needs."""
     ctx = Context(recipe, pool, cache, show)
     source = open_vocab_source(recipe)
-    plan = plan_build(recipe, cache, part_bytes, source)
-    check_shard_count(recipe, plan.input_bytes)
-    stage = _fresh_stage(out, plan.build_key[:16])
+    try:  # inputs read to hash them are kept for this process's ingest tasks, then forgotten
+        plan = plan_build(recipe, cache, part_bytes, source, hold=_local(pool))
+        check_shard_count(recipe, plan.input_bytes)
+        stage = _fresh_stage(out, plan.build_key[:16])
+    except BaseException:
+        release_inputs()
+        raise
     try:
         merger = CountMerger()  # parts counted by their ingest task arrive first, the others in count
-        ingested = ingest(ctx, plan, merger, counting=source is None)
+        try:
+            ingested = ingest(ctx, plan, merger, counting=source is None)
+        finally:
+            release_inputs()
         kept = assign(ctx, plan, ingested, stage)
         if source is None:
             fitted = fit(recipe, count(ctx, plan, ingested, kept, merger), stage, show=ctx.show)
@@ -515,8 +535,6 @@ def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[
     """``filesystem.identity(f)``, resolving each directory once: a file that is not a symlink
     is its resolved directory joined with its name. With it, the file's change stamp
     (``filesystem.change_stamp``) when the one ``lstat`` gave it (a local file, not a symlink)."""
-    from seqpipe.filesystem import identity, is_uri
-
     if is_uri(f):
         return identity(f), None
     try:
@@ -525,7 +543,9 @@ def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[
         return identity(f), None  # the stamp asked later reports the error
     if stat.S_ISLNK(st.st_mode):  # as a str, so it equals the same file's name found directly
         return os.fspath(identity(f)), None
-    head, name = os.path.split(f)
+    text = os.fspath(f)
+    cut = text.rfind(os.sep) + 1  # os.path.split without its calls; the head is only resolved
+    head, name = text[:cut], text[cut:]
     real = parents.get(head)
     if real is None:  # with its separator, so each file's name is one concatenation
         real = parents[head] = os.path.join(os.path.realpath(head or "."), "")
@@ -533,22 +553,68 @@ def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[
     return real + name, [st.st_size, st.st_mtime_ns, st.st_ino]
 
 
-def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource | None = None) -> Plan:
+def plan_build(
+    recipe: Recipe,
+    cache: Path,
+    part_bytes: int,
+    source: VocabSource | None = None,
+    *,
+    hold: bool = False,
+) -> Plan:
     """Resolve the inputs, hash them, cut each large one into parts of about ``part_bytes`` and
-    group consecutive small ones (of one source, in corpus order) into parts of about as much."""
+    group consecutive small ones (of one source, in corpus order) into parts of about as much.
+    ``hold``: keep small inputs read to hash them for ingest tasks in this process. When the
+    inputs' names and change stamps are those the last build planned, its plan is taken whole
+    from the cache (``plan.json``): a rebuild then does nothing per input beyond its ``lstat``."""
     files, skipped, stamps = _input_files(recipe)
-    hashed = _input_hashes([f for _, f, _ in files], cache, stamps)
-    hashes = [h for h, _ in hashed]
-    sizes = [_size(f, stamp) for (_, f, _), (_, stamp) in zip(files, hashed, strict=True)]
+    listing = _listing_key(recipe, part_bytes, files, stamps)
+    grouped = _stored_plan(cache, listing, files, stamps)
+    if grouped is None:
+        grouped, settled = _group_inputs(recipe, cache, part_bytes, files, stamps, hold)
+        if settled and listing is not None:
+            _store_plan(cache, listing, grouped)
+    hashes = grouped.hashes
+    sizes = grouped.sizes
     inputs = tuple(
         {"path": name, "bytes": sz, "hash": h} for (_, _, name), sz, h in zip(files, sizes, hashes, strict=True)
     )
+    tasks = tuple(IngestTask(recipe, si, members, key, str(cache)) for si, members, key, _ in grouped.parts)
+    weights = tuple(weight for _, _, _, weight in grouped.parts)
+    reused = source.manifest["fingerprint"] if source is not None else None
+    build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes, "reused": reused})
+    return Plan(inputs, tasks, weights, sum(sizes), build_key, skipped)
+
+
+@dataclass(frozen=True, slots=True)
+class _Grouped:
+    """What planning found: each input's hash and size, and per part its source index, members
+    (in reading order), cache key and weight (its approximate bytes, for the progress bar)."""
+
+    hashes: list[str]
+    sizes: list[int]
+    parts: list[tuple[int, tuple[Member, ...], str, int]]
+
+
+def _group_inputs(
+    recipe: Recipe,
+    cache: Path,
+    part_bytes: int,
+    files: list[tuple[int, Path | str, str]],
+    stamps: list[list[int] | None],
+    hold: bool,
+) -> tuple[_Grouped, bool]:
+    """Hash the inputs (stat-cached), cut them and group the small ones; and whether every
+    input kept its stamp while it was hashed (only then may the plan be stored)."""
+    unsettled: list[int] = []
+    hashed = _input_hashes([f for _, f, _ in files], cache, stamps, hold, unsettled)
+    hashes = [h for h, _ in hashed]
+    sizes = [_size(f, stamp) for (_, f, _), (_, stamp) in zip(files, hashed, strict=True)]
     cuts = _PlanCache(cache, recipe, part_bytes)
     groups: list[tuple[int, list[tuple[Member, str, int]]]] = []  # per part: source, (member, hash, bytes)
     open_group: list[tuple[Member, str, int]] | None = None  # the group small inputs are joining
     held = 0
     for ii, ((si, f, _), (h, stamp)) in enumerate(zip(files, hashed, strict=True)):
-        parts = cuts.parts(si, f, h)
+        parts = cuts.parts(si, f, h, sizes[ii])
         members = [(Member(ii, str(f), part, stamp), h, sizes[ii] // len(parts)) for part in parts]
         small = len(parts) == 1 and sizes[ii] < part_bytes and GROUP_INPUTS
         if not small:
@@ -561,23 +627,93 @@ def plan_build(recipe: Recipe, cache: Path, part_bytes: int, source: VocabSource
         open_group.extend(members)
         held += sizes[ii]
     cuts.save()
-    tasks = tuple(_ingest_task(recipe, si, group, cache) for si, group in groups)
-    weights = tuple(sum(w for _, _, w in group) for _, group in groups)
-    reused = source.manifest["fingerprint"] if source is not None else None
-    build_key = hash_json({"format": FORMAT, "recipe": recipe.fingerprint, "inputs": hashes, "reused": reused})
-    return Plan(inputs, tasks, weights, sum(sizes), build_key, skipped)
+    planned = [
+        (
+            si,
+            tuple(m for m, _, _ in group),
+            part_key(recipe, si, [(h, m.part) for m, h, _ in group]),
+            sum(w for *_, w in group),
+        )
+        for si, group in groups
+    ]
+    return _Grouped(hashes, sizes, planned), not unsettled
 
 
-def _ingest_task(recipe: Recipe, si: int, group: list[tuple[Member, str, int]], cache: Path) -> IngestTask:
-    """The task of one part: its members in order, its key from their hashes and cuts."""
-    key = part_key(recipe, si, [(h, m.part) for m, h, _ in group])
-    return IngestTask(recipe, si, tuple(m for m, _, _ in group), key, str(cache))
+PLAN_FILE: Final = "plan.json"
+
+
+def _listing_key(
+    recipe: Recipe, part_bytes: int, files: list[tuple[int, Path | str, str]], stamps: list[list[int] | None]
+) -> str | None:
+    """A fingerprint of what a plan follows from: every input's source, path, recorded name and
+    change stamp, and everything a part key holds besides its inputs' hashes (``part_key``);
+    None when an input has no stamp from its listing (a URI or a symlink: asked again)."""
+    if any(stamp is None for stamp in stamps):
+        return None
+    digest = xxhash.xxh3_128()
+    settings = {
+        "format": PART_FORMAT,
+        "sources": [to_plain(s) for s in recipe.sources],
+        "clean": [to_plain(s) for s in recipe.clean],
+        "tokenizer": to_plain(recipe.tokenizer),
+        "environment": part_environment(),
+        "part_bytes": part_bytes,
+        "group": GROUP_INPUTS,
+    }
+    digest.update(hash_json(settings).encode())
+    digest.update(np.array([si for si, _, _ in files], np.int64).tobytes())
+    digest.update(np.array(stamps, np.int64).tobytes())
+    digest.update("\0".join([str(f) for _, f, _ in files]).encode(errors="surrogateescape"))
+    digest.update(b"\1")
+    digest.update("\0".join([name for _, _, name in files]).encode(errors="surrogateescape"))
+    return digest.hexdigest()
+
+
+def _store_plan(cache: Path, listing: str, grouped: _Grouped) -> None:
+    """Keep the plan for a rebuild of the same inputs, when every part of it is a plain byte
+    range (``Part``); members as their input's index and range, stamps from the listing."""
+    members = [m for _, ms, _, _ in grouped.parts for m in ms]
+    if not all(type(m.part) is Part for m in members):
+        return
+    body = {
+        "listing": listing,
+        "hashes": grouped.hashes,
+        "parts": [[si, key, weight, len(ms)] for si, ms, key, weight in grouped.parts],
+        "inputs": [m.input_index for m in members],
+        "starts": [m.part.start for m in members],
+        "stops": [m.part.stop for m in members],
+    }
+    cache.mkdir(parents=True, exist_ok=True)
+    tmp = cache / f".{PLAN_FILE}.tmp"
+    tmp.write_text(json.dumps(body, separators=(",", ":")))
+    os.replace(tmp, cache / PLAN_FILE)
+
+
+def _stored_plan(
+    cache: Path, listing: str | None, files: list[tuple[int, Path | str, str]], stamps: list[list[int] | None]
+) -> _Grouped | None:
+    """The stored plan when it was made from this very listing (see ``_listing_key``), else None."""
+    if listing is None:
+        return None
+    try:
+        body = json.loads((cache / PLAN_FILE).read_bytes())
+        if body["listing"] != listing:
+            return None
+        sizes = [stamp[0] for stamp in stamps if stamp is not None]
+        rows = zip(body["inputs"], body["starts"], body["stops"], strict=True)
+        members = [Member(i, str(files[i][1]), Part(a, b), tuple(stamps[i] or ())) for i, a, b in rows]
+        parts = []
+        at = 0
+        for si, key, weight, n in body["parts"]:
+            parts.append((si, tuple(members[at : at + n]), key, weight))
+            at += n
+        return _Grouped(body["hashes"], sizes, parts)
+    except (OSError, ValueError, KeyError, TypeError, IndexError):
+        return None  # no plan stored, or not one this build can read: plan again
 
 
 def _size(f: Path | str, stamp: tuple[int, ...] | None) -> int:
     """An input's size: the first field of its change stamp, else asked of its filesystem."""
-    from seqpipe.filesystem import file_size
-
     return stamp[0] if stamp is not None else file_size(f)
 
 
@@ -602,7 +738,11 @@ class _PlanCache:
         self.changed = False
         self.used: set[str] = set()
 
-    def parts(self, source_index: int, f: Path | str, file_hash: str) -> list[Part]:
+    def parts(self, source_index: int, f: Path | str, file_hash: str, size: int) -> list[Part]:
+        source = self.recipe.sources[source_index]
+        known = source.plan_sized(f, size, self.part_bytes)
+        if known is not None:  # from the size alone: nothing to store
+            return known
         name = f"{file_hash}.{self.settings[source_index]}"
         self.used.add(name)
         got = self.stored.get(name)
@@ -610,7 +750,7 @@ class _PlanCache:
             return [WHOLE_PART]
         if isinstance(got, list) and got and all(isinstance(p, list) and len(p) == 2 for p in got):
             return [Part(int(a or 0), None if b is None else int(b)) for a, b in got]
-        parts = self.recipe.sources[source_index].plan(f, self.part_bytes)
+        parts = source.plan(f, self.part_bytes)
         if parts and all(type(p) is Part for p in parts):
             self.stored[name] = [[p.start, p.stop] for p in parts]
             self.changed = True
@@ -809,7 +949,7 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
     Tasks that run in this process hand their output to the shard phase in memory (up to a bound)."""
     shutil.rmtree(encoded_dir(str(stage)), ignore_errors=True)
     release_encoded(str(stage))
-    local = isinstance(ctx.pool.executor, (ThreadPoolExecutor, InlineExecutor))
+    local = _local(ctx.pool)
     tasks = [
         EncodeTask(
             str(ctx.cache),
@@ -833,6 +973,11 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
         raise
     shutil.rmtree(stage / DEDUPE_DIR, ignore_errors=True)  # the drop lists are no longer read
     return totals
+
+
+def _local(pool: TaskPool) -> bool:
+    """Whether the pool's tasks run in this process (memory handoffs reach them)."""
+    return isinstance(pool.executor, (ThreadPoolExecutor, InlineExecutor))
 
 
 def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path, fitted: Fitted) -> Sharded:

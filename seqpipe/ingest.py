@@ -47,6 +47,7 @@ from seqpipe._environment import part_environment
 from seqpipe._hashing import hash_array, hash_file, hash_json
 from seqpipe._parse import to_plain
 from seqpipe.errors import PatternTimeoutError, SeqpipeError, ShardCorruptError, SourceError
+from seqpipe.filesystem import change_stamp
 from seqpipe.recipe import Recipe
 from seqpipe.shards import fsync_file, id_dtype, read_shard, read_table, write_shard, write_table
 from seqpipe.splits import assign_splits, fixed_split_of
@@ -525,8 +526,6 @@ def _in_member(exc: PatternTimeoutError, task: IngestTask, read_counts: list[int
 def _check_unchanged(member: Member) -> None:
     """Refuse a part whose input changed since its hash was taken: what was read may not be
     what the hash (and so the manifest and the cache key) says."""
-    from seqpipe.filesystem import change_stamp
-
     if member.stamp is None:
         return
     now = change_stamp(member.path)

@@ -6,7 +6,9 @@ Layout under the dataset directory::
     .seqpipe/publishing.json      the entries a publish may replace, while one is under way
     .seqpipe/stage/<build key>/   everything a build writes before it publishes
     .seqpipe/cache/               ingested parts, reusable by later builds
-    .seqpipe/inputs.json          input file hashes keyed by (path, size, mtime)
+    .seqpipe/cache/inputs.json    input file hashes keyed by path, with the (size, mtime, inode) they were taken at
+    .seqpipe/cache/plans.json     cuts of inputs that needed reading to cut, by content hash
+    .seqpipe/cache/plan.json      the last build's whole plan, taken while its inputs' listing is unchanged
 
 A build writes only into a new or empty directory or over an earlier seqpipe dataset: it may
 replace what that dataset's manifest lists, nothing else (``check_output``).
@@ -72,14 +74,34 @@ def owned_entries(out: Path) -> set[str] | None:
     manifest = out / MANIFEST_NAME
     if not manifest.exists() and not manifest.is_symlink():
         return owned
+    listed = _manifest_entries(manifest)
+    return None if listed is None else owned | listed | {MANIFEST_NAME}
+
+
+_LISTED: dict[str, tuple[tuple[int, int, int], frozenset[str] | None]] = {}  # manifest path -> (stamp, entries)
+
+
+def _manifest_entries(manifest: Path) -> frozenset[str] | None:
+    """The top-level names ``manifest`` lists (None: not a seqpipe manifest), remembered by its
+    size, mtime and inode: a build asks before it starts and again when it publishes, and a
+    manifest listing many inputs is a large document to parse twice."""
     try:
+        st = os.stat(manifest)
+        stamp = (st.st_size, st.st_mtime_ns, st.st_ino)
+        known = _LISTED.get(str(manifest))
+        if known is not None and known[0] == stamp:
+            return known[1]
         data = json.loads(manifest.read_text())
     except (OSError, ValueError):
         return None
-    if not isinstance(data, dict) or not str(data.get("format", "")).startswith("seqpipe"):
-        return None
-    _listed_paths(data, owned)
-    return owned | {MANIFEST_NAME}
+    into: set[str] = set()
+    listed: frozenset[str] | None = None
+    if isinstance(data, dict) and str(data.get("format", "")).startswith("seqpipe"):
+        _listed_paths(data, into)
+        listed = frozenset(into)
+    _LISTED.clear()  # one manifest remembered: builds go one output at a time
+    _LISTED[str(manifest)] = (stamp, listed)
+    return listed
 
 
 def check_output(out: Path, also: Sequence[str] = ()) -> None:

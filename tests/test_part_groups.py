@@ -228,20 +228,38 @@ def test_a_rebuild_from_stored_counts_equals_a_fresh_build(tmp_path: Path) -> No
 
 
 def test_stored_cuts_follow_the_inputs(tmp_path: Path) -> None:
-    """The cache keeps one entry of cuts per input planned by the last build: a removed file's
-    entry goes, an edited file's entry is replaced."""
+    """The cache keeps one entry of cuts per input planned by the last build (inputs larger than
+    the part size: smaller ones are planned from their size): a removed file's entry goes, an
+    edited file's entry is replaced."""
     import json
 
     paths = write_notes(tmp_path, files=12, awkward=False)
     cache = tmp_path / "cache"
-    plan_build(recipe_of(tmp_path), cache, 1 << 20)
+    recipe = recipe_of(tmp_path)
+    plan_build(recipe, cache, 1)
     assert len(json.loads((cache / "plans.json").read_text())) == 12
     paths[3].unlink()
-    paths[4].write_text("tide calm\n")
-    plan_build(recipe_of(tmp_path), cache, 1 << 20)
+    paths[4].write_text("tide calm\n\nrope deck\n")
+    plan_build(recipe, cache, 1)
     stored = json.loads((cache / "plans.json").read_text())
     assert len(stored) == 11
-    assert [[0, len(b"tide calm\n")]] in stored.values()
+    assert [[p.start, p.stop] for p in recipe.sources[0].plan(str(paths[4]), 1)] in stored.values()
+
+
+@pytest.mark.parametrize("document", ["file", "line", "paragraph"])
+def test_small_inputs_planned_from_their_size_as_plan_would(tmp_path: Path, document: str) -> None:
+    """``plan_sized`` (no read, no stat) gives what ``plan`` gives for an uncompressed input no
+    larger than the part size, declines a larger or compressed one, and stores no cuts for it."""
+    paths = write_notes(tmp_path, files=8, awkward=False)
+    source = recipe_of(tmp_path, document=document).sources[0]
+    for path in paths:
+        size = path.stat().st_size
+        assert source.plan_sized(str(path), size, size) == source.plan(str(path), size)
+        if document != "file":
+            assert source.plan_sized(str(path), size, size - 1) is None
+    assert source.plan_sized(str(paths[0]) + ".gz", 5, 100) is None
+    plan_build(recipe_of(tmp_path, document=document), tmp_path / "cache", 1 << 20)
+    assert not (tmp_path / "cache" / "plans.json").exists()
 
 
 @pytest.mark.parametrize("held_bytes", [0, 3000])
@@ -260,3 +278,111 @@ def test_encoded_parts_held_in_memory_or_written_give_the_same_dataset(
     build(recipe, tmp_path / "files", part_bytes=300, progress=False)
     assert dataset_files(tmp_path / "files") == dataset_files(tmp_path / "held")
     assert not [name for name in ingest_module._HELD.items if name.startswith(str(tmp_path))]
+
+
+@pytest.mark.parametrize("held_bytes", [0, 2000])
+def test_inputs_held_from_hashing_give_the_same_dataset(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, held_bytes: int
+) -> None:
+    """Small inputs read to hash them are handed to the ingest tasks in memory up to a bound:
+    with none held or only some, the dataset's bytes are those of a build that held them all,
+    and nothing stays held after a build."""
+    import seqpipe.sources._stream as stream_module
+
+    write_notes(tmp_path, files=60)
+    recipe = recipe_of(tmp_path)
+    build(recipe, tmp_path / "held", part_bytes=300, progress=False)
+    assert not stream_module._HELD_INPUTS
+    monkeypatch.setattr(stream_module, "HELD_INPUT_BYTES", held_bytes)
+    build(recipe, tmp_path / "read", part_bytes=300, progress=False)
+    assert dataset_files(tmp_path / "read") == dataset_files(tmp_path / "held")
+    assert not stream_module._HELD_INPUTS
+
+
+def test_held_input_changed_before_ingest_is_refused(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """An input edited after planning read (and held) it is refused by its ingest task as a
+    read of it would be: the held bytes are not what the file holds now."""
+    from seqpipe.errors import SourceError
+
+    paths = write_notes(tmp_path, files=6, awkward=False)
+    real_ingest = build_module.ingest
+
+    def edit_then_ingest(*args: object, **kwargs: object) -> object:
+        paths[2].write_text("pier fog pier fog pier fog pier fog\n")
+        return real_ingest(*args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(build_module, "ingest", edit_then_ingest)
+    with pytest.raises(SourceError, match="changed while the build was reading it"):
+        build(recipe_of(tmp_path), tmp_path / "out", progress=False)
+
+
+def _plan_tuple(plan: object) -> tuple[object, ...]:
+    """What a plan decides (its tasks' recipe aside): inputs, each part's source, key and members."""
+    from seqpipe._build import Plan
+
+    assert isinstance(plan, Plan)
+    parts = tuple((t.source_index, t.key, t.members) for t in plan.tasks)
+    return plan.inputs, parts, plan.weights, plan.input_bytes, plan.build_key
+
+
+def test_a_stored_plan_equals_planning_afresh(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A rebuild of unchanged inputs takes the stored plan (hashing and cutting nothing), and
+    it is the plan that planning again without any cache gives."""
+    write_notes(tmp_path, files=40)
+    recipe = recipe_of(tmp_path)
+    first = plan_build(recipe, tmp_path / "cache", 600)
+    assert (tmp_path / "cache" / "plan.json").exists()
+
+    def refuse(*args: object, **kwargs: object) -> None:
+        raise AssertionError("planned again")
+
+    with monkeypatch.context() as patch:
+        patch.setattr(build_module, "_group_inputs", refuse)
+        again = plan_build(recipe, tmp_path / "cache", 600)
+    fresh = plan_build(recipe, tmp_path / "other-cache", 600)
+    assert _plan_tuple(again) == _plan_tuple(first) == _plan_tuple(fresh)
+
+
+@pytest.mark.parametrize("change", ["edit", "touch", "remove", "add", "part size", "tokenizer"])
+def test_a_stored_plan_is_not_taken_after_a_change(tmp_path: Path, change: str) -> None:
+    """Any change to an input's name, stamp or to what part keys hold plans again, and gives
+    the plan a build without a cache gives."""
+    import os
+
+    paths = write_notes(tmp_path, files=30, awkward=False)
+    recipe, size = recipe_of(tmp_path), 600
+    plan_build(recipe, tmp_path / "cache", size)
+    if change == "edit":
+        paths[7].write_text("rope deck\n")
+    elif change == "touch":
+        st = paths[7].stat()
+        os.utime(paths[7], ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000_000))
+    elif change == "remove":
+        paths[7].unlink()
+    elif change == "add":
+        (paths[7].parent / "note-extra.txt").write_text("crew calm\n")
+    elif change == "part size":
+        size = 900
+    else:
+        recipe = parse_recipe(
+            RECIPE.format(document="paragraph", invalid="replace", cap=0).replace("words", "chars"), tmp_path
+        )
+    again = plan_build(recipe, tmp_path / "cache", size)
+    fresh = plan_build(recipe, tmp_path / "other-cache", size)
+    assert _plan_tuple(again) == _plan_tuple(fresh)
+
+
+def test_no_plan_is_stored_when_an_input_changed_while_hashed(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A file that changed while it was hashed leaves no stored plan (its hash may not be that
+    of the bytes its stamp names), so the next build hashes it again."""
+    paths = write_notes(tmp_path, files=6, awkward=False)
+    real = build_module._hash_input
+
+    def changing(f: object, stamp: object, hold: bool = False) -> tuple[str, object]:
+        if str(f) == str(paths[2]):  # after its stamp was taken (listing), before it is read
+            paths[2].write_text("pier fog pier fog pier fog pier fog\n")
+        return real(f, stamp, hold)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(build_module, "_hash_input", changing)
+    plan_build(recipe_of(tmp_path), tmp_path / "cache", 600)
+    assert not (tmp_path / "cache" / "plan.json").exists()

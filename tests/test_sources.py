@@ -803,3 +803,33 @@ def test_hostile_records() -> None:
         "last good record",
     ]
     assert stats.bad_records_skipped == 5
+
+
+def test_local_suffix_is_the_suffix_a_path_gives() -> None:
+    """The compression suffix of a local ``str`` path, found without a ``Path``, is
+    ``PurePath.suffix`` of it (dot files, dots in directories, "." components, trailing "/")."""
+    from pathlib import PurePath
+
+    from seqpipe.sources._stream import _suffix
+
+    names = ["a.gz", "..gz", ".gz", "a/b.tar.gz", "a.", "x/y/", "a/.hidden", "a/b.c/d", "./c.zst", "a..gz"]
+    names += ["dir.gz/", "a/./b.bz2", ".", "x/..", "a/b/.", "/x/y.GZ", "y.gz/.", "notes/box-1/n.txt"]
+    for name in names:
+        assert _suffix(name) == PurePath(name).suffix, name
+
+
+@pytest.mark.parametrize("size_over", [0, 1])
+def test_jsonl_small_file_planned_from_its_size_as_plan_would(tmp_path: Path, size_over: int) -> None:
+    """A JSON Lines file no larger than the part size is planned from its size alone as
+    ``plan`` plans it; a larger or compressed one is left to ``plan``."""
+    path = tmp_path / "a.jsonl"
+    path.write_text("".join(json.dumps({"text": f"ferry {i}"}) + "\n" for i in range(7)))
+    source = JsonlSource(paths="a.jsonl")
+    size = path.stat().st_size
+    target = size - size_over
+    sized = source.plan_sized(str(path), size, target)
+    if size_over:
+        assert sized is None
+    else:
+        assert sized == source.plan(str(path), target)
+    assert source.plan_sized(str(path) + ".gz", 10, 100) is None

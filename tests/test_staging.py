@@ -213,3 +213,22 @@ def test_a_parts_cache_kept_inside_the_output_directory_is_not_in_the_way(tmp_pa
     assert (out / "manifest.json").exists()
     with pytest.raises(DatasetError, match="parts-cache"):
         check_output(out)
+
+
+def test_owned_entries_follow_a_replaced_manifest(tmp_path: Path) -> None:
+    """The names a manifest lists are remembered only while it is the same file: a manifest
+    replaced by one listing other entries (or by a foreign one) is read again."""
+    owned_entries = staging.owned_entries
+
+    def put(body: dict[str, object]) -> None:
+        tmp = tmp_path / "manifest.json.tmp"
+        tmp.write_text(json.dumps(body))
+        os.replace(tmp, tmp_path / "manifest.json")
+
+    put({"format": "seqpipe.dataset/1", "splits": {"train": {"shards": [{"path": "shards/a.arrow"}]}}})
+    assert owned_entries(tmp_path) == {"shards", "manifest.json"}
+    assert owned_entries(tmp_path) == {"shards", "manifest.json"}
+    put({"format": "seqpipe.dataset/1", "vocabulary": {"path": "vocab.arrow"}})
+    assert owned_entries(tmp_path) == {"vocab.arrow", "manifest.json"}
+    put({"format": "other"})
+    assert owned_entries(tmp_path) is None

@@ -103,16 +103,23 @@ def document_spans(a: Bytes, paragraphs: bool, has_cr: bool) -> tuple[Int64s, In
 
 
 def fast_documents(
-    buf: bytes | bytearray, end: int, paragraphs: bool, limit: int, *, keep_cr: bool = False
+    buf: bytes | bytearray,
+    end: int,
+    paragraphs: bool,
+    limit: int,
+    *,
+    keep_cr: bool = False,
+    spans: tuple[Int64s, Int64s] | None = None,
 ) -> pa.Array | None:
     """The documents of ``buf[:end]`` (whole documents) as ``large_string``, or None for the exact path.
 
     See the module docstring for the fallback conditions. The result owns its bytes (``take``
     copies them), and every view of ``buf`` is gone on return, so the caller may resize it.
+    ``spans``: ``document_spans`` of ``buf[:end]`` when the caller has them already.
     """
     has_cr = buf.find(b"\r", 0, end) >= 0
     a = np.frombuffer(buf, dtype=np.uint8, count=end)
-    starts, stops = document_spans(a, paragraphs, has_cr)
+    starts, stops = document_spans(a, paragraphs, has_cr) if spans is None else spans
     n = len(starts)
     if n == 0:
         return pa.array([], type=pa.large_string())

@@ -8,14 +8,16 @@ into a :class:`SourceError` naming the file.
 
 from __future__ import annotations
 
+import os
 import re
+import threading
 from collections.abc import Iterator
 from typing import Final
 
 import pyarrow as pa
 
 from seqpipe.errors import SourceError, SourceMissingError
-from seqpipe.filesystem import FILE_GONE, SourcePath, open_input_stream, suffix
+from seqpipe.filesystem import FILE_GONE, SourcePath, is_uri, open_input_stream, suffix
 
 COMPRESSIONS: Final = ("auto", "none", "gzip", "bz2", "zstd")
 _SUFFIXES: Final = {".gz": "gzip", ".bz2": "bz2", ".zst": "zstd"}
@@ -26,8 +28,23 @@ _SCAN_BLOCK: Final = 1 << 16
 def codec_for(path: SourcePath, compression: str) -> str | None:
     """The pyarrow codec name for ``path`` (None: not compressed)."""
     if compression == "auto":
-        return _SUFFIXES.get(suffix(path).lower())
+        return _SUFFIXES.get(_suffix(path).lower())
     return None if compression == "none" else compression
+
+
+def _suffix(path: SourcePath) -> str:
+    """``filesystem.suffix(path)``; a local ``str`` without making a ``Path`` (a build of many
+    small files asks this of each file more than once): the same rule as ``PurePath.suffix``."""
+    if not isinstance(path, str) or ("://" in path and is_uri(path)):
+        return suffix(path)
+    # a name with no "." component or trailing separator is already what ``Path`` would make of it
+    name = (
+        path.rpartition(os.sep)[2]
+        if "/." not in path and path[-1:] != os.sep
+        else os.path.basename(os.path.normpath(path))
+    )
+    dot = name.rfind(".")
+    return name[dot:] if 0 < dot < len(name) - 1 else ""
 
 
 def _open(path: SourcePath, codec: str | None) -> pa.NativeFile:
@@ -180,3 +197,40 @@ def drop_front(buf: bytearray, n: int) -> bytearray:
     except BufferError:
         return bytearray(memoryview(buf)[n:])
     return buf
+
+
+# -- inputs read once ---------------------------------------------------------------------------
+
+HELD_INPUT_BYTES: Final = 32 << 20  # the bound of encode's in-memory handoff, for the same reason
+_HELD_INPUTS: dict[str, bytes] = {}
+_HELD_LOCK: Final = threading.Lock()
+_held_total: list[int] = [0]
+
+
+def hold_input(path: str, data: bytes) -> None:
+    """Keep the bytes of a small local input that planning read to hash, so an ingest task of
+    this process reads it from memory instead of opening it again (up to ``HELD_INPUT_BYTES``
+    in all; past that the task reads the file). The task still checks the file's change stamp
+    after reading, so held bytes of a file changed since are refused as a read would be."""
+    with _HELD_LOCK:
+        if _held_total[0] + len(data) <= HELD_INPUT_BYTES:
+            _HELD_INPUTS[path] = data
+            _held_total[0] += len(data)
+
+
+def take_input(path: SourcePath) -> bytes | None:
+    """The held bytes of ``path`` (forgotten once taken), or None: read the file."""
+    if not _HELD_INPUTS or not isinstance(path, str):
+        return None
+    with _HELD_LOCK:
+        data = _HELD_INPUTS.pop(path, None)
+        if data is not None:
+            _held_total[0] -= len(data)
+    return data
+
+
+def release_inputs() -> None:
+    """Forget every held input (after the ingest phase, read or not)."""
+    with _HELD_LOCK:
+        _HELD_INPUTS.clear()
+        _held_total[0] = 0

@@ -128,6 +128,22 @@ def _recorded_name(path: str, base: str) -> str:
     return PurePath(os.path.relpath(path, base)).as_posix()
 
 
+def _prefix(base: str) -> str:
+    """What ``_recorded_name`` strips from a normalized path under ``base`` ("" when it does
+    more: a base of ".", or separators other than "/")."""
+    base = os.path.normpath(base)
+    if os.sep != "/" or base == ".":
+        return ""
+    return base.rstrip("/") + "/"
+
+
+def _joined(top: str, key: str) -> str:
+    """``os.path.join(top, key)`` for a non-empty ``top``, without its calls on "/" systems."""
+    if os.sep != "/" or key.startswith("/"):
+        return os.path.join(top, key)
+    return top + key if top.endswith("/") else top + "/" + key
+
+
 def _posix_key(path: str) -> str:
     """A glob match's normalized POSIX path (its sort key)."""
     path = os.path.normpath(path)
@@ -228,17 +244,26 @@ class Source(ABC):
                 skipped.setdefault(_recorded_name(rel, base), what)
             if not matches.files:
                 raise SourceMissingError(str(root), f"glob {pattern!r} matched no file under {root}")
+            under = _prefix(base)
             for hit in matches.files:
                 key = _posix_key(hit)
                 if key not in found:
-                    local = (key if top == "." else os.path.join(top, key)) if as_str else root / key
-                    found[key] = (local, _recorded_name(hit, base))
+                    local = (key if top == "." else _joined(top, key)) if as_str else root / key
+                    # the common case of _recorded_name without its calls (a corpus of many files)
+                    name = key[len(under) :] if under and key.startswith(under) else _recorded_name(hit, base)
+                    found[key] = (local, name)
         ordered = [found[key] for key in sorted(found)]
         return Resolved([p for p, _ in ordered], tuple(sorted(skipped.items())), tuple(n for _, n in ordered))
 
     @abstractmethod
     def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:
         """Cut ``path`` into parts of about ``target_bytes`` on document boundaries."""
+
+    def plan_sized(self, path: SourcePath, size: int, target_bytes: int) -> list[Part] | None:
+        """What :meth:`plan` gives for ``path`` of ``size`` bytes when that follows from the
+        size and the name alone (no read, no stat: planning many small files costs nothing per
+        file); None when only :meth:`plan` can tell."""
+        return None
 
     @abstractmethod
     def read(

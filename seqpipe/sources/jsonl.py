@@ -85,6 +85,12 @@ class JsonlSource(RecordSource):
         # Only LF ends a JSON Lines record (a CR before it is JSON whitespace).
         return [Part(a, b) for a, b in plan_cuts(path, size, target_bytes, _LF)]
 
+    def plan_sized(self, path: SourcePath, size: int, target_bytes: int) -> list[Part] | None:
+        """:meth:`plan` of an uncompressed file of at most ``target_bytes``: one part ``[0, size)``."""
+        if codec_for(path, self.compression) is not None or size > target_bytes:
+            return None
+        return [Part(0, size)]
+
     def read(
         self, path: SourcePath, part: Part, stats: ReadStats, *, batch_bytes: int = DEFAULT_BATCH_BYTES
     ) -> Iterator[pa.Array]:

@@ -31,7 +31,15 @@ import pyarrow as pa
 from seqpipe._parse import parse_int, parse_str
 from seqpipe.filesystem import SourcePath, file_size, is_uri
 from seqpipe.sources._fast_text import document_spans, fast_documents, last_paragraph_cut
-from seqpipe.sources._stream import COMPRESSIONS, codec_for, drop_front, plan_cuts, plan_stream_cuts, read_blocks
+from seqpipe.sources._stream import (
+    COMPRESSIONS,
+    codec_for,
+    drop_front,
+    plan_cuts,
+    plan_stream_cuts,
+    read_blocks,
+    take_input,
+)
 from seqpipe.sources.base import DEFAULT_BATCH_BYTES, DocumentFinisher, Part, ReadStats, Source, to_array
 
 DOCUMENT_MODES: Final = ("file", "line", "paragraph")
@@ -147,6 +155,15 @@ class TextSource(Source):
             return [Part(0, None)]
         size = file_size(path)
         return [Part(a, b) for a, b in plan_cuts(path, size, target_bytes, separator)]
+
+    def plan_sized(self, path: SourcePath, size: int, target_bytes: int) -> list[Part] | None:
+        """:meth:`plan` of an uncompressed file: read whole (file documents), else one part
+        ``[0, size)`` when ``size`` is at most ``target_bytes`` (``plan_cuts`` cuts nothing)."""
+        if codec_for(path, self.compression) is not None:
+            return None
+        if self.document == "file":
+            return [Part(0, None)]
+        return [Part(0, size)] if size <= target_bytes else None
 
     def read(
         self, path: SourcePath, part: Part, stats: ReadStats, *, batch_bytes: int = DEFAULT_BATCH_BYTES
@@ -296,22 +313,27 @@ def _joined_documents(
     pieces: list[bytes] = []
     read = 0
     for path, part in run:
-        try:
-            with open(path, "rb") as fh:
-                data = fh.read(part.stop)
-        except OSError:
-            return None
+        data = take_input(path)
+        if data is not None:
+            data = data[: part.stop]
+        else:
+            try:
+                with open(path, "rb") as fh:
+                    data = fh.read(part.stop)
+            except OSError:
+                return None
         read += len(data)
         pieces.append(data[3:] if data.startswith(_BOM) else data)
     separator = b"\n\n" if paragraphs else b"\n"
     buf = separator.join(pieces) + separator
     if b"\r" in buf:
         return None
-    docs = fast_documents(buf, len(buf), paragraphs, limit)
+    spans = document_spans(np.frombuffer(buf, np.uint8), paragraphs, False)
+    docs = fast_documents(buf, len(buf), paragraphs, limit, spans=spans)
     if docs is None:
         return None
     lengths = np.array([len(p) + len(separator) for p in pieces], np.int64)
-    starts, _ = document_spans(np.frombuffer(buf, np.uint8), paragraphs, False)
+    starts = spans[0]
     first = np.searchsorted(starts, np.cumsum(lengths) - lengths)
     per_file = np.diff(first, append=len(starts))
     return docs, per_file.tolist(), read
