@@ -134,3 +134,22 @@ def test_band_buckets_group_exactly_equal_bands_even_when_keys_collide(monkeypat
             same = buckets[:, b][:, None] == buckets[:, b][None, :]
             band = sig[:, 2 * b : 2 * b + 2]
             assert np.array_equal(same, (band[:, None, :] == band[None, :, :]).all(axis=2))
+
+
+def test_word_hashes_follow_their_polynomial_definition(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The prefix-sum word hash equals the polynomial over each word's bytes computed word by word
+    (sum of (byte + 1) * B**(j + 1) mod 2**64, plus the length, then mixed), also across slices."""
+    import seqpipe.clean.near_dedupe as module
+    from seqpipe.clean._quality import mix64
+
+    monkeypatch.setattr(module, "_SPAN", 7)  # many slices, words on both sides of every cut
+    texts = ["", "ferry", "pier ß tide", "", "x" * 40, "landing-stage", "", "ö"]
+    arr = pa.array(texts, pa.large_string())
+    expected = []
+    for t in texts:
+        acc = 0
+        for j, b in enumerate(t.encode("utf-8")):
+            acc = (acc + (b + 1) * pow(int(module._BYTE_BASE), j + 1, 2**64)) % 2**64
+        expected.append((acc + len(t.encode("utf-8"))) % 2**64)
+    got = module._byte_hashes(arr)
+    assert got.tolist() == mix64(np.array(expected, np.uint64)).tolist()

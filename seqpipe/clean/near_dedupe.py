@@ -10,14 +10,15 @@ candidates (probability ``1 - (1 - s**rows)**bands`` at similarity ``s``); a can
 estimated similarity (the share of equal values) reaches ``threshold`` with an earlier kept
 document is dropped, so the first document of each group in corpus order stays.
 
-Signatures are computed in the ingest tasks (numpy over the batch: each distinct word's bytes
-are hashed once, shingles combine word hashes, and each hash function is a multiply-add over all
-shingles; no Python call per word); only the comparison of colliding documents runs in the
-driver, one Python step per such document.
+Signatures are computed in the ingest tasks (numpy over the batch: word hashes come from prefix
+sums over the batch's bytes, shingles combine word hashes, and each hash function is a
+multiply-add over a block of shingles; no Python call per word); only the comparison of colliding
+documents runs in the driver, one Python step per such document.
 """
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass
 from typing import ClassVar, Final
 
@@ -36,35 +37,59 @@ _EMPTY: Final = np.uint32(0xFFFFFFFF)
 
 
 def _byte_hashes(text: pa.Array) -> np.ndarray:
-    """A 64-bit hash of each value's UTF-8 bytes (a polynomial over the bytes, then mixed)."""
+    """A 64-bit hash of each value's UTF-8 bytes b_0 .. b_{n-1}: the polynomial
+    sum((b_j + 1) * B**(j + 1)) mod 2**64 plus n, then mixed.
+
+    Taken from prefix sums over the whole buffer: value v's polynomial is the difference of two
+    prefix sums divided by B**start, a multiplication by the inverse of B mod 2**64 (B is odd),
+    so no pass per value or per distinct value is needed.
+    """
     n = len(text)
     data, offsets = utf8_buffers(text)
-    if n == 0:
-        return np.zeros(0, np.uint64)
-    data = data.astype(np.uint64)
-    starts = offsets[:-1]
-    lengths = np.diff(offsets)
-    position = np.arange(len(data), dtype=np.int64) - np.repeat(starts, lengths)
-    powers = (
-        np.cumprod(np.full(int(lengths.max()), _BYTE_BASE, dtype=np.uint64)) if len(data) else np.ones(1, np.uint64)
-    )
-    with np.errstate(over="ignore"):
-        terms = (data + np.uint64(1)) * powers[position]
-        sums = np.zeros(n, np.uint64)
-        filled = lengths > 0
-        if len(data):
-            sums[filled] = np.add.reduceat(terms, starts[filled])
-    return mix64(sums + lengths.astype(np.uint64))
+    out = np.zeros(n, np.uint64)
+    # a slice of values of about _SPAN bytes at a time: the powers kept stay that long
+    cuts = np.unique(np.r_[0, np.searchsorted(offsets, np.arange(0, len(data), _SPAN), side="right") - 1, n])
+    for lo, hi in zip(cuts[:-1].tolist(), cuts[1:].tolist(), strict=True):
+        bounds = offsets[lo : hi + 1] - offsets[lo]
+        part = data[offsets[lo] : offsets[hi]]
+        prefix = np.zeros(len(part) + 1, np.uint64)
+        powers, inverse = _powers(len(part))
+        with np.errstate(over="ignore"):
+            np.cumsum((part + np.uint64(1)) * powers[1 : len(part) + 1], out=prefix[1:])
+            out[lo:hi] = (prefix[bounds[1:]] - prefix[bounds[:-1]]) * inverse[bounds[:-1]]
+    return mix64(out + np.diff(offsets).astype(np.uint64))
+
+
+_SPAN: Final = 1 << 20
+_BYTE_INVERSE: Final = np.uint64(pow(int(_BYTE_BASE), -1, 2**64))
+
+
+class _Powers(threading.local):
+    """Per thread, the powers of B and of its inverse mod 2**64 computed so far (they only grow)."""
+
+    def __init__(self) -> None:
+        self.powers = np.ones(1, np.uint64)
+        self.inverse = np.ones(1, np.uint64)
+
+
+_POWERS: Final = _Powers()
+
+
+def _powers(count: int) -> tuple[np.ndarray, np.ndarray]:
+    """B**j and B**-j mod 2**64 for j in 0 .. count (at least: longer arrays are reused)."""
+    kept = _POWERS
+    if len(kept.powers) <= count:
+        size = max(count + 1, 2 * len(kept.powers))
+        with np.errstate(over="ignore"):
+            kept.powers = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_BASE, np.uint64)])
+            kept.inverse = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_INVERSE, np.uint64)])
+    return kept.powers, kept.inverse
 
 
 def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
-    """A 64-bit hash of each word's UTF-8 bytes and the document of each word: each distinct
-    word of the batch is hashed once (numpy over its bytes), then looked up per word."""
+    """A 64-bit hash of each word's UTF-8 bytes (:func:`_byte_hashes`) and the document of each word."""
     pieces = words(docs)
-    if len(pieces.text) == 0:
-        return np.zeros(0, np.uint64), pieces.doc
-    distinct, codes = pieces.encoded()
-    return _byte_hashes(distinct)[codes], pieces.doc
+    return _byte_hashes(pieces.text), pieces.doc
 
 
 def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
@@ -81,12 +106,18 @@ def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
     count = np.maximum(run_len - size + 1, 1)  # shingles per document that has words
     starts = np.repeat(run_start, count) + (np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count, count))
     width = np.minimum(np.repeat(run_len, count), size)
-    acc = np.zeros(len(starts), dtype=np.uint64)
+    padded = np.r_[word, np.zeros(size, np.uint64)]  # a short document's window reads past its end
+    acc = padded[starts]
     with np.errstate(over="ignore"):
-        for k in range(size):  # a loop over shingle positions, not over words
-            inside = k < width
-            value = word[np.minimum(starts + k, n - 1)]
-            acc = np.where(inside, acc * _BYTE_BASE + value, acc)
+        for k in range(1, size):  # a loop over shingle positions, not over words
+            acc *= _BYTE_BASE
+            acc += padded[starts + k]
+        short = np.flatnonzero(width < size)
+        if len(short):  # documents with fewer words than a shingle: Horner over their words only
+            part = np.zeros(len(short), np.uint64)
+            for k in range(size):
+                part = np.where(k < width[short], part * _BYTE_BASE + padded[starts[short] + k], part)
+            acc[short] = part
     return mix64(acc + width.astype(np.uint64)), doc[starts]
 
 
@@ -98,33 +129,46 @@ def seeds(count: int, seed: int) -> np.ndarray:
 
 
 def signatures(docs: pa.Array, *, shingle: int, hashes: int, seed: int) -> np.ndarray:
-    """(documents, hashes) uint32 MinHash signatures; a document without words gets all 0xFFFFFFFF.
+    """(documents, hashes) uint32 MinHash signatures; a document without words gets all 0xFFFFFFFF
+    (:func:`k_functions` over the documents' shingle hashes)."""
+    docs = as_documents(docs)
+    values, doc = _shingle_hashes(docs, shingle)
+    return k_functions(values, doc, len(docs), hashes, seed)
+
+
+def k_functions(values: np.ndarray, doc: np.ndarray, documents: int, hashes: int, seed: int) -> np.ndarray:
+    """Signatures from ``hashes`` seeded hash functions, the minimum of each over a document's
+    shingle hashes ``values`` (``doc``: each one's document, non-decreasing).
 
     Hash function i maps a shingle's 64-bit hash x to the top 32 bits of ``a_i * x + b_i``
     (mod 2**64; ``a_i`` odd, both from the seed): multiply-add-shift hashing (Dietzfelbinger,
     Hagerup, Katajainen and Penttonen 1997, "A reliable randomized algorithm for the
     closest-pair problem"). The top bits are a non-decreasing function of the 64-bit value, so
     the minimum is taken over the 64-bit values and shifted once per document: two array passes
-    per hash function over the batch's shingles.
+    per hash function over the batch's shingles, a block of documents at a time.
     """
-    docs = as_documents(docs)
-    values, doc = _shingle_hashes(docs, shingle)
-    out = np.full((len(docs), hashes), _EMPTY, dtype=np.uint32)
+    out = np.full((documents, hashes), _EMPTY, dtype=np.uint32)
     if len(values) == 0:
         return out
-    present = np.unique(doc)
-    starts = np.searchsorted(doc, present)
-    multipliers = seeds(hashes, seed) | np.uint64(1)
-    offsets = seeds(hashes, seed ^ _OFFSET_SEED)
-    mixed = np.empty_like(values)
-    lowest = np.empty((hashes, len(present)), dtype=np.uint64)
+    first = np.flatnonzero(np.r_[True, doc[1:] != doc[:-1]])  # each present document's first shingle
+    multipliers = (seeds(hashes, seed) | np.uint64(1))[:, None]
+    offsets = seeds(hashes, seed ^ _OFFSET_SEED)[:, None]
+    lowest = np.empty((hashes, len(first)), dtype=np.uint64)
+    # blocks of whole documents, about _BLOCK shingles each: every hash function over one block
+    # at a time keeps the (hashes, block) products small and needs few numpy calls per block
+    cuts = np.unique(np.r_[np.searchsorted(first, np.arange(0, len(values), _BLOCK)), len(first)])
+    bounds = np.r_[first, len(values)][cuts]
     with np.errstate(over="ignore"):
-        for i in range(hashes):
-            np.multiply(values, multipliers[i], out=mixed)
-            np.add(mixed, offsets[i], out=mixed)
-            np.minimum.reduceat(mixed, starts, out=lowest[i])
-    out[present] = (lowest >> np.uint64(32)).astype(np.uint32).T
+        edges = zip(cuts[:-1].tolist(), cuts[1:].tolist(), bounds[:-1].tolist(), bounds[1:].tolist(), strict=True)
+        for d0, d1, a, b in edges:
+            mixed = multipliers * values[a:b]
+            mixed += offsets
+            lowest[:, d0:d1] = np.minimum.reduceat(mixed, first[d0:d1] - a, axis=1)
+    out[doc[first]] = (lowest >> np.uint64(32)).astype(np.uint32).T
     return out
+
+
+_BLOCK: Final = 1 << 13
 
 
 def band_buckets(sig: np.ndarray, bands: int, rows: int) -> np.ndarray:
