@@ -60,7 +60,7 @@ def _byte_hashes(text: pa.Array) -> np.ndarray:
     return mix64(out + np.diff(offsets).astype(np.uint64))
 
 
-_SPAN: Final = 1 << 20
+_SPAN: Final = 1 << 18
 _BYTE_INVERSE: Final = np.uint64(pow(int(_BYTE_BASE), -1, 2**64))
 
 
@@ -68,18 +68,19 @@ class _Powers(threading.local):
     """Per thread, the powers of B and of its inverse mod 2**64 computed so far (they only grow)."""
 
     def __init__(self) -> None:
-        self.powers = np.ones(1, np.uint64)
-        self.inverse = np.ones(1, np.uint64)
+        self.powers: np.ndarray = np.ones(1, np.uint64)
+        self.inverse: np.ndarray = np.ones(1, np.uint64)
 
 
 _POWERS: Final = _Powers()
 
 
 def _powers(count: int) -> tuple[np.ndarray, np.ndarray]:
-    """B**j and B**-j mod 2**64 for j in 0 .. count (at least: longer arrays are reused)."""
+    """B**j and B**-j mod 2**64 for j in 0 .. count (at least: longer arrays are reused; as
+    slices are at most _SPAN bytes but for one longer value, these stay about _SPAN long)."""
     kept = _POWERS
     if len(kept.powers) <= count:
-        size = max(count + 1, 2 * len(kept.powers))
+        size = max(count + 1, _SPAN + 1)
         with np.errstate(over="ignore"):
             kept.powers = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_BASE, np.uint64)])
             kept.inverse = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_INVERSE, np.uint64)])
