@@ -88,9 +88,14 @@ def _write(path: Path, schema: pa.Schema, batches: Sequence[pa.RecordBatch]) -> 
     os.replace(tmp, path)
 
 
-def _write_partitioned(path: Path, columns: dict[str, pa.Array], where: np.ndarray, partitions: int) -> None:
-    """Rows into record batch ``where[i]`` of ``path``, keeping their order within a batch."""
-    order = np.argsort(where, kind="stable")
+def _write_partitioned(
+    path: Path, columns: dict[str, pa.Array], where: np.ndarray, partitions: int, order: np.ndarray | None = None
+) -> None:
+    """Rows into record batch ``where[i]`` of ``path``, in the order ``order`` within a batch (else
+    as they come)."""
+    order = np.arange(len(where)) if order is None else order
+    # where < MAX_PARTITIONS: as uint16, numpy's stable sort is a radix sort
+    order = order[np.argsort(where[order].astype(np.uint16), kind="stable")]
     bounds = np.searchsorted(where[order], np.arange(partitions + 1))
     taken = {name: col.take(pa.array(order)) for name, col in columns.items()}
     schema = pa.schema([(name, col.type) for name, col in taken.items()])
@@ -151,9 +156,10 @@ def band_keys(sig: np.ndarray, bands: int, rows: int) -> np.ndarray:
     values = sig.reshape(n, bands, rows)
     with np.errstate(over="ignore"):
         h = np.repeat(mix64(np.arange(bands, dtype=np.uint64) * _GOLDEN + _GOLDEN)[:, None], n, axis=1)
-        for r in range(rows):  # a loop over a band's rows, not over documents
-            h = mix64(h ^ values[:, :, r].T)
-    return h.ravel()
+        for r in range(rows):  # a loop over a band's rows, not over documents: a polynomial, mixed once
+            h += values[:, :, r].T
+            h *= _GOLDEN
+    return mix64(h).ravel()
 
 
 def write_keys(task: PartTask) -> int:
@@ -176,7 +182,9 @@ def write_keys(task: PartTask) -> int:
             "key": pa.array(key),
             "row": pa.array(np.tile(np.arange(n, dtype=np.int32), bands)),
         }
-        _write_partitioned(_path(scheme, "near", task.number), columns, (key % p).astype(np.int64), scheme.partitions)
+        where = (key % p).astype(np.int64)
+        # each batch sorted by key: a group task merges sorted runs, not a shuffle
+        _write_partitioned(_path(scheme, "near", task.number), columns, where, scheme.partitions, np.argsort(key))
     return int(n)
 
 
@@ -258,17 +266,21 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
     if len(parts) < 2:
         return none
     key = table.column("key").to_numpy()
-    # keys that occur more than once (a sort of integers), then the rows holding one of them:
-    # most rows are alone in their bucket and go no further
-    ordered = np.sort(key)
-    repeated = np.unique(ordered[1:][ordered[1:] == ordered[:-1]])
-    if not len(repeated):
+    # every part's batch is sorted by key: a stable sort of the runs is a merge
+    order = np.argsort(key, kind="stable")
+    ordered = key[order]
+    repeat = ordered[1:] == ordered[:-1]
+    shared = np.zeros(len(key), bool)
+    shared[1:] = repeat
+    shared[:-1] |= repeat  # rows whose key another row has: most rows are alone and go no further
+    if not shared.any():
         return none
-    shared = np.flatnonzero(repeated[np.minimum(np.searchsorted(repeated, key), len(repeated) - 1)] == key)
-    ids = _ids(parts[shared], table.column("row").to_numpy()[shared])
-    band = table.column("band").to_numpy()[shared].astype(np.int64)
-    order = np.lexsort((ids, key[shared]))  # by key, then corpus order
-    ids, band, bucket = ids[order], band[order], key[shared][order]
+    rows_at = order[shared]
+    ids = _ids(parts[rows_at], table.column("row").to_numpy()[rows_at])
+    band = table.column("band").to_numpy()[rows_at].astype(np.int64)
+    bucket = ordered[shared]
+    within = np.lexsort((ids, bucket))  # by key, then corpus order
+    ids, band, bucket = ids[within], band[within], bucket[within]
     members, where = np.unique(ids, return_inverse=True)
     sig = _signatures(scheme, members, bands * rows)[where.ravel()]
     ids, sig, bucket = _exact_buckets(ids, sig, band, bucket, rows)

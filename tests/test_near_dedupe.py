@@ -153,3 +153,21 @@ def test_word_hashes_follow_their_polynomial_definition(monkeypatch: pytest.Monk
         expected.append((acc + len(t.encode("utf-8"))) % 2**64)
     got = module._byte_hashes(arr)
     assert got.tolist() == mix64(np.array(expected, np.uint64)).tolist()
+
+
+def test_k_functions_blocks_give_each_function_minimum(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Signature value i is the top 32 bits of min(a_i * x + b_i mod 2**64) over the document's
+    shingle hashes x, also when blocks cut through documents (a tiny block size)."""
+    import seqpipe.clean.near_dedupe as module
+
+    rng = np.random.default_rng(4)
+    values = rng.integers(0, 2**63, size=300, dtype=np.int64).astype(np.uint64) * np.uint64(2) + np.uint64(1)
+    doc = np.sort(rng.choice(np.array([0, 1, 3, 4]), size=300, p=[0.05, 0.8, 0.1, 0.05]))  # document 2 has none
+    monkeypatch.setattr(module, "_BLOCK", 7)
+    sig = module.k_functions(values, doc, 5, 16, 9)
+    a = [int(m) for m in module.seeds(16, 9) | np.uint64(1)]
+    b = [int(o) for o in module.seeds(16, 9 ^ module._OFFSET_SEED)]
+    for d in range(5):
+        xs = [int(x) for x in values[doc == d]]
+        want = [min((a[i] * x + b[i]) % 2**64 for x in xs) >> 32 if xs else 0xFFFFFFFF for i in range(16)]
+        assert sig[d].tolist() == want

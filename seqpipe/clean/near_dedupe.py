@@ -146,7 +146,7 @@ def k_functions(values: np.ndarray, doc: np.ndarray, documents: int, hashes: int
     Hagerup, Katajainen and Penttonen 1997, "A reliable randomized algorithm for the
     closest-pair problem"). The top bits are a non-decreasing function of the 64-bit value, so
     the minimum is taken over the 64-bit values and shifted once per document: two array passes
-    per hash function over the batch's shingles, a block of documents at a time.
+    per hash function over the batch's shingles, a block of shingles at a time.
     """
     out = np.full((documents, hashes), _EMPTY, dtype=np.uint32)
     if len(values) == 0:
@@ -154,17 +154,21 @@ def k_functions(values: np.ndarray, doc: np.ndarray, documents: int, hashes: int
     first = np.flatnonzero(np.r_[True, doc[1:] != doc[:-1]])  # each present document's first shingle
     multipliers = (seeds(hashes, seed) | np.uint64(1))[:, None]
     offsets = seeds(hashes, seed ^ _OFFSET_SEED)[:, None]
-    lowest = np.empty((hashes, len(first)), dtype=np.uint64)
-    # blocks of whole documents, about _BLOCK shingles each: every hash function over one block
-    # at a time keeps the (hashes, block) products small and needs few numpy calls per block
-    cuts = np.unique(np.r_[np.searchsorted(first, np.arange(0, len(values), _BLOCK)), len(first)])
-    bounds = np.r_[first, len(values)][cuts]
+    lowest = np.full((hashes, len(first)), np.iinfo(np.uint64).max, dtype=np.uint64)
+    # blocks of _BLOCK shingles: every hash function over one block at a time keeps the
+    # (hashes, block) products in one reused buffer whatever the documents' lengths; a document
+    # that spans blocks takes the minimum of its pieces
+    buffer = np.empty((hashes, min(_BLOCK, len(values))), np.uint64)
     with np.errstate(over="ignore"):
-        edges = zip(cuts[:-1].tolist(), cuts[1:].tolist(), bounds[:-1].tolist(), bounds[1:].tolist(), strict=True)
-        for d0, d1, a, b in edges:
-            mixed = multipliers * values[a:b]
+        for a in range(0, len(values), _BLOCK):
+            b = min(a + _BLOCK, len(values))
+            lo = int(np.searchsorted(first, a, side="right")) - 1  # the document holding shingle a
+            hi = int(np.searchsorted(first, b, side="left"))  # and every document starting before b
+            mixed = buffer[:, : b - a]
+            np.multiply(multipliers, values[a:b], out=mixed)
             mixed += offsets
-            lowest[:, d0:d1] = np.minimum.reduceat(mixed, first[d0:d1] - a, axis=1)
+            piece = np.minimum.reduceat(mixed, np.maximum(first[lo:hi] - a, 0), axis=1)
+            np.minimum(lowest[:, lo:hi], piece, out=lowest[:, lo:hi])
     out[doc[first]] = (lowest >> np.uint64(32)).astype(np.uint32).T
     return out
 
