@@ -3,10 +3,13 @@ depends on the number of parts, not of documents.
 
 The phases (each a set of executor tasks; files in the build's work directory)::
 
-    keys     task per part: its documents' keys (exact ``dedupe`` hash; each near_dedupe band's
-             rows) into one Arrow IPC file whose record batch p holds partition p (by key hash)
+    keys     task per part: its documents' keys (exact ``dedupe`` hash; a 64-bit key per
+             near_dedupe band, :func:`band_keys`) into one Arrow IPC file whose record batch p
+             holds partition p (by key hash); near batches sorted by key
     group    task per partition: batch p of every part, grouped by key. Exact: every occurrence
-             after the first in corpus order is dropped. Near: in each band bucket, a document
+             after the first in corpus order is dropped. Near: rows whose band key repeats are
+             checked against their band's values in the signatures (regrouped by the values
+             where two bands' keys collide); in each band bucket, a document
              whose signature equals an earlier member's is dropped (whatever happens to that
              one, the same earlier document that drops it drops this one); the other members
              give candidate pairs (earlier, later), confirmed where the estimated Jaccard
