@@ -158,11 +158,12 @@ def band_keys(sig: np.ndarray, bands: int, rows: int) -> np.ndarray:
     n = len(sig)
     values = sig.reshape(n, bands, rows)
     with np.errstate(over="ignore"):
-        h = np.repeat(mix64(np.arange(bands, dtype=np.uint64) * _GOLDEN + _GOLDEN)[:, None], n, axis=1)
+        h = np.empty((n, bands), np.uint64)  # document-major like the signatures, made band-major once
+        h[:] = mix64(np.arange(bands, dtype=np.uint64) * _GOLDEN + _GOLDEN)
         for r in range(rows):  # a loop over a band's rows, not over documents: a polynomial, mixed once
-            h += values[:, :, r].T
+            h += values[:, :, r]
             h *= _GOLDEN
-    return mix64(h).ravel()
+    return mix64(h.T).ravel()
 
 
 def write_keys(task: PartTask) -> int:
