@@ -171,3 +171,17 @@ def test_k_functions_blocks_give_each_function_minimum(monkeypatch: pytest.Monke
         xs = [int(x) for x in values[doc == d]]
         want = [min((a[i] * x + b[i]) % 2**64 for x in xs) >> 32 if xs else 0xFFFFFFFF for i in range(16)]
         assert sig[d].tolist() == want
+
+
+def test_word_hashes_cut_words_as_the_quality_words_do() -> None:
+    """Words found over the bytes in place are the words _quality.words cuts (Unicode whitespace,
+    no word across documents, empty documents), with the same hash and document each."""
+    import seqpipe.clean.near_dedupe as module
+    from seqpipe.clean._quality import words
+
+    texts = ["", "  ", " pier", "tide ", "\u3000ferry\u00a0oar\u2028rope", "é  ü", "\n\nq\tr ", "", "x\u200by", "a b"]
+    arr = pa.array(texts, pa.large_string()).slice(1, 9)
+    pieces = words(arr)
+    got, doc = module._word_hashes(arr)
+    assert doc.tolist() == pieces.doc.tolist()
+    assert got.tolist() == module._byte_hashes(pieces.text).tolist()

@@ -26,7 +26,7 @@ import numpy as np
 import pyarrow as pa
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import mix64, utf8_buffers, words
+from seqpipe.clean._quality import mix64, space_bytes, utf8_buffers
 from seqpipe.clean.base import CleanStep, as_documents
 from seqpipe.errors import RecipeError
 
@@ -37,27 +37,33 @@ _EMPTY: Final = np.uint32(0xFFFFFFFF)
 
 
 def _byte_hashes(text: pa.Array) -> np.ndarray:
-    """A 64-bit hash of each value's UTF-8 bytes b_0 .. b_{n-1}: the polynomial
-    sum((b_j + 1) * B**(j + 1)) mod 2**64 plus n, then mixed.
-
-    Taken from prefix sums over the whole buffer: value v's polynomial is the difference of two
-    prefix sums divided by B**start, a multiplication by the inverse of B mod 2**64 (B is odd),
-    so no pass per value or per distinct value is needed.
-    """
-    n = len(text)
+    """A 64-bit hash of each value's UTF-8 bytes (:func:`_span_hashes`)."""
     data, offsets = utf8_buffers(text)
+    return _span_hashes(data, offsets[:-1], offsets[1:])
+
+
+def _span_hashes(data: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> np.ndarray:
+    """A 64-bit hash of the bytes b_0 .. b_{n-1} of each span ``data[start:end]`` (spans in
+    order, not overlapping): the polynomial sum((b_j + 1) * B**(j + 1)) mod 2**64 plus n, mixed.
+
+    Taken from prefix sums over the buffer: a span's polynomial is the difference of two prefix
+    sums divided by B**start, a multiplication by the inverse of B mod 2**64 (B is odd), so no
+    pass per span or per distinct span is needed.
+    """
+    n = len(starts)
     out = np.zeros(n, np.uint64)
-    # a slice of values of about _SPAN bytes at a time: the powers kept stay that long
-    cuts = np.unique(np.r_[0, np.searchsorted(offsets, np.arange(0, len(data), _SPAN), side="right") - 1, n])
+    # spans of about _SPAN bytes at a time: the powers kept stay that long
+    cuts = np.unique(np.r_[0, np.searchsorted(starts, np.arange(0, int(ends[-1]) if n else 0, _SPAN)), n])
     for lo, hi in zip(cuts[:-1].tolist(), cuts[1:].tolist(), strict=True):
-        bounds = offsets[lo : hi + 1] - offsets[lo]
-        part = data[offsets[lo] : offsets[hi]]
+        base = int(starts[lo])
+        part = data[base : int(ends[hi - 1])]
         prefix = np.zeros(len(part) + 1, np.uint64)
         powers, inverse = _powers(len(part))
         with np.errstate(over="ignore"):
             np.cumsum((part + np.uint64(1)) * powers[1 : len(part) + 1], out=prefix[1:])
-            out[lo:hi] = (prefix[bounds[1:]] - prefix[bounds[:-1]]) * inverse[bounds[:-1]]
-    return mix64(out + np.diff(offsets).astype(np.uint64))
+            a, b = starts[lo:hi] - base, ends[lo:hi] - base
+            out[lo:hi] = (prefix[b] - prefix[a]) * inverse[a]
+    return mix64(out + (ends - starts).astype(np.uint64))
 
 
 _SPAN: Final = 1 << 18
@@ -88,9 +94,23 @@ def _powers(count: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
-    """A 64-bit hash of each word's UTF-8 bytes (:func:`_byte_hashes`) and the document of each word."""
-    pieces = words(docs)
-    return _byte_hashes(pieces.text), pieces.doc
+    """A 64-bit hash of each word's UTF-8 bytes (:func:`_span_hashes`) and the document of each
+    word. Words are the runs of bytes outside Unicode whitespace within a document, as
+    ``_quality.words`` cuts them; found here over the bytes in place (no word array is built)."""
+    data, offsets = utf8_buffers(docs)
+    if not len(data):
+        return np.zeros(0, np.uint64), np.zeros(0, np.int64)
+    inside = ~space_bytes(docs)
+    start = inside.copy()
+    start[1:] &= ~inside[:-1]
+    end = inside.copy()
+    end[:-1] &= ~inside[1:]
+    filled = offsets[:-1] < offsets[1:]
+    first, last = offsets[:-1][filled], offsets[1:][filled] - 1  # a word never spans two documents
+    start[first] = inside[first]
+    end[last] = inside[last]
+    starts = np.flatnonzero(start)
+    return _span_hashes(data, starts, np.flatnonzero(end) + 1), np.searchsorted(offsets, starts, side="right") - 1
 
 
 def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
