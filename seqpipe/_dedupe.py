@@ -3,10 +3,13 @@ depends on the number of parts, not of documents.
 
 The phases (each a set of executor tasks; files in the build's work directory)::
 
-    keys     task per part: its documents' keys (exact ``dedupe`` hash; each near_dedupe band's
-             rows) into one Arrow IPC file whose record batch p holds partition p (by key hash)
+    keys     task per part: its documents' keys (exact ``dedupe`` hash; a 64-bit key per
+             near_dedupe band, :func:`band_keys`) into one Arrow IPC file whose record batch p
+             holds partition p (by key hash); near batches sorted by key
     group    task per partition: batch p of every part, grouped by key. Exact: every occurrence
-             after the first in corpus order is dropped. Near: in each band bucket, a document
+             after the first in corpus order is dropped. Near: rows whose band key repeats are
+             checked against their band's values in the signatures (regrouped by the values
+             where two bands' keys collide); in each band bucket, a document
              whose signature equals an earlier member's is dropped (whatever happens to that
              one, the same earlier document that drops it drops this one); the other members
              give candidate pairs (earlier, later), confirmed where the estimated Jaccard
@@ -88,9 +91,14 @@ def _write(path: Path, schema: pa.Schema, batches: Sequence[pa.RecordBatch]) -> 
     os.replace(tmp, path)
 
 
-def _write_partitioned(path: Path, columns: dict[str, pa.Array], where: np.ndarray, partitions: int) -> None:
-    """Rows into record batch ``where[i]`` of ``path``, keeping their order within a batch."""
-    order = np.argsort(where, kind="stable")
+def _write_partitioned(
+    path: Path, columns: dict[str, pa.Array], where: np.ndarray, partitions: int, order: np.ndarray | None = None
+) -> None:
+    """Rows into record batch ``where[i]`` of ``path``, in the order ``order`` within a batch (else
+    as they come)."""
+    order = np.arange(len(where)) if order is None else order
+    # where < MAX_PARTITIONS: as uint16, numpy's stable sort is a radix sort
+    order = order[np.argsort(where[order].astype(np.uint16), kind="stable")]
     bounds = np.searchsorted(where[order], np.arange(partitions + 1))
     taken = {name: col.take(pa.array(order)) for name, col in columns.items()}
     schema = pa.schema([(name, col.type) for name, col in taken.items()])
@@ -144,24 +152,18 @@ class PartTask:
     fixed: int | None = None  # the split of a source with a fixed split
 
 
-def band_rows(sig: np.ndarray, bands: int, rows: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Band-major: per (band, document) the band index, the document's row, and the band's
-    ``rows`` values as (n * bands, 4 * rows) bytes."""
+def band_keys(sig: np.ndarray, bands: int, rows: int) -> np.ndarray:
+    """Band-major (n * bands) uint64: a hash of each (band, document)'s band index and ``rows``
+    values. Equal bands give equal keys; different ones rarely do, and the group task checks."""
     n = len(sig)
-    blocks = [np.ascontiguousarray(sig[:, b * rows : (b + 1) * rows]).astype("<u4") for b in range(bands)]
-    values = np.concatenate(blocks) if blocks else np.zeros((0, rows), "<u4")
-    band = np.repeat(np.arange(bands, dtype=np.int16), n)
-    row = np.tile(np.arange(n, dtype=np.int32), bands)
-    return band, row, values.view(np.uint8).reshape(n * bands, 4 * rows)
-
-
-def _band_hash(band: np.ndarray, values: np.ndarray) -> np.ndarray:
-    words = values.view("<u4")
+    values = sig.reshape(n, bands, rows)
     with np.errstate(over="ignore"):
-        h = mix64(band.astype(np.uint64) * _GOLDEN + _GOLDEN)
-        for r in range(words.shape[1]):  # a loop over a band's rows, not over documents
-            h = mix64(h ^ words[:, r].astype(np.uint64))
-    return h
+        h = np.empty((n, bands), np.uint64)  # document-major like the signatures, made band-major once
+        h[:] = mix64(np.arange(bands, dtype=np.uint64) * _GOLDEN + _GOLDEN)
+        for r in range(rows):  # a loop over a band's rows, not over documents: a polynomial, mixed once
+            h += values[:, :, r]
+            h *= _GOLDEN
+    return mix64(h.T).ravel()
 
 
 def write_keys(task: PartTask) -> int:
@@ -177,10 +179,16 @@ def write_keys(task: PartTask) -> int:
         _write_partitioned(_path(scheme, "exact", task.number), columns, where, scheme.partitions)
     if scheme.near is not None:
         bands, rows, _ = scheme.near
-        band, row, values = band_rows(signature_rows(table, bands * rows), bands, rows)
-        where = (_band_hash(band, values) % p).astype(np.int64)
-        columns = {"band": pa.array(band), "key": _binary(values), "row": pa.array(row)}
-        _write_partitioned(_path(scheme, "near", task.number), columns, where, scheme.partitions)
+        # per (band, document) 14 bytes: the band's key, band and row (the values stay in the part)
+        key = band_keys(signature_rows(table, bands * rows), bands, rows)
+        columns = {
+            "band": pa.array(np.repeat(np.arange(bands, dtype=np.int16), n)),
+            "key": pa.array(key),
+            "row": pa.array(np.tile(np.arange(n, dtype=np.int32), bands)),
+        }
+        where = (key % p).astype(np.int64)
+        # each batch sorted by key: a group task merges sorted runs, not a shuffle
+        _write_partitioned(_path(scheme, "near", task.number), columns, where, scheme.partitions, np.argsort(key))
     return int(n)
 
 
@@ -261,31 +269,25 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
     none = np.zeros(0, np.int64), np.zeros((0, 2), np.int64)
     if len(parts) < 2:
         return none
-    width = 4 * rows + 2
-    band = table.column("band").to_numpy()
-    packed = np.empty((len(parts), width), np.uint8)
-    packed[:, :2] = band.astype(">i2").view(np.uint8).reshape(-1, 2)
-    packed[:, 2:] = _rows(table.column("key").combine_chunks(), 4 * rows)
-    # group by a 64-bit hash of the band's bytes (an integer sort), then check every row against
-    # its group's first: only if two different bands share a hash, group by the bytes themselves
-    _, first, bucket, sizes = np.unique(
-        _band_hash(band, packed[:, 2:]), return_index=True, return_inverse=True, return_counts=True
-    )
-    bucket = bucket.ravel()
-    if not np.array_equal(packed, packed[first[bucket]]):
-        _, bucket, sizes = np.unique(
-            packed.view(np.dtype((np.void, width))).ravel(), return_inverse=True, return_counts=True
-        )
-        bucket = bucket.ravel()
-    shared = sizes[bucket] > 1
+    key = table.column("key").to_numpy()
+    # every part's batch is sorted by key: a stable sort of the runs is a merge
+    order = np.argsort(key, kind="stable")
+    ordered = key[order]
+    repeat = ordered[1:] == ordered[:-1]
+    shared = np.zeros(len(key), bool)
+    shared[1:] = repeat
+    shared[:-1] |= repeat  # rows whose key another row has: most rows are alone and go no further
     if not shared.any():
         return none
-    ids = _ids(parts, table.column("row").to_numpy())[shared]
-    bucket = bucket[shared]
-    order = np.lexsort((ids, bucket))  # by bucket, then corpus order
-    ids, bucket = ids[order], bucket[order]
+    rows_at = order[shared]
+    ids = _ids(parts[rows_at], table.column("row").to_numpy()[rows_at])
+    band = table.column("band").to_numpy()[rows_at].astype(np.int64)
+    bucket = ordered[shared]
+    within = np.lexsort((ids, bucket))  # by key, then corpus order
+    ids, band, bucket = ids[within], band[within], bucket[within]
     members, where = np.unique(ids, return_inverse=True)
     sig = _signatures(scheme, members, bands * rows)[where.ravel()]
+    ids, sig, bucket = _exact_buckets(ids, sig, band, bucket, rows)
     starts, ends = _runs(bucket)
     small = ends - starts <= _SMALL_BUCKET
     found_repeats, found_pairs = _small_buckets(ids, sig, starts[small], ends[small] - starts[small], threshold)
@@ -296,6 +298,27 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
         found_pairs.append(pair)
     pairs = np.unique(np.concatenate(found_pairs), axis=0)
     return np.unique(np.concatenate(found_repeats)), pairs.reshape(-1, 2)
+
+
+def _exact_buckets(
+    ids: np.ndarray, sig: np.ndarray, band: np.ndarray, bucket: np.ndarray, rows: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Rows grouped by key (sorted by key, then id) checked against their band's values: when
+    every row equals its group's first on band and values (the keys did not collide), as they
+    are; else regrouped by band and values, without the rows then alone, sorted by group and id."""
+    values = np.take_along_axis(sig, band[:, None] * rows + np.arange(rows), axis=1)
+    first = np.flatnonzero(np.r_[True, bucket[1:] != bucket[:-1]])
+    lead = np.repeat(first, np.diff(np.r_[first, len(bucket)]))
+    if np.array_equal(values, values[lead]) and np.array_equal(band, band[lead]):
+        return ids, sig, bucket
+    packed = np.ascontiguousarray(np.column_stack([band.astype(np.uint32), values]).astype("<u4"))
+    _, exact, sizes = np.unique(
+        packed.view(np.dtype((np.void, 4 * (rows + 1)))).ravel(), return_inverse=True, return_counts=True
+    )
+    exact = exact.ravel()
+    kept = np.flatnonzero(sizes[exact] > 1)
+    order = kept[np.lexsort((ids[kept], exact[kept]))]
+    return ids[order], sig[order], exact[order].astype(np.uint64)
 
 
 _SMALL_BUCKET: Final = 8  # buckets up to this size are compared together, all pairs at once

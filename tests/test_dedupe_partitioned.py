@@ -152,3 +152,43 @@ def test_partition_count_grows_with_rows_only() -> None:
     assert partitions_for(_dedupe.ROWS_PER_PARTITION, 1) == 1
     assert partitions_for(_dedupe.ROWS_PER_PARTITION + 1, 1) == 2
     assert partitions_for(10**12, 16) == _dedupe.MAX_PARTITIONS
+
+
+@settings(max_examples=25, deadline=None)
+@given(st.integers(0, 2**32 - 1), st.sampled_from([(4, 2, 0.5), (2, 3, 0.75), (3, 2, 0.0)]))
+def test_partitioned_near_drops_hold_when_band_keys_collide(
+    tmp_path_factory: pytest.TempPathFactory, seed: int, near: tuple[int, int, float]
+) -> None:
+    """With band keys that collide (a key that keeps only a band's first value), the group tasks
+    still group by the band's values: the drops equal near_duplicate_keep over the whole corpus."""
+    rng = np.random.default_rng(seed)
+    bands, rows, _ = near
+    content, dedupe, sig = random_corpus(seed, bands * rows)
+    bounds = cut(len(content), rng)
+    fixed: list[int | None] = [None] * (len(bounds) - 1)
+    splits = SplitSpec(1.0, 0.0, 0.0)
+    tables = {
+        f"k{i}": pa.table(
+            {
+                "hash": fixed_binary(content[a:b]),
+                "dedupe": fixed_binary(dedupe[a:b]),
+                "near": fixed_binary(sig[a:b].astype("<u4").view(np.uint8).reshape(b - a, 4 * bands * rows)),
+            }
+        )
+        for i, (a, b) in enumerate(itertools.pairwise(bounds))
+    }
+    want_keep = whole_corpus(content, dedupe, sig, near, fixed, bounds, splits)[0]
+    original = _dedupe.band_keys
+
+    def colliding(s: np.ndarray, b: int, r: int) -> np.ndarray:
+        return np.ascontiguousarray(s.reshape(len(s), b, r)[:, :, 0].T).astype(np.uint64).ravel()
+
+    _dedupe.band_keys = colliding  # type: ignore[assignment]
+    try:
+        kept = run_phases(tmp_path_factory.mktemp("collide"), tables, fixed, splits, near, int(rng.integers(1, 4)))
+    finally:
+        _dedupe.band_keys = original  # type: ignore[assignment]
+    got = np.concatenate(
+        [keep_mask(kept.files[i], i, kept.documents[i]) for i in range(len(tables))] or [np.zeros(0, bool)]
+    )
+    assert got.tolist() == want_keep.tolist()

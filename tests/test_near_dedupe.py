@@ -134,3 +134,54 @@ def test_band_buckets_group_exactly_equal_bands_even_when_keys_collide(monkeypat
             same = buckets[:, b][:, None] == buckets[:, b][None, :]
             band = sig[:, 2 * b : 2 * b + 2]
             assert np.array_equal(same, (band[:, None, :] == band[None, :, :]).all(axis=2))
+
+
+def test_word_hashes_follow_their_polynomial_definition(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The prefix-sum word hash equals the polynomial over each word's bytes computed word by word
+    (sum of (byte + 1) * B**(j + 1) mod 2**64, plus the length, then mixed), also across slices."""
+    import seqpipe.clean.near_dedupe as module
+    from seqpipe.clean._quality import mix64
+
+    monkeypatch.setattr(module, "_SPAN", 7)  # many slices, words on both sides of every cut
+    texts = ["", "ferry", "pier ß tide", "", "x" * 40, "landing-stage", "", "ö"]
+    arr = pa.array(texts, pa.large_string())
+    expected = []
+    for t in texts:
+        acc = 0
+        for j, b in enumerate(t.encode("utf-8")):
+            acc = (acc + (b + 1) * pow(int(module._BYTE_BASE), j + 1, 2**64)) % 2**64
+        expected.append((acc + len(t.encode("utf-8"))) % 2**64)
+    got = module._byte_hashes(arr)
+    assert got.tolist() == mix64(np.array(expected, np.uint64)).tolist()
+
+
+def test_k_functions_blocks_give_each_function_minimum(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Signature value i is the top 32 bits of min(a_i * x + b_i mod 2**64) over the document's
+    shingle hashes x, also when blocks cut through documents (a tiny block size)."""
+    import seqpipe.clean.near_dedupe as module
+
+    rng = np.random.default_rng(4)
+    values = rng.integers(0, 2**63, size=300, dtype=np.int64).astype(np.uint64) * np.uint64(2) + np.uint64(1)
+    doc = np.sort(rng.choice(np.array([0, 1, 3, 4]), size=300, p=[0.05, 0.8, 0.1, 0.05]))  # document 2 has none
+    monkeypatch.setattr(module, "_BLOCK", 7)
+    sig = module.k_functions(values, doc, 5, 16, 9)
+    a = [int(m) for m in module.seeds(16, 9) | np.uint64(1)]
+    b = [int(o) for o in module.seeds(16, 9 ^ module._OFFSET_SEED)]
+    for d in range(5):
+        xs = [int(x) for x in values[doc == d]]
+        want = [min((a[i] * x + b[i]) % 2**64 for x in xs) >> 32 if xs else 0xFFFFFFFF for i in range(16)]
+        assert sig[d].tolist() == want
+
+
+def test_word_hashes_cut_words_as_the_quality_words_do() -> None:
+    """Words found over the bytes in place are the words _quality.words cuts (Unicode whitespace,
+    no word across documents, empty documents), with the same hash and document each."""
+    import seqpipe.clean.near_dedupe as module
+    from seqpipe.clean._quality import words
+
+    texts = ["", "  ", " pier", "tide ", "\u3000ferry\u00a0oar\u2028rope", "é  ü", "\n\nq\tr ", "", "x\u200by", "a b"]
+    arr = pa.array(texts, pa.large_string()).slice(1, 9)
+    pieces = words(arr)
+    got, doc = module._word_hashes(arr)
+    assert doc.tolist() == pieces.doc.tolist()
+    assert got.tolist() == module._byte_hashes(pieces.text).tolist()

@@ -10,14 +10,15 @@ candidates (probability ``1 - (1 - s**rows)**bands`` at similarity ``s``); a can
 estimated similarity (the share of equal values) reaches ``threshold`` with an earlier kept
 document is dropped, so the first document of each group in corpus order stays.
 
-Signatures are computed in the ingest tasks (numpy over the batch: each distinct word's bytes
-are hashed once, shingles combine word hashes, and each hash function is a multiply-add over all
-shingles; no Python call per word); only the comparison of colliding documents runs in the
-driver, one Python step per such document.
+Signatures are computed in the ingest tasks (numpy over the batch: word hashes come from prefix
+sums over the batch's bytes, shingles combine word hashes, and each hash function is a
+multiply-add over a block of shingles; no Python call per word); only the comparison of colliding
+documents runs in the driver, one Python step per such document.
 """
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass
 from typing import ClassVar, Final
 
@@ -25,7 +26,7 @@ import numpy as np
 import pyarrow as pa
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import mix64, utf8_buffers, words
+from seqpipe.clean._quality import mix64, space_bytes, utf8_buffers
 from seqpipe.clean.base import CleanStep, as_documents
 from seqpipe.errors import RecipeError
 
@@ -36,35 +37,80 @@ _EMPTY: Final = np.uint32(0xFFFFFFFF)
 
 
 def _byte_hashes(text: pa.Array) -> np.ndarray:
-    """A 64-bit hash of each value's UTF-8 bytes (a polynomial over the bytes, then mixed)."""
-    n = len(text)
+    """A 64-bit hash of each value's UTF-8 bytes (:func:`_span_hashes`)."""
     data, offsets = utf8_buffers(text)
-    if n == 0:
-        return np.zeros(0, np.uint64)
-    data = data.astype(np.uint64)
-    starts = offsets[:-1]
-    lengths = np.diff(offsets)
-    position = np.arange(len(data), dtype=np.int64) - np.repeat(starts, lengths)
-    powers = (
-        np.cumprod(np.full(int(lengths.max()), _BYTE_BASE, dtype=np.uint64)) if len(data) else np.ones(1, np.uint64)
-    )
-    with np.errstate(over="ignore"):
-        terms = (data + np.uint64(1)) * powers[position]
-        sums = np.zeros(n, np.uint64)
-        filled = lengths > 0
-        if len(data):
-            sums[filled] = np.add.reduceat(terms, starts[filled])
-    return mix64(sums + lengths.astype(np.uint64))
+    return _span_hashes(data, offsets[:-1], offsets[1:])
+
+
+def _span_hashes(data: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> np.ndarray:
+    """A 64-bit hash of the bytes b_0 .. b_{n-1} of each span ``data[start:end]`` (spans in
+    order, not overlapping): the polynomial sum((b_j + 1) * B**(j + 1)) mod 2**64 plus n, mixed.
+
+    Taken from prefix sums over the buffer: a span's polynomial is the difference of two prefix
+    sums divided by B**start, a multiplication by the inverse of B mod 2**64 (B is odd), so no
+    pass per span or per distinct span is needed.
+    """
+    n = len(starts)
+    out = np.zeros(n, np.uint64)
+    # spans of about _SPAN bytes at a time: the powers kept stay that long
+    cuts = np.unique(np.r_[0, np.searchsorted(starts, np.arange(0, int(ends[-1]) if n else 0, _SPAN)), n])
+    for lo, hi in zip(cuts[:-1].tolist(), cuts[1:].tolist(), strict=True):
+        base = int(starts[lo])
+        part = data[base : int(ends[hi - 1])]
+        prefix = np.zeros(len(part) + 1, np.uint64)
+        powers, inverse = _powers(len(part))
+        with np.errstate(over="ignore"):
+            np.cumsum((part + np.uint64(1)) * powers[1 : len(part) + 1], out=prefix[1:])
+            a, b = starts[lo:hi] - base, ends[lo:hi] - base
+            out[lo:hi] = (prefix[b] - prefix[a]) * inverse[a]
+    return mix64(out + (ends - starts).astype(np.uint64))
+
+
+_SPAN: Final = 1 << 18
+_BYTE_INVERSE: Final = np.uint64(pow(int(_BYTE_BASE), -1, 2**64))
+
+
+class _Powers(threading.local):
+    """Per thread, the powers of B and of its inverse mod 2**64 computed so far (they only grow)."""
+
+    def __init__(self) -> None:
+        self.powers: np.ndarray = np.ones(1, np.uint64)
+        self.inverse: np.ndarray = np.ones(1, np.uint64)
+
+
+_POWERS: Final = _Powers()
+
+
+def _powers(count: int) -> tuple[np.ndarray, np.ndarray]:
+    """B**j and B**-j mod 2**64 for j in 0 .. count (at least: longer arrays are reused; as
+    slices are at most _SPAN bytes but for one longer value, these stay about _SPAN long)."""
+    kept = _POWERS
+    if len(kept.powers) <= count:
+        size = max(count + 1, _SPAN + 1)
+        with np.errstate(over="ignore"):
+            kept.powers = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_BASE, np.uint64)])
+            kept.inverse = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_INVERSE, np.uint64)])
+    return kept.powers, kept.inverse
 
 
 def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
-    """A 64-bit hash of each word's UTF-8 bytes and the document of each word: each distinct
-    word of the batch is hashed once (numpy over its bytes), then looked up per word."""
-    pieces = words(docs)
-    if len(pieces.text) == 0:
-        return np.zeros(0, np.uint64), pieces.doc
-    distinct, codes = pieces.encoded()
-    return _byte_hashes(distinct)[codes], pieces.doc
+    """A 64-bit hash of each word's UTF-8 bytes (:func:`_span_hashes`) and the document of each
+    word. Words are the runs of bytes outside Unicode whitespace within a document, as
+    ``_quality.words`` cuts them; found here over the bytes in place (no word array is built)."""
+    data, offsets = utf8_buffers(docs)
+    if not len(data):
+        return np.zeros(0, np.uint64), np.zeros(0, np.int64)
+    inside = ~space_bytes(docs)
+    start = inside.copy()
+    start[1:] &= ~inside[:-1]
+    end = inside.copy()
+    end[:-1] &= ~inside[1:]
+    filled = offsets[:-1] < offsets[1:]
+    first, last = offsets[:-1][filled], offsets[1:][filled] - 1  # a word never spans two documents
+    start[first] = inside[first]
+    end[last] = inside[last]
+    starts = np.flatnonzero(start)
+    return _span_hashes(data, starts, np.flatnonzero(end) + 1), np.searchsorted(offsets, starts, side="right") - 1
 
 
 def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
@@ -81,12 +127,18 @@ def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
     count = np.maximum(run_len - size + 1, 1)  # shingles per document that has words
     starts = np.repeat(run_start, count) + (np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count, count))
     width = np.minimum(np.repeat(run_len, count), size)
-    acc = np.zeros(len(starts), dtype=np.uint64)
+    padded = np.r_[word, np.zeros(size, np.uint64)]  # a short document's window reads past its end
+    acc = padded[starts]
     with np.errstate(over="ignore"):
-        for k in range(size):  # a loop over shingle positions, not over words
-            inside = k < width
-            value = word[np.minimum(starts + k, n - 1)]
-            acc = np.where(inside, acc * _BYTE_BASE + value, acc)
+        for k in range(1, size):  # a loop over shingle positions, not over words
+            acc *= _BYTE_BASE
+            acc += padded[starts + k]
+        short = np.flatnonzero(width < size)
+        if len(short):  # documents with fewer words than a shingle: Horner over their words only
+            part = np.zeros(len(short), np.uint64)
+            for k in range(size):
+                part = np.where(k < width[short], part * _BYTE_BASE + padded[starts[short] + k], part)
+            acc[short] = part
     return mix64(acc + width.astype(np.uint64)), doc[starts]
 
 
@@ -98,33 +150,50 @@ def seeds(count: int, seed: int) -> np.ndarray:
 
 
 def signatures(docs: pa.Array, *, shingle: int, hashes: int, seed: int) -> np.ndarray:
-    """(documents, hashes) uint32 MinHash signatures; a document without words gets all 0xFFFFFFFF.
+    """(documents, hashes) uint32 MinHash signatures; a document without words gets all 0xFFFFFFFF
+    (:func:`k_functions` over the documents' shingle hashes)."""
+    docs = as_documents(docs)
+    values, doc = _shingle_hashes(docs, shingle)
+    return k_functions(values, doc, len(docs), hashes, seed)
+
+
+def k_functions(values: np.ndarray, doc: np.ndarray, documents: int, hashes: int, seed: int) -> np.ndarray:
+    """Signatures from ``hashes`` seeded hash functions, the minimum of each over a document's
+    shingle hashes ``values`` (``doc``: each one's document, non-decreasing).
 
     Hash function i maps a shingle's 64-bit hash x to the top 32 bits of ``a_i * x + b_i``
     (mod 2**64; ``a_i`` odd, both from the seed): multiply-add-shift hashing (Dietzfelbinger,
     Hagerup, Katajainen and Penttonen 1997, "A reliable randomized algorithm for the
     closest-pair problem"). The top bits are a non-decreasing function of the 64-bit value, so
     the minimum is taken over the 64-bit values and shifted once per document: two array passes
-    per hash function over the batch's shingles.
+    per hash function over the batch's shingles, a block of shingles at a time.
     """
-    docs = as_documents(docs)
-    values, doc = _shingle_hashes(docs, shingle)
-    out = np.full((len(docs), hashes), _EMPTY, dtype=np.uint32)
+    out = np.full((documents, hashes), _EMPTY, dtype=np.uint32)
     if len(values) == 0:
         return out
-    present = np.unique(doc)
-    starts = np.searchsorted(doc, present)
-    multipliers = seeds(hashes, seed) | np.uint64(1)
-    offsets = seeds(hashes, seed ^ _OFFSET_SEED)
-    mixed = np.empty_like(values)
-    lowest = np.empty((hashes, len(present)), dtype=np.uint64)
+    first = np.flatnonzero(np.r_[True, doc[1:] != doc[:-1]])  # each present document's first shingle
+    multipliers = (seeds(hashes, seed) | np.uint64(1))[:, None]
+    offsets = seeds(hashes, seed ^ _OFFSET_SEED)[:, None]
+    lowest = np.full((hashes, len(first)), np.iinfo(np.uint64).max, dtype=np.uint64)
+    # blocks of _BLOCK shingles: every hash function over one block at a time keeps the
+    # (hashes, block) products in one reused buffer whatever the documents' lengths; a document
+    # that spans blocks takes the minimum of its pieces
+    buffer = np.empty((hashes, min(_BLOCK, len(values))), np.uint64)
     with np.errstate(over="ignore"):
-        for i in range(hashes):
-            np.multiply(values, multipliers[i], out=mixed)
-            np.add(mixed, offsets[i], out=mixed)
-            np.minimum.reduceat(mixed, starts, out=lowest[i])
-    out[present] = (lowest >> np.uint64(32)).astype(np.uint32).T
+        for a in range(0, len(values), _BLOCK):
+            b = min(a + _BLOCK, len(values))
+            lo = int(np.searchsorted(first, a, side="right")) - 1  # the document holding shingle a
+            hi = int(np.searchsorted(first, b, side="left"))  # and every document starting before b
+            mixed = buffer[:, : b - a]
+            np.multiply(multipliers, values[a:b], out=mixed)
+            mixed += offsets
+            piece = np.minimum.reduceat(mixed, np.maximum(first[lo:hi] - a, 0), axis=1)
+            np.minimum(lowest[:, lo:hi], piece, out=lowest[:, lo:hi])
+    out[doc[first]] = (lowest >> np.uint64(32)).astype(np.uint32).T
     return out
+
+
+_BLOCK: Final = 1 << 13
 
 
 def band_buckets(sig: np.ndarray, bands: int, rows: int) -> np.ndarray:
