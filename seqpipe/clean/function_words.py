@@ -10,7 +10,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_int, parse_str
-from seqpipe.clean._quality import QualityFilter, words
+from seqpipe.clean._quality import QualityFilter
+from seqpipe.clean._word_table import word_table
 
 # The English list is the one of Rae et al. 2021, "Scaling Language Models: Methods, Analysis &
 # Insights from Training Gopher", appendix A (from memory). Other languages need a list chosen
@@ -42,12 +43,12 @@ class FunctionWords(QualityFilter):
 
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: occurrences of the language's function words."""
-        pieces = words(docs)
-        distinct, codes = pieces.encoded()  # each distinct word is judged once
+        table = word_table(docs)
+        distinct, codes = table.distinct()  # each distinct word is judged once
         bare = pc.utf8_trim(pc.utf8_lower(distinct), characters="\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d")
         hit = pc.is_in(bare, value_set=pa.array(FUNCTION_WORDS[self.language], pa.large_string()))
-        flags = np.asarray(hit.to_numpy(zero_copy_only=False), dtype=np.float64)[codes]
-        return pieces.per_document(flags).astype(np.int64)
+        flags = np.asarray(hit.to_numpy(zero_copy_only=False), dtype=np.int64)[codes]
+        return table.per_document(flags)
 
     def keep(self, docs: pa.Array) -> np.ndarray:
         """Boolean mask: True for each document ``apply`` keeps."""

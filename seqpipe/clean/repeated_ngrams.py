@@ -10,24 +10,26 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import Pieces, QualityFilter, share, words
+from seqpipe.clean._quality import QualityFilter, share
+from seqpipe.clean._word_table import word_table
 
 _MULTIPLIER: Final = np.uint64(0x9E3779B97F4A7C15)  # odd, with bits spread over the whole word
 
 
-def covered_by_repeats(pieces: Pieces, n: int) -> np.ndarray:
-    """Per word: True when it lies inside a word n-gram that occurs more than once in its document."""
-    m = len(pieces.text)
+def covered_by_repeats(doc: np.ndarray, codes: np.ndarray, n: int) -> np.ndarray:
+    """Per word (document ``doc[i]``, exact code ``codes[i]``, equal for equal words): True when it
+    lies inside a word n-gram that occurs more than once in its document."""
+    m = len(codes)
     covered = np.zeros(m, dtype=bool)
     if m < n:
         return covered
-    codes = pieces.encoded()[1]
+    codes = np.ascontiguousarray(codes).view(np.int64)  # the same bits: equal exactly when the codes are
     windows = m - n + 1  # n-grams starting at every word, some across two documents
-    starts = np.flatnonzero(pieces.doc[:windows] == pieces.doc[n - 1 :])  # docs are contiguous
+    starts = np.flatnonzero(doc[:windows] == doc[n - 1 :])  # docs are contiguous
     if not len(starts):
         return covered
-    keys = _window_keys(pieces.doc, codes, n)[starts]
-    dup_starts = starts[_repeated_rows(pieces.doc[starts], codes, starts, n, keys)]
+    keys = _window_keys(doc, codes, n)[starts]
+    dup_starts = starts[_repeated_rows(doc[starts], codes, starts, n, keys)]
     # +1 where a repeated n-gram starts, -1 after it ends
     edges = np.bincount(dup_starts, minlength=m + 1) - np.bincount(dup_starts + n, minlength=m + 1)
     covered = np.cumsum(edges[:m]) > 0
@@ -38,7 +40,7 @@ def _window_keys(doc: np.ndarray, codes: np.ndarray, n: int) -> np.ndarray:
     """A 64-bit polynomial key of (document of the first word, the n word codes) for the n-gram
     starting at every word that has n - 1 words after it (slices of the code array, no gather)."""
     windows = len(codes) - n + 1
-    words = np.ascontiguousarray(codes, dtype=np.int64).view(np.uint64)  # codes are >= 0
+    words = np.ascontiguousarray(codes).view(np.uint64)
     with np.errstate(over="ignore"):
         h = doc[:windows].astype(np.uint64)
         for k in range(n):
@@ -102,10 +104,9 @@ class RepeatedNgrams(QualityFilter):
 
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: characters in repeated n-grams / word characters."""
-        pieces = words(docs)
-        lengths = pieces.lengths().astype(np.float64)
-        inside = pieces.per_document(np.where(covered_by_repeats(pieces, self.n), lengths, 0.0))
-        return share(inside, pieces.per_document(lengths))
+        table = word_table(docs)
+        inside = table.per_document(np.where(covered_by_repeats(table.doc, table.codes, self.n), table.chars, 0))
+        return share(inside.astype(np.float64), table.per_document(table.chars).astype(np.float64))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
         """Boolean mask: True for each document ``apply`` keeps."""
