@@ -264,3 +264,27 @@ def test_words_reused_after_a_filter_equal_a_fresh_cut(docs: list[str], keep: li
         assert got.doc.tolist() == fresh.doc.tolist() and got.documents == fresh.documents
         distinct, codes = got.encoded()
         assert [distinct[int(c)].as_py() for c in codes] == fresh.text.to_pylist()
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
+        st.text(alphabet=st.sampled_from(list("ab \n\x0b\x1c\x85\xa0\u2003\u3000\x00é茶😀")), max_size=40),
+        max_size=6,
+    )
+)
+def test_word_table_codes_are_equal_exactly_for_equal_words(docs: list[str]) -> None:
+    """The word table cuts the words str.split() cuts (code points counted per word) and gives two
+    words the same code exactly when they are the same string, long words and NUL bytes included."""
+    from seqpipe.clean._word_table import word_table
+
+    table = word_table(arr(docs))
+    want = [w for d in docs for w in d.split()]
+    got = [bytes(table.data[a:b]).decode("utf-8") for a, b in zip(table.starts, table.ends, strict=True)]
+    assert got == want
+    assert table.doc.tolist() == [i for i, d in enumerate(docs) for _ in d.split()]
+    assert table.chars.tolist() == [len(w) for w in want]
+    codes = table.codes.tolist()
+    assert all((codes[i] == codes[j]) == (want[i] == want[j]) for i in range(len(want)) for j in range(len(want)))
+    distinct, index = table.distinct()
+    assert [distinct[int(i)].as_py() for i in index] == want
