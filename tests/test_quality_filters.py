@@ -288,3 +288,17 @@ def test_word_table_codes_are_equal_exactly_for_equal_words(docs: list[str]) -> 
     assert all((codes[i] == codes[j]) == (want[i] == want[j]) for i in range(len(want)) for j in range(len(want)))
     distinct, index = table.distinct()
     assert [distinct[int(i)].as_py() for i in index] == want
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    docs=st.lists(
+        st.text(alphabet=st.sampled_from(list("theTHEaofAndw \n\"'(.,-\u201c\u201dé")), max_size=50), max_size=6
+    )
+)
+def test_function_words_equal_a_per_word_reference(docs: list[str]) -> None:
+    """Function words counted over packed codes (short ASCII words), after stripping punctuation at
+    both ends, and per distinct word (longer or non-ASCII words) equal a per-word Python count."""
+    strip = "\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d"
+    want = [sum(w.lower().strip(strip) in FUNCTION_WORDS["en"] for w in d.split()) for d in docs]
+    assert FunctionWords().measure(arr(docs)).tolist() == want

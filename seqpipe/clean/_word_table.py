@@ -12,6 +12,7 @@ table.
 from __future__ import annotations
 
 import threading
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Final
 
@@ -19,7 +20,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from seqpipe.clean._quality import space_bytes, utf8_buffers, wide_code_points
+from seqpipe.clean._quality import Wide, space_bytes, utf8_buffers, wide_code_points
 from seqpipe.clean.base import as_documents
 
 _PACKED: Final = 7  # bytes a code holds; the top byte holds the length (1-7), so no two packings meet
@@ -40,6 +41,8 @@ class WordTable:
     first: np.ndarray  # int64, documents + 1 word offsets
     codes: np.ndarray  # uint64, equal exactly for equal words
     chars: np.ndarray  # int64, code points per word
+    wide: Wide  # the batch's code points beyond ASCII
+    wide_word: np.ndarray  # int64, per code point of ``wide``: the word holding it, or -1 (whitespace)
 
     @property
     def documents(self) -> int:
@@ -58,13 +61,32 @@ class WordTable:
         """Words per document."""
         return np.diff(self.first)
 
-    def distinct(self) -> tuple[pa.Array, np.ndarray]:
-        """The distinct words (``large_string``) and, per word, its index among them."""
-        encoded = pc.dictionary_encode(pa.array(self.codes, pa.uint64()))
+    def holding_wide(self, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
+        """Per word: whether it holds a code point beyond ASCII for which ``kernel`` (a pyarrow
+        predicate over one-character strings, asked once per distinct code point) is True."""
+        out = np.zeros(len(self.codes), dtype=bool)
+        if len(self.wide.at):
+            word = self.wide_word[self.wide.classify(kernel) & (self.wide_word >= 0)]
+            out[word] = True
+        return out
+
+    def distinct(self, which: np.ndarray | None = None) -> tuple[pa.Array, np.ndarray]:
+        """The distinct words (``large_string``) among the words ``which`` (indices; all words
+        when None) and, per such word, its index among them."""
+        chosen = np.arange(len(self.codes), dtype=np.int64) if which is None else which
+        encoded = pc.dictionary_encode(pa.array(self.codes[chosen], pa.uint64()))
         index = np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64)
         first_seen = np.empty(len(encoded.dictionary), dtype=np.int64)
-        first_seen[index[::-1]] = np.arange(len(index) - 1, -1, -1, dtype=np.int64)  # the first word of each
+        first_seen[index[::-1]] = chosen[::-1]  # the first word of each
         return spans(self.data, self.starts[first_seen], self.ends[first_seen]), index
+
+
+def pack_ascii(words: list[str]) -> np.ndarray:
+    """The codes :class:`WordTable` gives the ASCII words ``words`` of one to seven bytes."""
+    return np.array(
+        [int.from_bytes(w.encode("ascii"), "little") | (len(w) << 56) for w in words if 1 <= len(w) <= _PACKED],
+        dtype=np.uint64,
+    )
 
 
 def spans(data: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> pa.Array:
@@ -132,24 +154,28 @@ def _codes(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarra
     return codes
 
 
-def _chars(docs: pa.Array, starts: np.ndarray, ends: np.ndarray) -> np.ndarray:
+def _chars(wide: Wide, starts: np.ndarray, ends: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Per word: its code points, that is its bytes less those after the first of each code
-    point beyond ASCII (few in most text)."""
+    point beyond ASCII (few in most text); per such code point, the word holding it or -1."""
     chars: np.ndarray = ends - starts
-    wide = wide_code_points(docs)
+    word = np.full(len(wide.at), -1, dtype=np.int64)
     if len(wide.at) and len(starts):
         word = np.searchsorted(starts, wide.at, side="right") - 1
         inside = (word >= 0) & (wide.at < ends[np.maximum(word, 0)])  # not a wide whitespace character
+        word[~inside] = -1
         chars = chars - np.bincount(word[inside], weights=wide.size[inside] - 1, minlength=len(starts)).astype(np.int64)
-    return chars
+    return chars, word
 
 
 def _cut(docs: pa.Array) -> WordTable:
     data, offsets = utf8_buffers(docs)
+    wide = wide_code_points(docs)
     if not len(data):
         none = np.zeros(0, np.int64)
-        return WordTable(data, none, none, none, np.zeros(len(docs) + 1, np.int64), np.zeros(0, np.uint64), none)
+        first = np.zeros(len(docs) + 1, np.int64)
+        return WordTable(data, none, none, none, first, np.zeros(0, np.uint64), none, wide, none)
     starts, ends = _bounds(docs, data, offsets)
     first = np.searchsorted(starts, offsets).astype(np.int64)
     doc = np.repeat(np.arange(len(docs), dtype=np.int64), np.diff(first))
-    return WordTable(data, starts, ends, doc, first, _codes(data, starts, ends - starts), _chars(docs, starts, ends))
+    chars, wide_word = _chars(wide, starts, ends)
+    return WordTable(data, starts, ends, doc, first, _codes(data, starts, ends - starts), chars, wide, wide_word)
