@@ -302,3 +302,18 @@ def test_function_words_equal_a_per_word_reference(docs: list[str]) -> None:
     strip = "\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d"
     want = [sum(w.lower().strip(strip) in FUNCTION_WORDS["en"] for w in d.split()) for d in docs]
     assert FunctionWords().measure(arr(docs)).tolist() == want
+
+
+@settings(max_examples=100, deadline=None)
+@given(points=st.lists(st.integers(0x80, 0x2FFF), max_size=40))
+def test_kept_code_point_answers_equal_asking_again(points: list[int]) -> None:
+    """Answers about code points beyond ASCII kept from earlier batches equal pyarrow's answer asked afresh."""
+    import pyarrow.compute as pc
+
+    from seqpipe.clean._quality import _asked
+
+    distinct = np.unique(np.array(points, dtype=np.int64))
+    fresh = pc.utf8_is_space(pa.array([chr(c) for c in distinct.tolist()], pa.large_string()))
+    want = np.asarray(fresh.to_numpy(zero_copy_only=False), dtype=bool).tolist()
+    assert _asked(distinct, pc.utf8_is_space).tolist() == want
+    assert _asked(distinct, pc.utf8_is_space).tolist() == want

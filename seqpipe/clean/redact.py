@@ -103,10 +103,12 @@ _HINTS: Final[dict[str, str]] = {
     "phone": r"\+[0-9]|\([0-9]|[0-9][ .\-][0-9]{2,4}[ .\-][0-9]",
 }
 
-# Every IP match starts with a hexadecimal digit or ":", every phone match with a digit, "+" or
-# "(": a lookahead for that first character, put before the patterns' own lookbehind (lookarounds
-# at one position commute), lets the engine pass over other positions at once. It changes no match.
-_FIRST: Final[dict[str, str]] = {"ip": "(?=[0-9A-Fa-f:])", "phone": "(?=[0-9+(])"}
+# Every IP match starts with ":" or with one to four hexadecimal digits and then ":" or "." (an
+# IPv4 octet, or an IPv6 group), every phone match with a digit, "+" or "(": a lookahead for that
+# start, put before the patterns' own lookbehind (lookarounds at one position commute), lets the
+# engine pass over other positions (such as the hexadecimal letters of words) at once. It changes
+# no match.
+_FIRST: Final[dict[str, str]] = {"ip": "(?=[0-9A-Fa-f]{1,4}[:.]|:)", "phone": "(?=[0-9+(])"}
 
 _COMPILED: Final[dict[str, Any]] = {
     "email": regex.compile(_EMAIL),
