@@ -192,11 +192,11 @@ def test_word_measures_are_the_same_on_every_call() -> None:
 
 
 def test_repeated_ngrams_is_exact_under_hash_collisions(monkeypatch: pytest.MonkeyPatch) -> None:
-    """With a key that collides for every n-gram ending in the same word, the measure still
+    """With a key that collides for every n-gram, the measure still
     equals the Python reference: candidates are compared word by word."""
     import seqpipe.clean.repeated_ngrams as module
 
-    monkeypatch.setattr(module, "_MULTIPLIER", np.uint64(0))  # every row's key is its last word
+    monkeypatch.setattr(module, "_MULTIPLIER", np.uint64(0))  # every n-gram gets the key 0
     docs = ["a b c a b c d", "x y z x y", "one two three four", "a b c a b c d"]
     for n in (1, 2, 3):
         assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])

@@ -24,48 +24,46 @@ def covered_by_repeats(doc: np.ndarray, codes: np.ndarray, n: int) -> np.ndarray
     if m < n:
         return covered
     codes = np.ascontiguousarray(codes).view(np.int64)  # the same bits: equal exactly when the codes are
-    windows = m - n + 1  # n-grams starting at every word, some across two documents
-    starts = np.flatnonzero(doc[:windows] == doc[n - 1 :])  # docs are contiguous
-    if not len(starts):
-        return covered
-    keys = _window_keys(doc, codes, n)[starts]
-    dup_starts = starts[_repeated_rows(doc[starts], codes, starts, n, keys)]
-    # +1 where a repeated n-gram starts, -1 after it ends
-    edges = np.bincount(dup_starts, minlength=m + 1) - np.bincount(dup_starts + n, minlength=m + 1)
-    covered = np.cumsum(edges[:m]) > 0
+    # n-grams starting at every word, some across two documents: those are left out of the
+    # candidates (a key they share with another n-gram only makes that one a candidate)
+    candidates = _shared_keys(_window_keys(doc, codes, n))
+    candidates = candidates[doc[candidates] == doc[candidates + n - 1]]  # docs are contiguous
+    repeated = candidates[_repeated_rows(doc, codes, candidates, n)]
+    covered[(repeated[:, None] + np.arange(n)).ravel()] = True  # the words of each repeated n-gram
     return covered
 
 
 def _window_keys(doc: np.ndarray, codes: np.ndarray, n: int) -> np.ndarray:
     """A 64-bit polynomial key of (document of the first word, the n word codes) for the n-gram
-    starting at every word that has n - 1 words after it (slices of the code array, no gather)."""
+    starting at every word that has n - 1 words after it (slices of the code array, no gather);
+    a last multiplication spreads the last word's bits (its length sits in its top byte)."""
     windows = len(codes) - n + 1
     words = np.ascontiguousarray(codes).view(np.uint64)
     with np.errstate(over="ignore"):
         h = doc[:windows].astype(np.uint64)
         for k in range(n):
             h = h * _MULTIPLIER + words[k : k + windows]
-    return h
+        out: np.ndarray = h * _MULTIPLIER
+    return out
 
 
-def _repeated_rows(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: int, keys: np.ndarray) -> np.ndarray:
-    """Per n-gram (document ``doc[i]``, words ``codes[starts[i]:starts[i] + n]``, key ``keys[i]``):
-    True when an equal n-gram of the same document exists. Equal rows have equal keys and most
-    rows of real text have a key of their own, so only the rows whose key repeats are compared
-    exactly: a collision costs time, never a result."""
-    out = np.zeros(len(keys), dtype=bool)
-    candidates = _shared_keys(keys)
-    if not len(candidates):
+def _repeated_rows(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: int) -> np.ndarray:
+    """Per n-gram starting at word ``starts[i]`` (document ``doc[starts[i]]``, words
+    ``codes[starts[i]:starts[i] + n]``): True when an equal n-gram of the same document is among
+    them. The candidates are the n-grams whose key repeats (equal n-grams have equal keys and
+    most n-grams of real text have a key of their own); they are compared exactly here, so a
+    collision costs time, never a result."""
+    out = np.zeros(len(starts), dtype=bool)
+    if not len(starts):
         return out
-    at = starts[candidates]
-    rows = np.stack([doc[candidates], *(codes[at + k] for k in range(n))], axis=1)
+    rows = np.stack([doc[starts], *(codes[starts + k] for k in range(n))], axis=1)
     order = np.lexsort(rows.T[::-1])  # equal rows end up next to each other
     ordered = rows[order]
     same = (ordered[1:] == ordered[:-1]).all(axis=1)
     twice = np.zeros(len(order), dtype=bool)
     twice[1:] |= same
     twice[:-1] |= same
-    out[candidates[order]] = twice
+    out[order] = twice
     return out
 
 
