@@ -67,13 +67,24 @@ def _repeated_rows(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: in
     return out
 
 
+def _bucket_bits(keys: int) -> int:
+    """Bits of a bucket number for ``keys`` keys: about four buckets per key, within 2**10-2**24."""
+    return min(max(keys.bit_length() + 2, 10), 24)
+
+
 def _shared_keys(h: np.ndarray) -> np.ndarray:
     """Indices of the keys of ``h`` that occur more than once, in order. A count per bucket of the
-    keys' top bits (about four buckets per key) rules out most keys at once; Arrow's hash table
-    then numbers the keys left (no sort)."""
-    bits = min(max(len(h).bit_length() + 2, 10), 24)
+    keys' top bits (about four buckets per key) rules out most keys at once, a count per bucket
+    of the low bits of the keys left rules out most of the rest; Arrow's hash table then numbers
+    the few keys left (no sort). Equal keys share every bucket, so no repeated key is lost."""
+    bits = _bucket_bits(len(h))
     buckets = (h >> np.uint64(64 - bits)).astype(np.intp)
     left = np.flatnonzero(np.bincount(buckets, minlength=1 << bits)[buckets] > 1)
+    if not len(left):
+        return left
+    bits = _bucket_bits(len(left))
+    buckets = (h[left] & np.uint64((1 << bits) - 1)).astype(np.intp)
+    left = left[np.bincount(buckets, minlength=1 << bits)[buckets] > 1]
     if not len(left):
         return left
     numbered = np.asarray(pc.dictionary_encode(pa.array(h[left])).indices.to_numpy(zero_copy_only=False), np.int64)
