@@ -74,15 +74,14 @@ def _function_word_flags(table: WordTable, language: str) -> np.ndarray:
     The rest cannot shrink to a function word's length or to ASCII."""
     words = FUNCTION_WORDS[language]
     codes, sizes = table.codes, table.ends - table.starts
-    flags = np.zeros(len(codes), dtype=np.int64)
     if not len(codes):
-        return flags
+        return np.zeros(0, dtype=np.int64)
     ascii_words = table.chars == sizes
     edge = np.take(_ASCII_TRIMMED, table.data[table.starts]) | np.take(_ASCII_TRIMMED, table.data[table.ends - 1])
     wanted = pack_ascii([w for w in words if w.isascii() and len(w) <= 7])
     short = ascii_words & (sizes <= 7)
-    plain = np.flatnonzero(short & ~edge)  # nothing to strip
-    flags[plain] = np.isin(_ascii_lower(codes[plain]), wanted)
+    # every code lower-cased as if it were a short ASCII word; kept for those with nothing to strip
+    flags: np.ndarray = (np.isin(_ascii_lower(codes), wanted) & short & ~edge).astype(np.int64)
     stripped = np.flatnonzero(short & edge)
     flags[stripped] = np.isin(_ascii_lower(_trimmed_packed(codes[stripped], sizes[stripped])), wanted)
     maybe = ~ascii_words
