@@ -70,7 +70,7 @@ _ANSWERS_MAX: Final = 1 << 16  # code points kept per kernel; past that, new one
 
 
 def _asked(distinct: np.ndarray, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
-    """Per code point of ``distinct`` (sorted, distinct): ``kernel``'s answer (a pyarrow predicate
+    """Per code point of ``distinct`` (distinct, in any order): ``kernel``'s answer (a pyarrow predicate
     over one-character strings), so the answer is the library's own for every character. Answers
     are kept per kernel, so each code point is asked once in a process, not once per batch."""
     known, answers = _ANSWERS.get(kernel, (np.zeros(0, np.int64), np.zeros(0, bool)))
@@ -93,7 +93,7 @@ def _asked(distinct: np.ndarray, kernel: Callable[[pa.Array], pa.Array]) -> np.n
 @dataclass(frozen=True, slots=True)
 class Wide:
     """A batch's code points beyond ASCII: the position of each one's first byte, its size in
-    bytes, and the distinct code points with, per position, its index among them."""
+    bytes, and the distinct code points (in no set order) with, per position, its index among them."""
 
     at: np.ndarray
     size: np.ndarray
@@ -126,8 +126,10 @@ def wide_code_points(docs: pa.Array) -> Wide:
     at = np.flatnonzero(data >= 0xC0)
     first = data[at]
     size = np.where(first >= 0xF0, 4, np.where(first >= 0xE0, 3, 2))
-    distinct, inverse = np.unique(code_points(data, at), return_inverse=True)
-    wide = Wide(at, size, distinct, inverse.ravel())
+    # Arrow's hash table: a batch holds few distinct code points among many positions (no sort)
+    encoded = pc.dictionary_encode(pa.array(code_points(data, at), pa.int64()))
+    distinct = np.asarray(encoded.dictionary.to_numpy(zero_copy_only=False), dtype=np.int64)
+    wide = Wide(at, size, distinct, np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64))
     last.docs, last.wide = docs, wide
     return wide
 
