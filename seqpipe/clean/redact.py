@@ -141,6 +141,25 @@ def _phone_ok(text: str) -> bool:
 _CHECKS: Final[dict[str, Callable[[str], bool]]] = {"card": _card_digits_ok, "phone": _phone_ok}
 
 
+def _email_subn(text: str, placeholder: str) -> tuple[str, int]:
+    """``_COMPILED["email"].subn(placeholder, text)``, searching from at most 64 characters before
+    the next "@" instead of from where the last match ended: a match starting at ``p`` has its
+    "@" 1 to 64 characters after ``p`` (the local part's lookahead), so no match starts earlier,
+    and the lookbehind still sees the text before the search start."""
+    pattern = _COMPILED["email"]
+    pieces: list[str] = []
+    last = 0
+    at = text.find("@")
+    while at >= 0:
+        m = pattern.search(text, max(last, at - 64))
+        if m is None:
+            break
+        pieces += (text[last : m.start()], placeholder)
+        last = m.end()
+        at = text.find("@", last)
+    return "".join(pieces) + text[last:], len(pieces) // 2
+
+
 def redact_text(text: str, targets: tuple[str, ...] = TARGETS) -> tuple[str, dict[str, int]]:
     """``text`` with each target replaced by its placeholder, and the count per target.
 
@@ -153,6 +172,10 @@ def redact_text(text: str, targets: tuple[str, ...] = TARGETS) -> tuple[str, dic
             continue
         placeholder = PLACEHOLDERS[target]
         check = _CHECKS.get(target)
+        if target == "email":
+            text, n = _email_subn(text, placeholder)
+            counts[target] += n
+            continue
         if check is None:
             text, n = _COMPILED[target].subn(placeholder, text)
             counts[target] += n
