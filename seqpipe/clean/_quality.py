@@ -143,19 +143,17 @@ _ASCII_SPACE[:128] = np.asarray(
 
 
 # Per byte value, one bit per class, so one table lookup over a batch's bytes serves every
-# byte-level measure: SPACE, whitespace below U+0080 as _ASCII_SPACE; RE2_SPACE, RE2's \\s, which
-# is only tab, line feed, form feed, carriage return and space (RE2 syntax reference, "Perl
-# classes"); LETTER, an ASCII letter (what \\p{L} matches below U+0080); CONTINUATION, a UTF-8
-# continuation byte (not the first byte of a code point).
+# byte-level measure: SPACE, whitespace below U+0080 as _ASCII_SPACE; INVISIBLE, a byte that is
+# not the first byte of a visible code point: RE2's \\s (only tab, line feed, form feed, carriage
+# return and space; RE2 syntax reference, "Perl classes") or a UTF-8 continuation byte; LETTER,
+# an ASCII letter (what \\p{L} matches below U+0080).
 SPACE: Final = 1
-RE2_SPACE: Final = 2
+INVISIBLE: Final = 2
 LETTER: Final = 4
-CONTINUATION: Final = 8
 _CLASSES: Final = (
     _ASCII_SPACE.astype(np.uint8) * SPACE
-    + np.isin(np.arange(256), [9, 10, 12, 13, 32]).astype(np.uint8) * RE2_SPACE
+    + (np.isin(np.arange(256), [9, 10, 12, 13, 32]) | ((np.arange(256) & 0xC0) == 0x80)).astype(np.uint8) * INVISIBLE
     + np.array([chr(b).isascii() and chr(b).isalpha() for b in range(256)], dtype=np.uint8) * LETTER
-    + ((np.arange(256) & 0xC0) == 0x80).astype(np.uint8) * CONTINUATION
 ).astype(np.uint8)
 
 

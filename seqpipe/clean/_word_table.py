@@ -124,17 +124,19 @@ def word_table(docs: pa.Array) -> WordTable:
 def _bounds(docs: pa.Array, data: np.ndarray, offsets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Start and end byte of every word: a word starts at a non-space byte after a space byte or
     at a document's start, and ends before a space byte or at a document's end."""
-    inside = ~space_bytes(docs)
-    before = np.zeros(len(data), dtype=bool)  # is the byte before inside the same word run?
-    before[1:] = inside[:-1]
-    after = np.zeros(len(data), dtype=bool)
-    after[:-1] = inside[1:]
-    before[offsets[:-1][offsets[:-1] < len(data)]] = False  # no word spans two documents
-    filled = offsets[1:] > offsets[:-1]
-    after[offsets[1:][filled] - 1] = False
-    starts = np.flatnonzero(inside & ~before)
-    ends = np.flatnonzero(inside & ~after) + 1
-    return starts, ends
+    inside = space_bytes(docs)  # a new array: turned into its negation in place
+    np.logical_not(inside, out=inside)
+    edge = np.empty(len(data), dtype=bool)  # True > False: inside here, not inside before / after
+    edge[0] = inside[0]
+    np.greater(inside[1:], inside[:-1], out=edge[1:])
+    first = offsets[:-1][offsets[:-1] < len(data)]
+    edge[first] = inside[first]  # no word spans two documents
+    starts = np.flatnonzero(edge)
+    edge[-1] = inside[-1]
+    np.greater(inside[:-1], inside[1:], out=edge[:-1])
+    last = offsets[1:][offsets[1:] > offsets[:-1]] - 1
+    edge[last] = inside[last]
+    return starts, np.flatnonzero(edge) + 1
 
 
 def _codes(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
