@@ -165,7 +165,10 @@ def _chars(wide: Wide, starts: np.ndarray, ends: np.ndarray) -> tuple[np.ndarray
         word = np.searchsorted(starts, wide.at, side="right") - 1
         inside = (word >= 0) & (wide.at < ends[np.maximum(word, 0)])  # not a wide whitespace character
         word[~inside] = -1
-        chars = chars - np.bincount(word[inside], weights=wide.size[inside] - 1, minlength=len(starts)).astype(np.int64)
+        held, extra = word[inside], wide.size[inside] - 1  # held is non-decreasing (wide.at is)
+        if len(held):
+            run = np.flatnonzero(np.diff(held, prepend=-1) != 0)  # the first code point of each word holding some
+            chars[held[run]] -= np.add.reduceat(extra, run)
     return chars, word
 
 
