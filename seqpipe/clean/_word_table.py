@@ -26,7 +26,7 @@ from seqpipe.clean.base import as_documents
 _PACKED: Final = 7  # bytes a code holds; the top byte holds the length (1-7), so no two packings meet
 _LONG: Final = np.uint64(0xFF << 56)  # top byte of a longer word's code (its number below it)
 # per length 0-7: the mask of that many low bytes
-_LOW_BYTES: Final = np.array([(1 << (8 * k)) - 1 for k in range(_PACKED + 1)], dtype=np.uint64)
+LOW_BYTES: Final = np.array([(1 << (8 * k)) - 1 for k in range(_PACKED + 1)], dtype=np.uint64)
 
 
 @dataclass(frozen=True, slots=True)
@@ -147,7 +147,7 @@ def _codes(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarra
     eight = np.ndarray((len(data),), dtype="<u8", buffer=padded, strides=(1,))
     short = sizes <= _PACKED
     width = np.minimum(sizes, _PACKED)
-    codes: np.ndarray = (eight[starts] & _LOW_BYTES[width]) | (width.astype(np.uint64) << np.uint64(56))
+    codes: np.ndarray = (eight[starts] & LOW_BYTES[width]) | (width.astype(np.uint64) << np.uint64(56))
     long = np.flatnonzero(~short)
     if len(long):
         encoded = pc.dictionary_encode(spans(data, starts[long], starts[long] + sizes[long]))

@@ -11,7 +11,7 @@ import pyarrow.compute as pc
 
 from seqpipe._parse import parse_int, parse_str
 from seqpipe.clean._quality import QualityFilter
-from seqpipe.clean._word_table import _LOW_BYTES, WordTable, pack_ascii, word_table
+from seqpipe.clean._word_table import LOW_BYTES, WordTable, pack_ascii, word_table
 
 # The English list is the one of Rae et al. 2021, "Scaling Language Models: Methods, Analysis &
 # Insights from Training Gopher", appendix A (from memory). Other languages need a list chosen
@@ -39,13 +39,13 @@ def _ascii_lower(codes: np.ndarray) -> np.ndarray:
 def _trimmed_packed(codes: np.ndarray, sizes: np.ndarray) -> np.ndarray:
     """Packed codes of ASCII words of one to seven bytes with the ASCII characters of
     ``_TRIMMED`` stripped from both ends (the code of an emptied word is 0, no word's code)."""
-    data, size = codes & _LOW_BYTES[7], sizes.copy()
+    data, size = codes & LOW_BYTES[7], sizes.copy()
     at = np.arange(len(codes))  # the words that may still end in such a character
     while len(at):
         last = (data[at] >> (np.uint64(8) * (size[at] - 1).astype(np.uint64))) & np.uint64(0xFF)
         at = at[np.take(_ASCII_TRIMMED, last.astype(np.intp))]
         size[at] -= 1
-        data[at] &= _LOW_BYTES[size[at]]
+        data[at] &= LOW_BYTES[size[at]]
         at = at[size[at] > 0]
     at = np.flatnonzero(size > 0)  # then from the start
     while len(at):
