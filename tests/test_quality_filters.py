@@ -192,11 +192,11 @@ def test_word_measures_are_the_same_on_every_call() -> None:
 
 
 def test_repeated_ngrams_is_exact_under_hash_collisions(monkeypatch: pytest.MonkeyPatch) -> None:
-    """With a key that collides for every n-gram ending in the same word, the measure still
+    """With a key that collides for every n-gram, the measure still
     equals the Python reference: candidates are compared word by word."""
     import seqpipe.clean.repeated_ngrams as module
 
-    monkeypatch.setattr(module, "_MULTIPLIER", np.uint64(0))  # every row's key is its last word
+    monkeypatch.setattr(module, "_MULTIPLIER", np.uint64(0))  # every n-gram gets the key 0
     docs = ["a b c a b c d", "x y z x y", "one two three four", "a b c a b c d"]
     for n in (1, 2, 3):
         assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
@@ -264,3 +264,56 @@ def test_words_reused_after_a_filter_equal_a_fresh_cut(docs: list[str], keep: li
         assert got.doc.tolist() == fresh.doc.tolist() and got.documents == fresh.documents
         distinct, codes = got.encoded()
         assert [distinct[int(c)].as_py() for c in codes] == fresh.text.to_pylist()
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
+        st.text(alphabet=st.sampled_from(list("ab \n\x0b\x1c\x85\xa0\u2003\u3000\x00é茶😀")), max_size=40),
+        max_size=6,
+    )
+)
+def test_word_table_codes_are_equal_exactly_for_equal_words(docs: list[str]) -> None:
+    """The word table cuts the words str.split() cuts (code points counted per word) and gives two
+    words the same code exactly when they are the same string, long words and NUL bytes included."""
+    from seqpipe.clean._word_table import word_table
+
+    table = word_table(arr(docs))
+    want = [w for d in docs for w in d.split()]
+    got = [bytes(table.data[a:b]).decode("utf-8") for a, b in zip(table.starts, table.ends, strict=True)]
+    assert got == want
+    assert table.doc.tolist() == [i for i, d in enumerate(docs) for _ in d.split()]
+    assert table.chars.tolist() == [len(w) for w in want]
+    codes = table.codes.tolist()
+    assert all((codes[i] == codes[j]) == (want[i] == want[j]) for i in range(len(want)) for j in range(len(want)))
+    distinct, index = table.distinct()
+    assert [distinct[int(i)].as_py() for i in index] == want
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    docs=st.lists(
+        st.text(alphabet=st.sampled_from(list("theTHEaofAndw \n\"'(.,-\u201c\u201dé")), max_size=50), max_size=6
+    )
+)
+def test_function_words_equal_a_per_word_reference(docs: list[str]) -> None:
+    """Function words counted over packed codes (short ASCII words), after stripping punctuation at
+    both ends, and per distinct word (longer or non-ASCII words) equal a per-word Python count."""
+    strip = "\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d"
+    want = [sum(w.lower().strip(strip) in FUNCTION_WORDS["en"] for w in d.split()) for d in docs]
+    assert FunctionWords().measure(arr(docs)).tolist() == want
+
+
+@settings(max_examples=100, deadline=None)
+@given(points=st.lists(st.integers(0x80, 0x2FFF), max_size=40))
+def test_kept_code_point_answers_equal_asking_again(points: list[int]) -> None:
+    """Answers about code points beyond ASCII kept from earlier batches equal pyarrow's answer asked afresh."""
+    import pyarrow.compute as pc
+
+    from seqpipe.clean._quality import _asked
+
+    distinct = np.unique(np.array(points, dtype=np.int64))
+    fresh = pc.utf8_is_space(pa.array([chr(c) for c in distinct.tolist()], pa.large_string()))
+    want = np.asarray(fresh.to_numpy(zero_copy_only=False), dtype=bool).tolist()
+    assert _asked(distinct, pc.utf8_is_space).tolist() == want
+    assert _asked(distinct, pc.utf8_is_space).tolist() == want

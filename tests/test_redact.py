@@ -390,3 +390,13 @@ def test_first_character_lookahead_changes_no_match(text: str) -> None:
     for target, pattern in (("ip", _IP), ("phone", _PHONE)):
         plain = [m.span() for m in regex.finditer(pattern, text)]
         assert [m.span() for m in _COMPILED[target].finditer(text)] == plain
+
+
+@settings(max_examples=300, deadline=None)
+@given(text=st.lists(st.sampled_from([*"ab.-_+@ 1\nx", "a" * 30, "@b.cd", "x@y.z", "é"]), max_size=40).map("".join))
+def test_email_search_from_the_next_at_sign_equals_a_full_scan(text: str) -> None:
+    """Searching for e-mail addresses from 64 characters before each "@" gives the same text and count
+    as the pattern's own scan of the whole text (local parts up to and past 64 characters included)."""
+    from seqpipe.clean.redact import _COMPILED, _email_subn
+
+    assert _email_subn(text, "<email>") == _COMPILED["email"].subn("<email>", text)

@@ -63,17 +63,37 @@ def code_points(data: np.ndarray, lead: np.ndarray) -> np.ndarray:
     return cp
 
 
+# per kernel: the code points asked so far (sorted) and its answers; replaced whole under the lock
+_ANSWERS: Final[dict[Callable[[pa.Array], pa.Array], tuple[np.ndarray, np.ndarray]]] = {}
+_ANSWERS_LOCK: Final = threading.Lock()
+_ANSWERS_MAX: Final = 1 << 16  # code points kept per kernel; past that, new ones are asked each time
+
+
 def _asked(distinct: np.ndarray, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
-    """Per code point of ``distinct``: ``kernel``'s answer (a pyarrow predicate over one-character
-    strings), so the answer is the library's own for every character."""
-    chars = pa.array([chr(c) for c in distinct.tolist()], pa.large_string())
-    return np.asarray(kernel(chars).to_numpy(zero_copy_only=False), dtype=bool)
+    """Per code point of ``distinct`` (distinct, in any order): ``kernel``'s answer (a pyarrow predicate
+    over one-character strings), so the answer is the library's own for every character. Answers
+    are kept per kernel, so each code point is asked once in a process, not once per batch."""
+    known, answers = _ANSWERS.get(kernel, (np.zeros(0, np.int64), np.zeros(0, bool)))
+    at = np.minimum(np.searchsorted(known, distinct), max(len(known) - 1, 0))
+    found = known[at] == distinct if len(known) else np.zeros(len(distinct), dtype=bool)
+    out = np.zeros(len(distinct), dtype=bool)
+    out[found] = answers[at[found]]
+    new = distinct[~found]
+    if len(new):
+        chars = pa.array([chr(c) for c in new.tolist()], pa.large_string())
+        out[~found] = got = np.asarray(kernel(chars).to_numpy(zero_copy_only=False), dtype=bool)
+        with _ANSWERS_LOCK:
+            known, answers = _ANSWERS.get(kernel, (np.zeros(0, np.int64), np.zeros(0, bool)))
+            if len(known) + len(new) <= _ANSWERS_MAX:
+                merged, first = np.unique(np.concatenate([known, new]), return_index=True)
+                _ANSWERS[kernel] = (merged, np.concatenate([answers, got])[first])
+    return out
 
 
 @dataclass(frozen=True, slots=True)
 class Wide:
     """A batch's code points beyond ASCII: the position of each one's first byte, its size in
-    bytes, and the distinct code points with, per position, its index among them."""
+    bytes, and the distinct code points (in no set order) with, per position, its index among them."""
 
     at: np.ndarray
     size: np.ndarray
@@ -106,8 +126,10 @@ def wide_code_points(docs: pa.Array) -> Wide:
     at = np.flatnonzero(data >= 0xC0)
     first = data[at]
     size = np.where(first >= 0xF0, 4, np.where(first >= 0xE0, 3, 2))
-    distinct, inverse = np.unique(code_points(data, at), return_inverse=True)
-    wide = Wide(at, size, distinct, inverse.ravel())
+    # Arrow's hash table: a batch holds few distinct code points among many positions (no sort)
+    encoded = pc.dictionary_encode(pa.array(code_points(data, at), pa.int64()))
+    distinct = np.asarray(encoded.dictionary.to_numpy(zero_copy_only=False), dtype=np.int64)
+    wide = Wide(at, size, distinct, np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64))
     last.docs, last.wide = docs, wide
     return wide
 
@@ -120,12 +142,50 @@ _ASCII_SPACE[:128] = np.asarray(
 )
 
 
+# Per byte value, one bit per class, so one table lookup over a batch's bytes serves every
+# byte-level measure: SPACE, whitespace below U+0080 as _ASCII_SPACE; INVISIBLE, a byte that is
+# not the first byte of a visible code point: RE2's \\s (only tab, line feed, form feed, carriage
+# return and space; RE2 syntax reference, "Perl classes") or a UTF-8 continuation byte; LETTER,
+# an ASCII letter (what \\p{L} matches below U+0080).
+SPACE: Final = 1
+INVISIBLE: Final = 2
+LETTER: Final = 4
+_CLASSES: Final = (
+    _ASCII_SPACE.astype(np.uint8) * SPACE
+    + (np.isin(np.arange(256), [9, 10, 12, 13, 32]) | ((np.arange(256) & 0xC0) == 0x80)).astype(np.uint8) * INVISIBLE
+    + np.array([chr(b).isascii() and chr(b).isalpha() for b in range(256)], dtype=np.uint8) * LETTER
+).astype(np.uint8)
+
+
+class _LastClasses(threading.local):
+    """Per thread, the last batch's byte classes."""
+
+    def __init__(self) -> None:
+        self.docs: pa.Array | None = None
+        self.classes: np.ndarray | None = None
+
+
+_LAST_CLASSES: Final = _LastClasses()
+
+
+def byte_classes(docs: pa.Array) -> np.ndarray:
+    """Per byte of a ``large_string`` array's UTF-8 bytes: its bits of ``_CLASSES`` (kept for
+    the next call on the same array)."""
+    last = _LAST_CLASSES
+    if last.classes is not None and docs is last.docs:
+        return last.classes
+    classes: np.ndarray = np.take(
+        _CLASSES, utf8_buffers(docs)[0]
+    )  # np.take: faster than fancy indexing (DEVELOPERS.md)
+    last.docs, last.classes = docs, classes
+    return classes
+
+
 def space_bytes(docs: pa.Array) -> np.ndarray:
     """Per byte of a ``large_string`` array's UTF-8 bytes: whether it belongs to a whitespace
     code point as pyarrow's ``utf8_is_space`` (and so ``utf8_split_whitespace``) sees it, asked
     once per distinct non-ASCII code point."""
-    data = utf8_buffers(docs)[0]
-    space: np.ndarray = np.take(_ASCII_SPACE, data)  # np.take: faster than fancy indexing (DEVELOPERS.md)
+    space: np.ndarray = (byte_classes(docs) & SPACE).view(bool)  # SPACE is bit 0: each byte is 0 or 1
     wide = wide_code_points(docs)
     if len(wide.at):  # a multi-byte code point's flag goes on all its bytes
         flag = wide.classify(pc.utf8_is_space)

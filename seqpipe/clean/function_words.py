@@ -10,7 +10,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_int, parse_str
-from seqpipe.clean._quality import QualityFilter, words
+from seqpipe.clean._quality import QualityFilter
+from seqpipe.clean._word_table import LOW_BYTES, WordTable, pack_ascii, word_table
 
 # The English list is the one of Rae et al. 2021, "Scaling Language Models: Methods, Analysis &
 # Insights from Training Gopher", appendix A (from memory). Other languages need a list chosen
@@ -18,6 +19,82 @@ from seqpipe.clean._quality import QualityFilter, words
 FUNCTION_WORDS: Final[dict[str, tuple[str, ...]]] = {
     "en": ("the", "be", "to", "of", "and", "that", "have", "with"),
 }
+_TRIMMED: Final = "\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d"  # stripped from both ends of a word
+# per byte value: an ASCII character of _TRIMMED
+_ASCII_TRIMMED: Final = np.isin(np.arange(256), [ord(c) for c in _TRIMMED if c.isascii()])
+_HIGH_BITS: Final = np.uint64(0x0080_8080_8080_8080)
+_PLUS_3F: Final = np.uint64(0x003F_3F3F_3F3F_3F3F)  # per byte b < 0x80: b + 0x3F has its high bit iff b >= "A"
+_PLUS_25: Final = np.uint64(0x0025_2525_2525_2525)  # per byte b < 0x80: b + 0x25 has its high bit iff b > "Z"
+
+
+def _ascii_lower(codes: np.ndarray) -> np.ndarray:
+    """Packed codes of words of ASCII bytes with every byte A-Z made a-z (bytewise, no carry
+    crosses a byte since every byte is below 0x80)."""
+    with np.errstate(over="ignore"):
+        upper = (codes + _PLUS_3F) & ~(codes + _PLUS_25) & _HIGH_BITS
+    out: np.ndarray = codes | (upper >> np.uint64(2))  # 0x80 >> 2 is the 0x20 between the cases
+    return out
+
+
+def _trimmed_packed(codes: np.ndarray, sizes: np.ndarray) -> np.ndarray:
+    """Packed codes of ASCII words of one to seven bytes with the ASCII characters of
+    ``_TRIMMED`` stripped from both ends (the code of an emptied word is 0, no word's code)."""
+    data, size = codes & LOW_BYTES[7], sizes.copy()
+    at = np.arange(len(codes))  # the words that may still end in such a character
+    while len(at):
+        last = (data[at] >> (np.uint64(8) * (size[at] - 1).astype(np.uint64))) & np.uint64(0xFF)
+        at = at[np.take(_ASCII_TRIMMED, last.astype(np.intp))]
+        size[at] -= 1
+        data[at] &= LOW_BYTES[size[at]]
+        at = at[size[at] > 0]
+    at = np.flatnonzero(size > 0)  # then from the start
+    while len(at):
+        at = at[np.take(_ASCII_TRIMMED, (data[at] & np.uint64(0xFF)).astype(np.intp))]
+        size[at] -= 1
+        data[at] >>= np.uint64(8)
+        at = at[size[at] > 0]
+    out: np.ndarray = np.where(size > 0, data | (size.astype(np.uint64) << np.uint64(56)), np.uint64(0))
+    return out
+
+
+def _lower_not_ascii(chars: pa.Array) -> pa.Array:
+    """Per one-character string: whether it is no character of ``_TRIMMED`` and lower-cases to
+    something beyond ASCII."""
+    trimmed = pc.is_in(chars, value_set=pa.array(list(_TRIMMED), pa.large_string()))
+    return pc.and_(pc.invert(trimmed), pc.invert(pc.string_is_ascii(pc.utf8_lower(chars))))
+
+
+def _function_word_flags(table: WordTable, language: str) -> np.ndarray:
+    """Per word: 1 when, lower-cased with ``_TRIMMED`` stripped from both ends, it is one of the
+    language's function words. An ASCII word of one to seven bytes is judged on its packed code
+    (stripping ASCII characters and lower-casing ASCII are bytewise there). Pyarrow compute
+    judges, once per distinct word, the other words that may be one: those beyond ASCII unless
+    one of their characters stays beyond ASCII (with ASCII function words), and the longer
+    ASCII words that stripping can shorten (all longer ones, if a function word is that long).
+    The rest cannot shrink to a function word's length or to ASCII."""
+    words = FUNCTION_WORDS[language]
+    codes, sizes = table.codes, table.ends - table.starts
+    if not len(codes):
+        return np.zeros(0, dtype=np.int64)
+    ascii_words = table.chars == sizes
+    edge = np.take(_ASCII_TRIMMED, table.data[table.starts]) | np.take(_ASCII_TRIMMED, table.data[table.ends - 1])
+    wanted = pack_ascii([w for w in words if w.isascii() and len(w) <= 7])
+    short = ascii_words & (sizes <= 7)
+    # every code lower-cased as if it were a short ASCII word; kept for those with nothing to strip
+    flags: np.ndarray = (np.isin(_ascii_lower(codes), wanted) & short & ~edge).astype(np.int64)
+    stripped = np.flatnonzero(short & edge)
+    flags[stripped] = np.isin(_ascii_lower(_trimmed_packed(codes[stripped], sizes[stripped])), wanted)
+    maybe = ~ascii_words
+    if all(w.isascii() for w in words):
+        maybe &= ~table.holding_wide(_lower_not_ascii)
+    long_word = any(len(w.encode("utf-8")) > 7 for w in words)
+    rest = np.flatnonzero(maybe | (ascii_words & (sizes > 7) & (edge | long_word)))
+    if len(rest):
+        distinct, index = table.distinct(rest)  # each distinct word is judged once
+        bare = pc.utf8_trim(pc.utf8_lower(distinct), characters=_TRIMMED)
+        hit = pc.is_in(bare, value_set=pa.array(words, pa.large_string()))
+        flags[rest] = np.asarray(hit.to_numpy(zero_copy_only=False), dtype=np.int64)[index]
+    return flags
 
 
 @dataclass(frozen=True, slots=True)
@@ -42,12 +119,8 @@ class FunctionWords(QualityFilter):
 
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: occurrences of the language's function words."""
-        pieces = words(docs)
-        distinct, codes = pieces.encoded()  # each distinct word is judged once
-        bare = pc.utf8_trim(pc.utf8_lower(distinct), characters="\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d")
-        hit = pc.is_in(bare, value_set=pa.array(FUNCTION_WORDS[self.language], pa.large_string()))
-        flags = np.asarray(hit.to_numpy(zero_copy_only=False), dtype=np.float64)[codes]
-        return pieces.per_document(flags).astype(np.int64)
+        table = word_table(docs)
+        return table.per_document(_function_word_flags(table, self.language))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
         """Boolean mask: True for each document ``apply`` keeps."""

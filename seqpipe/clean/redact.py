@@ -103,10 +103,12 @@ _HINTS: Final[dict[str, str]] = {
     "phone": r"\+[0-9]|\([0-9]|[0-9][ .\-][0-9]{2,4}[ .\-][0-9]",
 }
 
-# Every IP match starts with a hexadecimal digit or ":", every phone match with a digit, "+" or
-# "(": a lookahead for that first character, put before the patterns' own lookbehind (lookarounds
-# at one position commute), lets the engine pass over other positions at once. It changes no match.
-_FIRST: Final[dict[str, str]] = {"ip": "(?=[0-9A-Fa-f:])", "phone": "(?=[0-9+(])"}
+# Every IP match starts with ":" or with one to four hexadecimal digits and then ":" or "." (an
+# IPv4 octet, or an IPv6 group), every phone match with a digit, "+" or "(": a lookahead for that
+# start, put before the patterns' own lookbehind (lookarounds at one position commute), lets the
+# engine pass over other positions (such as the hexadecimal letters of words) at once. It changes
+# no match.
+_FIRST: Final[dict[str, str]] = {"ip": "(?=[0-9A-Fa-f]{1,4}[:.]|:)", "phone": "(?=[0-9+(])"}
 
 _COMPILED: Final[dict[str, Any]] = {
     "email": regex.compile(_EMAIL),
@@ -139,6 +141,25 @@ def _phone_ok(text: str) -> bool:
 _CHECKS: Final[dict[str, Callable[[str], bool]]] = {"card": _card_digits_ok, "phone": _phone_ok}
 
 
+def _email_subn(text: str, placeholder: str) -> tuple[str, int]:
+    """``_COMPILED["email"].subn(placeholder, text)``, searching from at most 64 characters before
+    the next "@" instead of from where the last match ended: a match starting at ``p`` has its
+    "@" 1 to 64 characters after ``p`` (the local part's lookahead), so no match starts earlier,
+    and the lookbehind still sees the text before the search start."""
+    pattern = _COMPILED["email"]
+    pieces: list[str] = []
+    last = 0
+    at = text.find("@")
+    while at >= 0:
+        m = pattern.search(text, max(last, at - 64))
+        if m is None:
+            break
+        pieces += (text[last : m.start()], placeholder)
+        last = m.end()
+        at = text.find("@", last)
+    return "".join(pieces) + text[last:], len(pieces) // 2
+
+
 def redact_text(text: str, targets: tuple[str, ...] = TARGETS) -> tuple[str, dict[str, int]]:
     """``text`` with each target replaced by its placeholder, and the count per target.
 
@@ -151,6 +172,10 @@ def redact_text(text: str, targets: tuple[str, ...] = TARGETS) -> tuple[str, dic
             continue
         placeholder = PLACEHOLDERS[target]
         check = _CHECKS.get(target)
+        if target == "email":
+            text, n = _email_subn(text, placeholder)
+            counts[target] += n
+            continue
         if check is None:
             text, n = _COMPILED[target].subn(placeholder, text)
             counts[target] += n

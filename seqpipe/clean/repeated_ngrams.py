@@ -10,70 +10,81 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import Pieces, QualityFilter, share, words
+from seqpipe.clean._quality import QualityFilter, share
+from seqpipe.clean._word_table import word_table
 
 _MULTIPLIER: Final = np.uint64(0x9E3779B97F4A7C15)  # odd, with bits spread over the whole word
 
 
-def covered_by_repeats(pieces: Pieces, n: int) -> np.ndarray:
-    """Per word: True when it lies inside a word n-gram that occurs more than once in its document."""
-    m = len(pieces.text)
+def covered_by_repeats(doc: np.ndarray, codes: np.ndarray, n: int) -> np.ndarray:
+    """Per word (document ``doc[i]``, exact code ``codes[i]``, equal for equal words): True when it
+    lies inside a word n-gram that occurs more than once in its document."""
+    m = len(codes)
     covered = np.zeros(m, dtype=bool)
     if m < n:
         return covered
-    codes = pieces.encoded()[1]
-    windows = m - n + 1  # n-grams starting at every word, some across two documents
-    starts = np.flatnonzero(pieces.doc[:windows] == pieces.doc[n - 1 :])  # docs are contiguous
-    if not len(starts):
-        return covered
-    keys = _window_keys(pieces.doc, codes, n)[starts]
-    dup_starts = starts[_repeated_rows(pieces.doc[starts], codes, starts, n, keys)]
-    # +1 where a repeated n-gram starts, -1 after it ends
-    edges = np.bincount(dup_starts, minlength=m + 1) - np.bincount(dup_starts + n, minlength=m + 1)
-    covered = np.cumsum(edges[:m]) > 0
+    codes = np.ascontiguousarray(codes).view(np.int64)  # the same bits: equal exactly when the codes are
+    # n-grams starting at every word, some across two documents: those are left out of the
+    # candidates (a key they share with another n-gram only makes that one a candidate)
+    candidates = _shared_keys(_window_keys(doc, codes, n))
+    candidates = candidates[doc[candidates] == doc[candidates + n - 1]]  # docs are contiguous
+    repeated = candidates[_repeated_rows(doc, codes, candidates, n)]
+    covered[(repeated[:, None] + np.arange(n)).ravel()] = True  # the words of each repeated n-gram
     return covered
 
 
 def _window_keys(doc: np.ndarray, codes: np.ndarray, n: int) -> np.ndarray:
     """A 64-bit polynomial key of (document of the first word, the n word codes) for the n-gram
-    starting at every word that has n - 1 words after it (slices of the code array, no gather)."""
+    starting at every word that has n - 1 words after it (slices of the code array, no gather);
+    a last multiplication spreads the last word's bits (its length sits in its top byte)."""
     windows = len(codes) - n + 1
-    words = np.ascontiguousarray(codes, dtype=np.int64).view(np.uint64)  # codes are >= 0
+    words = np.ascontiguousarray(codes).view(np.uint64)
     with np.errstate(over="ignore"):
         h = doc[:windows].astype(np.uint64)
         for k in range(n):
             h = h * _MULTIPLIER + words[k : k + windows]
-    return h
+        out: np.ndarray = h * _MULTIPLIER
+    return out
 
 
-def _repeated_rows(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: int, keys: np.ndarray) -> np.ndarray:
-    """Per n-gram (document ``doc[i]``, words ``codes[starts[i]:starts[i] + n]``, key ``keys[i]``):
-    True when an equal n-gram of the same document exists. Equal rows have equal keys and most
-    rows of real text have a key of their own, so only the rows whose key repeats are compared
-    exactly: a collision costs time, never a result."""
-    out = np.zeros(len(keys), dtype=bool)
-    candidates = _shared_keys(keys)
-    if not len(candidates):
+def _repeated_rows(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: int) -> np.ndarray:
+    """Per n-gram starting at word ``starts[i]`` (document ``doc[starts[i]]``, words
+    ``codes[starts[i]:starts[i] + n]``): True when an equal n-gram of the same document is among
+    them. The candidates are the n-grams whose key repeats (equal n-grams have equal keys and
+    most n-grams of real text have a key of their own); they are compared exactly here, so a
+    collision costs time, never a result."""
+    out = np.zeros(len(starts), dtype=bool)
+    if not len(starts):
         return out
-    at = starts[candidates]
-    rows = np.stack([doc[candidates], *(codes[at + k] for k in range(n))], axis=1)
+    rows = np.stack([doc[starts], *(codes[starts + k] for k in range(n))], axis=1)
     order = np.lexsort(rows.T[::-1])  # equal rows end up next to each other
     ordered = rows[order]
     same = (ordered[1:] == ordered[:-1]).all(axis=1)
     twice = np.zeros(len(order), dtype=bool)
     twice[1:] |= same
     twice[:-1] |= same
-    out[candidates[order]] = twice
+    out[order] = twice
     return out
+
+
+def _bucket_bits(keys: int) -> int:
+    """Bits of a bucket number for ``keys`` keys: about four buckets per key, within 2**10-2**24."""
+    return min(max(keys.bit_length() + 2, 10), 24)
 
 
 def _shared_keys(h: np.ndarray) -> np.ndarray:
     """Indices of the keys of ``h`` that occur more than once, in order. A count per bucket of the
-    keys' top bits (about four buckets per key) rules out most keys at once; Arrow's hash table
-    then numbers the keys left (no sort)."""
-    bits = min(max(len(h).bit_length() + 2, 10), 24)
+    keys' top bits (about four buckets per key) rules out most keys at once, a count per bucket
+    of the low bits of the keys left rules out most of the rest; Arrow's hash table then numbers
+    the few keys left (no sort). Equal keys share every bucket, so no repeated key is lost."""
+    bits = _bucket_bits(len(h))
     buckets = (h >> np.uint64(64 - bits)).astype(np.intp)
     left = np.flatnonzero(np.bincount(buckets, minlength=1 << bits)[buckets] > 1)
+    if not len(left):
+        return left
+    bits = _bucket_bits(len(left))
+    buckets = (h[left] & np.uint64((1 << bits) - 1)).astype(np.intp)
+    left = left[np.bincount(buckets, minlength=1 << bits)[buckets] > 1]
     if not len(left):
         return left
     numbered = np.asarray(pc.dictionary_encode(pa.array(h[left])).indices.to_numpy(zero_copy_only=False), np.int64)
@@ -102,10 +113,9 @@ class RepeatedNgrams(QualityFilter):
 
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: characters in repeated n-grams / word characters."""
-        pieces = words(docs)
-        lengths = pieces.lengths().astype(np.float64)
-        inside = pieces.per_document(np.where(covered_by_repeats(pieces, self.n), lengths, 0.0))
-        return share(inside, pieces.per_document(lengths))
+        table = word_table(docs)
+        inside = table.per_document(np.where(covered_by_repeats(table.doc, table.codes, self.n), table.chars, 0))
+        return share(inside.astype(np.float64), table.per_document(table.chars).astype(np.float64))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
         """Boolean mask: True for each document ``apply`` keeps."""

@@ -9,7 +9,8 @@ import numpy as np
 import pyarrow as pa
 
 from seqpipe._parse import parse_float
-from seqpipe.clean._quality import QualityFilter, share, words
+from seqpipe.clean._quality import QualityFilter, share
+from seqpipe.clean._word_table import word_table
 from seqpipe.errors import RecipeError
 
 
@@ -39,8 +40,8 @@ class WordLength(QualityFilter):
 
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: mean code points per word (0 without words)."""
-        pieces = words(docs)
-        return share(pieces.per_document(pieces.lengths().astype(np.float64)), pieces.count().astype(np.float64))
+        table = word_table(docs)
+        return share(table.per_document(table.chars).astype(np.float64), table.count().astype(np.float64))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
         """Boolean mask: True for each document ``apply`` keeps."""

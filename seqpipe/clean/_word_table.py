@@ -1,0 +1,186 @@
+"""One table of a batch's words for every word-based quality measure.
+
+Words are the whitespace-separated runs of ``utf8_split_whitespace`` (the same cut as
+:func:`seqpipe.clean._quality.words`), found as start and end positions in the batch's UTF-8
+bytes, so no string per word is built. Each word gets a 64-bit code that is equal for two words
+exactly when their bytes are equal: a word of at most seven bytes is its bytes with its length
+above them (an injective packing, not a hash); a longer word is numbered by Arrow's hash table
+over those words only. Mean word length, repeated n-grams and function words all read this one
+table.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Final
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from seqpipe.clean._quality import Wide, space_bytes, utf8_buffers, wide_code_points
+from seqpipe.clean.base import as_documents
+
+_PACKED: Final = 7  # bytes a code holds; the top byte holds the length (1-7), so no two packings meet
+_LONG: Final = np.uint64(0xFF << 56)  # top byte of a longer word's code (its number below it)
+# per length 0-7: the mask of that many low bytes
+LOW_BYTES: Final = np.array([(1 << (8 * k)) - 1 for k in range(_PACKED + 1)], dtype=np.uint64)
+
+
+@dataclass(frozen=True, slots=True)
+class WordTable:
+    """A batch's words in order: ``doc[i]`` holds word ``i``, which spans bytes
+    ``starts[i]:ends[i]`` of ``data``; ``first[d]:first[d + 1]`` are document ``d``'s words."""
+
+    data: np.ndarray  # uint8, the batch's UTF-8 bytes
+    starts: np.ndarray  # int64
+    ends: np.ndarray  # int64
+    doc: np.ndarray  # int64, non-decreasing
+    first: np.ndarray  # int64, documents + 1 word offsets
+    codes: np.ndarray  # uint64, equal exactly for equal words
+    chars: np.ndarray  # int64, code points per word
+    wide: Wide  # the batch's code points beyond ASCII
+    wide_word: np.ndarray  # int64, per code point of ``wide``: the word holding it, or -1 (whitespace)
+
+    @property
+    def documents(self) -> int:
+        """Documents of the batch (with or without words)."""
+        return len(self.first) - 1
+
+    def per_document(self, values: np.ndarray) -> np.ndarray:
+        """Sum of ``values`` (one per word, integers) for each document, as int64."""
+        out = np.zeros(self.documents, dtype=np.int64)
+        filled = self.first[1:] > self.first[:-1]
+        if filled.any():
+            out[filled] = np.add.reduceat(np.asarray(values, dtype=np.int64), self.first[:-1][filled])
+        return out
+
+    def count(self) -> np.ndarray:
+        """Words per document."""
+        return np.diff(self.first)
+
+    def holding_wide(self, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
+        """Per word: whether it holds a code point beyond ASCII for which ``kernel`` (a pyarrow
+        predicate over one-character strings, asked once per distinct code point) is True."""
+        out = np.zeros(len(self.codes), dtype=bool)
+        if len(self.wide.at):
+            word = self.wide_word[self.wide.classify(kernel) & (self.wide_word >= 0)]
+            out[word] = True
+        return out
+
+    def distinct(self, which: np.ndarray | None = None) -> tuple[pa.Array, np.ndarray]:
+        """The distinct words (``large_string``) among the words ``which`` (indices; all words
+        when None) and, per such word, its index among them."""
+        chosen = np.arange(len(self.codes), dtype=np.int64) if which is None else which
+        encoded = pc.dictionary_encode(pa.array(self.codes[chosen], pa.uint64()))
+        index = np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64)
+        first_seen = np.empty(len(encoded.dictionary), dtype=np.int64)
+        first_seen[index[::-1]] = chosen[::-1]  # the first word of each
+        return spans(self.data, self.starts[first_seen], self.ends[first_seen]), index
+
+
+def pack_ascii(words: list[str]) -> np.ndarray:
+    """The codes :class:`WordTable` gives the ASCII words ``words`` of one to seven bytes."""
+    return np.array(
+        [int.from_bytes(w.encode("ascii"), "little") | (len(w) << 56) for w in words if 1 <= len(w) <= _PACKED],
+        dtype=np.uint64,
+    )
+
+
+def spans(data: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> pa.Array:
+    """A ``large_string`` array of the byte ranges ``data[starts[i]:ends[i]]`` (whole code points)."""
+    sizes = ends - starts
+    bounds = np.zeros(len(sizes) + 1, dtype=np.int64)
+    np.cumsum(sizes, out=bounds[1:])
+    at = np.repeat(starts - bounds[:-1], sizes) + np.arange(int(bounds[-1]), dtype=np.int64)
+    text = np.take(data, at) if len(at) else np.zeros(0, np.uint8)
+    return pa.LargeStringArray.from_buffers(len(sizes), pa.py_buffer(bounds), pa.py_buffer(text))
+
+
+class _LastTable(threading.local):
+    """Per thread, the last batch's table (the filters of a batch measure the same documents)."""
+
+    def __init__(self) -> None:
+        self.docs: pa.Array | None = None
+        self.table: WordTable | None = None
+
+
+_LAST_TABLE: Final = _LastTable()
+
+
+def word_table(docs: pa.Array) -> WordTable:
+    """The :class:`WordTable` of ``docs`` (kept for the next call on the same array)."""
+    docs = as_documents(docs)
+    last = _LAST_TABLE
+    if last.table is not None and docs is last.docs:
+        return last.table
+    table = _cut(docs)
+    last.docs, last.table = docs, table
+    return table
+
+
+def _bounds(docs: pa.Array, data: np.ndarray, offsets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Start and end byte of every word: a word starts at a non-space byte after a space byte or
+    at a document's start, and ends before a space byte or at a document's end."""
+    inside = space_bytes(docs)  # a new array: turned into its negation in place
+    np.logical_not(inside, out=inside)
+    edge = np.empty(len(data), dtype=bool)  # True > False: inside here, not inside before / after
+    edge[0] = inside[0]
+    np.greater(inside[1:], inside[:-1], out=edge[1:])
+    first = offsets[:-1][offsets[:-1] < len(data)]
+    edge[first] = inside[first]  # no word spans two documents
+    starts = np.flatnonzero(edge)
+    edge[-1] = inside[-1]
+    np.greater(inside[:-1], inside[1:], out=edge[:-1])
+    last = offsets[1:][offsets[1:] > offsets[:-1]] - 1
+    edge[last] = inside[last]
+    return starts, np.flatnonzero(edge) + 1
+
+
+def _codes(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
+    """Per word: its exact 64-bit code (see the module docstring)."""
+    padded = np.zeros(len(data) + 8, dtype=np.uint8)
+    padded[: len(data)] = data
+    # every byte position read as the start of a little-endian uint64 (overlapping, no copy)
+    eight = np.ndarray((len(data),), dtype="<u8", buffer=padded, strides=(1,))
+    short = sizes <= _PACKED
+    width = np.minimum(sizes, _PACKED)
+    codes: np.ndarray = (eight[starts] & LOW_BYTES[width]) | (width.astype(np.uint64) << np.uint64(56))
+    long = np.flatnonzero(~short)
+    if len(long):
+        encoded = pc.dictionary_encode(spans(data, starts[long], starts[long] + sizes[long]))
+        number = np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.uint64)
+        codes[long] = _LONG | number
+    return codes
+
+
+def _chars(wide: Wide, starts: np.ndarray, ends: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per word: its code points, that is its bytes less those after the first of each code
+    point beyond ASCII (few in most text); per such code point, the word holding it or -1."""
+    chars: np.ndarray = ends - starts
+    word = np.full(len(wide.at), -1, dtype=np.int64)
+    if len(wide.at) and len(starts):
+        word = np.searchsorted(starts, wide.at, side="right") - 1
+        inside = (word >= 0) & (wide.at < ends[np.maximum(word, 0)])  # not a wide whitespace character
+        word[~inside] = -1
+        held, extra = word[inside], wide.size[inside] - 1  # held is non-decreasing (wide.at is)
+        if len(held):
+            run = np.flatnonzero(np.diff(held, prepend=-1) != 0)  # the first code point of each word holding some
+            chars[held[run]] -= np.add.reduceat(extra, run)
+    return chars, word
+
+
+def _cut(docs: pa.Array) -> WordTable:
+    data, offsets = utf8_buffers(docs)
+    wide = wide_code_points(docs)
+    if not len(data):
+        none = np.zeros(0, np.int64)
+        first = np.zeros(len(docs) + 1, np.int64)
+        return WordTable(data, none, none, none, first, np.zeros(0, np.uint64), none, wide, none)
+    starts, ends = _bounds(docs, data, offsets)
+    first = np.searchsorted(starts, offsets).astype(np.int64)
+    doc = np.repeat(np.arange(len(docs), dtype=np.int64), np.diff(first))
+    chars, wide_word = _chars(wide, starts, ends)
+    return WordTable(data, starts, ends, doc, first, _codes(data, starts, ends - starts), chars, wide, wide_word)
