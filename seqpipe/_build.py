@@ -353,6 +353,26 @@ def _input_hashes(
 SMALL_INPUT: Final = 1 << 20  # read whole to hash: a memory map costs more than the read
 
 
+def _read_small(f: Path | str, size: int) -> tuple[bytes, os.stat_result]:
+    """A small file's bytes and its stat taken from the open file after the read: one ``os.read``
+    of the listed size and a byte more, read on to the end when the stat then disagrees with the
+    bytes (a file that grew, or a short read). With many small inputs, Python's buffered file
+    object costs as much as the read itself."""
+    fd = os.open(f, os.O_RDONLY | getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_BINARY", 0))
+    try:
+        data = os.read(fd, size + 1)
+        st = os.fstat(fd)
+        if len(data) != st.st_size:
+            more = [data]
+            while chunk := os.read(fd, 1 << 20):
+                more.append(chunk)
+            data = b"".join(more)
+            st = os.fstat(fd)
+        return data, st
+    finally:
+        os.close(fd)
+
+
 def _hash_input(f: Path | str, stamp: list[int] | None, hold: bool = False) -> tuple[str, list[int] | None]:
     """``hash_file(f)`` and the file's change stamp after it was read (what the bytes hashed
     belong to); a small local file read in one call instead of mapped, its stamp from the open
@@ -360,9 +380,7 @@ def _hash_input(f: Path | str, stamp: list[int] | None, hold: bool = False) -> t
     (``sources._stream.hold_input``)."""
     if stamp is not None and stamp[0] < SMALL_INPUT and not is_uri(f):
         try:
-            with open(f, "rb") as fh:
-                data = fh.read()
-                st = os.fstat(fh.fileno())
+            data, st = _read_small(f, stamp[0])
         except OSError:
             pass  # hash_file raises the error the build reports
         else:

@@ -607,3 +607,15 @@ def test_glob_base_is_the_fixed_directory_part(pattern: str, base: str) -> None:
     from seqpipe.sources.base import glob_base
 
     assert glob_base(pattern) == base
+
+
+def test_small_input_read_equals_the_file_bytes(tmp_path: Path) -> None:
+    """_read_small returns a file's bytes whether it is as listed, grew or shrank since."""
+    from seqpipe._build import _read_small
+
+    f = tmp_path / "a.txt"
+    for body in (b"", b"x", b"ferry log\n" * 300):
+        f.write_bytes(body)
+        for listed in (0, max(len(body) - 5, 0), len(body), len(body) + 9):
+            data, st = _read_small(str(f), listed)
+            assert data == body and st.st_size == len(body)
