@@ -31,9 +31,11 @@ from typing import Final
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from seqpipe.errors import TokenizerError
 from seqpipe.progress import bar
+from seqpipe.tokenizers._fast_chunking import _code_points
 
 Pair = tuple[int, int]
 # A merge seen at no more slots than this runs in plain Python (see _Chain); tests set it to 0
@@ -301,8 +303,7 @@ class _Chain:
         (count and positions); return their heap entries."""
         if not len(codes):
             return []
-        order = np.argsort(codes, kind="stable")  # stable: slots stay ascending within a pair
-        codes, slots = codes[order], slots[order]
+        codes, slots = _by_pair(codes, slots, len(self.sym))
         starts = np.flatnonzero(np.concatenate([[True], codes[1:] != codes[:-1]]))
         totals = np.add.reduceat(self.weight[slots], starts)
         stops = np.append(starts[1:], len(codes))
@@ -485,6 +486,21 @@ class _Chain:
         return self.sym[:n][alive], offsets
 
 
+def _by_pair(codes: np.ndarray, slots: np.ndarray, span: int) -> tuple[np.ndarray, np.ndarray]:
+    """``codes`` and ``slots`` ordered by pair, slots ascending within a pair (``slots`` below ``span``).
+
+    Where ``code * span + slot`` fits in 63 bits, one plain sort of those keys does it: the keys
+    are distinct, so an unstable sort gives the order a stable argsort would, without the gathers."""
+    top = int(codes.max()) if len(codes) else 0
+    if top < (2**62) // max(span, 1):
+        keys = codes * span + slots
+        keys.sort()
+        by_code = keys // span
+        return by_code, keys - by_code * span
+    order = np.argsort(codes, kind="stable")  # stable: slots stay ascending within a pair
+    return codes[order], slots[order]
+
+
 def _beside(left: np.ndarray, right: np.ndarray, left_ok: np.ndarray, right_ok: np.ndarray) -> np.ndarray:
     """The slots ``left[i]``, ``right[i]`` of every occurrence ``i`` where ``ok``, ascending and
     each once. Occurrences are ascending and do not overlap, so ``right[i - 1] <= left[i]``, equal
@@ -509,38 +525,58 @@ def _left_to_right(pos: np.ndarray, nxt: np.ndarray) -> np.ndarray:
 
 
 # -- the symbols training starts from -------------------------------------------
-def read_counts(counts: pa.Table) -> tuple[list[bytes], np.ndarray]:
-    """Chunk keys (corpus order) and their counts from a ``key, count`` table."""
+def read_counts(counts: pa.Table) -> tuple[pa.Array, np.ndarray]:
+    """Chunk keys (corpus order, one binary array) and their counts from a ``key, count`` table."""
     if "key" not in counts.column_names or "count" not in counts.column_names:
         raise TokenizerError(f"chunk counts need columns 'key' and 'count', got {counts.column_names}")
-    keys = [bytes(k) for k in counts.column("key").to_pylist()]
+    column = counts.column("key")
+    binary = (
+        pa.large_binary()
+        if pa.types.is_large_binary(column.type) or pa.types.is_large_string(column.type)
+        else pa.binary()
+    )
+    keys = column.combine_chunks().cast(binary) if column.num_chunks != 1 else column.chunk(0).cast(binary)
+    if keys.null_count:
+        raise TokenizerError("chunk counts hold a null key; every row needs a chunk")
     freqs = counts.column("count").to_numpy().astype(np.int64)
     if len(freqs) and freqs.min() < 1:
         raise TokenizerError("chunk counts must be positive")
     return keys, freqs
 
 
+def _bytes_of(keys: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """The bytes of all ``keys`` (binary, no nulls) one after another, and each key's length."""
+    if not len(keys):
+        return np.zeros(0, np.uint8), np.zeros(0, np.int64)
+    width = np.int64 if pa.types.is_large_binary(keys.type) else np.int32
+    _, offset_buffer, data_buffer = keys.buffers()
+    offsets = np.frombuffer(offset_buffer, dtype=width)[keys.offset : keys.offset + len(keys) + 1].astype(np.int64)
+    if data_buffer is None:  # every key empty
+        return np.zeros(0, np.uint8), np.diff(offsets)
+    data = np.frombuffer(data_buffer, dtype=np.uint8)[offsets[0] : offsets[-1]]
+    return data, np.diff(offsets)
+
+
 def byte_symbols(
-    keys: list[bytes], freqs: np.ndarray, n_reserved: int
+    keys: pa.Array, freqs: np.ndarray, n_reserved: int
 ) -> tuple[list[bytes], np.ndarray, np.ndarray, np.ndarray]:
     """Alphabet of all 256 bytes, byte counts, and the chunks as byte ids (flat) with their lengths."""
-    data = np.frombuffer(b"".join(keys), dtype=np.uint8)
-    lengths = np.fromiter(map(len, keys), dtype=np.int64, count=len(keys))
+    data, lengths = _bytes_of(keys)
     counts = np.bincount(data, weights=np.repeat(freqs, lengths), minlength=256).astype(np.int64)
     return [bytes([b]) for b in range(256)], counts, data.astype(np.int64) + n_reserved, lengths
 
 
 def char_symbols(
-    keys: list[bytes], freqs: np.ndarray, n_reserved: int, marker: str
+    keys: pa.Array, freqs: np.ndarray, n_reserved: int, marker: str
 ) -> tuple[list[bytes], np.ndarray, np.ndarray, np.ndarray]:
     """Alphabet of the characters seen (code-point order) plus the marker, counts, and the chunks
     as ids (flat, the marker ending each) with their lengths."""
     try:
-        texts = [k.decode("utf-8") for k in keys]
-    except UnicodeDecodeError as exc:
+        lengths = pc.utf8_length(keys.cast(pa.large_string())).to_numpy().astype(np.int64)  # the cast checks UTF-8
+    except pa.ArrowInvalid as exc:
         raise TokenizerError(f"a chunk key is not UTF-8 ({exc}); base = 'chars' needs text keys") from exc
-    points = np.frombuffer("".join(texts).encode("utf-32-le"), dtype="<u4").astype(np.int64)
-    lengths = np.fromiter(map(len, texts), dtype=np.int64, count=len(texts))
+    data, _ = _bytes_of(keys)
+    points = _code_points(data, np.flatnonzero((data & 0xC0) != 0x80))
     # a table over code points up to the largest seen (at most 0x10FFFF entries) numbers the
     # characters in code-point order without sorting every character of every chunk
     weighted = np.bincount(points, weights=np.repeat(freqs, lengths)) if len(points) else np.zeros(0)
