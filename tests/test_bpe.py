@@ -858,3 +858,25 @@ def test_pairs_grouped_by_one_sort_match_a_stable_argsort() -> None:
         order = np.argsort(codes, kind="stable")
         got_codes, got_slots = _bpe_train._by_pair(codes, slots, 10_000)
         assert got_codes.tolist() == codes[order].tolist() and got_slots.tolist() == slots[order].tolist()
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.lists(st.integers(0, 5), min_size=0, max_size=6), min_size=1, max_size=8), st.integers(1, 3))
+def test_heap_entries_order_as_count_then_first_slot_then_pair(words: list[list[int]], weight: int) -> None:
+    """The integer heap entries decode to each kept pair's (count, first slot, code) found by
+    brute force, and sort as the tuples (-count, first slot, code) do."""
+    flat = np.array([s for w in words for s in w], np.int64)
+    lengths = np.array([len(w) for w in words], np.int64)
+    freqs = np.arange(weight, weight + len(words), dtype=np.int64)
+    chain = _bpe_train._Chain.index(flat, lengths, freqs, 6, 2)
+    want: dict[int, list[int]] = {}
+    at = 0
+    for w, f in zip(words, freqs.tolist(), strict=True):
+        for i in range(len(w) - 1):
+            seen = want.setdefault(w[i] * 6 + w[i + 1], [0, at + i])
+            seen[0] += f
+        at += len(w)
+    tuples = sorted((-c, first, code) for code, (c, first) in want.items() if c >= 2)
+    shift, bits = chain.count_shift, chain.code_bits
+    keys = sorted(chain.heap())
+    assert [(k >> shift, (k >> bits) & ((1 << (shift - bits)) - 1), k & ((1 << bits) - 1)) for k in keys] == tuples

@@ -180,7 +180,8 @@ def learn(
     then position within the chunk. Only integers are compared, so the result does not depend on
     ``PYTHONHASHSEED``. ``show``: a progress bar counting merges.
 
-    Heap keys are ``(-count, first slot, pair code)``; a slot (see :class:`_Chain`) orders
+    Heap keys are ``(-count, first slot, pair code)``, packed in one integer (``HeapEntry``); a
+    slot (see :class:`_Chain`) orders
     occurrences by row, then position, and does not move when symbols before it merge. A merge
     creates pairs only with its new id, so an existing pair never gains: its count and first
     occurrence change only by losses, so an entry pushed with the true key is exact while its
@@ -197,24 +198,27 @@ def learn(
         pbar.set_postfix_str("counting pairs")  # the bar is up before the one long step that precedes merging
         chain = _Chain.index(flat, lengths, freqs, max(limit, len(tokens)), min_count)
         heap = chain.heap()
-        width = chain.width
+        width, code_bits, count_shift = chain.width, chain.code_bits, chain.count_shift
+        code_mask, slot_mask = (1 << code_bits) - 1, (1 << (count_shift - code_bits)) - 1
         pbar.set_postfix_str("")
         loose: set[int] = set()  # pairs whose entry's first slot may be too early
         while heap and len(tokens) < limit:
-            neg, slot, code = heapq.heappop(heap)
+            key = heapq.heappop(heap)
+            code = key & code_mask
             c = chain.count.get(code, 0)
             if c < min_count:
                 loose.discard(code)
                 continue  # counts only fall, so the pair is done
-            if c != -neg:
-                heapq.heappush(heap, (-c, slot, code))  # the old first slot is still a lower bound
+            if c != -(key >> count_shift):
+                # the old first slot is still a lower bound
+                heapq.heappush(heap, (-c << count_shift) + (key & ((1 << count_shift) - 1)))
                 loose.add(code)
                 continue
             if code in loose:
                 loose.discard(code)
                 first = chain.first(code)
-                if first != slot:
-                    heapq.heappush(heap, (-c, first, code))
+                if first != (key >> code_bits) & slot_mask:
+                    heapq.heappush(heap, (-c << count_shift) + (first << code_bits) + code)
                     continue
             a, b = divmod(code, width)
             z = len(tokens)
@@ -228,7 +232,10 @@ def learn(
     return Learned(merges=merges, merge_counts=merge_counts, tokens=tokens, symbols=symbols, offsets=offsets)
 
 
-HeapEntry = tuple[int, int, int]  # (-count, first slot, pair code)
+# A heap entry is one integer ordered as the tuple (-count, first slot, pair code) is:
+# ``(-count << count_shift) + (first slot << code_bits) + code``, each field in its own bits
+# (see _Chain), so the heap compares plain integers.
+HeapEntry = int
 # Where a pair was seen: an array, or a short list of slots (a pair born in a small merge, where
 # making an array costs more than it saves).
 Slots = np.ndarray | list[int]
@@ -272,6 +279,8 @@ class _Chain:
     groups: dict[int, tuple[int, int]]  # pair -> its range in sorted_slots
     added: dict[int, list[Slots]] = field(default_factory=dict)
     firsts: list[HeapEntry] = field(default_factory=list)
+    code_bits: int = 0  # a pair code fits in this many bits, a slot in count_shift - code_bits
+    count_shift: int = 0
 
     @classmethod
     def index(cls, flat: np.ndarray, lengths: np.ndarray, freqs: np.ndarray, width: int, min_count: int) -> _Chain:
@@ -295,6 +304,8 @@ class _Chain:
         twins = tuple(array.array("q", a.tobytes()) for a in (sym, nxt, prv, weight))
         sym, nxt, prv, weight = (np.frombuffer(t, dtype=np.int64) for t in twins)  # one memory, two views
         chain = cls(sym, nxt, prv, weight, twins, width, min_count, {}, np.empty(0, np.int64), {})  # type: ignore[arg-type]
+        chain.code_bits = (width * width).bit_length()
+        chain.count_shift = chain.code_bits + len(sym).bit_length()
         chain.firsts = chain._group(codes, left, keep_slots=True)
         return chain
 
@@ -320,7 +331,8 @@ class _Chain:
         else:
             for code, lo, hi in zip(kept_codes, starts[keep].tolist(), stops[keep].tolist(), strict=True):
                 self.added[code] = [slots[lo:hi]]
-        return [(-t, f, c) for c, t, f in zip(kept_codes, kept_totals, kept_firsts, strict=True)]
+        shift, bits = self.count_shift, self.code_bits
+        return [(-t << shift) + (f << bits) + c for c, t, f in zip(kept_codes, kept_totals, kept_firsts, strict=True)]
 
     def heap(self) -> list[HeapEntry]:
         """The heap of the pairs counted by :meth:`index`."""
@@ -400,6 +412,7 @@ class _Chain:
         n, width = len(sym) - 1, self.width
         a, b = divmod(code, width)
         count, min_count, added, groups = self.count, self.min_count, self.added, self.groups
+        shift, bits = self.count_shift, self.code_bits
         born: dict[int, list[int]] = {}  # new pair -> [count, slots...] (ascending)
         last = -1  # the slot of the last merge
         for s in _ascending(parts):
@@ -458,7 +471,7 @@ class _Chain:
             if total >= min_count:
                 count[c] = total
                 added[c] = [slots]
-                entries.append((-total, slots[0], c))
+                entries.append((-total << shift) + (slots[0] << bits) + c)
         return entries
 
     def _lose(self, totals: Iterable[tuple[int, int]]) -> None:
