@@ -181,8 +181,8 @@ def learn(
     ``PYTHONHASHSEED``. ``show``: a progress bar counting merges.
 
     Heap keys are ``(-count, first slot, pair code)``, packed in one integer (``HeapEntry``); a
-    slot (see :class:`_Chain`) orders
-    occurrences by row, then position, and does not move when symbols before it merge. A merge
+    slot (see :class:`_Chain`) orders occurrences by row, then position, and does not move when
+    symbols before it merge. A merge
     creates pairs only with its new id, so an existing pair never gains: its count and first
     occurrence change only by losses, so an entry pushed with the true key is exact while its
     count is current. A popped entry with a stale count is pushed back with the current count and
@@ -414,6 +414,7 @@ class _Chain:
         count, min_count, added, groups = self.count, self.min_count, self.added, self.groups
         shift, bits = self.count_shift, self.code_bits
         born: dict[int, list[int]] = {}  # new pair -> [count, slots...] (ascending)
+        bw, mw = b * width, merged * width
         last = -1  # the slot of the last merge
         for s in _ascending(parts):
             if sym[s] != a:
@@ -426,7 +427,8 @@ class _Chain:
             # a lost pair's count falls at once; one that falls below min_count is forgotten there
             # (counts only fall, so it could not come back); the merged pair's own count is gone
             if p != n and p != last:
-                c = sym[p] * width + a
+                x = sym[p] * width
+                c = x + a
                 k = count.get(c)
                 if k is not None and c != code:
                     if k - w >= min_count:
@@ -435,7 +437,7 @@ class _Chain:
                         del count[c]
                         added.pop(c, None)
                         groups.pop(c, None)
-                c = sym[p] * width + merged
+                c = x + merged
                 seen = born.get(c)
                 if seen is None:
                     born[c] = [w, p]
@@ -444,7 +446,8 @@ class _Chain:
                     seen.append(p)
             after = nxt[r]
             if after != n:
-                c = b * width + sym[after]
+                y = sym[after]
+                c = bw + y
                 k = count.get(c)
                 if k is not None and c != code:
                     if k - w >= min_count:
@@ -454,7 +457,7 @@ class _Chain:
                         added.pop(c, None)
                         groups.pop(c, None)
                 # the symbol after is final unless the next occurrence starts there
-                c = merged * width + (merged if sym[after] == a and sym[nxt[after]] == b else sym[after])
+                c = mw + (merged if y == a and sym[nxt[after]] == b else y)
                 seen = born.get(c)
                 if seen is None:
                     born[c] = [w, s]
@@ -467,11 +470,12 @@ class _Chain:
             nxt[s] = after
             last = s
         entries: list[HeapEntry] = []
-        for c, (total, *slots) in born.items():
-            if total >= min_count:
+        for c, seen in born.items():
+            total = seen[0]
+            if total >= min_count:  # most pairs born late in training occur once: no copy for those
                 count[c] = total
-                added[c] = [slots]
-                entries.append((-total << shift) + (slots[0] << bits) + c)
+                added[c] = [seen[1:]]
+                entries.append((-total << shift) + (seen[1] << bits) + c)
         return entries
 
     def _lose(self, totals: Iterable[tuple[int, int]]) -> None:
