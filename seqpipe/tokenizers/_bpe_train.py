@@ -353,7 +353,8 @@ class _Chain:
         pos = np.concatenate(parts) if len(parts) > 1 else np.asarray(parts[0], dtype=np.int64)
         a, b = divmod(code, self.width)
         found: np.ndarray = pos[(self.sym[pos] == a) & (self.sym[self.nxt[pos]] == b)]
-        found.sort()
+        if len(parts) > 1:  # one part is ascending already
+            found.sort()
         return found
 
     def first(self, code: int) -> int:
@@ -523,8 +524,10 @@ def _beside(left: np.ndarray, right: np.ndarray, left_ok: np.ndarray, right_ok: 
     each once. Occurrences are ascending and do not overlap, so ``right[i - 1] <= left[i]``, equal
     only where two occurrences share the slot between them: interleaving sorts, and dropping a
     slot equal to the one before it removes the repeats (no sort needed)."""
-    both = np.stack([left, right], axis=1).ravel()
-    ok = np.stack([left_ok, right_ok], axis=1).ravel()
+    both = np.empty(2 * len(left), dtype=left.dtype)
+    both[0::2], both[1::2] = left, right
+    ok = np.empty(2 * len(left), dtype=bool)
+    ok[0::2], ok[1::2] = left_ok, right_ok
     ok[1:] &= both[1:] != both[:-1]
     kept: np.ndarray = both[ok]
     return kept
