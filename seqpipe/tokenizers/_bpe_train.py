@@ -301,7 +301,7 @@ class _Chain:
         weight[:n] = np.repeat(np.asarray(freqs, dtype=np.int64), lengths)
         left = np.flatnonzero(nxt[:n] != n)
         codes = sym[left] * width + sym[left + 1]
-        twins = tuple(array.array("q", a.tobytes()) for a in (sym, nxt, prv, weight))
+        twins = tuple(_twin(a) for a in (sym, nxt, prv, weight))
         sym, nxt, prv, weight = (np.frombuffer(t, dtype=np.int64) for t in twins)  # one memory, two views
         chain = cls(sym, nxt, prv, weight, twins, width, min_count, {}, np.empty(0, np.int64), {})  # type: ignore[arg-type]
         chain.code_bits = (width * width).bit_length()
@@ -502,6 +502,13 @@ class _Chain:
         offsets = np.zeros(rows + 1, dtype=np.int64)
         np.cumsum(np.bincount(row_of[alive], minlength=rows), out=offsets[1:])
         return self.sym[:n][alive], offsets
+
+
+def _twin(values: np.ndarray) -> array.array[int]:
+    """An ``array.array`` copy of int64 ``values``, copied once straight from their memory."""
+    twin = array.array("q")
+    twin.frombytes(np.ascontiguousarray(values, dtype=np.int64).data.cast("B"))
+    return twin
 
 
 def _by_pair(codes: np.ndarray, slots: np.ndarray, span: int) -> tuple[np.ndarray, np.ndarray]:
