@@ -241,14 +241,6 @@ HeapEntry = int
 Slots = np.ndarray | list[int]
 
 
-def _ascending(parts: list[Slots]) -> list[int]:
-    """The slots of ``parts``, ascending, as Python ints (each part is ascending as stored)."""
-    if len(parts) == 1:
-        only = parts[0]
-        return only if isinstance(only, list) else only.tolist()
-    return sorted(itertools.chain.from_iterable(p if isinstance(p, list) else p.tolist() for p in parts))
-
-
 @dataclass(slots=True)
 class _Chain:
     """The training chunks as one doubly linked list of symbol slots, with pair counts and positions.
@@ -258,9 +250,8 @@ class _Chain:
     row order, then position order, for ever. ``nxt``/``prv`` link the live slots of a chunk;
     slot ``n`` is a sentinel (symbol -1) that ends every chunk. A pair is the integer code
     ``left * width + right``. Per pair kept (count at least ``min_count``): its count, and the
-    slots where it was seen (a slice of the sorted first index plus arrays or lists added as it
-    appeared elsewhere, each ascending; stale slots are dropped when read, by checking the symbols
-    there).
+    ascending slots where it was seen (a slice of the sorted first index, or an array or list
+    made when it appeared; stale slots are dropped when read, by checking the symbols there).
 
     A merge of many occurrences runs as numpy array operations; most merges late in training
     have a few occurrences, where a numpy call costs more than the work, so those run as plain
@@ -277,7 +268,7 @@ class _Chain:
     count: dict[int, int]
     sorted_slots: np.ndarray  # slots of the first index, grouped by pair
     groups: dict[int, tuple[int, int]]  # pair -> its range in sorted_slots
-    added: dict[int, list[Slots]] = field(default_factory=dict)
+    added: dict[int, Slots] = field(default_factory=dict)
     firsts: list[HeapEntry] = field(default_factory=list)
     code_bits: int = 0  # a pair code fits in this many bits, a slot in count_shift - code_bits
     count_shift: int = 0
@@ -330,7 +321,7 @@ class _Chain:
             )
         else:
             for code, lo, hi in zip(kept_codes, starts[keep].tolist(), stops[keep].tolist(), strict=True):
-                self.added[code] = [slots[lo:hi]]
+                self.added[code] = slots[lo:hi]
         shift, bits = self.count_shift, self.code_bits
         return [(-t << shift) + (f << bits) + c for c, t, f in zip(kept_codes, kept_totals, kept_firsts, strict=True)]
 
@@ -340,45 +331,45 @@ class _Chain:
         heapq.heapify(heap)
         return heap
 
-    def _seen(self, code: int) -> list[Slots]:
-        """The position lists of pair ``code`` (taken out: the caller puts back what it keeps)."""
-        parts = self.added.pop(code, [])
-        span = self.groups.pop(code, None)
-        if span is not None:
-            parts.append(self.sorted_slots[span[0] : span[1]])
-        return parts
+    def _seen(self, code: int) -> Slots:
+        """The slots where pair ``code`` was seen (taken out: the caller puts back what it keeps).
+        A pair is in ``added`` or in ``groups``, never both: a pair appears after the first index
+        only with a merge's new id, so it is never one the index saw."""
+        slots = self.added.pop(code, None)
+        if slots is not None:
+            return slots
+        lo, hi = self.groups.pop(code)
+        return self.sorted_slots[lo:hi]
 
-    def _where(self, parts: list[Slots], code: int) -> np.ndarray:
-        """Ascending slots of ``parts`` where pair ``code`` occurs now."""
-        pos = np.concatenate(parts) if len(parts) > 1 else np.asarray(parts[0], dtype=np.int64)
+    def _where(self, slots: Slots, code: int) -> np.ndarray:
+        """Ascending slots of ``slots`` where pair ``code`` occurs now."""
+        pos = np.asarray(slots, dtype=np.int64)
         a, b = divmod(code, self.width)
         found: np.ndarray = pos[(self.sym[pos] == a) & (self.sym[self.nxt[pos]] == b)]
-        if len(parts) > 1:  # one part is ascending already
-            found.sort()
         return found
 
     def first(self, code: int) -> int:
         """The slot of the pair's first occurrence now (its positions compacted on the way)."""
-        parts = self._seen(code)
-        if all(isinstance(p, list) for p in parts):
+        slots = self._seen(code)
+        if isinstance(slots, list):
             sym, nxt = self.twins[0], self.twins[1]
             a, b = divmod(code, self.width)
-            live = [s for s in _ascending(parts) if sym[s] == a and sym[nxt[s]] == b]
-            self.added[code] = [live]
+            live = [s for s in slots if sym[s] == a and sym[nxt[s]] == b]
+            self.added[code] = live
             return live[0]
-        pos = self._where(parts, code)
-        self.added[code] = [pos]
+        pos = self._where(slots, code)
+        self.added[code] = pos
         return int(pos[0])
 
     def merge(self, code: int, merged: int) -> list[HeapEntry]:
         """Replace pair ``code`` by ``merged`` everywhere (left to right within a chunk); update
         the counts; return heap entries of the pairs that appeared and reach ``min_count``."""
-        parts = self._seen(code)
+        slots = self._seen(code)
         del self.count[code]
-        if sum(map(len, parts)) <= FEW:
-            return self._few(parts, code, merged)
+        if len(slots) <= FEW:
+            return self._few(slots, code, merged)
         sym, nxt, prv, n = self.sym, self.nxt, self.prv, len(self.sym) - 1
-        pos = self._where(parts, code)
+        pos = self._where(slots, code)
         if len(pos) > 1 and code // self.width == code % self.width:
             pos = _left_to_right(pos, nxt)
         right = nxt[pos]
@@ -400,7 +391,7 @@ class _Chain:
         gained = _beside(before, pos, before != n, after != n)
         return self._group(sym[gained] * self.width + sym[nxt[gained]], gained)
 
-    def _few(self, parts: list[Slots], code: int, merged: int) -> list[HeapEntry]:
+    def _few(self, slots: Slots, code: int, merged: int) -> list[HeapEntry]:
         """:meth:`merge` for a pair seen at a few slots, in plain Python (same result), in one pass.
 
         Occurrences are merged in slot order as they are found. A later occurrence's own two
@@ -417,7 +408,7 @@ class _Chain:
         born: dict[int, list[int]] = {}  # new pair -> [count, slots...] (ascending)
         bw, mw = b * width, merged * width
         last = -1  # the slot of the last merge
-        for s in _ascending(parts):
+        for s in slots if isinstance(slots, list) else slots.tolist():
             if sym[s] != a:
                 continue
             r = nxt[s]
@@ -475,7 +466,7 @@ class _Chain:
             total = seen[0]
             if total >= min_count:  # most pairs born late in training occur once: no copy for those
                 count[c] = total
-                added[c] = [seen[1:]]
+                added[c] = seen[1:]
                 entries.append((-total << shift) + (seen[1] << bits) + c)
         return entries
 
