@@ -35,7 +35,6 @@ import pyarrow.compute as pc
 
 from seqpipe.errors import TokenizerError
 from seqpipe.progress import bar
-from seqpipe.tokenizers._fast_chunking import _code_points
 
 Pair = tuple[int, int]
 # A merge seen at no more slots than this runs in plain Python (see _Chain); tests set it to 0
@@ -594,7 +593,8 @@ def char_symbols(
     except pa.ArrowInvalid as exc:
         raise TokenizerError(f"a chunk key is not UTF-8 ({exc}); base = 'chars' needs text keys") from exc
     data, _ = _bytes_of(keys)
-    points = _code_points(data, np.flatnonzero((data & 0xC0) != 0x80))
+    # each key is UTF-8 (checked above), so their bytes one after another decode as one text
+    points = np.frombuffer(data.tobytes().decode("utf-8").encode("utf-32-le"), dtype="<u4").astype(np.int64)
     # a table over code points up to the largest seen (at most 0x10FFFF entries) numbers the
     # characters in code-point order without sorting every character of every chunk
     weighted = np.bincount(points, weights=np.repeat(freqs, lengths)) if len(points) else np.zeros(0)
