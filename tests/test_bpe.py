@@ -813,3 +813,70 @@ def test_merging_many_chunks_together_equals_one_by_one(texts: list[str], base: 
     finally:
         setattr(bpe_module, "BATCH_MISSES", saved)  # noqa: B010
     assert np.array_equal(together[0], one_by_one[0]) and np.array_equal(together[1], one_by_one[1])
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.lists(st.text(min_size=0, max_size=6), min_size=1, max_size=12), st.integers(0, 3), st.booleans())
+def test_start_symbols_read_from_arrow_keys_match_decoding_each_key(words: list[str], skip: int, large: bool) -> None:
+    """Chars and bytes start symbols read from the keys' Arrow buffers (sliced, chunked, large or
+    not) equal those found by decoding each key in Python."""
+    words = [w.encode("utf-8", "surrogatepass").decode("utf-8", "replace") for w in words]
+    raw = [w.encode("utf-8") for w in ["lead", *words]]
+    kind = pa.large_binary() if large else pa.binary()
+    whole = pa.array(raw, kind)  # one chunk read at an offset, or two chunks joined
+    column = pa.chunked_array([whole] if skip % 2 else [whole.slice(0, 1), whole.slice(1)])
+    counts = pa.table({"key": column.slice(skip), "count": pa.array(range(1, len(raw) + 1), pa.int64())[skip:]})
+    keys, freqs = _bpe_train.read_counts(counts)
+    want = raw[skip:]
+    assert keys.to_pylist() == want and freqs.tolist() == list(range(1 + skip, len(raw) + 1))
+    alphabet, alpha_counts, flat, lengths = _bpe_train.char_symbols(keys, freqs, 3, "")
+    chars = sorted({c for k in want for c in k.decode("utf-8")})
+    assert alphabet == [c.encode("utf-8") for c in chars]
+    assert lengths.tolist() == [len(k.decode("utf-8")) for k in want]
+    assert flat.tolist() == [3 + chars.index(c) for k in want for c in k.decode("utf-8")]
+    assert alpha_counts.tolist() == [
+        sum(f * k.decode("utf-8").count(c) for k, f in zip(want, freqs, strict=True)) for c in chars
+    ]
+    _, _, byte_flat, byte_lengths = _bpe_train.byte_symbols(keys, freqs, 3)
+    assert byte_flat.tolist() == [3 + b for k in want for b in k] and byte_lengths.tolist() == list(map(len, want))
+
+
+def test_chars_base_refuses_keys_that_are_not_utf8() -> None:
+    """A chunk key that is not UTF-8 under base 'chars' is a TokenizerError saying so."""
+    keys, freqs = _bpe_train.read_counts(pa.table({"key": pa.array([b"ok", b"\xff\xfe"]), "count": [1, 2]}))
+    with pytest.raises(TokenizerError, match="not UTF-8"):
+        _bpe_train.char_symbols(keys, freqs, 0, "")
+
+
+def test_pairs_grouped_by_one_sort_match_a_stable_argsort() -> None:
+    """Grouping pairs through one sort of combined keys, and the fallback for codes too large to
+    combine, both order as a stable argsort of the codes does (slots ascending within a pair)."""
+    rng = np.random.default_rng(7)
+    slots = np.sort(rng.choice(10_000, size=3_000, replace=False)).astype(np.int64)
+    for top in (50, 2**61):
+        codes = rng.integers(0, 40, size=len(slots)).astype(np.int64) * (top // 40)
+        order = np.argsort(codes, kind="stable")
+        got_codes, got_slots = _bpe_train._by_pair(codes, slots, 10_000)
+        assert got_codes.tolist() == codes[order].tolist() and got_slots.tolist() == slots[order].tolist()
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.lists(st.integers(0, 5), min_size=0, max_size=6), min_size=1, max_size=8), st.integers(1, 3))
+def test_heap_entries_order_as_count_then_first_slot_then_pair(words: list[list[int]], weight: int) -> None:
+    """The integer heap entries decode to each kept pair's (count, first slot, code) found by
+    brute force, and sort as the tuples (-count, first slot, code) do."""
+    flat = np.array([s for w in words for s in w], np.int64)
+    lengths = np.array([len(w) for w in words], np.int64)
+    freqs = np.arange(weight, weight + len(words), dtype=np.int64)
+    chain = _bpe_train._Chain.index(flat, lengths, freqs, 6, 2)
+    want: dict[int, list[int]] = {}
+    at = 0
+    for w, f in zip(words, freqs.tolist(), strict=True):
+        for i in range(len(w) - 1):
+            seen = want.setdefault(w[i] * 6 + w[i + 1], [0, at + i])
+            seen[0] += f
+        at += len(w)
+    tuples = sorted((-c, first, code) for code, (c, first) in want.items() if c >= 2)
+    shift, bits = chain.count_shift, chain.code_bits
+    keys = sorted(chain.heap())
+    assert [(k >> shift, (k >> bits) & ((1 << (shift - bits)) - 1), k & ((1 << bits) - 1)) for k in keys] == tuples

@@ -31,6 +31,7 @@ from typing import Final
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from seqpipe.errors import TokenizerError
 from seqpipe.progress import bar
@@ -178,8 +179,9 @@ def learn(
     then position within the chunk. Only integers are compared, so the result does not depend on
     ``PYTHONHASHSEED``. ``show``: a progress bar counting merges.
 
-    Heap keys are ``(-count, first slot, pair code)``; a slot (see :class:`_Chain`) orders
-    occurrences by row, then position, and does not move when symbols before it merge. A merge
+    Heap keys are ``(-count, first slot, pair code)``, packed in one integer (``HeapEntry``); a
+    slot (see :class:`_Chain`) orders occurrences by row, then position, and does not move when
+    symbols before it merge. A merge
     creates pairs only with its new id, so an existing pair never gains: its count and first
     occurrence change only by losses, so an entry pushed with the true key is exact while its
     count is current. A popped entry with a stale count is pushed back with the current count and
@@ -195,24 +197,27 @@ def learn(
         pbar.set_postfix_str("counting pairs")  # the bar is up before the one long step that precedes merging
         chain = _Chain.index(flat, lengths, freqs, max(limit, len(tokens)), min_count)
         heap = chain.heap()
-        width = chain.width
+        width, code_bits, count_shift = chain.width, chain.code_bits, chain.count_shift
+        code_mask, slot_mask = (1 << code_bits) - 1, (1 << (count_shift - code_bits)) - 1
         pbar.set_postfix_str("")
         loose: set[int] = set()  # pairs whose entry's first slot may be too early
         while heap and len(tokens) < limit:
-            neg, slot, code = heapq.heappop(heap)
+            key = heapq.heappop(heap)
+            code = key & code_mask
             c = chain.count.get(code, 0)
             if c < min_count:
                 loose.discard(code)
                 continue  # counts only fall, so the pair is done
-            if c != -neg:
-                heapq.heappush(heap, (-c, slot, code))  # the old first slot is still a lower bound
+            if c != -(key >> count_shift):
+                # the old first slot is still a lower bound
+                heapq.heappush(heap, (-c << count_shift) + (key & ((1 << count_shift) - 1)))
                 loose.add(code)
                 continue
             if code in loose:
                 loose.discard(code)
                 first = chain.first(code)
-                if first != slot:
-                    heapq.heappush(heap, (-c, first, code))
+                if first != (key >> code_bits) & slot_mask:
+                    heapq.heappush(heap, (-c << count_shift) + (first << code_bits) + code)
                     continue
             a, b = divmod(code, width)
             z = len(tokens)
@@ -226,18 +231,13 @@ def learn(
     return Learned(merges=merges, merge_counts=merge_counts, tokens=tokens, symbols=symbols, offsets=offsets)
 
 
-HeapEntry = tuple[int, int, int]  # (-count, first slot, pair code)
+# A heap entry is one integer ordered as the tuple (-count, first slot, pair code) is:
+# ``(-count << count_shift) + (first slot << code_bits) + code``, each field in its own bits
+# (see _Chain), so the heap compares plain integers.
+HeapEntry = int
 # Where a pair was seen: an array, or a short list of slots (a pair born in a small merge, where
 # making an array costs more than it saves).
 Slots = np.ndarray | list[int]
-
-
-def _ascending(parts: list[Slots]) -> list[int]:
-    """The slots of ``parts``, ascending, as Python ints (each part is ascending as stored)."""
-    if len(parts) == 1:
-        only = parts[0]
-        return only if isinstance(only, list) else only.tolist()
-    return sorted(itertools.chain.from_iterable(p if isinstance(p, list) else p.tolist() for p in parts))
 
 
 @dataclass(slots=True)
@@ -249,9 +249,8 @@ class _Chain:
     row order, then position order, for ever. ``nxt``/``prv`` link the live slots of a chunk;
     slot ``n`` is a sentinel (symbol -1) that ends every chunk. A pair is the integer code
     ``left * width + right``. Per pair kept (count at least ``min_count``): its count, and the
-    slots where it was seen (a slice of the sorted first index plus arrays or lists added as it
-    appeared elsewhere, each ascending; stale slots are dropped when read, by checking the symbols
-    there).
+    ascending slots where it was seen (a slice of the sorted first index, or an array or list
+    made when it appeared; stale slots are dropped when read, by checking the symbols there).
 
     A merge of many occurrences runs as numpy array operations; most merges late in training
     have a few occurrences, where a numpy call costs more than the work, so those run as plain
@@ -268,8 +267,10 @@ class _Chain:
     count: dict[int, int]
     sorted_slots: np.ndarray  # slots of the first index, grouped by pair
     groups: dict[int, tuple[int, int]]  # pair -> its range in sorted_slots
-    added: dict[int, list[Slots]] = field(default_factory=dict)
+    added: dict[int, Slots] = field(default_factory=dict)
     firsts: list[HeapEntry] = field(default_factory=list)
+    code_bits: int = 0  # a pair code fits in this many bits, a slot in count_shift - code_bits
+    count_shift: int = 0
 
     @classmethod
     def index(cls, flat: np.ndarray, lengths: np.ndarray, freqs: np.ndarray, width: int, min_count: int) -> _Chain:
@@ -290,9 +291,11 @@ class _Chain:
         weight[:n] = np.repeat(np.asarray(freqs, dtype=np.int64), lengths)
         left = np.flatnonzero(nxt[:n] != n)
         codes = sym[left] * width + sym[left + 1]
-        twins = tuple(array.array("q", a.tobytes()) for a in (sym, nxt, prv, weight))
+        twins = tuple(_twin(a) for a in (sym, nxt, prv, weight))
         sym, nxt, prv, weight = (np.frombuffer(t, dtype=np.int64) for t in twins)  # one memory, two views
         chain = cls(sym, nxt, prv, weight, twins, width, min_count, {}, np.empty(0, np.int64), {})  # type: ignore[arg-type]
+        chain.code_bits = (width * width).bit_length()
+        chain.count_shift = chain.code_bits + len(sym).bit_length()
         chain.firsts = chain._group(codes, left, keep_slots=True)
         return chain
 
@@ -301,8 +304,7 @@ class _Chain:
         (count and positions); return their heap entries."""
         if not len(codes):
             return []
-        order = np.argsort(codes, kind="stable")  # stable: slots stay ascending within a pair
-        codes, slots = codes[order], slots[order]
+        codes, slots = _by_pair(codes, slots, len(self.sym))
         starts = np.flatnonzero(np.concatenate([[True], codes[1:] != codes[:-1]]))
         totals = np.add.reduceat(self.weight[slots], starts)
         stops = np.append(starts[1:], len(codes))
@@ -318,8 +320,9 @@ class _Chain:
             )
         else:
             for code, lo, hi in zip(kept_codes, starts[keep].tolist(), stops[keep].tolist(), strict=True):
-                self.added[code] = [slots[lo:hi]]
-        return [(-t, f, c) for c, t, f in zip(kept_codes, kept_totals, kept_firsts, strict=True)]
+                self.added[code] = slots[lo:hi]
+        shift, bits = self.count_shift, self.code_bits
+        return [(-t << shift) + (f << bits) + c for c, t, f in zip(kept_codes, kept_totals, kept_firsts, strict=True)]
 
     def heap(self) -> list[HeapEntry]:
         """The heap of the pairs counted by :meth:`index`."""
@@ -327,44 +330,45 @@ class _Chain:
         heapq.heapify(heap)
         return heap
 
-    def _seen(self, code: int) -> list[Slots]:
-        """The position lists of pair ``code`` (taken out: the caller puts back what it keeps)."""
-        parts = self.added.pop(code, [])
-        span = self.groups.pop(code, None)
-        if span is not None:
-            parts.append(self.sorted_slots[span[0] : span[1]])
-        return parts
+    def _seen(self, code: int) -> Slots:
+        """The slots where pair ``code`` was seen (taken out: the caller puts back what it keeps).
+        A pair is in ``added`` or in ``groups``, never both: a pair appears after the first index
+        only with a merge's new id, so it is never one the index saw."""
+        slots = self.added.pop(code, None)
+        if slots is not None:
+            return slots
+        lo, hi = self.groups.pop(code)
+        return self.sorted_slots[lo:hi]
 
-    def _where(self, parts: list[Slots], code: int) -> np.ndarray:
-        """Ascending slots of ``parts`` where pair ``code`` occurs now."""
-        pos = np.concatenate(parts) if len(parts) > 1 else np.asarray(parts[0], dtype=np.int64)
+    def _where(self, slots: Slots, code: int) -> np.ndarray:
+        """Ascending slots of ``slots`` where pair ``code`` occurs now."""
+        pos = np.asarray(slots, dtype=np.int64)
         a, b = divmod(code, self.width)
         found: np.ndarray = pos[(self.sym[pos] == a) & (self.sym[self.nxt[pos]] == b)]
-        found.sort()
         return found
 
     def first(self, code: int) -> int:
         """The slot of the pair's first occurrence now (its positions compacted on the way)."""
-        parts = self._seen(code)
-        if all(isinstance(p, list) for p in parts):
+        slots = self._seen(code)
+        if isinstance(slots, list):
             sym, nxt = self.twins[0], self.twins[1]
             a, b = divmod(code, self.width)
-            live = [s for s in _ascending(parts) if sym[s] == a and sym[nxt[s]] == b]
-            self.added[code] = [live]
+            live = [s for s in slots if sym[s] == a and sym[nxt[s]] == b]
+            self.added[code] = live
             return live[0]
-        pos = self._where(parts, code)
-        self.added[code] = [pos]
+        pos = self._where(slots, code)
+        self.added[code] = pos
         return int(pos[0])
 
     def merge(self, code: int, merged: int) -> list[HeapEntry]:
         """Replace pair ``code`` by ``merged`` everywhere (left to right within a chunk); update
         the counts; return heap entries of the pairs that appeared and reach ``min_count``."""
-        parts = self._seen(code)
+        slots = self._seen(code)
         del self.count[code]
-        if sum(map(len, parts)) <= FEW:
-            return self._few(parts, code, merged)
+        if len(slots) <= FEW:
+            return self._few(slots, code, merged)
         sym, nxt, prv, n = self.sym, self.nxt, self.prv, len(self.sym) - 1
-        pos = self._where(parts, code)
+        pos = self._where(slots, code)
         if len(pos) > 1 and code // self.width == code % self.width:
             pos = _left_to_right(pos, nxt)
         right = nxt[pos]
@@ -386,7 +390,7 @@ class _Chain:
         gained = _beside(before, pos, before != n, after != n)
         return self._group(sym[gained] * self.width + sym[nxt[gained]], gained)
 
-    def _few(self, parts: list[Slots], code: int, merged: int) -> list[HeapEntry]:
+    def _few(self, slots: Slots, code: int, merged: int) -> list[HeapEntry]:
         """:meth:`merge` for a pair seen at a few slots, in plain Python (same result), in one pass.
 
         Occurrences are merged in slot order as they are found. A later occurrence's own two
@@ -399,9 +403,11 @@ class _Chain:
         n, width = len(sym) - 1, self.width
         a, b = divmod(code, width)
         count, min_count, added, groups = self.count, self.min_count, self.added, self.groups
+        shift, bits = self.count_shift, self.code_bits
         born: dict[int, list[int]] = {}  # new pair -> [count, slots...] (ascending)
+        bw, mw = b * width, merged * width
         last = -1  # the slot of the last merge
-        for s in _ascending(parts):
+        for s in slots if isinstance(slots, list) else slots.tolist():
             if sym[s] != a:
                 continue
             r = nxt[s]
@@ -412,7 +418,8 @@ class _Chain:
             # a lost pair's count falls at once; one that falls below min_count is forgotten there
             # (counts only fall, so it could not come back); the merged pair's own count is gone
             if p != n and p != last:
-                c = sym[p] * width + a
+                x = sym[p] * width
+                c = x + a
                 k = count.get(c)
                 if k is not None and c != code:
                     if k - w >= min_count:
@@ -421,7 +428,7 @@ class _Chain:
                         del count[c]
                         added.pop(c, None)
                         groups.pop(c, None)
-                c = sym[p] * width + merged
+                c = x + merged
                 seen = born.get(c)
                 if seen is None:
                     born[c] = [w, p]
@@ -430,7 +437,8 @@ class _Chain:
                     seen.append(p)
             after = nxt[r]
             if after != n:
-                c = b * width + sym[after]
+                y = sym[after]
+                c = bw + y
                 k = count.get(c)
                 if k is not None and c != code:
                     if k - w >= min_count:
@@ -440,7 +448,7 @@ class _Chain:
                         added.pop(c, None)
                         groups.pop(c, None)
                 # the symbol after is final unless the next occurrence starts there
-                c = merged * width + (merged if sym[after] == a and sym[nxt[after]] == b else sym[after])
+                c = mw + (merged if y == a and sym[nxt[after]] == b else y)
                 seen = born.get(c)
                 if seen is None:
                     born[c] = [w, s]
@@ -453,11 +461,12 @@ class _Chain:
             nxt[s] = after
             last = s
         entries: list[HeapEntry] = []
-        for c, (total, *slots) in born.items():
-            if total >= min_count:
+        for c, seen in born.items():
+            total = seen[0]
+            if total >= min_count:  # most pairs born late in training occur once: no copy for those
                 count[c] = total
-                added[c] = [slots]
-                entries.append((-total, slots[0], c))
+                added[c] = seen[1:]
+                entries.append((-total << shift) + (seen[1] << bits) + c)
         return entries
 
     def _lose(self, totals: Iterable[tuple[int, int]]) -> None:
@@ -485,13 +494,37 @@ class _Chain:
         return self.sym[:n][alive], offsets
 
 
+def _twin(values: np.ndarray) -> array.array[int]:
+    """An ``array.array`` copy of int64 ``values``, copied once straight from their memory."""
+    twin = array.array("q")
+    twin.frombytes(np.ascontiguousarray(values, dtype=np.int64).data.cast("B"))
+    return twin
+
+
+def _by_pair(codes: np.ndarray, slots: np.ndarray, span: int) -> tuple[np.ndarray, np.ndarray]:
+    """``codes`` and ``slots`` ordered by pair, slots ascending within a pair (``slots`` below ``span``).
+
+    Where ``code * span + slot`` fits in 63 bits, one plain sort of those keys does it: the keys
+    are distinct, so an unstable sort gives the order a stable argsort would, without the gathers."""
+    top = int(codes.max()) if len(codes) else 0
+    if top < (2**62) // max(span, 1):
+        keys = codes * span + slots
+        keys.sort()
+        by_code = keys // span
+        return by_code, keys - by_code * span
+    order = np.argsort(codes, kind="stable")  # stable: slots stay ascending within a pair
+    return codes[order], slots[order]
+
+
 def _beside(left: np.ndarray, right: np.ndarray, left_ok: np.ndarray, right_ok: np.ndarray) -> np.ndarray:
     """The slots ``left[i]``, ``right[i]`` of every occurrence ``i`` where ``ok``, ascending and
     each once. Occurrences are ascending and do not overlap, so ``right[i - 1] <= left[i]``, equal
     only where two occurrences share the slot between them: interleaving sorts, and dropping a
     slot equal to the one before it removes the repeats (no sort needed)."""
-    both = np.stack([left, right], axis=1).ravel()
-    ok = np.stack([left_ok, right_ok], axis=1).ravel()
+    both = np.empty(2 * len(left), dtype=left.dtype)
+    both[0::2], both[1::2] = left, right
+    ok = np.empty(2 * len(left), dtype=bool)
+    ok[0::2], ok[1::2] = left_ok, right_ok
     ok[1:] &= both[1:] != both[:-1]
     kept: np.ndarray = both[ok]
     return kept
@@ -509,38 +542,59 @@ def _left_to_right(pos: np.ndarray, nxt: np.ndarray) -> np.ndarray:
 
 
 # -- the symbols training starts from -------------------------------------------
-def read_counts(counts: pa.Table) -> tuple[list[bytes], np.ndarray]:
-    """Chunk keys (corpus order) and their counts from a ``key, count`` table."""
+def read_counts(counts: pa.Table) -> tuple[pa.Array, np.ndarray]:
+    """Chunk keys (corpus order, one binary array) and their counts from a ``key, count`` table."""
     if "key" not in counts.column_names or "count" not in counts.column_names:
         raise TokenizerError(f"chunk counts need columns 'key' and 'count', got {counts.column_names}")
-    keys = [bytes(k) for k in counts.column("key").to_pylist()]
+    column = counts.column("key")
+    binary = (
+        pa.large_binary()
+        if pa.types.is_large_binary(column.type) or pa.types.is_large_string(column.type)
+        else pa.binary()
+    )
+    keys = column.combine_chunks().cast(binary) if column.num_chunks != 1 else column.chunk(0).cast(binary)
+    if keys.null_count:
+        raise TokenizerError("chunk counts hold a null key; every row needs a chunk")
     freqs = counts.column("count").to_numpy().astype(np.int64)
     if len(freqs) and freqs.min() < 1:
         raise TokenizerError("chunk counts must be positive")
     return keys, freqs
 
 
+def _bytes_of(keys: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """The bytes of all ``keys`` (binary, no nulls) one after another, and each key's length."""
+    if not len(keys):
+        return np.zeros(0, np.uint8), np.zeros(0, np.int64)
+    width = np.int64 if pa.types.is_large_binary(keys.type) else np.int32
+    _, offset_buffer, data_buffer = keys.buffers()
+    offsets = np.frombuffer(offset_buffer, dtype=width)[keys.offset : keys.offset + len(keys) + 1].astype(np.int64)
+    if data_buffer is None:  # every key empty
+        return np.zeros(0, np.uint8), np.diff(offsets)
+    data = np.frombuffer(data_buffer, dtype=np.uint8)[offsets[0] : offsets[-1]]
+    return data, np.diff(offsets)
+
+
 def byte_symbols(
-    keys: list[bytes], freqs: np.ndarray, n_reserved: int
+    keys: pa.Array, freqs: np.ndarray, n_reserved: int
 ) -> tuple[list[bytes], np.ndarray, np.ndarray, np.ndarray]:
     """Alphabet of all 256 bytes, byte counts, and the chunks as byte ids (flat) with their lengths."""
-    data = np.frombuffer(b"".join(keys), dtype=np.uint8)
-    lengths = np.fromiter(map(len, keys), dtype=np.int64, count=len(keys))
+    data, lengths = _bytes_of(keys)
     counts = np.bincount(data, weights=np.repeat(freqs, lengths), minlength=256).astype(np.int64)
     return [bytes([b]) for b in range(256)], counts, data.astype(np.int64) + n_reserved, lengths
 
 
 def char_symbols(
-    keys: list[bytes], freqs: np.ndarray, n_reserved: int, marker: str
+    keys: pa.Array, freqs: np.ndarray, n_reserved: int, marker: str
 ) -> tuple[list[bytes], np.ndarray, np.ndarray, np.ndarray]:
     """Alphabet of the characters seen (code-point order) plus the marker, counts, and the chunks
     as ids (flat, the marker ending each) with their lengths."""
     try:
-        texts = [k.decode("utf-8") for k in keys]
-    except UnicodeDecodeError as exc:
+        lengths = pc.utf8_length(keys.cast(pa.large_string())).to_numpy().astype(np.int64)  # the cast checks UTF-8
+    except pa.ArrowInvalid as exc:
         raise TokenizerError(f"a chunk key is not UTF-8 ({exc}); base = 'chars' needs text keys") from exc
-    points = np.frombuffer("".join(texts).encode("utf-32-le"), dtype="<u4").astype(np.int64)
-    lengths = np.fromiter(map(len, texts), dtype=np.int64, count=len(texts))
+    data, _ = _bytes_of(keys)
+    # each key is UTF-8 (checked above), so their bytes one after another decode as one text
+    points = np.frombuffer(data.tobytes().decode("utf-8").encode("utf-32-le"), dtype="<u4").astype(np.int64)
     # a table over code points up to the largest seen (at most 0x10FFFF entries) numbers the
     # characters in code-point order without sorting every character of every chunk
     weighted = np.bincount(points, weights=np.repeat(freqs, lengths)) if len(points) else np.zeros(0)

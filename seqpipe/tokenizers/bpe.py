@@ -247,9 +247,9 @@ class BpeTokenizer(Tokenizer):
             )
         keys, freqs = read_counts(counts)
         if self.literal_reserved:
-            reserved = {n.encode("utf-8") for n in self.reserved_names}
-            kept = [i for i, k in enumerate(keys) if k not in reserved]
-            keys, freqs = [keys[i] for i in kept], freqs[kept]
+            reserved = pa.array([n.encode("utf-8") for n in self.reserved_names], keys.type)
+            kept = pc.invert(pc.is_in(keys, value_set=reserved))
+            keys, freqs = keys.filter(kept), freqs[kept.to_numpy(zero_copy_only=False)]
         reserved_tokens, roles = reserved_table(spec)
         n_reserved = len(reserved_tokens)
         if self.base == "bytes":
@@ -276,7 +276,7 @@ class BpeTokenizer(Tokenizer):
         )
         encoder = BpeEncoder(self, vocabulary, learned.merges, alphabet_size=len(alphabet))
         # training already segmented every train chunk: encoding them later is a table look-up
-        encoder._known = Known(pa.array(keys, pa.binary()), learned.symbols, learned.offsets)
+        encoder._known = Known(keys.cast(pa.binary()), learned.symbols, learned.offsets)
         return encoder
 
     # -- storage ---------------------------------------------------------------
