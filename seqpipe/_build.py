@@ -93,7 +93,7 @@ from seqpipe.ingest import (
 from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
-from seqpipe.shards import id_dtype, sync_tree
+from seqpipe.shards import id_dtype, sync_tree, write_table
 from seqpipe.sources._stream import hold_input, release_inputs
 from seqpipe.sources.base import Part
 from seqpipe.splits import fixed_split_of
@@ -931,7 +931,8 @@ def fit(recipe: Recipe, counts: pa.Table, stage: Path, *, show: bool = False) ->
     vocab = encoder.vocabulary
     for stale in (VOCAB_FILE, *OPTIONAL_TOP):
         (stage / stale).unlink(missing_ok=True)
-    vocab.save(stage / VOCAB_FILE)
+    # no fsync: count_train_ids rewrites it, and publish_dataset syncs the stage before publishing
+    write_table(stage / VOCAB_FILE, vocab.to_table(), durable=False)
     files = tuple(encoder.save(stage))
     return Fitted(len(vocab), id_dtype(len(vocab)).name, files)
 
@@ -1023,7 +1024,8 @@ def count_train_ids(stage: Path, sharded: Sharded) -> None:
     from seqpipe.vocab import Vocabulary
 
     vocab = Vocabulary.load(stage / VOCAB_FILE)
-    dataclasses.replace(vocab, counts=sharded.train_id_counts).save(stage / VOCAB_FILE)
+    table = dataclasses.replace(vocab, counts=sharded.train_id_counts).to_table()
+    write_table(stage / VOCAB_FILE, table, durable=False)  # synced with the stage, at publish
 
 
 def _summed(tables: Iterator[dict[str, int]]) -> dict[str, int]:
@@ -1097,7 +1099,9 @@ def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fi
     except OSError as exc:
         raise OutputWriteError(f"{stage / MANIFEST_NAME}: cannot write it ({exc})", path=str(stage)) from exc
     entries = [VOCAB_FILE, *fitted.files, DOCS_DIR, SHARDS_DIR]
-    sync_tree(stage, [*entries, MANIFEST_NAME])  # documents tables, manifest and directories not yet synced
+    # the staged files and the directories inside the entries; the stage itself needs none, since
+    # publish renames every entry out of it and syncs the output directory they land in
+    sync_tree(stage, [*entries, MANIFEST_NAME], root_dir=False)
     # old entries the new build lacks (tokenizer.arrow) go in publish, after the old manifest
     publish(out, stage, entries, MANIFEST_NAME)
     shutil.rmtree(stage, ignore_errors=True)
