@@ -507,21 +507,27 @@ def _input_files(
 ) -> tuple[list[tuple[int, Path | str, str]], tuple[dict[str, str], ...], list[list[int] | None]]:
     """(source index, file, recorded name) for each input, in recipe order then each source's
     sorted order (a file two sources match is read once, by the first); the matches skipped
-    as not files; and per input its change stamp when listing it gave one (one ``lstat`` of a
-    local file that is not a symlink is both its identity and its stamp; None: ask again).
-    The name is the file's path relative to its glob's fixed directory (Source.resolve_named),
-    never to the recipe."""
+    as not files; and per input its change stamp when listing it gave one (the walk's one
+    ``lstat`` of a local file that is not a symlink is both its identity and its stamp; None:
+    ask again). The name is the file's path relative to its glob's fixed directory
+    (Source.resolve_named), never to the recipe."""
     files: list[tuple[int, Path | str, str]] = []  # a local path (str), or a filesystem URI
     stamps: list[list[int] | None] = []
     seen: set[Path | str] = set()
     skipped: dict[str, str] = {}
     parents: dict[str, str] = {}  # each directory resolved once, not each file's path
     for si, source in enumerate(recipe.sources):
-        resolved = source.resolve_all(recipe.root, as_str=True)
+        resolved = source.resolve_all(recipe.root, as_str=True, stamped=True)
         for rel, what in resolved.skipped:
             skipped.setdefault(rel, what)
-        for f, name in zip(resolved.files, resolved.names, strict=True):
-            same, stamp = _identity(f, parents)
+        if len(recipe.sources) == 1 and len(source.paths) == 1 and None not in resolved.stamps:
+            # one walk of plain files: it enters each real directory once, so no two of its
+            # files are the same file and none needs its identity
+            files.extend(zip([si] * len(resolved.files), resolved.files, resolved.names, strict=True))
+            stamps.extend(resolved.stamps)
+            continue
+        for f, name, listed in zip(resolved.files, resolved.names, resolved.stamps, strict=True):
+            same, stamp = _identity(f, listed, parents)
             if same not in seen:
                 seen.add(same)
                 files.append((si, f, name))
@@ -531,18 +537,21 @@ def _input_files(
     return files, tuple({"path": p, "what": w} for p, w in sorted(skipped.items())), stamps
 
 
-def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[int] | None]:
+def _identity(f: Path | str, listed: list[int] | None, parents: dict[str, str]) -> tuple[Path | str, list[int] | None]:
     """``filesystem.identity(f)``, resolving each directory once: a file that is not a symlink
     is its resolved directory joined with its name. With it, the file's change stamp
-    (``filesystem.change_stamp``) when the one ``lstat`` gave it (a local file, not a symlink)."""
+    (``filesystem.change_stamp``) when one ``lstat`` gave it (a local file, not a symlink):
+    ``listed``, the walk's, or else one taken here."""
     if is_uri(f):
         return identity(f), None
-    try:
-        st = os.lstat(f)
-    except OSError:
-        return identity(f), None  # the stamp asked later reports the error
-    if stat.S_ISLNK(st.st_mode):  # as a str, so it equals the same file's name found directly
-        return os.fspath(identity(f)), None
+    if listed is None:
+        try:
+            st = os.lstat(f)
+        except OSError:
+            return identity(f), None  # the stamp asked later reports the error
+        if stat.S_ISLNK(st.st_mode):  # as a str, so it equals the same file's name found directly
+            return os.fspath(identity(f)), None
+        listed = [st.st_size, st.st_mtime_ns, st.st_ino]
     text = os.fspath(f)
     cut = text.rfind(os.sep) + 1  # os.path.split without its calls; the head is only resolved
     head, name = text[:cut], text[cut:]
@@ -550,7 +559,7 @@ def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[
     if real is None:  # with its separator, so each file's name is one concatenation
         real = parents[head] = os.path.join(os.path.realpath(head or "."), "")
     # a str never equal to a URI (those start with a scheme)
-    return real + name, [st.st_size, st.st_mtime_ns, st.st_ino]
+    return real + name, listed
 
 
 def plan_build(
@@ -701,7 +710,11 @@ def _stored_plan(
             return None
         sizes = [stamp[0] for stamp in stamps if stamp is not None]
         rows = zip(body["inputs"], body["starts"], body["stops"], strict=True)
-        members = [Member(i, str(files[i][1]), Part(a, b), tuple(stamps[i] or ())) for i, a, b in rows]
+        # most inputs are read whole: one shared (immutable) part for them, not one each
+        members = [
+            Member(i, str(files[i][1]), WHOLE_PART if a == 0 and b is None else Part(a, b), tuple(stamps[i] or ()))
+            for i, a, b in rows
+        ]
         parts = []
         at = 0
         for si, key, weight, n in body["parts"]:
