@@ -33,7 +33,7 @@ import stat
 import time
 from collections.abc import Iterator, Sequence
 from concurrent.futures import Executor, ThreadPoolExecutor
-from contextlib import AbstractContextManager, nullcontext
+from contextlib import AbstractContextManager, nullcontext, suppress
 from dataclasses import dataclass, field
 from functools import partial
 from pathlib import Path
@@ -69,7 +69,7 @@ from seqpipe._parse import to_plain
 from seqpipe._reuse import VocabSource, adopt_vocabulary, open_vocab_source, reused_entry, vocabulary_fingerprint
 from seqpipe._runner import View, run, run_beside
 from seqpipe.counts import CountMerger
-from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SourceMissingError
+from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SeqpipeError, SourceMissingError
 from seqpipe.executors import InlineExecutor, TaskPool, task_pool
 from seqpipe.filesystem import change_stamp, file_size, identity, is_uri
 from seqpipe.formats import DOCS_DIR, OPTIONAL_TOP, SHARDS_DIR, VOCAB_FILE
@@ -81,6 +81,7 @@ from seqpipe.ingest import (
     Member,
     PartMeta,
     count_part,
+    counts_file,
     encode_part,
     encoded_dir,
     ingest_part,
@@ -93,7 +94,7 @@ from seqpipe.ingest import (
 from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
-from seqpipe.shards import id_dtype, sync_tree, write_table
+from seqpipe.shards import id_dtype, read_table, sync_tree, write_table
 from seqpipe.sources._stream import hold_input, release_inputs
 from seqpipe.sources.base import Part
 from seqpipe.splits import fixed_split_of
@@ -924,18 +925,73 @@ def _merge_counted(merger: CountMerger, _: int, counted: tuple[pa.Table, int]) -
 
 def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: CountMerger) -> pa.Table:
     """Count the parts not counted at ingest into ``merger``; the corpus-wide ``(key, count)``
-    table in first-occurrence order."""
-    cache = str(ctx.cache)
-    tasks = [
-        CountTask(cache, plan.tasks[i].key, i, ctx.recipe, None, _fixed(ctx.recipe, plan.tasks[i]))
-        for i in ingested.recount
-    ]
-    merger.expect(len(tasks))
-    fn, work = _masked(kept, tasks, count=True)
-    run(ctx.pool.executor, ctx.show, fn, work, View("counting"), each=partial(_merge_counted, merger))
-    if merger.train_documents == 0:
+    table in first-occurrence order (taken from the cache when these very parts made it)."""
+    key = _counts_key(ctx.recipe, plan)
+    stored = _stored_counts(ctx.cache, key) if key is not None else None
+    if stored is not None:
+        counts, train_documents = stored
+    else:
+        cache = str(ctx.cache)
+        tasks = [
+            CountTask(cache, plan.tasks[i].key, i, ctx.recipe, None, _fixed(ctx.recipe, plan.tasks[i]))
+            for i in ingested.recount
+        ]
+        merger.expect(len(tasks))
+        fn, work = _masked(kept, tasks, count=True)
+        run(ctx.pool.executor, ctx.show, fn, work, View("counting"), each=partial(_merge_counted, merger))
+        counts, train_documents = merger.result() if merger.train_documents else None, merger.train_documents
+    if train_documents == 0 or counts is None:
         raise EmptyCorpusError("the train split is empty: add documents or raise splits.train")
-    return merger.result()
+    if stored is None and key is not None:
+        _store_counts(ctx.cache, key, counts, train_documents)
+    return counts
+
+
+MERGED_COUNTS: Final = "counts.arrow"
+
+
+def _counts_key(recipe: Recipe, plan: Plan) -> str | None:
+    """What the corpus counts follow from when no document is dropped after ingest: every
+    part's key in corpus order (content, source, cleaning, tokenizer) and the splits settings
+    (in the count files' name); None when dedupe or overlap removal drop documents."""
+    if _has_dedupe(recipe) or recipe.splits.exclude_overlap_from_train:
+        return None
+    return hash_json({"format": PART_FORMAT, "counts": counts_file(recipe), "parts": [t.key for t in plan.tasks]})
+
+
+def _stored_counts(cache: Path, key: str) -> tuple[pa.Table, int] | None:
+    """The corpus counts and train documents the cache keeps (the last build's) when ``key``
+    made them and they read back whole; else None (merged again)."""
+    try:
+        table = read_table(cache / MERGED_COUNTS, memory_map=False)
+        meta = table.schema.metadata or {}
+        if meta.get(b"seqpipe.parts") != key.encode() or meta.get(b"seqpipe.hash") != _counts_hash(table):
+            return None
+        return table.replace_schema_metadata(None), int(meta[b"seqpipe.train_documents"])
+    except (OSError, SeqpipeError, pa.ArrowException, KeyError, ValueError):
+        return None
+
+
+def _store_counts(cache: Path, key: str, counts: pa.Table, train_documents: int) -> None:
+    """Keep the corpus counts for a rebuild of the same parts (one file: a new vocabulary then
+    merges no part's table). Without fsync: a torn file fails its hash and is merged again."""
+    meta = {"seqpipe.parts": key, "seqpipe.hash": _counts_hash(counts), "seqpipe.train_documents": str(train_documents)}
+    with suppress(OutputWriteError):  # a cache that cannot be written is only slower
+        write_table(cache / MERGED_COUNTS, counts.replace_schema_metadata(meta), durable=False)
+
+
+def _counts_hash(table: pa.Table) -> bytes:
+    """A hash of a count table's keys and counts, whatever buffers hold them (checked when the
+    stored one is read back)."""
+    keys = table.column("key").combine_chunks()
+    offsets = np.frombuffer(keys.buffers()[1], np.int32)[keys.offset : keys.offset + len(keys) + 1]
+    digest = xxhash.xxh3_128()
+    digest.update((offsets - offsets[0]).tobytes())
+    data = keys.buffers()[2]
+    if data is not None:
+        digest.update(memoryview(data)[int(offsets[0]) : int(offsets[-1])])
+    digest.update(table.column("count").to_numpy().astype(np.int64, copy=False).tobytes())
+    return digest.hexdigest().encode()
 
 
 def fit(recipe: Recipe, counts: pa.Table, stage: Path, *, show: bool = False) -> Fitted:

@@ -177,7 +177,7 @@ def _flat_entries(entries: list[Any] | tuple[Any, ...], indent: str) -> list[str
             columns.append([_ESCAPE(v) if type(v) is str else int.__repr__(v) for v in values])
         else:
             return None
-    return list(map(template.__mod__, zip(*columns)))
+    return list(map(template.__mod__, zip(*columns, strict=True)))
 
 
 def _depth(obj: Any, level: int = 0) -> int:
