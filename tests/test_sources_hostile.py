@@ -131,6 +131,21 @@ def test_a_walk_stamps_plain_files_as_change_stamp_does_and_leaves_symlinks_to_b
     assert glob_local(tmp_path, "logs/**/*.txt").stamps == ()
 
 
+def test_one_glob_resolved_as_str_lists_what_the_general_path_lists(tmp_path: Path) -> None:
+    """resolve_all(as_str=True) of one glob (the one-walk path) gives the same files (as str),
+    names, order and stamps as the general path (as_str=False, and a second glob that adds nothing)."""
+    from seqpipe.filesystem import change_stamp
+
+    for rel in ("logs/b-c.txt", "logs/b/a.txt", "logs/b/z.txt", "logs/a.txt", "logs/deep/er/x.txt"):
+        (tmp_path / rel).parent.mkdir(parents=True, exist_ok=True)
+        (tmp_path / rel).write_text("ferry\n")
+    fast = TextSource(paths="logs/**/*.txt").resolve_all(tmp_path, as_str=True, stamped=True)
+    general = TextSource(paths=["logs/**/*.txt", "logs/a.txt"]).resolve_all(tmp_path, stamped=True)
+    assert fast.files == [str(p) for p in general.files]
+    assert fast.names == general.names == ("a.txt", "b-c.txt", "b/a.txt", "b/z.txt", "deep/er/x.txt")
+    assert list(fast.stamps) == [change_stamp(p) for p in general.files] == list(general.stamps)
+
+
 def test_a_plain_file_two_sources_match_is_one_input(tmp_path: Path) -> None:
     """A plain file (no symlink) that a second source's glob matches again is read once, by the
     first source (the check one walk of one source may skip)."""

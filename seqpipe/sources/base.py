@@ -35,7 +35,7 @@ import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str, parse_str_tuple, to_plain
 from seqpipe.errors import InvalidUtf8Error, RecipeError, SourceError, SourceMissingError
-from seqpipe.filesystem import SourcePath, glob_local, glob_uri, is_uri
+from seqpipe.filesystem import LocalMatches, SourcePath, glob_local, glob_uri, is_uri
 
 DEFAULT_MAX_DOCUMENT_BYTES: Final = 64 << 20
 DEFAULT_BATCH_BYTES: Final = 1 << 20
@@ -146,6 +146,24 @@ def _joined(top: str, key: str) -> str:
     return top + key if top.endswith("/") else top + "/" + key
 
 
+def _one_walk(
+    matches: LocalMatches, top: str, base: str, skipped: tuple[tuple[str, str], ...], stamped: bool
+) -> Resolved:
+    """``Source.resolve_all`` of one local glob (its files ``str``, its matches normalized, its
+    fixed part ``base``): one walk names no file twice, so no key is looked up, and each list
+    is one pass (a corpus of many files)."""
+    keys = matches.files
+    order = sorted(range(len(keys)), key=keys.__getitem__)  # the walk's order is nearly sorted
+    ordered = [keys[i] for i in order]
+    lead = top if top.endswith("/") else top + "/"
+    files: list[SourcePath] = [key if key.startswith("/") else lead + key for key in ordered]
+    under = _prefix(base)
+    cut = len(under)
+    names = tuple(key[cut:] if under and key.startswith(under) else _recorded_name(key, base) for key in ordered)
+    stamps = tuple(matches.stamps[i] for i in order) if stamped else ()
+    return Resolved(files, skipped, names, stamps)
+
+
 def _posix_key(path: str) -> str:
     """A glob match's normalized POSIX path (its sort key)."""
     path = os.path.normpath(path)
@@ -250,6 +268,8 @@ class Source(ABC):
             under = _prefix(base)
             # a walk's matches are normalized already unless the fixed part climbs ("..")
             normal = os.sep == "/" and ".." not in pattern.split("/")
+            if len(self.paths) == 1 and normal and as_str and under and top != ".":
+                return _one_walk(matches, top, base, tuple(sorted(skipped.items())), stamped)
             stamps = matches.stamps or (None,) * len(matches.files)
             for hit, stamp in zip(matches.files, stamps, strict=True):
                 key = hit if normal else _posix_key(hit)
