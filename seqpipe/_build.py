@@ -33,7 +33,7 @@ import stat
 import time
 from collections.abc import Iterator, Sequence
 from concurrent.futures import Executor, ThreadPoolExecutor
-from contextlib import AbstractContextManager, nullcontext
+from contextlib import AbstractContextManager, nullcontext, suppress
 from dataclasses import dataclass, field
 from functools import partial
 from pathlib import Path
@@ -69,7 +69,7 @@ from seqpipe._parse import to_plain
 from seqpipe._reuse import VocabSource, adopt_vocabulary, open_vocab_source, reused_entry, vocabulary_fingerprint
 from seqpipe._runner import View, run, run_beside
 from seqpipe.counts import CountMerger
-from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SourceMissingError
+from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SeqpipeError, SourceMissingError
 from seqpipe.executors import InlineExecutor, TaskPool, task_pool
 from seqpipe.filesystem import change_stamp, file_size, identity, is_uri
 from seqpipe.formats import DOCS_DIR, OPTIONAL_TOP, SHARDS_DIR, VOCAB_FILE
@@ -81,6 +81,7 @@ from seqpipe.ingest import (
     Member,
     PartMeta,
     count_part,
+    counts_file,
     encode_part,
     encoded_dir,
     ingest_part,
@@ -93,7 +94,7 @@ from seqpipe.ingest import (
 from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
-from seqpipe.shards import id_dtype, sync_tree
+from seqpipe.shards import id_dtype, read_table, sync_tree, write_table
 from seqpipe.sources._stream import hold_input, release_inputs
 from seqpipe.sources.base import Part
 from seqpipe.splits import fixed_split_of
@@ -525,21 +526,27 @@ def _input_files(
 ) -> tuple[list[tuple[int, Path | str, str]], tuple[dict[str, str], ...], list[list[int] | None]]:
     """(source index, file, recorded name) for each input, in recipe order then each source's
     sorted order (a file two sources match is read once, by the first); the matches skipped
-    as not files; and per input its change stamp when listing it gave one (one ``lstat`` of a
-    local file that is not a symlink is both its identity and its stamp; None: ask again).
-    The name is the file's path relative to its glob's fixed directory (Source.resolve_named),
-    never to the recipe."""
+    as not files; and per input its change stamp when listing it gave one (the walk's one
+    ``lstat`` of a local file that is not a symlink is both its identity and its stamp; None:
+    ask again). The name is the file's path relative to its glob's fixed directory
+    (Source.resolve_named), never to the recipe."""
     files: list[tuple[int, Path | str, str]] = []  # a local path (str), or a filesystem URI
     stamps: list[list[int] | None] = []
     seen: set[Path | str] = set()
     skipped: dict[str, str] = {}
     parents: dict[str, str] = {}  # each directory resolved once, not each file's path
     for si, source in enumerate(recipe.sources):
-        resolved = source.resolve_all(recipe.root, as_str=True)
+        resolved = source.resolve_all(recipe.root, as_str=True, stamped=True)
         for rel, what in resolved.skipped:
             skipped.setdefault(rel, what)
-        for f, name in zip(resolved.files, resolved.names, strict=True):
-            same, stamp = _identity(f, parents)
+        if len(recipe.sources) == 1 and len(source.paths) == 1 and None not in resolved.stamps:
+            # one walk of plain files: it enters each real directory once, so no two of its
+            # files are the same file and none needs its identity
+            files.extend(zip([si] * len(resolved.files), resolved.files, resolved.names, strict=True))
+            stamps.extend(resolved.stamps)
+            continue
+        for f, name, listed in zip(resolved.files, resolved.names, resolved.stamps, strict=True):
+            same, stamp = _identity(f, listed, parents)
             if same not in seen:
                 seen.add(same)
                 files.append((si, f, name))
@@ -549,18 +556,21 @@ def _input_files(
     return files, tuple({"path": p, "what": w} for p, w in sorted(skipped.items())), stamps
 
 
-def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[int] | None]:
+def _identity(f: Path | str, listed: list[int] | None, parents: dict[str, str]) -> tuple[Path | str, list[int] | None]:
     """``filesystem.identity(f)``, resolving each directory once: a file that is not a symlink
     is its resolved directory joined with its name. With it, the file's change stamp
-    (``filesystem.change_stamp``) when the one ``lstat`` gave it (a local file, not a symlink)."""
+    (``filesystem.change_stamp``) when one ``lstat`` gave it (a local file, not a symlink):
+    ``listed``, the walk's, or else one taken here."""
     if is_uri(f):
         return identity(f), None
-    try:
-        st = os.lstat(f)
-    except OSError:
-        return identity(f), None  # the stamp asked later reports the error
-    if stat.S_ISLNK(st.st_mode):  # as a str, so it equals the same file's name found directly
-        return os.fspath(identity(f)), None
+    if listed is None:
+        try:
+            st = os.lstat(f)
+        except OSError:
+            return identity(f), None  # the stamp asked later reports the error
+        if stat.S_ISLNK(st.st_mode):  # as a str, so it equals the same file's name found directly
+            return os.fspath(identity(f)), None
+        listed = [st.st_size, st.st_mtime_ns, st.st_ino]
     text = os.fspath(f)
     cut = text.rfind(os.sep) + 1  # os.path.split without its calls; the head is only resolved
     head, name = text[:cut], text[cut:]
@@ -568,7 +578,7 @@ def _identity(f: Path | str, parents: dict[str, str]) -> tuple[Path | str, list[
     if real is None:  # with its separator, so each file's name is one concatenation
         real = parents[head] = os.path.join(os.path.realpath(head or "."), "")
     # a str never equal to a URI (those start with a scheme)
-    return real + name, [st.st_size, st.st_mtime_ns, st.st_ino]
+    return real + name, listed
 
 
 def plan_build(
@@ -719,7 +729,11 @@ def _stored_plan(
             return None
         sizes = [stamp[0] for stamp in stamps if stamp is not None]
         rows = zip(body["inputs"], body["starts"], body["stops"], strict=True)
-        members = [Member(i, str(files[i][1]), Part(a, b), tuple(stamps[i] or ())) for i, a, b in rows]
+        # most inputs are read whole: one shared (immutable) part for them, not one each
+        members = [
+            Member(i, str(files[i][1]), WHOLE_PART if a == 0 and b is None else Part(a, b), tuple(stamps[i] or ()))
+            for i, a, b in rows
+        ]
         parts = []
         at = 0
         for si, key, weight, n in body["parts"]:
@@ -929,18 +943,73 @@ def _merge_counted(merger: CountMerger, _: int, counted: tuple[pa.Table, int]) -
 
 def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: CountMerger) -> pa.Table:
     """Count the parts not counted at ingest into ``merger``; the corpus-wide ``(key, count)``
-    table in first-occurrence order."""
-    cache = str(ctx.cache)
-    tasks = [
-        CountTask(cache, plan.tasks[i].key, i, ctx.recipe, None, _fixed(ctx.recipe, plan.tasks[i]))
-        for i in ingested.recount
-    ]
-    merger.expect(len(tasks))
-    fn, work = _masked(kept, tasks, count=True)
-    run(ctx.pool.executor, ctx.show, fn, work, View("counting"), each=partial(_merge_counted, merger))
-    if merger.train_documents == 0:
+    table in first-occurrence order (taken from the cache when these very parts made it)."""
+    key = _counts_key(ctx.recipe, plan)
+    stored = _stored_counts(ctx.cache, key) if key is not None else None
+    if stored is not None:
+        counts, train_documents = stored
+    else:
+        cache = str(ctx.cache)
+        tasks = [
+            CountTask(cache, plan.tasks[i].key, i, ctx.recipe, None, _fixed(ctx.recipe, plan.tasks[i]))
+            for i in ingested.recount
+        ]
+        merger.expect(len(tasks))
+        fn, work = _masked(kept, tasks, count=True)
+        run(ctx.pool.executor, ctx.show, fn, work, View("counting"), each=partial(_merge_counted, merger))
+        counts, train_documents = merger.result() if merger.train_documents else None, merger.train_documents
+    if train_documents == 0 or counts is None:
         raise EmptyCorpusError("the train split is empty: add documents or raise splits.train")
-    return merger.result()
+    if stored is None and key is not None:
+        _store_counts(ctx.cache, key, counts, train_documents)
+    return counts
+
+
+MERGED_COUNTS: Final = "counts.arrow"
+
+
+def _counts_key(recipe: Recipe, plan: Plan) -> str | None:
+    """What the corpus counts follow from when no document is dropped after ingest: every
+    part's key in corpus order (content, source, cleaning, tokenizer) and the splits settings
+    (in the count files' name); None when dedupe or overlap removal drop documents."""
+    if _has_dedupe(recipe) or recipe.splits.exclude_overlap_from_train:
+        return None
+    return hash_json({"format": PART_FORMAT, "counts": counts_file(recipe), "parts": [t.key for t in plan.tasks]})
+
+
+def _stored_counts(cache: Path, key: str) -> tuple[pa.Table, int] | None:
+    """The corpus counts and train documents the cache keeps (the last build's) when ``key``
+    made them and they read back whole; else None (merged again)."""
+    try:
+        table = read_table(cache / MERGED_COUNTS, memory_map=False)
+        meta = table.schema.metadata or {}
+        if meta.get(b"seqpipe.parts") != key.encode() or meta.get(b"seqpipe.hash") != _counts_hash(table):
+            return None
+        return table.replace_schema_metadata(None), int(meta[b"seqpipe.train_documents"])
+    except (OSError, SeqpipeError, pa.ArrowException, KeyError, ValueError):
+        return None
+
+
+def _store_counts(cache: Path, key: str, counts: pa.Table, train_documents: int) -> None:
+    """Keep the corpus counts for a rebuild of the same parts (one file: a new vocabulary then
+    merges no part's table). Without fsync: a torn file fails its hash and is merged again."""
+    meta = {"seqpipe.parts": key, "seqpipe.hash": _counts_hash(counts), "seqpipe.train_documents": str(train_documents)}
+    with suppress(OutputWriteError):  # a cache that cannot be written is only slower
+        write_table(cache / MERGED_COUNTS, counts.replace_schema_metadata(meta), durable=False)
+
+
+def _counts_hash(table: pa.Table) -> bytes:
+    """A hash of a count table's keys and counts, whatever buffers hold them (checked when the
+    stored one is read back)."""
+    keys = table.column("key").combine_chunks()
+    offsets = np.frombuffer(keys.buffers()[1], np.int32)[keys.offset : keys.offset + len(keys) + 1]
+    digest = xxhash.xxh3_128()
+    digest.update((offsets - offsets[0]).tobytes())
+    data = keys.buffers()[2]
+    if data is not None:
+        digest.update(memoryview(data)[int(offsets[0]) : int(offsets[-1])])
+    digest.update(table.column("count").to_numpy().astype(np.int64, copy=False).tobytes())
+    return digest.hexdigest().encode()
 
 
 def fit(recipe: Recipe, counts: pa.Table, stage: Path, *, show: bool = False) -> Fitted:
@@ -949,7 +1018,8 @@ def fit(recipe: Recipe, counts: pa.Table, stage: Path, *, show: bool = False) ->
     vocab = encoder.vocabulary
     for stale in (VOCAB_FILE, *OPTIONAL_TOP):
         (stage / stale).unlink(missing_ok=True)
-    vocab.save(stage / VOCAB_FILE)
+    # no fsync: count_train_ids rewrites it, and publish_dataset syncs the stage before publishing
+    write_table(stage / VOCAB_FILE, vocab.to_table(), durable=False)
     files = tuple(encoder.save(stage))
     return Fitted(len(vocab), id_dtype(len(vocab)).name, files)
 
@@ -1041,7 +1111,8 @@ def count_train_ids(stage: Path, sharded: Sharded) -> None:
     from seqpipe.vocab import Vocabulary
 
     vocab = Vocabulary.load(stage / VOCAB_FILE)
-    dataclasses.replace(vocab, counts=sharded.train_id_counts).save(stage / VOCAB_FILE)
+    table = dataclasses.replace(vocab, counts=sharded.train_id_counts).to_table()
+    write_table(stage / VOCAB_FILE, table, durable=False)  # synced with the stage, at publish
 
 
 def _summed(tables: Iterator[dict[str, int]]) -> dict[str, int]:
@@ -1115,7 +1186,9 @@ def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fi
     except OSError as exc:
         raise OutputWriteError(f"{stage / MANIFEST_NAME}: cannot write it ({exc})", path=str(stage)) from exc
     entries = [VOCAB_FILE, *fitted.files, DOCS_DIR, SHARDS_DIR]
-    sync_tree(stage, [*entries, MANIFEST_NAME])  # documents tables, manifest and directories not yet synced
+    # the staged files and the directories inside the entries; the stage itself needs none, since
+    # publish renames every entry out of it and syncs the output directory they land in
+    sync_tree(stage, [*entries, MANIFEST_NAME], root_dir=False)
     # old entries the new build lacks (tokenizer.arrow) go in publish, after the old manifest
     publish(out, stage, entries, MANIFEST_NAME)
     shutil.rmtree(stage, ignore_errors=True)

@@ -132,7 +132,7 @@ def run_beside(
 ) -> tuple[list[Any], M]:
     """``run``, and ``meanwhile()``: this thread's own work, done after every task is
     submitted and before waiting for them; returns its result too."""
-    from concurrent.futures import as_completed
+    from concurrent.futures import as_completed, wait
 
     futures: dict[Future[Any], range] = {}
     results: list[Any] = [None] * len(tasks)
@@ -142,19 +142,28 @@ def run_beside(
     batched = Batch(fn) if slots is not None else None
     with bar(total, view.desc, unit=view.unit, show=shown, unit_scale=view.weights is not None) as pbar:
         ticker = _Ticker(pbar, view, shown)
-        for run_ in batch_ranges(len(tasks), view.weights, slots):
-            if batched is None:
-                fut = executor.submit(fn, tasks[run_.start])
-            else:
-                fut = executor.submit(batched, [tasks[i] for i in run_])
-            if fut.done():
-                _take(fut, run_, batched is not None, results, each, ticker)
-            else:
-                futures[fut] = run_
-        beside = meanwhile()
-        for fut in as_completed(list(futures)):
-            # dropped once taken: a Dask worker keeps a result while its future is referenced
-            _take(fut, futures.pop(fut), batched is not None, results, each, ticker)
+        try:
+            for run_ in batch_ranges(len(tasks), view.weights, slots):
+                if batched is None:
+                    fut = executor.submit(fn, tasks[run_.start])
+                else:
+                    fut = executor.submit(batched, [tasks[i] for i in run_])
+                if fut.done():
+                    _take(fut, run_, batched is not None, results, each, ticker)
+                else:
+                    futures[fut] = run_
+            beside = meanwhile()
+            for fut in as_completed(list(futures)):
+                # dropped once taken: a Dask worker keeps a result while its future is referenced
+                _take(fut, futures.pop(fut), batched is not None, results, each, ticker)
+        except Exception:
+            # the tasks still running finish before the error reaches the caller, which may
+            # remove the directory they write into (a failed build's stage); an interrupt
+            # does not wait
+            for fut in futures:
+                fut.cancel()
+            wait(list(futures))
+            raise
     return results, beside
 
 

@@ -337,6 +337,9 @@ class LocalMatches:
 
     files: tuple[str, ...]
     skipped: tuple[tuple[str, str], ...]
+    # per file when asked for (glob_local's ``stamped``): its change_stamp from the walk's own
+    # lstat of a plain file, None for a symlink (or a file gone meanwhile): ask again
+    stamps: tuple[list[int] | None, ...] = ()
 
 
 def _kind_of(mode: int) -> str:
@@ -393,15 +396,23 @@ def _last_name_matcher(rest: Sequence[str], states: frozenset[int]) -> Callable[
     # a trailing ``**`` the path reached takes any name not hidden
     any_shown = end in states and rest[-1] == "**"
     heads = sorted({rest[i] for i in states if i < end and rest[i] != "**" and all(r == "**" for r in rest[i + 1 :])})
-    compiled = [(h.startswith("."), re.compile(fnmatch.translate(h)).match) for h in heads]
+    # one expression for the heads a shown name may match, one for those a hidden name may
+    shown = _any_of(heads)
+    hidden = _any_of([h for h in heads if h.startswith(".")])
 
     def last(name: str) -> bool:
-        hidden = name.startswith(".")
-        if any_shown and not hidden:
-            return True
-        return any(match(name) is not None for dotted, match in compiled if dotted or not hidden)
+        if name.startswith("."):
+            return hidden(name) is not None
+        return any_shown or shown(name) is not None
 
     return last
+
+
+def _any_of(patterns: Sequence[str]) -> Callable[[str], re.Match[str] | None]:
+    """The ``match`` of one expression that matches a name any of the shell ``patterns`` matches."""
+    if not patterns:
+        return lambda name: None
+    return re.compile("|".join(f"(?:{fnmatch.translate(p)})" for p in patterns)).match
 
 
 class _LocalWalk:
@@ -415,14 +426,15 @@ class _LocalWalk:
     pattern positions its path reached, so a file's name is matched once, not its whole path.
     """
 
-    __slots__ = ("base", "deep", "files", "hidden", "rest", "seen", "skipped")
+    __slots__ = ("base", "deep", "files", "hidden", "rest", "seen", "skipped", "stamps")
 
-    def __init__(self, base: str, rest: list[str]) -> None:
+    def __init__(self, base: str, rest: list[str], stamped: bool = False) -> None:
         self.base = base
         self.rest = rest
         self.deep = "**" in rest
         self.hidden = any(s.startswith(".") for s in rest)
         self.files: list[str] = []
+        self.stamps: list[list[int] | None] | None = [] if stamped else None
         self.skipped: list[tuple[str, str]] = []
         self.seen: set[tuple[int, int]] = set()
 
@@ -438,20 +450,28 @@ class _LocalWalk:
     ) -> None:
         try:
             with os.scandir(directory) as it:
-                entries = sorted(it, key=lambda e: e.name)
+                entries = sorted(it, key=_entry_name)
         except OSError:
             return  # unreadable or vanished directory: glob.glob skips it too
         end = len(self.rest)
         prefix = "/".join(names) + "/" if names else ""
         last = _last_name_matcher(self.rest, states)
+        files, stamps = self.files, self.stamps
         for entry in entries:
-            try:
-                plain_file = not entry.is_symlink() and entry.is_file(follow_symlinks=False)
+            try:  # a symlink is not a file here (the listing's type, no stat)
+                plain_file = entry.is_file(follow_symlinks=False)
             except OSError:
                 plain_file = False
-            if plain_file:  # the common case: no stat, one match of the name
+            if plain_file:  # the common case: one match of the name, a stat only when stamped
                 if last(entry.name):
-                    self.files.append(prefix + entry.name)
+                    files.append(prefix + entry.name)
+                    if stamps is not None:  # the file's own lstat: its change_stamp
+                        try:
+                            own = entry.stat(follow_symlinks=False)
+                        except OSError:
+                            stamps.append(None)  # gone meanwhile: asked again, which reports it
+                        else:
+                            stamps.append([own.st_size, own.st_mtime_ns, own.st_ino])
                 continue
             reached = _advance(self.rest, states, entry.name)
             matched = end in reached
@@ -476,16 +496,24 @@ class _LocalWalk:
             elif matched:
                 if stat.S_ISREG(st.st_mode):
                     self.files.append(rel)
+                    if self.stamps is not None:
+                        self.stamps.append(None)  # a symlink: its identity and stamp are asked again
                 else:
                     self.skipped.append((rel, _kind_of(st.st_mode)))
 
 
-def glob_local(root: Path, pattern: str) -> LocalMatches:
+def _entry_name(entry: os.DirEntry[str]) -> str:
+    return entry.name
+
+
+def glob_local(root: Path, pattern: str, *, stamped: bool = False) -> LocalMatches:
     """What ``pattern`` (relative to ``root``, or absolute) matches on the local disk.
 
     The same syntax as :func:`glob_uri` (and ``glob.glob(recursive=True)``): ``*``, ``?``,
     ``[...]``, ``**`` for any number of directories, hidden names only for patterns that start
     with a dot. Paths in the result are relative to ``root`` as written (``..`` kept).
+    ``stamped``: with each file's change stamp where the walk's lstat of it gives one (a plain
+    file; see ``LocalMatches.stamps``), so a build lists and stamps its inputs in one pass.
     """
     if pattern.endswith("/"):
         return LocalMatches((), ())  # a pattern ending in a slash names directories, never a file
@@ -502,13 +530,14 @@ def glob_local(root: Path, pattern: str) -> LocalMatches:
             return LocalMatches((), ((base_rel, "dangling symlink"),) if dangling else ())
         if not os.path.isfile(full):
             return LocalMatches((), ((base_rel, _kind_of(st.st_mode)),))
-        return LocalMatches((base_rel,), ())
+        return LocalMatches((base_rel,), (), (None,) if stamped else ())
     start = os.path.join(root, base_rel) if base_rel else str(root)
-    walk = _LocalWalk(start, rest)
+    walk = _LocalWalk(start, rest, stamped)
     st = _target_stat(start)
     if st is None or not os.path.isdir(start):
         return LocalMatches((), ())
     walk.seen.add((st.st_dev, st.st_ino))
     walk.walk(start, [], frozenset({(st.st_dev, st.st_ino)}), _closure(rest, (0,)))
     join = (lambda rel: f"{base_rel.rstrip('/')}/{rel}") if base_rel else (lambda rel: rel)
-    return LocalMatches(tuple(join(f) for f in walk.files), tuple((join(p), w) for p, w in walk.skipped))
+    stamps = tuple(walk.stamps) if walk.stamps is not None else ()
+    return LocalMatches(tuple(join(f) for f in walk.files), tuple((join(p), w) for p, w in walk.skipped), stamps)

@@ -163,22 +163,21 @@ def _flat_entries(entries: list[Any] | tuple[Any, ...], indent: str) -> list[str
         "{\n" + inner + (",\n" + inner).join(_ESCAPE(k).replace("%", "%%") + ": %s" for k in keys) + "\n" + indent + "}"
     )
     shape = first.keys()
-    out = []
-    for entry in entries:
-        if type(entry) is not dict or entry.keys() != shape:
+    if not all(type(entry) is dict and entry.keys() == shape for entry in entries):
+        return None
+    columns = []  # each key's values as JSON text, a column at a time (the C escaper mapped over it)
+    for k in keys:
+        values = [entry[k] for entry in entries]
+        kinds = set(map(type, values))
+        if kinds == {str}:
+            columns.append(list(map(_ESCAPE, values)))
+        elif kinds == {int}:
+            columns.append(list(map(int.__repr__, values)))
+        elif kinds == {str, int}:
+            columns.append([_ESCAPE(v) if type(v) is str else int.__repr__(v) for v in values])
+        else:
             return None
-        values = []
-        for k in keys:
-            v = entry[k]
-            of = type(v)
-            if of is str:
-                values.append(_ESCAPE(v))
-            elif of is int:
-                values.append(int.__repr__(v))
-            else:
-                return None
-        out.append(template % tuple(values))
-    return out
+    return list(map(template.__mod__, zip(*columns, strict=True)))
 
 
 def _depth(obj: Any, level: int = 0) -> int:

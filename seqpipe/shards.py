@@ -88,13 +88,15 @@ def _atomic(path: Path, durable: bool = True) -> Iterator[Path]:
 SYNC_THREADS: Final = 16
 
 
-def sync_tree(root: Path, entries: Sequence[str]) -> None:
+def sync_tree(root: Path, entries: Sequence[str], *, root_dir: bool = True) -> None:
     """fsync every file under ``root``'s ``entries`` (files or directories), then the directories
     holding them. A build writes its staged files without fsync and makes them durable here, all
     at once before they are published: fsyncs issued together share the filesystem's journal
-    commits, where one fsync per file as it is written waits for a commit each."""
+    commits, where one fsync per file as it is written waits for a commit each. ``root_dir``
+    False: ``root`` itself is not synced, for a caller that renames every entry out of it and
+    syncs the directory they land in (a name in ``root`` outlives no crash that matters)."""
     files: list[Path] = []
-    dirs = {root}
+    dirs = {root} if root_dir else set()
     for name in entries:
         top = root / name
         if top.is_dir():
@@ -103,7 +105,8 @@ def sync_tree(root: Path, entries: Sequence[str]) -> None:
                 files.extend(Path(where) / n for n in names)
         elif top.exists():
             files.append(top)
-            dirs.add(top.parent)
+            if root_dir or top.parent != root:
+                dirs.add(top.parent)
     with ThreadPoolExecutor(max_workers=max(1, min(SYNC_THREADS, len(files)))) as pool:
         list(pool.map(fsync_file, files))
     for d in sorted(dirs, key=lambda p: len(p.parts), reverse=True):

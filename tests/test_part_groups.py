@@ -227,6 +227,46 @@ def test_a_rebuild_from_stored_counts_equals_a_fresh_build(tmp_path: Path) -> No
     assert dataset_files(tmp_path / "out") == dataset_files(tmp_path / "fresh")
 
 
+def test_a_rebuild_of_the_same_parts_takes_the_corpus_counts_without_counting(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A second vocabulary change reads the corpus counts the cache keeps (no count task runs,
+    count_part is made to fail) and writes the bytes of a fresh build with that cap."""
+    write_notes(tmp_path)
+    build(recipe_of(tmp_path), tmp_path / "out", workers=1, progress=False, part_bytes=300)
+    assert (tmp_path / "out" / ".seqpipe" / "cache" / build_module.MERGED_COUNTS).is_file()
+
+    def refuse(*args: object, **kwargs: object) -> None:
+        raise AssertionError("a part was counted")
+
+    monkeypatch.setattr(build_module, "count_part", refuse)
+    build(recipe_of(tmp_path, cap=9), tmp_path / "out", workers=1, progress=False, part_bytes=300)
+    monkeypatch.undo()
+    build(recipe_of(tmp_path, cap=9), tmp_path / "fresh", workers=1, progress=False, part_bytes=300, force=True)
+    assert dataset_files(tmp_path / "out") == dataset_files(tmp_path / "fresh")
+
+
+@pytest.mark.parametrize("change", ["tampered", "input edited"])
+def test_stored_corpus_counts_are_not_taken_after_a_change(tmp_path: Path, change: str) -> None:
+    """Corpus counts whose values were altered (their hash no longer matches) or that another
+    corpus made (an input edited, so a part key differs) are merged again: the rebuild writes
+    the bytes of a fresh build."""
+    paths = write_notes(tmp_path)
+    build(recipe_of(tmp_path), tmp_path / "out", workers=1, progress=False, part_bytes=300)
+    stored = tmp_path / "out" / ".seqpipe" / "cache" / build_module.MERGED_COUNTS
+    if change == "tampered":
+        table = pa.ipc.open_file(pa.memory_map(str(stored))).read_all()
+        doubled = pa.array(table.column("count").to_numpy() * 2, pa.int64())
+        table = table.set_column(table.schema.get_field_index("count"), "count", doubled)
+        with pa.OSFile(str(stored), "wb") as sink, pa.ipc.new_file(sink, table.schema) as writer:
+            writer.write_table(table)
+    else:
+        paths[0].write_text("wharf wharf wharf fog\n")
+    build(recipe_of(tmp_path, cap=9), tmp_path / "out", workers=1, progress=False, part_bytes=300)
+    build(recipe_of(tmp_path, cap=9), tmp_path / "fresh", workers=1, progress=False, part_bytes=300, force=True)
+    assert dataset_files(tmp_path / "out") == dataset_files(tmp_path / "fresh")
+
+
 def test_stored_cuts_follow_the_inputs(tmp_path: Path) -> None:
     """The cache keeps one entry of cuts per input planned by the last build (inputs larger than
     the part size: smaller ones are planned from their size): a removed file's entry goes, an

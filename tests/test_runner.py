@@ -123,3 +123,24 @@ def test_a_failing_task_in_a_batch_fails_the_run() -> None:
     with pytest.raises(ValueError, match="task 7 fails"):
         run(remote, False, fail_on_seven, list(range(100)), View("test"))
     remote.shutdown()
+
+
+def test_a_failing_task_raises_only_once_every_running_task_has_finished() -> None:
+    """When one task fails, run returns its error only after the tasks already running are done
+    (so a caller that then removes their output directory leaves nothing behind)."""
+    import time
+
+    finished: list[int] = []
+
+    def slow_or_failing(x: int) -> int:
+        if x == 0:
+            time.sleep(0.05)  # both tasks are running by now
+            raise ValueError("task 0 fails")
+        time.sleep(0.3)
+        finished.append(x)
+        return x
+
+    with ThreadPoolExecutor(2) as pool:
+        with pytest.raises(ValueError, match="task 0 fails"):
+            run(pool, False, slow_or_failing, [0, 1], View("t"))
+        assert finished == [1]

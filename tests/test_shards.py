@@ -130,3 +130,29 @@ def test_sync_tree_names_the_file_it_could_not_make_durable(tmp_path: Path, monk
     with pytest.raises(OutputWriteError) as caught:
         shards.sync_tree(tmp_path, ["shards"])
     assert "000000.arrow" in str(caught.value) and "No space left" in str(caught.value)
+
+
+def test_sync_tree_without_root_dir_syncs_the_entries_but_not_the_root(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """With root_dir=False every listed file and the directories inside the entries are fsynced,
+    the root directory is not (its caller renames the entries out and syncs their new home)."""
+    import os
+
+    from seqpipe import shards
+
+    listed = _stage_tree(tmp_path)
+    synced: set[int] = set()
+
+    class Recording:
+        def __getattr__(self, name: str) -> object:
+            return getattr(os, name)
+
+        def fsync(self, fd: int) -> None:
+            synced.add(os.fstat(fd).st_ino)
+
+    monkeypatch.setattr(shards, "os", Recording())
+    shards.sync_tree(tmp_path, ["vocab.arrow", "shards"], root_dir=False)
+    dirs = [tmp_path / "shards", tmp_path / "shards/train", tmp_path / "shards/test"]
+    assert {p.stat().st_ino for p in listed + dirs} <= synced
+    assert tmp_path.stat().st_ino not in synced

@@ -116,6 +116,47 @@ def test_a_symlink_and_its_target_both_matched_are_one_input(tmp_path: Path) -> 
     assert res.manifest["summary"]["read"]["documents"] == 40
 
 
+def test_a_walk_stamps_plain_files_as_change_stamp_does_and_leaves_symlinks_to_be_asked(tmp_path: Path) -> None:
+    """glob_local(stamped=True) gives each plain file the stamp filesystem.change_stamp gives it,
+    and None for a file matched through a symlink (its identity and stamp are asked again)."""
+    from seqpipe.filesystem import change_stamp, glob_local
+
+    (tmp_path / "logs" / "deep").mkdir(parents=True)
+    (tmp_path / "logs" / "b.txt").write_text("ferry left\n")
+    (tmp_path / "logs" / "deep" / "c.txt").write_text("ferry came back late\n")
+    (tmp_path / "logs" / "a.txt").symlink_to("b.txt")
+    got = glob_local(tmp_path, "logs/**/*.txt", stamped=True)
+    assert list(got.files) == ["logs/a.txt", "logs/b.txt", "logs/deep/c.txt"]
+    assert list(got.stamps) == [None, change_stamp(tmp_path / "logs/b.txt"), change_stamp(tmp_path / "logs/deep/c.txt")]
+    assert glob_local(tmp_path, "logs/**/*.txt").stamps == ()
+
+
+def test_one_glob_resolved_as_str_lists_what_the_general_path_lists(tmp_path: Path) -> None:
+    """resolve_all(as_str=True) of one glob (the one-walk path) gives the same files (as str),
+    names, order and stamps as the general path (as_str=False, and a second glob that adds nothing)."""
+    from seqpipe.filesystem import change_stamp
+
+    for rel in ("logs/b-c.txt", "logs/b/a.txt", "logs/b/z.txt", "logs/a.txt", "logs/deep/er/x.txt"):
+        (tmp_path / rel).parent.mkdir(parents=True, exist_ok=True)
+        (tmp_path / rel).write_text("ferry\n")
+    fast = TextSource(paths="logs/**/*.txt").resolve_all(tmp_path, as_str=True, stamped=True)
+    general = TextSource(paths=["logs/**/*.txt", "logs/a.txt"]).resolve_all(tmp_path, stamped=True)
+    assert fast.files == [str(p) for p in general.files]
+    assert fast.names == general.names == ("a.txt", "b-c.txt", "b/a.txt", "b/z.txt", "deep/er/x.txt")
+    assert list(fast.stamps) == [change_stamp(p) for p in general.files] == list(general.stamps)
+
+
+def test_a_plain_file_two_sources_match_is_one_input(tmp_path: Path) -> None:
+    """A plain file (no symlink) that a second source's glob matches again is read once, by the
+    first source (the check one walk of one source may skip)."""
+    (tmp_path / "logs").mkdir()
+    (tmp_path / "logs" / "b.txt").write_text("".join(f"ferry crossing {i} left at dawn\n" for i in range(40)))
+    recipe = RECIPE.format(extra="") + '[[sources]]\nkind = "text"\npaths = "logs/b.txt"\ndocument = "line"\n'
+    res = build(parse_recipe(recipe, tmp_path), tmp_path / "out", workers=1, progress=False)
+    assert [i["path"] for i in res.manifest["inputs"]] == ["b.txt"]
+    assert res.manifest["summary"]["read"]["documents"] == 40
+
+
 def test_special_files_refused_when_asked(tmp_path: Path) -> None:
     """on_special_file = "error" stops the build naming the first special file the glob matches."""
     make_special_tree(tmp_path)

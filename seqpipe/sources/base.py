@@ -35,7 +35,7 @@ import pyarrow as pa
 
 from seqpipe._parse import parse_int, parse_str, parse_str_tuple, to_plain
 from seqpipe.errors import InvalidUtf8Error, RecipeError, SourceError, SourceMissingError
-from seqpipe.filesystem import SourcePath, glob_local, glob_uri, is_uri
+from seqpipe.filesystem import LocalMatches, SourcePath, glob_local, glob_uri, is_uri
 
 DEFAULT_MAX_DOCUMENT_BYTES: Final = 64 << 20
 DEFAULT_BATCH_BYTES: Final = 1 << 20
@@ -113,6 +113,8 @@ class Resolved:
     files: list[SourcePath]
     skipped: tuple[tuple[str, str], ...]
     names: tuple[str, ...] = ()  # per file, the name a manifest records (Source.resolve_named)
+    # per file when asked for (``stamped``): its change stamp from the glob's walk, or None
+    stamps: tuple[list[int] | None, ...] = ()
 
 
 def _recorded_name(path: str, base: str) -> str:
@@ -142,6 +144,24 @@ def _joined(top: str, key: str) -> str:
     if os.sep != "/" or key.startswith("/"):
         return os.path.join(top, key)
     return top + key if top.endswith("/") else top + "/" + key
+
+
+def _one_walk(
+    matches: LocalMatches, top: str, base: str, skipped: tuple[tuple[str, str], ...], stamped: bool
+) -> Resolved:
+    """``Source.resolve_all`` of one local glob (its files ``str``, its matches normalized, its
+    fixed part ``base``): one walk names no file twice, so no key is looked up, and each list
+    is one pass (a corpus of many files)."""
+    keys = matches.files
+    order = sorted(range(len(keys)), key=keys.__getitem__)  # the walk's order is nearly sorted
+    ordered = [keys[i] for i in order]
+    lead = top if top.endswith("/") else top + "/"
+    files: list[SourcePath] = [key if key.startswith("/") else lead + key for key in ordered]
+    under = _prefix(base)
+    cut = len(under)
+    names = tuple(key[cut:] if under and key.startswith(under) else _recorded_name(key, base) for key in ordered)
+    stamps = tuple(matches.stamps[i] for i in order) if stamped else ()
+    return Resolved(files, skipped, names, stamps)
 
 
 def _posix_key(path: str) -> str:
@@ -212,7 +232,7 @@ class Source(ABC):
         resolved = self.resolve_all(root)
         return list(zip(resolved.files, resolved.names, strict=True))
 
-    def resolve_all(self, root: Path, *, as_str: bool = False) -> Resolved:
+    def resolve_all(self, root: Path, *, as_str: bool = False, stamped: bool = False) -> Resolved:
         """:meth:`resolve`'s files (with their recorded names, see :meth:`resolve_named`), and
         the local matches that are not regular files.
 
@@ -221,16 +241,17 @@ class Source(ABC):
         with a :class:`SourceError` naming it (``"error"``). Each real directory is walked
         once, so a symlink loop cannot make the glob run forever. ``as_str``: local files as
         the ``str`` of the ``Path`` they would be (a build of many files makes no ``Path``).
+        ``stamped``: with each file's change stamp where listing it gave one (``Resolved.stamps``).
         """
         top = str(root)
-        found: dict[str, tuple[SourcePath, str]] = {}
+        found: dict[str, tuple[SourcePath, str, list[int] | None]] = {}
         skipped: dict[str, str] = {}
         for pattern in self.paths:
             if is_uri(pattern):
                 for uri in glob_uri(pattern):
-                    found.setdefault(uri, (uri, uri))
+                    found.setdefault(uri, (uri, uri, None))
                 continue
-            matches = glob_local(root, pattern)
+            matches = glob_local(root, pattern, stamped=stamped)
             base = glob_base(pattern)
             for rel, what in matches.skipped:
                 if self.on_special_file == "error":
@@ -245,15 +266,25 @@ class Source(ABC):
             if not matches.files:
                 raise SourceMissingError(str(root), f"glob {pattern!r} matched no file under {root}")
             under = _prefix(base)
-            for hit in matches.files:
-                key = _posix_key(hit)
+            # a walk's matches are normalized already unless the fixed part climbs ("..")
+            normal = os.sep == "/" and ".." not in pattern.split("/")
+            if len(self.paths) == 1 and normal and as_str and under and top != ".":
+                return _one_walk(matches, top, base, tuple(sorted(skipped.items())), stamped)
+            stamps = matches.stamps or (None,) * len(matches.files)
+            for hit, stamp in zip(matches.files, stamps, strict=True):
+                key = hit if normal else _posix_key(hit)
                 if key not in found:
                     local = (key if top == "." else _joined(top, key)) if as_str else root / key
                     # the common case of _recorded_name without its calls (a corpus of many files)
                     name = key[len(under) :] if under and key.startswith(under) else _recorded_name(hit, base)
-                    found[key] = (local, name)
+                    found[key] = (local, name, stamp)
         ordered = [found[key] for key in sorted(found)]
-        return Resolved([p for p, _ in ordered], tuple(sorted(skipped.items())), tuple(n for _, n in ordered))
+        return Resolved(
+            [p for p, _, _ in ordered],
+            tuple(sorted(skipped.items())),
+            tuple(n for _, n, _ in ordered),
+            tuple(st for _, _, st in ordered) if stamped else (),
+        )
 
     @abstractmethod
     def plan(self, path: SourcePath, target_bytes: int) -> list[Part]:
