@@ -400,3 +400,28 @@ def test_email_search_from_the_next_at_sign_equals_a_full_scan(text: str) -> Non
     from seqpipe.clean.redact import _COMPILED, _email_subn
 
     assert _email_subn(text, "<email>") == _COMPILED["email"].subn("<email>", text)
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    docs=st.lists(
+        st.lists(
+            st.sampled_from(
+                [*"0123456789", ".", " ", "-", ":", "@", "+", "(", ")", "a", "F", "é", "1234", "4111 1111 "]
+            ),
+            max_size=40,
+        ).map("".join),
+        max_size=6,
+    )
+)
+def test_byte_prefilter_marks_every_document_a_hint_matches(docs: list[str]) -> None:
+    """The numpy byte prefilter is a necessary condition: every document in which RE2 finds a
+    chosen target's hint is marked (with each target alone and all together)."""
+    from seqpipe.clean.redact import _HINTS, TARGETS, may_hint
+
+    arr = pa.array(docs, pa.large_string())
+    for targets in [*((t,) for t in TARGETS), TARGETS]:
+        marked = may_hint(arr, targets)
+        for doc, mark in zip(docs, marked, strict=True):
+            if any(regex.search(_HINTS[t], doc) for t in targets):
+                assert mark, (targets, doc)
