@@ -130,7 +130,8 @@ def may_hint(docs: pa.Array, targets: tuple[str, ...]) -> np.ndarray:
             return np.take(data, np.clip(digit + k, 0, last))
 
         def is_digit(k: int) -> np.ndarray:
-            return np.subtract(byte(k), ord("0"), dtype=np.uint8) < 10
+            out: np.ndarray = np.subtract(byte(k), ord("0"), dtype=np.uint8) < 10
+            return out
 
         if "ip" in targets:
             at.append(digit[(byte(1) == ord(".")) & is_digit(2)])
