@@ -113,8 +113,8 @@ def _cut_at_names(
     texts: pa.Array, holds: np.ndarray, names: tuple[str, ...]
 ) -> tuple[pa.Array, np.ndarray, np.ndarray, np.ndarray]:
     """:func:`_split_at_names` for a ``large_string`` array without nulls, over its UTF-8 bytes:
-    the fragments are the batch's bytes less those of the names (one ``np.compress``), so no
-    document is copied through Python or Arrow's take. Also returns the byte ranges of ``texts``
+    the fragments are the batch's bytes less those of the names (one copy of the byte ranges
+    between names), so no document is copied through Python or Arrow's take. Also returns the byte ranges of ``texts``
     the fragments keep, in order (one row ``(start, end)`` each, counted from the first
     document's start)."""
     n = len(texts)
@@ -186,10 +186,10 @@ def segment_with_reserved(
     """``segment(texts)``, except that each literal occurrence of a name in ``names`` is one
     piece whose key is the name's UTF-8 bytes (the encoder maps it to its reserved id).
 
-    Only documents holding a name are split (one ``regex.split`` each); the text between names
+    Only documents holding a name are split (one regex scan each); the text between names
     goes through ``segment`` as a batch of fragments, and the pieces are put back in order
     with numpy, so the kind's own segmentation is unchanged around the names. ``seed``, when
-    given, is told (``texts``, the fragments, the mask of the bytes of ``texts`` they keep)
+    given, is told (``texts``, the fragments, the byte ranges of ``texts`` they keep)
     before ``segment`` runs on the fragments, so a kind can carry over what it knows of
     ``texts`` byte by byte.
     """
