@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import json
 from pathlib import Path
 from typing import Any
@@ -317,3 +318,17 @@ def test_kept_code_point_answers_equal_asking_again(points: list[int]) -> None:
     want = np.asarray(fresh.to_numpy(zero_copy_only=False), dtype=bool).tolist()
     assert _asked(distinct, pc.utf8_is_space).tolist() == want
     assert _asked(distinct, pc.utf8_is_space).tolist() == want
+
+
+def test_per_document_sum_in_32_and_64_bits_equals_a_sum_per_range(monkeypatch: pytest.MonkeyPatch) -> None:
+    """per_document_sum gives each document's sum of byte values, empty documents 0, with the
+    32-bit and the 64-bit adder."""
+    from seqpipe.clean import _quality
+
+    rng = np.random.default_rng(3)
+    flags = rng.integers(0, 256, 5000).astype(np.uint8)
+    offsets = np.concatenate([[0], np.sort(rng.integers(0, 5000, 40)), [5000, 5000]]).astype(np.int64)
+    expected = [int(flags[a:b].sum(dtype=np.int64)) for a, b in itertools.pairwise(offsets.tolist())]
+    assert _quality.per_document_sum(flags, offsets).tolist() == expected
+    monkeypatch.setattr(_quality, "_SUM32_BYTES", 0)
+    assert _quality.per_document_sum(flags, offsets).tolist() == expected

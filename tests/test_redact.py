@@ -18,6 +18,7 @@ from seqpipe.clean.redact import PLACEHOLDERS, Redact, luhn_ok, redact_text
 from seqpipe.errors import RecipeError
 from seqpipe.recipe import parse_recipe
 from seqpipe.tokenizers import parse_tokenizer
+from seqpipe.tokenizers.words import WordTokenizer
 from seqpipe.vocab import VocabSpec
 
 RESERVED = ["<pad>", "<unk>", "<bos>", "<eos>", "<email>", "<ip>", "<card>", "<phone>"]
@@ -400,3 +401,62 @@ def test_email_search_from_the_next_at_sign_equals_a_full_scan(text: str) -> Non
     from seqpipe.clean.redact import _COMPILED, _email_subn
 
     assert _email_subn(text, "<email>") == _COMPILED["email"].subn("<email>", text)
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    docs=st.lists(
+        st.lists(
+            st.sampled_from(
+                [*"0123456789", ".", " ", "-", ":", "@", "+", "(", ")", "a", "F", "é", "1234", "4111 1111 "]
+            ),
+            max_size=40,
+        ).map("".join),
+        max_size=6,
+    )
+)
+def test_byte_prefilter_marks_every_document_a_hint_matches(docs: list[str]) -> None:
+    """The numpy byte prefilter is a necessary condition: every document in which RE2 finds a
+    chosen target's hint is marked (with each target alone and all together)."""
+    from seqpipe.clean.redact import _HINTS, TARGETS, may_hint
+
+    arr = pa.array(docs, pa.large_string())
+    for targets in [*((t,) for t in TARGETS), TARGETS]:
+        marked = may_hint(arr, targets)
+        for doc, mark in zip(docs, marked, strict=True):
+            if any(regex.search(_HINTS[t], doc) for t in targets):
+                assert mark, (targets, doc)
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
+        st.lists(st.sampled_from(["<email>", "<ip>", "<ip", "a", " ", "é", "\n", "9", "<", "x.y"]), max_size=12).map(
+            "".join
+        ),
+        max_size=6,
+    ),
+    offset=st.integers(0, 2),
+)
+def test_byte_cut_at_names_equals_the_string_split(docs: list[str], offset: int) -> None:
+    """Cutting the batch's bytes at the names gives the fragments and items of the per-document
+    regex split, keeps as many bytes as lie outside the names, and the words kind's segments (its
+    byte classes carried over from the whole batch) equal those found on the fragments anew."""
+    from seqpipe.tokenizers import _common, words
+
+    names = ("<email>", "<ip>", "<phone>")
+    texts = pa.array(["pad"] * offset + docs, pa.large_string()).slice(offset)  # a non-zero array offset
+    holds = _common._holding_a_name(texts, names)
+    old = _common._split_at_names(texts, holds, names)
+    new = _common._cut_at_names(texts, holds, names)
+    assert new[0].to_pylist() == old[0].to_pylist()
+    assert new[1].tolist() == old[1].tolist() and new[2].tolist() == old[2].tolist()
+    assert int(np.diff(new[3], axis=1).sum()) == sum(len(f.encode()) for f in old[0].to_pylist())
+    tok = WordTokenizer(literal_reserved=True, reserved_names=names)
+    if docs:  # (an empty batch is never segmented in a build)
+        words.count_words(texts)  # as a build does first: the batch's byte classes are the last ones kept
+    seeded = tok.segment(texts)
+    plain = _common.segment_with_reserved(tok._segment, texts, names)  # no seed: classes found anew
+    assert seeded.keys.to_pylist() == plain.keys.to_pylist()
+    assert seeded.codes.tolist() == plain.codes.tolist()
+    assert seeded.doc_lengths.tolist() == plain.doc_lengths.tolist()

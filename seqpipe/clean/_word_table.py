@@ -147,7 +147,10 @@ def _codes(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarra
     eight = np.ndarray((len(data),), dtype="<u8", buffer=padded, strides=(1,))
     short = sizes <= _PACKED
     width = np.minimum(sizes, _PACKED)
-    codes: np.ndarray = (eight[starts] & LOW_BYTES[width]) | (width.astype(np.uint64) << np.uint64(56))
+    # np.take: faster than fancy indexing (DEVELOPERS.md), here on a strided view too
+    codes: np.ndarray = np.take(eight, starts)
+    codes &= np.take(LOW_BYTES, width)
+    codes |= width.astype(np.uint64) << np.uint64(56)
     long = np.flatnonzero(~short)
     if len(long):
         encoded = pc.dictionary_encode(spans(data, starts[long], starts[long] + sizes[long]))

@@ -77,7 +77,9 @@ def _function_word_flags(table: WordTable, language: str) -> np.ndarray:
     if not len(codes):
         return np.zeros(0, dtype=np.int64)
     ascii_words = table.chars == sizes
-    edge = np.take(_ASCII_TRIMMED, table.data[table.starts]) | np.take(_ASCII_TRIMMED, table.data[table.ends - 1])
+    # np.take: faster than fancy indexing (DEVELOPERS.md)
+    edge = np.take(_ASCII_TRIMMED, np.take(table.data, table.starts))
+    edge |= np.take(_ASCII_TRIMMED, np.take(table.data, table.ends - 1))
     wanted = pack_ascii([w for w in words if w.isascii() and len(w) <= 7])
     short = ascii_words & (sizes <= 7)
     # every code lower-cased as if it were a short ASCII word; kept for those with nothing to strip

@@ -68,13 +68,14 @@ def _repeated_rows(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: in
 
 
 def _bucket_bits(keys: int) -> int:
-    """Bits of a bucket number for ``keys`` keys: about four buckets per key, within 2**10-2**24."""
-    return min(max(keys.bit_length() + 2, 10), 24)
+    """Bits of a bucket number for ``keys`` keys: two to four buckets per key, within 2**10-2**24
+    (more buckets rule out a few more keys but make a count table that stays less in cache)."""
+    return min(max(keys.bit_length() + 1, 10), 24)
 
 
 def _shared_keys(h: np.ndarray) -> np.ndarray:
     """Indices of the keys of ``h`` that occur more than once, in order. A count per bucket of the
-    keys' top bits (about four buckets per key) rules out most keys at once, a count per bucket
+    keys' top bits (two to four buckets per key) rules out most keys at once, a count per bucket
     of the low bits of the keys left rules out most of the rest; Arrow's hash table then numbers
     the few keys left (no sort). Equal keys share every bucket, so no repeated key is lost."""
     bits = _bucket_bits(len(h))

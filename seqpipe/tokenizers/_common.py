@@ -101,6 +101,65 @@ def _split_at_names(
     return pool.take(pa.array(order)), item_doc, item_name
 
 
+@lru_cache(maxsize=16)
+def _bytes_finder(names: tuple[str, ...]) -> Any:
+    """:func:`reserved_splitter` over UTF-8 bytes: a literal's bytes match only at a code point
+    boundary (no UTF-8 sequence starts with a continuation byte), so it finds the same names."""
+    alternatives = b"|".join(regex.escape(n.encode()) for n in sorted(names, key=len, reverse=True))
+    return regex.compile(alternatives)
+
+
+def _cut_at_names(
+    texts: pa.Array, holds: np.ndarray, names: tuple[str, ...]
+) -> tuple[pa.Array, np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`_split_at_names` for a ``large_string`` array without nulls, over its UTF-8 bytes:
+    the fragments are the batch's bytes less those of the names (one copy of the byte ranges
+    between names), so no document is copied through Python or Arrow's take. Also returns the byte ranges of ``texts``
+    the fragments keep, in order (one row ``(start, end)`` each, counted from the first
+    document's start)."""
+    n = len(texts)
+    offsets = np.frombuffer(texts.buffers()[1], dtype=np.int64)[texts.offset : texts.offset + n + 1]
+    base, end = int(offsets[0]), int(offsets[-1])
+    raw = texts.buffers()[2]
+    view = memoryview(raw if raw is not None else b"")
+    finder, name_index = _bytes_finder(names), {name.encode(): i for i, name in enumerate(names)}
+    spans: list[tuple[int, int]] = []
+    span_name: list[int] = []
+    found_in: list[int] = []
+    for d in np.flatnonzero(holds).tolist():  # a Python call per document that holds a name only
+        a = int(offsets[d])
+        for m in finder.finditer(view[a : int(offsets[d + 1])]):
+            spans.append((a + m.start() - base, a + m.end() - base))
+            span_name.append(name_index[m.group()])
+            found_in.append(d)
+    span = np.array(spans, dtype=np.int64).reshape(-1, 2)
+    span_doc = np.array(found_in, dtype=np.int64)
+    per_doc = np.bincount(span_doc, minlength=n)  # names per document
+    before = np.cumsum(per_doc) - per_doc  # names in earlier documents
+    rank = np.arange(len(span), dtype=np.int64) - before[span_doc]  # a name's rank in its document
+    # items per document: a fragment, then a name and a fragment per name
+    item_doc = np.repeat(np.arange(n, dtype=np.int64), 2 * per_doc + 1)
+    item_name = np.full(len(item_doc), -1, dtype=np.int64)
+    item_name[2 * before[span_doc] + span_doc + 2 * rank + 1] = span_name
+    # fragment starts: each document's start, and the end of each name (relative to ``base``)
+    first = np.arange(n, dtype=np.int64) + before  # index of each document's first fragment
+    start = np.empty(n + len(span), dtype=np.int64)
+    start[first] = offsets[:-1] - base
+    start[first[span_doc] + rank + 1] = span[:, 1]
+    # name bytes before each fragment start: a start is never inside a name
+    removed = np.cumsum(np.append(0, span[:, 1] - span[:, 0]))
+    bounds = np.append(start - removed[np.searchsorted(span[:, 1], start, side="right")], end - base - removed[-1])
+    kept = np.stack([np.append(0, span[:, 1]), np.append(span[:, 0], int(offsets[-1]) - base)], axis=1)
+    data = np.frombuffer(view, dtype=np.uint8)[base : int(offsets[-1])] if end > base else np.zeros(0, np.uint8)
+    fragments = pa.LargeStringArray.from_buffers(len(start), pa.py_buffer(bounds), pa.py_buffer(gather(data, kept)))
+    return fragments, item_doc, item_name, kept
+
+
+def gather(values: np.ndarray, ranges: np.ndarray) -> np.ndarray:
+    """``values[a:b]`` for each row ``(a, b)`` of ``ranges``, joined (one copy; few ranges)."""
+    return np.concatenate([values[a:b] for a, b in ranges.tolist()]) if len(ranges) else values[:0]
+
+
 def _re2_literal(name: str) -> str:
     """``name`` as an RE2 pattern matching exactly its text (ASCII punctuation escaped)."""
     return "".join(f"\\{ch}" if ch in string.punctuation else ch for ch in name)
@@ -118,13 +177,21 @@ def _holding_a_name(texts: pa.Array, names: tuple[str, ...]) -> np.ndarray:
     return np.asarray(found.fill_null(False).to_numpy(zero_copy_only=False), dtype=bool)
 
 
-def segment_with_reserved(segment: Callable[[pa.Array], Segments], texts: pa.Array, names: tuple[str, ...]) -> Segments:
+def segment_with_reserved(
+    segment: Callable[[pa.Array], Segments],
+    texts: pa.Array,
+    names: tuple[str, ...],
+    seed: Callable[[pa.Array, pa.Array, np.ndarray], None] | None = None,
+) -> Segments:
     """``segment(texts)``, except that each literal occurrence of a name in ``names`` is one
     piece whose key is the name's UTF-8 bytes (the encoder maps it to its reserved id).
 
-    Only documents holding a name are split (one ``regex.split`` each); the text between names
+    Only documents holding a name are split (one regex scan each); the text between names
     goes through ``segment`` as a batch of fragments, and the pieces are put back in order
-    with numpy, so the kind's own segmentation is unchanged around the names.
+    with numpy, so the kind's own segmentation is unchanged around the names. ``seed``, when
+    given, is told (``texts``, the fragments, the byte ranges of ``texts`` they keep)
+    before ``segment`` runs on the fragments, so a kind can carry over what it knows of
+    ``texts`` byte by byte.
     """
     names = tuple(n for n in names if n)
     if not names or len(texts) == 0:
@@ -132,7 +199,12 @@ def segment_with_reserved(segment: Callable[[pa.Array], Segments], texts: pa.Arr
     holds = _holding_a_name(texts, names)
     if not holds.any():
         return segment(texts)
-    fragments, item_doc, item_name = _split_at_names(texts, holds, names)
+    if texts.null_count or texts.type != pa.large_string():
+        fragments, item_doc, item_name = _split_at_names(texts, holds, names)
+    else:
+        fragments, item_doc, item_name, kept = _cut_at_names(texts, holds, names)
+        if seed is not None:
+            seed(texts, fragments, kept)
     plain = segment(fragments)
     is_name = item_name >= 0
     per_item = np.ones(len(item_name), dtype=np.int64)

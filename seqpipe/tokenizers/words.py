@@ -29,6 +29,7 @@ from seqpipe.tokenizers._common import (
     as_string_array,
     check_literal_fields,
     drop_reserved_counts,
+    gather,
     segment_with_reserved,
     segments_from_tokens,
     stored_vocabulary,
@@ -90,6 +91,19 @@ def _byte_classes(texts: pa.Array) -> _Classes | None:
     result = _compute_classes(texts)
     _LAST[:] = [(texts, result)]
     return result
+
+
+def _seed_classes(texts: pa.Array, fragments: pa.Array, kept: np.ndarray) -> None:
+    """Take the classes of ``fragments`` (the byte ranges ``kept`` of ``texts``) from those of
+    ``texts`` when they are the last batch's: a code point's class depends on it alone."""
+    if not _LAST or _LAST[0][0] is not texts or _LAST[0][1] is None:
+        return
+    bounds = np.frombuffer(fragments.buffers()[1], dtype=np.int64)[: len(fragments) + 1]  # from 0
+    if not bounds[-1]:
+        _LAST[:] = [(fragments, None)]
+        return
+    data = np.frombuffer(fragments.buffers()[2], dtype=np.uint8)[: bounds[-1]]
+    _LAST[:] = [(fragments, (data, bounds, gather(_LAST[0][1][2], kept)))]
 
 
 def _compute_classes(texts: pa.Array) -> _Classes | None:
@@ -199,7 +213,7 @@ class WordTokenizer(Tokenizer):
     def segment(self, texts: Sequence[str] | pa.Array) -> Segments:
         arr = as_string_array(texts)
         if self.literal_reserved:
-            return segment_with_reserved(self._segment, arr, self.reserved_names)
+            return segment_with_reserved(self._segment, arr, self.reserved_names, _seed_classes)
         return self._segment(arr)
 
     def _segment(self, arr: pa.Array) -> Segments:
