@@ -58,11 +58,14 @@ def _span_hashes(data: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> np.n
         base = int(starts[lo])
         part = data[base : int(ends[hi - 1])]
         prefix = np.zeros(len(part) + 1, np.uint64)
-        powers, inverse = _powers(len(part))
+        powers, inverse, summed = _powers(len(part))
         with np.errstate(over="ignore"):
-            np.cumsum((part + np.uint64(1)) * powers[1 : len(part) + 1], out=prefix[1:])
+            # sum(b_j * B**(j+1)) from the bytes as they are, the "+ 1" of every byte from the
+            # prefix sums of the powers: no widened copy of the bytes plus one
+            np.multiply(part, powers[1 : len(part) + 1], out=prefix[1:])
+            np.cumsum(prefix[1:], out=prefix[1:])
             a, b = starts[lo:hi] - base, ends[lo:hi] - base
-            out[lo:hi] = (prefix[b] - prefix[a]) * inverse[a]
+            out[lo:hi] = (prefix[b] - prefix[a] + summed[b] - summed[a]) * inverse[a]
     return mix64(out + (ends - starts).astype(np.uint64))
 
 
@@ -71,26 +74,31 @@ _BYTE_INVERSE: Final = np.uint64(pow(int(_BYTE_BASE), -1, 2**64))
 
 
 class _Powers(threading.local):
-    """Per thread, the powers of B and of its inverse mod 2**64 computed so far (they only grow)."""
+    """Per thread, the powers of B and of its inverse mod 2**64 computed so far and the prefix
+    sums of the powers of B (sum of B**i for i in 1 .. j); they only grow."""
 
     def __init__(self) -> None:
         self.powers: np.ndarray = np.ones(1, np.uint64)
         self.inverse: np.ndarray = np.ones(1, np.uint64)
+        self.summed: np.ndarray = np.zeros(1, np.uint64)
 
 
 _POWERS: Final = _Powers()
 
 
-def _powers(count: int) -> tuple[np.ndarray, np.ndarray]:
-    """B**j and B**-j mod 2**64 for j in 0 .. count (at least: longer arrays are reused; as
-    slices are at most _SPAN bytes but for one longer value, these stay about _SPAN long)."""
+def _powers(count: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """B**j, B**-j and sum(B**i for i in 1 .. j) mod 2**64 for j in 0 .. count (at least: longer
+    arrays are reused; as slices are at most _SPAN bytes but for one longer value, these stay
+    about _SPAN long)."""
     kept = _POWERS
     if len(kept.powers) <= count:
         size = max(count + 1, _SPAN + 1)
         with np.errstate(over="ignore"):
-            kept.powers = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_BASE, np.uint64)])
+            powers = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_BASE, np.uint64)])
+            kept.summed = np.r_[np.uint64(0), np.cumsum(powers[1:])]
             kept.inverse = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_INVERSE, np.uint64)])
-    return kept.powers, kept.inverse
+            kept.powers = powers
+    return kept.powers, kept.inverse, kept.summed
 
 
 def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
@@ -110,7 +118,10 @@ def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     start[first] = inside[first]
     end[last] = inside[last]
     starts = np.flatnonzero(start)
-    return _span_hashes(data, starts, np.flatnonzero(end) + 1), np.searchsorted(offsets, starts, side="right") - 1
+    # each document's words are a run of starts: the document of a word from the counts per document
+    counts = np.diff(np.searchsorted(starts, offsets))
+    doc = np.repeat(np.arange(len(offsets) - 1), counts)
+    return _span_hashes(data, starts, np.flatnonzero(end) + 1), doc
 
 
 def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
