@@ -43,8 +43,9 @@ import pyarrow as pa
 from seqpipe.clean._quality import mix64
 from seqpipe.counts import first_occurrence
 from seqpipe.errors import ShardCorruptError
-from seqpipe.ingest import count_part, encode_part, fixed16, read_part_docs, signature_rows
+from seqpipe.ingest import PART_FILE, _part_dir, count_part, encode_part, fixed16, read_part_docs
 from seqpipe.recipe import SplitSpec
+from seqpipe.shards import read_table
 from seqpipe.splits import assign_splits
 
 # Rows a group task holds at most per partition (exact: one per document, near: one per
@@ -169,10 +170,11 @@ def band_keys(sig: np.ndarray, bands: int, rows: int) -> np.ndarray:
 def write_keys(task: PartTask) -> int:
     """Phase keys: the part's exact and band keys, partitioned by key hash; returns its documents."""
     scheme = task.scheme
-    table = read_part_docs(scheme.cache_dir, task.key)
-    n = table.num_rows
+    n = task.documents
     p = np.uint64(scheme.partitions)
     if scheme.exact:
+        table = read_part_docs(scheme.cache_dir, task.key)
+        n = table.num_rows
         keys = fixed16(table, "dedupe")
         where = (np.ascontiguousarray(keys[:, :8]).view("<u8").ravel() % p).astype(np.int64)
         columns = {"key": _binary(keys), "row": pa.array(np.arange(n, dtype=np.int32))}
@@ -180,7 +182,9 @@ def write_keys(task: PartTask) -> int:
     if scheme.near is not None:
         bands, rows, _ = scheme.near
         # per (band, document) 14 bytes: the band's key, band and row (the values stay in the part)
-        key = band_keys(signature_rows(table, bands * rows), bands, rows)
+        sig = _part_signatures(scheme.cache_dir, task.key, bands * rows)
+        n = len(sig)
+        key = band_keys(sig, bands, rows)
         columns = {
             "band": pa.array(np.repeat(np.arange(bands, dtype=np.int16), n)),
             "key": pa.array(key),
@@ -406,10 +410,28 @@ def _signatures(scheme: Scheme, members: np.ndarray, hashes: int) -> np.ndarray:
     parts = members >> 32
     for n in np.unique(parts).tolist():
         at = np.flatnonzero(parts == n)
-        column = read_part_docs(scheme.cache_dir, keys[n]).column("near")
-        taken = column.take(pa.array(members[at] & 0xFFFFFFFF))
-        out[at] = signature_rows(pa.table({"near": taken}), hashes)
+        out[at] = _part_signatures(scheme.cache_dir, keys[n], hashes)[members[at] & 0xFFFFFFFF]
     return out
+
+
+def _part_signatures(cache_dir: str, key: str, hashes: int) -> np.ndarray:
+    """A cached part's ``near`` column (its documents table's, see ingest.read_part_docs) as an
+    (n, hashes) uint32 view of the mapped file: only the rows a caller takes are copied."""
+    path = _part_dir(cache_dir, key) / PART_FILE
+    column = read_table(path).column("near").combine_chunks()  # one row: the part's list of signatures
+    if len(column) != 1 or not pa.types.is_fixed_size_binary(column.type.value_type):
+        raise ShardCorruptError(f"{path}: the part has no signature list; run the build again", path=str(path))
+    first, last = column.offsets[0].as_py(), column.offsets[1].as_py()
+    values = column.values
+    width = 4 * hashes
+    buf = values.buffers()[1]
+    if buf is None or last == first:
+        return np.zeros((0, hashes), np.uint32)
+    if values.type.byte_width != width:
+        raise ShardCorruptError(f"{path}: signatures of {values.type.byte_width} bytes, not {width}", path=str(path))
+    start = (values.offset + first) * width
+    raw = np.frombuffer(buf, np.uint8)[start : start + (last - first) * width]
+    return raw.view("<u4").reshape(-1, hashes)
 
 
 # -- resolve: in the driver, over the confirmed pairs only -------------------------------------------
