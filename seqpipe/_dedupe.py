@@ -5,7 +5,7 @@ The phases (each a set of executor tasks; files in the build's work directory)::
 
     keys     task per part: its documents' keys (exact ``dedupe`` hash; a 64-bit key per
              near_dedupe band, :func:`band_keys`) into one Arrow IPC file whose record batch p
-             holds partition p (by key hash); near batches sorted by key
+             holds partition p (exact: by key hash; near: by key range, batches nearly sorted by key)
     group    task per partition: batch p of every part, grouped by key. Exact: every occurrence
              after the first in corpus order is dropped. Near: rows whose band key repeats are
              checked against their band's values in the signatures (regrouped by the values
@@ -29,6 +29,7 @@ number of partitions, workers or the order tasks finish in.
 from __future__ import annotations
 
 import dataclasses
+import itertools
 import json
 import os
 import shutil
@@ -185,14 +186,21 @@ def write_keys(task: PartTask) -> int:
         sig = _part_signatures(scheme.cache_dir, task.key, bands * rows)
         n = len(sig)
         key = band_keys(sig, bands, rows)
-        columns = {
-            "band": pa.array(np.repeat(np.arange(bands, dtype=np.int16), n)),
-            "key": pa.array(key),
-            "row": pa.array(np.tile(np.arange(n, dtype=np.int32), bands)),
-        }
-        where = (key % p).astype(np.int64)
-        # each batch (nearly) sorted by key: a group task merges sorted runs, not a shuffle
-        _write_partitioned(_path(scheme, "near", task.number), columns, where, scheme.partitions, _key_order(key))
+        # each batch (nearly) sorted by key: a group task merges sorted runs, not a shuffle; a
+        # near partition is a range of keys (by their top 32 bits, which the order follows), so
+        # the ordered keys are already in partition order
+        order = _key_order(key)
+        ordered = key[order]
+        where = ((ordered >> np.uint64(32)) * p) >> np.uint64(32)
+        bounds = np.searchsorted(where, np.arange(scheme.partitions + 1, dtype=np.uint64)).tolist()
+        band, row = np.divmod(order, max(n, 1))
+        arrays = [pa.array(band.astype(np.int16)), pa.array(ordered), pa.array(row.astype(np.int32))]
+        schema = pa.schema([("band", pa.int16()), ("key", pa.uint64()), ("row", pa.int32())])
+        batches = [
+            pa.record_batch([col.slice(a, b - a) for col in arrays], schema=schema)
+            for a, b in itertools.pairwise(bounds)
+        ]
+        _write(_path(scheme, "near", task.number), schema, batches)
     return int(n)
 
 
