@@ -426,7 +426,8 @@ def _part_signatures(cache_dir: str, key: str, hashes: int) -> np.ndarray:
     """A cached part's ``near`` column (its documents table's, see ingest.read_part_docs) as an
     (n, hashes) uint32 view of the mapped file: only the rows a caller takes are copied."""
     path = _part_dir(cache_dir, key) / PART_FILE
-    column = read_table(path).column("near").combine_chunks()  # one row: the part's list of signatures
+    near = read_table(path).column("near")  # one row: the part's list of signatures
+    column = near.chunk(0) if near.num_chunks == 1 else near.combine_chunks()  # (that one copies the values)
     if len(column) != 1 or not pa.types.is_fixed_size_binary(column.type.value_type):
         raise ShardCorruptError(f"{path}: the part has no signature list; run the build again", path=str(path))
     first, last = column.offsets[0].as_py(), column.offsets[1].as_py()
