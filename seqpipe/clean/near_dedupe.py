@@ -135,22 +135,29 @@ def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
     first[1:] = doc[1:] != doc[:-1]
     run_start = np.flatnonzero(first)
     run_len = np.diff(np.append(run_start, n))
-    count = np.maximum(run_len - size + 1, 1)  # shingles per document that has words
-    starts = np.repeat(run_start, count) + (np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count, count))
-    width = np.minimum(np.repeat(run_len, count), size)
-    padded = np.r_[word, np.zeros(size, np.uint64)]  # a short document's window reads past its end
-    acc = padded[starts]
+    # a shingle starts at every word but a document's last size - 1 (its first word always starts one)
+    valid = np.ones(n, dtype=bool)
+    run_end = run_start + run_len
+    for k in range(1, size):  # a loop over shingle positions, not over words
+        valid[run_end[run_len > k] - k] = False
+    starts = np.flatnonzero(valid)
+    padded = np.r_[word, np.zeros(size, np.uint64)]  # the windows of a document's last words read past its end
     with np.errstate(over="ignore"):
-        for k in range(1, size):  # a loop over shingle positions, not over words
-            acc *= _BYTE_BASE
-            acc += padded[starts + k]
-        short = np.flatnonzero(width < size)
+        window = padded[:n].copy()  # Horner over every window of size words (slices, not gathers)
+        for k in range(1, size):
+            window *= _BYTE_BASE
+            window += padded[k : n + k]
+        acc = window[starts]
+        width = np.full(len(starts), size, np.uint64)
+        short = np.flatnonzero(run_len < size)
         if len(short):  # documents with fewer words than a shingle: Horner over their words only
+            at = np.searchsorted(starts, run_start[short])
             part = np.zeros(len(short), np.uint64)
             for k in range(size):
-                part = np.where(k < width[short], part * _BYTE_BASE + padded[starts[short] + k], part)
-            acc[short] = part
-    return mix64(acc + width.astype(np.uint64)), doc[starts]
+                part = np.where(k < run_len[short], part * _BYTE_BASE + padded[run_start[short] + k], part)
+            acc[at] = part
+            width[at] = run_len[short]
+    return mix64(acc + width), doc[starts]
 
 
 def seeds(count: int, seed: int) -> np.ndarray:
