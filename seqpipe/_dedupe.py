@@ -205,17 +205,12 @@ def write_keys(task: PartTask) -> int:
 
 
 def _key_order(key: np.ndarray) -> np.ndarray:
-    """Positions of ``key`` in the order of their top bits (all but the few that number the
-    positions), ties by position: one sort of integers that carry their own position, cheaper
-    than an argsort. Keys equal in those bits but not in the rest may stay out of order; the
-    group task's stable sort puts them in place (such keys are rare, so its runs stay sorted)."""
-    bits = max(1, (len(key) - 1).bit_length())
-    if bits > 32:  # never in practice (a part's keys number far below 2**32)
-        return np.argsort(key, kind="stable")
-    low = np.uint64((1 << bits) - 1)
-    packed = (key & ~low) | np.arange(len(key), dtype=np.uint64)
-    packed.sort()
-    return (packed & low).astype(np.int64)
+    """Positions of ``key`` in the order of their top 32 bits, ties by position: two stable sorts
+    of 16-bit digits (numpy sorts those by radix), cheaper than one sort of 64-bit keys. Keys
+    equal in those bits but not in the rest may stay out of order; the group task's stable sort
+    puts them in place (such keys are rare, so its runs stay sorted)."""
+    order = np.argsort((key >> np.uint64(32)).astype(np.uint16), kind="stable")
+    return order[np.argsort((key >> np.uint64(48)).astype(np.uint16)[order], kind="stable")]
 
 
 # -- group: a task per partition ---------------------------------------------------------------------
