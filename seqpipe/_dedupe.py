@@ -307,14 +307,15 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
     within = np.lexsort((ids, bucket))  # by key, then corpus order
     ids, band, bucket = ids[within], band[within], bucket[within]
     members, where = np.unique(ids, return_inverse=True)
-    sig = _signatures(scheme, members, bands * rows)[where.ravel()]
-    ids, sig, bucket = _exact_buckets(ids, sig, band, bucket, rows)
+    # one signature per document, not per row: a row finds its document's as own[where]
+    own = _signatures(scheme, members, bands * rows)
+    ids, where, bucket = _exact_buckets(ids, own, where.ravel(), band, bucket, rows)
     starts, ends = _runs(bucket)
     small = ends - starts <= _SMALL_BUCKET
-    found_repeats, found_pairs = _small_buckets(ids, sig, starts[small], ends[small] - starts[small], threshold)
+    found_repeats, found_pairs = _small_buckets(ids, own, where, starts[small], ends[small] - starts[small], threshold)
     # larger buckets: one step each (most shared buckets hold two or three documents)
     for a, b in zip(starts[~small].tolist(), ends[~small].tolist(), strict=True):
-        rep, pair = _bucket_pairs(ids[a:b], sig[a:b], threshold)
+        rep, pair = _bucket_pairs(ids[a:b], own[where[a:b]], threshold)
         found_repeats.append(rep)
         found_pairs.append(pair)
     pairs = np.unique(np.concatenate(found_pairs), axis=0)
@@ -322,16 +323,17 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _exact_buckets(
-    ids: np.ndarray, sig: np.ndarray, band: np.ndarray, bucket: np.ndarray, rows: int
+    ids: np.ndarray, own: np.ndarray, where: np.ndarray, band: np.ndarray, bucket: np.ndarray, rows: int
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Rows grouped by key (sorted by key, then id) checked against their band's values: when
-    every row equals its group's first on band and values (the keys did not collide), as they
-    are; else regrouped by band and values, without the rows then alone, sorted by group and id."""
-    values = np.take_along_axis(sig, band[:, None] * rows + np.arange(rows), axis=1)
+    """Rows grouped by key (sorted by key, then id; row i's signature ``own[where[i]]``) checked
+    against their band's values: when every row equals its group's first on band and values (the
+    keys did not collide), as they are; else regrouped by band and values, without the rows then
+    alone, sorted by group and id. Returns the rows' ids, ``where`` and groups."""
+    values = own[where[:, None], band[:, None] * rows + np.arange(rows)]
     first = np.flatnonzero(np.r_[True, bucket[1:] != bucket[:-1]])
     lead = np.repeat(first, np.diff(np.r_[first, len(bucket)]))
     if np.array_equal(values, values[lead]) and np.array_equal(band, band[lead]):
-        return ids, sig, bucket
+        return ids, where, bucket
     packed = np.ascontiguousarray(np.column_stack([band.astype(np.uint32), values]).astype("<u4"))
     _, exact, sizes = np.unique(
         packed.view(np.dtype((np.void, 4 * (rows + 1)))).ravel(), return_inverse=True, return_counts=True
@@ -339,7 +341,7 @@ def _exact_buckets(
     exact = exact.ravel()
     kept = np.flatnonzero(sizes[exact] > 1)
     order = kept[np.lexsort((ids[kept], exact[kept]))]
-    return ids[order], sig[order], exact[order].astype(np.uint64)
+    return ids[order], where[order], exact[order].astype(np.uint64)
 
 
 _SMALL_BUCKET: Final = 8  # buckets up to this size are compared together, all pairs at once
@@ -347,10 +349,10 @@ _PAIR_BLOCK: Final = 1 << 14  # pairs compared per numpy pass: bounds the (pairs
 
 
 def _small_buckets(
-    ids: np.ndarray, sig: np.ndarray, starts: np.ndarray, sizes: np.ndarray, threshold: float
+    ids: np.ndarray, own: np.ndarray, where: np.ndarray, starts: np.ndarray, sizes: np.ndarray, threshold: float
 ) -> tuple[list[np.ndarray], list[np.ndarray]]:
     """:func:`_bucket_pairs` for many small buckets at once (rows ``start .. start + size`` of
-    ``ids``/``sig``, each bucket in corpus order), by bucket size: every pair of members is
+    ``ids``, row i's signature ``own[where[i]]``, each bucket in corpus order), by bucket size: every pair of members is
     compared; a member equal to an earlier one is a repeat, and the pairs of members that are not
     repeats are kept when their estimated similarity reaches ``threshold``."""
     repeats: list[np.ndarray] = [np.zeros(0, np.int64)]
@@ -362,7 +364,7 @@ def _small_buckets(
         for lo in range(0, len(group), step):
             base = group[lo : lo + step, None]
             a, b = (base + first).ravel(), (base + second).ravel()
-            share = (sig[a] == sig[b]).mean(axis=1)
+            share = (own[where[a]] == own[where[b]]).mean(axis=1)
             repeated = np.unique(b[share == 1.0])
             repeats.append(ids[repeated])
             # pairs between members that are not repeats (their signatures differ: share < 1)
