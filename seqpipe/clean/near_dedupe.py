@@ -24,9 +24,10 @@ from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import mix64, space_bytes, utf8_buffers
+from seqpipe.clean._quality import _CLASSES, SPACE, mix64, utf8_buffers, wide_code_points
 from seqpipe.clean.base import CleanStep, as_documents
 from seqpipe.errors import RecipeError
 
@@ -101,6 +102,31 @@ def _powers(count: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return kept.powers, kept.inverse, kept.summed
 
 
+def _byte_runs(flags: np.ndarray) -> tuple[tuple[int, int], ...]:
+    """The runs (first, last) of byte values whose flag is set."""
+    edges = np.flatnonzero(np.diff(np.r_[0, flags.astype(np.int8), 0]))
+    return tuple(zip(edges[0::2].tolist(), (edges[1::2] - 1).tolist(), strict=True))
+
+
+_SPACE_RUNS: Final = _byte_runs(_CLASSES & SPACE)  # ASCII whitespace: bytes 9-13 and 28-32
+
+
+def _space_bytes(docs: pa.Array, data: np.ndarray) -> np.ndarray:
+    """``_quality.space_bytes`` (per byte of ``docs``' UTF-8 ``data``: part of a whitespace code
+    point, as pyarrow's ``utf8_is_space`` sees it), with the single-byte table applied as a
+    compare per run of its byte values instead of a table look-up per byte."""
+    space = np.zeros(len(data), dtype=bool)
+    for first, last in _SPACE_RUNS:  # (byte - first) wraps below first: one compare per run
+        space |= (data - np.uint8(first)) <= np.uint8(last - first)
+    wide = wide_code_points(docs)
+    if len(wide.at):  # a multi-byte code point's flag goes on all its bytes
+        flag = wide.classify(pc.utf8_is_space)
+        for k in range(4):
+            at = wide.size > k
+            space[wide.at[at] + k] = flag[at]
+    return space
+
+
 def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     """A 64-bit hash of each word's UTF-8 bytes (:func:`_span_hashes`) and the document of each
     word. Words are the runs of bytes outside Unicode whitespace within a document, as
@@ -108,7 +134,7 @@ def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     data, offsets = utf8_buffers(docs)
     if not len(data):
         return np.zeros(0, np.uint64), np.zeros(0, np.int64)
-    inside = ~space_bytes(docs)
+    inside = ~_space_bytes(docs, data)
     start = inside.copy()
     start[1:] &= ~inside[:-1]
     end = inside.copy()
