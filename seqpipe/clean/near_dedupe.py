@@ -135,10 +135,12 @@ def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     if not len(data):
         return np.zeros(0, np.uint64), np.zeros(0, np.int64)
     inside = ~_space_bytes(docs, data)
-    start = inside.copy()
-    start[1:] &= ~inside[:-1]
-    end = inside.copy()
-    end[:-1] &= ~inside[1:]
+    start = np.empty_like(inside)  # inside after outside (for booleans a > b is a and not b)
+    np.greater(inside[1:], inside[:-1], out=start[1:])
+    start[0] = inside[0]
+    end = np.empty_like(inside)  # inside before outside
+    np.greater(inside[:-1], inside[1:], out=end[:-1])
+    end[-1] = inside[-1]
     filled = offsets[:-1] < offsets[1:]
     first, last = offsets[:-1][filled], offsets[1:][filled] - 1  # a word never spans two documents
     start[first] = inside[first]
