@@ -44,7 +44,7 @@ import pyarrow as pa
 from seqpipe.clean._quality import mix64
 from seqpipe.counts import first_occurrence
 from seqpipe.errors import ShardCorruptError
-from seqpipe.ingest import PART_FILE, _part_dir, count_part, encode_part, fixed16, read_part_docs
+from seqpipe.ingest import count_part, encode_part, fixed16, part_file, read_part_docs
 from seqpipe.recipe import SplitSpec
 from seqpipe.shards import read_table
 from seqpipe.splits import assign_splits
@@ -422,7 +422,7 @@ def _signatures(scheme: Scheme, members: np.ndarray, hashes: int) -> np.ndarray:
 def _part_signatures(cache_dir: str, key: str, hashes: int) -> np.ndarray:
     """A cached part's ``near`` column (its documents table's, see ingest.read_part_docs) as an
     (n, hashes) uint32 view of the mapped file: only the rows a caller takes are copied."""
-    path = _part_dir(cache_dir, key) / PART_FILE
+    path = part_file(cache_dir, key)
     near = read_table(path).column("near")  # one row: the part's list of signatures
     column = near.chunk(0) if near.num_chunks == 1 else near.combine_chunks()  # (that one copies the values)
     if len(column) != 1 or not pa.types.is_fixed_size_binary(column.type.value_type):

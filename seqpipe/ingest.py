@@ -582,6 +582,11 @@ def _read_part(cache_dir: str, key: str) -> tuple[pa.Table, pa.Array, np.ndarray
     return pa.table(values), keys, codes
 
 
+def part_file(cache_dir: str, key: str) -> Path:
+    """Where a cached part's one file is (its documents table is read_part_docs')."""
+    return _part_dir(cache_dir, key) / PART_FILE
+
+
 def _one_chunk(column: pa.ChunkedArray) -> pa.Array:
     return column.chunk(0) if column.num_chunks == 1 else column.combine_chunks()
 

@@ -27,7 +27,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import _CLASSES, SPACE, mix64, utf8_buffers, wide_code_points
+from seqpipe.clean._quality import mix64, space_bytes, utf8_buffers, wide_code_points
 from seqpipe.clean.base import CleanStep, as_documents
 from seqpipe.errors import RecipeError
 
@@ -108,7 +108,9 @@ def _byte_runs(flags: np.ndarray) -> tuple[tuple[int, int], ...]:
     return tuple(zip(edges[0::2].tolist(), (edges[1::2] - 1).tolist(), strict=True))
 
 
-_SPACE_RUNS: Final = _byte_runs(_CLASSES & SPACE)  # ASCII whitespace: bytes 9-13 and 28-32
+# ASCII whitespace as space_bytes sees it (bytes 9-13 and 28-32); a byte of 0x80 or more is part of
+# a multi-byte code point, which _space_bytes classifies as space_bytes does
+_SPACE_RUNS: Final = _byte_runs(space_bytes(pa.array(["".join(map(chr, range(128)))], pa.large_string())))
 
 
 def _space_bytes(docs: pa.Array, data: np.ndarray) -> np.ndarray:
