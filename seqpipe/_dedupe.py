@@ -5,7 +5,7 @@ The phases (each a set of executor tasks; files in the build's work directory)::
 
     keys     task per part: its documents' keys (exact ``dedupe`` hash; a 64-bit key per
              near_dedupe band, :func:`band_keys`) into one Arrow IPC file whose record batch p
-             holds partition p (by key hash); near batches sorted by key
+             holds partition p (exact: by key hash; near: by key range, batches nearly sorted by key)
     group    task per partition: batch p of every part, grouped by key. Exact: every occurrence
              after the first in corpus order is dropped. Near: rows whose band key repeats are
              checked against their band's values in the signatures (regrouped by the values
@@ -29,6 +29,7 @@ number of partitions, workers or the order tasks finish in.
 from __future__ import annotations
 
 import dataclasses
+import itertools
 import json
 import os
 import shutil
@@ -43,8 +44,9 @@ import pyarrow as pa
 from seqpipe.clean._quality import mix64
 from seqpipe.counts import first_occurrence
 from seqpipe.errors import ShardCorruptError
-from seqpipe.ingest import count_part, encode_part, fixed16, read_part_docs, signature_rows
+from seqpipe.ingest import count_part, encode_part, fixed16, part_file, read_part_docs
 from seqpipe.recipe import SplitSpec
+from seqpipe.shards import read_table
 from seqpipe.splits import assign_splits
 
 # Rows a group task holds at most per partition (exact: one per document, near: one per
@@ -169,10 +171,11 @@ def band_keys(sig: np.ndarray, bands: int, rows: int) -> np.ndarray:
 def write_keys(task: PartTask) -> int:
     """Phase keys: the part's exact and band keys, partitioned by key hash; returns its documents."""
     scheme = task.scheme
-    table = read_part_docs(scheme.cache_dir, task.key)
-    n = table.num_rows
+    n = task.documents
     p = np.uint64(scheme.partitions)
     if scheme.exact:
+        table = read_part_docs(scheme.cache_dir, task.key)
+        n = table.num_rows
         keys = fixed16(table, "dedupe")
         where = (np.ascontiguousarray(keys[:, :8]).view("<u8").ravel() % p).astype(np.int64)
         columns = {"key": _binary(keys), "row": pa.array(np.arange(n, dtype=np.int32))}
@@ -180,16 +183,34 @@ def write_keys(task: PartTask) -> int:
     if scheme.near is not None:
         bands, rows, _ = scheme.near
         # per (band, document) 14 bytes: the band's key, band and row (the values stay in the part)
-        key = band_keys(signature_rows(table, bands * rows), bands, rows)
-        columns = {
-            "band": pa.array(np.repeat(np.arange(bands, dtype=np.int16), n)),
-            "key": pa.array(key),
-            "row": pa.array(np.tile(np.arange(n, dtype=np.int32), bands)),
-        }
-        where = (key % p).astype(np.int64)
-        # each batch sorted by key: a group task merges sorted runs, not a shuffle
-        _write_partitioned(_path(scheme, "near", task.number), columns, where, scheme.partitions, np.argsort(key))
+        sig = _part_signatures(scheme.cache_dir, task.key, bands * rows)
+        n = len(sig)
+        key = band_keys(sig, bands, rows)
+        # each batch (nearly) sorted by key: a group task merges sorted runs, not a shuffle; a
+        # near partition is a range of keys (by their top 32 bits, which the order follows), so
+        # the ordered keys are already in partition order
+        order = _key_order(key)
+        ordered = key[order]
+        where = ((ordered >> np.uint64(32)) * p) >> np.uint64(32)
+        bounds = np.searchsorted(where, np.arange(scheme.partitions + 1, dtype=np.uint64)).tolist()
+        band, row = np.divmod(order, max(n, 1))
+        arrays = [pa.array(band.astype(np.int16)), pa.array(ordered), pa.array(row.astype(np.int32))]
+        schema = pa.schema([("band", pa.int16()), ("key", pa.uint64()), ("row", pa.int32())])
+        batches = [
+            pa.record_batch([col.slice(a, b - a) for col in arrays], schema=schema)
+            for a, b in itertools.pairwise(bounds)
+        ]
+        _write(_path(scheme, "near", task.number), schema, batches)
     return int(n)
+
+
+def _key_order(key: np.ndarray) -> np.ndarray:
+    """Positions of ``key`` in the order of their top 32 bits, ties by position: two stable sorts
+    of 16-bit digits (numpy sorts those by radix), cheaper than one sort of 64-bit keys. Keys
+    equal in those bits but not in the rest may stay out of order; the group task's stable sort
+    puts them in place (such keys are rare, so its runs stay sorted)."""
+    order = np.argsort((key >> np.uint64(32)).astype(np.uint16), kind="stable")
+    return order[np.argsort((key >> np.uint64(48)).astype(np.uint16)[order], kind="stable")]
 
 
 # -- group: a task per partition ---------------------------------------------------------------------
@@ -286,14 +307,15 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
     within = np.lexsort((ids, bucket))  # by key, then corpus order
     ids, band, bucket = ids[within], band[within], bucket[within]
     members, where = np.unique(ids, return_inverse=True)
-    sig = _signatures(scheme, members, bands * rows)[where.ravel()]
-    ids, sig, bucket = _exact_buckets(ids, sig, band, bucket, rows)
+    # one signature per document, not per row: a row finds its document's as own[where]
+    own = _signatures(scheme, members, bands * rows)
+    ids, where, bucket = _exact_buckets(ids, own, where.ravel(), band, bucket, rows)
     starts, ends = _runs(bucket)
     small = ends - starts <= _SMALL_BUCKET
-    found_repeats, found_pairs = _small_buckets(ids, sig, starts[small], ends[small] - starts[small], threshold)
+    found_repeats, found_pairs = _small_buckets(ids, own, where, starts[small], ends[small] - starts[small], threshold)
     # larger buckets: one step each (most shared buckets hold two or three documents)
     for a, b in zip(starts[~small].tolist(), ends[~small].tolist(), strict=True):
-        rep, pair = _bucket_pairs(ids[a:b], sig[a:b], threshold)
+        rep, pair = _bucket_pairs(ids[a:b], own[where[a:b]], threshold)
         found_repeats.append(rep)
         found_pairs.append(pair)
     pairs = np.unique(np.concatenate(found_pairs), axis=0)
@@ -301,16 +323,17 @@ def _near_partition(scheme: Scheme, p: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _exact_buckets(
-    ids: np.ndarray, sig: np.ndarray, band: np.ndarray, bucket: np.ndarray, rows: int
+    ids: np.ndarray, own: np.ndarray, where: np.ndarray, band: np.ndarray, bucket: np.ndarray, rows: int
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Rows grouped by key (sorted by key, then id) checked against their band's values: when
-    every row equals its group's first on band and values (the keys did not collide), as they
-    are; else regrouped by band and values, without the rows then alone, sorted by group and id."""
-    values = np.take_along_axis(sig, band[:, None] * rows + np.arange(rows), axis=1)
+    """Rows grouped by key (sorted by key, then id; row i's signature ``own[where[i]]``) checked
+    against their band's values: when every row equals its group's first on band and values (the
+    keys did not collide), as they are; else regrouped by band and values, without the rows then
+    alone, sorted by group and id. Returns the rows' ids, ``where`` and groups."""
+    values = own[where[:, None], band[:, None] * rows + np.arange(rows)]
     first = np.flatnonzero(np.r_[True, bucket[1:] != bucket[:-1]])
     lead = np.repeat(first, np.diff(np.r_[first, len(bucket)]))
     if np.array_equal(values, values[lead]) and np.array_equal(band, band[lead]):
-        return ids, sig, bucket
+        return ids, where, bucket
     packed = np.ascontiguousarray(np.column_stack([band.astype(np.uint32), values]).astype("<u4"))
     _, exact, sizes = np.unique(
         packed.view(np.dtype((np.void, 4 * (rows + 1)))).ravel(), return_inverse=True, return_counts=True
@@ -318,7 +341,7 @@ def _exact_buckets(
     exact = exact.ravel()
     kept = np.flatnonzero(sizes[exact] > 1)
     order = kept[np.lexsort((ids[kept], exact[kept]))]
-    return ids[order], sig[order], exact[order].astype(np.uint64)
+    return ids[order], where[order], exact[order].astype(np.uint64)
 
 
 _SMALL_BUCKET: Final = 8  # buckets up to this size are compared together, all pairs at once
@@ -326,10 +349,10 @@ _PAIR_BLOCK: Final = 1 << 14  # pairs compared per numpy pass: bounds the (pairs
 
 
 def _small_buckets(
-    ids: np.ndarray, sig: np.ndarray, starts: np.ndarray, sizes: np.ndarray, threshold: float
+    ids: np.ndarray, own: np.ndarray, where: np.ndarray, starts: np.ndarray, sizes: np.ndarray, threshold: float
 ) -> tuple[list[np.ndarray], list[np.ndarray]]:
     """:func:`_bucket_pairs` for many small buckets at once (rows ``start .. start + size`` of
-    ``ids``/``sig``, each bucket in corpus order), by bucket size: every pair of members is
+    ``ids``, row i's signature ``own[where[i]]``, each bucket in corpus order), by bucket size: every pair of members is
     compared; a member equal to an earlier one is a repeat, and the pairs of members that are not
     repeats are kept when their estimated similarity reaches ``threshold``."""
     repeats: list[np.ndarray] = [np.zeros(0, np.int64)]
@@ -341,7 +364,7 @@ def _small_buckets(
         for lo in range(0, len(group), step):
             base = group[lo : lo + step, None]
             a, b = (base + first).ravel(), (base + second).ravel()
-            share = (sig[a] == sig[b]).mean(axis=1)
+            share = (own[where[a]] == own[where[b]]).mean(axis=1)
             repeated = np.unique(b[share == 1.0])
             repeats.append(ids[repeated])
             # pairs between members that are not repeats (their signatures differ: share < 1)
@@ -392,10 +415,29 @@ def _signatures(scheme: Scheme, members: np.ndarray, hashes: int) -> np.ndarray:
     parts = members >> 32
     for n in np.unique(parts).tolist():
         at = np.flatnonzero(parts == n)
-        column = read_part_docs(scheme.cache_dir, keys[n]).column("near")
-        taken = column.take(pa.array(members[at] & 0xFFFFFFFF))
-        out[at] = signature_rows(pa.table({"near": taken}), hashes)
+        out[at] = _part_signatures(scheme.cache_dir, keys[n], hashes)[members[at] & 0xFFFFFFFF]
     return out
+
+
+def _part_signatures(cache_dir: str, key: str, hashes: int) -> np.ndarray:
+    """A cached part's ``near`` column (its documents table's, see ingest.read_part_docs) as an
+    (n, hashes) uint32 view of the mapped file: only the rows a caller takes are copied."""
+    path = part_file(cache_dir, key)
+    near = read_table(path).column("near")  # one row: the part's list of signatures
+    column = near.chunk(0) if near.num_chunks == 1 else near.combine_chunks()  # (that one copies the values)
+    if len(column) != 1 or not pa.types.is_fixed_size_binary(column.type.value_type):
+        raise ShardCorruptError(f"{path}: the part has no signature list; run the build again", path=str(path))
+    first, last = column.offsets[0].as_py(), column.offsets[1].as_py()
+    values = column.values
+    width = 4 * hashes
+    buf = values.buffers()[1]
+    if buf is None or last == first:
+        return np.zeros((0, hashes), np.uint32)
+    if values.type.byte_width != width:
+        raise ShardCorruptError(f"{path}: signatures of {values.type.byte_width} bytes, not {width}", path=str(path))
+    start = (values.offset + first) * width
+    raw = np.frombuffer(buf, np.uint8)[start : start + (last - first) * width]
+    return raw.view("<u4").reshape(-1, hashes)
 
 
 # -- resolve: in the driver, over the confirmed pairs only -------------------------------------------

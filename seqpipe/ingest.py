@@ -575,10 +575,20 @@ def _store_part(
 def _read_part(cache_dir: str, key: str) -> tuple[pa.Table, pa.Array, np.ndarray]:
     """A cached part: its documents table, its distinct piece keys, and its piece codes."""
     row = read_table(_part_dir(cache_dir, key) / PART_FILE)
-    values = {name: row.column(name).combine_chunks().flatten() for name in row.column_names}
+    # a column of the one-row file is one chunk: combine_chunks would copy it (the near signatures: 15 MB a part)
+    values = {name: _one_chunk(row.column(name)).flatten() for name in row.column_names}
     keys = values.pop("keys")
     codes = values.pop("codes").to_numpy(zero_copy_only=False)
     return pa.table(values), keys, codes
+
+
+def part_file(cache_dir: str, key: str) -> Path:
+    """Where a cached part's one file is (its documents table is read_part_docs')."""
+    return _part_dir(cache_dir, key) / PART_FILE
+
+
+def _one_chunk(column: pa.ChunkedArray) -> pa.Array:
+    return column.chunk(0) if column.num_chunks == 1 else column.combine_chunks()
 
 
 def _stored_codes(codes: np.ndarray, n_keys: int) -> pa.Array:

@@ -21,6 +21,7 @@ from seqpipe._dedupe import Scheme, keep_mask, partitions_for, reset
 from seqpipe.clean.near_dedupe import near_duplicate_keep
 from seqpipe.counts import first_occurrence
 from seqpipe.executors import InlineExecutor, TaskPool
+from seqpipe.ingest import signature_rows
 from seqpipe.recipe import SplitSpec
 from seqpipe.splits import assign_splits
 
@@ -125,7 +126,7 @@ def run_phases(
     near: tuple[int, int, float],
     partitions: int,
 ) -> Kept:
-    """_build._dropped over in-memory part tables (read_part_docs replaced), on one process."""
+    """_build._dropped over in-memory part tables (read_part_docs and _part_signatures replaced), on one process."""
     keys = list(tables)
     recipe = SimpleNamespace(
         sources=[
@@ -138,12 +139,13 @@ def run_phases(
     held = any((f or 0) > 0 for f in fixed)
     scheme = Scheme(str(work), str(work / "w"), len(keys), partitions, True, near, splits if held else None)
     reset(scheme.work_dir, keys)
-    original = _dedupe.read_part_docs
+    original = _dedupe.read_part_docs, _dedupe._part_signatures
     _dedupe.read_part_docs = lambda _cache, key: tables[key]  # type: ignore[assignment]
+    _dedupe._part_signatures = lambda _cache, key, hashes: signature_rows(tables[key], hashes)  # type: ignore[assignment]
     try:
         return _dropped(ctx, plan, scheme, tuple(t.num_rows for t in tables.values()))
     finally:
-        _dedupe.read_part_docs = original  # type: ignore[assignment]
+        _dedupe.read_part_docs, _dedupe._part_signatures = original  # type: ignore[assignment]
 
 
 def test_partition_count_grows_with_rows_only() -> None:

@@ -185,3 +185,18 @@ def test_word_hashes_cut_words_as_the_quality_words_do() -> None:
     got, doc = module._word_hashes(arr)
     assert doc.tolist() == pieces.doc.tolist()
     assert got.tolist() == module._byte_hashes(pieces.text).tolist()
+
+
+def test_space_bytes_by_compares_equal_the_table_look_up() -> None:
+    """The whitespace flag per byte from compares against runs of byte values equals
+    _quality.space_bytes (its table and pyarrow's utf8_is_space) for every ASCII character and
+    for multi-byte whitespace and letters."""
+    import seqpipe.clean.near_dedupe as module
+    from seqpipe.clean._quality import space_bytes, utf8_buffers
+
+    texts = ["".join(chr(c) for c in range(128)), "\u3000ferry\u00a0oar\u2028rope\u0085", "", "é \x1c\x1f ü\x7f"]
+    arr = pa.array(texts, pa.large_string()).slice(1)
+    data = utf8_buffers(arr)[0]
+    assert module._space_bytes(arr, data).tolist() == space_bytes(arr).tolist()
+    whole = pa.array(texts, pa.large_string())
+    assert module._space_bytes(whole, utf8_buffers(whole)[0]).tolist() == space_bytes(whole).tolist()

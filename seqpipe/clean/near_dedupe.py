@@ -24,9 +24,10 @@ from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import mix64, space_bytes, utf8_buffers
+from seqpipe.clean._quality import mix64, space_bytes, utf8_buffers, wide_code_points
 from seqpipe.clean.base import CleanStep, as_documents
 from seqpipe.errors import RecipeError
 
@@ -58,11 +59,14 @@ def _span_hashes(data: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> np.n
         base = int(starts[lo])
         part = data[base : int(ends[hi - 1])]
         prefix = np.zeros(len(part) + 1, np.uint64)
-        powers, inverse = _powers(len(part))
+        powers, inverse, summed = _powers(len(part))
         with np.errstate(over="ignore"):
-            np.cumsum((part + np.uint64(1)) * powers[1 : len(part) + 1], out=prefix[1:])
+            # sum(b_j * B**(j+1)) from the bytes as they are, the "+ 1" of every byte from the
+            # prefix sums of the powers: no widened copy of the bytes plus one
+            np.multiply(part, powers[1 : len(part) + 1], out=prefix[1:])
+            np.cumsum(prefix[1:], out=prefix[1:])
             a, b = starts[lo:hi] - base, ends[lo:hi] - base
-            out[lo:hi] = (prefix[b] - prefix[a]) * inverse[a]
+            out[lo:hi] = (prefix[b] - prefix[a] + summed[b] - summed[a]) * inverse[a]
     return mix64(out + (ends - starts).astype(np.uint64))
 
 
@@ -71,26 +75,58 @@ _BYTE_INVERSE: Final = np.uint64(pow(int(_BYTE_BASE), -1, 2**64))
 
 
 class _Powers(threading.local):
-    """Per thread, the powers of B and of its inverse mod 2**64 computed so far (they only grow)."""
+    """Per thread, the powers of B and of its inverse mod 2**64 computed so far and the prefix
+    sums of the powers of B (sum of B**i for i in 1 .. j); they only grow."""
 
     def __init__(self) -> None:
         self.powers: np.ndarray = np.ones(1, np.uint64)
         self.inverse: np.ndarray = np.ones(1, np.uint64)
+        self.summed: np.ndarray = np.zeros(1, np.uint64)
 
 
 _POWERS: Final = _Powers()
 
 
-def _powers(count: int) -> tuple[np.ndarray, np.ndarray]:
-    """B**j and B**-j mod 2**64 for j in 0 .. count (at least: longer arrays are reused; as
-    slices are at most _SPAN bytes but for one longer value, these stay about _SPAN long)."""
+def _powers(count: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """B**j, B**-j and sum(B**i for i in 1 .. j) mod 2**64 for j in 0 .. count (at least: longer
+    arrays are reused; as slices are at most _SPAN bytes but for one longer value, these stay
+    about _SPAN long)."""
     kept = _POWERS
     if len(kept.powers) <= count:
         size = max(count + 1, _SPAN + 1)
         with np.errstate(over="ignore"):
-            kept.powers = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_BASE, np.uint64)])
+            powers = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_BASE, np.uint64)])
+            kept.summed = np.r_[np.uint64(0), np.cumsum(powers[1:])]
             kept.inverse = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_INVERSE, np.uint64)])
-    return kept.powers, kept.inverse
+            kept.powers = powers
+    return kept.powers, kept.inverse, kept.summed
+
+
+def _byte_runs(flags: np.ndarray) -> tuple[tuple[int, int], ...]:
+    """The runs (first, last) of byte values whose flag is set."""
+    edges = np.flatnonzero(np.diff(np.r_[0, flags.astype(np.int8), 0]))
+    return tuple(zip(edges[0::2].tolist(), (edges[1::2] - 1).tolist(), strict=True))
+
+
+# ASCII whitespace as space_bytes sees it (bytes 9-13 and 28-32); a byte of 0x80 or more is part of
+# a multi-byte code point, which _space_bytes classifies as space_bytes does
+_SPACE_RUNS: Final = _byte_runs(space_bytes(pa.array(["".join(map(chr, range(128)))], pa.large_string())))
+
+
+def _space_bytes(docs: pa.Array, data: np.ndarray) -> np.ndarray:
+    """``_quality.space_bytes`` (per byte of ``docs``' UTF-8 ``data``: part of a whitespace code
+    point, as pyarrow's ``utf8_is_space`` sees it), with the single-byte table applied as a
+    compare per run of its byte values instead of a table look-up per byte."""
+    space = np.zeros(len(data), dtype=bool)
+    for first, last in _SPACE_RUNS:  # (byte - first) wraps below first: one compare per run
+        space |= (data - np.uint8(first)) <= np.uint8(last - first)
+    wide = wide_code_points(docs)
+    if len(wide.at):  # a multi-byte code point's flag goes on all its bytes
+        flag = wide.classify(pc.utf8_is_space)
+        for k in range(4):
+            at = wide.size > k
+            space[wide.at[at] + k] = flag[at]
+    return space
 
 
 def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
@@ -100,17 +136,22 @@ def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     data, offsets = utf8_buffers(docs)
     if not len(data):
         return np.zeros(0, np.uint64), np.zeros(0, np.int64)
-    inside = ~space_bytes(docs)
-    start = inside.copy()
-    start[1:] &= ~inside[:-1]
-    end = inside.copy()
-    end[:-1] &= ~inside[1:]
+    inside = ~_space_bytes(docs, data)
+    start = np.empty_like(inside)  # inside after outside (for booleans a > b is a and not b)
+    np.greater(inside[1:], inside[:-1], out=start[1:])
+    start[0] = inside[0]
+    end = np.empty_like(inside)  # inside before outside
+    np.greater(inside[:-1], inside[1:], out=end[:-1])
+    end[-1] = inside[-1]
     filled = offsets[:-1] < offsets[1:]
     first, last = offsets[:-1][filled], offsets[1:][filled] - 1  # a word never spans two documents
     start[first] = inside[first]
     end[last] = inside[last]
     starts = np.flatnonzero(start)
-    return _span_hashes(data, starts, np.flatnonzero(end) + 1), np.searchsorted(offsets, starts, side="right") - 1
+    # each document's words are a run of starts: the document of a word from the counts per document
+    counts = np.diff(np.searchsorted(starts, offsets))
+    doc = np.repeat(np.arange(len(offsets) - 1), counts)
+    return _span_hashes(data, starts, np.flatnonzero(end) + 1), doc
 
 
 def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
@@ -124,22 +165,29 @@ def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
     first[1:] = doc[1:] != doc[:-1]
     run_start = np.flatnonzero(first)
     run_len = np.diff(np.append(run_start, n))
-    count = np.maximum(run_len - size + 1, 1)  # shingles per document that has words
-    starts = np.repeat(run_start, count) + (np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count, count))
-    width = np.minimum(np.repeat(run_len, count), size)
-    padded = np.r_[word, np.zeros(size, np.uint64)]  # a short document's window reads past its end
-    acc = padded[starts]
+    # a shingle starts at every word but a document's last size - 1 (its first word always starts one)
+    valid = np.ones(n, dtype=bool)
+    run_end = run_start + run_len
+    for k in range(1, size):  # a loop over shingle positions, not over words
+        valid[run_end[run_len > k] - k] = False
+    starts = np.flatnonzero(valid)
+    padded = np.r_[word, np.zeros(size, np.uint64)]  # the windows of a document's last words read past its end
     with np.errstate(over="ignore"):
-        for k in range(1, size):  # a loop over shingle positions, not over words
-            acc *= _BYTE_BASE
-            acc += padded[starts + k]
-        short = np.flatnonzero(width < size)
+        window = padded[:n].copy()  # Horner over every window of size words (slices, not gathers)
+        for k in range(1, size):
+            window *= _BYTE_BASE
+            window += padded[k : n + k]
+        acc = window[starts]
+        width = np.full(len(starts), size, np.uint64)
+        short = np.flatnonzero(run_len < size)
         if len(short):  # documents with fewer words than a shingle: Horner over their words only
+            at = np.searchsorted(starts, run_start[short])
             part = np.zeros(len(short), np.uint64)
             for k in range(size):
-                part = np.where(k < width[short], part * _BYTE_BASE + padded[starts[short] + k], part)
-            acc[short] = part
-    return mix64(acc + width.astype(np.uint64)), doc[starts]
+                part = np.where(k < run_len[short], part * _BYTE_BASE + padded[run_start[short] + k], part)
+            acc[at] = part
+            width[at] = run_len[short]
+    return mix64(acc + width), doc[starts]
 
 
 def seeds(count: int, seed: int) -> np.ndarray:
