@@ -186,8 +186,14 @@ def space_bytes(docs: pa.Array) -> np.ndarray:
     code point as pyarrow's ``utf8_is_space`` (and so ``utf8_split_whitespace``) sees it, asked
     once per distinct non-ASCII code point."""
     space: np.ndarray = (byte_classes(docs) & SPACE).view(bool)  # SPACE is bit 0: each byte is 0 or 1
+    return mark_wide_spaces(docs, space)
+
+
+def mark_wide_spaces(docs: pa.Array, space: np.ndarray) -> np.ndarray:
+    """``space`` (one flag per UTF-8 byte of ``docs``) with every byte of each multi-byte code
+    point set to whether ``utf8_is_space`` holds for it (asked once per distinct code point)."""
     wide = wide_code_points(docs)
-    if len(wide.at):  # a multi-byte code point's flag goes on all its bytes
+    if len(wide.at):
         flag = wide.classify(pc.utf8_is_space)
         for k in range(4):
             at = wide.size > k

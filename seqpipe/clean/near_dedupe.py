@@ -24,10 +24,9 @@ from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import mix64, space_bytes, utf8_buffers, wide_code_points
+from seqpipe.clean._quality import mark_wide_spaces, mix64, space_bytes, utf8_buffers
 from seqpipe.clean.base import CleanStep, as_documents
 from seqpipe.errors import RecipeError
 
@@ -120,13 +119,7 @@ def _space_bytes(docs: pa.Array, data: np.ndarray) -> np.ndarray:
     space = np.zeros(len(data), dtype=bool)
     for first, last in _SPACE_RUNS:  # (byte - first) wraps below first: one compare per run
         space |= (data - np.uint8(first)) <= np.uint8(last - first)
-    wide = wide_code_points(docs)
-    if len(wide.at):  # a multi-byte code point's flag goes on all its bytes
-        flag = wide.classify(pc.utf8_is_space)
-        for k in range(4):
-            at = wide.size > k
-            space[wide.at[at] + k] = flag[at]
-    return space
+    return mark_wide_spaces(docs, space)
 
 
 def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
