@@ -55,6 +55,21 @@ def cut(n: int, rng: np.random.Generator) -> list[int]:
     return [0, *sorted(rng.integers(0, n + 1, size=parts - 1).tolist()), n]
 
 
+def part_tables(content: np.ndarray, dedupe: np.ndarray, sig: np.ndarray, bounds: list[int]) -> dict[str, pa.Table]:
+    """One part table per pair of ``bounds``: content hash, dedupe key and signature bytes per document."""
+    width = 4 * sig.shape[1]
+    return {
+        f"k{i}": pa.table(
+            {
+                "hash": fixed_binary(content[a:b]),
+                "dedupe": fixed_binary(dedupe[a:b]),
+                "near": fixed_binary(sig[a:b].astype("<u4").view(np.uint8).reshape(b - a, width)),
+            }
+        )
+        for i, (a, b) in enumerate(itertools.pairwise(bounds))
+    }
+
+
 def whole_corpus(
     content: np.ndarray,
     dedupe: np.ndarray,
@@ -98,16 +113,7 @@ def test_partitioned_drops_equal_the_whole_corpus_functions(
     bounds = cut(len(content), rng)
     fixed: list[int | None] = [rng.choice(np.array([None, None, 0, 1, 2], dtype=object)) for _ in bounds[1:]]
     splits = SplitSpec(0.6, 0.2, 0.2, seed=seed % 7, exclude_overlap_from_train=bool(rng.integers(0, 2)))
-    tables = {
-        f"k{i}": pa.table(
-            {
-                "hash": fixed_binary(content[a:b]),
-                "dedupe": fixed_binary(dedupe[a:b]),
-                "near": fixed_binary(sig[a:b].astype("<u4").view(np.uint8).reshape(b - a, 4 * bands * rows)),
-            }
-        )
-        for i, (a, b) in enumerate(itertools.pairwise(bounds))
-    }
+    tables = part_tables(content, dedupe, sig, bounds)
     want_keep, want_dup, want_near, want_overlap = whole_corpus(content, dedupe, sig, near, fixed, bounds, splits)
     work = tmp_path_factory.mktemp("drops")
     kept = run_phases(work, tables, fixed, splits, near, partitions=int(rng.integers(1, 5)))
@@ -169,16 +175,7 @@ def test_partitioned_near_drops_hold_when_band_keys_collide(
     bounds = cut(len(content), rng)
     fixed: list[int | None] = [None] * (len(bounds) - 1)
     splits = SplitSpec(1.0, 0.0, 0.0)
-    tables = {
-        f"k{i}": pa.table(
-            {
-                "hash": fixed_binary(content[a:b]),
-                "dedupe": fixed_binary(dedupe[a:b]),
-                "near": fixed_binary(sig[a:b].astype("<u4").view(np.uint8).reshape(b - a, 4 * bands * rows)),
-            }
-        )
-        for i, (a, b) in enumerate(itertools.pairwise(bounds))
-    }
+    tables = part_tables(content, dedupe, sig, bounds)
     want_keep = whole_corpus(content, dedupe, sig, near, fixed, bounds, splits)[0]
     original = _dedupe.band_keys
 

@@ -83,16 +83,12 @@ def _stage_tree(root: Path) -> list[Path]:
     return [root / "vocab.arrow", root / "shards/train/000000.arrow", root / "shards/test/000000.arrow"]
 
 
-def test_sync_tree_fsyncs_every_listed_file_and_the_directories_holding_them(
-    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
-) -> None:
-    """Every file under the listed entries and every directory on their way is fsynced; a file
-    outside them is not."""
+def _record_fsyncs(monkeypatch: pytest.MonkeyPatch) -> set[int]:
+    """Make seqpipe.shards' fsync record the inode of each file or directory it syncs; return the set."""
     import os
 
     from seqpipe import shards
 
-    listed = _stage_tree(tmp_path)
     synced: set[int] = set()
 
     class Recording:
@@ -103,6 +99,19 @@ def test_sync_tree_fsyncs_every_listed_file_and_the_directories_holding_them(
             synced.add(os.fstat(fd).st_ino)
 
     monkeypatch.setattr(shards, "os", Recording())
+    return synced
+
+
+def test_sync_tree_fsyncs_every_listed_file_and_the_directories_holding_them(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Every file under the listed entries and every directory on their way is fsynced; a file
+    outside them is not."""
+
+    from seqpipe import shards
+
+    listed = _stage_tree(tmp_path)
+    synced = _record_fsyncs(monkeypatch)
     shards.sync_tree(tmp_path, ["vocab.arrow", "shards", "missing.arrow"])
     dirs = [tmp_path, tmp_path / "shards", tmp_path / "shards/train", tmp_path / "shards/test"]
     assert {p.stat().st_ino for p in listed + dirs} <= synced
@@ -137,21 +146,11 @@ def test_sync_tree_without_root_dir_syncs_the_entries_but_not_the_root(
 ) -> None:
     """With root_dir=False every listed file and the directories inside the entries are fsynced,
     the root directory is not (its caller renames the entries out and syncs their new home)."""
-    import os
 
     from seqpipe import shards
 
     listed = _stage_tree(tmp_path)
-    synced: set[int] = set()
-
-    class Recording:
-        def __getattr__(self, name: str) -> object:
-            return getattr(os, name)
-
-        def fsync(self, fd: int) -> None:
-            synced.add(os.fstat(fd).st_ino)
-
-    monkeypatch.setattr(shards, "os", Recording())
+    synced = _record_fsyncs(monkeypatch)
     shards.sync_tree(tmp_path, ["vocab.arrow", "shards"], root_dir=False)
     dirs = [tmp_path / "shards", tmp_path / "shards/train", tmp_path / "shards/test"]
     assert {p.stat().st_ino for p in listed + dirs} <= synced
