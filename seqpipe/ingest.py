@@ -54,7 +54,7 @@ from seqpipe.splits import assign_splits, fixed_split_of
 from seqpipe.tokenizers.base import Encoder, Segments
 from seqpipe.tokenizers.words import count_words
 
-PART_FORMAT: Final = "seqpipe.part/6"  # /6: one part.arrow per part, many inputs per part; new near_dedupe signatures
+PART_FORMAT: Final = "seqpipe.part/7"  # /7: near_dedupe signatures from 32-bit word and shingle hashes
 _THREADS: list[int] = []  # set by set_ingest_threads (e.g. in pool workers); else the environment
 
 

@@ -32,32 +32,46 @@ from seqpipe.errors import RecipeError
 
 _GOLDEN: Final = np.uint64(0x9E3779B97F4A7C15)  # the splitmix64 increment (Steele, Lea and Flood 2014)
 _OFFSET_SEED: Final = 0x5EED_0FF5E7  # the offsets b_i come from another seed than the multipliers a_i
-_BYTE_BASE: Final = np.uint64(0x100000001B3)  # an odd multiplier for the byte polynomial (FNV's prime)
+_BYTE_BASE: Final = np.uint32(0x01000193)  # an odd multiplier for the byte polynomial (FNV's 32-bit prime)
 _EMPTY: Final = np.uint32(0xFFFFFFFF)
 
 
+def fmix32(x: np.ndarray) -> np.ndarray:
+    """The 32-bit finalizer of MurmurHash3 (Appleby; public domain) applied to every uint32 of
+    ``x``: a bijection that spreads every input bit over the output."""
+    with np.errstate(over="ignore"):
+        x = x ^ (x >> np.uint32(16))
+        x *= np.uint32(0x85EBCA6B)
+        x ^= x >> np.uint32(13)
+        x *= np.uint32(0xC2B2AE35)
+        x ^= x >> np.uint32(16)
+    return x
+
+
 def _byte_hashes(text: pa.Array) -> np.ndarray:
-    """A 64-bit hash of each value's UTF-8 bytes (:func:`_span_hashes`)."""
+    """A 32-bit hash of each value's UTF-8 bytes (:func:`_span_hashes`)."""
     data, offsets = utf8_buffers(text)
     return _span_hashes(data, offsets[:-1], offsets[1:])
 
 
 def _span_hashes(data: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> np.ndarray:
-    """A 64-bit hash of the bytes b_0 .. b_{n-1} of each span ``data[start:end]`` (spans in
-    order, not overlapping): the polynomial sum((b_j + 1) * B**(j + 1)) mod 2**64 plus n, mixed.
+    """A 32-bit hash of the bytes b_0 .. b_{n-1} of each span ``data[start:end]`` (spans in
+    order, not overlapping): the polynomial sum((b_j + 1) * B**(j + 1)) mod 2**32 plus n, mixed.
 
     Taken from prefix sums over the buffer: a span's polynomial is the difference of two prefix
-    sums divided by B**start, a multiplication by the inverse of B mod 2**64 (B is odd), so no
-    pass per span or per distinct span is needed.
+    sums divided by B**start, a multiplication by the inverse of B mod 2**32 (B is odd), so no
+    pass per span or per distinct span is needed. 32-bit lanes: the shingles these words make are
+    told apart by 32 bits in the end (:func:`k_functions`), and vector units multiply and add
+    twice as many of them per instruction as 64-bit ones.
     """
     n = len(starts)
-    out = np.zeros(n, np.uint64)
+    out = np.zeros(n, np.uint32)
     # spans of about _SPAN bytes at a time: the powers kept stay that long
     cuts = np.unique(np.r_[0, np.searchsorted(starts, np.arange(0, int(ends[-1]) if n else 0, _SPAN)), n])
     for lo, hi in zip(cuts[:-1].tolist(), cuts[1:].tolist(), strict=True):
         base = int(starts[lo])
         part = data[base : int(ends[hi - 1])]
-        prefix = np.zeros(len(part) + 1, np.uint64)
+        prefix = np.zeros(len(part) + 1, np.uint32)
         powers, inverse, summed = _powers(len(part))
         with np.errstate(over="ignore"):
             # sum(b_j * B**(j+1)) from the bytes as they are, the "+ 1" of every byte from the
@@ -66,38 +80,46 @@ def _span_hashes(data: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> np.n
             np.cumsum(prefix[1:], out=prefix[1:])
             a, b = starts[lo:hi] - base, ends[lo:hi] - base
             out[lo:hi] = (prefix[b] - prefix[a] + summed[b] - summed[a]) * inverse[a]
-    return mix64(out + (ends - starts).astype(np.uint64))
+    return fmix32(out + (ends - starts).astype(np.uint32))
 
 
 _SPAN: Final = 1 << 18
-_BYTE_INVERSE: Final = np.uint64(pow(int(_BYTE_BASE), -1, 2**64))
+_BYTE_INVERSE: Final = np.uint32(pow(int(_BYTE_BASE), -1, 2**32))
 
 
-class _Powers(threading.local):
-    """Per thread, the powers of B and of its inverse mod 2**64 computed so far and the prefix
-    sums of the powers of B (sum of B**i for i in 1 .. j); they only grow."""
+@dataclass(frozen=True, slots=True)
+class _Powers:
+    """B**j, B**-j and the prefix sums of the powers of B (sum of B**i for i in 1 .. j) mod 2**32
+    for j up to some length: computed once per process and shared by its threads (read only)."""
 
-    def __init__(self) -> None:
-        self.powers: np.ndarray = np.ones(1, np.uint64)
-        self.inverse: np.ndarray = np.ones(1, np.uint64)
-        self.summed: np.ndarray = np.zeros(1, np.uint64)
+    powers: np.ndarray
+    inverse: np.ndarray
+    summed: np.ndarray
+
+    @classmethod
+    def of_length(cls, size: int) -> _Powers:
+        with np.errstate(over="ignore"):
+            powers = np.cumprod(np.r_[np.uint32(1), np.full(size - 1, _BYTE_BASE, np.uint32)], dtype=np.uint32)
+            summed = np.r_[np.uint32(0), np.cumsum(powers[1:], dtype=np.uint32)]
+            inverse = np.cumprod(np.r_[np.uint32(1), np.full(size - 1, _BYTE_INVERSE, np.uint32)], dtype=np.uint32)
+        return cls(powers, inverse, summed)
 
 
-_POWERS: Final = _Powers()
+_KEPT_POWERS: list[_Powers] = []  # the longest table so far; replaced whole, never changed in place
+_POWERS_LOCK: Final = threading.Lock()
 
 
 def _powers(count: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """B**j, B**-j and sum(B**i for i in 1 .. j) mod 2**64 for j in 0 .. count (at least: longer
+    """B**j, B**-j and sum(B**i for i in 1 .. j) mod 2**32 for j in 0 .. count (at least: longer
     arrays are reused; as slices are at most _SPAN bytes but for one longer value, these stay
     about _SPAN long)."""
-    kept = _POWERS
-    if len(kept.powers) <= count:
-        size = max(count + 1, _SPAN + 1)
-        with np.errstate(over="ignore"):
-            powers = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_BASE, np.uint64)])
-            kept.summed = np.r_[np.uint64(0), np.cumsum(powers[1:])]
-            kept.inverse = np.cumprod(np.r_[np.uint64(1), np.full(size - 1, _BYTE_INVERSE, np.uint64)])
-            kept.powers = powers
+    kept = _KEPT_POWERS[-1] if _KEPT_POWERS else None
+    if kept is None or len(kept.powers) <= count:
+        with _POWERS_LOCK:
+            kept = _KEPT_POWERS[-1] if _KEPT_POWERS else None
+            if kept is None or len(kept.powers) <= count:
+                kept = _Powers.of_length(max(count + 1, _SPAN + 1))
+                _KEPT_POWERS[:] = [kept]
     return kept.powers, kept.inverse, kept.summed
 
 
@@ -123,7 +145,7 @@ def _space_bytes(docs: pa.Array, data: np.ndarray) -> np.ndarray:
 
 
 def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
-    """A 64-bit hash of each word's UTF-8 bytes (:func:`_span_hashes`) and the document of each
+    """A 32-bit hash of each word's UTF-8 bytes (:func:`_span_hashes`) and the document of each
     word. Words are the runs of bytes outside Unicode whitespace within a document, as
     ``_quality.words`` cuts them; found here over the bytes in place (no word array is built)."""
     data, offsets = utf8_buffers(docs)
@@ -148,7 +170,8 @@ def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
-    """A 64-bit hash per shingle (``size`` consecutive words of one document) and its document.
+    """A 32-bit hash per shingle (``size`` consecutive words of one document; Horner over their
+    word hashes, mixed by :func:`fmix32`) and its document.
     A document with fewer words has one shingle of all its words; one without words has none."""
     word, doc = _word_hashes(docs)
     n = len(word)
@@ -164,23 +187,23 @@ def _shingle_hashes(docs: pa.Array, size: int) -> tuple[np.ndarray, np.ndarray]:
     for k in range(1, size):  # a loop over shingle positions, not over words
         valid[run_end[run_len > k] - k] = False
     starts = np.flatnonzero(valid)
-    padded = np.r_[word, np.zeros(size, np.uint64)]  # the windows of a document's last words read past its end
+    padded = np.r_[word, np.zeros(size, np.uint32)]  # the windows of a document's last words read past its end
     with np.errstate(over="ignore"):
         window = padded[:n].copy()  # Horner over every window of size words (slices, not gathers)
         for k in range(1, size):
             window *= _BYTE_BASE
             window += padded[k : n + k]
         acc = window[starts]
-        width = np.full(len(starts), size, np.uint64)
+        width = np.full(len(starts), size, np.uint32)
         short = np.flatnonzero(run_len < size)
         if len(short):  # documents with fewer words than a shingle: Horner over their words only
             at = np.searchsorted(starts, run_start[short])
-            part = np.zeros(len(short), np.uint64)
+            part = np.zeros(len(short), np.uint32)
             for k in range(size):
                 part = np.where(k < run_len[short], part * _BYTE_BASE + padded[run_start[short] + k], part)
             acc[at] = part
             width[at] = run_len[short]
-    return mix64(acc + width), doc[starts]
+    return fmix32(acc + width), doc[starts]
 
 
 def seeds(count: int, seed: int) -> np.ndarray:
@@ -202,24 +225,23 @@ def k_functions(values: np.ndarray, doc: np.ndarray, documents: int, hashes: int
     """Signatures from ``hashes`` seeded hash functions, the minimum of each over a document's
     shingle hashes ``values`` (``doc``: each one's document, non-decreasing).
 
-    Hash function i maps a shingle's 64-bit hash x to the top 32 bits of ``a_i * x + b_i``
-    (mod 2**64; ``a_i`` odd, both from the seed): multiply-add-shift hashing (Dietzfelbinger,
-    Hagerup, Katajainen and Penttonen 1997, "A reliable randomized algorithm for the
-    closest-pair problem"). The top bits are a non-decreasing function of the 64-bit value, so
-    the minimum is taken over the 64-bit values and shifted once per document: two array passes
-    per hash function over the batch's shingles, a block of shingles at a time.
+    Hash function i maps a shingle's 32-bit hash x (already mixed) to ``a_i * x + b_i`` mod
+    2**32 (``a_i`` odd, both the low 32 bits of seeds): a multiply-add permutation of the 32-bit
+    values, in 32-bit lanes, which vector units multiply at twice the width (and without the
+    three-product emulation) of 64-bit ones. Two array passes per hash function over
+    the batch's shingles plus one minimum per document, a block of shingles at a time.
     """
     out = np.full((documents, hashes), _EMPTY, dtype=np.uint32)
     if len(values) == 0:
         return out
     first = np.flatnonzero(np.r_[True, doc[1:] != doc[:-1]])  # each present document's first shingle
-    multipliers = (seeds(hashes, seed) | np.uint64(1))[:, None]
-    offsets = seeds(hashes, seed ^ _OFFSET_SEED)[:, None]
-    lowest = np.full((hashes, len(first)), np.iinfo(np.uint64).max, dtype=np.uint64)
+    multipliers = (seeds(hashes, seed).astype(np.uint32) | np.uint32(1))[:, None]
+    offsets = seeds(hashes, seed ^ _OFFSET_SEED).astype(np.uint32)[:, None]
+    lowest = np.full((hashes, len(first)), _EMPTY, dtype=np.uint32)
     # blocks of _BLOCK shingles: every hash function over one block at a time keeps the
     # (hashes, block) products in one reused buffer whatever the documents' lengths; a document
     # that spans blocks takes the minimum of its pieces
-    buffer = np.empty((hashes, min(_BLOCK, len(values))), np.uint64)
+    buffer = np.empty((hashes, min(_BLOCK, len(values))), np.uint32)
     with np.errstate(over="ignore"):
         for a in range(0, len(values), _BLOCK):
             b = min(a + _BLOCK, len(values))
@@ -230,7 +252,7 @@ def k_functions(values: np.ndarray, doc: np.ndarray, documents: int, hashes: int
             mixed += offsets
             piece = np.minimum.reduceat(mixed, np.maximum(first[lo:hi] - a, 0), axis=1)
             np.minimum(lowest[:, lo:hi], piece, out=lowest[:, lo:hi])
-    out[doc[first]] = (lowest >> np.uint64(32)).astype(np.uint32).T
+    out[doc[first]] = lowest.T
     return out
 
 
