@@ -138,20 +138,21 @@ def test_band_buckets_group_exactly_equal_bands_even_when_keys_collide(monkeypat
 
 def test_word_hashes_follow_their_polynomial_definition(monkeypatch: pytest.MonkeyPatch) -> None:
     """The prefix-sum word hash equals the polynomial over each word's bytes computed word by word
-    (sum of (byte + 1) * B**(j + 1) mod 2**32, plus the length, then mixed), also across slices."""
+    (sum of byte * B**(j + 1) mod 2**32, plus the length, then mixed), also across slices."""
     import seqpipe.clean.near_dedupe as module
 
     monkeypatch.setattr(module, "_SPAN", 7)  # many slices, words on both sides of every cut
-    texts = ["", "ferry", "pier ß tide", "", "x" * 40, "landing-stage", "", "ö"]
+    texts = ["", "ferry", "pier ß tide", "", "x" * 40, "landing-stage", "", "ö", "\x00", "\x00\x00"]
     arr = pa.array(texts, pa.large_string())
     expected = []
     for t in texts:
         acc = 0
         for j, b in enumerate(t.encode("utf-8")):
-            acc = (acc + (b + 1) * pow(int(module._BYTE_BASE), j + 1, 2**32)) % 2**32
+            acc = (acc + b * pow(int(module._BYTE_BASE), j + 1, 2**32)) % 2**32
         expected.append((acc + len(t.encode("utf-8"))) % 2**32)
     got = module._byte_hashes(arr)
     assert got.tolist() == [fmix32(v) for v in expected]
+    assert len(set(got[-2:].tolist())) == 2  # NUL bytes count: the length tells "\0" and "\0\0" apart
 
 
 def fmix32(h: int) -> int:
@@ -222,3 +223,53 @@ def test_space_bytes_by_compares_equal_the_table_look_up() -> None:
     assert module._space_bytes(arr, data).tolist() == space_bytes(arr).tolist()
     whole = pa.array(texts, pa.large_string())
     assert module._space_bytes(whole, utf8_buffers(whole)[0]).tolist() == space_bytes(whole).tolist()
+
+
+def test_no_whitespace_beyond_the_basic_multilingual_plane() -> None:
+    """_space_bytes asks pyarrow about the Basic Multilingual Plane only: pyarrow's utf8_is_space
+    holds for no code point of planes 1 to 16 (Unicode's White_Space property lists none there;
+    PropList.txt)."""
+    import pyarrow.compute as pc
+
+    chars = pa.array([chr(c) for c in range(0x10000, 0x110000)], pa.large_string())
+    assert not pc.any(pc.utf8_is_space(chars)).as_py()
+
+
+def test_space_bytes_equal_the_table_look_up_on_random_text() -> None:
+    """Over random text from every plane, with every whitespace code point mixed in, the
+    prefiltered _space_bytes equals _quality.space_bytes (pyarrow's utf8_is_space per code point)."""
+    import seqpipe.clean.near_dedupe as module
+    from seqpipe.clean._quality import space_bytes, utf8_buffers
+
+    rng = np.random.default_rng(8)
+    spaces = [chr(c) for c in module._wide_spaces().code_points.tolist()] + [" ", "\t", "\n", "\x1c"]
+    pool = [c for c in rng.integers(0x20, 0x110000, size=4000).tolist() if not 0xD800 <= c < 0xE000]
+    texts = []
+    for _ in range(200):
+        k = int(rng.integers(0, 30))
+        picks = [chr(pool[i]) for i in rng.integers(0, len(pool), size=k)]
+        picks += [spaces[i] for i in rng.integers(0, len(spaces), size=int(rng.integers(0, 6)))]
+        rng.shuffle(picks)
+        texts.append("".join(picks))
+    arr = pa.array(texts, pa.large_string())
+    data = utf8_buffers(arr)[0]
+    assert module._space_bytes(arr, data).tolist() == space_bytes(arr).tolist()
+
+
+def test_word_hashes_cut_random_documents_as_the_quality_words_do() -> None:
+    """Random documents of words, Unicode whitespace and empty documents, in slices of the array:
+    the words (their hashes and documents) are those _quality.words cuts."""
+    import seqpipe.clean.near_dedupe as module
+    from seqpipe.clean._quality import words
+
+    rng = np.random.default_rng(21)
+    pieces = ["ab", "é", "x", "\u3000", " ", "\n", "\u00a0", "", "tide", "\u2028", "z"]
+    for trial in range(30):
+        texts = ["".join(rng.choice(pieces, size=int(rng.integers(0, 6)))) for _ in range(int(rng.integers(1, 12)))]
+        arr = pa.array(["pad", *texts], pa.large_string()).slice(1)
+        expected = words(arr)
+        got, doc = module._word_hashes(arr)
+        assert doc.tolist() == expected.doc.tolist(), (trial, texts)
+        assert got.tolist() == module._byte_hashes(expected.text).tolist(), (trial, texts)
+    got, doc = module._word_hashes(pa.array(["ab", "", "cd"], pa.large_string()))
+    assert doc.tolist() == [0, 2]

@@ -24,9 +24,10 @@ from typing import ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import mark_wide_spaces, mix64, space_bytes, utf8_buffers
+from seqpipe.clean._quality import code_points, mix64, space_bytes, utf8_buffers
 from seqpipe.clean.base import CleanStep, as_documents
 from seqpipe.errors import RecipeError
 
@@ -56,7 +57,9 @@ def _byte_hashes(text: pa.Array) -> np.ndarray:
 
 def _span_hashes(data: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> np.ndarray:
     """A 32-bit hash of the bytes b_0 .. b_{n-1} of each span ``data[start:end]`` (spans in
-    order, not overlapping): the polynomial sum((b_j + 1) * B**(j + 1)) mod 2**32 plus n, mixed.
+    order, not overlapping): the polynomial sum(b_j * B**(j + 1)) mod 2**32 plus n, mixed (spans
+    of equal length that differ in a byte differ in the polynomial's value; the length tells the
+    others apart).
 
     Taken from prefix sums over the buffer: a span's polynomial is the difference of two prefix
     sums divided by B**start, a multiplication by the inverse of B mod 2**32 (B is odd), so no
@@ -71,15 +74,14 @@ def _span_hashes(data: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> np.n
     for lo, hi in zip(cuts[:-1].tolist(), cuts[1:].tolist(), strict=True):
         base = int(starts[lo])
         part = data[base : int(ends[hi - 1])]
-        prefix = np.zeros(len(part) + 1, np.uint32)
-        powers, inverse, summed = _powers(len(part))
+        prefix = np.empty(len(part) + 1, np.uint32)
+        prefix[0] = 0
+        powers, inverse = _powers(len(part))
         with np.errstate(over="ignore"):
-            # sum(b_j * B**(j+1)) from the bytes as they are, the "+ 1" of every byte from the
-            # prefix sums of the powers: no widened copy of the bytes plus one
             np.multiply(part, powers[1 : len(part) + 1], out=prefix[1:])
             np.cumsum(prefix[1:], out=prefix[1:])
-            a, b = starts[lo:hi] - base, ends[lo:hi] - base
-            out[lo:hi] = (prefix[b] - prefix[a] + summed[b] - summed[a]) * inverse[a]
+            a = starts[lo:hi] - base
+            out[lo:hi] = (prefix[ends[lo:hi] - base] - prefix[a]) * inverse[a]
     return fmix32(out + (ends - starts).astype(np.uint32))
 
 
@@ -89,30 +91,27 @@ _BYTE_INVERSE: Final = np.uint32(pow(int(_BYTE_BASE), -1, 2**32))
 
 @dataclass(frozen=True, slots=True)
 class _Powers:
-    """B**j, B**-j and the prefix sums of the powers of B (sum of B**i for i in 1 .. j) mod 2**32
-    for j up to some length: computed once per process and shared by its threads (read only)."""
+    """B**j and B**-j mod 2**32 for j up to some length: computed once per process and shared by
+    its threads (read only)."""
 
     powers: np.ndarray
     inverse: np.ndarray
-    summed: np.ndarray
 
     @classmethod
     def of_length(cls, size: int) -> _Powers:
         with np.errstate(over="ignore"):
             powers = np.cumprod(np.r_[np.uint32(1), np.full(size - 1, _BYTE_BASE, np.uint32)], dtype=np.uint32)
-            summed = np.r_[np.uint32(0), np.cumsum(powers[1:], dtype=np.uint32)]
             inverse = np.cumprod(np.r_[np.uint32(1), np.full(size - 1, _BYTE_INVERSE, np.uint32)], dtype=np.uint32)
-        return cls(powers, inverse, summed)
+        return cls(powers, inverse)
 
 
 _KEPT_POWERS: list[_Powers] = []  # the longest table so far; replaced whole, never changed in place
 _POWERS_LOCK: Final = threading.Lock()
 
 
-def _powers(count: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """B**j, B**-j and sum(B**i for i in 1 .. j) mod 2**32 for j in 0 .. count (at least: longer
-    arrays are reused; as slices are at most _SPAN bytes but for one longer value, these stay
-    about _SPAN long)."""
+def _powers(count: int) -> tuple[np.ndarray, np.ndarray]:
+    """B**j and B**-j mod 2**32 for j in 0 .. count (at least: longer arrays are reused; as
+    slices are at most _SPAN bytes but for one longer value, these stay about _SPAN long)."""
     kept = _KEPT_POWERS[-1] if _KEPT_POWERS else None
     if kept is None or len(kept.powers) <= count:
         with _POWERS_LOCK:
@@ -120,7 +119,7 @@ def _powers(count: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
             if kept is None or len(kept.powers) <= count:
                 kept = _Powers.of_length(max(count + 1, _SPAN + 1))
                 _KEPT_POWERS[:] = [kept]
-    return kept.powers, kept.inverse, kept.summed
+    return kept.powers, kept.inverse
 
 
 def _byte_runs(flags: np.ndarray) -> tuple[tuple[int, int], ...]:
@@ -134,14 +133,49 @@ def _byte_runs(flags: np.ndarray) -> tuple[tuple[int, int], ...]:
 _SPACE_RUNS: Final = _byte_runs(space_bytes(pa.array(["".join(map(chr, range(128)))], pa.large_string())))
 
 
+@dataclass(frozen=True, slots=True)
+class _WideSpaces:
+    """The whitespace code points beyond ASCII (as pyarrow's ``utf8_is_space`` sees them, asked
+    once per process over the Basic Multilingual Plane, where Unicode places all of them) and the
+    runs of the UTF-8 first bytes that start one."""
+
+    code_points: np.ndarray  # sorted
+    lead_runs: tuple[tuple[int, int], ...]
+
+
+_WIDE_SPACES: list[_WideSpaces] = []
+
+
+def _wide_spaces() -> _WideSpaces:
+    if not _WIDE_SPACES:  # a race computes it twice, with the same result
+        cps = np.r_[np.arange(0x80, 0xD800), np.arange(0xE000, 0x10000)]
+        chars = pa.array([chr(c) for c in cps.tolist()], pa.large_string())
+        found = cps[np.asarray(pc.utf8_is_space(chars).to_numpy(zero_copy_only=False), dtype=bool)]
+        leads = np.zeros(256, dtype=bool)
+        leads[[chr(c).encode("utf-8")[0] for c in found.tolist()]] = True
+        _WIDE_SPACES.append(_WideSpaces(found.astype(np.int64), _byte_runs(leads)))
+    return _WIDE_SPACES[0]
+
+
 def _space_bytes(docs: pa.Array, data: np.ndarray) -> np.ndarray:
     """``_quality.space_bytes`` (per byte of ``docs``' UTF-8 ``data``: part of a whitespace code
-    point, as pyarrow's ``utf8_is_space`` sees it), with the single-byte table applied as a
-    compare per run of its byte values instead of a table look-up per byte."""
+    point, as pyarrow's ``utf8_is_space`` sees it), with a compare per run of byte values instead
+    of a table look-up per byte: the single-byte whitespace directly, and beyond ASCII only the
+    code points whose first byte can start a whitespace one are decoded and looked up."""
     space = np.zeros(len(data), dtype=bool)
     for first, last in _SPACE_RUNS:  # (byte - first) wraps below first: one compare per run
         space |= (data - np.uint8(first)) <= np.uint8(last - first)
-    return mark_wide_spaces(docs, space)
+    wide = _wide_spaces()
+    maybe = np.zeros(len(data), dtype=bool)
+    for first, last in wide.lead_runs:
+        maybe |= (data - np.uint8(first)) <= np.uint8(last - first)
+    at = np.flatnonzero(maybe)
+    if len(at):
+        at = at[np.isin(code_points(data, at), wide.code_points)]
+        size = np.where(data[at] >= 0xE0, 3, 2)  # whitespace code points take two or three bytes
+        for k in range(3):
+            space[at[size > k] + k] = True
+    return space
 
 
 def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
@@ -150,7 +184,7 @@ def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     ``_quality.words`` cuts them; found here over the bytes in place (no word array is built)."""
     data, offsets = utf8_buffers(docs)
     if not len(data):
-        return np.zeros(0, np.uint64), np.zeros(0, np.int64)
+        return np.zeros(0, np.uint32), np.zeros(0, np.int64)
     inside = ~_space_bytes(docs, data)
     start = np.empty_like(inside)  # inside after outside (for booleans a > b is a and not b)
     np.greater(inside[1:], inside[:-1], out=start[1:])
