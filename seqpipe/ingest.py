@@ -432,7 +432,7 @@ def _docs_table(recipe: Recipe, got: _Gathered, member: np.ndarray) -> dict[str,
             width = 4 * int(step.hashes)  # type: ignore[attr-defined]
             near = got.columns["near"].astype("<u4", copy=False)
             table["near"] = pa.FixedSizeBinaryArray.from_buffers(
-                pa.binary(width), n, [None, pa.py_buffer(near.tobytes() if n else b"")]
+                pa.binary(width), n, [None, pa.py_buffer(np.ascontiguousarray(near) if n else b"")]
             )
     return table
 
