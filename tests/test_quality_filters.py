@@ -305,6 +305,46 @@ def test_function_words_equal_a_per_word_reference(docs: list[str]) -> None:
     assert FunctionWords().measure(arr(docs)).tolist() == want
 
 
+@settings(max_examples=300, deadline=None)
+@given(
+    docs=st.lists(
+        st.lists(
+            st.builds(
+                "".join,
+                st.tuples(
+                    st.sampled_from(["", "(", '"', "\u201c", "'", "--"]),
+                    st.sampled_from(
+                        ["the", "The", "THE", "and", "AND", "of", "wITh", "be", "to", "that", "have", "th\u00e9"]
+                    ),
+                    st.sampled_from(["", ",", ".", ")", "!\u201d", "\u2019", "s"]),
+                ),
+            )
+            | st.text(
+                alphabet=st.sampled_from(list("theTHEaofAndw\"'(.,-\u201c\u201d\u00e9\u00df\u03a9\u8336\u0130")),
+                max_size=12,
+            ),
+            max_size=8,
+        ).map(" ".join),
+        max_size=8,
+    ),
+    minimum=st.integers(1, 4),
+    spaces=st.sampled_from([" ", "\n", "\u00a0", "\u3000 "]),
+)
+def test_function_words_keep_equals_the_full_count(docs: list[str], minimum: int, spaces: str) -> None:
+    """keep() (a count of plain short function words first, the full count only for documents
+    it leaves short of ``minimum``) keeps exactly the documents whose full count reaches
+    ``minimum``; on text whose characters lower-case alike in Python and pyarrow (no U+0130) it
+    also equals a per-word Python count (str.split, str.lower, str.strip)."""
+    docs = [d.replace(" ", spaces) for d in docs]
+    step = FunctionWords(minimum=minimum)
+    got = step.keep(arr(docs)).tolist()
+    assert got == (step.measure(arr(docs)) >= minimum).tolist()
+    strip = "\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d"
+    for d, kept in zip(docs, got, strict=True):
+        if "\u0130" not in d:
+            assert kept == (sum(w.lower().strip(strip) in FUNCTION_WORDS["en"] for w in d.split()) >= minimum)
+
+
 @settings(max_examples=100, deadline=None)
 @given(points=st.lists(st.integers(0x80, 0x2FFF), max_size=40))
 def test_kept_code_point_answers_equal_asking_again(points: list[int]) -> None:
