@@ -222,6 +222,39 @@ def test_letter_share_counts_non_ascii_code_points_as_re2_does() -> None:
     assert m.tolist() == [5 / 10, 1.0, 0.0]
 
 
+# words of eight bytes and more whose first and last eight bytes and length agree: equal keys
+# (the word table hashes only those), different words
+_LONG_TWINS = [
+    "ferrymenXferrymen",
+    "ferrymenYferrymen",
+    "ferrymen",
+    "quayside-\u00e9-quayside",
+    "quayside-\u00ea-quayside",
+]
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
+        st.lists(st.sampled_from([*_LONG_TWINS, "a", "tide"]), max_size=14).map(" ".join),
+        max_size=5,
+    )
+)
+def test_repeated_ngrams_and_codes_are_exact_for_long_words_sharing_a_key(docs: list[str]) -> None:
+    """Longer words with equal keys (same length, first and last eight bytes) are told apart:
+    the repeated n-gram measure equals the Python reference and the exact codes differ."""
+    from seqpipe.clean._word_table import word_table
+
+    twins = word_table(arr(_LONG_TWINS)).keys.tolist()
+    assert twins[0] == twins[1] and twins[3] == twins[4]  # the keys do collide
+    for n in (1, 2, 3):
+        assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
+    table = word_table(arr(docs))
+    want = [w for d in docs for w in d.split()]
+    codes = table.codes.tolist()
+    assert all((codes[i] == codes[j]) == (want[i] == want[j]) for i in range(len(want)) for j in range(len(want)))
+
+
 @settings(max_examples=200, deadline=None)
 @given(
     docs=st.lists(

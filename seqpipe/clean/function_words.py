@@ -69,9 +69,9 @@ def _sure_flags(table: WordTable, language: str) -> np.ndarray:
     to seven bytes with nothing to strip. Such a word is counted by :func:`_function_word_flags`
     too (a subset of its flags): a code equal to a lower-cased function word's is a short ASCII
     word (``_ascii_lower`` leaves a byte's high bit and the code's top byte as they are, and
-    longer words' codes have the top byte 0xFF), and a word of letters has nothing to strip."""
+    longer words' keys have the top byte 0xFF), and a word of letters has nothing to strip."""
     wanted = pack_ascii([w for w in FUNCTION_WORDS[language] if w.isascii() and len(w) <= 7])
-    out: np.ndarray = np.isin(_ascii_lower(table.codes), wanted)
+    out: np.ndarray = np.isin(_ascii_lower(table.keys), wanted)
     return out
 
 
@@ -85,11 +85,11 @@ def _function_word_flags(table: WordTable, language: str, which: np.ndarray | No
     ones, if a function word is that long). The rest cannot shrink to a function word's length
     or to ASCII."""
     words = FUNCTION_WORDS[language]
-    chosen = np.arange(len(table.codes), dtype=np.int64) if which is None else which
+    chosen = np.arange(len(table.keys), dtype=np.int64) if which is None else which
     if not len(chosen):
         return np.zeros(0, dtype=np.int64)
     starts, ends = table.starts[chosen], table.ends[chosen]
-    codes, sizes = table.codes[chosen], ends - starts
+    codes, sizes = table.keys[chosen], ends - starts  # exact for the short words judged on them
     ascii_words = table.chars[chosen] == sizes
     # np.take: faster than fancy indexing (DEVELOPERS.md)
     edge = np.take(_ASCII_TRIMMED, np.take(table.data, starts))

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import ClassVar, Final
 
@@ -16,18 +17,26 @@ from seqpipe.clean._word_table import word_table
 _MULTIPLIER: Final = np.uint64(0x9E3779B97F4A7C15)  # odd, with bits spread over the whole word
 
 
-def covered_by_repeats(doc: np.ndarray, codes: np.ndarray, n: int) -> np.ndarray:
-    """Per word (document ``doc[i]``, exact code ``codes[i]``, equal for equal words): True when it
-    lies inside a word n-gram that occurs more than once in its document."""
-    m = len(codes)
+def covered_by_repeats(
+    doc: np.ndarray, keys: np.ndarray, n: int, exact: Callable[[np.ndarray], np.ndarray] | None = None
+) -> np.ndarray:
+    """Per word (document ``doc[i]``, key ``keys[i]``, equal for equal words): True when it lies
+    inside a word n-gram that occurs more than once in its document. ``exact(indices)`` gives
+    those words' exact codes (equal exactly for equal words); without it the keys are exact."""
+    m = len(keys)
     covered = np.zeros(m, dtype=bool)
     if m < n:
         return covered
-    codes = np.ascontiguousarray(codes).view(np.int64)  # the same bits: equal exactly when the codes are
+    keys = np.ascontiguousarray(keys).view(np.int64)  # the same bits: equal exactly when the keys are
     # n-grams starting at every word, some across two documents: those are left out of the
     # candidates (a key they share with another n-gram only makes that one a candidate)
-    candidates = _shared_keys(_window_keys(doc, codes, n))
+    candidates = _shared_keys(_window_keys(doc, keys, n))
     candidates = candidates[doc[candidates] == doc[candidates + n - 1]]  # docs are contiguous
+    codes = keys
+    if exact is not None and len(candidates):
+        words = np.unique((candidates[:, None] + np.arange(n)).ravel())  # the candidates' words
+        codes = np.zeros(m, dtype=np.int64)  # rows read only the candidates' words
+        codes[words] = np.ascontiguousarray(exact(words)).view(np.int64)
     repeated = candidates[_repeated_rows(doc, codes, candidates, n)]
     covered[(repeated[:, None] + np.arange(n)).ravel()] = True  # the words of each repeated n-gram
     return covered
@@ -115,7 +124,8 @@ class RepeatedNgrams(QualityFilter):
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: characters in repeated n-grams / word characters."""
         table = word_table(docs)
-        inside = table.per_document(np.where(covered_by_repeats(table.doc, table.codes, self.n), table.chars, 0))
+        covered = covered_by_repeats(table.doc, table.keys, self.n, table.exact)
+        inside = table.per_document(np.where(covered, table.chars, 0))
         return share(inside.astype(np.float64), table.per_document(table.chars).astype(np.float64))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
