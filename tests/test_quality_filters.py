@@ -258,6 +258,36 @@ def test_repeated_ngrams_and_codes_are_exact_for_long_words_sharing_a_key(docs: 
 @settings(max_examples=200, deadline=None)
 @given(
     docs=st.lists(
+        st.text(
+            alphabet=st.sampled_from(
+                list("aZ7 \t\n\x0b\x0c\r\x1c.\u00e9\u00a0\u03a9\u0301\u2192\u8336\u3000\U00010400\U0001f600")
+            ),
+            max_size=30,
+        ),
+        max_size=6,
+    )
+)
+def test_letter_share_equals_re2_per_character(docs: list[str]) -> None:
+    """Letters / visible characters counted over the bytes (ASCII by compares, continuation bytes
+    by the code points beyond ASCII) equal RE2 asked per character, \\p{L} and \\s, in
+    pyarrow compute (one- to four-byte code points, RE2 and Unicode whitespace mixed)."""
+    import pyarrow.compute as pc
+
+    def re2(chars: list[str], pattern: str) -> list[bool]:
+        got = pc.match_substring_regex(pa.array(chars, pa.large_string()), pattern)
+        return [bool(x) for x in got.to_pylist()]
+
+    want = []
+    for d in docs:
+        visible = [c for c, space in zip(d, re2(list(d), r"^\s$"), strict=True) if not space]
+        letters = sum(re2(visible, r"^\p{L}$"))
+        want.append(letters / len(visible) if visible else 0.0)
+    assert LetterShare().measure(arr(docs)).tolist() == want
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
         st.text(alphabet=st.sampled_from(list("ab \n\x0b\x1c\x85\xa0\u2003\u3000\u200b\u0301é茶😀")), max_size=40),
         max_size=6,
     )
