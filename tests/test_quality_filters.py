@@ -203,6 +203,35 @@ def test_repeated_ngrams_is_exact_under_hash_collisions(monkeypatch: pytest.Monk
         assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
 
 
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
+        st.lists(st.sampled_from([f"w{i}" for i in range(12)] + [f"pier{i}x" for i in range(12)]), max_size=40).map(
+            " ".join
+        ),
+        max_size=5,
+    ),
+    n=st.integers(1, 5),
+)
+def test_repeated_ngrams_word_prefilter_keeps_every_window_of_repeated_words(docs: list[str], n: int) -> None:
+    """The n-grams left after ruling out words that occur once in their document include every
+    n-gram whose words all occur twice or more there (what any repeated n-gram needs), and the
+    measure equals the Python reference with words that repeat and words that do not."""
+    from seqpipe.clean._word_table import word_table
+    from seqpipe.clean.repeated_ngrams import _windows_of_repeated_words
+
+    table = word_table(arr(docs))
+    got = set(_windows_of_repeated_words(table.doc, table.keys, n).tolist())
+    at = 0
+    for d in docs:
+        words = d.split()
+        for i in range(len(words) - n + 1):
+            if all(words.count(w) > 1 for w in words[i : i + n]):
+                assert at + i in got
+        at += len(words)
+    assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
+
+
 @settings(max_examples=100, deadline=None)
 @given(keys=st.lists(st.integers(0, 2**64 - 1) | st.integers(0, 40) | st.integers(2**64 - 40, 2**64 - 1), max_size=300))
 def test_shared_keys_are_exactly_the_keys_seen_twice(keys: list[int]) -> None:
