@@ -232,6 +232,26 @@ def test_repeated_ngrams_word_prefilter_keeps_every_window_of_repeated_words(doc
     assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
 
 
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
+        st.lists(
+            st.sampled_from(["", "quay", "tide\r", "f\u00e9rry", "ferry", "\u8336\u8336", "\U0001f600x", "  "]),
+            max_size=8,
+        ).map("\n".join),
+        max_size=6,
+    )
+)
+def test_repeated_lines_equal_plain_python_with_lines_of_equal_length(docs: list[str]) -> None:
+    """Repeated lines (only documents holding two lines of one byte length compared as strings)
+    and the longest line equal a per-document Python reference: lines of the same length and
+    different text, multi-byte code points, a trailing carriage return, empty lines and empty
+    documents."""
+    a = arr(docs)
+    assert np.allclose(RepeatedLines().measure(a), [ref_repeated_lines(d) for d in docs])
+    assert LongestLine().measure(a).tolist() == [ref_longest_line(d) for d in docs]
+
+
 @settings(max_examples=100, deadline=None)
 @given(keys=st.lists(st.integers(0, 2**64 - 1) | st.integers(0, 40) | st.integers(2**64 - 40, 2**64 - 1), max_size=300))
 def test_shared_keys_are_exactly_the_keys_seen_twice(keys: list[int]) -> None:
