@@ -117,6 +117,10 @@ class _LastWide(threading.local):
 _LAST_WIDE: Final = _LastWide()
 
 
+# per sequence size (2-4 bytes): the mask of its bytes in a little-endian uint32
+_SEQUENCE_MASK: Final = np.array([0, 0, 0xFFFF, 0xFFFFFF, 0xFFFFFFFF], dtype=np.uint32)
+
+
 def wide_code_points(docs: pa.Array) -> Wide:
     """The :class:`Wide` of a ``large_string`` array's bytes (kept for the next call on the same array)."""
     last = _LAST_WIDE
@@ -124,12 +128,19 @@ def wide_code_points(docs: pa.Array) -> Wide:
         return last.wide
     data = utf8_buffers(docs)[0]
     at = np.flatnonzero(data >= 0xC0)
-    first = data[at]
+    first = np.take(data, at)
     size = np.where(first >= 0xF0, 4, np.where(first >= 0xE0, 3, 2))
-    # Arrow's hash table: a batch holds few distinct code points among many positions (no sort)
-    encoded = pc.dictionary_encode(pa.array(code_points(data, at), pa.int64()))
-    distinct = np.asarray(encoded.dictionary.to_numpy(zero_copy_only=False), dtype=np.int64)
-    wide = Wide(at, size, distinct, np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64))
+    # each code point's bytes read as one little-endian uint32 (equal exactly for equal code
+    # points), numbered by Arrow's hash table: a batch holds few distinct code points among
+    # many positions (no sort); only the distinct ones are decoded
+    padded = np.zeros(len(data) + 4, dtype=np.uint8)
+    padded[: len(data)] = data
+    four = np.ndarray((len(data),), dtype="<u4", buffer=padded, strides=(1,))
+    raw = four[at] & np.take(_SEQUENCE_MASK, size)  # fancy indexing on a strided view (DEVELOPERS.md)
+    encoded = pc.dictionary_encode(pa.array(raw, pa.uint32()))
+    distinct = np.ascontiguousarray(encoded.dictionary.to_numpy(zero_copy_only=False), dtype="<u4")
+    points = code_points(distinct.view(np.uint8), np.arange(len(distinct), dtype=np.int64) * 4)
+    wide = Wide(at, size, points, np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64))
     last.docs, last.wide = docs, wide
     return wide
 

@@ -172,8 +172,8 @@ def _keys(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray
     # every byte position read as the start of a little-endian uint64 (overlapping, no copy)
     eight = np.ndarray((len(data),), dtype="<u8", buffer=padded, strides=(1,))
     width = np.minimum(sizes, _PACKED)
-    # np.take: faster than fancy indexing (DEVELOPERS.md), here on a strided view too
-    keys: np.ndarray = np.take(eight, starts)
+    # fancy indexing, not np.take: np.take copies a strided view whole first (DEVELOPERS.md)
+    keys: np.ndarray = eight[starts]
     long = np.flatnonzero(sizes > _PACKED)
     if len(long):
         # first and last eight bytes (whole: a longer word has at least eight) and the length
