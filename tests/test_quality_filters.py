@@ -203,6 +203,55 @@ def test_repeated_ngrams_is_exact_under_hash_collisions(monkeypatch: pytest.Monk
         assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
 
 
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
+        st.lists(st.sampled_from([f"w{i}" for i in range(12)] + [f"pier{i}x" for i in range(12)]), max_size=40).map(
+            " ".join
+        ),
+        max_size=5,
+    ),
+    n=st.integers(1, 5),
+)
+def test_repeated_ngrams_word_prefilter_keeps_every_window_of_repeated_words(docs: list[str], n: int) -> None:
+    """The n-grams left after ruling out words that occur once in their document include every
+    n-gram whose words all occur twice or more there (what any repeated n-gram needs), and the
+    measure equals the Python reference with words that repeat and words that do not."""
+    from seqpipe.clean._word_table import word_table
+    from seqpipe.clean.repeated_ngrams import _windows_of_repeated_words
+
+    table = word_table(arr(docs))
+    got = set(_windows_of_repeated_words(table.doc, table.keys, n).tolist())
+    at = 0
+    for d in docs:
+        words = d.split()
+        for i in range(len(words) - n + 1):
+            if all(words.count(w) > 1 for w in words[i : i + n]):
+                assert at + i in got
+        at += len(words)
+    assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
+        st.lists(
+            st.sampled_from(["", "quay", "tide\r", "f\u00e9rry", "ferry", "\u8336\u8336", "\U0001f600x", "  "]),
+            max_size=8,
+        ).map("\n".join),
+        max_size=6,
+    )
+)
+def test_repeated_lines_equal_plain_python_with_lines_of_equal_length(docs: list[str]) -> None:
+    """Repeated lines (only documents holding two lines of one byte length compared as strings)
+    and the longest line equal a per-document Python reference: lines of the same length and
+    different text, multi-byte code points, a trailing carriage return, empty lines and empty
+    documents."""
+    a = arr(docs)
+    assert np.allclose(RepeatedLines().measure(a), [ref_repeated_lines(d) for d in docs])
+    assert LongestLine().measure(a).tolist() == [ref_longest_line(d) for d in docs]
+
+
 @settings(max_examples=100, deadline=None)
 @given(keys=st.lists(st.integers(0, 2**64 - 1) | st.integers(0, 40) | st.integers(2**64 - 40, 2**64 - 1), max_size=300))
 def test_shared_keys_are_exactly_the_keys_seen_twice(keys: list[int]) -> None:
@@ -220,6 +269,69 @@ def test_letter_share_counts_non_ascii_code_points_as_re2_does() -> None:
     docs = ["\u03a9\u8336\U00010400\u0301\u2192\U0001f600\u00a0\x0bab", "\t\n\x0c\r a", ""]
     m = LetterShare().measure(arr(docs))
     assert m.tolist() == [5 / 10, 1.0, 0.0]
+
+
+# words of eight bytes and more whose first and last eight bytes and length agree: equal keys
+# (the word table hashes only those), different words
+_LONG_TWINS = [
+    "ferrymenXferrymen",
+    "ferrymenYferrymen",
+    "ferrymen",
+    "quayside-\u00e9-quayside",
+    "quayside-\u00ea-quayside",
+]
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
+        st.lists(st.sampled_from([*_LONG_TWINS, "a", "tide"]), max_size=14).map(" ".join),
+        max_size=5,
+    )
+)
+def test_repeated_ngrams_and_codes_are_exact_for_long_words_sharing_a_key(docs: list[str]) -> None:
+    """Longer words with equal keys (same length, first and last eight bytes) are told apart:
+    the repeated n-gram measure equals the Python reference and the exact codes differ."""
+    from seqpipe.clean._word_table import word_table
+
+    twins = word_table(arr(_LONG_TWINS)).keys.tolist()
+    assert twins[0] == twins[1] and twins[3] == twins[4]  # the keys do collide
+    for n in (1, 2, 3):
+        assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
+    table = word_table(arr(docs))
+    want = [w for d in docs for w in d.split()]
+    codes = table.codes.tolist()
+    assert all((codes[i] == codes[j]) == (want[i] == want[j]) for i in range(len(want)) for j in range(len(want)))
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(
+        st.text(
+            alphabet=st.sampled_from(
+                list("aZ7 \t\n\x0b\x0c\r\x1c.\u00e9\u00a0\u03a9\u0301\u2192\u8336\u3000\U00010400\U0001f600")
+            ),
+            max_size=30,
+        ),
+        max_size=6,
+    )
+)
+def test_letter_share_equals_re2_per_character(docs: list[str]) -> None:
+    """Letters / visible characters counted over the bytes (ASCII by compares, continuation bytes
+    by the code points beyond ASCII) equal RE2 asked per character, \\p{L} and \\s, in
+    pyarrow compute (one- to four-byte code points, RE2 and Unicode whitespace mixed)."""
+    import pyarrow.compute as pc
+
+    def re2(chars: list[str], pattern: str) -> list[bool]:
+        got = pc.match_substring_regex(pa.array(chars, pa.large_string()), pattern)
+        return [bool(x) for x in got.to_pylist()]
+
+    want = []
+    for d in docs:
+        visible = [c for c, space in zip(d, re2(list(d), r"^\s$"), strict=True) if not space]
+        letters = sum(re2(visible, r"^\p{L}$"))
+        want.append(letters / len(visible) if visible else 0.0)
+    assert LetterShare().measure(arr(docs)).tolist() == want
 
 
 @settings(max_examples=200, deadline=None)
@@ -303,6 +415,46 @@ def test_function_words_equal_a_per_word_reference(docs: list[str]) -> None:
     strip = "\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d"
     want = [sum(w.lower().strip(strip) in FUNCTION_WORDS["en"] for w in d.split()) for d in docs]
     assert FunctionWords().measure(arr(docs)).tolist() == want
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    docs=st.lists(
+        st.lists(
+            st.builds(
+                "".join,
+                st.tuples(
+                    st.sampled_from(["", "(", '"', "\u201c", "'", "--"]),
+                    st.sampled_from(
+                        ["the", "The", "THE", "and", "AND", "of", "wITh", "be", "to", "that", "have", "th\u00e9"]
+                    ),
+                    st.sampled_from(["", ",", ".", ")", "!\u201d", "\u2019", "s"]),
+                ),
+            )
+            | st.text(
+                alphabet=st.sampled_from(list("theTHEaofAndw\"'(.,-\u201c\u201d\u00e9\u00df\u03a9\u8336\u0130")),
+                max_size=12,
+            ),
+            max_size=8,
+        ).map(" ".join),
+        max_size=8,
+    ),
+    minimum=st.integers(1, 4),
+    spaces=st.sampled_from([" ", "\n", "\u00a0", "\u3000 "]),
+)
+def test_function_words_keep_equals_the_full_count(docs: list[str], minimum: int, spaces: str) -> None:
+    """keep() (a count of plain short function words first, the full count only for documents
+    it leaves short of ``minimum``) keeps exactly the documents whose full count reaches
+    ``minimum``; on text whose characters lower-case alike in Python and pyarrow (no U+0130) it
+    also equals a per-word Python count (str.split, str.lower, str.strip)."""
+    docs = [d.replace(" ", spaces) for d in docs]
+    step = FunctionWords(minimum=minimum)
+    got = step.keep(arr(docs)).tolist()
+    assert got == (step.measure(arr(docs)) >= minimum).tolist()
+    strip = "\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d"
+    for d, kept in zip(docs, got, strict=True):
+        if "\u0130" not in d:
+            assert kept == (sum(w.lower().strip(strip) in FUNCTION_WORDS["en"] for w in d.split()) >= minimum)
 
 
 @settings(max_examples=100, deadline=None)

@@ -117,6 +117,10 @@ class _LastWide(threading.local):
 _LAST_WIDE: Final = _LastWide()
 
 
+# per sequence size (2-4 bytes): the mask of its bytes in a little-endian uint32
+_SEQUENCE_MASK: Final = np.array([0, 0, 0xFFFF, 0xFFFFFF, 0xFFFFFFFF], dtype=np.uint32)
+
+
 def wide_code_points(docs: pa.Array) -> Wide:
     """The :class:`Wide` of a ``large_string`` array's bytes (kept for the next call on the same array)."""
     last = _LAST_WIDE
@@ -124,12 +128,19 @@ def wide_code_points(docs: pa.Array) -> Wide:
         return last.wide
     data = utf8_buffers(docs)[0]
     at = np.flatnonzero(data >= 0xC0)
-    first = data[at]
+    first = np.take(data, at)
     size = np.where(first >= 0xF0, 4, np.where(first >= 0xE0, 3, 2))
-    # Arrow's hash table: a batch holds few distinct code points among many positions (no sort)
-    encoded = pc.dictionary_encode(pa.array(code_points(data, at), pa.int64()))
-    distinct = np.asarray(encoded.dictionary.to_numpy(zero_copy_only=False), dtype=np.int64)
-    wide = Wide(at, size, distinct, np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64))
+    # each code point's bytes read as one little-endian uint32 (equal exactly for equal code
+    # points), numbered by Arrow's hash table: a batch holds few distinct code points among
+    # many positions (no sort); only the distinct ones are decoded
+    padded = np.zeros(len(data) + 4, dtype=np.uint8)
+    padded[: len(data)] = data
+    four = np.ndarray((len(data),), dtype="<u4", buffer=padded, strides=(1,))
+    raw = four[at] & np.take(_SEQUENCE_MASK, size)  # fancy indexing on a strided view (DEVELOPERS.md)
+    encoded = pc.dictionary_encode(pa.array(raw, pa.uint32()))
+    distinct = np.ascontiguousarray(encoded.dictionary.to_numpy(zero_copy_only=False), dtype="<u4")
+    points = code_points(distinct.view(np.uint8), np.arange(len(distinct), dtype=np.int64) * 4)
+    wide = Wide(at, size, points, np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64))
     last.docs, last.wide = docs, wide
     return wide
 
@@ -142,51 +153,35 @@ _ASCII_SPACE[:128] = np.asarray(
 )
 
 
-# Per byte value, one bit per class, so one table lookup over a batch's bytes serves every
-# byte-level measure: SPACE, whitespace below U+0080 as _ASCII_SPACE; INVISIBLE, a byte that is
-# not the first byte of a visible code point: RE2's \\s (only tab, line feed, form feed, carriage
-# return and space; RE2 syntax reference, "Perl classes") or a UTF-8 continuation byte; LETTER,
-# an ASCII letter (what \\p{L} matches below U+0080).
-SPACE: Final = 1
-INVISIBLE: Final = 2
-LETTER: Final = 4
-_CLASSES: Final = (
-    _ASCII_SPACE.astype(np.uint8) * SPACE
-    + (np.isin(np.arange(256), [9, 10, 12, 13, 32]) | ((np.arange(256) & 0xC0) == 0x80)).astype(np.uint8) * INVISIBLE
-    + np.array([chr(b).isascii() and chr(b).isalpha() for b in range(256)], dtype=np.uint8) * LETTER
-).astype(np.uint8)
+def byte_runs(flags: np.ndarray) -> tuple[tuple[int, int], ...]:
+    """The runs (first, last) of the byte values whose flag is set."""
+    edges = np.flatnonzero(np.diff(np.r_[0, np.asarray(flags, dtype=np.int8), 0]))
+    return tuple(zip(edges[0::2].tolist(), (edges[1::2] - 1).tolist(), strict=True))
 
 
-class _LastClasses(threading.local):
-    """Per thread, the last batch's byte classes."""
+def in_runs(data: np.ndarray, runs: tuple[tuple[int, int], ...]) -> np.ndarray:
+    """Per byte of ``data`` (uint8): whether its value lies in one of ``runs`` ((first, last)
+    pairs). One subtraction and compare per run (``byte - first`` wraps below ``first``): a few
+    times cheaper than a table look-up per byte, which numpy makes with an index array of
+    eight bytes per byte."""
+    out = np.zeros(len(data), dtype=bool)
+    for first, last in runs:
+        out |= np.subtract(data, np.uint8(first), dtype=np.uint8) <= np.uint8(last - first)
+    return out
 
-    def __init__(self) -> None:
-        self.docs: pa.Array | None = None
-        self.classes: np.ndarray | None = None
 
-
-_LAST_CLASSES: Final = _LastClasses()
-
-
-def byte_classes(docs: pa.Array) -> np.ndarray:
-    """Per byte of a ``large_string`` array's UTF-8 bytes: its bits of ``_CLASSES`` (kept for
-    the next call on the same array)."""
-    last = _LAST_CLASSES
-    if last.classes is not None and docs is last.docs:
-        return last.classes
-    classes: np.ndarray = np.take(
-        _CLASSES, utf8_buffers(docs)[0]
-    )  # np.take: faster than fancy indexing (DEVELOPERS.md)
-    last.docs, last.classes = docs, classes
-    return classes
+# Byte values by class, as runs: SPACE_RUNS, whitespace below U+0080 as _ASCII_SPACE (bytes 9-13
+# and 28-32); RE2_SPACE_RUNS, RE2's \\s (only tab, line feed, form feed, carriage return and
+# space; RE2 syntax reference, "Perl classes").
+SPACE_RUNS: Final = byte_runs(_ASCII_SPACE)
+RE2_SPACE_RUNS: Final = byte_runs(np.isin(np.arange(256), [9, 10, 12, 13, 32]))
 
 
 def space_bytes(docs: pa.Array) -> np.ndarray:
     """Per byte of a ``large_string`` array's UTF-8 bytes: whether it belongs to a whitespace
     code point as pyarrow's ``utf8_is_space`` (and so ``utf8_split_whitespace``) sees it, asked
     once per distinct non-ASCII code point."""
-    space: np.ndarray = (byte_classes(docs) & SPACE).view(bool)  # SPACE is bit 0: each byte is 0 or 1
-    return mark_wide_spaces(docs, space)
+    return mark_wide_spaces(docs, in_runs(utf8_buffers(docs)[0], SPACE_RUNS))
 
 
 def mark_wide_spaces(docs: pa.Array, space: np.ndarray) -> np.ndarray:

@@ -2,11 +2,14 @@
 
 Words are the whitespace-separated runs of ``utf8_split_whitespace`` (the same cut as
 :func:`seqpipe.clean._quality.words`), found as start and end positions in the batch's UTF-8
-bytes, so no string per word is built. Each word gets a 64-bit code that is equal for two words
-exactly when their bytes are equal: a word of at most seven bytes is its bytes with its length
-above them (an injective packing, not a hash); a longer word is numbered by Arrow's hash table
-over those words only. Mean word length, repeated n-grams and function words all read this one
-table.
+bytes, so no string per word is built. Each word gets a 64-bit key: a word of at most seven
+bytes is its bytes with its length above them (an injective packing, not a hash), so equal
+keys there mean equal words; a longer word's key is a hash of its length and its first and
+last eight bytes with the top byte 0xFF (equal for equal words, and never a short word's
+key, but two longer words may share one). Its exact code (:meth:`WordTable.exact`) numbers
+the longer words by Arrow's hash table over their bytes, and is only made for the words that
+need it (the few n-grams whose keys repeat, the few words judged by their text). Mean word
+length, repeated n-grams and function words all read this one table.
 """
 
 from __future__ import annotations
@@ -20,11 +23,13 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from seqpipe.clean._quality import Wide, space_bytes, utf8_buffers, wide_code_points
+from seqpipe.clean._quality import Wide, mix64, space_bytes, utf8_buffers, wide_code_points
 from seqpipe.clean.base import as_documents
 
 _PACKED: Final = 7  # bytes a code holds; the top byte holds the length (1-7), so no two packings meet
-_LONG: Final = np.uint64(0xFF << 56)  # top byte of a longer word's code (its number below it)
+_LONG: Final = np.uint64(0xFF << 56)  # top byte of a longer word's key and exact code
+_HASH_BITS: Final = np.uint64((1 << 56) - 1)  # a longer word's key: its hash below the top byte
+_LAST_MIX: Final = np.uint64(0x9E3779B97F4A7C15)  # odd: spreads the last eight bytes before mixing
 # per length 0-7: the mask of that many low bytes
 LOW_BYTES: Final = np.array([(1 << (8 * k)) - 1 for k in range(_PACKED + 1)], dtype=np.uint64)
 
@@ -39,10 +44,11 @@ class WordTable:
     ends: np.ndarray  # int64
     doc: np.ndarray  # int64, non-decreasing
     first: np.ndarray  # int64, documents + 1 word offsets
-    codes: np.ndarray  # uint64, equal exactly for equal words
+    keys: np.ndarray  # uint64, equal for equal words; exact for words of at most seven bytes
     chars: np.ndarray  # int64, code points per word
     wide: Wide  # the batch's code points beyond ASCII
     wide_word: np.ndarray  # int64, per code point of ``wide``: the word holding it, or -1 (whitespace)
+    exact_codes: np.ndarray | None = None  # filled by the ``codes`` property when first asked
 
     @property
     def documents(self) -> int:
@@ -61,10 +67,30 @@ class WordTable:
         """Words per document."""
         return np.diff(self.first)
 
+    @property
+    def codes(self) -> np.ndarray:
+        """Per word: its exact code (uint64, equal exactly for equal words); made once and kept."""
+        if self.exact_codes is None:
+            object.__setattr__(self, "exact_codes", self.exact(np.arange(len(self.keys), dtype=np.int64)))
+        assert self.exact_codes is not None
+        return self.exact_codes
+
+    def exact(self, which: np.ndarray) -> np.ndarray:
+        """Per word of ``which`` (indices): a code equal for two of them exactly when their bytes
+        are equal (its key for a word of at most seven bytes, else ``_LONG`` and its number
+        among the distinct longer words of ``which``)."""
+        out: np.ndarray = self.keys[which]
+        long = np.flatnonzero(out >= _LONG)
+        if len(long):
+            chosen = which[long]
+            encoded = pc.dictionary_encode(spans(self.data, self.starts[chosen], self.ends[chosen]))
+            out[long] = _LONG | np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.uint64)
+        return out
+
     def holding_wide(self, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
         """Per word: whether it holds a code point beyond ASCII for which ``kernel`` (a pyarrow
         predicate over one-character strings, asked once per distinct code point) is True."""
-        out = np.zeros(len(self.codes), dtype=bool)
+        out = np.zeros(len(self.keys), dtype=bool)
         if len(self.wide.at):
             word = self.wide_word[self.wide.classify(kernel) & (self.wide_word >= 0)]
             out[word] = True
@@ -73,8 +99,8 @@ class WordTable:
     def distinct(self, which: np.ndarray | None = None) -> tuple[pa.Array, np.ndarray]:
         """The distinct words (``large_string``) among the words ``which`` (indices; all words
         when None) and, per such word, its index among them."""
-        chosen = np.arange(len(self.codes), dtype=np.int64) if which is None else which
-        encoded = pc.dictionary_encode(pa.array(self.codes[chosen], pa.uint64()))
+        chosen = np.arange(len(self.keys), dtype=np.int64) if which is None else which
+        encoded = pc.dictionary_encode(pa.array(self.exact(chosen), pa.uint64()))
         index = np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64)
         first_seen = np.empty(len(encoded.dictionary), dtype=np.int64)
         first_seen[index[::-1]] = chosen[::-1]  # the first word of each
@@ -139,24 +165,26 @@ def _bounds(docs: pa.Array, data: np.ndarray, offsets: np.ndarray) -> tuple[np.n
     return starts, np.flatnonzero(edge) + 1
 
 
-def _codes(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
-    """Per word: its exact 64-bit code (see the module docstring)."""
+def _keys(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
+    """Per word: its 64-bit key (see the module docstring)."""
     padded = np.zeros(len(data) + 8, dtype=np.uint8)
     padded[: len(data)] = data
     # every byte position read as the start of a little-endian uint64 (overlapping, no copy)
     eight = np.ndarray((len(data),), dtype="<u8", buffer=padded, strides=(1,))
-    short = sizes <= _PACKED
     width = np.minimum(sizes, _PACKED)
-    # np.take: faster than fancy indexing (DEVELOPERS.md), here on a strided view too
-    codes: np.ndarray = np.take(eight, starts)
-    codes &= np.take(LOW_BYTES, width)
-    codes |= width.astype(np.uint64) << np.uint64(56)
-    long = np.flatnonzero(~short)
+    # fancy indexing, not np.take: np.take copies a strided view whole first (DEVELOPERS.md)
+    keys: np.ndarray = eight[starts]
+    long = np.flatnonzero(sizes > _PACKED)
     if len(long):
-        encoded = pc.dictionary_encode(spans(data, starts[long], starts[long] + sizes[long]))
-        number = np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.uint64)
-        codes[long] = _LONG | number
-    return codes
+        # first and last eight bytes (whole: a longer word has at least eight) and the length
+        last = eight[starts[long] + sizes[long] - 8]
+        with np.errstate(over="ignore"):
+            mixed = mix64(keys[long] ^ mix64(last * _LAST_MIX + sizes[long].astype(np.uint64)))
+    keys &= np.take(LOW_BYTES, width)
+    keys |= width.astype(np.uint64) << np.uint64(56)
+    if len(long):
+        keys[long] = _LONG | (mixed & _HASH_BITS)
+    return keys
 
 
 def _chars(wide: Wide, starts: np.ndarray, ends: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -186,4 +214,4 @@ def _cut(docs: pa.Array) -> WordTable:
     first = np.searchsorted(starts, offsets).astype(np.int64)
     doc = np.repeat(np.arange(len(docs), dtype=np.int64), np.diff(first))
     chars, wide_word = _chars(wide, starts, ends)
-    return WordTable(data, starts, ends, doc, first, _codes(data, starts, ends - starts), chars, wide, wide_word)
+    return WordTable(data, starts, ends, doc, first, _keys(data, starts, ends - starts), chars, wide, wide_word)

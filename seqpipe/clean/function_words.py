@@ -64,22 +64,36 @@ def _lower_not_ascii(chars: pa.Array) -> pa.Array:
     return pc.and_(pc.invert(trimmed), pc.invert(pc.string_is_ascii(pc.utf8_lower(chars))))
 
 
-def _function_word_flags(table: WordTable, language: str) -> np.ndarray:
-    """Per word: 1 when, lower-cased with ``_TRIMMED`` stripped from both ends, it is one of the
-    language's function words. An ASCII word of one to seven bytes is judged on its packed code
-    (stripping ASCII characters and lower-casing ASCII are bytewise there). Pyarrow compute
-    judges, once per distinct word, the other words that may be one: those beyond ASCII unless
-    one of their characters stays beyond ASCII (with ASCII function words), and the longer
-    ASCII words that stripping can shorten (all longer ones, if a function word is that long).
-    The rest cannot shrink to a function word's length or to ASCII."""
+def _sure_flags(table: WordTable, language: str) -> np.ndarray:
+    """Per word: True when it is, lower-cased, one of the language's ASCII function words of one
+    to seven bytes with nothing to strip. Such a word is counted by :func:`_function_word_flags`
+    too (a subset of its flags): a code equal to a lower-cased function word's is a short ASCII
+    word (``_ascii_lower`` leaves a byte's high bit and the code's top byte as they are, and
+    longer words' keys have the top byte 0xFF), and a word of letters has nothing to strip."""
+    wanted = pack_ascii([w for w in FUNCTION_WORDS[language] if w.isascii() and len(w) <= 7])
+    out: np.ndarray = np.isin(_ascii_lower(table.keys), wanted)
+    return out
+
+
+def _function_word_flags(table: WordTable, language: str, which: np.ndarray | None = None) -> np.ndarray:
+    """Per word of ``which`` (indices; all words when None): 1 when, lower-cased with ``_TRIMMED``
+    stripped from both ends, it is one of the language's function words. An ASCII word of one
+    to seven bytes is judged on its packed code (stripping ASCII characters and lower-casing
+    ASCII are bytewise there). Pyarrow compute judges, once per distinct word, the other words
+    that may be one: those beyond ASCII unless one of their characters stays beyond ASCII (with
+    ASCII function words), and the longer ASCII words that stripping can shorten (all longer
+    ones, if a function word is that long). The rest cannot shrink to a function word's length
+    or to ASCII."""
     words = FUNCTION_WORDS[language]
-    codes, sizes = table.codes, table.ends - table.starts
-    if not len(codes):
+    chosen = np.arange(len(table.keys), dtype=np.int64) if which is None else which
+    if not len(chosen):
         return np.zeros(0, dtype=np.int64)
-    ascii_words = table.chars == sizes
+    starts, ends = table.starts[chosen], table.ends[chosen]
+    codes, sizes = table.keys[chosen], ends - starts  # exact for the short words judged on them
+    ascii_words = table.chars[chosen] == sizes
     # np.take: faster than fancy indexing (DEVELOPERS.md)
-    edge = np.take(_ASCII_TRIMMED, np.take(table.data, table.starts))
-    edge |= np.take(_ASCII_TRIMMED, np.take(table.data, table.ends - 1))
+    edge = np.take(_ASCII_TRIMMED, np.take(table.data, starts))
+    edge |= np.take(_ASCII_TRIMMED, np.take(table.data, ends - 1))
     wanted = pack_ascii([w for w in words if w.isascii() and len(w) <= 7])
     short = ascii_words & (sizes <= 7)
     # every code lower-cased as if it were a short ASCII word; kept for those with nothing to strip
@@ -88,11 +102,11 @@ def _function_word_flags(table: WordTable, language: str) -> np.ndarray:
     flags[stripped] = np.isin(_ascii_lower(_trimmed_packed(codes[stripped], sizes[stripped])), wanted)
     maybe = ~ascii_words
     if all(w.isascii() for w in words):
-        maybe &= ~table.holding_wide(_lower_not_ascii)
+        maybe &= ~table.holding_wide(_lower_not_ascii)[chosen]
     long_word = any(len(w.encode("utf-8")) > 7 for w in words)
     rest = np.flatnonzero(maybe | (ascii_words & (sizes > 7) & (edge | long_word)))
     if len(rest):
-        distinct, index = table.distinct(rest)  # each distinct word is judged once
+        distinct, index = table.distinct(chosen[rest])  # each distinct word is judged once
         bare = pc.utf8_trim(pc.utf8_lower(distinct), characters=_TRIMMED)
         hit = pc.is_in(bare, value_set=pa.array(words, pa.large_string()))
         flags[rest] = np.asarray(hit.to_numpy(zero_copy_only=False), dtype=np.int64)[index]
@@ -125,5 +139,15 @@ class FunctionWords(QualityFilter):
         return table.per_document(_function_word_flags(table, self.language))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
-        """Boolean mask: True for each document ``apply`` keeps."""
-        return np.asarray(self.measure(docs) >= self.minimum, dtype=bool)
+        """Boolean mask: True for each document ``apply`` keeps (``measure >= minimum``). The
+        short ASCII function words needing no stripping (:func:`_sure_flags`, a few whole-array
+        operations) already reach ``minimum`` in most prose; the full count is taken only for
+        the words of the documents where they do not."""
+        table = word_table(docs)
+        count = table.per_document(_sure_flags(table, self.language))
+        unsure = count < self.minimum
+        if unsure.any():
+            which = np.flatnonzero(unsure[table.doc])
+            hits = which[_function_word_flags(table, self.language, which) > 0]
+            count[unsure] = np.bincount(table.doc[hits], minlength=len(count))[unsure]
+        return np.asarray(count >= self.minimum, dtype=bool)

@@ -11,10 +11,9 @@ import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float
 from seqpipe.clean._quality import (
-    INVISIBLE,
-    LETTER,
+    RE2_SPACE_RUNS,
     QualityFilter,
-    byte_classes,
+    in_runs,
     per_document_sum,
     share,
     utf8_buffers,
@@ -49,16 +48,19 @@ class LetterShare(QualityFilter):
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: letters / non-whitespace characters."""
         docs = as_documents(docs)
-        offsets = utf8_buffers(docs)[1]
-        classes = byte_classes(docs)
-        # visible: the first bytes of code points other than RE2 whitespace; letters: ASCII ones
-        # and the code points beyond ASCII that RE2 calls letters (asked once per distinct one)
-        visible = np.diff(offsets) - per_document_sum(classes & INVISIBLE, offsets) // INVISIBLE
-        letters = per_document_sum(classes & LETTER, offsets) // LETTER
+        data, offsets = utf8_buffers(docs)
+        # visible: the first bytes of code points other than RE2 whitespace (so neither those
+        # bytes nor the continuation bytes after each code point beyond ASCII); letters: ASCII
+        # ones (b | 0x20 is a-z exactly for A-Z and a-z) and the code points beyond ASCII that
+        # RE2 calls letters (asked once per distinct one)
+        visible = np.diff(offsets) - per_document_sum(in_runs(data, RE2_SPACE_RUNS), offsets)
+        ascii_letter = np.subtract(data | np.uint8(0x20), np.uint8(ord("a")), dtype=np.uint8) <= np.uint8(25)
+        letters = per_document_sum(ascii_letter, offsets)
         wide = wide_code_points(docs)
         if len(wide.at):
-            at = wide.at[wide.classify(_is_letter)]
-            letters += np.bincount(np.searchsorted(offsets, at, side="right") - 1, minlength=len(docs))
+            doc = np.searchsorted(offsets, wide.at, side="right") - 1
+            visible -= np.bincount(doc, weights=wide.size - 1, minlength=len(docs)).astype(np.int64)
+            letters += np.bincount(doc[wide.classify(_is_letter)], minlength=len(docs))
         return share(letters.astype(np.float64), visible.astype(np.float64))
 
     def keep(self, docs: pa.Array) -> np.ndarray:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import ClassVar, Final
 
@@ -16,33 +17,62 @@ from seqpipe.clean._word_table import word_table
 _MULTIPLIER: Final = np.uint64(0x9E3779B97F4A7C15)  # odd, with bits spread over the whole word
 
 
-def covered_by_repeats(doc: np.ndarray, codes: np.ndarray, n: int) -> np.ndarray:
-    """Per word (document ``doc[i]``, exact code ``codes[i]``, equal for equal words): True when it
-    lies inside a word n-gram that occurs more than once in its document."""
-    m = len(codes)
+def covered_by_repeats(
+    doc: np.ndarray, keys: np.ndarray, n: int, exact: Callable[[np.ndarray], np.ndarray] | None = None
+) -> np.ndarray:
+    """Per word (document ``doc[i]``, key ``keys[i]``, equal for equal words): True when it lies
+    inside a word n-gram that occurs more than once in its document. ``exact(indices)`` gives
+    those words' exact codes (equal exactly for equal words); without it the keys are exact."""
+    m = len(keys)
     covered = np.zeros(m, dtype=bool)
     if m < n:
         return covered
-    codes = np.ascontiguousarray(codes).view(np.int64)  # the same bits: equal exactly when the codes are
-    # n-grams starting at every word, some across two documents: those are left out of the
-    # candidates (a key they share with another n-gram only makes that one a candidate)
-    candidates = _shared_keys(_window_keys(doc, codes, n))
-    candidates = candidates[doc[candidates] == doc[candidates + n - 1]]  # docs are contiguous
+    keys = np.ascontiguousarray(keys).view(np.int64)  # the same bits: equal exactly when the keys are
+    # the n-grams all of whose words may occur twice in their document (every word of an n-gram
+    # seen twice in a document does) and that lie in one document (docs are contiguous)
+    starts = _windows_of_repeated_words(doc, keys, n)
+    starts = starts[doc[starts] == doc[starts + n - 1]]
+    candidates = starts[_shared_keys(_window_keys_at(doc, keys, starts, n))]
+    codes = keys
+    if exact is not None and len(candidates):
+        words = np.unique((candidates[:, None] + np.arange(n)).ravel())  # the candidates' words
+        codes = np.zeros(m, dtype=np.int64)  # rows read only the candidates' words
+        codes[words] = np.ascontiguousarray(exact(words)).view(np.int64)
     repeated = candidates[_repeated_rows(doc, codes, candidates, n)]
     covered[(repeated[:, None] + np.arange(n)).ravel()] = True  # the words of each repeated n-gram
     return covered
 
 
-def _window_keys(doc: np.ndarray, codes: np.ndarray, n: int) -> np.ndarray:
+def _windows_of_repeated_words(doc: np.ndarray, keys: np.ndarray, n: int) -> np.ndarray:
+    """The first words of the n-grams none of whose words surely occurs once in its document.
+    A hash of (document, key) per word is counted per bucket of its top bits, the words left
+    per bucket of the bits below those: equal pairs share every bucket, so a word that occurs
+    twice is never ruled out (most words of prose occur once in their document)."""
+    with np.errstate(over="ignore"):
+        h = (np.ascontiguousarray(keys).view(np.uint64) + doc.astype(np.uint64) * _MULTIPLIER) * _MULTIPLIER
+    bits = _bucket_bits(len(h))
+    buckets = (h >> np.uint64(64 - bits)).astype(np.intp)
+    maybe = np.bincount(buckets, minlength=1 << bits)[buckets] > 1
+    left = np.flatnonzero(maybe)
+    if len(left):
+        low = _bucket_bits(len(left))
+        buckets = ((h[left] >> np.uint64(64 - bits - low)) & np.uint64((1 << low) - 1)).astype(np.intp)
+        maybe[left] = np.bincount(buckets, minlength=1 << low)[buckets] > 1
+    run = np.zeros(len(h) + 1, dtype=np.int32)
+    np.cumsum(maybe, out=run[1:])
+    out: np.ndarray = np.flatnonzero(run[n:] - run[:-n] == n)  # n flagged words in a row
+    return out
+
+
+def _window_keys_at(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: int) -> np.ndarray:
     """A 64-bit polynomial key of (document of the first word, the n word codes) for the n-gram
-    starting at every word that has n - 1 words after it (slices of the code array, no gather);
-    a last multiplication spreads the last word's bits (its length sits in its top byte)."""
-    windows = len(codes) - n + 1
+    starting at each word of ``starts`` (each with n - 1 words after it); a last multiplication
+    spreads the last word's bits (its length sits in its top byte)."""
     words = np.ascontiguousarray(codes).view(np.uint64)
     with np.errstate(over="ignore"):
-        h = doc[:windows].astype(np.uint64)
+        h = doc[starts].astype(np.uint64)
         for k in range(n):
-            h = h * _MULTIPLIER + words[k : k + windows]
+            h = h * _MULTIPLIER + words[starts + k]
         out: np.ndarray = h * _MULTIPLIER
     return out
 
@@ -115,7 +145,8 @@ class RepeatedNgrams(QualityFilter):
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: characters in repeated n-grams / word characters."""
         table = word_table(docs)
-        inside = table.per_document(np.where(covered_by_repeats(table.doc, table.codes, self.n), table.chars, 0))
+        covered = covered_by_repeats(table.doc, table.keys, self.n, table.exact)
+        inside = table.per_document(np.where(covered, table.chars, 0))
         return share(inside.astype(np.float64), table.per_document(table.chars).astype(np.float64))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
