@@ -225,14 +225,19 @@ def test_space_bytes_by_compares_equal_the_table_look_up() -> None:
     assert module._space_bytes(whole, utf8_buffers(whole)[0]).tolist() == space_bytes(whole).tolist()
 
 
-def test_no_whitespace_beyond_the_basic_multilingual_plane() -> None:
-    """_space_bytes asks pyarrow about the Basic Multilingual Plane only: pyarrow's utf8_is_space
-    holds for no code point of planes 1 to 16 (Unicode's White_Space property lists none there;
-    PropList.txt)."""
+def test_wide_spaces_are_every_whitespace_code_point_pyarrow_knows() -> None:
+    """_space_bytes asks pyarrow about a short list of candidates (Unicode's White_Space
+    property, PropList.txt, plus three that older versions counted): a scan of every code point
+    beyond ASCII finds exactly the whitespace that list gives."""
     import pyarrow.compute as pc
 
-    chars = pa.array([chr(c) for c in range(0x10000, 0x110000)], pa.large_string())
-    assert not pc.any(pc.utf8_is_space(chars)).as_py()
+    import seqpipe.clean.near_dedupe as module
+
+    cps = np.r_[np.arange(0x80, 0xD800), np.arange(0xE000, 0x110000)]
+    chars = pa.array([chr(c) for c in cps.tolist()], pa.large_string())
+    every = cps[np.asarray(pc.utf8_is_space(chars).to_numpy(zero_copy_only=False), dtype=bool)]
+    assert every.tolist() == module._wide_spaces().code_points.tolist()
+    assert 0x3000 in every.tolist() and 0xA0 in every.tolist()  # (PropList.txt, from memory)
 
 
 def test_space_bytes_equal_the_table_look_up_on_random_text() -> None:

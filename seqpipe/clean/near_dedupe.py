@@ -135,25 +135,42 @@ _SPACE_RUNS: Final = _byte_runs(space_bytes(pa.array(["".join(map(chr, range(128
 
 @dataclass(frozen=True, slots=True)
 class _WideSpaces:
-    """The whitespace code points beyond ASCII (as pyarrow's ``utf8_is_space`` sees them, asked
-    once per process over the Basic Multilingual Plane, where Unicode places all of them) and the
-    runs of the UTF-8 first bytes that start one."""
+    """The whitespace code points beyond ASCII, as pyarrow's ``utf8_is_space`` sees them, and
+    the runs of the UTF-8 first bytes that start one."""
 
     code_points: np.ndarray  # sorted
     lead_runs: tuple[tuple[int, int], ...]
 
 
+# Code points beyond ASCII that pyarrow is asked about: Unicode's White_Space property
+# (PropList.txt: U+0085, U+00A0, U+1680, U+2000..U+200A, U+2028, U+2029, U+202F, U+205F,
+# U+3000) and three that some versions counted (U+180E, U+200B, U+FEFF). A test checks that
+# pyarrow finds no other whitespace in the whole of Unicode, so asking about these 24 (once per
+# process) gives the set a scan of every code point would.
+_WIDE_SPACE_CANDIDATES: Final = (
+    0x85,
+    0xA0,
+    0x1680,
+    0x180E,
+    *range(0x2000, 0x200C),
+    0x2028,
+    0x2029,
+    0x202F,
+    0x205F,
+    0x3000,
+    0xFEFF,
+)
 _WIDE_SPACES: list[_WideSpaces] = []
 
 
 def _wide_spaces() -> _WideSpaces:
     if not _WIDE_SPACES:  # a race computes it twice, with the same result
-        cps = np.r_[np.arange(0x80, 0xD800), np.arange(0xE000, 0x10000)]
+        cps = np.array(_WIDE_SPACE_CANDIDATES, dtype=np.int64)
         chars = pa.array([chr(c) for c in cps.tolist()], pa.large_string())
         found = cps[np.asarray(pc.utf8_is_space(chars).to_numpy(zero_copy_only=False), dtype=bool)]
         leads = np.zeros(256, dtype=bool)
         leads[[chr(c).encode("utf-8")[0] for c in found.tolist()]] = True
-        _WIDE_SPACES.append(_WideSpaces(found.astype(np.int64), _byte_runs(leads)))
+        _WIDE_SPACES.append(_WideSpaces(np.sort(found), _byte_runs(leads)))
     return _WIDE_SPACES[0]
 
 
