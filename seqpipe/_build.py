@@ -89,6 +89,7 @@ from seqpipe.ingest import (
     part_intact,
     part_key,
     release_encoded,
+    train_id_counts,
     write_shard_task,
 )
 from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal
@@ -481,12 +482,16 @@ def _build(
         finally:
             release_inputs()
         kept = assign(ctx, plan, ingested, stage)
+        train_ids = None  # the train shards' id counts, when the corpus counts give them
         if source is None:
-            fitted = fit(recipe, count(ctx, plan, ingested, kept, merger), stage, show=ctx.show)
-        else:  # the ids of another dataset: nothing to count or fit
+            counts, train_documents = count(ctx, plan, ingested, kept, merger)
+            fitted = fit(recipe, counts, stage, show=ctx.show)
+            train_ids = train_id_counts(recipe, str(stage), counts, train_documents, fitted.vocab_size)
+        else:  # the ids of another dataset: nothing to count or fit; the shard tasks count the ids
             fitted = reuse(recipe, source, stage)
         encoded = encode(ctx, plan, kept, fitted, stage)
-        sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage, fitted.vocab_size), stage, fitted)
+        layouts = lay_out(recipe, encoded, fitted.dtype, stage, fitted.vocab_size if train_ids is None else None)
+        sharded = shard(ctx, layouts, stage, fitted, train_ids)
         count_train_ids(stage, sharded)
         manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage, source))
         publish_dataset(out, stage, manifest, fitted)
@@ -941,9 +946,10 @@ def _merge_counted(merger: CountMerger, _: int, counted: tuple[pa.Table, int]) -
     merger.add(counted)
 
 
-def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: CountMerger) -> pa.Table:
+def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: CountMerger) -> tuple[pa.Table, int]:
     """Count the parts not counted at ingest into ``merger``; the corpus-wide ``(key, count)``
-    table in first-occurrence order (taken from the cache when these very parts made it)."""
+    table of the train documents in first-occurrence order (taken from the cache when these very
+    parts made it), and the number of train documents."""
     key = _counts_key(ctx.recipe, plan)
     stored = _stored_counts(ctx.cache, key) if key is not None else None
     if stored is not None:
@@ -962,7 +968,7 @@ def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: Coun
         raise EmptyCorpusError("the train split is empty: add documents or raise splits.train")
     if stored is None and key is not None:
         _store_counts(ctx.cache, key, counts, train_documents)
-    return counts
+    return counts, train_documents
 
 
 MERGED_COUNTS: Final = "counts.arrow"
@@ -1068,12 +1074,15 @@ def _local(pool: TaskPool) -> bool:
     return isinstance(pool.executor, (ThreadPoolExecutor, InlineExecutor))
 
 
-def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path, fitted: Fitted) -> Sharded:
+def shard(
+    ctx: Context, layouts: Sequence[SplitLayout], stage: Path, fitted: Fitted, train_ids: np.ndarray | None = None
+) -> Sharded:
     """Write every shard (tasks) and, meanwhile in this thread, the documents tables; the train
-    shards' id counts are summed as their tasks finish."""
+    shards' id counts are ``train_ids`` when known, else summed as their tasks finish (tasks
+    laid out to count them)."""
     tasks = [task for layout in layouts for task in layout.shards]
     view = View("writing shards", unit="shard")
-    id_counts = np.zeros(fitted.vocab_size, np.int64)
+    id_counts = np.zeros(fitted.vocab_size, np.int64) if train_ids is None else train_ids
     try:
         results, docs = run_beside(
             ctx.pool.executor,
@@ -1106,8 +1115,9 @@ def _add_id_counts(total: np.ndarray, _: int, result: dict[str, Any]) -> dict[st
 def count_train_ids(stage: Path, sharded: Sharded) -> None:
     """Rewrite the vocabulary's ``count`` column as what it is documented to be: how often each
     id occurs in the train split's shards (reserved tokens and begin/end markers included). The
-    fitted counts are of pieces before encoding (bpe's pre-merge symbols, 0 for reserved tokens);
-    the shard tasks counted their ids while writing them."""
+    fitted counts are of pieces before encoding (bpe's pre-merge symbols, 0 for reserved tokens).
+    The ids' counts come from the corpus piece counts (``ingest.train_id_counts``), or, with a
+    reused vocabulary (nothing counted), from the shard tasks, which counted the ids they wrote."""
     from seqpipe.vocab import Vocabulary
 
     vocab = Vocabulary.load(stage / VOCAB_FILE)

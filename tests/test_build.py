@@ -515,6 +515,50 @@ def test_vocabulary_count_column_is_the_train_shards_id_count(tmp_path: Path, to
     assert verify(out).ok
 
 
+HELD_OUT_SOURCE = """
+[[sources]]
+kind = "text"
+paths = "held/*.txt"
+document = "paragraph"
+fixed_split = "validation"
+"""
+
+
+@pytest.mark.parametrize(
+    ("tokenizer", "extra", "held_out"),
+    [
+        ("words", '[vocabulary]\nmin_count = 3\ncap = CAP\n[[clean]]\nkind = "dedupe"\n', False),
+        ("bpe", '[vocabulary]\ncap = CAP\n[encode]\nprepend_begin = true\n[[clean]]\nkind = "dedupe"\n', False),
+        ("words", "[vocabulary]\ncap = CAP\n[splits]\nexclude_overlap_from_train = true\n", True),
+    ],
+    ids=["words-dedupe-unknowns", "bpe-dedupe", "words-held-out-overlap"],
+)
+def test_vocabulary_count_column_with_documents_dropped_and_from_the_cache(
+    tmp_path: Path, tokenizer: str, extra: str, held_out: bool
+) -> None:
+    """The ``count`` column (taken from the corpus piece counts, not the shards) is still np.bincount
+    over the train shards when documents are dropped after ingest (exact duplicates, train documents
+    a held-out source also holds), when some pieces are unknown, and in a rebuild whose parts and
+    counts come from the cache with another vocabulary."""
+    src = tmp_path / "src"
+    recipe_path = _project(src, extra.replace("CAP", "320") + (HELD_OUT_SOURCE if held_out else ""), tokenizer)
+    shutil.copy(src / "corpus" / "log-000.txt", src / "corpus" / "log-009.txt")  # every paragraph twice
+    if held_out:
+        (src / "held").mkdir()
+        shutil.copy(src / "corpus" / "log-001.txt", src / "held" / "copy.txt")
+    out = tmp_path / "out"
+    first = build(load_recipe(recipe_path), out, workers=1, progress=False)
+    dropped = first.manifest["summary"]["duplicates_dropped"] + first.manifest["summary"]["train_overlap"]["removed"]
+    assert dropped > 0, "the corpus was meant to drop documents after ingest"
+    assert open_dataset(out).vocabulary.counts.tolist() == _train_bincount(out).tolist()
+    text = recipe_path.read_text(encoding="utf-8")
+    recipe_path.write_text(text.replace("cap = 320", "cap = 290"), encoding="utf-8")
+    again = build(load_recipe(recipe_path), out, workers=1, progress=False)
+    assert again.parts_reused == again.parts_total and again.fingerprint != first.fingerprint
+    assert open_dataset(out).vocabulary.counts.tolist() == _train_bincount(out).tolist()
+    assert verify(out).ok
+
+
 def test_unknown_rate_has_one_definition_in_summary_and_report(tmp_path: Path) -> None:
     """The build summary and the report give the same unknown rate per split: unknown tokens over
     content tokens (begin/end markers left out), recomputed here from the shards."""
