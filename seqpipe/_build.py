@@ -733,12 +733,15 @@ def _stored_plan(
         if body["listing"] != listing:
             return None
         sizes = [stamp[0] for stamp in stamps if stamp is not None]
-        rows = zip(body["inputs"], body["starts"], body["stops"], strict=True)
+        inputs = body["inputs"]
         # most inputs are read whole: one shared (immutable) part for them, not one each
-        members = [
-            Member(i, str(files[i][1]), WHOLE_PART if a == 0 and b is None else Part(a, b), tuple(stamps[i] or ()))
-            for i, a, b in rows
+        cuts = [
+            WHOLE_PART if a == 0 and b is None else Part(a, b)
+            for a, b in zip(body["starts"], body["stops"], strict=True)
         ]
+        paths = [str(files[i][1]) for i in inputs]
+        own = [tuple(stamps[i] or ()) for i in inputs]
+        members = list(map(Member._make, zip(inputs, paths, cuts, own, strict=True)))
         parts = []
         at = 0
         for si, key, weight, n in body["parts"]:
