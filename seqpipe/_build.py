@@ -92,7 +92,7 @@ from seqpipe.ingest import (
     train_id_counts,
     write_shard_task,
 )
-from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal
+from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal_and_dump
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype, read_table, sync_tree, write_table
@@ -493,8 +493,8 @@ def _build(
         layouts = lay_out(recipe, encoded, fitted.dtype, stage, fitted.vocab_size if train_ids is None else None)
         sharded = shard(ctx, layouts, stage, fitted, train_ids)
         count_train_ids(stage, sharded)
-        manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage, source))
-        publish_dataset(out, stage, manifest, fitted)
+        manifest, text = seal_and_dump(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage, source))
+        publish_dataset(out, stage, manifest, fitted, text)
     except OutputWriteError:
         shutil.rmtree(stage, ignore_errors=True)  # frees the space; the cache keeps what is whole
         raise
@@ -1185,17 +1185,18 @@ def _manifest_body(
     }
 
 
-def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fitted) -> None:
-    """Write the manifest into the stage and move everything into ``out``, the manifest last."""
-    text = dumps(manifest)
-    if len(text.encode()) > MAX_MANIFEST_BYTES:
+def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fitted, text: str | None = None) -> None:
+    """Write the manifest (``text``: its ``manifest.dumps`` text, when known) into the stage and
+    move everything into ``out``, the manifest last."""
+    data = (dumps(manifest) if text is None else text).encode()
+    if len(data) > MAX_MANIFEST_BYTES:
         raise RecipeError(
             "shards.tokens",
-            f"the manifest would be {len(text.encode())} bytes, over the {MAX_MANIFEST_BYTES} bytes "
+            f"the manifest would be {len(data)} bytes, over the {MAX_MANIFEST_BYTES} bytes "
             "readers accept; raise shards.tokens so there are fewer shards",
         )
     try:
-        (stage / MANIFEST_NAME).write_text(text)
+        (stage / MANIFEST_NAME).write_bytes(data)
     except OSError as exc:
         raise OutputWriteError(f"{stage / MANIFEST_NAME}: cannot write it ({exc})", path=str(stage)) from exc
     entries = [VOCAB_FILE, *fitted.files, DOCS_DIR, SHARDS_DIR]
