@@ -99,7 +99,7 @@ from seqpipe.shards import id_dtype, read_table, sync_tree, write_table
 from seqpipe.sources._stream import hold_input, release_inputs
 from seqpipe.sources.base import Part
 from seqpipe.splits import fixed_split_of
-from seqpipe.staging import build_lock, check_output, private_dir, publish
+from seqpipe.staging import build_lock, check_output, private_dir, publish, remember_published
 
 if TYPE_CHECKING:
     from seqpipe.storage import UriStore
@@ -1205,6 +1205,7 @@ def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fi
     sync_tree(stage, [*entries, MANIFEST_NAME], root_dir=False)
     # old entries the new build lacks (tokenizer.arrow) go in publish, after the old manifest
     publish(out, stage, entries, MANIFEST_NAME)
+    remember_published(out, manifest)
     shutil.rmtree(stage, ignore_errors=True)
 
 
