@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import dataclasses
 import json
+import operator
 import os
 import shutil
 import stat
@@ -609,7 +610,7 @@ def plan_build(
     hashes = grouped.hashes
     sizes = grouped.sizes
     inputs = tuple(
-        {"path": name, "bytes": sz, "hash": h} for (_, _, name), sz, h in zip(files, sizes, hashes, strict=True)
+        [{"path": name, "bytes": sz, "hash": h} for (_, _, name), sz, h in zip(files, sizes, hashes, strict=True)]
     )
     tasks = tuple(IngestTask(recipe, si, members, key, str(cache)) for si, members, key, _ in grouped.parts)
     weights = tuple(weight for _, _, _, weight in grouped.parts)
@@ -681,7 +682,7 @@ def _listing_key(
     """A fingerprint of what a plan follows from: every input's source, path, recorded name and
     change stamp, and everything a part key holds besides its inputs' hashes (``part_key``);
     None when an input has no stamp from its listing (a URI or a symlink: asked again)."""
-    if any(stamp is None for stamp in stamps):
+    if None in stamps:
         return None
     digest = xxhash.xxh3_128()
     settings = {
@@ -735,13 +736,14 @@ def _stored_plan(
         sizes = [stamp[0] for stamp in stamps if stamp is not None]
         inputs = body["inputs"]
         # most inputs are read whole: one shared (immutable) part for them, not one each
+        whole = WHOLE_PART
         cuts = [
-            WHOLE_PART if a == 0 and b is None else Part(a, b)
-            for a, b in zip(body["starts"], body["stops"], strict=True)
+            whole if a == 0 and b is None else Part(a, b) for a, b in zip(body["starts"], body["stops"], strict=True)
         ]
         paths = [str(files[i][1]) for i in inputs]
         own = [tuple(stamps[i] or ()) for i in inputs]
-        members = list(map(Member._make, zip(inputs, paths, cuts, own, strict=True)))
+        # Member._make without its Python call and length check: each row is a whole member
+        members = list(map(partial(tuple.__new__, Member), zip(inputs, paths, cuts, own, strict=True)))
         parts = []
         at = 0
         for si, key, weight, n in body["parts"]:
@@ -1054,7 +1056,7 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
             str(stage),
             ctx.recipe,
             i,
-            tuple(m.input_index for m in t.members),
+            tuple(map(_INPUT_INDEX, t.members)),
             None,
             fitted.dtype,
             _fixed(ctx.recipe, t),
@@ -1070,6 +1072,9 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
         raise
     shutil.rmtree(stage / DEDUPE_DIR, ignore_errors=True)  # the drop lists are no longer read
     return totals
+
+
+_INPUT_INDEX: Final = operator.attrgetter("input_index")  # a Member's, without a Python call
 
 
 def _local(pool: TaskPool) -> bool:
