@@ -64,7 +64,7 @@ from seqpipe._dedupe import (
     write_keys,
 )
 from seqpipe._environment import environment, part_environment
-from seqpipe._hashing import hash_file, hash_json
+from seqpipe._hashing import hash_bytes, hash_chunks, hash_file, hash_json
 from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
 from seqpipe._parse import to_plain
 from seqpipe._reuse import VocabSource, adopt_vocabulary, open_vocab_source, reused_entry, vocabulary_fingerprint
@@ -93,7 +93,7 @@ from seqpipe.ingest import (
     train_id_counts,
     write_shard_task,
 )
-from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal_and_dump
+from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, flat_texts, seal_and_dump
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype, read_table, sync_tree, write_table
@@ -494,7 +494,9 @@ def _build(
         layouts = lay_out(recipe, encoded, fitted.dtype, stage, fitted.vocab_size if train_ids is None else None)
         sharded = shard(ctx, layouts, stage, fitted, train_ids)
         count_train_ids(stage, sharded)
-        manifest, text = seal_and_dump(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage, source))
+        body = _manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage, source)
+        texts = _inputs_texts(cache, plan.inputs)
+        manifest, text = seal_and_dump(body, {"inputs": texts} if texts is not None else None)
         publish_dataset(out, stage, manifest, fitted, text)
     except OutputWriteError:
         shutil.rmtree(stage, ignore_errors=True)  # frees the space; the cache keeps what is whole
@@ -752,6 +754,51 @@ def _stored_plan(
         return _Grouped(body["hashes"], sizes, parts)
     except (OSError, ValueError, KeyError, TypeError, IndexError):
         return None  # no plan stored, or not one this build can read: plan again
+
+
+INPUTS_TEXT: Final = "inputs.text"
+# an entry whose texts fingerprint how flat_texts writes one (escapes, key order, indent)
+_PROBE: Final[list[dict[str, Any]]] = [{"path": 'a\\"\u00e9', "bytes": 1, "hash": "0f"}]
+
+
+def _inputs_texts(cache: Path, inputs: Sequence[dict[str, Any]]) -> tuple[bytes, str] | None:
+    """The manifest texts of the inputs (``manifest.flat_texts``), kept in the cache for a rebuild
+    of the same inputs (``inputs.text``: a JSON line naming what they were made from and the
+    hash of the texts, then the texts). A cached rebuild of many small files then escapes and
+    formats none of its inputs' entries again; a file that does not match is made anew."""
+    key = _inputs_key(inputs)
+    path = cache / INPUTS_TEXT
+    try:
+        head, _, payload = path.read_bytes().partition(b"\n")
+        meta = json.loads(head)
+        if meta["key"] == key and meta["hash"] == hash_bytes(payload):
+            cut = int(meta["canonical"])
+            return payload[:cut], payload[cut:].decode("ascii")
+    except (OSError, ValueError, KeyError, TypeError):
+        pass  # none kept, or not for these inputs
+    texts = flat_texts(list(inputs))
+    if texts is not None:
+        payload = texts[0] + texts[1].encode("ascii")
+        head = json.dumps({"key": key, "hash": hash_bytes(payload), "canonical": len(texts[0])}).encode()
+        tmp = cache / f".{INPUTS_TEXT}.tmp"
+        with suppress(OSError):  # a cache that cannot be written is only slower
+            tmp.write_bytes(head + b"\n" + payload)
+            os.replace(tmp, path)
+    return texts
+
+
+def _inputs_key(inputs: Sequence[dict[str, Any]]) -> str:
+    """What the inputs' manifest texts follow from: each entry's path, bytes and hash, and how
+    ``flat_texts`` writes an entry (its texts of a probe entry)."""
+    canonical, indented = flat_texts(_PROBE) or (b"", "")
+    chunks = [
+        canonical,
+        indented.encode("ascii"),
+        "\0".join([e["path"] for e in inputs]).encode(errors="surrogateescape"),
+        "\0".join([e["hash"] for e in inputs]).encode(errors="surrogateescape"),
+        np.array([e["bytes"] for e in inputs], np.int64).tobytes(),
+    ]
+    return hash_chunks([*chunks, np.array([len(c) for c in chunks], np.int64).tobytes()])
 
 
 def _size(f: Path | str, stamp: tuple[int, ...] | None) -> int:

@@ -32,7 +32,7 @@ import json
 import math
 import operator
 import posixpath
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from pathlib import Path, PurePosixPath
 from typing import Any, Final
 
@@ -215,10 +215,25 @@ def _flat_texts(keys: list[str], columns: list[list[str]], indent: str | None) -
     return list(map(template.__mod__, zip(*columns, strict=True)))
 
 
-def seal_and_dump(body: dict[str, Any]) -> tuple[dict[str, Any], str]:
+def flat_texts(entries: Any) -> tuple[bytes, str] | None:
+    """A top-level list of flat entries (objects with the same string keys and only string or int
+    values, such as the inputs) as ``seal_and_dump`` uses it: its canonical JSON (ASCII bytes,
+    hashed) and its indented text as the value of a top-level key (written); None for any other
+    value."""
+    flat = _flat_columns(entries) if type(entries) is list and entries else None
+    if flat is None:
+        return None
+    canonical = ("[" + ",".join(_flat_texts(*flat, None)) + "]").encode("ascii")
+    return canonical, "[\n    " + ",\n    ".join(_flat_texts(*flat, "    ")) + "\n  ]"
+
+
+def seal_and_dump(
+    body: dict[str, Any], known: Mapping[str, tuple[bytes, str]] | None = None
+) -> tuple[dict[str, Any], str]:
     """``seal(body)`` and ``dumps`` of the sealed manifest (the same values and bytes), with each
     top-level list of flat entries (the inputs: a manifest lists every one) escaped once for both
-    its canonical JSON (hashed) and its indented text (written)."""
+    its canonical JSON (hashed) and its indented text (written). ``known``: such texts the caller
+    already has, by key (``flat_texts`` of that very value, e.g. kept from an earlier build)."""
     core = {k: v for k, v in body.items() if k not in ("fingerprint", "manifest_hash")}
     if any(type(k) is not str for k in core):
         sealed = seal(body)
@@ -226,12 +241,11 @@ def seal_and_dump(body: dict[str, Any]) -> tuple[dict[str, Any], str]:
     pieces: dict[str, bytes] = {}
     indented: dict[str, str] = {}
     for k, v in core.items():
-        flat = _flat_columns(v) if type(v) is list and v else None
-        if flat is None:
+        texts = (known or {}).get(k) or flat_texts(v)
+        if texts is None:
             pieces[k] = canonical_json(v).encode("ascii")
             continue
-        pieces[k] = ("[" + ",".join(_flat_texts(*flat, None)) + "]").encode("ascii")
-        indented[k] = "[\n    " + ",\n    ".join(_flat_texts(*flat, "    ")) + "\n  ]"
+        pieces[k], indented[k] = texts
     out = dict(core)
     _add_hashes(out, pieces)
     parts = []

@@ -10,6 +10,7 @@ Layout under the dataset directory::
     .seqpipe/cache/plans.json     cuts of inputs that needed reading to cut, by content hash
     .seqpipe/cache/plan.json      the last build's whole plan, taken while its inputs' listing is unchanged
     .seqpipe/cache/counts.arrow   the last build's corpus counts, taken while its parts and splits are unchanged
+    .seqpipe/cache/inputs.text    the last build's inputs as manifest text, taken while they are unchanged
 
 A build writes only into a new or empty directory or over an earlier seqpipe dataset: it may
 replace what that dataset's manifest lists, nothing else (``check_output``).

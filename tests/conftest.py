@@ -225,12 +225,12 @@ def schema_checked(dumps: Callable[[dict[str, Any]], str]) -> Callable[[dict[str
 
 
 def schema_checked_seal(
-    seal_and_dump: Callable[[dict[str, Any]], tuple[dict[str, Any], str]],
-) -> Callable[[dict[str, Any]], tuple[dict[str, Any], str]]:
+    seal_and_dump: Callable[..., tuple[dict[str, Any], str]],
+) -> Callable[..., tuple[dict[str, Any], str]]:
     """``seal_and_dump`` that checks the sealed manifest against the schema before it is written."""
 
-    def checked(body: dict[str, Any]) -> tuple[dict[str, Any], str]:
-        manifest, text = seal_and_dump(body)
+    def checked(body: dict[str, Any], *args: Any) -> tuple[dict[str, Any], str]:
+        manifest, text = seal_and_dump(body, *args)
         problems = manifest_schema_problems(manifest)
         if problems:
             raise ManifestSchemaError("the build wrote a manifest the schema refuses:\n" + "\n".join(problems))

@@ -663,3 +663,46 @@ def test_small_input_read_equals_the_file_bytes(tmp_path: Path) -> None:
         for listed in (0, max(len(body) - 5, 0), len(body), len(body) + 9):
             data, st = _read_small(str(f), listed)
             assert data == body and st.st_size == len(body)
+
+
+def test_inputs_manifest_text_kept_in_the_cache_is_used_only_for_the_same_inputs(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A rebuild takes the inputs' manifest texts from the cache (inputs.text) instead of writing
+    them again; a damaged file or changed inputs make them anew. Every manifest is byte for byte
+    the one a build without a cache writes (the reference: a fresh build elsewhere)."""
+    import seqpipe._build as driver
+
+    src = tmp_path / "src"
+    recipe_path = _project(src, "[vocabulary]\ncap = 300\n")
+    made: list[int] = []
+    real = driver.flat_texts
+    monkeypatch.setattr(driver, "flat_texts", lambda e: made.append(len(e)) or real(e))
+
+    def fresh_manifest(name: str) -> bytes:
+        build(load_recipe(recipe_path), tmp_path / name, workers=1, progress=False)
+        return (tmp_path / name / "manifest.json").read_bytes()
+
+    out = tmp_path / "out"
+    build(load_recipe(recipe_path), out, workers=1, progress=False)
+    kept = out / ".seqpipe" / "cache" / "inputs.text"
+    assert kept.is_file() and [n for n in made if n > 1] == [2]  # two inputs, written once
+    recipe_path.write_text(recipe_path.read_text(encoding="utf-8").replace("cap = 300", "cap = 280"), encoding="utf-8")
+    made.clear()
+    build(load_recipe(recipe_path), out, workers=1, progress=False)
+    assert [n for n in made if n > 1] == []  # taken from the cache
+    assert (out / "manifest.json").read_bytes() == fresh_manifest("ref1")
+    data = bytearray(kept.read_bytes())
+    data[-5] ^= 1  # a damaged text fails its hash
+    kept.write_bytes(bytes(data))
+    made.clear()
+    build(load_recipe(recipe_path), out, workers=1, progress=False)
+    assert [n for n in made if n > 1] == [2]
+    assert (out / "manifest.json").read_bytes() == fresh_manifest("ref2")
+    with (src / "corpus" / "log-000.txt").open("a", encoding="utf-8") as fh:
+        fh.write("\nthe ferry waited for the tide\n")
+    made.clear()
+    build(load_recipe(recipe_path), out, workers=1, progress=False)
+    assert [n for n in made if n > 1] == [2]
+    assert (out / "manifest.json").read_bytes() == fresh_manifest("ref3")
+    assert verify(out).ok
