@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import dataclasses
 import json
+import operator
 import os
 import shutil
 import stat
@@ -63,7 +64,7 @@ from seqpipe._dedupe import (
     write_keys,
 )
 from seqpipe._environment import environment, part_environment
-from seqpipe._hashing import hash_file, hash_json
+from seqpipe._hashing import hash_bytes, hash_chunks, hash_file, hash_json
 from seqpipe._layout import SplitLayout, lay_out, split_entry, split_summary, write_docs_tables
 from seqpipe._parse import to_plain
 from seqpipe._reuse import VocabSource, adopt_vocabulary, open_vocab_source, reused_entry, vocabulary_fingerprint
@@ -89,16 +90,17 @@ from seqpipe.ingest import (
     part_intact,
     part_key,
     release_encoded,
+    train_id_counts,
     write_shard_task,
 )
-from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, seal
+from seqpipe.manifest import FORMAT, MANIFEST_NAME, MAX_MANIFEST_BYTES, dumps, flat_texts, seal_and_dump
 from seqpipe.progress import enabled
 from seqpipe.recipe import SPLIT_NAMES, Recipe
 from seqpipe.shards import id_dtype, read_table, sync_tree, write_table
 from seqpipe.sources._stream import hold_input, release_inputs
 from seqpipe.sources.base import Part
 from seqpipe.splits import fixed_split_of
-from seqpipe.staging import build_lock, check_output, private_dir, publish
+from seqpipe.staging import build_lock, check_output, private_dir, publish, remember_published
 
 if TYPE_CHECKING:
     from seqpipe.storage import UriStore
@@ -481,15 +483,21 @@ def _build(
         finally:
             release_inputs()
         kept = assign(ctx, plan, ingested, stage)
+        train_ids = None  # the train shards' id counts, when the corpus counts give them
         if source is None:
-            fitted = fit(recipe, count(ctx, plan, ingested, kept, merger), stage, show=ctx.show)
-        else:  # the ids of another dataset: nothing to count or fit
+            counts, train_documents = count(ctx, plan, ingested, kept, merger)
+            fitted = fit(recipe, counts, stage, show=ctx.show)
+            train_ids = train_id_counts(recipe, str(stage), counts, train_documents, fitted.vocab_size)
+        else:  # the ids of another dataset: nothing to count or fit; the shard tasks count the ids
             fitted = reuse(recipe, source, stage)
         encoded = encode(ctx, plan, kept, fitted, stage)
-        sharded = shard(ctx, lay_out(recipe, encoded, fitted.dtype, stage, fitted.vocab_size), stage, fitted)
+        layouts = lay_out(recipe, encoded, fitted.dtype, stage, fitted.vocab_size if train_ids is None else None)
+        sharded = shard(ctx, layouts, stage, fitted, train_ids)
         count_train_ids(stage, sharded)
-        manifest = seal(_manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage, source))
-        publish_dataset(out, stage, manifest, fitted)
+        body = _manifest_body(recipe, plan, ingested, kept, fitted, sharded, stage, source)
+        texts = _inputs_texts(cache, plan.inputs)
+        manifest, text = seal_and_dump(body, {"inputs": texts} if texts is not None else None)
+        publish_dataset(out, stage, manifest, fitted, text)
     except OutputWriteError:
         shutil.rmtree(stage, ignore_errors=True)  # frees the space; the cache keeps what is whole
         raise
@@ -604,7 +612,7 @@ def plan_build(
     hashes = grouped.hashes
     sizes = grouped.sizes
     inputs = tuple(
-        {"path": name, "bytes": sz, "hash": h} for (_, _, name), sz, h in zip(files, sizes, hashes, strict=True)
+        [{"path": name, "bytes": sz, "hash": h} for (_, _, name), sz, h in zip(files, sizes, hashes, strict=True)]
     )
     tasks = tuple(IngestTask(recipe, si, members, key, str(cache)) for si, members, key, _ in grouped.parts)
     weights = tuple(weight for _, _, _, weight in grouped.parts)
@@ -676,7 +684,7 @@ def _listing_key(
     """A fingerprint of what a plan follows from: every input's source, path, recorded name and
     change stamp, and everything a part key holds besides its inputs' hashes (``part_key``);
     None when an input has no stamp from its listing (a URI or a symlink: asked again)."""
-    if any(stamp is None for stamp in stamps):
+    if None in stamps:
         return None
     digest = xxhash.xxh3_128()
     settings = {
@@ -728,12 +736,16 @@ def _stored_plan(
         if body["listing"] != listing:
             return None
         sizes = [stamp[0] for stamp in stamps if stamp is not None]
-        rows = zip(body["inputs"], body["starts"], body["stops"], strict=True)
+        inputs = body["inputs"]
         # most inputs are read whole: one shared (immutable) part for them, not one each
-        members = [
-            Member(i, str(files[i][1]), WHOLE_PART if a == 0 and b is None else Part(a, b), tuple(stamps[i] or ()))
-            for i, a, b in rows
+        whole = WHOLE_PART
+        cuts = [
+            whole if a == 0 and b is None else Part(a, b) for a, b in zip(body["starts"], body["stops"], strict=True)
         ]
+        paths = [str(files[i][1]) for i in inputs]
+        own = [tuple(stamps[i] or ()) for i in inputs]
+        # Member._make without its Python call and length check: each row is a whole member
+        members = list(map(partial(tuple.__new__, Member), zip(inputs, paths, cuts, own, strict=True)))
         parts = []
         at = 0
         for si, key, weight, n in body["parts"]:
@@ -742,6 +754,51 @@ def _stored_plan(
         return _Grouped(body["hashes"], sizes, parts)
     except (OSError, ValueError, KeyError, TypeError, IndexError):
         return None  # no plan stored, or not one this build can read: plan again
+
+
+INPUTS_TEXT: Final = "inputs.text"
+# an entry whose texts fingerprint how flat_texts writes one (escapes, key order, indent)
+_PROBE: Final[list[dict[str, Any]]] = [{"path": 'a\\"\u00e9', "bytes": 1, "hash": "0f"}]
+
+
+def _inputs_texts(cache: Path, inputs: Sequence[dict[str, Any]]) -> tuple[bytes, str] | None:
+    """The manifest texts of the inputs (``manifest.flat_texts``), kept in the cache for a rebuild
+    of the same inputs (``inputs.text``: a JSON line naming what they were made from and the
+    hash of the texts, then the texts). A cached rebuild of many small files then escapes and
+    formats none of its inputs' entries again; a file that does not match is made anew."""
+    key = _inputs_key(inputs)
+    path = cache / INPUTS_TEXT
+    try:
+        head, _, payload = path.read_bytes().partition(b"\n")
+        meta = json.loads(head)
+        if meta["key"] == key and meta["hash"] == hash_bytes(payload):
+            cut = int(meta["canonical"])
+            return payload[:cut], payload[cut:].decode("ascii")
+    except (OSError, ValueError, KeyError, TypeError):
+        pass  # none kept, or not for these inputs
+    texts = flat_texts(list(inputs))
+    if texts is not None:
+        payload = texts[0] + texts[1].encode("ascii")
+        head = json.dumps({"key": key, "hash": hash_bytes(payload), "canonical": len(texts[0])}).encode()
+        tmp = cache / f".{INPUTS_TEXT}.tmp"
+        with suppress(OSError):  # a cache that cannot be written is only slower
+            tmp.write_bytes(head + b"\n" + payload)
+            os.replace(tmp, path)
+    return texts
+
+
+def _inputs_key(inputs: Sequence[dict[str, Any]]) -> str:
+    """What the inputs' manifest texts follow from: each entry's path, bytes and hash, and how
+    ``flat_texts`` writes an entry (its texts of a probe entry)."""
+    canonical, indented = flat_texts(_PROBE) or (b"", "")
+    chunks = [
+        canonical,
+        indented.encode("ascii"),
+        "\0".join([e["path"] for e in inputs]).encode(errors="surrogateescape"),
+        "\0".join([e["hash"] for e in inputs]).encode(errors="surrogateescape"),
+        np.array([e["bytes"] for e in inputs], np.int64).tobytes(),
+    ]
+    return hash_chunks([*chunks, np.array([len(c) for c in chunks], np.int64).tobytes()])
 
 
 def _size(f: Path | str, stamp: tuple[int, ...] | None) -> int:
@@ -941,9 +998,10 @@ def _merge_counted(merger: CountMerger, _: int, counted: tuple[pa.Table, int]) -
     merger.add(counted)
 
 
-def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: CountMerger) -> pa.Table:
+def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: CountMerger) -> tuple[pa.Table, int]:
     """Count the parts not counted at ingest into ``merger``; the corpus-wide ``(key, count)``
-    table in first-occurrence order (taken from the cache when these very parts made it)."""
+    table of the train documents in first-occurrence order (taken from the cache when these very
+    parts made it), and the number of train documents."""
     key = _counts_key(ctx.recipe, plan)
     stored = _stored_counts(ctx.cache, key) if key is not None else None
     if stored is not None:
@@ -962,7 +1020,7 @@ def count(ctx: Context, plan: Plan, ingested: Ingested, kept: Kept, merger: Coun
         raise EmptyCorpusError("the train split is empty: add documents or raise splits.train")
     if stored is None and key is not None:
         _store_counts(ctx.cache, key, counts, train_documents)
-    return counts
+    return counts, train_documents
 
 
 MERGED_COUNTS: Final = "counts.arrow"
@@ -1045,7 +1103,7 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
             str(stage),
             ctx.recipe,
             i,
-            tuple(m.input_index for m in t.members),
+            tuple(map(_INPUT_INDEX, t.members)),
             None,
             fitted.dtype,
             _fixed(ctx.recipe, t),
@@ -1063,17 +1121,23 @@ def encode(ctx: Context, plan: Plan, kept: Kept, fitted: Fitted, stage: Path) ->
     return totals
 
 
+_INPUT_INDEX: Final = operator.attrgetter("input_index")  # a Member's, without a Python call
+
+
 def _local(pool: TaskPool) -> bool:
     """Whether the pool's tasks run in this process (memory handoffs reach them)."""
     return isinstance(pool.executor, (ThreadPoolExecutor, InlineExecutor))
 
 
-def shard(ctx: Context, layouts: Sequence[SplitLayout], stage: Path, fitted: Fitted) -> Sharded:
+def shard(
+    ctx: Context, layouts: Sequence[SplitLayout], stage: Path, fitted: Fitted, train_ids: np.ndarray | None = None
+) -> Sharded:
     """Write every shard (tasks) and, meanwhile in this thread, the documents tables; the train
-    shards' id counts are summed as their tasks finish."""
+    shards' id counts are ``train_ids`` when known, else summed as their tasks finish (tasks
+    laid out to count them)."""
     tasks = [task for layout in layouts for task in layout.shards]
     view = View("writing shards", unit="shard")
-    id_counts = np.zeros(fitted.vocab_size, np.int64)
+    id_counts = np.zeros(fitted.vocab_size, np.int64) if train_ids is None else train_ids
     try:
         results, docs = run_beside(
             ctx.pool.executor,
@@ -1106,8 +1170,9 @@ def _add_id_counts(total: np.ndarray, _: int, result: dict[str, Any]) -> dict[st
 def count_train_ids(stage: Path, sharded: Sharded) -> None:
     """Rewrite the vocabulary's ``count`` column as what it is documented to be: how often each
     id occurs in the train split's shards (reserved tokens and begin/end markers included). The
-    fitted counts are of pieces before encoding (bpe's pre-merge symbols, 0 for reserved tokens);
-    the shard tasks counted their ids while writing them."""
+    fitted counts are of pieces before encoding (bpe's pre-merge symbols, 0 for reserved tokens).
+    The ids' counts come from the corpus piece counts (``ingest.train_id_counts``), or, with a
+    reused vocabulary (nothing counted), from the shard tasks, which counted the ids they wrote."""
     from seqpipe.vocab import Vocabulary
 
     vocab = Vocabulary.load(stage / VOCAB_FILE)
@@ -1172,17 +1237,18 @@ def _manifest_body(
     }
 
 
-def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fitted) -> None:
-    """Write the manifest into the stage and move everything into ``out``, the manifest last."""
-    text = dumps(manifest)
-    if len(text.encode()) > MAX_MANIFEST_BYTES:
+def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fitted, text: str | None = None) -> None:
+    """Write the manifest (``text``: its ``manifest.dumps`` text, when known) into the stage and
+    move everything into ``out``, the manifest last."""
+    data = (dumps(manifest) if text is None else text).encode()
+    if len(data) > MAX_MANIFEST_BYTES:
         raise RecipeError(
             "shards.tokens",
-            f"the manifest would be {len(text.encode())} bytes, over the {MAX_MANIFEST_BYTES} bytes "
+            f"the manifest would be {len(data)} bytes, over the {MAX_MANIFEST_BYTES} bytes "
             "readers accept; raise shards.tokens so there are fewer shards",
         )
     try:
-        (stage / MANIFEST_NAME).write_text(text)
+        (stage / MANIFEST_NAME).write_bytes(data)
     except OSError as exc:
         raise OutputWriteError(f"{stage / MANIFEST_NAME}: cannot write it ({exc})", path=str(stage)) from exc
     entries = [VOCAB_FILE, *fitted.files, DOCS_DIR, SHARDS_DIR]
@@ -1191,6 +1257,7 @@ def publish_dataset(out: Path, stage: Path, manifest: dict[str, Any], fitted: Fi
     sync_tree(stage, [*entries, MANIFEST_NAME], root_dir=False)
     # old entries the new build lacks (tokenizer.arrow) go in publish, after the old manifest
     publish(out, stage, entries, MANIFEST_NAME)
+    remember_published(out, manifest)
     shutil.rmtree(stage, ignore_errors=True)
 
 

@@ -8,6 +8,7 @@ escapes, integers and strings only where fingerprints are concerned. Python's
 from __future__ import annotations
 
 import json
+from collections.abc import Iterable
 from pathlib import Path
 from typing import Any, Final
 
@@ -26,6 +27,14 @@ def canonical_json(obj: Any) -> str:
 def hash_bytes(data: bytes | bytearray | memoryview) -> str:
     """XXH3-128 of ``data`` as 32 lowercase hex digits."""
     return xxhash.xxh3_128_hexdigest(data)
+
+
+def hash_chunks(chunks: Iterable[bytes]) -> str:
+    """``hash_bytes`` of the chunks joined, hashed one after another (never joined in memory)."""
+    digest = xxhash.xxh3_128()
+    for chunk in chunks:
+        digest.update(chunk)
+    return digest.hexdigest()
 
 
 def hash_json(obj: Any) -> str:

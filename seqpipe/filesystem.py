@@ -20,6 +20,7 @@ Local paths keep the calls seqpipe always made (``os.stat``, ``pa.OSFile``,
 from __future__ import annotations
 
 import fnmatch
+import operator
 import os
 import re
 import stat
@@ -389,9 +390,13 @@ def _closure(rest: Sequence[str], states: Iterable[int]) -> frozenset[int]:
     return frozenset(out)
 
 
-def _last_name_matcher(rest: Sequence[str], states: frozenset[int]) -> Callable[[str], bool]:
-    """Whether a name, appended to a path that reached ``states``, completes the match (what
-    ``len(rest) in _advance(rest, states, name)`` says, with the patterns compiled once)."""
+_Entries: TypeAlias = "list[os.DirEntry[str]]"
+
+
+def _last_name_matcher(rest: Sequence[str], states: frozenset[int]) -> Callable[[_Entries], _Entries]:
+    """The entries whose names, appended to a path that reached ``states``, complete the match
+    (what ``len(rest) in _advance(rest, states, name)`` says, with the patterns compiled once),
+    in their order; a directory's files are picked by one call, not one call per name."""
     end = len(rest)
     # a trailing ``**`` the path reached takes any name not hidden
     any_shown = end in states and rest[-1] == "**"
@@ -400,12 +405,12 @@ def _last_name_matcher(rest: Sequence[str], states: frozenset[int]) -> Callable[
     shown = _any_of(heads)
     hidden = _any_of([h for h in heads if h.startswith(".")])
 
-    def last(name: str) -> bool:
-        if name.startswith("."):
-            return hidden(name) is not None
-        return any_shown or shown(name) is not None
+    def pick(entries: _Entries) -> _Entries:
+        if any_shown:
+            return [e for e in entries if not e.name.startswith(".") or hidden(e.name) is not None]
+        return [e for e in entries if (hidden if e.name.startswith(".") else shown)(e.name) is not None]
 
-    return last
+    return pick
 
 
 def _any_of(patterns: Sequence[str]) -> Callable[[str], re.Match[str] | None]:
@@ -426,7 +431,7 @@ class _LocalWalk:
     pattern positions its path reached, so a file's name is matched once, not its whole path.
     """
 
-    __slots__ = ("base", "deep", "files", "hidden", "rest", "seen", "skipped", "stamps")
+    __slots__ = ("base", "deep", "files", "hidden", "pickers", "rest", "seen", "skipped", "stamps")
 
     def __init__(self, base: str, rest: list[str], stamped: bool = False) -> None:
         self.base = base
@@ -437,6 +442,7 @@ class _LocalWalk:
         self.stamps: list[list[int] | None] | None = [] if stamped else None
         self.skipped: list[tuple[str, str]] = []
         self.seen: set[tuple[int, int]] = set()
+        self.pickers: dict[frozenset[int], Callable[[_Entries], _Entries]] = {}
 
     def _may_descend(self, names: list[str]) -> bool:
         if not self.hidden and names[-1].startswith("."):
@@ -448,34 +454,53 @@ class _LocalWalk:
     def walk(
         self, directory: str, names: list[str], ancestors: frozenset[tuple[int, int]], states: frozenset[int]
     ) -> None:
+        # listed through a descriptor where the system allows: each file's lstat is then an
+        # fstatat of its bare name in the open directory, not a lookup of its whole path
         try:
-            with os.scandir(directory) as it:
-                entries = sorted(it, key=_entry_name)
+            fd = os.open(directory, _DIR_FLAGS) if _LIST_BY_FD else None
+        except OSError:
+            return  # unreadable or vanished directory: glob.glob skips it too
+        try:
+            self._walk_listed(directory, fd, names, ancestors, states)
+        finally:
+            if fd is not None:
+                os.close(fd)
+
+    def _walk_listed(
+        self,
+        directory: str,
+        fd: int | None,
+        names: list[str],
+        ancestors: frozenset[tuple[int, int]],
+        states: frozenset[int],
+    ) -> None:
+        try:
+            with os.scandir(directory if fd is None else fd) as it:
+                entries = sorted(it, key=_ENTRY_NAME)
         except OSError:
             return  # unreadable or vanished directory: glob.glob skips it too
         end = len(self.rest)
+        lead = os.path.join(directory, "")
         prefix = "/".join(names) + "/" if names else ""
-        last = _last_name_matcher(self.rest, states)
-        files, stamps = self.files, self.stamps
+        pick = self.pickers.get(states)
+        if pick is None:  # the directories of a tree reach few distinct states: compiled once each
+            pick = self.pickers[states] = _last_name_matcher(self.rest, states)
+        run: list[os.DirEntry[str]] = []  # consecutive plain files, taken together (in order)
         for entry in entries:
             try:  # a symlink is not a file here (the listing's type, no stat)
                 plain_file = entry.is_file(follow_symlinks=False)
             except OSError:
                 plain_file = False
-            if plain_file:  # the common case: one match of the name, a stat only when stamped
-                if last(entry.name):
-                    files.append(prefix + entry.name)
-                    if stamps is not None:  # the file's own lstat: its change_stamp
-                        try:
-                            own = entry.stat(follow_symlinks=False)
-                        except OSError:
-                            stamps.append(None)  # gone meanwhile: asked again, which reports it
-                        else:
-                            stamps.append([own.st_size, own.st_mtime_ns, own.st_ino])
+            if plain_file:  # the common case: matched by name, a stat only when stamped
+                run.append(entry)
                 continue
+            if run:
+                self._take(pick(run), prefix)
+                run = []
             reached = _advance(self.rest, states, entry.name)
             matched = end in reached
-            st = _target_stat(entry.path)
+            path = lead + entry.name  # entry.path is the bare name when listed through a descriptor
+            st = _target_stat(path)
             rel = prefix + entry.name
             if st is None:
                 if matched:
@@ -492,7 +517,7 @@ class _LocalWalk:
                     self.skipped.append((rel, "symlink loop"))
                 elif ident not in self.seen:
                     self.seen.add(ident)
-                    self.walk(entry.path, here, ancestors | {ident}, reached)
+                    self.walk(path, here, ancestors | {ident}, reached)
             elif matched:
                 if stat.S_ISREG(st.st_mode):
                     self.files.append(rel)
@@ -500,10 +525,29 @@ class _LocalWalk:
                         self.stamps.append(None)  # a symlink: its identity and stamp are asked again
                 else:
                     self.skipped.append((rel, _kind_of(st.st_mode)))
+        if run:
+            self._take(pick(run), prefix)
+
+    def _take(self, picked: list[os.DirEntry[str]], prefix: str) -> None:
+        """Add plain files that match (their directory's ``prefix`` joined), with their stamps."""
+        self.files.extend([prefix + e.name for e in picked])
+        stamps = self.stamps
+        if stamps is None:
+            return
+        for e in picked:  # the file's own lstat: its change_stamp
+            try:
+                own = e.stat(follow_symlinks=False)
+            except OSError:
+                stamps.append(None)  # gone meanwhile: asked again, which reports it
+            else:
+                stamps.append([own.st_size, own.st_mtime_ns, own.st_ino])
 
 
-def _entry_name(entry: os.DirEntry[str]) -> str:
-    return entry.name
+_LIST_BY_FD: Final = os.scandir in os.supports_fd
+_DIR_FLAGS: Final = os.O_RDONLY | getattr(os, "O_DIRECTORY", 0) | getattr(os, "O_CLOEXEC", 0)
+
+
+_ENTRY_NAME: Final = operator.attrgetter("name")  # a DirEntry's sort key, without a Python call
 
 
 def glob_local(root: Path, pattern: str, *, stamped: bool = False) -> LocalMatches:
@@ -538,6 +582,7 @@ def glob_local(root: Path, pattern: str, *, stamped: bool = False) -> LocalMatch
         return LocalMatches((), ())
     walk.seen.add((st.st_dev, st.st_ino))
     walk.walk(start, [], frozenset({(st.st_dev, st.st_ino)}), _closure(rest, (0,)))
-    join = (lambda rel: f"{base_rel.rstrip('/')}/{rel}") if base_rel else (lambda rel: rel)
+    lead = base_rel.rstrip("/") + "/" if base_rel else ""
     stamps = tuple(walk.stamps) if walk.stamps is not None else ()
-    return LocalMatches(tuple(join(f) for f in walk.files), tuple((join(p), w) for p, w in walk.skipped), stamps)
+    files = tuple([lead + f for f in walk.files]) if lead else tuple(walk.files)
+    return LocalMatches(files, tuple((lead + p, w) for p, w in walk.skipped), stamps)

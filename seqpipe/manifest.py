@@ -30,11 +30,13 @@ from __future__ import annotations
 
 import json
 import math
+import operator
 import posixpath
+from collections.abc import Iterator, Mapping
 from pathlib import Path, PurePosixPath
 from typing import Any, Final
 
-from seqpipe._hashing import canonical_json, hash_bytes, hash_json
+from seqpipe._hashing import canonical_json, hash_chunks, hash_json
 from seqpipe.errors import ManifestError, UnsafePathError
 from seqpipe.formats import ENVIRONMENT_KEYS
 
@@ -76,16 +78,30 @@ def seal(body: dict[str, Any]) -> dict[str, Any]:
         return out
     # both hashes are of canonical JSON that differs in one top-level key: each value is
     # serialized once and the two texts joined from the pieces (a manifest lists every input)
-    pieces = {k: canonical_json(v) for k, v in core.items()}
-    out["fingerprint"] = hash_bytes(_joined(pieces))
-    pieces["fingerprint"] = canonical_json(out["fingerprint"])
-    out["manifest_hash"] = hash_bytes(_joined(pieces))
+    pieces = {k: canonical_json(v).encode("ascii") for k, v in core.items()}
+    _add_hashes(out, pieces)
     return out
 
 
-def _joined(pieces: dict[str, str]) -> bytes:
-    """The canonical JSON of an object from its values' canonical JSON (``_hashing.canonical_json``)."""
-    return ("{" + ",".join(_ESCAPE(k) + ":" + pieces[k] for k in sorted(pieces)) + "}").encode("ascii")
+def _add_hashes(out: dict[str, Any], pieces: dict[str, bytes]) -> None:
+    """Set ``out``'s fingerprint and manifest_hash from its values' canonical JSON (``pieces``)."""
+    out["fingerprint"] = _joined_hash(pieces)
+    pieces["fingerprint"] = canonical_json(out["fingerprint"]).encode("ascii")
+    out["manifest_hash"] = _joined_hash(pieces)
+
+
+def _joined_hash(pieces: dict[str, bytes]) -> str:
+    """``hash_bytes`` of the canonical JSON of an object from its values' canonical JSON
+    (``_hashing.canonical_json``, ASCII), streamed into the hash rather than joined first."""
+    return hash_chunks(_joined_chunks(pieces))
+
+
+def _joined_chunks(pieces: dict[str, bytes]) -> Iterator[bytes]:
+    yield b"{"
+    for i, k in enumerate(sorted(pieces)):
+        yield (b"," if i else b"") + _ESCAPE(k).encode("ascii") + b":"
+        yield pieces[k]
+    yield b"}"
 
 
 def dumps(manifest: dict[str, Any]) -> str:
@@ -154,20 +170,27 @@ def _indented_dict(obj: dict[Any, Any], indent: str) -> str | None:
 def _flat_entries(entries: list[Any] | tuple[Any, ...], indent: str) -> list[str] | None:
     """A list of objects with the same string keys and only string or int values (a manifest's
     inputs and shards), each written from one template; None for any other list."""
+    flat = _flat_columns(entries)
+    return None if flat is None else _flat_texts(*flat, indent)
+
+
+def _flat_columns(entries: list[Any] | tuple[Any, ...]) -> tuple[list[str], list[list[str]]] | None:
+    """The sorted keys of a list of objects with the same string keys and only string or int
+    values, and each key's values as JSON text, a column at a time (the C escaper mapped over
+    it); None for any other list."""
     first = entries[0]
     if type(first) is not dict or not first or any(type(k) is not str for k in first):
         return None
     keys = sorted(first)
-    inner = indent + "  "
-    template = (
-        "{\n" + inner + (",\n" + inner).join(_ESCAPE(k).replace("%", "%%") + ": %s" for k in keys) + "\n" + indent + "}"
-    )
-    shape = first.keys()
-    if not all(type(entry) is dict and entry.keys() == shape for entry in entries):
+    # the same keys in each: all dicts, all of the first's size, each holding the first's keys
+    if set(map(type, entries)) != {dict} or set(map(len, entries)) != {len(keys)}:
         return None
-    columns = []  # each key's values as JSON text, a column at a time (the C escaper mapped over it)
+    columns = []
     for k in keys:
-        values = [entry[k] for entry in entries]
+        try:
+            values = list(map(operator.itemgetter(k), entries))
+        except KeyError:
+            return None
         kinds = set(map(type, values))
         if kinds == {str}:
             columns.append(list(map(_ESCAPE, values)))
@@ -177,7 +200,61 @@ def _flat_entries(entries: list[Any] | tuple[Any, ...], indent: str) -> list[str
             columns.append([_ESCAPE(v) if type(v) is str else int.__repr__(v) for v in values])
         else:
             return None
+    return keys, columns
+
+
+def _flat_texts(keys: list[str], columns: list[list[str]], indent: str | None) -> list[str]:
+    """Each entry's text from the columns: as ``dumps`` writes it at ``indent``, or (None) as
+    canonical JSON."""
+    names = [_ESCAPE(k).replace("%", "%%") for k in keys]
+    if indent is None:
+        template = "{" + ",".join(name + ":%s" for name in names) + "}"
+    else:
+        inner = indent + "  "
+        template = "{\n" + inner + (",\n" + inner).join(name + ": %s" for name in names) + "\n" + indent + "}"
     return list(map(template.__mod__, zip(*columns, strict=True)))
+
+
+def flat_texts(entries: Any) -> tuple[bytes, str] | None:
+    """A top-level list of flat entries (objects with the same string keys and only string or int
+    values, such as the inputs) as ``seal_and_dump`` uses it: its canonical JSON (ASCII bytes,
+    hashed) and its indented text as the value of a top-level key (written); None for any other
+    value."""
+    flat = _flat_columns(entries) if type(entries) is list and entries else None
+    if flat is None:
+        return None
+    canonical = ("[" + ",".join(_flat_texts(*flat, None)) + "]").encode("ascii")
+    return canonical, "[\n    " + ",\n    ".join(_flat_texts(*flat, "    ")) + "\n  ]"
+
+
+def seal_and_dump(
+    body: dict[str, Any], known: Mapping[str, tuple[bytes, str]] | None = None
+) -> tuple[dict[str, Any], str]:
+    """``seal(body)`` and ``dumps`` of the sealed manifest (the same values and bytes), with each
+    top-level list of flat entries (the inputs: a manifest lists every one) escaped once for both
+    its canonical JSON (hashed) and its indented text (written). ``known``: such texts the caller
+    already has, by key (``flat_texts`` of that very value, e.g. kept from an earlier build)."""
+    core = {k: v for k, v in body.items() if k not in ("fingerprint", "manifest_hash")}
+    if any(type(k) is not str for k in core):
+        sealed = seal(body)
+        return sealed, dumps(sealed)
+    pieces: dict[str, bytes] = {}
+    indented: dict[str, str] = {}
+    for k, v in core.items():
+        texts = (known or {}).get(k) or flat_texts(v)
+        if texts is None:
+            pieces[k] = canonical_json(v).encode("ascii")
+            continue
+        pieces[k], indented[k] = texts
+    out = dict(core)
+    _add_hashes(out, pieces)
+    parts = []
+    for k in sorted(out):
+        text = indented[k] if k in indented else _indented(out[k], "  ")
+        if text is None:
+            return out, dumps(out)
+        parts.append(_ESCAPE(k) + ": " + text)
+    return out, "{\n  " + ",\n  ".join(parts) + "\n}\n"
 
 
 def _depth(obj: Any, level: int = 0) -> int:

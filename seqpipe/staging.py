@@ -10,6 +10,7 @@ Layout under the dataset directory::
     .seqpipe/cache/plans.json     cuts of inputs that needed reading to cut, by content hash
     .seqpipe/cache/plan.json      the last build's whole plan, taken while its inputs' listing is unchanged
     .seqpipe/cache/counts.arrow   the last build's corpus counts, taken while its parts and splits are unchanged
+    .seqpipe/cache/inputs.text    the last build's inputs as manifest text, taken while they are unchanged
 
 A build writes only into a new or empty directory or over an earlier seqpipe dataset: it may
 replace what that dataset's manifest lists, nothing else (``check_output``).
@@ -60,7 +61,7 @@ def _listed_paths(node: Any, into: set[str]) -> None:
                     into.add(head)
             else:
                 _listed_paths(value, into)
-    elif isinstance(node, list):
+    elif isinstance(node, (list, tuple)):  # (a manifest built in memory may hold tuples)
         for value in node:
             _listed_paths(value, into)
 
@@ -95,6 +96,11 @@ def _manifest_entries(manifest: Path) -> frozenset[str] | None:
         data = json.loads(manifest.read_text())
     except (OSError, ValueError):
         return None
+    return _remember(manifest, stamp, data)
+
+
+def _remember(manifest: Path, stamp: tuple[int, int, int], data: Any) -> frozenset[str] | None:
+    """The entries ``data`` (a manifest's JSON) lists, remembered for ``manifest`` at ``stamp``."""
     into: set[str] = set()
     listed: frozenset[str] | None = None
     if isinstance(data, dict) and str(data.get("format", "")).startswith("seqpipe"):
@@ -103,6 +109,15 @@ def _manifest_entries(manifest: Path) -> frozenset[str] | None:
     _LISTED.clear()  # one manifest remembered: builds go one output at a time
     _LISTED[str(manifest)] = (stamp, listed)
     return listed
+
+
+def remember_published(out: Path, manifest: dict[str, Any], manifest_name: str = MANIFEST_NAME) -> None:
+    """Remember the entries of the manifest this process just published in ``out`` (its JSON as
+    written), so the next build into ``out`` in this process need not read it back to know them."""
+    path = out / manifest_name
+    with suppress(OSError):
+        st = os.stat(path)
+        _remember(path, (st.st_size, st.st_mtime_ns, st.st_ino), manifest)
 
 
 def check_output(out: Path, also: Sequence[str] = ()) -> None:

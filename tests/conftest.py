@@ -224,15 +224,31 @@ def schema_checked(dumps: Callable[[dict[str, Any]], str]) -> Callable[[dict[str
     return checked
 
 
+def schema_checked_seal(
+    seal_and_dump: Callable[..., tuple[dict[str, Any], str]],
+) -> Callable[..., tuple[dict[str, Any], str]]:
+    """``seal_and_dump`` that checks the sealed manifest against the schema before it is written."""
+
+    def checked(body: dict[str, Any], *args: Any) -> tuple[dict[str, Any], str]:
+        manifest, text = seal_and_dump(body, *args)
+        problems = manifest_schema_problems(manifest)
+        if problems:
+            raise ManifestSchemaError("the build wrote a manifest the schema refuses:\n" + "\n".join(problems))
+        return manifest, text
+
+    return checked
+
+
 @pytest.fixture(autouse=True, scope="session")
 def _manifests_follow_the_schema(tmp_path_factory: pytest.TempPathFactory) -> Iterator[None]:
     """Every manifest a build writes in this session passes the JSON Schema (see above)."""
     import seqpipe._build
 
-    original = seqpipe._build.dumps
-    seqpipe._build.dumps = schema_checked(original)
+    original, original_seal = seqpipe._build.dumps, seqpipe._build.seal_and_dump
+    seqpipe._build.dumps = schema_checked(original)  # (the build writes through either)
+    seqpipe._build.seal_and_dump = schema_checked_seal(original_seal)
     yield
-    seqpipe._build.dumps = original
+    seqpipe._build.dumps, seqpipe._build.seal_and_dump = original, original_seal
     _, problems = unschematic_manifests(tmp_path_factory.getbasetemp())
     if problems:
         pytest.fail("manifests the reader accepts but the schema refuses:\n" + "\n".join(problems[:20]))

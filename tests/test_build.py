@@ -515,6 +515,50 @@ def test_vocabulary_count_column_is_the_train_shards_id_count(tmp_path: Path, to
     assert verify(out).ok
 
 
+HELD_OUT_SOURCE = """
+[[sources]]
+kind = "text"
+paths = "held/*.txt"
+document = "paragraph"
+fixed_split = "validation"
+"""
+
+
+@pytest.mark.parametrize(
+    ("tokenizer", "extra", "held_out"),
+    [
+        ("words", '[vocabulary]\nmin_count = 3\ncap = CAP\n[[clean]]\nkind = "dedupe"\n', False),
+        ("bpe", '[vocabulary]\ncap = CAP\n[encode]\nprepend_begin = true\n[[clean]]\nkind = "dedupe"\n', False),
+        ("words", "[vocabulary]\ncap = CAP\n[splits]\nexclude_overlap_from_train = true\n", True),
+    ],
+    ids=["words-dedupe-unknowns", "bpe-dedupe", "words-held-out-overlap"],
+)
+def test_vocabulary_count_column_with_documents_dropped_and_from_the_cache(
+    tmp_path: Path, tokenizer: str, extra: str, held_out: bool
+) -> None:
+    """The ``count`` column (taken from the corpus piece counts, not the shards) is still np.bincount
+    over the train shards when documents are dropped after ingest (exact duplicates, train documents
+    a held-out source also holds), when some pieces are unknown, and in a rebuild whose parts and
+    counts come from the cache with another vocabulary."""
+    src = tmp_path / "src"
+    recipe_path = _project(src, extra.replace("CAP", "320") + (HELD_OUT_SOURCE if held_out else ""), tokenizer)
+    shutil.copy(src / "corpus" / "log-000.txt", src / "corpus" / "log-009.txt")  # every paragraph twice
+    if held_out:
+        (src / "held").mkdir()
+        shutil.copy(src / "corpus" / "log-001.txt", src / "held" / "copy.txt")
+    out = tmp_path / "out"
+    first = build(load_recipe(recipe_path), out, workers=1, progress=False)
+    dropped = first.manifest["summary"]["duplicates_dropped"] + first.manifest["summary"]["train_overlap"]["removed"]
+    assert dropped > 0, "the corpus was meant to drop documents after ingest"
+    assert open_dataset(out).vocabulary.counts.tolist() == _train_bincount(out).tolist()
+    text = recipe_path.read_text(encoding="utf-8")
+    recipe_path.write_text(text.replace("cap = 320", "cap = 290"), encoding="utf-8")
+    again = build(load_recipe(recipe_path), out, workers=1, progress=False)
+    assert again.parts_reused == again.parts_total and again.fingerprint != first.fingerprint
+    assert open_dataset(out).vocabulary.counts.tolist() == _train_bincount(out).tolist()
+    assert verify(out).ok
+
+
 def test_unknown_rate_has_one_definition_in_summary_and_report(tmp_path: Path) -> None:
     """The build summary and the report give the same unknown rate per split: unknown tokens over
     content tokens (begin/end markers left out), recomputed here from the shards."""
@@ -619,3 +663,46 @@ def test_small_input_read_equals_the_file_bytes(tmp_path: Path) -> None:
         for listed in (0, max(len(body) - 5, 0), len(body), len(body) + 9):
             data, st = _read_small(str(f), listed)
             assert data == body and st.st_size == len(body)
+
+
+def test_inputs_manifest_text_kept_in_the_cache_is_used_only_for_the_same_inputs(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A rebuild takes the inputs' manifest texts from the cache (inputs.text) instead of writing
+    them again; a damaged file or changed inputs make them anew. Every manifest is byte for byte
+    the one a build without a cache writes (the reference: a fresh build elsewhere)."""
+    import seqpipe._build as driver
+
+    src = tmp_path / "src"
+    recipe_path = _project(src, "[vocabulary]\ncap = 300\n")
+    made: list[int] = []
+    real = driver.flat_texts
+    monkeypatch.setattr(driver, "flat_texts", lambda e: made.append(len(e)) or real(e))
+
+    def fresh_manifest(name: str) -> bytes:
+        build(load_recipe(recipe_path), tmp_path / name, workers=1, progress=False)
+        return (tmp_path / name / "manifest.json").read_bytes()
+
+    out = tmp_path / "out"
+    build(load_recipe(recipe_path), out, workers=1, progress=False)
+    kept = out / ".seqpipe" / "cache" / "inputs.text"
+    assert kept.is_file() and [n for n in made if n > 1] == [2]  # two inputs, written once
+    recipe_path.write_text(recipe_path.read_text(encoding="utf-8").replace("cap = 300", "cap = 280"), encoding="utf-8")
+    made.clear()
+    build(load_recipe(recipe_path), out, workers=1, progress=False)
+    assert [n for n in made if n > 1] == []  # taken from the cache
+    assert (out / "manifest.json").read_bytes() == fresh_manifest("ref1")
+    data = bytearray(kept.read_bytes())
+    data[-5] ^= 1  # a damaged text fails its hash
+    kept.write_bytes(bytes(data))
+    made.clear()
+    build(load_recipe(recipe_path), out, workers=1, progress=False)
+    assert [n for n in made if n > 1] == [2]
+    assert (out / "manifest.json").read_bytes() == fresh_manifest("ref2")
+    with (src / "corpus" / "log-000.txt").open("a", encoding="utf-8") as fh:
+        fh.write("\nthe ferry waited for the tide\n")
+    made.clear()
+    build(load_recipe(recipe_path), out, workers=1, progress=False)
+    assert [n for n in made if n > 1] == [2]
+    assert (out / "manifest.json").read_bytes() == fresh_manifest("ref3")
+    assert verify(out).ok

@@ -64,7 +64,8 @@ def test_a_part_is_ingested_counted_and_encoded(tmp_path: Path) -> None:
     assert [m.documents for m in ingested.parts] == [len(DOCS)]
     assert load_part_meta(str(ctx.cache), plan.tasks[0].key) == ingested.parts[0]
     kept = assign(ctx, plan, ingested, tmp_path / "stage")
-    counts = count(ctx, plan, ingested, kept, merger)
+    counts, train_documents = count(ctx, plan, ingested, kept, merger)
+    assert train_documents == len(DOCS)
     want = collections.Counter(w for d in DOCS for w in d.split())
     assert counts.column("key").to_pylist() == [w.encode() for w in want]  # Counter keeps first-seen order
     assert counts.column("count").to_pylist() == list(want.values())

@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 
 from seqpipe._hashing import hash_json
 from seqpipe.errors import ManifestError, SeqpipeError, UnsafePathError
-from seqpipe.manifest import FORMAT, dumps, read_manifest, safe_relative, seal, validate
+from seqpipe.manifest import FORMAT, dumps, read_manifest, safe_relative, seal, seal_and_dump, validate
 
 HEX = "0" * 32
 
@@ -219,3 +219,31 @@ def test_seal_hashes_the_canonical_json_of_the_body_then_of_body_and_fingerprint
     sealed = seal(body)
     assert (sealed["fingerprint"], sealed["manifest_hash"]) == (want_fp, want_mh)
     assert {k: v for k, v in sealed.items() if k not in ("fingerprint", "manifest_hash")} == core
+
+
+_FLAT_LISTS = st.lists(
+    st.fixed_dictionaries(
+        {"path": st.text(max_size=6), "bytes": st.integers(0, 2**40), "hash": st.text("0123456789abcdef", max_size=4)}
+    )
+    | st.fixed_dictionaries({"%s": st.integers(-3, 3) | st.text(max_size=3), "é": st.booleans()}),
+    min_size=1,
+    max_size=4,
+)
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.dictionaries(_JSON_KEYS | st.just("inputs") | st.just("fingerprint"), _FLAT_LISTS | _JSON_TREES, max_size=6))
+def test_seal_and_dump_gives_what_seal_then_dumps_give(body: dict[str, Any]) -> None:
+    """seal_and_dump (top-level lists of flat entries escaped once for both texts) returns seal's
+    manifest and dumps' bytes of it, and raises what they raise; the reference is seal + dumps,
+    themselves checked above against hash_json and json.dumps."""
+    try:
+        sealed = seal(body)
+        want = dumps(sealed)
+    except ValueError:
+        with pytest.raises(ValueError, match="JSON compliant"):
+            seal_and_dump(body)
+        return
+    got, text = seal_and_dump(body)
+    assert got == sealed and list(got) == list(sealed)
+    assert text == want

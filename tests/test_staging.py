@@ -232,3 +232,31 @@ def test_owned_entries_follow_a_replaced_manifest(tmp_path: Path) -> None:
     assert owned_entries(tmp_path) == {"vocab.arrow", "manifest.json"}
     put({"format": "other"})
     assert owned_entries(tmp_path) is None
+
+
+def test_the_published_manifest_is_remembered_as_its_file_would_be_read(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """After a build publishes, the entries remembered for its manifest are those reading the file
+    gives (the summary's list of skipped matches included); a rebuild
+    in this process then does not parse the manifest to check its output directory, and a
+    manifest changed on disk is read again."""
+    from conftest import build_dir, write_project
+
+    recipe = write_project(tmp_path / "src", files=2, paragraphs=5)
+    (tmp_path / "src" / "corpus" / "sub.txt").mkdir()  # a skipped match listed in the summary
+    out = build_dir(recipe, tmp_path / "out")
+    remembered = staging._LISTED[str(out / "manifest.json")][1]
+    staging._LISTED.clear()
+    read = staging.owned_entries(out)
+    assert read is not None and remembered is not None and read == remembered | {"manifest.json"}
+    build_dir(recipe, out)
+    parsed: list[str] = []
+    real_loads = json.loads
+    monkeypatch.setattr(staging.json, "loads", lambda text, *a, **k: parsed.append("x") or real_loads(text, *a, **k))
+    assert staging.owned_entries(out) == read
+    assert parsed == []
+    text = (out / "manifest.json").read_text()
+    (out / "manifest.json").write_text(text.replace('"format"', '"format" ', 1))
+    staging.owned_entries(out)
+    assert parsed == ["x"]

@@ -154,13 +154,14 @@ def _one_walk(
     is one pass (a corpus of many files)."""
     keys = matches.files
     order = sorted(range(len(keys)), key=keys.__getitem__)  # the walk's order is nearly sorted
-    ordered = [keys[i] for i in order]
+    walked = order == list(range(len(keys)))  # often sorted already: no reordering then
+    ordered = keys if walked else [keys[i] for i in order]
     lead = top if top.endswith("/") else top + "/"
     files: list[SourcePath] = [key if key.startswith("/") else lead + key for key in ordered]
     under = _prefix(base)
     cut = len(under)
-    names = tuple(key[cut:] if under and key.startswith(under) else _recorded_name(key, base) for key in ordered)
-    stamps = tuple(matches.stamps[i] for i in order) if stamped else ()
+    names = tuple([key[cut:] if under and key.startswith(under) else _recorded_name(key, base) for key in ordered])
+    stamps = (matches.stamps if walked else tuple([matches.stamps[i] for i in order])) if stamped else ()
     return Resolved(files, skipped, names, stamps)
 
 
