@@ -8,6 +8,7 @@ escapes, integers and strings only where fingerprints are concerned. Python's
 from __future__ import annotations
 
 import json
+import os
 from collections.abc import Iterable
 from pathlib import Path
 from typing import Any, Final
@@ -65,20 +66,19 @@ def hash_stream(stream: pa.NativeFile, block: int = BLOCK) -> str:
 def hash_file(path: str | Path, block: int = BLOCK) -> str:
     """XXH3-128 of a file's bytes.
 
-    A local file is hashed straight from a memory map (no copy into a buffer), or read in
-    large blocks where it cannot be mapped. A filesystem URI (see
+    A local file is hashed straight from memory maps of ``block`` bytes at a time (no copy into
+    a buffer; each window unmapped before the next, so the pages of a large file do not all count
+    in this process's resident memory at once), or read in blocks of ``block`` bytes where it
+    cannot be mapped. A filesystem URI (see
     :mod:`seqpipe.filesystem`) is streamed through pyarrow in blocks of ``block`` bytes;
     a file that is gone is a SourceMissingError, one that cannot be read a SourceError.
     """
-    import mmap
-
     from seqpipe import filesystem
 
     if filesystem.is_uri(path):
         return _hash_uri(str(path), block)
     try:
-        with open(path, "rb") as src, mmap.mmap(src.fileno(), 0, access=mmap.ACCESS_READ) as mapped:
-            return xxhash.xxh3_128_hexdigest(mapped)
+        return _hash_mapped(path, block)
     except (ValueError, OSError):  # an empty file cannot be mapped; some filesystems refuse
         pass
     h = xxhash.xxh3_128()
@@ -90,6 +90,25 @@ def hash_file(path: str | Path, block: int = BLOCK) -> str:
             if not n:
                 break
             h.update(view[:n])
+    return h.hexdigest()
+
+
+def _hash_mapped(path: str | Path, block: int) -> str:
+    """XXH3-128 of a local file hashed through read-only memory maps of ``block`` bytes (rounded
+    up to the mapping granularity), one after another; the same digest as one map of the whole
+    file."""
+    import mmap
+
+    window = -(-max(block, 1) // mmap.ALLOCATIONGRANULARITY) * mmap.ALLOCATIONGRANULARITY
+    h = xxhash.xxh3_128()
+    with open(path, "rb") as src:
+        size = os.fstat(src.fileno()).st_size
+        if size == 0:
+            raise ValueError("an empty file cannot be mapped")
+        for offset in range(0, size, window):
+            length = min(window, size - offset)
+            with mmap.mmap(src.fileno(), length, access=mmap.ACCESS_READ, offset=offset) as mapped:
+                h.update(mapped)
     return h.hexdigest()
 
 

@@ -57,3 +57,25 @@ def test_block_path_hashes_only_the_bytes_read(tmp_path, monkeypatch, size: int)
     p = tmp_path / "f.bin"
     p.write_bytes(data)
     assert hash_file(p, block=4096) == hash_bytes(data)
+
+
+@pytest.mark.parametrize("extra", [-1, 0, 1, 4097])
+def test_file_hashed_through_bounded_maps(tmp_path, monkeypatch, extra: int) -> None:  # type: ignore[no-untyped-def]
+    """A file longer than the block is hashed through several maps of at most one (granularity-
+    rounded) block each, and the streamed digest equals xxhash's one-shot digest of all the bytes
+    (the streaming and one-shot XXH3 forms give one result: the xxHash specification)."""
+    window = mmap.ALLOCATIONGRANULARITY
+    data = np.random.default_rng(extra + 2).integers(0, 256, 3 * window + extra, dtype=np.uint8).tobytes()
+    p = tmp_path / "f.bin"
+    p.write_bytes(data)
+    lengths: list[int] = []
+    real = mmap.mmap
+
+    def recording(fileno: int, length: int, *args: object, **kwargs: object) -> mmap.mmap:
+        lengths.append(length)
+        return real(fileno, length, *args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(mmap, "mmap", recording)
+    assert hash_file(p, block=window) == xxhash.xxh3_128_hexdigest(data)
+    assert lengths and max(lengths) <= window
+    assert sum(lengths) == len(data)
