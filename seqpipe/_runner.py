@@ -18,7 +18,7 @@ from dataclasses import dataclass
 from typing import Any, Final, TypeVar
 
 from seqpipe.errors import WorkerError
-from seqpipe.executors import settle_remote_worker, task_slots
+from seqpipe.executors import return_freed_memory, settle_remote_worker, task_slots
 from seqpipe.progress import bar
 
 WORKER_DIED: Final = (
@@ -164,6 +164,7 @@ def run_beside(
                 fut.cancel()
             wait(list(futures))
             raise
+    return_freed_memory()  # what this phase's tasks freed here, before the next phase starts
     return results, beside
 
 

@@ -247,3 +247,32 @@ def test_terminated_build_cleans_up_like_an_interrupt(tmp_path: Path) -> None:
         pytest.skip("the build finished before the signal arrived")
     assert code == 143
     assert _wait_for(lambda: not any(_alive(k) for k in kids), 60), [k for k in kids if _alive(k)]
+
+
+_FREED = """
+import re
+from pathlib import Path
+from seqpipe.executors import return_freed_memory
+
+def anon():
+    return int(re.search(r"RssAnon:\\s+(\\d+)", Path("/proc/self/status").read_text()).group(1))
+
+blocks = [bytearray(64 << 10) for _ in range(1024)]  # 64 MiB of heap blocks, each written
+del blocks[:-1]  # all freed but the last, which keeps the heap's top where it is
+before = anon()
+return_freed_memory()
+print(before - anon())
+"""
+
+
+@pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="reads RssAnon from Linux's /proc")
+def test_freed_heap_pages_go_back_to_the_kernel() -> None:
+    """Blocks below glibc's mmap threshold (128 KiB by default) come from the heap; freed in its
+    middle, their pages stay resident until ``malloc_trim`` hands back the whole free pages
+    (glibc's malloc_trim(3) manual page, since glibc 2.8). In a fresh interpreter, so the heap
+    holds what the test put there."""
+    if sys.platform != "linux" or not os.confstr("CS_GNU_LIBC_VERSION"):
+        pytest.skip("malloc_trim is glibc's")
+    env = dict(os.environ, PYTHONPATH=str(REPO))
+    done = subprocess.run([sys.executable, "-c", _FREED], env=env, capture_output=True, text=True, check=True)
+    assert int(done.stdout.strip()) >= 48 << 10  # KiB: most of the 64 MiB freed
