@@ -162,16 +162,16 @@ def _bounds(docs: pa.Array, data: np.ndarray, offsets: np.ndarray) -> tuple[np.n
     np.greater(inside[:-1], inside[1:], out=edge[:-1])
     last = offsets[1:][offsets[1:] > offsets[:-1]] - 1
     edge[last] = inside[last]
-    return starts, np.flatnonzero(edge) + 1
+    ends = np.flatnonzero(edge)
+    ends += 1  # in place: no second array of a position per word
+    return starts, ends
 
 
-def _keys(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
-    """Per word: its 64-bit key (see the module docstring)."""
-    padded = np.zeros(len(data) + 8, dtype=np.uint8)
-    padded[: len(data)] = data
+def _keys(padded: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
+    """Per word: its 64-bit key (see the module docstring); ``padded``, the batch's bytes and
+    eight zero bytes (:attr:`Wide.padded`)."""
     # every byte position read as the start of a little-endian uint64 (overlapping, no copy)
-    eight = np.ndarray((len(data),), dtype="<u8", buffer=padded, strides=(1,))
-    width = np.minimum(sizes, _PACKED)
+    eight = np.ndarray((len(padded) - 8,), dtype="<u8", buffer=padded, strides=(1,))
     # fancy indexing, not np.take: np.take copies a strided view whole first (DEVELOPERS.md)
     keys: np.ndarray = eight[starts]
     long = np.flatnonzero(sizes > _PACKED)
@@ -180,17 +180,20 @@ def _keys(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray
         last = eight[starts[long] + sizes[long] - 8]
         with np.errstate(over="ignore"):
             mixed = mix64(keys[long] ^ mix64(last * _LAST_MIX + sizes[long].astype(np.uint64)))
+    width = np.minimum(sizes, _PACKED)
     keys &= np.take(LOW_BYTES, width)
-    keys |= width.astype(np.uint64) << np.uint64(56)
+    np.left_shift(width, 56, out=width)  # in place: the length in the top byte
+    keys |= width.view(np.uint64)
     if len(long):
         keys[long] = _LONG | (mixed & _HASH_BITS)
     return keys
 
 
-def _chars(wide: Wide, starts: np.ndarray, ends: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Per word: its code points, that is its bytes less those after the first of each code
-    point beyond ASCII (few in most text); per such code point, the word holding it or -1."""
-    chars: np.ndarray = ends - starts
+def _chars(wide: Wide, starts: np.ndarray, ends: np.ndarray, sizes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per word: its code points, that is its bytes (``sizes``, turned into the code points in
+    place) less those after the first of each code point beyond ASCII (few in most text); per
+    such code point, the word holding it or -1."""
+    chars = sizes
     word = np.full(len(wide.at), -1, dtype=np.int64)
     if len(wide.at) and len(starts):
         word = np.searchsorted(starts, wide.at, side="right") - 1
@@ -213,5 +216,7 @@ def _cut(docs: pa.Array) -> WordTable:
     starts, ends = _bounds(docs, data, offsets)
     first = np.searchsorted(starts, offsets).astype(np.int64)
     doc = np.repeat(np.arange(len(docs), dtype=np.int64), np.diff(first))
-    chars, wide_word = _chars(wide, starts, ends)
-    return WordTable(data, starts, ends, doc, first, _keys(data, starts, ends - starts), chars, wide, wide_word)
+    sizes = ends - starts
+    keys = _keys(wide.padded, starts, sizes)
+    chars, wide_word = _chars(wide, starts, ends, sizes)  # sizes become the code points
+    return WordTable(data, starts, ends, doc, first, keys, chars, wide, wide_word)
