@@ -49,6 +49,7 @@ class WordTable:
     wide: Wide  # the batch's code points beyond ASCII
     wide_word: np.ndarray  # int64, per code point of ``wide``: the word holding it, or -1 (whitespace)
     exact_codes: np.ndarray | None = None  # filled by the ``codes`` property when first asked
+    char_sums: np.ndarray | None = None  # filled by ``chars_per_document`` when first asked
 
     @property
     def documents(self) -> int:
@@ -60,8 +61,17 @@ class WordTable:
         out = np.zeros(self.documents, dtype=np.int64)
         filled = self.first[1:] > self.first[:-1]
         if filled.any():
-            out[filled] = np.add.reduceat(np.asarray(values, dtype=np.int64), self.first[:-1][filled])
+            # summed in int64 as read (no int64 copy of a bool or int32 array first)
+            out[filled] = np.add.reduceat(values, self.first[:-1][filled], dtype=np.int64)
         return out
+
+    @property
+    def chars_per_document(self) -> np.ndarray:
+        """Code points in words per document (int64); made once and kept (two measures read it)."""
+        if self.char_sums is None:
+            object.__setattr__(self, "char_sums", self.per_document(self.chars))
+        assert self.char_sums is not None
+        return self.char_sums
 
     def count(self) -> np.ndarray:
         """Words per document."""

@@ -151,8 +151,9 @@ class RepeatedNgrams(QualityFilter):
         """Per document: characters in repeated n-grams / word characters."""
         table = word_table(docs)
         covered = covered_by_repeats(table.doc, table.keys, self.n, table.exact)
-        inside = table.per_document(np.where(covered, table.chars, 0))
-        return share(inside.astype(np.float64), table.per_document(table.chars).astype(np.float64))
+        held = np.flatnonzero(covered)  # few words: summed per document by their document index
+        inside = np.bincount(table.doc[held], weights=table.chars[held], minlength=table.documents)
+        return share(inside, table.chars_per_document.astype(np.float64))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
         """Boolean mask: True for each document ``apply`` keeps."""
