@@ -32,6 +32,8 @@ _HASH_BITS: Final = np.uint64((1 << 56) - 1)  # a longer word's key: its hash be
 _LAST_MIX: Final = np.uint64(0x9E3779B97F4A7C15)  # odd: spreads the last eight bytes before mixing
 # per length 0-7: the mask of that many low bytes
 LOW_BYTES: Final = np.array([(1 << (8 * k)) - 1 for k in range(_PACKED + 1)], dtype=np.uint64)
+# per length 0-7: that length in the top byte
+_LENGTH_BYTE: Final = np.array([k << 56 for k in range(_PACKED + 1)], dtype=np.uint64)
 
 
 @dataclass(frozen=True, slots=True)
@@ -190,10 +192,10 @@ def _keys(padded: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarr
         last = eight[starts[long] + sizes[long] - 8]
         with np.errstate(over="ignore"):
             mixed = mix64(keys[long] ^ mix64(last * _LAST_MIX + sizes[long].astype(np.uint64)))
-    width = np.minimum(sizes, _PACKED)
-    keys &= np.take(LOW_BYTES, width)
-    np.left_shift(width, 56, out=width)  # in place: the length in the top byte
-    keys |= width.view(np.uint64)
+    # per word its low-byte mask and its length byte, from tables by length (mode="clip": a
+    # longer word reads the entries of length 7, and its key is replaced below)
+    keys &= np.take(LOW_BYTES, sizes, mode="clip")
+    keys |= np.take(_LENGTH_BYTE, sizes, mode="clip")
     if len(long):
         keys[long] = _LONG | (mixed & _HASH_BITS)
     return keys
