@@ -484,3 +484,22 @@ def test_per_document_sum_in_32_and_64_bits_equals_a_sum_per_range(monkeypatch: 
     assert _quality.per_document_sum(flags, offsets).tolist() == expected
     monkeypatch.setattr(_quality, "_SUM32_BYTES", 0)
     assert _quality.per_document_sum(flags, offsets).tolist() == expected
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    docs=st.lists(st.text(alphabet=st.sampled_from(list("abcdefgh \n")), max_size=30), max_size=5),
+    offset=st.integers(0, 3),
+)
+def test_short_word_keys_are_their_bytes_up_to_the_batch_end(docs: list[str], offset: int) -> None:
+    """A word of one to seven ASCII bytes has as key its bytes with its length above them (the
+    packing the module docstring states), the batch's last word and a sliced array included;
+    a longer word's key has the top byte 0xFF."""
+    from seqpipe.clean._word_table import pack_ascii, word_table
+
+    table = word_table(pa.array(["pad words"] * offset + docs, pa.large_string()).slice(offset))
+    want = [w for d in docs for w in d.split()]
+    keys = table.keys.tolist()
+    assert len(keys) == len(want)
+    for word, key in zip(want, keys, strict=True):
+        assert key == (int(pack_ascii([word])[0]) if len(word) <= 7 else key | (0xFF << 56)), word

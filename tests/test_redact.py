@@ -416,16 +416,64 @@ def test_email_search_from_the_next_at_sign_equals_a_full_scan(text: str) -> Non
     )
 )
 def test_byte_prefilter_marks_every_document_a_hint_matches(docs: list[str]) -> None:
-    """The numpy byte prefilter is a necessary condition: every document in which RE2 finds a
-    chosen target's hint is marked (with each target alone and all together)."""
-    from seqpipe.clean.redact import _HINTS, TARGETS, may_hint
+    """The numpy byte prefilter is a necessary condition: every document in which the regex
+    engine finds a chosen target's hint is marked for that target (with each target alone and
+    all together, as ``hinted``'s column and as ``may_hint``)."""
+    from seqpipe.clean.redact import _HINTS, TARGETS, hinted, may_hint
 
     arr = pa.array(docs, pa.large_string())
-    for targets in [*((t,) for t in TARGETS), TARGETS]:
+    for targets in [*((t,) for t in TARGETS), TARGETS, ("phone", "card")]:
         marked = may_hint(arr, targets)
-        for doc, mark in zip(docs, marked, strict=True):
-            if any(regex.search(_HINTS[t], doc) for t in targets):
-                assert mark, (targets, doc)
+        flags = hinted(arr, targets)
+        assert flags.shape == (len(docs), len(targets))
+        for doc, mark, row in zip(docs, marked, flags, strict=True):
+            holds = [regex.search(_HINTS[t], doc) is not None for t in targets]
+            assert mark == row.any(), (targets, doc)
+            assert all(f or not h for f, h in zip(row, holds, strict=True)), (targets, doc, row, holds)
+
+
+@pytest.mark.parametrize(
+    ("text", "target", "expected"),
+    [
+        # card hint: 13 digits, at most one space or dash between neighbours (common practice
+        # for the printed groups of ISO/IEC 7812 numbers)
+        ("4111 1111 1111 1", "card", True),
+        ("4111 1111 1111 ", "card", False),  # 12 digits
+        ("4111  1111 1111 1", "card", False),  # two spaces between two digits
+        ("4111.1111-1111-1", "card", False),  # a dot is no card separator
+        # phone's third alternative: digit, separator, 2-4 digits, separator, digit
+        ("0161 496 0123", "phone", True),
+        ("1 2345 6", "phone", True),
+        ("1 23456 7", "phone", False),  # five digits in the middle group
+        ("1 2 34", "phone", False),  # one digit in the middle group
+        ("7 12,5", "phone", False),  # a comma is no separator
+        ("x+4", "phone", True),
+        ("(5", "phone", True),
+        ("x@y", "email", True),
+        ("x@-y", "email", False),
+        ("1.22.3.4", "ip", True),
+        ("a:bc:d", "ip", True),
+        ("a:bcdef:", "ip", False),  # six characters between the colons
+    ],
+)
+def test_byte_prefilter_on_worked_examples(text: str, target: str, expected: bool) -> None:
+    """Hand-made documents around each hint's edges, alone in a batch (where nothing after the
+    text can add a needless mark) and between two plain documents; the regex engine agrees."""
+    from seqpipe.clean.redact import _HINTS, hinted
+
+    assert (regex.search(_HINTS[target], text) is not None) == expected
+    for docs in ([text], ["plain words", text, "more plain words"]):
+        flags = hinted(pa.array(docs, pa.large_string()), (target,))[:, 0]
+        assert flags[docs.index(text)] == expected, docs
+        assert not flags[[i for i, d in enumerate(docs) if d != text]].any()
+
+
+def test_byte_prefilter_never_marks_a_null_document() -> None:
+    """A null document is never matched (its bytes, if any, are no text)."""
+    from seqpipe.clean.redact import TARGETS, hinted
+
+    arr = pa.array(["x@y.example", None, "call 0161 496 0123"], pa.large_string())
+    assert hinted(arr, TARGETS).any(axis=1).tolist() == [True, False, True]
 
 
 @settings(max_examples=200, deadline=None)

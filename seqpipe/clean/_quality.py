@@ -93,12 +93,15 @@ def _asked(distinct: np.ndarray, kernel: Callable[[pa.Array], pa.Array]) -> np.n
 @dataclass(frozen=True, slots=True)
 class Wide:
     """A batch's code points beyond ASCII: the position of each one's first byte, its size in
-    bytes, and the distinct code points (in no set order) with, per position, its index among them."""
+    bytes, and the distinct code points (in no set order) with, per position, its index among them;
+    and the batch's bytes followed by eight zero bytes (``padded``: one copy of the batch that
+    overlapping multi-byte reads share)."""
 
     at: np.ndarray
     size: np.ndarray
     distinct: np.ndarray
     inverse: np.ndarray
+    padded: np.ndarray
 
     def classify(self, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
         """Per position: ``kernel``'s answer for its code point (asked once per distinct one)."""
@@ -133,14 +136,15 @@ def wide_code_points(docs: pa.Array) -> Wide:
     # each code point's bytes read as one little-endian uint32 (equal exactly for equal code
     # points), numbered by Arrow's hash table: a batch holds few distinct code points among
     # many positions (no sort); only the distinct ones are decoded
-    padded = np.zeros(len(data) + 4, dtype=np.uint8)
+    padded = np.empty(len(data) + 8, dtype=np.uint8)
     padded[: len(data)] = data
+    padded[len(data) :] = 0
     four = np.ndarray((len(data),), dtype="<u4", buffer=padded, strides=(1,))
     raw = four[at] & np.take(_SEQUENCE_MASK, size)  # fancy indexing on a strided view (DEVELOPERS.md)
     encoded = pc.dictionary_encode(pa.array(raw, pa.uint32()))
     distinct = np.ascontiguousarray(encoded.dictionary.to_numpy(zero_copy_only=False), dtype="<u4")
     points = code_points(distinct.view(np.uint8), np.arange(len(distinct), dtype=np.int64) * 4)
-    wide = Wide(at, size, points, np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64))
+    wide = Wide(at, size, points, np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64), padded)
     last.docs, last.wide = docs, wide
     return wide
 
@@ -165,8 +169,13 @@ def in_runs(data: np.ndarray, runs: tuple[tuple[int, int], ...]) -> np.ndarray:
     times cheaper than a table look-up per byte, which numpy makes with an index array of
     eight bytes per byte."""
     out = np.zeros(len(data), dtype=bool)
+    # two scratch arrays for all runs: each new array of a batch's size costs page faults
+    shifted = np.empty(len(data), dtype=np.uint8)
+    inside = np.empty(len(data), dtype=bool)
     for first, last in runs:
-        out |= np.subtract(data, np.uint8(first), dtype=np.uint8) <= np.uint8(last - first)
+        np.subtract(data, np.uint8(first), out=shifted, dtype=np.uint8)
+        np.less_equal(shifted, np.uint8(last - first), out=inside)
+        out |= inside
     return out
 
 

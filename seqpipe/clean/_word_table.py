@@ -32,6 +32,8 @@ _HASH_BITS: Final = np.uint64((1 << 56) - 1)  # a longer word's key: its hash be
 _LAST_MIX: Final = np.uint64(0x9E3779B97F4A7C15)  # odd: spreads the last eight bytes before mixing
 # per length 0-7: the mask of that many low bytes
 LOW_BYTES: Final = np.array([(1 << (8 * k)) - 1 for k in range(_PACKED + 1)], dtype=np.uint64)
+# per length 0-7: that length in the top byte
+_LENGTH_BYTE: Final = np.array([k << 56 for k in range(_PACKED + 1)], dtype=np.uint64)
 
 
 @dataclass(frozen=True, slots=True)
@@ -49,6 +51,7 @@ class WordTable:
     wide: Wide  # the batch's code points beyond ASCII
     wide_word: np.ndarray  # int64, per code point of ``wide``: the word holding it, or -1 (whitespace)
     exact_codes: np.ndarray | None = None  # filled by the ``codes`` property when first asked
+    char_sums: np.ndarray | None = None  # filled by ``chars_per_document`` when first asked
 
     @property
     def documents(self) -> int:
@@ -60,8 +63,17 @@ class WordTable:
         out = np.zeros(self.documents, dtype=np.int64)
         filled = self.first[1:] > self.first[:-1]
         if filled.any():
-            out[filled] = np.add.reduceat(np.asarray(values, dtype=np.int64), self.first[:-1][filled])
+            # summed in int64 as read (no int64 copy of a bool or int32 array first)
+            out[filled] = np.add.reduceat(values, self.first[:-1][filled], dtype=np.int64)
         return out
+
+    @property
+    def chars_per_document(self) -> np.ndarray:
+        """Code points in words per document (int64); made once and kept (two measures read it)."""
+        if self.char_sums is None:
+            object.__setattr__(self, "char_sums", self.per_document(self.chars))
+        assert self.char_sums is not None
+        return self.char_sums
 
     def count(self) -> np.ndarray:
         """Words per document."""
@@ -162,16 +174,16 @@ def _bounds(docs: pa.Array, data: np.ndarray, offsets: np.ndarray) -> tuple[np.n
     np.greater(inside[:-1], inside[1:], out=edge[:-1])
     last = offsets[1:][offsets[1:] > offsets[:-1]] - 1
     edge[last] = inside[last]
-    return starts, np.flatnonzero(edge) + 1
+    ends = np.flatnonzero(edge)
+    ends += 1  # in place: no second array of a position per word
+    return starts, ends
 
 
-def _keys(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
-    """Per word: its 64-bit key (see the module docstring)."""
-    padded = np.zeros(len(data) + 8, dtype=np.uint8)
-    padded[: len(data)] = data
+def _keys(padded: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
+    """Per word: its 64-bit key (see the module docstring); ``padded``, the batch's bytes and
+    eight zero bytes (:attr:`Wide.padded`)."""
     # every byte position read as the start of a little-endian uint64 (overlapping, no copy)
-    eight = np.ndarray((len(data),), dtype="<u8", buffer=padded, strides=(1,))
-    width = np.minimum(sizes, _PACKED)
+    eight = np.ndarray((len(padded) - 8,), dtype="<u8", buffer=padded, strides=(1,))
     # fancy indexing, not np.take: np.take copies a strided view whole first (DEVELOPERS.md)
     keys: np.ndarray = eight[starts]
     long = np.flatnonzero(sizes > _PACKED)
@@ -180,17 +192,20 @@ def _keys(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray
         last = eight[starts[long] + sizes[long] - 8]
         with np.errstate(over="ignore"):
             mixed = mix64(keys[long] ^ mix64(last * _LAST_MIX + sizes[long].astype(np.uint64)))
-    keys &= np.take(LOW_BYTES, width)
-    keys |= width.astype(np.uint64) << np.uint64(56)
+    # per word its low-byte mask and its length byte, from tables by length (mode="clip": a
+    # longer word reads the entries of length 7, and its key is replaced below)
+    keys &= np.take(LOW_BYTES, sizes, mode="clip")
+    keys |= np.take(_LENGTH_BYTE, sizes, mode="clip")
     if len(long):
         keys[long] = _LONG | (mixed & _HASH_BITS)
     return keys
 
 
-def _chars(wide: Wide, starts: np.ndarray, ends: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Per word: its code points, that is its bytes less those after the first of each code
-    point beyond ASCII (few in most text); per such code point, the word holding it or -1."""
-    chars: np.ndarray = ends - starts
+def _chars(wide: Wide, starts: np.ndarray, ends: np.ndarray, sizes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per word: its code points, that is its bytes (``sizes``, turned into the code points in
+    place) less those after the first of each code point beyond ASCII (few in most text); per
+    such code point, the word holding it or -1."""
+    chars = sizes
     word = np.full(len(wide.at), -1, dtype=np.int64)
     if len(wide.at) and len(starts):
         word = np.searchsorted(starts, wide.at, side="right") - 1
@@ -213,5 +228,7 @@ def _cut(docs: pa.Array) -> WordTable:
     starts, ends = _bounds(docs, data, offsets)
     first = np.searchsorted(starts, offsets).astype(np.int64)
     doc = np.repeat(np.arange(len(docs), dtype=np.int64), np.diff(first))
-    chars, wide_word = _chars(wide, starts, ends)
-    return WordTable(data, starts, ends, doc, first, _keys(data, starts, ends - starts), chars, wide, wide_word)
+    sizes = ends - starts
+    keys = _keys(wide.padded, starts, sizes)
+    chars, wide_word = _chars(wide, starts, ends, sizes)  # sizes become the code points
+    return WordTable(data, starts, ends, doc, first, keys, chars, wide, wide_word)

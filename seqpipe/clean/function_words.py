@@ -24,6 +24,7 @@ _TRIMMED: Final = "\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d"  # stripped from bo
 _ASCII_TRIMMED: Final = np.isin(np.arange(256), [ord(c) for c in _TRIMMED if c.isascii()])
 _HIGH_BITS: Final = np.uint64(0x0080_8080_8080_8080)
 _PLUS_3F: Final = np.uint64(0x003F_3F3F_3F3F_3F3F)  # per byte b < 0x80: b + 0x3F has its high bit iff b >= "A"
+_CASE_BITS: Final = np.uint64(0x0020_2020_2020_2020)  # the case bit of each of the seven low bytes
 _PLUS_25: Final = np.uint64(0x0025_2525_2525_2525)  # per byte b < 0x80: b + 0x25 has its high bit iff b > "Z"
 
 
@@ -70,8 +71,14 @@ def _sure_flags(table: WordTable, language: str) -> np.ndarray:
     too (a subset of its flags): a code equal to a lower-cased function word's is a short ASCII
     word (``_ascii_lower`` leaves a byte's high bit and the code's top byte as they are, and
     longer words' keys have the top byte 0xFF), and a word of letters has nothing to strip."""
-    wanted = pack_ascii([w for w in FUNCTION_WORDS[language] if w.isascii() and len(w) <= 7])
-    out: np.ndarray = np.isin(_ascii_lower(table.keys), wanted)
+    listed = [w for w in FUNCTION_WORDS[language] if w.isascii() and len(w) <= 7]
+    if not all(w.isalpha() and w.islower() for w in listed):
+        out: np.ndarray = np.isin(_ascii_lower(table.keys), pack_ascii(listed))
+        return out
+    # lower-case letters only: a byte b matches such a letter c exactly when b | 0x20 == c (c or
+    # its upper case; no other byte), and the bytes past a packed word are 0 in both codes, so
+    # one OR of 0x20 into the seven low bytes of both sides stands for _ascii_lower
+    out = np.isin(table.keys | _CASE_BITS, pack_ascii(listed) | _CASE_BITS)
     return out
 
 

@@ -54,7 +54,9 @@ class LetterShare(QualityFilter):
         # ones (b | 0x20 is a-z exactly for A-Z and a-z) and the code points beyond ASCII that
         # RE2 calls letters (asked once per distinct one)
         visible = np.diff(offsets) - per_document_sum(in_runs(data, RE2_SPACE_RUNS), offsets)
-        ascii_letter = np.subtract(data | np.uint8(0x20), np.uint8(ord("a")), dtype=np.uint8) <= np.uint8(25)
+        folded = data | np.uint8(0x20)
+        folded -= np.uint8(ord("a"))  # in place (wraps below "a")
+        ascii_letter = folded <= np.uint8(25)
         letters = per_document_sum(ascii_letter, offsets)
         wide = wide_code_points(docs)
         if len(wide.at):

@@ -27,7 +27,7 @@ Each match becomes its target's placeholder (``<email>``, ``<ip>``, ``<card>``, 
 A recipe with this step must list the placeholders in ``[vocabulary] reserved`` and set
 ``[tokenizer] literal_reserved = true`` so each placeholder is one id whatever the tokenizer
 (checked by :class:`seqpipe.recipe.Recipe`). Matching runs once per document (the ``regex``
-module, in C) and only on documents that an RE2 pass over the whole batch finds holding a
+module, in C) and only on documents that a numpy pass over the batch's bytes finds holding a
 necessary part of some target (``_HINTS``), and there only for the targets whose part it holds.
 """
 
@@ -88,7 +88,7 @@ _PHONE: Final = (
 )
 _DATE: Final = regex.compile(r"[0-9]{4}([.\-])[0-9]{1,2}\1[0-9]{1,2}|[0-9]{1,2}([.\-])[0-9]{1,2}\2[0-9]{4}")
 
-# Per target, an RE2 pattern every match of the target's pattern contains (a necessary
+# Per target, a pattern every match of the target's pattern contains (a necessary
 # condition, looser than the pattern): documents matching none of the chosen targets' hints
 # cannot change, so only the others go through the Python-level matching below.
 #   email: the "@" and the first character of the domain's first label;
@@ -97,6 +97,8 @@ _DATE: Final = regex.compile(r"[0-9]{4}([.\-])[0-9]{1,2}\1[0-9]{1,2}|[0-9]{1,2}(
 #   card: 13 digits with at most one space or dash between neighbours;
 #   phone: the three alternatives begin "+digit", "(digit" or hold digit, separator, 2-4 digits,
 #       separator, digit.
+# :func:`hinted` finds them (or a little more) over the batch's bytes with numpy; the patterns
+# here are their definition, which the tests check it against.
 _HINTS: Final[dict[str, str]] = {
     "email": r"@[A-Za-z0-9]",
     "ip": r"[0-9]\.[0-9]{1,3}\.[0-9]{1,3}\.[0-9]|:[0-9A-Fa-f]{0,4}:",
@@ -104,21 +106,85 @@ _HINTS: Final[dict[str, str]] = {
     "phone": r"\+[0-9]|\([0-9]|[0-9][ .\-][0-9]{2,4}[ .\-][0-9]",
 }
 
-_DIGIT_GAP: Final = 24  # the card hint's 13 digits, at most one separator between two, span at most 25 bytes
+
+def _byte(data: np.ndarray, at: np.ndarray, k: int) -> np.ndarray:
+    """The byte ``k`` after each position of ``at`` (clipped to ``data``: a byte read past an end
+    is the byte at that end, which can only add a needless mark)."""
+    where = np.minimum(at + k, len(data) - 1) if k > 0 else np.maximum(at + k, 0)
+    out: np.ndarray = np.take(data, where)
+    return out
 
 
-def may_hint(docs: pa.Array, targets: tuple[str, ...]) -> np.ndarray:
-    """Per document: False when it surely matches none of the ``targets``' hints (``_HINTS``).
+def _is_digit(b: np.ndarray) -> np.ndarray:
+    out: np.ndarray = np.subtract(b, ord("0"), dtype=np.uint8) < 10
+    return out
 
-    Each hint needs a short byte pattern that numpy finds over the batch's UTF-8 bytes in a few
-    passes (RE2 scans every byte of text whose hints start with a digit class): email an "@";
-    ip a digit, "." and a digit, or two ":" at most five bytes apart; card 13 digits within 25
-    bytes; phone a digit after "+" or "(", or a digit, a separator of ``[ .-]`` and two digits.
-    A pattern found across two documents marks one of them needlessly, never misses one."""
+
+def _is_one_of(b: np.ndarray, chars: bytes) -> np.ndarray:
+    """Per byte: whether it is one of ``chars`` (a compare per character; np.isin sorts)."""
+    out: np.ndarray = np.zeros(len(b), dtype=bool)
+    for c in chars:
+        out |= b == c
+    return out
+
+
+def _is_sep(b: np.ndarray) -> np.ndarray:
+    return _is_one_of(b, b" .-")
+
+
+def _followed(data: np.ndarray, at: np.ndarray, k: int, test: Callable[[np.ndarray], np.ndarray]) -> np.ndarray:
+    """The positions of ``at`` whose byte ``k`` after passes ``test``."""
+    out: np.ndarray = at[test(_byte(data, at, k))]
+    return out
+
+
+def _email_at(data: np.ndarray, at_sign: np.ndarray) -> np.ndarray:
+    """The "@" followed by an ASCII letter or digit."""
+    after = _byte(data, at_sign, 1)
+    ok = np.subtract(after | np.uint8(0x20), ord("a"), dtype=np.uint8) < 26
+    ok |= _is_digit(after)
+    out: np.ndarray = at_sign[ok]
+    return out
+
+
+def _card_at(data: np.ndarray, digit: np.ndarray) -> np.ndarray:
+    """The first of 13 digits in a row with at most one space or dash between neighbours."""
+    if len(digit) < 13:
+        return digit[:0]
+    gap = np.diff(digit)
+    ok = gap == 1  # next to each other, or one space or dash between
+    two = np.flatnonzero(gap == 2)
+    ok[two] = _is_one_of(np.take(data, digit[two] + 1), b" -")
+    run = np.zeros(len(ok) + 1, dtype=np.int32)
+    np.cumsum(ok, out=run[1:])
+    out: np.ndarray = digit[: len(digit) - 12][run[12:] - run[:-12] == 12]
+    return out
+
+
+def _phone_at(data: np.ndarray, digit: np.ndarray, after: np.ndarray) -> np.ndarray:
+    """The digits after "+" or "(", and those followed by a separator, two to four digits, a
+    separator and a digit (``after``: the byte after each digit). Each next byte is read only
+    at the positions that passed the ones before."""
+    lead = _followed(data, digit, -1, lambda b: _is_one_of(b, b"+("))
+    two = digit[_is_one_of(after, b" .-")]
+    two = _followed(data, _followed(data, two, 2, _is_digit), 3, _is_digit)
+    found = [lead]
+    for size in (2, 3, 4):  # the middle group's digits
+        found.append(_followed(data, _followed(data, two, 2 + size, _is_sep), 3 + size, _is_digit))
+        if size < 4:
+            two = _followed(data, two, 2 + size, _is_digit)
+    return np.concatenate(found)
+
+
+def hinted(docs: pa.Array, targets: tuple[str, ...]) -> np.ndarray:
+    """Per document (rows) and target of ``targets`` (columns): False when the document surely
+    holds no match of the target's hint (``_HINTS``), found over the batch's UTF-8 bytes with
+    numpy. One scan marks the bytes the hints start from (digits, "@", ":"); email is then an
+    "@" and a letter or digit; ip a digit, "." and a digit, or two ":" at most five bytes apart;
+    card and phone exactly their hints. A hint found across two documents marks one of them
+    needlessly, never misses one; a null document is never marked."""
     data, offsets = utf8_buffers(docs)
-    at: list[np.ndarray] = []
     wants_digits = bool({"ip", "card", "phone"} & set(targets))
-    # one scan of the bytes for every byte any chosen hint starts from, then split by value
     scan = np.subtract(data, ord("0"), dtype=np.uint8) < 10 if wants_digits else np.zeros(len(data), dtype=bool)
     if "email" in targets:
         scan |= data == ord("@")
@@ -126,41 +192,29 @@ def may_hint(docs: pa.Array, targets: tuple[str, ...]) -> np.ndarray:
         scan |= data == ord(":")
     found = np.flatnonzero(scan)
     value = np.take(data, found)
-    if "email" in targets:
-        at.append(found[value == ord("@")])
-    if "ip" in targets:
-        colon = found[value == ord(":")]
-        at.append(colon[:-1][np.diff(colon) <= 5])
-    if wants_digits:
-        digit = found[np.subtract(value, ord("0"), dtype=np.uint8) < 10]
-        last = max(len(data) - 1, 0)
+    digit = found[np.subtract(value, ord("0"), dtype=np.uint8) < 10] if wants_digits else found[:0]
+    after = _byte(data, digit, 1)
+    out = np.zeros((len(docs), len(targets)), dtype=bool)
+    for column, target in enumerate(targets):
+        if target == "email":
+            at = _email_at(data, found[value == ord("@")])
+        elif target == "ip":
+            colon = found[value == ord(":")]
+            dotted = _followed(data, digit[after == ord(".")], 2, _is_digit)
+            at = np.concatenate([colon[:-1][np.diff(colon) <= 5], dotted])
+        elif target == "card":
+            at = _card_at(data, digit)
+        else:
+            at = _phone_at(data, digit, after)
+        out[np.searchsorted(offsets, at, side="right") - 1, column] = True
+    if docs.null_count:
+        out &= np.asarray(docs.is_valid().to_numpy(zero_copy_only=False), dtype=bool)[:, None]
+    return out
 
-        def byte(k: int) -> np.ndarray:  # the byte k after each digit (clipped: a needless mark at most)
-            out: np.ndarray = np.take(data, np.clip(digit + k, 0, last))
-            return out
 
-        def is_digit(k: int) -> np.ndarray:
-            out: np.ndarray = np.subtract(byte(k), ord("0"), dtype=np.uint8) < 10
-            return out
-
-        def is_one_of(k: int, chars: bytes) -> np.ndarray:  # a compare per character (np.isin sorts)
-            b = byte(k)
-            out: np.ndarray = np.zeros(len(b), dtype=bool)
-            for c in chars:
-                out |= b == c
-            return out
-
-        if "ip" in targets:
-            at.append(digit[(byte(1) == ord(".")) & is_digit(2)])
-        if "card" in targets:
-            at.append(digit[:-12][digit[12:] - digit[:-12] <= _DIGIT_GAP])
-        if "phone" in targets:
-            sep = is_one_of(1, b" .-")
-            before = is_one_of(-1, b"+(")
-            at.append(digit[before | (sep & is_digit(2) & is_digit(3))])
-    out = np.zeros(len(docs), dtype=bool)
-    marked = np.concatenate(at) if at else np.zeros(0, np.int64)
-    out[np.searchsorted(offsets, marked, side="right") - 1] = True
+def may_hint(docs: pa.Array, targets: tuple[str, ...]) -> np.ndarray:
+    """Per document: False when it surely matches none of the ``targets``' hints (``_HINTS``)."""
+    out: np.ndarray = np.any(hinted(docs, targets), axis=1)
     return out
 
 
@@ -280,25 +334,17 @@ class Redact(CleanStep):
         """Documents with every match replaced, and how many matches each target had."""
         docs = as_documents(docs)
         totals = dict.fromkeys(self.targets, 0)
-        hint = "|".join(_HINTS[t] for t in self.targets)
-        where = np.flatnonzero(may_hint(docs, self.targets))  # RE2 asked only where a hint may be
-        if len(where):
-            found = pc.fill_null(pc.match_substring_regex(docs.take(pa.array(where)), hint), False)
-            where = where[np.asarray(found.to_numpy(zero_copy_only=False), dtype=bool)]
+        # which targets' hints each document may hold: a target whose hint a document lacks is not
+        # matched there (the placeholders written before it hold no character of a later target's
+        # hint, so replacing cannot make one appear)
+        flags = hinted(docs, self.targets)
+        where = np.flatnonzero(flags.any(axis=1))
         if not len(where):
             return docs, totals
         held = docs.take(pa.array(where))
-        # which targets' hints each of those documents holds: a target whose hint a document
-        # lacks is not matched there (the placeholders written before it hold no character of
-        # a later target's hint, so replacing cannot make one appear)
-        hinted = [
-            np.asarray(pc.fill_null(pc.match_substring_regex(held, _HINTS[t]), False).to_numpy(zero_copy_only=False))
-            for t in self.targets
-        ]
-        chosen = np.stack(hinted, axis=1).tolist()
         changed: list[str] = []
-        for text, flags in zip(held.to_pylist(), chosen, strict=True):
-            out, counts = redact_text(text, tuple(t for t, f in zip(self.targets, flags, strict=True) if f))
+        for text, chosen in zip(held.to_pylist(), flags[where].tolist(), strict=True):
+            out, counts = redact_text(text, tuple(t for t, f in zip(self.targets, chosen, strict=True) if f))
             changed.append(out)
             for target, n in counts.items():
                 totals[target] += n

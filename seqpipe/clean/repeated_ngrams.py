@@ -48,16 +48,21 @@ def _windows_of_repeated_words(doc: np.ndarray, keys: np.ndarray, n: int) -> np.
     A hash of (document, key) per word is counted per bucket of its top bits, the words left
     per bucket of the bits below those: equal pairs share every bucket, so a word that occurs
     twice is never ruled out (most words of prose occur once in their document)."""
+    h = doc.astype(np.uint64)  # the one new array per word: the steps below work in place
     with np.errstate(over="ignore"):
-        h = (np.ascontiguousarray(keys).view(np.uint64) + doc.astype(np.uint64) * _MULTIPLIER) * _MULTIPLIER
+        h *= _MULTIPLIER
+        h += np.ascontiguousarray(keys).view(np.uint64)
+        h *= _MULTIPLIER
     bits = _bucket_bits(len(h))
-    buckets = (h >> np.uint64(64 - bits)).astype(np.intp)
-    maybe = np.bincount(buckets, minlength=1 << bits)[buckets] > 1
+    buckets = np.right_shift(h, np.uint64(64 - bits)).view(np.intp)  # below 2**24: the same bits
+    maybe = np.take(np.bincount(buckets, minlength=1 << bits), buckets) > 1
     left = np.flatnonzero(maybe)
     if len(left):
         low = _bucket_bits(len(left))
-        buckets = ((h[left] >> np.uint64(64 - bits - low)) & np.uint64((1 << low) - 1)).astype(np.intp)
-        maybe[left] = np.bincount(buckets, minlength=1 << low)[buckets] > 1
+        buckets = np.take(h, left)
+        buckets >>= np.uint64(64 - bits - low)
+        buckets &= np.uint64((1 << low) - 1)
+        maybe[left] = np.take(np.bincount(buckets.view(np.intp), minlength=1 << low), buckets.view(np.intp)) > 1
     run = np.zeros(len(h) + 1, dtype=np.int32)
     np.cumsum(maybe, out=run[1:])
     out: np.ndarray = np.flatnonzero(run[n:] - run[:-n] == n)  # n flagged words in a row
@@ -146,8 +151,9 @@ class RepeatedNgrams(QualityFilter):
         """Per document: characters in repeated n-grams / word characters."""
         table = word_table(docs)
         covered = covered_by_repeats(table.doc, table.keys, self.n, table.exact)
-        inside = table.per_document(np.where(covered, table.chars, 0))
-        return share(inside.astype(np.float64), table.per_document(table.chars).astype(np.float64))
+        held = np.flatnonzero(covered)  # few words: summed per document by their document index
+        inside = np.bincount(table.doc[held], weights=table.chars[held], minlength=table.documents)
+        return share(inside, table.chars_per_document.astype(np.float64))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
         """Boolean mask: True for each document ``apply`` keeps."""

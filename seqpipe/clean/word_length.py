@@ -41,7 +41,7 @@ class WordLength(QualityFilter):
     def measure(self, docs: pa.Array) -> np.ndarray:
         """Per document: mean code points per word (0 without words)."""
         table = word_table(docs)
-        return share(table.per_document(table.chars).astype(np.float64), table.count().astype(np.float64))
+        return share(table.chars_per_document.astype(np.float64), table.count().astype(np.float64))
 
     def keep(self, docs: pa.Array) -> np.ndarray:
         """Boolean mask: True for each document ``apply`` keeps."""
