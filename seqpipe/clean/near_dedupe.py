@@ -27,7 +27,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import code_points, mix64, space_bytes, utf8_buffers
+from seqpipe.clean._quality import SPACE_RUNS, byte_runs, code_points, in_runs, mix64, utf8_buffers
 from seqpipe.clean.base import CleanStep, as_documents
 from seqpipe.errors import RecipeError
 
@@ -122,17 +122,6 @@ def _powers(count: int) -> tuple[np.ndarray, np.ndarray]:
     return kept.powers, kept.inverse
 
 
-def _byte_runs(flags: np.ndarray) -> tuple[tuple[int, int], ...]:
-    """The runs (first, last) of byte values whose flag is set."""
-    edges = np.flatnonzero(np.diff(np.r_[0, flags.astype(np.int8), 0]))
-    return tuple(zip(edges[0::2].tolist(), (edges[1::2] - 1).tolist(), strict=True))
-
-
-# ASCII whitespace as space_bytes sees it (bytes 9-13 and 28-32); a byte of 0x80 or more is part of
-# a multi-byte code point, which _space_bytes classifies as space_bytes does
-_SPACE_RUNS: Final = _byte_runs(space_bytes(pa.array(["".join(map(chr, range(128)))], pa.large_string())))
-
-
 @dataclass(frozen=True, slots=True)
 class _WideSpaces:
     """The whitespace code points beyond ASCII, as pyarrow's ``utf8_is_space`` sees them, and
@@ -170,23 +159,18 @@ def _wide_spaces() -> _WideSpaces:
         found = cps[np.asarray(pc.utf8_is_space(chars).to_numpy(zero_copy_only=False), dtype=bool)]
         leads = np.zeros(256, dtype=bool)
         leads[[chr(c).encode("utf-8")[0] for c in found.tolist()]] = True
-        _WIDE_SPACES.append(_WideSpaces(np.sort(found), _byte_runs(leads)))
+        _WIDE_SPACES.append(_WideSpaces(np.sort(found), byte_runs(leads)))
     return _WIDE_SPACES[0]
 
 
-def _space_bytes(docs: pa.Array, data: np.ndarray) -> np.ndarray:
-    """``_quality.space_bytes`` (per byte of ``docs``' UTF-8 ``data``: part of a whitespace code
+def _space_bytes(data: np.ndarray) -> np.ndarray:
+    """``_quality.space_bytes`` (per byte of a batch's UTF-8 ``data``: part of a whitespace code
     point, as pyarrow's ``utf8_is_space`` sees it), with a compare per run of byte values instead
     of a table look-up per byte: the single-byte whitespace directly, and beyond ASCII only the
     code points whose first byte can start a whitespace one are decoded and looked up."""
-    space = np.zeros(len(data), dtype=bool)
-    for first, last in _SPACE_RUNS:  # (byte - first) wraps below first: one compare per run
-        space |= (data - np.uint8(first)) <= np.uint8(last - first)
+    space = in_runs(data, SPACE_RUNS)
     wide = _wide_spaces()
-    maybe = np.zeros(len(data), dtype=bool)
-    for first, last in wide.lead_runs:
-        maybe |= (data - np.uint8(first)) <= np.uint8(last - first)
-    at = np.flatnonzero(maybe)
+    at = np.flatnonzero(in_runs(data, wide.lead_runs))
     if len(at):
         at = at[np.isin(code_points(data, at), wide.code_points)]
         size = np.where(data[at] >= 0xE0, 3, 2)  # whitespace code points take two or three bytes
@@ -202,7 +186,7 @@ def _word_hashes(docs: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     data, offsets = utf8_buffers(docs)
     if not len(data):
         return np.zeros(0, np.uint32), np.zeros(0, np.int64)
-    inside = ~_space_bytes(docs, data)
+    inside = ~_space_bytes(data)
     start = np.empty_like(inside)  # inside after outside (for booleans a > b is a and not b)
     np.greater(inside[1:], inside[:-1], out=start[1:])
     start[0] = inside[0]
