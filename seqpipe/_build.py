@@ -359,6 +359,7 @@ class _HashIndex:
 
 
 SMALL_INPUT: Final = 1 << 20  # read whole to hash: a memory map costs more than the read
+_READ_FLAGS: Final = os.O_RDONLY | getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_BINARY", 0)
 
 
 def _read_small(f: Path | str, size: int) -> tuple[bytes, os.stat_result]:
@@ -366,7 +367,7 @@ def _read_small(f: Path | str, size: int) -> tuple[bytes, os.stat_result]:
     of the listed size and a byte more, read on to the end when the stat then disagrees with the
     bytes (a file that grew, or a short read). With many small inputs, Python's buffered file
     object costs as much as the read itself."""
-    fd = os.open(f, os.O_RDONLY | getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_BINARY", 0))
+    fd = os.open(f, _READ_FLAGS)
     try:
         data = os.read(fd, size + 1)
         st = os.fstat(fd)
@@ -794,15 +795,24 @@ def _stored_plan(
         body = json.loads((cache / PLAN_FILE).read_bytes())
         if body["listing"] != listing:
             return None
-        sizes = [stamp[0] for stamp in stamps if stamp is not None]
+        # a listing key exists only when every input has its stamp
+        sizes = list(map(_FIRST, stamps))  # type: ignore[arg-type]
         inputs = body["inputs"]
+        starts, stops = body["starts"], body["stops"]
+        if len(starts) != len(inputs) or len(stops) != len(inputs):
+            return None
         # most inputs are read whole: one shared (immutable) part for them, not one each
         whole = WHOLE_PART
-        cuts = [
-            whole if a == 0 and b is None else Part(a, b) for a, b in zip(body["starts"], body["stops"], strict=True)
-        ]
-        paths = [str(files[i][1]) for i in inputs]
-        own = [tuple(stamps[i] or ()) for i in inputs]
+        if not any(starts) and stops.count(None) == len(stops):  # all of them: no per-member test
+            cuts = [whole] * len(inputs)
+        else:
+            cuts = [whole if a == 0 and b is None else Part(a, b) for a, b in zip(starts, stops, strict=True)]
+        if inputs == list(range(len(files))):  # one member per input, in corpus order
+            paths = list(map(str, map(_SECOND, files)))
+            own = list(map(tuple, stamps))  # type: ignore[arg-type]
+        else:
+            paths = [str(files[i][1]) for i in inputs]
+            own = [tuple(stamps[i] or ()) for i in inputs]
         # Member._make without its Python call and length check: each row is a whole member
         members = list(map(partial(tuple.__new__, Member), zip(inputs, paths, cuts, own, strict=True)))
         parts = []
@@ -865,6 +875,8 @@ def _size(f: Path | str, stamp: tuple[int, ...] | None) -> int:
     return stamp[0] if stamp is not None else file_size(f)
 
 
+_FIRST: Final = operator.itemgetter(0)
+_SECOND: Final = operator.itemgetter(1)
 WHOLE_FILE: Final = [[0, None]]  # the stored cuts of an input read whole
 WHOLE_PART: Final = Part(0, None)
 
