@@ -610,20 +610,21 @@ def plan_build(
     source: VocabSource | None = None,
     *,
     hold: bool = False,
-    ready: Callable[[int, IngestTask], None] | None = None,
+    ready: Callable[[int, IngestTask, bool], None] | None = None,
 ) -> Plan:
     """Resolve the inputs, hash them, cut each large one into parts of about ``part_bytes`` and
     group consecutive small ones (of one source, in corpus order) into parts of about as much.
     ``hold``: keep small inputs read to hash them for ingest tasks in this process. When the
     inputs' names and change stamps are those the last build planned, its plan is taken whole
     from the cache (``plan.json``): a rebuild then does nothing per input beyond its ``lstat``.
-    ``ready(i, task)``: told of part ``i`` as soon as its inputs are hashed and another part
-    follows it, while later inputs are still being read (so its ingest may start)."""
+    ``ready(i, task, last)``: told of part ``i`` as soon as its inputs are hashed and another
+    part follows it, while later inputs are still being read (so its ingest may start), and of
+    the last part (``last`` True) once every input is hashed."""
     files, skipped, stamps = _input_files(recipe)
     listing = _listing_key(recipe, part_bytes, files, stamps)
     grouped = _stored_plan(cache, listing, files, stamps)
     if grouped is None:
-        announce = None if ready is None else lambda i, p: ready(i, IngestTask(recipe, p[0], p[1], p[2], str(cache)))
+        announce = None if ready is None else partial(_announce, ready, recipe, str(cache))
         grouped, settled = _group_inputs(recipe, cache, part_bytes, files, stamps, hold, announce)
         if settled and listing is not None:
             _store_plan(cache, listing, grouped)
@@ -642,6 +643,14 @@ def plan_build(
 _Planned = tuple[int, tuple[Member, ...], str, int]  # source index, members, cache key, weight
 
 
+def _announce(
+    ready: Callable[[int, IngestTask, bool], None], recipe: Recipe, cache: str, i: int, part: _Planned, last: bool
+) -> None:
+    """``ready`` told of part ``i`` as its ingest task."""
+    si, members, key, _ = part
+    ready(i, IngestTask(recipe, si, members, key, cache), last)
+
+
 @dataclass(frozen=True, slots=True)
 class _Grouped:
     """What planning found: each input's hash and size, and per part its source index, members
@@ -655,9 +664,10 @@ class _Grouped:
 class _Groups:
     """Parts in corpus order, made as the inputs arrive: a large input's cuts are parts of their
     own, consecutive small inputs of one source share a part up to ``part_bytes``. A part that
-    another part follows is handed to ``ready`` as soon as that is known."""
+    another part follows is handed to ``ready`` as soon as that is known, the last one by
+    ``finish``."""
 
-    def __init__(self, recipe: Recipe, part_bytes: int, ready: Callable[[int, _Planned], None] | None) -> None:
+    def __init__(self, recipe: Recipe, part_bytes: int, ready: Callable[[int, _Planned, bool], None] | None) -> None:
         self.recipe = recipe
         self.part_bytes = part_bytes
         self.ready = ready
@@ -695,10 +705,15 @@ class _Groups:
         self._follows()
         self.waiting = len(self.parts) - 1
 
-    def _follows(self) -> None:
-        """Something follows the waiting part: hand it on."""
+    def finish(self) -> None:
+        """No input follows: make the open group a part, and hand on the last part as such."""
+        self.close()
+        self._follows(last=True)
+
+    def _follows(self, *, last: bool = False) -> None:
+        """Something follows the waiting part (or nothing will): hand it on."""
         if self.waiting is not None and self.ready is not None:
-            self.ready(self.waiting, self.parts[self.waiting])
+            self.ready(self.waiting, self.parts[self.waiting], last)
         self.waiting = None
 
 
@@ -709,7 +724,7 @@ def _group_inputs(
     files: list[tuple[int, Path | str, str]],
     stamps: list[list[int] | None],
     hold: bool,
-    ready: Callable[[int, _Planned], None] | None = None,
+    ready: Callable[[int, _Planned, bool], None] | None = None,
 ) -> tuple[_Grouped, bool]:
     """Hash the inputs (stat-cached), cut them and group the small ones, one input after the
     other (see ``_Groups``); and whether every input kept its stamp while it was hashed (only
@@ -729,7 +744,7 @@ def _group_inputs(
         parts = cuts.parts(si, f, h, size)
         members = [(Member(ii, str(f), part, stamp), h, size // len(parts)) for part in parts]
         groups.add(si, members, size, len(parts) == 1 and size < part_bytes and GROUP_INPUTS)
-    groups.close()
+    groups.finish()
     index.save()
     cuts.save()
     return _Grouped(hashes, sizes, groups.parts), settled
@@ -1002,21 +1017,24 @@ class _EarlyIngest:
     """Ingest tasks started while planning still reads later inputs (``plan_build``'s
     ``ready``), on a pool of this process's threads: a part not in the cache starts as soon as
     its inputs are hashed and another part follows it, so reading and cleaning it overlaps the
-    hashing of the rest (a corpus of many small files spends most of its planning time there).
-    ``ingest`` takes their results with the other parts'; each is the task ``ingest`` would
-    have run (two or more parts: the ingest threads of one of several)."""
+    hashing of the rest (a corpus of many small files spends most of its planning time there);
+    the last part starts when planning ends if another part started before it. ``ingest`` takes
+    their results with the other parts'. Each is the task ``ingest`` would run, its ingest
+    threads the share of one of as many tasks as have started (the first: the pool's threads;
+    a part alone, not started, gets them in ``ingest``)."""
 
     def __init__(self, ctx: Context, counting: bool) -> None:
         self.ctx = ctx
         self.late = _counted_late(ctx.recipe, counting)
         self.started: dict[int, Future[PartMeta]] = {}
 
-    def __call__(self, i: int, task: IngestTask) -> None:
+    def __call__(self, i: int, task: IngestTask, last: bool = False) -> None:
+        if last and not self.started:
+            return  # maybe the only part to ingest: ingest gives it the pool's threads
         if load_part_meta(str(self.ctx.cache), task.key) is not None:
             return  # in the cache: ingest checks it and takes it
-        task = dataclasses.replace(
-            task, threads=self.ctx.pool.threads.for_ingest(2), count_order=None if self.late else i
-        )
+        threads = self.ctx.pool.threads.for_ingest(len(self.started) + 1)
+        task = dataclasses.replace(task, threads=threads, count_order=None if self.late else i)
         self.started[i] = self.ctx.pool.executor.submit(ingest_part, task)
 
     def abandon(self) -> None:

@@ -6,6 +6,7 @@ from __future__ import annotations
 import random
 import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -434,27 +435,41 @@ def test_parts_started_while_planning_give_the_same_dataset(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch, clean: str
 ) -> None:
     """On the driver's threads, a part's ingest starts as soon as its inputs are hashed and
-    another part follows, while later inputs are still being read. The dataset's bytes and
+    another part follows, while later inputs are still being read (the last one when planning
+    ends), and each started task gets its share of the pool's threads. The dataset's bytes and
     figures are those of a build whose tasks run one by one after planning (one thread: no
     early start), with parts counted by their ingest task (no dedupe) or in the count phase."""
     write_notes(tmp_path, files=60, awkward=False)
     (tmp_path / "notes" / "shelf-0" / "box-0" / "note-000.txt").write_text("calm tide\n\ncalm tide\n")
     recipe = parse_recipe(RECIPE.format(document="paragraph", invalid="replace", cap=0) + clean, tmp_path)
     started: list[int] = []
+    threads: list[int | None] = []
     real = build_module._EarlyIngest.__call__
+    real_ingest = build_module.ingest_part
 
-    def spy(self: object, i: int, task: IngestTask) -> None:
-        started.append(i)
-        real(self, i, task)  # type: ignore[arg-type]
+    def spy(self: Any, i: int, task: IngestTask, last: bool = False) -> None:
+        real(self, i, task, last)
+        if i in self.started:
+            started.append(i)
+
+    def counted_threads(task: IngestTask) -> object:
+        threads.append(task.threads)
+        return real_ingest(task)
+
+    monkeypatch.setattr(build_module, "ingest_part", counted_threads)
 
     monkeypatch.setattr(build_module._EarlyIngest, "__call__", spy)
     monkeypatch.setenv("SEQPIPE_TASK_THREADS", "2")
     early = build(recipe, tmp_path / "early", part_bytes=300, progress=False)
     parts = early.parts_total
-    assert parts > 3 and started == list(range(parts - 1))  # every part but the last
+    assert parts > 3 and started == list(range(parts))  # each as soon as its inputs were hashed
+    assert sorted(threads, reverse=True) == [2] + [1] * (parts - 1)  # the first started alone: the pool's two
+    threads.clear()
+    one_part = build(recipe, tmp_path / "one-part", progress=False)  # default part size: one part
+    assert one_part.parts_total == 1 and len(started) == parts and threads == [2]  # not started early
     monkeypatch.setenv("SEQPIPE_TASK_THREADS", "1")
     inline = build(recipe, tmp_path / "inline", part_bytes=300, progress=False)
-    assert len(started) == parts - 1  # none started early inline
+    assert len(started) == parts  # none started early inline
     assert dataset_files(tmp_path / "early") == dataset_files(tmp_path / "inline")
     assert early.manifest["summary"] == inline.manifest["summary"]
     again = build(recipe, tmp_path / "early", part_bytes=300, progress=False)
