@@ -32,8 +32,8 @@ import os
 import shutil
 import stat
 import time
-from collections.abc import Iterator, Sequence
-from concurrent.futures import Executor, ThreadPoolExecutor
+from collections.abc import Callable, Container, Iterator, Sequence
+from concurrent.futures import Executor, Future, ThreadPoolExecutor, wait
 from contextlib import AbstractContextManager, nullcontext, suppress
 from dataclasses import dataclass, field
 from functools import partial
@@ -70,9 +70,16 @@ from seqpipe._parse import to_plain
 from seqpipe._reuse import VocabSource, adopt_vocabulary, open_vocab_source, reused_entry, vocabulary_fingerprint
 from seqpipe._runner import View, run, run_beside
 from seqpipe.counts import CountMerger
-from seqpipe.errors import EmptyCorpusError, OutputWriteError, RecipeError, SeqpipeError, SourceMissingError
+from seqpipe.errors import (
+    EmptyCorpusError,
+    OutputWriteError,
+    RecipeError,
+    SeqpipeError,
+    SourceError,
+    SourceMissingError,
+)
 from seqpipe.executors import InlineExecutor, TaskPool, task_pool
-from seqpipe.filesystem import change_stamp, file_size, identity, is_uri
+from seqpipe.filesystem import FILE_GONE, change_stamp, file_size, identity, is_uri
 from seqpipe.formats import DOCS_DIR, OPTIONAL_TOP, SHARDS_DIR, VOCAB_FILE
 from seqpipe.ingest import (
     PART_FORMAT,
@@ -308,52 +315,51 @@ def _uploaded(result: BuildResult, remote: UriStore, stats: PublishStats, local:
     return dataclasses.replace(result, directory=remote.location, seconds=time.perf_counter() - t0, extra=extra)
 
 
-def _input_hashes(
-    files: Sequence[Path | str],
-    cache: Path,
-    stamps: Sequence[list[int] | None] | None = None,
-    hold: bool = False,
-    unsettled: list[int] | None = None,
-) -> list[tuple[str, tuple[int, ...] | None]]:
-    """XXH3-128 of each input, reusing a stored hash while its change stamp is unchanged:
+class _HashIndex:
+    """XXH3-128 of inputs, reusing a stored hash while its change stamp is unchanged:
     (size, mtime, inode) for a local file, (size, mtime) for a URI; a URI whose filesystem
-    reports no mtime has no stamp and is hashed on every build. ``stamps`` (per file, None:
-    ask the filesystem) are those the caller took when it listed the files; ``unsettled``
-    receives the index of each file that changed while it was hashed."""
-    index_path = cache / "inputs.json"
-    try:
-        index: dict[str, Any] = json.loads(index_path.read_bytes())
-    except (OSError, ValueError):
-        index = {}
-    out: list[tuple[str, tuple[int, ...] | None]] = []
-    changed = False
-    for i, f in enumerate(files):
-        known = stamps[i] if stamps is not None else None
+    reports no mtime has no stamp and is hashed on every build. The stored hashes are kept in
+    the cache (``inputs.json``); ``hold``: keep the small inputs read to hash them for this
+    process's ingest tasks."""
+
+    def __init__(self, cache: Path, hold: bool) -> None:
+        self.cache = cache
+        self.path = cache / "inputs.json"
+        self.hold = hold
+        try:
+            self.index: dict[str, Any] = json.loads(self.path.read_bytes())
+        except (OSError, ValueError):
+            self.index = {}
+        self.changed = False
+
+    def hash(self, f: Path | str, known: list[int] | None) -> tuple[str, tuple[int, ...] | None, bool]:
+        """The input's hash, its change stamp and whether the stamp held while it was hashed.
+        ``known``: the stamp its listing gave (None: ask the filesystem). A file that changed
+        while hashed keeps the stamp from before, so reading it is refused."""
         stamp = known if known is not None else change_stamp(f)
-        rec = index.get(f if isinstance(f, str) else str(f))
+        rec = self.index.get(f if isinstance(f, str) else str(f))
         if stamp is not None and rec and rec.get("stamp") == stamp:
-            out.append((rec["hash"], tuple(stamp)))
-            continue
-        h, after = _hash_input(f, stamp, hold)
-        if stamp is not None and after != stamp:
-            # changed while hashed: keep the stamp from before, so reading it is refused
-            out.append((h, tuple(stamp)))
-            if unsettled is not None:
-                unsettled.append(i)
-            continue
-        if stamp is not None:
-            index[str(f)] = {"stamp": stamp, "hash": h}
-            changed = True
-        out.append((h, None if stamp is None else tuple(stamp)))
-    if changed:
-        cache.mkdir(parents=True, exist_ok=True)
-        tmp = index_path.with_suffix(".tmp")
-        tmp.write_text(json.dumps(index, sort_keys=True))
-        os.replace(tmp, index_path)
-    return out
+            return rec["hash"], tuple(stamp), True
+        h, after = _hash_input(f, stamp, self.hold)
+        if stamp is None:
+            return h, None, True
+        if after != stamp:
+            return h, tuple(stamp), False
+        self.index[str(f)] = {"stamp": stamp, "hash": h}
+        self.changed = True
+        return h, tuple(stamp), True
+
+    def save(self) -> None:
+        if not self.changed:
+            return
+        self.cache.mkdir(parents=True, exist_ok=True)
+        tmp = self.path.with_suffix(".tmp")
+        tmp.write_text(json.dumps(self.index, sort_keys=True))
+        os.replace(tmp, self.path)
 
 
 SMALL_INPUT: Final = 1 << 20  # read whole to hash: a memory map costs more than the read
+_READ_FLAGS: Final = os.O_RDONLY | getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_BINARY", 0)
 
 
 def _read_small(f: Path | str, size: int) -> tuple[bytes, os.stat_result]:
@@ -361,7 +367,7 @@ def _read_small(f: Path | str, size: int) -> tuple[bytes, os.stat_result]:
     of the listed size and a byte more, read on to the end when the stat then disagrees with the
     bytes (a file that grew, or a short read). With many small inputs, Python's buffered file
     object costs as much as the read itself."""
-    fd = os.open(f, os.O_RDONLY | getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_BINARY", 0))
+    fd = os.open(f, _READ_FLAGS)
     try:
         data = os.read(fd, size + 1)
         st = os.fstat(fd)
@@ -390,7 +396,12 @@ def _hash_input(f: Path | str, stamp: list[int] | None, hold: bool = False) -> t
             if hold and isinstance(f, str):
                 hold_input(f, data)
             return xxhash.xxh3_128_hexdigest(data), [st.st_size, st.st_mtime_ns, st.st_ino]
-    digest = hash_file(f)
+    try:
+        digest = hash_file(f)
+    except FileNotFoundError as exc:  # removed since the glob listed it
+        raise SourceMissingError(str(f), FILE_GONE) from exc
+    except OSError as exc:
+        raise SourceError(str(f), f"cannot read it to hash it: {exc}") from exc
     return digest, (change_stamp(f) if stamp is not None else None)
 
 
@@ -469,17 +480,20 @@ def _build(
     """The phases in order, each handing the next what it needs."""
     ctx = Context(recipe, pool, cache, show)
     source = open_vocab_source(recipe)
+    early = _EarlyIngest(ctx, counting=source is None) if isinstance(pool.executor, ThreadPoolExecutor) else None
     try:  # inputs read to hash them are kept for this process's ingest tasks, then forgotten
-        plan = plan_build(recipe, cache, part_bytes, source, hold=_local(pool))
+        plan = plan_build(recipe, cache, part_bytes, source, hold=_local(pool), ready=early)
         check_shard_count(recipe, plan.input_bytes)
         stage = _fresh_stage(out, plan.build_key[:16])
     except BaseException:
+        if early is not None:
+            early.abandon()
         release_inputs()
         raise
     try:
         merger = CountMerger()  # parts counted by their ingest task arrive first, the others in count
         try:
-            ingested = ingest(ctx, plan, merger, counting=source is None)
+            ingested = ingest(ctx, plan, merger, counting=source is None, started=early.started if early else None)
         finally:
             release_inputs()
         kept = assign(ctx, plan, ingested, stage)
@@ -596,17 +610,22 @@ def plan_build(
     source: VocabSource | None = None,
     *,
     hold: bool = False,
+    ready: Callable[[int, IngestTask, bool], None] | None = None,
 ) -> Plan:
     """Resolve the inputs, hash them, cut each large one into parts of about ``part_bytes`` and
     group consecutive small ones (of one source, in corpus order) into parts of about as much.
     ``hold``: keep small inputs read to hash them for ingest tasks in this process. When the
     inputs' names and change stamps are those the last build planned, its plan is taken whole
-    from the cache (``plan.json``): a rebuild then does nothing per input beyond its ``lstat``."""
+    from the cache (``plan.json``): a rebuild then does nothing per input beyond its ``lstat``.
+    ``ready(i, task, last)``: told of part ``i`` as soon as its inputs are hashed and another
+    part follows it, while later inputs are still being read (so its ingest may start), and of
+    the last part (``last`` True) once every input is hashed."""
     files, skipped, stamps = _input_files(recipe)
     listing = _listing_key(recipe, part_bytes, files, stamps)
     grouped = _stored_plan(cache, listing, files, stamps)
     if grouped is None:
-        grouped, settled = _group_inputs(recipe, cache, part_bytes, files, stamps, hold)
+        announce = None if ready is None else partial(_announce, ready, recipe, str(cache))
+        grouped, settled = _group_inputs(recipe, cache, part_bytes, files, stamps, hold, announce)
         if settled and listing is not None:
             _store_plan(cache, listing, grouped)
     hashes = grouped.hashes
@@ -621,6 +640,17 @@ def plan_build(
     return Plan(inputs, tasks, weights, sum(sizes), build_key, skipped)
 
 
+_Planned = tuple[int, tuple[Member, ...], str, int]  # source index, members, cache key, weight
+
+
+def _announce(
+    ready: Callable[[int, IngestTask, bool], None], recipe: Recipe, cache: str, i: int, part: _Planned, last: bool
+) -> None:
+    """``ready`` told of part ``i`` as its ingest task."""
+    si, members, key, _ = part
+    ready(i, IngestTask(recipe, si, members, key, cache), last)
+
+
 @dataclass(frozen=True, slots=True)
 class _Grouped:
     """What planning found: each input's hash and size, and per part its source index, members
@@ -628,7 +658,63 @@ class _Grouped:
 
     hashes: list[str]
     sizes: list[int]
-    parts: list[tuple[int, tuple[Member, ...], str, int]]
+    parts: list[_Planned]
+
+
+class _Groups:
+    """Parts in corpus order, made as the inputs arrive: a large input's cuts are parts of their
+    own, consecutive small inputs of one source share a part up to ``part_bytes``. A part that
+    another part follows is handed to ``ready`` as soon as that is known, the last one by
+    ``finish``."""
+
+    def __init__(self, recipe: Recipe, part_bytes: int, ready: Callable[[int, _Planned, bool], None] | None) -> None:
+        self.recipe = recipe
+        self.part_bytes = part_bytes
+        self.ready = ready
+        self.parts: list[_Planned] = []
+        self.open: list[tuple[Member, str, int]] = []  # the group small inputs are joining
+        self.source = -1
+        self.held = 0
+        self.waiting: int | None = None  # the last part made, until another part follows it
+
+    def add(self, si: int, members: list[tuple[Member, str, int]], size: int, small: bool) -> None:
+        """One input's members (member, its input's hash, weight)."""
+        self._follows()
+        if not small:
+            self.close()
+            for m in members:
+                self._make(si, [m])
+            return
+        if self.open and (self.source != si or self.held + size > self.part_bytes):
+            self.close()
+            self._follows()  # by this input
+        if not self.open:
+            self.source, self.held = si, 0
+        self.open.extend(members)
+        self.held += size
+
+    def close(self) -> None:
+        """Make the open group a part."""
+        if self.open:
+            self._make(self.source, self.open)
+            self.open = []
+
+    def _make(self, si: int, group: list[tuple[Member, str, int]]) -> None:
+        key = part_key(self.recipe, si, [(h, m.part) for m, h, _ in group])
+        self.parts.append((si, tuple(m for m, _, _ in group), key, sum(w for *_, w in group)))
+        self._follows()
+        self.waiting = len(self.parts) - 1
+
+    def finish(self) -> None:
+        """No input follows: make the open group a part, and hand on the last part as such."""
+        self.close()
+        self._follows(last=True)
+
+    def _follows(self, *, last: bool = False) -> None:
+        """Something follows the waiting part (or nothing will): hand it on."""
+        if self.waiting is not None and self.ready is not None:
+            self.ready(self.waiting, self.parts[self.waiting], last)
+        self.waiting = None
 
 
 def _group_inputs(
@@ -638,41 +724,30 @@ def _group_inputs(
     files: list[tuple[int, Path | str, str]],
     stamps: list[list[int] | None],
     hold: bool,
+    ready: Callable[[int, _Planned, bool], None] | None = None,
 ) -> tuple[_Grouped, bool]:
-    """Hash the inputs (stat-cached), cut them and group the small ones; and whether every
-    input kept its stamp while it was hashed (only then may the plan be stored)."""
-    unsettled: list[int] = []
-    hashed = _input_hashes([f for _, f, _ in files], cache, stamps, hold, unsettled)
-    hashes = [h for h, _ in hashed]
-    sizes = [_size(f, stamp) for (_, f, _), (_, stamp) in zip(files, hashed, strict=True)]
+    """Hash the inputs (stat-cached), cut them and group the small ones, one input after the
+    other (see ``_Groups``); and whether every input kept its stamp while it was hashed (only
+    then may the plan be stored)."""
+    index = _HashIndex(cache, hold)
     cuts = _PlanCache(cache, recipe, part_bytes)
-    groups: list[tuple[int, list[tuple[Member, str, int]]]] = []  # per part: source, (member, hash, bytes)
-    open_group: list[tuple[Member, str, int]] | None = None  # the group small inputs are joining
-    held = 0
-    for ii, ((si, f, _), (h, stamp)) in enumerate(zip(files, hashed, strict=True)):
-        parts = cuts.parts(si, f, h, sizes[ii])
-        members = [(Member(ii, str(f), part, stamp), h, sizes[ii] // len(parts)) for part in parts]
-        small = len(parts) == 1 and sizes[ii] < part_bytes and GROUP_INPUTS
-        if not small:
-            groups.extend((si, [m]) for m in members)
-            open_group = None
-            continue
-        if open_group is None or groups[-1][0] != si or held + sizes[ii] > part_bytes:
-            open_group, held = [], 0
-            groups.append((si, open_group))
-        open_group.extend(members)
-        held += sizes[ii]
+    groups = _Groups(recipe, part_bytes, ready)
+    hashes: list[str] = []
+    sizes: list[int] = []
+    settled = True
+    for ii, (si, f, _) in enumerate(files):
+        h, stamp, held = index.hash(f, stamps[ii])
+        settled = settled and held
+        size = _size(f, stamp)
+        hashes.append(h)
+        sizes.append(size)
+        parts = cuts.parts(si, f, h, size)
+        members = [(Member(ii, str(f), part, stamp), h, size // len(parts)) for part in parts]
+        groups.add(si, members, size, len(parts) == 1 and size < part_bytes and GROUP_INPUTS)
+    groups.finish()
+    index.save()
     cuts.save()
-    planned = [
-        (
-            si,
-            tuple(m for m, _, _ in group),
-            part_key(recipe, si, [(h, m.part) for m, h, _ in group]),
-            sum(w for *_, w in group),
-        )
-        for si, group in groups
-    ]
-    return _Grouped(hashes, sizes, planned), not unsettled
+    return _Grouped(hashes, sizes, groups.parts), settled
 
 
 PLAN_FILE: Final = "plan.json"
@@ -735,15 +810,24 @@ def _stored_plan(
         body = json.loads((cache / PLAN_FILE).read_bytes())
         if body["listing"] != listing:
             return None
-        sizes = [stamp[0] for stamp in stamps if stamp is not None]
+        # a listing key exists only when every input has its stamp
+        sizes = list(map(_FIRST, stamps))  # type: ignore[arg-type]
         inputs = body["inputs"]
+        starts, stops = body["starts"], body["stops"]
+        if len(starts) != len(inputs) or len(stops) != len(inputs):
+            return None
         # most inputs are read whole: one shared (immutable) part for them, not one each
         whole = WHOLE_PART
-        cuts = [
-            whole if a == 0 and b is None else Part(a, b) for a, b in zip(body["starts"], body["stops"], strict=True)
-        ]
-        paths = [str(files[i][1]) for i in inputs]
-        own = [tuple(stamps[i] or ()) for i in inputs]
+        if not any(starts) and stops.count(None) == len(stops):  # all of them: no per-member test
+            cuts = [whole] * len(inputs)
+        else:
+            cuts = [whole if a == 0 and b is None else Part(a, b) for a, b in zip(starts, stops, strict=True)]
+        if inputs == list(range(len(files))):  # one member per input, in corpus order
+            paths = list(map(str, map(_SECOND, files)))
+            own = list(map(tuple, stamps))  # type: ignore[arg-type]
+        else:
+            paths = [str(files[i][1]) for i in inputs]
+            own = [tuple(stamps[i] or ()) for i in inputs]
         # Member._make without its Python call and length check: each row is a whole member
         members = list(map(partial(tuple.__new__, Member), zip(inputs, paths, cuts, own, strict=True)))
         parts = []
@@ -806,6 +890,8 @@ def _size(f: Path | str, stamp: tuple[int, ...] | None) -> int:
     return stamp[0] if stamp is not None else file_size(f)
 
 
+_FIRST: Final = operator.itemgetter(0)
+_SECOND: Final = operator.itemgetter(1)
 WHOLE_FILE: Final = [[0, None]]  # the stored cuts of an input read whole
 WHOLE_PART: Final = Part(0, None)
 
@@ -879,21 +965,30 @@ def _documents(meta: PartMeta) -> int:
     return meta.documents
 
 
-def ingest(ctx: Context, plan: Plan, merger: CountMerger, *, counting: bool = True) -> Ingested:
+def ingest(
+    ctx: Context,
+    plan: Plan,
+    merger: CountMerger,
+    *,
+    counting: bool = True,
+    started: dict[int, Future[PartMeta]] | None = None,
+) -> Ingested:
     """Ingest every part not in the cache. Without a dedupe step every document is kept, so a
     fresh part is counted by its own ingest task while its arrays are in memory (into
     ``merger``); the rest are counted in the count phase. Nothing is counted without
-    ``counting`` (a reused vocabulary)."""
+    ``counting`` (a reused vocabulary). ``started``: parts whose ingest task already runs
+    (``_EarlyIngest``), by part number."""
     cache = str(ctx.cache)
-    metas, damaged = _cached_parts(cache, plan)
+    started = started or {}
+    metas, damaged = _cached_parts(cache, plan, started)
     todo = [i for i, m in enumerate(metas) if m is None]
-    # counting at ingest sees every document: not when some are dropped later (dedupe, overlap)
-    dedupe = _has_dedupe(ctx.recipe) or ctx.recipe.splits.exclude_overlap_from_train or not counting
+    late = _counted_late(ctx.recipe, counting)
     threads = ctx.pool.threads.for_ingest(len(todo))
-    tasks = [dataclasses.replace(plan.tasks[i], threads=threads, count_order=None if dedupe else i) for i in todo]
-    merger.expect(0 if dedupe else len(todo))
+    tasks = [dataclasses.replace(plan.tasks[i], threads=threads, count_order=None if late else i) for i in todo]
+    merger.expect(0 if late else len(todo))
     view = View("reading", unit="B", weights=[plan.weights[i] for i in todo], tally=("documents", _documents))
-    fresh = run(ctx.pool.executor, ctx.show, ingest_part, tasks, view, each=partial(_merge_arrived, merger))
+    running = {k: started[i] for k, i in enumerate(todo) if i in started}
+    fresh = run(ctx.pool.executor, ctx.show, ingest_part, tasks, view, partial(_merge_arrived, merger), running)
     counted: set[int] = set()
     read = 0
     for i, (meta, was_counted) in zip(todo, fresh, strict=True):
@@ -911,10 +1006,49 @@ def ingest(ctx: Context, plan: Plan, merger: CountMerger, *, counting: bool = Tr
     return Ingested(parts, len(plan.tasks) - len(todo), recount, damaged, read)
 
 
-def _cached_parts(cache: str, plan: Plan) -> tuple[list[PartMeta | None], int]:
-    """The metadata of each part found whole in the cache (None for the others), and how many
-    were there but no longer match their hashes (removed, so they are ingested again)."""
-    metas = [load_part_meta(cache, t.key) for t in plan.tasks]
+def _counted_late(recipe: Recipe, counting: bool) -> bool:
+    """Whether parts are counted in the count phase, not by their ingest task: counting at
+    ingest sees every document, so not when some are dropped later (dedupe, overlap), and
+    nothing is counted without ``counting``."""
+    return _has_dedupe(recipe) or recipe.splits.exclude_overlap_from_train or not counting
+
+
+class _EarlyIngest:
+    """Ingest tasks started while planning still reads later inputs (``plan_build``'s
+    ``ready``), on a pool of this process's threads: a part not in the cache starts as soon as
+    its inputs are hashed and another part follows it, so reading and cleaning it overlaps the
+    hashing of the rest (a corpus of many small files spends most of its planning time there);
+    the last part starts when planning ends if another part started before it. ``ingest`` takes
+    their results with the other parts'. Each is the task ``ingest`` would run, its ingest
+    threads the share of one of as many tasks as have started (the first: the pool's threads;
+    a part alone, not started, gets them in ``ingest``)."""
+
+    def __init__(self, ctx: Context, counting: bool) -> None:
+        self.ctx = ctx
+        self.late = _counted_late(ctx.recipe, counting)
+        self.started: dict[int, Future[PartMeta]] = {}
+
+    def __call__(self, i: int, task: IngestTask, last: bool = False) -> None:
+        if last and not self.started:
+            return  # maybe the only part to ingest: ingest gives it the pool's threads
+        if load_part_meta(str(self.ctx.cache), task.key) is not None:
+            return  # in the cache: ingest checks it and takes it
+        threads = self.ctx.pool.threads.for_ingest(len(self.started) + 1)
+        task = dataclasses.replace(task, threads=threads, count_order=None if self.late else i)
+        self.started[i] = self.ctx.pool.executor.submit(ingest_part, task)
+
+    def abandon(self) -> None:
+        """Planning failed: drop the tasks not yet running and wait for the others."""
+        for fut in self.started.values():
+            fut.cancel()
+        wait(list(self.started.values()))
+
+
+def _cached_parts(cache: str, plan: Plan, started: Container[int] = ()) -> tuple[list[PartMeta | None], int]:
+    """The metadata of each part found whole in the cache (None for the others, and for the
+    ``started`` ones, fresh whatever the cache holds by now), and how many were there but no
+    longer match their hashes (removed, so they are ingested again)."""
+    metas = [None if i in started else load_part_meta(cache, t.key) for i, t in enumerate(plan.tasks)]
     damaged = 0
     for i, meta in enumerate(metas):
         if meta is not None and not part_intact(cache, meta):

@@ -12,7 +12,7 @@ and the bar, ``each`` and the results still see every original task.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import BrokenExecutor, Executor, Future
 from dataclasses import dataclass
 from typing import Any, Final, TypeVar
@@ -112,13 +112,15 @@ def run(
     tasks: Sequence[Any],
     view: View,
     each: Callable[[int, Any], Any] | None = None,
+    started: Mapping[int, Future[Any]] | None = None,
 ) -> list[Any]:
     """Submit every task, wait for all, return results in task order (never completion order).
 
     ``each(i, result)`` sees every result as it arrives (in completion order) and returns what
     is kept in its place, so large parts of results need not pile up; a result that is ready at
-    submit time (an inline executor) is taken at once."""
-    return run_beside(executor, show, fn, tasks, view, _nothing, each)[0]
+    submit time (an inline executor) is taken at once. ``started``: tasks already submitted to
+    ``executor`` (by task number; an executor of this process), taken as they are."""
+    return run_beside(executor, show, fn, tasks, view, _nothing, each, started)[0]
 
 
 def run_beside(
@@ -129,6 +131,7 @@ def run_beside(
     view: View,
     meanwhile: Callable[[], M],
     each: Callable[[int, Any], Any] | None = None,
+    started: Mapping[int, Future[Any]] | None = None,
 ) -> tuple[list[Any], M]:
     """``run``, and ``meanwhile()``: this thread's own work, done after every task is
     submitted and before waiting for them; returns its result too."""
@@ -140,11 +143,16 @@ def run_beside(
     shown = show and bool(tasks)
     slots = task_slots(executor) if tasks else None
     batched = Batch(fn) if slots is not None else None
+    started = started or {}
+    if started and batched is not None:
+        raise ValueError("tasks started beforehand are only taken from an executor of this process")
     with bar(total, view.desc, unit=view.unit, show=shown, unit_scale=view.weights is not None) as pbar:
         ticker = _Ticker(pbar, view, shown)
         try:
             for run_ in batch_ranges(len(tasks), view.weights, slots):
-                if batched is None:
+                if run_.start in started:
+                    fut = started[run_.start]
+                elif batched is None:
                     fut = executor.submit(fn, tasks[run_.start])
                 else:
                     fut = executor.submit(batched, [tasks[i] for i in run_])

@@ -44,14 +44,14 @@ def test_second_build_fails_fast_while_first_holds_the_lock(
     BuildLockedError; the first build then completes and verifies."""
     out = tmp_path / "out"
     inside, release = threading.Event(), threading.Event()
-    real = build_module._input_hashes
+    real = build_module._input_files
 
     def paused(*args: Any, **kwargs: Any) -> Any:
         inside.set()
         assert release.wait(timeout=120)
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(build_module, "_input_hashes", paused)
+    monkeypatch.setattr(build_module, "_input_files", paused)
     result: dict[str, Any] = {}
 
     def first() -> None:

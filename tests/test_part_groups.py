@@ -4,7 +4,9 @@ per group, cached rebuilds that open no input, errors naming the file inside a g
 from __future__ import annotations
 
 import random
+import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -426,3 +428,86 @@ def test_no_plan_is_stored_when_an_input_changed_while_hashed(tmp_path: Path, mo
     monkeypatch.setattr(build_module, "_hash_input", changing)
     plan_build(recipe_of(tmp_path), tmp_path / "cache", 600)
     assert not (tmp_path / "cache" / "plan.json").exists()
+
+
+@pytest.mark.parametrize("clean", ["", '[[clean]]\nkind = "dedupe"\n'])
+def test_parts_started_while_planning_give_the_same_dataset(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, clean: str
+) -> None:
+    """On the driver's threads, a part's ingest starts as soon as its inputs are hashed and
+    another part follows, while later inputs are still being read (the last one when planning
+    ends), and each started task gets its share of the pool's threads. The dataset's bytes and
+    figures are those of a build whose tasks run one by one after planning (one thread: no
+    early start), with parts counted by their ingest task (no dedupe) or in the count phase."""
+    write_notes(tmp_path, files=60, awkward=False)
+    (tmp_path / "notes" / "shelf-0" / "box-0" / "note-000.txt").write_text("calm tide\n\ncalm tide\n")
+    recipe = parse_recipe(RECIPE.format(document="paragraph", invalid="replace", cap=0) + clean, tmp_path)
+    started: list[int] = []
+    threads: list[int | None] = []
+    real = build_module._EarlyIngest.__call__
+    real_ingest = build_module.ingest_part
+
+    def spy(self: Any, i: int, task: IngestTask, last: bool = False) -> None:
+        real(self, i, task, last)
+        if i in self.started:
+            started.append(i)
+
+    def counted_threads(task: IngestTask) -> object:
+        threads.append(task.threads)
+        return real_ingest(task)
+
+    monkeypatch.setattr(build_module, "ingest_part", counted_threads)
+
+    monkeypatch.setattr(build_module._EarlyIngest, "__call__", spy)
+    monkeypatch.setenv("SEQPIPE_TASK_THREADS", "2")
+    early = build(recipe, tmp_path / "early", part_bytes=300, progress=False)
+    parts = early.parts_total
+    assert parts > 3 and started == list(range(parts))  # each as soon as its inputs were hashed
+    assert sorted(threads, reverse=True) == [2] + [1] * (parts - 1)  # the first started alone: the pool's two
+    threads.clear()
+    one_part = build(recipe, tmp_path / "one-part", progress=False)  # default part size: one part
+    assert one_part.parts_total == 1 and len(started) == parts and threads == [2]  # not started early
+    monkeypatch.setenv("SEQPIPE_TASK_THREADS", "1")
+    inline = build(recipe, tmp_path / "inline", part_bytes=300, progress=False)
+    assert len(started) == parts  # none started early inline
+    assert dataset_files(tmp_path / "early") == dataset_files(tmp_path / "inline")
+    assert early.manifest["summary"] == inline.manifest["summary"]
+    again = build(recipe, tmp_path / "early", part_bytes=300, progress=False)
+    assert again.parts_reused == parts  # the parts ingested early were stored whole
+
+
+def test_a_failed_plan_waits_for_the_parts_it_started(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """When planning fails after some parts' ingest started (an input vanished), the build
+    reports the planning error, naming the file, and no started task is left running or
+    holding inputs."""
+    import seqpipe.sources._stream as stream_module
+    from seqpipe.errors import SourceMissingError
+    from seqpipe.executors import task_pool
+
+    paths = write_notes(tmp_path, files=40, awkward=False)
+    real = build_module._hash_input
+    started: list[object] = []
+    finished: list[object] = []
+    real_ingest = build_module.ingest_part
+
+    def slow_ingest(task: IngestTask) -> object:
+        started.append(task.key)
+        time.sleep(0.2)  # still running when planning fails, unless the build waits
+        out = real_ingest(task)
+        finished.append(task.key)
+        return out
+
+    def vanishing(f: object, stamp: object, hold: bool = False) -> tuple[str, object]:
+        if str(f) == str(paths[-1]):
+            paths[-1].unlink()
+        return real(f, stamp, hold)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(build_module, "_hash_input", vanishing)
+    monkeypatch.setattr(build_module, "ingest_part", slow_ingest)
+    monkeypatch.setenv("SEQPIPE_TASK_THREADS", "2")
+    # a caller's pool, which the build does not shut down (that would wait for its tasks too)
+    with task_pool(None, None) as pool:
+        with pytest.raises(SourceMissingError, match=r"note-039\.txt.*removed after the glob matched"):
+            build(recipe_of(tmp_path), tmp_path / "out", executor=pool, part_bytes=300, progress=False)
+        assert started and finished == started  # parts had started, and ended before the error came
+    assert not stream_module._HELD_INPUTS

@@ -810,12 +810,15 @@ def test_local_suffix_is_the_suffix_a_path_gives() -> None:
     ``PurePath.suffix`` of it (dot files, dots in directories, "." components, trailing "/")."""
     from pathlib import PurePath
 
-    from seqpipe.sources._stream import _suffix
+    from seqpipe.sources._stream import _suffix, codec_for
 
     names = ["a.gz", "..gz", ".gz", "a/b.tar.gz", "a.", "x/y/", "a/.hidden", "a/b.c/d", "./c.zst", "a..gz"]
     names += ["dir.gz/", "a/./b.bz2", ".", "x/..", "a/b/.", "/x/y.GZ", "y.gz/.", "notes/box-1/n.txt"]
+    names += ["a/b.Zst", "a/.gz/c", "a.gz.txt", "b.bz2", "c.tar.BZ2", "gz", "a/gz", "x.tgz"]
     for name in names:
         assert _suffix(name) == PurePath(name).suffix, name
+        want = {".gz": "gzip", ".bz2": "bz2", ".zst": "zstd"}.get(PurePath(name).suffix.lower())
+        assert codec_for(name, "auto") == want, name
 
 
 @pytest.mark.parametrize("size_over", [0, 1])

@@ -25,9 +25,20 @@ UTF8_BOM: Final = b"\xef\xbb\xbf"
 _SCAN_BLOCK: Final = 1 << 16
 
 
+_COMPRESSED_ENDS: Final = tuple(_SUFFIXES)
+
+
 def codec_for(path: SourcePath, compression: str) -> str | None:
     """The pyarrow codec name for ``path`` (None: not compressed)."""
     if compression == "auto":
+        if (
+            isinstance(path, str)
+            and not path[-4:].lower().endswith(_COMPRESSED_ENDS)
+            and path[-1:] != os.sep
+            and "/." not in path
+            and "://" not in path
+        ):
+            return None  # a plain local name not ending in a compression suffix: no Path, no split
         return _SUFFIXES.get(_suffix(path).lower())
     return None if compression == "none" else compression
 
