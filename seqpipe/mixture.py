@@ -486,14 +486,15 @@ class MixtureStream:
         """
         page, last = self._page, self._last
         self._last = step
-        size, stride = _FIRST_PAGE, step - last if 0 <= last < step else 1
+        most = max(1, _PAGE_ROWS // self.batch_size)
+        size, stride = min(_FIRST_PAGE, most), step - last if 0 <= last < step else 1
         if page is not None:
             first, every, joined, own = page
             k, r = divmod(step - first, every)
             if r == 0 and 0 <= k < len(joined):
                 return joined[k], own[k].copy()
             if step == first + len(joined) * every:
-                size, stride = min(2 * len(joined), max(1, _PAGE_ROWS // self.batch_size)), every
+                size, stride = min(2 * len(joined), most), every
         steps = np.arange(step, min(step + size * stride, self.steps_per_epoch), stride, dtype=np.int64)
         joined, own = self._page_rows(steps)
         self._page = (step, stride, joined, own)
