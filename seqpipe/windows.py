@@ -137,14 +137,25 @@ class _Shuffle:
         return x
 
     def _encrypt(self, x: np.ndarray) -> np.ndarray:
+        """One pass of the rounds over ``x`` (uint64 values in ``[0, a*b)``)."""
         a, b = self.a, self.b
         for key in self.keys:
-            left, right = x // b, x % b
-            h = (right ^ key) * _MIX1  # uint64 arrays wrap modulo 2**64, as the mixer intends
+            # x = a*R + (L + F(R)) mod a with (L, R) = (x // b, x % b). numpy divides a uint64 array by
+            # a scalar with a multiply (fast) but takes the remainder with a hardware divide, so the two
+            # remainders are products subtracted: x % b = x - (x // b) * b, and since L < a and
+            # F(R) % a < a, (L + F(R) % a) % a is one conditional subtraction, written as a minimum
+            # (h - a wraps to above h when h < a).
+            left = x // b
+            right = x - left * b
+            h = right ^ key
+            h *= _MIX1  # uint64 arrays wrap modulo 2**64, as the mixer intends
             h ^= h >> np.uint64(31)
             h *= _MIX2
             h ^= h >> np.uint64(29)
-            x = a * right + (left + h % a) % a
+            h -= h // a * a
+            h += left
+            x = right * a
+            x += np.minimum(h, h - a)
         return x
 
     def __call__(self, index: np.ndarray) -> np.ndarray:
