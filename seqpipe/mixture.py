@@ -47,8 +47,9 @@ if TYPE_CHECKING:
 MAX_PERIOD: Final = 1 << 16  # weights (after dividing by their gcd) may sum to at most this: one table row each
 MIXTURE_FORMAT: Final = "seqpipe.mixture/1"
 _SEED_DOMAIN: Final = "seqpipe.mixture.component-seed"
-_LAYOUTS_KEPT: Final = 1024  # batch layouts kept per stream (one per phase of the period a batch starts at)
-_WALKER_PAGE: Final = 4096  # windows of a component's order computed at once (windows._PAGE_WINDOWS)
+_PAGE_ROWS: Final = 4096  # most rows of one rank whose starts are found at once (as windows._PAGE_WINDOWS)
+_FIRST_PAGE: Final = 8  # steps found at once when reading does not continue the last page
+_ORDER_PAGE: Final = 4096  # windows of a component's order computed at once (as windows._PAGE_WINDOWS)
 
 
 def _check(fn: Any, key: str, *args: Any, **kwargs: Any) -> Any:
@@ -291,6 +292,9 @@ class MixtureStream:
         self.weights = self.table[-1].copy()  # divided by their gcd
         self.period = int(self.weights.sum())
         self.owner = np.argmax(np.diff(self.table, axis=0), axis=1)  # component of each row of a period
+        # per row of a period: its component's weight and the rows that component had before it in the period
+        self._share = self.weights[self.owner]
+        self._seen = self.table[np.arange(self.period), self.owner]
         self.batch_size: int = _check(parse_int, "batch_size", batch_size, minimum=1)
         self.window: int = _check(parse_int, "window", window, minimum=1)
         self.order: str = _check(parse_str, "order", order, choices=("random",))
@@ -316,7 +320,11 @@ class MixtureStream:
         self.start_step: int = _check(parse_int, "start_step", start_step, minimum=0, maximum=self.steps_per_epoch)
         self._next = self.start_step
         self._walkers: dict[int, BatchStream] = {}
-        self._layouts: dict[int, tuple[list[tuple[int, int]], np.ndarray, np.ndarray]] = {}
+        self._orders: dict[int, tuple[int, int, np.ndarray]] = {}  # per component: (epoch, first window, starts)
+        # (first step, step stride, joined starts, own starts) of the steps whose rows were found last,
+        # and the last step asked (see _rows_of)
+        self._page: tuple[int, int, np.ndarray, np.ndarray] | None = None
+        self._last = -1
 
     def _windows_of(self, i: int, stream: TokenStream) -> int:
         if not isinstance(stream, TokenStream):
@@ -395,23 +403,14 @@ class MixtureStream:
         rows = self._first_row(step) + np.arange(self.batch_size, dtype=np.int64)
         return np.asarray(self.owner[rows % self.period], np.int64)
 
-    def _layout(self, phase: int) -> tuple[list[tuple[int, int]], np.ndarray, np.ndarray]:
-        """For a batch whose first row sits at ``phase`` of the period: (component, rows) pairs in
-        component order, the permutation from component order to row order, each row's offset in the
-        joined stream. It depends on the phase alone, so it is kept (a few entries for usual weights)."""
-        cached = self._layouts.get(phase)
-        if cached is None:
-            labels = self.owner[(phase + np.arange(self.batch_size, dtype=np.int64)) % self.period]
-            by_component = np.argsort(labels, kind="stable")
-            counts = np.bincount(labels, minlength=len(self.streams))
-            parts = [(i, int(c)) for i, c in enumerate(counts.tolist()) if c]
-            order = np.empty(self.batch_size, np.int64)
-            order[by_component] = np.arange(self.batch_size)
-            cached = (parts, order, self._bases[labels])
-            if len(self._layouts) >= _LAYOUTS_KEPT:
-                self._layouts.clear()
-            self._layouts[phase] = cached
-        return cached
+    def _component_rows(self, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """For global rows ``rows``: each row's component and how many rows that component received
+        before it (``rows_before(row)[component]``, closed form, for many rows at once)."""
+        phase = rows % self.period
+        index = rows // self.period
+        index *= self._share[phase]
+        index += self._seen[phase]
+        return self.owner[phase], index
 
     def positions(self, step: int) -> tuple[tuple[int, int], ...]:
         """Per component: (component epoch, window index in it) of its next row at ``step`` of this epoch."""
@@ -419,16 +418,13 @@ class MixtureStream:
         return tuple((int(k) // r, int(k) % r) for k, r in zip(before, self.windows, strict=True))
 
     def _walker(self, i: int, epoch: int) -> BatchStream:
-        """Component ``i``'s single-split random order at ``epoch``, kept per component."""
+        """Component ``i``'s single-split random order at ``epoch``, kept per component (the window
+        order does not depend on the batch size; :meth:`BatchStream.windows_at` reads it)."""
         walker = self._walkers.get(i)
         if walker is None or walker.epoch != epoch:
-            # The window order does not depend on the batch size; only the page of the permutation a
-            # BatchStream computes at once does (eight batches, growing to _WALKER_PAGE). A component
-            # takes few rows per batch, so small pages would recompute the permutation every few
-            # batches: the walker's batch size makes every page full size from the start.
             walker = BatchStream(
                 self.streams[i],
-                batch_size=_WALKER_PAGE // 8,
+                batch_size=1,
                 window=self.window,
                 seed=self.seeds[i],
                 epoch=epoch,
@@ -439,14 +435,89 @@ class MixtureStream:
 
     def component_starts(self, i: int, first: int, count: int) -> np.ndarray:
         """Start offsets of component ``i``'s rows ``first .. first + count - 1`` (across its epochs)."""
+        return self._component_windows(i, np.arange(first, first + count, dtype=np.int64))
+
+    def _component_windows(self, i: int, index: np.ndarray) -> np.ndarray:
+        """Start offsets of component ``i``'s rows ``index`` (ascending): row ``k`` is window
+        ``k % R_i`` of component epoch ``k // R_i``."""
+        if not index.size:
+            return np.zeros(0, np.int64)
         per_epoch = self.windows[i]
-        parts = []
-        while count > 0:
-            epoch, within = divmod(first, per_epoch)
-            take = min(count, per_epoch - within)
-            parts.append(self._walker(i, epoch).window_starts(within, take))
-            first, count = first + take, count - take
-        return parts[0] if len(parts) == 1 else np.concatenate(parts)
+        lo, hi = int(index[0]) // per_epoch, int(index[-1]) // per_epoch
+        if lo == hi:  # the usual case: one component epoch
+            return self._epoch_windows(i, lo, index - lo * per_epoch)
+        out = np.empty_like(index)
+        cuts = np.searchsorted(index, np.arange(lo, hi + 2, dtype=np.int64) * per_epoch).tolist()
+        for epoch in range(lo, hi + 1):  # one pass per component epoch met (a small component repeats)
+            a, b = cuts[epoch - lo], cuts[epoch - lo + 1]
+            if b > a:
+                out[a:b] = self._epoch_windows(i, epoch, index[a:b] - epoch * per_epoch)
+        return out
+
+    def _epoch_windows(self, i: int, epoch: int, within: np.ndarray) -> np.ndarray:
+        """Windows ``within`` (ascending) of component ``i``'s order in component ``epoch``.
+
+        Rows read by one process lie close together: they are cut from a kept page of the order
+        (``_ORDER_PAGE`` windows from the first one asked, one permutation call for several pages of
+        batches). Rows spread further apart (one rank of many, a loader worker taking every n-th
+        step) are computed for exactly those windows.
+        """
+        first, last = int(within[0]), int(within[-1])
+        kept = self._orders.get(i)
+        if kept is not None and kept[0] == epoch and kept[1] <= first and last < kept[1] + len(kept[2]):
+            cut: np.ndarray = kept[2][within - kept[1]]
+            return cut
+        walker = self._walker(i, epoch)
+        if last - first >= 2 * len(within):
+            return walker.windows_at(within)
+        end = min(max(first + _ORDER_PAGE, last + 1), self.windows[i])
+        order = walker.windows_at(np.arange(first, end, dtype=np.int64))
+        self._orders[i] = (epoch, first, order)
+        asked: np.ndarray = order[within - first]
+        return asked
+
+    def _rows_of(self, step: int) -> tuple[np.ndarray, np.ndarray]:
+        """This rank's rows at ``step``: start offsets in the joined stream and in each row's component.
+
+        Read in order, or every n-th step as a loader worker reads, the rows of the next steps are
+        found together (a page that doubles up to ``_PAGE_ROWS`` rows while the steps asked follow
+        it): per page one closed-form schedule lookup and one permutation call per component, not
+        per batch. Any other step starts a small page. The result depends only on the step.
+        """
+        page, last = self._page, self._last
+        self._last = step
+        most = max(1, _PAGE_ROWS // self.batch_size)
+        size, stride = min(_FIRST_PAGE, most), step - last if 0 <= last < step else 1
+        if page is not None:
+            first, every, joined, own = page
+            k, r = divmod(step - first, every)
+            if r == 0 and 0 <= k < len(joined):
+                return joined[k], own[k].copy()
+            if step == first + len(joined) * every:
+                size, stride = min(2 * len(joined), most), every
+        steps = np.arange(step, min(step + size * stride, self.steps_per_epoch), stride, dtype=np.int64)
+        joined, own = self._page_rows(steps)
+        self._page = (step, stride, joined, own)
+        return joined[0], own[0].copy()
+
+    def _page_rows(self, steps: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Joined-stream and own-component start offsets of this rank's rows at ``steps`` (ascending),
+        each ``(len(steps), batch_size)``."""
+        b = self.batch_size
+        first = (self.epoch * self.steps_per_epoch + steps) * self.global_batch + self.rank * b
+        rows = (first[:, None] + np.arange(b, dtype=np.int64)).ravel()
+        label, index = self._component_rows(rows)
+        own = np.empty_like(rows)
+        if len(self.streams) == 1:
+            own[:] = self._component_windows(0, index)
+        else:
+            counts = np.bincount(label, minlength=len(self.streams))
+            for i in np.flatnonzero(counts).tolist():  # rows ascending: each component's in its own order
+                at = np.flatnonzero(label == i)
+                own[at] = self._component_windows(i, index[at])
+        joined = self._bases[label]
+        joined += own
+        return joined.reshape(len(steps), b), own.reshape(len(steps), b)
 
     # --- random access ---------------------------------------------------------------------------
     def batch(self, step: int) -> Batch:
@@ -454,15 +525,9 @@ class MixtureStream:
         if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or not 0 <= step < len(self):
             raise StreamError(f"step: expected 0 <= step < {len(self)}, got {step!r}", key="step")
         step = int(step)
-        first = self._first_row(step)
-        before = self.rows_before(first)
-        parts, order, bases = self._layout(first % self.period)
-        # Each component's rows in its own order, laid out by component, then put in row order.
-        own = [self.component_starts(i, int(before[i]), count) for i, count in parts]
-        starts = (own[0] if len(own) == 1 else np.concatenate(own))[order]
+        joined, starts = self._rows_of(step)
         # One gather over all components laid end to end (no window crosses a component's end),
         # so a mixture batch costs one gather in row order, like a single split's.
-        joined = starts + bases
         width = self.window + 1
         block = self._joined.gather(joined, width, self._joined.dtype)
         mask = self._joined.boundary_mask(joined, width) if self.boundaries else None

@@ -74,6 +74,12 @@ _DOMAIN: Final = 0x57A3_0001
 _ROUNDS: Final = 6
 _MIX1: Final = np.uint64(0xBF58476D1CE4E5B9)  # multiply-xorshift finalizer constants (common practice)
 _MIX2: Final = np.uint64(0x94D049BB133111EB)
+_MASK64: Final = (1 << 64) - 1
+_MIX1_INT: Final = int(_MIX1)  # the same constants as Python ints (the few-windows walk)
+_MIX2_INT: Final = int(_MIX2)
+# Windows left outside ``[0, n)`` after a vectorized pass: at most this many are walked with Python
+# ints (a few microseconds each), more by another pass (some 70 us of numpy call overhead whatever the size).
+_FEW_OUTSIDE: Final = 16
 _POSITION_PAGE: Final = 32  # most batches whose document segments are found together (positions=True)
 _PAGE_WINDOWS: Final = 4096  # permutation entries computed at once: amortizes numpy call overhead
 
@@ -110,15 +116,46 @@ class _Shuffle:
         self.a, self.b = np.uint64(a), np.uint64(-(-n // a) if n else 1)
         self.keys = rng.integers(0, 2**64, size=_ROUNDS, dtype=np.uint64)
 
+    def _walk(self, x: int) -> int:
+        """``x`` encrypted until it falls in ``[0, n)`` (one window, with Python ints)."""
+        while True:
+            x = self._encrypt_int(x)
+            if x < self.n:
+                return x
+
+    def _encrypt_int(self, x: int) -> int:
+        """The rounds of :meth:`_encrypt` on one Python int, products wrapped modulo 2**64 as the
+        uint64 arrays wrap them."""
+        a, b = int(self.a), int(self.b)
+        for key in self.keys.tolist():
+            left, right = divmod(x, b)
+            h = ((right ^ key) * _MIX1_INT) & _MASK64
+            h ^= h >> 31
+            h = (h * _MIX2_INT) & _MASK64
+            h ^= h >> 29
+            x = a * right + (left + h % a) % a
+        return x
+
     def _encrypt(self, x: np.ndarray) -> np.ndarray:
+        """One pass of the rounds over ``x`` (uint64 values in ``[0, a*b)``)."""
         a, b = self.a, self.b
         for key in self.keys:
-            left, right = x // b, x % b
-            h = (right ^ key) * _MIX1  # uint64 arrays wrap modulo 2**64, as the mixer intends
+            # x = a*R + (L + F(R)) mod a with (L, R) = (x // b, x % b). numpy divides a uint64 array by
+            # a scalar with a multiply (fast) but takes the remainder with a hardware divide, so the two
+            # remainders are products subtracted: x % b = x - (x // b) * b, and since L < a and
+            # F(R) % a < a, (L + F(R) % a) % a is one conditional subtraction, written as a minimum
+            # (h - a wraps to above h when h < a).
+            left = x // b
+            right = x - left * b
+            h = right ^ key
+            h *= _MIX1  # uint64 arrays wrap modulo 2**64, as the mixer intends
             h ^= h >> np.uint64(31)
             h *= _MIX2
             h ^= h >> np.uint64(29)
-            x = a * right + (left + h % a) % a
+            h -= h // a * a
+            h += left
+            x = right * a
+            x += np.minimum(h, h - a)
         return x
 
     def __call__(self, index: np.ndarray) -> np.ndarray:
@@ -127,9 +164,11 @@ class _Shuffle:
             return index.astype(np.int64, copy=True)
         x = self._encrypt(index.astype(np.uint64))
         outside = np.flatnonzero(x >= self.n)
-        while outside.size:
+        while outside.size > _FEW_OUTSIDE:
             x[outside] = self._encrypt(x[outside])
             outside = outside[x[outside] >= self.n]
+        if outside.size:  # the usual case: a few windows, fewer than 1 in sqrt(n)
+            x[outside] = [self._walk(v) for v in x[outside].tolist()]
         return x.astype(np.int64)
 
 
@@ -247,7 +286,14 @@ class BatchStream:
         self._init_rows(positions, pad_id, mask_continued, group_lengths, stride)
         self.global_batch = self.batch_size * self.world_size
         t, n = self.window, len(stream)
-        self.offset = 0 if self._plan is not None else int(self._rng().integers(0, t))
+        # the permutation keys are the generator's next draws after the offset: the generator is kept
+        # for them (popped once: a list pop is atomic, so two threads never draw from one generator)
+        self._key_draws: list[np.random.Generator] = []
+        self.offset = 0
+        if self._plan is None:
+            rng = self._rng()
+            self.offset = int(rng.integers(0, t))
+            self._key_draws.append(rng)
         usable = max(0, n - 1 - self.offset)
         if self._plan is not None:
             self.num_windows = self._plan.count
@@ -357,11 +403,7 @@ class BatchStream:
         lo, cached = self._page
         if lo <= first and first + count <= lo + len(cached):
             return cached[first - lo : first - lo + count].copy()
-        if self._shuffle is None:
-            rng = self._rng()
-            if self._plan is None:
-                rng.integers(0, self.window)  # the offset draw, replayed so the keys follow it
-            self._shuffle = _Shuffle(self.num_windows, rng)
+        shuffle = self._shuffler()
         big = self.global_batch
         start = first // big * big
         forward = bool(cached.size) and start >= lo
@@ -369,9 +411,39 @@ class BatchStream:
         size = min(2 * len(cached), most) if forward else min(8 * big, most)
         end = min(max(start + size, first + count), self.num_windows)
         idx = np.arange(start, end, dtype=np.int64)
-        perm = self._shuffle(idx)
+        perm = shuffle(idx)
         self._page = (start, perm if self._plan is not None else perm * self.window + self.offset)
         return self._page[1][first - start : first - start + count].copy()
+
+    def windows_at(self, index: np.ndarray) -> np.ndarray:
+        """Start offsets of the permuted windows at epoch positions ``index`` (int64, each in
+        ``[0, num_windows)``), in the order given: entry ``k`` is ``window_starts(index[k], 1)[0]``.
+
+        Computed for exactly these positions and not kept (the permutation is evaluated per
+        entry), so a caller that needs scattered positions, such as a mixture's component rows
+        within a page of its batches, pays for no others. In the row orders the entries are the
+        permuted row numbers themselves.
+        """
+        idx = np.asarray(index, dtype=np.int64)
+        if idx.size and (int(idx.min()) < 0 or int(idx.max()) >= self.num_windows):
+            raise StreamError(f"index: expected window positions in [0, {self.num_windows})", key="index")
+        perm = self._shuffler()(idx)
+        if self._plan is None:
+            perm *= self.window
+            perm += self.offset
+        return perm
+
+    def _shuffler(self) -> _Shuffle:
+        """The epoch's permutation of the windows (or planned rows), built on first use."""
+        if self._shuffle is None:
+            try:
+                rng = self._key_draws.pop()
+            except IndexError:  # another thread took it: the same draws again
+                rng = self._rng()
+                if self._plan is None:
+                    rng.integers(0, self.window)  # the offset draw, replayed so the keys follow it
+            self._shuffle = _Shuffle(self.num_windows, rng)
+        return self._shuffle
 
     def rows(self, step: int) -> tuple[int, int]:
         """This rank's row range ``[lo, hi)`` within global batch ``step``."""

@@ -256,6 +256,56 @@ def test_shuffle_looks_uniform() -> None:
     assert abs(np.mean(shift) - (n * n - 1) / (3 * n)) < 5
 
 
+@given(st.integers(2, 3000), st.integers(0, 2**64 - 1))
+def test_cycle_walk_with_python_ints_equals_vectorized_passes(n: int, seed: int) -> None:
+    """The few windows left outside [0, n) are walked with Python ints; the result equals walking
+    every one with the uint64 array rounds (and the map stays a bijection)."""
+    import seqpipe.windows as windows_module
+
+    def perm(few: int) -> np.ndarray:
+        old = windows_module._FEW_OUTSIDE
+        windows_module._FEW_OUTSIDE = few
+        try:
+            return _Shuffle(n, np.random.Generator(np.random.PCG64(seed)))(np.arange(n, dtype=np.int64))
+        finally:
+            windows_module._FEW_OUTSIDE = old
+
+    shuffle = _Shuffle(n, np.random.Generator(np.random.PCG64(seed)))
+    x = np.arange(int(shuffle.a) * int(shuffle.b), dtype=np.uint64)  # one pass over the whole square
+    assert [shuffle._encrypt_int(v) for v in x.tolist()] == shuffle._encrypt(x).tolist()
+    vectorized, by_ints = perm(0), perm(n)  # 0: every pass vectorized; n: every walk in Python ints
+    np.testing.assert_array_equal(by_ints, vectorized)
+    np.testing.assert_array_equal(perm(windows_module._FEW_OUTSIDE), vectorized)
+    np.testing.assert_array_equal(np.sort(by_ints), np.arange(n))
+
+
+@given(st.integers(40, 3000), st.integers(0, 2**32), st.sampled_from(["random", "documents"]), st.data())
+def test_windows_at_equals_window_starts(n: int, seed: int, order: str, data: st.DataObject) -> None:
+    """windows_at(index) gives entry k = window_starts(index[k], 1)[0] for any index set, in the order given."""
+    stream = TokenStream([np.arange(n, dtype=np.int64)], doc_starts=np.arange(0, n, 7))
+    bs = BatchStream(stream, batch_size=2, window=3, seed=seed, order=order, epoch=1, stream_key="k")
+    total = bs.num_windows
+    index = np.asarray(data.draw(st.lists(st.integers(0, total - 1), max_size=60)), np.int64)
+    expected = [int(bs.window_starts(int(i), 1)[0]) for i in index.tolist()]
+    fresh = BatchStream(stream, batch_size=2, window=3, seed=seed, order=order, epoch=1, stream_key="k")
+    assert fresh.windows_at(index).tolist() == expected
+    with pytest.raises(StreamError, match="index"):
+        fresh.windows_at(np.asarray([total], np.int64))
+
+
+def test_the_kept_generator_gives_the_keys_a_fresh_one_gives() -> None:
+    """The permutation keys drawn from the generator kept after the offset draw equal those drawn
+    from a new generator that replays the offset draw (the path a second thread takes)."""
+    stream = TokenStream([np.arange(50_000, dtype=np.int64)])
+    kept = BatchStream(stream, batch_size=4, window=7, seed=11, epoch=2, stream_key="k")
+    replayed = BatchStream(stream, batch_size=4, window=7, seed=11, epoch=2, stream_key="k")
+    replayed._key_draws.clear()
+    assert kept.offset == replayed.offset
+    np.testing.assert_array_equal(
+        kept.window_starts(0, kept.num_windows), replayed.window_starts(0, replayed.num_windows)
+    )
+
+
 def test_large_split_resume_is_direct() -> None:
     """A far step of a 10^9-token stream is computed directly, and equals the same step via pages."""
     # 10^9 tokens of zeros cost no memory: one broadcast view, never materialised
