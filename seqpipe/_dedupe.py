@@ -268,8 +268,8 @@ def group_partition(task: PartitionTask) -> Grouped:
         table, parts = _gathered(scheme, "exact", p)
         drops = np.zeros(0, np.int64)
         if len(parts):
-            keep = first_occurrence(_rows(table.column("key").combine_chunks(), 16))
-            drops = _ids(parts, table.column("row").to_numpy())[~keep]
+            dropped = ~first_occurrence(_rows(table.column("key").combine_chunks(), 16))
+            drops = _ids(parts[dropped], table.column("row").to_numpy()[dropped])  # ids of the drops only
         _write(_path(scheme, "exact-drops", p), _PLACES, _places(drops))
         exact = len(drops)
     repeats = pairs = np.zeros(0, np.int64)

@@ -72,11 +72,25 @@ class CountMerger:
 
 
 def first_occurrence(keys: np.ndarray) -> np.ndarray:
-    """Bool per row of an (n, 16) uint8 array: True where this 16-byte key occurs for the first time."""
-    if len(keys) == 0:
+    """Bool per row of an (n, 16) uint8 array: True where this 16-byte key occurs for the first time.
+
+    The keys as two 64-bit halves, ordered by a stable sort on both (equal keys end up next to
+    each other, in row order), so each run's first row is the key's first occurrence. For 1M
+    random keys this held 28-32 MB above the input at its peak, against 60-63 MB for a sort of
+    16-byte void rows (``np.unique``, used before), and took 0.49-0.65 s of CPU against
+    0.59-0.84 s (RssAnon sampled every ms; process_time)."""
+    n = len(keys)
+    if n == 0:
         return np.zeros(0, dtype=bool)
-    rows = np.ascontiguousarray(keys).view("V16").reshape(-1)
-    _, first = np.unique(rows, return_index=True)
-    keep = np.zeros(len(keys), dtype=bool)
-    keep[first] = True
+    halves = np.ascontiguousarray(keys).view(np.uint64)  # (n, 2): any byte order groups equal keys
+    order = np.lexsort((halves[:, 1], halves[:, 0]))  # stable: equal keys keep their row order
+    ranked = halves[order, 0]
+    starts = np.empty(n, dtype=bool)  # True where a run of equal keys starts
+    starts[0] = True
+    np.not_equal(ranked[1:], ranked[:-1], out=starts[1:])
+    del ranked
+    ranked = halves[order, 1]
+    starts[1:] |= ranked[1:] != ranked[:-1]
+    keep = np.zeros(n, dtype=bool)
+    keep[order[starts]] = True
     return keep

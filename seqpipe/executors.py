@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import sys
 import threading
 import time
 from collections import deque
@@ -246,17 +247,24 @@ _TRIM: list[Callable[[int], int] | None] = []
 
 
 def return_freed_memory() -> None:
-    """Hand the free pages glibc's malloc holds back to the kernel (``malloc_trim(0)``, from
-    glibc's <malloc.h>); nothing where there is no glibc. Called once a build phase's tasks are
-    done, not per task, so a phase still reuses the pages its own tasks freed.
+    """Hand the free pages the allocators hold back to the kernel: glibc's malloc
+    (``malloc_trim(0)``, from glibc's <malloc.h>; nothing where there is no glibc) and Arrow's
+    memory pool (``release_unused``; only when pyarrow is already imported). Arrow's default
+    pool, mimalloc, keeps freed pages per thread and this collects the calling thread's only.
+    Called in the build's own process once a phase's tasks are done, and after each task that
+    process runs itself (``SharedQueueExecutor``); a spawned worker keeps its freed pages for
+    its next task.
 
-    Between phases this process holds next to nothing (a few MB of live arrays, and under 2 MB
-    in Arrow's pool, measured with tracemalloc and ``bytes_allocated`` at phase ends), yet its
-    anonymous memory kept what every earlier phase's tasks had freed, in heaps fragmented by
-    the tasks' arrays: the more tasks a phase ran here, the higher the next phase started. In
-    the driver of a ``workers=2`` build of 10M short documents (scripts/benchmarks/part_scale.py)
-    the peak of its anonymous memory was 200-204 MB against 148-152 MB for 1M, and 163-169 MB
-    with this after each phase (1M: 145-162 MB)."""
+    After a task this process holds next to nothing (a few MB of live arrays, and 1-2 MB in
+    Arrow's pool, by tracemalloc, ``mallinfo2`` and ``total_allocated_bytes``), yet its
+    anonymous memory kept what its earlier tasks had freed, in heaps fragmented by the tasks'
+    arrays, so the more tasks it ran, the higher the next one started and peaked. In the
+    driver of a ``workers=2`` build of 10M short documents (scripts/benchmarks/part_scale.py),
+    with a trim after each phase only, its memory after each of its 16 MiB reading tasks was
+    96-137 MB where the first started from 39 MB; with this after each task, 45 MB (malloc's
+    freed pages were about 60 MB of the difference, Arrow's pool 29 MB). The cost is the next
+    task faulting its pages in again: 2-35 ms more CPU per task in that build's driver (see
+    DEVELOPERS.md)."""
     if not _TRIM:
         import ctypes
         import ctypes.util
@@ -268,6 +276,9 @@ def return_freed_memory() -> None:
     trim = _TRIM[0]
     if trim is not None:
         trim(0)
+    arrow = sys.modules.get("pyarrow")
+    if arrow is not None:
+        arrow.default_memory_pool().release_unused()
 
 
 _Item = tuple[Future[Any], Callable[..., Any], tuple[Any, ...], dict[str, Any]]
@@ -317,15 +328,22 @@ class SharedQueueExecutor(Executor):
                 if item is None:  # left in place for the other consumers
                     return
                 self._queue.popleft()
-            fut, fn, args, kwargs = item
-            if not fut.set_running_or_notify_cancel():
-                continue
-            try:
-                result = self._pool.submit(fn, *args, **kwargs).result() if forward else fn(*args, **kwargs)
-            except BaseException as exc:  # handed to the caller through result(), like any executor
-                fut.set_exception(exc)
-            else:
-                fut.set_result(result)
+            self._run(*item, forward)
+            del item  # the task's arguments: this thread may wait long for the next one
+            if not forward:  # what the task freed here, before this process takes the next one
+                return_freed_memory()
+
+    def _run(
+        self, fut: Future[Any], fn: Callable[..., Any], args: tuple[Any, ...], kwargs: dict[str, Any], forward: bool
+    ) -> None:
+        if not fut.set_running_or_notify_cancel():
+            return
+        try:
+            result = self._pool.submit(fn, *args, **kwargs).result() if forward else fn(*args, **kwargs)
+        except BaseException as exc:  # handed to the caller through result(), like any executor
+            fut.set_exception(exc)
+        else:
+            fut.set_result(result)
 
     def shutdown(self, wait: bool = True, *, cancel_futures: bool = False) -> None:
         with self._ready:

@@ -88,3 +88,20 @@ def test_first_occurrence_marks_each_key_once_at_its_first_row(labels: list[int]
     keys[:, 3] = labels  # keys differing in one byte
     want = [labels.index(v) == i for i, v in enumerate(labels)]
     assert first_occurrence(keys).tolist() == want
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 3), st.integers(0, 3)), max_size=40), st.integers(0, 7), st.integers(8, 15))
+def test_first_occurrence_compares_all_16_bytes(labels: list[tuple[int, int]], low: int, high: int) -> None:
+    """Keys that differ only in a byte of the first half, only in one of the second, or in
+    both: each distinct key is kept once, at its first row (checked against a plain dict of the
+    keys' bytes, common practice)."""
+    keys = np.zeros((len(labels), 16), np.uint8)
+    keys[:, low] = [a for a, _ in labels]
+    keys[:, high] = [b for _, b in labels]
+    seen: dict[bytes, int] = {}
+    for i, row in enumerate(keys):
+        seen.setdefault(row.tobytes(), i)
+    want = [seen[row.tobytes()] == i for i, row in enumerate(keys)]
+    assert first_occurrence(keys).tolist() == want
+    assert first_occurrence(keys[::-1]).tolist() == first_occurrence(keys[::-1].copy()).tolist()  # a strided view
