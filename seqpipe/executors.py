@@ -240,7 +240,15 @@ def keep_freed_memory() -> bool:
     # malloc; mallopt returns 0 when it refuses, which is checked); the trim threshold keeps
     # up to 1 GiB of freed memory in the process (its RSS no longer shrinks between tasks)
     ok = int(mallopt(m_mmap_threshold, 32 << 20)) == 1
-    return ok and int(mallopt(m_trim_threshold, 1 << 30)) == 1
+    ok = ok and int(mallopt(m_trim_threshold, 1 << 30)) == 1
+    if ok:
+        _KEEPING.append(True)
+    return ok
+
+
+# set once keep_freed_memory took effect in this process: its own tasks then keep their pages
+# too (the command line chose speed over a driver that shrinks between tasks)
+_KEEPING: list[bool] = []
 
 
 _TRIM: list[Callable[[int], int] | None] = []
@@ -252,7 +260,8 @@ def return_freed_memory() -> None:
     memory pool (``release_unused``; only when pyarrow is already imported). Arrow's default
     pool, mimalloc, keeps freed pages per thread and this collects the calling thread's only.
     Called in the build's own process once a phase's tasks are done, and after each task that
-    process runs itself (``SharedQueueExecutor``); a spawned worker keeps its freed pages for
+    process runs itself (``SharedQueueExecutor``) unless it keeps freed memory on purpose
+    (``keep_freed_memory``: the command line); a spawned worker keeps its freed pages for
     its next task.
 
     After a task this process holds next to nothing (a few MB of live arrays, and 1-2 MB in
@@ -330,7 +339,7 @@ class SharedQueueExecutor(Executor):
                 self._queue.popleft()
             self._run(*item, forward)
             del item  # the task's arguments: this thread may wait long for the next one
-            if not forward:  # what the task freed here, before this process takes the next one
+            if not forward and not _KEEPING:  # what the task freed here, before this process takes the next one
                 return_freed_memory()
 
     def _run(

@@ -330,3 +330,9 @@ def test_this_process_returns_freed_memory_after_each_task_it_runs(monkeypatch: 
     assert [f.result(timeout=10) for f in [ex.submit(square, i) for i in range(5)]] == [0, 1, 4, 9, 16]
     ex.shutdown()
     assert calls == []
+    # a process that keeps freed memory on purpose (the command line) keeps it after its tasks
+    monkeypatch.setattr(executors, "_KEEPING", [True])
+    ex = SharedQueueExecutor(ThreadPoolExecutor(1), 0, local=1)
+    assert [f.result(timeout=10) for f in [ex.submit(square, i) for i in range(3)]] == [0, 1, 4]
+    ex.shutdown()
+    assert calls == []
