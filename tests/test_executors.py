@@ -321,6 +321,7 @@ def test_this_process_returns_freed_memory_after_each_task_it_runs(monkeypatch: 
 
     calls: list[str] = []
     monkeypatch.setattr(executors, "return_freed_memory", lambda: calls.append(threading.current_thread().name))
+    monkeypatch.setattr(executors, "_KEEPING", [])  # as in a library caller's process
     ex = SharedQueueExecutor(ThreadPoolExecutor(1), 0, local=1)  # the local thread only
     assert [f.result(timeout=10) for f in [ex.submit(square, i) for i in range(5)]] == [0, 1, 4, 9, 16]
     ex.shutdown()
