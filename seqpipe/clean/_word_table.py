@@ -23,7 +23,18 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from seqpipe.clean._quality import Wide, mix64, space_bytes, utf8_buffers, wide_code_points
+from seqpipe.clean._quality import (
+    SPACE_RUNS,
+    Wide,
+    in_runs,
+    mark_wide_spaces,
+    mix64,
+    padded_bytes,
+    reduce_runs,
+    scratch,
+    utf8_buffers,
+    wide_code_points,
+)
 from seqpipe.clean.base import as_documents
 
 _PACKED: Final = 7  # bytes a code holds; the top byte holds the length (1-7), so no two packings meet
@@ -63,8 +74,7 @@ class WordTable:
         out = np.zeros(self.documents, dtype=np.int64)
         filled = self.first[1:] > self.first[:-1]
         if filled.any():
-            # summed in int64 as read (no int64 copy of a bool or int32 array first)
-            out[filled] = np.add.reduceat(values, self.first[:-1][filled], dtype=np.int64)
+            out[filled] = reduce_runs(values, self.first[:-1][filled], np.int64)
         return out
 
     @property
@@ -162,9 +172,10 @@ def word_table(docs: pa.Array) -> WordTable:
 def _bounds(docs: pa.Array, data: np.ndarray, offsets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Start and end byte of every word: a word starts at a non-space byte after a space byte or
     at a document's start, and ends before a space byte or at a document's end."""
-    inside = space_bytes(docs)  # a new array: turned into its negation in place
+    # both byte-sized arrays in this thread's scratch buffers (see _quality.scratch)
+    inside = mark_wide_spaces(docs, in_runs(data, SPACE_RUNS, out=scratch("words.inside", len(data), np.bool_)))
     np.logical_not(inside, out=inside)
-    edge = np.empty(len(data), dtype=bool)  # True > False: inside here, not inside before / after
+    edge = scratch("words.edge", len(data), np.bool_)  # True > False: inside here, not inside before / after
     edge[0] = inside[0]
     np.greater(inside[1:], inside[:-1], out=edge[1:])
     first = offsets[:-1][offsets[:-1] < len(data)]
@@ -179,25 +190,37 @@ def _bounds(docs: pa.Array, data: np.ndarray, offsets: np.ndarray) -> tuple[np.n
     return starts, ends
 
 
-def _keys(padded: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
-    """Per word: its 64-bit key (see the module docstring); ``padded``, the batch's bytes and
-    eight zero bytes (:attr:`Wide.padded`)."""
+def _keys(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
+    """Per word: its 64-bit key (see the module docstring)."""
+    padded = padded_bytes(data, "words.padded")  # eight zero bytes after the batch's
     # every byte position read as the start of a little-endian uint64 (overlapping, no copy)
-    eight = np.ndarray((len(padded) - 8,), dtype="<u8", buffer=padded, strides=(1,))
+    eight = np.ndarray((len(data),), dtype="<u8", buffer=padded, strides=(1,))
     # fancy indexing, not np.take: np.take copies a strided view whole first (DEVELOPERS.md)
     keys: np.ndarray = eight[starts]
-    long = np.flatnonzero(sizes > _PACKED)
+    is_long = scratch("words.is_long", len(sizes), np.bool_)
+    np.greater(sizes, _PACKED, out=is_long)
+    long = np.flatnonzero(is_long)
     if len(long):
         # first and last eight bytes (whole: a longer word has at least eight) and the length
-        last = eight[starts[long] + sizes[long] - 8]
+        size = sizes[long]
+        at = starts[long]
+        at += size
+        at -= 8
+        last = eight[at]
         with np.errstate(over="ignore"):
-            mixed = mix64(keys[long] ^ mix64(last * _LAST_MIX + sizes[long].astype(np.uint64)))
+            last *= _LAST_MIX
+            last += size.view(np.uint64)  # sizes are positive: the same bits
+            mixed = mix64(keys[long] ^ mix64(last))
     # per word its low-byte mask and its length byte, from tables by length (mode="clip": a
-    # longer word reads the entries of length 7, and its key is replaced below)
-    keys &= np.take(LOW_BYTES, sizes, mode="clip")
-    keys |= np.take(_LENGTH_BYTE, sizes, mode="clip")
+    # longer word reads the entries of length 7, and its key is replaced below), through one
+    # scratch array
+    table = scratch("words.by_length", len(sizes), np.uint64)
+    keys &= np.take(LOW_BYTES, sizes, mode="clip", out=table)
+    keys |= np.take(_LENGTH_BYTE, sizes, mode="clip", out=table)
     if len(long):
-        keys[long] = _LONG | (mixed & _HASH_BITS)
+        mixed &= _HASH_BITS
+        mixed |= _LONG
+        keys[long] = mixed
     return keys
 
 
@@ -229,6 +252,6 @@ def _cut(docs: pa.Array) -> WordTable:
     first = np.searchsorted(starts, offsets).astype(np.int64)
     doc = np.repeat(np.arange(len(docs), dtype=np.int64), np.diff(first))
     sizes = ends - starts
-    keys = _keys(wide.padded, starts, sizes)
+    keys = _keys(data, starts, sizes)
     chars, wide_word = _chars(wide, starts, ends, sizes)  # sizes become the code points
     return WordTable(data, starts, ends, doc, first, keys, chars, wide, wide_word)
