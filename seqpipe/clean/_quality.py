@@ -95,30 +95,36 @@ class _Scratch(threading.local):
 
     def __init__(self) -> None:
         self.buffers: dict[str, np.ndarray] = {}
+        self.kept = 0  # bytes of all buffers
 
 
 _SCRATCH: Final = _Scratch()
-_SCRATCH_MAX: Final = 64 << 20  # bytes: a larger array is made new each time (not kept)
+_SCRATCH_MAX: Final = 64 << 20  # bytes kept per thread; an array past that is made new each time
 
 
 def scratch(slot: str, size: int, dtype: type | np.dtype[Any]) -> np.ndarray:
     """An array of ``size`` items of ``dtype`` with undefined content, over this thread's buffer
     ``slot``: the same memory on every call with that slot, so the next call with it overwrites
-    the array. Only for temporaries that no result keeps, each slot used by one function.
+    the array. Only for temporaries that no result keeps; two functions share a slot only when
+    neither runs while the other holds it.
 
     A new array of a batch's size is faulted in and zeroed by the kernel page by page whenever
     malloc handed the last one back (a caller's process may do so for every large array: with
-    glibc's trim threshold at 64 KiB the word cut took twice the CPU time); a kept buffer is not.
+    glibc's trim threshold at 64 KiB the word cut took twice the CPU time); a kept buffer is
+    not. The buffers of a thread hold at most ``_SCRATCH_MAX`` bytes together (about 16 MB for
+    the batches of 1 MB a build reads).
     """
     kind = np.dtype(dtype)
     nbytes = size * kind.itemsize
-    if nbytes > _SCRATCH_MAX:
-        return np.empty(size, dtype=kind)
-    buffers = _SCRATCH.buffers
-    buffer = buffers.get(slot)
+    state = _SCRATCH
+    buffer = state.buffers.get(slot)
     if buffer is None or len(buffer) < nbytes:
-        # an eighth more than asked: the next batch is seldom exactly as large
-        buffer = buffers[slot] = np.empty(nbytes + nbytes // 8 + 64, dtype=np.uint8)
+        grown = nbytes + nbytes // 8 + 64  # an eighth more: the next batch is seldom exactly as large
+        held = 0 if buffer is None else len(buffer)
+        if state.kept - held + grown > _SCRATCH_MAX:
+            return np.empty(size, dtype=kind)
+        buffer = state.buffers[slot] = np.empty(grown, dtype=np.uint8)
+        state.kept += grown - held
     out: np.ndarray = buffer[:nbytes].view(kind)
     return out
 
@@ -176,7 +182,7 @@ def wide_code_points(docs: pa.Array) -> Wide:
     # each code point's bytes read as one little-endian uint32 (equal exactly for equal code
     # points), numbered by Arrow's hash table: a batch holds few distinct code points among
     # many positions (no sort); only the distinct ones are decoded
-    padded = padded_bytes(data, "wide.padded")
+    padded = padded_bytes(data, "padded")
     four = np.ndarray((len(data),), dtype="<u4", buffer=padded, strides=(1,))
     raw = four[at] & np.take(_SEQUENCE_MASK, size)  # fancy indexing on a strided view (DEVELOPERS.md)
     encoded = pc.dictionary_encode(pa.array(raw, pa.uint32()))

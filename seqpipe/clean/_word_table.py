@@ -173,9 +173,9 @@ def _bounds(docs: pa.Array, data: np.ndarray, offsets: np.ndarray) -> tuple[np.n
     """Start and end byte of every word: a word starts at a non-space byte after a space byte or
     at a document's start, and ends before a space byte or at a document's end."""
     # both byte-sized arrays in this thread's scratch buffers (see _quality.scratch)
-    inside = mark_wide_spaces(docs, in_runs(data, SPACE_RUNS, out=scratch("words.inside", len(data), np.bool_)))
+    inside = mark_wide_spaces(docs, in_runs(data, SPACE_RUNS, out=scratch("bytes.1", len(data), np.bool_)))
     np.logical_not(inside, out=inside)
-    edge = scratch("words.edge", len(data), np.bool_)  # True > False: inside here, not inside before / after
+    edge = scratch("bytes.2", len(data), np.bool_)  # True > False: inside here, not inside before / after
     edge[0] = inside[0]
     np.greater(inside[1:], inside[:-1], out=edge[1:])
     first = offsets[:-1][offsets[:-1] < len(data)]
@@ -192,7 +192,7 @@ def _bounds(docs: pa.Array, data: np.ndarray, offsets: np.ndarray) -> tuple[np.n
 
 def _keys(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
     """Per word: its 64-bit key (see the module docstring)."""
-    padded = padded_bytes(data, "words.padded")  # eight zero bytes after the batch's
+    padded = padded_bytes(data, "padded")  # eight zero bytes after the batch's
     # every byte position read as the start of a little-endian uint64 (overlapping, no copy)
     eight = np.ndarray((len(data),), dtype="<u8", buffer=padded, strides=(1,))
     # fancy indexing, not np.take: np.take copies a strided view whole first (DEVELOPERS.md)

@@ -55,9 +55,9 @@ class LetterShare(QualityFilter):
         # ones (b | 0x20 is a-z exactly for A-Z and a-z) and the code points beyond ASCII that
         # RE2 calls letters (asked once per distinct one)
         # the byte-sized arrays in this thread's scratch buffers (see _quality.scratch)
-        flags = scratch("letter_share.flags", len(data), np.bool_)
+        flags = scratch("bytes.1", len(data), np.bool_)
         visible = np.diff(offsets) - per_document_sum(in_runs(data, RE2_SPACE_RUNS, out=flags), offsets)
-        folded = scratch("letter_share.folded", len(data), np.uint8)
+        folded = scratch("bytes.2", len(data), np.uint8)
         np.bitwise_or(data, np.uint8(0x20), out=folded)
         folded -= np.uint8(ord("a"))  # in place (wraps below "a")
         letters = per_document_sum(np.less_equal(folded, np.uint8(25), out=flags), offsets)
