@@ -542,9 +542,10 @@ def _poison_scratch(seed: int) -> None:
 @settings(max_examples=200, deadline=None)
 @given(docs=_DOCS, before=_DOCS, seed=st.integers(0, 2**32 - 1))
 def test_measures_do_not_depend_on_what_scratch_arrays_held(docs: list[str], before: list[str], seed: int) -> None:
-    """Measured after another batch and with every scratch buffer filled with random bytes, the
-    measures still equal the plain-Python references, and the word table of the batch before
-    is left as it was (no result lives in a scratch buffer)."""
+    """Measured after a larger batch (its values left in the scratch buffers) and with every
+    scratch buffer filled with random bytes, the measures still equal the plain-Python
+    references, and the word table of the batch before is left as it was (no result lives in a
+    scratch buffer)."""
     from seqpipe.clean._word_table import word_table
 
     bigger = [d * 3 for d in before]  # larger buffers than this batch needs, filled with junk below
@@ -562,5 +563,38 @@ def test_measures_do_not_depend_on_what_scratch_arrays_held(docs: list[str], bef
     for n in (1, 2, 3):
         _poison_scratch(seed + 1 + n)
         assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
+    strip = "\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d"
+    fw = [sum(w.lower().strip(strip) in FUNCTION_WORDS["en"] for w in d.split()) for d in docs]
+    FunctionWords().keep(arr(bigger))  # the scratch buffers hold the larger batch's values (stale, not random)
+    assert FunctionWords(minimum=1).keep(arr(docs)).tolist() == [c >= 1 for c in fw]
+    _poison_scratch(seed + 5)
+    assert FunctionWords().measure(arr(docs)).tolist() == fw
+    _poison_scratch(seed + 6)
+    assert FunctionWords(minimum=1).keep(arr(docs)).tolist() == [c >= 1 for c in fw]
     for name, values in kept.items():
         assert getattr(table, name).tolist() == values.tolist(), name
+
+
+@settings(max_examples=200, deadline=None)
+@given(sizes=st.lists(st.integers(0, 5), max_size=12), pick=st.lists(st.booleans(), min_size=12, max_size=12))
+def test_words_of_some_documents_equal_the_mask_over_every_word(sizes: list[int], pick: list[bool]) -> None:
+    """_words_of gives the same word indices as selecting, word by word, those whose document is
+    picked (np.flatnonzero(picked[doc]))."""
+    from seqpipe.clean.function_words import _words_of
+
+    first = np.zeros(len(sizes) + 1, dtype=np.int64)
+    np.cumsum(sizes, out=first[1:])
+    doc = np.repeat(np.arange(len(sizes)), sizes)
+    picked = np.array(pick[: len(sizes)], dtype=bool)
+    assert _words_of(first, np.flatnonzero(picked)).tolist() == np.flatnonzero(picked[doc]).tolist()
+
+
+def test_function_words_after_a_batch_of_function_words_count_only_their_own() -> None:
+    """A batch measured right after one full of function words (whose codes its scratch arrays
+    still hold, word for word at the same places) counts only its own function words."""
+    full = arr(["the and of that " * 20, "with have to be " * 20] * 30)
+    none = arr(["tea ant off thaw " * 20, "wit hive tone bee " * 20] * 30)
+    step = FunctionWords(minimum=1)
+    assert step.keep(full).all()
+    assert not step.keep(none).any()
+    assert step.measure(none).tolist() == [0] * 60

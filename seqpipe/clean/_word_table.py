@@ -41,6 +41,7 @@ _PACKED: Final = 7  # bytes a code holds; the top byte holds the length (1-7), s
 _LONG: Final = np.uint64(0xFF << 56)  # top byte of a longer word's key and exact code
 _HASH_BITS: Final = np.uint64((1 << 56) - 1)  # a longer word's key: its hash below the top byte
 _LAST_MIX: Final = np.uint64(0x9E3779B97F4A7C15)  # odd: spreads the last eight bytes before mixing
+_SUM32_ITEMS: Final = 1 << 24  # one-byte values below which per-document sums fit in 32 bits
 # per length 0-7: the mask of that many low bytes
 LOW_BYTES: Final = np.array([(1 << (8 * k)) - 1 for k in range(_PACKED + 1)], dtype=np.uint64)
 # per length 0-7: that length in the top byte
@@ -74,7 +75,10 @@ class WordTable:
         out = np.zeros(self.documents, dtype=np.int64)
         filled = self.first[1:] > self.first[:-1]
         if filled.any():
-            out[filled] = reduce_runs(values, self.first[:-1][filled], np.int64)
+            # one-byte values (flags) summed in 32 bits where no sum can pass 2**32: a cast of
+            # half the size of one to int64
+            small = values.dtype.itemsize == 1 and len(values) < _SUM32_ITEMS
+            out[filled] = reduce_runs(values, self.first[:-1][filled], np.uint32 if small else np.int64)
         return out
 
     @property
