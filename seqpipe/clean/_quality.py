@@ -111,7 +111,7 @@ def scratch(slot: str, size: int, dtype: type | np.dtype[Any]) -> np.ndarray:
     A new array of a batch's size is faulted in and zeroed by the kernel page by page whenever
     malloc handed the last one back (a caller's process may do so for every large array: with
     glibc's trim threshold at 64 KiB the word cut took twice the CPU time); a kept buffer is
-    not. The buffers of a thread hold at most ``_SCRATCH_MAX`` bytes together (22 MB measured for
+    not. The buffers of a thread hold at most ``_SCRATCH_MAX`` bytes together (24 MB measured for
     the batches of about 1 MB a build reads, with every quality filter and redact).
     """
     kind = np.dtype(dtype)
