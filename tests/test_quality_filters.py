@@ -503,3 +503,98 @@ def test_short_word_keys_are_their_bytes_up_to_the_batch_end(docs: list[str], of
     assert len(keys) == len(want)
     for word, key in zip(want, keys, strict=True):
         assert key == (int(pack_ascii([word])[0]) if len(word) <= 7 else key | (0xFF << 56)), word
+
+
+def test_scratch_arrays_are_kept_per_slot_and_per_thread() -> None:
+    """scratch gives the same memory for one slot on every call (grown when asked for more),
+    separate memory for two slots and for two threads, and a new array past its size bound."""
+    import threading
+
+    from seqpipe.clean import _quality
+
+    a = _quality.scratch("test.a", 1000, np.int64)
+    b = _quality.scratch("test.b", 1000, np.int64)
+    assert a.dtype == np.int64 and len(a) == 1000 and not np.shares_memory(a, b)
+    assert np.shares_memory(a, _quality.scratch("test.a", 8000, np.uint8))  # the same bytes
+    grown = _quality.scratch("test.a", 100_000, np.int64)
+    assert len(grown) == 100_000 and np.shares_memory(grown, _quality.scratch("test.a", 10, np.int64))
+    other: list[np.ndarray] = []
+    thread = threading.Thread(target=lambda: other.append(_quality.scratch("test.a", 1000, np.int64)))
+    thread.start()
+    thread.join()
+    assert not np.shares_memory(other[0], grown)
+    big = _quality._SCRATCH_MAX // 8 + 1
+    assert not np.shares_memory(
+        _quality.scratch("test.big", big, np.int64), _quality.scratch("test.big", big, np.int64)
+    )
+
+
+def _poison_scratch(seed: int) -> None:
+    """Fill every scratch buffer of this thread with random bytes (a measure must not read what
+    the last batch left there)."""
+    from seqpipe.clean import _quality
+
+    rng = np.random.default_rng(seed)
+    for buffer in _quality._SCRATCH.buffers.values():
+        buffer[:] = rng.integers(0, 256, len(buffer), dtype=np.uint8)
+
+
+@settings(max_examples=200, deadline=None)
+@given(docs=_DOCS, before=_DOCS, seed=st.integers(0, 2**32 - 1))
+def test_measures_do_not_depend_on_what_scratch_arrays_held(docs: list[str], before: list[str], seed: int) -> None:
+    """Measured after a larger batch (its values left in the scratch buffers) and with every
+    scratch buffer filled with random bytes, the measures still equal the plain-Python
+    references, and the word table of the batch before is left as it was (no result lives in a
+    scratch buffer)."""
+    from seqpipe.clean._word_table import word_table
+
+    bigger = [d * 3 for d in before]  # larger buffers than this batch needs, filled with junk below
+    for n in (1, 2, 3):
+        RepeatedNgrams(n=n).keep(arr(bigger))
+    LetterShare().keep(arr(bigger))
+    FunctionWords().keep(arr(bigger))
+    table = word_table(arr(bigger))
+    kept = {name: np.copy(getattr(table, name)) for name in ("starts", "ends", "doc", "first", "keys", "chars")}
+    _poison_scratch(seed)
+    a = arr(docs)
+    assert np.allclose(LetterShare().measure(a), [ref_letter_share(d) for d in docs])
+    _poison_scratch(seed + 1)
+    assert np.allclose(WordLength().measure(arr(docs)), [ref_mean_word_length(d) for d in docs])
+    for n in (1, 2, 3):
+        _poison_scratch(seed + 1 + n)
+        assert np.allclose(RepeatedNgrams(n=n).measure(arr(docs)), [ref_repeated_ngrams(d, n) for d in docs])
+    strip = "\"'()[]{}.,;:!?-\u2018\u2019\u201c\u201d"
+    fw = [sum(w.lower().strip(strip) in FUNCTION_WORDS["en"] for w in d.split()) for d in docs]
+    FunctionWords().keep(arr(bigger))  # the scratch buffers hold the larger batch's values (stale, not random)
+    assert FunctionWords(minimum=1).keep(arr(docs)).tolist() == [c >= 1 for c in fw]
+    _poison_scratch(seed + 5)
+    assert FunctionWords().measure(arr(docs)).tolist() == fw
+    _poison_scratch(seed + 6)
+    assert FunctionWords(minimum=1).keep(arr(docs)).tolist() == [c >= 1 for c in fw]
+    for name, values in kept.items():
+        assert getattr(table, name).tolist() == values.tolist(), name
+
+
+@settings(max_examples=200, deadline=None)
+@given(sizes=st.lists(st.integers(0, 5), max_size=12), pick=st.lists(st.booleans(), min_size=12, max_size=12))
+def test_words_of_some_documents_equal_the_mask_over_every_word(sizes: list[int], pick: list[bool]) -> None:
+    """_words_of gives the same word indices as selecting, word by word, those whose document is
+    picked (np.flatnonzero(picked[doc]))."""
+    from seqpipe.clean.function_words import _words_of
+
+    first = np.zeros(len(sizes) + 1, dtype=np.int64)
+    np.cumsum(sizes, out=first[1:])
+    doc = np.repeat(np.arange(len(sizes)), sizes)
+    picked = np.array(pick[: len(sizes)], dtype=bool)
+    assert _words_of(first, np.flatnonzero(picked)).tolist() == np.flatnonzero(picked[doc]).tolist()
+
+
+def test_function_words_after_a_batch_of_function_words_count_only_their_own() -> None:
+    """A batch measured right after one full of function words (whose codes its scratch arrays
+    still hold, word for word at the same places) counts only its own function words."""
+    full = arr(["the and of that " * 20, "with have to be " * 20] * 30)
+    none = arr(["tea ant off thaw " * 20, "wit hive tone bee " * 20] * 30)
+    step = FunctionWords(minimum=1)
+    assert step.keep(full).all()
+    assert not step.keep(none).any()
+    assert step.measure(none).tolist() == [0] * 60

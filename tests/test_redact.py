@@ -508,3 +508,20 @@ def test_byte_cut_at_names_equals_the_string_split(docs: list[str], offset: int)
     assert seeded.keys.to_pylist() == plain.keys.to_pylist()
     assert seeded.codes.tolist() == plain.codes.tolist()
     assert seeded.doc_lengths.tolist() == plain.doc_lengths.tolist()
+
+
+@pytest.mark.parametrize("targets", [("email",), ("ip",), ("card", "phone"), ("email", "ip", "card", "phone")])
+def test_step_does_not_depend_on_what_scratch_arrays_held(targets: tuple[str, ...]) -> None:
+    """With this thread's scratch buffers (the byte scan's arrays) filled with random bytes after
+    a larger batch, the step still equals redact_text run on every document."""
+    from seqpipe.clean import _quality
+
+    docs = [*_ALL_SAMPLES, "a quiet crossing", "", "ferry 7 at 9"]
+    Redact(targets=targets).apply_counted(pa.array([d * 5 for d in docs], pa.large_string()))
+    rng = np.random.default_rng(len(targets))
+    for buffer in _quality._SCRATCH.buffers.values():
+        buffer[:] = rng.integers(0, 256, len(buffer), dtype=np.uint8)
+    out, counts = Redact(targets=targets).apply_counted(pa.array(docs, pa.large_string()))
+    expected = [redact_text(d, targets) for d in docs]
+    assert out.to_pylist() == [e[0] for e in expected]
+    assert counts == {t: sum(e[1][t] for e in expected) for t in targets}

@@ -14,7 +14,7 @@ import threading
 from abc import abstractmethod
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import ClassVar, Final
+from typing import Any, ClassVar, Final
 
 import numpy as np
 import pyarrow as pa
@@ -90,18 +90,62 @@ def _asked(distinct: np.ndarray, kernel: Callable[[pa.Array], pa.Array]) -> np.n
     return out
 
 
+class _Scratch(threading.local):
+    """Per thread, the scratch arrays of the batch-wide passes, by slot name (see :func:`scratch`)."""
+
+    def __init__(self) -> None:
+        self.buffers: dict[str, np.ndarray] = {}
+        self.kept = 0  # bytes of all buffers
+
+
+_SCRATCH: Final = _Scratch()
+_SCRATCH_MAX: Final = 64 << 20  # bytes kept per thread; an array past that is made new each time
+
+
+def scratch(slot: str, size: int, dtype: type | np.dtype[Any]) -> np.ndarray:
+    """An array of ``size`` items of ``dtype`` with undefined content, over this thread's buffer
+    ``slot``: the same memory on every call with that slot, so the next call with it overwrites
+    the array. Only for temporaries that no result keeps; two functions share a slot only when
+    neither runs while the other holds it.
+
+    A new array of a batch's size is faulted in and zeroed by the kernel page by page whenever
+    malloc handed the last one back (a caller's process may do so for every large array: with
+    glibc's trim threshold at 64 KiB the word cut took twice the CPU time); a kept buffer is
+    not. The buffers of a thread hold at most ``_SCRATCH_MAX`` bytes together (24 MB measured for
+    the batches of about 1 MB a build reads, with every quality filter and redact).
+    """
+    kind = np.dtype(dtype)
+    nbytes = size * kind.itemsize
+    state = _SCRATCH
+    buffer = state.buffers.get(slot)
+    if buffer is None or len(buffer) < nbytes:
+        grown = nbytes + nbytes // 8 + 64  # an eighth more: the next batch is seldom exactly as large
+        held = 0 if buffer is None else len(buffer)
+        if state.kept - held + grown > _SCRATCH_MAX:
+            return np.empty(size, dtype=kind)
+        buffer = state.buffers[slot] = np.empty(grown, dtype=np.uint8)
+        state.kept += grown - held
+    out: np.ndarray = buffer[:nbytes].view(kind)
+    return out
+
+
+def padded_bytes(data: np.ndarray, slot: str) -> np.ndarray:
+    """``data`` (uint8) followed by eight zero bytes, in this thread's scratch buffer ``slot``."""
+    padded = scratch(slot, len(data) + 8, np.uint8)
+    padded[: len(data)] = data
+    padded[len(data) :] = 0
+    return padded
+
+
 @dataclass(frozen=True, slots=True)
 class Wide:
     """A batch's code points beyond ASCII: the position of each one's first byte, its size in
-    bytes, and the distinct code points (in no set order) with, per position, its index among them;
-    and the batch's bytes followed by eight zero bytes (``padded``: one copy of the batch that
-    overlapping multi-byte reads share)."""
+    bytes, and the distinct code points (in no set order) with, per position, its index among them."""
 
     at: np.ndarray
     size: np.ndarray
     distinct: np.ndarray
     inverse: np.ndarray
-    padded: np.ndarray
 
     def classify(self, kernel: Callable[[pa.Array], pa.Array]) -> np.ndarray:
         """Per position: ``kernel``'s answer for its code point (asked once per distinct one)."""
@@ -130,21 +174,21 @@ def wide_code_points(docs: pa.Array) -> Wide:
     if last.wide is not None and docs is last.docs:
         return last.wide
     data = utf8_buffers(docs)[0]
-    at = np.flatnonzero(data >= 0xC0)
+    lead = scratch("wide.lead", len(data), np.bool_)
+    np.greater_equal(data, np.uint8(0xC0), out=lead)
+    at = np.flatnonzero(lead)
     first = np.take(data, at)
     size = np.where(first >= 0xF0, 4, np.where(first >= 0xE0, 3, 2))
     # each code point's bytes read as one little-endian uint32 (equal exactly for equal code
     # points), numbered by Arrow's hash table: a batch holds few distinct code points among
     # many positions (no sort); only the distinct ones are decoded
-    padded = np.empty(len(data) + 8, dtype=np.uint8)
-    padded[: len(data)] = data
-    padded[len(data) :] = 0
+    padded = padded_bytes(data, "padded")
     four = np.ndarray((len(data),), dtype="<u4", buffer=padded, strides=(1,))
     raw = four[at] & np.take(_SEQUENCE_MASK, size)  # fancy indexing on a strided view (DEVELOPERS.md)
     encoded = pc.dictionary_encode(pa.array(raw, pa.uint32()))
     distinct = np.ascontiguousarray(encoded.dictionary.to_numpy(zero_copy_only=False), dtype="<u4")
     points = code_points(distinct.view(np.uint8), np.arange(len(distinct), dtype=np.int64) * 4)
-    wide = Wide(at, size, points, np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64), padded)
+    wide = Wide(at, size, points, np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64))
     last.docs, last.wide = docs, wide
     return wide
 
@@ -163,19 +207,23 @@ def byte_runs(flags: np.ndarray) -> tuple[tuple[int, int], ...]:
     return tuple(zip(edges[0::2].tolist(), (edges[1::2] - 1).tolist(), strict=True))
 
 
-def in_runs(data: np.ndarray, runs: tuple[tuple[int, int], ...]) -> np.ndarray:
+def in_runs(data: np.ndarray, runs: tuple[tuple[int, int], ...], out: np.ndarray | None = None) -> np.ndarray:
     """Per byte of ``data`` (uint8): whether its value lies in one of ``runs`` ((first, last)
-    pairs). One subtraction and compare per run (``byte - first`` wraps below ``first``): a few
-    times cheaper than a table look-up per byte, which numpy makes with an index array of
-    eight bytes per byte."""
-    out = np.zeros(len(data), dtype=bool)
-    # two scratch arrays for all runs: each new array of a batch's size costs page faults
-    shifted = np.empty(len(data), dtype=np.uint8)
-    inside = np.empty(len(data), dtype=bool)
-    for first, last in runs:
+    pairs), in ``out`` when given (bool, ``data``'s length) or a new array. One subtraction and
+    compare per run (``byte - first`` wraps below ``first``): a few times cheaper than a table
+    look-up per byte, which numpy makes with an index array of eight bytes per byte."""
+    if out is None:
+        out = np.empty(len(data), dtype=bool)
+    if not runs:
+        out[:] = False
+    # two scratch arrays for all runs (see scratch); the first run's compare writes ``out``
+    shifted = scratch("in_runs.shifted", len(data), np.uint8)
+    inside = scratch("in_runs.inside", len(data), np.bool_) if len(runs) > 1 else out
+    for k, (first, last) in enumerate(runs):
         np.subtract(data, np.uint8(first), out=shifted, dtype=np.uint8)
-        np.less_equal(shifted, np.uint8(last - first), out=inside)
-        out |= inside
+        np.less_equal(shifted, np.uint8(last - first), out=inside if k else out)
+        if k:
+            out |= inside
     return out
 
 
@@ -214,9 +262,24 @@ def per_document_sum(flags: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     out = np.zeros(len(offsets) - 1, dtype=np.int64)
     filled = offsets[1:] > offsets[:-1]
     if filled.any():
-        # 32-bit sums where no sum can pass 2**32 (255 per byte): half the memory traffic of 64-bit
-        wide = np.uint32 if len(flags) < _SUM32_BYTES else np.int64
-        out[filled] = np.add.reduceat(flags, offsets[:-1][filled], dtype=wide)
+        # 32-bit sums where no sum can pass 2**32 (255 per byte): half the memory traffic of
+        # 64-bit. Widened into a scratch array first, and summed into a given output: reduceat's
+        # own cast (its dtype argument) makes a new array of the flags' length, and without
+        # ``out`` it made one too (page faults measured with getrusage)
+        out[filled] = reduce_runs(flags, offsets[:-1][filled], np.uint32 if len(flags) < _SUM32_BYTES else np.int64)
+    return out
+
+
+def reduce_runs(values: np.ndarray, starts: np.ndarray, dtype: type) -> np.ndarray:
+    """``np.add.reduceat(values, starts, dtype=dtype)`` (``starts`` increasing, in range) without a
+    new array of ``values``' length: a cast goes through this thread's scratch buffer."""
+    if values.dtype != np.dtype(dtype):
+        widened = scratch("reduce_runs", len(values), dtype)
+        np.copyto(widened, values, casting="unsafe")
+        values = widened
+    out: np.ndarray = np.zeros(len(starts), dtype=dtype)
+    if len(starts):
+        np.add.reduceat(values, starts, out=out)
     return out
 
 

@@ -23,13 +23,25 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from seqpipe.clean._quality import Wide, mix64, space_bytes, utf8_buffers, wide_code_points
+from seqpipe.clean._quality import (
+    SPACE_RUNS,
+    Wide,
+    in_runs,
+    mark_wide_spaces,
+    mix64,
+    padded_bytes,
+    reduce_runs,
+    scratch,
+    utf8_buffers,
+    wide_code_points,
+)
 from seqpipe.clean.base import as_documents
 
 _PACKED: Final = 7  # bytes a code holds; the top byte holds the length (1-7), so no two packings meet
 _LONG: Final = np.uint64(0xFF << 56)  # top byte of a longer word's key and exact code
 _HASH_BITS: Final = np.uint64((1 << 56) - 1)  # a longer word's key: its hash below the top byte
 _LAST_MIX: Final = np.uint64(0x9E3779B97F4A7C15)  # odd: spreads the last eight bytes before mixing
+_SUM32_ITEMS: Final = 1 << 24  # one-byte values below which per-document sums fit in 32 bits
 # per length 0-7: the mask of that many low bytes
 LOW_BYTES: Final = np.array([(1 << (8 * k)) - 1 for k in range(_PACKED + 1)], dtype=np.uint64)
 # per length 0-7: that length in the top byte
@@ -63,8 +75,10 @@ class WordTable:
         out = np.zeros(self.documents, dtype=np.int64)
         filled = self.first[1:] > self.first[:-1]
         if filled.any():
-            # summed in int64 as read (no int64 copy of a bool or int32 array first)
-            out[filled] = np.add.reduceat(values, self.first[:-1][filled], dtype=np.int64)
+            # one-byte values (flags) summed in 32 bits where no sum can pass 2**32: a cast of
+            # half the size of one to int64
+            small = values.dtype.itemsize == 1 and len(values) < _SUM32_ITEMS
+            out[filled] = reduce_runs(values, self.first[:-1][filled], np.uint32 if small else np.int64)
         return out
 
     @property
@@ -162,9 +176,10 @@ def word_table(docs: pa.Array) -> WordTable:
 def _bounds(docs: pa.Array, data: np.ndarray, offsets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Start and end byte of every word: a word starts at a non-space byte after a space byte or
     at a document's start, and ends before a space byte or at a document's end."""
-    inside = space_bytes(docs)  # a new array: turned into its negation in place
+    # both byte-sized arrays in this thread's scratch buffers (see _quality.scratch)
+    inside = mark_wide_spaces(docs, in_runs(data, SPACE_RUNS, out=scratch("bytes.1", len(data), np.bool_)))
     np.logical_not(inside, out=inside)
-    edge = np.empty(len(data), dtype=bool)  # True > False: inside here, not inside before / after
+    edge = scratch("bytes.2", len(data), np.bool_)  # True > False: inside here, not inside before / after
     edge[0] = inside[0]
     np.greater(inside[1:], inside[:-1], out=edge[1:])
     first = offsets[:-1][offsets[:-1] < len(data)]
@@ -179,25 +194,37 @@ def _bounds(docs: pa.Array, data: np.ndarray, offsets: np.ndarray) -> tuple[np.n
     return starts, ends
 
 
-def _keys(padded: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
-    """Per word: its 64-bit key (see the module docstring); ``padded``, the batch's bytes and
-    eight zero bytes (:attr:`Wide.padded`)."""
+def _keys(data: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
+    """Per word: its 64-bit key (see the module docstring)."""
+    padded = padded_bytes(data, "padded")  # eight zero bytes after the batch's
     # every byte position read as the start of a little-endian uint64 (overlapping, no copy)
-    eight = np.ndarray((len(padded) - 8,), dtype="<u8", buffer=padded, strides=(1,))
+    eight = np.ndarray((len(data),), dtype="<u8", buffer=padded, strides=(1,))
     # fancy indexing, not np.take: np.take copies a strided view whole first (DEVELOPERS.md)
     keys: np.ndarray = eight[starts]
-    long = np.flatnonzero(sizes > _PACKED)
+    is_long = scratch("words.is_long", len(sizes), np.bool_)
+    np.greater(sizes, _PACKED, out=is_long)
+    long = np.flatnonzero(is_long)
     if len(long):
         # first and last eight bytes (whole: a longer word has at least eight) and the length
-        last = eight[starts[long] + sizes[long] - 8]
+        size = sizes[long]
+        at = starts[long]
+        at += size
+        at -= 8
+        last = eight[at]
         with np.errstate(over="ignore"):
-            mixed = mix64(keys[long] ^ mix64(last * _LAST_MIX + sizes[long].astype(np.uint64)))
+            last *= _LAST_MIX
+            last += size.view(np.uint64)  # sizes are positive: the same bits
+            mixed = mix64(keys[long] ^ mix64(last))
     # per word its low-byte mask and its length byte, from tables by length (mode="clip": a
-    # longer word reads the entries of length 7, and its key is replaced below)
-    keys &= np.take(LOW_BYTES, sizes, mode="clip")
-    keys |= np.take(_LENGTH_BYTE, sizes, mode="clip")
+    # longer word reads the entries of length 7, and its key is replaced below), through one
+    # scratch array
+    table = scratch("words.by_length", len(sizes), np.uint64)
+    keys &= np.take(LOW_BYTES, sizes, mode="clip", out=table)
+    keys |= np.take(_LENGTH_BYTE, sizes, mode="clip", out=table)
     if len(long):
-        keys[long] = _LONG | (mixed & _HASH_BITS)
+        mixed &= _HASH_BITS
+        mixed |= _LONG
+        keys[long] = mixed
     return keys
 
 
@@ -229,6 +256,6 @@ def _cut(docs: pa.Array) -> WordTable:
     first = np.searchsorted(starts, offsets).astype(np.int64)
     doc = np.repeat(np.arange(len(docs), dtype=np.int64), np.diff(first))
     sizes = ends - starts
-    keys = _keys(wide.padded, starts, sizes)
+    keys = _keys(data, starts, sizes)
     chars, wide_word = _chars(wide, starts, ends, sizes)  # sizes become the code points
     return WordTable(data, starts, ends, doc, first, keys, chars, wide, wide_word)

@@ -10,7 +10,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_int, parse_str
-from seqpipe.clean._quality import QualityFilter
+from seqpipe.clean._quality import QualityFilter, scratch
 from seqpipe.clean._word_table import LOW_BYTES, WordTable, pack_ascii, word_table
 
 # The English list is the one of Rae et al. 2021, "Scaling Language Models: Methods, Analysis &
@@ -78,7 +78,13 @@ def _sure_flags(table: WordTable, language: str) -> np.ndarray:
     # lower-case letters only: a byte b matches such a letter c exactly when b | 0x20 == c (c or
     # its upper case; no other byte), and the bytes past a packed word are 0 in both codes, so
     # one OR of 0x20 into the seven low bytes of both sides stands for _ascii_lower
-    out = np.isin(table.keys | _CASE_BITS, pack_ascii(listed) | _CASE_BITS)
+    # np.isin's own way with a few values (a compare per value), through scratch arrays
+    folded = scratch("function_words.folded", len(table.keys), np.uint64)
+    np.bitwise_or(table.keys, _CASE_BITS, out=folded)
+    hit = scratch("function_words.hit", len(table.keys), np.bool_)
+    out = np.zeros(len(table.keys), dtype=bool)
+    for code in (pack_ascii(listed) | _CASE_BITS).tolist():
+        out |= np.equal(folded, np.uint64(code), out=hit)
     return out
 
 
@@ -120,6 +126,19 @@ def _function_word_flags(table: WordTable, language: str, which: np.ndarray | No
     return flags
 
 
+def _words_of(first: np.ndarray, docs: np.ndarray) -> np.ndarray:
+    """The indices of the words of the documents ``docs`` (increasing), in order: each
+    document's run ``first[d]:first[d + 1]``, built from the runs alone (no pass over every word
+    of the batch; a few documents are asked for)."""
+    begin, end = first[docs], first[docs + 1]
+    sizes = end - begin
+    # per word its index within the runs laid end to end, moved to its run's start
+    start_in_runs = np.zeros(len(docs), dtype=np.int64)
+    np.cumsum(sizes[:-1], out=start_in_runs[1:])
+    out: np.ndarray = np.repeat(begin - start_in_runs, sizes) + np.arange(int(sizes.sum()), dtype=np.int64)
+    return out
+
+
 @dataclass(frozen=True, slots=True)
 class FunctionWords(QualityFilter):
     """Keep documents holding at least ``minimum`` occurrences of the ``language``'s function
@@ -154,7 +173,7 @@ class FunctionWords(QualityFilter):
         count = table.per_document(_sure_flags(table, self.language))
         unsure = count < self.minimum
         if unsure.any():
-            which = np.flatnonzero(unsure[table.doc])
+            which = _words_of(table.first, np.flatnonzero(unsure))
             hits = which[_function_word_flags(table, self.language, which) > 0]
             count[unsure] = np.bincount(table.doc[hits], minlength=len(count))[unsure]
         return np.asarray(count >= self.minimum, dtype=bool)

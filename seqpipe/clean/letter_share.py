@@ -15,6 +15,7 @@ from seqpipe.clean._quality import (
     QualityFilter,
     in_runs,
     per_document_sum,
+    scratch,
     share,
     utf8_buffers,
     wide_code_points,
@@ -53,11 +54,13 @@ class LetterShare(QualityFilter):
         # bytes nor the continuation bytes after each code point beyond ASCII); letters: ASCII
         # ones (b | 0x20 is a-z exactly for A-Z and a-z) and the code points beyond ASCII that
         # RE2 calls letters (asked once per distinct one)
-        visible = np.diff(offsets) - per_document_sum(in_runs(data, RE2_SPACE_RUNS), offsets)
-        folded = data | np.uint8(0x20)
+        # the byte-sized arrays in this thread's scratch buffers (see _quality.scratch)
+        flags = scratch("bytes.1", len(data), np.bool_)
+        visible = np.diff(offsets) - per_document_sum(in_runs(data, RE2_SPACE_RUNS, out=flags), offsets)
+        folded = scratch("bytes.2", len(data), np.uint8)
+        np.bitwise_or(data, np.uint8(0x20), out=folded)
         folded -= np.uint8(ord("a"))  # in place (wraps below "a")
-        ascii_letter = folded <= np.uint8(25)
-        letters = per_document_sum(ascii_letter, offsets)
+        letters = per_document_sum(np.less_equal(folded, np.uint8(25), out=flags), offsets)
         wide = wide_code_points(docs)
         if len(wide.at):
             doc = np.searchsorted(offsets, wide.at, side="right") - 1

@@ -43,7 +43,7 @@ import pyarrow.compute as pc
 import regex
 
 from seqpipe._parse import parse_str_tuple
-from seqpipe.clean._quality import utf8_buffers
+from seqpipe.clean._quality import scratch, utf8_buffers
 from seqpipe.clean.base import CleanStep, as_documents
 from seqpipe.errors import RecipeError
 
@@ -185,11 +185,19 @@ def hinted(docs: pa.Array, targets: tuple[str, ...]) -> np.ndarray:
     needlessly, never misses one; a null document is never marked."""
     data, offsets = utf8_buffers(docs)
     wants_digits = bool({"ip", "card", "phone"} & set(targets))
-    scan = np.subtract(data, ord("0"), dtype=np.uint8) < 10 if wants_digits else np.zeros(len(data), dtype=bool)
-    if "email" in targets:
-        scan |= data == ord("@")
-    if "ip" in targets:
-        scan |= data == ord(":")
+    # the byte-sized arrays in this thread's scratch buffers (see _quality.scratch)
+    scan = scratch("bytes.1", len(data), np.bool_)
+    if wants_digits:
+        shifted = scratch("bytes.2", len(data), np.uint8)
+        np.subtract(data, np.uint8(ord("0")), out=shifted, dtype=np.uint8)
+        np.less(shifted, np.uint8(10), out=scan)
+    else:
+        scan[:] = False
+    for char, target in (("@", "email"), (":", "ip")):
+        if target in targets:
+            mark = scratch("bytes.2", len(data), np.bool_)
+            np.equal(data, np.uint8(ord(char)), out=mark)
+            scan |= mark
     found = np.flatnonzero(scan)
     value = np.take(data, found)
     digit = found[np.subtract(value, ord("0"), dtype=np.uint8) < 10] if wants_digits else found[:0]

@@ -11,7 +11,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from seqpipe._parse import parse_float, parse_int
-from seqpipe.clean._quality import QualityFilter, share
+from seqpipe.clean._quality import QualityFilter, scratch, share
 from seqpipe.clean._word_table import word_table
 
 _MULTIPLIER: Final = np.uint64(0x9E3779B97F4A7C15)  # odd, with bits spread over the whole word
@@ -47,26 +47,51 @@ def _windows_of_repeated_words(doc: np.ndarray, keys: np.ndarray, n: int) -> np.
     """The first words of the n-grams none of whose words surely occurs once in its document.
     A hash of (document, key) per word is counted per bucket of its top bits, the words left
     per bucket of the bits below those: equal pairs share every bucket, so a word that occurs
-    twice is never ruled out (most words of prose occur once in their document)."""
-    h = doc.astype(np.uint64)  # the one new array per word: the steps below work in place
+    twice is never ruled out (most words of prose occur once in their document). The arrays of
+    a word each are this thread's scratch arrays (see _quality.scratch)."""
+    m = len(keys)
+    if m < n:
+        return np.zeros(0, dtype=np.int64)
+    h = scratch("ngrams.hash", m, np.uint64)
+    np.copyto(h, doc, casting="unsafe")  # the same bits (documents are counted from 0)
     with np.errstate(over="ignore"):
         h *= _MULTIPLIER
         h += np.ascontiguousarray(keys).view(np.uint64)
         h *= _MULTIPLIER
-    bits = _bucket_bits(len(h))
-    buckets = np.right_shift(h, np.uint64(64 - bits)).view(np.intp)  # below 2**24: the same bits
-    maybe = np.take(np.bincount(buckets, minlength=1 << bits), buckets) > 1
+    bits = _bucket_bits(m)
+    buckets = scratch("ngrams.buckets", m, np.uint64)
+    np.right_shift(h, np.uint64(64 - bits), out=buckets)
+    maybe = scratch("ngrams.maybe", m, np.bool_)
+    np.greater(_bucket_sizes(buckets.view(np.intp), bits), 1, out=maybe)  # below 2**24: the same bits
     left = np.flatnonzero(maybe)
     if len(left):
         low = _bucket_bits(len(left))
         buckets = np.take(h, left)
         buckets >>= np.uint64(64 - bits - low)
         buckets &= np.uint64((1 << low) - 1)
-        maybe[left] = np.take(np.bincount(buckets.view(np.intp), minlength=1 << low), buckets.view(np.intp)) > 1
-    run = np.zeros(len(h) + 1, dtype=np.int32)
-    np.cumsum(maybe, out=run[1:])
-    out: np.ndarray = np.flatnonzero(run[n:] - run[:-n] == n)  # n flagged words in a row
+        maybe[left] = _bucket_sizes(buckets.view(np.intp), low) > 1
+    # n flagged words in a row: the flags ANDed with the next n - 1 words' flags
+    row = scratch("ngrams.row", m - n + 1, np.bool_)
+    np.copyto(row, maybe[: m - n + 1])
+    for k in range(1, n):
+        row &= maybe[k : m - n + 1 + k]
+    out: np.ndarray = np.flatnonzero(row)
     return out
+
+
+def _bucket_sizes(buckets: np.ndarray, bits: int) -> np.ndarray:
+    """Per item of ``buckets`` (bucket numbers below ``2**bits``): how many items share its
+    bucket, in this thread's scratch arrays. Counted with ``np.add.at`` into a kept table
+    (int32 into int32: numpy's fast path), where ``np.bincount`` would make a new table of
+    eight bytes per bucket, faulted in page by page in a process whose malloc returns it."""
+    if len(buckets) >= 1 << 31:  # past int32 counts (no batch comes near)
+        out: np.ndarray = np.take(np.bincount(buckets, minlength=1 << bits), buckets)
+        return out
+    table = scratch("ngrams.table", 1 << bits, np.int32)
+    table[:] = 0
+    np.add.at(table, buckets, np.int32(1))
+    # mode="clip": every bucket is in range; with the default mode numpy buffers ``out``
+    return np.take(table, buckets, out=scratch("ngrams.sizes", len(buckets), np.int32), mode="clip")
 
 
 def _window_keys_at(doc: np.ndarray, codes: np.ndarray, starts: np.ndarray, n: int) -> np.ndarray:
