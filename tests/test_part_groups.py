@@ -436,7 +436,8 @@ def test_parts_started_while_planning_give_the_same_dataset(
 ) -> None:
     """On the driver's threads, a part's ingest starts as soon as its inputs are hashed and
     another part follows, while later inputs are still being read (the last one when planning
-    ends), and each started task gets its share of the pool's threads. The dataset's bytes and
+    ends), each with the ingest threads of one of two tasks; a rebuild leaves its changed part to
+    the ingest phase, which gives it the pool's threads. The dataset's bytes and
     figures are those of a build whose tasks run one by one after planning (one thread: no
     early start), with parts counted by their ingest task (no dedupe) or in the count phase."""
     write_notes(tmp_path, files=60, awkward=False)
@@ -463,7 +464,7 @@ def test_parts_started_while_planning_give_the_same_dataset(
     early = build(recipe, tmp_path / "early", part_bytes=300, progress=False)
     parts = early.parts_total
     assert parts > 3 and started == list(range(parts))  # each as soon as its inputs were hashed
-    assert sorted(threads, reverse=True) == [2] + [1] * (parts - 1)  # the first started alone: the pool's two
+    assert threads == [1] * parts  # each the share of one of two tasks side by side
     threads.clear()
     one_part = build(recipe, tmp_path / "one-part", progress=False)  # default part size: one part
     assert one_part.parts_total == 1 and len(started) == parts and threads == [2]  # not started early
@@ -474,6 +475,13 @@ def test_parts_started_while_planning_give_the_same_dataset(
     assert early.manifest["summary"] == inline.manifest["summary"]
     again = build(recipe, tmp_path / "early", part_bytes=300, progress=False)
     assert again.parts_reused == parts  # the parts ingested early were stored whole
+    # a rebuild with one input changed: its part alone is ingested, with the pool's threads
+    monkeypatch.setenv("SEQPIPE_TASK_THREADS", "2")
+    edit = tmp_path / "notes" / "shelf-1" / "box-1" / "note-001.txt"
+    edit.write_bytes(edit.read_bytes()[::-1])  # the same size, so no part boundary moves
+    threads.clear()
+    edited = build(recipe, tmp_path / "early", part_bytes=300, progress=False)
+    assert edited.parts_reused == parts - 1 and threads == [2]
 
 
 def test_a_failed_plan_waits_for_the_parts_it_started(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
