@@ -6,7 +6,7 @@ Layout under the dataset directory::
     .seqpipe/publishing.json      the entries a publish may replace, while one is under way
     .seqpipe/stage/<build key>/   everything a build writes before it publishes
     .seqpipe/cache/               ingested parts, reusable by later builds
-    .seqpipe/cache/inputs.json    input file hashes keyed by path, with the (size, mtime, inode) they were taken at
+    .seqpipe/cache/inputs.json    input file hashes by path, with the (size, mtime, inode) they were taken at
     .seqpipe/cache/plans.json     cuts of inputs that needed reading to cut, by content hash
     .seqpipe/cache/plan.json      the last build's whole plan, taken while its inputs' listing is unchanged
     .seqpipe/cache/counts.arrow   the last build's corpus counts, taken while its parts and splits are unchanged

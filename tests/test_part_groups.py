@@ -168,6 +168,11 @@ def test_a_cached_rebuild_reads_no_input(tmp_path: Path, monkeypatch: pytest.Mon
     again = build(recipe_of(tmp_path, cap=8), tmp_path / "out", workers=1, progress=False, part_bytes=400)
     assert again.parts_reused == again.parts_total == first.parts_total
     assert again.bytes_read == 0
+    # without the stored plan, planning again takes every hash from the stored input hashes
+    (tmp_path / "out" / ".seqpipe" / "cache" / "plan.json").unlink()
+    third = build(recipe_of(tmp_path, cap=9), tmp_path / "out", workers=1, progress=False, part_bytes=400)
+    assert third.parts_reused == third.parts_total == first.parts_total
+    assert third.manifest["inputs"] == first.manifest["inputs"]
 
 
 def test_an_error_inside_a_group_names_its_file(tmp_path: Path) -> None:
