@@ -668,9 +668,11 @@ class _Grouped:
 
 class _Groups:
     """Parts in corpus order, made as the inputs arrive: a large input's cuts are parts of their
-    own, consecutive small inputs of one source share a part up to ``part_bytes``. A part that
-    another part follows is handed to ``ready`` as soon as that is known, the last one by
-    ``finish``."""
+    own, consecutive small inputs of one source share a part up to ``part_bytes``. A part of
+    small inputs that another part follows is handed to ``ready`` as soon as that is known, the
+    last one by ``finish``. The cuts of large inputs are not: hashing those takes little of a
+    build, and ingesting them beside it raised the peak memory of a 1 GB build of 25 MB files
+    by 40-80 MiB (439-478 against 395-400 MiB)."""
 
     def __init__(self, recipe: Recipe, part_bytes: int, ready: Callable[[int, _Planned, bool], None] | None) -> None:
         self.recipe = recipe
@@ -688,7 +690,7 @@ class _Groups:
         if not small:
             self.close()
             for m in members:
-                self._make(si, [m])
+                self._make(si, [m], announce=False)
             return
         if self.open and (self.source != si or self.held + size > self.part_bytes):
             self.close()
@@ -704,11 +706,11 @@ class _Groups:
             self._make(self.source, self.open)
             self.open = []
 
-    def _make(self, si: int, group: list[tuple[Member, str, int]]) -> None:
+    def _make(self, si: int, group: list[tuple[Member, str, int]], *, announce: bool = True) -> None:
         key = part_key(self.recipe, si, [(h, m.part) for m, h, _ in group])
         self.parts.append((si, tuple(m for m, _, _ in group), key, sum(w for *_, w in group)))
         self._follows()
-        self.waiting = len(self.parts) - 1
+        self.waiting = len(self.parts) - 1 if announce else None
 
     def finish(self) -> None:
         """No input follows: make the open group a part, and hand on the last part as such."""
