@@ -682,11 +682,11 @@ class _Groups:
         self.open: list[tuple[Member, str, int]] = []  # the group small inputs are joining
         self.source = -1
         self.held = 0
-        self.waiting: int | None = None  # the last part made, until another part follows it
+        self.waiting: int | None = None  # the part just made, until it is known what follows it
 
     def add(self, si: int, members: list[tuple[Member, str, int]], size: int, small: bool) -> None:
-        """One input's members (member, its input's hash, weight)."""
-        self._follows()
+        """One input's members (member, its input's hash, weight). No part waits between calls:
+        each part made here is handed on before this returns."""
         if not small:
             self.close()
             for m in members:
